@@ -1,0 +1,28 @@
+# Two commands do all the set-up: `make demo` and `make test`.
+PYTHON ?= python3
+VENV   ?= .venv
+PY     := $(VENV)/bin/python
+LIMEN  := $(VENV)/bin/limen
+DEMO   ?= demo-output
+
+.PHONY: demo test venv clean bench
+
+$(VENV)/.installed: pyproject.toml
+	$(PYTHON) -m venv $(VENV)
+	$(PY) -m pip install --quiet --upgrade pip
+	$(PY) -m pip install --quiet -e '.[test]'
+	touch $@
+
+venv: $(VENV)/.installed
+
+demo: venv
+	$(PY) -m scorer.demo --out $(DEMO)
+
+test: venv
+	$(PY) -m pytest -q -n 2 tests
+
+bench: venv
+	$(PY) -m bench.run_all
+
+clean:
+	rm -rf $(VENV) $(DEMO) build *.egg-info

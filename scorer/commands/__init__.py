@@ -1,0 +1,1 @@
+"""Sub-commands of the ``limen`` CLI, one module each."""

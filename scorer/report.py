@@ -1,0 +1,150 @@
+"""Self-contained HTML reports, plots embedded as SVG, and the caution text.
+
+Every report Limen writes goes through :func:`html_page`, so the caution that
+results support (and never replace) a qualified medical physicist's judgement
+appears on every page.
+"""
+
+from __future__ import annotations
+
+import datetime as _dt
+import html
+import io
+import json
+import platform
+from pathlib import Path
+from typing import Iterable
+
+import numpy as np
+
+CAUTION = (
+    "Limen's results support, and never replace, the judgement of a qualified medical "
+    "physicist. They inform the quality control of equipment used on patients; local "
+    "regulations, national protocols and licensed practice prevail over anything shown here."
+)
+
+_STYLE = """
+body{font-family:system-ui,-apple-system,Segoe UI,Roboto,sans-serif;margin:2em auto;max-width:70em;color:#1b1b1b;line-height:1.45}
+h1{font-size:1.6em;margin-bottom:.2em} h2{font-size:1.25em;margin-top:1.6em;border-bottom:1px solid #ccc}
+table{border-collapse:collapse;margin:.6em 0;font-size:.92em} th,td{border:1px solid #bbb;padding:.25em .6em;text-align:right}
+th{background:#eef2f5} td.l,th.l{text-align:left}
+.caution{background:#fff6e0;border-left:5px solid #d08a00;padding:.6em 1em;margin:1em 0}
+.pass{color:#106b21;font-weight:600}.fail{color:#a4161a;font-weight:600}.indeterminate{color:#8a6d00;font-weight:600}
+.meta{color:#555;font-size:.85em} figure{margin:1em 0} figcaption{color:#444;font-size:.9em}
+"""
+
+
+def figure_to_svg(fig) -> str:
+    """Render a matplotlib figure to an inline SVG string and close it."""
+    import matplotlib.pyplot as plt
+
+    buf = io.StringIO()
+    fig.savefig(buf, format="svg", bbox_inches="tight")
+    plt.close(fig)
+    text = buf.getvalue()
+    start = text.find("<svg")
+    return text[start:] if start >= 0 else text
+
+
+def table_html(rows: list[dict], columns: list[str] | None = None, headers: dict | None = None,
+               left: Iterable[str] = ()) -> str:
+    """A plain HTML table from a list of dicts (floats shown with 4 significant figures)."""
+    if not rows:
+        return "<p><em>No rows.</em></p>"
+    columns = columns or list(rows[0].keys())
+    headers = headers or {}
+    left = set(left)
+
+    def cell(v):
+        if v is None or (isinstance(v, float) and not np.isfinite(v)):
+            return "—"
+        if isinstance(v, (float, np.floating)):
+            return f"{float(v):.4g}"
+        return html.escape(str(v))
+
+    head = "".join(f'<th class="{"l" if c in left else ""}">{html.escape(headers.get(c, c))}</th>' for c in columns)
+    body = []
+    for r in rows:
+        tds = []
+        for c in columns:
+            v = r.get(c)
+            cls = "l" if c in left else ""
+            if c == "verdict" and isinstance(v, str):
+                cls = (cls + " " + v).strip()
+            tds.append(f'<td class="{cls}">{cell(v)}</td>')
+        body.append("<tr>" + "".join(tds) + "</tr>")
+    return f"<table><thead><tr>{head}</tr></thead><tbody>{''.join(body)}</tbody></table>"
+
+
+def provenance() -> dict:
+    """Versions and time, recorded in every report so a result can be reproduced."""
+    import numpy, scipy  # noqa: E401
+    from . import __version__
+
+    out = {
+        "limen_version": __version__,
+        "python": platform.python_version(),
+        "numpy": numpy.__version__,
+        "scipy": scipy.__version__,
+        "created_utc": _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds"),
+    }
+    try:
+        import statsmodels
+        out["statsmodels"] = statsmodels.__version__
+    except ImportError:  # pragma: no cover
+        pass
+    return out
+
+
+def html_page(title: str, sections: list[tuple[str, str]], meta: dict | None = None) -> str:
+    """A self-contained HTML page: title, caution, then (heading, html) sections, then provenance."""
+    meta = dict(meta or {})
+    meta.setdefault("provenance", provenance())
+    parts = [
+        "<!DOCTYPE html><html lang='en'><head><meta charset='utf-8'>",
+        f"<title>{html.escape(title)}</title><style>{_STYLE}</style></head><body>",
+        f"<h1>{html.escape(title)}</h1>",
+        f"<div class='caution'><strong>Caution.</strong> {html.escape(CAUTION)}</div>",
+    ]
+    for heading, body in sections:
+        if heading:
+            parts.append(f"<h2>{html.escape(heading)}</h2>")
+        parts.append(body)
+    parts.append("<h2>Provenance</h2><pre class='meta'>" + html.escape(json.dumps(meta, indent=2, default=str)) + "</pre>")
+    parts.append("</body></html>")
+    return "\n".join(parts)
+
+
+def write_json(path: Path, obj) -> None:
+    """Write ``obj`` as pretty JSON (numpy scalars and arrays converted)."""
+    Path(path).write_text(json.dumps(obj, indent=2, default=_json_default) + "\n", encoding="utf-8")
+
+
+def _json_default(o):
+    if isinstance(o, np.integer):
+        return int(o)
+    if isinstance(o, np.floating):
+        return None if not np.isfinite(o) else float(o)
+    if isinstance(o, np.ndarray):
+        return o.tolist()
+    if isinstance(o, (Path,)):
+        return str(o)
+    if hasattr(o, "isoformat"):
+        return o.isoformat()
+    raise TypeError(f"not JSON serialisable: {type(o).__name__}")
+
+
+def dumps(obj) -> str:
+    """JSON text for stdout (same conversions as :func:`write_json`)."""
+    return json.dumps(clean_nans(obj), default=_json_default)
+
+
+def clean_nans(obj):
+    """Replace NaN/inf floats by None recursively so the JSON is valid."""
+    if isinstance(obj, float):
+        return obj if np.isfinite(obj) else None
+    if isinstance(obj, dict):
+        return {k: clean_nans(v) for k, v in obj.items()}
+    if isinstance(obj, (list, tuple)):
+        return [clean_nans(v) for v in obj]
+    return obj
