@@ -1,0 +1,320 @@
+"""Phantom layout files: Limen's own TOML description of a contrast-detail phantom.
+
+A layout file says where everything on a contrast-detail plate lies, in
+millimetres on the plate, so that Limen can find the plate in an image and
+knows which candidate site holds each disc.  Format ``limen-layout/1``::
+
+    format = "limen-layout/1"
+
+    [phantom]
+    name = "Example plate"
+    width_mm = 150.0            # outline: a rectangle, origin at its top-left corner,
+    height_mm = 130.0           # x to the right, y downwards (as drawn on the plate)
+    description = "free text"   # optional
+
+    [[fiducials]]               # three or more registration markers (discs)
+    id = "A"
+    x_mm = 7.0
+    y_mm = 7.0
+    diameter_mm = 3.0
+    contrast = 0.6              # fractional drop in air kerma behind the marker
+
+    [orientation_key]           # one marker unlike the fiducials (larger) that
+    x_mm = 24.0                 # breaks every rotation/mirror symmetry
+    y_mm = 7.0
+    diameter_mm = 6.0
+    contrast = 0.6
+
+    [[targets]]                 # M-alternative forced choice: M candidate sites,
+    id = "r3c07"                # one of which (signal_site, counted from 0) holds the disc
+    diameter_mm = 0.25
+    contrast = 0.012            # nominal contrast as a fraction (0 < c < 1)
+    sites_mm = [[40.0, 30.0], [46.0, 30.0], [40.0, 36.0], [46.0, 36.0]]
+    signal_site = 2
+    material = "Au"             # optional
+    thickness_um = 0.2          # optional
+
+    [[targets]]                 # or: one known site plus background sites
+    id = "k1"
+    diameter_mm = 1.0
+    contrast = 0.005
+    known_site_mm = [60.0, 30.0]
+    background_sites_mm = [[66.0, 30.0], [60.0, 36.0]]
+
+Every problem is reported as a :class:`~scorer.errors.LimenError` naming the file,
+the entry and the problem.
+"""
+
+from __future__ import annotations
+
+import tomllib
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+
+from .errors import LimenError
+
+FORMAT = "limen-layout/1"
+PHANTOM_DIR = Path(__file__).resolve().parent.parent / "phantoms"
+DEFAULT_LAYOUT_NAME = "tessera-demo-plate.toml"
+
+# Minimum clear gap between two sites' discs, as a multiple of the larger radius,
+# so that each site keeps a ring of its own background (common practice).
+SITE_CLEARANCE_RADII = 1.0
+
+_TOP_KEYS = {"format", "phantom", "fiducials", "orientation_key", "targets"}
+_PHANTOM_KEYS = {"name", "width_mm", "height_mm", "description"}
+_MARKER_KEYS = {"id", "x_mm", "y_mm", "diameter_mm", "contrast"}
+_TARGET_KEYS = {"id", "diameter_mm", "contrast", "sites_mm", "signal_site", "known_site_mm",
+                "background_sites_mm", "material", "thickness_um"}
+
+
+@dataclass(frozen=True)
+class Marker:
+    id: str
+    x_mm: float
+    y_mm: float
+    diameter_mm: float
+    contrast: float
+
+    @property
+    def xy_mm(self) -> tuple[float, float]:
+        return (self.x_mm, self.y_mm)
+
+
+@dataclass(frozen=True)
+class Target:
+    """One disc and its candidate sites.
+
+    ``sites_mm`` has shape (M, 2); ``signal_site`` indexes the site that holds the disc.
+    ``design`` is ``"mafc"`` (M candidates, one holds the disc) or ``"known"`` (site 0
+    holds the disc at a known place, the others are background sites).
+    """
+
+    id: str
+    diameter_mm: float
+    contrast: float
+    sites_mm: tuple[tuple[float, float], ...]
+    signal_site: int
+    design: str = "mafc"
+    material: str | None = None
+    thickness_um: float | None = None
+
+    @property
+    def m_alternatives(self) -> int:
+        return len(self.sites_mm)
+
+    @property
+    def sites(self) -> np.ndarray:
+        return np.asarray(self.sites_mm, dtype=float)
+
+    @property
+    def signal_xy_mm(self) -> tuple[float, float]:
+        return self.sites_mm[self.signal_site]
+
+
+@dataclass(frozen=True)
+class Layout:
+    name: str
+    width_mm: float
+    height_mm: float
+    fiducials: tuple[Marker, ...]
+    orientation_key: Marker
+    targets: tuple[Target, ...]
+    description: str = ""
+    source_path: str = ""
+
+    @property
+    def center_mm(self) -> tuple[float, float]:
+        return (self.width_mm / 2.0, self.height_mm / 2.0)
+
+    @property
+    def diameters_mm(self) -> list[float]:
+        return sorted({t.diameter_mm for t in self.targets})
+
+    @property
+    def markers(self) -> tuple[Marker, ...]:
+        """Fiducials followed by the orientation key."""
+        return self.fiducials + (self.orientation_key,)
+
+    def targets_with_diameter(self, diameter_mm: float) -> list[Target]:
+        return [t for t in self.targets if t.diameter_mm == diameter_mm]
+
+    def max_site_radius_mm(self) -> float:
+        return max(t.diameter_mm for t in self.targets) / 2.0
+
+
+def default_layout_path() -> Path:
+    """The bundled demo phantom's layout file."""
+    return PHANTOM_DIR / DEFAULT_LAYOUT_NAME
+
+
+def load_layout(path=None) -> Layout:
+    """Read and validate a layout file (default: the bundled demo phantom).
+
+    Raises
+    ------
+    LimenError
+        Naming the file, the entry and the problem, for any malformed content.
+    """
+    path = Path(path) if path is not None else default_layout_path()
+    try:
+        text = path.read_text(encoding="utf-8")
+    except OSError as exc:
+        raise LimenError(f"cannot read layout file ({exc.strerror or exc})", path) from None
+    try:
+        data = tomllib.loads(text)
+    except tomllib.TOMLDecodeError as exc:
+        raise LimenError(f"not valid TOML: {exc}", path) from None
+    return parse_layout(data, path)
+
+
+def parse_layout(data: dict, path="<layout>") -> Layout:
+    """Validate a layout already parsed from TOML into a dict."""
+    p = str(path)
+
+    def fail(entry: str, problem: str):
+        raise LimenError(f"{entry}: {problem}", p)
+
+    def unknown(keys, allowed, entry):
+        extra = sorted(set(keys) - allowed)
+        if extra:
+            fail(entry, f"unknown key {extra[0]!r} (allowed: {', '.join(sorted(allowed))})")
+
+    def number(d, key, entry, positive=False):
+        if key not in d:
+            fail(entry, f"missing '{key}'")
+        v = d[key]
+        if isinstance(v, bool) or not isinstance(v, (int, float)) or not np.isfinite(v):
+            fail(entry, f"'{key}' must be a number, got {v!r}")
+        if positive and v <= 0:
+            fail(entry, f"'{key}' must be positive, got {v!r}")
+        return float(v)
+
+    def point(v, entry, key):
+        if (not isinstance(v, list) or len(v) != 2
+                or not all(isinstance(c, (int, float)) and not isinstance(c, bool) for c in v)):
+            fail(entry, f"'{key}' must be a pair [x_mm, y_mm], got {v!r}")
+        return (float(v[0]), float(v[1]))
+
+    unknown(data, _TOP_KEYS, "top level")
+    fmt = data.get("format")
+    if fmt != FORMAT:
+        fail("format", f"expected format = \"{FORMAT}\", got {fmt!r}")
+    ph = data.get("phantom")
+    if not isinstance(ph, dict):
+        fail("[phantom]", "missing table")
+    unknown(ph, _PHANTOM_KEYS, "[phantom]")
+    width = number(ph, "width_mm", "[phantom]", positive=True)
+    height = number(ph, "height_mm", "[phantom]", positive=True)
+    name = str(ph.get("name", Path(p).stem))
+
+    def inside(xy, r, entry):
+        x, y = xy
+        if x - r < 0 or y - r < 0 or x + r > width or y + r > height:
+            fail(entry, f"site ({x:g}, {y:g}) mm with radius {r:g} mm lies outside the "
+                        f"{width:g} × {height:g} mm outline")
+
+    def marker(d, entry) -> Marker:
+        if not isinstance(d, dict):
+            fail(entry, "must be a table")
+        unknown(d, _MARKER_KEYS, entry)
+        diam = number(d, "diameter_mm", entry, positive=True)
+        c = number(d, "contrast", entry)
+        if not 0 < c < 1:
+            fail(entry, f"contrast must lie in (0, 1), got {c:g}")
+        m = Marker(str(d.get("id", entry)), number(d, "x_mm", entry), number(d, "y_mm", entry), diam, c)
+        inside(m.xy_mm, diam / 2, entry)
+        return m
+
+    fid_raw = data.get("fiducials", [])
+    if not isinstance(fid_raw, list) or len(fid_raw) < 3:
+        fail("[[fiducials]]", f"at least three fiducial markers are needed, found {len(fid_raw) if isinstance(fid_raw, list) else 0}")
+    fiducials = tuple(marker(d, f"fiducial {d.get('id', i) if isinstance(d, dict) else i}")
+                      for i, d in enumerate(fid_raw))
+    if "orientation_key" not in data:
+        fail("[orientation_key]", "missing table (one marker that breaks the plate's symmetry)")
+    key = marker(data["orientation_key"], "orientation_key")
+    fid_d = {m.diameter_mm for m in fiducials}
+    if key.diameter_mm in fid_d:
+        fail("orientation_key", "must differ in diameter from the fiducials so it can be told apart")
+
+    t_raw = data.get("targets", [])
+    if not isinstance(t_raw, list) or not t_raw:
+        fail("[[targets]]", "no targets")
+    targets: list[Target] = []
+    seen_ids: set[str] = set()
+    for i, d in enumerate(t_raw):
+        entry = f"target {d.get('id', i) if isinstance(d, dict) else i!r}"
+        if not isinstance(d, dict):
+            fail(entry, "must be a table")
+        unknown(d, _TARGET_KEYS, entry)
+        tid = str(d.get("id", f"t{i}"))
+        if tid in seen_ids:
+            fail(entry, "duplicate id")
+        seen_ids.add(tid)
+        diam = number(d, "diameter_mm", entry)
+        if diam <= 0:
+            fail(entry, f"diameter_mm must be positive, got {diam:g}")
+        c = number(d, "contrast", entry)
+        if not 0 < c < 1:
+            fail(entry, f"contrast must lie in (0, 1), got {c:g}")
+        if "sites_mm" in d:
+            if "known_site_mm" in d or "background_sites_mm" in d:
+                fail(entry, "give either sites_mm + signal_site or known_site_mm + background_sites_mm, not both")
+            raw = d["sites_mm"]
+            if not isinstance(raw, list) or len(raw) < 2:
+                fail(entry, "sites_mm needs at least two candidate sites")
+            sites = tuple(point(v, entry, "sites_mm") for v in raw)
+            if "signal_site" not in d:
+                fail(entry, "missing 'signal_site' (index of the site holding the disc, from 0)")
+            s = d["signal_site"]
+            if isinstance(s, bool) or not isinstance(s, int) or not 0 <= s < len(sites):
+                fail(entry, f"signal_site {s!r} is out of range 0..{len(sites) - 1}")
+            design = "mafc"
+        elif "known_site_mm" in d:
+            bg = d.get("background_sites_mm")
+            if not isinstance(bg, list) or not bg:
+                fail(entry, "background_sites_mm needs at least one site")
+            sites = (point(d["known_site_mm"], entry, "known_site_mm"),) + tuple(
+                point(v, entry, "background_sites_mm") for v in bg)
+            s, design = 0, "known"
+        else:
+            fail(entry, "needs sites_mm + signal_site, or known_site_mm + background_sites_mm")
+        for xy in sites:
+            inside(xy, diam / 2, entry)
+        thick = d.get("thickness_um")
+        if thick is not None:
+            thick = number(d, "thickness_um", entry, positive=True)
+        targets.append(Target(tid, diam, c, sites, s, design,
+                              None if d.get("material") is None else str(d["material"]), thick))
+
+    _check_overlaps(targets, fiducials + (key,), fail)
+    return Layout(name, width, height, fiducials, key, tuple(targets),
+                  str(ph.get("description", "")), p)
+
+
+def _check_overlaps(targets, markers, fail) -> None:
+    """No two sites (or a site and a marker) may be closer than their radii plus clearance."""
+    xy, radius, owner = [], [], []
+    for t in targets:
+        for k, s in enumerate(t.sites_mm):
+            xy.append(s)
+            radius.append(t.diameter_mm / 2)
+            owner.append(f"target {t.id!r} site {k}")
+    for m in markers:
+        xy.append(m.xy_mm)
+        radius.append(m.diameter_mm / 2)
+        owner.append(f"marker {m.id!r}")
+    xy = np.asarray(xy)
+    radius = np.asarray(radius)
+    from scipy.spatial import cKDTree
+
+    tree = cKDTree(xy)
+    reach = 2 * radius.max() * (1 + SITE_CLEARANCE_RADII)
+    for i, j in sorted(tree.query_pairs(reach)):
+        need = radius[i] + radius[j] + SITE_CLEARANCE_RADII * max(radius[i], radius[j])
+        dist = float(np.hypot(*(xy[i] - xy[j])))
+        if dist < need:
+            fail(owner[j], f"overlaps {owner[i]}: centres {dist:.2f} mm apart, need at least {need:.2f} mm")
