@@ -62,13 +62,13 @@ import numpy as np
 from scipy import fft as sfft
 
 from .conversion import ConversionFunction
+from .disc import SUPERSAMPLE, disc_coverage_patch
 from .errors import LimenError
 from .geometry import PhantomTransform
 from .layout import Layout, load_layout
 
 SMALL_FIELD_PX = 512
 SMALL_MARGIN_MM = 6.0
-SUPERSAMPLE = 10  # sub-pixels per pixel side when rendering disc and edge coverage
 
 
 @dataclass(frozen=True)
@@ -205,29 +205,10 @@ class SimulatedImage:
 
 
 # --------------------------------------------------------------------------- rendering
-def _coverage_patch(center_rc: np.ndarray, radius_px: float, shape: tuple[int, int]):
-    """Fraction of each pixel covered by a disc; returns (row slice, col slice, coverage)."""
-    r0 = int(np.floor(center_rc[0] - radius_px - 1))
-    r1 = int(np.ceil(center_rc[0] + radius_px + 2))
-    c0 = int(np.floor(center_rc[1] - radius_px - 1))
-    c1 = int(np.ceil(center_rc[1] + radius_px + 2))
-    r0c, r1c = max(r0, 0), min(r1, shape[0])
-    c0c, c1c = max(c0, 0), min(c1, shape[1])
-    if r0c >= r1c or c0c >= c1c:
-        return None
-    s = SUPERSAMPLE
-    sub = (np.arange(s) + 0.5) / s - 0.5
-    rr = (np.arange(r0c, r1c)[:, None] + sub[None, :]).ravel()
-    cc = (np.arange(c0c, c1c)[:, None] + sub[None, :]).ravel()
-    inside = ((rr[:, None] - center_rc[0]) ** 2 + (cc[None, :] - center_rc[1]) ** 2) <= radius_px ** 2
-    cov = inside.reshape(r1c - r0c, s, c1c - c0c, s).mean(axis=(1, 3))
-    return slice(r0c, r1c), slice(c0c, c1c), cov
-
-
 def render_discs(transmission: np.ndarray, centers_rc, radii_px, contrasts) -> None:
     """Multiply ``transmission`` in place by 1 − C·coverage for each disc."""
     for rc, rad, c in zip(np.atleast_2d(centers_rc), np.atleast_1d(radii_px), np.atleast_1d(contrasts)):
-        patch = _coverage_patch(np.asarray(rc, float), float(rad), transmission.shape)
+        patch = disc_coverage_patch(rc, float(rad), transmission.shape)
         if patch is not None:
             rs, cs, cov = patch
             transmission[rs, cs] *= 1.0 - c * cov
