@@ -28,6 +28,7 @@ class ImageMetadata:
     linearised: bool = False
     conversion: dict | None = None           # the conversion function applied, if any
     warnings: list[str] = field(default_factory=list)
+    spacing_source: str = ""               # where spacing_mm came from: tag name or "argument"
 
     def to_dict(self) -> dict:
         return asdict(self)
