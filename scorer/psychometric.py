@@ -100,6 +100,30 @@ def pc_mafc_fast(dprime, m: int) -> np.ndarray:
     return table[i] * (1.0 - frac) + table[i + 1] * frac
 
 
+@lru_cache(maxsize=32)
+def _dpc_table(m: int) -> np.ndarray:
+    """dPc_M/dd′ on the fine grid (central differences of the table; second-order accurate)."""
+    out = np.gradient(_pc_table(m), _FINE_STEP)
+    out.setflags(write=False)
+    return out
+
+
+def dpc_mafc_fast(dprime, m: int) -> np.ndarray:
+    """Derivative dPc_M/dd′ at ``dprime`` (tabulated; 0 outside [0, 12])."""
+    table = _dpc_table(int(m))
+    d = np.asarray(dprime, dtype=float)
+    inside = (d >= 0) & (d <= DPRIME_MAX)
+    out = np.interp(np.clip(d, 0.0, DPRIME_MAX), np.linspace(0.0, DPRIME_MAX, table.size), table)
+    return np.where(inside, out, 0.0)
+
+
+def dprime_for_pc_fast(pc, m: int) -> np.ndarray:
+    """Inverse of :func:`pc_mafc_fast` (array in and out); Pc at or below 1/M gives 0, at 1 gives 12."""
+    table = _pc_table(int(m))
+    grid = np.linspace(0.0, DPRIME_MAX, table.size)
+    return np.interp(np.asarray(pc, dtype=float), table, grid)
+
+
 @lru_cache(maxsize=256)
 def _dprime_for(pc: float, m: int) -> float:
     return dprime_for_pc(pc, m)
@@ -147,7 +171,8 @@ def _k_bounds(levels: np.ndarray) -> tuple[float, float]:
 
 
 def fit_k_batch(levels, y, n, m_alternatives: int, lapse: float = 0.0,
-                guess_rate: float | None = None, n_grid: int = 121, n_golden: int = 48) -> tuple[np.ndarray, np.ndarray]:
+                guess_rate: float | None = None, n_grid: int = 121, n_golden: int = 44,
+                center: float | None = None) -> tuple[np.ndarray, np.ndarray]:
     """Maximum-likelihood k of the M-AFC form for many data sets at once.
 
     Parameters
@@ -163,15 +188,38 @@ def fit_k_batch(levels, y, n, m_alternatives: int, lapse: float = 0.0,
 
     A coarse grid in log k finds the best cell for every row (robust to a flat or
     multi-modal likelihood), then a golden-section search refines within the
-    neighbouring cells to ~1e-9 in log k.
+    neighbouring cells to ~1e-9 in log k.  With ``center`` (e.g. the full-data estimate
+    when fitting bootstrap resamples) a local grid of 33 points over center·e^(±2) is
+    searched first; rows whose best point is at the local grid's edge are refitted
+    with the full grid.
     """
+    if center is not None and np.isfinite(center) and center > 0:
+        y2 = np.atleast_2d(np.asarray(y, dtype=float))
+        n2 = np.atleast_2d(np.asarray(n, dtype=float))
+        lo_f, hi_f = np.log(_k_bounds(np.asarray(levels, dtype=float)))
+        lo_c, hi_c = max(np.log(center) - 2.0, lo_f), min(np.log(center) + 2.0, hi_f)
+        k, at_b = _fit_k_grid(levels, y2, n2, m_alternatives, lapse, guess_rate, np.linspace(lo_c, hi_c, 33),
+                              n_golden - 8, (lo_f, hi_f))
+        edge = ((np.log(k) - lo_c < 0.13) & (lo_c > lo_f)) | ((hi_c - np.log(k) < 0.13) & (hi_c < hi_f))
+        if edge.any():
+            k_e, b_e = fit_k_batch(levels, y2[edge], n2[edge], m_alternatives, lapse, guess_rate, n_grid, n_golden)
+            k, at_b = k.copy(), at_b.copy()
+            k[edge], at_b[edge] = k_e, b_e
+        return k, at_b
+    levels = np.asarray(levels, dtype=float)
+    lo, hi = np.log(_k_bounds(levels))
+    return _fit_k_grid(levels, y, n, m_alternatives, lapse, guess_rate, np.linspace(lo, hi, n_grid), n_golden,
+                       (lo, hi))
+
+
+def _fit_k_grid(levels, y, n, m_alternatives, lapse, guess_rate, grid, n_golden, bounds):
     levels = np.asarray(levels, dtype=float)
     y = np.atleast_2d(np.asarray(y, dtype=float))
     n = np.atleast_2d(np.asarray(n, dtype=float))
     m = int(m_alternatives)
     gamma = 1.0 / m if guess_rate is None else float(guess_rate)
-    lo, hi = np.log(_k_bounds(levels))
-    grid = np.linspace(lo, hi, n_grid)
+    lo, hi = bounds
+    n_grid = grid.size
     step = grid[1] - grid[0]
 
     def ll(logk):  # logk (B,) or (B, G) -> same shape
@@ -708,7 +756,8 @@ def bootstrap_threshold(units: UnitCounts, n_boot: int, rng: np.random.Generator
     nb = weights @ n_u
     n_bound = 0
     if fit_fn is None and form == "mafc" and lapse is not None:
-        k, at_b = fit_k_batch(levels[keep], yb[:, keep], nb[:, keep], m_alternatives, float(lapse))
+        k0 = _dprime_for(p, int(m_alternatives)) / estimate if np.isfinite(estimate) and estimate > 0 else None
+        k, at_b = fit_k_batch(levels[keep], yb[:, keep], nb[:, keep], m_alternatives, float(lapse), center=k0)
         samples = _dprime_for(p, int(m_alternatives)) / k      # lapse-free threshold
         n_bound = int(at_b.sum())
     else:
