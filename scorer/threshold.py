@@ -1,0 +1,269 @@
+"""Threshold contrast per disc diameter from model-observer responses: two methods, bootstrap CIs.
+
+*Count method* — the proportion of correct M-AFC decisions per target over the
+images is fitted per diameter by maximum likelihood with the linear-observer
+form Pc(C) = Pc_M(k·C) (:mod:`scorer.psychometric`, guess rate 1/M); the threshold
+is the contrast where Pc reaches the criterion (default halfway between chance and
+1, common practice).
+
+*d′ method* — per target, d′ = (mean signal-site response − mean non-signal-site
+response) / σ, with σ the response standard deviation pooled over every site of the
+diameter (pooling is what keeps d′ unbiased with few images — REFERENCES.md): with
+three or more sites per target, σ² is the variance of the non-signal sites about their
+mean within each image and target (the noise an M-AFC decision meets), pooled over
+images and targets; with two sites, the pooled within-target variance over images.  A
+linear observer's d′ is proportional to contrast, so d′ = k·C is fitted through the
+origin per diameter and C_T = d′_T / k, where d′_T is the d′ giving the criterion
+proportion correct in M-AFC, computed by integrating the M-AFC formula
+(:func:`scorer.mafc.dprime_for_pc`).  The fit uses the targets up to 4× a first
+threshold estimate, so that it stays near threshold.
+
+Both methods' confidence intervals come from a bootstrap that resamples whole
+images with replacement (seeded; percentile intervals, Efron & Tibshirani 1993).
+
+A smooth contrast-detail curve, log C_T = a + b·log d + c·(log d)², is fitted
+across diameters for display and interpolation: the Rose model (Rose 1948) gives
+the straight line with b = −1 where quantum noise dominates and the MTF is near
+1; the quadratic term allows the bend at small diameters where blur matters
+(common practice).
+
+References
+----------
+.. [1] Green & Swets, *Signal Detection Theory and Psychophysics* (1966).
+.. [2] Wichmann & Hill, Perception & Psychophysics 63 (2001).
+.. [3] Efron & Tibshirani, *An Introduction to the Bootstrap* (1993).
+.. [4] Rose, J. Opt. Soc. Am. 38 (1948).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field, asdict
+
+import numpy as np
+import pandas as pd
+
+from .errors import LimenError
+from .mafc import dprime_for_pc, halfway_criterion
+from .psychometric import bootstrap_threshold, percentile_ci, unit_counts
+
+METHODS = ("dprime", "count")
+LOCAL_FIT_FACTOR = 4.0
+
+
+@dataclass
+class ThresholdPoint:
+    diameter_mm: float
+    threshold_contrast: float
+    ci_low: float
+    ci_high: float
+    method: str
+    observer: str
+    n_images: int
+    m_alternatives: int
+    criterion_pc: float
+    note: str = ""
+
+    def to_dict(self) -> dict:
+        return asdict(self)
+
+
+@dataclass
+class CDCurve:
+    """Smooth contrast-detail curve log10 C = a + b·log10 d + c·(log10 d)²."""
+
+    a: float
+    b: float
+    c: float
+    diameter_range_mm: tuple[float, float]
+
+    def __call__(self, diameter_mm):
+        x = np.log10(np.asarray(diameter_mm, dtype=float))
+        return 10 ** (self.a + self.b * x + self.c * x * x)
+
+    def to_dict(self) -> dict:
+        return asdict(self)
+
+
+@dataclass
+class ThresholdCurve:
+    """Threshold contrast per diameter for one observer and method."""
+
+    points: list[ThresholdPoint]
+    method: str
+    observer: str
+    n_boot: int
+    seed: int | None
+    smooth: CDCurve | None = None
+    notes: list[str] = field(default_factory=list)
+
+    def to_frame(self) -> pd.DataFrame:
+        return pd.DataFrame([p.to_dict() for p in self.points])
+
+    def to_records(self) -> list[dict]:
+        return [p.to_dict() for p in self.points]
+
+    def at(self, diameter_mm: float) -> ThresholdPoint | None:
+        for p in self.points:
+            if np.isclose(p.diameter_mm, diameter_mm):
+                return p
+        return None
+
+
+# --------------------------------------------------------------------------- d′ method
+def _dprime_arrays(group: pd.DataFrame):
+    """Signal responses S (images × targets), background responses B (images × targets × M−1), contrasts."""
+    images = np.unique(group["image"].to_numpy())
+    targets = group.drop_duplicates("target").sort_values("contrast")
+    tids = targets["target"].to_numpy()
+    contrasts = targets["contrast"].to_numpy(float)
+    m = int(group["m_alternatives"].iloc[0])
+    if (group["m_alternatives"] != m).any():
+        raise LimenError(f"diameter {group['diameter_mm'].iloc[0]:g} mm mixes targets with different numbers of sites")
+    ii = pd.Index(images).get_indexer(group["image"])
+    jj = pd.Index(tids).get_indexer(group["target"])
+    S = np.full((images.size, tids.size), np.nan)
+    B = np.full((images.size, tids.size, m - 1), np.nan)
+    sig = group["is_signal"].to_numpy(bool)
+    resp = group["response"].to_numpy(float)
+    S[ii[sig], jj[sig]] = resp[sig]
+    bg_i, bg_j, bg_r = ii[~sig], jj[~sig], resp[~sig]
+    order = np.lexsort((bg_j, bg_i))
+    slot = np.zeros(order.size, dtype=int)
+    key = bg_i[order] * tids.size + bg_j[order]
+    starts = np.r_[0, np.flatnonzero(np.diff(key)) + 1]
+    for s, e in zip(starts, np.r_[starts[1:], key.size]):
+        slot[s:e] = np.arange(e - s)
+    B[bg_i[order], bg_j[order], slot] = bg_r[order]
+    if np.isnan(S).any() or np.isnan(B).any():
+        raise LimenError("responses table is incomplete: every image needs every site of every target")
+    return S, B, contrasts, m
+
+
+def _dprime_k(S, B, contrasts, W, dprime_t, local_factor=LOCAL_FIT_FACTOR):
+    """Slope k of d′ = k·C per resample.  W: (R, n_images) image draw counts."""
+    W = np.asarray(W, float)
+    n = W.sum(axis=1)                                   # (R,)
+    m1 = B.shape[2]
+    ms = (W @ S) / n[:, None]                           # (R, J) mean signal response
+    Bsum = B.sum(axis=2)
+    mb = (W @ Bsum) / (n[:, None] * m1)                 # (R, J) mean background response
+    J = S.shape[1]
+    if m1 >= 2:
+        # σ² from the spread of the non-signal sites within each image and target (the comparison an
+        # M-AFC decision makes); duplicated images in a resample repeat their terms without bias
+        Bc = B - B.mean(axis=2, keepdims=True)
+        ss = W @ (Bc ** 2).sum(axis=2).sum(axis=1)
+        df = n * J * (m1 - 1)
+    else:
+        # two sites only: pool over images instead; a resample's duplicates shrink the spread by (n−1)/n
+        ss_s = W @ (S ** 2) - n[:, None] * ms ** 2
+        ss_b = W @ (B ** 2).sum(axis=2) - n[:, None] * m1 * mb ** 2
+        ss = ss_s.sum(axis=1) + ss_b.sum(axis=1)
+        df = (n - 1) * (m1 + 1) * J
+    with np.errstate(invalid="ignore", divide="ignore"):
+        sigma = np.sqrt(np.maximum(ss, 0) / df)
+        d = (ms - mb) / sigma[:, None]                  # (R, J)
+        C = np.asarray(contrasts, float)
+        k = (d @ C) / (C @ C)
+        # refit near threshold: targets with C ≤ factor × first estimate (at least 3 targets)
+        ct0 = dprime_t / k
+        use = C[None, :] <= local_factor * ct0[:, None]
+        few = use.sum(axis=1) < 3
+        if few.any():
+            first3 = np.zeros_like(use[0])
+            first3[:3] = True
+            use[few] = first3
+        Cw = np.where(use, C[None, :], 0.0)
+        k2 = (d * Cw).sum(axis=1) / (Cw ** 2).sum(axis=1)
+    return k2, d[0] if d.shape[0] else None, sigma
+
+
+def dprime_thresholds(responses: pd.DataFrame, *, criterion_pc: float | None = None, n_boot: int = 1000,
+                      seed: int | None = 0, ci: float = 0.95) -> ThresholdCurve:
+    """Threshold contrast per diameter by the d′ method (see module docstring)."""
+    _check_responses(responses)
+    rng = np.random.default_rng(seed)
+    observer = str(responses["observer"].iloc[0])
+    points, notes = [], []
+    for diam, group in responses.groupby("diameter_mm", sort=True):
+        S, B, C, m = _dprime_arrays(group)
+        p = halfway_criterion(m) if criterion_pc is None else float(criterion_pc)
+        dt = dprime_for_pc(p, m)
+        n_img = S.shape[0]
+        k, _, _ = _dprime_k(S, B, C, np.ones((1, n_img)), dt)
+        est = dt / k[0] if k[0] > 0 else np.inf
+        note = ""
+        if n_img >= 2 and n_boot > 0:
+            W = rng.multinomial(n_img, np.full(n_img, 1.0 / n_img), size=n_boot)
+            kb, _, _ = _dprime_k(S, B, C, W, dt)
+            with np.errstate(divide="ignore"):
+                tb = np.where(kb > 0, dt / kb, np.inf)
+            lo, hi = percentile_ci(tb, ci)
+        else:
+            lo = hi = float("nan")
+            note = "one image: no bootstrap CI"
+        if not np.isfinite(est) or k[0] <= 0:
+            note = "no detectable signal at any contrast (d′ slope ≤ 0)"
+            est = float("nan")
+        points.append(ThresholdPoint(float(diam), float(est), float(lo), float(hi), "dprime", observer,
+                                     n_img, m, p, note))
+    return ThresholdCurve(points, "dprime", observer, n_boot, seed, smooth_curve(points), notes)
+
+
+# --------------------------------------------------------------------------- count method
+def count_thresholds(trials: pd.DataFrame, *, criterion_pc: float | None = None, n_boot: int = 1000,
+                     seed: int | None = 0, ci: float = 0.95, form: str = "mafc") -> ThresholdCurve:
+    """Threshold contrast per diameter by the count method from an M-AFC trials table."""
+    need = {"image", "target", "diameter_mm", "contrast", "correct", "m_alternatives", "reader"}
+    missing = need - set(trials.columns)
+    if missing:
+        raise LimenError(f"trials table lacks column(s) {', '.join(sorted(missing))}")
+    rng = np.random.default_rng(seed)
+    observer = str(trials["reader"].iloc[0])
+    points = []
+    for diam, g in trials.groupby("diameter_mm", sort=True):
+        m = int(g["m_alternatives"].iloc[0])
+        p = halfway_criterion(m) if criterion_pc is None else float(criterion_pc)
+        units = unit_counts(g["contrast"].to_numpy(float), g["correct"].to_numpy(float), g["image"].to_numpy())
+        n_img = units.n_units
+        res = bootstrap_threshold(units, n_boot if n_img >= 2 else 1, rng, m_alternatives=m, criterion_pc=p,
+                                  form=form, lapse=0.0, ci=ci)
+        note = res.note
+        lo, hi = (res.ci_low, res.ci_high) if n_img >= 2 else (float("nan"), float("nan"))
+        if n_img < 2:
+            note = "one image: no bootstrap CI"
+        points.append(ThresholdPoint(float(diam), float(res.estimate), float(lo), float(hi), "count", observer,
+                                     n_img, m, p, note))
+    return ThresholdCurve(points, "count", observer, n_boot, seed, smooth_curve(points))
+
+
+# --------------------------------------------------------------------------- smooth curve
+def smooth_curve(points: list[ThresholdPoint]) -> CDCurve | None:
+    """Fit log10 C_T = a + b·log10 d + c·(log10 d)² (weights from the CI widths when available)."""
+    pts = [p for p in points if np.isfinite(p.threshold_contrast) and p.threshold_contrast > 0]
+    if len(pts) < 3:
+        return None
+    x = np.log10([p.diameter_mm for p in pts])
+    y = np.log10([p.threshold_contrast for p in pts])
+    w = []
+    for p in pts:
+        if np.isfinite(p.ci_low) and np.isfinite(p.ci_high) and p.ci_low > 0 and p.ci_high > p.ci_low:
+            w.append(1.0 / max(np.log10(p.ci_high / p.ci_low) / 3.92, 0.01))
+        else:
+            w.append(1.0)
+    deg = 2 if len(pts) >= 4 else 1
+    coef = np.polyfit(x, y, deg, w=np.asarray(w))
+    c, b, a = (coef[0], coef[1], coef[2]) if deg == 2 else (0.0, coef[0], coef[1])
+    return CDCurve(float(a), float(b), float(c), (float(10 ** x.min()), float(10 ** x.max())))
+
+
+def _check_responses(df: pd.DataFrame) -> None:
+    need = {"image", "target", "diameter_mm", "contrast", "m_alternatives", "site", "is_signal", "response",
+            "observer"}
+    missing = need - set(df.columns)
+    if missing:
+        raise LimenError(f"responses table lacks column(s) {', '.join(sorted(missing))}")
+    if df.empty:
+        raise LimenError("responses table is empty")
+    if df["observer"].nunique() != 1:
+        raise LimenError("responses table mixes observers; score one observer at a time")
