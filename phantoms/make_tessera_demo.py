@@ -6,8 +6,8 @@ columns of contrasts (highest on the left), each target in a 12 mm cell with fou
 candidate sites on a 2 × 2 square 6 mm apart, one of which holds the disc
 (4-alternative forced choice).  Four corner fiducials and one larger orientation
 key below the lower-left fiducial let rotation, mirroring and magnification
-be recovered.  The contrasts of each row run in steps of ×1.4 from about 0.3× to
-6× a rough NPW model-observer threshold of the demo panels at 100 µGy, so that
+be recovered.  The contrasts of each row run in steps of ×1.5 from about 0.3× to
+11× a rough NPW model-observer threshold of the demo panels at 100 µGy, so that
 every row spans invisible to obvious for both demo panels.
 """
 
@@ -20,7 +20,7 @@ DIAMETERS_MM = [2.0, 1.0, 0.63, 0.4, 0.25, 0.16, 0.1, 0.08]
 ROUGH_NPW_THRESHOLD = {2.0: 0.00115, 1.0: 0.0023, 0.63: 0.0038, 0.4: 0.0062, 0.25: 0.0103,
                        0.16: 0.0178, 0.1: 0.036, 0.08: 0.039}
 N_CONTRASTS = 10
-STEP = 1.4
+STEP = 1.5
 START_FACTOR = 0.3
 CELL_MM = 12.0
 SITE_HALF_SPACING_MM = 3.0
