@@ -1,0 +1,329 @@
+"""Detector physics: conversion function, MTF, NNPS and DQE in one place.
+
+This module fits the conversion function from flat fields at several air kermas,
+holds the beam-quality table of q (photons per mm² per µGy), computes
+DQE(f) = MTF²(f) / (K · q · NNPS(f)), and gathers everything into
+:class:`DetectorMetrics` (what ``limen detector`` writes as ``detector.json``).
+The slanted-edge MTF lives in :mod:`scorer.mtf`, the NNPS in :mod:`scorer.nnps`.
+
+References
+----------
+.. [1] IEC 62220-1-1 (general radiography) and IEC 62220-1-2 (mammography),
+       *Determination of the detective quantum efficiency*: conversion function,
+       presampling MTF, NNPS, DQE(f) = MTF²(f) / (K · q · NNPS(f)).
+"""
+
+from __future__ import annotations
+
+import csv
+import io
+from dataclasses import dataclass, field
+from importlib import resources
+
+import numpy as np
+
+from .conversion import ConversionFunction
+from .errors import LimenError
+from .image import Image
+from .mtf import MTFResult, mean_mtf, measure_mtf
+from .nnps import NNPSResult, measure_nnps
+
+#: largest error of the fitted conversion function, as a fraction of the kerma, before
+#: the response is flagged non-linear (common practice)
+NONLINEARITY_TOLERANCE = 0.05
+#: smallest R² of the fitted conversion function before it is flagged (common practice)
+MIN_R_SQUARED = 0.99
+
+
+# ---------------------------------------------------------------- beam qualities
+
+def beam_qualities() -> dict[str, dict]:
+    """The shipped beam-quality table: name → {"q_per_mm2_ugy", "standard", "note"}.
+
+    General-radiography RQA qualities only (values from memory of IEC 62220-1-1);
+    mammography q values must be supplied by the user.
+    """
+    text = resources.files("scorer").joinpath("data/beam_qualities.csv").read_text(encoding="utf-8")
+    lines = [ln for ln in text.splitlines() if ln.strip() and not ln.lstrip().startswith("#")]
+    out = {}
+    for row in csv.DictReader(io.StringIO("\n".join(lines))):
+        out[row["beam"].strip().upper()] = {"q_per_mm2_ugy": float(row["q_per_mm2_ugy"]),
+                                            "standard": row["standard"], "note": row["note"]}
+    return out
+
+
+def q_for_beam(beam: str) -> float:
+    """q (photons per mm² per µGy) of a named beam quality, e.g. ``"RQA5"``."""
+    table = beam_qualities()
+    key = str(beam).strip().upper()
+    if key not in table:
+        raise LimenError(f"unknown beam quality {beam!r}; known: {', '.join(sorted(table))} "
+                         "(for mammography give q directly)", "--beam")
+    return table[key]["q_per_mm2_ugy"]
+
+
+# ---------------------------------------------------------------- conversion function
+
+@dataclass
+class LineFit:
+    kind: str
+    offset: float
+    gain: float
+    r_squared: float
+    max_relative_kerma_error: float
+
+    def to_dict(self) -> dict:
+        return dict(kind=self.kind, offset=self.offset, gain=self.gain, r_squared=self.r_squared,
+                    max_relative_kerma_error=self.max_relative_kerma_error)
+
+
+@dataclass
+class ConversionFit:
+    """Both fitted responses, the chosen one, and the non-linearity flag."""
+
+    kerma_ugy: np.ndarray
+    mean_pixel_value: np.ndarray
+    linear: LineFit
+    logarithmic: LineFit | None
+    kind: str
+    nonlinear: bool
+    note: str = ""
+
+    @property
+    def chosen(self) -> LineFit:
+        return self.linear if self.kind == "linear" else self.logarithmic  # type: ignore[return-value]
+
+    @property
+    def conversion(self) -> ConversionFunction:
+        """The chosen fit as the linearisation used everywhere else in Limen."""
+        c = self.chosen
+        return ConversionFunction(kind=c.kind, offset=c.offset, gain=c.gain,
+                                  source=f"fitted by limen detector ({c.kind}, R² = {c.r_squared:.5f})")
+
+    def to_dict(self) -> dict:
+        return {
+            "kind": self.kind, "offset": self.chosen.offset, "gain": self.chosen.gain,
+            "r_squared": self.chosen.r_squared, "nonlinear": self.nonlinear, "note": self.note,
+            "kerma_ugy": self.kerma_ugy.tolist(), "mean_pixel_value": self.mean_pixel_value.tolist(),
+            "linear": self.linear.to_dict(),
+            "logarithmic": None if self.logarithmic is None else self.logarithmic.to_dict(),
+        }
+
+
+def _line_fit(kind: str, x: np.ndarray, pv: np.ndarray, kerma: np.ndarray) -> LineFit:
+    gain, offset = np.polyfit(x, pv, 1)
+    pred = offset + gain * x
+    ss_res = float(np.sum((pv - pred) ** 2))
+    ss_tot = float(np.sum((pv - pv.mean()) ** 2))
+    r2 = 1.0 - ss_res / ss_tot if ss_tot > 0 else float("nan")
+    conv = ConversionFunction(kind=kind, offset=float(offset), gain=float(gain))
+    with np.errstate(over="ignore", invalid="ignore", divide="ignore"):
+        back = conv.to_kerma_ugy(pv)
+        err = float(np.max(np.abs(back - kerma) / kerma))
+    return LineFit(kind, float(offset), float(gain), float(r2), err)
+
+
+def fit_conversion(kerma_ugy, mean_pixel_value, *, kind: str | None = None,
+                   tolerance: float = NONLINEARITY_TOLERANCE, path=None) -> ConversionFit:
+    """Fit linear (PV = o + g·K) and logarithmic (PV = o + g·ln K) responses.
+
+    Parameters
+    ----------
+    kerma_ugy : air kerma at the detector of each flat field, µGy (> 0)
+    mean_pixel_value : mean stored pixel value of each (central ROI)
+    kind : force ``"linear"`` or ``"logarithmic"``; by default the one with the
+        smaller largest kerma error is chosen
+    tolerance : largest relative kerma error of the chosen fit before ``nonlinear``
+        is set (R² below 0.99 sets it too)
+
+    Returns
+    -------
+    ConversionFit
+    """
+    k = np.asarray(kerma_ugy, dtype=float).ravel()
+    pv = np.asarray(mean_pixel_value, dtype=float).ravel()
+    if k.size != pv.size:
+        raise LimenError("kerma list and flat-field list differ in length", path)
+    if np.unique(k).size < 2:
+        raise LimenError("the conversion function needs flat fields at two or more different air kermas", path)
+    if np.any(~np.isfinite(k)) or np.any(k <= 0):
+        raise LimenError("air kermas must be positive numbers (µGy)", path)
+    lin = _line_fit("linear", k, pv, k)
+    log = _line_fit("logarithmic", np.log(k), pv, k)
+    if kind is None:
+        kind = "linear" if lin.max_relative_kerma_error <= log.max_relative_kerma_error else "logarithmic"
+    elif kind not in ("linear", "logarithmic"):
+        raise LimenError(f"conversion kind must be linear or logarithmic, got {kind!r}", path)
+    chosen = lin if kind == "linear" else log
+    nonlinear = bool(chosen.max_relative_kerma_error > tolerance or not (chosen.r_squared >= MIN_R_SQUARED))
+    note = ""
+    if k.size < 3:
+        note = "only two air kermas: R² is 1 by construction and linearity is not tested"
+    elif nonlinear:
+        note = (f"response not {kind} within {tolerance:.0%} (largest kerma error "
+                f"{chosen.max_relative_kerma_error:.1%}, R² = {chosen.r_squared:.4f})")
+    return ConversionFit(k, pv, lin, log, kind, nonlinear, note)
+
+
+def central_mean(pixels, spacing_mm, side_mm: float = 10.0) -> float:
+    """Mean of a central square ROI of ``side_mm`` (at least 8 × 8 pixels)."""
+    a = np.asarray(pixels)
+    h = max(8, int(round(side_mm / spacing_mm[0])))
+    w = max(8, int(round(side_mm / spacing_mm[1])))
+    h, w = min(h, a.shape[0]), min(w, a.shape[1])
+    r0, c0 = (a.shape[0] - h) // 2, (a.shape[1] - w) // 2
+    return float(np.mean(a[r0:r0 + h, c0:c0 + w], dtype=np.float64))
+
+
+# ---------------------------------------------------------------- DQE
+
+@dataclass
+class DQEResult:
+    frequency_per_mm: np.ndarray
+    value: np.ndarray
+    by_direction: dict[str, np.ndarray]
+    kerma_ugy: float
+    q_per_mm2_ugy: float
+
+    def at(self, frequency_per_mm):
+        return np.interp(frequency_per_mm, self.frequency_per_mm, self.value, left=np.nan, right=np.nan)
+
+    def to_dict(self) -> dict:
+        return {"frequency_per_mm": self.frequency_per_mm.tolist(), "value": self.value.tolist(),
+                "by_direction": {k: v.tolist() for k, v in self.by_direction.items()},
+                "kerma_ugy": self.kerma_ugy, "q_per_mm2_ugy": self.q_per_mm2_ugy}
+
+
+def compute_dqe(mtf: MTFResult, nnps: NNPSResult, kerma_ugy: float | None, q_per_mm2_ugy: float | None,
+                mtf_by_direction: dict[str, MTFResult] | None = None) -> DQEResult:
+    """DQE(f) = MTF²(f) / (K · q · NNPS(f)) on the NNPS frequency grid (up to Nyquist).
+
+    Refuses (LimenError) without a positive air kerma K (µGy) and q (per mm² per µGy):
+    the DQE is never computed from a guessed beam.
+
+    The headline DQE uses ``mtf`` (mean of the orientations measured) with the mean
+    of the two NNPS axis cuts; per direction, the x (y) MTF goes with the x (y) cut.
+    """
+    if kerma_ugy is None or not np.isfinite(kerma_ugy) or kerma_ugy <= 0:
+        raise LimenError("DQE needs the air kerma at the detector (--kerma-ugy, µGy > 0)", "--kerma-ugy")
+    if q_per_mm2_ugy is None or not np.isfinite(q_per_mm2_ugy) or q_per_mm2_ugy <= 0:
+        raise LimenError("DQE needs q, photons per mm² per µGy (--q, or --beam for an RQA quality)", "--q")
+    f = nnps.frequency_per_mm
+    kq = float(kerma_ugy) * float(q_per_mm2_ugy)
+    value = mtf.at(f) ** 2 / (kq * nnps.value_mm2)
+    by_dir = {}
+    for d, m in (mtf_by_direction or {}).items():
+        cut = nnps.x_mm2 if d == "x" else nnps.y_mm2
+        by_dir[d] = m.at(f) ** 2 / (kq * cut)
+    return DQEResult(f, value, by_dir, float(kerma_ugy), float(q_per_mm2_ugy))
+
+
+# ---------------------------------------------------------------- everything together
+
+@dataclass
+class DetectorMetrics:
+    """What one ``limen detector`` run measured."""
+
+    mtf: MTFResult | None
+    mtf_by_direction: dict[str, MTFResult]
+    nnps: NNPSResult | None
+    dqe: DQEResult | None
+    conversion: dict | None
+    kerma_ugy: float | None
+    q_per_mm2_ugy: float | None
+    beam: str | None
+    pixel_spacing_mm: tuple[float, float] | None
+    inputs: dict = field(default_factory=dict)
+    warnings: list[str] = field(default_factory=list)
+    predicted: list[dict] | None = None
+
+    @property
+    def edge_angle_deg(self):
+        if not self.mtf_by_direction:
+            return None
+        return {d: m.edge_angle_deg for d, m in self.mtf_by_direction.items()}
+
+    def to_dict(self) -> dict:
+        mtf = None
+        if self.mtf is not None:
+            mtf = self.mtf.to_dict()
+            mtf["by_direction"] = {d: {"frequency_per_mm": m.frequency_per_mm.tolist(), "value": m.value.tolist(),
+                                       "edge_angle_deg": m.edge_angle_deg}
+                                   for d, m in self.mtf_by_direction.items()}
+        return {
+            "mtf": mtf,
+            "mtf_extended": None if self.mtf is None else {
+                "frequency_per_mm": self.mtf.frequency_ext_per_mm.tolist(),
+                "value": self.mtf.value_ext.tolist(),
+                "note": "presampling MTF up to 2 × Nyquist, used for the aliasing terms of the prediction"},
+            "nnps": None if self.nnps is None else self.nnps.to_dict(),
+            "dqe": None if self.dqe is None else self.dqe.to_dict(),
+            "conversion": self.conversion,
+            "edge_angle_deg": self.edge_angle_deg,
+            "kerma_ugy": self.kerma_ugy,
+            "q_per_mm2_ugy": self.q_per_mm2_ugy,
+            "beam": self.beam,
+            "pixel_spacing_mm": None if self.pixel_spacing_mm is None else list(self.pixel_spacing_mm),
+            "nyquist_per_mm": None if self.pixel_spacing_mm is None else 0.5 / float(np.sqrt(
+                self.pixel_spacing_mm[0] * self.pixel_spacing_mm[1])),
+            "predicted": self.predicted,
+            "inputs": self.inputs,
+            "warnings": list(self.warnings),
+        }
+
+
+def _spacing(images: list[Image]) -> tuple[float, float] | None:
+    if not images:
+        return None
+    s0 = tuple(float(v) for v in images[0].spacing_mm)
+    for im in images[1:]:
+        if not np.allclose(im.spacing_mm, s0, rtol=1e-4):
+            raise LimenError(f"pixel spacing {tuple(im.spacing_mm)} mm differs from {s0} mm of the other images",
+                             im.metadata.source_path or None)
+    return s0  # type: ignore[return-value]
+
+
+def measure_detector(flats: list[Image] = (), edges: list[Image] = (), *, kerma_ugy: float | None = None,
+                     q_per_mm2_ugy: float | None = None, beam: str | None = None,
+                     conversion: dict | None = None, require_dqe: bool = False,
+                     roi_px: int = 256) -> DetectorMetrics:
+    """MTF from the edge images, NNPS from the flat fields, and the DQE when K and q are known.
+
+    Images must already be linear in air kerma (a conversion function applied by
+    :func:`scorer.io.load_image`).  Edges of the same orientation are averaged; the
+    headline MTF is the mean of the orientations measured.  The DQE is computed
+    only when ``kerma_ugy`` and q (or ``beam``) are given; with ``require_dqe`` their
+    absence is an error.
+    """
+    flats, edges = list(flats), list(edges)
+    if not flats and not edges:
+        raise LimenError("no images: give flat fields (--flat) and/or edge images (--edge)")
+    if beam is not None and q_per_mm2_ugy is None:
+        q_per_mm2_ugy = q_for_beam(beam)
+    spacing = _spacing(flats + edges)
+    warnings: list[str] = []
+    groups: dict[str, list[MTFResult]] = {}
+    for im in edges:
+        r = measure_mtf(im.pixels, im.spacing_mm, path=im.metadata.source_path or None)
+        groups.setdefault(r.direction, []).append(r)
+        warnings += [f"{im.metadata.source_path or 'edge'}: {w}" for w in r.warnings]
+    by_dir = {d: mean_mtf(rs) for d, rs in sorted(groups.items())}
+    mtf = None
+    if by_dir:
+        mtf = mean_mtf(list(by_dir.values()), direction="mean" if len(by_dir) > 1 else None)
+    nnps = None
+    if flats:
+        nnps = measure_nnps([im.pixels for im in flats], spacing, roi_px=roi_px,
+                            paths=[im.metadata.source_path or None for im in flats])
+        warnings += nnps.warnings
+    dqe = None
+    if mtf is not None and nnps is not None and (require_dqe or (kerma_ugy is not None and q_per_mm2_ugy is not None)):
+        dqe = compute_dqe(mtf, nnps, kerma_ugy, q_per_mm2_ugy, by_dir)
+    elif require_dqe:
+        raise LimenError("DQE needs both an edge image (--edge) and flat fields (--flat)")
+    inputs = {"flat": [im.metadata.source_path for im in flats], "edge": [im.metadata.source_path for im in edges],
+              "flat_sha256": [im.metadata.content_sha256 for im in flats],
+              "edge_sha256": [im.metadata.content_sha256 for im in edges]}
+    return DetectorMetrics(mtf=mtf, mtf_by_direction=by_dir, nnps=nnps, dqe=dqe, conversion=conversion,
+                           kerma_ugy=kerma_ugy, q_per_mm2_ugy=q_per_mm2_ugy, beam=beam,
+                           pixel_spacing_mm=spacing, inputs=inputs, warnings=warnings)
