@@ -1,0 +1,285 @@
+"""``limen detector``: conversion function, presampling MTF, NNPS and DQE of a flat panel."""
+
+from __future__ import annotations
+
+import csv
+import sys
+import warnings
+from pathlib import Path
+
+import click
+import numpy as np
+
+from ..conversion import load_conversion
+from ..detector import central_mean, fit_conversion, measure_detector, q_for_beam
+from ..errors import LimenError
+from ..detector_report import summary_rows
+from ..report import dumps, write_json
+
+#: options that take every following file name up to the next option (``--flat a.dcm b.dcm``)
+GREEDY_OPTIONS = ("--flat", "--edge")
+
+
+class GreedyFilesCommand(click.Command):
+    """A command whose file-list options accept several values after one flag.
+
+    ``--flat a b c --edge d`` is rewritten to ``--flat a --flat b --flat c --edge d``
+    before click parses it, so shell globs (``--flat flats/*.dcm``) work; repeating
+    the flag works too.
+    """
+
+    greedy = GREEDY_OPTIONS
+
+    def parse_args(self, ctx, args):
+        out: list[str] = []
+        i = 0
+        while i < len(args):
+            tok = args[i]
+            name, eq, val = tok.partition("=")
+            if name in self.greedy:
+                if eq:
+                    out += [name, val]
+                i += 1
+                while i < len(args) and not args[i].startswith("-"):
+                    out += [name, args[i]]
+                    i += 1
+                continue
+            if tok == "--":
+                out += args[i:]
+                break
+            out.append(tok)
+            i += 1
+        return super().parse_args(ctx, out)
+
+
+def _parse_diameters(text: str | None) -> list[float] | None:
+    if not text:
+        return None
+    try:
+        vals = [float(v) for v in text.replace(";", ",").split(",") if v.strip()]
+    except ValueError:
+        raise LimenError(f"--diameters must be comma-separated numbers in mm, got {text!r}", "--diameters") from None
+    if not vals or any(not v > 0 for v in vals):
+        raise LimenError(f"--diameters must be positive numbers in mm, got {text!r}", "--diameters")
+    return vals
+
+
+def diameters_from_options(diameters: str | None, layout_file: str | None) -> list[float] | None:
+    """Diameters (mm) from ``--diameters`` or a layout file's targets."""
+    d = _parse_diameters(diameters)
+    if d is None and layout_file:
+        from ..layout import load_layout
+
+        d = [float(v) for v in load_layout(layout_file).diameters_mm]
+    return d
+
+
+def _read_kerma_csv(path: Path) -> list[tuple[Path, float]]:
+    """CSV with columns ``path,kerma_ugy`` (paths relative to the CSV's folder)."""
+    try:
+        text = path.read_text(encoding="utf-8")
+    except OSError as exc:
+        raise LimenError(f"cannot read kerma CSV ({exc.strerror or exc})", path) from None
+    rows = list(csv.DictReader(ln for ln in text.splitlines() if ln.strip() and not ln.startswith("#")))
+    if not rows or not {"path", "kerma_ugy"} <= set(rows[0]):
+        raise LimenError("kerma CSV needs the columns path,kerma_ugy", path)
+    out = []
+    for n, r in enumerate(rows, start=2):
+        try:
+            k = float(r["kerma_ugy"])
+        except (TypeError, ValueError):
+            raise LimenError(f"line {n}: kerma_ugy {r['kerma_ugy']!r} is not a number", path) from None
+        p = Path(r["path"].strip())
+        out.append((p if p.is_absolute() else path.parent / p, k))
+    return out
+
+
+def load_images_warn(paths, *, spacing, conversion, role: str):
+    """Load images, turning LimenWarnings into one stderr line each; FOR PRESENTATION flats get the NNPS warning."""
+    from ..io import load_image
+
+    images = []
+    for p in paths:
+        with warnings.catch_warnings(record=True) as caught:
+            warnings.simplefilter("always")
+            im = load_image(p, pixel_spacing_mm=spacing, conversion=conversion)
+        shown = set()
+        for w in caught:
+            text = str(w.message)
+            if text not in shown:
+                shown.add(text)
+                click.echo(f"warning: {text}", err=True)
+        for text in im.metadata.warnings:
+            if text not in shown and not any(text in s for s in shown):
+                shown.add(text)
+                click.echo(f"warning: {p}: {text}", err=True)
+        if (im.metadata.presentation_intent or "").upper() == "FOR PRESENTATION":
+            if role == "flat":
+                msg = (f"{p}: flat field is FOR PRESENTATION (processed for display): the NNPS of a processed "
+                       "image is meaningless; use FOR PROCESSING images")
+            else:
+                msg = (f"{p}: edge image is FOR PRESENTATION (processed for display): its MTF includes the "
+                       "processing and is not the detector's presampling MTF")
+            click.echo(f"warning: {msg}", err=True)
+            im.metadata.warnings.append(msg)
+        images.append(im)
+    return images
+
+
+@click.command("detector", cls=GreedyFilesCommand)
+@click.option("--flat", "flat_files", multiple=True, type=click.Path(dir_okay=False),
+              help="Flat-field image(s) at one air kerma, for the NNPS (several files after one flag).")
+@click.option("--edge", "edge_files", multiple=True, type=click.Path(dir_okay=False),
+              help="Slanted-edge image(s); one near-vertical and one near-horizontal give both orientations.")
+@click.option("--kerma-ugy", type=float, default=None, help="Air kerma at the detector for the flat fields (µGy).")
+@click.option("--q", "q_per_mm2_ugy", type=float, default=None,
+              help="Photon fluence per air kerma of the beam, per mm² per µGy (required for mammography beams).")
+@click.option("--beam", default=None, help="Beam quality with a tabulated q: RQA3, RQA5, RQA7 or RQA9.")
+@click.option("--pixel-spacing", "pixel_spacing_mm", type=float, default=None,
+              help="Pixel spacing in mm (needed for TIFF/PNG/NPY; overrides DICOM).")
+@click.option("--conversion", "conversion_file", type=click.Path(dir_okay=False), default=None,
+              help="Conversion function (TOML or JSON) to linearise the images.")
+@click.option("--fit-conversion", "kerma_csv", type=click.Path(dir_okay=False), default=None,
+              help="CSV path,kerma_ugy of flat fields at several kermas: fit the conversion function and use it.")
+@click.option("--diameters", default=None, help="Disc diameters (mm, comma-separated) for predicted thresholds.")
+@click.option("--layout", "layout_file", type=click.Path(dir_okay=False), default=None,
+              help="Phantom layout whose diameters get predicted thresholds.")
+@click.option("--alternatives", "m_alternatives", type=click.IntRange(2, 64), default=4, show_default=True,
+              help="M of the M-AFC criterion used for predicted thresholds.")
+@click.option("--json", "as_json", is_flag=True, help="Print one JSON object on stdout.")
+@click.option("--out", "out_dir", type=click.Path(file_okay=False), default=None,
+              help="Write detector.json, detector.csv, nnps_2d.npy and detector.html here.")
+def detector(flat_files, edge_files, kerma_ugy, q_per_mm2_ugy, beam, pixel_spacing_mm, conversion_file,
+             kerma_csv, diameters, layout_file, m_alternatives, as_json, out_dir):
+    """Measure a detector as IEC 62220-1 describes: conversion function, MTF, NNPS and DQE.
+
+    Flat fields give the NNPS, slanted-edge images the presampling MTF; the DQE
+    needs the air kerma (--kerma-ugy) and q (--q, or --beam for an RQA quality).
+    """
+    if not flat_files and not edge_files and not kerma_csv:
+        raise LimenError("no images: give flat fields (--flat FILES) and/or edge images (--edge FILES)")
+    if q_per_mm2_ugy is not None and beam is not None:
+        raise LimenError("give either --q or --beam, not both", "--q")
+    if beam is not None:
+        q_per_mm2_ugy = q_for_beam(beam)
+    if q_per_mm2_ugy is not None and not q_per_mm2_ugy > 0:
+        raise LimenError(f"q must be positive, got {q_per_mm2_ugy}", "--q")
+    if kerma_ugy is not None and not kerma_ugy > 0:
+        raise LimenError(f"air kerma must be positive, got {kerma_ugy}", "--kerma-ugy")
+    if (kerma_ugy is None) != (q_per_mm2_ugy is None):
+        missing = "--q or --beam" if q_per_mm2_ugy is None else "--kerma-ugy"
+        raise LimenError(f"DQE needs both the air kerma and q: {missing} missing", missing.split()[0])
+    if conversion_file and kerma_csv:
+        raise LimenError("give either --conversion or --fit-conversion, not both", "--conversion")
+    diam = diameters_from_options(diameters, layout_file)
+
+    conv_fn = None
+    conv_dict = None
+    if conversion_file:
+        conv_fn = load_conversion(conversion_file)
+        conv_dict = conv_fn.to_dict()
+    elif kerma_csv:
+        entries = _read_kerma_csv(Path(kerma_csv))
+        raw = load_images_warn([p for p, _ in entries], spacing=pixel_spacing_mm, conversion=None, role="flat")
+        fit = fit_conversion([k for _, k in entries], [central_mean(im.pixels, im.spacing_mm) for im in raw],
+                             path=kerma_csv)
+        conv_fn = fit.conversion
+        conv_dict = fit.to_dict()
+        if fit.nonlinear:
+            click.echo(f"warning: {kerma_csv}: {fit.note}", err=True)
+
+    spacing = pixel_spacing_mm
+    flats = load_images_warn(flat_files, spacing=spacing, conversion=conv_fn, role="flat")
+    edges = load_images_warn(edge_files, spacing=spacing, conversion=conv_fn, role="edge")
+    notes = []
+    if conv_fn is None and (flats or edges):
+        notes.append("no conversion function given: pixel values are taken as proportional to air kerma "
+                     "(zero offset); give --conversion or --fit-conversion for raw images")
+        click.echo(f"warning: {notes[-1]}", err=True)
+    if not flats and not edges:
+        metrics = None
+    else:
+        metrics = measure_detector(flats, edges, kerma_ugy=kerma_ugy, q_per_mm2_ugy=q_per_mm2_ugy, beam=beam,
+                                   conversion=conv_dict)
+        metrics.warnings = notes + [w for im in flats + edges for w in im.metadata.warnings] + metrics.warnings
+        if metrics.dqe is None and metrics.mtf is not None and metrics.nnps is not None:
+            click.echo("note: DQE not computed: give --kerma-ugy and --q (or --beam)", err=True)
+        if diam and metrics.mtf is not None and metrics.nnps is not None:
+            from ..predict import predict_from_detector
+
+            metrics.predicted = [p.to_dict() for p in
+                                 predict_from_detector(metrics.to_dict(), diam, m_alternatives=m_alternatives)]
+        elif diam:
+            raise LimenError("predicted thresholds need both flat fields (--flat) and an edge image (--edge)",
+                             "--diameters")
+    result = metrics.to_dict() if metrics is not None else {
+        "mtf": None, "mtf_extended": None, "nnps": None, "dqe": None, "conversion": conv_dict,
+        "edge_angle_deg": None, "predicted": None, "warnings": notes}
+
+    if out_dir:
+        out = Path(out_dir)
+        out.mkdir(parents=True, exist_ok=True)
+        write_json(out / "detector.json", _clean(result))
+        write_csv(out / "detector.csv", result)
+        if metrics is not None and metrics.nnps is not None:
+            np.save(out / "nnps_2d.npy", metrics.nnps.nnps_2d_mm2)
+        from ..detector_report import detector_report_html
+
+        (out / "detector.html").write_text(detector_report_html(result, metrics), encoding="utf-8")
+    if as_json:
+        click.echo(dumps(result))
+    else:
+        for k, v in summary_rows(result):
+            click.echo(f"{k:<32} {v}")
+        if result.get("predicted"):
+            click.echo("predicted threshold contrast (%):")
+            for p in result["predicted"]:
+                click.echo(f"  {p['observer']:<5} {p['diameter_mm']:>6.3g} mm  {100 * p['threshold_contrast']:.3g}")
+        if out_dir:
+            click.echo(f"wrote detector.json, detector.csv and detector.html to {out_dir}/")
+
+
+def _clean(obj):
+    from ..report import clean_nans
+
+    return clean_nans(obj)
+
+
+def write_csv(path: Path, result: dict) -> None:
+    """One row per NNPS frequency (up to Nyquist): MTF per direction and mean, NNPS cuts, DQE."""
+    nn = result.get("nnps")
+    mtf = result.get("mtf")
+    if nn:
+        f = np.asarray(nn["frequency_per_mm"])
+    elif mtf:
+        f = np.asarray(mtf["frequency_per_mm"])
+    else:
+        Path(path).write_text("frequency_per_mm\n", encoding="utf-8")
+        return
+    cols: dict[str, np.ndarray] = {"frequency_per_mm": f}
+
+    def interp(curve_f, curve_v):
+        return np.interp(f, curve_f, curve_v, left=np.nan, right=np.nan)
+
+    if mtf:
+        for d, m in (mtf.get("by_direction") or {}).items():
+            cols[f"mtf_{d}"] = interp(m["frequency_per_mm"], m["value"])
+        cols["mtf"] = interp(mtf["frequency_per_mm"], mtf["value"])
+    if nn:
+        cols["nnps_x_mm2"] = np.asarray(nn["x_mm2"])
+        cols["nnps_y_mm2"] = np.asarray(nn["y_mm2"])
+        cols["nnps_mm2"] = np.asarray(nn["value_mm2"])
+    if result.get("dqe"):
+        q = result["dqe"]
+        for d, v in (q.get("by_direction") or {}).items():
+            cols[f"dqe_{d}"] = interp(q["frequency_per_mm"], v)
+        cols["dqe"] = interp(q["frequency_per_mm"], q["value"])
+    with open(path, "w", newline="", encoding="utf-8") as fh:
+        w = csv.writer(fh)
+        w.writerow(list(cols))
+        for i in range(len(f)):
+            w.writerow(["" if not np.isfinite(c[i]) else f"{c[i]:.6g}" for c in cols.values()])
+
+
+if __name__ == "__main__":  # pragma: no cover
+    detector(sys.argv[1:])

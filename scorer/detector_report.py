@@ -1,0 +1,226 @@
+"""HTML reports for ``limen detector`` and ``limen compare-detectors`` (via :func:`scorer.report.html_page`)."""
+
+from __future__ import annotations
+
+import html
+
+import numpy as np
+
+from .report import figure_to_svg, html_page, table_html
+
+
+def summary_rows(d: dict) -> list[tuple[str, str]]:
+    """(quantity, value) lines summarising a detector JSON (printed by the CLI, tabled in the report)."""
+    rows = []
+    nyq = d.get("nyquist_per_mm")
+    if d.get("mtf"):
+        m = d["mtf"]
+        f, v = np.asarray(m["frequency_per_mm"]), np.asarray(m["value"])
+        for x in (0.5, 1, 2, 5):
+            if x <= f.max():
+                rows.append((f"MTF at {x:g} /mm", f"{np.interp(x, f, v):.3f}"))
+        if nyq:
+            rows.append((f"MTF at Nyquist ({nyq:.2f} /mm)", f"{np.interp(nyq, f, v):.3f}"))
+        rows.append(("edge angle", ", ".join(f"{k}: {a:.2f}°" for k, a in (d.get("edge_angle_deg") or {}).items())))
+    if d.get("nnps"):
+        n = d["nnps"]
+        f, v = np.asarray(n["frequency_per_mm"]), np.asarray(n["value_mm2"])
+        for x in (0.5, 2):
+            rows.append((f"NNPS at {x:g} /mm", f"{np.interp(x, f, v):.3e} mm²"))
+        rows.append(("NNPS ROIs", f"{n['n_rois']} from {n['n_images']} image(s), "
+                                  f"±{100 * n['relative_uncertainty']:.1f} % per frequency"))
+    if d.get("dqe"):
+        q = d["dqe"]
+        f, v = np.asarray(q["frequency_per_mm"]), np.asarray(q["value"])
+        for x in (0.5, 2):
+            rows.append((f"DQE at {x:g} /mm", f"{np.interp(x, f, v):.3f}"))
+    if d.get("conversion"):
+        c = d["conversion"]
+        rows.append(("conversion", f"{c.get('kind')} offset {c.get('offset'):.4g} gain {c.get('gain'):.4g}"
+                                   + (f" R² {c['r_squared']:.5f}" if c.get("r_squared") is not None else "")
+                                   + (" NON-LINEAR" if c.get("nonlinear") else "")))
+    return rows
+
+
+def _plt():
+    import matplotlib
+
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+
+    return plt
+
+
+def _fig(title: str, xlabel: str, ylabel: str, logy: bool = False):
+    plt = _plt()
+    fig, ax = plt.subplots(figsize=(6.4, 3.8))
+    ax.set_title(title)
+    ax.set_xlabel(xlabel)
+    ax.set_ylabel(ylabel)
+    if logy:
+        ax.set_yscale("log")
+    ax.grid(True, alpha=0.3)
+    return fig, ax
+
+
+def _figure(svg: str, caption: str) -> str:
+    return f"<figure>{svg}<figcaption>{html.escape(caption)}</figcaption></figure>"
+
+
+def _mtf_plot(curves: dict[str, dict], nyquist: dict[str, float | None]) -> str:
+    fig, ax = _fig("Presampling MTF", "spatial frequency (cycles/mm)", "MTF")
+    for label, m in curves.items():
+        ax.plot(m["frequency_per_mm"], m["value"], label=label)
+    for label, n in nyquist.items():
+        if n:
+            ax.axvline(n, ls=":", color="grey")
+    ax.set_ylim(0, 1.05)
+    ax.legend()
+    return figure_to_svg(fig)
+
+
+def _nnps_plot(curves: dict[str, tuple]) -> str:
+    fig, ax = _fig("Normalised noise power spectrum", "spatial frequency (cycles/mm)", "NNPS (mm²)", logy=True)
+    for label, (f, v) in curves.items():
+        ax.plot(f, v, label=label)
+    ax.legend()
+    return figure_to_svg(fig)
+
+
+def _dqe_plot(curves: dict[str, tuple]) -> str:
+    fig, ax = _fig("Detective quantum efficiency", "spatial frequency (cycles/mm)", "DQE")
+    for label, (f, v) in curves.items():
+        ax.plot(f, v, label=label)
+    ax.set_ylim(0, 1.05)
+    ax.legend()
+    return figure_to_svg(fig)
+
+
+def _nnps_2d_plot(nnps) -> str:
+    plt = _plt()
+    fv, fu = nnps.frequency_2d_per_mm
+    fig, ax = plt.subplots(figsize=(5.0, 4.4))
+    img = np.log10(np.clip(nnps.nnps_2d_mm2, 1e-30, None))
+    im = ax.imshow(img, extent=(fu[0], fu[-1], fv[-1], fv[0]), cmap="viridis")
+    ax.set_xlabel("u (cycles/mm)")
+    ax.set_ylabel("v (cycles/mm)")
+    ax.set_title("2-D NNPS, log10(mm²)")
+    fig.colorbar(im, ax=ax)
+    return figure_to_svg(fig)
+
+
+def _thresholds_plot(series: dict[str, list[dict]]) -> str:
+    fig, ax = _fig("Threshold contrast", "disc diameter (mm)", "threshold contrast (%)", logy=True)
+    ax.set_xscale("log")
+    for label, rows in series.items():
+        rows = sorted((r for r in rows if r.get("threshold_contrast") is not None), key=lambda r: r["diameter_mm"])
+        if not rows:
+            continue
+        ls = "--" if "predicted" in label else "-"
+        ax.plot([r["diameter_mm"] for r in rows], [100 * r["threshold_contrast"] for r in rows], ls, marker="o",
+                label=label)
+    ax.legend(fontsize=8)
+    return figure_to_svg(fig)
+
+
+_METHOD = (
+    "<p>Presampling MTF by the slanted-edge method (edge and angle found from the image; pixels projected on "
+    "the edge normal into bins of a quarter pixel; central-difference LSF in a Tukey window; |FFT| normalised "
+    "at zero frequency and corrected for the bin average and the finite difference). NNPS from 256 × 256 ROIs "
+    "overlapping by half, each detrended with a 2-D second-order polynomial; 1-D cuts average 7 frequency "
+    "rows each side of an axis, the axis excluded. DQE(f) = MTF²(f) / (K·q·NNPS(f)). After IEC 62220-1-1 and "
+    "62220-1-2; results are not a compliance test of either standard.</p>")
+
+
+def detector_report_html(result: dict, metrics=None, title: str = "Limen detector measurement") -> str:
+    """The ``limen detector`` report: summary table, MTF, NNPS (1-D and 2-D), DQE, conversion, predictions."""
+    sections = [("Summary", table_html([{"quantity": k, "value": v} for k, v in summary_rows(result)],
+                                       left=("quantity", "value")))]
+    if result.get("warnings"):
+        sections.append(("Warnings", "<ul>" + "".join(f"<li>{html.escape(w)}</li>" for w in result["warnings"])
+                         + "</ul>"))
+    nyq = result.get("nyquist_per_mm")
+    if result.get("mtf"):
+        m = result["mtf"]
+        curves = {f"{d} direction": c for d, c in (m.get("by_direction") or {}).items()}
+        if len(curves) != 1:
+            curves["mean"] = m
+        sections.append(("MTF", _figure(_mtf_plot(curves, {"": nyq}),
+                                        "Presampling MTF up to 1.1 × Nyquist (dotted line: Nyquist).")))
+    if result.get("nnps"):
+        n = result["nnps"]
+        body = _figure(_nnps_plot({"x cut": (n["frequency_per_mm"], n["x_mm2"]),
+                                   "y cut": (n["frequency_per_mm"], n["y_mm2"]),
+                                   "radial average": (n["radial_frequency_per_mm"], n["radial_mm2"])}),
+                       f"NNPS from {n['n_rois']} ROIs of {n['n_images']} flat field(s); relative standard error "
+                       f"≈ {100 * n['relative_uncertainty']:.1f} % per frequency.")
+        if metrics is not None and getattr(metrics, "nnps", None) is not None:
+            body += _figure(_nnps_2d_plot(metrics.nnps), "2-D NNPS (zero frequency at the centre).")
+        sections.append(("NNPS", body))
+    if result.get("dqe"):
+        q = result["dqe"]
+        curves = {f"{d} direction": (q["frequency_per_mm"], v) for d, v in (q.get("by_direction") or {}).items()}
+        curves["headline"] = (q["frequency_per_mm"], q["value"])
+        sections.append(("DQE", _figure(_dqe_plot(curves),
+                                        f"K = {q['kerma_ugy']:g} µGy, q = {q['q_per_mm2_ugy']:g} per mm² per µGy.")))
+    else:
+        sections.append(("DQE", "<p>Not computed: the DQE needs an edge image, flat fields, the air kerma K and "
+                                "q of the beam; Limen does not guess them.</p>"))
+    if result.get("conversion"):
+        c = result["conversion"]
+        rows = []
+        for kind in ("linear", "logarithmic"):
+            if isinstance(c.get(kind), dict):
+                rows.append(c[kind])
+        body = table_html(rows) if rows else table_html([{k: v for k, v in c.items() if not isinstance(v, (list, dict))}])
+        if c.get("nonlinear"):
+            body += f"<p class='fail'>{html.escape(c.get('note') or 'non-linear response')}</p>"
+        sections.append(("Conversion function", body))
+    if result.get("predicted"):
+        sections.append(("Predicted threshold contrast",
+                         _figure(_thresholds_plot(_by_observer(result["predicted"], "predicted")),
+                                 "From the MTF and NNPS (NPW/NPWE, ICRU Report 54 Fourier form).")
+                         + table_html(result["predicted"], columns=["observer", "diameter_mm", "threshold_contrast",
+                                                                     "dprime_per_unit_contrast", "criterion_pc",
+                                                                     "m_alternatives"], left=("observer",))))
+    sections.append(("Method", _METHOD))
+    return html_page(title, sections, meta={"inputs": result.get("inputs")})
+
+
+def _by_observer(rows: list[dict], prefix: str) -> dict[str, list[dict]]:
+    out: dict[str, list[dict]] = {}
+    for r in rows:
+        out.setdefault(f"{prefix} {r.get('observer', '')}".strip(), []).append(r)
+    return out
+
+
+def compare_report_html(comparison: dict, a: dict, b: dict, title: str = "Limen detector comparison") -> str:
+    """The ``limen compare-detectors`` report: side-by-side table, overlaid curves, summary."""
+    la, lb = comparison["labels"]
+    sections = [("Summary", "<ul>" + "".join(f"<li>{html.escape(s)}</li>" for s in comparison["summary"]) + "</ul>"),
+                ("Side by side", table_html(comparison["table"], columns=["quantity", la, lb, "better"],
+                                            left=("quantity", "better")))]
+    if a.get("mtf") and b.get("mtf"):
+        sections.append(("MTF", _figure(_mtf_plot({la: a["mtf"], lb: b["mtf"]},
+                                                  {la: a.get("nyquist_per_mm"), lb: b.get("nyquist_per_mm")}),
+                                        "Mean presampling MTF of each detector (dotted: Nyquist).")))
+    if a.get("nnps") and b.get("nnps"):
+        sections.append(("NNPS", _figure(_nnps_plot({la: (a["nnps"]["frequency_per_mm"], a["nnps"]["value_mm2"]),
+                                                     lb: (b["nnps"]["frequency_per_mm"], b["nnps"]["value_mm2"])}),
+                                         "Mean of the two axis cuts; NNPS scales as 1/kerma, so compare at equal kerma.")))
+    if a.get("dqe") and b.get("dqe"):
+        sections.append(("DQE", _figure(_dqe_plot({la: (a["dqe"]["frequency_per_mm"], a["dqe"]["value"]),
+                                                   lb: (b["dqe"]["frequency_per_mm"], b["dqe"]["value"])}),
+                                        "Headline DQE of each detector.")))
+    th = comparison.get("thresholds") or []
+    if th:
+        series: dict[str, list[dict]] = {}
+        for r in th:
+            series.setdefault(f"{r['detector']} {r['source']}", []).append(r)
+        sections.append(("Threshold contrast: predicted and scored",
+                         _figure(_thresholds_plot(series), "Dashed: predicted from MTF and NNPS; solid: scored "
+                                                           "from phantom images.")
+                         + table_html(th, columns=["detector", "source", "diameter_mm", "threshold_contrast",
+                                                   "ci_low", "ci_high"], left=("detector", "source"))))
+    sections.append(("Method", _METHOD))
+    return html_page(title, sections, meta={"inputs": comparison.get("inputs")})

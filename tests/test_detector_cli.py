@@ -1,0 +1,163 @@
+"""``limen detector`` and ``limen compare-detectors`` end to end on small simulated DICOM files."""
+
+import datetime as dt
+import json
+
+import numpy as np
+import pytest
+from click.testing import CliRunner
+
+from scorer.cli import main
+from scorer.conversion import save_conversion
+from scorer.io import write_dicom
+from scorer.simulate import detector_model, simulate, write_simulated
+
+T0 = dt.datetime(2026, 11, 30, 8, 0, 0)
+
+
+def run(*args):
+    res = CliRunner().invoke(main, [str(a) for a in args])
+    return res
+
+
+@pytest.fixture(scope="module")
+def panels(tmp_path_factory):
+    """Per panel: 3 flats at 100 µGy, one flat each at 25 and 150 µGy, a vertical and a horizontal edge."""
+    root = tmp_path_factory.mktemp("panels")
+    out = {}
+    for name in ("direct", "indirect"):
+        m = detector_model(name)
+        d = root / name
+        flats = [write_simulated(simulate(m, "flat", 100.0, seed=i, small=True), d, f"flat{i}", T0) for i in range(3)]
+        k25 = write_simulated(simulate(m, "flat", 25.0, seed=10, small=True), d, "k25", T0)
+        k150 = write_simulated(simulate(m, "flat", 150.0, seed=11, small=True), d, "k150", T0)
+        ev = write_simulated(simulate(m, "edge", 100.0, seed=20, small=True, edge_angle_deg=2.5), d, "ev", T0)
+        eh = write_simulated(simulate(m, "edge", 100.0, seed=21, small=True, edge_angle_deg=92.5), d, "eh", T0)
+        conv = d / "conversion.toml"
+        save_conversion(m.conversion_function(), conv)
+        csv = d / "kermas.csv"
+        csv.write_text(f"path,kerma_ugy\n{k25.name},25\n{flats[0].name},100\n{k150.name},150\n", encoding="utf-8")
+        out[name] = dict(model=m, flats=flats, ev=ev, eh=eh, conv=conv, csv=csv, dir=d)
+    return out
+
+
+@pytest.fixture(scope="module")
+def measured(panels, tmp_path_factory):
+    """detector.json of both panels, written by `limen detector --out`."""
+    root = tmp_path_factory.mktemp("measured")
+    out = {}
+    for name, p in panels.items():
+        res = run("detector", "--flat", *p["flats"], "--edge", p["ev"], p["eh"], "--conversion", p["conv"],
+                  "--kerma-ugy", 100, "--q", p["model"].q_per_mm2_ugy, "--diameters", "0.1,0.25,0.5,1",
+                  "--out", root / name)
+        assert res.exit_code == 0, res.output
+        out[name] = root / name
+    return out
+
+
+def test_detector_json_keys_and_values(panels):
+    p = panels["direct"]
+    res = run("detector", "--flat", *p["flats"], "--edge", p["ev"], p["eh"], "--conversion", p["conv"],
+              "--kerma-ugy", 100, "--q", p["model"].q_per_mm2_ugy, "--json")
+    assert res.exit_code == 0, res.output
+    d = json.loads(res.stdout)
+    assert set(d["mtf"]) >= {"frequency_per_mm", "value"}
+    assert set(d["nnps"]) >= {"frequency_per_mm", "value_mm2"}
+    assert set(d["dqe"]) >= {"frequency_per_mm", "value"}
+    assert d["conversion"]["kind"] == "linear"
+    assert set(d["edge_angle_deg"]) == {"x", "y"}
+    assert abs(d["edge_angle_deg"]["x"]) == pytest.approx(2.5, abs=0.1)
+    # direct panel, 100 % fill factor: MTF at Nyquist = 2/π (square aperture; REFERENCES.md)
+    nyq = d["nyquist_per_mm"]
+    assert np.interp(nyq, d["mtf"]["frequency_per_mm"], d["mtf"]["value"]) == pytest.approx(2 / np.pi, abs=0.03)
+    assert d["nnps"]["n_rois"] == 27
+    # MTF reported up to 1.1 × Nyquist
+    assert max(d["mtf"]["frequency_per_mm"]) == pytest.approx(1.1 * nyq, rel=0.02)
+
+
+def test_flat_and_edge_accept_several_files_after_one_flag_or_repeated(panels):
+    p = panels["direct"]
+    a = run("detector", "--flat", *p["flats"], "--conversion", p["conv"], "--json")
+    b = run("detector", *sum([["--flat", f] for f in p["flats"]], []), "--conversion", p["conv"], "--json")
+    assert a.exit_code == 0 and b.exit_code == 0, a.output + b.output
+    assert json.loads(a.stdout)["nnps"]["n_images"] == 3
+    assert json.loads(a.stdout)["nnps"]["value_mm2"] == json.loads(b.stdout)["nnps"]["value_mm2"]
+    assert json.loads(a.stdout)["dqe"] is None and json.loads(a.stdout)["mtf"] is None
+
+
+def test_fit_conversion_from_csv(panels):
+    p = panels["indirect"]
+    res = run("detector", "--fit-conversion", p["csv"], "--edge", p["ev"], "--json")
+    assert res.exit_code == 0, res.output
+    c = json.loads(res.stdout)["conversion"]
+    assert c["kind"] == "linear" and not c["nonlinear"]
+    assert c["gain"] == pytest.approx(p["model"].gain_adu_per_ugy, rel=0.01)
+    assert c["offset"] == pytest.approx(p["model"].offset_adu, abs=5)
+
+
+def test_out_writes_json_csv_html(measured):
+    d = measured["direct"]
+    data = json.loads((d / "detector.json").read_text())
+    assert data["predicted"] and {r["observer"] for r in data["predicted"]} == {"npw", "npwe"}
+    header = (d / "detector.csv").read_text().splitlines()[0].split(",")
+    assert header[:3] == ["frequency_per_mm", "mtf_x", "mtf_y"] and "dqe" in header
+    page = (d / "detector.html").read_text()
+    assert "qualified medical" in page and page.count("<svg") >= 5  # MTF, NNPS 1-D, NNPS 2-D, DQE, thresholds
+    assert np.load(d / "nnps_2d.npy").shape == (256, 256)
+
+
+def test_for_presentation_flat_warns(tmp_path, panels):
+    m = panels["direct"]["model"]
+    s = simulate(m, "flat", 100.0, seed=5, small=True)
+    f = write_dicom(tmp_path / "processed.dcm", s.pixels, s.spacing_mm, {"PresentationIntentType": "FOR PRESENTATION"})
+    res = run("detector", "--flat", f, "--json")
+    assert res.exit_code == 0, res.output
+    assert "FOR PRESENTATION" in res.stderr and "NNPS" in res.stderr and "meaningless" in res.stderr
+    json.loads(res.stdout)  # stdout stays one JSON object
+
+
+@pytest.mark.parametrize("args, words", [
+    ([], "no images"),
+    (["--flat", "{flat}", "--edge", "{edge}", "--kerma-ugy", "100"], "--q"),
+    (["--flat", "{flat}", "--edge", "{edge}", "--q", "5000"], "--kerma-ugy"),
+    (["--flat", "{flat}", "--beam", "RQA5", "--q", "5000", "--kerma-ugy", "1"], "not both"),
+    (["--flat", "{flat}", "--beam", "XYZ", "--kerma-ugy", "1"], "unknown beam"),
+    (["--flat", "missing.dcm"], "missing.dcm"),
+])
+def test_bad_input_exit_2_one_line(panels, args, words):
+    p = panels["direct"]
+    args = [a.format(flat=p["flats"][0], edge=p["ev"]) for a in args]
+    res = run("detector", *args)
+    assert res.exit_code == 2, res.output
+    lines = [ln for ln in res.stderr.splitlines() if ln.startswith("error:")]
+    assert len(lines) == 1 and words in lines[0]
+    assert "Traceback" not in res.output
+
+
+def test_compare_detectors(measured, tmp_path):
+    a, b = measured["direct"] / "detector.json", measured["indirect"] / "detector.json"
+    scored = tmp_path / "score_a.json"
+    scored.write_text(json.dumps({"observer": "npw", "thresholds": [
+        {"diameter_mm": 0.5, "threshold_contrast": 0.006, "ci_low": 0.005, "ci_high": 0.007, "method": "dprime",
+         "n_images": 8}]}))
+    res = run("compare-detectors", a, b, "--scored-a", scored, "--diameters", "0.1,0.5", "--json", "--out", tmp_path / "cmp")
+    assert res.exit_code == 0, res.output
+    d = json.loads(res.stdout)
+    assert d["labels"] == ["direct", "indirect"]
+    q = {r["quantity"]: r for r in d["table"]}
+    for key in ("MTF at 1 cycles/mm", "MTF at 2 cycles/mm", "MTF at 5 cycles/mm", "MTF at own Nyquist",
+                "NNPS at 0.5 cycles/mm (mm²)", "DQE at 0.5 cycles/mm", "DQE at 2 cycles/mm",
+                "predicted NPW threshold contrast at 0.1 mm", "scored NPW threshold contrast at 0.5 mm"):
+        assert key in q
+    # common practice: the direct (a-Se) panel keeps the sharper MTF and higher DQE at the same pitch
+    assert q["MTF at 5 cycles/mm"]["better"] == "direct"
+    assert q["DQE at 2 cycles/mm"]["better"] == "direct"
+    assert any(s.startswith("direct is sharper") for s in d["summary"])
+    assert (tmp_path / "cmp" / "comparison.html").read_text().count("<svg") >= 4
+
+
+def test_compare_detectors_bad_json(tmp_path, measured):
+    bad = tmp_path / "bad.json"
+    bad.write_text("{not json")
+    res = run("compare-detectors", measured["direct"] / "detector.json", bad)
+    assert res.exit_code == 2 and "bad.json" in res.stderr and "not valid JSON" in res.stderr
