@@ -10,6 +10,7 @@ import click
 import numpy as np
 from tqdm import tqdm
 
+from ..conversion import save_conversion
 from ..errors import LimenError
 from ..layout import load_layout
 from ..simulate import Pose, detector_model, load_detector_model, simulate as run_simulation, write_simulated
@@ -60,4 +61,7 @@ def simulate(detector, model_file, kind, dose_ugy, count, seed, out_dir, small, 
         stem = f"{model.name}-{kind}-{dose_ugy:g}ugy-{i + 1:03d}"
         acquired = DEFAULT_START + _dt.timedelta(minutes=2 * i)
         written.append(write_simulated(sim, out, stem, acquired, fmt))
-    click.echo(f"wrote {len(written)} {kind} image(s) of the {model.name} panel to {out}/")
+    # the panel's conversion function, as a physicist would hold it from commissioning
+    save_conversion(model.conversion_function(), out / f"{model.name}-conversion.toml")
+    click.echo(f"wrote {len(written)} {kind} image(s) of the {model.name} panel to {out}/ "
+               f"(conversion function: {model.name}-conversion.toml)")

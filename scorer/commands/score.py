@@ -1,0 +1,144 @@
+"""``limen score``: threshold contrast per diameter from contrast-detail phantom images."""
+
+from __future__ import annotations
+
+import json
+import shlex
+import sys
+from pathlib import Path
+
+import click
+from tqdm import tqdm
+
+from ..conversion import load_conversion
+from ..errors import LimenError
+from ..layout import load_layout
+from ..limits import load_limits
+from ..observer import SystemBlur
+from ..register import draw_overlay
+from ..report import CAUTION, dumps
+from ..score_report import METHOD_LABEL, write_score_outputs
+from ..scoring import score_images
+
+
+def _blur_from_detector_json(path) -> SystemBlur:
+    try:
+        data = json.loads(Path(path).read_text(encoding="utf-8"))
+        mtf = data["mtf"]
+        f, v = [float(x) for x in mtf["frequency_per_mm"]], [float(x) for x in mtf["value"]]
+    except OSError as exc:
+        raise LimenError(f"cannot read MTF file ({exc.strerror or exc})", path) from None
+    except (ValueError, KeyError, TypeError):
+        raise LimenError("not a detector JSON with mtf.frequency_per_mm and mtf.value (from limen detector --json)",
+                         path) from None
+    if len(f) < 3 or len(f) != len(v):
+        raise LimenError("MTF needs at least three frequencies with one value each", path)
+    return SystemBlur(frequency_per_mm=tuple(f), mtf=tuple(v), source=f"measured MTF from {path}")
+
+
+@click.command("score")
+@click.argument("images", nargs=-1, required=True, type=click.Path(dir_okay=False))
+@click.option("--layout", "layout_file", type=click.Path(dir_okay=False), default=None,
+              help="Phantom layout TOML (default: the bundled demo plate).")
+@click.option("--observer", type=click.Choice(["npw", "npwe"]), default="npw", show_default=True)
+@click.option("--method", type=click.Choice(["dprime", "count", "both"]), default="both", show_default=True)
+@click.option("--limits", "limits_file", type=click.Path(dir_okay=False), default=None,
+              help="Limits TOML (threshold contrast per diameter, the observer it is for, its source).")
+@click.option("--human-factor", type=float, default=None,
+              help="Human/model threshold factor, needed to compare model thresholds with limits for human readers.")
+@click.option("--conversion", "conversion_file", type=click.Path(dir_okay=False), default=None,
+              help="Conversion function TOML/JSON that linearises pixel values to air kerma.")
+@click.option("--mtf", "mtf_file", type=click.Path(dir_okay=False), default=None,
+              help="Detector JSON from `limen detector` whose measured MTF shapes the templates.")
+@click.option("--viewing-distance-mm", type=float, default=None,
+              help="NPWE: eye-to-image distance in image-plane millimetres (default 500).")
+@click.option("--pixel-spacing", "pixel_spacing", type=float, default=None,
+              help="Pixel spacing (mm) for images without DICOM spacing (TIFF, PNG, npy).")
+@click.option("--n-boot", type=click.IntRange(0, 100000), default=1000, show_default=True)
+@click.option("--criterion", type=float, default=None,
+              help="Proportion correct at threshold (default halfway between chance and 1).")
+@click.option("--seed", type=int, default=0, show_default=True)
+@click.option("--json", "as_json", is_flag=True, help="Print one JSON object on stdout.")
+@click.option("--out", "out_dir", type=click.Path(file_okay=False), default=None,
+              help="Write results.json, CSV tables, overlays and report.html here.")
+def score(images, layout_file, observer, method, limits_file, human_factor, conversion_file, mtf_file,
+          viewing_distance_mm, pixel_spacing, n_boot, criterion, seed, as_json, out_dir):
+    """Score contrast-detail phantom IMAGES with a model observer: threshold contrast per diameter.
+
+    Exit status: 0 when every verdict passes or no limits were given, 1 when a verdict
+    fails, 2 on bad input.
+    """
+    layout = load_layout(layout_file)
+    limits = load_limits(limits_file) if limits_file else None
+    conversion = load_conversion(conversion_file) if conversion_file else None
+    blur = _blur_from_detector_json(mtf_file) if mtf_file else None
+    methods = ["dprime", "count"] if method == "both" else [method]
+    out = Path(out_dir) if out_dir else None
+    overlays: list[Path] = []
+    bar = tqdm(total=len(images), desc=f"scoring ({observer.upper()})", unit="image", file=sys.stderr,
+               disable=len(images) < 2)
+
+    def on_image(i, path, image, placement):
+        if out is not None:
+            overlays.append(draw_overlay(image, layout, placement, out / "overlays" / f"{Path(path).stem}.png",
+                                         title=Path(path).name))
+        bar.update(1)
+
+    def on_failure(path, image, exc):
+        if out is not None:
+            png = draw_overlay(image, layout, getattr(exc, "placement", None),
+                               out / "overlays" / f"{Path(path).stem}-FAILED.png",
+                               candidates_px=getattr(exc, "candidates_px", None), title=f"{Path(path).name}: {exc}")
+            click.echo(f"diagnostic overlay: {png}", err=True)
+
+    try:
+        result = score_images(list(images), layout, observer=observer, methods=methods, conversion=conversion,
+                              pixel_spacing_mm=pixel_spacing, blur=blur, viewing_distance_mm=viewing_distance_mm,
+                              n_boot=n_boot, seed=seed, criterion_pc=criterion, limits=limits,
+                              human_factor=human_factor, on_image=on_image, on_failure=on_failure)
+    finally:
+        bar.close()
+    command = "limen score " + " ".join(shlex.quote(a) for a in sys.argv[2:]) if len(sys.argv) > 2 else ""
+    if out is not None:
+        write_score_outputs(result, out, overlays, command)
+    if as_json:
+        click.echo(dumps(result.to_json()))
+    else:
+        _print_table(result)
+        if out is not None:
+            click.echo(f"\nreport: {out / 'report.html'}  (JSON, CSV and overlays beside it)")
+    for w in result.warnings:
+        click.echo(f"warning: {w}", err=True)
+    if result.verdicts is not None and result.overall_verdict == "fail":
+        sys.exit(1)
+
+
+def _print_table(result) -> None:
+    click.echo(f"{result.layout.name}: {len(result.images)} image(s), {result.observer.upper()} observer")
+    curves = result.curves
+    header = f"{'diameter mm':>11}"
+    for m in curves:
+        header += f"  {METHOD_LABEL[m] + ' C_T %':>18} {'95% CI %':>15}"
+    if result.verdicts is not None:
+        if result.human_factor:
+            header += f"  {'x' + format(result.human_factor, 'g') + ' %':>8}"
+        header += f"  {'limit %':>8}  verdict"
+    click.echo(header)
+    diams = sorted({p.diameter_mm for c in curves.values() for p in c.points})
+    vmap = {v.diameter_mm: v for v in (result.verdicts or [])}
+    for d in diams:
+        line = f"{d:>11.3g}"
+        for c in curves.values():
+            p = c.at(d)
+            ci = f"{100 * p.ci_low:.3g}–{100 * p.ci_high:.3g}" if p.ci_low == p.ci_low else "—"
+            line += f"  {100 * p.threshold_contrast:>18.3g} {ci:>15}"
+        if result.verdicts is not None:
+            v = vmap.get(d)
+            lim = "—" if v is None or v.acceptable is None else f"{100 * v.acceptable:.3g}"
+            if result.human_factor:
+                line += f"  {100 * v.threshold_contrast:>8.3g}" if v else f"  {'':>8}"
+            line += f"  {lim:>8}  {v.verdict if v else ''}"
+        click.echo(line)
+    if result.verdicts is not None:
+        click.echo(f"overall: {result.overall_verdict.upper()}")
+    click.echo(CAUTION)

@@ -1,0 +1,167 @@
+"""Files written by ``limen score --out``: JSON, CSV tables, overlays and the HTML report."""
+
+from __future__ import annotations
+
+import base64
+from pathlib import Path
+
+import matplotlib
+
+matplotlib.use("Agg")
+import matplotlib.pyplot as plt  # noqa: E402
+import numpy as np  # noqa: E402
+
+from .psychometric import fit_psychometric  # noqa: E402
+from .report import figure_to_svg, html_page, table_html, write_json  # noqa: E402
+
+METHOD_LABEL = {"dprime": "d′ method", "count": "count method", "predicted": "predicted"}
+COLOURS = {"dprime": "#1f5fa8", "count": "#c2571a", "predicted": "#3a8a3a"}
+
+
+def cd_plot(result, extra_curves=None, title=None):
+    """Log-log contrast-detail plot: thresholds with CIs per method, smooth curves, limits."""
+    fig, ax = plt.subplots(figsize=(7.2, 5.0))
+    factor = result.human_factor or 1.0
+    curves = dict(result.curves)
+    for name, c in (extra_curves or {}).items():
+        curves[name] = c
+    offsets = {"dprime": 0.985, "count": 1.015}
+    for method, curve in curves.items():
+        pts = [p for p in curve.points if np.isfinite(p.threshold_contrast)]
+        if not pts:
+            continue
+        d = np.array([p.diameter_mm for p in pts]) * offsets.get(method, 1.0)
+        t = np.array([p.threshold_contrast for p in pts]) * 100
+        lo = np.array([p.ci_low if np.isfinite(p.ci_low) else p.threshold_contrast for p in pts]) * 100
+        hi = np.array([p.ci_high if np.isfinite(p.ci_high) else p.threshold_contrast for p in pts]) * 100
+        col = COLOURS.get(method, None)
+        ax.errorbar(d, t, yerr=[t - lo, hi - t], fmt="o", ms=5, capsize=3, color=col,
+                    label=f"{curve.observer.upper()} {METHOD_LABEL.get(method, method)} (95 % CI)")
+        if curve.smooth is not None:
+            x = np.geomspace(*curve.smooth.diameter_range_mm, 100)
+            ax.plot(x, curve.smooth(x) * 100, "-", color=col, alpha=0.6, lw=1.2)
+    if result.limits is not None:
+        lim = result.limits
+        scale = 1.0 / factor if result.human_factor else 1.0
+        ax.plot(lim.diameters_mm, np.array(lim.acceptable) * 100 * scale, "k--", lw=1.3,
+                label="acceptable limit" + (f" ÷ human factor {factor:g}" if result.human_factor else ""))
+        ach = [(d, a) for d, a in zip(lim.diameters_mm, lim.achievable) if a is not None]
+        if ach:
+            ax.plot([a[0] for a in ach], np.array([a[1] for a in ach]) * 100 * scale, "k:", lw=1.3,
+                    label="achievable level" + (" (same scale)" if result.human_factor else ""))
+    ax.set_xscale("log")
+    ax.set_yscale("log")
+    ax.set_xlabel("disc diameter (mm)")
+    ax.set_ylabel("threshold contrast (%)")
+    ax.grid(True, which="both", alpha=0.3)
+    ax.set_title(title or f"Contrast-detail curve — {result.observer.upper()} model observer")
+    ax.legend(fontsize=8)
+    return fig
+
+
+def psychometric_plot(result):
+    """Proportion correct against contrast per diameter, with the fitted M-AFC function."""
+    tr = result.trials
+    diams = sorted(tr["diameter_mm"].unique())
+    n = len(diams)
+    cols = 4
+    rows = int(np.ceil(n / cols))
+    fig, axes = plt.subplots(rows, cols, figsize=(3.0 * cols, 2.4 * rows), squeeze=False)
+    for ax, d in zip(axes.ravel(), diams):
+        g = tr[tr["diameter_mm"] == d].groupby("contrast")["correct"].agg(["sum", "count"]).reset_index()
+        m = int(tr.loc[tr["diameter_mm"] == d, "m_alternatives"].iloc[0])
+        ax.plot(g["contrast"] * 100, g["sum"] / g["count"], "o", color="#444", ms=4)
+        try:
+            fit = fit_psychometric(g["contrast"], g["sum"], g["count"], m)
+            x = np.geomspace(g["contrast"].min(), g["contrast"].max(), 100)
+            ax.plot(x * 100, fit.pc(x), "-", color=COLOURS["count"])
+        except Exception:  # a plot must never stop the report
+            pass
+        ax.axhline(1.0 / m, color="#999", lw=0.8, ls=":")
+        ax.set_xscale("log")
+        ax.set_ylim(0, 1.05)
+        ax.set_title(f"{d:g} mm", fontsize=9)
+        ax.tick_params(labelsize=7)
+    for ax in axes.ravel()[n:]:
+        ax.axis("off")
+    fig.supxlabel("contrast (%)", fontsize=9)
+    fig.supylabel("proportion correct", fontsize=9)
+    fig.tight_layout()
+    return fig
+
+
+def _thumb(png: Path) -> str:
+    data = base64.b64encode(Path(png).read_bytes()).decode("ascii")
+    return f"<img alt='registration overlay' src='data:image/png;base64,{data}' style='max-width:32%;margin:2px'>"
+
+
+def write_score_outputs(result, out_dir, overlays: list[Path] | None = None, command: str = "") -> dict:
+    """Write results.json, responses.csv, trials.csv, thresholds.csv, verdicts.csv and report.html."""
+    out = Path(out_dir)
+    out.mkdir(parents=True, exist_ok=True)
+    js = result.to_json()
+    if command:
+        js["command"] = command
+    write_json(out / "results.json", js)
+    result.responses.to_csv(out / "responses.csv", index=False)
+    result.trials.to_csv(out / "trials.csv", index=False)
+    result.thresholds_frame().to_csv(out / "thresholds.csv", index=False)
+    if result.verdicts is not None:
+        import pandas as pd
+
+        pd.DataFrame([v.to_dict() for v in result.verdicts]).to_csv(out / "verdicts.csv", index=False)
+    (out / "report.html").write_text(render_html(result, overlays or [], command), encoding="utf-8")
+    return {"json": out / "results.json", "report": out / "report.html"}
+
+
+def render_html(result, overlays: list[Path], command: str = "") -> str:
+    meta0 = result.images[0].metadata if result.images else {}
+    intro = (f"<p>{len(result.images)} image(s) of <b>{result.layout.name}</b> scored by the "
+             f"<b>{result.observer.upper()}</b> model observer. Detector "
+             f"{meta0.get('detector_id') or meta0.get('device_serial') or 'unknown'}, station "
+             f"{meta0.get('station_name') or 'unknown'}, detector type {meta0.get('detector_type') or 'unknown'}, "
+             f"{meta0.get('kvp') or '—'} kV.</p>")
+    if result.verdicts is not None:
+        ov = result.overall_verdict
+        intro += (f"<p>Overall verdict against <b>{result.limits.name}</b>: "
+                  f"<span class='{ov}'>{ov.upper()}</span> (method: {METHOD_LABEL[result.verdict_method]}"
+                  + (f"; human/model factor {result.human_factor:g}" if result.human_factor else "") + ").</p>")
+        intro += f"<p class='meta'>Limits source: {result.limits.source}</p>"
+    if result.warnings:
+        intro += "<ul>" + "".join(f"<li>{w}</li>" for w in result.warnings) + "</ul>"
+    sections = [("Summary", intro),
+                ("Contrast-detail curve", f"<figure>{figure_to_svg(cd_plot(result))}<figcaption>Threshold "
+                 "contrast per disc diameter (log-log) with 95 % bootstrap confidence intervals resampling images; "
+                 "lines: smooth curve log C = a + b·log d + c·(log d)².</figcaption></figure>")]
+    rows = []
+    for method, c in result.curves.items():
+        for p in c.points:
+            rows.append({"diameter (mm)": p.diameter_mm, "method": METHOD_LABEL[method],
+                         "threshold (%)": 100 * p.threshold_contrast, "95 % CI low (%)": 100 * p.ci_low,
+                         "95 % CI high (%)": 100 * p.ci_high, "images": p.n_images, "note": p.note})
+    sections.append(("Threshold contrast", table_html(rows, left=["method", "note"])))
+    if result.verdicts is not None:
+        vrows = [{"diameter (mm)": v.diameter_mm, "compared threshold (%)": 100 * v.threshold_contrast,
+                  "CI (%)": f"{100 * v.ci_low:.3g}–{100 * v.ci_high:.3g}" if np.isfinite(v.ci_low) else "—",
+                  "acceptable (%)": None if v.acceptable is None else 100 * v.acceptable,
+                  "achievable (%)": None if v.achievable is None else 100 * v.achievable,
+                  "verdict": v.verdict,
+                  "achievable met": "—" if v.achievable_met is None else ("yes" if v.achievable_met else "no")}
+                 for v in result.verdicts]
+        sections.append(("Verdict per diameter", table_html(vrows, left=["verdict", "CI (%)", "achievable met"])))
+    sections.append(("Proportion correct per diameter",
+                     f"<figure>{figure_to_svg(psychometric_plot(result))}<figcaption>Observed proportion of correct "
+                     "4-AFC decisions per target over the images, with the maximum-likelihood M-AFC psychometric "
+                     "function (dotted: chance).</figcaption></figure>"))
+    reg_rows = [{"image": s.image_id, "residual (px)": s.placement.residual_px,
+                 "max residual (px)": s.placement.max_residual_px, "rotation (°)": s.placement.rotation_deg,
+                 "flipped": "yes" if s.placement.flipped else "no", "magnification": s.placement.magnification,
+                 "blur σ (px)": s.blur_sigma_px, "proportion correct": s.n_correct / max(s.n_trials, 1)}
+                for s in result.images]
+    reg_html = table_html(reg_rows, left=["image", "flipped"])
+    if overlays:
+        reg_html += "<div>" + "".join(_thumb(p) for p in overlays[:12]) + "</div>"
+    sections.append(("Images and registration", reg_html))
+    meta = {"settings": result.settings, "command": command,
+            "inputs": [{"path": s.path, "sha256": s.metadata.get("content_sha256")} for s in result.images]}
+    return html_page(f"Limen contrast-detail report — {result.layout.name}", sections, meta)
