@@ -1,0 +1,1 @@
+"""Benchmarks (speed floors), run as python -m bench.<name>."""
