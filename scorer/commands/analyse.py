@@ -1,0 +1,82 @@
+"""``limen analyse``: reader-study statistics from a tidy trial table (CSV)."""
+
+from __future__ import annotations
+
+import sys
+
+import click
+
+from ..report import dumps
+
+
+@click.command("analyse")
+@click.argument("responses", type=click.Path(dir_okay=False))
+@click.option("--model", "model_file", type=click.Path(dir_okay=False), default=None,
+              help="Model-observer trials (e.g. DIR/trials.csv from `limen score --out DIR`).")
+@click.option("--by", default="detector", show_default=True,
+              help="Column whose levels are compared (ratio of thresholds to the reference level).")
+@click.option("--reference", default=None, help="Reference level of --by (default: first in sort order).")
+@click.option("--n-boot", type=click.IntRange(0, 100000), default=1000, show_default=True,
+              help="Bootstrap resamples.")
+@click.option("--criterion", "criterion_pc", type=float, default=None,
+              help="Threshold proportion correct (default: halfway between chance and 1).")
+@click.option("--seed", type=int, default=0, show_default=True)
+@click.option("--json", "as_json", is_flag=True, help="Print one JSON object on stdout.")
+@click.option("--out", "out_dir", type=click.Path(file_okay=False), default=None,
+              help="Write analysis.json, CSV tables and report.html here.")
+def analyse(responses, model_file, by, reference, n_boot, criterion_pc, seed, as_json, out_dir):
+    """Per-reader and pooled contrast-detail curves, human/model factor, group comparison, agreement."""
+    from ..io import image_content_hash as file_sha256   # SHA-256 of a file's bytes
+    from ..stats import analyse_study, load_trials
+
+    trials = load_trials(responses)
+    model = load_trials(model_file) if model_file else None
+    steps = ["per-reader fits", "pooled curves", f"{by} comparison"] + (
+        ["model observer", "human/model factor"] if model is not None else []) + ["agreement"]
+    from tqdm import tqdm
+
+    bar = tqdm(total=len(steps), desc="analysing", file=sys.stderr, disable=as_json and not sys.stderr.isatty())
+
+    def progress(step):
+        bar.set_postfix_str(step)
+        bar.update(1)
+
+    a = analyse_study(trials, model, by=by, n_boot=n_boot, seed=seed, criterion_pc=criterion_pc,
+                      reference=reference, progress=progress)
+    bar.close()
+    meta = {"inputs": {"responses": {"path": str(responses), "sha256": file_sha256(responses)}},
+            "seed": seed, "n_boot": n_boot}
+    if model_file:
+        meta["inputs"]["model"] = {"path": str(model_file), "sha256": file_sha256(model_file)}
+    if out_dir:
+        from ..stats_report import write_outputs
+
+        write_outputs(a, out_dir, meta)
+    if as_json:
+        click.echo(dumps(a.to_json()))
+        return
+    click.echo(_text_summary(a))
+    if out_dir:
+        click.echo(f"wrote report.html, analysis.json and CSV tables to {out_dir}/")
+
+
+def _text_summary(a) -> str:
+    lines = [f"{len(a.readers)} reader(s), {a.m_alternatives}-AFC, criterion Pc = {a.criterion_pc:.4g}"]
+    pc = a.pooled_curves
+    if len(pc):
+        lines.append("")
+        lines.append(f"{a.by:<14}{'diam mm':>8}{'C_T %':>9}{'95 % CI %':>19}{'readers':>9}")
+        for r in pc.to_dict("records"):
+            lines.append(f"{str(r[a.by]):<14}{r['diameter_mm']:>8g}{100 * r['threshold_contrast']:>9.3g}"
+                         f"{100 * r['ci_low']:>9.3g} – {100 * r['ci_high']:<7.3g}{r['n_readers']:>9d}")
+    if len(a.comparison):
+        lines.append("")
+        lines.extend(a.comparison["sentence"])
+    hm = a.human_model
+    if hm and hm.get("factor") is not None:
+        lines.append("")
+        lines.append(f"human/model ({hm['observer']}) threshold factor: {hm['factor']:.3g} "
+                     f"(95 % CI {hm['ci_low']:.3g}–{hm['ci_high']:.3g})")
+    for note in a.notes:
+        lines.append(f"note: {note}")
+    return "\n".join(lines)
