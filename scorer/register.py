@@ -69,6 +69,7 @@ DEPTH_FRACTION = 0.35
 # exactly at an end scatters by ~0.1 %).
 MAGNIFICATION_TOLERANCE = 0.005
 MAX_MARKER_BLOBS = 40       # marker-sized blobs refined and matched (deepest first)
+HYPOTHESIS_CHUNK = 4096    # hypotheses scored at once
 MAX_CANDIDATES = 500        # blobs kept for the overlay
 
 
@@ -327,23 +328,26 @@ def _match(p: np.ndarray, diam_mm: np.ndarray, z: np.ndarray, dz: np.ndarray,
         ok &= np.abs(diam_mm[J] / (mag * dz[B]) - 1) < DIAMETER_TOLERANCE
         if not ok.any():
             continue
-        s, Ia, Aa, mag = s[ok], I[ok], A[ok], mag[ok]
-        t = p[Ia] - s * zz[Aa]
-        q = s[:, None] * zz[None, :] + t[:, None]                       # H × N predicted
-        dist = np.abs(q[:, :, None] - p[None, None, :])                 # H × N × K
-        dpred = mag[:, None] * dz[None, :]                              # H × N predicted diameters
-        size_ok = np.abs(diam_mm[None, None, :] / dpred[:, :, None] - 1) < DIAMETER_TOLERANCE
-        tol = np.maximum(tol_px_mm, 0.2 * dpred)[:, :, None]
-        dist = np.where(size_ok & (dist < tol), dist, np.inf)
-        k = np.argmin(dist, axis=2)
-        dmin = np.take_along_axis(dist, k[:, :, None], axis=2)[:, :, 0]
-        found = np.isfinite(dmin)
-        count = found.sum(axis=1)
-        sse = np.where(found, dmin / dpred, 0.0) ** 2
-        score = count - np.minimum(sse.sum(axis=1), 0.99)   # count first, then relative error
-        h = int(np.argmax(score))
-        if best is None or score[h] > best[0]:
-            best = (float(score[h]), np.where(found[h], k[h], -1), flip, s[h], t[h])
+        s_all, I_all, A_all, mag_all = s[ok], I[ok], A[ok], mag[ok]
+        for c0 in range(0, len(s_all), HYPOTHESIS_CHUNK):   # bounded memory: chunk × N × K
+            sl = slice(c0, c0 + HYPOTHESIS_CHUNK)
+            s, Ia, Aa, mag = s_all[sl], I_all[sl], A_all[sl], mag_all[sl]
+            t = p[Ia] - s * zz[Aa]
+            q = s[:, None] * zz[None, :] + t[:, None]                       # H × N predicted
+            dist = np.abs(q[:, :, None] - p[None, None, :])                 # H × N × K
+            dpred = mag[:, None] * dz[None, :]                              # H × N predicted diameters
+            size_ok = np.abs(diam_mm[None, None, :] / dpred[:, :, None] - 1) < DIAMETER_TOLERANCE
+            tol = np.maximum(tol_px_mm, 0.2 * dpred)[:, :, None]
+            dist = np.where(size_ok & (dist < tol), dist, np.inf)
+            k = np.argmin(dist, axis=2)
+            dmin = np.take_along_axis(dist, k[:, :, None], axis=2)[:, :, 0]
+            found = np.isfinite(dmin)
+            count = found.sum(axis=1)
+            sse = np.where(found, dmin / dpred, 0.0) ** 2
+            score = count - np.minimum(sse.sum(axis=1), 0.99)   # count first, then relative error
+            h = int(np.argmax(score))
+            if best is None or score[h] > best[0]:
+                best = (float(score[h]), np.where(found[h], k[h], -1), flip, s[h], t[h])
     if best is None:
         return None
     return best[1:]

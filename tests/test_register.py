@@ -11,7 +11,8 @@ from scorer.errors import LimenError
 from scorer.image import Image, ImageMetadata
 from scorer.layout import Target, load_layout
 from scorer.register import Placement, RegistrationError, draw_overlay, fit_similarity, register
-from scorer.simulate import Pose, _phantom_field_shape, detector_model, phantom_transform, simulate
+from scorer.simulate import (Pose, _phantom_field_shape, detector_model, expose, phantom_transform,
+                             phantom_transmission, render_discs, simulate)
 
 MINI = Path(__file__).parent / "data" / "mini-plate.toml"
 DOSE_UGY = 25.0      # the lowest demo dose
@@ -147,6 +148,35 @@ def test_non_square_pixels_are_handled(mini):
     assert pl.magnification == pytest.approx(1.1, rel=0.005)
     assert _angle_diff(pl.rotation_deg, 63.0) < 0.2
     assert pl.residual_px < 0.3
+
+
+def test_marker_sized_distractors_outside_the_plate_do_not_confuse_it(mini):
+    # Twelve extra absorbing discs of fiducial and key size scattered around the plate
+    # (rulers, lead letters, a second object): only the layout's arrangement may match.
+    model = detector_model("direct")
+    p = model.pixel_pitch_mm
+    shape = (900, 900)
+    pose = Pose(211.0, True, 1.05, (1.0, -2.0))
+    tf = phantom_transform(mini, pose, shape, p)
+    trans = phantom_transmission(mini, tf, shape, p, pose.magnification)
+    rng = np.random.default_rng(21)
+    plate = tf.to_pixel([[0, 0], [44, 0], [44, 36], [0, 36]])
+    centre = plate.mean(axis=0)
+    extra = []
+    while len(extra) < 12:
+        rc = rng.uniform(30, 870, size=2)
+        if np.hypot(*(rc - centre)) > 0.5 * np.hypot(44, 36) * 1.05 / p + 40 and all(
+                np.hypot(*(rc - e)) > 60 for e in extra):
+            extra.append(rc)
+    radii = [(2.0 if i % 3 else 3.5) * 1.05 / p / 2 for i in range(12)]
+    render_discs(trans, np.array(extra), radii, [0.6] * 12)
+    pixels = expose(trans, model, DOSE_UGY, np.random.default_rng(3))
+    pl = register(Image(pixels, (p, p)), mini)
+    truth = tf.to_pixel([m.xy_mm for m in mini.markers])
+    for m, t in zip(mini.markers, truth):
+        assert np.hypot(*(np.asarray(pl.markers_px[m.id]) - t)) < REFINED_TOL
+    assert pl.flipped and _angle_diff(pl.rotation_deg, 211.0) < 0.2
+    assert len(pl.candidates_px) >= 17        # the distractors are reported for the overlay
 
 
 # ----------------------------------------------------------------- refusals
