@@ -21,7 +21,9 @@ def grid_layout(diameters_mm, contrasts, n_repeat=1, spacing_mm=None, seed=0):
     sp = spacing_mm or max(3.0, 3.0 * dmax)
     cell = 2 * sp
     targets = []
-    combos = [(d, c) for d in diameters_mm for c in contrasts for _ in range(n_repeat)]
+    if not isinstance(contrasts, dict):
+        contrasts = {d: contrasts for d in diameters_mm}
+    combos = [(d, c) for d in diameters_mm for c in contrasts[d] for _ in range(n_repeat)]
     ncols = int(np.ceil(np.sqrt(len(combos))))
     margin = 12.0
     for i, (d, c) in enumerate(combos):
@@ -50,3 +52,18 @@ def known_placement(layout, shape, pixel_mm, magnification=1.0):
                                       phantom_center_mm=layout.center_mm,
                                       center_px=((shape[0] - 1) / 2, (shape[1] - 1) / 2), pixel_mm=pixel_mm)
     return SimpleNamespace(transform=tf, markers_px={})
+
+
+def simulate_set(model, layout, dose_ugy, n_images, seed=0, pose=None):
+    """Simulated images (linearised to µGy) of ``layout`` with the placement the simulator used."""
+    from scorer.image import Image
+    from scorer.simulate import Pose, phantom_transform, simulate
+
+    pose = pose or Pose()
+    out = []
+    for s in np.random.SeedSequence(seed).spawn(n_images):
+        sim = simulate(model, "phantom", dose_ugy, np.random.default_rng(s), small=True, layout=layout, pose=pose)
+        tf = phantom_transform(layout, pose, sim.pixels.shape, model.pixel_pitch_mm)
+        markers = {k: tuple(v) for k, v in sim.truth["fiducials_px"].items()}
+        out.append((Image(sim.kerma_ugy(), sim.spacing_mm), SimpleNamespace(transform=tf, markers_px=markers), sim))
+    return out
