@@ -1,0 +1,130 @@
+"""`limen score` end to end on simulated DICOM images of the mini plate."""
+
+import json
+from pathlib import Path
+
+import numpy as np
+import pytest
+from click.testing import CliRunner
+
+from helpers import MINI
+from scorer.cli import main
+from scorer.io import load_image, write_image
+from scorer.layout import load_layout
+from scorer.scoring import score_images
+
+
+@pytest.fixture(scope="module")
+def direct_set(tmp_path_factory):
+    out = tmp_path_factory.mktemp("direct")
+    res = CliRunner().invoke(main, ["simulate", "--detector", "direct", "--small", "--layout", str(MINI),
+                                    "--count", "6", "--seed", "11", "--rotate", "17", "--out", str(out)])
+    assert res.exit_code == 0, res.output
+    return out
+
+
+def _run(args):
+    return CliRunner().invoke(main, ["score"] + args)
+
+
+def test_json_output_has_the_agreed_shape(direct_set):
+    files = sorted(str(p) for p in direct_set.glob("*.dcm"))
+    res = _run(files + ["--layout", str(MINI), "--json", "--n-boot", "200",
+                        "--conversion", str(direct_set / "direct-conversion.toml")])
+    assert res.exit_code == 0, res.output
+    js = json.loads(res.stdout)
+    assert js["observer"] == "npw"
+    assert len(js["images"]) == 6
+    reg = js["images"][0]["registration"]
+    assert set(reg) >= {"residual_px", "rotation_deg", "flipped", "magnification"}
+    assert reg["rotation_deg"] == pytest.approx(17.0, abs=0.2) and reg["flipped"] is False
+    th = js["thresholds"]
+    assert {t["method"] for t in th} == {"dprime", "count"}
+    assert len(th) == 2 * len(load_layout(MINI).diameters_mm)
+    for t in th:
+        assert set(t) >= {"diameter_mm", "threshold_contrast", "ci_low", "ci_high", "method", "n_images"}
+        assert 0 < t["ci_low"] <= t["threshold_contrast"] <= t["ci_high"] < 1  # contrasts as fractions
+        assert t["n_images"] == 6
+    assert js["verdicts"] == []
+
+
+def test_out_writes_report_tables_and_overlays(direct_set, tmp_path):
+    files = sorted(str(p) for p in direct_set.glob("*.dcm"))[:3]
+    res = _run(files + ["--layout", str(MINI), "--n-boot", "100", "--out", str(tmp_path / "r")])
+    assert res.exit_code == 0, res.output
+    r = tmp_path / "r"
+    for name in ("results.json", "responses.csv", "trials.csv", "thresholds.csv", "report.html"):
+        assert (r / name).stat().st_size > 0, name
+    assert len(list((r / "overlays").glob("*.png"))) == 3
+    html = (r / "report.html").read_text()
+    assert "never replace" in html and "<svg" in html
+    import pandas as pd
+
+    resp = pd.read_csv(r / "responses.csv")
+    assert len(resp) == 3 * sum(t.m_alternatives for t in load_layout(MINI).targets)
+    # the table on the terminal carries the caution too
+    assert "never replace" in res.output
+
+
+def _limits(tmp_path, observer, value):
+    p = tmp_path / f"lim-{observer}-{value}.toml"
+    p.write_text(f'format = "limen-limits/1"\nobserver = "{observer}"\nsource = "test values (invented)"\n'
+                 f"[[limits]]\ndiameter_mm = 0.1\nacceptable = {value}\n"
+                 f"[[limits]]\ndiameter_mm = 1.0\nacceptable = {value / 10}\n")
+    return p
+
+
+def test_exit_codes_follow_the_verdicts(direct_set, tmp_path):
+    files = sorted(str(p) for p in direct_set.glob("*.dcm"))
+    base = files + ["--layout", str(MINI), "--n-boot", "200"]
+    assert _run(base + ["--limits", str(_limits(tmp_path, "npw", 0.5))]).exit_code == 0     # generous: pass
+    res = _run(base + ["--limits", str(_limits(tmp_path, "npw", 0.002)), "--json"])         # strict: fail
+    assert res.exit_code == 1
+    assert {v["verdict"] for v in json.loads(res.stdout)["verdicts"]} == {"fail"}
+    # human limits with model thresholds need a human/model factor
+    res = _run(base + ["--limits", str(_limits(tmp_path, "human", 0.5))])
+    assert res.exit_code == 2 and "human-factor" in res.output
+    assert _run(base + ["--limits", str(_limits(tmp_path, "human", 0.5)), "--human-factor", "3"]).exit_code == 0
+
+
+def test_bad_inputs_give_one_line_and_exit_2(direct_set, tmp_path):
+    flat = tmp_path / "flat"
+    assert CliRunner().invoke(main, ["simulate", "--kind", "flat", "--small", "--out", str(flat)]).exit_code == 0
+    cases = [
+        ([str(tmp_path / "missing.dcm")], "missing.dcm"),
+        ([str(next(flat.glob("*.dcm"))), "--layout", str(MINI), "--out", str(tmp_path / "o")], "phantom not found"),
+        ([str(next(direct_set.glob("*.dcm"))), "--layout", str(tmp_path / "nolayout.toml")], "nolayout.toml"),
+    ]
+    npy = tmp_path / "a.npy"
+    np.save(npy, np.ones((50, 50)))
+    cases.append(([str(npy), "--layout", str(MINI)], "pixel spacing"))
+    for args, needle in cases:
+        res = _run(args)
+        assert res.exit_code == 2, res.output
+        err = [l for l in res.output.splitlines() if l.startswith("error:")]
+        assert len(err) == 1 and needle in err[0], res.output
+        assert "Traceback" not in res.output
+    # the failed registration left a diagnostic overlay
+    assert list((tmp_path / "o" / "overlays").glob("*FAILED.png"))
+
+
+@pytest.mark.parametrize("transform", ["rot90", "mirror"])
+def test_thresholds_unchanged_by_rotating_or_mirroring_every_image(direct_set, tmp_path, transform):
+    # a rotation by 90° or a mirror image moves pixels without changing noise or signal, so the
+    # thresholds must not change (common practice: orientation independence of automated scoring)
+    lay = load_layout(MINI)
+    conv = direct_set / "direct-conversion.toml"
+    files = sorted(direct_set.glob("*.dcm"))
+    moved = []
+    for f in files:
+        img = load_image(f)
+        px = np.rot90(img.pixels) if transform == "rot90" else img.pixels[:, ::-1]
+        moved.append(write_image(tmp_path / f"{f.stem}.npy", np.ascontiguousarray(px)))
+    from scorer.conversion import load_conversion
+
+    c = load_conversion(conv)
+    a = score_images(files, lay, methods=["dprime"], conversion=c, n_boot=0)
+    b = score_images(moved, lay, methods=["dprime"], conversion=c, n_boot=0, pixel_spacing_mm=0.085)
+    for pa, pb in zip(a.curves["dprime"].points, b.curves["dprime"].points):
+        assert pb.threshold_contrast == pytest.approx(pa.threshold_contrast, rel=0.10)
+    assert b.images[0].placement.flipped == (transform == "mirror")
