@@ -263,17 +263,25 @@ def fit_pooled_gee(g: pd.DataFrame, m: int):
 
 @dataclass
 class PooledFit:
-    """Pooled M-AFC fit with reader clusters: log k, its robust and bias-reduced SEs."""
+    """Pooled M-AFC fit with reader clusters: log k and its standard errors.
+
+    se_robust / se_bias_reduced: one-way cluster-robust by reader (the latter with the
+    Mancl–DeRouen correction; statsmodels GEE's "robust" and "bias_reduced").
+    se_two_way: readers and images as crossed clusters (Cameron, Gelbach & Miller 2011),
+    the reader part bias-reduced; NaN when no image axis was given.
+    """
 
     log_k: float
     se_robust: float
     se_bias_reduced: float
+    se_two_way: float
     at_bound: bool
     n_clusters: int
+    n_images: int = 0
 
 
 def pooled_mafc_gee(levels, y, n, m: int) -> PooledFit:
-    """The GEE of :func:`fit_pooled_gee` in closed form, on counts per cluster (fast).
+    """The GEE of :func:`fit_pooled_gee` in closed form, on counts (fast).
 
     One parameter θ = log k, mean μ_l = Pc_M(k·C_l), variance μ(1 − μ), independence
     working correlation.  With D_l = dμ_l/dθ, the estimating equation Σ_i U_i = 0 with
@@ -283,24 +291,49 @@ def pooled_mafc_gee(levels, y, n, m: int) -> PooledFit:
     h_i = Σ_l n_il D_l²/V_l / A (the leverage of cluster i; exact here because the
     one-parameter hat matrix has rank one).  Checked against statsmodels GEE in the tests.
 
-    y, n : (R, L) correct and trial counts per cluster (reader) and contrast level.
+    Every reader reads the same images, so the image's noise is shared by all readers:
+    trials are correlated within images as well as within readers (crossed).  Given an
+    image axis, the two-way cluster-robust variance (Cameron, Gelbach & Miller, J. Bus.
+    Econ. Stat. 29, 2011) V = V_reader + V_image − V_reader×image is also returned; it is
+    the one the pooled CI uses.
+
+    y, n : (R, L) counts per reader and contrast level, or (R, I, L) per reader, image, level.
     """
     levels = np.asarray(levels, float)
     y, n = np.asarray(y, float), np.asarray(n, float)
-    k, at_b = fit_k_batch(levels, y.sum(0)[None], n.sum(0)[None], m)
+    two_way = y.ndim == 3
+    y_r, n_r = (y.sum(1), n.sum(1)) if two_way else (y, n)
+    k, at_b = fit_k_batch(levels, y_r.sum(0)[None], n_r.sum(0)[None], m)
     d = k[0] * levels
     mu = np.clip(pc_mafc_fast(d, m), 1e-12, 1 - 1e-12)
     dmu = dpc_mafc_fast(d, m) * d
     v = mu * (1 - mu)
-    info_i = n @ (dmu ** 2 / v)
-    a = float(info_i.sum())
-    u_i = (y - n * mu) @ (dmu / v)
+    w_info, w_score = dmu ** 2 / v, dmu / v
+    nan = float("nan")
+    info_r = n_r @ w_info
+    a = float(info_r.sum())
     if a <= 0 or not np.isfinite(a):
-        return PooledFit(float(np.log(k[0])), float("nan"), float("nan"), True, int(y.shape[0]))
-    h = info_i / a
-    se_r = float(np.sqrt(np.sum(u_i ** 2)) / a)
-    se_bc = float(np.sqrt(np.sum((u_i / (1 - h)) ** 2)) / a) if np.all(h < 1) else float("nan")
-    return PooledFit(float(np.log(k[0])), se_r, se_bc, bool(at_b[0]), int(y.shape[0]))
+        return PooledFit(float(np.log(k[0])), nan, nan, nan, True, int(y.shape[0]), int(y.shape[1]) if two_way else 0)
+
+    def one_way(yy, nn):
+        info = nn @ w_info
+        u = (yy - nn * mu) @ w_score
+        h = info / a
+        s_r = float(np.sum(u ** 2))
+        s_bc = float(np.sum((u / (1 - h)) ** 2)) if np.all(h < 1) else nan
+        return s_r, s_bc
+
+    s_r, s_bc = one_way(y_r, n_r)
+    se_tw = nan
+    if two_way:
+        s_img, _ = one_way(y.sum(0), n.sum(0))   # many images: no small-sample correction needed
+        u_cell = (y - n * mu) @ w_score
+        total = s_bc + s_img - float(np.sum(u_cell ** 2))
+        if total <= 0:                           # can happen in tiny samples; fall back to readers only
+            total = s_bc
+        se_tw = float(np.sqrt(total) / a)
+    return PooledFit(float(np.log(k[0])), float(np.sqrt(s_r) / a), float(np.sqrt(s_bc) / a), se_tw,
+                     bool(at_b[0]), int(y.shape[0]), int(y.shape[1]) if two_way else 0)
 
 
 def pooled_curves(df: pd.DataFrame, m: int, by: str = "detector", criterion_pc: float | None = None,
@@ -308,8 +341,8 @@ def pooled_curves(df: pd.DataFrame, m: int, by: str = "detector", criterion_pc: 
     """Population threshold per group × diameter from a GEE with reader clusters.
 
     The threshold is ``d′_T / k`` with d′_T = d′_M(criterion); its CI is
-    ``exp(log C_T ± t_{R−1} · SE(log k))`` with the bias-reduced cluster-robust SE and a
-    t quantile with R − 1 degrees of freedom (R readers).  Needs ≥ 3 readers; smaller
+    ``exp(log C_T ± t · SE(log k))`` with the two-way (reader × image) cluster-robust SE,
+    the reader part bias-reduced, and a t quantile with R − 1 degrees of freedom (R readers).  Needs ≥ 3 readers; smaller
     studies get a note instead of a row.
     """
     p = halfway_criterion(m) if criterion_pc is None else float(criterion_pc)
@@ -320,22 +353,26 @@ def pooled_curves(df: pd.DataFrame, m: int, by: str = "detector", criterion_pc: 
         if n_r < 3:
             notes.append(f"pooled curve not estimated for {by} {grp}, {diam:g} mm: {n_r} reader(s), need at least 3")
             continue
-        u = unit_counts(g["contrast"].to_numpy(), g["correct"].to_numpy(), g["reader"].to_numpy())
-        fit = pooled_mafc_gee(u.levels, u.y, u.n, m)
-        logk, se = fit.log_k, fit.se_bias_reduced
+        levels = np.unique(g["contrast"].to_numpy())
+        readers, images = np.unique(g["reader"]), np.unique(g["image"])
+        yc, nc = _counts_cube(g, readers, images, levels)
+        fit = pooled_mafc_gee(levels, yc, nc, m)
+        logk, se = fit.log_k, fit.se_two_way
+        n_img = len(images)
         conv = not fit.at_bound
         note = ""
         if not np.isfinite(se) or se <= 0:
             note = "standard error not estimable"
         if fit.at_bound:
             note = "no interior maximum (all correct or at chance): threshold is only a bound"
-        tq = sps.t.ppf(0.5 + ci / 2, n_r - 1)
+        dof = max(n_r - 1, 1)
+        tq = sps.t.ppf(0.5 + ci / 2, dof)
         t_hat = d_t / np.exp(logk)
         rows.append({"reader": "pooled", by: grp, "diameter_mm": float(diam), "threshold_contrast": float(t_hat),
                      "ci_low": float(t_hat * np.exp(-tq * se)) if np.isfinite(se) else float("nan"),
                      "ci_high": float(t_hat * np.exp(tq * se)) if np.isfinite(se) else float("nan"),
                      "log10_se": float(se / np.log(10)), "n_trials": int(len(g)), "n_readers": int(n_r),
-                     "n_images": int(g["image"].nunique()), "method": "GEE, M-AFC link, reader clusters",
+                     "n_images": int(n_img), "method": "GEE, M-AFC link, reader × image clusters",
                      "converged": conv, "note": note})
     return pd.DataFrame(rows), notes
 
@@ -491,15 +528,52 @@ def _pct_phrase(ratio: float) -> str:
     return f"{abs(pct):.0f} % {'higher' if pct >= 0 else 'lower'}"
 
 
+def _image_sampling_se(trials: pd.DataFrame, by: str, ref, lev, diam: float, readers, m: int, n_boot: int,
+                       rng: np.random.Generator) -> float:
+    """Shared image-sampling SD (log10) of the mean-over-readers log threshold ratio.
+
+    Every reader reads the same images of a group, so the images' noise is common to all
+    readers and does not show in the between-reader residual of the mixed model.  Readers
+    are held fixed; images are drawn with replacement within each group (Efron &
+    Tibshirani 1993); each reader's threshold is refitted in every resample (vectorised).
+    The shared part is the between-reader covariance of the per-reader log ratios over
+    resamples: Σ_{r≠r′} Cov(Δ_r, Δ_r′) / R² (the diagonal is in the mixed model already).
+    """
+    means = []
+    for grp in (ref, lev):
+        g = trials[(trials[by] == grp) & np.isclose(trials["diameter_mm"], diam) & trials["reader"].isin(readers)]
+        levels, images = np.unique(g["contrast"].to_numpy()), np.unique(g["image"])
+        y, n = _counts_cube(g, list(readers), images, levels)
+        w = bootstrap_weights(len(images), n_boot, rng)
+        yb = np.einsum("bi,ril->brl", w, y, optimize=True).reshape(-1, len(levels))
+        nb = np.einsum("bi,ril->brl", w, n, optimize=True).reshape(-1, len(levels))
+        k0, _ = fit_k_batch(levels, y.sum((0, 1))[None], n.sum((0, 1))[None], m)
+        k, _ = fit_k_batch(levels, yb, nb, m, center=k0[0])
+        means.append(-np.log10(k).reshape(n_boot, len(readers)))
+    diff = means[1] - means[0]                          # (B, R) per-reader log10 ratio in each resample
+    r = diff.shape[1]
+    if r < 2:
+        return float(np.std(diff[:, 0], ddof=1))
+    cov = np.cov(diff, rowvar=False)
+    # only the covariance between readers is the shared image part; each reader's own
+    # variance (diagonal) is already in the mixed model's residual
+    shared = (cov.sum() - np.trace(cov)) / r ** 2
+    return float(np.sqrt(max(shared, 0.0)))
+
+
 def compare_groups(curves: pd.DataFrame, by: str = "detector", reference: str | None = None,
-                   ci: float = 0.95) -> tuple[pd.DataFrame, list[str]]:
+                   ci: float = 0.95, trials: pd.DataFrame | None = None, m: int | None = None,
+                   n_boot: int = 0, rng: np.random.Generator | None = None) -> tuple[pd.DataFrame, list[str]]:
     """Ratio of thresholds (level / reference) per diameter from a linear mixed model.
 
     Model per diameter: log10 T_{r,g} = β₀ + β_g + u_r + ε, u_r ~ N(0, τ²) (reader random
     intercept; statsmodels MixedLM, REML), on converged per-reader thresholds.  Images
     are not identifiable in per-reader thresholds (each pools all of a reader's images),
-    so image variability enters through ε.  Ratio = 10^β_g; CI = 10^(β_g ± t_{R−1}·SE)
-    with R the number of readers read in both levels; p from the same t; Holm-adjusted
+    and when all readers read the same images their noise is shared, which the residual
+    ε cannot show; so with ``trials`` and ``n_boot`` > 0 the image-sampling variance of
+    β_g is estimated by resampling images within each group (:func:`_image_sampling_se`)
+    and added: SE² = SE²_MixedLM + SE²_images.  Ratio = 10^β_g; CI = 10^(β_g ± t_{R−1}·SE)
+    with R the number of readers who read both levels; p from the same t; Holm-adjusted
     over diameters (statsmodels.stats.multitest.multipletests) for each level.
     """
     import statsmodels.formula.api as smf
@@ -544,12 +618,19 @@ def compare_groups(curves: pd.DataFrame, by: str = "detector", reference: str | 
                     beta = float(dlt.mean())
                     se = float(dlt.std(ddof=1) / np.sqrt(dlt.size)) if dlt.size > 1 else float("nan")
                     method = "paired differences (mixed model not estimable)"
+            se_mixed = se
+            se_img = float("nan")
+            if trials is not None and n_boot > 1 and m is not None:
+                se_img = _image_sampling_se(trials, by, ref, lev, float(diam), sorted(paired), m, n_boot,
+                                            rng if rng is not None else np.random.default_rng(0))
+                se = float(np.sqrt(se_mixed ** 2 + se_img ** 2))
             dfree = n_r - 1
             tq = sps.t.ppf(0.5 + ci / 2, dfree)
             pval = float(2 * sps.t.sf(abs(beta / se), dfree)) if se > 0 else float("nan")
             rows.append({"level": lev, "reference": ref, "diameter_mm": float(diam), "ratio": float(10 ** beta),
                          "ci_low": float(10 ** (beta - tq * se)), "ci_high": float(10 ** (beta + tq * se)),
-                         "log10_ratio": beta, "se_log10": se, "p_value": pval, "n_readers": int(n_r),
+                         "log10_ratio": beta, "se_log10": se, "se_log10_mixedlm": se_mixed,
+                         "se_log10_images": se_img, "p_value": pval, "n_readers": int(n_r),
                          "method": method})
     table = pd.DataFrame(rows)
     if table.empty:
@@ -668,7 +749,10 @@ def analyse_study(trials: pd.DataFrame, model: pd.DataFrame | None = None, *, by
     if cv.empty:
         notes.append("between-reader CV needs at least 2 readers")
     say(f"{by} comparison")
-    comp, cn = compare_groups(rc, by, reference, ci)
+    comp, cn = compare_groups(rc, by, reference, ci, trials=trials, m=m, n_boot=n_boot, rng=rng)
+    if len(comp) and n_boot < 2:
+        notes.append(f"{by} comparison without the image-sampling variance (needs bootstrap resamples): "
+                     "its CIs are too narrow when all readers read the same images")
     notes += cn
     mc = pd.DataFrame()
     hm = None

@@ -1,0 +1,73 @@
+"""`limen analyse` end to end through click's test runner (small simulated studies)."""
+
+from __future__ import annotations
+
+import json
+
+import numpy as np
+import pytest
+from click.testing import CliRunner
+
+from scorer.cli import main
+from scorer.reader_model import simulate_reader_study
+
+
+@pytest.fixture(scope="module")
+def study_files(tmp_path_factory):
+    d = tmp_path_factory.mktemp("study")
+    st = simulate_reader_study(np.random.default_rng(31), 4, diameters_mm=(0.25, 1.0), n_images=8, n_repeats=2)
+    st.trials.to_csv(d / "reads.csv", index=False)
+    st.model_trials.to_csv(d / "model.csv", index=False)
+    st.trials[st.trials.reader == "reader01"].to_csv(d / "one.csv", index=False)
+    st.trials.drop(columns=["true_site"]).to_csv(d / "bad.csv", index=False)
+    return d
+
+
+def test_json_has_the_documented_keys(study_files):
+    res = CliRunner().invoke(main, ["analyse", str(study_files / "reads.csv"), "--model", str(study_files / "model.csv"),
+                                    "--json", "--n-boot", "100", "--seed", "3"])
+    assert res.exit_code == 0, res.output
+    out = json.loads(res.stdout)
+    for key in ("readers", "curves", "detector_comparison", "human_model_factor", "agreement"):
+        assert key in out
+    assert out["readers"] == ["reader01", "reader02", "reader03", "reader04"]
+    pooled = [c for c in out["curves"] if c["reader"] == "pooled"]
+    assert len(pooled) == 4 and all(c["ci_low"] < c["threshold_contrast"] < c["ci_high"] for c in pooled)
+    for c in out["detector_comparison"]:
+        assert {"diameter_mm", "ratio", "ci_low", "ci_high", "p_adjusted"} <= set(c)
+    assert out["human_model_factor"]["factor"] > 1
+    # same seed, same numbers
+    res2 = CliRunner().invoke(main, ["analyse", str(study_files / "reads.csv"), "--model", str(study_files / "model.csv"),
+                                     "--json", "--n-boot", "100", "--seed", "3"])
+    assert json.loads(res2.stdout)["curves"] == out["curves"]
+
+
+def test_out_writes_report_and_tables(study_files, tmp_path):
+    res = CliRunner().invoke(main, ["analyse", str(study_files / "reads.csv"), "--model", str(study_files / "model.csv"),
+                                    "--out", str(tmp_path / "out"), "--n-boot", "50"])
+    assert res.exit_code == 0, res.output
+    assert "human/model (npwe) threshold factor" in res.stdout
+    for name in ("analysis.json", "report.html", "reader_curves.csv", "pooled_curves.csv", "comparison.csv",
+                 "human_model_factor.csv"):
+        assert (tmp_path / "out" / name).is_file(), name
+    page = (tmp_path / "out" / "report.html").read_text()
+    assert "never replace" in page and page.count("<svg") >= 4      # curves ×2, forest, Bland–Altman
+
+
+def test_bad_table_exits_2_with_one_line(study_files):
+    res = CliRunner().invoke(main, ["analyse", str(study_files / "bad.csv")])
+    assert res.exit_code == 2
+    assert res.stderr.strip().startswith("error:") and "missing column(s) true_site" in res.stderr
+    assert len(res.stderr.strip().splitlines()) == 1 and "Traceback" not in res.stderr
+    res = CliRunner().invoke(main, ["analyse", str(study_files / "nope.csv")])
+    assert res.exit_code == 2 and "file not found" in res.stderr
+
+
+def test_one_reader_study_gives_notes_not_a_crash(study_files):
+    res = CliRunner().invoke(main, ["analyse", str(study_files / "one.csv"), "--json", "--n-boot", "50"])
+    assert res.exit_code == 0, res.output
+    out = json.loads(res.stdout)
+    assert "NaN" not in res.stdout
+    assert all(c["reader"] == "reader01" for c in out["curves"])
+    assert out["detector_comparison"] == [] and out["human_model_factor"] is None
+    assert any("pooled curve not estimated" in n for n in out["notes"])
