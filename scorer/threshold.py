@@ -15,11 +15,20 @@ images and targets; with two sites, the pooled within-target variance over image
 linear observer's d′ is proportional to contrast, so d′ = k·C is fitted through the
 origin per diameter and C_T = d′_T / k, where d′_T is the d′ giving the criterion
 proportion correct in M-AFC, computed by integrating the M-AFC formula
-(:func:`scorer.mafc.dprime_for_pc`).  The fit uses the targets up to 4× a first
-threshold estimate, so that it stays near threshold.
+(:func:`scorer.mafc.dprime_for_pc`).  The fit uses every target: the model
+observers are linear by construction, so the high-contrast targets measure k most
+precisely; a departure from proportionality shows up in the over-dispersion test
+below and widens the interval.  (``local_factor`` restricts the fit to targets up to
+that multiple of a first estimate, for observers that are not linear.)
 
-Both methods' confidence intervals come from a bootstrap that resamples whole
-images with replacement (seeded; Efron & Tibshirani 1993).  With the few images a
+The d′ method's confidence interval is analytic by default: each target's mean
+response difference has variance σ²·M/((M−1)·n) over n images, which gives the
+variance of the fitted slope k and so of log C_T (plus the small term from
+estimating σ); over-dispersion beyond that widens it.  Because the whole image is
+used, not just one decision per target, this interval is narrow with few images.
+The count method's interval (and the d′ method's with ``ci_method="bootstrap"``)
+comes from a bootstrap that resamples whole images with replacement (seeded;
+Efron & Tibshirani 1993).  With the few images a
 physicist takes (4–16) the plain percentile interval is too narrow, so the
 *expanded* percentile interval is used: the quantiles are taken at
 α′/2 = Φ(−√(n/(n−1)) · t_{1−α/2, n−1}) instead of α/2, n the number of images
@@ -55,7 +64,7 @@ from scipy import stats
 from .psychometric import bootstrap_threshold, percentile_ci, unit_counts
 
 METHODS = ("dprime", "count")
-LOCAL_FIT_FACTOR = 4.0
+LOCAL_FIT_FACTOR = None  # None: fit d′ = k·C on every target (the NPW/NPWE observers are linear)
 
 
 @dataclass
@@ -186,22 +195,58 @@ def _dprime_k(S, B, contrasts, W, dprime_t, local_factor=LOCAL_FIT_FACTOR):
         d = (ms - mb) / sigma[:, None]                  # (R, J)
         C = np.asarray(contrasts, float)
         k = (d @ C) / (C @ C)
-        # refit near threshold: targets with C ≤ factor × first estimate (at least 3 targets)
         ct0 = dprime_t / k
-        use = C[None, :] <= local_factor * ct0[:, None]
-        few = use.sum(axis=1) < 3
-        if few.any():
-            first3 = np.zeros_like(use[0])
-            first3[:3] = True
-            use[few] = first3
-        Cw = np.where(use, C[None, :], 0.0)
-        k2 = (d * Cw).sum(axis=1) / (Cw ** 2).sum(axis=1)
-    return k2, d[0] if d.shape[0] else None, sigma
+        if local_factor is None:
+            use = np.broadcast_to(np.isfinite(C)[None, :], d.shape).copy()
+            k2 = k
+        else:  # refit near threshold: targets with C ≤ factor × first estimate (at least 3 targets)
+            use = C[None, :] <= local_factor * ct0[:, None]
+            few = use.sum(axis=1) < 3
+            if few.any():
+                first3 = np.zeros_like(use[0])
+                first3[:3] = True
+                use[few] = first3
+            Cw = np.where(use, C[None, :], 0.0)
+            k2 = (d * Cw).sum(axis=1) / (Cw ** 2).sum(axis=1)
+    return k2, d, sigma, use, df
+
+
+def _analytic_ci(d, C, use, n_img: int, m: int, df: float, est: float, ci: float):
+    """CI of C_T from the sampling variance of the fitted slope k (see module docstring).
+
+    D_j = mean signal − mean non-signal response has variance σ²·M/((M−1)·n); the common σ̂
+    adds 1/(2·df) to var(log k).  If the targets scatter about d′ = k·C more than that
+    variance allows (χ² test, p < 0.01), the variance is scaled by the over-dispersion
+    factor χ²/(J−1) (McCullagh & Nelder, *Generalized Linear Models* (1989), sec. 4.5).
+    """
+    Cu, du = C[use], d[use]
+    J = Cu.size
+    if J < 2 or not np.all(np.isfinite(du)):
+        return float("nan"), float("nan"), "too few targets for a confidence interval"
+    k = float(du @ Cu / (Cu @ Cu))
+    var_d = m / ((m - 1.0) * n_img)                      # variance of each d′_j from the image noise
+    var_logk = var_d / (k * k * (Cu @ Cu)) + 1.0 / (2.0 * df)
+    # σ̂'s error scales every d′_j alike and is absorbed into k, so only var_d enters the residual test
+    chi2 = float(np.sum((du - k * Cu) ** 2 / var_d))
+    note = ""
+    if J >= 3 and stats.chi2.sf(chi2, J - 1) < 0.01:
+        phi = chi2 / (J - 1)
+        var_logk *= phi
+        note = f"d′ scatter {phi:.1f}× the noise expectation: CI widened accordingly"
+    z = stats.norm.ppf(0.5 + ci / 2.0)
+    half = z * np.sqrt(var_logk)
+    return float(est * np.exp(-half)), float(est * np.exp(half)), note
 
 
 def dprime_thresholds(responses: pd.DataFrame, *, criterion_pc: float | None = None, n_boot: int = 1000,
-                      seed: int | None = 0, ci: float = 0.95) -> ThresholdCurve:
-    """Threshold contrast per diameter by the d′ method (see module docstring)."""
+                      seed: int | None = 0, ci: float = 0.95, ci_method: str = "analytic") -> ThresholdCurve:
+    """Threshold contrast per diameter by the d′ method (see module docstring).
+
+    ``ci_method``: "analytic" (default; the sampling variance of the linear observer's d′,
+    with an over-dispersion correction) or "bootstrap" (resampling images).
+    """
+    if ci_method not in ("analytic", "bootstrap"):
+        raise LimenError(f"unknown CI method {ci_method!r}; choose analytic or bootstrap")
     _check_responses(responses)
     rng = np.random.default_rng(seed)
     observer = str(responses["observer"].iloc[0])
@@ -211,12 +256,14 @@ def dprime_thresholds(responses: pd.DataFrame, *, criterion_pc: float | None = N
         p = halfway_criterion(m) if criterion_pc is None else float(criterion_pc)
         dt = dprime_for_pc(p, m)
         n_img = S.shape[0]
-        k, _, _ = _dprime_k(S, B, C, np.ones((1, n_img)), dt)
+        k, d_all, sigma, use, df = _dprime_k(S, B, C, np.ones((1, n_img)), dt)
         est = dt / k[0] if k[0] > 0 else np.inf
         note = ""
-        if n_img >= 2 and n_boot > 0:
+        if ci_method == "analytic" and k[0] > 0:
+            lo, hi, note = _analytic_ci(d_all[0], C, use[0], n_img, m, float(df[0]), dt / k[0], ci)
+        elif n_img >= 2 and n_boot > 0:
             W = rng.multinomial(n_img, np.full(n_img, 1.0 / n_img), size=n_boot)
-            kb, _, _ = _dprime_k(S, B, C, W, dt)
+            kb = _dprime_k(S, B, C, W, dt)[0]
             with np.errstate(divide="ignore"):
                 tb = np.where(kb > 0, dt / kb, np.inf)
             lo, hi = expanded_percentile_ci(tb, n_img, ci)
