@@ -26,9 +26,12 @@ chain, for each pixel, is:
    domain to signal *and* noise alike (so the indirect NPS falls with frequency).
    The photodiode fill factor (< 1) is the fraction of light collected; it scales
    the gain, which raises the relative weight of the electronic noise.
-   Simplification (documented): the spread acts on the pixel grid, so noise above
-   the Nyquist frequency is not spread before it aliases; with L ≈ 0.4 pixel this
-   changes the NPS near Nyquist by a few per cent at most.
+   The mean signal is spread in the continuous domain before it is integrated over
+   the pixels (discs on a local 8× finer grid, edges through the analytic edge
+   response), so it carries the true presampling MTF and its aliasing.  The noise
+   (Poisson and Swank fluctuations) is spread on the pixel grid; simplification
+   (documented): noise above the Nyquist frequency is not spread before it aliases,
+   which changes the NPS near Nyquist by a few per cent at most for L ≈ 0.4 pixel.
 4. **Read-out.**  ``PV = offset + g · f_fill · S + e``, with g the ADU per detected
    quantum, e ~ N(0, σ_e²) the additive electronic noise, rounded and clipped to
    the panel's bit depth (14 bits).
@@ -205,22 +208,50 @@ class SimulatedImage:
 
 
 # --------------------------------------------------------------------------- rendering
-def render_discs(transmission: np.ndarray, centers_rc, radii_px, contrasts) -> None:
-    """Multiply ``transmission`` in place by 1 − C·coverage for each disc."""
+def render_discs(transmission: np.ndarray, centers_rc, radii_px, contrasts, spread_px: float = 0.0,
+                 spread_supersample: int = 8) -> None:
+    """Multiply ``transmission`` in place by 1 − C·coverage for each disc.
+
+    With ``spread_px`` > 0 (the exponential LSF length L in pixels) the disc is first
+    spread by T(f) = 1/(1 + (2πLf)²) in the continuous domain — on a local grid
+    ``spread_supersample`` times finer than the pixels — and then integrated over each
+    pixel, so the signal carries the true presampling MTF (aperture × spread) with its
+    aliasing, not a spread applied after sampling.
+    """
     for rc, rad, c in zip(np.atleast_2d(centers_rc), np.atleast_1d(radii_px), np.atleast_1d(contrasts)):
-        patch = disc_coverage_patch(rc, float(rad), transmission.shape)
-        if patch is not None:
-            rs, cs, cov = patch
-            transmission[rs, cs] *= 1.0 - c * cov
+        if spread_px <= 0:
+            patch = disc_coverage_patch(rc, float(rad), transmission.shape)
+            if patch is not None:
+                rs, cs, cov = patch
+                transmission[rs, cs] *= 1.0 - c * cov
+            continue
+        margin = int(np.ceil(12.0 * spread_px)) + 2
+        r0 = int(np.floor(rc[0] - rad)) - margin
+        c0 = int(np.floor(rc[1] - rad)) - margin
+        n = int(np.ceil(2 * rad)) + 2 * margin + 2
+        S = int(spread_supersample)
+        sub = (np.arange(n * S) + 0.5) / S - 0.5
+        inside = ((r0 + sub[:, None] - rc[0]) ** 2 + (c0 + sub[None, :] - rc[1]) ** 2) <= rad * rad
+        f = np.hypot(sfft.fftfreq(n * S, d=1.0 / S)[:, None], sfft.rfftfreq(n * S, d=1.0 / S)[None, :])
+        spread = sfft.irfft2(sfft.rfft2(inside.astype(np.float64)) / (1.0 + (2 * np.pi * spread_px * f) ** 2),
+                             s=inside.shape)
+        cov = spread.reshape(n, S, n, S).mean(axis=(1, 3))
+        rs0, cs0 = max(r0, 0), max(c0, 0)
+        rs1, cs1 = min(r0 + n, transmission.shape[0]), min(c0 + n, transmission.shape[1])
+        if rs0 < rs1 and cs0 < cs1:
+            transmission[rs0:rs1, cs0:cs1] *= 1.0 - c * cov[rs0 - r0:rs1 - r0, cs0 - c0:cs1 - c0]
 
 
 def render_edge(shape: tuple[int, int], angle_deg: float, edge_transmission: float = 0.02,
-                center_rc: tuple[float, float] | None = None) -> np.ndarray:
+                center_rc: tuple[float, float] | None = None, spread_px: float = 0.0) -> np.ndarray:
     """Transmission of a straight opaque-ish edge through ``center_rc``.
 
     ``angle_deg`` is the edge's angle from the column axis (vertical); 0–45° gives a
     near-vertical edge (shadow on the right), 45–135° a near-horizontal edge (shadow
-    below).  Pixels crossed by the edge get their exact-to-1/SUPERSAMPLE² coverage.
+    below).  Pixels near the edge get their coverage integrated on a 1/SUPERSAMPLE grid;
+    with ``spread_px`` = L > 0 the edge is first spread by the exponential LSF
+    (1/2L)·exp(−|u|/L), whose edge response is ½·exp(u/L) for u < 0 and 1 − ½·exp(−u/L)
+    for u ≥ 0.
     """
     rows, cols = shape
     if center_rc is None:
@@ -232,14 +263,18 @@ def render_edge(shape: tuple[int, int], angle_deg: float, edge_transmission: flo
     c = np.arange(cols)[None, :] - center_rc[1]
     dist = c * n_col + r * n_row  # signed distance (pixels) of each pixel centre
     cov = (dist > 0).astype(np.float64)
-    band = np.abs(dist) < 0.75 * (abs(n_col) + abs(n_row))
+    band = np.abs(dist) < 0.75 * (abs(n_col) + abs(n_row)) + 14.0 * spread_px
     ri, ci = np.nonzero(band)
     s = SUPERSAMPLE
     sub = (np.arange(s) + 0.5) / s - 0.5
     dr = np.repeat(sub, s)
     dc = np.tile(sub, s)
     d_sub = (dist[ri, ci][:, None] + dc[None, :] * n_col + dr[None, :] * n_row)
-    cov[ri, ci] = (d_sub > 0).mean(axis=1)
+    if spread_px > 0:
+        e = np.exp(-np.abs(d_sub) / spread_px)
+        cov[ri, ci] = np.where(d_sub >= 0, 1.0 - 0.5 * e, 0.5 * e).mean(axis=1)
+    else:
+        cov[ri, ci] = (d_sub > 0).mean(axis=1)
     return 1.0 - (1.0 - edge_transmission) * cov
 
 
@@ -267,9 +302,12 @@ def expose(transmission: np.ndarray, model: DetectorModel, dose_ugy: float,
     excess = 1.0 / model.swank - 1.0
     g = model.adu_per_quantum * model.fill_factor
     if model.light_spread_mm > 0:
+        # the mean (λ) was rendered with the spread already applied before sampling; the quantum
+        # and Swank fluctuations are spread on the pixel grid
+        fluct = n - lam
         if excess > 0:
-            n += np.sqrt(n * excess) * rng.standard_normal(n.shape)
-        signal = _light_spread(n, model) * g
+            fluct += np.sqrt(n * excess) * rng.standard_normal(n.shape)
+        signal = (lam + _light_spread(fluct, model)) * g
         if model.electronic_noise_adu > 0:
             signal += model.electronic_noise_adu * rng.standard_normal(n.shape)
     else:  # no spread: both Gaussian terms can be drawn as one
@@ -315,16 +353,17 @@ def phantom_transform(layout: Layout, pose: Pose, shape: tuple[int, int], pixel_
 
 
 def phantom_transmission(layout: Layout, transform: PhantomTransform, shape: tuple[int, int],
-                         pixel_mm: float, magnification: float) -> np.ndarray:
-    """Transmission map of the plate: its discs (signal sites only) and markers."""
+                         pixel_mm: float, magnification: float, spread_px: float = 0.0) -> np.ndarray:
+    """Transmission map of the plate — its discs (signal sites only) and markers — as the
+    pixels see it (aperture-integrated, and spread first when ``spread_px`` > 0)."""
     trans = np.ones(shape, dtype=np.float64)
     scale = magnification / pixel_mm
     markers = layout.markers
     render_discs(trans, transform.to_pixel([m.xy_mm for m in markers]),
-                 [m.diameter_mm / 2 * scale for m in markers], [m.contrast for m in markers])
+                 [m.diameter_mm / 2 * scale for m in markers], [m.contrast for m in markers], spread_px)
     sig = [t.signal_xy_mm for t in layout.targets]
     render_discs(trans, transform.to_pixel(sig), [t.diameter_mm / 2 * scale for t in layout.targets],
-                 [t.contrast for t in layout.targets])
+                 [t.contrast for t in layout.targets], spread_px)
     return trans
 
 
@@ -361,7 +400,7 @@ def simulate(model: DetectorModel, kind: str = "phantom", dose_ugy: float = 100.
         if shape is None:
             shape = _phantom_field_shape(layout, pose, p) if small else (model.rows, model.cols)
         tf = phantom_transform(layout, pose, shape, p)
-        trans = phantom_transmission(layout, tf, shape, p, pose.magnification)
+        trans = phantom_transmission(layout, tf, shape, p, pose.magnification, model.light_spread_mm / p)
         truth.update(layout=layout.source_path, layout_name=layout.name,
                      pose=asdict(pose), transform={"matrix": tf.matrix, "offset": tf.offset},
                      fiducials_px={m.id: tf.to_pixel(m.xy_mm)[0].tolist() for m in layout.markers})
@@ -370,7 +409,7 @@ def simulate(model: DetectorModel, kind: str = "phantom", dose_ugy: float = 100.
         trans = np.ones(shape, dtype=np.float64)
     elif kind == "edge":
         shape = shape or ((SMALL_FIELD_PX, SMALL_FIELD_PX) if small else (model.rows, model.cols))
-        trans = render_edge(shape, edge_angle_deg)
+        trans = render_edge(shape, edge_angle_deg, spread_px=model.light_spread_mm / p)
         truth["edge_angle_deg"] = float(edge_angle_deg)
     else:
         raise LimenError(f"unknown image kind {kind!r}; choose phantom, flat or edge")
