@@ -287,7 +287,7 @@ def _light_spread(image: np.ndarray, model: DetectorModel) -> np.ndarray:
     fc = sfft.rfftfreq(cols, d=p)
     f = np.hypot(fr[:, None], fc[None, :])
     spec = sfft.rfft2(image, workers=-1)
-    spec *= model.light_transfer(f)
+    spec *= model.light_transfer(f).astype(np.float32)
     return sfft.irfft2(spec, s=image.shape, workers=-1)
 
 
@@ -298,23 +298,26 @@ def expose(transmission: np.ndarray, model: DetectorModel, dose_ugy: float,
         raise LimenError(f"--dose-ugy must be positive, got {dose_ugy}")
     p2 = model.pixel_pitch_mm ** 2
     lam = transmission * (model.q_per_mm2_ugy * dose_ugy * p2 * model.qde)
-    n = rng.poisson(lam).astype(np.float64)
+    n = rng.poisson(lam)
     excess = 1.0 / model.swank - 1.0
     g = model.adu_per_quantum * model.fill_factor
+    f32 = np.float32
     if model.light_spread_mm > 0:
         # the mean (λ) was rendered with the spread already applied before sampling; the quantum
-        # and Swank fluctuations are spread on the pixel grid
-        fluct = n - lam
+        # and Swank fluctuations are spread on the pixel grid (the Swank term's variance uses the
+        # mean count, λ·(1/A_S − 1), instead of the drawn one: a difference of order 1/√λ)
+        fluct = (n - lam).astype(f32)
         if excess > 0:
-            fluct += np.sqrt(n * excess) * rng.standard_normal(n.shape)
-        signal = (lam + _light_spread(fluct, model)) * g
+            fluct += np.sqrt(lam * excess).astype(f32) * rng.standard_normal(n.shape, dtype=f32)
+        signal = lam + _light_spread(fluct, model)
+        signal *= g
         if model.electronic_noise_adu > 0:
-            signal += model.electronic_noise_adu * rng.standard_normal(n.shape)
+            signal += model.electronic_noise_adu * rng.standard_normal(n.shape, dtype=f32)
     else:  # no spread: both Gaussian terms can be drawn as one
-        sd = np.sqrt(g * g * n * excess + model.electronic_noise_adu ** 2)
-        signal = g * n
+        signal = g * n.astype(np.float64)
+        sd = np.sqrt(g * g * excess * lam + model.electronic_noise_adu ** 2)
         if np.any(sd > 0):
-            signal += sd * rng.standard_normal(n.shape)
+            signal += sd * rng.standard_normal(n.shape, dtype=f32)
     signal += model.offset_adu
     np.rint(signal, out=signal)
     np.clip(signal, 0, 2 ** model.bits - 1, out=signal)
