@@ -60,10 +60,12 @@ def run(out: Path) -> Path:
                 "--dose-ugy", str(DOSE_UGY), "--seed", str(seed + 3), "--out", str(d / "edges")])
         conv = str(d / "images" / f"{panel}-conversion.toml")
         images = sorted(str(p) for p in (d / "images").glob("*.dcm"))
-        _limen(["score", *images, "--observer", "npw", "--conversion", conv, "--out", str(d / "score")])
+        # measure the panel first, then score the plate with templates shaped by the measured MTF
         _limen(["detector", "--flat", *sorted(str(p) for p in (d / "flats").glob("*.dcm")),
                 "--edge", *sorted(str(p) for p in (d / "edges").glob("*.dcm")),
                 "--kerma-ugy", str(DOSE_UGY), "--q", "5000", "--conversion", conv, "--out", str(d / "detector")])
+        _limen(["score", *images, "--observer", "npw", "--conversion", conv,
+                "--mtf", str(d / "detector" / "detector.json"), "--out", str(d / "score")])
         links += [(f"{panel} panel: contrast-detail report", f"{panel}/score/report.html"),
                   (f"{panel} panel: MTF, NNPS, DQE", f"{panel}/detector/detector.html")]
     _limen(["compare-detectors", str(out / "direct" / "detector" / "detector.json"),

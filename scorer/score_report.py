@@ -90,9 +90,20 @@ def psychometric_plot(result):
     return fig
 
 
-def _thumb(png: Path) -> str:
-    data = base64.b64encode(Path(png).read_bytes()).decode("ascii")
-    return f"<img alt='registration overlay' src='data:image/png;base64,{data}' style='max-width:32%;margin:2px'>"
+def _thumb(png: Path, max_px: int = 560) -> str:
+    """A small JPEG of an overlay, embedded in the page (the full-size PNG stays beside the report)."""
+    import cv2
+
+    img = cv2.imread(str(png), cv2.IMREAD_COLOR)
+    if img is None:
+        return ""
+    scale = max_px / max(img.shape[:2])
+    if scale < 1:
+        img = cv2.resize(img, None, fx=scale, fy=scale, interpolation=cv2.INTER_AREA)
+    ok, buf = cv2.imencode(".jpg", img, [cv2.IMWRITE_JPEG_QUALITY, 82])
+    data = base64.b64encode(buf.tobytes()).decode("ascii")
+    return (f"<a href='overlays/{Path(png).name}'><img alt='registration overlay {Path(png).name}' "
+            f"src='data:image/jpeg;base64,{data}' style='max-width:32%;margin:2px'></a>")
 
 
 def write_score_outputs(result, out_dir, overlays: list[Path] | None = None, command: str = "") -> dict:
