@@ -195,6 +195,12 @@ def _roi_geometry(layout: Layout, scale_px_per_mm: float) -> dict:
     return out
 
 
+def saturation_level(pixels: np.ndarray, min_fraction: float = 1e-3) -> float | None:
+    """The clipping level when at least ``min_fraction`` of the pixels sit exactly at the maximum."""
+    top = float(np.max(pixels))
+    return top if np.count_nonzero(pixels == top) >= min_fraction * pixels.size else None
+
+
 def score_image(image: Image, layout: Layout, placement, config: ObserverConfig = ObserverConfig(),
                 image_id: str | None = None) -> pd.DataFrame:
     """Model-observer responses at every candidate site of every target.
@@ -217,6 +223,7 @@ def score_image(image: Image, layout: Layout, placement, config: ObserverConfig 
         # eye filter squared on the template (ICRU Report 54): E(f) with f in cycles/mm at the image plane
         eye_tf = lambda f_px: eye_filter(f_px / pixel_mm, config.viewing_distance_mm) ** 2  # noqa: E731
     image_id = image_id or image.metadata.source_path or "image"
+    saturated = saturation_level(pixels)
     rows = []
     H, W = pixels.shape
     for t in layout.targets:
@@ -236,6 +243,9 @@ def score_image(image: Image, layout: Layout, placement, config: ObserverConfig 
             if ri - h < 0 or ci - h < 0 or ri + h + 1 > H or ci + h + 1 > W:
                 raise LimenError(f"target {t.id!r} site {k} lies at the image edge; the phantom is cut off")
             g = pixels[ri - h:ri + h + 1, ci - h:ci + h + 1]
+            if saturated is not None and np.any(g >= saturated):
+                raise LimenError(f"target {t.id!r} site {k} is saturated (pixels at the detector's maximum "
+                                 "value); repeat the exposure at a lower dose")
             dy, dx = yy - (r - ri), xx - (c - ci)
             dist = np.hypot(dy, dx)
             roi = dist <= rr

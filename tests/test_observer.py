@@ -76,3 +76,13 @@ def test_decide_picks_largest_response_and_scores_truth():
     img, lay, pl = _disc_image(1.0, 1e-6, 1.0, 400, seed=6)  # invisible discs: chance, 1/4
     tr = decide(score_image(img, lay, pl, ObserverConfig("npw", blur=SystemBlur(0.0))))
     assert tr["correct"].mean() == pytest.approx(0.25, abs=3 * np.sqrt(0.25 * 0.75 / 400))
+
+
+def test_saturated_sites_are_refused_not_scored():
+    # a clipped pixel is no longer linear in air kerma: scoring it would give silently wrong numbers
+    from scorer.errors import LimenError
+
+    img, lay, pl = _disc_image(0.5, 0.05, 2.0, 4)
+    img.pixels = np.minimum(img.pixels, 101.0)  # clip like a saturated read-out
+    with pytest.raises(LimenError, match="saturated"):
+        score_image(img, lay, pl, ObserverConfig("npw", blur=SystemBlur(0.0)))
