@@ -15,7 +15,7 @@ from pathlib import Path
 import numpy as np
 from click.testing import CliRunner
 
-from scorer.cli import main
+from scorer.cli import main as limen_cli
 from scorer.reader_model import simulate_reader_study
 
 FLOOR_S = 60.0
@@ -34,14 +34,14 @@ def run() -> dict:
         st.trials.to_csv(tmp / "reads.csv", index=False)
         st.model_trials.to_csv(tmp / "model.csv", index=False)
         t1 = time.perf_counter()
-        res = CliRunner().invoke(main, ["analyse", str(tmp / "reads.csv"), "--model", str(tmp / "model.csv"),
+        res = CliRunner().invoke(limen_cli, ["analyse", str(tmp / "reads.csv"), "--model", str(tmp / "model.csv"),
                                         "--n-boot", "1000", "--seed", "1", "--json"])
         elapsed = time.perf_counter() - t1
         if res.exit_code != 0:
             raise RuntimeError(res.output)
         out = json.loads(res.stdout)
         t2 = time.perf_counter()
-        res = CliRunner().invoke(main, ["analyse", str(tmp / "reads.csv"), "--model", str(tmp / "model.csv"),
+        res = CliRunner().invoke(limen_cli, ["analyse", str(tmp / "reads.csv"), "--model", str(tmp / "model.csv"),
                                         "--n-boot", "1000", "--seed", "1", "--out", str(tmp / "out")])
         elapsed_out = time.perf_counter() - t2
     result = {"readers": 20, "detectors": 2, "trials_per_reader_detector": 2000, "n_trials": int(len(st.trials)),
@@ -53,7 +53,7 @@ def run() -> dict:
     return result
 
 
-if __name__ == "__main__":
+def main() -> dict:
     r = run()
     for k, v in r.items():
         print(f"{k:>30}: {v}")
@@ -61,3 +61,8 @@ if __name__ == "__main__":
     path.parent.mkdir(parents=True, exist_ok=True)
     path.write_text(json.dumps(r, indent=2) + "\n")
     print(f"wrote {path}")
+    return r
+
+
+if __name__ == "__main__":
+    main()
