@@ -47,13 +47,13 @@ the entry and the problem.
 
 from __future__ import annotations
 
-import tomllib
 from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np
 
 from .errors import LimenError
+from .files import read_toml
 
 FORMAT = "limen-layout/1"
 PHANTOM_DIR = Path(__file__).resolve().parent.parent / "phantoms"
@@ -159,15 +159,7 @@ def load_layout(path=None) -> Layout:
         Naming the file, the entry and the problem, for any malformed content.
     """
     path = Path(path) if path is not None else default_layout_path()
-    try:
-        text = path.read_text(encoding="utf-8")
-    except OSError as exc:
-        raise LimenError(f"cannot read layout file ({exc.strerror or exc})", path) from None
-    try:
-        data = tomllib.loads(text)
-    except tomllib.TOMLDecodeError as exc:
-        raise LimenError(f"not valid TOML: {exc}", path) from None
-    return parse_layout(data, path)
+    return parse_layout(read_toml(path, "layout file"), path)
 
 
 def parse_layout(data: dict, path="<layout>") -> Layout:

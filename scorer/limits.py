@@ -28,13 +28,13 @@ one the comparison is refused.
 
 from __future__ import annotations
 
-import tomllib
 from dataclasses import dataclass, asdict
 from pathlib import Path
 
 import numpy as np
 
 from .errors import LimenError
+from .files import read_toml
 
 FORMAT = "limen-limits/1"
 OBSERVERS = ("human", "npw", "npwe")
@@ -79,12 +79,7 @@ class Limits:
 def load_limits(path) -> Limits:
     """Read and validate a limits file (errors name the file and the entry)."""
     path = Path(path)
-    try:
-        data = tomllib.loads(path.read_text(encoding="utf-8"))
-    except OSError as exc:
-        raise LimenError(f"cannot read limits file ({exc.strerror or exc})", path) from None
-    except tomllib.TOMLDecodeError as exc:
-        raise LimenError(f"not valid TOML: {exc}", path) from None
+    data = read_toml(path, "limits file")
     allowed = {"format", "name", "observer", "source", "condition", "limits"}
     extra = sorted(set(data) - allowed)
     if extra:

@@ -57,7 +57,6 @@ import dataclasses
 import datetime as _dt
 import hashlib
 import json
-import tomllib
 from dataclasses import dataclass, field, asdict
 from pathlib import Path
 
@@ -67,6 +66,7 @@ from scipy import fft as sfft
 from .conversion import ConversionFunction
 from .disc import SUPERSAMPLE, disc_coverage_patch
 from .errors import LimenError
+from .files import read_toml
 from .geometry import PhantomTransform
 from .layout import Layout, load_layout
 
@@ -158,12 +158,7 @@ def detector_model(name: str) -> DetectorModel:
 def load_detector_model(path) -> DetectorModel:
     """A model file: ``base = "direct"|"indirect"`` plus any DetectorModel field to override."""
     path = Path(path)
-    try:
-        data = tomllib.loads(path.read_text(encoding="utf-8"))
-    except OSError as exc:
-        raise LimenError(f"cannot read detector model ({exc.strerror or exc})", path) from None
-    except tomllib.TOMLDecodeError as exc:
-        raise LimenError(f"not valid TOML: {exc}", path) from None
+    data = read_toml(path, "detector model")
     base = detector_model(str(data.pop("base", "direct")))
     names = {f.name: f for f in dataclasses.fields(DetectorModel)}
     kw = {}
