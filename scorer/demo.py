@@ -7,8 +7,10 @@ an indirect-conversion (CsI + a-Si:H) panel, serial HSX-CS-2291 in room MAM3.  F
 each panel Limen simulates eight exposures of the Tessera demo plate plus flat
 fields and slanted edges at 100 µGy, scores the plate images with the NPW model
 observer, measures MTF/NNPS/DQE, predicts the contrast-detail curve from them and
-puts the two panels side by side.  A simulated reader study (invented readers)
-is analysed when the statistics module is present.
+puts the two panels side by side.  Six invented readers (a documented
+human-observer model on the NPWE responses) then read the same images; their
+human/model factor turns NPWE thresholds into human-equivalent ones, which are
+checked against the example limits file.
 
 Run ``python -m scorer.demo --out DIR`` (``make demo`` does this in ``.venv``).
 """
@@ -17,7 +19,6 @@ from __future__ import annotations
 
 import argparse
 import html
-import importlib.util
 import shlex
 import sys
 import time
@@ -64,8 +65,9 @@ def run(out: Path) -> Path:
         _limen(["detector", "--flat", *sorted(str(p) for p in (d / "flats").glob("*.dcm")),
                 "--edge", *sorted(str(p) for p in (d / "edges").glob("*.dcm")),
                 "--kerma-ugy", str(DOSE_UGY), "--q", "5000", "--conversion", conv, "--out", str(d / "detector")])
-        _limen(["score", *images, "--observer", "npw", "--conversion", conv,
-                "--mtf", str(d / "detector" / "detector.json"), "--out", str(d / "score")])
+        for observer, folder in (("npw", "score"), ("npwe", "score-npwe")):
+            _limen(["score", *images, "--observer", observer, "--conversion", conv,
+                    "--mtf", str(d / "detector" / "detector.json"), "--out", str(d / folder)])
         links += [(f"{panel} panel: contrast-detail report", f"{panel}/score/report.html"),
                   (f"{panel} panel: MTF, NNPS, DQE", f"{panel}/detector/detector.html")]
     _limen(["compare-detectors", str(out / "direct" / "detector" / "detector.json"),
@@ -73,8 +75,7 @@ def run(out: Path) -> Path:
             "--label-b", "indirect (CsI)", "--scored-a", str(out / "direct" / "score" / "results.json"),
             "--scored-b", str(out / "indirect" / "score" / "results.json"), "--out", str(out / "comparison")])
     links.append(("direct vs indirect, side by side", "comparison/comparison.html"))
-    if importlib.util.find_spec("scorer.reader_model") and importlib.util.find_spec("scorer.commands.analyse"):
-        links += _reader_study(out)
+    links += _reader_study(out)
     body = "<ul>" + "".join(f"<li><a href='{html.escape(h)}'>{html.escape(t)}</a></li>" for t, h in links) + "</ul>"
     body += ("<p>Scenario (invented): Harbourside Women's Health Centre commissions a direct-conversion panel "
              "(HSX-SE-0417, room MAM2) and an indirect-conversion panel (HSX-CS-2291, room MAM3); every image "
@@ -87,15 +88,45 @@ def run(out: Path) -> Path:
 
 
 def _reader_study(out: Path) -> list[tuple[str, str]]:
+    """Six invented readers read the same demo images (human-observer model on the NPWE responses);
+    the human/model factor they give turns the NPWE thresholds into human-equivalent ones, which are
+    then checked against the example limits."""
+    import json
+
+    import numpy as np
+    import pandas as pd
+
     from . import reader_model
+    from .limits import EXAMPLE_LIMITS
 
     study = out / "reader-study"
-    paths = reader_model.write_demo_study(study)
-    print(f"\nsimulated reader study (invented readers, documented observer model) written to {study}")
-    _limen(["analyse", paths["readers"], "--model", paths["model"], "--by", "detector",
-            "--out", str(study / "analysis")])
-    return [("reader study: human curves, human/model factor, detector comparison",
-             "reader-study/analysis/report.html")]
+    study.mkdir(parents=True, exist_ok=True)
+    rng = np.random.default_rng(2026)
+    readers = reader_model.draw_readers(rng, 6, reader_model.ReaderPopulation(median_factor=1.8, lapse_max=0.03))
+    responses = pd.concat([pd.read_csv(out / p / "score-npwe" / "responses.csv") for p in ("direct", "indirect")],
+                          ignore_index=True)
+    human = reader_model.readers_from_responses(responses, readers, rng, n_repeats=2)
+    model = pd.concat([pd.read_csv(out / p / "score-npwe" / "trials.csv") for p in ("direct", "indirect")],
+                      ignore_index=True)
+    human.to_csv(study / "reader_trials.csv", index=False)
+    model.to_csv(study / "model_trials.csv", index=False)
+    readers.to_csv(study / "reader_parameters.csv", index=False)
+    print(f"\n6 invented readers (documented observer model, scorer/reader_model.py) read the demo images: "
+          f"{study / 'reader_trials.csv'}")
+    _limen(["analyse", str(study / "reader_trials.csv"), "--model", str(study / "model_trials.csv"),
+            "--by", "detector", "--out", str(study / "analysis")])
+    factor = json.loads((study / "analysis" / "analysis.json").read_text())["human_model_factor"]["factor"]
+    links = [("reader study: human curves, human/model factor, detector comparison",
+              "reader-study/analysis/report.html")]
+    for panel in ("direct", "indirect"):
+        d = out / panel
+        images = sorted(str(p) for p in (d / "images").glob("*.dcm"))
+        _limen(["score", *images, "--observer", "npwe", "--conversion", str(d / "images" / f"{panel}-conversion.toml"),
+                "--mtf", str(d / "detector" / "detector.json"), "--limits", str(EXAMPLE_LIMITS),
+                "--human-factor", f"{factor:.3f}", "--out", str(d / "verdict")], allowed_exit=(0, 1))
+        links.append((f"{panel} panel: human-equivalent thresholds against the example limits",
+                      f"{panel}/verdict/report.html"))
+    return links
 
 
 def main(argv=None) -> None:

@@ -271,16 +271,19 @@ def decide(responses: pd.DataFrame) -> pd.DataFrame:
     """M-AFC decisions: per image × target, the site with the largest response.
 
     Returns the trials table ``reader, image, target, diameter_mm, contrast, chosen_site,
-    true_site, correct, m_alternatives`` (``reader`` is the observer's name).
+    true_site, correct, m_alternatives`` (``reader`` is the observer's name), with the
+    ``detector`` column first after ``reader`` when the responses carry one.
     """
     if responses.empty:
         return pd.DataFrame(columns=["reader", "image", "target", "diameter_mm", "contrast", "chosen_site",
                                      "true_site", "correct", "m_alternatives"])
     idx = responses.groupby(["image", "target"], sort=False)["response"].idxmax()
-    chosen = responses.loc[idx, ["image", "target", "diameter_mm", "contrast", "m_alternatives", "site", "observer"]]
+    extra = ["detector"] if "detector" in responses.columns else []
+    chosen = responses.loc[idx, ["image", "target", "diameter_mm", "contrast", "m_alternatives", "site", "observer"]
+                           + extra]
     truth = responses[responses["is_signal"]].set_index(["image", "target"])["site"]
     out = chosen.rename(columns={"site": "chosen_site", "observer": "reader"}).reset_index(drop=True)
     out["true_site"] = truth.reindex(list(zip(out["image"], out["target"]))).to_numpy()
     out["correct"] = (out["chosen_site"] == out["true_site"]).astype(int)
-    return out[["reader", "image", "target", "diameter_mm", "contrast", "chosen_site", "true_site", "correct",
-                "m_alternatives"]]
+    return out[["reader"] + extra + ["image", "target", "diameter_mm", "contrast", "chosen_site", "true_site",
+                                     "correct", "m_alternatives"]]

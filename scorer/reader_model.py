@@ -122,18 +122,10 @@ def simulate_reader_study(rng: np.random.Generator, n_readers: int = 6, *,
     d_t = dprime_for_pc(crit, m)
 
     # readers
-    sd_log = np.sqrt(np.log1p(pop.cv_between ** 2))
-    log_f = np.log(pop.median_factor) + sd_log * rng.standard_normal(n_readers)
-    factor = np.exp(log_f)
-    # F² = (1 + σ²)/e ; a share of log F² goes to internal noise, the rest to efficiency
-    log_f2 = 2 * log_f
-    internal = np.sqrt(np.maximum(np.exp(pop.internal_share * log_f2) - 1.0, 0.0))
-    efficiency = (1.0 + internal ** 2) / factor ** 2
-    lapse = rng.uniform(0.0, pop.lapse_max, n_readers) if pop.lapse_max > 0 else np.zeros(n_readers)
-    width = max(2, len(str(n_readers)))
-    names = [f"{reader_prefix}{i + 1:0{width}d}" for i in range(n_readers)]
-    readers = pd.DataFrame({"reader": names, "factor": factor, "efficiency": efficiency,
-                            "internal_noise": internal, "lapse": lapse})
+    readers = draw_readers(rng, n_readers, pop, reader_prefix)
+    names = readers["reader"].tolist()
+    factor, efficiency = readers["factor"].to_numpy(), readers["efficiency"].to_numpy()
+    internal, lapse = readers["internal_noise"].to_numpy(), readers["lapse"].to_numpy()
 
     # targets: per diameter, contrasts around the median human threshold on the reference detector
     ref_ct = model_threshold(diam, c1, slope)
@@ -223,3 +215,73 @@ if __name__ == "__main__":  # python -m scorer.reader_model OUT_DIR [SEED]
         raise SystemExit(2)
     written = write_demo_study(sys.argv[1], int(sys.argv[2]) if len(sys.argv) > 2 else 2026)
     print("wrote " + ", ".join(written.values()))
+
+
+def draw_readers(rng: np.random.Generator, n_readers: int, population: ReaderPopulation | None = None,
+                 reader_prefix: str = "reader") -> pd.DataFrame:
+    """Invented readers: factor F, template efficiency e, internal noise σ and lapse λ (see module doc)."""
+    pop = population or ReaderPopulation()
+    sd_log = np.sqrt(np.log1p(pop.cv_between ** 2))
+    log_f = np.log(pop.median_factor) + sd_log * rng.standard_normal(n_readers)
+    factor = np.exp(log_f)
+    internal = np.sqrt(np.maximum(np.exp(pop.internal_share * 2 * log_f) - 1.0, 0.0))
+    efficiency = (1.0 + internal ** 2) / factor ** 2
+    lapse = rng.uniform(0.0, pop.lapse_max, n_readers) if pop.lapse_max > 0 else np.zeros(n_readers)
+    width = max(2, len(str(n_readers)))
+    return pd.DataFrame({"reader": [f"{reader_prefix}{i + 1:0{width}d}" for i in range(n_readers)],
+                         "factor": factor, "efficiency": efficiency, "internal_noise": internal, "lapse": lapse})
+
+
+def readers_from_responses(responses: pd.DataFrame, readers: pd.DataFrame, rng: np.random.Generator,
+                           n_repeats: int = 1) -> pd.DataFrame:
+    """Invented human readers reading the same phantom images as a model observer.
+
+    ``responses`` is the model observer's per-site table from :func:`scorer.observer.score_image`
+    (columns image, target, diameter_mm, contrast, m_alternatives, site, is_signal, response and
+    optionally detector).  For each diameter the external noise σ_ext is the spread of the
+    non-signal sites about their mean within each image and target, and g, the mean signal-site
+    minus non-signal response per unit contrast, is fitted through the origin.  Reader r then sees
+    at every site::
+
+        t_rj = response_j − (1 − √e_r)·g·C·δ_j + σ_r·σ_ext·ν_rj ,   ν_rj ~ N(0, 1) fresh per reading
+
+    — the image's own signal and noise, a less efficient template and internal noise — so that
+    the reader's d′ is the model's times √e_r/√(1 + σ_r²), i.e. their threshold is F_r times the
+    model's.  On a fraction λ_r of trials the reader guesses.  Returns the tidy trials table.
+    """
+    need = {"image", "target", "diameter_mm", "contrast", "m_alternatives", "site", "is_signal", "response"}
+    missing = need - set(responses.columns)
+    if missing:
+        raise ValueError(f"responses table lacks {sorted(missing)}")
+    df = responses.sort_values(["image", "target", "site"]).reset_index(drop=True)
+    det = df["detector"] if "detector" in df.columns else pd.Series("detector", index=df.index)
+    df = df.assign(detector=det.astype(str))
+    out = []
+    for (dname, diam), g in df.groupby(["detector", "diameter_mm"], sort=True):
+        m = int(g["m_alternatives"].iloc[0])
+        trials = g.groupby(["image", "target"], sort=False)
+        keys = list(trials.groups.keys())
+        resp = g["response"].to_numpy().reshape(len(keys), m)
+        sig = g["is_signal"].to_numpy(bool).reshape(len(keys), m)
+        contrast = g["contrast"].to_numpy().reshape(len(keys), m)[:, 0]
+        bg = np.where(sig, np.nan, resp)
+        sigma_ext = float(np.sqrt(np.nanmean((bg - np.nanmean(bg, axis=1, keepdims=True)) ** 2) * (m - 1) / (m - 2)))
+        diff = resp[sig] - np.nanmean(bg, axis=1)
+        gain = float(diff @ contrast / (contrast @ contrast))
+        true_site = np.argmax(sig, axis=1)
+        images = np.array([k[0] for k in keys])
+        targets = np.array([k[1] for k in keys])
+        for r in readers.itertuples(index=False):
+            shift = (1.0 - np.sqrt(r.efficiency)) * gain * contrast
+            for rep in range(n_repeats):
+                t = resp - sig * shift[:, None] + r.internal_noise * sigma_ext * rng.standard_normal(resp.shape)
+                chosen = np.argmax(t, axis=1)
+                lapsed = rng.random(chosen.size) < r.lapse
+                chosen = np.where(lapsed, rng.integers(0, m, size=chosen.size), chosen)
+                out.append(pd.DataFrame({
+                    "reader": r.reader, "detector": dname, "image": images, "target": targets,
+                    "diameter_mm": diam, "contrast": contrast, "chosen_site": chosen, "true_site": true_site,
+                    "correct": (chosen == true_site).astype(int),
+                    "response_ms": np.round(rng.lognormal(np.log(2500), 0.4, chosen.size)).astype(int),
+                    "session": rep + 1, "repeat": rep}))
+    return pd.concat(out, ignore_index=True)

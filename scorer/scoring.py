@@ -148,6 +148,8 @@ def score_images(paths: Sequence, layout: Layout, *, observer: str = "npw", meth
             resp = score_image(image, layout, placement, cfg, image_id=image_id)
         except LimenError as exc:
             raise LimenError(str(exc), path) from None
+        md = image.metadata
+        resp.insert(1, "detector", md.detector_id or md.device_serial or md.station_name or "unknown")
         frames.append(resp)
         tr = decide(resp)
         scores.append(ImageScore(str(path), image_id, image.metadata.to_dict(), placement, img_blur.sigma_px,

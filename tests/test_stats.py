@@ -286,3 +286,33 @@ def test_small_study_degrades_with_notes(n_readers):
     for key in ("readers", "curves", "detector_comparison", "human_model_factor", "agreement"):
         assert key in out
     assert out["human_model_factor"]["factor"] > 0
+
+
+def test_readers_from_image_responses_have_their_designed_factor():
+    # Readers built on a linear model observer's responses with efficiency e and internal noise σ have
+    # d′_human = d′_model·√e/√(1+σ²) (Burgess, J. Opt. Soc. Am. A 11 (1994)): the fitted human/model
+    # threshold ratio must match the designed factor F = √(1+σ²)/√e.
+    from scorer.mafc import dprime_for_pc
+    from scorer.reader_model import readers_from_responses
+    from scorer.threshold import count_thresholds
+    from scorer.observer import decide
+
+    rng = np.random.default_rng(12)
+    sigma, m = 0.01, 4
+    contrasts = np.geomspace(0.004, 0.06, 10)
+    rows = []
+    for i in range(60):
+        for j, c in enumerate(contrasts):
+            truth = int(rng.integers(m))
+            for s in range(m):
+                rows.append((f"i{i}", f"t{j}", 0.5, c, m, s, s == truth,
+                             (c if s == truth else 0.0) + sigma * rng.standard_normal(), "npw"))
+    resp = pd.DataFrame(rows, columns=["image", "target", "diameter_mm", "contrast", "m_alternatives", "site",
+                                       "is_signal", "response", "observer"])
+    readers = pd.DataFrame({"reader": ["r1"], "factor": [2.0], "efficiency": [0.5], "internal_noise": [np.sqrt(1.0)],
+                            "lapse": [0.0]})  # F = √(1+1)/√0.5 = 2
+    tr = readers_from_responses(resp, readers, rng)
+    tr["m_alternatives"] = m
+    human = count_thresholds(tr, n_boot=0).points[0].threshold_contrast
+    model = dprime_for_pc(0.625, m) * sigma
+    assert human / model == pytest.approx(2.0, rel=0.12)
