@@ -96,6 +96,7 @@ def score_images(paths: Sequence, layout: Layout, *, observer: str = "npw", meth
                  n_boot: int = 1000, seed: int = 0, criterion_pc: float | None = None,
                  limits: Limits | None = None, human_factor: float | None = None,
                  verdict_method: str | None = None, max_residual_px: float = 1.0,
+                 count_form: str = "mafc", dprime_ci: str = "analytic",
                  on_image: Callable | None = None, on_failure: Callable | None = None) -> ScoreResult:
     """Score a set of images of one phantom on one detector.
 
@@ -162,14 +163,17 @@ def score_images(paths: Sequence, layout: Layout, *, observer: str = "npw", meth
     trials = decide(responses)
     curves: dict[str, ThresholdCurve] = {}
     if "dprime" in methods:
-        curves["dprime"] = dprime_thresholds(responses, criterion_pc=criterion_pc, n_boot=n_boot, seed=seed)
+        curves["dprime"] = dprime_thresholds(responses, criterion_pc=criterion_pc, n_boot=n_boot, seed=seed,
+                                             ci_method=dprime_ci)
     if "count" in methods:
-        curves["count"] = count_thresholds(trials, criterion_pc=criterion_pc, n_boot=n_boot, seed=seed)
+        curves["count"] = count_thresholds(trials, criterion_pc=criterion_pc, n_boot=n_boot, seed=seed,
+                                           form=count_form)
     vm = verdict_method or ("dprime" if "dprime" in curves else "count")
     if vm not in curves:
         raise LimenError(f"verdict method {vm!r} was not computed")
     verdicts = evaluate(curves[vm], limits, human_factor) if limits is not None else None
     settings = {"observer": observer, "methods": list(methods), "n_boot": n_boot, "seed": seed,
+                "count_form": count_form, "dprime_ci": dprime_ci,
                 "criterion_pc": criterion_pc, "viewing_distance_mm": config.viewing_distance_mm,
                 "conversion": None if conversion is None else conversion.to_dict(),
                 "blur": "per-image estimate from markers" if blur is None else {"sigma_px": blur.sigma_px,

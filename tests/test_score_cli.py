@@ -128,3 +128,67 @@ def test_thresholds_unchanged_by_rotating_or_mirroring_every_image(direct_set, t
     for pa, pb in zip(a.curves["dprime"].points, b.curves["dprime"].points):
         assert pb.threshold_contrast == pytest.approx(pa.threshold_contrast, rel=0.10)
     assert b.images[0].placement.flipped == (transform == "mirror")
+
+
+def _bad_files(tmp, good_dcm):
+    """Expected bad inputs of the foundation issue, each paired with a phrase its error must hold."""
+    import cv2
+
+    from scorer.io import write_dicom
+
+    out = []
+    data = Path(good_dcm).read_bytes()
+    trunc = tmp / "truncated.dcm"
+    trunc.write_bytes(data[: len(data) // 2])
+    out.append((trunc, "truncated"))
+    text = tmp / "notes.dcm"
+    text.write_text("not an image at all")
+    out.append((text, "notes.dcm"))
+    rgb = tmp / "colour.png"
+    cv2.imwrite(str(rgb), np.zeros((64, 64, 3), np.uint8))
+    out.append((rgb, "colour.png"))
+    nan = tmp / "nan.npy"
+    a = np.ones((700, 700))
+    a[3, 4] = np.nan
+    np.save(nan, a)
+    out.append((nan, "nan.npy"))
+    small = tmp / "small.dcm"
+    write_dicom(small, np.full((120, 120), 1000, np.uint16), (0.085, 0.085), {"Modality": "MG"})
+    out.append((small, "small.dcm"))
+    return out
+
+
+def test_every_bad_image_exits_2_with_one_line(direct_set, tmp_path):
+    good = next(direct_set.glob("*.dcm"))
+    for path, needle in _bad_files(tmp_path, good):
+        res = _run([str(path), "--layout", str(MINI), "--pixel-spacing", "0.085"] if path.suffix != ".dcm"
+                   else [str(path), "--layout", str(MINI)])
+        assert res.exit_code == 2, (path, res.output)
+        lines = [l for l in res.output.splitlines() if l.strip()]
+        assert len(lines) == 1 and lines[0].startswith("error: ") and path.name in lines[0], res.output
+        assert needle in lines[0], res.output
+
+
+def test_compressed_dicom_without_its_decoder_exits_2(direct_set, tmp_path, monkeypatch):
+    # DICOM PS3.5: JPEG-LS Lossless is transfer syntax 1.2.840.10008.1.2.4.80
+    from pydicom.pixels.decoders import JPEGLSLosslessDecoder
+
+    img = load_image(next(direct_set.glob("*.dcm")))
+    from scorer.io import write_dicom
+
+    p = write_dicom(tmp_path / "jls.dcm", img.pixels.astype(np.uint16), img.spacing_mm, {"Modality": "MG"},
+                    transfer_syntax="jpeg-ls-lossless")
+    monkeypatch.setattr(JPEGLSLosslessDecoder, "_available", {})
+    res = _run([str(p), "--layout", str(MINI)])
+    assert res.exit_code == 2
+    lines = [l for l in res.output.splitlines() if l.strip()]
+    assert len(lines) == 1 and "jls.dcm" in lines[0] and "1.2.840.10008.1.2.4.80" in lines[0], res.output
+
+
+def test_count_form_and_dprime_ci_options(direct_set):
+    files = sorted(str(p) for p in direct_set.glob("*.dcm"))
+    res = _run(files + ["--layout", str(MINI), "--json", "--n-boot", "100", "--psychometric", "logistic",
+                        "--dprime-ci", "bootstrap"])
+    assert res.exit_code == 0, res.output
+    js = json.loads(res.stdout)
+    assert js["settings"]["count_form"] == "logistic" and js["settings"]["dprime_ci"] == "bootstrap"

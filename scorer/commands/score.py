@@ -55,14 +55,20 @@ def _blur_from_detector_json(path) -> SystemBlur:
 @click.option("--pixel-spacing", "pixel_spacing", type=float, default=None,
               help="Pixel spacing (mm) for images without DICOM spacing (TIFF, PNG, npy).")
 @click.option("--n-boot", type=click.IntRange(0, 100000), default=1000, show_default=True)
+@click.option("--psychometric", "psychometric_form", type=click.Choice(["mafc", "logistic"]), default="mafc",
+              show_default=True, help="Count method's psychometric function: the linear-observer M-AFC form, or a "
+                                      "logistic in log contrast (documented alternative; reads ~10 % low).")
+@click.option("--dprime-ci", type=click.Choice(["analytic", "bootstrap"]), default="analytic", show_default=True,
+              help="d′ method's confidence interval: analytic (sampling variance of d′) or image bootstrap.")
 @click.option("--criterion", type=float, default=None,
               help="Proportion correct at threshold (default halfway between chance and 1).")
 @click.option("--seed", type=int, default=0, show_default=True)
 @click.option("--json", "as_json", is_flag=True, help="Print one JSON object on stdout.")
 @click.option("--out", "out_dir", type=click.Path(file_okay=False), default=None,
-              help="Write results.json, CSV tables, overlays and report.html here.")
+              help="Write results.json, CSV tables, registration overlays (a diagnostic one when the phantom "
+                   "cannot be found) and report.html here.")
 def score(images, layout_file, observer, method, limits_file, human_factor, conversion_file, mtf_file,
-          viewing_distance_mm, pixel_spacing, n_boot, criterion, seed, as_json, out_dir):
+          viewing_distance_mm, pixel_spacing, n_boot, psychometric_form, dprime_ci, criterion, seed, as_json, out_dir):
     """Score contrast-detail phantom IMAGES with a model observer: threshold contrast per diameter.
 
     Exit status: 0 when every verdict passes or no limits were given, 1 when a verdict
@@ -95,7 +101,8 @@ def score(images, layout_file, observer, method, limits_file, human_factor, conv
         result = score_images(list(images), layout, observer=observer, methods=methods, conversion=conversion,
                               pixel_spacing_mm=pixel_spacing, blur=blur, viewing_distance_mm=viewing_distance_mm,
                               n_boot=n_boot, seed=seed, criterion_pc=criterion, limits=limits,
-                              human_factor=human_factor, on_image=on_image, on_failure=on_failure)
+                              human_factor=human_factor, on_image=on_image, on_failure=on_failure,
+                              count_form=psychometric_form, dprime_ci=dprime_ci)
     finally:
         bar.close()
     command = "limen score " + " ".join(shlex.quote(a) for a in sys.argv[2:]) if len(sys.argv) > 2 else ""
