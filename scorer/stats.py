@@ -47,6 +47,7 @@ from .psychometric import (
     _dprime_for,
     bootstrap_threshold,
     bootstrap_weights,
+    expanded_percentile_ci,
     dpc_mafc_fast,
     dprime_for_pc_fast,
     fit_k_batch,
@@ -166,7 +167,8 @@ def m_alternatives_of(df: pd.DataFrame, source="responses") -> int:
 # =========================================================================== per-reader curves
 def reader_curves(df: pd.DataFrame, m: int, rng: np.random.Generator, n_boot: int = 1000, by: str = "detector",
                   criterion_pc: float | None = None, ci: float = 0.95) -> pd.DataFrame:
-    """Per reader × group × diameter: ML M-AFC fit, threshold, percentile bootstrap CI over images.
+    """Per reader × group × diameter: ML M-AFC fit, threshold, bootstrap CI over images
+    (expanded percentile interval, Hesterberg, The American Statistician 69 (2015)).
 
     Images are resampled with replacement within the reader (all trials of an image —
     every target and every repeat — move together).  Columns: reader, <by>, diameter_mm,
@@ -183,7 +185,8 @@ def reader_curves(df: pd.DataFrame, m: int, rng: np.random.Generator, n_boot: in
         lo = hi = se = float("nan")
         if u.n_units >= 2 and n_boot > 0:
             res = bootstrap_threshold(u, n_boot, rng, m_alternatives=m, criterion_pc=p, ci=ci)
-            lo, hi = res.ci_low, res.ci_high
+            # few images per reader: Hesterberg's expanded percentile interval (as for the scorer)
+            lo, hi = expanded_percentile_ci(res.samples, u.n_units, ci)
             s = res.samples[np.isfinite(res.samples) & (res.samples > 0)]
             se = float(np.std(np.log10(s), ddof=1)) if s.size > 1 else float("nan")
             if res.note:

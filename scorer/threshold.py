@@ -61,7 +61,7 @@ from .errors import LimenError
 from .mafc import dprime_for_pc, halfway_criterion
 from scipy import stats
 
-from .psychometric import bootstrap_threshold, percentile_ci, unit_counts
+from .psychometric import bootstrap_threshold, expanded_percentile_ci, unit_counts
 
 METHODS = ("dprime", "count")
 LOCAL_FIT_FACTOR = None  # None: fit d′ = k·C on every target (the NPW/NPWE observers are linear)
@@ -124,19 +124,6 @@ class ThresholdCurve:
             if np.isclose(p.diameter_mm, diameter_mm):
                 return p
         return None
-
-
-def expanded_percentile_ci(samples, n_units: int, ci: float = 0.95) -> tuple[float, float]:
-    """Expanded percentile bootstrap interval for a statistic of ``n_units`` resampled units.
-
-    The nominal level is widened to α′/2 = Φ(−√(n/(n−1))·t_{1−α/2, n−1}) to undo the
-    percentile interval's narrowness in small samples (Hesterberg 2015).
-    """
-    if n_units < 2:
-        return float("nan"), float("nan")
-    alpha = 1.0 - ci
-    z = np.sqrt(n_units / (n_units - 1.0)) * stats.t.ppf(1.0 - alpha / 2.0, n_units - 1)
-    return percentile_ci(samples, 1.0 - 2.0 * stats.norm.cdf(-z))
 
 
 # --------------------------------------------------------------------------- d′ method

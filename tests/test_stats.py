@@ -52,13 +52,13 @@ def test_reader_model_marginal_pc_matches_mafc_formula():
 
 # ----------------------------------------------------------------------------- per-reader fits
 def test_per_reader_bootstrap_ci_coverage():
-    # Percentile bootstrap over images within reader (Efron & Tibshirani 1993): 100 seeded studies ×
-    # 2 readers, 24 images × 10 contrasts.  Measured coverage 0.925, mean log error −0.012 (SD 0.082);
-    # with 16 images it was 0.895 (percentile intervals run slightly short with few images).
+    # Bootstrap over images within reader (Efron & Tibshirani 1993) with the expanded percentile interval
+    # (Hesterberg, The American Statistician 69 (2015)): 100 seeded studies × 2 readers, 16 images × 10
+    # contrasts.  Measured coverage 0.92 (0.945 with 24 images); the plain percentile interval gave 0.895.
     hits, errs = [], []
     for s in range(100):
         st = simulate_reader_study(np.random.default_rng(500 + s), 2, detectors={"A": 1.0}, diameters_mm=(0.5,),
-                                   n_images=24)
+                                   n_images=16)
         rc = reader_curves(st.trials, 4, np.random.default_rng(s), 200)
         m = rc.merge(st.truth, on=["reader", "detector", "diameter_mm"], suffixes=("", "_true"))
         hits += list((m.ci_low <= m.threshold_contrast_true) & (m.threshold_contrast_true <= m.ci_high))
