@@ -157,3 +157,24 @@ def test_cli_bad_input_one_line_exit_2(tmp_path, args, msg):
     assert res.exit_code == 2
     lines = [l for l in res.output.splitlines() if l.strip()]
     assert len(lines) == 1 and msg in lines[0], res.output
+
+
+def test_detector_model_file_overrides_and_rejects_unknown_keys(tmp_path):
+    from scorer.errors import LimenError
+    from scorer.simulate import load_detector_model
+
+    good = tmp_path / "panel.toml"
+    good.write_text('base = "indirect"\nlight_spread_mm = 0.06\nelectronic_noise_adu = 2.0\n')
+    m = load_detector_model(good)
+    assert m.conversion == "indirect" and m.light_spread_mm == 0.06 and m.electronic_noise_adu == 2.0
+    # a wider exponential LSF lowers the presampling MTF: T(f) = 1/(1 + (2πLf)²)
+    f = 3.0
+    assert m.presampling_mtf(f) == pytest.approx(np.sinc(0.085 * f) / (1 + (2 * np.pi * 0.06 * f) ** 2))
+    bad = tmp_path / "bad.toml"
+    bad.write_text('base = "direct"\nsparkle = 1\n')
+    with pytest.raises(LimenError, match="bad.toml: unknown detector-model key 'sparkle'"):
+        load_detector_model(bad)
+    worse = tmp_path / "worse.toml"
+    worse.write_text('base = "direct"\nqde = 1.5\n')
+    with pytest.raises(LimenError, match="qde must lie in"):
+        load_detector_model(worse)

@@ -124,3 +124,27 @@ def test_incomplete_or_mixed_tables_are_refused():
     mixed.loc[0, "observer"] = "npwe"
     with pytest.raises(LimenError, match="mixes observers"):
         dprime_thresholds(mixed, n_boot=0)
+
+
+def test_known_site_design_is_scored_as_forced_choice():
+    # one known signal site plus two background sites: a 3-alternative forced choice (Green & Swets 1966)
+    from scorer.layout import parse_layout
+
+    contrasts = [0.002, 0.004, 0.008, 0.016, 0.032]
+    targets = []
+    for i, c in enumerate(contrasts * 4):
+        x, y = 15.0 + 12.0 * (i % 5), 15.0 + 12.0 * (i // 5)
+        targets.append({"id": f"k{i}", "diameter_mm": 0.5, "contrast": c, "known_site_mm": [x, y],
+                        "background_sites_mm": [[x + 4.0, y], [x, y + 4.0]]})
+    lay = parse_layout({"format": "limen-layout/1", "phantom": {"name": "known", "width_mm": 80.0, "height_mm": 70.0},
+                        "fiducials": [{"id": a, "x_mm": x, "y_mm": y, "diameter_mm": 3.0, "contrast": 0.6}
+                                      for a, x, y in (("A", 4, 4), ("B", 76, 4), ("C", 76, 66))],
+                        "orientation_key": {"x_mm": 4.0, "y_mm": 62.0, "diameter_mm": 5.0, "contrast": 0.6},
+                        "targets": targets}, "known.toml")
+    df = _score_set(lay, 100.0, 6, seed=2)
+    assert set(df["m_alternatives"]) == {3}
+    d = dprime_thresholds(df, n_boot=0).points[0]
+    c = count_thresholds(decide(df), n_boot=200).points[0]
+    assert d.m_alternatives == 3 and d.criterion_pc == pytest.approx(2 / 3)
+    # NPW on the ideal panel: C_T ≈ d′_T(3-AFC)·σ, the two methods agree within the count method's CI
+    assert c.ci_low <= d.threshold_contrast <= c.ci_high
