@@ -91,8 +91,6 @@ def _reader_study(out: Path) -> list[tuple[str, str]]:
     """Six invented readers read the same demo images (human-observer model on the NPWE responses);
     the human/model factor they give turns the NPWE thresholds into human-equivalent ones, which are
     then checked against the example limits."""
-    import json
-
     import numpy as np
     import pandas as pd
 
@@ -115,7 +113,6 @@ def _reader_study(out: Path) -> list[tuple[str, str]]:
           f"{study / 'reader_trials.csv'}")
     _limen(["analyse", str(study / "reader_trials.csv"), "--model", str(study / "model_trials.csv"),
             "--by", "detector", "--out", str(study / "analysis")])
-    factor = json.loads((study / "analysis" / "analysis.json").read_text())["human_model_factor"]["factor"]
     links = [("reader study: human curves, human/model factor, detector comparison",
               "reader-study/analysis/report.html")]
     for panel in ("direct", "indirect"):
@@ -123,7 +120,8 @@ def _reader_study(out: Path) -> list[tuple[str, str]]:
         images = sorted(str(p) for p in (d / "images").glob("*.dcm"))
         _limen(["score", *images, "--observer", "npwe", "--conversion", str(d / "images" / f"{panel}-conversion.toml"),
                 "--mtf", str(d / "detector" / "detector.json"), "--limits", str(EXAMPLE_LIMITS),
-                "--human-factor", f"{factor:.3f}", "--out", str(d / "verdict")], allowed_exit=(0, 1))
+                "--human-factor-from", str(study / "analysis" / "analysis.json"), "--out", str(d / "verdict")],
+               allowed_exit=(0, 1))
         links.append((f"{panel} panel: human-equivalent thresholds against the example limits",
                       f"{panel}/verdict/report.html"))
     return links

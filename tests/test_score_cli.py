@@ -192,3 +192,19 @@ def test_count_form_and_dprime_ci_options(direct_set):
     assert res.exit_code == 0, res.output
     js = json.loads(res.stdout)
     assert js["settings"]["count_form"] == "logistic" and js["settings"]["dprime_ci"] == "bootstrap"
+
+
+def test_human_factor_from_an_analysis_file(direct_set, tmp_path):
+    files = sorted(str(p) for p in direct_set.glob("*.dcm"))
+    analysis = tmp_path / "analysis.json"
+    analysis.write_text(json.dumps({"human_model_factor": {"observer": "npwe", "factor": 1.9, "by_observer": [
+        {"observer": "npwe", "factor": 1.9}]}}))
+    lim = _limits(tmp_path, "human", 0.5)
+    res = _run(files + ["--layout", str(MINI), "--n-boot", "100", "--observer", "npwe", "--limits", str(lim),
+                        "--human-factor-from", str(analysis), "--json"])
+    assert res.exit_code == 0, res.output
+    assert json.loads(res.stdout)["human_factor"] == 1.9
+    # a factor measured for another observer must not be used
+    res = _run(files + ["--layout", str(MINI), "--observer", "npw", "--limits", str(lim),
+                        "--human-factor-from", str(analysis)])
+    assert res.exit_code == 2 and "no human/model factor for the NPW observer" in res.output

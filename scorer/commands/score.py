@@ -21,6 +21,25 @@ from ..score_report import METHOD_LABEL, write_score_outputs
 from ..scoring import score_images
 
 
+def human_factor_from_analysis(path, observer: str) -> float:
+    """The human/model threshold factor that `limen analyse --model` measured for ``observer``."""
+    try:
+        data = json.loads(Path(path).read_text(encoding="utf-8"))
+        hm = data["human_model_factor"]
+    except OSError as exc:
+        raise LimenError(f"cannot read analysis file ({exc.strerror or exc})", path) from None
+    except (ValueError, KeyError, TypeError):
+        raise LimenError("not an analysis.json with a human_model_factor (run limen analyse with --model)",
+                         path) from None
+    entries = (hm.get("by_observer") or [hm]) if isinstance(hm, dict) else []
+    for e in entries:
+        if str(e.get("observer", "")).lower() == observer and e.get("factor"):
+            return float(e["factor"])
+    found = ", ".join(sorted({str(e.get("observer")) for e in entries})) or "none"
+    raise LimenError(f"no human/model factor for the {observer.upper()} observer in this analysis "
+                     f"(factors for: {found})", path)
+
+
 def _blur_from_detector_json(path) -> SystemBlur:
     try:
         data = json.loads(Path(path).read_text(encoding="utf-8"))
@@ -46,6 +65,9 @@ def _blur_from_detector_json(path) -> SystemBlur:
               help="Limits TOML (threshold contrast per diameter, the observer it is for, its source).")
 @click.option("--human-factor", type=float, default=None,
               help="Human/model threshold factor, needed to compare model thresholds with limits for human readers.")
+@click.option("--human-factor-from", "factor_file", type=click.Path(dir_okay=False), default=None,
+              help="analysis.json from `limen analyse --model`: take the human/model factor measured for this "
+                   "observer.")
 @click.option("--conversion", "conversion_file", type=click.Path(dir_okay=False), default=None,
               help="Conversion function TOML/JSON that linearises pixel values to air kerma.")
 @click.option("--mtf", "mtf_file", type=click.Path(dir_okay=False), default=None,
@@ -67,13 +89,17 @@ def _blur_from_detector_json(path) -> SystemBlur:
 @click.option("--out", "out_dir", type=click.Path(file_okay=False), default=None,
               help="Write results.json, CSV tables, registration overlays (a diagnostic one when the phantom "
                    "cannot be found) and report.html here.")
-def score(images, layout_file, observer, method, limits_file, human_factor, conversion_file, mtf_file,
+def score(images, layout_file, observer, method, limits_file, human_factor, factor_file, conversion_file, mtf_file,
           viewing_distance_mm, pixel_spacing, n_boot, psychometric_form, dprime_ci, criterion, seed, as_json, out_dir):
     """Score contrast-detail phantom IMAGES with a model observer: threshold contrast per diameter.
 
     Exit status: 0 when every verdict passes or no limits were given, 1 when a verdict
     fails, 2 on bad input.
     """
+    if factor_file:
+        if human_factor is not None:
+            raise LimenError("give either --human-factor or --human-factor-from, not both")
+        human_factor = human_factor_from_analysis(factor_file, observer)
     layout = load_layout(layout_file)
     limits = load_limits(limits_file) if limits_file else None
     conversion = load_conversion(conversion_file) if conversion_file else None
