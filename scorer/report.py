@@ -116,8 +116,9 @@ def html_page(title: str, sections: list[tuple[str, str]], meta: dict | None = N
 
 
 def write_json(path: Path, obj) -> None:
-    """Write ``obj`` as pretty JSON (numpy scalars and arrays converted)."""
-    Path(path).write_text(json.dumps(obj, indent=2, default=_json_default) + "\n", encoding="utf-8")
+    """Write ``obj`` as pretty, valid JSON (numpy scalars and arrays converted, NaN/inf as null)."""
+    Path(path).write_text(json.dumps(clean_nans(obj), indent=2, default=_json_default, allow_nan=False) + "\n",
+                          encoding="utf-8")
 
 
 def _json_default(o):
@@ -136,13 +137,15 @@ def _json_default(o):
 
 def dumps(obj) -> str:
     """JSON text for stdout (same conversions as :func:`write_json`)."""
-    return json.dumps(clean_nans(obj), default=_json_default)
+    return json.dumps(clean_nans(obj), default=_json_default, allow_nan=False)
 
 
 def clean_nans(obj):
-    """Replace NaN/inf floats by None recursively so the JSON is valid."""
-    if isinstance(obj, float):
-        return obj if np.isfinite(obj) else None
+    """Replace NaN/inf floats (numpy ones too) by None recursively so the JSON is valid."""
+    if isinstance(obj, (float, np.floating)):
+        return float(obj) if np.isfinite(obj) else None
+    if isinstance(obj, np.ndarray):
+        return clean_nans(obj.tolist())
     if isinstance(obj, dict):
         return {k: clean_nans(v) for k, v in obj.items()}
     if isinstance(obj, (list, tuple)):

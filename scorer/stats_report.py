@@ -114,9 +114,8 @@ def write_outputs(a, out_dir, meta: dict | None = None) -> dict:
         if df is not None and len(df):
             df.to_csv(out / name, index=False)
             paths[name] = str(out / name)
-    from .report import clean_nans
 
-    write_json(out / "analysis.json", clean_nans({**a.to_json(), "meta": meta or {}}))
+    write_json(out / "analysis.json", {**a.to_json(), "meta": meta or {}})
     paths["analysis.json"] = str(out / "analysis.json")
     (out / "report.html").write_text(report_html(a, meta), encoding="utf-8")
     paths["report.html"] = str(out / "report.html")

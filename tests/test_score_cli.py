@@ -208,3 +208,14 @@ def test_human_factor_from_an_analysis_file(direct_set, tmp_path):
     res = _run(files + ["--layout", str(MINI), "--observer", "npw", "--limits", str(lim),
                         "--human-factor-from", str(analysis)])
     assert res.exit_code == 2 and "no human/model factor for the NPW observer" in res.output
+
+
+def test_one_image_results_json_is_valid_json(direct_set, tmp_path):
+    # one image gives no CI (NaN inside): the written JSON must still parse strictly (RFC 8259 has no NaN)
+    res = _run([str(next(direct_set.glob("*.dcm"))), "--layout", str(MINI), "--out", str(tmp_path / "one")])
+    assert res.exit_code == 0, res.output
+    text = (tmp_path / "one" / "results.json").read_text()
+    js = json.loads(text, parse_constant=lambda c: pytest.fail(f"non-JSON constant {c}"))
+    # the count method has no bootstrap CI from one image; the d′ method's analytic CI needs none
+    assert all(t["ci_low"] is None for t in js["thresholds"] if t["method"] == "count")
+    assert all(t["ci_low"] is not None for t in js["thresholds"] if t["method"] == "dprime")

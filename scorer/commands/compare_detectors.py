@@ -8,7 +8,7 @@ import click
 import numpy as np
 
 from ..compare import load_detector_json, load_scored_json, compare
-from ..report import clean_nans, dumps, write_json
+from ..report import dumps, write_json
 from .detector import diameters_from_options
 
 
@@ -52,7 +52,7 @@ def compare_detectors(detector_a, detector_b, label_a, label_b, scored_a, scored
 
         out = Path(out_dir)
         out.mkdir(parents=True, exist_ok=True)
-        write_json(out / "comparison.json", clean_nans(result))
+        write_json(out / "comparison.json", result)
         (out / "comparison.html").write_text(compare_report_html(result, a, b), encoding="utf-8")
     if as_json:
         click.echo(dumps(result))

@@ -219,7 +219,7 @@ def detector(flat_files, edge_files, kerma_ugy, q_per_mm2_ugy, beam, pixel_spaci
     if out_dir:
         out = Path(out_dir)
         out.mkdir(parents=True, exist_ok=True)
-        write_json(out / "detector.json", _clean(result))
+        write_json(out / "detector.json", result)
         write_csv(out / "detector.csv", result)
         if metrics is not None and metrics.nnps is not None:
             np.save(out / "nnps_2d.npy", metrics.nnps.nnps_2d_mm2)
@@ -237,12 +237,6 @@ def detector(flat_files, edge_files, kerma_ugy, q_per_mm2_ugy, beam, pixel_spaci
                 click.echo(f"  {p['observer']:<5} {p['diameter_mm']:>6.3g} mm  {100 * p['threshold_contrast']:.3g}")
         if out_dir:
             click.echo(f"wrote detector.json, detector.csv and detector.html to {out_dir}/")
-
-
-def _clean(obj):
-    from ..report import clean_nans
-
-    return clean_nans(obj)
 
 
 def write_csv(path: Path, result: dict) -> None:
