@@ -16,7 +16,7 @@ import numpy as np
 from click.testing import CliRunner
 
 from scorer.cli import main as limen_cli
-from scorer.reader_model import simulate_reader_study
+from scorer.study import simulate_reader_study
 
 FLOOR_S = 60.0
 

@@ -16,8 +16,8 @@ from pathlib import Path
 import numpy as np
 
 from scorer.detector import measure_detector
-from scorer.image import Image
-from scorer.simulate import detector_model, simulate
+from scorer.images import Image
+from scorer.detector import detector_model, simulate
 
 FLOOR_S = 10.0
 

@@ -17,10 +17,10 @@ from pathlib import Path
 
 import numpy as np
 
-from scorer.image import Image
-from scorer.layout import load_layout
-from scorer.register import register
-from scorer.simulate import Pose, detector_model, simulate
+from scorer.images import Image
+from scorer.phantom import load_layout
+from scorer.phantom import register
+from scorer.detector import Pose, detector_model, simulate
 
 TARGET_S = 0.5
 DOSE_UGY = 25.0

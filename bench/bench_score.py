@@ -20,14 +20,14 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from scorer.conversion import save_conversion
-from scorer.io import load_image
-from scorer.layout import load_layout
+from scorer.images import save_conversion
+from scorer.images import load_image
+from scorer.phantom import load_layout
 from scorer.observer import ObserverConfig, decide, estimate_blur, score_image
-from scorer.register import register
-from scorer.scoring import score_images
-from scorer.simulate import detector_model, simulate, write_simulated
-from scorer.threshold import count_thresholds, dprime_thresholds
+from scorer.phantom import register
+from scorer.observer import score_images
+from scorer.detector import detector_model, simulate, write_simulated
+from scorer.observer import count_thresholds, dprime_thresholds
 
 FLOOR_RATIO = 3.0
 
@@ -72,7 +72,7 @@ def ci_widths() -> dict:
         frames = []
         for i in range(16):
             sim = simulate(m, "phantom", 100.0, seed=1000 + i, small=True, layout=lay)
-            from scorer.image import Image
+            from scorer.images import Image
 
             img = Image(sim.kerma_ugy(), sim.spacing_mm)
             pl = register(img, lay)

@@ -21,7 +21,7 @@ FLOOR_MB = 1024.0
 _CHILD = r"""
 import json, resource, sys, time, datetime
 from pathlib import Path
-from scorer.simulate import detector_model, simulate, write_simulated
+from scorer.detector import detector_model, simulate, write_simulated
 name, out = sys.argv[1], Path(sys.argv[2])
 m = detector_model(name)
 t = time.perf_counter(); sim = simulate(m, "phantom", 100.0, seed=1); t_sim = time.perf_counter() - t

@@ -12,8 +12,8 @@ import sys
 
 import click
 
-from . import __version__
-from .errors import LimenError
+from scorer import __version__
+from scorer.errors import LimenError
 
 # module name under scorer.commands -> the click command object inside it
 _COMMANDS = {

@@ -24,7 +24,7 @@ import sys
 import time
 from pathlib import Path
 
-from .report import CAUTION, html_page
+from scorer.reports import CAUTION, html_page
 
 DOSE_UGY = 100.0
 N_PHANTOM = 8
@@ -32,7 +32,7 @@ N_PHANTOM = 8
 
 def _limen(args: list[str], allowed_exit=(0,)) -> int:
     """Run one ``limen`` command in-process, echoing it as a user would type it."""
-    from .cli import main
+    from scorer.cli import main
 
     print(f"\n$ limen {' '.join(shlex.quote(a) for a in args)}", flush=True)
     try:
@@ -94,8 +94,8 @@ def _reader_study(out: Path) -> list[tuple[str, str]]:
     import numpy as np
     import pandas as pd
 
-    from . import reader_model
-    from .limits import EXAMPLE_LIMITS
+    import scorer.study.reader_model as reader_model
+    from scorer.observer import EXAMPLE_LIMITS
 
     study = out / "reader-study"
     study.mkdir(parents=True, exist_ok=True)

@@ -5,7 +5,7 @@ from __future__ import annotations
 import tomllib
 from pathlib import Path
 
-from .errors import LimenError
+from scorer.errors import LimenError
 
 
 def read_toml(path, what: str) -> dict:

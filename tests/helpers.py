@@ -7,8 +7,8 @@ from types import SimpleNamespace
 
 import numpy as np
 
-from scorer.geometry import PhantomTransform
-from scorer.layout import parse_layout
+from scorer.phantom import PhantomTransform
+from scorer.phantom import parse_layout
 
 DATA = Path(__file__).parent / "data"
 MINI = DATA / "mini-plate.toml"
@@ -56,8 +56,8 @@ def known_placement(layout, shape, pixel_mm, magnification=1.0):
 
 def simulate_set(model, layout, dose_ugy, n_images, seed=0, pose=None):
     """Simulated images (linearised to µGy) of ``layout`` with the placement the simulator used."""
-    from scorer.image import Image
-    from scorer.simulate import Pose, phantom_transform, simulate
+    from scorer.images import Image
+    from scorer.detector.simulator import Pose, phantom_transform, simulate
 
     pose = pose or Pose()
     out = []

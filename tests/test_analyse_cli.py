@@ -9,7 +9,7 @@ import pytest
 from click.testing import CliRunner
 
 from scorer.cli import main
-from scorer.reader_model import simulate_reader_study
+from scorer.study import simulate_reader_study
 
 
 @pytest.fixture(scope="module")

@@ -7,11 +7,11 @@ import numpy as np
 import pytest
 from scipy.stats import norm
 
-from scorer.detector import (beam_qualities, compute_dqe, fit_conversion, measure_detector, q_for_beam)
+from scorer.detector.measure import (beam_qualities, compute_dqe, fit_conversion, measure_detector, q_for_beam)
 from scorer.errors import LimenError
-from scorer.image import Image
-from scorer.mtf import measure_mtf
-from scorer.nnps import measure_nnps
+from scorer.images import Image
+from scorer.detector import measure_mtf
+from scorer.detector import measure_nnps
 
 
 # ---------------------------------------------------------------- synthetic images
@@ -79,7 +79,7 @@ def test_mtf_refuses_unusable_edges():
 def test_mtf_simulated_panels():
     # Direct conversion, 100 % fill factor: presampling MTF = |sinc(pf)| → 2/π ≈ 0.637 at Nyquist
     # (REFERENCES.md, square pixel aperture); indirect: the simulator's analytic presampling MTF.
-    sim = pytest.importorskip("scorer.simulate")
+    sim = pytest.importorskip("scorer.detector.simulator")
     for name in ("direct", "indirect"):
         model = sim.detector_model(name)
         for angle in (2.5, 92.5):  # near-vertical and near-horizontal edges
@@ -159,7 +159,7 @@ def test_dqe_simulated_direct_panel_low_frequency():
     # Low-frequency DQE of a quantum-limited detector = η · A_S (quantum detection efficiency × Swank
     # factor; Swank, J. Appl. Phys. 44 (1973), from memory); the simulated direct panel's electronic noise
     # is negligible at 100 µGy.
-    sim = pytest.importorskip("scorer.simulate")
+    sim = pytest.importorskip("scorer.detector.simulator")
     model = sim.detector_model("direct")
     flats = [sim.simulate(model, "flat", dose_ugy=100.0, seed=s, small=True) for s in range(4)]
     edge = sim.simulate(model, "edge", dose_ugy=100.0, seed=9, small=True)

@@ -8,9 +8,9 @@ import pytest
 from click.testing import CliRunner
 
 from scorer.cli import main
-from scorer.conversion import save_conversion
-from scorer.io import write_dicom
-from scorer.simulate import detector_model, simulate, write_simulated
+from scorer.images import save_conversion
+from scorer.images import write_dicom
+from scorer.detector import detector_model, simulate, write_simulated
 
 T0 = dt.datetime(2026, 11, 30, 8, 0, 0)
 

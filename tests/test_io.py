@@ -1,4 +1,4 @@
-"""Tests for scorer.io: reading and writing detector images.
+"""Tests for scorer.images.io: reading and writing detector images.
 
 Outside references used below:
 * DICOM PS3.3 (tags and their meaning), PS3.4 Annex B (storage SOP class UIDs),
@@ -8,7 +8,7 @@ Outside references used below:
 * Independent readers of what we write: pydicom with a named decoding plugin,
   tifffile's page tags, Pillow for PNG bit depth.
 * FIPS 180-2 appendix B.1: SHA-256("abc").
-* The analytic inverse of each conversion function (scorer.conversion docstring):
+* The analytic inverse of each conversion function (scorer.images.conversion docstring):
   linear PV = offset + gain·K, logarithmic PV = offset + gain·ln K.
 """
 
@@ -24,9 +24,9 @@ import pytest
 from pydicom.dataset import FileDataset, FileMetaDataset, validate_file_meta
 from pydicom.uid import UID, ExplicitVRLittleEndian, generate_uid
 
-from scorer.conversion import ConversionFunction
+from scorer.images import ConversionFunction
 from scorer.errors import LimenError
-from scorer.io import (
+from scorer.images.io import (
     SOP_CLASS_DX_FOR_PROCESSING,
     SOP_CLASS_MG_FOR_PROCESSING,
     LimenWarning,
@@ -592,7 +592,7 @@ def test_write_image_bad_extension_and_dicom_needs_spacing(tmp_path):
 def test_decoder_failure_at_decode_time_names_the_syntax(tmp_path, monkeypatch):
     # pydicom's own error when no plugin can decode (raised inside pixel_array) must also
     # become a one-line LimenError naming the transfer syntax, not a traceback.
-    import scorer.io as sio
+    import scorer.images.io as sio
     from pydicom.pixels.decoders import JPEG2000LosslessDecoder
 
     p = _mg(tmp_path, syntax="jpeg2000-lossless")

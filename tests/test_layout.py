@@ -8,7 +8,7 @@ import numpy as np
 import pytest
 
 from scorer.errors import LimenError
-from scorer.layout import default_layout_path, load_layout, parse_layout
+from scorer.phantom import default_layout_path, load_layout, parse_layout
 
 MINI = Path(__file__).parent / "data" / "mini-plate.toml"
 

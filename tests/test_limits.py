@@ -4,8 +4,8 @@ import numpy as np
 import pytest
 
 from scorer.errors import LimenError
-from scorer.limits import EXAMPLE_LIMITS, evaluate, load_limits, overall
-from scorer.threshold import ThresholdCurve, ThresholdPoint
+from scorer.observer import EXAMPLE_LIMITS, evaluate, load_limits, overall
+from scorer.observer import ThresholdCurve, ThresholdPoint
 
 
 def _curve(points, observer="npw"):

@@ -4,7 +4,7 @@ import numpy as np
 import pytest
 from scipy import stats
 
-from scorer.mafc import dprime_for_pc, halfway_criterion, pc_mafc
+from scorer.observer import dprime_for_pc, halfway_criterion, pc_mafc
 
 
 @pytest.mark.parametrize("d", [0.0, 0.5, 1.0, 2.0, 3.5])

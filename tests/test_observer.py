@@ -4,10 +4,10 @@ import numpy as np
 import pytest
 
 from helpers import grid_layout, known_placement
-from scorer.disc import disc_coverage
-from scorer.image import Image
+from scorer.phantom import disc_coverage
+from scorer.images import Image
 from scorer.observer import ObserverConfig, SystemBlur, decide, estimate_blur, score_image
-from scorer.simulate import render_discs
+from scorer.detector.simulator import render_discs
 
 PIXEL_MM = 0.1
 

@@ -6,13 +6,13 @@ import pytest
 
 from helpers import MINI, simulate_set
 from scorer.detector import measure_detector
-from scorer.image import Image
-from scorer.layout import load_layout
+from scorer.images import Image
+from scorer.phantom import load_layout
 from scorer.observer import ObserverConfig, SystemBlur, score_image
-from scorer.predict import predict_from_detector
-from scorer.register import register
-from scorer.simulate import detector_model, simulate
-from scorer.threshold import dprime_thresholds
+from scorer.detector import predict_from_detector
+from scorer.phantom import register
+from scorer.detector import detector_model, simulate
+from scorer.observer import dprime_thresholds
 
 
 @pytest.mark.parametrize("panel", ["direct", "indirect"])

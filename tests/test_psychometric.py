@@ -1,4 +1,4 @@
-"""Tests of scorer.psychometric: M-AFC table, ML fits, likelihood-ratio and bootstrap CIs.
+"""Tests of scorer.observer.psychometric: M-AFC table, ML fits, likelihood-ratio and bootstrap CIs.
 
 Sources are named beside each check.  Simulated data are drawn from the M-AFC
 formula (Green & Swets 1966) with a known k, so the true threshold is known.
@@ -11,8 +11,8 @@ import pytest
 from scipy import stats
 
 from scorer.errors import LimenError
-from scorer.mafc import dprime_for_pc, halfway_criterion, pc_mafc
-from scorer.psychometric import (
+from scorer.observer import dprime_for_pc, halfway_criterion, pc_mafc
+from scorer.observer.psychometric import (
     bootstrap_threshold,
     bootstrap_weights,
     fit_k_batch,
@@ -41,7 +41,7 @@ def simulate_images(rng, n_images, ct=TRUE_CT, m=M, lapse=0.0):
 # ----------------------------------------------------------------------------- table
 @pytest.mark.parametrize("m", [2, 3, 4, 8, 16])
 def test_table_matches_quadrature(m):
-    # Green & Swets (1966) integral, computed by adaptive quadrature in scorer.mafc.pc_mafc
+    # Green & Swets (1966) integral, computed by adaptive quadrature in scorer.observer.mafc.pc_mafc
     d = np.random.default_rng(m).uniform(0.0, 12.0, 20)
     d = np.r_[d, 0.0, 0.5, 1.0, 2.0, 3.0, 11.99]
     err = np.abs(pc_mafc_fast(d, m) - pc_mafc(d, m)).max()

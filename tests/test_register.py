@@ -8,10 +8,10 @@ import numpy as np
 import pytest
 
 from scorer.errors import LimenError
-from scorer.image import Image, ImageMetadata
-from scorer.layout import Target, load_layout
-from scorer.register import Placement, RegistrationError, draw_overlay, fit_similarity, register
-from scorer.simulate import (Pose, _phantom_field_shape, detector_model, expose, phantom_transform,
+from scorer.images import Image, ImageMetadata
+from scorer.phantom import Target, load_layout
+from scorer.phantom import Placement, RegistrationError, draw_overlay, fit_similarity, register
+from scorer.detector.simulator import (Pose, _phantom_field_shape, detector_model, expose, phantom_transform,
                              phantom_transmission, render_discs, simulate)
 
 MINI = Path(__file__).parent / "data" / "mini-plate.toml"

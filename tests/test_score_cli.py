@@ -9,9 +9,9 @@ from click.testing import CliRunner
 
 from helpers import MINI
 from scorer.cli import main
-from scorer.io import load_image, write_image
-from scorer.layout import load_layout
-from scorer.scoring import score_images
+from scorer.images import load_image, write_image
+from scorer.phantom import load_layout
+from scorer.observer import score_images
 
 
 @pytest.fixture(scope="module")
@@ -120,7 +120,7 @@ def test_thresholds_unchanged_by_rotating_or_mirroring_every_image(direct_set, t
         img = load_image(f)
         px = np.rot90(img.pixels) if transform == "rot90" else img.pixels[:, ::-1]
         moved.append(write_image(tmp_path / f"{f.stem}.npy", np.ascontiguousarray(px)))
-    from scorer.conversion import load_conversion
+    from scorer.images import load_conversion
 
     c = load_conversion(conv)
     a = score_images(files, lay, methods=["dprime"], conversion=c, n_boot=0)
@@ -134,7 +134,7 @@ def _bad_files(tmp, good_dcm):
     """Expected bad inputs of the foundation issue, each paired with a phrase its error must hold."""
     import cv2
 
-    from scorer.io import write_dicom
+    from scorer.images import write_dicom
 
     out = []
     data = Path(good_dcm).read_bytes()
@@ -174,7 +174,7 @@ def test_compressed_dicom_without_its_decoder_exits_2(direct_set, tmp_path, monk
     from pydicom.pixels.decoders import JPEGLSLosslessDecoder
 
     img = load_image(next(direct_set.glob("*.dcm")))
-    from scorer.io import write_dicom
+    from scorer.images import write_dicom
 
     p = write_dicom(tmp_path / "jls.dcm", img.pixels.astype(np.uint16), img.spacing_mm, {"Modality": "MG"},
                     transfer_syntax="jpeg-ls-lossless")

@@ -8,8 +8,8 @@ import pytest
 from click.testing import CliRunner
 
 from scorer.cli import main
-from scorer.simulate import Pose, detector_model, render_edge, simulate
-from scorer.layout import load_layout
+from scorer.detector.simulator import Pose, detector_model, render_edge, simulate
+from scorer.phantom import load_layout
 
 MINI = Path(__file__).parent / "data" / "mini-plate.toml"
 
@@ -83,7 +83,7 @@ def test_mean_signal_is_proportional_to_dose():
 
 
 def _presampled_mtf_at(model, freqs, seed=11):
-    from scorer.mtf import measure_mtf
+    from scorer.detector import measure_mtf
 
     sim = simulate(model, "edge", dose_ugy=150.0, seed=seed, small=True, edge_angle_deg=2.5)  # below 14-bit saturation
     res = measure_mtf(sim.kerma_ugy(), sim.spacing_mm)
@@ -127,7 +127,7 @@ def test_phantom_pose_places_markers_where_truth_says():
 
 
 def test_cli_writes_dicom_and_truth_sidecar(tmp_path):
-    from scorer.io import load_image
+    from scorer.images import load_image
 
     res = CliRunner().invoke(main, ["simulate", "--detector", "indirect", "--kind", "phantom", "--small",
                                     "--layout", str(MINI), "--rotate", "90", "--flip", "--count", "2",
@@ -161,7 +161,7 @@ def test_cli_bad_input_one_line_exit_2(tmp_path, args, msg):
 
 def test_detector_model_file_overrides_and_rejects_unknown_keys(tmp_path):
     from scorer.errors import LimenError
-    from scorer.simulate import load_detector_model
+    from scorer.detector import load_detector_model
 
     good = tmp_path / "panel.toml"
     good.write_text('base = "indirect"\nlight_spread_mm = 0.06\nelectronic_noise_adu = 2.0\n')

@@ -1,6 +1,6 @@
-"""Tests of scorer.stats, scorer.agreement and scorer.reader_model.
+"""Tests of scorer.study.stats, scorer.study.agreement and scorer.study.reader_model.
 
-Simulated readers come from the documented model in scorer.reader_model (linear
+Simulated readers come from the documented model in scorer.study.reader_model (linear
 observers in M-AFC; Green & Swets 1966), so true thresholds are known.
 """
 
@@ -12,13 +12,13 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from scorer.agreement import cohen_kappa_table, fleiss_kappa_items, inter_reader_agreement, intra_reader_agreement
+from scorer.study.agreement import cohen_kappa_table, fleiss_kappa_items, inter_reader_agreement, intra_reader_agreement
 from scorer.errors import LimenError
-from scorer.mafc import dprime_for_pc
-from scorer.psychometric import pc_mafc_fast, unit_counts
-from scorer.reader_model import ReaderPopulation, model_threshold, simulate_reader_study
-from scorer.report import dumps
-from scorer.stats import (
+from scorer.observer import dprime_for_pc
+from scorer.observer.psychometric import pc_mafc_fast, unit_counts
+from scorer.study.reader_model import ReaderPopulation, model_threshold, simulate_reader_study
+from scorer.reports import dumps
+from scorer.study.stats import (
     _counts_cube,
     analyse_study,
     compare_groups,
@@ -175,7 +175,7 @@ def test_mixed_model_matches_statsmodels_direct_fit():
 
 # ----------------------------------------------------------------------------- human vs model
 def test_human_model_factor_recovered():
-    # The invented readers' factors are known (scorer.reader_model): over 60 seeded studies the
+    # The invented readers' factors are known (scorer.study.reader_model): over 60 seeded studies the
     # bootstrap CI (readers × images, Efron & Tibshirani 1993) of the human/model factor covers the
     # readers' geometric-mean factor.  Measured here: see the assert message; a separate run of 40
     # studies with 8 readers × 2 detectors × 2 diameters gave coverage 0.95, mean log error +0.026.
@@ -292,9 +292,9 @@ def test_readers_from_image_responses_have_their_designed_factor():
     # Readers built on a linear model observer's responses with efficiency e and internal noise σ have
     # d′_human = d′_model·√e/√(1+σ²) (Burgess, J. Opt. Soc. Am. A 11 (1994)): the fitted human/model
     # threshold ratio must match the designed factor F = √(1+σ²)/√e.
-    from scorer.mafc import dprime_for_pc
-    from scorer.reader_model import readers_from_responses
-    from scorer.threshold import count_thresholds
+    from scorer.observer import dprime_for_pc
+    from scorer.study import readers_from_responses
+    from scorer.observer import count_thresholds
     from scorer.observer import decide
 
     rng = np.random.default_rng(12)

@@ -6,10 +6,10 @@ import pytest
 
 from helpers import grid_layout, simulate_set
 from scorer.errors import LimenError
-from scorer.mafc import dprime_for_pc
+from scorer.observer import dprime_for_pc
 from scorer.observer import ObserverConfig, SystemBlur, decide, score_image
-from scorer.simulate import detector_model
-from scorer.threshold import count_thresholds, dprime_thresholds, smooth_curve
+from scorer.detector import detector_model
+from scorer.observer import count_thresholds, dprime_thresholds, smooth_curve
 
 # quantum-limited panel: no excess (Swank) noise, no electronic noise, every quantum absorbed, no spread
 IDEAL = detector_model("direct").with_overrides(swank=1.0, electronic_noise_adu=0.0, qde=1.0)
@@ -104,7 +104,7 @@ def test_dprime_ci_from_4_images_narrower_than_count_ci_from_16():
 
 
 def test_smooth_curve_is_exact_on_a_power_law():
-    from scorer.threshold import ThresholdPoint
+    from scorer.observer import ThresholdPoint
 
     pts = [ThresholdPoint(d, 0.002 / d, 0.0018 / d, 0.0022 / d, "dprime", "npw", 4, 4, 0.625)
            for d in (0.1, 0.25, 0.5, 1.0, 2.0)]
@@ -128,7 +128,7 @@ def test_incomplete_or_mixed_tables_are_refused():
 
 def test_known_site_design_is_scored_as_forced_choice():
     # one known signal site plus two background sites: a 3-alternative forced choice (Green & Swets 1966)
-    from scorer.layout import parse_layout
+    from scorer.phantom import parse_layout
 
     contrasts = [0.002, 0.004, 0.008, 0.016, 0.032]
     targets = []

@@ -6,7 +6,7 @@ import sys
 
 import click
 
-from ..report import dumps
+from scorer.reports import dumps
 
 
 @click.command("analyse")
@@ -26,8 +26,8 @@ from ..report import dumps
               help="Write analysis.json, CSV tables and report.html here.")
 def analyse(responses, model_file, by, reference, n_boot, criterion_pc, seed, as_json, out_dir):
     """Per-reader and pooled contrast-detail curves, human/model factor, group comparison, agreement."""
-    from ..io import image_content_hash as file_sha256   # SHA-256 of a file's bytes
-    from ..stats import analyse_study, load_trials
+    from scorer.images.io import image_content_hash as file_sha256   # SHA-256 of a file's bytes
+    from scorer.study import analyse_study, load_trials
 
     trials = load_trials(responses)
     model = load_trials(model_file) if model_file else None
@@ -49,7 +49,7 @@ def analyse(responses, model_file, by, reference, n_boot, criterion_pc, seed, as
     if model_file:
         meta["inputs"]["model"] = {"path": str(model_file), "sha256": file_sha256(model_file)}
     if out_dir:
-        from ..stats_report import write_outputs
+        from scorer.reports import write_outputs
 
         write_outputs(a, out_dir, meta)
     if as_json:

@@ -7,9 +7,9 @@ from pathlib import Path
 import click
 import numpy as np
 
-from ..compare import load_detector_json, load_scored_json, compare
-from ..report import dumps, write_json
-from .detector import diameters_from_options
+from scorer.detector import load_detector_json, load_scored_json, compare
+from scorer.reports import dumps, write_json
+from scorer.commands.detector import diameters_from_options
 
 
 @click.command("compare-detectors")
@@ -48,7 +48,7 @@ def compare_detectors(detector_a, detector_b, label_a, label_b, scored_a, scored
     result["inputs"] = {"detector_a": str(detector_a), "detector_b": str(detector_b),
                         "scored_a": scored_a, "scored_b": scored_b, "layout": layout_file}
     if out_dir:
-        from ..detector_report import compare_report_html
+        from scorer.reports import compare_report_html
 
         out = Path(out_dir)
         out.mkdir(parents=True, exist_ok=True)

@@ -10,11 +10,11 @@ from pathlib import Path
 import click
 import numpy as np
 
-from ..conversion import load_conversion
-from ..detector import central_mean, fit_conversion, measure_detector, q_for_beam
-from ..errors import LimenError
-from ..detector_report import summary_rows
-from ..report import dumps, write_json
+from scorer.images import load_conversion
+from scorer.detector.measure import central_mean, fit_conversion, measure_detector, q_for_beam
+from scorer.errors import LimenError
+from scorer.reports.detector import summary_rows
+from scorer.reports import dumps, write_json
 
 #: options that take every following file name up to the next option (``--flat a.dcm b.dcm``)
 GREEDY_OPTIONS = ("--flat", "--edge")
@@ -68,7 +68,7 @@ def diameters_from_options(diameters: str | None, layout_file: str | None) -> li
     """Diameters (mm) from ``--diameters`` or a layout file's targets."""
     d = _parse_diameters(diameters)
     if d is None and layout_file:
-        from ..layout import load_layout
+        from scorer.phantom import load_layout
 
         d = [float(v) for v in load_layout(layout_file).diameters_mm]
     return d
@@ -96,7 +96,7 @@ def _read_kerma_csv(path: Path) -> list[tuple[Path, float]]:
 
 def load_images_warn(paths, *, spacing, conversion, role: str):
     """Load images, turning LimenWarnings into one stderr line each; FOR PRESENTATION flats get the NNPS warning."""
-    from ..io import load_image
+    from scorer.images import load_image
 
     images = []
     for p in paths:
@@ -205,7 +205,7 @@ def detector(flat_files, edge_files, kerma_ugy, q_per_mm2_ugy, beam, pixel_spaci
         if metrics.dqe is None and metrics.mtf is not None and metrics.nnps is not None:
             click.echo("note: DQE not computed: give --kerma-ugy and --q (or --beam)", err=True)
         if diam and metrics.mtf is not None and metrics.nnps is not None:
-            from ..predict import predict_from_detector
+            from scorer.detector import predict_from_detector
 
             metrics.predicted = [p.to_dict() for p in
                                  predict_from_detector(metrics.to_dict(), diam, m_alternatives=m_alternatives)]
@@ -223,7 +223,7 @@ def detector(flat_files, edge_files, kerma_ugy, q_per_mm2_ugy, beam, pixel_spaci
         write_csv(out / "detector.csv", result)
         if metrics is not None and metrics.nnps is not None:
             np.save(out / "nnps_2d.npy", metrics.nnps.nnps_2d_mm2)
-        from ..detector_report import detector_report_html
+        from scorer.reports import detector_report_html
 
         (out / "detector.html").write_text(detector_report_html(result, metrics), encoding="utf-8")
     if as_json:

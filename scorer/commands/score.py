@@ -10,15 +10,15 @@ from pathlib import Path
 import click
 from tqdm import tqdm
 
-from ..conversion import load_conversion
-from ..errors import LimenError
-from ..layout import load_layout
-from ..limits import load_limits
-from ..observer import SystemBlur
-from ..register import draw_overlay
-from ..report import CAUTION, dumps
-from ..score_report import METHOD_LABEL, write_score_outputs
-from ..scoring import score_images
+from scorer.images import load_conversion
+from scorer.errors import LimenError
+from scorer.phantom import load_layout
+from scorer.observer import load_limits
+from scorer.observer import SystemBlur
+from scorer.phantom import draw_overlay
+from scorer.reports import CAUTION, dumps
+from scorer.reports.score import METHOD_LABEL, write_score_outputs
+from scorer.observer import score_images
 
 
 def human_factor_from_analysis(path, observer: str) -> float:

@@ -10,10 +10,10 @@ import click
 import numpy as np
 from tqdm import tqdm
 
-from ..conversion import save_conversion
-from ..errors import LimenError
-from ..layout import load_layout
-from ..simulate import Pose, detector_model, load_detector_model, simulate as run_simulation, write_simulated
+from scorer.images import save_conversion
+from scorer.errors import LimenError
+from scorer.phantom import load_layout
+from scorer.detector import Pose, detector_model, load_detector_model, simulate as run_simulation, write_simulated
 
 DEFAULT_START = _dt.datetime(2026, 11, 30, 7, 30, 0)
 

@@ -25,7 +25,7 @@ from pathlib import Path
 
 import numpy as np
 
-from .errors import LimenError
+from scorer.errors import LimenError
 
 KINDS = ("linear", "logarithmic")
 

@@ -79,7 +79,7 @@ def table_html(rows: list[dict], columns: list[str] | None = None, headers: dict
 def provenance() -> dict:
     """Versions and time, recorded in every report so a result can be reproduced."""
     import numpy, scipy  # noqa: E401
-    from . import __version__
+    from scorer import __version__
 
     out = {
         "limen_version": __version__,

@@ -1,4 +1,4 @@
-"""HTML report and CSV tables of a reader-study analysis (:class:`scorer.stats.Analysis`).
+"""HTML report and CSV tables of a reader-study analysis (:class:`scorer.study.stats.Analysis`).
 
 Plots: contrast-detail curves per group (per reader, pooled with CI, model observer and
 human-equivalent model curve), log-log; forest plot of the group comparison; Bland–Altman
@@ -13,7 +13,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from .report import figure_to_svg, html_page, table_html, write_json
+from scorer.reports.html import figure_to_svg, html_page, table_html, write_json
 
 
 def _plt():

@@ -44,7 +44,7 @@ from dataclasses import dataclass, field
 import numpy as np
 from scipy import ndimage
 
-from .errors import LimenError
+from scorer.errors import LimenError
 
 DEFAULT_BIN_FRACTION = 0.25
 DEFAULT_LSF_HALF_WIDTH_PX = 40
@@ -60,7 +60,7 @@ class MTFResult:
     frequency_per_mm, value : ndarray
         MTF up to ``report_max_fraction_nyquist`` × Nyquist.
     frequency_ext_per_mm, value_ext : ndarray
-        The same curve up to 2 × Nyquist (for the aliasing terms of :mod:`scorer.predict`).
+        The same curve up to 2 × Nyquist (for the aliasing terms of :mod:`scorer.detector.predict`).
     direction : str
         ``"x"`` when the MTF is along the image rows (measured on a near-vertical
         edge), ``"y"`` along the columns, ``"mean"`` for an average of both.

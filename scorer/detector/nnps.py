@@ -39,7 +39,7 @@ from dataclasses import dataclass, field
 import numpy as np
 from scipy import fft as sfft
 
-from .errors import LimenError
+from scorer.errors import LimenError
 
 DEFAULT_ROI_PX = 256
 DEFAULT_REGION_MM = 125.0

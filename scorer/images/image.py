@@ -1,4 +1,4 @@
-"""The Image object that travels from :mod:`scorer.io` to the analysis modules."""
+"""The Image object that travels from :mod:`scorer.images.io` to the analysis modules."""
 
 from __future__ import annotations
 

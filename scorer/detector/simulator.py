@@ -63,12 +63,12 @@ from pathlib import Path
 import numpy as np
 from scipy import fft as sfft
 
-from .conversion import ConversionFunction
-from .disc import SUPERSAMPLE, disc_coverage_patch
-from .errors import LimenError
-from .files import read_toml
-from .geometry import PhantomTransform
-from .layout import Layout, load_layout
+from scorer.images.conversion import ConversionFunction
+from scorer.phantom.disc import SUPERSAMPLE, disc_coverage_patch
+from scorer.errors import LimenError
+from scorer.files import read_toml
+from scorer.phantom.geometry import PhantomTransform
+from scorer.phantom.layout import Layout, load_layout
 
 SMALL_FIELD_PX = 512
 SMALL_MARGIN_MM = 6.0
@@ -439,7 +439,7 @@ def dicom_tags(model: DetectorModel, acquired: _dt.datetime, dose_ugy: float) ->
 def write_simulated(sim: SimulatedImage, out_dir: Path, stem: str, acquired: _dt.datetime,
                     fmt: str = "dicom") -> Path:
     """Write the image (DICOM by default) and its JSON ground-truth sidecar."""
-    from .io import write_dicom, write_image
+    from scorer.images.io import write_dicom, write_image
 
     out_dir = Path(out_dir)
     out_dir.mkdir(parents=True, exist_ok=True)

@@ -33,12 +33,12 @@ from pathlib import Path
 
 import numpy as np
 
-from .errors import LimenError
-from .files import read_toml
+from scorer.errors import LimenError
+from scorer.files import read_toml
 
 FORMAT = "limen-limits/1"
 OBSERVERS = ("human", "npw", "npwe")
-DATA_DIR = Path(__file__).resolve().parent / "data"
+DATA_DIR = Path(__file__).resolve().parents[1] / "data"
 EXAMPLE_LIMITS = DATA_DIR / "limits-eu-guidelines-2006-digital-mammography.toml"
 
 
@@ -147,7 +147,7 @@ class Verdict:
 
 
 def evaluate(curve, limits: Limits, human_factor: float | None = None) -> list[Verdict]:
-    """Verdicts for every point of a :class:`~scorer.threshold.ThresholdCurve` against ``limits``."""
+    """Verdicts for every point of a :class:`~scorer.observer.threshold.ThresholdCurve` against ``limits``."""
     obs = curve.observer.lower()
     factor = None
     if limits.observer == "human" and obs in ("npw", "npwe"):

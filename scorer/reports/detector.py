@@ -1,4 +1,4 @@
-"""HTML reports for ``limen detector`` and ``limen compare-detectors`` (via :func:`scorer.report.html_page`)."""
+"""HTML reports for ``limen detector`` and ``limen compare-detectors`` (via :func:`scorer.reports.html.html_page`)."""
 
 from __future__ import annotations
 
@@ -6,7 +6,7 @@ import html
 
 import numpy as np
 
-from .report import figure_to_svg, html_page, table_html
+from scorer.reports.html import figure_to_svg, html_page, table_html
 
 
 def summary_rows(d: dict) -> list[tuple[str, str]]:

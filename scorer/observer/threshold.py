@@ -2,7 +2,7 @@
 
 *Count method* — the proportion of correct M-AFC decisions per target over the
 images is fitted per diameter by maximum likelihood with the linear-observer
-form Pc(C) = Pc_M(k·C) (:mod:`scorer.psychometric`, guess rate 1/M); the threshold
+form Pc(C) = Pc_M(k·C) (:mod:`scorer.observer.psychometric`, guess rate 1/M); the threshold
 is the contrast where Pc reaches the criterion (default halfway between chance and
 1, common practice).
 
@@ -15,7 +15,7 @@ images and targets; with two sites, the pooled within-target variance over image
 linear observer's d′ is proportional to contrast, so d′ = k·C is fitted through the
 origin per diameter and C_T = d′_T / k, where d′_T is the d′ giving the criterion
 proportion correct in M-AFC, computed by integrating the M-AFC formula
-(:func:`scorer.mafc.dprime_for_pc`).  The fit uses every target: the model
+(:func:`scorer.observer.mafc.dprime_for_pc`).  The fit uses every target: the model
 observers are linear by construction, so the high-contrast targets measure k most
 precisely; a departure from proportionality shows up in the over-dispersion test
 below and widens the interval.  (``local_factor`` restricts the fit to targets up to
@@ -57,11 +57,11 @@ from dataclasses import dataclass, field, asdict
 import numpy as np
 import pandas as pd
 
-from .errors import LimenError
-from .mafc import dprime_for_pc, halfway_criterion
+from scorer.errors import LimenError
+from scorer.observer.mafc import dprime_for_pc, halfway_criterion
 from scipy import stats
 
-from .psychometric import bootstrap_threshold, expanded_percentile_ci, unit_counts
+from scorer.observer.psychometric import bootstrap_threshold, expanded_percentile_ci, unit_counts
 
 METHODS = ("dprime", "count")
 LOCAL_FIT_FACTOR = None  # None: fit d′ = k·C on every target (the NPW/NPWE observers are linear)

@@ -2,14 +2,14 @@
 detector comparison.
 
 Input is the tidy trial table (one row per trial; columns in
-:data:`scorer.reader_model.TRIAL_COLUMNS`, plus optional ``response_ms``, ``session``,
+:data:`scorer.study.reader_model.TRIAL_COLUMNS`, plus optional ``response_ms``, ``session``,
 ``repeat``).  Model-observer trials from ``limen score --out`` have the same shape with
 ``reader`` = the observer's name.
 
 Methods (each documented where it is computed):
 
 * per reader × group × diameter: ML fit of the linear-observer M-AFC psychometric function
-  (:mod:`scorer.psychometric`), threshold at the scorer's criterion, percentile bootstrap
+  (:mod:`scorer.observer.psychometric`), threshold at the scorer's criterion, percentile bootstrap
   CI resampling images within the reader (Efron & Tibshirani 1993);
 * pooled curve: a GEE with reader clusters (Liang & Zeger 1986; statsmodels GEE) whose
   mean is the M-AFC linear-observer function through a custom link — see :class:`MafcLink`;
@@ -41,9 +41,9 @@ import numpy as np
 import pandas as pd
 from scipy import stats as sps
 
-from .errors import LimenError
-from .mafc import halfway_criterion
-from .psychometric import (
+from scorer.errors import LimenError
+from scorer.observer.mafc import halfway_criterion
+from scorer.observer.psychometric import (
     _dprime_for,
     bootstrap_threshold,
     bootstrap_weights,
@@ -56,7 +56,7 @@ from .psychometric import (
     percentile_ci,
     unit_counts,
 )
-from .reader_model import TRIAL_COLUMNS
+from scorer.study.reader_model import TRIAL_COLUMNS
 
 OPTIONAL_COLUMNS = ["response_ms", "session", "repeat", "n_alternatives"]
 
@@ -724,7 +724,7 @@ def analyse_study(trials: pd.DataFrame, model: pd.DataFrame | None = None, *, by
     ``trials`` and ``model`` must already be validated (:func:`validate_trials`).
     ``progress`` is an optional callable(str) told which step runs.
     """
-    from .agreement import agreement_summary
+    from scorer.study.agreement import agreement_summary
 
     if by not in trials.columns:
         raise LimenError(f"--by column {by!r} is not in the trial table")

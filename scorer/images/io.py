@@ -2,9 +2,9 @@
 
 :func:`load_image` turns a file — DICOM (uncompressed, JPEG-LS, JPEG 2000 and the
 other syntaxes pydicom can decode with the installed plugins), 16-bit TIFF,
-8/16-bit grey PNG or a NumPy ``.npy`` array — into an :class:`scorer.image.Image`
+8/16-bit grey PNG or a NumPy ``.npy`` array — into an :class:`scorer.images.image.Image`
 with float64 pixels, the pixel spacing in mm (row, column) and what the file says
-about where it came from.  With a :class:`~scorer.conversion.ConversionFunction`
+about where it came from.  With a :class:`~scorer.images.conversion.ConversionFunction`
 the pixels become detector air kerma in µGy.
 
 Every expected problem with a file raises :class:`~scorer.errors.LimenError`, one
@@ -33,9 +33,9 @@ from pathlib import Path
 
 import numpy as np
 
-from .conversion import ConversionFunction
-from .errors import LimenError
-from .image import Image, ImageMetadata
+from scorer.images.conversion import ConversionFunction
+from scorer.errors import LimenError
+from scorer.images.image import Image, ImageMetadata
 
 __all__ = [
     "LimenWarning",

@@ -11,8 +11,8 @@ matplotlib.use("Agg")
 import matplotlib.pyplot as plt  # noqa: E402
 import numpy as np  # noqa: E402
 
-from .psychometric import fit_psychometric  # noqa: E402
-from .report import figure_to_svg, html_page, table_html, write_json  # noqa: E402
+from scorer.observer.psychometric import fit_psychometric  # noqa: E402
+from scorer.reports.html import figure_to_svg, html_page, table_html, write_json  # noqa: E402
 
 METHOD_LABEL = {"dprime": "d′ method", "count": "count method", "predicted": "predicted"}
 COLOURS = {"dprime": "#1f5fa8", "count": "#c2571a", "predicted": "#3a8a3a"}

@@ -49,10 +49,10 @@ from pathlib import Path
 import numpy as np
 from scipy import ndimage as ndi
 
-from .errors import LimenError
-from .geometry import PhantomTransform
-from .image import Image
-from .layout import Layout
+from scorer.errors import LimenError
+from scorer.phantom.geometry import PhantomTransform
+from scorer.images.image import Image
+from scorer.phantom.layout import Layout
 
 # Blocks across the smallest marker (at the smallest magnification) on the coarse image.
 COARSE_BLOCKS_PER_MARKER = 6.0

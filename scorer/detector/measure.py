@@ -4,7 +4,7 @@ This module fits the conversion function from flat fields at several air kermas,
 holds the beam-quality table of q (photons per mm² per µGy), computes
 DQE(f) = MTF²(f) / (K · q · NNPS(f)), and gathers everything into
 :class:`DetectorMetrics` (what ``limen detector`` writes as ``detector.json``).
-The slanted-edge MTF lives in :mod:`scorer.mtf`, the NNPS in :mod:`scorer.nnps`.
+The slanted-edge MTF lives in :mod:`scorer.detector.mtf`, the NNPS in :mod:`scorer.detector.nnps`.
 
 References
 ----------
@@ -22,11 +22,11 @@ from importlib import resources
 
 import numpy as np
 
-from .conversion import ConversionFunction
-from .errors import LimenError
-from .image import Image
-from .mtf import MTFResult, mean_mtf, measure_mtf
-from .nnps import NNPSResult, measure_nnps
+from scorer.images.conversion import ConversionFunction
+from scorer.errors import LimenError
+from scorer.images.image import Image
+from scorer.detector.mtf import MTFResult, mean_mtf, measure_mtf
+from scorer.detector.nnps import NNPSResult, measure_nnps
 
 #: largest error of the fitted conversion function, as a fraction of the kerma, before
 #: the response is flagged non-linear (common practice)
@@ -290,7 +290,7 @@ def measure_detector(flats: list[Image] = (), edges: list[Image] = (), *, kerma_
     """MTF from the edge images, NNPS from the flat fields, and the DQE when K and q are known.
 
     Images must already be linear in air kerma (a conversion function applied by
-    :func:`scorer.io.load_image`).  Edges of the same orientation are averaged; the
+    :func:`scorer.images.io.load_image`).  Edges of the same orientation are averaged; the
     headline MTF is the mean of the orientations measured.  The DQE is computed
     only when ``kerma_ugy`` and q (or ``beam``) are given; with ``require_dqe`` their
     absence is an error.

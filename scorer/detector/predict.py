@@ -24,7 +24,7 @@ orientations) and as zero beyond its measured range; the NNPS as radially
 symmetric (its radial average).  The grid step is min(f_N/64, 0.04/R).
 
 **Threshold.**  C_T = d′_T / (d′ per unit contrast), with d′_T the M-AFC d′ at the
-scorer's criterion (:func:`scorer.mafc.dprime_for_pc`, by default halfway between
+scorer's criterion (:func:`scorer.observer.mafc.dprime_for_pc`, by default halfway between
 chance and 1).
 
 References
@@ -43,8 +43,8 @@ from typing import Callable, Sequence
 import numpy as np
 from scipy import special
 
-from .eye import DEFAULT_VIEWING_DISTANCE_MM, eye_filter
-from .mafc import dprime_for_pc, halfway_criterion
+from scorer.observer.eye import DEFAULT_VIEWING_DISTANCE_MM, eye_filter
+from scorer.observer.mafc import dprime_for_pc, halfway_criterion
 
 OBSERVERS = ("npw", "npwe")
 
@@ -183,7 +183,7 @@ def predict_thresholds(diameters_mm: Sequence[float], mtf, nnps, pixel_pitch_mm:
 
 def predict_from_detector(detector: dict, diameters_mm: Sequence[float], **kwargs) -> list[PredictedThreshold]:
     """Predicted thresholds from a ``detector.json`` dictionary (needs its MTF and NNPS)."""
-    from .errors import LimenError
+    from scorer.errors import LimenError
 
     mtf = detector.get("mtf_extended") or detector.get("mtf")
     nnps = detector.get("nnps")

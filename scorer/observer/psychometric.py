@@ -31,7 +31,7 @@ For speed, ``Pc_M`` is tabulated once per M on d′ ∈ [0, 12] (computed by a
 dense trapezoid rule on the integral, which converges exponentially for this
 smooth, Gaussian-weighted integrand, then refined by a cubic spline to a fine
 grid and read by linear interpolation); its accuracy against the adaptive
-quadrature in :func:`scorer.mafc.pc_mafc` is checked to 1e-6 in the tests.
+quadrature in :func:`scorer.observer.mafc.pc_mafc` is checked to 1e-6 in the tests.
 
 Confidence intervals: :meth:`PsychometricFit.threshold_ci` gives a profile
 likelihood-ratio interval; :func:`bootstrap_threshold` resamples units (images,
@@ -58,8 +58,8 @@ import numpy as np
 from scipy import interpolate, optimize, stats
 from scipy.special import expit, gammaln, logit, ndtr
 
-from .errors import LimenError
-from .mafc import dprime_for_pc, halfway_criterion
+from scorer.errors import LimenError
+from scorer.observer.mafc import dprime_for_pc, halfway_criterion
 
 DPRIME_MAX = 12.0          # beyond this Pc_M is 1 to double precision for any practical M
 LAPSE_MAX = 0.1            # a fitted lapse rate is kept within [0, LAPSE_MAX]
@@ -309,7 +309,7 @@ class PsychometricFit:
     def threshold(self, criterion_pc: float | None = None, lapse_adjusted: bool = False) -> float:
         """Threshold contrast (fraction) where Pc reaches ``criterion_pc``.
 
-        Default criterion: halfway between chance and 1 (:func:`scorer.mafc.halfway_criterion`).
+        Default criterion: halfway between chance and 1 (:func:`scorer.observer.mafc.halfway_criterion`).
         By default the lapse-free function is solved; ``lapse_adjusted=True`` solves the
         fitted function including the lapse rate.
         """

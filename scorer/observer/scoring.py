@@ -16,15 +16,15 @@ from typing import Callable, Sequence
 import numpy as np
 import pandas as pd
 
-from .conversion import ConversionFunction
-from .errors import LimenError
-from .image import Image
-from .io import LimenWarning, load_image
-from .layout import Layout
-from .limits import Limits, Verdict, evaluate, overall
-from .observer import ObserverConfig, SystemBlur, decide, estimate_blur, score_image
-from .register import register
-from .threshold import ThresholdCurve, count_thresholds, dprime_thresholds
+from scorer.images.conversion import ConversionFunction
+from scorer.errors import LimenError
+from scorer.images.image import Image
+from scorer.images.io import LimenWarning, load_image
+from scorer.phantom.layout import Layout
+from scorer.observer.limits import Limits, Verdict, evaluate, overall
+from scorer.observer.npw import ObserverConfig, SystemBlur, decide, estimate_blur, score_image
+from scorer.phantom.registration import register
+from scorer.observer.threshold import ThresholdCurve, count_thresholds, dprime_thresholds
 
 METHODS = ("dprime", "count")
 

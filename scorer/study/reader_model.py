@@ -43,7 +43,7 @@ from dataclasses import dataclass, field
 import numpy as np
 import pandas as pd
 
-from .mafc import dprime_for_pc, halfway_criterion
+from scorer.observer.mafc import dprime_for_pc, halfway_criterion
 
 TRIAL_COLUMNS = ["reader", "detector", "image", "target", "diameter_mm", "contrast",
                  "chosen_site", "true_site", "correct"]
@@ -207,11 +207,11 @@ def write_demo_study(out_dir, seed: int = 2026, n_readers: int = 6, n_repeats: i
     return {k: str(v) for k, v in paths.items()}
 
 
-if __name__ == "__main__":  # python -m scorer.reader_model OUT_DIR [SEED]
+if __name__ == "__main__":  # python -m scorer.study.reader_model OUT_DIR [SEED]
     import sys
 
     if len(sys.argv) < 2:
-        print("usage: python -m scorer.reader_model OUT_DIR [SEED]", file=sys.stderr)
+        print("usage: python -m scorer.study.reader_model OUT_DIR [SEED]", file=sys.stderr)
         raise SystemExit(2)
     written = write_demo_study(sys.argv[1], int(sys.argv[2]) if len(sys.argv) > 2 else 2026)
     print("wrote " + ", ".join(written.values()))
@@ -236,7 +236,7 @@ def readers_from_responses(responses: pd.DataFrame, readers: pd.DataFrame, rng: 
                            n_repeats: int = 1) -> pd.DataFrame:
     """Invented human readers reading the same phantom images as a model observer.
 
-    ``responses`` is the model observer's per-site table from :func:`scorer.observer.score_image`
+    ``responses`` is the model observer's per-site table from :func:`scorer.observer.npw.score_image`
     (columns image, target, diameter_mm, contrast, m_alternatives, site, is_signal, response and
     optionally detector).  For each diameter the external noise σ_ext is the spread of the
     non-signal sites about their mean within each image and target, and g, the mean signal-site

@@ -38,11 +38,11 @@ from scipy import fft as sfft
 from scipy import ndimage, optimize
 from scipy.spatial import cKDTree
 
-from .disc import disc_coverage
-from .errors import LimenError
-from .eye import DEFAULT_VIEWING_DISTANCE_MM, eye_filter
-from .image import Image
-from .layout import Layout
+from scorer.phantom.disc import disc_coverage
+from scorer.errors import LimenError
+from scorer.observer.eye import DEFAULT_VIEWING_DISTANCE_MM, eye_filter
+from scorer.images.image import Image
+from scorer.phantom.layout import Layout
 
 OBSERVERS = ("npw", "npwe")
 

@@ -52,11 +52,11 @@ from pathlib import Path
 
 import numpy as np
 
-from .errors import LimenError
-from .files import read_toml
+from scorer.errors import LimenError
+from scorer.files import read_toml
 
 FORMAT = "limen-layout/1"
-PHANTOM_DIR = Path(__file__).resolve().parent.parent / "phantoms"
+PHANTOM_DIR = Path(__file__).resolve().parents[2] / "phantoms"
 DEFAULT_LAYOUT_NAME = "tessera-demo-plate.toml"
 
 # Minimum clear gap between two sites' discs, as a multiple of the larger radius,

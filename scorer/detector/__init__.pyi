@@ -1,0 +1,48 @@
+"""Public entry points of this package (read by lazy_loader.attach_stub and type checkers)."""
+
+from . import comparison as comparison
+from . import measure as measure
+from . import mtf as mtf
+from . import nnps as nnps
+from . import predict as predict
+from . import simulator as simulator
+
+from .mtf import MTFResult as MTFResult, measure_mtf as measure_mtf, mean_mtf as mean_mtf
+from .nnps import NNPSResult as NNPSResult, measure_nnps as measure_nnps
+from .measure import DetectorMetrics as DetectorMetrics, measure_detector as measure_detector, fit_conversion as fit_conversion, compute_dqe as compute_dqe, q_for_beam as q_for_beam, beam_qualities as beam_qualities
+from .predict import PredictedThreshold as PredictedThreshold, predict_thresholds as predict_thresholds, predict_from_detector as predict_from_detector
+from .simulator import DetectorModel as DetectorModel, Pose as Pose, SimulatedImage as SimulatedImage, detector_model as detector_model, load_detector_model as load_detector_model, simulate as simulate, write_simulated as write_simulated
+from .comparison import compare as compare, load_detector_json as load_detector_json, load_scored_json as load_scored_json
+
+__all__ = [
+    "comparison",
+    "measure",
+    "mtf",
+    "nnps",
+    "predict",
+    "simulator",
+    "MTFResult",
+    "measure_mtf",
+    "mean_mtf",
+    "NNPSResult",
+    "measure_nnps",
+    "DetectorMetrics",
+    "measure_detector",
+    "fit_conversion",
+    "compute_dqe",
+    "q_for_beam",
+    "beam_qualities",
+    "PredictedThreshold",
+    "predict_thresholds",
+    "predict_from_detector",
+    "DetectorModel",
+    "Pose",
+    "SimulatedImage",
+    "detector_model",
+    "load_detector_model",
+    "simulate",
+    "write_simulated",
+    "compare",
+    "load_detector_json",
+    "load_scored_json",
+]

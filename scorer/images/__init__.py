@@ -1,0 +1,12 @@
+"""Image files in, one :class:`Image` out: pixels linear in air kerma, spacing and metadata.
+
+Modules: ``image`` (Image, ImageMetadata), ``io`` (load_image, write_dicom, write_image, content hash),
+``conversion`` (conversion functions pixel value ↔ air kerma and their TOML file).
+
+May import: ``scorer.errors``, ``scorer.files`` only (the bottom layer).
+"""
+
+import lazy_loader as _lazy
+
+# Public names are listed in __init__.pyi and imported on first use (Scientific Python SPEC 1).
+__getattr__, __dir__, __all__ = _lazy.attach_stub(__name__, __file__)

@@ -1,0 +1,13 @@
+"""The model observer and what follows from its responses: thresholds, limits, verdicts.
+
+Modules: ``npw`` (NPW/NPWE responses, M-AFC decisions), ``eye`` (eye filter), ``mafc`` (Pc(d′) for
+M-AFC), ``psychometric`` (ML fits, bootstrap helpers), ``threshold`` (d′ and count methods →
+ThresholdCurve), ``limits`` (limits files, verdicts), ``scoring`` (score_images: the main job).
+
+May import: ``scorer.phantom``, ``scorer.images`` and the base modules.
+"""
+
+import lazy_loader as _lazy
+
+# Public names are listed in __init__.pyi and imported on first use (Scientific Python SPEC 1).
+__getattr__, __dir__, __all__ = _lazy.attach_stub(__name__, __file__)

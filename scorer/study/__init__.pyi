@@ -1,0 +1,26 @@
+"""Public entry points of this package (read by lazy_loader.attach_stub and type checkers)."""
+
+from . import agreement as agreement
+from . import reader_model as reader_model
+from . import stats as stats
+
+from .stats import Analysis as Analysis, analyse_study as analyse_study, load_trials as load_trials, validate_trials as validate_trials, human_model_factor as human_model_factor, compare_groups as compare_groups
+from .agreement import agreement_summary as agreement_summary
+from .reader_model import ReaderPopulation as ReaderPopulation, draw_readers as draw_readers, simulate_reader_study as simulate_reader_study, readers_from_responses as readers_from_responses
+
+__all__ = [
+    "agreement",
+    "reader_model",
+    "stats",
+    "Analysis",
+    "analyse_study",
+    "load_trials",
+    "validate_trials",
+    "human_model_factor",
+    "compare_groups",
+    "agreement_summary",
+    "ReaderPopulation",
+    "draw_readers",
+    "simulate_reader_study",
+    "readers_from_responses",
+]
