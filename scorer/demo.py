@@ -4,7 +4,7 @@ The scenario is invented: the breast-imaging unit of the "Harbourside Women's
 Health Centre" commissions two mammography panels in neighbouring rooms — a
 direct-conversion (amorphous selenium) panel, serial HSX-SE-0417 in room MAM2, and
 an indirect-conversion (CsI + a-Si:H) panel, serial HSX-CS-2291 in room MAM3.  For
-each panel Limen simulates eight exposures of the Tessera demo plate plus flat
+each panel Limen simulates eight exposures of the Cairn demo plate plus flat
 fields and slanted edges at 100 µGy, scores the plate images with the NPW model
 observer, measures MTF/NNPS/DQE, predicts the contrast-detail curve from them and
 puts the two panels side by side.  Six invented readers (a documented
@@ -109,7 +109,7 @@ def _reader_study(out: Path) -> list[tuple[str, str]]:
     human.to_csv(study / "reader_trials.csv", index=False)
     model.to_csv(study / "model_trials.csv", index=False)
     readers.to_csv(study / "reader_parameters.csv", index=False)
-    print(f"\n6 invented readers (documented observer model, scorer/reader_model.py) read the demo images: "
+    print(f"\n6 invented readers (documented observer model, scorer/study/reader_model.py) read the demo images: "
           f"{study / 'reader_trials.csv'}")
     _limen(["analyse", str(study / "reader_trials.csv"), "--model", str(study / "model_trials.csv"),
             "--by", "detector", "--out", str(study / "analysis")])

@@ -5,6 +5,8 @@ import json
 
 import numpy as np
 import pytest
+
+from scorer.observer import dprime_for_pc
 from click.testing import CliRunner
 
 from scorer.cli import main
@@ -154,6 +156,25 @@ def test_compare_detectors(measured, tmp_path):
     assert q["DQE at 2 cycles/mm"]["better"] == "direct"
     assert any(s.startswith("direct is sharper") for s in d["summary"])
     assert (tmp_path / "cmp" / "comparison.html").read_text().count("<svg") >= 4
+
+
+def test_compare_detectors_predicts_with_the_scored_criterion(measured, tmp_path):
+    # predicted and scored thresholds must use the same M-AFC criterion: the M of each scored diameter
+    # (halfway Pc of 5-AFC is 0.6, of 4-AFC 0.625; Green & Swets 1966)
+    a, b = measured["direct"] / "detector.json", measured["indirect"] / "detector.json"
+    scored = tmp_path / "score_a.json"
+    scored.write_text(json.dumps({"observer": "npw", "thresholds": [
+        {"diameter_mm": 1.0, "threshold_contrast": 0.003, "ci_low": 0.0025, "ci_high": 0.0035, "method": "dprime",
+         "n_images": 8, "m_alternatives": 5}]}))
+    res = run("compare-detectors", a, b, "--scored-a", scored, "--json")
+    assert res.exit_code == 0, res.output
+    d = json.loads(res.stdout)
+    assert d["m_alternatives"] == {"1": 5}
+    forced = json.loads(run("compare-detectors", a, b, "--scored-a", scored, "--alternatives", "4", "--json").stdout)
+    p5 = next(t for t in d["thresholds"] if t["source"] == "predicted NPW" and t["detector"] == "direct")
+    p4 = next(t for t in forced["thresholds"] if t["source"] == "predicted NPW" and t["detector"] == "direct")
+    assert p5["threshold_contrast"] / p4["threshold_contrast"] == pytest.approx(
+        dprime_for_pc(0.6, 5) / dprime_for_pc(0.625, 4), rel=1e-9)
 
 
 def test_compare_detectors_bad_json(tmp_path, measured):

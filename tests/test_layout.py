@@ -15,24 +15,41 @@ MINI = Path(__file__).parent / "data" / "mini-plate.toml"
 
 def test_demo_plate_loads_with_the_designed_content():
     lay = load_layout()
-    assert len(lay.targets) == 80
-    assert len(lay.diameters_mm) == 8
-    assert min(lay.diameters_mm) == pytest.approx(0.08) and max(lay.diameters_mm) == pytest.approx(2.0)
+    assert lay.name == "Cairn demo plate"
+    assert len(lay.targets) == 90
+    # the five diameters with threshold-contrast limits in the European guidelines for digital mammography
+    # (4th ed., 2006; from memory) must be on the plate itself, so a verdict never rests on interpolation
+    for d in (0.1, 0.25, 0.5, 1.0, 2.0):
+        assert d in lay.diameters_mm
+    assert len(lay.diameters_mm) == 9
     assert len(lay.fiducials) >= 3
     for d in lay.diameters_mm:
         ts = lay.targets_with_diameter(d)
         assert len(ts) == 10
-        assert all(t.m_alternatives == 4 for t in ts)
+        assert {t.m_alternatives for t in ts} == ({3} if d <= 0.35 else {5})
+        assert all(t.material is None for t in ts)   # a generic attenuating-disc plate
         cs = sorted(t.contrast for t in ts)
-        assert cs[-1] / cs[0] > 10  # spans invisible to obvious
-    # signal sites are spread over all four positions, not always the same one
-    assert len({t.signal_site for t in lay.targets}) == 4
+        assert cs[-1] / cs[0] > 30  # 0.3x the lower to 10x the higher panel threshold
+    # signal sites are spread over every position of a cell, not always the same one
+    assert len({t.signal_site for t in lay.targets if t.m_alternatives == 3}) == 3
+    assert len({t.signal_site for t in lay.targets if t.m_alternatives == 5}) == 5
+
+
+def test_demo_plate_sites_are_regular_polygons():
+    # triangles of side 3 mm and pentagons of side 4 or 8 mm: every side of a cell has the same length
+    lay = load_layout()
+    for t in lay.targets:
+        xy = t.sites
+        sides = np.hypot(*(xy - np.roll(xy, 1, axis=0)).T)
+        assert np.ptp(sides) < 0.01, t.id
+        assert sides[0] == pytest.approx(3.0 if t.m_alternatives == 3 else (8.0 if t.diameter_mm == 2.0 else 4.0),
+                                         abs=0.01)
 
 
 def test_demo_plate_is_generated_by_its_script():
     import importlib.util
 
-    spec = importlib.util.spec_from_file_location("gen", default_layout_path().with_name("make_tessera_demo.py"))
+    spec = importlib.util.spec_from_file_location("gen", default_layout_path().with_name("make_cairn_demo.py"))
     gen = importlib.util.module_from_spec(spec)
     spec.loader.exec_module(gen)
     assert gen.build() == default_layout_path().read_text(encoding="utf-8")
@@ -64,7 +81,7 @@ CASES = [
     ("contrast high", lambda d: d["targets"][3].__setitem__("contrast", 1.2), r"target 'm03'.*contrast must lie in \(0, 1\)"),
     ("contrast zero", lambda d: d["targets"][3].__setitem__("contrast", 0.0), r"contrast must lie in \(0, 1\)"),
     ("two fiducials", lambda d: d.__setitem__("fiducials", d["fiducials"][:2]), r"at least three fiducial"),
-    ("truth index", lambda d: d["targets"][4].__setitem__("signal_site", 4), r"target 'm04'.*signal_site 4 is out of range 0..3"),
+    ("truth index", lambda d: d["targets"][4].__setitem__("signal_site", 5), r"target 'm04'.*signal_site 5 is out of range 0..4"),
     ("no key", lambda d: d.pop("orientation_key"), r"orientation_key"),
     ("format", lambda d: d.__setitem__("format", "other/2"), r"format"),
 ]

@@ -20,6 +20,7 @@ def test_example_file_holds_the_guideline_values_from_memory():
     assert lim.acceptable_at(0.1) == pytest.approx(0.23)
     assert lim.acceptable_at(1.0) == pytest.approx(0.014)
     assert lim.achievable_at(0.25) == pytest.approx(0.038)
+    assert lim.acceptable_at(2.0) == pytest.approx(0.0105)   # from memory, like the rest of the file
     assert "from memory" in lim.source
 
 
@@ -28,7 +29,7 @@ def test_interpolation_is_linear_in_log_log_and_never_extrapolates():
     # halfway in log d between 0.5 and 1.0 mm lies halfway in log C between 2.35 % and 1.40 %
     d = np.sqrt(0.5 * 1.0)
     assert lim.acceptable_at(d) == pytest.approx(np.sqrt(0.0235 * 0.014), rel=1e-9)
-    assert lim.acceptable_at(2.0) is None and lim.acceptable_at(0.08) is None
+    assert lim.acceptable_at(5.0) is None and lim.acceptable_at(0.08) is None
 
 
 def test_verdicts_pass_fail_indeterminate_and_no_limit(tmp_path):

@@ -70,6 +70,22 @@ def test_threshold_uses_mafc_criterion():
                                       "ci_high", "n_images"}
 
 
+def test_each_diameter_uses_the_criterion_of_its_own_m():
+    # A plate whose cells differ in M (3-AFC and 5-AFC): each diameter's threshold uses the halfway Pc of its
+    # own M, Pc = 1/M + (1 − 1/M)/2, and the d′ that gives it (Green & Swets 1966; M-AFC integral by quad).
+    p = 0.1
+    res = predict_thresholds([0.25, 1.0, 2.0], ones, white(1e-6), p, observers=["npw"],
+                             m_alternatives={0.25: 3, 1.0: 5})
+    by_d = {r.diameter_mm: r for r in res}
+    assert by_d[0.25].m_alternatives == 3 and by_d[0.25].criterion_pc == pytest.approx(2 / 3)
+    assert by_d[1.0].m_alternatives == 5 and by_d[1.0].criterion_pc == pytest.approx(0.6)
+    assert by_d[2.0].m_alternatives == 4            # not in the mapping: 4-AFC
+    for r in res:
+        assert r.dprime_threshold == pytest.approx(dprime_for_pc(r.criterion_pc, r.m_alternatives))
+    single = predict_thresholds([1.0], ones, white(1e-6), p, observers=["npw"], m_alternatives=5)[0]
+    assert by_d[1.0].threshold_contrast == pytest.approx(single.threshold_contrast, rel=1e-12)
+
+
 def test_rose_scaling():
     # Rose model (Rose, J. Opt. Soc. Am. 38 (1948)): with MTF ≈ 1 and quantum noise, C_T ∝ 1/(d·√Φ):
     # slope −1 in log C_T vs log d, and C_T halves when the dose quadruples.

@@ -191,30 +191,31 @@ def test_flat_field_is_refused_with_markers_found(mini):
 
 
 def test_phantom_partly_outside_the_field_is_refused(mini):
-    # Right-hand fiducials B and C fall outside a field too narrow for the shifted plate.
+    # The right-hand fiducial E falls outside a field too narrow for the shifted plate.
     pose = Pose(0.0, False, 1.0, (10.0, 0.0))
     shape = _phantom_field_shape(mini, Pose(), 0.085)
     sim = simulate(detector_model("indirect"), "phantom", DOSE_UGY, seed=5, layout=mini, pose=pose,
                    shape=shape)
-    assert not 0 <= sim.truth["fiducials_px"]["B"][1] < shape[1]   # the premise
+    assert not 0 <= sim.truth["fiducials_px"]["E"][1] < shape[1]   # the premise
     with pytest.raises(RegistrationError) as exc:
         register(_image(sim, "cut.dcm"), mini)
     msg = str(exc.value)
-    assert "field edge" in msg and "B" in msg and "C" in msg and "3 of 5 markers" in msg
+    assert "field edge" in msg and "E" in msg and "4 of 5 markers" in msg
     assert len(exc.value.candidates_px) >= 3 and exc.value.placement is not None
 
 
 def test_target_sites_outside_the_field_are_refused(mini):
     # All markers inside, but a target's sites reach past the right edge of the field.
-    extra = Target("edge", 0.5, 0.05, ((42.6, 18.0), (42.6, 21.0)), 0)
+    extra = Target("edge", 0.5, 0.05, ((50.6, 12.0), (50.6, 15.0)), 0)
     layout = dataclasses.replace(mini, targets=mini.targets + (extra,))
-    cols = 600
-    shift_x = cols / 2 * 0.085 - 20.5    # puts phantom x = 42.5 mm on the image's right edge
+    n_sites = sum(t.m_alternatives for t in layout.targets)
+    cols = 660
+    shift_x = cols / 2 * 0.085 - (50.5 - mini.width_mm / 2)    # puts phantom x = 50.5 mm on the image's right edge
     sim = simulate(detector_model("direct"), "phantom", DOSE_UGY, seed=6, layout=layout,
-                   pose=Pose(0.0, False, 1.0, (shift_x, 0.0)), shape=(565, cols))
+                   pose=Pose(0.0, False, 1.0, (shift_x, 0.0)), shape=(660, cols))
     with pytest.raises(RegistrationError) as exc:
         register(_image(sim, "edge.dcm"), layout)
-    assert "field edge" in str(exc.value) and "2 of 74 target sites" in str(exc.value)
+    assert "field edge" in str(exc.value) and f"2 of {n_sites} target sites" in str(exc.value)
     # the same image is fine with the plain layout (its sites all lie inside)
     register(_image(sim), mini)
 

@@ -9,7 +9,7 @@ import numpy as np
 
 from scorer.detector import load_detector_json, load_scored_json, compare
 from scorer.reports import dumps, write_json
-from scorer.commands.detector import diameters_from_options
+from scorer.commands.detector import alternatives_from_options, diameters_from_options
 
 
 @click.command("compare-detectors")
@@ -24,7 +24,9 @@ from scorer.commands.detector import diameters_from_options
 @click.option("--layout", "layout_file", type=click.Path(dir_okay=False), default=None,
               help="Phantom layout whose diameters get predicted thresholds.")
 @click.option("--diameters", default=None, help="Disc diameters (mm, comma-separated) for predicted thresholds.")
-@click.option("--alternatives", "m_alternatives", type=click.IntRange(2, 64), default=4, show_default=True)
+@click.option("--alternatives", "m_alternatives", type=click.IntRange(2, 64), default=None,
+              help="M of the M-AFC criterion for predicted thresholds [default: each diameter's M in --layout or in the "
+                   "scored results, else 4].")
 @click.option("--json", "as_json", is_flag=True, help="Print one JSON object on stdout.")
 @click.option("--out", "out_dir", type=click.Path(file_okay=False), default=None,
               help="Write comparison.json and comparison.html here.")
@@ -44,7 +46,7 @@ def compare_detectors(detector_a, detector_b, label_a, label_b, scored_a, scored
     sa = load_scored_json(scored_a) if scored_a else None
     sb = load_scored_json(scored_b) if scored_b else None
     diam = diameters_from_options(diameters, layout_file)
-    result = compare(a, b, (la, lb), diam, sa, sb, m_alternatives)
+    result = compare(a, b, (la, lb), diam, sa, sb, alternatives_from_options(m_alternatives, layout_file))
     result["inputs"] = {"detector_a": str(detector_a), "detector_b": str(detector_b),
                         "scored_a": scored_a, "scored_b": scored_b, "layout": layout_file}
     if out_dir:

@@ -74,6 +74,24 @@ def diameters_from_options(diameters: str | None, layout_file: str | None) -> li
     return d
 
 
+def alternatives_from_options(m_alternatives: int | None, layout_file: str | None) -> int | dict[float, int] | None:
+    """M of the M-AFC criterion: ``--alternatives`` for every diameter, else each diameter's M in the layout.
+
+    ``None`` when neither is given (the caller then uses the scored results' M, or 4).
+    """
+    if m_alternatives is not None:
+        return int(m_alternatives)
+    if layout_file:
+        from collections import Counter
+
+        from scorer.phantom import load_layout
+
+        lay = load_layout(layout_file)
+        return {float(d): Counter(t.m_alternatives for t in lay.targets_with_diameter(d)).most_common(1)[0][0]
+                for d in lay.diameters_mm}
+    return None
+
+
 def _read_kerma_csv(path: Path) -> list[tuple[Path, float]]:
     """CSV with columns ``path,kerma_ugy`` (paths relative to the CSV's folder)."""
     try:
@@ -144,8 +162,9 @@ def load_images_warn(paths, *, spacing, conversion, role: str):
 @click.option("--diameters", default=None, help="Disc diameters (mm, comma-separated) for predicted thresholds.")
 @click.option("--layout", "layout_file", type=click.Path(dir_okay=False), default=None,
               help="Phantom layout whose diameters get predicted thresholds.")
-@click.option("--alternatives", "m_alternatives", type=click.IntRange(2, 64), default=4, show_default=True,
-              help="M of the M-AFC criterion used for predicted thresholds.")
+@click.option("--alternatives", "m_alternatives", type=click.IntRange(2, 64), default=None,
+              help="M of the M-AFC criterion used for predicted thresholds [default: each diameter's M in --layout, "
+                   "else 4].")
 @click.option("--json", "as_json", is_flag=True, help="Print one JSON object on stdout.")
 @click.option("--out", "out_dir", type=click.Path(file_okay=False), default=None,
               help="Write detector.json, detector.csv, nnps_2d.npy and detector.html here.")
@@ -208,7 +227,8 @@ def detector(flat_files, edge_files, kerma_ugy, q_per_mm2_ugy, beam, pixel_spaci
             from scorer.detector import predict_from_detector
 
             metrics.predicted = [p.to_dict() for p in
-                                 predict_from_detector(metrics.to_dict(), diam, m_alternatives=m_alternatives)]
+                                 predict_from_detector(metrics.to_dict(), diam,
+                                                       m_alternatives=alternatives_from_options(m_alternatives, layout_file) or 4)]
         elif diam:
             raise LimenError("predicted thresholds need both flat fields (--flat) and an edge image (--edge)",
                              "--diameters")

@@ -53,6 +53,7 @@ def load_scored_json(path) -> list[dict]:
                         else float(r["threshold_contrast"]),
                         "ci_low": r.get("ci_low"), "ci_high": r.get("ci_high"),
                         "method": r.get("method"), "n_images": r.get("n_images"),
+                        "m_alternatives": None if r.get("m_alternatives") is None else int(r["m_alternatives"]),
                         "observer": r.get("observer") or d.get("observer")})
         except (KeyError, TypeError, ValueError):
             raise LimenError(f"thresholds[{i}] lacks a numeric diameter_mm/threshold_contrast", path) from None
@@ -79,8 +80,13 @@ def _better(va, vb, higher_is_better: bool, la: str, lb: str) -> str:
 
 
 def compare(a: dict, b: dict, labels=("A", "B"), diameters_mm=None, scored_a=None, scored_b=None,
-            m_alternatives: int = 4) -> dict:
-    """Side-by-side table, threshold rows and a plain-language summary of two detector JSONs."""
+            m_alternatives: int | dict[float, int] | None = None) -> dict:
+    """Side-by-side table, threshold rows and a plain-language summary of two detector JSONs.
+
+    ``m_alternatives``: the M of the criterion for predicted thresholds, one for all diameters or per
+    diameter; by default each diameter's M in the scored results (so predicted and scored thresholds use
+    the same criterion), else 4.
+    """
     la, lb = labels
     table: list[dict] = []
     wins: dict[str, list[tuple[str, str]]] = {}
@@ -110,6 +116,9 @@ def compare(a: dict, b: dict, labels=("A", "B"), diameters_mm=None, scored_a=Non
     if diam is None:
         ds = sorted({r["diameter_mm"] for r in (scored_a or []) + (scored_b or [])})
         diam = ds or list(DEFAULT_DIAMETERS_MM)
+    if m_alternatives is None:
+        m_alternatives = {float(r["diameter_mm"]): int(r["m_alternatives"]) for r in (scored_a or []) + (scored_b or [])
+                          if r.get("m_alternatives")} or 4
     pred = {}
     for label, det in ((la, a), (lb, b)):
         try:
@@ -142,7 +151,9 @@ def compare(a: dict, b: dict, labels=("A", "B"), diameters_mm=None, scored_a=Non
         summary.append(f"The flat fields were taken at different air kermas ({a['kerma_ugy']:g} vs "
                        f"{b['kerma_ugy']:g} µGy): NNPS and predicted thresholds depend on kerma; compare DQE instead.")
     return {"labels": [la, lb], "table": table, "thresholds": thresholds, "summary": summary,
-            "diameters_mm": diam, "m_alternatives": m_alternatives}
+            "diameters_mm": diam,
+            "m_alternatives": ({f"{k:g}": v for k, v in m_alternatives.items()} if isinstance(m_alternatives, dict)
+                               else m_alternatives)}
 
 
 def _summary(wins: dict[str, list[tuple[str, str]]], la: str, lb: str) -> list[str]:

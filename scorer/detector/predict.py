@@ -38,7 +38,7 @@ References
 from __future__ import annotations
 
 from dataclasses import dataclass, asdict
-from typing import Callable, Sequence
+from typing import Callable, Mapping, Sequence
 
 import numpy as np
 from scipy import special
@@ -148,20 +148,27 @@ def dprime_per_contrast(diameter_mm: float, mtf, nnps, pixel_pitch_mm: float, *,
 
 
 def predict_thresholds(diameters_mm: Sequence[float], mtf, nnps, pixel_pitch_mm: float, *,
-                       observers: Sequence[str] = OBSERVERS, m_alternatives: int = 4,
+                       observers: Sequence[str] = OBSERVERS, m_alternatives: int | Mapping[float, int] = 4,
                        criterion_pc: float | None = None,
                        measured_kerma_ugy: float | None = None, target_kerma_ugy: float | None = None,
                        viewing_distance_mm: float = DEFAULT_VIEWING_DISTANCE_MM) -> list[PredictedThreshold]:
     """Predicted threshold contrast per diameter and observer.
 
-    ``criterion_pc`` defaults to halfway between chance and 1 for ``m_alternatives``
+    ``m_alternatives`` is one M for every diameter, or a mapping diameter (mm) → M when
+    the phantom's cells differ between diameters (a diameter missing from it gets 4).
+    ``criterion_pc`` defaults to halfway between chance and 1 for each diameter's M
     (the scorer's default).  Given ``measured_kerma_ugy`` (the flat fields' kerma)
     and ``target_kerma_ugy``, the NNPS is scaled by measured/target — valid only
     where quantum noise dominates (no electronic-noise term).
     """
-    m = int(m_alternatives)
-    pc = halfway_criterion(m) if criterion_pc is None else float(criterion_pc)
-    d_t = dprime_for_pc(pc, m)
+    def criterion(d: float) -> tuple[int, float, float]:
+        if isinstance(m_alternatives, Mapping):
+            m = next((int(v) for k, v in m_alternatives.items() if np.isclose(float(k), d)), 4)
+        else:
+            m = int(m_alternatives)
+        pc = halfway_criterion(m) if criterion_pc is None else float(criterion_pc)
+        return m, pc, dprime_for_pc(pc, m)
+
     nnps_f = _as_function(nnps, beyond="hold")
     if measured_kerma_ugy is not None and target_kerma_ugy is not None:
         if measured_kerma_ugy <= 0 or target_kerma_ugy <= 0:
@@ -172,6 +179,7 @@ def predict_thresholds(diameters_mm: Sequence[float], mtf, nnps, pixel_pitch_mm:
     out = []
     for obs in observers:
         for d in diameters_mm:
+            m, pc, d_t = criterion(float(d))
             dp = dprime_per_contrast(float(d), mtf, nnps_f, pixel_pitch_mm, observer=obs,
                                      viewing_distance_mm=viewing_distance_mm)
             ct = d_t / dp if np.isfinite(dp) and dp > 0 else float("nan")

@@ -26,12 +26,12 @@ knows which candidate site holds each disc.  Format ``limen-layout/1``::
     contrast = 0.6
 
     [[targets]]                 # M-alternative forced choice: M candidate sites,
-    id = "r3c07"                # one of which (signal_site, counted from 0) holds the disc
+    id = "d0250-c04"            # one of which (signal_site, counted from 0) holds the disc
     diameter_mm = 0.25
     contrast = 0.012            # nominal contrast as a fraction (0 < c < 1)
-    sites_mm = [[40.0, 30.0], [46.0, 30.0], [40.0, 36.0], [46.0, 36.0]]
+    sites_mm = [[40.0, 30.27], [41.5, 32.87], [38.5, 32.87]]   # any M ≥ 2 (here a triangle)
     signal_site = 2
-    material = "Au"             # optional
+    material = "free text"      # optional, informative only
     thickness_um = 0.2          # optional
 
     [[targets]]                 # or: one known site plus background sites
@@ -57,7 +57,7 @@ from scorer.files import read_toml
 
 FORMAT = "limen-layout/1"
 PHANTOM_DIR = Path(__file__).resolve().parents[2] / "phantoms"
-DEFAULT_LAYOUT_NAME = "tessera-demo-plate.toml"
+DEFAULT_LAYOUT_NAME = "cairn-demo-plate.toml"
 
 # Minimum clear gap between two sites' discs, as a multiple of the larger radius,
 # so that each site keeps a ring of its own background (common practice).

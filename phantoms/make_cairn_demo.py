@@ -1,0 +1,139 @@
+"""Generate ``cairn-demo-plate.toml``, the bundled demo phantom of Limen's own design.
+
+Run ``python phantoms/make_cairn_demo.py`` to regenerate it.  The "Cairn" plate is an
+invented design, a generic plate of attenuating discs (no material is named: the
+contrast of a disc is the fractional drop in air kerma behind it):
+
+* **Diameters.**  The five at which the European guidelines state threshold-contrast
+  limits for digital mammography (0.1, 0.25, 0.5, 1.0 and 2.0 mm), so that a verdict
+  never rests on interpolation between the plate's own diameters, plus four of our own
+  in between or beyond them (0.07, 0.15, 0.35 and 0.7 mm).
+* **Candidate sites.**  Small discs (≤ 0.35 mm) sit on equilateral triangles of side
+  3 mm (3-alternative forced choice), the triangles pointing alternately up and down
+  along a band; larger discs sit on regular pentagons (5-AFC) of side 4 mm (0.5, 0.7,
+  1.0 mm) or 8 mm (2.0 mm), apex up, so every site keeps a background ring of at least
+  ten disc areas for the NPW observer.  One band per diameter, smallest discs at the
+  top; the 2.0 mm pentagons fill two rows of five.  Contrast rises from left to right
+  (on the 2.0 mm band: along the upper row, then the lower).
+* **Markers.**  Four fiducials of 3.5 mm at the middle of each edge (a diamond) and a
+  6 mm orientation key near the upper-left corner, which breaks every rotation and
+  mirror symmetry.
+* **Contrast ladder.**  Ten contrasts per diameter, evenly spaced in log contrast
+  from 0.3× the lower to 10× the higher NPW threshold of the two demo panels at
+  100 µGy (``PREDICTED_NPW_THRESHOLD``), so both scoring methods have targets on both
+  sides of threshold for both panels.
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import numpy as np
+
+NAME = "cairn-demo-plate.toml"
+WIDTH_MM, HEIGHT_MM = 140.0, 130.0
+N_CONTRASTS = 10
+LOW_FACTOR, HIGH_FACTOR = 0.3, 10.0
+
+# NPW threshold contrast (fraction) of the two demo panels at 100 µGy, predicted from
+# their MTF and NNPS as measured by `limen detector` in `make demo` (flats and edges
+# simulated at 100 µGy; `scorer.detector.predict_from_detector`, ICRU Report 54 Fourier
+# form), at the criterion halfway between chance and 1 for the diameter's M (3 or 5).
+PREDICTED_NPW_THRESHOLD = {
+    #  d (mm): (direct, indirect)
+    0.07: (0.0501, 0.0687),
+    0.1: (0.0282, 0.0371),
+    0.15: (0.0162, 0.0199),
+    0.25: (0.00876, 0.0102),
+    0.35: (0.00602, 0.00693),
+    0.5: (0.00488, 0.00557),
+    0.7: (0.00343, 0.00389),
+    1.0: (0.00236, 0.00267),
+    2.0: (0.00117, 0.0013),
+}
+
+TRIANGLE_SIDE_MM = 3.0
+TRIANGLE_PITCH_MM = 6.0           # cell centres along a band
+PENTAGON_SIDE_MM = {0.5: 4.0, 0.7: 4.0, 1.0: 4.0, 2.0: 8.0}
+PENTAGON_PITCH_MM = {0.5: 11.0, 0.7: 11.0, 1.0: 11.0, 2.0: 22.0}
+# band centre (y, mm) per diameter; the 2.0 mm band has two rows
+BAND_Y_MM = {0.07: 16.0, 0.1: 22.5, 0.15: 29.0, 0.25: 35.5, 0.35: 42.0,
+             0.5: 51.5, 0.7: 62.0, 1.0: 72.5, 2.0: (90.5, 110.5)}
+FIDUCIALS = [("N", WIDTH_MM / 2, 6.0), ("E", WIDTH_MM - 6.0, HEIGHT_MM / 2),
+             ("S", WIDTH_MM / 2, HEIGHT_MM - 6.0), ("W", 6.0, HEIGHT_MM / 2)]
+FIDUCIAL_DIAMETER_MM = 3.5
+KEY = ("key", 15.0, 11.0, 6.0)
+MARKER_CONTRAST = 0.6
+
+
+def _sig(x: float, n: int = 3) -> float:
+    return float(f"{x:.{n}g}")
+
+
+def contrast_ladder(diameter_mm: float) -> list[float]:
+    """Ten contrasts, log-spaced from 0.3× the lower to 10× the higher panel threshold, rising."""
+    lo, hi = min(PREDICTED_NPW_THRESHOLD[diameter_mm]), max(PREDICTED_NPW_THRESHOLD[diameter_mm])
+    return [_sig(c) for c in np.geomspace(LOW_FACTOR * lo, HIGH_FACTOR * hi, N_CONTRASTS)]
+
+
+def polygon_sites(cx: float, cy: float, n: int, side_mm: float, apex_up: bool) -> list[tuple[float, float]]:
+    """Vertices of a regular n-gon of the given side, centred at (cx, cy), y downwards."""
+    radius = side_mm / (2 * np.sin(np.pi / n))
+    start = -90.0 if apex_up else 90.0
+    ang = np.deg2rad(start + 360.0 / n * np.arange(n))
+    return [(round(cx + radius * np.cos(a), 3), round(cy + radius * np.sin(a), 3)) for a in ang]
+
+
+def cell_centres(diameter_mm: float) -> list[tuple[float, float, bool]]:
+    """(x, y, apex_up) of the ten cells of one diameter, in rising contrast."""
+    mid = WIDTH_MM / 2
+    if diameter_mm <= 0.35:
+        y = BAND_Y_MM[diameter_mm]
+        return [(mid + (j - 4.5) * TRIANGLE_PITCH_MM, y, j % 2 == 0) for j in range(N_CONTRASTS)]
+    p = PENTAGON_PITCH_MM[diameter_mm]
+    if diameter_mm == 2.0:
+        rows = BAND_Y_MM[2.0]
+        return [(mid + (j % 5 - 2) * p, rows[j // 5], True) for j in range(N_CONTRASTS)]
+    y = BAND_Y_MM[diameter_mm]
+    return [(mid + (j - 4.5) * p, y, True) for j in range(N_CONTRASTS)]
+
+
+def build() -> str:
+    rng = np.random.default_rng(20261202)
+    lines = [
+        "# Limen demo phantom: the 'Cairn' contrast-detail plate (an invented design).",
+        "# Generated by phantoms/make_cairn_demo.py; see scorer/phantom/layout.py for the format.",
+        "# Coordinates in mm on the plate: origin top-left, x to the right, y downwards.",
+        'format = "limen-layout/1"',
+        "",
+        "[phantom]",
+        'name = "Cairn demo plate"',
+        f"width_mm = {WIDTH_MM}",
+        f"height_mm = {HEIGHT_MM}",
+        'description = "9 diameters x 10 contrasts of attenuating discs; 3-AFC triangles (<= 0.35 mm) and '
+        '5-AFC pentagons (>= 0.5 mm); diamond of fiducials (invented)"',
+        "",
+    ]
+    for fid, x, y in FIDUCIALS:
+        lines += ["[[fiducials]]", f'id = "{fid}"', f"x_mm = {x}", f"y_mm = {y}",
+                  f"diameter_mm = {FIDUCIAL_DIAMETER_MM}", f"contrast = {MARKER_CONTRAST}", ""]
+    kid, kx, ky, kd = KEY
+    lines += ["[orientation_key]", f'id = "{kid}"', f"x_mm = {kx}", f"y_mm = {ky}",
+              f"diameter_mm = {kd}", f"contrast = {MARKER_CONTRAST}", ""]
+    for d in sorted(PREDICTED_NPW_THRESHOLD):
+        for j, (c, (cx, cy, up)) in enumerate(zip(contrast_ladder(d), cell_centres(d))):
+            if d <= 0.35:
+                sites = polygon_sites(cx, cy, 3, TRIANGLE_SIDE_MM, up)
+            else:
+                sites = polygon_sites(cx, cy, 5, PENTAGON_SIDE_MM[d], True)
+            sites_txt = ", ".join(f"[{x:g}, {y:g}]" for x, y in sites)
+            lines += ["[[targets]]", f'id = "d{int(round(d * 1000)):04d}-c{j + 1:02d}"',
+                      f"diameter_mm = {d}", f"contrast = {c}", f"sites_mm = [{sites_txt}]",
+                      f"signal_site = {int(rng.integers(len(sites)))}", ""]
+    return "\n".join(lines)
+
+
+if __name__ == "__main__":
+    out = Path(__file__).with_name(NAME)
+    out.write_text(build(), encoding="utf-8")
+    print(f"wrote {out}")
