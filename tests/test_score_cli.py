@@ -219,3 +219,39 @@ def test_one_image_results_json_is_valid_json(direct_set, tmp_path):
     # the count method has no bootstrap CI from one image; the d′ method's analytic CI needs none
     assert all(t["ci_low"] is None for t in js["thresholds"] if t["method"] == "count")
     assert all(t["ci_low"] is not None for t in js["thresholds"] if t["method"] == "dprime")
+
+
+def test_two_images_of_the_demo_plate_give_a_report_not_a_crash(tmp_path):
+    # Found by the robustness audit: with two images a count-method CI came out with both ends equal and a
+    # hair above the estimate (floating point), and the contrast-detail plot raised "yerr must not contain
+    # negative values", leaving no report.html and exit 1. A CI contains its estimate by construction.
+    sim = CliRunner().invoke(main, ["simulate", "--detector", "direct", "--kind", "phantom", "--small", "--count", "2",
+                                    "--seed", "3", "--out", str(tmp_path / "img")])
+    assert sim.exit_code == 0, sim.output
+    files = sorted(str(p) for p in (tmp_path / "img").glob("*.dcm"))
+    res = _run(files + ["--n-boot", "50", "--out", str(tmp_path / "r")])
+    assert res.exit_code == 0, res.output
+    assert (tmp_path / "r" / "report.html").stat().st_size > 0
+    for t in json.loads((tmp_path / "r" / "results.json").read_text())["thresholds"]:
+        if t["threshold_contrast"] is not None and t["ci_low"] is not None:
+            assert t["ci_low"] <= t["threshold_contrast"] <= t["ci_high"], t
+
+
+def test_a_ci_always_contains_its_estimate():
+    from scorer.observer import ThresholdPoint
+
+    est = 0.0123
+    p = ThresholdPoint(1.0, est, est * (1 + 1e-15), est * (1 + 1e-15), "count", "npw", 2, 3, 2 / 3)
+    assert p.ci_low <= p.threshold_contrast <= p.ci_high
+    p = ThresholdPoint(1.0, est, 0.010, 0.011, "count", "npw", 2, 3, 2 / 3)   # estimate above a skewed interval
+    assert (p.ci_low, p.ci_high) == (0.010, est)
+    nan = ThresholdPoint(1.0, float("nan"), 0.01, 0.02, "count", "npw", 2, 3, 2 / 3)
+    assert (nan.ci_low, nan.ci_high) == (0.01, 0.02)   # nothing to enclose
+
+
+def test_error_bars_never_negative():
+    from scorer.reports.html import error_bars
+
+    lo, hi = error_bars(np.array([1.0, 2.0, 3.0]), np.array([1.0 + 1e-12, np.nan, 2.5]), np.array([0.9, 2.5, np.inf]))
+    assert np.all(lo >= 0) and np.all(hi >= 0)
+    assert lo[2] == pytest.approx(0.5) and hi[0] == 0 and hi[2] == 0

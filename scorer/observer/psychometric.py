@@ -702,6 +702,24 @@ def percentile_ci(samples, ci: float = 0.95) -> tuple[float, float]:
     return float(lo), float(hi)
 
 
+def enclose_estimate(estimate: float, ci_low: float, ci_high: float) -> tuple[float, float]:
+    """The interval widened, where needed, so that it contains its estimate.
+
+    A percentile interval can miss its own estimate (a skewed bootstrap distribution, or
+    floating-point noise when every resample gives the same value); an interval reported
+    beside an estimate must hold it, so the nearer end moves to the estimate.  Non-finite
+    values are left as they are.
+    """
+    lo, hi = float(ci_low), float(ci_high)
+    est = float(estimate)
+    if np.isfinite(est):
+        if np.isfinite(lo) and lo > est:
+            lo = est
+        if np.isfinite(hi) and hi < est:
+            hi = est
+    return lo, hi
+
+
 def expanded_percentile_ci(samples, n_units: int, ci: float = 0.95) -> tuple[float, float]:
     """Expanded percentile bootstrap interval for a statistic of ``n_units`` resampled units.
 
@@ -727,6 +745,9 @@ class BootstrapResult:
     n_at_bound: int = 0
     ci: float = 0.95
     note: str = ""
+
+    def __post_init__(self):
+        self.ci_low, self.ci_high = enclose_estimate(self.estimate, self.ci_low, self.ci_high)
 
 
 def bootstrap_threshold(units: UnitCounts, n_boot: int, rng: np.random.Generator, *, m_alternatives: int,

@@ -61,7 +61,7 @@ from scorer.errors import LimenError
 from scorer.observer.mafc import dprime_for_pc, halfway_criterion
 from scipy import stats
 
-from scorer.observer.psychometric import bootstrap_threshold, expanded_percentile_ci, unit_counts
+from scorer.observer.psychometric import bootstrap_threshold, enclose_estimate, expanded_percentile_ci, unit_counts
 
 METHODS = ("dprime", "count")
 LOCAL_FIT_FACTOR = None  # None: fit d′ = k·C on every target (the NPW/NPWE observers are linear)
@@ -79,6 +79,10 @@ class ThresholdPoint:
     m_alternatives: int
     criterion_pc: float
     note: str = ""
+
+    def __post_init__(self):
+        # a CI always contains its estimate, by construction
+        self.ci_low, self.ci_high = enclose_estimate(self.threshold_contrast, self.ci_low, self.ci_high)
 
     def to_dict(self) -> dict:
         return asdict(self)

@@ -151,3 +151,13 @@ def clean_nans(obj):
     if isinstance(obj, (list, tuple)):
         return [clean_nans(v) for v in obj]
     return obj
+
+
+def error_bars(estimate, ci_low, ci_high) -> tuple[np.ndarray, np.ndarray]:
+    """Lower and upper error-bar lengths for matplotlib's ``errorbar``: never negative, 0 where unknown."""
+    est = np.asarray(estimate, dtype=float)
+    lo = np.asarray(ci_low, dtype=float)
+    hi = np.asarray(ci_high, dtype=float)
+    below = np.where(np.isfinite(lo), est - lo, 0.0)
+    above = np.where(np.isfinite(hi), hi - est, 0.0)
+    return np.clip(np.nan_to_num(below), 0.0, None), np.clip(np.nan_to_num(above), 0.0, None)

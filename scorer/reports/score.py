@@ -12,7 +12,7 @@ import matplotlib.pyplot as plt  # noqa: E402
 import numpy as np  # noqa: E402
 
 from scorer.observer.psychometric import fit_psychometric  # noqa: E402
-from scorer.reports.html import figure_to_svg, html_page, table_html, write_json  # noqa: E402
+from scorer.reports.html import error_bars, figure_to_svg, html_page, table_html, write_json  # noqa: E402
 
 METHOD_LABEL = {"dprime": "d′ method", "count": "count method", "predicted": "predicted"}
 COLOURS = {"dprime": "#1f5fa8", "count": "#c2571a", "predicted": "#3a8a3a"}
@@ -32,10 +32,10 @@ def cd_plot(result, extra_curves=None, title=None):
             continue
         d = np.array([p.diameter_mm for p in pts]) * offsets.get(method, 1.0)
         t = np.array([p.threshold_contrast for p in pts]) * 100
-        lo = np.array([p.ci_low if np.isfinite(p.ci_low) else p.threshold_contrast for p in pts]) * 100
-        hi = np.array([p.ci_high if np.isfinite(p.ci_high) else p.threshold_contrast for p in pts]) * 100
+        lo = np.array([p.ci_low for p in pts]) * 100
+        hi = np.array([p.ci_high for p in pts]) * 100
         col = COLOURS.get(method, None)
-        ax.errorbar(d, t, yerr=[t - lo, hi - t], fmt="o", ms=5, capsize=3, color=col,
+        ax.errorbar(d, t, yerr=error_bars(t, lo, hi), fmt="o", ms=5, capsize=3, color=col,
                     label=f"{curve.observer.upper()} {METHOD_LABEL.get(method, method)} (95 % CI)")
         if curve.smooth is not None:
             x = np.geomspace(*curve.smooth.diameter_range_mm, 100)

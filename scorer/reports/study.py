@@ -13,7 +13,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from scorer.reports.html import figure_to_svg, html_page, table_html, write_json
+from scorer.reports.html import error_bars, figure_to_svg, html_page, table_html, write_json
 
 
 def _plt():
@@ -39,7 +39,7 @@ def curves_figure(a, level) -> str:
     if len(pc):
         pc = pc.sort_values("diameter_mm")
         y = pc["threshold_contrast"].to_numpy() * 100
-        err = np.vstack([y - pc["ci_low"].to_numpy() * 100, pc["ci_high"].to_numpy() * 100 - y])
+        err = np.vstack(error_bars(y, pc["ci_low"].to_numpy() * 100, pc["ci_high"].to_numpy() * 100))
         ax.errorbar(pc["diameter_mm"], y, yerr=err, fmt="o-", color="#1f4e79", lw=2, capsize=3,
                     label="pooled readers (95 % CI)")
     mc = a.model_curves[a.model_curves[by] == level] if len(a.model_curves) else pd.DataFrame()
@@ -69,7 +69,7 @@ def forest_figure(a) -> str:
     fig, ax = plt.subplots(figsize=(6.4, 0.6 + 0.45 * len(comp)))
     labels = [f"{r.level} / {r.reference}, {r.diameter_mm:g} mm" for r in comp.itertuples()]
     yy = np.arange(len(comp))[::-1]
-    ax.errorbar(comp["ratio"], yy, xerr=[comp["ratio"] - comp["ci_low"], comp["ci_high"] - comp["ratio"]],
+    ax.errorbar(comp["ratio"], yy, xerr=error_bars(comp["ratio"], comp["ci_low"], comp["ci_high"]),
                 fmt="o", color="#1f4e79", capsize=3)
     ax.axvline(1.0, color="k", lw=0.8)
     ax.set_yticks(yy, labels)
