@@ -14,6 +14,7 @@ import click
 
 from scorer import __version__
 from scorer.errors import LimenError
+from scorer.invocation import set_invocation
 
 # module name under scorer.commands -> the click command object inside it
 _COMMANDS = {
@@ -26,6 +27,10 @@ _COMMANDS = {
 
 
 class _LimenGroup(click.Group):
+    def main(self, args=None, prog_name=None, **kwargs):
+        set_invocation(sys.argv[1:] if args is None else list(args))
+        return super().main(args=args, prog_name=prog_name, **kwargs)
+
     def invoke(self, ctx):
         try:
             return super().invoke(ctx)

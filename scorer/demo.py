@@ -52,13 +52,14 @@ def run(out: Path) -> Path:
     for panel, seed in (("direct", 417), ("indirect", 2291)):
         d = out / panel
         _limen(["simulate", "--detector", panel, "--kind", "phantom", "--small", "--count", str(N_PHANTOM),
-                "--dose-ugy", str(DOSE_UGY), "--rotate", "1.5", "--seed", str(seed), "--out", str(d / "images")])
+                "--dose-ugy", str(DOSE_UGY), "--rotate", "1.5", "--seed", str(seed), "--out", str(d / "images"),
+                "--overwrite"])
         _limen(["simulate", "--detector", panel, "--kind", "flat", "--small", "--count", "4",
-                "--dose-ugy", str(DOSE_UGY), "--seed", str(seed + 1), "--out", str(d / "flats")])
+                "--dose-ugy", str(DOSE_UGY), "--seed", str(seed + 1), "--out", str(d / "flats"), "--overwrite"])
         _limen(["simulate", "--detector", panel, "--kind", "edge", "--small", "--edge-angle-deg", "2.5",
-                "--dose-ugy", str(DOSE_UGY), "--seed", str(seed + 2), "--out", str(d / "edges")])
+                "--dose-ugy", str(DOSE_UGY), "--seed", str(seed + 2), "--out", str(d / "edges"), "--overwrite"])
         _limen(["simulate", "--detector", panel, "--kind", "edge", "--small", "--edge-angle-deg", "92.5",
-                "--dose-ugy", str(DOSE_UGY), "--seed", str(seed + 3), "--out", str(d / "edges")])
+                "--dose-ugy", str(DOSE_UGY), "--seed", str(seed + 3), "--out", str(d / "edges"), "--overwrite"])
         conv = str(d / "images" / f"{panel}-conversion.toml")
         images = sorted(str(p) for p in (d / "images").glob("*.dcm"))
         # measure the panel first, then score the plate with templates shaped by the measured MTF

@@ -255,3 +255,14 @@ def test_error_bars_never_negative():
     lo, hi = error_bars(np.array([1.0, 2.0, 3.0]), np.array([1.0 + 1e-12, np.nan, 2.5]), np.array([0.9, 2.5, np.inf]))
     assert np.all(lo >= 0) and np.all(hi >= 0)
     assert lo[2] == pytest.approx(0.5) and hi[0] == 0 and hi[2] == 0
+
+
+def test_results_record_the_actual_command_also_in_process(direct_set, tmp_path):
+    # found in use: every demo results.json said "limen score demo-output" (taken from sys.argv of the demo)
+    files = sorted(str(p) for p in direct_set.glob("*.dcm"))[:2]
+    out = tmp_path / "r"
+    res = _run(files + ["--layout", str(MINI), "--n-boot", "0", "--method", "dprime", "--out", str(out)])
+    assert res.exit_code == 0, res.output
+    js = json.loads((out / "results.json").read_text())
+    assert js["command"].startswith("limen score ") and files[0] in js["command"] and str(out) in js["command"]
+    assert js["provenance"]["command"] == js["command"]

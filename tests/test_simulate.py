@@ -178,3 +178,24 @@ def test_detector_model_file_overrides_and_rejects_unknown_keys(tmp_path):
     worse.write_text('base = "direct"\nqde = 1.5\n')
     with pytest.raises(LimenError, match="qde must lie in"):
         load_detector_model(worse)
+
+
+def test_two_edge_orientations_in_one_folder_never_collide(tmp_path):
+    # Found in use: the 2.5° and 92.5° edges of `make demo` shared one name, so the second replaced the first
+    # and the detector report showed one MTF direction. Edge names carry the angle; a clash is refused.
+    run = CliRunner().invoke
+    for angle in ("2.5", "92.5"):
+        res = run(main, ["simulate", "--kind", "edge", "--small", "--edge-angle-deg", angle, "--out", str(tmp_path)])
+        assert res.exit_code == 0, res.output
+    assert len(list(tmp_path.glob("*.dcm"))) == 2
+    again = run(main, ["simulate", "--kind", "edge", "--small", "--edge-angle-deg", "2.5", "--out", str(tmp_path)])
+    lines = [l for l in again.output.splitlines() if l.strip()]
+    assert again.exit_code == 2 and len(lines) == 1 and "already exists" in lines[0] and "--overwrite" in lines[0]
+    ok = run(main, ["simulate", "--kind", "edge", "--small", "--edge-angle-deg", "2.5", "--out", str(tmp_path),
+                    "--overwrite"])
+    assert ok.exit_code == 0, ok.output
+    # both orientations measured: the detector reports an MTF along x and along y (IEC 62220-1: both directions)
+    det = run(main, ["detector", "--edge", *map(str, sorted(tmp_path.glob("*.dcm"))), "--json"])
+    assert det.exit_code == 0, det.output
+    by_dir = json.loads(det.stdout)["mtf"]["by_direction"]
+    assert set(by_dir) == {"x", "y"}

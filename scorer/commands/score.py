@@ -3,7 +3,6 @@
 from __future__ import annotations
 
 import json
-import shlex
 import sys
 from pathlib import Path
 
@@ -12,6 +11,7 @@ from tqdm import tqdm
 
 from scorer.images import load_conversion
 from scorer.errors import LimenError
+from scorer.invocation import current_command
 from scorer.phantom import load_layout
 from scorer.observer import load_limits
 from scorer.observer import SystemBlur
@@ -131,7 +131,7 @@ def score(images, layout_file, observer, method, limits_file, human_factor, fact
                               count_form=psychometric_form, dprime_ci=dprime_ci)
     finally:
         bar.close()
-    command = "limen score " + " ".join(shlex.quote(a) for a in sys.argv[2:]) if len(sys.argv) > 2 else ""
+    command = current_command() or ""
     if out is not None:
         write_score_outputs(result, out, overlays, command)
     if as_json:

@@ -18,6 +18,13 @@ from scorer.detector import Pose, detector_model, load_detector_model, simulate 
 DEFAULT_START = _dt.datetime(2026, 11, 30, 7, 30, 0)
 
 
+def image_stem(panel: str, kind: str, dose_ugy: float, index: int, edge_angle_deg: float | None = None) -> str:
+    """File name (without extension) of one simulated image; edges carry their angle so two orientations
+    written to one folder never share a name."""
+    angle = "" if edge_angle_deg is None else f"-{edge_angle_deg:g}deg".replace(".", "p")
+    return f"{panel}-{kind}{angle}-{dose_ugy:g}ugy-{index + 1:03d}"
+
+
 @click.command("simulate")
 @click.option("--detector", "detector", type=click.Choice(["direct", "indirect"]), default="direct",
               show_default=True, help="Preset panel model.")
@@ -40,9 +47,10 @@ DEFAULT_START = _dt.datetime(2026, 11, 30, 7, 30, 0)
 @click.option("--edge-angle-deg", type=float, default=2.5, show_default=True,
               help="Edge angle from the column axis; add 90 for a near-horizontal edge.")
 @click.option("--format", "fmt", type=click.Choice(["dicom", "tiff", "png", "npy"]), default="dicom",
-              show_default=True)
+              show_default=True, help="Image file format.")
+@click.option("--overwrite", is_flag=True, help="Replace images of the same name already in --out (default: refuse).")
 def simulate(detector, model_file, kind, dose_ugy, count, seed, out_dir, small, rotate_deg, flip,
-             shift_mm, magnification, layout_file, edge_angle_deg, fmt):
+             shift_mm, magnification, layout_file, edge_angle_deg, fmt, overwrite):
     """Simulate raw (FOR PROCESSING) detector images with a JSON ground-truth sidecar each."""
     model = load_detector_model(model_file) if model_file else detector_model(detector)
     layout = load_layout(layout_file) if kind == "phantom" else None
@@ -51,6 +59,13 @@ def simulate(detector, model_file, kind, dose_ugy, count, seed, out_dir, small, 
     pose = Pose(rotation_deg=rotate_deg, flipped=flip, magnification=magnification, shift_mm=tuple(shift_mm))
     rngs = [np.random.default_rng(s) for s in np.random.SeedSequence(seed).spawn(count)]
     out = Path(out_dir)
+    stems = [image_stem(model.name, kind, dose_ugy, i, edge_angle_deg if kind == "edge" else None)
+             for i in range(count)]
+    if not overwrite and out.is_dir():
+        clash = sorted(p.name for st in stems for p in out.glob(f"{st}.*"))
+        if clash:
+            raise LimenError(f"{out / clash[0]} already exists ({len(clash)} file(s) of this run would be replaced); "
+                             "choose another --out or add --overwrite", out)
     written = []
     for i, rng in enumerate(tqdm(rngs, desc=f"simulating {model.name} {kind}", unit="image",
                                  disable=count < 2, file=sys.stderr)):
@@ -58,7 +73,7 @@ def simulate(detector, model_file, kind, dose_ugy, count, seed, out_dir, small, 
                              edge_angle_deg=edge_angle_deg)
         sim.truth["seed"] = seed
         sim.truth["index"] = i
-        stem = f"{model.name}-{kind}-{dose_ugy:g}ugy-{i + 1:03d}"
+        stem = stems[i]
         acquired = DEFAULT_START + _dt.timedelta(minutes=2 * i)
         written.append(write_simulated(sim, out, stem, acquired, fmt))
     # the panel's conversion function, as a physicist would hold it from commissioning

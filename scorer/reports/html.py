@@ -17,6 +17,8 @@ from typing import Iterable
 
 import numpy as np
 
+from scorer.files import atomic_write_text
+
 CAUTION = (
     "Limen's results support, and never replace, the judgement of a qualified medical "
     "physicist. They inform the quality control of equipment used on patients; local "
@@ -81,7 +83,10 @@ def provenance() -> dict:
     import numpy, scipy  # noqa: E401
     from scorer import __version__
 
+    from scorer.invocation import current_command
+
     out = {
+        "command": current_command(),
         "limen_version": __version__,
         "python": platform.python_version(),
         "numpy": numpy.__version__,
@@ -116,9 +121,14 @@ def html_page(title: str, sections: list[tuple[str, str]], meta: dict | None = N
 
 
 def write_json(path: Path, obj) -> None:
-    """Write ``obj`` as pretty, valid JSON (numpy scalars and arrays converted, NaN/inf as null)."""
-    Path(path).write_text(json.dumps(clean_nans(obj), indent=2, default=_json_default, allow_nan=False) + "\n",
-                          encoding="utf-8")
+    """Write ``obj`` as pretty, valid JSON (numpy scalars and arrays converted, NaN/inf as null), atomically.
+
+    A dictionary without a ``provenance`` entry gets one (command, versions, time), so every JSON result
+    says how it was made.
+    """
+    if isinstance(obj, dict) and "provenance" not in obj:
+        obj = {**obj, "provenance": provenance()}
+    atomic_write_text(path, json.dumps(clean_nans(obj), indent=2, default=_json_default, allow_nan=False) + "\n")
 
 
 def _json_default(o):
