@@ -149,12 +149,16 @@ def test_compare_detectors(measured, tmp_path):
     q = {r["quantity"]: r for r in d["table"]}
     for key in ("MTF at 1 cycles/mm", "MTF at 2 cycles/mm", "MTF at 5 cycles/mm", "MTF at own Nyquist",
                 "NNPS at 0.5 cycles/mm (mm²)", "DQE at 0.5 cycles/mm", "DQE at 2 cycles/mm",
-                "predicted NPW threshold contrast at 0.1 mm", "scored NPW threshold contrast at 0.5 mm"):
+                "predicted NPW threshold contrast at 0.1 mm", "scored NPW (d′ method) threshold contrast at 0.5 mm"):
         assert key in q
-    # common practice: the direct (a-Se) panel keeps the sharper MTF and higher DQE at the same pitch
-    assert q["MTF at 5 cycles/mm"]["better"] == "direct"
-    assert q["DQE at 2 cycles/mm"]["better"] == "direct"
-    assert any(s.startswith("direct is sharper") for s in d["summary"])
+    # common practice: the direct (a-Se) panel keeps the sharper MTF and higher DQE at the same pitch; without
+    # an uncertainty on the MTF no claim is made, the values are described
+    assert q["MTF at 5 cycles/mm"]["direct"] > q["MTF at 5 cycles/mm"]["indirect"]
+    assert q["MTF at 5 cycles/mm"]["better"] == "" and "no uncertainty" in q["MTF at 5 cycles/mm"]["basis"]
+    assert any(s.startswith("MTF (measured values; no uncertainty available") and "direct higher at" in s
+               for s in d["summary"])
+    # the NNPS carries its standard error, so its rows are decided by their 95 % CIs
+    assert q["NNPS at 0.5 cycles/mm (mm²)"]["basis"] in ("95 % CIs overlap", "95 % CIs do not overlap")
     assert (tmp_path / "cmp" / "comparison.html").read_text().count("<svg") >= 4
 
 
@@ -182,3 +186,34 @@ def test_compare_detectors_bad_json(tmp_path, measured):
     bad.write_text("{not json")
     res = run("compare-detectors", measured["direct"] / "detector.json", bad)
     assert res.exit_code == 2 and "bad.json" in res.stderr and "not valid JSON" in res.stderr
+
+
+def _scored(tmp_path, name, rows):
+    p = tmp_path / name
+    p.write_text(json.dumps({"observer": "npw", "thresholds": [
+        {"diameter_mm": d, "threshold_contrast": t, "ci_low": lo, "ci_high": hi, "method": m, "n_images": 8,
+         "m_alternatives": 3} for d, t, lo, hi, m in rows]}))
+    return p
+
+
+def test_compare_detectors_keeps_the_two_scoring_methods_apart_and_claims_only_beyond_the_ci(measured, tmp_path):
+    # found in use: "scored NPW" appeared twice per diameter (d′ and count) and the table took whichever came
+    # first; and a 3 % tolerance, not the CIs, decided "better"
+    a, b = measured["direct"] / "detector.json", measured["indirect"] / "detector.json"
+    sa = _scored(tmp_path, "a.json", [(0.5, 0.0050, 0.0045, 0.0055, "dprime"), (1.0, 0.0030, 0.0027, 0.0033, "dprime"),
+                                      (0.5, 0.0040, 0.0020, 0.0060, "count"), (1.0, 0.0031, 0.0020, 0.0045, "count")])
+    sb = _scored(tmp_path, "b.json", [(0.5, 0.0070, 0.0063, 0.0077, "dprime"), (1.0, 0.0031, 0.0028, 0.0034, "dprime"),
+                                      (0.5, 0.0060, 0.0040, 0.0090, "count"), (1.0, 0.0036, 0.0025, 0.0050, "count")])
+    d = json.loads(run("compare-detectors", a, b, "--scored-a", sa, "--scored-b", sb, "--json").stdout)
+    q = {r["quantity"]: r for r in d["table"]}
+    assert d["scored_method"] == "dprime"
+    assert q["scored NPW (d′ method) threshold contrast at 0.5 mm"]["better"] == "direct"      # CIs apart
+    assert q["scored NPW (d′ method) threshold contrast at 1 mm"]["better"] == "no clear difference"  # overlap
+    assert not any("count method" in k for k in q)
+    sources = {t["source"] for t in d["thresholds"]}
+    assert {"scored NPW (d′ method)", "scored NPW (count method)"} <= sources
+    c = json.loads(run("compare-detectors", a, b, "--scored-a", sa, "--scored-b", sb, "--scored-method", "count",
+                       "--json").stdout)
+    qc = {r["quantity"]: r for r in c["table"]}
+    assert qc["scored NPW (count method) threshold contrast at 0.5 mm"]["better"] == "no clear difference"
+    assert not any("d′ method" in k for k in qc)

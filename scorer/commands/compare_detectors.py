@@ -6,8 +6,10 @@ from pathlib import Path
 
 import click
 import numpy as np
+import pandas as pd
 
 from scorer.detector import load_detector_json, load_scored_json, compare
+from scorer.files import atomic_write_text
 from scorer.reports import dumps, write_json
 from scorer.commands.detector import alternatives_from_options, diameters_from_options
 
@@ -27,11 +29,13 @@ from scorer.commands.detector import alternatives_from_options, diameters_from_o
 @click.option("--alternatives", "m_alternatives", type=click.IntRange(2, 64), default=None,
               help="M of the M-AFC criterion for predicted thresholds [default: each diameter's M in --layout or in the "
                    "scored results, else 4].")
+@click.option("--scored-method", type=click.Choice(["dprime", "count"]), default="dprime", show_default=True,
+              help="Which scoring method's thresholds the side-by-side table and summary compare (both are plotted).")
 @click.option("--json", "as_json", is_flag=True, help="Print one JSON object on stdout.")
 @click.option("--out", "out_dir", type=click.Path(file_okay=False), default=None,
-              help="Write comparison.json and comparison.html here.")
+              help="Write comparison.json, comparison.csv and comparison.html here.")
 def compare_detectors(detector_a, detector_b, label_a, label_b, scored_a, scored_b, layout_file, diameters,
-                      m_alternatives, as_json, out_dir):
+                      m_alternatives, scored_method, as_json, out_dir):
     """Put two detectors measured by 'limen detector' side by side."""
     a, b = load_detector_json(detector_a), load_detector_json(detector_b)
 
@@ -46,7 +50,8 @@ def compare_detectors(detector_a, detector_b, label_a, label_b, scored_a, scored
     sa = load_scored_json(scored_a) if scored_a else None
     sb = load_scored_json(scored_b) if scored_b else None
     diam = diameters_from_options(diameters, layout_file)
-    result = compare(a, b, (la, lb), diam, sa, sb, alternatives_from_options(m_alternatives, layout_file))
+    result = compare(a, b, (la, lb), diam, sa, sb, alternatives_from_options(m_alternatives, layout_file),
+                     scored_method=scored_method)
     result["inputs"] = {"detector_a": str(detector_a), "detector_b": str(detector_b),
                         "scored_a": scored_a, "scored_b": scored_b, "layout": layout_file}
     if out_dir:
@@ -55,16 +60,24 @@ def compare_detectors(detector_a, detector_b, label_a, label_b, scored_a, scored
         out = Path(out_dir)
         out.mkdir(parents=True, exist_ok=True)
         write_json(out / "comparison.json", result)
-        (out / "comparison.html").write_text(compare_report_html(result, a, b), encoding="utf-8")
+        rows = [{k: (v if not isinstance(v, list) else " – ".join(f"{x:.4g}" for x in v)) for k, v in r.items()}
+                for r in result["table"]]
+        atomic_write_text(out / "comparison.csv", pd.DataFrame(rows).to_csv(index=False))
+        atomic_write_text(out / "comparison.html", compare_report_html(result, a, b))
     if as_json:
         click.echo(dumps(result))
         return
     w = max(len(r["quantity"]) for r in result["table"])
-    click.echo(f"{'':<{w}}  {la:>12}  {lb:>12}  better")
+    click.echo(f"{'':<{w}}  {la:>14}  {lb:>14}  difference")
     for r in result["table"]:
+        pct = "threshold contrast" in r["quantity"]
+
         def fmt(v):
-            return "—" if v is None or not np.isfinite(v) else f"{v:.4g}"
-        click.echo(f"{r['quantity']:<{w}}  {fmt(r[la]):>12}  {fmt(r[lb]):>12}  {r['better']}")
+            if v is None or not np.isfinite(v):
+                return "—"
+            return f"{100 * v:.3g} %" if pct else f"{v:.4g}"
+        verdict = r["better"] + (f" ({r['basis']})" if r.get("basis") and r["better"] else "")
+        click.echo(f"{r['quantity']:<{w}}  {fmt(r[la]):>14}  {fmt(r[lb]):>14}  {verdict}")
     click.echo("")
     for s in result["summary"]:
         click.echo(s)

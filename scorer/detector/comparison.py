@@ -15,8 +15,12 @@ from scorer.detector.predict import predict_from_detector
 
 #: diameters (mm) used when neither --diameters, --layout nor a scored JSON gives any (common practice)
 DEFAULT_DIAMETERS_MM = (0.1, 0.25, 0.5, 1.0, 2.0)
-#: relative difference below which two values are called similar
-SIMILAR = 0.03
+#: two-sided 95 % normal quantile
+Z95 = 1.959963984540054
+NO_CLEAR = "no clear difference"
+POINT_ONLY = "point values only (no uncertainty available)"
+SCORED_METHODS = ("dprime", "count")
+METHOD_NAMES = {"dprime": "d′ method", "count": "count method"}
 
 
 def _load_json(path, what: str) -> dict:
@@ -61,7 +65,7 @@ def load_scored_json(path) -> list[dict]:
 
 
 def _at(curve: dict | None, f: float, key: str = "value"):
-    if not curve or f is None:
+    if not curve or f is None or key not in curve or curve[key] is None:
         return None
     x = np.asarray(curve["frequency_per_mm"], dtype=float)
     y = np.asarray(curve[key], dtype=float)
@@ -70,46 +74,78 @@ def _at(curve: dict | None, f: float, key: str = "value"):
     return float(np.interp(f, x, y))
 
 
-def _better(va, vb, higher_is_better: bool, la: str, lb: str) -> str:
+def _curve_ci(curve: dict | None, f: float, value: float | None) -> tuple[float, float] | None:
+    """95 % CI of a curve at f: from its ``ci_low``/``ci_high`` arrays, or (NNPS) its relative standard error."""
+    if not curve or value is None:
+        return None
+    lo, hi = _at(curve, f, "ci_low"), _at(curve, f, "ci_high")
+    if lo is not None and hi is not None:
+        return lo, hi
+    rel = curve.get("relative_uncertainty")
+    if isinstance(rel, (int, float)) and np.isfinite(rel) and rel > 0:
+        return value * (1 - Z95 * rel), value * (1 + Z95 * rel)
+    return None
+
+
+def decide(va, vb, ci_a, ci_b, higher_is_better: bool, la: str, lb: str) -> tuple[str, str]:
+    """Which detector is better at one point, and on what basis.
+
+    Only non-overlapping 95 % confidence intervals make a difference; overlapping ones give
+    "no clear difference"; without an interval on both sides no claim is made (the basis says so).
+    """
     if va is None or vb is None or not np.isfinite(va) or not np.isfinite(vb):
-        return ""
-    if abs(va - vb) <= SIMILAR * max(abs(va), abs(vb)):
-        return "similar"
-    a_wins = (va > vb) if higher_is_better else (va < vb)
-    return la if a_wins else lb
+        return "", ""
+    if ci_a is None or ci_b is None or not all(np.isfinite(v) for v in (*ci_a, *ci_b)):
+        return "", POINT_ONLY
+    if ci_a[1] < ci_b[0] or ci_b[1] < ci_a[0]:
+        a_wins = (va > vb) if higher_is_better else (va < vb)
+        return (la if a_wins else lb), "95 % CIs do not overlap"
+    return NO_CLEAR, "95 % CIs overlap"
 
 
 def compare(a: dict, b: dict, labels=("A", "B"), diameters_mm=None, scored_a=None, scored_b=None,
-            m_alternatives: int | dict[float, int] | None = None) -> dict:
+            m_alternatives: int | dict[float, int] | None = None, scored_method: str = "dprime") -> dict:
     """Side-by-side table, threshold rows and a plain-language summary of two detector JSONs.
 
     ``m_alternatives``: the M of the criterion for predicted thresholds, one for all diameters or per
     diameter; by default each diameter's M in the scored results (so predicted and scored thresholds use
-    the same criterion), else 4.
+    the same criterion), else 4.  ``scored_method`` ("dprime" or "count") chooses which scoring method's
+    thresholds enter the side-by-side table and the summary; both are listed and plotted, each under its
+    own label.  A detector is called better at a point only where the two 95 % CIs do not overlap.
     """
+    if scored_method not in SCORED_METHODS:
+        raise LimenError(f"unknown scoring method {scored_method!r}; choose dprime or count", "--scored-method")
     la, lb = labels
     table: list[dict] = []
-    wins: dict[str, list[tuple[str, str]]] = {}
+    points: dict[str, list[tuple[str, str, str, float | None, float | None]]] = {}
 
-    def row(quantity, va, vb, higher, group, point=""):
-        better = _better(va, vb, higher, la, lb)
-        table.append({"quantity": quantity, la: va, lb: vb, "better": better})
-        if better:
-            wins.setdefault(group, []).append((point, better))
+    def row(quantity, va, vb, higher, group, point="", ci_a=None, ci_b=None):
+        better, basis = decide(va, vb, ci_a, ci_b, higher, la, lb)
+        table.append({"quantity": quantity, la: va, lb: vb,
+                      f"{la} 95% CI": list(ci_a) if ci_a else None, f"{lb} 95% CI": list(ci_b) if ci_b else None,
+                      "better": better, "basis": basis, "higher_is_better": higher})
+        if va is not None and vb is not None:
+            points.setdefault(group, []).append((point, better, basis, va, vb))
 
     for f in (1.0, 2.0, 5.0):
-        row(f"MTF at {f:g} cycles/mm", _at(a.get("mtf"), f), _at(b.get("mtf"), f), True, "MTF", f"{f:g} cycles/mm")
-    row("MTF at own Nyquist", _at(a.get("mtf"), a.get("nyquist_per_mm")), _at(b.get("mtf"), b.get("nyquist_per_mm")),
-        True, "MTF", "Nyquist")
-    table.append({"quantity": "Nyquist frequency (cycles/mm)", la: a.get("nyquist_per_mm"),
-                  lb: b.get("nyquist_per_mm"), "better": ""})
+        va, vb = _at(a.get("mtf"), f), _at(b.get("mtf"), f)
+        row(f"MTF at {f:g} cycles/mm", va, vb, True, "MTF", f"{f:g} cycles/mm",
+            _curve_ci(a.get("mtf"), f, va), _curve_ci(b.get("mtf"), f, vb))
+    na, nb = a.get("nyquist_per_mm"), b.get("nyquist_per_mm")
+    va, vb = _at(a.get("mtf"), na), _at(b.get("mtf"), nb)
+    row("MTF at own Nyquist", va, vb, True, "MTF", "Nyquist", _curve_ci(a.get("mtf"), na, va),
+        _curve_ci(b.get("mtf"), nb, vb))
+    table.append({"quantity": "Nyquist frequency (cycles/mm)", la: na, lb: nb, "better": "", "basis": ""})
     for f in (0.5, 2.0):
-        row(f"NNPS at {f:g} cycles/mm (mm²)", _at(a.get("nnps"), f, "value_mm2"), _at(b.get("nnps"), f, "value_mm2"),
-            False, "NNPS", f"{f:g} cycles/mm")
+        va, vb = _at(a.get("nnps"), f, "value_mm2"), _at(b.get("nnps"), f, "value_mm2")
+        row(f"NNPS at {f:g} cycles/mm (mm²)", va, vb, False, "NNPS", f"{f:g} cycles/mm",
+            _curve_ci(a.get("nnps"), f, va), _curve_ci(b.get("nnps"), f, vb))
     table.append({"quantity": "air kerma of the flat fields (µGy)", la: a.get("kerma_ugy"), lb: b.get("kerma_ugy"),
-                  "better": ""})
+                  "better": "", "basis": ""})
     for f in (0.5, 2.0):
-        row(f"DQE at {f:g} cycles/mm", _at(a.get("dqe"), f), _at(b.get("dqe"), f), True, "DQE", f"{f:g} cycles/mm")
+        va, vb = _at(a.get("dqe"), f), _at(b.get("dqe"), f)
+        row(f"DQE at {f:g} cycles/mm", va, vb, True, "DQE", f"{f:g} cycles/mm",
+            _curve_ci(a.get("dqe"), f, va), _curve_ci(b.get("dqe"), f, vb))
 
     thresholds: list[dict] = []
     diam = list(diameters_mm) if diameters_mm else None
@@ -128,55 +164,84 @@ def compare(a: dict, b: dict, labels=("A", "B"), diameters_mm=None, scored_a=Non
         for p in pred[label]:
             thresholds.append({"detector": label, "source": f"predicted {p.observer.upper()}",
                                "diameter_mm": p.diameter_mm, "threshold_contrast": p.threshold_contrast,
-                               "ci_low": None, "ci_high": None})
+                               "ci_low": None, "ci_high": None, "method": "predicted", "observer": p.observer})
     for label, sc in ((la, scored_a), (lb, scored_b)):
         for r in sc or []:
             obs = (r.get("observer") or "").upper()
-            thresholds.append({"detector": label, "source": f"scored {obs}".strip(), "diameter_mm": r["diameter_mm"],
-                               "threshold_contrast": r["threshold_contrast"], "ci_low": r.get("ci_low"),
-                               "ci_high": r.get("ci_high")})
-    # threshold rows in the side-by-side table (lower is better)
-    sources = sorted({t["source"] for t in thresholds})
+            method = r.get("method") or "dprime"
+            thresholds.append({"detector": label, "source": scored_source(obs, method),
+                               "diameter_mm": r["diameter_mm"], "threshold_contrast": r["threshold_contrast"],
+                               "ci_low": r.get("ci_low"), "ci_high": r.get("ci_high"), "method": method,
+                               "observer": r.get("observer"), "censored": r.get("censored"),
+                               "extrapolated": r.get("extrapolated")})
+    # threshold rows in the side-by-side table (lower is better): predicted, and the chosen scoring method
+    sources = sorted({t["source"] for t in thresholds if t["method"] in ("predicted", scored_method)})
     for src in sources:
         for d in diam if src.startswith("predicted") else sorted({t["diameter_mm"] for t in thresholds
                                                                    if t["source"] == src}):
-            va = next((t["threshold_contrast"] for t in thresholds
+            ta = next((t for t in thresholds
                        if t["detector"] == la and t["source"] == src and np.isclose(t["diameter_mm"], d)), None)
-            vb = next((t["threshold_contrast"] for t in thresholds
+            tb = next((t for t in thresholds
                        if t["detector"] == lb and t["source"] == src and np.isclose(t["diameter_mm"], d)), None)
-            row(f"{src} threshold contrast at {d:g} mm", va, vb, False, f"{src} threshold contrast", f"{d:g} mm")
 
-    summary = _summary(wins, la, lb)
+            def ci(t):
+                return None if t is None or t.get("ci_low") is None or t.get("ci_high") is None \
+                    else (float(t["ci_low"]), float(t["ci_high"]))
+            row(f"{src} threshold contrast at {d:g} mm", None if ta is None else ta["threshold_contrast"],
+                None if tb is None else tb["threshold_contrast"], False, f"{src} threshold contrast", f"{d:g} mm",
+                ci(ta), ci(tb))
+
+    summary = _summary(points, la, lb)
     if a.get("kerma_ugy") and b.get("kerma_ugy") and not np.isclose(a["kerma_ugy"], b["kerma_ugy"], rtol=0.05):
         summary.append(f"The flat fields were taken at different air kermas ({a['kerma_ugy']:g} vs "
                        f"{b['kerma_ugy']:g} µGy): NNPS and predicted thresholds depend on kerma; compare DQE instead.")
     return {"labels": [la, lb], "table": table, "thresholds": thresholds, "summary": summary,
-            "diameters_mm": diam,
+            "diameters_mm": diam, "scored_method": scored_method,
             "m_alternatives": ({f"{k:g}": v for k, v in m_alternatives.items()} if isinstance(m_alternatives, dict)
                                else m_alternatives)}
 
 
-def _summary(wins: dict[str, list[tuple[str, str]]], la: str, lb: str) -> list[str]:
-    """One plain sentence per group of quantities: who is better, and where."""
-    text = {"MTF": ("sharper (higher MTF)", "higher MTF"), "NNPS": ("less noisy (lower NNPS)", "lower NNPS"),
-            "DQE": ("more dose-efficient (higher DQE)", "higher DQE")}
+def scored_source(observer: str, method: str) -> str:
+    """Label of a scored threshold series: observer and scoring method, never one without the other."""
+    return f"scored {observer} ({METHOD_NAMES.get(method, method)})".replace("scored  (", "scored (")
+
+
+def _summary(points: dict[str, list[tuple[str, str, str, float, float]]], la: str, lb: str) -> list[str]:
+    """One plain sentence per group of quantities: who is better where the 95 % CIs allow saying so."""
+    text = {"MTF": ("sharper (higher MTF)", "higher MTF", "higher"),
+            "NNPS": ("less noisy (lower NNPS)", "lower NNPS", "lower"),
+            "DQE": ("more dose-efficient (higher DQE)", "higher DQE", "higher")}
     out = []
-    for group, ws in wins.items():
-        whole, short = text.get(group, (f"better (lower {group})", f"lower {group}"))
-        where = {lab: [p for p, w in ws if w == lab] for lab in (la, lb, "similar")}
-        n = len(ws)
+    for group, ps in points.items():
+        whole, short, word = text.get(group, (f"better (lower {group})", f"lower {group}", "lower"))
+        if all(basis == POINT_ONLY for _, _, basis, _, _ in ps):
+            # no uncertainty: describe the measured values, claim nothing
+            higher = word == "higher"
+            where = {la: [p for p, _, _, va, vb in ps if (va > vb) == higher and va != vb],
+                     lb: [p for p, _, _, va, vb in ps if (vb > va) == higher and va != vb]}
+            parts = [f"{lab} {word} at {', '.join(where[lab])}" for lab in (la, lb) if where[lab]]
+            out.append(f"{group} (measured values; no uncertainty available, so no claim of a difference): "
+                       + "; ".join(parts) + ".")
+            continue
+        where = {lab: [p for p, w, _, _, _ in ps if w == lab] for lab in (la, lb, NO_CLEAR)}
+        unknown = [p for p, w, basis, _, _ in ps if basis == POINT_ONLY]
+        n = len(ps)
         if len(where[la]) == n or len(where[lb]) == n:
             who = la if len(where[la]) == n else lb
-            out.append(f"{who} is {whole} at every point compared ({', '.join(p for p, _ in ws)}).")
-        elif len(where["similar"]) == n:
-            out.append(f"{group}: the two detectors are within {SIMILAR:.0%} of each other everywhere compared.")
+            out.append(f"{who} is {whole} at every point compared, with non-overlapping 95 % CIs "
+                       f"({', '.join(p for p, *_ in ps)}).")
+        elif len(where[NO_CLEAR]) == n:
+            out.append(f"{group}: no clear difference (the 95 % CIs overlap everywhere compared).")
         else:
             parts = [f"{lab} has the {short} at {', '.join(where[lab])}" for lab in (la, lb) if where[lab]]
-            if where["similar"]:
-                parts.append(f"they are within {SIMILAR:.0%} at {', '.join(where['similar'])}")
+            if where[NO_CLEAR]:
+                parts.append(f"no clear difference (95 % CIs overlap) at {', '.join(where[NO_CLEAR])}")
+            if unknown:
+                parts.append(f"no CI to compare at {', '.join(unknown)}")
             out.append(f"{group}: " + "; ".join(parts) + ".")
     if not out:
         out.append("Nothing comparable: the two files share no measured quantity.")
     return out
+
 
 

@@ -194,12 +194,41 @@ def _by_observer(rows: list[dict], prefix: str) -> dict[str, list[dict]]:
     return out
 
 
+def _side_by_side_rows(comparison: dict) -> list[dict]:
+    """Table rows with readable values: contrasts in %, a value's 95 % CI beside it, the basis of each claim."""
+    la, lb = comparison["labels"]
+    out = []
+    for r in comparison["table"]:
+        pct = "threshold contrast" in r["quantity"]
+
+        def show(v, ci):
+            if v is None or not np.isfinite(v):
+                return "—"
+            txt = f"{100 * v:.3g} %" if pct else f"{v:.4g}"
+            if ci:
+                lo, hi = ci
+                txt += f" ({100 * lo:.3g}–{100 * hi:.3g})" if pct else f" ({lo:.3g}–{hi:.3g})"
+            return txt
+        diff = r.get("better") or ""
+        if r.get("basis"):
+            diff = f"{diff} — {r['basis']}" if diff else r["basis"]
+        out.append({"quantity": r["quantity"].replace("threshold contrast", "threshold contrast (%)"),
+                    la: show(r.get(la), r.get(f"{la} 95% CI")), lb: show(r.get(lb), r.get(f"{lb} 95% CI")),
+                    "difference": diff})
+    return out
+
+
 def compare_report_html(comparison: dict, a: dict, b: dict, title: str = "Limen detector comparison") -> str:
     """The ``limen compare-detectors`` report: side-by-side table, overlaid curves, summary."""
     la, lb = comparison["labels"]
-    sections = [("Summary", "<ul>" + "".join(f"<li>{html.escape(s)}</li>" for s in comparison["summary"]) + "</ul>"),
-                ("Side by side", table_html(comparison["table"], columns=["quantity", la, lb, "better"],
-                                            left=("quantity", "better")))]
+    method = {"dprime": "d′ method", "count": "count method"}.get(comparison.get("scored_method", "dprime"), "")
+    sections = [("Summary", "<ul>" + "".join(f"<li>{html.escape(s)}</li>" for s in comparison["summary"]) + "</ul>"
+                 + f"<p class='note'>A detector is called better at a point only where the two 95 % confidence "
+                   f"intervals do not overlap; where they overlap the page says “no clear difference”, and where "
+                   f"a quantity has no interval (predicted thresholds, MTF and DQE without repeated measurements) "
+                   f"it shows the values and claims nothing. Scored thresholds in the table: {method}.</p>"),
+                ("Side by side", table_html(_side_by_side_rows(comparison), columns=["quantity", la, lb, "difference"],
+                                            left=("quantity", "difference")))]
     if a.get("mtf") and b.get("mtf"):
         sections.append(("MTF", _figure(_mtf_plot({la: a["mtf"], lb: b["mtf"]},
                                                   {la: a.get("nyquist_per_mm"), lb: b.get("nyquist_per_mm")}),
