@@ -86,3 +86,59 @@ def test_malformed_limits_files_name_the_file_and_problem(tmp_path, body, needle
         load_limits(p)
     msg = str(exc.value)
     assert "bad-limits.toml" in msg and needle in msg and "\n" not in msg
+
+
+def test_human_equivalent_ci_carries_the_factor_uncertainty():
+    # Independent model and factor uncertainties multiply: check the quadrature-on-log-scale interval against a
+    # Monte-Carlo product of the two log-normal distributions (the delta method's reference; Efron & Tibshirani
+    # 1993 for percentile intervals of a simulated distribution).
+    from scorer.observer import HumanFactor
+    from scorer.observer.limits import human_equivalent
+
+    t, lo, hi = 0.010, 0.008, 0.0125
+    f = HumanFactor(2.0, 1.6, 2.5)
+    th, lo_h, hi_h = human_equivalent(t, lo, hi, f)
+    rng = np.random.default_rng(1)
+    z = 1.959963984540054
+    sm, sf = np.log(hi / lo) / (2 * z), np.log(f.ci_high / f.ci_low) / (2 * z)
+    prod = np.exp(np.log(t) + sm * rng.standard_normal(400_000) + np.log(2.0) + sf * rng.standard_normal(400_000))
+    assert th == pytest.approx(0.02)
+    assert lo_h == pytest.approx(np.quantile(prod, 0.025), rel=0.01)
+    assert hi_h == pytest.approx(np.quantile(prod, 0.975), rel=0.01)
+    assert lo_h < lo * 2.0 and hi_h > hi * 2.0        # wider than the model CI times the point factor
+
+
+def test_verdict_uses_the_factor_ci_so_a_borderline_pass_becomes_indeterminate(tmp_path):
+    from scorer.observer import HumanFactor
+
+    p = tmp_path / "h.toml"
+    p.write_text('format = "limen-limits/1"\nobserver = "human"\nsource = "invented for the test"\n'
+                 "[[limits]]\ndiameter_mm = 1.0\nacceptable = 0.027\n")
+    curve = _curve([(1.0, 0.010, 0.009, 0.011)])
+    assert evaluate(curve, load_limits(p), 2.0)[0].verdict == "pass"                    # 0.018–0.022 < 2.7 %
+    v = evaluate(curve, load_limits(p), HumanFactor(2.0, 1.4, 2.9))[0]
+    assert v.verdict == "indeterminate" and v.ci_high > 0.027 and v.human_factor_ci == (1.4, 2.9)
+
+
+def test_interpolated_limits_are_marked():
+    lim = load_limits(EXAMPLE_LIMITS)
+    vs = {v.diameter_mm: v for v in evaluate(_curve([(0.35, 0.01, 0.009, 0.011), (0.5, 0.01, 0.009, 0.011)],
+                                                     "human"), lim)}
+    assert vs[0.35].limit_interpolated and "interpolated" in vs[0.35].note
+    assert not vs[0.5].limit_interpolated
+
+
+def test_censored_thresholds_get_one_sided_verdicts():
+    from scorer.observer.threshold import censor_point
+
+    lim_file = EXAMPLE_LIMITS
+    above = censor_point(ThresholdPoint(0.1, 0.9, 0.5, 1.5, "count", "human", 8, 4, 0.625), 0.01, 0.45)
+    assert above.censored == "above" and above.threshold_contrast == 0.45 and above.display() == "> 45 %"
+    below = censor_point(ThresholdPoint(1.0, 0.0005, 0.0003, 0.0008, "count", "human", 8, 4, 0.625), 0.0007, 0.05)
+    assert below.censored == "below" and below.display() == "< 0.07 %"
+    curve = ThresholdCurve([above, below], "count", "human", 0, 0)
+    vs = {v.diameter_mm: v for v in evaluate(curve, load_limits(lim_file))}
+    assert vs[0.1].verdict == "fail"            # known to exceed 45 % > the 23 % limit
+    assert vs[1.0].verdict == "pass"            # known to be below 0.07 % < 1.4 %
+    ext = censor_point(ThresholdPoint(0.1, 0.9, 0.5, 1.5, "dprime", "npw", 8, 4, 0.625), 0.01, 0.45)
+    assert ext.extrapolated and ext.threshold_contrast == 0.9 and "(extrapolated)" in ext.display()

@@ -85,6 +85,17 @@ def test_exit_codes_follow_the_verdicts(direct_set, tmp_path):
     res = _run(base + ["--limits", str(_limits(tmp_path, "human", 0.5))])
     assert res.exit_code == 2 and "human-factor" in res.output
     assert _run(base + ["--limits", str(_limits(tmp_path, "human", 0.5)), "--human-factor", "3"]).exit_code == 0
+    # a limit inside the CI: INDETERMINATE has its own exit status, 3 (documented in the README)
+    th = {t["diameter_mm"]: t for t in json.loads(_run(base + ["--json"]).stdout)["thresholds"]
+          if t["method"] == "dprime"}
+    mid = tmp_path / "mid.toml"
+    mid.write_text('format = "limen-limits/1"\nobserver = "npw"\nsource = "test values (invented)"\n'
+                   f"[[limits]]\ndiameter_mm = 1.0\nacceptable = {th[1.0]['threshold_contrast']}\n")
+    res = _run(base + ["--limits", str(mid), "--json"])
+    assert json.loads(res.stdout)["overall_verdict"] == "indeterminate" and res.exit_code == 3
+    # a human factor without limits has no effect, and says so
+    res = _run(base + ["--human-factor", "2"])
+    assert res.exit_code == 0 and "has no effect without --limits" in res.output
 
 
 def test_bad_inputs_give_one_line_and_exit_2(direct_set, tmp_path):
@@ -97,7 +108,7 @@ def test_bad_inputs_give_one_line_and_exit_2(direct_set, tmp_path):
     ]
     npy = tmp_path / "a.npy"
     np.save(npy, np.ones((50, 50)))
-    cases.append(([str(npy), "--layout", str(MINI)], "pixel spacing"))
+    cases.append(([str(npy), "--layout", str(MINI)], "--pixel-spacing"))   # the error names the option
     for args, needle in cases:
         res = _run(args)
         assert res.exit_code == 2, res.output
@@ -202,8 +213,9 @@ def test_human_factor_from_an_analysis_file(direct_set, tmp_path):
     lim = _limits(tmp_path, "human", 0.5)
     res = _run(files + ["--layout", str(MINI), "--n-boot", "100", "--observer", "npwe", "--limits", str(lim),
                         "--human-factor-from", str(analysis), "--json"])
-    assert res.exit_code == 0, res.output
-    assert json.loads(res.stdout)["human_factor"] == 1.9
+    js = json.loads(res.stdout)
+    assert res.exit_code == {"pass": 0, "indeterminate": 3}[js["overall_verdict"]], res.output
+    assert js["human_factor"] == 1.9
     # a factor measured for another observer must not be used
     res = _run(files + ["--layout", str(MINI), "--observer", "npw", "--limits", str(lim),
                         "--human-factor-from", str(analysis)])

@@ -148,3 +148,20 @@ def test_known_site_design_is_scored_as_forced_choice():
     assert d.m_alternatives == 3 and d.criterion_pc == pytest.approx(2 / 3)
     # NPW on the ideal panel: C_T ≈ d′_T(3-AFC)·σ, the two methods agree within the count method's CI
     assert c.ci_low <= d.threshold_contrast <= c.ci_high
+
+
+def test_count_thresholds_outside_the_contrasts_offered_are_censored():
+    # An observer right at every contrast (all correct) says only "threshold below the lowest contrast";
+    # one at chance everywhere says only "above the highest". Never report a fitted number beyond the data.
+    rows = []
+    for i in range(6):
+        for j, c in enumerate((0.01, 0.02, 0.04)):
+            rows.append((f"i{i}", f"a{j}", 0.5, c, True, 3, "npw"))
+            rows.append((f"i{i}", f"b{j}", 1.0, c, (i + j) % 3 == 0, 3, "npw"))
+    trials = pd.DataFrame(rows, columns=["image", "target", "diameter_mm", "contrast", "correct", "m_alternatives",
+                                         "reader"])
+    curve = count_thresholds(trials, n_boot=50)
+    lo, hi = curve.at(0.5), curve.at(1.0)
+    assert lo.censored == "below" and lo.threshold_contrast == 0.01 and lo.display().startswith("< ")
+    assert hi.censored == "above" and hi.threshold_contrast == 0.04 and hi.display().startswith("> ")
+    assert curve.smooth is None or all(not p.censored for p in curve.points)

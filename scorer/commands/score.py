@@ -7,13 +7,14 @@ import sys
 from pathlib import Path
 
 import click
+import numpy as np
 from tqdm import tqdm
 
 from scorer.images import load_conversion
 from scorer.errors import LimenError
 from scorer.invocation import current_command
 from scorer.phantom import load_layout
-from scorer.observer import load_limits
+from scorer.observer import HumanFactor, load_limits
 from scorer.observer import SystemBlur
 from scorer.phantom import draw_overlay
 from scorer.reports import CAUTION, dumps
@@ -21,7 +22,12 @@ from scorer.reports.score import METHOD_LABEL, write_score_outputs
 from scorer.observer import score_images
 
 
-def human_factor_from_analysis(path, observer: str) -> float:
+#: exit status of `limen score` (documented in the README)
+EXIT_FAIL = 1
+EXIT_INDETERMINATE = 3
+
+
+def human_factor_from_analysis(path, observer: str) -> HumanFactor:
     """The human/model threshold factor that `limen analyse --model` measured for ``observer``."""
     try:
         data = json.loads(Path(path).read_text(encoding="utf-8"))
@@ -34,7 +40,9 @@ def human_factor_from_analysis(path, observer: str) -> float:
     entries = (hm.get("by_observer") or [hm]) if isinstance(hm, dict) else []
     for e in entries:
         if str(e.get("observer", "")).lower() == observer and e.get("factor"):
-            return float(e["factor"])
+            lo, hi = e.get("ci_low"), e.get("ci_high")
+            return HumanFactor(float(e["factor"]), None if lo is None else float(lo), None if hi is None else float(hi),
+                               source=str(path))
     found = ", ".join(sorted({str(e.get("observer")) for e in entries})) or "none"
     raise LimenError(f"no human/model factor for the {observer.upper()} observer in this analysis "
                      f"(factors for: {found})", path)
@@ -94,12 +102,15 @@ def score(images, layout_file, observer, method, limits_file, human_factor, fact
     """Score contrast-detail phantom IMAGES with a model observer: threshold contrast per diameter.
 
     Exit status: 0 when every verdict passes or no limits were given, 1 when a verdict
-    fails, 2 on bad input.
+    fails, 2 on bad input, 3 when the overall verdict is indeterminate (a confidence
+    interval straddles a limit: more images are needed).
     """
     if factor_file:
         if human_factor is not None:
-            raise LimenError("give either --human-factor or --human-factor-from, not both")
+            raise LimenError("give either --human-factor or --human-factor-from, not both", "--human-factor")
         human_factor = human_factor_from_analysis(factor_file, observer)
+    if (human_factor is not None) and not limits_file:
+        click.echo("warning: --human-factor/--human-factor-from has no effect without --limits", err=True)
     layout = load_layout(layout_file)
     limits = load_limits(limits_file) if limits_file else None
     conversion = load_conversion(conversion_file) if conversion_file else None
@@ -142,8 +153,16 @@ def score(images, layout_file, observer, method, limits_file, human_factor, fact
             click.echo(f"\nreport: {out / 'report.html'}  (JSON, CSV and overlays beside it)")
     for w in result.warnings:
         click.echo(f"warning: {w}", err=True)
+    for c in result.curves.values():
+        for p in c.points:
+            if p.method == "count" and p.n_images < 3:
+                click.echo(f"warning: count method at {p.diameter_mm:g} mm rests on {p.n_images} image(s): "
+                           "its threshold and CI are unreliable; score more images", err=True)
+                break
     if result.verdicts is not None and result.overall_verdict == "fail":
-        sys.exit(1)
+        sys.exit(EXIT_FAIL)
+    if result.verdicts is not None and result.overall_verdict == "indeterminate":
+        sys.exit(EXIT_INDETERMINATE)
 
 
 def _print_table(result) -> None:
@@ -154,7 +173,7 @@ def _print_table(result) -> None:
         header += f"  {METHOD_LABEL[m] + ' C_T %':>18} {'95% CI %':>15}"
     if result.verdicts is not None:
         if result.human_factor:
-            header += f"  {'x' + format(result.human_factor, 'g') + ' %':>8}"
+            header += f"  {'×' + format(result.human_factor, '.3g') + ' %':>8} {'95% CI %':>13}"
         header += f"  {'limit %':>8}  verdict"
     click.echo(header)
     diams = sorted({p.diameter_mm for c in curves.values() for p in c.points})
@@ -163,15 +182,30 @@ def _print_table(result) -> None:
         line = f"{d:>11.3g}"
         for c in curves.values():
             p = c.at(d)
-            ci = f"{100 * p.ci_low:.3g}–{100 * p.ci_high:.3g}" if p.ci_low == p.ci_low else "—"
-            line += f"  {100 * p.threshold_contrast:>18.3g} {ci:>15}"
+            if p.censored:
+                ci = "—"
+            else:
+                ci = f"{100 * p.ci_low:.3g}–{100 * p.ci_high:.3g}" if np.isfinite(p.ci_low) else "—"
+            line += f"  {p.display(unit=''):>18} {ci:>15}"
         if result.verdicts is not None:
             v = vmap.get(d)
-            lim = "—" if v is None or v.acceptable is None else f"{100 * v.acceptable:.3g}"
+            lim = "—" if v is None or v.acceptable is None else f"{100 * v.acceptable:.3g}" + \
+                ("*" if v.limit_interpolated else "")
             if result.human_factor:
-                line += f"  {100 * v.threshold_contrast:>8.3g}" if v else f"  {'':>8}"
+                if v:
+                    vci = f"{100 * v.ci_low:.3g}–{100 * v.ci_high:.3g}" if np.isfinite(v.ci_low) and \
+                        np.isfinite(v.ci_high) else "—"
+                    line += f"  {100 * v.threshold_contrast:>8.3g} {vci:>13}"
+                else:
+                    line += f"  {'':>8} {'':>13}"
             line += f"  {lim:>8}  {v.verdict if v else ''}"
         click.echo(line)
     if result.verdicts is not None:
+        if any(v.limit_interpolated for v in result.verdicts):
+            click.echo("* limit interpolated (log–log) between the diameters of the limits file")
+        if result.human_factor_ci:
+            lo, hi = result.human_factor_ci
+            click.echo(f"human/model factor {result.human_factor:.3g} (95 % CI {lo:.3g}–{hi:.3g}); its uncertainty "
+                       "is included in the human-equivalent CIs")
         click.echo(f"overall: {result.overall_verdict.upper()}")
     click.echo(CAUTION)

@@ -177,10 +177,10 @@ def load_image(path, pixel_spacing_mm: float | tuple[float, float] | None = None
         spacing = file_spacing
     elif fmt == "dicom":
         raise LimenError("no pixel spacing: the DICOM file has neither Imager Pixel Spacing (0018,1164) "
-                         "nor Pixel Spacing (0028,0030); give the pixel spacing in mm", path)
+                         "nor Pixel Spacing (0028,0030); give it in mm with --pixel-spacing", path)
     else:
         raise LimenError(f"no pixel spacing: a {fmt.upper()} file does not carry a reliable pixel "
-                         f"spacing; give the pixel spacing in mm", path)
+                         f"spacing; give it in mm with --pixel-spacing", path)
     meta.spacing_source = spacing_source
 
     if min_shape is not None:

@@ -69,6 +69,11 @@ class Limits:
             return None
         return float(np.exp(np.interp(lx, x, y)))
 
+    def is_interpolated(self, diameter_mm: float) -> bool:
+        """True where a limit exists only by interpolation between the file's diameters."""
+        return (self.acceptable_at(diameter_mm) is not None
+                and not any(np.isclose(d, diameter_mm, rtol=1e-6) for d in self.diameters_mm))
+
     def acceptable_at(self, diameter_mm: float) -> float | None:
         return self._interp(self.acceptable, diameter_mm)
 
@@ -141,9 +146,49 @@ class Verdict:
     observer: str
     human_factor: float | None
     note: str = ""
+    limit_interpolated: bool = False # the limit at this diameter is interpolated between the file's diameters
+    censored: str = ""               # the threshold is only known to lie above/below a contrast offered
+    human_factor_ci: tuple[float, float] | None = None
 
     def to_dict(self) -> dict:
         return asdict(self)
+
+
+@dataclass(frozen=True)
+class HumanFactor:
+    """Human/model threshold factor with its 95 % CI (from a reader study), applied to model thresholds."""
+
+    value: float
+    ci_low: float | None = None
+    ci_high: float | None = None
+    source: str = ""
+
+    @property
+    def has_ci(self) -> bool:
+        return (self.ci_low is not None and self.ci_high is not None and 0 < self.ci_low <= self.value <= self.ci_high
+                and np.isfinite(self.ci_high))
+
+
+def human_equivalent(t: float, lo: float, hi: float, factor: HumanFactor) -> tuple[float, float, float]:
+    """Model threshold (and 95 % CI) → human-equivalent threshold (and 95 % CI).
+
+    The two uncertainties are independent (model thresholds from these images; the factor from a reader
+    study), so on the log scale, where the product is a sum, their standard errors add in quadrature:
+    se² = se_model² + se_factor², each se = log(high/low)/(2·1.96) (normal approximation on log scale).
+    One-sided (censored) model intervals multiply by the factor's matching bound instead (conservative).
+    """
+    f = factor.value
+    if not factor.has_ci:
+        return t * f, lo * f, hi * f
+    if not (np.isfinite(lo) and np.isfinite(hi) and lo > 0 and hi > 0 and t > 0):
+        lo_h = lo * factor.ci_low if np.isfinite(lo) else lo
+        hi_h = hi * factor.ci_high if np.isfinite(hi) else hi
+        return t * f, lo_h, hi_h
+    z = 1.959963984540054
+    se_m_lo, se_m_hi = np.log(t / lo) / z, np.log(hi / t) / z
+    se_f_lo, se_f_hi = np.log(f / factor.ci_low) / z, np.log(factor.ci_high / f) / z
+    th = t * f
+    return th, th * np.exp(-z * np.hypot(se_m_lo, se_f_lo)), th * np.exp(z * np.hypot(se_m_hi, se_f_hi))
 
 
 def evaluate(curve, limits: Limits, human_factor: float | None = None) -> list[Verdict]:
@@ -155,29 +200,40 @@ def evaluate(curve, limits: Limits, human_factor: float | None = None) -> list[V
             raise LimenError(
                 f"{limits.path or 'limits'}: these limits are for human readers and the thresholds come from the "
                 f"{obs.upper()} model observer; give a human/model factor (--human-factor) to compare them")
-        if not human_factor > 0:
-            raise LimenError(f"--human-factor must be positive, got {human_factor}")
-        factor = float(human_factor)
+        factor = human_factor if isinstance(human_factor, HumanFactor) else HumanFactor(float(human_factor))
+        if not factor.value > 0:
+            raise LimenError(f"--human-factor must be positive, got {factor.value}", "--human-factor")
     elif limits.observer != obs and not (limits.observer == "human" and obs == "human"):
         raise LimenError(f"{limits.path or 'limits'}: these limits are for the {limits.observer} observer, "
                          f"the thresholds come from {obs}")
     out = []
     for p in curve.points:
-        f = factor or 1.0
-        t, lo, hi = p.threshold_contrast * f, p.ci_low * f, p.ci_high * f
+        if factor is not None:
+            t, lo, hi = human_equivalent(p.threshold_contrast, p.ci_low, p.ci_high, factor)
+        else:
+            t, lo, hi = p.threshold_contrast, p.ci_low, p.ci_high
         acc, ach = limits.acceptable_at(p.diameter_mm), limits.achievable_at(p.diameter_mm)
+        censored = getattr(p, "censored", "") or ""
         note = ""
         if acc is None:
             v = "no limit"
         elif not np.isfinite(t):
             v = "no threshold"
-        elif np.isfinite(lo) and np.isfinite(hi):
+        elif not (np.isnan(lo) or np.isnan(hi)):   # a one-sided (censored) interval has an infinite end
             v = "pass" if hi < acc else "fail" if lo > acc else "indeterminate"
         else:
             v = "pass" if t < acc else "fail"
             note = "no confidence interval: verdict from the estimate alone"
-        met = None if ach is None or not np.isfinite(t) else bool(t <= ach)
-        out.append(Verdict(p.diameter_mm, t, lo, hi, acc, ach, v, met, p.method, p.observer, factor, note))
+        if censored:
+            note = (note + "; " if note else "") + f"threshold {'above' if censored == 'above' else 'below'} the " \
+                f"contrasts offered"
+        met = None if ach is None or not np.isfinite(t) or censored == "above" else bool(t <= ach)
+        interp = acc is not None and limits.is_interpolated(p.diameter_mm)
+        if interp:
+            note = (note + "; " if note else "") + "limit interpolated between the file's diameters"
+        out.append(Verdict(p.diameter_mm, t, lo, hi, acc, ach, v, met, p.method, p.observer,
+                           None if factor is None else factor.value, note, interp, censored,
+                           (factor.ci_low, factor.ci_high) if factor is not None and factor.has_ci else None))
     return out
 
 

@@ -21,7 +21,7 @@ from scorer.errors import LimenError
 from scorer.images.image import Image
 from scorer.images.io import LimenWarning, load_image
 from scorer.phantom.layout import Layout
-from scorer.observer.limits import Limits, Verdict, evaluate, overall
+from scorer.observer.limits import HumanFactor, Limits, Verdict, evaluate, overall
 from scorer.observer.npw import ObserverConfig, SystemBlur, decide, estimate_blur, score_image
 from scorer.phantom.registration import register
 from scorer.observer.threshold import ThresholdCurve, count_thresholds, dprime_thresholds
@@ -54,6 +54,7 @@ class ScoreResult:
     verdict_method: str
     settings: dict
     warnings: list[str] = field(default_factory=list)
+    human_factor_ci: tuple[float, float] | None = None
 
     @property
     def overall_verdict(self) -> str:
@@ -78,6 +79,7 @@ class ScoreResult:
             "limits": None if self.limits is None else {"name": self.limits.name, "observer": self.limits.observer,
                                                         "source": self.limits.source, "path": self.limits.path},
             "human_factor": self.human_factor,
+            "human_factor_ci": None if self.human_factor_ci is None else list(self.human_factor_ci),
             "settings": self.settings,
             "warnings": self.warnings,
         }
@@ -94,7 +96,7 @@ def score_images(paths: Sequence, layout: Layout, *, observer: str = "npw", meth
                  conversion: ConversionFunction | None = None, pixel_spacing_mm=None,
                  blur: SystemBlur | None = None, viewing_distance_mm: float | None = None,
                  n_boot: int = 1000, seed: int = 0, criterion_pc: float | None = None,
-                 limits: Limits | None = None, human_factor: float | None = None,
+                 limits: Limits | None = None, human_factor: float | HumanFactor | None = None,
                  verdict_method: str | None = None, max_residual_px: float = 1.0,
                  count_form: str = "mafc", dprime_ci: str = "analytic",
                  on_image: Callable | None = None, on_failure: Callable | None = None) -> ScoreResult:
@@ -179,5 +181,7 @@ def score_images(paths: Sequence, layout: Layout, *, observer: str = "npw", meth
                 "blur": "per-image estimate from markers" if blur is None else {"sigma_px": blur.sigma_px,
                                                                                   "source": blur.source},
                 "max_residual_px": max_residual_px}
-    return ScoreResult(observer, layout, scores, responses, trials, curves, verdicts, limits, human_factor,
-                       vm, settings, notes)
+    hf = human_factor if isinstance(human_factor, HumanFactor) or human_factor is None else HumanFactor(float(human_factor))
+    return ScoreResult(observer, layout, scores, responses, trials, curves, verdicts, limits,
+                       None if hf is None else hf.value, vm, settings, notes,
+                       (hf.ci_low, hf.ci_high) if hf is not None and hf.has_ci else None)

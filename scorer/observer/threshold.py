@@ -79,13 +79,58 @@ class ThresholdPoint:
     m_alternatives: int
     criterion_pc: float
     note: str = ""
+    offered_min: float | None = None     # lowest and highest disc contrast the plate offers at this diameter
+    offered_max: float | None = None
+    censored: str = ""                   # count method: "above" / "below" the contrasts offered
+    extrapolated: bool = False           # d′ method: the model-based value lies outside the contrasts offered
 
     def __post_init__(self):
         # a CI always contains its estimate, by construction
         self.ci_low, self.ci_high = enclose_estimate(self.threshold_contrast, self.ci_low, self.ci_high)
 
+    def display(self, scale: float = 100.0, unit: str = " %") -> str:
+        """The threshold as a reader should see it: '> 45 %', '< 0.07 %', '6.2 % (extrapolated)' or '6.2 %'."""
+        t = self.threshold_contrast
+        if t is None or not np.isfinite(t):
+            return "—"
+        if self.censored == "above":
+            return f"> {scale * t:.3g}{unit}"
+        if self.censored == "below":
+            return f"< {scale * t:.3g}{unit}"
+        return f"{scale * t:.3g}{unit}" + (" (extrapolated)" if self.extrapolated else "")
+
     def to_dict(self) -> dict:
         return asdict(self)
+
+
+def censor_point(p: ThresholdPoint, offered_min: float, offered_max: float) -> ThresholdPoint:
+    """Mark a threshold that lies outside the contrasts the phantom offers at its diameter.
+
+    Count method: the data only say the threshold is above the highest (or below the lowest) contrast
+    offered, so the point becomes that bound, flagged ``censored``, with the one-sided interval
+    [bound, ∞) or (0, bound].  d′ method: the value comes from the fitted linear observer and is kept,
+    flagged ``extrapolated``.
+    """
+    p.offered_min, p.offered_max = float(offered_min), float(offered_max)
+    t = p.threshold_contrast
+    if t is None or not np.isfinite(t):
+        return p
+    if p.method == "count":
+        if t > offered_max:
+            p.threshold_contrast, p.ci_low, p.ci_high, p.censored = float(offered_max), float(offered_max), np.inf, "above"
+            p.note = _join(p.note, f"above the highest contrast offered ({100 * offered_max:.3g} %)")
+        elif t < offered_min:
+            p.threshold_contrast, p.ci_low, p.ci_high, p.censored = float(offered_min), 0.0, float(offered_min), "below"
+            p.note = _join(p.note, f"below the lowest contrast offered ({100 * offered_min:.3g} %)")
+    elif t > offered_max or t < offered_min:
+        p.extrapolated = True
+        p.note = _join(p.note, f"extrapolated: outside the contrasts offered ({100 * offered_min:.3g}–"
+                               f"{100 * offered_max:.3g} %)")
+    return p
+
+
+def _join(a: str, b: str) -> str:
+    return f"{a}; {b}" if a else b
 
 
 @dataclass
@@ -264,8 +309,8 @@ def dprime_thresholds(responses: pd.DataFrame, *, criterion_pc: float | None = N
         if not np.isfinite(est) or k[0] <= 0:
             note = "no detectable signal at any contrast (d′ slope ≤ 0)"
             est = float("nan")
-        points.append(ThresholdPoint(float(diam), float(est), float(lo), float(hi), "dprime", observer,
-                                     n_img, m, p, note))
+        points.append(censor_point(ThresholdPoint(float(diam), float(est), float(lo), float(hi), "dprime", observer,
+                                                  n_img, m, p, note), float(C.min()), float(C.max())))
     return ThresholdCurve(points, "dprime", observer, n_boot, seed, smooth_curve(points), notes)
 
 
@@ -291,15 +336,18 @@ def count_thresholds(trials: pd.DataFrame, *, criterion_pc: float | None = None,
         lo, hi = expanded_percentile_ci(res.samples, n_img, ci)
         if n_img < 2:
             note = "one image: no bootstrap CI"
-        points.append(ThresholdPoint(float(diam), float(res.estimate), float(lo), float(hi), "count", observer,
-                                     n_img, m, p, note))
+        if n_img < 3:
+            note = _join(note, f"only {n_img} image(s): the count method's threshold is unreliable")
+        cs = g["contrast"].to_numpy(float)
+        points.append(censor_point(ThresholdPoint(float(diam), float(res.estimate), float(lo), float(hi), "count",
+                                                  observer, n_img, m, p, note), float(cs.min()), float(cs.max())))
     return ThresholdCurve(points, "count", observer, n_boot, seed, smooth_curve(points))
 
 
 # --------------------------------------------------------------------------- smooth curve
 def smooth_curve(points: list[ThresholdPoint]) -> CDCurve | None:
     """Fit log10 C_T = a + b·log10 d + c·(log10 d)² (weights from the CI widths when available)."""
-    pts = [p for p in points if np.isfinite(p.threshold_contrast) and p.threshold_contrast > 0]
+    pts = [p for p in points if np.isfinite(p.threshold_contrast) and p.threshold_contrast > 0 and not p.censored]
     if len(pts) < 3:
         return None
     x = np.log10([p.diameter_mm for p in pts])

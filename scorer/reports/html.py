@@ -171,3 +171,17 @@ def error_bars(estimate, ci_low, ci_high) -> tuple[np.ndarray, np.ndarray]:
     below = np.where(np.isfinite(lo), est - lo, 0.0)
     above = np.where(np.isfinite(hi), hi - est, 0.0)
     return np.clip(np.nan_to_num(below), 0.0, None), np.clip(np.nan_to_num(above), 0.0, None)
+
+
+def plain_log_ticks(ax, axes: str = "xy") -> None:
+    """Plain tick labels (0.1, 0.2, 0.5, 1, 2 …) on log axes instead of powers of ten, without overlaps."""
+    from matplotlib.ticker import FuncFormatter, LogLocator, NullFormatter
+
+    def fmt(v, _pos):
+        return f"{v:g}" if v > 0 else ""
+
+    for name in axes:
+        axis = ax.xaxis if name == "x" else ax.yaxis
+        axis.set_major_locator(LogLocator(base=10, subs=(1.0, 2.0, 5.0)))
+        axis.set_major_formatter(FuncFormatter(fmt))
+        axis.set_minor_formatter(NullFormatter())

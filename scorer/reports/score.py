@@ -12,7 +12,7 @@ import matplotlib.pyplot as plt  # noqa: E402
 import numpy as np  # noqa: E402
 
 from scorer.observer.psychometric import fit_psychometric  # noqa: E402
-from scorer.reports.html import error_bars, figure_to_svg, html_page, table_html, write_json  # noqa: E402
+from scorer.reports.html import error_bars, figure_to_svg, html_page, plain_log_ticks, table_html, write_json  # noqa: E402
 
 METHOD_LABEL = {"dprime": "d′ method", "count": "count method", "predicted": "predicted"}
 COLOURS = {"dprime": "#1f5fa8", "count": "#c2571a", "predicted": "#3a8a3a"}
@@ -35,22 +35,34 @@ def cd_plot(result, extra_curves=None, title=None):
         lo = np.array([p.ci_low for p in pts]) * 100
         hi = np.array([p.ci_high for p in pts]) * 100
         col = COLOURS.get(method, None)
-        ax.errorbar(d, t, yerr=error_bars(t, lo, hi), fmt="o", ms=5, capsize=3, color=col,
-                    label=f"{curve.observer.upper()} {METHOD_LABEL.get(method, method)} (95 % CI)")
+        plain = np.array([not getattr(p, "censored", "") for p in pts])
+        ax.errorbar(d[plain], t[plain], yerr=[e[plain] for e in error_bars(t, lo, hi)], fmt="o", ms=5, capsize=3,
+                    color=col, label=f"{curve.observer.upper()} {METHOD_LABEL.get(method, method)} (95 % CI)")
+        extra = np.array([bool(getattr(p, "extrapolated", False)) for p in pts])
+        if extra.any():
+            ax.plot(d[extra], t[extra], "o", ms=9, mfc="none", mec=col, label="extrapolated (outside the contrasts "
+                    "offered)")
+        for mark, side in (("^", "above"), ("v", "below")):
+            sel = np.array([getattr(p, "censored", "") == side for p in pts])
+            if sel.any():
+                ax.plot(d[sel], t[sel], mark, ms=8, color=col, label=f"{METHOD_LABEL.get(method, method)}: "
+                        f"threshold {side} the contrasts offered (censored)")
         if curve.smooth is not None:
             x = np.geomspace(*curve.smooth.diameter_range_mm, 100)
             ax.plot(x, curve.smooth(x) * 100, "-", color=col, alpha=0.6, lw=1.2)
     if result.limits is not None:
         lim = result.limits
         scale = 1.0 / factor if result.human_factor else 1.0
-        ax.plot(lim.diameters_mm, np.array(lim.acceptable) * 100 * scale, "k--", lw=1.3,
-                label="acceptable limit" + (f" ÷ human factor {factor:g}" if result.human_factor else ""))
+        ax.plot(lim.diameters_mm, np.array(lim.acceptable) * 100 * scale, "k--", lw=1.3, marker="x",
+                label="acceptable limit (× listed; dashed between: interpolated)"
+                + (f" ÷ human factor {factor:.3g}" if result.human_factor else ""))
         ach = [(d, a) for d, a in zip(lim.diameters_mm, lim.achievable) if a is not None]
         if ach:
             ax.plot([a[0] for a in ach], np.array([a[1] for a in ach]) * 100 * scale, "k:", lw=1.3,
                     label="achievable level" + (" (same scale)" if result.human_factor else ""))
     ax.set_xscale("log")
     ax.set_yscale("log")
+    plain_log_ticks(ax)
     ax.set_xlabel("disc diameter (mm)")
     ax.set_ylabel("threshold contrast (%)")
     ax.grid(True, which="both", alpha=0.3)
@@ -136,7 +148,9 @@ def render_html(result, overlays: list[Path], command: str = "") -> str:
         ov = result.overall_verdict
         intro += (f"<p>Overall verdict against <b>{result.limits.name}</b>: "
                   f"<span class='{ov}'>{ov.upper()}</span> (method: {METHOD_LABEL[result.verdict_method]}"
-                  + (f"; human/model factor {result.human_factor:g}" if result.human_factor else "") + ").</p>")
+                  + (f"; human/model factor {result.human_factor:.3g}" if result.human_factor else "")
+                  + (f" (95 % CI {result.human_factor_ci[0]:.3g}–{result.human_factor_ci[1]:.3g}, included in the "
+                     "human-equivalent CIs)" if result.human_factor_ci else "") + ").</p>")
         intro += f"<p class='meta'>Limits source: {result.limits.source}</p>"
     if result.warnings:
         intro += "<ul>" + "".join(f"<li>{w}</li>" for w in result.warnings) + "</ul>"
@@ -147,19 +161,33 @@ def render_html(result, overlays: list[Path], command: str = "") -> str:
     rows = []
     for method, c in result.curves.items():
         for p in c.points:
+            one_sided = bool(p.censored)
             rows.append({"diameter (mm)": p.diameter_mm, "method": METHOD_LABEL[method],
-                         "threshold (%)": 100 * p.threshold_contrast, "95 % CI low (%)": 100 * p.ci_low,
-                         "95 % CI high (%)": 100 * p.ci_high, "images": p.n_images, "note": p.note})
+                         "threshold (%)": p.display(unit=""),
+                         "95 % CI (%)": "—" if one_sided or not np.isfinite(p.ci_low)
+                         else f"{100 * p.ci_low:.3g}–{100 * p.ci_high:.3g}",
+                         "contrasts offered (%)": "—" if p.offered_min is None
+                         else f"{100 * p.offered_min:.3g}–{100 * p.offered_max:.3g}",
+                         "images": p.n_images, "note": p.note})
     sections.append(("Threshold contrast", table_html(rows, left=["method", "note"])))
     if result.verdicts is not None:
-        vrows = [{"diameter (mm)": v.diameter_mm, "compared threshold (%)": 100 * v.threshold_contrast,
-                  "CI (%)": f"{100 * v.ci_low:.3g}–{100 * v.ci_high:.3g}" if np.isfinite(v.ci_low) else "—",
-                  "acceptable (%)": None if v.acceptable is None else 100 * v.acceptable,
-                  "achievable (%)": None if v.achievable is None else 100 * v.achievable,
+        def lim(x, v):
+            return "—" if x is None else f"{100 * x:.3g}" + (" (interpolated)" if v.limit_interpolated else "")
+
+        def comp(v):
+            sign = {"above": "> ", "below": "< "}.get(v.censored, "")
+            return f"{sign}{100 * v.threshold_contrast:.3g}" if np.isfinite(v.threshold_contrast) else "—"
+
+        vrows = [{"diameter (mm)": v.diameter_mm, "compared threshold (%)": comp(v),
+                  "95 % CI (%)": (f"{100 * v.ci_low:.3g}–{100 * v.ci_high:.3g}"
+                                  if np.isfinite(v.ci_low) and np.isfinite(v.ci_high) else "—"),
+                  "acceptable (%)": lim(v.acceptable, v), "achievable (%)": lim(v.achievable, v),
                   "verdict": v.verdict,
-                  "achievable met": "—" if v.achievable_met is None else ("yes" if v.achievable_met else "no")}
+                  "achievable met": "—" if v.achievable_met is None else ("yes" if v.achievable_met else "no"),
+                  "note": v.note}
                  for v in result.verdicts]
-        sections.append(("Verdict per diameter", table_html(vrows, left=["verdict", "CI (%)", "achievable met"])))
+        sections.append(("Verdict per diameter", table_html(vrows, left=["verdict", "95 % CI (%)", "achievable met",
+                                                                          "note"])))
     sections.append(("Proportion correct per diameter",
                      f"<figure>{figure_to_svg(psychometric_plot(result))}<figcaption>Observed proportion of correct "
                      "4-AFC decisions per target over the images, with the maximum-likelihood M-AFC psychometric "
