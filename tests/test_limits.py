@@ -43,7 +43,8 @@ def test_verdicts_pass_fail_indeterminate_and_no_limit(tmp_path):
                     (2.0, 0.001, 0.0009, 0.0011)])  # outside the file's range
     v = evaluate(curve, lim)
     assert [x.verdict for x in v] == ["pass", "fail", "indeterminate", "no limit"]
-    assert overall(v) == "fail"
+    # the fail sits at an interpolated limit: informative only while listed diameters were measured
+    assert overall(v) == "indeterminate" and overall([v[1]]) == "fail"
     assert overall(v[:1]) == "pass" and overall([v[0], v[2]]) == "indeterminate"
 
 
@@ -142,3 +143,13 @@ def test_censored_thresholds_get_one_sided_verdicts():
     assert vs[1.0].verdict == "pass"            # known to be below 0.07 % < 1.4 %
     ext = censor_point(ThresholdPoint(0.1, 0.9, 0.5, 1.5, "dprime", "npw", 8, 4, 0.625), 0.01, 0.45)
     assert ext.extrapolated and ext.threshold_contrast == 0.9 and "(extrapolated)" in ext.display()
+
+
+def test_overall_verdict_rests_on_the_listed_diameters_when_any_was_measured():
+    lim = load_limits(EXAMPLE_LIMITS)
+    # fails only at 0.35 mm, whose limit is interpolated between 0.25 and 0.5 mm; passes at the listed 0.5 mm
+    vs = evaluate(_curve([(0.35, 0.05, 0.045, 0.055), (0.5, 0.01, 0.009, 0.011)], "human"), lim)
+    assert [v.verdict for v in vs] == ["fail", "pass"]
+    assert overall(vs) == "pass"
+    # with no listed diameter measured, the interpolated verdicts are all there is
+    assert overall(evaluate(_curve([(0.35, 0.05, 0.045, 0.055)], "human"), lim)) == "fail"

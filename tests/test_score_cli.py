@@ -58,6 +58,9 @@ def test_out_writes_report_tables_and_overlays(direct_set, tmp_path):
     assert len(list((r / "overlays").glob("*.png"))) == 3
     html = (r / "report.html").read_text()
     assert "never replace" in html and "<svg" in html
+    # the page says what was done (the d′ interval is analytic by default) and that the images are simulated
+    assert "analytic interval" in html and "bootstrap over images (100 resamples)" in html
+    assert "Simulated data:" in html
     import pandas as pd
 
     resp = pd.read_csv(r / "responses.csv")

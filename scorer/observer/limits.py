@@ -230,16 +230,26 @@ def evaluate(curve, limits: Limits, human_factor: float | None = None) -> list[V
         met = None if ach is None or not np.isfinite(t) or censored == "above" else bool(t <= ach)
         interp = acc is not None and limits.is_interpolated(p.diameter_mm)
         if interp:
-            note = (note + "; " if note else "") + "limit interpolated between the file's diameters"
+            note = (note + "; " if note else "") + ("limit interpolated between the file's diameters (informative; "
+                                                    "the overall verdict rests on the listed diameters)")
         out.append(Verdict(p.diameter_mm, t, lo, hi, acc, ach, v, met, p.method, p.observer,
                            None if factor is None else factor.value, note, interp, censored,
                            (factor.ci_low, factor.ci_high) if factor is not None and factor.has_ci else None))
     return out
 
 
+def counted(verdicts: list[Verdict]) -> list[Verdict]:
+    """The verdicts that make the overall one: at the diameters the limits file lists, when any of them
+    was measured; interpolated limits then inform but do not decide (a standard states its limits at its
+    own diameters).  Without any listed diameter the interpolated verdicts are all there is."""
+    listed = [v for v in verdicts if not v.limit_interpolated and v.verdict != "no limit"]
+    return listed if listed else list(verdicts)
+
+
 def overall(verdicts: list[Verdict]) -> str:
-    """'fail' if any diameter fails, else 'indeterminate' if any is, else 'pass' ('no limit' if none apply)."""
-    vs = {v.verdict for v in verdicts}
+    """'fail' if any counted diameter fails, else 'indeterminate' if any is, else 'pass' ('no limit' if none
+    apply); see :func:`counted`."""
+    vs = {v.verdict for v in counted(verdicts)}
     if "fail" in vs:
         return "fail"
     if "indeterminate" in vs or "no threshold" in vs:

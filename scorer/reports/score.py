@@ -14,6 +14,9 @@ import numpy as np  # noqa: E402
 from scorer.observer.psychometric import fit_psychometric  # noqa: E402
 from scorer.reports.html import error_bars, figure_to_svg, html_page, plain_log_ticks, table_html, write_json  # noqa: E402
 
+#: DICOM Manufacturer written by `limen simulate`
+SIMULATED_MANUFACTURER = "Limen simulation"
+
 METHOD_LABEL = {"dprime": "d′ method", "count": "count method", "predicted": "predicted"}
 COLOURS = {"dprime": "#1f5fa8", "count": "#c2571a", "predicted": "#3a8a3a"}
 
@@ -67,7 +70,8 @@ def cd_plot(result, extra_curves=None, title=None):
     ax.set_ylabel("threshold contrast (%)")
     ax.grid(True, which="both", alpha=0.3)
     ax.set_title(title or f"Contrast-detail curve — {result.observer.upper()} model observer")
-    ax.legend(fontsize=8)
+    ax.legend(fontsize=8, loc="upper center", bbox_to_anchor=(0.5, -0.13), ncol=2, frameon=False)
+    fig.subplots_adjust(bottom=0.3)
     return fig
 
 
@@ -137,6 +141,19 @@ def write_score_outputs(result, out_dir, overlays: list[Path] | None = None, com
     return {"json": out / "results.json", "report": out / "report.html"}
 
 
+def _ci_caption(result) -> str:
+    """What the intervals on the page are, as computed (never a claim the code did not make)."""
+    parts = []
+    st = result.settings
+    if "dprime" in result.curves:
+        parts.append("d′ method: analytic interval from the sampling variance of the linear observer's d′, widened "
+                     "for over-dispersion" if st.get("dprime_ci", "analytic") == "analytic"
+                     else f"d′ method: expanded percentile bootstrap over images ({st.get('n_boot')} resamples)")
+    if "count" in result.curves:
+        parts.append(f"count method: expanded percentile bootstrap over images ({st.get('n_boot')} resamples)")
+    return "; ".join(parts)
+
+
 def render_html(result, overlays: list[Path], command: str = "") -> str:
     meta0 = result.images[0].metadata if result.images else {}
     intro = (f"<p>{len(result.images)} image(s) of <b>{result.layout.name}</b> scored by the "
@@ -144,6 +161,10 @@ def render_html(result, overlays: list[Path], command: str = "") -> str:
              f"{meta0.get('detector_id') or meta0.get('device_serial') or 'unknown'}, station "
              f"{meta0.get('station_name') or 'unknown'}, detector type {meta0.get('detector_type') or 'unknown'}, "
              f"{meta0.get('kvp') or '—'} kV.</p>")
+    n_sim = sum(1 for sc in result.images if (sc.metadata or {}).get("manufacturer") == SIMULATED_MANUFACTURER)
+    if n_sim:
+        intro = (f"<p class='fail'><b>Simulated data:</b> {n_sim} of {len(result.images)} image(s) were made by "
+                 "Limen's physics simulator, not by a real detector (invented demo scenario).</p>") + intro
     if result.verdicts is not None:
         ov = result.overall_verdict
         intro += (f"<p>Overall verdict against <b>{result.limits.name}</b>: "
@@ -156,8 +177,10 @@ def render_html(result, overlays: list[Path], command: str = "") -> str:
         intro += "<ul>" + "".join(f"<li>{w}</li>" for w in result.warnings) + "</ul>"
     sections = [("Summary", intro),
                 ("Contrast-detail curve", f"<figure>{figure_to_svg(cd_plot(result))}<figcaption>Threshold "
-                 "contrast per disc diameter (log-log) with 95 % bootstrap confidence intervals resampling images; "
-                 "lines: smooth curve log C = a + b·log d + c·(log d)².</figcaption></figure>")]
+                 f"contrast per disc diameter (log-log) with 95 % confidence intervals ({_ci_caption(result)}); "
+                 "lines: smooth curve log C = a + b·log d + c·(log d)². Triangles: censored thresholds (only "
+                 "known to lie above ▲ or below ▼ the contrasts the plate offers); open circles: d′-method values "
+                 "extrapolated beyond them.</figcaption></figure>")]
     rows = []
     for method, c in result.curves.items():
         for p in c.points:
@@ -190,7 +213,8 @@ def render_html(result, overlays: list[Path], command: str = "") -> str:
                                                                           "note"])))
     sections.append(("Proportion correct per diameter",
                      f"<figure>{figure_to_svg(psychometric_plot(result))}<figcaption>Observed proportion of correct "
-                     "4-AFC decisions per target over the images, with the maximum-likelihood M-AFC psychometric "
+                     "M-AFC decisions per target over the images (M as in the layout: 3 or 5 on the demo plate), with the "
+                     "maximum-likelihood M-AFC psychometric "
                      "function (dotted: chance).</figcaption></figure>"))
     reg_rows = [{"image": s.image_id, "residual (px)": s.placement.residual_px,
                  "max residual (px)": s.placement.max_residual_px, "rotation (°)": s.placement.rotation_deg,
