@@ -16,20 +16,58 @@ from scorer import __version__
 from scorer.errors import LimenError
 from scorer.invocation import set_invocation
 
-# module name under scorer.commands -> the click command object inside it
-_COMMANDS = {
-    "simulate": "simulate",
-    "score": "score",
-    "detector": "detector",
-    "compare_detectors": "compare_detectors",
-    "analyse": "analyse",
+# command name -> (module under scorer.commands, attribute, one-line help shown by `limen --help`).
+# Modules are imported only when their command runs (or its own --help is asked for), so `limen --help`
+# and `limen --version` load neither numpy nor matplotlib. tests/test_cli.py checks the help lines match.
+COMMANDS: dict[str, tuple[str, str, str]] = {
+    "simulate": ("simulate", "simulate", "Simulate raw direct/indirect panel images (phantom, flat, edge) for demos and tests."),
+    "score": ("score", "score", "Score contrast-detail phantom images: threshold contrast per diameter, verdicts."),
+    "detector": ("detector", "detector", "Measure a detector: conversion function, MTF, NNPS, DQE, predicted thresholds."),
+    "compare-detectors": ("compare_detectors", "compare_detectors", "Put two measured detectors side by side."),
+    "analyse": ("analyse", "analyse", "Analyse a reader study: per-reader and pooled curves, human/model factor."),
 }
 
 
 class _LimenGroup(click.Group):
-    def main(self, args=None, prog_name=None, **kwargs):
+    """The ``limen`` group: lazy sub-commands, one-line errors for expected bad input, the call recorded."""
+
+    def main(self, args=None, prog_name=None, standalone_mode=True, **kwargs):
         set_invocation(sys.argv[1:] if args is None else list(args))
-        return super().main(args=args, prog_name=prog_name, **kwargs)
+        if not standalone_mode:
+            return super().main(args=args, prog_name=prog_name, standalone_mode=False, **kwargs)
+        try:
+            rv = super().main(args=args, prog_name=prog_name, standalone_mode=False, **kwargs)
+        except click.UsageError as exc:
+            # one line, naming the command and the option, instead of click's three-line usage block
+            where = exc.ctx.command_path if exc.ctx is not None else "limen"
+            click.echo(f"error: {where}: {' '.join(exc.format_message().split())} (see {where} --help)", err=True)
+            sys.exit(2)
+        except click.ClickException as exc:
+            click.echo(f"error: {' '.join(exc.format_message().split())}", err=True)
+            sys.exit(exc.exit_code)
+        except click.exceptions.Abort:
+            click.echo("aborted", err=True)
+            sys.exit(1)
+        sys.exit(rv if isinstance(rv, int) else 0)
+
+    def list_commands(self, ctx):
+        return sorted(set(COMMANDS) | set(self.commands))
+
+    def get_command(self, ctx, name):
+        if name in self.commands:
+            return self.commands[name]
+        if name not in COMMANDS:
+            return None
+        module_name, attr, _ = COMMANDS[name]
+        cmd = getattr(importlib.import_module(f"scorer.commands.{module_name}"), attr)
+        self.add_command(cmd, name)
+        return cmd
+
+    def format_commands(self, ctx, formatter):
+        rows = [(name, COMMANDS[name][2]) for name in sorted(COMMANDS)]
+        if rows:
+            with formatter.section("Commands"):
+                formatter.write_dl(rows)
 
     def invoke(self, ctx):
         try:
@@ -47,19 +85,6 @@ def main():
     Results support, and never replace, a qualified medical physicist's judgement.
     """
 
-
-def _register() -> None:
-    for module_name, attr in _COMMANDS.items():
-        try:
-            module = importlib.import_module(f"scorer.commands.{module_name}")
-        except ModuleNotFoundError as exc:
-            if exc.name == f"scorer.commands.{module_name}":
-                continue  # command not built yet
-            raise
-        main.add_command(getattr(module, attr))
-
-
-_register()
 
 if __name__ == "__main__":  # pragma: no cover
     main()

@@ -151,6 +151,8 @@ def test_cli_writes_dicom_and_truth_sidecar(tmp_path):
     (["--dose-ugy", "0"], "--dose-ugy must be positive"),
     (["--layout", "nowhere.toml"], "nowhere.toml: cannot read layout file"),
     (["--magnification", "5"], "--magnification must lie in"),
+    (["--rotate", "nan"], "--rotate must be a finite number"),        # found by the robustness audit
+    (["--seed", "-1"], "--seed"),
 ])
 def test_cli_bad_input_one_line_exit_2(tmp_path, args, msg):
     res = CliRunner().invoke(main, ["simulate", "--small", "--out", str(tmp_path)] + args)

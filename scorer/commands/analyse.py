@@ -20,7 +20,8 @@ from scorer.reports import dumps
               help="Bootstrap resamples.")
 @click.option("--criterion", "criterion_pc", type=float, default=None,
               help="Threshold proportion correct (default: halfway between chance and 1).")
-@click.option("--seed", type=int, default=0, show_default=True)
+@click.option("--seed", type=click.IntRange(min=0), default=0, show_default=True,
+              help="Seed of the bootstrap (non-negative integer); the same seed gives the same intervals.")
 @click.option("--json", "as_json", is_flag=True, help="Print one JSON object on stdout.")
 @click.option("--out", "out_dir", type=click.Path(file_okay=False), default=None,
               help="Write analysis.json, CSV tables and report.html here.")

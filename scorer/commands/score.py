@@ -67,8 +67,10 @@ def _blur_from_detector_json(path) -> SystemBlur:
 @click.argument("images", nargs=-1, required=True, type=click.Path(dir_okay=False))
 @click.option("--layout", "layout_file", type=click.Path(dir_okay=False), default=None,
               help="Phantom layout TOML (default: the bundled demo plate).")
-@click.option("--observer", type=click.Choice(["npw", "npwe"]), default="npw", show_default=True)
-@click.option("--method", type=click.Choice(["dprime", "count", "both"]), default="both", show_default=True)
+@click.option("--observer", type=click.Choice(["npw", "npwe"]), default="npw", show_default=True,
+              help="Model observer: non-prewhitening (npw) or with the eye filter (npwe).")
+@click.option("--method", type=click.Choice(["dprime", "count", "both"]), default="both", show_default=True,
+              help="Threshold method: d′ regression on the responses, counts of correct M-AFC decisions, or both.")
 @click.option("--limits", "limits_file", type=click.Path(dir_okay=False), default=None,
               help="Limits TOML (threshold contrast per diameter, the observer it is for, its source).")
 @click.option("--human-factor", type=float, default=None,
@@ -84,7 +86,8 @@ def _blur_from_detector_json(path) -> SystemBlur:
               help="NPWE: eye-to-image distance in image-plane millimetres (default 500).")
 @click.option("--pixel-spacing", "pixel_spacing", type=float, default=None,
               help="Pixel spacing (mm) for images without DICOM spacing (TIFF, PNG, npy).")
-@click.option("--n-boot", type=click.IntRange(0, 100000), default=1000, show_default=True)
+@click.option("--n-boot", type=click.IntRange(0, 100000), default=1000, show_default=True,
+              help="Bootstrap resamples of the images for the count method (and a bootstrap d′ interval).")
 @click.option("--psychometric", "psychometric_form", type=click.Choice(["mafc", "logistic"]), default="mafc",
               show_default=True, help="Count method's psychometric function: the linear-observer M-AFC form, or a "
                                       "logistic in log contrast (documented alternative; reads ~10 % low).")
@@ -92,7 +95,8 @@ def _blur_from_detector_json(path) -> SystemBlur:
               help="d′ method's confidence interval: analytic (sampling variance of d′) or image bootstrap.")
 @click.option("--criterion", type=float, default=None,
               help="Proportion correct at threshold (default halfway between chance and 1).")
-@click.option("--seed", type=int, default=0, show_default=True)
+@click.option("--seed", type=click.IntRange(min=0), default=0, show_default=True,
+              help="Seed of the bootstrap (non-negative integer); the same seed gives the same intervals.")
 @click.option("--json", "as_json", is_flag=True, help="Print one JSON object on stdout.")
 @click.option("--out", "out_dir", type=click.Path(file_okay=False), default=None,
               help="Write results.json, CSV tables, registration overlays (a diagnostic one when the phantom "

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import datetime as _dt
+import math
 import sys
 from pathlib import Path
 
@@ -30,18 +31,23 @@ def image_stem(panel: str, kind: str, dose_ugy: float, index: int, edge_angle_de
               show_default=True, help="Preset panel model.")
 @click.option("--model", "model_file", type=click.Path(dir_okay=False), default=None,
               help="Detector-model TOML (base = direct|indirect plus overrides); replaces --detector.")
-@click.option("--kind", type=click.Choice(["phantom", "flat", "edge"]), default="phantom", show_default=True)
+@click.option("--kind", type=click.Choice(["phantom", "flat", "edge"]), default="phantom", show_default=True,
+              help="What is imaged: the phantom plate, an open (flat) field, or a slanted edge.")
 @click.option("--dose-ugy", type=float, default=100.0, show_default=True, help="Air kerma at the detector (µGy).")
-@click.option("--count", type=click.IntRange(1, 1000), default=1, show_default=True)
-@click.option("--seed", type=int, default=0, show_default=True)
-@click.option("--out", "out_dir", type=click.Path(file_okay=False), required=True)
+@click.option("--count", type=click.IntRange(1, 1000), default=1, show_default=True,
+              help="Number of images (independent noise, same pose).")
+@click.option("--seed", type=click.IntRange(min=0), default=0, show_default=True,
+              help="Seed of the noise (non-negative integer); the same seed gives the same images.")
+@click.option("--out", "out_dir", type=click.Path(file_okay=False), required=True,
+              help="Folder for the images, their JSON truth sidecars and the panel's conversion function.")
 @click.option("--small", is_flag=True, help="Crop the field to what the phantom needs (512² for flat/edge).")
 @click.option("--rotate", "rotate_deg", type=float, default=0.0, show_default=True,
               help="Phantom rotation (degrees, counter-clockwise on the displayed image).")
 @click.option("--flip", is_flag=True, help="Phantom lies mirrored (upside down).")
 @click.option("--shift-mm", nargs=2, type=float, default=(0.0, 0.0), show_default=True,
               help="Phantom centre offset from the field centre, DX DY in mm.")
-@click.option("--magnification", type=float, default=1.0, show_default=True)
+@click.option("--magnification", type=float, default=1.0, show_default=True,
+              help="Geometric magnification of the phantom at the detector.")
 @click.option("--layout", "layout_file", type=click.Path(dir_okay=False), default=None,
               help="Phantom layout TOML (default: the bundled demo plate).")
 @click.option("--edge-angle-deg", type=float, default=2.5, show_default=True,
@@ -54,6 +60,11 @@ def simulate(detector, model_file, kind, dose_ugy, count, seed, out_dir, small, 
     """Simulate raw (FOR PROCESSING) detector images with a JSON ground-truth sidecar each."""
     model = load_detector_model(model_file) if model_file else detector_model(detector)
     layout = load_layout(layout_file) if kind == "phantom" else None
+    for opt, val in (("--dose-ugy", dose_ugy), ("--rotate", rotate_deg), ("--shift-mm", shift_mm[0]),
+                     ("--shift-mm", shift_mm[1]), ("--magnification", magnification),
+                     ("--edge-angle-deg", edge_angle_deg)):
+        if not math.isfinite(val):
+            raise LimenError(f"{opt} must be a finite number, got {val}", opt)
     if not dose_ugy > 0:
         raise LimenError(f"--dose-ugy must be positive, got {dose_ugy}")
     pose = Pose(rotation_deg=rotate_deg, flipped=flip, magnification=magnification, shift_mm=tuple(shift_mm))
