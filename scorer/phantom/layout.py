@@ -146,8 +146,21 @@ class Layout:
 
 
 def default_layout_path() -> Path:
-    """The bundled demo phantom's layout file."""
-    return PHANTOM_DIR / DEFAULT_LAYOUT_NAME
+    """The bundled demo phantom's layout file.
+
+    In a source checkout it is ``phantoms/`` at the top of the repository; an installed Limen carries the
+    same folder as the data package ``scorer.phantom.bundled``.
+    """
+    local = PHANTOM_DIR / DEFAULT_LAYOUT_NAME
+    if local.is_file():
+        return local
+    from importlib import resources
+
+    try:
+        return Path(str(resources.files("scorer.phantom.bundled").joinpath(DEFAULT_LAYOUT_NAME)))
+    except ModuleNotFoundError:  # pragma: no cover - an install without the bundled layouts
+        raise LimenError("the bundled phantom layout is missing from this installation; give --layout FILE",
+                         DEFAULT_LAYOUT_NAME) from None
 
 
 def load_layout(path=None) -> Layout:
