@@ -69,7 +69,8 @@ def run(out: Path) -> Path:
         for observer, folder in (("npw", "score"), ("npwe", "score-npwe")):
             _limen(["score", *images, "--observer", observer, "--conversion", conv,
                     "--mtf", str(d / "detector" / "detector.json"), "--out", str(d / folder)])
-        links += [(f"{panel} panel: contrast-detail report", f"{panel}/score/report.html"),
+        links += [(f"{panel} panel: contrast-detail report, NPW observer", f"{panel}/score/report.html"),
+                  (f"{panel} panel: contrast-detail report, NPWE observer", f"{panel}/score-npwe/report.html"),
                   (f"{panel} panel: MTF, NNPS, DQE", f"{panel}/detector/detector.html")]
     _limen(["compare-detectors", str(out / "direct" / "detector" / "detector.json"),
             str(out / "indirect" / "detector" / "detector.json"), "--label-a", "direct (a-Se)",
@@ -78,14 +79,51 @@ def run(out: Path) -> Path:
     links.append(("direct vs indirect, side by side", "comparison/comparison.html"))
     links += _reader_study(out)
     body = "<ul>" + "".join(f"<li><a href='{html.escape(h)}'>{html.escape(t)}</a></li>" for t, h in links) + "</ul>"
-    body += ("<p>Scenario (invented): Harbourside Women's Health Centre commissions a direct-conversion panel "
-             "(HSX-SE-0417, room MAM2) and an indirect-conversion panel (HSX-CS-2291, room MAM3); every image "
-             "is simulated by Limen's physics model at 100 µGy.</p>")
+    scenario = ("<p class='fail'><b>Simulated data, invented scenario.</b> Harbourside Women's Health Centre "
+                "(invented) commissions a direct-conversion panel (HSX-SE-0417, room MAM2) and an indirect-conversion "
+                "panel (HSX-CS-2291, room MAM3); every image is simulated by Limen's physics model at 100 µGy and the "
+                "six readers are a documented observer model, not people.</p>")
     index = out / "index.html"
-    index.write_text(html_page("Limen demo — two mammography panels compared", [("Reports", body)]), encoding="utf-8")
+    index.write_text(html_page("Limen demo — two mammography panels compared",
+                               [("Scenario", scenario), ("Verdicts", _verdict_summary(out)), ("Reports", body)]),
+                     encoding="utf-8")
     print(f"\nDemo finished in {time.perf_counter() - t0:.0f} s. Open {index.resolve()}")
     print(CAUTION)
     return index
+
+
+def _verdict_summary(out: Path) -> str:
+    """Per panel: the overall verdict and the human-equivalent threshold against the limit at each diameter."""
+    import json
+
+    from scorer.reports import table_html
+
+    rows, overall = [], []
+    for panel in ("direct", "indirect"):
+        path = out / panel / "verdict" / "results.json"
+        if not path.is_file():
+            continue
+        r = json.loads(path.read_text(encoding="utf-8"))
+        overall.append(f"<li>{panel} panel: <span class='{html.escape(r['overall_verdict'])}'>"
+                       f"{html.escape(r['overall_verdict'].upper())}</span> against {html.escape(r['limits']['name'])}"
+                       f" (human/model factor {r['human_factor']:.3g})</li>")
+        for v in r["verdicts"]:
+            if v["verdict"] == "no limit":
+                continue
+            ci = (f"{100 * v['ci_low']:.3g}–{100 * v['ci_high']:.3g}" if v.get("ci_low") is not None
+                  and v.get("ci_high") is not None else "—")
+            rows.append({"panel": panel, "diameter (mm)": v["diameter_mm"],
+                         "human-equivalent threshold (%)": f"{100 * v['threshold_contrast']:.3g}",
+                         "95 % CI (%)": ci,
+                         "acceptable limit (%)": f"{100 * v['acceptable']:.3g}"
+                         + (" (interpolated)" if v.get("limit_interpolated") else ""),
+                         "verdict": v["verdict"]})
+    if not rows:
+        return "<p>No verdicts were computed.</p>"
+    return ("<ul>" + "".join(overall) + "</ul>"
+            + table_html(rows, left=["panel", "verdict", "95 % CI (%)", "acceptable limit (%)"])
+            + "<p class='meta'>Verdicts at interpolated limits inform; the overall verdict rests on the diameters the "
+              "limits file lists.</p>")
 
 
 def _reader_study(out: Path) -> list[tuple[str, str]]:

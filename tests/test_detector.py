@@ -215,3 +215,20 @@ def test_beam_quality_table():
     assert q_for_beam("rqa5") == 29653.0
     with pytest.raises(LimenError, match="unknown beam"):
         q_for_beam("W/Rh 28")
+
+
+def test_dqe_above_one_beyond_its_ci_is_flagged():
+    # DQE ≤ 1 for any real detector (IEC 62220-1; an ideal counter reaches 1): a wrong kerma (here 1e-3 of the
+    # true one, as in "--kerma-ugy 1e-30" found by the audit) pushes it far above 1 and must be flagged
+    rng = np.random.default_rng(5)
+    p, q, k = 0.1, 25000.0, 40.0
+    lam = q * k * p * p
+    flats = [rng.poisson(lam, (512, 512)).astype(float) for _ in range(4)]
+    edge = rng.poisson(lam * (0.05 + 0.95 * aperture_edge(n=384, angle_deg=2.0))).astype(float)
+    from scorer.detector import compute_dqe
+
+    mtf, nnps = measure_mtf(edge, (p, p)), measure_nnps(flats, (p, p))
+    good = compute_dqe(mtf, nnps, k, q)
+    assert good.warnings == [] and np.all(good.ci_low <= good.value) and np.all(good.value <= good.ci_high)
+    bad = compute_dqe(mtf, nnps, k * 1e-3, q)
+    assert bad.warnings and "exceeds 1 beyond its uncertainty" in bad.warnings[0]

@@ -217,3 +217,32 @@ def test_compare_detectors_keeps_the_two_scoring_methods_apart_and_claims_only_b
     qc = {r["quantity"]: r for r in c["table"]}
     assert qc["scored NPW (count method) threshold contrast at 0.5 mm"]["better"] == "no clear difference"
     assert not any("d′ method" in k for k in qc)
+
+
+def test_inputs_that_are_not_what_they_claim_are_refused(panels, tmp_path):
+    # found in use: a flat given as --edge exited 0 with MTF values up to 52; an edge or a phantom given as
+    # --flat was measured as noise (IEC 62220-1: flat fields are free of objects, edges are sharp steps)
+    p = panels["direct"]
+    phantom = write_simulated(simulate(p["model"], "phantom", 100.0, seed=3, small=True), tmp_path, "ph", T0)
+    cases = [(["--edge", p["flats"][0]], "no edge"),
+             (["--flat", p["ev"]], "not a flat field"),
+             (["--flat", phantom], "not a flat field")]
+    for args, words in cases:
+        res = run("detector", *args, "--conversion", p["conv"])
+        assert res.exit_code == 2, (args, res.output)
+        lines = [ln for ln in res.stderr.splitlines() if ln.startswith("error:")]
+        assert len(lines) == 1 and words in lines[0], res.stderr
+
+
+def test_implausible_mtf_is_flagged():
+    # an MTF above 1 at low frequency is impossible (the MTF is normalised to 1 at f = 0; IEC 62220-1):
+    # an edge whose two sides are overshooting (ringing, as after edge enhancement) must be flagged
+    from scorer.detector import measure_mtf
+
+    n = 256
+    yy, xx = np.mgrid[0:n, 0:n].astype(float)
+    d = (xx - n / 2) - np.tan(np.radians(2.5)) * (yy - n / 2)
+    img = 1000 + 900 * (d > 0) + 500 * np.exp(-np.abs(d) / 3.0) * np.sign(d)   # processed: overshoot both sides
+    img += np.random.default_rng(0).normal(0, 3, img.shape)
+    res = measure_mtf(img, (0.1, 0.1))
+    assert any("implausible MTF" in w for w in res.warnings)

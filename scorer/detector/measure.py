@@ -184,14 +184,20 @@ class DQEResult:
     by_direction: dict[str, np.ndarray]
     kerma_ugy: float
     q_per_mm2_ugy: float
+    ci_low: np.ndarray | None = None      # 95 % CI from the NNPS's standard error (the MTF's is not included)
+    ci_high: np.ndarray | None = None
+    warnings: list[str] = field(default_factory=list)
 
     def at(self, frequency_per_mm):
         return np.interp(frequency_per_mm, self.frequency_per_mm, self.value, left=np.nan, right=np.nan)
 
     def to_dict(self) -> dict:
         return {"frequency_per_mm": self.frequency_per_mm.tolist(), "value": self.value.tolist(),
+                "ci_low": None if self.ci_low is None else self.ci_low.tolist(),
+                "ci_high": None if self.ci_high is None else self.ci_high.tolist(),
+                "ci_note": "95 % CI from the NNPS standard error only (MTF uncertainty not included)",
                 "by_direction": {k: v.tolist() for k, v in self.by_direction.items()},
-                "kerma_ugy": self.kerma_ugy, "q_per_mm2_ugy": self.q_per_mm2_ugy}
+                "kerma_ugy": self.kerma_ugy, "q_per_mm2_ugy": self.q_per_mm2_ugy, "warnings": list(self.warnings)}
 
 
 def compute_dqe(mtf: MTFResult, nnps: NNPSResult, kerma_ugy: float | None, q_per_mm2_ugy: float | None,
@@ -215,7 +221,24 @@ def compute_dqe(mtf: MTFResult, nnps: NNPSResult, kerma_ugy: float | None, q_per
     for d, m in (mtf_by_direction or {}).items():
         cut = nnps.x_mm2 if d == "x" else nnps.y_mm2
         by_dir[d] = m.at(f) ** 2 / (kq * cut)
-    return DQEResult(f, value, by_dir, float(kerma_ugy), float(q_per_mm2_ugy))
+    rel = float(nnps.relative_uncertainty)
+    z = 1.959963984540054
+    # DQE ∝ 1/NNPS: a relative standard error r of the NNPS gives the interval value/(1 ± z·r)
+    lo = value / (1.0 + z * rel)
+    hi = value / max(1.0 - z * rel, 0.05)
+    warnings = []
+    # flag DQE > 1 only beyond a simultaneous bound over all frequencies (Bonferroni), so that an ideal
+    # detector, whose DQE is 1 at low frequency, is not flagged by chance at one of many frequencies
+    from scipy.stats import norm
+
+    z_all = float(norm.ppf(1 - 0.025 / max(int(np.isfinite(value).sum()), 1)))
+    lo_all = value / (1.0 + z_all * rel)
+    above = np.isfinite(lo_all) & (lo_all > 1.0)
+    if above.any():
+        warnings.append(f"DQE exceeds 1 beyond its uncertainty at {int(above.sum())} frequencies (up to "
+                        f"{float(np.nanmax(value)):.2f}): impossible for a real detector; check the air kerma, q and "
+                        "the conversion function")
+    return DQEResult(f, value, by_dir, float(kerma_ugy), float(q_per_mm2_ugy), lo, hi, warnings)
 
 
 # ---------------------------------------------------------------- everything together
@@ -319,6 +342,7 @@ def measure_detector(flats: list[Image] = (), edges: list[Image] = (), *, kerma_
     dqe = None
     if mtf is not None and nnps is not None and (require_dqe or (kerma_ugy is not None and q_per_mm2_ugy is not None)):
         dqe = compute_dqe(mtf, nnps, kerma_ugy, q_per_mm2_ugy, by_dir)
+        warnings += dqe.warnings
     elif require_dqe:
         raise LimenError("DQE needs both an edge image (--edge) and flat fields (--flat)")
     inputs = {"flat": [im.metadata.source_path for im in flats], "edge": [im.metadata.source_path for im in edges],

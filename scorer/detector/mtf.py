@@ -48,6 +48,10 @@ from scorer.errors import LimenError
 
 DEFAULT_BIN_FRACTION = 0.25
 DEFAULT_LSF_HALF_WIDTH_PX = 40
+#: an edge's step must exceed the pixel noise by this factor (a flat field has none)
+MIN_STEP_TO_NOISE = 5.0
+#: above this, an MTF value at low frequency is physically implausible
+MAX_PLAUSIBLE_MTF = 1.05
 MIN_EDGE_ROWS = 32
 
 
@@ -281,6 +285,15 @@ def measure_mtf(pixels, spacing_mm, *, bin_fraction: float = DEFAULT_BIN_FRACTIO
     if filled.sum() < nb // 2:
         raise LimenError("too few edge samples to build the oversampled edge spread function", path)
     esf = np.interp(centres, centres[filled], sums[filled] / counts[filled])
+    # an edge image must hold a step well above the pixel noise (a flat field given as an edge has none)
+    far = np.abs(dist) > 0.6 * lim
+    lo_side, hi_side = vals[far & (dist < 0)], vals[far & (dist > 0)]
+    if lo_side.size > 10 and hi_side.size > 10:
+        step = abs(float(hi_side.mean() - lo_side.mean()))
+        noise = float(np.sqrt(0.5 * (lo_side.var() + hi_side.var())))
+        if noise > 0 and step < MIN_STEP_TO_NOISE * noise:
+            raise LimenError(f"no edge: the step across the fitted line is {step / noise:.1f}× the pixel noise "
+                             f"(need ≥ {MIN_STEP_TO_NOISE:g}×); is this a flat field given as an edge?", path)
     if empty:
         warnings.append(f"{empty} empty ESF bins filled by interpolation (edge short or angle small)")
 
@@ -300,6 +313,10 @@ def measure_mtf(pixels, spacing_mm, *, bin_fraction: float = DEFAULT_BIN_FRACTIO
     mtf = spec / spec[0]
     mtf = mtf / (np.sinc(f * bw) * np.sinc(2 * f * bw))  # box average and central difference
     nyq = 0.5 / pitch
+    low = (f > 0) & (f <= 0.5 * nyq)
+    if low.any() and float(mtf[low].max()) > MAX_PLAUSIBLE_MTF:
+        warnings.append(f"implausible MTF: {float(mtf[low].max()):.2f} > {MAX_PLAUSIBLE_MTF:g} below half the "
+                        "Nyquist frequency (an MTF cannot exceed 1; check that this is a sharp, straight edge)")
     ext = f <= 2.0 * nyq + 1e-12
     rep = f <= report_max_fraction_nyquist * nyq + 1e-12
     return MTFResult(

@@ -145,8 +145,47 @@ def _roi_starts(length: int, roi: int) -> np.ndarray:
     return off + step * np.arange(n)
 
 
+#: a flat field's block means may stray from a smooth quadratic trend by this many robust SDs at most
+FLAT_OUTLIER_SDS = 8.0
+FLAT_BLOCK_PX = 16
+
+
+def check_flat_field(pixels: np.ndarray, path=None, block_px: int = FLAT_BLOCK_PX) -> None:
+    """Refuse an image that is not a flat (open) field: an edge, a phantom, markers, a collimator border.
+
+    The image is reduced to means of ``block_px``² blocks; a 2-D quadratic (the heel effect and other smooth
+    trends, which the NNPS detrending removes anyway) is fitted; a block departing from it by more than
+    ``FLAT_OUTLIER_SDS`` robust standard deviations of the block-to-block noise marks structure that would
+    leak into the NNPS (common practice: IEC 62220-1 flat fields are free of objects).
+    """
+    a = np.asarray(pixels, dtype=float)
+    nb_r, nb_c = a.shape[0] // block_px, a.shape[1] // block_px
+    if nb_r < 4 or nb_c < 4:
+        return
+    m = a[:nb_r * block_px, :nb_c * block_px].reshape(nb_r, block_px, nb_c, block_px).mean(axis=(1, 3))
+    yy, xx = np.mgrid[0:nb_r, 0:nb_c].astype(float)
+    yy, xx = (yy - yy.mean()) / max(nb_r, 1), (xx - xx.mean()) / max(nb_c, 1)
+    A = np.column_stack([np.ones(m.size), xx.ravel(), yy.ravel(), xx.ravel() ** 2, (xx * yy).ravel(),
+                         yy.ravel() ** 2])
+    coef, *_ = np.linalg.lstsq(A, m.ravel(), rcond=None)
+    r = m - (A @ coef).reshape(m.shape)
+    # robust noise of one block mean, from differences of neighbouring blocks (insensitive to a few outliers)
+    d = np.concatenate([np.diff(r, axis=0).ravel(), np.diff(r, axis=1).ravel()]) / np.sqrt(2.0)
+    sd = 1.4826 * np.median(np.abs(d - np.median(d)))
+    if not sd > 1e-9 * max(abs(float(m.mean())), 1e-300):
+        return  # noiseless (synthetic) data: nothing to compare with
+    z = np.abs(r) / sd
+    worst = np.unravel_index(int(np.argmax(z)), z.shape)
+    n_bad = int((z > FLAT_OUTLIER_SDS).sum())
+    if n_bad:
+        rc = (int((worst[0] + 0.5) * block_px), int((worst[1] + 0.5) * block_px))
+        raise LimenError(f"not a flat field: {n_bad} region(s) depart from a smooth trend by more than "
+                         f"{FLAT_OUTLIER_SDS:g} noise SDs (largest {z.max():.0f} SDs near row {rc[0]}, column "
+                         f"{rc[1]}): an edge, a phantom or an object is in the field", path)
+
+
 def measure_nnps(images, spacing_mm, *, roi_px: int = DEFAULT_ROI_PX, region_mm: float | None = DEFAULT_REGION_MM,
-                 n_lines: int = DEFAULT_N_LINES, paths=None) -> NNPSResult:
+                 n_lines: int = DEFAULT_N_LINES, paths=None, check_flat: bool = True) -> NNPSResult:
     """NNPS from one or more linearised flat fields (see the module docstring).
 
     Parameters
@@ -157,6 +196,7 @@ def measure_nnps(images, spacing_mm, *, roi_px: int = DEFAULT_ROI_PX, region_mm:
     region_mm : side of the central square region used, mm (None: the whole image)
     n_lines : frequency rows on each side of an axis averaged into a 1-D cut
     paths : file names for error messages, one per image
+    check_flat : refuse images with structure (an edge, a phantom) — see :func:`check_flat_field`
 
     Raises
     ------
@@ -193,6 +233,8 @@ def measure_nnps(images, spacing_mm, *, roi_px: int = DEFAULT_ROI_PX, region_mm:
                              f"{roi_px}x{roi_px} ROI", path)
         if not np.all(np.isfinite(a)):
             raise LimenError("flat field holds non-finite pixel values", path)
+        if check_flat:
+            check_flat_field(a, path)
         mean_region = float(a.mean())
         rs, cs = _roi_starts(a.shape[0], roi_px), _roi_starts(a.shape[1], roi_px)
         # process one row of ROIs at a time (memory stays at a few ROIs' worth)
