@@ -22,6 +22,9 @@ _COMMANDS = {
     "detector": "detector",
     "compare_detectors": "compare_detectors",
     "analyse": "analyse",
+    "nightly": "nightly",
+    "trend": "trend",
+    "baseline": "baseline",
 }
 
 
