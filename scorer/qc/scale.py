@@ -11,6 +11,7 @@ they all mount under the same path (and Limen must be installed on them).
 
 from __future__ import annotations
 
+import os
 import time
 from concurrent.futures import ProcessPoolExecutor, as_completed
 from dataclasses import dataclass, field
@@ -143,6 +144,22 @@ def _guarded(job: SessionJob):
         return SessionOutcome(job.session_id, job.token, ok=False, reason=str(exc))
 
 
+def _watch_parent(parent_pid: int, every_s: float = 0.5) -> None:
+    """In a pool worker: exit as soon as the coordinating process is gone (killed, even by SIGKILL).
+
+    Without this a worker of a killed run would wait for work forever, holding its files open.
+    """
+    import threading
+
+    def watch():
+        while True:
+            if os.getppid() != parent_pid:
+                os._exit(1)
+            time.sleep(every_s)
+
+    threading.Thread(target=watch, daemon=True, name="limen-parent-watch").start()
+
+
 class PoolRunner:
     """A local process pool of ``workers`` processes (spawned: no database handle is inherited)."""
 
@@ -153,7 +170,8 @@ class PoolRunner:
     def __enter__(self):
         import multiprocessing as mp
 
-        self.pool = ProcessPoolExecutor(max_workers=self.workers, mp_context=mp.get_context("spawn"))
+        self.pool = ProcessPoolExecutor(max_workers=self.workers, mp_context=mp.get_context("spawn"),
+                                        initializer=_watch_parent, initargs=(os.getpid(),))
         return self
 
     def __exit__(self, *exc):
