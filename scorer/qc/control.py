@@ -12,12 +12,18 @@ intervals are multiplicative, and a fixed fractional change is the same step at 
   own noise.  (Common practice for control charts on short baselines; our choice of floor.)
 * **Baseline rule**: the session is worse than baseline by more than the configured fraction f
   *beyond its CI*: the lower CI bound exceeds 10^m · (1 + f).
-* **Shewhart rule**: |log10 C_T − m| > L σ (L = 3).  — Shewhart individuals chart; Montgomery,
-  *Introduction to Statistical Quality Control*, 6th ed. (2009), §6.4 (from memory).
+* **Shewhart rule**: |x − m| > L √(σ_x² + σ²/K), x = log10 C_T, L = 3, σ_x = max(σ, SE of this
+  session's own log10 C_T).  — Shewhart individuals chart, Montgomery, *Introduction to Statistical
+  Quality Control*, 6th ed. (2009), §6.4 (from memory); the σ²/K term is the variance of a mean of K
+  baseline sessions (the usual prediction-interval width s·√(1 + 1/K)), without which a baseline of
+  3–5 sessions raises false alarms far more often than the nominal 0.27 %; the σ_x floor keeps a
+  session whose own CI is wide (a failed fit, fewer usable images) from being called out of control
+  by its own noise.
 * **EWMA rule**: z_t = λ x_t + (1 − λ) z_(t−1), z_0 = m, over the sessions after the baseline in
-  date order; alert when |z_t − m| > L σ √(λ/(2−λ) · (1 − (1−λ)^(2t))).  — Roberts, Technometrics 1
-  (1959); Montgomery §9.2, eq. 9.24–9.26; λ = 0.2 with L near 3 is a usual choice (Lucas &
-  Saccucci, Technometrics 32 (1990)) (from memory).
+  date order; alert when |z_t − m| > L σ √(λ/(2−λ) · (1 − (1−λ)^(2t)) + 1/K).  — Roberts,
+  Technometrics 1 (1959); Montgomery §9.2, eq. 9.22–9.26; λ = 0.2 with L near 3 is a usual choice
+  (Lucas & Saccucci, Technometrics 32 (1990)) (from memory); + 1/K as above (z − m also carries the
+  baseline mean's error, which the EWMA does not average away).
 * **Limits rule**: the threshold fails the configured limits (``scorer.observer.evaluate``).
 
 Each alert says which way the threshold moved: ``worse`` (higher threshold contrast) or
@@ -105,13 +111,25 @@ def ewma_sigma_factor(lam: float, t) -> np.ndarray:
     return np.sqrt(lam / (2 - lam) * (1 - (1 - lam) ** (2 * t)))
 
 
+def shewhart_halfwidth(sigma: float, n_baseline: int, rules, se_session: float = 0.0) -> float:
+    """L √(σ_x² + σ²/K), σ_x = max(σ, this session's SE) (log10 units)."""
+    sx = max(sigma, se_session if np.isfinite(se_session) else 0.0)
+    return rules.control_sigma * float(np.sqrt(sx ** 2 + sigma ** 2 / max(n_baseline, 1)))
+
+
+def ewma_halfwidth(sigma: float, n_baseline: int, rules, t: int) -> float:
+    """L σ √(λ/(2−λ)(1 − (1−λ)^(2t)) + 1/K) (log10 units)."""
+    f = float(ewma_sigma_factor(rules.ewma_lambda, t))
+    return rules.ewma_width * sigma * float(np.sqrt(f ** 2 + 1 / max(n_baseline, 1)))
+
+
 def control_limits(baseline_row, rules, t_after: int | None = None) -> dict:
-    """Shewhart (and, for the t-th session after the baseline, EWMA) limits as contrasts."""
-    m, s = baseline_row["mean_log10"], baseline_row["sigma_log10"]
-    out = {"baseline": 10 ** m, "shewhart_low": 10 ** (m - rules.control_sigma * s),
-           "shewhart_high": 10 ** (m + rules.control_sigma * s)}
+    """Shewhart (and, for the t-th session after the baseline, EWMA) limits as contrasts (for plots)."""
+    m, s, k = baseline_row["mean_log10"], baseline_row["sigma_log10"], int(baseline_row["n_sessions"])
+    w = shewhart_halfwidth(s, k, rules)
+    out = {"baseline": 10 ** m, "shewhart_low": 10 ** (m - w), "shewhart_high": 10 ** (m + w)}
     if t_after:
-        w = rules.ewma_width * s * float(ewma_sigma_factor(rules.ewma_lambda, t_after))
+        w = ewma_halfwidth(s, k, rules, t_after)
         out.update(ewma_low=10 ** (m - w), ewma_high=10 ** (m + w))
     return out
 
@@ -165,7 +183,7 @@ def evaluate_session(detector: str, session_id: int, history: pd.DataFrame, base
         b = base.get(round(d, 6))
         if not judged or b is None or not (np.isfinite(c) and c > 0):
             continue
-        m, s = float(b.mean_log10), float(b.sigma_log10)
+        m, s, k = float(b.mean_log10), float(b.sigma_log10), int(b.n_sessions)
         x = np.log10(c)
         ref = 10 ** m
         if "baseline" in rules.rules:
@@ -174,9 +192,11 @@ def evaluate_session(detector: str, session_id: int, history: pd.DataFrame, base
                 add("baseline", "worse", c, ref,
                     f"threshold contrast {_pct(c)} (CI from {_pct(lo)}) is more than {100 * rules.worse_fraction:g} % "
                     f"above the baseline {_pct(ref)}")
-        if "shewhart" in rules.rules and s > 0 and abs(x - m) > rules.control_sigma * s:
+        se = float(log_se_from_ci(r.ci_low, r.ci_high)) if r.ci_low is not None and r.ci_high is not None else 0.0
+        w = shewhart_halfwidth(s, k, rules, se if np.isfinite(se) else 0.0)
+        if "shewhart" in rules.rules and s > 0 and abs(x - m) > w:
             direction = "worse" if x > m else "better"
-            lim = 10 ** (m + np.sign(x - m) * rules.control_sigma * s)
+            lim = 10 ** (m + np.sign(x - m) * w)
             add("shewhart", direction, c, lim,
                 f"threshold contrast {_pct(c)} is outside the {rules.control_sigma:g} σ control limit {_pct(lim)} "
                 f"(baseline {_pct(ref)})")
@@ -192,7 +212,7 @@ def evaluate_session(detector: str, session_id: int, history: pd.DataFrame, base
             if not xs:
                 continue
             z = ewma(xs, rules.ewma_lambda, m)[-1]
-            w = rules.ewma_width * s * float(ewma_sigma_factor(rules.ewma_lambda, len(xs)))
+            w = ewma_halfwidth(s, k, rules, len(xs))
             if abs(z - m) > w:
                 direction = "worse" if z > m else "better"
                 lim = 10 ** (m + np.sign(z - m) * w)

@@ -21,7 +21,7 @@ import numpy as np  # noqa: E402
 import pandas as pd  # noqa: E402
 
 from scorer.qc.config import AlertRules  # noqa: E402
-from scorer.qc.control import control_limits, ewma, ewma_sigma_factor  # noqa: E402
+from scorer.qc.control import control_limits, ewma, ewma_halfwidth  # noqa: E402
 from scorer.reports.html import figure_to_svg, html_page, table_html, write_json  # noqa: E402
 
 
@@ -58,7 +58,7 @@ def trend_frame(store, rules: AlertRules) -> pd.DataFrame:
                         xs.append(np.log10(r.threshold_contrast))
                         t_after += 1
                         z = ewma(xs, rules.ewma_lambda, row["mean_log10"])[-1]
-                        w = rules.ewma_width * row["sigma_log10"] * float(ewma_sigma_factor(rules.ewma_lambda, t_after))
+                        w = ewma_halfwidth(row["sigma_log10"], int(row["n_sessions"]), rules, t_after)
                         rec.update(ewma=10 ** z, ewma_low=10 ** (row["mean_log10"] - w),
                                    ewma_high=10 ** (row["mean_log10"] + w))
                 if len(alerts):
