@@ -184,6 +184,9 @@ class PoolRunner:
             yield futures[fut], fut.result()
 
 
+DASK_CONNECT_TIMEOUT_S = 20.0
+
+
 class DaskRunner:
     """Sends sessions to an existing Dask distributed scheduler (``dask scheduler`` / ``dask worker``)."""
 
@@ -198,7 +201,7 @@ class DaskRunner:
             raise LimenError("--dask needs the 'distributed' package (pip install 'dask[distributed]')") from None
         try:
             if isinstance(self.address, str):
-                self.client = Client(self.address, timeout="20s")
+                self.client = Client(self.address, timeout=f"{DASK_CONNECT_TIMEOUT_S:g}s")
             else:  # a LocalCluster or other cluster object (tests, scripts)
                 self.client = Client(self.address)
         except (OSError, TimeoutError) as exc:
