@@ -72,15 +72,22 @@ def list_files(inbox: Path, exclude: list[Path] = ()) -> list[Path]:
 
 
 def examine(path, sha256: str, config: NightlyConfig) -> InboxImage | Rejected:
-    """Read one file fully (pixels included, so damage shows now) and place it, or say why it cannot be used."""
+    """Place one file in its session, or say in one line why it cannot be used.
+
+    A DICOM file whose header is sound (pixel data present, as long as the file) is placed from
+    its header alone: decoding is left to the scoring workers, where a file that still fails is
+    quarantined and its session re-formed.  Anything else is read fully by ``load_image``, whose
+    error names the problem.
+    """
     path = Path(path)
-    try:
-        with warnings.catch_warnings():
-            warnings.simplefilter("ignore", LimenWarning)
-            image = load_image(path)
-    except LimenError as exc:
-        return Rejected(str(path), sha256, _strip(str(exc), path))
-    md = image.metadata
+    md = _quick_metadata(path)
+    if md is None:
+        try:
+            with warnings.catch_warnings():
+                warnings.simplefilter("ignore", LimenWarning)
+                md = load_image(path).metadata
+        except LimenError as exc:
+            return Rejected(str(path), sha256, _strip(str(exc), path))
     if md.presentation_intent == "FOR PRESENTATION":
         return Rejected(str(path), sha256, "FOR PRESENTATION image: processed for display, its pixel values are "
                                            "not linear in air kerma (export the FOR PROCESSING image)")
@@ -105,6 +112,43 @@ def examine(path, sha256: str, config: NightlyConfig) -> InboxImage | Rejected:
                      anode=extra.get("anode"), filter=extra.get("filter"))
     img.flags = det.expected.check(img.kvp, img.anode, img.filter, img.exposure_uas)
     return img
+
+
+_PIXEL_TAGS = (0x7FE00010, 0x7FE00008, 0x7FE00009)  # Pixel Data, Float / Double Float Pixel Data
+
+
+def _quick_metadata(path: Path):
+    """ImageMetadata from the DICOM header without decoding pixels, or None when a full read must judge.
+
+    The pixel data element must be present and, when not encapsulated, end within the file; a file
+    that fails either (or is not plainly DICOM) goes to ``load_image`` for its one-line error.
+    """
+    import pydicom
+    from scorer.images.image import ImageMetadata
+    from scorer.images.io import _fill_dicom_metadata  # the same tags load_image reads
+
+    try:
+        with path.open("rb") as fh:
+            head = fh.read(132)
+        if len(head) < 132 or head[128:132] != b"DICM":
+            return None
+        size = path.stat().st_size
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            ds = pydicom.dcmread(path, defer_size="256 KB")
+        raw = next((ds._dict[t] for t in _PIXEL_TAGS if t in ds._dict), None)
+        if raw is None:
+            return None
+        length, tell = getattr(raw, "length", None), getattr(raw, "value_tell", None)
+        if length is None or tell is None or (length != 0xFFFFFFFF and tell + length > size):
+            return None
+        if any(int(ds.get(k) or 1) > 1 for k in ("SamplesPerPixel", "NumberOfFrames")):
+            return None
+        meta = ImageMetadata(source_path=str(path), file_format="dicom")
+        _fill_dicom_metadata(ds, meta)
+        return meta
+    except Exception:  # any oddity: let load_image judge and explain
+        return None
 
 
 def _header_extras(path: Path) -> dict:

@@ -144,12 +144,21 @@ def _guarded(job: SessionJob):
         return SessionOutcome(job.session_id, job.token, ok=False, reason=str(exc))
 
 
-def _watch_parent(parent_pid: int, every_s: float = 0.5) -> None:
-    """In a pool worker: exit as soon as the coordinating process is gone (killed, even by SIGKILL).
+_THREAD_ENV = ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS")
 
-    Without this a worker of a killed run would wait for work forever, holding its files open.
-    """
+
+def _watch_parent(parent_pid: int, every_s: float = 0.5) -> None:
+    """Pool worker set-up: one thread for OpenCV (N workers use N cores, not N × cores), and exit as
+    soon as the coordinating process is gone (killed, even by SIGKILL) instead of waiting for work
+    forever with its files open."""
     import threading
+
+    try:
+        import cv2
+
+        cv2.setNumThreads(1)
+    except ImportError:  # pragma: no cover - opencv is a dependency
+        pass
 
     def watch():
         while True:
@@ -170,12 +179,20 @@ class PoolRunner:
     def __enter__(self):
         import multiprocessing as mp
 
+        # spawned workers read these before numpy loads: one BLAS/OpenMP thread each
+        self._env = {k: os.environ.get(k) for k in _THREAD_ENV}
+        os.environ.update({k: "1" for k in _THREAD_ENV})
         self.pool = ProcessPoolExecutor(max_workers=self.workers, mp_context=mp.get_context("spawn"),
                                         initializer=_watch_parent, initargs=(os.getpid(),))
         return self
 
     def __exit__(self, *exc):
         self.pool.shutdown(wait=True, cancel_futures=True)
+        for k, v in self._env.items():
+            if v is None:
+                os.environ.pop(k, None)
+            else:
+                os.environ[k] = v
         return False
 
     def run(self, jobs):

@@ -65,14 +65,14 @@ class DemoPlan:
 
 
 def demo_nights(root, n_nights: int = 8, baseline_sessions: int = 4, drift_start: int = 5,
-                first_night: _dt.date = _dt.date(2026, 3, 2), layout_path=None, n_images: int = 4,
-                n_boot: int = 300) -> DemoPlan:
+                drift_factor: float = 0.6, first_night: _dt.date = _dt.date(2026, 3, 2), layout_path=None,
+                n_images: int = 5, n_boot: int = 300) -> DemoPlan:
     """Configuration and plan of simulated nights: the direct panel's dose falls from ``drift_start`` on.
 
     Scenario (invented): the Harbourside Women's Health Centre's two panels, HSX-SE-0417 (direct,
     room MAM2) and HSX-CS-2291 (indirect, room MAM3), image the phantom each morning at 100 µGy.
     From night ``drift_start`` (counted from 1) a fault in the direct panel's exposure control
-    lowers its dose by a fifth each night; on night 3 the indirect panel's images are taken at
+    multiplies its dose by ``drift_factor`` each night; on night 3 the indirect panel's images are taken at
     29 kV instead of 28 kV (a settings flag, no alert).  Call :func:`simulate_night` for each
     night of ``plan.nights`` and run ``limen nightly --config plan.config --inbox plan.inbox``.
     """
@@ -101,7 +101,7 @@ def demo_nights(root, n_nights: int = 8, baseline_sessions: int = 4, drift_start
     config.write_text("\n".join(lines) + "\n", encoding="utf-8")
     nights = []
     for k in range(1, n_nights + 1):
-        dose = 100.0 * (0.8 ** (k - drift_start + 1) if k >= drift_start else 1.0)
+        dose = 100.0 * (drift_factor ** (k - drift_start + 1) if k >= drift_start else 1.0)
         indirect = Panel("indirect", 100.0, {"KVP": 29.0} if k == 3 else {})
         nights.append((first_night + _dt.timedelta(days=k - 1), [Panel("direct", dose), indirect]))
     return DemoPlan(config, inbox, nights)
