@@ -25,6 +25,9 @@ COMMANDS: dict[str, tuple[str, str, str]] = {
     "detector": ("detector", "detector", "Measure a detector: conversion function, MTF, NNPS, DQE, predicted thresholds."),
     "compare-detectors": ("compare_detectors", "compare_detectors", "Put two measured detectors side by side."),
     "analyse": ("analyse", "analyse", "Analyse a reader study: per-reader and pooled curves, human/model factor."),
+    "nightly": ("nightly", "nightly", "Score an inbox of phantom images once per session; store, trend, alert."),
+    "trend": ("trend", "trend", "Write the trend report (HTML, CSV) of a nightly database."),
+    "baseline": ("baseline", "baseline", "Show, set or clear the baselines the nightly alerts compare with."),
 }
 
 

@@ -78,6 +78,7 @@ def run(out: Path) -> Path:
             "--scored-b", str(out / "indirect" / "score" / "results.json"), "--out", str(out / "comparison")])
     links.append(("direct vs indirect, side by side", "comparison/comparison.html"))
     links += _reader_study(out)
+    links += _nightly(out)  # nightly scoring (issue 13): simulated nights, one panel drifts and is caught
     body = "<ul>" + "".join(f"<li><a href='{html.escape(h)}'>{html.escape(t)}</a></li>" for t, h in links) + "</ul>"
     scenario = ("<p class='fail'><b>Simulated data, invented scenario.</b> Harbourside Women's Health Centre "
                 "(invented) commissions a direct-conversion panel (HSX-SE-0417, room MAM2) and an indirect-conversion "
@@ -124,6 +125,21 @@ def _verdict_summary(out: Path) -> str:
             + table_html(rows, left=["panel", "verdict", "95 % CI (%)", "acceptable limit (%)"])
             + "<p class='meta'>Verdicts at interpolated limits inform; the overall verdict rests on the diameters the "
               "limits file lists.</p>")
+
+
+def _nightly(out: Path) -> list[tuple[str, str]]:
+    """Eight simulated mornings of phantom QC scored by `limen nightly`; the direct panel's dose falls from
+    night 5 and the alerts catch it (scenario in scorer/qc/simulated.py)."""
+    from scorer.qc.simulated import demo_nights, simulate_night
+
+    plan = demo_nights(out / "nightly")
+    db = str(out / "nightly" / "nightly.sqlite")
+    for i, (date, panels) in enumerate(plan.nights):
+        simulate_night(plan.inbox, date, panels, n_images=5, seed=2026)
+        report = ["--report", str(out / "nightly" / "trend")] if i == len(plan.nights) - 1 else []
+        _limen(["nightly", "--inbox", str(plan.inbox), "--config", str(plan.config), "--db", db,
+                "--settle-seconds", "0", *report], allowed_exit=(0, 1))
+    return [("nightly QC: eight simulated mornings, one panel drifts and is caught", "nightly/trend/trend.html")]
 
 
 def _reader_study(out: Path) -> list[tuple[str, str]]:

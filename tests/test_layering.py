@@ -93,7 +93,7 @@ def test_the_check_catches_an_upward_import(tmp_path, monkeypatch):
     assert any("detector/also_bad.py:1" in v for v in found)
 
 
-@pytest.mark.parametrize("package", ["images", "phantom", "observer", "detector", "study", "reports"])
+@pytest.mark.parametrize("package", ["images", "phantom", "observer", "detector", "study", "qc", "reports"])
 def test_every_public_name_is_importable(package):
     import importlib
 

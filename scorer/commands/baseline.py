@@ -1,0 +1,96 @@
+"""``limen baseline``: show, set or clear a detector's baseline in a nightly database."""
+
+from __future__ import annotations
+
+import click
+
+from scorer.errors import LimenError
+from scorer.reports import dumps
+
+
+def _open(db):
+    from scorer.commands.nightly import db_url_option
+    from scorer.qc import open_store
+
+    return open_store(db_url_option(db))
+
+
+@click.group("baseline")
+def baseline():
+    """Show, set or clear the baselines the nightly alerts compare with."""
+
+
+@baseline.command("show")
+@click.option("--db", required=True, help="Database URL or SQLite file written by `limen nightly`.")
+@click.option("--detector", default=None, help="Only this detector (its name in the database).")
+@click.option("--json", "as_json", is_flag=True)
+def show(db, detector, as_json):
+    """Print each detector's baseline per method and diameter."""
+    store = _open(db)
+    try:
+        out = []
+        for det in ([detector] if detector else store.detectors()):
+            for method in ("dprime", "count"):
+                bl = store.baseline(det, method)
+                if bl is None:
+                    continue
+                frame, last, ids, source = bl
+                for r in frame.sort_values("diameter_mm").itertuples():
+                    out.append({"detector": det, "method": method, "diameter_mm": r.diameter_mm,
+                                "baseline_contrast": 10 ** r.mean_log10, "sigma_log10": r.sigma_log10,
+                                "n_sessions": r.n_sessions, "sessions": sorted(ids), "source": source})
+    finally:
+        store.close()
+    if as_json:
+        click.echo(dumps(out))
+        return
+    if not out:
+        click.echo("no baselines yet")
+    for r in out:
+        click.echo(f"{r['detector']}  {r['method']:>6}  {r['diameter_mm']:>6g} mm  C_T {100 * r['baseline_contrast']:.3g} %"
+                   f"  σ(log10) {r['sigma_log10']:.3f}  {r['source']} from sessions "
+                   f"{', '.join(map(str, r['sessions']))}")
+
+
+@baseline.command("set")
+@click.option("--db", required=True, help="Database URL or SQLite file written by `limen nightly`.")
+@click.option("--detector", required=True, help="The detector's name in the database.")
+@click.option("--sessions", default=None, help="Comma-separated session ids (from `limen trend` or --json).")
+@click.option("--from", "date_from", default=None, help="First session date (YYYY-MM-DD) of the baseline.")
+@click.option("--to", "date_to", default=None, help="Last session date (YYYY-MM-DD) of the baseline.")
+def set_(db, detector, sessions, date_from, date_to):
+    """Set a detector's baseline explicitly from chosen scored sessions."""
+    if bool(sessions) == bool(date_from or date_to):
+        raise LimenError("give either --sessions or --from/--to")
+    store = _open(db)
+    try:
+        if sessions:
+            try:
+                ids = [int(x) for x in sessions.split(",") if x.strip()]
+            except ValueError:
+                raise LimenError(f"not a list of session ids: {sessions!r}", "--sessions") from None
+        else:
+            ids = [s["id"] for s in store.sessions(detector)
+                   if (not date_from or s["session_date"] >= date_from) and (not date_to or s["session_date"] <= date_to)]
+            if not ids:
+                raise LimenError(f"no scored sessions of {detector!r} between {date_from or '…'} and {date_to or '…'}",
+                                 "--from/--to")
+        store.set_baseline(detector, ids)
+    finally:
+        store.close()
+    click.echo(f"baseline of {detector} set from sessions {', '.join(map(str, sorted(ids)))}")
+
+
+
+
+@baseline.command("clear")
+@click.option("--db", required=True, help="Database URL or SQLite file written by `limen nightly`.")
+@click.option("--detector", required=True, help="The detector's name in the database.")
+def clear(db, detector):
+    """Forget a detector's baseline; the automatic one is rebuilt from its first sessions."""
+    store = _open(db)
+    try:
+        n = store.clear_baseline(detector)
+    finally:
+        store.close()
+    click.echo(f"{detector}: {n} baseline row(s) removed")

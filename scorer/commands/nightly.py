@@ -1,0 +1,111 @@
+"""``limen nightly``: score every complete, new session in an inbox once, store it, trend it, alert."""
+
+from __future__ import annotations
+
+import sys
+
+import click
+
+from scorer.errors import LimenError
+from scorer.reports import CAUTION, dumps
+
+
+def db_url_option(value: str | None) -> str | None:
+    """``--db``: an SQLAlchemy URL, or a plain path taken as a SQLite file."""
+    if value is None or "://" in value:
+        return value
+    from pathlib import Path
+
+    return f"sqlite:///{Path(value).expanduser().resolve()}"
+
+
+def load_nightly_config(path):
+    """The nightly configuration with human/model factors and MTFs read as `limen score` reads them."""
+    from scorer.commands.score import _blur_from_detector_json, human_factor_from_analysis
+    from scorer.qc import default_config, load_config
+
+    if path is None:
+        return default_config()
+    return load_config(path, factor_loader=human_factor_from_analysis, mtf_loader=_blur_from_detector_json)
+
+
+@click.command("nightly")
+@click.option("--inbox", type=click.Path(file_okay=False), required=True,
+              help="Folder of incoming phantom images (scanned recursively).")
+@click.option("--config", "config_file", type=click.Path(dir_okay=False), default=None,
+              help="Nightly configuration (limen-nightly/1 TOML). Without it: bundled layout, no limits, "
+                   "4 images per session.")
+@click.option("--db", "db", default=None,
+              help="Database: SQLAlchemy URL (postgresql+psycopg://user@host/db) or a SQLite file path "
+                   "(default: limen-nightly.sqlite beside the inbox).")
+@click.option("--report", "report_dir", type=click.Path(file_okay=False), default=None,
+              help="Write the trend report (trend.html, CSV, JSON) here after the run.")
+@click.option("--workers", type=click.IntRange(1, 256), default=None,
+              help="Score sessions on a local pool of N processes.")
+@click.option("--dask", "dask_address", default=None,
+              help="Score sessions on an existing Dask scheduler, e.g. tcp://10.0.0.5:8786.")
+@click.option("--quarantine", "quarantine_dir", type=click.Path(file_okay=False), default=None,
+              help="Where unusable files are moved (default: INBOX/quarantine).")
+@click.option("--settle-seconds", type=click.FloatRange(0), default=60.0, show_default=True,
+              help="Leave files modified more recently than this for the next run (they may still be arriving).")
+@click.option("--lease-seconds", type=click.FloatRange(10), default=1800.0, show_default=True,
+              help="A claim on a session not renewed for this long is taken over by another run.")
+@click.option("--json", "as_json", is_flag=True, help="Print one JSON object on stdout.")
+def nightly(inbox, config_file, db, report_dir, workers, dask_address, quarantine_dir, settle_seconds,
+            lease_seconds, as_json):
+    """Score new phantom images in INBOX once per session; store, trend and alert.
+
+    Exit status: 0 all well, 1 an alert was raised, 2 bad input, usage or database error.
+    """
+    from scorer.qc import open_store, run_nightly
+    from scorer.qc.store import default_db_url
+
+    if workers and dask_address:
+        raise LimenError("give either --workers or --dask, not both")
+    config = load_nightly_config(config_file)
+    from pathlib import Path
+
+    url = db_url_option(db) or default_db_url(Path(inbox).resolve().parent)
+    store = open_store(url)
+    try:
+        result = run_nightly(inbox, config, store=store, quarantine_dir=quarantine_dir, workers=workers or 1,
+                             dask=dask_address, settle_s=settle_seconds, lease_s=lease_seconds,
+                             progress=not as_json)
+        page = None
+        if report_dir:
+            from scorer.reports.trend import write_trend_report
+
+            page = write_trend_report(store, report_dir, config.alerts, config.programme)
+    finally:
+        store.close()
+    if as_json:
+        js = result.to_json()
+        js["report"] = None if page is None else str(page)
+        click.echo(dumps(js))
+    else:
+        _print(result, page)
+    for e in result.errors:
+        click.echo(f"warning: {e}", err=True)
+    if result.alerts:
+        sys.exit(1)
+
+
+def _print(result, page) -> None:
+    click.echo(f"{result.scored_images} image(s) scored in {len(result.sessions_scored)} session(s) "
+               f"[{result.runner}; {result.db}]")
+    for s in result.sessions_scored:
+        click.echo(f"  scored  {s['detector']}  {s['session_date']}  {s['images']} images  "
+                   f"verdict: {s['overall_verdict']}  alerts: {s['alerts']}")
+    for w in result.waiting:
+        click.echo(f"  waiting {w['detector']}  {w['session_date']}  {w['images']} of {w['needed']} images")
+    for d in result.duplicates:
+        click.echo(f"  duplicate {d['path']} (same content as {d['same_as']})")
+    if result.arriving:
+        click.echo(f"  {len(result.arriving)} file(s) still arriving: left for the next run")
+    for q in result.quarantined:
+        click.echo(f"  quarantined {q['path']}: {q['reason']}")
+    for a in result.alerts:
+        click.echo(f"ALERT [{a['rule']}, {a['direction']}] {a['message']}")
+    if page is not None:
+        click.echo(f"trend report: {page}")
+    click.echo(CAUTION)

@@ -1,0 +1,17 @@
+"""Nightly scoring: an inbox of phantom images scored once, stored safely, trended against baselines, alerted.
+
+Modules: ``config`` (the ``limen-nightly/1`` per-detector configuration), ``inbox`` (scan, read,
+session grouping, quarantine), ``store`` (SQLAlchemy models, schema version, database-level
+claims, one-transaction writes), ``control`` (baselines, Shewhart and EWMA rules → alerts),
+``scale`` (scoring sessions serially, on a process pool or on a Dask cluster), ``mail`` (alert
+e-mail over SMTP), ``nightly`` (run_nightly: the whole run as one call), ``simulated`` (simulated
+nights for the demo and tests), ``faults`` (fault injection for the crash tests).
+
+May import: ``scorer.images``, ``scorer.phantom``, ``scorer.observer``, ``scorer.detector``,
+``scorer.study`` and the base modules; never ``scorer.reports`` or ``scorer.commands``.
+"""
+
+import lazy_loader as _lazy
+
+# Public names are listed in __init__.pyi and imported on first use (Scientific Python SPEC 1).
+__getattr__, __dir__, __all__ = _lazy.attach_stub(__name__, __file__)

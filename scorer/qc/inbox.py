@@ -1,0 +1,205 @@
+"""The inbox: find new image files, read what they say about themselves, group them into sessions.
+
+A *session* is the set of one detector's phantom images taken on one day with the same
+acquisition settings (kVp, anode, filter): the unit that is scored together and trended.
+Files that cannot be scored (unreadable, not an image, processed FOR PRESENTATION, of a
+detector the configuration does not know, without an acquisition date) are rejected with a
+one-line reason; :func:`quarantine_file` moves them aside with the reason beside them.
+"""
+
+from __future__ import annotations
+
+import os
+import shutil
+import warnings
+from dataclasses import dataclass, field
+from pathlib import Path
+
+from scorer.errors import LimenError
+from scorer.images.io import LimenWarning, load_image
+from scorer.qc.config import NightlyConfig
+from scorer.qc.faults import fault_point
+
+REASON_SUFFIX = ".reason.txt"
+
+
+@dataclass
+class InboxImage:
+    """A readable phantom image of a known detector, waiting to be scored."""
+
+    path: str
+    sha256: str
+    detector: str
+    session_date: str                # YYYY-MM-DD
+    acquired: str | None = None      # ISO 8601
+    detector_id: str | None = None
+    device_serial: str | None = None
+    station_name: str | None = None
+    kvp: float | None = None
+    exposure_uas: float | None = None
+    anode: str | None = None
+    filter: str | None = None
+    flags: list[str] = field(default_factory=list)
+
+    @property
+    def group_key(self) -> str:
+        """Detector, day and settings: images with the same key belong to one session."""
+        kvp = "?" if self.kvp is None else f"{self.kvp:g}"
+        return f"{self.detector}|{self.session_date}|{kvp} kV|{self.anode or '?'}/{self.filter or '?'}"
+
+
+@dataclass
+class Rejected:
+    """A file that cannot be scored, and why (one line)."""
+
+    path: str
+    sha256: str | None
+    reason: str
+
+
+def list_files(inbox: Path, exclude: list[Path] = ()) -> list[Path]:
+    """Every regular file under ``inbox`` (recursively, sorted), skipping hidden files and ``exclude`` folders."""
+    inbox = Path(inbox)
+    if not inbox.is_dir():
+        raise LimenError("inbox is not a folder", inbox)
+    skip = {Path(p).resolve() for p in exclude}
+    out = []
+    for root, dirs, files in os.walk(inbox):
+        r = Path(root)
+        dirs[:] = sorted(d for d in dirs if not d.startswith(".") and (r / d).resolve() not in skip)
+        out += [r / f for f in sorted(files) if not f.startswith(".") and not f.endswith(REASON_SUFFIX)]
+    return out
+
+
+def examine(path, sha256: str, config: NightlyConfig) -> InboxImage | Rejected:
+    """Place one file in its session, or say in one line why it cannot be used.
+
+    A DICOM file whose header is sound (pixel data present, as long as the file) is placed from
+    its header alone: decoding is left to the scoring workers, where a file that still fails is
+    quarantined and its session re-formed.  Anything else is read fully by ``load_image``, whose
+    error names the problem.
+    """
+    path = Path(path)
+    md = _quick_metadata(path)
+    if md is None:
+        try:
+            with warnings.catch_warnings():
+                warnings.simplefilter("ignore", LimenWarning)
+                md = load_image(path).metadata
+        except LimenError as exc:
+            return Rejected(str(path), sha256, _strip(str(exc), path))
+    if md.presentation_intent == "FOR PRESENTATION":
+        return Rejected(str(path), sha256, "FOR PRESENTATION image: processed for display, its pixel values are "
+                                           "not linear in air kerma (export the FOR PROCESSING image)")
+    if md.file_format != "dicom":
+        return Rejected(str(path), sha256, f"unknown detector: a {md.file_format.upper()} file carries no detector "
+                                           "identification (nightly scoring reads DICOM)")
+    det = config.detector_for(md.detector_id, md.device_serial, md.station_name)
+    if det is None:
+        ids = ", ".join(f"{k} {v!r}" for k, v in (("Detector ID", md.detector_id),
+                                                   ("Device Serial Number", md.device_serial),
+                                                   ("Station Name", md.station_name)) if v) or "no identifier"
+        return Rejected(str(path), sha256, f"unknown detector ({ids}): not in the nightly configuration")
+    extra = _header_extras(path)
+    date = (md.acquisition_datetime or "")[:10] or extra.get("content_date")
+    if not date or len(date) != 10:
+        return Rejected(str(path), sha256, "no acquisition date (Acquisition DateTime, Acquisition Date or "
+                                           "Content Date): cannot tell which session the image belongs to")
+    kvp = None if md.kvp is None else round(float(md.kvp), 1)
+    img = InboxImage(path=str(path), sha256=sha256, detector=det.name, session_date=date,
+                     acquired=md.acquisition_datetime, detector_id=md.detector_id, device_serial=md.device_serial,
+                     station_name=md.station_name, kvp=kvp, exposure_uas=md.exposure_uas,
+                     anode=extra.get("anode"), filter=extra.get("filter"))
+    img.flags = det.expected.check(img.kvp, img.anode, img.filter, img.exposure_uas)
+    return img
+
+
+_PIXEL_TAGS = (0x7FE00010, 0x7FE00008, 0x7FE00009)  # Pixel Data, Float / Double Float Pixel Data
+
+
+def _quick_metadata(path: Path):
+    """ImageMetadata from the DICOM header without decoding pixels, or None when a full read must judge.
+
+    The pixel data element must be present and, when not encapsulated, end within the file; a file
+    that fails either (or is not plainly DICOM) goes to ``load_image`` for its one-line error.
+    """
+    import pydicom
+    from scorer.images.image import ImageMetadata
+    from scorer.images.io import _fill_dicom_metadata  # the same tags load_image reads
+
+    try:
+        with path.open("rb") as fh:
+            head = fh.read(132)
+        if len(head) < 132 or head[128:132] != b"DICM":
+            return None
+        size = path.stat().st_size
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            ds = pydicom.dcmread(path, defer_size="256 KB")
+        raw = next((ds._dict[t] for t in _PIXEL_TAGS if t in ds._dict), None)
+        if raw is None:
+            return None
+        length, tell = getattr(raw, "length", None), getattr(raw, "value_tell", None)
+        if length is None or tell is None or (length != 0xFFFFFFFF and tell + length > size):
+            return None
+        if any(int(ds.get(k) or 1) > 1 for k in ("SamplesPerPixel", "NumberOfFrames")):
+            return None
+        meta = ImageMetadata(source_path=str(path), file_format="dicom")
+        _fill_dicom_metadata(ds, meta)
+        return meta
+    except Exception:  # any oddity: let load_image judge and explain
+        return None
+
+
+def _header_extras(path: Path) -> dict:
+    """Anode Target Material (0018,1191), Filter Material (0018,7050) and Content Date (0008,0023)."""
+    import pydicom
+
+    out = {}
+    try:
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            ds = pydicom.dcmread(path, stop_before_pixels=True, force=True)
+    except Exception:  # load_image has read the file already; a header it could read is readable
+        return out
+    for key, kw in (("anode", "AnodeTargetMaterial"), ("filter", "FilterMaterial")):
+        v = ds.get(kw)
+        if v:
+            out[key] = "\\".join(str(x) for x in v) if not isinstance(v, str) and hasattr(v, "__iter__") else str(v)
+            out[key] = out[key].strip().upper() or None
+    cd = str(ds.get("ContentDate") or "").strip()
+    if len(cd) == 8 and cd.isdigit():
+        out["content_date"] = f"{cd[:4]}-{cd[4:6]}-{cd[6:]}"
+    return out
+
+
+def _strip(message: str, path: Path) -> str:
+    prefix = f"{path}: "
+    return message[len(prefix):] if message.startswith(prefix) else message
+
+
+def quarantine_file(path, quarantine_dir, reason: str) -> Path | None:
+    """Move ``path`` into ``quarantine_dir`` with ``<name>.reason.txt`` (one line) beside it.
+
+    The reason is written first, then the file is moved, so a run killed in between leaves the
+    file in the inbox (quarantined again next run), never a quarantined file without a reason.
+    Returns the new path, or None when the file had gone already (another run moved it).
+    """
+    path, qdir = Path(path), Path(quarantine_dir)
+    qdir.mkdir(parents=True, exist_ok=True)
+    dest = qdir / path.name
+    n = 1
+    while dest.exists():
+        dest = qdir / f"{path.stem}-{n}{path.suffix}"
+        n += 1
+    note = dest.with_name(dest.name + REASON_SUFFIX)
+    tmp = note.with_name(f".{note.name}.{os.getpid()}.tmp")
+    tmp.write_text(" ".join(reason.split()) + "\n", encoding="utf-8")
+    os.replace(tmp, note)
+    fault_point("quarantine")
+    try:
+        shutil.move(str(path), str(dest))
+    except FileNotFoundError:
+        note.unlink(missing_ok=True)
+        return None
+    return dest

@@ -1,0 +1,286 @@
+"""The nightly run: scan the inbox, claim complete sessions, score them (serially, on a pool or Dask),
+write each in one transaction, quarantine what cannot be scored, raise and e-mail alerts.
+
+:func:`run_nightly` is the whole job as one call; ``limen nightly`` is a thin command over it.
+"""
+
+from __future__ import annotations
+
+import os
+import sys
+import time
+from dataclasses import dataclass, field
+from pathlib import Path
+
+from scorer.errors import LimenError
+from scorer.images.io import image_content_hash
+from scorer.qc.config import NightlyConfig, default_config
+from scorer.qc.faults import fault_point
+from scorer.qc.inbox import InboxImage, examine, list_files, quarantine_file
+from scorer.qc.scale import SessionJob, make_runner
+from scorer.qc.store import DEFAULT_LEASE_S, Store, default_db_url, open_store
+
+
+@dataclass
+class NightlyResult:
+    """What one run did (``to_json`` is the ``--json`` output)."""
+
+    scored_images: int = 0
+    sessions_scored: list[dict] = field(default_factory=list)
+    waiting: list[dict] = field(default_factory=list)
+    quarantined: list[dict] = field(default_factory=list)
+    alerts: list[dict] = field(default_factory=list)
+    duplicates: list[dict] = field(default_factory=list)
+    arriving: list[str] = field(default_factory=list)
+    errors: list[str] = field(default_factory=list)
+    emailed: int = 0
+    runner: str = "serial"
+    db: str = ""
+    timings: dict = field(default_factory=dict)
+
+    def to_json(self) -> dict:
+        return {"scored_images": self.scored_images, "sessions_scored": len(self.sessions_scored),
+                "sessions_waiting": len(self.waiting), "quarantined": self.quarantined, "alerts": self.alerts,
+                "sessions": self.sessions_scored, "waiting": self.waiting, "duplicates": self.duplicates,
+                "arriving": self.arriving, "errors": self.errors, "emailed_alerts": self.emailed,
+                "runner": self.runner, "database": self.db, "timings_s": self.timings}
+
+
+class _Timer:
+    def __init__(self):
+        self.t = {}
+
+    def add(self, key, dt):
+        self.t[key] = self.t.get(key, 0.0) + dt
+
+
+def run_nightly(inbox, config: NightlyConfig | None = None, db_url: str | None = None, store: Store | None = None,
+                quarantine_dir=None, workers: int = 1, dask=None, settle_s: float = 0.0,
+                lease_s: float = DEFAULT_LEASE_S, progress: bool = False) -> NightlyResult:
+    """Score every complete, unscored session in ``inbox`` once; see the module docstring.
+
+    Parameters
+    ----------
+    inbox : folder scanned recursively.
+    config : from :func:`scorer.qc.config.load_config` (None: :func:`default_config`).
+    db_url : SQLAlchemy URL (default: SQLite file ``limen-nightly.sqlite`` beside the inbox).
+    store : an open :class:`Store` (instead of ``db_url``).
+    quarantine_dir : where unusable files go (default ``<inbox>/quarantine``, skipped by the scan).
+    workers : local processes scoring sessions in parallel.
+    dask : a Dask scheduler address (``tcp://host:8786``) or cluster object: score there instead.
+    settle_s : files modified less than this many seconds ago are left for the next run (still arriving).
+    lease_s : a claim not renewed for this long is taken over by another run.
+    """
+    t_start = time.perf_counter()
+    inbox = Path(inbox)
+    if not inbox.is_dir():
+        raise LimenError("inbox is not a folder", inbox)
+    config = config or default_config()
+    own_store = store is None
+    store = store or open_store(db_url or default_db_url(inbox.resolve().parent))
+    qdir = Path(quarantine_dir) if quarantine_dir else inbox / "quarantine"
+    result = NightlyResult(db=_display(store.url))
+    tm = _Timer()
+    try:
+        _scan(inbox, qdir, config, store, settle_s, result, tm, progress)
+        fault_point("scanned")
+        _score(config, store, qdir, workers, dask, lease_s, result, tm, progress)
+        t = time.perf_counter()
+        for key, imgs in sorted(store.free_groups().items()):
+            det = config.by_name(imgs[0]["detector"])
+            result.waiting.append({"detector": imgs[0]["detector"], "session_date": imgs[0]["session_date"],
+                                   "group": key, "images": len(imgs), "needed": det.min_images})
+        tm.add("db_s", time.perf_counter() - t)
+        if config.smtp is not None:
+            _email(config, store, result)
+    finally:
+        if own_store:
+            store.close()
+    tm.add("wall_s", time.perf_counter() - t_start)
+    result.timings = {k: round(v, 4) for k, v in tm.t.items()}
+    return result
+
+
+def _display(url: str) -> str:
+    from scorer.qc.store import _display as d
+
+    return d(url)
+
+
+# --------------------------------------------------------------------------- scan
+def _scan(inbox, qdir, config, store, settle_s, result, tm, progress):
+    from tqdm import tqdm
+
+    t = time.perf_counter()
+    files = list_files(inbox, exclude=[qdir])
+    cache = store.file_cache()
+    tm.add("db_s", time.perf_counter() - t)
+    now = time.time()
+    hashed, remember = [], []
+    t = time.perf_counter()
+    for f in files:
+        try:
+            st = f.stat()
+        except FileNotFoundError:  # moved meanwhile (another run's quarantine)
+            continue
+        if settle_s and now - st.st_mtime < settle_s:
+            result.arriving.append(str(f))
+            continue
+        c = cache.get(str(f))
+        if c and c[0] == st.st_size and c[1] == str(st.st_mtime_ns):
+            hashed.append((f, c[2]))
+            continue
+        try:
+            sha = image_content_hash(f)
+        except LimenError:
+            continue  # vanished between listing and reading
+        hashed.append((f, sha))
+        remember.append((str(f), st.st_size, str(st.st_mtime_ns), sha))
+    tm.add("hash_s", time.perf_counter() - t)
+    t = time.perf_counter()
+    known = store.known_images(h for _, h in hashed)
+    bad = store.quarantined(h for _, h in hashed)
+    tm.add("db_s", time.perf_counter() - t)
+    new: list[InboxImage] = []
+    seen: dict[str, str] = {}
+    todo = []
+    for f, sha in hashed:
+        if sha in known:
+            if known[sha] != str(f) and Path(known[sha]).exists():
+                result.duplicates.append({"path": str(f), "same_as": known[sha]})
+            continue
+        if sha in seen:
+            result.duplicates.append({"path": str(f), "same_as": seen[sha]})
+            continue
+        seen[sha] = str(f)
+        todo.append((f, sha))
+    t = time.perf_counter()
+    bar = tqdm(todo, desc="reading new files", unit="file", file=sys.stderr, disable=not progress or len(todo) < 2)
+    for f, sha in bar:
+        if sha in bad:
+            _quarantine(store, qdir, str(f), sha, f"same content as a file quarantined before: {bad[sha]}", result)
+            continue
+        item = examine(f, sha, config)
+        if isinstance(item, InboxImage):
+            new.append(item)
+        else:
+            _quarantine(store, qdir, item.path, item.sha256, item.reason, result)
+    bar.close()
+    tm.add("read_s", time.perf_counter() - t)
+    t = time.perf_counter()
+    store.add_images(new)
+    store.remember_files(remember)
+    tm.add("db_s", time.perf_counter() - t)
+
+
+def _quarantine(store, qdir, path, sha, reason, result):
+    moved = quarantine_file(path, qdir, reason)
+    if moved is None:
+        return  # another run moved it first
+    store.record_quarantine(sha, path, moved, reason)
+    result.quarantined.append({"path": str(path), "reason": reason, "moved_to": str(moved)})
+
+
+# --------------------------------------------------------------------------- claim and score
+def _jobs(config, store, lease_s, tm, claims, skip):
+    """Claims for this round: stale claims taken over, then new complete sessions."""
+    jobs = []
+    t = time.perf_counter()
+    for sid, old in store.stale_claims():
+        token = store.take_over(sid, old, lease_s)
+        if token:
+            imgs = store.session_images(sid)
+            jobs.append(_job(config, sid, token, imgs))
+            claims[sid] = token
+    for key, imgs in sorted(store.free_groups().items()):
+        det = config.by_name(imgs[0]["detector"])
+        if len(imgs) < det.min_images or key in skip:
+            continue
+        got = store.claim(key, imgs, lease_s)
+        if got:
+            sid, token = got
+            jobs.append(_job(config, sid, token, imgs))
+            claims[sid] = token
+    tm.add("db_s", time.perf_counter() - t)
+    return jobs
+
+
+def _job(config, sid, token, imgs) -> SessionJob:
+    det = config.by_name(imgs[0]["detector"])
+    return SessionJob(session_id=sid, token=token, detector=det.name, session_date=imgs[0]["session_date"],
+                      group_key=imgs[0]["group_key"], paths=[im["path"] for im in imgs],
+                      shas=[im["sha256"] for im in imgs], layout=det.layout, observer=det.observer,
+                      methods=det.methods, conversion=det.conversion, blur=det.blur, limits=det.limits,
+                      human_factor=det.human_factor, n_boot=det.n_boot, seed=det.seed)
+
+
+def _score(config, store, qdir, workers, dask, lease_s, result, tm, progress):
+    from tqdm import tqdm
+
+    claims: dict[int, str] = {}
+    skip: set[str] = set()  # groups that failed as a whole in this run: not retried until the next run
+    with make_runner(workers, dask) as runner:
+        result.runner = runner.name
+        for _round in range(1000):  # each round re-forms sessions after a quarantined image
+            jobs = _jobs(config, store, lease_s, tm, claims, skip)
+            if not jobs:
+                break
+            fault_point("claimed")
+            retry = False
+            renewed = time.monotonic()
+            bar = tqdm(total=sum(len(j.paths) for j in jobs), desc="scoring sessions", unit="image",
+                       file=sys.stderr, disable=not progress)
+            for job, out in runner.run(jobs):
+                bar.update(len(job.paths))
+                tm.add("scoring_s", out.scoring_s)
+                fault_point("scored")
+                t = time.perf_counter()
+                det = config.by_name(job.detector)
+                if out.ok:
+                    alerts = store.write_session(out, det, config.alerts)
+                    claims.pop(job.session_id, None)
+                    if alerts is not None:
+                        result.scored_images += len(job.paths)
+                        verdict = out.overall_verdict
+                        result.sessions_scored.append({"id": job.session_id, "detector": job.detector,
+                                                       "session_date": job.session_date, "images": len(job.paths),
+                                                       "overall_verdict": verdict, "alerts": len(alerts)})
+                        result.alerts += [a.to_dict() for a in alerts]
+                    fault_point("committed")
+                elif out.failed_sha:
+                    if store.release(job.session_id, job.token, out.failed_sha, out.failed_path, out.reason):
+                        moved = quarantine_file(out.failed_path, qdir, out.reason)
+                        if moved is not None:
+                            store.record_quarantine(out.failed_sha, out.failed_path, moved, out.reason)
+                            result.quarantined.append({"path": out.failed_path, "reason": out.reason,
+                                                       "moved_to": str(moved)})
+                        retry = True
+                    claims.pop(job.session_id, None)
+                else:
+                    store.release(job.session_id, job.token)
+                    claims.pop(job.session_id, None)
+                    skip.add(job.group_key)
+                    result.errors.append(f"session of {job.detector} ({len(job.paths)} images) not scored: "
+                                         f"{out.reason}")
+                if time.monotonic() - renewed > lease_s / 3:
+                    store.renew(claims, lease_s)
+                    renewed = time.monotonic()
+                tm.add("db_s", time.perf_counter() - t)
+            bar.close()
+            if not retry:
+                break
+
+
+def _email(config, store, result):
+    from scorer.qc.mail import send_alerts
+
+    pending = store.alerts(unsent_only=True)
+    if not pending:
+        return
+    try:
+        send_alerts(config.smtp, pending, config.programme)
+    except LimenError as exc:
+        result.errors.append(str(exc))
+        return
+    store.mark_emailed(a["id"] for a in pending)
+    result.emailed = len(pending)

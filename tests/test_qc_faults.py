@@ -1,0 +1,151 @@
+"""Crash and concurrency tests of `limen nightly`: a run killed with SIGKILL at many points, then re-run,
+scores every session exactly once and loses nothing; two runs at once never score a session twice.
+
+The invariants are the issue's specification, checked in the database itself (tests/qc_helpers.py
+check_database): every image bound to exactly one scored session, no claim left, every scored session
+complete (thresholds for every diameter and method, responses for every site of every image).
+"""
+
+import json
+import os
+import random
+import shutil
+import signal
+import subprocess
+import sys
+import time
+
+import pytest
+
+from qc_helpers import D1, D2, check_database, night, write_config
+
+N_SESSIONS = 3
+
+
+@pytest.fixture(scope="module")
+def template(tmp_path_factory):
+    root = tmp_path_factory.mktemp("template")
+    inbox = root / "inbox"
+    night(inbox, D1, ["direct", "indirect"], seed=21)
+    night(inbox, D2, ["direct"], seed=22)
+    (inbox / "notes.txt").write_text("not an image\n")
+    write_config(root / "cfg", n_boot=30)
+    return root
+
+
+def _copy(template, dest):
+    shutil.copytree(template, dest)
+    return dest / "inbox", dest / "cfg" / "nightly.toml"
+
+
+def _cmd(inbox, cfg, db, *extra):
+    return [sys.executable, "-m", "scorer.cli", "nightly", "--inbox", str(inbox), "--config", str(cfg), "--db", db,
+            "--settle-seconds", "0", "--json", *extra]
+
+
+def _env(fault=None):
+    env = dict(os.environ)
+    env.pop("LIMEN_FAULT_INJECT", None)
+    if fault:
+        env["LIMEN_FAULT_INJECT"] = fault
+    return env
+
+
+def _check_quarantine(inbox):
+    q = inbox / "quarantine"
+    assert sorted(p.name for p in q.iterdir()) == ["notes.txt", "notes.txt.reason.txt"]
+    assert not (inbox / "notes.txt").exists()
+
+
+@pytest.mark.parametrize("fault,workers", [("scanned", 1), ("claimed", 1), ("scored:2", 1), ("mid-write:2", 1),
+                                           ("committed:1", 1), ("committed:3", 1), ("quarantine", 1),
+                                           ("mid-write:1", 2)])
+def test_killed_run_then_rerun_scores_every_session_exactly_once(template, tmp_path, fault, workers):
+    inbox, cfg = _copy(template, tmp_path / "w")
+    db = f"sqlite:///{tmp_path / 'n.sqlite'}"
+    extra = ["--workers", str(workers)] if workers > 1 else []
+    killed = subprocess.run(_cmd(inbox, cfg, db, *extra), env=_env(fault), capture_output=True, text=True,
+                            timeout=300)
+    assert killed.returncode == -signal.SIGKILL, killed.stderr[-2000:]
+    again = subprocess.run(_cmd(inbox, cfg, db, *extra), env=_env(), capture_output=True, text=True, timeout=300)
+    assert again.returncode == 0, again.stderr[-2000:]
+    point, _, nth = fault.partition(":")
+    n = int(nth or 1)
+    first_done = n if point == "committed" else n - 1 if point in ("scored", "mid-write") else 0
+    assert json.loads(again.stdout)["sessions_scored"] == N_SESSIONS - first_done
+    check_database(db, N_SESSIONS, images_per_session=4)
+    _check_quarantine(inbox)
+
+
+def test_killed_at_random_moments(template, tmp_path):
+    rnd = random.Random(7)
+    for k in range(2):
+        inbox, cfg = _copy(template, tmp_path / f"w{k}")
+        db = f"sqlite:///{tmp_path / f'n{k}.sqlite'}"
+        p = subprocess.Popen(_cmd(inbox, cfg, db), env=_env(), stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+        time.sleep(rnd.uniform(1.0, 3.5))
+        p.send_signal(signal.SIGKILL)
+        p.wait(timeout=60)
+        again = subprocess.run(_cmd(inbox, cfg, db), env=_env(), capture_output=True, text=True, timeout=300)
+        assert again.returncode == 0, again.stderr[-2000:]
+        check_database(db, N_SESSIONS, images_per_session=4)
+        _check_quarantine(inbox)
+
+
+def _concurrent(template, tmp_path, db):
+    inbox, cfg = _copy(template, tmp_path / "w")
+    procs = [subprocess.Popen(_cmd(inbox, cfg, db), env=_env(), stdout=subprocess.PIPE, stderr=subprocess.PIPE,
+                              text=True) for _ in range(2)]
+    outs = [p.communicate(timeout=300) for p in procs]
+    for p, (out, err) in zip(procs, outs):
+        assert p.returncode == 0, err[-2000:]
+    results = [json.loads(out) for out, _ in outs]
+    assert sum(r["sessions_scored"] for r in results) == N_SESSIONS
+    ids = [s["id"] for r in results for s in r["sessions"]]
+    assert len(ids) == len(set(ids)) == N_SESSIONS
+    assert sum(len(r["quarantined"]) for r in results) == 1
+    check_database(db, N_SESSIONS, images_per_session=4)
+    _check_quarantine(inbox)
+    return results
+
+
+def test_two_runs_at_once_never_score_a_session_twice_sqlite(template, tmp_path):
+    _concurrent(template, tmp_path, f"sqlite:///{tmp_path / 'c.sqlite'}")
+
+
+def test_two_runs_at_once_never_score_a_session_twice_postgresql(template, tmp_path, postgres_url):
+    _concurrent(template, tmp_path, postgres_url)
+
+
+def test_claims_are_compare_and_set(tmp_path):
+    """Direct check of the claim: a second claim on the same images fails; a live claim is not taken over."""
+    from scorer.qc import load_config, open_store
+    from scorer.qc.inbox import examine
+
+    inbox = tmp_path / "inbox"
+    files = night(inbox, D1, ["direct"], seed=3)
+    cfg = load_config(write_config(tmp_path / "cfg"))
+    store = open_store(f"sqlite:///{tmp_path / 'k.sqlite'}")
+    from scorer.images import image_content_hash
+
+    store.add_images([examine(f, image_content_hash(f), cfg) for f in files])
+    (key, imgs), = store.free_groups().items()
+    first = store.claim(key, imgs)
+    assert first is not None
+    assert store.claim(key, imgs) is None                 # every image already bound
+    assert store.claim(key, imgs[:1]) is None
+    assert store.stale_claims() == []                     # our own live claim
+    gone = subprocess.Popen([sys.executable, "-c", "pass"])
+    gone.wait()
+    from sqlalchemy import update
+
+    from scorer.qc.store import SessionRow
+
+    with store.transaction() as s:                        # the holder was a process of this host that has ended
+        s.execute(update(SessionRow).values(claim_pid=gone.pid))
+    assert store.stale_claims() == [(first[0], first[1])]
+    assert store.take_over(first[0], "not-the-token") is None
+    token = store.take_over(first[0], first[1])
+    assert token is not None and store.take_over(first[0], first[1]) is None   # only one run takes it over
+    assert store.stale_claims() == []
+    store.close()
