@@ -11,6 +11,7 @@ matplotlib.use("Agg")
 import matplotlib.pyplot as plt  # noqa: E402
 import numpy as np  # noqa: E402
 
+from scorer.observer.npw import METHOD_TEXT  # noqa: E402
 from scorer.observer.psychometric import fit_psychometric  # noqa: E402
 from scorer.reports.html import error_bars, figure_to_svg, html_page, table_html, write_json  # noqa: E402
 
@@ -150,7 +151,7 @@ def render_html(result, overlays: list[Path], command: str = "") -> str:
             rows.append({"diameter (mm)": p.diameter_mm, "method": METHOD_LABEL[method],
                          "threshold (%)": 100 * p.threshold_contrast, "95 % CI low (%)": 100 * p.ci_low,
                          "95 % CI high (%)": 100 * p.ci_high, "images": p.n_images, "note": p.note})
-    sections.append(("Threshold contrast", table_html(rows, left=["method", "note"])))
+    sections.append(("Threshold contrast", table_html(rows, left=["method", "note"]) + METHOD_TEXT))
     if result.verdicts is not None:
         vrows = [{"diameter (mm)": v.diameter_mm, "compared threshold (%)": 100 * v.threshold_contrast,
                   "CI (%)": f"{100 * v.ci_low:.3g}–{100 * v.ci_high:.3g}" if np.isfinite(v.ci_low) else "—",
