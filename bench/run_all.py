@@ -6,7 +6,7 @@ import importlib
 import sys
 import time
 
-BENCHES = ["bench_simulate", "bench_register", "bench_score", "bench_detector", "bench_analyse"]
+BENCHES = ["bench_simulate", "bench_register", "bench_score", "bench_detector", "bench_analyse", "bench_observer_coverage"]
 
 
 def main() -> int:
