@@ -6,7 +6,8 @@ import importlib
 import sys
 import time
 
-BENCHES = ["bench_simulate", "bench_register", "bench_score", "bench_detector", "bench_analyse", "bench_nightly"]
+BENCHES = ["bench_simulate", "bench_register", "bench_score", "bench_detector", "bench_analyse", "bench_nightly",
+           "bench_observer_coverage"]
 
 
 def main() -> int:

@@ -321,7 +321,7 @@ def _read_dicom(data: bytes, path: Path, meta: ImageMetadata):
     if truncated:
         raise LimenError(f"truncated DICOM file ({truncated})", path)
 
-    _fill_dicom_metadata(ds, meta)
+    fill_dicom_metadata(ds, meta)
 
     pixel_keywords = ("PixelData", "FloatPixelData", "DoubleFloatPixelData")
     if not any(k in ds for k in pixel_keywords):
@@ -466,7 +466,7 @@ def _dicom_spacing(ds, path: Path, meta: ImageMetadata):
     return None, ""
 
 
-def _fill_dicom_metadata(ds, meta: ImageMetadata) -> None:
+def fill_dicom_metadata(ds, meta: ImageMetadata) -> None:
     meta.modality = _text(ds, "Modality")                        # (0008,0060)
     meta.detector_type = _text(ds, "DetectorType")               # (0018,7004)
     intent = _text(ds, "PresentationIntentType")                 # (0008,0068)

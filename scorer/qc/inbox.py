@@ -125,7 +125,7 @@ def _quick_metadata(path: Path):
     """
     import pydicom
     from scorer.images.image import ImageMetadata
-    from scorer.images.io import _fill_dicom_metadata  # the same tags load_image reads
+    from scorer.images.io import fill_dicom_metadata  # the same tags load_image reads
 
     try:
         with path.open("rb") as fh:
@@ -145,7 +145,7 @@ def _quick_metadata(path: Path):
         if any(int(ds.get(k) or 1) > 1 for k in ("SamplesPerPixel", "NumberOfFrames")):
             return None
         meta = ImageMetadata(source_path=str(path), file_format="dicom")
-        _fill_dicom_metadata(ds, meta)
+        fill_dicom_metadata(ds, meta)
         return meta
     except Exception:  # any oddity: let load_image judge and explain
         return None

@@ -11,6 +11,7 @@ matplotlib.use("Agg")
 import matplotlib.pyplot as plt  # noqa: E402
 import numpy as np  # noqa: E402
 
+from scorer.observer.npw import METHOD_TEXT  # noqa: E402
 from scorer.observer.psychometric import fit_psychometric  # noqa: E402
 from scorer.reports.html import error_bars, figure_to_svg, html_page, plain_log_ticks, table_html, write_json  # noqa: E402
 
@@ -192,7 +193,7 @@ def render_html(result, overlays: list[Path], command: str = "") -> str:
                          "contrasts offered (%)": "—" if p.offered_min is None
                          else f"{100 * p.offered_min:.3g}–{100 * p.offered_max:.3g}",
                          "images": p.n_images, "note": p.note})
-    sections.append(("Threshold contrast", table_html(rows, left=["method", "note"])))
+    sections.append(("Threshold contrast", table_html(rows, left=["method", "note"]) + METHOD_TEXT))
     if result.verdicts is not None:
         def lim(x, v):
             return "—" if x is None else f"{100 * x:.3g}" + (" (interpolated)" if v.limit_interpolated else "")
