@@ -52,6 +52,9 @@ def test_out_writes_report_and_tables(study_files, tmp_path):
         assert (tmp_path / "out" / name).is_file(), name
     page = (tmp_path / "out" / "report.html").read_text()
     assert "never replace" in page and page.count("<svg") >= 4      # curves ×2, forest, Bland–Altman
+    # the page says the readers are simulated, and shows contrasts in % with readable headings
+    assert "Simulated readers:" in page
+    assert "threshold (%)" in page and "threshold_contrast" not in page
 
 
 def test_bad_table_exits_2_with_one_line(study_files):

@@ -232,3 +232,15 @@ def test_dqe_above_one_beyond_its_ci_is_flagged():
     assert good.warnings == [] and np.all(good.ci_low <= good.value) and np.all(good.value <= good.ci_high)
     bad = compute_dqe(mtf, nnps, k * 1e-3, q)
     assert bad.warnings and "exceeds 1 beyond its uncertainty" in bad.warnings[0]
+
+
+def test_2d_nnps_display_masks_zero_frequency():
+    # the detrended NNPS is ~0 at f = 0; on a log colour scale that one bin would span decades and flatten
+    # the rest (common practice: exclude the DC bin, clip the scale at percentiles)
+    from scorer.reports.detector import nnps_display_scale
+
+    f = np.fft.fftshift(np.fft.fftfreq(8))
+    img = np.zeros((8, 8))
+    img[4, 4] = -30.0
+    out = nnps_display_scale(img, f, f)
+    assert np.isnan(out[4, 4]) and np.nanmin(out) == 0.0

@@ -597,8 +597,8 @@ def draw_overlay(image: Image, layout: Layout, placement: Placement | None, out_
             [Circle((x[1], x[0]), 0.5 * m.diameter_mm * scale) for m, x in zip(layout.markers, mk)],
             facecolor="none", edgecolor="lime", linewidth=1.2))
         for m, x in zip(layout.markers, mk):
-            ax.annotate(m.id, (x[1], x[0]), xytext=(6, -6), textcoords="offset points",
-                        color="lime", fontsize=9)
+            ax.annotate(m.id, (x[1], x[0]), xytext=(8, -8), textcoords="offset points", color="lime", fontsize=11,
+                        fontweight="bold", bbox={"boxstyle": "round,pad=0.15", "fc": "black", "ec": "none", "alpha": 0.6})
         meas = np.array(list(placement.markers_px.values()))
         if len(meas):
             ax.plot(meas[:, 1], meas[:, 0], "+", color="red", markersize=10, mew=1.2)
@@ -608,7 +608,23 @@ def draw_overlay(image: Image, layout: Layout, placement: Placement | None, out_
     else:
         lines.append(f"not registered: {len(candidates_px)} blob(s) found")
     fig.suptitle("\n".join(_wrap(x) for x in lines), fontsize=10)
-    fig.savefig(out, format="png")
+    from matplotlib.lines import Line2D
+
+    key = [Line2D([], [], color="yellow", ls="--", label="blob found"),
+           Line2D([], [], color="lime", label="marker (fitted)"), Line2D([], [], color="red", marker="+", ls="",
+                                                                      label="marker centre measured"),
+           Line2D([], [], color="deepskyblue", label="candidate site"),
+           Line2D([], [], color="orange", ls="--", label="site holding the disc"),
+           Line2D([], [], color="cyan", label="phantom outline")]
+    ax.legend(handles=key, loc="lower right", fontsize=9, framealpha=0.85, facecolor="black", labelcolor="white",
+              edgecolor="0.5")
+    import io
+
+    from scorer.files import atomic_write_bytes
+
+    buf = io.BytesIO()
+    fig.savefig(buf, format="png")
+    atomic_write_bytes(out, buf.getvalue())
     return out
 
 

@@ -6,7 +6,7 @@ import html
 
 import numpy as np
 
-from scorer.reports.html import figure_to_svg, html_page, table_html
+from scorer.reports.html import display_records, figure_to_svg, html_page, plain_log_ticks, table_html
 
 
 def summary_rows(d: dict) -> list[tuple[str, str]]:
@@ -96,15 +96,26 @@ def _dqe_plot(curves: dict[str, tuple]) -> str:
     return figure_to_svg(fig)
 
 
+def nnps_display_scale(log_nnps: np.ndarray, fv, fu) -> np.ndarray:
+    """The 2-D log NNPS with the zero-frequency bin masked (NaN): after detrending it holds ~nothing and would
+    otherwise stretch the colour scale over decades and hide the structure."""
+    out = np.array(log_nnps, dtype=float)
+    iv, iu = int(np.argmin(np.abs(np.asarray(fv)))), int(np.argmin(np.abs(np.asarray(fu))))
+    out[iv, iu] = np.nan
+    return out
+
+
 def _nnps_2d_plot(nnps) -> str:
     plt = _plt()
     fv, fu = nnps.frequency_2d_per_mm
     fig, ax = plt.subplots(figsize=(5.0, 4.4))
     img = np.log10(np.clip(nnps.nnps_2d_mm2, 1e-30, None))
-    im = ax.imshow(img, extent=(fu[0], fu[-1], fv[-1], fv[0]), cmap="viridis")
+    img = nnps_display_scale(img, fv, fu)
+    lo, hi = np.nanpercentile(img, [2, 98])
+    im = ax.imshow(img, extent=(fu[0], fu[-1], fv[-1], fv[0]), cmap="viridis", vmin=lo, vmax=hi)
     ax.set_xlabel("u (cycles/mm)")
     ax.set_ylabel("v (cycles/mm)")
-    ax.set_title("2-D NNPS, log10(mm²)")
+    ax.set_title("2-D NNPS, log10(mm²); colour scale 2nd–98th percentile, f = 0 masked", fontsize=9)
     fig.colorbar(im, ax=ax)
     return figure_to_svg(fig)
 
@@ -112,6 +123,7 @@ def _nnps_2d_plot(nnps) -> str:
 def _thresholds_plot(series: dict[str, list[dict]]) -> str:
     fig, ax = _fig("Threshold contrast", "disc diameter (mm)", "threshold contrast (%)", logy=True)
     ax.set_xscale("log")
+    plain_log_ticks(ax)
     for label, rows in series.items():
         rows = sorted((r for r in rows if r.get("threshold_contrast") is not None), key=lambda r: r["diameter_mm"])
         if not rows:
@@ -180,9 +192,11 @@ def detector_report_html(result: dict, metrics=None, title: str = "Limen detecto
         sections.append(("Predicted threshold contrast",
                          _figure(_thresholds_plot(_by_observer(result["predicted"], "predicted")),
                                  "From the MTF and NNPS (NPW/NPWE, ICRU Report 54 Fourier form).")
-                         + table_html(result["predicted"], columns=["observer", "diameter_mm", "threshold_contrast",
-                                                                     "dprime_per_unit_contrast", "criterion_pc",
-                                                                     "m_alternatives"], left=("observer",))))
+                         + table_html(*display_records(result["predicted"], ["observer", "diameter_mm",
+                                                                             "threshold_contrast",
+                                                                             "dprime_per_unit_contrast",
+                                                                             "criterion_pc", "m_alternatives"]),
+                                      left=("observer",))))
     sections.append(("Method", _METHOD))
     return html_page(title, sections, meta={"inputs": result.get("inputs")})
 
@@ -249,7 +263,7 @@ def compare_report_html(comparison: dict, a: dict, b: dict, title: str = "Limen 
         sections.append(("Threshold contrast: predicted and scored",
                          _figure(_thresholds_plot(series), "Dashed: predicted from MTF and NNPS; solid: scored "
                                                            "from phantom images.")
-                         + table_html(th, columns=["detector", "source", "diameter_mm", "threshold_contrast",
-                                                   "ci_low", "ci_high"], left=("detector", "source"))))
+                         + table_html(*display_records(th, ["detector", "source", "diameter_mm", "threshold_contrast",
+                                                            "ci_low", "ci_high"]), left=("detector", "source"))))
     sections.append(("Method", _METHOD))
     return html_page(title, sections, meta={"inputs": comparison.get("inputs")})

@@ -185,3 +185,42 @@ def plain_log_ticks(ax, axes: str = "xy") -> None:
         axis.set_major_locator(LogLocator(base=10, subs=(1.0, 2.0, 5.0)))
         axis.set_major_formatter(FuncFormatter(fmt))
         axis.set_minor_formatter(NullFormatter())
+
+
+#: readable column headings for the tables of every report
+READABLE = {
+    "diameter_mm": "diameter (mm)", "threshold_contrast": "threshold (%)", "ci_low": "95 % CI low (%)",
+    "ci_high": "95 % CI high (%)", "n_trials": "trials", "n_images": "images", "n_readers": "readers",
+    "human_threshold": "human threshold (%)", "model_threshold": "model threshold (%)",
+    "human_equivalent_threshold": "human-equivalent threshold (%)", "p_value": "p", "p_adjusted": "p (Holm)",
+    "dprime_per_unit_contrast": "d′ per unit contrast", "criterion_pc": "Pc at threshold",
+    "m_alternatives": "alternatives (M)", "observed_agreement": "observed agreement", "n_pairs": "pairs",
+}
+#: columns that hold contrasts (fractions in code, % on the page)
+CONTRAST_COLUMNS = {"threshold_contrast", "human_threshold", "model_threshold", "human_equivalent_threshold"}
+
+
+def display_records(records, columns, percent=CONTRAST_COLUMNS, ci_percent: bool = True) -> tuple[list[dict], list[str]]:
+    """Rows for :func:`table_html` with contrasts in % (3 significant figures) and readable headings.
+
+    ``ci_low``/``ci_high`` are shown in % too when ``ci_percent`` (they bound a contrast); pass False where they
+    bound a ratio or a factor.
+    """
+    pct = set(percent) | ({"ci_low", "ci_high"} if ci_percent else set())
+    rows = []
+    for r in records:
+        row = {}
+        for c in columns:
+            v = r.get(c)
+            if c in pct and isinstance(v, (int, float, np.floating)) and np.isfinite(v):
+                v = f"{100 * float(v):.3g}"
+            heading = READABLE.get(c, c.replace("_", " "))
+            if c in ("ci_low", "ci_high") and not ci_percent:
+                heading = heading.replace(" (%)", "")
+            row[heading] = v
+        rows.append(row)
+    headings = []
+    for c in columns:
+        h = READABLE.get(c, c.replace("_", " "))
+        headings.append(h.replace(" (%)", "") if c in ("ci_low", "ci_high") and not ci_percent else h)
+    return rows, headings

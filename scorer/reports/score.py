@@ -217,12 +217,13 @@ def render_html(result, overlays: list[Path], command: str = "") -> str:
                      "M-AFC decisions per target over the images (M as in the layout: 3 or 5 on the demo plate), with the "
                      "maximum-likelihood M-AFC psychometric "
                      "function (dotted: chance).</figcaption></figure>"))
+    measured = isinstance(result.settings.get("blur"), dict) and "MTF" in str(result.settings["blur"].get("source"))
     reg_rows = [{"image": s.image_id, "residual (px)": s.placement.residual_px,
                  "max residual (px)": s.placement.max_residual_px, "rotation (°)": s.placement.rotation_deg,
                  "flipped": "yes" if s.placement.flipped else "no", "magnification": s.placement.magnification,
-                 "blur σ (px)": s.blur_sigma_px, "proportion correct": s.n_correct / max(s.n_trials, 1)}
+                 "template blur": "measured MTF" if measured else f"Gaussian σ {s.blur_sigma_px:.2f} px (markers)", "proportion correct": s.n_correct / max(s.n_trials, 1)}
                 for s in result.images]
-    reg_html = table_html(reg_rows, left=["image", "flipped"])
+    reg_html = table_html(reg_rows, left=["image", "flipped", "template blur"])
     if overlays:
         reg_html += "<div>" + "".join(_thumb(p) for p in overlays[:12]) + "</div>"
     sections.append(("Images and registration", reg_html))

@@ -13,7 +13,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from scorer.reports.html import error_bars, figure_to_svg, html_page, table_html, write_json
+from scorer.reports.html import READABLE, display_records, error_bars, figure_to_svg, html_page, plain_log_ticks, table_html, write_json
 
 
 def _plt():
@@ -55,6 +55,7 @@ def curves_figure(a, level) -> str:
                     label=f"{hm['observer']} × factor {hm['factor']:.2f} (human-equivalent)")
     ax.set_xscale("log")
     ax.set_yscale("log")
+    plain_log_ticks(ax)
     ax.set_xlabel("disc diameter (mm)")
     ax.set_ylabel("threshold contrast (%)")
     ax.set_title(f"{by} {level}")
@@ -93,6 +94,12 @@ def bland_altman_figure(ba: dict, observer: str) -> str:
     return figure_to_svg(fig)
 
 
+def _table(df: pd.DataFrame, cols, left=(), ci_percent: bool = True) -> str:
+    rows, heads = display_records(_records(df, cols), [c for c in cols if df is not None and c in df.columns],
+                                  ci_percent=ci_percent)
+    return table_html(rows, heads, left=[READABLE.get(c, c.replace("_", " ")) for c in left])
+
+
 def _records(df: pd.DataFrame, cols) -> list[dict]:
     if df is None or not len(df):
         return []
@@ -128,6 +135,9 @@ def report_html(a, meta: dict | None = None) -> str:
     summary = (f"<p>{len(a.readers)} reader(s); {a.m_alternatives}-alternative forced choice; threshold criterion "
                f"Pc = {a.criterion_pc:.4g} (halfway between chance and 1 unless set); {a.n_boot} bootstrap "
                f"resamples, seed {a.seed}. Contrasts are shown in percent.</p>")
+    if any(n.startswith("Simulated readers") for n in a.notes):
+        summary = ("<p class='fail'><b>Simulated readers:</b> the trials on this page come from a documented "
+                   "observer model, not from people (invented demo data).</p>") + summary
     if a.notes:
         summary += "<p><strong>Notes</strong></p><ul>" + "".join(f"<li>{html.escape(n)}</li>" for n in a.notes) + "</ul>"
     sections.append(("Study", summary))
@@ -142,26 +152,30 @@ def report_html(a, meta: dict | None = None) -> str:
                      "<p>Population-averaged threshold from a GEE whose mean is the linear-observer M-AFC "
                      "function Pc<sub>M</sub>(k·C) (guess rate 1/M built in), reader clusters, bias-reduced "
                      "robust standard errors, t interval with readers − 1 degrees of freedom.</p>"
-                     + table_html(_records(a.pooled_curves, cols + ["n_readers"]), left=["reader", by, "note"])))
+                     + _table(a.pooled_curves, cols + ["n_readers"], left=["reader", by, "note"])))
     sections.append(("Between-reader variation", table_html(_records(a.cv, list(a.cv.columns)), left=[by])))
     sections.append(("Per-reader thresholds (bootstrap over images within reader)",
-                     table_html(_records(a.reader_curves, cols), left=["reader", by, "note"])))
+                     _table(a.reader_curves, cols, left=["reader", by, "note"])))
     if len(a.model_curves):
-        sections.append(("Model observer", table_html(_records(a.model_curves, cols), left=["reader", by, "note"])))
+        sections.append(("Model observer", _table(a.model_curves, cols, left=["reader", by, "note"])))
     if len(a.comparison):
         sents = "<ul>" + "".join(f"<li>{html.escape(s)}</li>" for s in a.comparison["sentence"]) + "</ul>"
         sections.append((f"{by.capitalize()} comparison (mixed model on log thresholds, Holm-adjusted)",
                          sents + f"<figure>{forest_figure(a)}</figure>"
-                         + table_html(_records(a.comparison, ["level", "reference", "diameter_mm", "ratio", "ci_low",
-                                                              "ci_high", "p_value", "p_adjusted", "n_readers",
-                                                              "method"]), left=["level", "reference", "method"])))
+                         + _table(a.comparison, ["level", "reference", "diameter_mm", "ratio", "ci_low", "ci_high",
+                                                 "p_value", "p_adjusted", "n_readers", "method"],
+                                  left=["level", "reference", "method"], ci_percent=False)))
     hm = a.human_model
     if hm and hm.get("factor") is not None:
         body = (f"<p>Human/model ({html.escape(hm['observer'])}) threshold factor over all diameters: "
                 f"<strong>{hm['factor']:.3g}</strong> (95 % CI {hm['ci_low']:.3g}–{hm['ci_high']:.3g}; bootstrap "
                 f"over readers and images). Multiply the model's thresholds by it for human-equivalent values.</p>")
-        body += table_html(hm["per_diameter"], [by, "diameter_mm", "human_threshold", "model_threshold", "factor",
-                                                "ci_low", "ci_high", "human_equivalent_threshold"], left=[by])
+        rows, heads = display_records(hm["per_diameter"], [by, "diameter_mm", "human_threshold", "model_threshold",
+                                                           "factor", "ci_low", "ci_high", "human_equivalent_threshold"],
+                                      ci_percent=False)
+        for r in rows:
+            r["factor"] = None if r.get("factor") is None else f"{r['factor']:.3g}"
+        body += table_html(rows, heads, left=[by]) + "<p class='meta'>CI columns: 95 % CI of the factor.</p>"
         if hm.get("bland_altman"):
             ba = hm["bland_altman"]
             body += (f"<figure>{bland_altman_figure(ba, hm['observer'])}<figcaption>Bias {ba['bias_log10']:.3f} "

@@ -45,6 +45,9 @@ import pandas as pd
 
 from scorer.observer.mafc import dprime_for_pc, halfway_criterion
 
+#: value of the optional ``source`` column in trials made by this module
+SIMULATED_SOURCE = "simulated reader model"
+
 TRIAL_COLUMNS = ["reader", "detector", "image", "target", "diameter_mm", "contrast",
                  "chosen_site", "true_site", "correct"]
 
@@ -184,6 +187,7 @@ def simulate_reader_study(rng: np.random.Generator, n_readers: int = 6, *,
                 human_rows.append(frame(name, chosen, rep, ms))
     trials = pd.concat(human_rows, ignore_index=True)
     model_trials = pd.concat(model_rows, ignore_index=True)
+    trials = trials.assign(source=SIMULATED_SOURCE)
     return SimulatedStudy(trials=trials, model_trials=model_trials, readers=readers,
                           truth=pd.DataFrame(truth), m_alternatives=m, criterion_pc=crit,
                           params={"detectors": detectors, "diameters_mm": diam.tolist(), "n_images": n_images,
@@ -284,4 +288,6 @@ def readers_from_responses(responses: pd.DataFrame, readers: pd.DataFrame, rng: 
                     "correct": (chosen == true_site).astype(int),
                     "response_ms": np.round(rng.lognormal(np.log(2500), 0.4, chosen.size)).astype(int),
                     "session": rep + 1, "repeat": rep}))
-    return pd.concat(out, ignore_index=True)
+    table = pd.concat(out, ignore_index=True)
+    table["source"] = SIMULATED_SOURCE   # a report of these trials must say the readers are not people
+    return table

@@ -739,6 +739,9 @@ def analyse_study(trials: pd.DataFrame, model: pd.DataFrame | None = None, *, by
             raise LimenError(f"model-observer table has {m_model} alternatives per target but the readers' has {m}")
     p = halfway_criterion(m) if criterion_pc is None else float(criterion_pc)
     notes = []
+    if "source" in trials.columns and trials["source"].astype(str).str.contains("simulated").any():
+        notes.append("Simulated readers: these trials come from Limen's documented observer model "
+                     "(scorer/study/reader_model.py), not from people; the figures illustrate the method only.")
     say("per-reader fits")
     rc = reader_curves(trials, m, rng, n_boot, by, p, ci)
     n_bad = int((~rc["converged"]).sum())
