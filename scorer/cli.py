@@ -22,6 +22,8 @@ _COMMANDS = {
     "detector": "detector",
     "compare_detectors": "compare_detectors",
     "analyse": "analyse",
+    "serve": "serve",
+    "users": "users",
 }
 
 
