@@ -107,7 +107,7 @@
       var mark = this.marks[k];
       c.lineWidth = (k === this.selected || mark ? 2 : 1) * dpr;
       c.strokeStyle = mark === "true" ? "rgba(127,183,126,0.95)" : (mark === "wrong" ? "rgba(199,116,107,0.95)"
-        : (k === this.selected ? "rgba(95,168,160,0.95)" : "rgba(160,165,170,0.45)"));
+        : (k === this.selected ? "rgba(95,168,160,0.95)" : "rgba(175,180,186,0.7)"));
       // four short arcs leave the site's centre and its surroundings untouched
       for (var q = 0; q < 4; q++) {
         c.beginPath(); c.arc(x, y, r, q * Math.PI / 2 + 0.35, (q + 1) * Math.PI / 2 - 0.35); c.stroke();
@@ -176,6 +176,7 @@
         v.setImage(data, size, size);
         v.window = 65535; v.level = 32767.5;   // fixed: stored grey levels shown as they are
         v.draw();
+        root.dataset.ready = String(Date.now());
       }).catch(function (err) { setStatus(err.message, "bad"); });
     }
     function pick(k) { v.selected = k; confirmBtn.disabled = false; v.drawOverlay(); }
@@ -249,12 +250,14 @@
           if (userWL) { v.window = userWL.window; v.level = userWL.level; } else { v.autoWindow(); }
           v.draw(); showWL(); setStatus("");
           shownAt = performance.now(); busy = false;
+          root.dataset.sites = JSON.stringify(trial.sites);   // for assistive tools and the browser tests
+          root.dataset.ready = trial.trial;
         });
       }).catch(function (err) { setStatus(err.message, "bad"); });
     }
     function submit() {
       if (!trial || busy || v.selected < 0) { return; }
-      busy = true; confirmBtn.disabled = true;
+      busy = true; confirmBtn.disabled = true; delete root.dataset.ready;
       var body = { chosen_site: v.selected, response_ms: Math.round(performance.now() - shownAt),
                    window: v.window, level: v.level, zoom: v.zoom, inverted: v.invert };
       fetchJSON(trial.response_url, body).then(function (r) {
