@@ -18,7 +18,7 @@ from sqlalchemy import func, select
 from sqlalchemy.exc import IntegrityError
 
 from webapp import services
-from webapp.models import Enrolment, ReadingSession, Response, Study, StudyImage, Trial
+from webapp.models import Enrolment, ReadingSession, Region, Response, Study, StudyImage, Trial
 from webapp.security import db, role_required
 
 bp = Blueprint("reading", __name__, url_prefix="/reading")
@@ -59,13 +59,17 @@ def _passed_session(study_id: int) -> ReadingSession | None:
 
 
 def _counts(study_id: int) -> dict:
-    s = db()
-    base = (Trial.study_id == study_id, Trial.reader_id == current_user.id)
-    total = s.scalar(select(func.count(Trial.id)).where(*base, Trial.practice.is_(False))) or 0
-    done = s.scalar(select(func.count(Response.id)).join(Trial).where(*base, Trial.practice.is_(False))) or 0
-    p_total = s.scalar(select(func.count(Trial.id)).where(*base, Trial.practice.is_(True))) or 0
-    p_done = s.scalar(select(func.count(Response.id)).join(Trial).where(*base, Trial.practice.is_(True))) or 0
-    return {"answered": done, "total": total, "practice_answered": p_done, "practice_total": p_total}
+    """Trials and answers of the signed-in reader, practice apart (one query)."""
+    rows = db().execute(select(Trial.practice, func.count(Trial.id), func.count(Response.id))
+                        .outerjoin(Response, Response.trial_id == Trial.id)
+                        .where(Trial.study_id == study_id, Trial.reader_id == current_user.id)
+                        .group_by(Trial.practice)).all()
+    out = {"answered": 0, "total": 0, "practice_answered": 0, "practice_total": 0}
+    for practice, n, answered in rows:
+        key = "practice_" if practice else ""
+        out[f"{key}total"] += int(n)
+        out[f"{key}answered"] += int(answered)
+    return out
 
 
 @bp.route("/")
@@ -177,9 +181,9 @@ def next_trial(study_id):
     counts = _counts(st.id)
     if st.status != "open":
         return jsonify(done=True, closed=True, **counts)
-    answered = select(Response.trial_id)
-    t = db().execute(select(Trial).where(Trial.study_id == st.id, Trial.reader_id == current_user.id,
-                                         Trial.id.not_in(answered)).order_by(Trial.seq).limit(1)).scalars().first()
+    t = db().execute(select(Trial).outerjoin(Response, Response.trial_id == Trial.id)
+                     .where(Trial.study_id == st.id, Trial.reader_id == current_user.id, Response.id.is_(None))
+                     .order_by(Trial.seq).limit(1)).scalars().first()
     if t is None:
         return jsonify(done=True, closed=False, **counts)
     reg = t.region
@@ -195,16 +199,18 @@ def next_trial(study_id):
 @bp.route("/api/trials/<public_id>/region")
 @reader_only
 def region(public_id):
-    t = _own_trial(public_id)
-    st = db().get(Study, t.study_id)
-    if st.status != "open":
+    # one query on the hot path: whose trial, is the study open, where is the crop, which stored image
+    row = db().execute(select(Trial.reader_id, Study.status, Study.region_rows, Study.region_cols, Region.row0,
+                              Region.col0, StudyImage.sha256)
+                       .join(Study, Study.id == Trial.study_id).join(Region, Region.id == Trial.region_id)
+                       .join(StudyImage, StudyImage.id == Region.image_id)
+                       .where(Trial.public_id == public_id)).first()
+    if row is None or row.reader_id != current_user.id or row.status != "open":
         abort(404)
-    reg = t.region
-    sha = db().scalar(select(StudyImage.sha256).where(StudyImage.id == reg.image_id))
-    body = services.region_bytes(current_app.config["STORE_DIR"], sha, reg.row0, reg.col0, st.region_rows,
-                                 st.region_cols)
+    body = services.region_bytes(current_app.config["STORE_DIR"], row.sha256, row.row0, row.col0, row.region_rows,
+                                 row.region_cols)
     return FlaskResponse(body, mimetype="application/octet-stream",
-                         headers={"X-Rows": str(st.region_rows), "X-Cols": str(st.region_cols)})
+                         headers={"X-Rows": str(row.region_rows), "X-Cols": str(row.region_cols)})
 
 
 @bp.route("/api/trials/<public_id>/response", methods=["POST"])
