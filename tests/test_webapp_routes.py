@@ -36,6 +36,7 @@ MATRIX = {
     "analysis.page": ("GET", COORD),
     "analysis.report": ("GET", COORD),
     "analysis.analysis_json": ("GET", COORD),
+    "analysis.plan": ("GET", COORD),
     "reading.home": ("GET", READER_HOME),
     "reading.check": ("GET", STUDY_READER),
     "reading.check_pattern": ("GET", STUDY_READER),

@@ -302,3 +302,30 @@ def test_analysis_page_shows_readers_against_the_model(tmp_path):
     import json
     a = json.loads(cc.get(f"/analysis/studies/{sid}/analysis.json").text)
     assert a["human_model_factor"]["observer"] == "npwe" and sorted(a["readers"]) == ["reader1", "reader2"]
+
+
+def test_planning_page_estimates_power_from_a_stated_spread_and_refuses_oversized_requests(tmp_path):
+    app = make_app(tmp_path)
+    from webapp.demo import ensure_user
+    from webapp.security import db
+    with app.app_context():
+        ensure_user(db(), "coordinator", "coordinator", PASSWORDS["coordinator"])
+        db().commit()
+    c = app.test_client()
+    tok = login(c, "coordinator")
+    assert "Estimate power" in c.get("/analysis/plan").text
+    form = {"csrf_token": tok, "ratio": "2.0", "diameter_mm": "0.25", "target_power": "50", "alpha": "0.05",
+            "readers": "4", "images": "8", "n_sim": "10", "seed": "4", "source": "stated", "median_factor": "1.6",
+            "cv_between": "15"}
+    r = c.post("/analysis/plan", data=form)
+    assert r.status_code == 200, r.text
+    assert 'id="power-table"' in r.text and "stated between-reader spread" in r.text
+    # the page shows what scorer.study.power_by_simulation computes for the same settings
+    from scorer.study import ReaderPopulation, power_by_simulation
+    ref = power_by_simulation(2.0, (4,), (8,), population=ReaderPopulation(1.6, 0.15), diameter_mm=0.25,
+                              target_power=0.5, n_sim=10, n_boot=50, seed=4)
+    assert f"{ref.cells['power'].iloc[0] * 100:.0f} %" in r.text
+    r = c.post("/analysis/plan", data={**form, "readers": "4, 6, 8", "images": "8, 16, 32", "n_sim": "100"})
+    assert r.status_code == 400 and "more than 400" in r.text
+    r = c.post("/analysis/plan", data={**form, "readers": "four"})
+    assert r.status_code == 400 and "whole numbers" in r.text
