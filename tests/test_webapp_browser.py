@@ -11,7 +11,6 @@ reading screen and the analysis page are kept in tests/artifacts/browser/ (ignor
 from __future__ import annotations
 
 import datetime as _dt
-import io
 import json
 import shutil
 import threading
@@ -21,7 +20,7 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from webapp_helpers import MINI, PASSWORDS, make_app
+from webapp_helpers import MINI, PASSWORDS, accounts_app
 
 CHROMIUM = "/usr/bin/chromium"
 CHROMIUM_ARGS = ["--headless", "--no-sandbox", "--disable-gpu", "--disable-background-networking",
@@ -67,14 +66,7 @@ def server(tmp_path):
     pytest.importorskip("playwright.sync_api", reason="playwright (test extra) not installed")
     from waitress import create_server
 
-    from webapp.demo import ensure_user
-    from webapp.security import db
-
-    app = make_app(tmp_path, ANALYSIS_N_BOOT=20)
-    with app.app_context():
-        ensure_user(db(), "coordinator", "coordinator", PASSWORDS["coordinator"])
-        ensure_user(db(), "reader1", "reader", PASSWORDS["reader1"])
-        db().commit()
+    app = accounts_app(tmp_path, ("coordinator", "reader1"), ANALYSIS_N_BOOT=20)
     srv = create_server(app, host="127.0.0.1", port=0, threads=4)
     th = threading.Thread(target=srv.run, daemon=True)
     th.start()

@@ -10,7 +10,6 @@ import sys
 import time
 from pathlib import Path
 
-import pytest
 from click.testing import CliRunner
 
 from scorer.cli import main

@@ -5,12 +5,11 @@ export holds exactly the responses given."""
 from __future__ import annotations
 
 import io
-import threading
 
 import pandas as pd
 import pytest
 
-from webapp_helpers import demo_app, login, pass_display_check, read_all
+from webapp_helpers import demo_app, login, pass_display_check, race, read_all
 
 
 def test_study_on_postgresql(tmp_path, postgres_url):
@@ -25,24 +24,7 @@ def test_study_on_postgresql(tmp_path, postgres_url):
     tok = login(c, "reader1")
     pass_display_check(c, sid, tok)
     t = c.get(f"/reading/api/studies/{sid}/next").json
-    cookie = c.get_cookie("session").value
-    barrier = threading.Barrier(6)
-    codes = []
-
-    def tab(site):
-        tc = app.test_client()
-        tc.set_cookie("session", cookie)
-        barrier.wait()
-        codes.append(tc.post(t["response_url"], json={"chosen_site": site % 4, "response_ms": 700, "window": 9.0,
-                                                      "level": 3.0, "zoom": 1},
-                             headers={"X-CSRFToken": tok}).status_code)
-
-    threads = [threading.Thread(target=tab, args=(i,)) for i in range(6)]
-    for th in threads:
-        th.start()
-    for th in threads:
-        th.join()
-    assert sorted(codes) == [200] + [409] * 5
+    assert race(app, c, t["response_url"], tok, 6) == [200] + [409] * 5
     rest = read_all(c, sid, tok, chooser=lambda tr, d: 3)
     with app.app_context():
         s = db()

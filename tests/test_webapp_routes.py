@@ -11,7 +11,7 @@ from __future__ import annotations
 
 import pytest
 
-from webapp_helpers import PASSWORDS, csrf_from, demo_app, login, pass_display_check, read_all
+from webapp_helpers import csrf_from, demo_app, login, pass_display_check, read_all
 
 VISITORS = ("anonymous", "reader", "other_reader", "outsider", "coordinator")
 USERS = {"reader": "reader1", "other_reader": "reader2", "outsider": "outsider", "coordinator": "coordinator"}

@@ -5,7 +5,6 @@ from __future__ import annotations
 
 import datetime as _dt
 import io
-from collections import Counter
 from pathlib import Path
 
 import numpy as np
@@ -13,7 +12,7 @@ import pandas as pd
 import pytest
 from click.testing import CliRunner
 
-from webapp_helpers import MINI, PASSWORDS, answer, demo_app, login, make_app, pass_display_check, read_all
+from webapp_helpers import (MINI, accounts_app, answer, demo_app, login, pass_display_check, read_all, reader_client)
 
 
 def _darkest_site(trial, data):
@@ -67,9 +66,7 @@ def test_reader_pixels_are_the_linear_image_in_air_kerma(tmp_path):
     from webapp.models import Region, Study, StudyImage, Trial
     from webapp.security import db
 
-    c = app.test_client()
-    tok = login(c, "reader1")
-    pass_display_check(c, sid, tok)
+    c, tok = reader_client(app, sid)
     t = c.get(f"/reading/api/studies/{sid}/next").json
     data = np.frombuffer(c.get(t["region_url"]).data, "<u2").reshape(t["rows"], t["cols"])
     assert data.dtype == np.uint16 and t["rows"] == t["cols"]
@@ -93,9 +90,7 @@ def test_sites_line_up_with_the_discs(tmp_path):
     """A reader choosing the darkest-looking site on the received pixels is right on nearly every clearly
     visible target (misplaced sites would give the M-AFC guess rate 1/M = 0.25; Green & Swets 1966)."""
     app, sid = demo_app(tmp_path, trials_per_reader=36, n_practice=0, repeat_fraction=0)
-    c = app.test_client()
-    tok = login(c, "reader1")
-    pass_display_check(c, sid, tok)
+    c, tok = reader_client(app, sid)
     read_all(c, sid, tok, chooser=_darkest_site)
     cc = app.test_client()
     login(cc, "coordinator")
@@ -143,9 +138,7 @@ def test_export_is_what_limen_analyse_reads(tmp_path):
 
 def test_leave_and_resume(tmp_path):
     app, sid = demo_app(tmp_path, trials_per_reader=6, n_practice=1, repeat_fraction=0)
-    c = app.test_client()
-    tok = login(c, "reader1")
-    pass_display_check(c, sid, tok)
+    c, tok = reader_client(app, sid)
     first = read_all(c, sid, tok, limit=3)
     c.post("/logout", data={"csrf_token": tok})
     assert c.get(f"/reading/api/studies/{sid}/next").status_code == 401
@@ -167,9 +160,7 @@ def test_leave_and_resume(tmp_path):
 
 def test_a_closed_study_takes_no_more_responses(tmp_path):
     app, sid = demo_app(tmp_path)
-    c = app.test_client()
-    tok = login(c, "reader1")
-    pass_display_check(c, sid, tok)
+    c, tok = reader_client(app, sid)
     t = c.get(f"/reading/api/studies/{sid}/next").json
     cc = app.test_client()
     ctok = login(cc, "coordinator")
@@ -181,9 +172,7 @@ def test_a_closed_study_takes_no_more_responses(tmp_path):
 
 def test_feedback_after_the_response_when_the_coordinator_allows_it(tmp_path):
     app, sid = demo_app(tmp_path, show_feedback=True, n_practice=0)
-    c = app.test_client()
-    tok = login(c, "reader1")
-    pass_display_check(c, sid, tok)
+    c, tok = reader_client(app, sid)
     t = c.get(f"/reading/api/studies/{sid}/next").json
     fb = answer(c, tok, t, site=1).json["feedback"]
     assert fb["correct"] == (fb["true_site"] == 1)
@@ -237,15 +226,11 @@ def _simulated_files(tmp_path, n=1):
 
 
 def test_coordinator_builds_a_study_through_the_forms(tmp_path):
-    app = make_app(tmp_path)
-    from webapp.demo import ensure_user
+    app = accounts_app(tmp_path, ("coordinator", "reader1"))
     from webapp.models import Region, Study, User
     from webapp.security import db
 
     with app.app_context():
-        ensure_user(db(), "coordinator", "coordinator", PASSWORDS["coordinator"])
-        ensure_user(db(), "reader1", "reader", PASSWORDS["reader1"])
-        db().commit()
         rid = db().query(User).filter_by(username="reader1").one().id
     c = app.test_client()
     tok = login(c, "coordinator")
@@ -305,12 +290,7 @@ def test_analysis_page_shows_readers_against_the_model(tmp_path):
 
 
 def test_planning_page_estimates_power_from_a_stated_spread_and_refuses_oversized_requests(tmp_path):
-    app = make_app(tmp_path)
-    from webapp.demo import ensure_user
-    from webapp.security import db
-    with app.app_context():
-        ensure_user(db(), "coordinator", "coordinator", PASSWORDS["coordinator"])
-        db().commit()
+    app = accounts_app(tmp_path)
     c = app.test_client()
     tok = login(c, "coordinator")
     assert "Estimate power" in c.get("/analysis/plan").text
@@ -329,3 +309,33 @@ def test_planning_page_estimates_power_from_a_stated_spread_and_refuses_oversize
     assert r.status_code == 400 and "more than 400" in r.text
     r = c.post("/analysis/plan", data={**form, "readers": "four"})
     assert r.status_code == 400 and "whole numbers" in r.text
+
+
+def test_import_a_folder_scored_by_limen_score(tmp_path):
+    from scorer.cli import main
+    from webapp.models import StudyImage
+    from webapp.security import db
+
+    root = tmp_path / "root"
+    files = _simulated_files(root)
+    paths, conv = files["direct"]
+    res = CliRunner().invoke(main, ["score", *map(str, paths), "--layout", str(MINI), "--conversion", str(conv),
+                                    "--n-boot", "0", "--out", str(root / "direct" / "score")])
+    assert res.exit_code in (0, 1), res.output
+    app = accounts_app(tmp_path, IMPORT_ROOT=str(root))
+    c = app.test_client()
+    tok = login(c, "coordinator")
+    r = c.post("/coordinator/studies/new", data={"csrf_token": tok, "name": "imported", "layout": "tessera-demo-plate.toml"})
+    sid = int(r.headers["Location"].split("/")[-1])
+    r = c.post(f"/coordinator/studies/{sid}/import", data={"csrf_token": tok, "folder": "../", "detector": "A"})
+    assert r.status_code == 400 and "inside the import root" in r.text
+    r = c.post(f"/coordinator/studies/{sid}/import", data={"csrf_token": tok, "folder": "direct", "detector": "A"})
+    assert r.status_code == 400 and "no results.json" in r.text
+    r = c.post(f"/coordinator/studies/{sid}/import", data={"csrf_token": tok, "folder": "direct/score",
+                                                          "detector": "panel A"})
+    assert r.status_code == 302, r.text
+    with app.app_context():
+        im = db().query(StudyImage).one()
+        from scorer.images import load_conversion
+        assert load_conversion(im.conversion_file) == load_conversion(conv)      # the scoring's conversion
+        assert im.detector == "panel A" and im.stored_name == f"{im.sha256}.dcm"

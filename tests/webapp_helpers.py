@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import re
+import threading
 from pathlib import Path
 
 import numpy as np
@@ -88,3 +89,45 @@ def read_all(client, study_id, token, chooser=None, limit=None):
         assert r.status_code == 200, r.json
         done.append((t, site))
     return done
+
+
+def accounts_app(tmp_path, users=("coordinator",), **config):
+    """An app with no study yet and the named accounts (role from the name: coordinator, else reader)."""
+    from webapp.demo import ensure_user
+    from webapp.security import db
+
+    app = make_app(tmp_path, **config)
+    with app.app_context():
+        for name in users:
+            ensure_user(db(), name, "coordinator" if name == "coordinator" else "reader", PASSWORDS[name])
+        db().commit()
+    return app
+
+
+def race(app, client, url, token, n):
+    """``n`` tabs of the same signed-in browser POST a response to ``url`` at the same moment; return the codes."""
+    cookie = client.get_cookie("session").value
+    barrier = threading.Barrier(n)
+    codes = []
+
+    def tab(site):
+        tc = app.test_client()
+        tc.set_cookie("session", cookie)
+        barrier.wait()
+        codes.append(tc.post(url, json={"chosen_site": site % 4, "response_ms": 700, "window": 9.0, "level": 3.0,
+                                        "zoom": 1}, headers={"X-CSRFToken": token}).status_code)
+
+    threads = [threading.Thread(target=tab, args=(i,)) for i in range(n)]
+    for th in threads:
+        th.start()
+    for th in threads:
+        th.join()
+    return sorted(codes)
+
+
+def reader_client(app, study_id, name="reader1"):
+    """A reader's browser, signed in and past the display check: (client, CSRF token)."""
+    c = app.test_client()
+    tok = login(c, name)
+    pass_display_check(c, study_id, tok)
+    return c, tok

@@ -9,17 +9,14 @@ from sqlalchemy import func, select
 
 from webapp import services
 from webapp.models import AnalysisRun, Response, Study, Trial
-from webapp.security import REPORT_CSP, audit, db, role_required
+from webapp.security import study_or_404, REPORT_CSP, audit, db, role_required
 
 bp = Blueprint("analysis", __name__, url_prefix="/analysis")
 coordinator_only = role_required("coordinator")
 
 
 def _study(study_id: int) -> Study:
-    st = db().get(Study, study_id)
-    if st is None:
-        abort(404)
-    return st
+    return study_or_404(study_id)
 
 
 def _latest(study_id: int) -> AnalysisRun | None:

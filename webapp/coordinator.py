@@ -4,6 +4,7 @@ audit log."""
 from __future__ import annotations
 
 import datetime as _dt
+import io
 import json
 import secrets
 from pathlib import Path
@@ -16,17 +17,45 @@ from sqlalchemy.exc import IntegrityError
 from scorer.errors import LimenError
 from webapp import services
 from webapp.models import AuditEntry, Enrolment, ReadingSession, Response, Study, StudyImage, Trial, User, utcnow
-from webapp.security import audit, db, hash_password, role_required
+from webapp.security import study_or_404, audit, db, hash_password, role_required
 
 bp = Blueprint("coordinator", __name__, url_prefix="/coordinator")
 coordinator_only = role_required("coordinator")
 
 
 def _study(study_id: int) -> Study:
-    study = db().get(Study, study_id)
-    if study is None:
-        abort(404)
-    return study
+    return study_or_404(study_id)
+
+
+def _draft(study_id: int) -> Study:
+    st = _study(study_id)
+    if st.status != "draft":
+        raise LimenError("images and readers can be changed only before the study is opened")
+    return st
+
+
+def _add_image(st: Study, stream, name: str, detector: str, known: set, conv_path=None, conversion=None,
+               spacing=None) -> dict | None:
+    """Store one image file under its hash, check it reads as an image, add it to the study (once)."""
+    label = services.safe_label(name)
+    suffix = services.check_suffix(name, services.IMAGE_SUFFIXES, "image file")
+    store = Path(current_app.config["STORE_DIR"])
+    digest, path = services.store_bytes(stream, suffix, store, current_app.config["MAX_IMAGE_BYTES"], label)
+    services.validate_image_file(path, label, spacing, conversion)
+    if digest in known:
+        flash(f"{label}: the same image is already in the study; skipped.", "info")
+        return None
+    known.add(digest)
+    db().add(StudyImage(study_id=st.id, sha256=digest, stored_name=path.name, code=f"img-{digest[:10]}",
+                        detector=detector, conversion_file=conv_path, pixel_spacing_mm=spacing, label=label))
+    return {"label": label, "sha256": digest}
+
+
+def _detector_label(form) -> str:
+    detector = (form.get("detector") or "").strip()
+    if not detector or len(detector) > 100:
+        raise LimenError("detector label: 1–100 characters (readers never see it)")
+    return detector
 
 
 def _readers() -> list[User]:
@@ -190,9 +219,7 @@ def _notes_of(st: Study) -> str | None:
 @bp.route("/studies/<int:study_id>/readers", methods=["POST"])
 @coordinator_only
 def set_readers(study_id):
-    st = _study(study_id)
-    if st.status != "draft":
-        raise LimenError("readers can be changed only before the study is opened")
+    st = _draft(study_id)
     _set_enrolment(st, request.form.getlist("readers"))
     audit("set_readers", st.id, readers=sorted(request.form.getlist("readers")))
     db().commit()
@@ -203,43 +230,26 @@ def set_readers(study_id):
 @bp.route("/studies/<int:study_id>/images", methods=["POST"])
 @coordinator_only
 def add_images(study_id):
-    st = _study(study_id)
-    if st.status != "draft":
-        raise LimenError("images can be added only before the study is opened")
-    f = request.form
-    detector = (f.get("detector") or "").strip()
-    if not detector or len(detector) > 100:
-        raise LimenError("detector label: 1–100 characters (readers never see it)")
-    spacing = _num(f, "pixel_spacing_mm", float, 0.005, 5.0, "pixel spacing (mm)", 0.0) or None
-    store = Path(current_app.config["STORE_DIR"])
+    st = _draft(study_id)
+    detector = _detector_label(request.form)
+    spacing = _num(request.form, "pixel_spacing_mm", float, 0.005, 5.0, "pixel spacing (mm)", 0.0) or None
     conv_path, conversion = None, None
     conv = request.files.get("conversion_file")
     if conv and conv.filename:
         label = services.safe_label(conv.filename)
         suffix = services.check_suffix(conv.filename, services.LAYOUT_SUFFIXES, "conversion function file")
-        _, path = services.store_bytes(conv.stream, suffix, store / "conversions", 1024 * 1024, label)
+        _, path = services.store_bytes(conv.stream, suffix, Path(current_app.config["STORE_DIR"]) / "conversions",
+                                       1024 * 1024, label)
         conversion = services.validate_conversion_file(path, label)
         conv_path = str(path)
     files = [fs for fs in request.files.getlist("images") if fs and fs.filename]
     if not files:
         raise LimenError("choose at least one image file (DICOM, TIFF, PNG or .npy)")
-    added = []
-    s = db()
     known = {im.sha256 for im in st.images}
-    for fs in files:
-        label = services.safe_label(fs.filename)
-        suffix = services.check_suffix(fs.filename, services.IMAGE_SUFFIXES, "image file")
-        digest, path = services.store_bytes(fs.stream, suffix, store, current_app.config["MAX_IMAGE_BYTES"], label)
-        services.validate_image_file(path, label, spacing, conversion)
-        if digest in known:
-            flash(f"{label}: the same image is already in the study; skipped.", "info")
-            continue
-        known.add(digest)
-        s.add(StudyImage(study_id=st.id, sha256=digest, stored_name=path.name, code=f"img-{digest[:10]}",
-                         detector=detector, conversion_file=conv_path, pixel_spacing_mm=spacing, label=label))
-        added.append({"label": label, "sha256": digest})
+    added = [a for fs in files
+             if (a := _add_image(st, fs.stream, fs.filename, detector, known, conv_path, conversion, spacing))]
     audit("add_images", st.id, detector=detector, images=added, conversion=conv_path)
-    s.commit()
+    db().commit()
     flash(f"Added {len(added)} image(s) from detector {detector}.", "info")
     return redirect(url_for("coordinator.study", study_id=st.id))
 
@@ -247,10 +257,9 @@ def add_images(study_id):
 @bp.route("/studies/<int:study_id>/import", methods=["POST"])
 @coordinator_only
 def import_folder(study_id):
-    """Add the images of a folder already scored by ``limen score --out`` (inside the server's import root)."""
-    st = _study(study_id)
-    if st.status != "draft":
-        raise LimenError("images can be added only before the study is opened")
+    """Add the images of a folder already scored by ``limen score --out`` (inside the server's import root),
+    with the conversion function that scoring used."""
+    st = _draft(study_id)
     root = current_app.config.get("IMPORT_ROOT")
     if not root:
         raise LimenError("folder import is switched off (start the server with --import-root DIR)")
@@ -261,44 +270,32 @@ def import_folder(study_id):
     results = folder / "results.json"
     if not results.is_file():
         raise LimenError("no results.json here: give a folder written by `limen score --out`", folder.name)
-    detector = (request.form.get("detector") or "").strip()
-    if not detector:
-        raise LimenError("detector label: 1–100 characters (readers never see it)")
+    detector = _detector_label(request.form)
     try:
         info = json.loads(results.read_text(encoding="utf-8"))
         entries = [Path(im["path"]) for im in info["images"]]
-    except (ValueError, KeyError, TypeError):
+        conv = (info.get("settings") or {}).get("conversion")
+    except (ValueError, KeyError, TypeError, AttributeError):
         raise LimenError("results.json is not a `limen score` result", folder.name) from None
-    conv = (info.get("settings") or {}).get("conversion")
-    conv_path = None
-    store = Path(current_app.config["STORE_DIR"])
+    conv_path, conversion = None, None
     if conv:
-        from scorer.images import ConversionFunction, save_conversion
-        cf = ConversionFunction(**{k: v for k, v in conv.items() if k in ConversionFunction.__dataclass_fields__})
-        tmp = store / "conversions" / f"import-{secrets.token_hex(6)}.toml"
-        tmp.parent.mkdir(parents=True, exist_ok=True)
-        save_conversion(cf, tmp)
-        conv_path = str(tmp)
-    s = db()
+        text = json.dumps(conv, sort_keys=True).encode()
+        _, path = services.store_bytes(io.BytesIO(text), ".json", Path(current_app.config["STORE_DIR"]) / "conversions",
+                                       1024 * 1024, "conversion")
+        conversion = services.validate_conversion_file(path, f"{folder.name}/results.json conversion")
+        conv_path = str(path)
     known = {im.sha256 for im in st.images}
     added = []
     for p in entries:
-        src = p if p.is_absolute() else (folder / p if (folder / p).exists() else Path.cwd() / p)
-        src = src.resolve()
+        src = (p if p.is_absolute() else folder / p).resolve()
         if not src.is_file():
             raise LimenError(f"image {p.name} listed in results.json is missing", folder.name)
-        suffix = services.check_suffix(src.name, services.IMAGE_SUFFIXES, "image file")
         with open(src, "rb") as fh:
-            digest, path = services.store_bytes(fh, suffix, store, current_app.config["MAX_IMAGE_BYTES"], src.name)
-        services.validate_image_file(path, src.name)
-        if digest in known:
-            continue
-        known.add(digest)
-        s.add(StudyImage(study_id=st.id, sha256=digest, stored_name=path.name, code=f"img-{digest[:10]}",
-                         detector=detector, conversion_file=conv_path, label=services.safe_label(src.name)))
-        added.append({"label": src.name, "sha256": digest})
-    audit("import_folder", st.id, folder=str(folder), detector=detector, images=added)
-    s.commit()
+            a = _add_image(st, fh, src.name, detector, known, conv_path, conversion)
+        if a:
+            added.append(a)
+    audit("import_folder", st.id, folder=str(folder), detector=detector, images=added, conversion=conv_path)
+    db().commit()
     flash(f"Imported {len(added)} image(s) from {folder.name}.", "info")
     return redirect(url_for("coordinator.study", study_id=st.id))
 

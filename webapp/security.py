@@ -38,6 +38,16 @@ def db():
     return current_app.extensions["limen_db"]
 
 
+def study_or_404(study_id: int):
+    """The study with this id, or a 404 page."""
+    from webapp.models import Study
+
+    study = db().get(Study, study_id)
+    if study is None:
+        abort(404)
+    return study
+
+
 def hash_password(password: str) -> str:
     return generate_password_hash(password)
 

@@ -92,37 +92,36 @@ def check_suffix(name: str, allowed: set[str], what: str) -> str:
     return ".dcm" if suffix == ".dicom" else suffix
 
 
+def _named(label: str, path: Path, read):
+    """Run ``read()`` on a stored file; a LimenError names the uploaded file (label), not the store path."""
+    try:
+        return read()
+    except LimenError as exc:
+        msg = str(exc).replace(str(path), "").lstrip(": ").strip()
+        raise LimenError(msg, label) from None
+
+
 def validate_image_file(path: Path, label: str, pixel_spacing_mm=None, conversion=None):
     """Read the stored file as an image (the real type check); errors name the uploaded file."""
     from scorer.images import LimenWarning, load_image
 
-    try:
+    def read():
         with warnings.catch_warnings():
             warnings.simplefilter("ignore", LimenWarning)
             return load_image(path, pixel_spacing_mm=pixel_spacing_mm, conversion=conversion)
-    except LimenError as exc:
-        msg = str(exc).replace(str(path), "").lstrip(": ").strip()
-        raise LimenError(msg, label) from None
+    return _named(label, path, read)
 
 
 def validate_layout_file(path: Path, label: str):
     from scorer.phantom import load_layout
 
-    try:
-        return load_layout(path)
-    except LimenError as exc:
-        msg = str(exc).replace(str(path), "").lstrip(": ").strip()
-        raise LimenError(msg, label) from None
+    return _named(label, path, lambda: load_layout(path))
 
 
 def validate_conversion_file(path: Path, label: str):
     from scorer.images import load_conversion
 
-    try:
-        return load_conversion(path)
-    except LimenError as exc:
-        msg = str(exc).replace(str(path), "").lstrip(": ").strip()
-        raise LimenError(msg, label) from None
+    return _named(label, path, lambda: load_conversion(path))
 
 
 def bundled_layouts() -> dict[str, str]:
