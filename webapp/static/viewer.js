@@ -108,11 +108,19 @@
       c.lineWidth = (k === this.selected || mark ? 2 : 1) * dpr;
       c.strokeStyle = mark === "true" ? "rgba(127,183,126,0.95)" : (mark === "wrong" ? "rgba(199,116,107,0.95)"
         : (k === this.selected ? "rgba(95,168,160,0.95)" : "rgba(175,180,186,0.7)"));
-      // four short arcs leave the site's centre and its surroundings untouched
-      for (var q = 0; q < 4; q++) {
-        c.beginPath(); c.arc(x, y, r, q * Math.PI / 2 + 0.35, (q + 1) * Math.PI / 2 - 0.35); c.stroke();
+      // four short arcs leave the site's centre and its surroundings untouched; a dark edge keeps the
+      // marks legible on bright and dark noise alike
+      var colour = c.strokeStyle, width = c.lineWidth;
+      for (var pass = 0; pass < 2; pass++) {
+        c.strokeStyle = pass ? colour : "rgba(20,21,23,0.55)";
+        c.lineWidth = pass ? width : width + 2 * dpr;
+        for (var q = 0; q < 4; q++) {
+          c.beginPath(); c.arc(x, y, r, q * Math.PI / 2 + 0.35, (q + 1) * Math.PI / 2 - 0.35); c.stroke();
+        }
       }
-      c.fillStyle = c.strokeStyle;
+      c.lineWidth = 3 * dpr; c.strokeStyle = "rgba(20,21,23,0.7)";
+      c.strokeText(String(k + 1), x + r * 0.95, y - r * 0.95);
+      c.fillStyle = colour;
       c.fillText(String(k + 1), x + r * 0.95, y - r * 0.95);
     }
   };
