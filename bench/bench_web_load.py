@@ -7,8 +7,9 @@ One POST in ten is sent twice at once (a double click), which must store one res
 database is compared with what the readers were told was stored: a response acknowledged but missing is
 lost; two rows for one trial, or rows nobody sent, are duplicated.
 
-Think time is uniform on [0.2, 0.8] s per trial — several times faster than real readers (2–3 s per
-4-AFC trial), so the server sees more load than a real study of 50 readers.
+Think time per trial follows the reading times of the project's reader model
+(:mod:`scorer.study.reader_model`: log-normal, median 2.5 s, σ_log 0.4), scaled by ``--think-scale``; the
+default 1.0 is a real study's pace, ``--think-scale 0.2`` a stress test five times faster than any reader.
 
 Floors (issue 12): p95 trial-region latency < 100 ms; lost and duplicated responses = 0.
 
@@ -59,8 +60,9 @@ def _pct(values, q):
 
 
 class Reader(threading.Thread):
-    def __init__(self, base: str, name: str, study_id: int, stop_at: float, seed: int):
+    def __init__(self, base: str, name: str, study_id: int, stop_at: float, seed: int, think_scale: float = 1.0):
         super().__init__(daemon=True)
+        self.think_scale = think_scale
         self.base, self.name, self.sid, self.stop_at = base, name, study_id, stop_at
         self.rng = random.Random(seed)
         self.region_ms, self.post_ms, self.next_ms = [], [], []
@@ -105,7 +107,7 @@ class Reader(threading.Thread):
                 if r.status_code != 200 or len(r.content) != 2 * t["rows"] * t["cols"]:
                     self.errors.append(f"region {r.status_code}")
                     continue
-                time.sleep(self.rng.uniform(0.2, 0.8))
+                time.sleep(self.think_scale * self.rng.lognormvariate(np.log(2.5), 0.4))
                 body = {"chosen_site": self.rng.randrange(t["m"]), "response_ms": 1500, "window": 4000.0,
                         "level": 30000.0, "zoom": 1}
                 url = self.base + t["response_url"]
@@ -138,10 +140,12 @@ class Reader(threading.Thread):
             self.errors.append(repr(exc))
 
 
-def _reader_group(base: str, names: list[str], study_id: int, stop_at: float, seed: int) -> list[dict]:
+def _reader_group(base: str, names: list[str], study_id: int, stop_at: float, seed: int,
+                  think_scale: float) -> list[dict]:
     """Run some readers as threads of one client process (several processes keep the client's own GIL
     out of the measured latencies: real readers sit at separate computers)."""
-    readers = [Reader(base, n, study_id, stop_at, seed=seed + i) for i, n in enumerate(names)]
+    readers = [Reader(base, n, study_id, stop_at, seed=seed + i, think_scale=think_scale)
+               for i, n in enumerate(names)]
     for r in readers:
         r.start()
     for r in readers:
@@ -151,7 +155,8 @@ def _reader_group(base: str, names: list[str], study_id: int, stop_at: float, se
              "double_both_ok": r.double_both_ok, "errors": r.errors} for r in readers]
 
 
-def run(n_readers: int = 50, seconds: float = 60.0, threads: int = 8, client_processes: int = 5) -> dict:
+def run(n_readers: int = 50, seconds: float = 60.0, threads: int = 8, client_processes: int = 5,
+        think_scale: float = 1.0) -> dict:
     from concurrent.futures import ProcessPoolExecutor
 
     with tempfile.TemporaryDirectory() as tmp:
@@ -177,7 +182,8 @@ def run(n_readers: int = 50, seconds: float = 60.0, threads: int = 8, client_pro
             groups = [names[k::client_processes] for k in range(client_processes)]
             t1 = time.perf_counter()
             with ProcessPoolExecutor(client_processes) as pool:
-                futures = [pool.submit(_reader_group, base, g, sid, stop_at, 1000 * k) for k, g in enumerate(groups)]
+                futures = [pool.submit(_reader_group, base, g, sid, stop_at, 1000 * k, think_scale)
+                           for k, g in enumerate(groups)]
                 results = [x for f in futures for x in f.result()]
             wall = time.perf_counter() - t1
             server_log = (Path(tmp) / "serve.log").read_text()
@@ -207,7 +213,7 @@ def run(n_readers: int = 50, seconds: float = 60.0, threads: int = 8, client_pro
     nxt = [x for r in results for x in r["next_ms"]]
     errors = [e for r in results for e in r["errors"]]
     return {"readers": n_readers, "seconds": seconds, "server_threads": threads, "client_processes": client_processes,
-            "database": "sqlite", "think_time_s": [0.2, 0.8],
+            "database": "sqlite", "think_time": f"lognormal, median {2.5 * think_scale:g} s, sigma_log 0.4",
             "setup_s": round(setup_s, 1), "wall_s": round(wall, 1), "responses_stored": len(rows),
             "responses_acknowledged": len(acknowledged), "stored_unacknowledged": unacknowledged,
             "double_posts": sum(r["double_sent"] for r in results),
@@ -227,9 +233,12 @@ def main(argv=None) -> dict:
     ap.add_argument("--readers", type=int, default=50)
     ap.add_argument("--seconds", type=float, default=60.0)
     ap.add_argument("--threads", type=int, default=8)
+    ap.add_argument("--think-scale", type=float, default=1.0,
+                    help="multiply the readers' think time (0.2: a stress test five times faster than readers)")
     args = ap.parse_args(argv if argv is not None else [])
-    r = run(args.readers, args.seconds, args.threads)
-    path = Path(__file__).parent / "results" / "web_load.json"
+    r = run(args.readers, args.seconds, args.threads, think_scale=args.think_scale)
+    suffix = "" if args.think_scale == 1.0 else f"-think{args.think_scale:g}"
+    path = Path(__file__).parent / "results" / f"web_load{suffix}.json"
     path.parent.mkdir(parents=True, exist_ok=True)
     path.write_text(json.dumps(r, indent=2) + "\n")
     for k, v in r.items():
