@@ -28,6 +28,8 @@ COMMANDS: dict[str, tuple[str, str, str]] = {
     "nightly": ("nightly", "nightly", "Score an inbox of phantom images once per session; store, trend, alert."),
     "trend": ("trend", "trend", "Write the trend report (HTML, CSV) of a nightly database."),
     "baseline": ("baseline", "baseline", "Show, set or clear the baselines the nightly alerts compare with."),
+    "serve": ("serve", "serve", "Run the reader-study web app under waitress (add --demo for a ready study)."),
+    "users": ("users", "users", "Add or list web-app accounts (coordinators and readers)."),
 }
 
 

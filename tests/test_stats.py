@@ -316,3 +316,27 @@ def test_readers_from_image_responses_have_their_designed_factor():
     human = count_thresholds(tr, n_boot=0).points[0].threshold_contrast
     model = dprime_for_pc(0.625, m) * sigma
     assert human / model == pytest.approx(2.0, rel=0.12)
+
+
+def test_a_plate_with_3_and_5_site_cells_uses_each_diameters_own_criterion():
+    # found when the demo plate got 3-AFC triangles and 5-AFC pentagons: the study statistics took M from the
+    # number of site labels over the whole table (5) and applied the 5-AFC criterion to 3-AFC targets.
+    # Halfway criteria: Pc = 2/3 for M = 3, 0.6 for M = 5 (Green & Swets 1966; common practice).
+    from scorer.study.stats import analyse_study, criterion_at, m_alternatives_of
+
+    rng = np.random.default_rng(7)
+    rows = []
+    for r in range(4):
+        for i in range(8):
+            for d, m, cs in ((0.25, 3, (0.02, 0.04, 0.08)), (1.0, 5, (0.005, 0.01, 0.02))):
+                for c in cs:
+                    true = int(rng.integers(m))
+                    chosen = true if rng.random() < min(0.95, 0.4 + 10 * c / d) else int(rng.integers(m))
+                    rows.append((f"r{r}", "A", f"i{i}", f"t{d}-{c}", d, c, chosen, true, int(chosen == true)))
+    trials = pd.DataFrame(rows, columns=["reader", "detector", "image", "target", "diameter_mm", "contrast",
+                                         "chosen_site", "true_site", "correct"])
+    m = m_alternatives_of(trials)
+    assert m == {0.25: 3, 1.0: 5}
+    assert criterion_at(m, 0.25, None) == pytest.approx(2 / 3) and criterion_at(m, 1.0, None) == pytest.approx(0.6)
+    a = analyse_study(trials, n_boot=20, seed=1)
+    assert a.to_json()["m_alternatives"] == {"0.25": 3, "1": 5}

@@ -62,7 +62,12 @@ def analyse(responses, model_file, by, reference, n_boot, criterion_pc, seed, as
 
 
 def _text_summary(a) -> str:
-    lines = [f"{len(a.readers)} reader(s), {a.m_alternatives}-AFC, criterion Pc = {a.criterion_pc:.4g}"]
+    if isinstance(a.m_alternatives, dict):
+        design = ", ".join(f"{m}-AFC at {d:g} mm" for d, m in sorted(a.m_alternatives.items()))
+        crit = ", ".join(f"{p:.3g}" for _, p in sorted(a.criterion_pc.items()))
+        lines = [f"{len(a.readers)} reader(s), {design}; criterion Pc = {crit} respectively"]
+    else:
+        lines = [f"{len(a.readers)} reader(s), {a.m_alternatives}-AFC, criterion Pc = {a.criterion_pc:.4g}"]
     pc = a.pooled_curves
     if len(pc):
         lines.append("")

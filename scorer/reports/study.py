@@ -132,9 +132,15 @@ def write_outputs(a, out_dir, meta: dict | None = None) -> dict:
 def report_html(a, meta: dict | None = None) -> str:
     by = a.by
     sections = []
-    summary = (f"<p>{len(a.readers)} reader(s); {a.m_alternatives}-alternative forced choice; threshold criterion "
-               f"Pc = {a.criterion_pc:.4g} (halfway between chance and 1 unless set); {a.n_boot} bootstrap "
-               f"resamples, seed {a.seed}. Contrasts are shown in percent.</p>")
+    if isinstance(a.m_alternatives, dict):
+        design = ", ".join(f"{m}-AFC at {d:g} mm" for d, m in sorted(a.m_alternatives.items()))
+        crit = ", ".join(f"{p:.3g}" for _, p in sorted(a.criterion_pc.items()))
+        crit = f"Pc = {crit} respectively"
+    else:
+        design = f"{a.m_alternatives}-alternative forced choice"
+        crit = f"Pc = {a.criterion_pc:.4g}"
+    summary = (f"<p>{len(a.readers)} reader(s); {design}; threshold criterion {crit} (halfway between chance and "
+               f"1 unless set); {a.n_boot} bootstrap resamples, seed {a.seed}. Contrasts are shown in percent.</p>")
     if any(n.startswith("Simulated readers") for n in a.notes):
         summary = ("<p class='fail'><b>Simulated readers:</b> the trials on this page come from a documented "
                    "observer model, not from people (invented demo data).</p>") + summary

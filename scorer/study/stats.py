@@ -148,20 +148,41 @@ def validate_trials(df: pd.DataFrame, source="responses") -> pd.DataFrame:
     return out
 
 
-def m_alternatives_of(df: pd.DataFrame, source="responses") -> int:
-    """Number of alternatives M: the ``n_alternatives`` column if present (must be one value),
-    otherwise the number of distinct site labels in chosen_site ∪ true_site."""
-    if "n_alternatives" in df.columns:
-        vals = df["n_alternatives"].unique()
-        if len(vals) != 1:
-            raise LimenError(f"n_alternatives must be the same on every row (found {sorted(vals)})", source)
-        m = int(vals[0])
-    else:
-        m = len(set(df["chosen_site"]).union(set(df["true_site"])))
-    if m < 2:
-        raise LimenError(f"only {m} candidate site seen; M-AFC needs at least 2 (add an n_alternatives column)",
-                         source)
-    return m
+def m_alternatives_of(df: pd.DataFrame, source="responses") -> int | dict[float, int]:
+    """Number of alternatives M, one for the study or one per diameter (a plate may use different cells
+    for different diameters): the ``n_alternatives`` column if present (one value per diameter),
+    otherwise the number of distinct site labels in chosen_site ∪ true_site at each diameter."""
+    per: dict[float, int] = {}
+    for diam, g in df.groupby("diameter_mm", sort=True):
+        if "n_alternatives" in df.columns:
+            vals = pd.unique(g["n_alternatives"])
+            if len(vals) != 1:
+                raise LimenError(f"n_alternatives must be the same on every row of one diameter (found "
+                                 f"{', '.join(str(int(v)) for v in sorted(vals))} at {float(diam):g} mm)", source)
+            m = int(vals[0])
+        else:
+            m = len(set(g["chosen_site"]).union(set(g["true_site"])))
+        if m < 2:
+            raise LimenError(f"only {m} candidate site seen at {float(diam):g} mm; M-AFC needs at least 2 (add an "
+                             "n_alternatives column)", source)
+        per[float(diam)] = m
+    ms = set(per.values())
+    return ms.pop() if len(ms) == 1 else per
+
+
+def m_at(m: int | dict[float, int], diameter_mm: float) -> int:
+    """M at one diameter, from a study-wide M or a per-diameter mapping."""
+    if isinstance(m, dict):
+        for d, v in m.items():
+            if np.isclose(float(d), float(diameter_mm)):
+                return int(v)
+        raise LimenError(f"no number of alternatives known for {float(diameter_mm):g} mm")
+    return int(m)
+
+
+def criterion_at(m: int | dict[float, int], diameter_mm: float, criterion_pc: float | None) -> float:
+    """Proportion correct at threshold: the given criterion, or halfway between chance and 1 for that M."""
+    return halfway_criterion(m_at(m, diameter_mm)) if criterion_pc is None else float(criterion_pc)
 
 
 # =========================================================================== per-reader curves
@@ -175,9 +196,10 @@ def reader_curves(df: pd.DataFrame, m: int, rng: np.random.Generator, n_boot: in
     threshold_contrast, ci_low, ci_high, log10_se (bootstrap SD of log10 threshold),
     n_trials, n_images, pc_observed, k, converged, note.
     """
-    p = halfway_criterion(m) if criterion_pc is None else float(criterion_pc)
+    m_all = m
     rows = []
     for (reader, grp, diam), g in df.groupby(["reader", by, "diameter_mm"], sort=True):
+        m, p = m_at(m_all, diam), criterion_at(m_all, diam, criterion_pc)
         u = unit_counts(g["contrast"].to_numpy(), g["correct"].to_numpy(), g["image"].to_numpy())
         fit = fit_psychometric(u.levels, u.y.sum(0), u.n.sum(0), m)
         note = fit.note
@@ -348,10 +370,11 @@ def pooled_curves(df: pd.DataFrame, m: int, by: str = "detector", criterion_pc: 
     the reader part bias-reduced, and a t quantile with R − 1 degrees of freedom (R readers).  Needs ≥ 3 readers; smaller
     studies get a note instead of a row.
     """
-    p = halfway_criterion(m) if criterion_pc is None else float(criterion_pc)
-    d_t = _dprime_for(p, m)
+    m_all = m
     rows, notes = [], []
     for (grp, diam), g in df.groupby([by, "diameter_mm"], sort=True):
+        m, p = m_at(m_all, diam), criterion_at(m_all, diam, criterion_pc)
+        d_t = _dprime_for(p, m)
         n_r = g["reader"].nunique()
         if n_r < 3:
             notes.append(f"pooled curve not estimated for {by} {grp}, {diam:g} mm: {n_r} reader(s), need at least 3")
@@ -434,14 +457,15 @@ def human_model_factor(human: pd.DataFrame, model: pd.DataFrame, m: int, rng: np
     the model's, Bland & Altman 1986) and the human-equivalent model curve (model
     threshold × factor).
     """
-    p = halfway_criterion(m) if criterion_pc is None else float(criterion_pc)
-    d_t = _dprime_for(p, m)
+    m_all = m
     observers = sorted(model["reader"].unique())
     out_all = []
     for obs in observers:
         mo = model[model["reader"] == obs]
         per, samples, notes = [], [], []
         for (grp, diam), gh in human.groupby([by, "diameter_mm"], sort=True):
+            m, p = m_at(m_all, diam), criterion_at(m_all, diam, criterion_pc)
+            d_t = _dprime_for(p, m)
             gm = mo[(mo[by] == grp) & np.isclose(mo["diameter_mm"], diam)]
             if gm.empty:
                 notes.append(f"no {obs} trials for {by} {grp}, {diam:g} mm")
@@ -543,6 +567,7 @@ def _image_sampling_se(trials: pd.DataFrame, by: str, ref, lev, diam: float, rea
     resamples: Σ_{r≠r′} Cov(Δ_r, Δ_r′) / R² (the diagonal is in the mixed model already).
     """
     means = []
+    m = m_at(m, diam)
     for grp in (ref, lev):
         g = trials[(trials[by] == grp) & np.isclose(trials["diameter_mm"], diam) & trials["reader"].isin(readers)]
         levels, images = np.unique(g["contrast"].to_numpy()), np.unique(g["image"])
@@ -672,8 +697,8 @@ class Analysis:
     """All results of :func:`analyse_study` (tables as DataFrames, the rest as plain dicts)."""
 
     by: str
-    m_alternatives: int
-    criterion_pc: float
+    m_alternatives: int | dict[float, int]       # one M for the study, or one per diameter
+    criterion_pc: float | dict[float, float]
     readers: list
     reader_curves: pd.DataFrame
     pooled_curves: pd.DataFrame
@@ -703,7 +728,9 @@ class Analysis:
                              "diameter_mm": r["diameter_mm"], "ratio": r["ratio"], "ci_low": r["ci_low"],
                              "ci_high": r["ci_high"], "p_value": r["p_value"], "p_adjusted": r["p_adjusted"],
                              "n_readers": r["n_readers"], "method": r["method"], "sentence": r["sentence"]})
-        return {"by": self.by, "m_alternatives": self.m_alternatives, "criterion_pc": self.criterion_pc,
+        def keyed(v):
+            return {f"{k:g}": x for k, x in v.items()} if isinstance(v, dict) else v
+        return {"by": self.by, "m_alternatives": keyed(self.m_alternatives), "criterion_pc": keyed(self.criterion_pc),
                 "readers": self.readers, "curves": self.curves_records(),
                 "between_reader_cv": self.cv.to_dict("records") if len(self.cv) else [],
                 "detector_comparison": comp, "human_model_factor": self.human_model, "agreement": self.agreement,
@@ -735,21 +762,26 @@ def analyse_study(trials: pd.DataFrame, model: pd.DataFrame | None = None, *, by
     m = m_alternatives_of(trials)
     if model is not None:
         m_model = m_alternatives_of(model, "model responses")
-        if m_model != m:
-            raise LimenError(f"model-observer table has {m_model} alternatives per target but the readers' has {m}")
-    p = halfway_criterion(m) if criterion_pc is None else float(criterion_pc)
+        for d in sorted(set(trials["diameter_mm"]) & set(model["diameter_mm"])):
+            if m_at(m_model, d) != m_at(m, d):
+                raise LimenError(f"model-observer table has {m_at(m_model, d)} alternatives per target at {d:g} mm "
+                                 f"but the readers' has {m_at(m, d)}", "--model")
+    if isinstance(m, dict):
+        p = {d: criterion_at(m, d, criterion_pc) for d in m}
+    else:
+        p = halfway_criterion(m) if criterion_pc is None else float(criterion_pc)
     notes = []
     if "source" in trials.columns and trials["source"].astype(str).str.contains("simulated").any():
         notes.append("Simulated readers: these trials come from Limen's documented observer model "
                      "(scorer/study/reader_model.py), not from people; the figures illustrate the method only.")
     say("per-reader fits")
-    rc = reader_curves(trials, m, rng, n_boot, by, p, ci)
+    rc = reader_curves(trials, m, rng, n_boot, by, criterion_pc, ci)
     n_bad = int((~rc["converged"]).sum())
     if n_bad:
         notes.append(f"{n_bad} per-reader threshold(s) have no interior maximum (all correct or at chance); "
                      "they are bounds, not estimates")
     say("pooled curves")
-    pc_df, pn = pooled_curves(trials, m, by, p, ci)
+    pc_df, pn = pooled_curves(trials, m, by, criterion_pc, ci)
     notes += pn
     cv = between_reader_cv(rc, by)
     if cv.empty:
@@ -764,9 +796,9 @@ def analyse_study(trials: pd.DataFrame, model: pd.DataFrame | None = None, *, by
     hm = None
     if model is not None:
         say("model observer")
-        mc = model_curves(model, m, rng, n_boot, by, p)
+        mc = model_curves(model, m, rng, n_boot, by, criterion_pc)
         say("human/model factor")
-        hm = human_model_factor(trials, model, m, rng, n_boot, by, p, ci, rc)
+        hm = human_model_factor(trials, model, m, rng, n_boot, by, criterion_pc, ci, rc)
     say("agreement")
     agr = agreement_summary(trials, by)
     notes += agr.get("notes", [])

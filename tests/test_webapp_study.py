@@ -1,0 +1,344 @@
+"""Study logistics of the web app: creating a study in the browser forms, reader schedules, the pixels the
+reader sees, export, resume and analysis."""
+
+from __future__ import annotations
+
+import datetime as _dt
+import io
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import pytest
+from click.testing import CliRunner
+
+from scorer.phantom import load_layout
+from webapp_helpers import (MINI, accounts_app, answer, demo_app, login, pass_display_check, read_all, reader_client)
+
+
+def _darkest_site(trial, data):
+    """A simple reader working on exactly the bytes the browser receives: the discs lower the air kerma, so
+    pick the site whose surroundings (disc-sized averages at a few scales, in noise units) are darkest."""
+    px = np.frombuffer(data, "<u2").reshape(trial["rows"], trial["cols"]).astype(float)
+    noise = 1.4826 * np.median(np.abs(np.diff(px, axis=1))) / np.sqrt(2)       # robust pixel noise (MAD)
+    yy, xx = np.mgrid[:px.shape[0], :px.shape[1]]
+    best = np.full(len(trial["sites"]), -np.inf)
+    for radius in (0.75, 1.5, 2.5, 4.0, 6.0):
+        means, counts = [], []
+        for r, c in trial["sites"]:
+            m = (yy - r) ** 2 + (xx - c) ** 2 <= radius ** 2
+            means.append(px[m].mean())
+            counts.append(m.sum())
+        means = np.array(means)
+        z = (np.median(means) - means) / (noise / np.sqrt(np.array(counts)))
+        best = np.maximum(best, z)
+    return int(np.argmax(best))
+
+
+def test_schedules_same_items_for_every_reader_in_their_own_order(tmp_path):
+    app, sid = demo_app(tmp_path, n_readers=3, trials_per_reader=10, n_practice=2, repeat_fraction=0.3)
+    from webapp.models import Trial, User
+    from webapp.security import db
+
+    with app.app_context():
+        seqs = {}
+        for u in db().query(User).filter(User.username.like("reader%")).all():
+            ts = db().query(Trial).filter(Trial.study_id == sid, Trial.reader_id == u.id).order_by(Trial.seq).all()
+            seqs[u.username] = [(t.region_id, t.practice, t.repeat) for t in ts]
+    assert set(seqs) == {"reader1", "reader2", "reader3"}
+    for seq in seqs.values():
+        assert len(seq) == 2 + 10 + 3
+        assert [p for _, p, _ in seq[:2]] == [True, True] and not any(p for _, p, _ in seq[2:])
+        main = [r for r, p, rep in seq if not p and rep == 0]
+        reps = [r for r, p, rep in seq if rep == 1]
+        assert len(set(main)) == 10 and set(reps) <= set(main) and len(set(reps)) == 3
+        assert seq[-3:] == [(r, False, 1) for r in reps]            # repeats come after the first readings
+    mains = {k: [r for r, p, rep in s if not p and rep == 0] for k, s in seqs.items()}
+    assert len({frozenset(m) for m in mains.values()}) == 1              # the same items for every reader
+    assert len({tuple(m) for m in mains.values()}) == 3                  # in a different order each
+
+
+def test_reader_pixels_are_the_linear_image_in_air_kerma(tmp_path):
+    """The region the browser receives is the image linearised by the panel's conversion function, as 16-bit
+    values on one study-wide scale: the open plate reads the simulated 100 µGy (simulator input; the plate's
+    background transmits fully), and the crop equals scorer's own load_image to within one 16-bit step."""
+    app, sid = demo_app(tmp_path)
+    from scorer.images import load_conversion, load_image
+    from webapp.models import Region, Study, StudyImage, Trial
+    from webapp.security import db
+
+    c, tok = reader_client(app, sid)
+    t = c.get(f"/reading/api/studies/{sid}/next").json
+    data = np.frombuffer(c.get(t["region_url"]).data, "<u2").reshape(t["rows"], t["cols"])
+    assert data.dtype == np.uint16 and t["rows"] == t["cols"]
+    with app.app_context():
+        st = db().get(Study, sid)
+        tr = db().query(Trial).filter(Trial.public_id == t["trial"]).one()
+        reg = db().get(Region, tr.region_id)
+        im = db().get(StudyImage, reg.image_id)
+        scale = st.ugy_per_unit
+        ref = load_image(Path(app.config["STORE_DIR"]) / im.stored_name,
+                         conversion=load_conversion(im.conversion_file)).pixels
+    kerma = data * scale
+    assert np.median(kerma) == pytest.approx(100.0, rel=0.02)
+    crop = ref[reg.row0:reg.row0 + t["rows"], reg.col0:reg.col0 + t["cols"]]
+    assert np.max(np.abs(kerma - crop)) <= 0.5 * scale + 1e-9
+    # a 16-bit step is far finer than the quantum noise, so W/L in the browser loses nothing to rounding
+    assert scale < 0.01 * np.std(crop)
+
+
+def test_sites_line_up_with_the_discs(tmp_path):
+    """A reader choosing the darkest-looking site on the received pixels is right on nearly every clearly
+    visible target (misplaced sites would give the M-AFC guess rate 1/M = 0.25; Green & Swets 1966)."""
+    app, sid = demo_app(tmp_path, trials_per_reader=36, n_practice=0, repeat_fraction=0)
+    c, tok = reader_client(app, sid)
+    read_all(c, sid, tok, chooser=_darkest_site)
+    cc = app.test_client()
+    login(cc, "coordinator")
+    df = pd.read_csv(io.StringIO(cc.get(f"/coordinator/studies/{sid}/responses.csv").text))
+    assert len(df) == 36
+    # the most visible target of each diameter on each image: 6 trials; guessing gets ≥ 5 right with p < 0.005
+    easy = df[df["contrast"] == df.groupby("diameter_mm")["contrast"].transform("max")]
+    assert len(easy) == 6 and easy["correct"].sum() >= 5, easy[["diameter_mm", "contrast", "correct"]]
+    assert df["correct"].mean() > 0.45
+
+
+def test_export_is_what_limen_analyse_reads(tmp_path):
+    app, sid = demo_app(tmp_path, n_readers=2)
+    from scorer.cli import main
+    from scorer.study import validate_trials
+    from scorer.study.reader_model import TRIAL_COLUMNS
+    from scorer.study.stats import OPTIONAL_COLUMNS
+
+    sent = {}
+    for name in ("reader1", "reader2"):
+        c = app.test_client()
+        tok = login(c, name)
+        pass_display_check(c, sid, tok)
+        done = read_all(c, sid, tok, chooser=lambda t, d: int(t["trial"], 16) % t["m"])
+        sent[name] = [s for t, s in done if not t["practice"]]
+    cc = app.test_client()
+    login(cc, "coordinator")
+    r = cc.get(f"/coordinator/studies/{sid}/responses.csv")
+    assert r.status_code == 200 and r.mimetype == "text/csv" and "attachment" in r.headers["Content-Disposition"]
+    df = pd.read_csv(io.StringIO(r.text), dtype={"reader": str, "image": str, "target": str})
+    assert list(df.columns) == TRIAL_COLUMNS + OPTIONAL_COLUMNS + ["window", "level", "timestamp"]
+    for name, sites in sent.items():
+        assert df[df["reader"] == name]["chosen_site"].tolist() == sites       # exactly the responses given
+    assert (df["correct"] == (df["chosen_site"] == df["true_site"])).all()
+    # each trial's M is its target's number of candidate sites on the mini plate (3-site or 5-site cells)
+    m_of = {t.id: t.m_alternatives for t in load_layout(MINI).targets}
+    assert set(df["repeat"]) == {0, 1} and (df["n_alternatives"] == df["target"].map(m_of)).all()
+    assert pd.to_datetime(df["timestamp"]).notna().all()
+    validate_trials(df)
+    csv = tmp_path / "responses.csv"
+    csv.write_text(r.text)
+    model = tmp_path / "model.csv"
+    model.write_text(cc.get(f"/coordinator/studies/{sid}/model.csv").text)
+    res = CliRunner().invoke(main, ["analyse", str(csv), "--model", str(model), "--n-boot", "20", "--json"])
+    assert res.exit_code == 0, res.output
+
+
+def test_leave_and_resume(tmp_path):
+    app, sid = demo_app(tmp_path, trials_per_reader=6, n_practice=1, repeat_fraction=0)
+    c, tok = reader_client(app, sid)
+    first = read_all(c, sid, tok, limit=3)
+    c.post("/logout", data={"csrf_token": tok})
+    assert c.get(f"/reading/api/studies/{sid}/next").status_code == 401
+    c2 = app.test_client()                        # another day, another browser
+    tok2 = login(c2, "reader1")
+    assert c2.get(f"/reading/studies/{sid}").status_code == 302            # display check again first
+    pass_display_check(c2, sid, tok2)
+    nxt = c2.get(f"/reading/api/studies/{sid}/next").json
+    assert nxt["answered"] == 2 and nxt["number"] == 3 and not nxt["practice"]
+    rest = read_all(c2, sid, tok2)
+    ids = [t["trial"] for t, _ in first + rest]
+    assert len(ids) == len(set(ids)) == 7
+    cc = app.test_client()
+    login(cc, "coordinator")
+    df = pd.read_csv(io.StringIO(cc.get(f"/coordinator/studies/{sid}/responses.csv").text))
+    assert df["session"].tolist() == [1, 1, 2, 2, 2, 2]
+    assert "passed" in cc.get(f"/coordinator/studies/{sid}").text
+
+
+def test_a_closed_study_takes_no_more_responses(tmp_path):
+    app, sid = demo_app(tmp_path)
+    c, tok = reader_client(app, sid)
+    t = c.get(f"/reading/api/studies/{sid}/next").json
+    cc = app.test_client()
+    ctok = login(cc, "coordinator")
+    assert cc.post(f"/coordinator/studies/{sid}/close", data={"csrf_token": ctok}).status_code == 302
+    assert answer(c, tok, t).status_code == 409
+    assert c.get(f"/reading/api/studies/{sid}/next").json["closed"] is True
+    assert "closed" in c.get(f"/reading/studies/{sid}").text
+
+
+def test_feedback_after_the_response_when_the_coordinator_allows_it(tmp_path):
+    app, sid = demo_app(tmp_path, show_feedback=True, n_practice=0)
+    c, tok = reader_client(app, sid)
+    t = c.get(f"/reading/api/studies/{sid}/next").json
+    fb = answer(c, tok, t, site=1).json["feedback"]
+    assert fb["correct"] == (fb["true_site"] == 1)
+
+
+def test_display_check_needs_the_right_site_and_records_the_screen(tmp_path):
+    app, sid = demo_app(tmp_path)
+    from webapp.models import ReadingSession
+    from webapp.security import db
+
+    c = app.test_client()
+    tok = login(c, "reader1")
+    c.get(f"/reading/studies/{sid}/check")
+    with app.app_context():
+        right = db().query(ReadingSession).one().check_site
+    r = c.post(f"/reading/api/studies/{sid}/check", json={"site": (right + 1) % 4, "viewing_distance_mm": 600},
+               headers={"X-CSRFToken": tok})
+    assert r.json["passed"] is False
+    assert c.get(f"/reading/studies/{sid}").status_code == 302           # still no reading
+    assert c.post(f"/reading/api/studies/{sid}/check", json={"site": 0, "viewing_distance_mm": 5},
+                  headers={"X-CSRFToken": tok}).status_code == 400
+    pass_display_check(c, sid, tok)
+    with app.app_context():
+        rs = db().query(ReadingSession).one()
+        assert rs.check_passed and rs.check_attempts == 2 and rs.viewing_distance_mm == 550
+        assert rs.screen_width == 1920 and rs.device_pixel_ratio == 1
+    # the pattern: a disc 3 of 255 grey levels above a dark field at one of the four sites
+    from webapp.services import CHECK_SITES, display_check_pattern
+    px = np.frombuffer(display_check_pattern(2, 7), "<u2").reshape(192, 192) / 257
+    levels = [px[r, c] for r, c in CHECK_SITES]
+    assert levels[2] - levels[0] == pytest.approx(3) and levels[0] == levels[1] == levels[3] < 40
+
+
+def _simulated_files(tmp_path, n=1):
+    from scorer.detector import detector_model, simulate, write_simulated
+    from scorer.images import save_conversion
+    from scorer.phantom import load_layout
+
+    layout = load_layout(MINI)
+    out = {}
+    for k, det in enumerate(("direct", "indirect")):
+        model = detector_model(det)
+        files = []
+        for i in range(n):
+            sim = simulate(model, "phantom", 100.0, np.random.default_rng(10 * k + i), small=True, layout=layout)
+            files.append(write_simulated(sim, tmp_path / det, f"{det}-{i}", _dt.datetime(2026, 11, 30, 8, i)))
+        conv = tmp_path / det / "conversion.toml"
+        save_conversion(model.conversion_function(), conv)
+        out[det] = (files, conv)
+    return out
+
+
+def test_coordinator_builds_a_study_through_the_forms(tmp_path):
+    app = accounts_app(tmp_path, ("coordinator", "reader1"))
+    from webapp.models import Region, Study, User
+    from webapp.security import db
+
+    with app.app_context():
+        rid = db().query(User).filter_by(username="reader1").one().id
+    c = app.test_client()
+    tok = login(c, "coordinator")
+    layout_bytes = MINI.read_bytes()
+    r = c.post("/coordinator/studies/new", data={
+        "csrf_token": tok, "name": "Room 2 vs room 3", "layout_file": (io.BytesIO(layout_bytes), "mini.toml"),
+        "trials_per_reader": "12", "seed": "5", "repeat_percent": "25", "n_practice": "2", "observer": "npw",
+        "readers": [str(rid)]}, content_type="multipart/form-data")
+    assert r.status_code == 302, r.text
+    sid = int(r.headers["Location"].split("/")[-1])
+    files = _simulated_files(tmp_path)
+    for det, (paths, conv) in files.items():
+        r = c.post(f"/coordinator/studies/{sid}/images", data={
+            "csrf_token": tok, "detector": f"panel {det}", "conversion_file": (io.BytesIO(conv.read_bytes()), "c.toml"),
+            "images": [(io.BytesIO(p.read_bytes()), p.name) for p in paths]}, content_type="multipart/form-data")
+        assert r.status_code == 302, r.text
+    r = c.post(f"/coordinator/studies/{sid}/open", data={"csrf_token": tok})
+    assert r.status_code == 302, r.text
+    with app.app_context():
+        st = db().get(Study, sid)
+        assert st.status == "open" and st.observer == "npw" and len(st.images) == 2
+        assert db().query(Region).filter_by(study_id=sid).count() == 2 * 18
+        model = pd.read_csv(io.StringIO(st.model_trials_csv))
+        assert len(model) == 36 and set(model["reader"]) == {"npw"}
+        assert set(model["detector"]) == {"panel direct", "panel indirect"}
+    page = c.get(f"/coordinator/studies/{sid}").text
+    assert "reader1" in page and "0 / 15" in page
+    # the reader can now read it
+    rc = app.test_client()
+    rtok = login(rc, "reader1")
+    pass_display_check(rc, sid, rtok)
+    assert len(read_all(rc, sid, rtok)) == 2 + 12 + 3
+
+
+def test_analysis_page_shows_readers_against_the_model(tmp_path):
+    app, sid = demo_app(tmp_path, n_readers=2, trials_per_reader=36, n_practice=0, repeat_fraction=0.2)
+    for name in ("reader1", "reader2"):
+        c = app.test_client()
+        tok = login(c, name)
+        pass_display_check(c, sid, tok)
+        read_all(c, sid, tok, chooser=_darkest_site)
+    cc = app.test_client()
+    tok = login(cc, "coordinator")
+    assert "Not analysed yet" in cc.get(f"/analysis/studies/{sid}").text
+    assert cc.post(f"/analysis/studies/{sid}/run", data={"csrf_token": tok}).status_code == 302
+    page = cc.get(f"/analysis/studies/{sid}").text
+    src = page.split('id="report"')[1].split('src="')[1].split('"')[0]
+    rep = cc.get(src)
+    assert rep.status_code == 200 and "frame-ancestors 'self'" in rep.headers["Content-Security-Policy"]
+    assert "script" not in rep.headers["Content-Security-Policy"] and "<script" not in rep.text
+    for heading in ("Contrast-detail curves", "Human readers vs model observer", "Reader agreement",
+                    "comparison"):
+        assert heading in rep.text, heading
+    import json
+    a = json.loads(cc.get(f"/analysis/studies/{sid}/analysis.json").text)
+    assert a["human_model_factor"]["observer"] == "npwe" and sorted(a["readers"]) == ["reader1", "reader2"]
+
+
+def test_planning_page_estimates_power_from_a_stated_spread_and_refuses_oversized_requests(tmp_path):
+    app = accounts_app(tmp_path)
+    c = app.test_client()
+    tok = login(c, "coordinator")
+    assert "Estimate power" in c.get("/analysis/plan").text
+    form = {"csrf_token": tok, "ratio": "2.0", "diameter_mm": "0.25", "target_power": "50", "alpha": "0.05",
+            "readers": "4", "images": "8", "n_sim": "10", "seed": "4", "source": "stated", "median_factor": "1.6",
+            "cv_between": "15"}
+    r = c.post("/analysis/plan", data=form)
+    assert r.status_code == 200, r.text
+    assert 'id="power-table"' in r.text and "stated between-reader spread" in r.text
+    # the page shows what scorer.study.power_by_simulation computes for the same settings
+    from scorer.study import ReaderPopulation, power_by_simulation
+    ref = power_by_simulation(2.0, (4,), (8,), population=ReaderPopulation(1.6, 0.15), diameter_mm=0.25,
+                              target_power=0.5, n_sim=10, n_boot=50, seed=4)
+    assert f"{ref.cells['power'].iloc[0] * 100:.0f} %" in r.text
+    r = c.post("/analysis/plan", data={**form, "readers": "4, 6, 8", "images": "8, 16, 32", "n_sim": "100"})
+    assert r.status_code == 400 and "more than 400" in r.text
+    r = c.post("/analysis/plan", data={**form, "readers": "four"})
+    assert r.status_code == 400 and "whole numbers" in r.text
+
+
+def test_import_a_folder_scored_by_limen_score(tmp_path):
+    from scorer.cli import main
+    from webapp.models import StudyImage
+    from webapp.security import db
+
+    root = tmp_path / "root"
+    files = _simulated_files(root)
+    paths, conv = files["direct"]
+    res = CliRunner().invoke(main, ["score", *map(str, paths), "--layout", str(MINI), "--conversion", str(conv),
+                                    "--n-boot", "0", "--out", str(root / "direct" / "score")])
+    assert res.exit_code in (0, 1), res.output
+    app = accounts_app(tmp_path, IMPORT_ROOT=str(root))
+    c = app.test_client()
+    tok = login(c, "coordinator")
+    r = c.post("/coordinator/studies/new", data={"csrf_token": tok, "name": "imported", "layout": "cairn-demo-plate.toml"})
+    sid = int(r.headers["Location"].split("/")[-1])
+    r = c.post(f"/coordinator/studies/{sid}/import", data={"csrf_token": tok, "folder": "../", "detector": "A"})
+    assert r.status_code == 400 and "inside the import root" in r.text
+    r = c.post(f"/coordinator/studies/{sid}/import", data={"csrf_token": tok, "folder": "direct", "detector": "A"})
+    assert r.status_code == 400 and "no results.json" in r.text
+    r = c.post(f"/coordinator/studies/{sid}/import", data={"csrf_token": tok, "folder": "direct/score",
+                                                          "detector": "panel A"})
+    assert r.status_code == 302, r.text
+    with app.app_context():
+        im = db().query(StudyImage).one()
+        from scorer.images import load_conversion
+        assert load_conversion(im.conversion_file) == load_conversion(conv)      # the scoring's conversion
+        assert im.detector == "panel A" and im.stored_name == f"{im.sha256}.dcm"

@@ -1,0 +1,143 @@
+"""Analysis pages: the statistics of :func:`scorer.study.analyse_study` on a study's stored responses,
+model observer beside the human readers (coordinators only)."""
+
+from __future__ import annotations
+
+from flask import Blueprint, Response as FlaskResponse, abort, current_app, flash, g, redirect, render_template, \
+    url_for
+from sqlalchemy import func, select
+
+from webapp import services
+from webapp.models import AnalysisRun, Response, Study, Trial
+from webapp.security import study_or_404, REPORT_CSP, audit, db, role_required
+
+bp = Blueprint("analysis", __name__, url_prefix="/analysis")
+coordinator_only = role_required("coordinator")
+
+
+def _study(study_id: int) -> Study:
+    return study_or_404(study_id)
+
+
+def _latest(study_id: int) -> AnalysisRun | None:
+    return db().execute(select(AnalysisRun).where(AnalysisRun.study_id == study_id)
+                        .order_by(AnalysisRun.id.desc())).scalars().first()
+
+
+@bp.route("/studies/<int:study_id>")
+@coordinator_only
+def page(study_id):
+    st = _study(study_id)
+    n = db().scalar(select(func.count(Response.id)).join(Trial).where(Trial.study_id == st.id,
+                                                                      Trial.practice.is_(False))) or 0
+    return render_template("analysis/page.html", study=st, run=_latest(st.id), n_responses=n,
+                           n_boot=current_app.config["ANALYSIS_N_BOOT"])
+
+
+@bp.route("/studies/<int:study_id>/run", methods=["POST"])
+@coordinator_only
+def run(study_id):
+    st = _study(study_id)
+    s = db()
+    n_boot = int(current_app.config["ANALYSIS_N_BOOT"])
+    r = services.run_analysis(s, st, n_boot=n_boot, seed=int(st.seed))
+    audit("run_analysis", st.id, n_responses=r.n_responses, n_boot=n_boot)
+    s.commit()
+    flash(f"Analysed {r.n_responses} responses.", "info")
+    return redirect(url_for("analysis.page", study_id=st.id))
+
+
+@bp.route("/studies/<int:study_id>/report/<int:run_id>")
+@coordinator_only
+def report(study_id, run_id):
+    r = db().get(AnalysisRun, run_id)
+    if r is None or r.study_id != study_id:
+        abort(404)
+    g.csp = REPORT_CSP
+    return FlaskResponse(r.report_html, mimetype="text/html")
+
+
+@bp.route("/studies/<int:study_id>/analysis.json")
+@coordinator_only
+def analysis_json(study_id):
+    r = _latest(_study(study_id).id)
+    if r is None:
+        abort(404)
+    return FlaskResponse(r.analysis_json, mimetype="application/json")
+
+
+# --------------------------------------------------------------------------- study planning
+MAX_SIMULATED_STUDIES = 400       # keeps one planning request to about a minute on a small server
+
+
+def _int_list(raw: str, label: str) -> list[int]:
+    from scorer.errors import LimenError
+
+    try:
+        vals = sorted({int(x) for x in raw.replace(";", ",").split(",") if x.strip()})
+    except ValueError:
+        raise LimenError(f"{label}: whole numbers separated by commas, e.g. 4, 6, 8") from None
+    if not vals or len(vals) > 6 or min(vals) < 2 or max(vals) > 200:
+        raise LimenError(f"{label}: 1–6 numbers between 2 and 200")
+    return vals
+
+
+@bp.route("/plan", methods=["GET", "POST"])
+@coordinator_only
+def plan():
+    """Readers × images needed to detect a detector ratio with the target power (scorer.study.planning)."""
+    import json
+
+    from flask import request
+
+    from scorer.errors import LimenError
+    from scorer.study import ReaderPopulation, population_from_analysis, power_by_simulation
+
+    pilots = db().execute(select(Study).join(AnalysisRun, AnalysisRun.study_id == Study.id).distinct()
+                          .order_by(Study.id)).scalars().all()
+    form = request.form if request.method == "POST" else {}
+    result, error = None, None
+    if request.method == "POST":
+        try:
+            def num(key, lo, hi, label):
+                try:
+                    v = float(form.get(key, ""))
+                except ValueError:
+                    raise LimenError(f"{label} must be a number") from None
+                if not lo <= v <= hi:
+                    raise LimenError(f"{label} must lie between {lo:g} and {hi:g}")
+                return v
+
+            ratio = num("ratio", 1.01, 5.0, "ratio to detect")
+            diameter = num("diameter_mm", 0.05, 5.0, "disc diameter (mm)")
+            alpha = num("alpha", 0.001, 0.2, "significance level")
+            target = num("target_power", 50, 99, "target power (%)") / 100
+            n_sim = int(num("n_sim", 10, 400, "simulated studies per design"))
+            readers = _int_list(form.get("readers", ""), "readers")
+            images = _int_list(form.get("images", ""), "images per detector")
+            if len(readers) * len(images) * n_sim > MAX_SIMULATED_STUDIES:
+                raise LimenError(f"{len(readers) * len(images)} designs × {n_sim} simulated studies is more than "
+                                 f"{MAX_SIMULATED_STUDIES}: try fewer designs or fewer simulations")
+            if form.get("source") == "pilot":
+                st = _study(int(form.get("pilot") or 0))
+                run_ = _latest(st.id)
+                if run_ is None:
+                    raise LimenError("the pilot study has not been analysed yet")
+                population = population_from_analysis(json.loads(run_.analysis_json))
+                source = f"pilot study “{st.name}” ({run_.n_responses} responses)"
+            else:
+                population = ReaderPopulation(median_factor=num("median_factor", 1.0, 10.0, "human/model factor"),
+                                              cv_between=num("cv_between", 0.0, 100.0, "between-reader CV (%)") / 100)
+                source = "stated between-reader spread"
+            plan_ = power_by_simulation(ratio, readers, images, population=population, diameter_mm=diameter,
+                                        alpha=alpha, target_power=target, n_sim=n_sim, n_boot=50,
+                                        seed=int(num("seed", 0, 2 ** 31 - 1, "seed")) if form.get("seed") else 0)
+            grid = {(r["n_readers"], r["n_images"]): r for r in plan_.cells.to_dict("records")}
+            result = {"plan": plan_, "grid": grid, "readers": readers, "images": images, "source": source}
+            audit("plan_study", None, ratio=ratio, diameter_mm=diameter, readers=readers, images=images,
+                  n_sim=n_sim, source=source, recommended=plan_.recommended)
+            db().commit()
+        except LimenError as exc:
+            error = str(exc)
+    return render_template("analysis/plan.html", pilots=pilots, form=form, result=result, error=error), \
+        (400 if error else 200)

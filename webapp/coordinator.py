@@ -1,0 +1,362 @@
+"""Coordinator pages: studies (create, add images, enrol readers, open, close), progress, export, accounts,
+audit log."""
+
+from __future__ import annotations
+
+import datetime as _dt
+import io
+import json
+import secrets
+from pathlib import Path
+
+from flask import Blueprint, Response as FlaskResponse, abort, current_app, flash, redirect, render_template, \
+    request, url_for
+from sqlalchemy import func, select
+from sqlalchemy.exc import IntegrityError
+
+from scorer.errors import LimenError
+from webapp import services
+from webapp.models import AuditEntry, Enrolment, ReadingSession, Response, Study, StudyImage, Trial, User, utcnow
+from webapp.security import study_or_404, audit, db, hash_password, role_required
+
+bp = Blueprint("coordinator", __name__, url_prefix="/coordinator")
+coordinator_only = role_required("coordinator")
+
+
+def _study(study_id: int) -> Study:
+    return study_or_404(study_id)
+
+
+def _draft(study_id: int) -> Study:
+    st = _study(study_id)
+    if st.status != "draft":
+        raise LimenError("images and readers can be changed only before the study is opened")
+    return st
+
+
+def _add_image(st: Study, stream, name: str, detector: str, known: set, conv_path=None, conversion=None,
+               spacing=None) -> dict | None:
+    """Store one image file under its hash, check it reads as an image, add it to the study (once)."""
+    label = services.safe_label(name)
+    suffix = services.check_suffix(name, services.IMAGE_SUFFIXES, "image file")
+    store = Path(current_app.config["STORE_DIR"])
+    digest, path = services.store_bytes(stream, suffix, store, current_app.config["MAX_IMAGE_BYTES"], label)
+    services.validate_image_file(path, label, spacing, conversion)
+    if digest in known:
+        flash(f"{label}: the same image is already in the study; skipped.", "info")
+        return None
+    known.add(digest)
+    db().add(StudyImage(study_id=st.id, sha256=digest, stored_name=path.name, code=f"img-{digest[:10]}",
+                        detector=detector, conversion_file=conv_path, pixel_spacing_mm=spacing, label=label))
+    return {"label": label, "sha256": digest}
+
+
+def _detector_label(form) -> str:
+    detector = (form.get("detector") or "").strip()
+    if not detector or len(detector) > 100:
+        raise LimenError("detector label: 1–100 characters (readers never see it)")
+    return detector
+
+
+def _readers() -> list[User]:
+    return db().execute(select(User).where(User.role == "reader").order_by(User.username)).scalars().all()
+
+
+def _num(form, key, kind, lo, hi, label, default=None):
+    raw = (form.get(key) or "").strip()
+    if raw == "" and default is not None:
+        return default
+    try:
+        v = kind(raw)
+    except ValueError:
+        raise LimenError(f"{label} must be a number, got {raw!r}") from None
+    if not lo <= v <= hi:
+        raise LimenError(f"{label} must lie between {lo:g} and {hi:g}, got {v:g}")
+    return v
+
+
+# --------------------------------------------------------------------------- dashboard and accounts
+@bp.route("/")
+@coordinator_only
+def dashboard():
+    studies = db().execute(select(Study).order_by(Study.created_at.desc())).scalars().all()
+    return render_template("coordinator/dashboard.html", studies=studies, readers=_readers())
+
+
+@bp.route("/readers", methods=["POST"])
+@coordinator_only
+def add_reader():
+    name = (request.form.get("username") or "").strip()
+    if not name or len(name) > 64 or not all(ch.isalnum() or ch in "._-" for ch in name):
+        raise LimenError("user name: 1–64 letters, digits, '.', '_' or '-'")
+    password = secrets.token_urlsafe(12)
+    s = db()
+    s.add(User(username=name, password_hash=hash_password(password), role="reader"))
+    audit("add_reader", username=name)
+    try:
+        s.commit()
+    except IntegrityError:
+        s.rollback()
+        raise LimenError(f"user name {name!r} is taken") from None
+    flash(f"Reader {name} added. Password (shown once, give it to the reader): {password}", "secret")
+    return redirect(url_for("coordinator.dashboard"))
+
+
+@bp.route("/audit")
+@coordinator_only
+def audit_log():
+    entries = db().execute(select(AuditEntry).order_by(AuditEntry.at.desc()).limit(500)).scalars().all()
+    return render_template("coordinator/audit.html", entries=entries)
+
+
+# --------------------------------------------------------------------------- creating a study
+@bp.route("/studies/new", methods=["GET", "POST"])
+@coordinator_only
+def new_study():
+    layouts = services.bundled_layouts()
+    if request.method == "GET":
+        return render_template("coordinator/new_study.html", layouts=layouts, readers=_readers(), form={})
+    f = request.form
+    try:
+        name = (f.get("name") or "").strip()
+        if not name or len(name) > 200:
+            raise LimenError("study name: 1–200 characters")
+        upload = request.files.get("layout_file")
+        store = Path(current_app.config["STORE_DIR"])
+        if upload and upload.filename:
+            label = services.safe_label(upload.filename)
+            suffix = services.check_suffix(upload.filename, services.LAYOUT_SUFFIXES, "layout file")
+            _, path = services.store_bytes(upload.stream, suffix, store / "layouts", 1024 * 1024, label)
+            layout = services.validate_layout_file(path, label)
+        else:
+            key = f.get("layout") or ""
+            if key not in layouts:
+                raise LimenError("choose a bundled layout or upload one")
+            path = Path(layouts[key])
+            layout = services.validate_layout_file(path, key)
+        n_targets = len(layout.targets)
+        study = Study(
+            name=name, created_by=_current_id(), layout_file=str(path), layout_name=layout.name,
+            m_alternatives=max(t.m_alternatives for t in layout.targets),
+            trials_per_reader=_num(f, "trials_per_reader", int, 1, 100000, "trials per reader", n_targets),
+            seed=_num(f, "seed", int, 0, 2 ** 31 - 1, "randomisation seed", secrets.randbelow(2 ** 31)),
+            repeat_fraction=_num(f, "repeat_percent", float, 0, 100, "repeated trials (%)", 0.0) / 100.0,
+            n_practice=_num(f, "n_practice", int, 0, 50, "practice trials", 4),
+            show_feedback=f.get("show_feedback") == "on",
+            observer=f.get("observer") if f.get("observer") in ("npw", "npwe") else "npwe",
+            viewing_distance_mm=_num(f, "viewing_distance_mm", float, 100, 2000, "viewing distance (mm)", 500.0),
+            magnification=_num(f, "magnification", int, 1, 8, "display magnification", 1),
+        )
+    except LimenError as exc:
+        flash(str(exc), "error")
+        return render_template("coordinator/new_study.html", layouts=layouts, readers=_readers(), form=f), 400
+    s = db()
+    s.add(study)
+    s.flush()
+    _set_enrolment(study, request.form.getlist("readers"))
+    audit("create_study", study.id, name=name, layout=layout.name, trials_per_reader=study.trials_per_reader,
+          seed=study.seed, repeat_fraction=study.repeat_fraction, n_practice=study.n_practice,
+          show_feedback=study.show_feedback, observer=study.observer)
+    s.commit()
+    flash("Study created. Add its images, then open it for reading.", "info")
+    return redirect(url_for("coordinator.study", study_id=study.id))
+
+
+def _current_id() -> int:
+    from flask_login import current_user
+    return int(current_user.id)
+
+
+def _set_enrolment(study: Study, ids) -> None:
+    s = db()
+    wanted = set()
+    for raw in ids:
+        try:
+            wanted.add(int(raw))
+        except ValueError:
+            raise LimenError(f"unknown reader {raw!r}") from None
+    readers = {u.id for u in _readers()}
+    if wanted - readers:
+        raise LimenError("a chosen reader account does not exist or is not a reader")
+    have = {e.user_id: e for e in study.enrolments}
+    for uid in wanted - set(have):
+        s.add(Enrolment(study_id=study.id, user_id=uid))
+    for uid in set(have) - wanted:
+        s.delete(have[uid])
+
+
+@bp.route("/studies/<int:study_id>")
+@coordinator_only
+def study(study_id):
+    st = _study(study_id)
+    s = db()
+    progress = []
+    for e in sorted(st.enrolments, key=lambda e: e.user.username):
+        total = s.scalar(select(func.count(Trial.id)).where(Trial.study_id == st.id, Trial.reader_id == e.user_id,
+                                                            Trial.practice.is_(False))) or 0
+        done = s.scalar(select(func.count(Response.id)).join(Trial).where(
+            Trial.study_id == st.id, Trial.reader_id == e.user_id, Trial.practice.is_(False))) or 0
+        last = s.scalar(select(func.max(Response.created_at)).join(Trial).where(
+            Trial.study_id == st.id, Trial.reader_id == e.user_id))
+        sess = s.execute(select(ReadingSession).where(ReadingSession.study_id == st.id,
+                                                      ReadingSession.reader_id == e.user_id)
+                         .order_by(ReadingSession.id.desc())).scalars().first()
+        progress.append({"reader": e.user.username, "user_id": e.user_id, "done": done, "total": total,
+                         "last": last, "session": sess})
+    notes = json.loads(st_notes) if (st_notes := _notes_of(st)) else []
+    return render_template("coordinator/study.html", study=st, progress=progress, readers=_readers(),
+                           enrolled={e.user_id for e in st.enrolments}, notes=notes)
+
+
+def _notes_of(st: Study) -> str | None:
+    e = db().execute(select(AuditEntry).where(AuditEntry.study_id == st.id, AuditEntry.action == "open_study")
+                     .order_by(AuditEntry.id.desc())).scalars().first()
+    if e is None:
+        return None
+    return json.dumps(json.loads(e.detail).get("notes", []))
+
+
+@bp.route("/studies/<int:study_id>/readers", methods=["POST"])
+@coordinator_only
+def set_readers(study_id):
+    st = _draft(study_id)
+    _set_enrolment(st, request.form.getlist("readers"))
+    audit("set_readers", st.id, readers=sorted(request.form.getlist("readers")))
+    db().commit()
+    flash("Readers updated.", "info")
+    return redirect(url_for("coordinator.study", study_id=st.id))
+
+
+@bp.route("/studies/<int:study_id>/images", methods=["POST"])
+@coordinator_only
+def add_images(study_id):
+    st = _draft(study_id)
+    detector = _detector_label(request.form)
+    spacing = _num(request.form, "pixel_spacing_mm", float, 0.005, 5.0, "pixel spacing (mm)", 0.0) or None
+    conv_path, conversion = None, None
+    conv = request.files.get("conversion_file")
+    if conv and conv.filename:
+        label = services.safe_label(conv.filename)
+        suffix = services.check_suffix(conv.filename, services.LAYOUT_SUFFIXES, "conversion function file")
+        _, path = services.store_bytes(conv.stream, suffix, Path(current_app.config["STORE_DIR"]) / "conversions",
+                                       1024 * 1024, label)
+        conversion = services.validate_conversion_file(path, label)
+        conv_path = str(path)
+    files = [fs for fs in request.files.getlist("images") if fs and fs.filename]
+    if not files:
+        raise LimenError("choose at least one image file (DICOM, TIFF, PNG or .npy)")
+    known = {im.sha256 for im in st.images}
+    added = [a for fs in files
+             if (a := _add_image(st, fs.stream, fs.filename, detector, known, conv_path, conversion, spacing))]
+    audit("add_images", st.id, detector=detector, images=added, conversion=conv_path)
+    db().commit()
+    flash(f"Added {len(added)} image(s) from detector {detector}.", "info")
+    return redirect(url_for("coordinator.study", study_id=st.id))
+
+
+@bp.route("/studies/<int:study_id>/import", methods=["POST"])
+@coordinator_only
+def import_folder(study_id):
+    """Add the images of a folder already scored by ``limen score --out`` (inside the server's import root),
+    with the conversion function that scoring used."""
+    st = _draft(study_id)
+    root = current_app.config.get("IMPORT_ROOT")
+    if not root:
+        raise LimenError("folder import is switched off (start the server with --import-root DIR)")
+    root = Path(root).resolve()
+    folder = (root / (request.form.get("folder") or "").strip()).resolve()
+    if root != folder and root not in folder.parents:
+        raise LimenError("the folder must lie inside the import root")
+    results = folder / "results.json"
+    if not results.is_file():
+        raise LimenError("no results.json here: give a folder written by `limen score --out`", folder.name)
+    detector = _detector_label(request.form)
+    try:
+        info = json.loads(results.read_text(encoding="utf-8"))
+        entries = [Path(im["path"]) for im in info["images"]]
+        conv = (info.get("settings") or {}).get("conversion")
+    except (ValueError, KeyError, TypeError, AttributeError):
+        raise LimenError("results.json is not a `limen score` result", folder.name) from None
+    conv_path, conversion = None, None
+    if conv:
+        text = json.dumps(conv, sort_keys=True).encode()
+        _, path = services.store_bytes(io.BytesIO(text), ".json", Path(current_app.config["STORE_DIR"]) / "conversions",
+                                       1024 * 1024, "conversion")
+        conversion = services.validate_conversion_file(path, f"{folder.name}/results.json conversion")
+        conv_path = str(path)
+    known = {im.sha256 for im in st.images}
+    added = []
+    for p in entries:
+        src = (p if p.is_absolute() else folder / p).resolve()
+        if not src.is_file():
+            raise LimenError(f"image {p.name} listed in results.json is missing", folder.name)
+        with open(src, "rb") as fh:
+            a = _add_image(st, fh, src.name, detector, known, conv_path, conversion)
+        if a:
+            added.append(a)
+    audit("import_folder", st.id, folder=str(folder), detector=detector, images=added, conversion=conv_path)
+    db().commit()
+    flash(f"Imported {len(added)} image(s) from {folder.name}.", "info")
+    return redirect(url_for("coordinator.study", study_id=st.id))
+
+
+@bp.route("/studies/<int:study_id>/open", methods=["POST"])
+@coordinator_only
+def open_study(study_id):
+    st = _study(study_id)
+    if st.status != "draft":
+        raise LimenError("the study is already open or closed")
+    s = db()
+    try:
+        notes = services.open_study(s, st, Path(current_app.config["STORE_DIR"]))
+    except LimenError:
+        s.rollback()
+        raise
+    st.status = "open"
+    st.opened_at = utcnow()
+    audit("open_study", st.id, notes=notes, region_px=st.region_rows, images=len(st.images),
+          readers=len(st.enrolments))
+    s.commit()
+    flash("Study open: readers can start.", "info")
+    return redirect(url_for("coordinator.study", study_id=st.id))
+
+
+@bp.route("/studies/<int:study_id>/close", methods=["POST"])
+@coordinator_only
+def close_study(study_id):
+    st = _study(study_id)
+    if st.status != "open":
+        raise LimenError("only an open study can be closed")
+    st.status = "closed"
+    st.closed_at = utcnow()
+    audit("close_study", st.id)
+    db().commit()
+    flash("Study closed: no more responses are accepted.", "info")
+    return redirect(url_for("coordinator.study", study_id=st.id))
+
+
+def _csv(text: str, name: str) -> FlaskResponse:
+    return FlaskResponse(text, mimetype="text/csv",
+                         headers={"Content-Disposition": f'attachment; filename="{name}"'})
+
+
+@bp.route("/studies/<int:study_id>/responses.csv")
+@coordinator_only
+def export_responses(study_id):
+    st = _study(study_id)
+    text = services.responses_csv(db(), st)
+    audit("export_responses", st.id, rows=max(text.count("\n") - 1, 0))
+    db().commit()
+    stamp = _dt.date.today().isoformat()
+    return _csv(text, f"limen-study-{st.id}-responses-{stamp}.csv")
+
+
+@bp.route("/studies/<int:study_id>/model.csv")
+@coordinator_only
+def export_model(study_id):
+    st = _study(study_id)
+    if not st.model_trials_csv:
+        abort(404)
+    audit("export_model", st.id)
+    db().commit()
+    return _csv(st.model_trials_csv, f"limen-study-{st.id}-model-{st.observer}.csv")

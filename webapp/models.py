@@ -1,0 +1,263 @@
+"""Database models of the reader-study web app (SQLAlchemy 2, one module).
+
+SQLite in the instance folder by default; any SQLAlchemy URL otherwise (PostgreSQL is tested in CI).
+
+Integrity rules the database itself enforces (not only the code):
+
+* one account per user name;
+* a reader is enrolled in a study at most once;
+* one trial per (study, reader, position in the reader's sequence);
+* **one response per trial** (``responses.trial_id`` is unique): a response submitted twice, or from
+  two tabs at once, is stored once.
+"""
+
+from __future__ import annotations
+
+import datetime as _dt
+import json
+
+from sqlalchemy import (Boolean, DateTime, Float, ForeignKey, Index, Integer, String, Text, UniqueConstraint,
+                        create_engine, event)
+from sqlalchemy.orm import DeclarativeBase, Mapped, mapped_column, relationship, scoped_session, sessionmaker
+
+ROLES = ("coordinator", "reader")
+STUDY_STATES = ("draft", "open", "closed")
+
+
+def utcnow() -> _dt.datetime:
+    return _dt.datetime.now(_dt.timezone.utc).replace(tzinfo=None)
+
+
+class Base(DeclarativeBase):
+    pass
+
+
+class User(Base):
+    __tablename__ = "users"
+
+    id: Mapped[int] = mapped_column(primary_key=True)
+    username: Mapped[str] = mapped_column(String(64), unique=True, index=True)
+    password_hash: Mapped[str] = mapped_column(String(255))
+    role: Mapped[str] = mapped_column(String(16))
+    active: Mapped[bool] = mapped_column(Boolean, default=True)
+    created_at: Mapped[_dt.datetime] = mapped_column(DateTime, default=utcnow)
+
+    # Flask-Login protocol
+    @property
+    def is_authenticated(self) -> bool:
+        return True
+
+    @property
+    def is_active(self) -> bool:
+        return bool(self.active)
+
+    @property
+    def is_anonymous(self) -> bool:
+        return False
+
+    def get_id(self) -> str:
+        return str(self.id)
+
+
+class Study(Base):
+    __tablename__ = "studies"
+
+    id: Mapped[int] = mapped_column(primary_key=True)
+    name: Mapped[str] = mapped_column(String(200))
+    status: Mapped[str] = mapped_column(String(16), default="draft")
+    created_by: Mapped[int] = mapped_column(ForeignKey("users.id"))
+    created_at: Mapped[_dt.datetime] = mapped_column(DateTime, default=utcnow)
+    layout_file: Mapped[str] = mapped_column(String(300))          # path of the layout TOML on the server
+    layout_name: Mapped[str] = mapped_column(String(200))
+    m_alternatives: Mapped[int] = mapped_column(Integer, default=4)
+    trials_per_reader: Mapped[int] = mapped_column(Integer)
+    seed: Mapped[int] = mapped_column(Integer, default=0)
+    repeat_fraction: Mapped[float] = mapped_column(Float, default=0.0)
+    n_practice: Mapped[int] = mapped_column(Integer, default=0)
+    show_feedback: Mapped[bool] = mapped_column(Boolean, default=False)
+    observer: Mapped[str] = mapped_column(String(8), default="npwe")
+    viewing_distance_mm: Mapped[float] = mapped_column(Float, default=500.0)
+    magnification: Mapped[int] = mapped_column(Integer, default=1)  # image pixels → device pixels
+    region_rows: Mapped[int] = mapped_column(Integer, default=0)
+    region_cols: Mapped[int] = mapped_column(Integer, default=0)
+    ugy_per_unit: Mapped[float] = mapped_column(Float, default=1.0)  # stored uint16 → linear (∝ air kerma)
+    model_trials_csv: Mapped[str | None] = mapped_column(Text, nullable=True)
+    opened_at: Mapped[_dt.datetime | None] = mapped_column(DateTime, nullable=True)
+    closed_at: Mapped[_dt.datetime | None] = mapped_column(DateTime, nullable=True)
+
+    images: Mapped[list["StudyImage"]] = relationship(back_populates="study", order_by="StudyImage.id")
+    enrolments: Mapped[list["Enrolment"]] = relationship(back_populates="study")
+
+
+class StudyImage(Base):
+    """An image of the study; its pixels live in the content store under their SHA-256 name."""
+
+    __tablename__ = "study_images"
+    __table_args__ = (UniqueConstraint("study_id", "sha256"),)
+
+    id: Mapped[int] = mapped_column(primary_key=True)
+    study_id: Mapped[int] = mapped_column(ForeignKey("studies.id"), index=True)
+    sha256: Mapped[str] = mapped_column(String(64))
+    stored_name: Mapped[str] = mapped_column(String(80))             # <sha256>.<ext>, never a client path
+    code: Mapped[str] = mapped_column(String(32))                     # image id in exports: "img-<sha8>"
+    detector: Mapped[str] = mapped_column(String(100))               # coordinator's label, never shown to readers
+    conversion_file: Mapped[str | None] = mapped_column(String(300), nullable=True)
+    pixel_spacing_mm: Mapped[float | None] = mapped_column(Float, nullable=True)  # for files without one
+    label: Mapped[str] = mapped_column(String(200), default="")      # sanitised original name, coordinator only
+    rows: Mapped[int] = mapped_column(Integer, default=0)
+    cols: Mapped[int] = mapped_column(Integer, default=0)
+    registration_json: Mapped[str | None] = mapped_column(Text, nullable=True)
+
+    study: Mapped[Study] = relationship(back_populates="images")
+
+
+class Region(Base):
+    """One target of one image as the readers see it: a fixed-size crop and its candidate sites."""
+
+    __tablename__ = "regions"
+    __table_args__ = (UniqueConstraint("image_id", "target"),)
+
+    id: Mapped[int] = mapped_column(primary_key=True)
+    study_id: Mapped[int] = mapped_column(ForeignKey("studies.id"), index=True)
+    image_id: Mapped[int] = mapped_column(ForeignKey("study_images.id"))
+    target: Mapped[str] = mapped_column(String(64))
+    diameter_mm: Mapped[float] = mapped_column(Float)
+    contrast: Mapped[float] = mapped_column(Float)
+    true_site: Mapped[int] = mapped_column(Integer)                   # never sent before the response is stored
+    row0: Mapped[int] = mapped_column(Integer)
+    col0: Mapped[int] = mapped_column(Integer)
+    sites_json: Mapped[str] = mapped_column(Text)                     # [[row, col], ...] in region pixels
+
+    image: Mapped[StudyImage] = relationship()
+
+    @property
+    def sites(self) -> list[list[float]]:
+        return json.loads(self.sites_json)
+
+
+class Enrolment(Base):
+    __tablename__ = "enrolments"
+    __table_args__ = (UniqueConstraint("study_id", "user_id"),)
+
+    id: Mapped[int] = mapped_column(primary_key=True)
+    study_id: Mapped[int] = mapped_column(ForeignKey("studies.id"), index=True)
+    user_id: Mapped[int] = mapped_column(ForeignKey("users.id"), index=True)
+
+    study: Mapped[Study] = relationship(back_populates="enrolments")
+    user: Mapped[User] = relationship()
+
+
+class Trial(Base):
+    """One presentation in a reader's sequence (practice, first reading or repeat)."""
+
+    __tablename__ = "trials"
+    __table_args__ = (UniqueConstraint("study_id", "reader_id", "seq"),
+                      Index("ix_trials_reader_seq", "study_id", "reader_id", "seq"))
+
+    id: Mapped[int] = mapped_column(primary_key=True)
+    public_id: Mapped[str] = mapped_column(String(32), unique=True, index=True)   # opaque, random
+    study_id: Mapped[int] = mapped_column(ForeignKey("studies.id"))
+    reader_id: Mapped[int] = mapped_column(ForeignKey("users.id"))
+    seq: Mapped[int] = mapped_column(Integer)
+    region_id: Mapped[int] = mapped_column(ForeignKey("regions.id"))
+    practice: Mapped[bool] = mapped_column(Boolean, default=False)
+    repeat: Mapped[int] = mapped_column(Integer, default=0)
+
+    region: Mapped[Region] = relationship()
+    response: Mapped["Response | None"] = relationship(back_populates="trial", uselist=False)
+
+
+class Response(Base):
+    __tablename__ = "responses"
+
+    id: Mapped[int] = mapped_column(primary_key=True)
+    trial_id: Mapped[int] = mapped_column(ForeignKey("trials.id"), unique=True)   # stored once
+    chosen_site: Mapped[int] = mapped_column(Integer)
+    correct: Mapped[bool] = mapped_column(Boolean)
+    response_ms: Mapped[int] = mapped_column(Integer)
+    window: Mapped[float] = mapped_column(Float)
+    level: Mapped[float] = mapped_column(Float)
+    zoom: Mapped[int] = mapped_column(Integer, default=1)
+    inverted: Mapped[bool] = mapped_column(Boolean, default=False)
+    session_id: Mapped[int | None] = mapped_column(ForeignKey("reading_sessions.id"), nullable=True)
+    created_at: Mapped[_dt.datetime] = mapped_column(DateTime, default=utcnow)
+
+    trial: Mapped[Trial] = relationship(back_populates="response")
+
+
+class ReadingSession(Base):
+    """A sitting of one reader: the display check and the viewing conditions recorded with it."""
+
+    __tablename__ = "reading_sessions"
+
+    id: Mapped[int] = mapped_column(primary_key=True)
+    study_id: Mapped[int] = mapped_column(ForeignKey("studies.id"), index=True)
+    reader_id: Mapped[int] = mapped_column(ForeignKey("users.id"), index=True)
+    number: Mapped[int] = mapped_column(Integer, default=1)
+    started_at: Mapped[_dt.datetime] = mapped_column(DateTime, default=utcnow)
+    check_site: Mapped[int] = mapped_column(Integer)                  # the display check's answer (server only)
+    check_seed: Mapped[int] = mapped_column(Integer)
+    check_attempts: Mapped[int] = mapped_column(Integer, default=0)
+    check_passed: Mapped[bool] = mapped_column(Boolean, default=False)
+    screen_width: Mapped[int | None] = mapped_column(Integer, nullable=True)
+    screen_height: Mapped[int | None] = mapped_column(Integer, nullable=True)
+    device_pixel_ratio: Mapped[float | None] = mapped_column(Float, nullable=True)
+    browser_zoom: Mapped[float | None] = mapped_column(Float, nullable=True)
+    viewing_distance_mm: Mapped[float | None] = mapped_column(Float, nullable=True)
+    user_agent: Mapped[str | None] = mapped_column(String(300), nullable=True)
+
+
+class AuditEntry(Base):
+    __tablename__ = "audit_log"
+
+    id: Mapped[int] = mapped_column(primary_key=True)
+    at: Mapped[_dt.datetime] = mapped_column(DateTime, default=utcnow, index=True)
+    user_id: Mapped[int | None] = mapped_column(ForeignKey("users.id"), nullable=True)
+    action: Mapped[str] = mapped_column(String(64))
+    study_id: Mapped[int | None] = mapped_column(Integer, nullable=True)
+    detail: Mapped[str] = mapped_column(Text, default="{}")
+
+    user: Mapped[User | None] = relationship()
+
+
+class AnalysisRun(Base):
+    """A stored analysis of a study's responses (report HTML and JSON), keyed by the responses' hash."""
+
+    __tablename__ = "analysis_runs"
+
+    id: Mapped[int] = mapped_column(primary_key=True)
+    study_id: Mapped[int] = mapped_column(ForeignKey("studies.id"), index=True)
+    created_at: Mapped[_dt.datetime] = mapped_column(DateTime, default=utcnow)
+    responses_sha256: Mapped[str] = mapped_column(String(64))
+    n_responses: Mapped[int] = mapped_column(Integer)
+    report_html: Mapped[str] = mapped_column(Text)
+    analysis_json: Mapped[str] = mapped_column(Text)
+
+
+# --------------------------------------------------------------------------- engine and sessions
+def make_engine(url: str):
+    """An engine for ``url``; SQLite gets WAL, a busy timeout and foreign keys on."""
+    kwargs = {"future": True}
+    if url.startswith("sqlite"):
+        kwargs["connect_args"] = {"check_same_thread": False, "timeout": 30}
+    else:
+        kwargs.update(pool_size=10, max_overflow=20, pool_pre_ping=True)
+    engine = create_engine(url, **kwargs)
+    if url.startswith("sqlite"):
+        @event.listens_for(engine, "connect")
+        def _sqlite_pragmas(dbapi_conn, _record):
+            cur = dbapi_conn.cursor()
+            cur.execute("PRAGMA journal_mode=WAL")
+            cur.execute("PRAGMA synchronous=NORMAL")
+            cur.execute("PRAGMA foreign_keys=ON")
+            cur.execute("PRAGMA busy_timeout=30000")
+            cur.close()
+    return engine
+
+
+def make_session_factory(engine):
+    return scoped_session(sessionmaker(bind=engine, expire_on_commit=False, future=True))
+
+
+def create_schema(engine) -> None:
+    Base.metadata.create_all(engine)

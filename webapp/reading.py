@@ -1,0 +1,256 @@
+"""Reader pages: the display check, the reading screen and its small JSON/binary API.
+
+What a reader's browser receives about a trial: an opaque trial id, whether it is practice, its position
+in the sequence, the region's size, the candidate sites' positions in the region, and the region's linear
+16-bit pixels. Never the image, detector, file, target, contrast, diameter or the site holding the disc —
+the true site is sent (as feedback, when the study allows it) only in the answer to the stored response.
+"""
+
+from __future__ import annotations
+
+import math
+import secrets
+
+from flask import Blueprint, Response as FlaskResponse, abort, current_app, jsonify, redirect, render_template, \
+    request, session, url_for
+from flask_login import current_user
+from sqlalchemy import func, select
+from sqlalchemy.exc import IntegrityError
+
+from webapp import services
+from webapp.models import Enrolment, ReadingSession, Region, Response, Study, StudyImage, Trial
+from webapp.security import db, role_required
+
+bp = Blueprint("reading", __name__, url_prefix="/reading")
+reader_only = role_required("reader")
+
+
+def _session_key(study_id: int) -> str:
+    return f"reading-session-{study_id}"
+
+
+def _enrolled(study_id: int, states=("open", "closed")) -> Study:
+    """The study, if the signed-in reader is enrolled in it and it has been opened; else 404."""
+    st = db().get(Study, study_id)
+    if st is None or st.status not in states:
+        abort(404)
+    e = db().execute(select(Enrolment.id).where(Enrolment.study_id == study_id,
+                                                Enrolment.user_id == current_user.id)).first()
+    if e is None:
+        abort(404)
+    return st
+
+
+def _own_trial(public_id: str) -> Trial:
+    t = db().execute(select(Trial).where(Trial.public_id == public_id)).scalars().first()
+    if t is None or t.reader_id != current_user.id:
+        abort(404)
+    return t
+
+
+def _passed_session(study_id: int) -> ReadingSession | None:
+    sid = session.get(_session_key(study_id))
+    if not sid:
+        return None
+    rs = db().get(ReadingSession, sid)
+    if rs is None or rs.reader_id != current_user.id or rs.study_id != study_id or not rs.check_passed:
+        return None
+    return rs
+
+
+def _counts(study_id: int) -> dict:
+    """Trials and answers of the signed-in reader, practice apart (one query)."""
+    rows = db().execute(select(Trial.practice, func.count(Trial.id), func.count(Response.id))
+                        .outerjoin(Response, Response.trial_id == Trial.id)
+                        .where(Trial.study_id == study_id, Trial.reader_id == current_user.id)
+                        .group_by(Trial.practice)).all()
+    out = {"answered": 0, "total": 0, "practice_answered": 0, "practice_total": 0}
+    for practice, n, answered in rows:
+        key = "practice_" if practice else ""
+        out[f"{key}total"] += int(n)
+        out[f"{key}answered"] += int(answered)
+    return out
+
+
+@bp.route("/")
+@reader_only
+def home():
+    rows = db().execute(select(Study).join(Enrolment, Enrolment.study_id == Study.id)
+                        .where(Enrolment.user_id == current_user.id, Study.status.in_(("open", "closed")))
+                        .order_by(Study.id)).scalars().all()
+    studies = [{"study": st, **_counts(st.id)} for st in rows]
+    return render_template("reading/home.html", studies=studies)
+
+
+# --------------------------------------------------------------------------- display check
+def _new_check(rs: ReadingSession) -> None:
+    rs.check_site = secrets.randbelow(len(services.CHECK_SITES))
+    rs.check_seed = secrets.randbelow(2 ** 31)
+
+
+@bp.route("/studies/<int:study_id>/check")
+@reader_only
+def check(study_id):
+    st = _enrolled(study_id, ("open",))
+    s = db()
+    sid = session.get(_session_key(study_id))
+    rs = s.get(ReadingSession, sid) if sid else None
+    if rs is None or rs.reader_id != current_user.id or rs.study_id != study_id:
+        number = (s.scalar(select(func.max(ReadingSession.number)).where(
+            ReadingSession.study_id == study_id, ReadingSession.reader_id == current_user.id)) or 0) + 1
+        rs = ReadingSession(study_id=study_id, reader_id=current_user.id, number=number, check_site=0,
+                            check_seed=0, user_agent=(request.user_agent.string or "")[:300])
+        _new_check(rs)
+        s.add(rs)
+        s.commit()
+        session[_session_key(study_id)] = rs.id
+    return render_template("reading/check.html", study=st, rs=rs, size=services.CHECK_SIZE,
+                           sites=services.CHECK_SITES)
+
+
+@bp.route("/api/studies/<int:study_id>/check/pattern")
+@reader_only
+def check_pattern(study_id):
+    _enrolled(study_id, ("open",))
+    sid = session.get(_session_key(study_id))
+    rs = db().get(ReadingSession, sid) if sid else None
+    if rs is None or rs.reader_id != current_user.id:
+        return jsonify(error="open the display check page first"), 409
+    body = services.display_check_pattern(rs.check_site, rs.check_seed)
+    return FlaskResponse(body, mimetype="application/octet-stream",
+                         headers={"X-Rows": str(services.CHECK_SIZE), "X-Cols": str(services.CHECK_SIZE)})
+
+
+def _float(data, key, lo, hi):
+    try:
+        v = float(data.get(key))
+    except (TypeError, ValueError):
+        return None
+    return v if math.isfinite(v) and lo <= v <= hi else None
+
+
+@bp.route("/api/studies/<int:study_id>/check", methods=["POST"])
+@reader_only
+def check_answer(study_id):
+    _enrolled(study_id, ("open",))
+    s = db()
+    sid = session.get(_session_key(study_id))
+    rs = s.get(ReadingSession, sid) if sid else None
+    if rs is None or rs.reader_id != current_user.id:
+        return jsonify(error="start the display check from its page"), 400
+    data = request.get_json(silent=True) or {}
+    try:
+        site = int(data.get("site"))
+    except (TypeError, ValueError):
+        return jsonify(error="site must be a whole number"), 400
+    distance = _float(data, "viewing_distance_mm", 100, 2000)
+    if distance is None:
+        return jsonify(error="viewing distance must lie between 100 and 2000 mm"), 400
+    rs.screen_width = int(_float(data, "screen_width", 1, 100000) or 0) or None
+    rs.screen_height = int(_float(data, "screen_height", 1, 100000) or 0) or None
+    rs.device_pixel_ratio = _float(data, "device_pixel_ratio", 0.1, 16)
+    rs.browser_zoom = _float(data, "browser_zoom", 0.1, 16)
+    rs.viewing_distance_mm = distance
+    rs.check_attempts += 1
+    passed = site == rs.check_site
+    if passed:
+        rs.check_passed = True
+    else:
+        _new_check(rs)
+    s.commit()
+    return jsonify(passed=passed, attempts=rs.check_attempts,
+                   next=url_for("reading.read", study_id=study_id) if passed else None)
+
+
+# --------------------------------------------------------------------------- reading
+@bp.route("/studies/<int:study_id>")
+@reader_only
+def read(study_id):
+    st = _enrolled(study_id)
+    if st.status == "closed":
+        return render_template("reading/closed.html", study=st, **_counts(st.id))
+    if _passed_session(study_id) is None:
+        return redirect(url_for("reading.check", study_id=study_id))
+    return render_template("reading/read.html", study=st)
+
+
+@bp.route("/api/studies/<int:study_id>/next")
+@reader_only
+def next_trial(study_id):
+    st = _enrolled(study_id)
+    counts = _counts(st.id)
+    if st.status != "open":
+        return jsonify(done=True, closed=True, **counts)
+    t = db().execute(select(Trial).outerjoin(Response, Response.trial_id == Trial.id)
+                     .where(Trial.study_id == st.id, Trial.reader_id == current_user.id, Response.id.is_(None))
+                     .order_by(Trial.seq).limit(1)).scalars().first()
+    if t is None:
+        return jsonify(done=True, closed=False, **counts)
+    reg = t.region
+    return jsonify(done=False, trial=t.public_id, practice=bool(t.practice),
+                   number=counts["answered"] + (0 if t.practice else 1),
+                   practice_number=counts["practice_answered"] + 1 if t.practice else None,
+                   rows=st.region_rows, cols=st.region_cols, sites=reg.sites, m=len(reg.sites),
+                   magnification=st.magnification,
+                   region_url=url_for("reading.region", public_id=t.public_id),
+                   response_url=url_for("reading.respond", public_id=t.public_id), **counts)
+
+
+@bp.route("/api/trials/<public_id>/region")
+@reader_only
+def region(public_id):
+    # one query on the hot path: whose trial, is the study open, where is the crop, which stored image
+    row = db().execute(select(Trial.reader_id, Study.status, Study.region_rows, Study.region_cols, Region.row0,
+                              Region.col0, StudyImage.sha256)
+                       .join(Study, Study.id == Trial.study_id).join(Region, Region.id == Trial.region_id)
+                       .join(StudyImage, StudyImage.id == Region.image_id)
+                       .where(Trial.public_id == public_id)).first()
+    if row is None or row.reader_id != current_user.id or row.status != "open":
+        abort(404)
+    body = services.region_bytes(current_app.config["STORE_DIR"], row.sha256, row.row0, row.col0, row.region_rows,
+                                 row.region_cols)
+    return FlaskResponse(body, mimetype="application/octet-stream",
+                         headers={"X-Rows": str(row.region_rows), "X-Cols": str(row.region_cols)})
+
+
+@bp.route("/api/trials/<public_id>/response", methods=["POST"])
+@reader_only
+def respond(public_id):
+    t = _own_trial(public_id)
+    s = db()
+    st = s.get(Study, t.study_id)
+    if st.status != "open":
+        return jsonify(error="the study is closed"), 409
+    rs = _passed_session(st.id)
+    if rs is None:
+        return jsonify(error="pass the display check first"), 428
+    data = request.get_json(silent=True)
+    if not isinstance(data, dict):
+        return jsonify(error="send the response as JSON"), 400
+    m = len(t.region.sites)
+    try:
+        site = int(data.get("chosen_site"))
+        ms = int(data.get("response_ms"))
+        zoom = int(data.get("zoom", 1))
+    except (TypeError, ValueError):
+        return jsonify(error="chosen_site, response_ms and zoom must be whole numbers"), 400
+    window, level = _float(data, "window", 1e-9, 1e6), _float(data, "level", -1e6, 1e6)
+    if not 0 <= site < m:
+        return jsonify(error=f"chosen_site must lie in 0…{m - 1}"), 400
+    if not 0 <= ms <= 6 * 3600 * 1000 or window is None or level is None or not 1 <= zoom <= 64:
+        return jsonify(error="response_ms, window, level or zoom out of range"), 400
+    if t.response is not None:
+        return jsonify(error="this trial is already answered", duplicate=True), 409
+    correct = site == t.region.true_site
+    s.add(Response(trial_id=t.id, chosen_site=site, correct=correct, response_ms=ms, window=window, level=level,
+                   zoom=zoom, inverted=bool(data.get("inverted", False)), session_id=rs.id))
+    try:
+        s.commit()
+    except IntegrityError:      # the same trial answered at the same moment from another tab
+        s.rollback()
+        return jsonify(error="this trial is already answered", duplicate=True), 409
+    out = {"stored": True}
+    if t.practice or st.show_feedback:
+        # only now, with the response stored, may the truth leave the server
+        out["feedback"] = {"correct": bool(correct), "true_site": int(t.region.true_site)}
+    return jsonify(out)

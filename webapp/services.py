@@ -1,0 +1,411 @@
+"""Study logistics between the views and :mod:`scorer`: content store, study opening, schedules, regions,
+export and analysis.
+
+Nothing here computes physics or statistics: images are read by :func:`scorer.images.load_image`,
+placed by :func:`scorer.phantom.register` (through :func:`scorer.observer.score_images`, which also
+gives the model observer's trials), and analysed by :func:`scorer.study.analyse_study`. What is
+here is bookkeeping: which reader sees which region in which order, the pixel crops they see, and the
+tidy table the statistics read.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import io
+import json
+import os
+import re
+import secrets
+import tempfile
+import threading
+import warnings
+from collections import OrderedDict
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+from scorer.errors import LimenError
+
+IMAGE_SUFFIXES = {".dcm", ".dicom", ".tif", ".tiff", ".png", ".npy"}
+LAYOUT_SUFFIXES = {".toml"}
+U16_MAX = 65535
+EXTRA_EXPORT_COLUMNS = ["window", "level", "timestamp"]
+
+
+def export_columns() -> list[str]:
+    """The responses CSV: every column ``limen analyse`` reads, then window, level and timestamp."""
+    from scorer.study.reader_model import TRIAL_COLUMNS
+    from scorer.study.stats import OPTIONAL_COLUMNS
+
+    return list(TRIAL_COLUMNS) + [c for c in OPTIONAL_COLUMNS if c not in TRIAL_COLUMNS] + EXTRA_EXPORT_COLUMNS
+
+
+# =========================================================================== content store
+def safe_label(name: str | None) -> str:
+    """A display label for an uploaded file (coordinator pages only): base name, printable, ≤ 120 chars."""
+    base = re.split(r"[\\/]", name or "")[-1]
+    base = re.sub(r"[^\w.\- ]+", "_", base).strip(" .")
+    return base[:120] or "upload"
+
+
+def store_bytes(stream, suffix: str, store_dir: Path, max_bytes: int, label: str) -> tuple[str, Path]:
+    """Copy an upload into the content store as ``<sha256><suffix>``; return (sha256, path).
+
+    The client's file name is never used for the stored path, only its (checked) extension.
+    """
+    store_dir.mkdir(parents=True, exist_ok=True)
+    h = hashlib.sha256()
+    size = 0
+    fd, tmp = tempfile.mkstemp(dir=store_dir, prefix=".upload-")
+    try:
+        with os.fdopen(fd, "wb") as out:
+            while True:
+                chunk = stream.read(1 << 20)
+                if not chunk:
+                    break
+                size += len(chunk)
+                if size > max_bytes:
+                    raise LimenError(f"file is larger than the limit of {max_bytes // (1024 * 1024)} MB", label)
+                h.update(chunk)
+                out.write(chunk)
+        if size == 0:
+            raise LimenError("file is empty", label)
+        digest = h.hexdigest()
+        final = store_dir / f"{digest}{suffix}"
+        if final.exists():
+            os.unlink(tmp)
+        else:
+            os.replace(tmp, final)
+        return digest, final
+    except BaseException:
+        if os.path.exists(tmp):
+            os.unlink(tmp)
+        raise
+
+
+def check_suffix(name: str, allowed: set[str], what: str) -> str:
+    suffix = Path(safe_label(name)).suffix.lower()
+    if suffix not in allowed:
+        raise LimenError(f"{what} must be one of {', '.join(sorted(allowed))} (got '{suffix or 'no extension'}')",
+                         safe_label(name))
+    return ".dcm" if suffix == ".dicom" else suffix
+
+
+def _named(label: str, path: Path, read):
+    """Run ``read()`` on a stored file; a LimenError names the uploaded file (label), not the store path."""
+    try:
+        return read()
+    except LimenError as exc:
+        msg = str(exc).replace(str(path), "").lstrip(": ").strip()
+        raise LimenError(msg, label) from None
+
+
+def validate_image_file(path: Path, label: str, pixel_spacing_mm=None, conversion=None):
+    """Read the stored file as an image (the real type check); errors name the uploaded file."""
+    from scorer.images import LimenWarning, load_image
+
+    def read():
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", LimenWarning)
+            return load_image(path, pixel_spacing_mm=pixel_spacing_mm, conversion=conversion)
+    return _named(label, path, read)
+
+
+def validate_layout_file(path: Path, label: str):
+    from scorer.phantom import load_layout
+
+    return _named(label, path, lambda: load_layout(path))
+
+
+def validate_conversion_file(path: Path, label: str):
+    from scorer.images import load_conversion
+
+    return _named(label, path, lambda: load_conversion(path))
+
+
+def bundled_layouts() -> dict[str, str]:
+    """Layouts shipped with Limen: {file name: path}."""
+    from scorer.phantom.layout import PHANTOM_DIR
+
+    return {p.name: str(p) for p in sorted(PHANTOM_DIR.glob("*.toml"))}
+
+
+# =========================================================================== pixels for the viewer
+class PixelCache:
+    """Stored uint16 images, memory-mapped and kept open (LRU) so a region is a slice, not a file read."""
+
+    def __init__(self, size: int = 64):
+        self._size = size
+        self._lock = threading.Lock()
+        self._maps: OrderedDict[str, np.ndarray] = OrderedDict()
+
+    def get(self, path: Path) -> np.ndarray:
+        key = str(path)
+        with self._lock:
+            arr = self._maps.get(key)
+            if arr is not None:
+                self._maps.move_to_end(key)
+                return arr
+        arr = np.load(path, mmap_mode="r")
+        with self._lock:
+            self._maps[key] = arr
+            while len(self._maps) > self._size:
+                self._maps.popitem(last=False)
+        return arr
+
+
+PIXELS = PixelCache()
+
+
+def display_path(store_dir: Path, sha256: str) -> Path:
+    return Path(store_dir) / "display" / f"{sha256}.u16.npy"
+
+
+def region_bytes(store_dir: Path, sha256: str, row0: int, col0: int, rows: int, cols: int) -> bytes:
+    """The region's linear 16-bit pixels, little-endian, row-major."""
+    arr = PIXELS.get(display_path(store_dir, sha256))
+    return np.ascontiguousarray(arr[row0:row0 + rows, col0:col0 + cols], dtype="<u2").tobytes()
+
+
+# =========================================================================== opening a study
+def _region_boxes(sites_by_key: dict, shape_by_image: dict) -> tuple[int, dict]:
+    """One square region size for the whole study (so its size tells nothing about the target) and each
+    region's top-left corner and site positions (row, col) inside it."""
+    half = 0.0
+    for (img, _t), rc in sites_by_key.items():
+        c = rc.mean(axis=0)
+        d = np.sqrt(((rc[:, None, :] - rc[None, :, :]) ** 2).sum(-1))
+        pad = 0.5 * d[d > 0].min() if np.any(d > 0) else 16.0
+        half = max(half, float(np.abs(rc - c).max() + pad))
+    size = 2 * int(np.ceil(half)) + 1
+    out = {}
+    for (img, t), rc in sites_by_key.items():
+        rows, cols = shape_by_image[img]
+        if size > rows or size > cols:
+            raise LimenError(f"image is smaller ({rows} × {cols} px) than one reading region ({size} px)", img)
+        c = rc.mean(axis=0)
+        r0 = int(np.clip(round(c[0]) - size // 2, 0, rows - size))
+        c0 = int(np.clip(round(c[1]) - size // 2, 0, cols - size))
+        out[(img, t)] = (r0, c0, (rc - [r0, c0]).round(2).tolist())
+    return size, out
+
+
+def open_study(session, study, store_dir: Path, progress=None) -> list[str]:
+    """Score the study's images with the model observer, cut the reading regions, write the display
+    pixels and build every reader's schedule. Returns notes for the coordinator."""
+    from scorer.images import LimenWarning, load_conversion, load_image
+    from scorer.observer import score_images
+    from scorer.phantom import load_layout
+    from webapp.models import Region
+
+    say = progress or (lambda s: None)
+    if not study.images:
+        raise LimenError("the study has no images yet; add images before opening it")
+    if not study.enrolments:
+        raise LimenError("no readers are enrolled; choose at least one reader")
+    layout = load_layout(study.layout_file)
+    store_dir = Path(store_dir)
+    groups: dict[tuple, list] = {}
+    for im in study.images:
+        groups.setdefault((im.conversion_file, im.pixel_spacing_mm), []).append(im)
+    notes: list[str] = []
+    model_frames, sites_by_key, shape_by_image, by_code, placements = [], {}, {}, {}, {}
+    for (conv_file, spacing), images in groups.items():
+        conversion = load_conversion(conv_file) if conv_file else None
+        paths = [str(store_dir / im.stored_name) for im in images]
+        say(f"scoring {len(paths)} image(s) with the {study.observer.upper()} model observer")
+        res = score_images(paths, layout, observer=study.observer, methods=["count"], conversion=conversion,
+                           pixel_spacing_mm=spacing,
+                           viewing_distance_mm=study.viewing_distance_mm, n_boot=0, seed=study.seed)
+        notes += [n for n in res.warnings if n not in notes]
+        name_to_image = {Path(p).name: im for p, im in zip(paths, images)}
+        tr = res.trials.copy()
+        tr["image"] = [name_to_image[n].code for n in res.trials["image"]]
+        tr["detector"] = [name_to_image[n].detector for n in res.trials["image"]]
+        model_frames.append(tr.rename(columns={"m_alternatives": "n_alternatives"}))
+        for score in res.images:
+            im = name_to_image[Path(score.path).name]
+            placements[im.id] = score.placement
+            im.registration_json = json.dumps(score.placement.to_dict())
+            for t in layout.targets:
+                sites_by_key[(im.code, t.id)] = score.placement.transform.to_pixel(t.sites)
+            by_code[im.code] = (im, conversion, spacing)
+    # the display pixels: linear in air kerma (µGy with a conversion function), one 16-bit scale for the study
+    say("writing display pixels")
+    arrays = {}
+    top = 0.0
+    for code, (im, conversion, spacing) in by_code.items():
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", LimenWarning)
+            img = load_image(store_dir / im.stored_name, conversion=conversion, pixel_spacing_mm=spacing)
+        px = np.asarray(img.pixels, dtype=np.float64)
+        arrays[code] = px
+        shape_by_image[code] = px.shape
+        im.rows, im.cols = px.shape
+        top = max(top, float(np.percentile(px, 99.99)))
+    scale = 1.25 * top / U16_MAX if top > 0 else 1.0
+    study.ugy_per_unit = scale
+    for code, px in arrays.items():
+        im = by_code[code][0]
+        u16 = np.clip(np.round(np.maximum(px, 0.0) / scale), 0, U16_MAX).astype("<u2")
+        path = display_path(store_dir, im.sha256)
+        path.parent.mkdir(parents=True, exist_ok=True)
+        if not path.exists():
+            tmp = path.with_suffix(f".{secrets.token_hex(4)}.tmp.npy")
+            np.save(tmp, u16)
+            os.replace(tmp, path)
+    del arrays
+    size, boxes = _region_boxes(sites_by_key, shape_by_image)
+    study.region_rows = study.region_cols = size
+    study.m_alternatives = int(max(t.m_alternatives for t in layout.targets))
+    targets = {t.id: t for t in layout.targets}
+    regions = []
+    for (code, tid), (r0, c0, sites) in boxes.items():
+        t = targets[tid]
+        regions.append(Region(study_id=study.id, image_id=by_code[code][0].id, target=tid,
+                              diameter_mm=float(t.diameter_mm), contrast=float(t.contrast),
+                              true_site=int(t.signal_site), row0=r0, col0=c0, sites_json=json.dumps(sites)))
+    session.add_all(regions)
+    session.flush()
+    model = pd.concat(model_frames, ignore_index=True)
+    study.model_trials_csv = model.to_csv(index=False)
+    say("building reader schedules")
+    build_schedules(session, study, regions)
+    return notes
+
+
+def build_schedules(session, study, regions) -> None:
+    """Every enrolled reader's sequence: practice first, then the study's trials in the reader's own random
+    order, then the repeats (a second reading of a random subset, for intra-reader agreement).
+
+    The subset of regions read (when fewer trials per reader than regions) and the repeated subset are the
+    same for every reader (so readers can be compared item by item); only the order differs.
+    """
+    from webapp.models import Trial
+
+    rng = np.random.default_rng([int(study.seed), 1])
+    ordered = sorted(regions, key=lambda r: (r.image_id, r.target))
+    n = min(int(study.trials_per_reader), len(ordered))
+    if n < 1:
+        raise LimenError("trials per reader must be at least 1")
+    main = [ordered[i] for i in np.sort(rng.choice(len(ordered), size=n, replace=False))]
+    n_rep = int(round(float(study.repeat_fraction) * n))
+    repeats = [main[i] for i in np.sort(rng.choice(n, size=n_rep, replace=False))] if n_rep else []
+    # practice: the most visible target of each diameter (largest contrast) on random images
+    practice = []
+    if study.n_practice:
+        best: dict[float, list] = {}
+        for r in ordered:
+            best.setdefault(r.diameter_mm, []).append(r)
+        easy = [max(v, key=lambda r: r.contrast) for _, v in sorted(best.items(), reverse=True)]
+        pool = [r for r in ordered if any(r.target == e.target for e in easy)]
+        pick = rng.choice(len(pool), size=min(int(study.n_practice), len(pool)), replace=False)
+        practice = [pool[i] for i in pick]
+    rows = []
+    for enrol in sorted(study.enrolments, key=lambda e: e.user_id):
+        r_rng = np.random.default_rng([int(study.seed), 2, int(enrol.user_id)])
+        seq = [(r, True, 0) for r in practice]
+        seq += [(main[i], False, 0) for i in r_rng.permutation(len(main))]
+        seq += [(repeats[i], False, 1) for i in r_rng.permutation(len(repeats))]
+        for k, (region, is_practice, rep) in enumerate(seq):
+            rows.append(Trial(public_id=secrets.token_hex(12), study_id=study.id, reader_id=enrol.user_id,
+                              seq=k, region_id=region.id, practice=is_practice, repeat=rep))
+    session.add_all(rows)
+
+
+# =========================================================================== display check
+CHECK_SIZE = 192
+CHECK_SITES = [(48, 48), (48, 144), (144, 48), (144, 144)]   # (row, col)
+
+
+def display_check_pattern(site: int, seed: int) -> bytes:
+    """A low-contrast pattern shown at fixed window/level: four candidate sites on a dark-grey field, one of
+    which holds a faint disc 3 grey levels (of 255) above it. Finding it shows that the display and the
+    room let dark, low-contrast detail through (common practice for a pre-reading display check)."""
+    rng = np.random.default_rng(seed)
+    base = 28 + int(rng.integers(0, 6))
+    img = np.full((CHECK_SIZE, CHECK_SIZE), base, dtype=float)
+    yy, xx = np.mgrid[:CHECK_SIZE, :CHECK_SIZE]
+    r, c = CHECK_SITES[site]
+    img[(yy - r) ** 2 + (xx - c) ** 2 <= 14 ** 2] = base + 3
+    img[:, :8] = 0
+    img[:, -8:] = 255            # black and white bars at the edges frame the grey scale
+    return (img * 257).astype("<u2").tobytes()
+
+
+# =========================================================================== export and analysis
+def responses_frame(session, study) -> pd.DataFrame:
+    """The study's stored (non-practice) responses as the tidy table ``limen analyse`` reads."""
+    from sqlalchemy import select
+
+    from webapp.models import ReadingSession, Region, Response, StudyImage, Trial, User
+
+    q = (select(User.username, StudyImage.detector, StudyImage.code, Region.target, Region.diameter_mm,
+                Region.contrast, Response.chosen_site, Region.true_site, Response.correct, Response.response_ms,
+                ReadingSession.number, Trial.repeat, Response.window, Response.level, Response.created_at,
+                Region.sites_json)
+         .join(Trial, Response.trial_id == Trial.id)
+         .join(User, Trial.reader_id == User.id)
+         .join(Region, Trial.region_id == Region.id)
+         .join(StudyImage, Region.image_id == StudyImage.id)
+         .outerjoin(ReadingSession, Response.session_id == ReadingSession.id)
+         .where(Trial.study_id == study.id, Trial.practice.is_(False))
+         .order_by(User.username, Trial.seq))
+    rows = session.execute(q).all()
+    scale = float(study.ugy_per_unit or 1.0)
+    df = pd.DataFrame(rows, columns=["reader", "detector", "image", "target", "diameter_mm", "contrast",
+                                     "chosen_site", "true_site", "correct", "response_ms", "session", "repeat",
+                                     "window", "level", "timestamp", "sites_json"])
+    df["correct"] = df["correct"].astype(int)
+    df["session"] = df["session"].fillna(1).astype(int)
+    # each trial's own M (a plate may use 3-site cells for some diameters and 5-site cells for others)
+    df["n_alternatives"] = [len(json.loads(x)) for x in df["sites_json"]] if len(df) else pd.Series(dtype=int)
+    df["window"] = df["window"].astype(float) * scale
+    df["level"] = df["level"].astype(float) * scale
+    df["timestamp"] = [t.isoformat(timespec="milliseconds") + "Z" if t is not None else "" for t in df["timestamp"]]
+    return df[export_columns()]
+
+
+def responses_csv(session, study) -> str:
+    return responses_frame(session, study).to_csv(index=False)
+
+
+def model_frame(study) -> pd.DataFrame | None:
+    if not study.model_trials_csv:
+        return None
+    return pd.read_csv(io.StringIO(study.model_trials_csv), dtype={"reader": str, "detector": str, "image": str,
+                                                                  "target": str})
+
+
+def run_analysis(session, study, n_boot: int, seed: int = 0):
+    """Analyse the stored responses with :func:`scorer.study.analyse_study` (model observer included);
+    return the :class:`webapp.models.AnalysisRun` (cached by the responses' hash)."""
+    from sqlalchemy import select
+
+    from scorer.reports.study import report_html
+    from scorer.reports.html import dumps
+    from scorer.study import analyse_study, validate_trials
+    from webapp.models import AnalysisRun
+
+    df = responses_frame(session, study)
+    if df.empty:
+        raise LimenError("no responses stored yet: nothing to analyse")
+    csv_text = df.to_csv(index=False)
+    digest = hashlib.sha256(f"{n_boot}|{seed}|".encode() + csv_text.encode()).hexdigest()
+    cached = session.execute(select(AnalysisRun).where(AnalysisRun.study_id == study.id,
+                                                       AnalysisRun.responses_sha256 == digest)).scalars().first()
+    if cached is not None:
+        return cached
+    trials = validate_trials(df, source=f"study {study.id} responses")
+    model_raw = model_frame(study)
+    model = validate_trials(model_raw, source=f"study {study.id} model-observer trials") \
+        if model_raw is not None and len(model_raw) else None
+    a = analyse_study(trials, model, by="detector", n_boot=n_boot, seed=seed)
+    meta = {"study": study.name, "layout": study.layout_name, "observer": study.observer,
+            "responses_sha256": hashlib.sha256(csv_text.encode()).hexdigest(), "n_responses": int(len(df)),
+            "seed": seed, "n_boot": n_boot}
+    run = AnalysisRun(study_id=study.id, responses_sha256=digest, n_responses=int(len(df)),
+                      report_html=report_html(a, meta), analysis_json=dumps({**a.to_json(), "meta": meta}))
+    session.add(run)
+    return run
