@@ -20,7 +20,6 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from scorer.images import save_conversion
 from scorer.images import load_image
 from scorer.phantom import load_layout
 from scorer.observer import ObserverConfig, decide, estimate_blur, score_image

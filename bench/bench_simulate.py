@@ -8,7 +8,6 @@ resident set size.
 from __future__ import annotations
 
 import json
-import resource
 import subprocess
 import sys
 import tempfile

@@ -114,7 +114,7 @@ class Reader(threading.Thread):
                 if self.rng.random() < 0.1:       # a double click: the same response twice at once
                     self.double_sent += 1
                     codes = []
-                    twin = threading.Thread(target=lambda: codes.append(
+                    twin = threading.Thread(target=lambda codes=codes, url=url, body=body: codes.append(
                         s.post(url, json=body, headers=headers, timeout=30).status_code))
                     twin.start()
                     t0 = time.perf_counter()

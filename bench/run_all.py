@@ -6,8 +6,8 @@ import importlib
 import sys
 import time
 
-BENCHES = ["bench_simulate", "bench_register", "bench_score", "bench_detector", "bench_analyse", "bench_nightly",
-           "bench_observer_coverage"]
+BENCHES = ["bench_cli", "bench_simulate", "bench_register", "bench_score", "bench_detector", "bench_analyse", "bench_nightly",
+           "bench_observer_coverage", "bench_web_load"]
 
 
 def main() -> int:
@@ -21,6 +21,19 @@ def main() -> int:
             failed.append(name)
             print(f"{name} failed: {exc!r}")
         print(f"({time.perf_counter() - t:.0f} s)")
+    if "bench_web_load" not in BENCHES:
+        print("\n(the web load bench runs apart: python -m bench.bench_web_load)")
+    from bench.figures import RESULTS, lines, markdown
+
+    print("\n== figures ==")
+    for line in lines():
+        print(line)
+    import datetime
+    import platform
+
+    RESULTS.mkdir(exist_ok=True)
+    (RESULTS / "table.md").write_text(markdown(f"Measured {datetime.date.today()} on {platform.machine()}, "
+                                               f"{platform.python_version()}"), encoding="utf-8")
     if failed:
         print("failed: " + ", ".join(failed))
     return 1 if failed else 0

@@ -24,7 +24,7 @@ def test_help_and_version_load_no_heavy_module():
 def test_every_listed_command_resolves_and_its_help_line_fits():
     res = CliRunner().invoke(main, ["--help"])
     assert res.exit_code == 0
-    for name, (module, attr, short) in COMMANDS.items():
+    for name, (_module, _attr, short) in COMMANDS.items():
         assert name in res.output
         cmd = main.get_command(click.Context(main), name)
         assert isinstance(cmd, click.Command) and cmd.name == name, name

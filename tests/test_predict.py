@@ -21,7 +21,7 @@ def test_disc_ft_matches_hankel_transform():
     # transform 2π∫₀ᴿ r J₀(2πfr) dr computed here with scipy.integrate.quad.
     r = 0.4
     for f in (0.0, 0.3, 1.1, 2.7):
-        ref, _ = integrate.quad(lambda x: 2 * np.pi * x * special.j0(2 * np.pi * f * x), 0, r)
+        ref, _ = integrate.quad(lambda x, f=f: 2 * np.pi * x * special.j0(2 * np.pi * f * x), 0, r)
         assert disc_ft(np.array([f]), r)[0] == pytest.approx(ref, rel=1e-8, abs=1e-12)
     assert disc_ft(np.array([0.0]), r, amplitude=2.0)[0] == pytest.approx(2 * np.pi * r * r)
 

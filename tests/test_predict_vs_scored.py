@@ -1,6 +1,5 @@
 """The contrast-detail curve predicted from MTF and NNPS agrees with the one scored from phantom images."""
 
-import numpy as np
 import pandas as pd
 import pytest
 

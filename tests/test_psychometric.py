@@ -94,7 +94,9 @@ def test_batch_fit_equals_single_fit():
         assert f.params["k"] == pytest.approx(kk, rel=1e-7)
         # ML property: it beats nearby k (scipy's bounded scalar optimiser as an independent check)
         from scipy.optimize import minimize_scalar
-        nll = lambda lk: -np.sum(stats.binom.logpmf(row, 8, pc_mafc_fast(np.exp(lk) * LEVELS, M)))
+        def nll(lk, row=row):
+            return -np.sum(stats.binom.logpmf(row, 8, pc_mafc_fast(np.exp(lk) * LEVELS, M)))
+
         r = minimize_scalar(nll, bounds=(np.log(kk) - 1, np.log(kk) + 1), method="bounded",
                             options={"xatol": 1e-9})
         assert np.exp(r.x) == pytest.approx(kk, rel=1e-5)

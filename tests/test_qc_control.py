@@ -67,7 +67,8 @@ def test_baseline_mean_sd_and_within_session_floor():
     assert float(log_se_from_ci(10 ** (-2 - z * 0.05), 10 ** (-2 + z * 0.05))) == pytest.approx(0.05, rel=1e-12)
 
 
-def _judge(history, sid, rules=AlertRules(), k=4):
+def _judge(history, sid, rules=None, k=4):
+    rules = AlertRules() if rules is None else rules
     base_ids = set(range(1, k + 1))
     b = compute_baseline(history[history["session_id"].isin(base_ids)])
     last = history[history["session_id"] == k]["session_date"].iloc[0]

@@ -97,7 +97,7 @@ def _concurrent(template, tmp_path, db):
     procs = [subprocess.Popen(_cmd(inbox, cfg, db), env=_env(), stdout=subprocess.PIPE, stderr=subprocess.PIPE,
                               text=True) for _ in range(2)]
     outs = [p.communicate(timeout=300) for p in procs]
-    for p, (out, err) in zip(procs, outs):
+    for p, (_out, err) in zip(procs, outs):
         assert p.returncode == 0, err[-2000:]
     results = [json.loads(out) for out, _ in outs]
     assert sum(r["sessions_scored"] for r in results) == N_SESSIONS

@@ -115,7 +115,7 @@ def test_bad_inputs_give_one_line_and_exit_2(direct_set, tmp_path):
     for args, needle in cases:
         res = _run(args)
         assert res.exit_code == 2, res.output
-        err = [l for l in res.output.splitlines() if l.startswith("error:")]
+        err = [ln for ln in res.output.splitlines() if ln.startswith("error:")]
         assert len(err) == 1 and needle in err[0], res.output
         assert "Traceback" not in res.output
     # the failed registration left a diagnostic overlay
@@ -178,7 +178,7 @@ def test_every_bad_image_exits_2_with_one_line(direct_set, tmp_path):
         res = _run([str(path), "--layout", str(MINI), "--pixel-spacing", "0.085"] if path.suffix != ".dcm"
                    else [str(path), "--layout", str(MINI)])
         assert res.exit_code == 2, (path, res.output)
-        lines = [l for l in res.output.splitlines() if l.strip()]
+        lines = [ln for ln in res.output.splitlines() if ln.strip()]
         assert len(lines) == 1 and lines[0].startswith("error: ") and path.name in lines[0], res.output
         assert needle in lines[0], res.output
 
@@ -195,7 +195,7 @@ def test_compressed_dicom_without_its_decoder_exits_2(direct_set, tmp_path, monk
     monkeypatch.setattr(JPEGLSLosslessDecoder, "_available", {})
     res = _run([str(p), "--layout", str(MINI)])
     assert res.exit_code == 2
-    lines = [l for l in res.output.splitlines() if l.strip()]
+    lines = [ln for ln in res.output.splitlines() if ln.strip()]
     assert len(lines) == 1 and "jls.dcm" in lines[0] and "1.2.840.10008.1.2.4.80" in lines[0], res.output
 
 

@@ -122,7 +122,7 @@ def test_phantom_pose_places_markers_where_truth_says():
     pose = Pose(rotation_deg=37.0, flipped=True, magnification=1.2, shift_mm=(2.0, -1.0))
     sim = simulate(detector_model("direct"), "phantom", 200.0, seed=2, small=True, layout=lay, pose=pose)
     k = sim.kerma_ugy()
-    for mid, (r, c) in sim.truth["fiducials_px"].items():
+    for _mid, (r, c) in sim.truth["fiducials_px"].items():
         assert k[int(round(r)), int(round(c))] < 0.55 * 200.0  # contrast 0.6 marker, well below background
 
 
@@ -157,7 +157,7 @@ def test_cli_writes_dicom_and_truth_sidecar(tmp_path):
 def test_cli_bad_input_one_line_exit_2(tmp_path, args, msg):
     res = CliRunner().invoke(main, ["simulate", "--small", "--out", str(tmp_path)] + args)
     assert res.exit_code == 2
-    lines = [l for l in res.output.splitlines() if l.strip()]
+    lines = [ln for ln in res.output.splitlines() if ln.strip()]
     assert len(lines) == 1 and msg in lines[0], res.output
 
 
@@ -191,7 +191,7 @@ def test_two_edge_orientations_in_one_folder_never_collide(tmp_path):
         assert res.exit_code == 0, res.output
     assert len(list(tmp_path.glob("*.dcm"))) == 2
     again = run(main, ["simulate", "--kind", "edge", "--small", "--edge-angle-deg", "2.5", "--out", str(tmp_path)])
-    lines = [l for l in again.output.splitlines() if l.strip()]
+    lines = [ln for ln in again.output.splitlines() if ln.strip()]
     assert again.exit_code == 2 and len(lines) == 1 and "already exists" in lines[0] and "--overwrite" in lines[0]
     ok = run(main, ["simulate", "--kind", "edge", "--small", "--edge-angle-deg", "2.5", "--out", str(tmp_path),
                     "--overwrite"])

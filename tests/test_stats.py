@@ -19,7 +19,6 @@ from scorer.observer.psychometric import pc_mafc_fast, unit_counts
 from scorer.study.reader_model import ReaderPopulation, model_threshold, simulate_reader_study
 from scorer.reports import dumps
 from scorer.study.stats import (
-    _counts_cube,
     analyse_study,
     compare_groups,
     fit_pooled_gee,
@@ -103,7 +102,6 @@ def test_pooled_gee_ci_coverage():
 def test_closed_form_gee_equals_statsmodels_gee():
     # statsmodels GEE (reference library) with the same custom M-AFC link, independence working
     # correlation: same estimate; "robust" and "bias_reduced" (Mancl & DeRouen 2001) SEs equal ours.
-    import statsmodels.api as sm
 
     st = small_study(7, n_readers=5, n_repeats=1)
     g = st.trials[(st.trials.detector == "direct") & (st.trials.diameter_mm == 1.0)]
@@ -295,7 +293,6 @@ def test_readers_from_image_responses_have_their_designed_factor():
     from scorer.observer import dprime_for_pc
     from scorer.study import readers_from_responses
     from scorer.observer import count_thresholds
-    from scorer.observer import decide
 
     rng = np.random.default_rng(12)
     sigma, m = 0.01, 4

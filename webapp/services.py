@@ -173,7 +173,7 @@ def _region_boxes(sites_by_key: dict, shape_by_image: dict) -> tuple[int, dict]:
     """One square region size for the whole study (so its size tells nothing about the target) and each
     region's top-left corner and site positions (row, col) inside it."""
     half = 0.0
-    for (img, _t), rc in sites_by_key.items():
+    for rc in sites_by_key.values():
         c = rc.mean(axis=0)
         d = np.sqrt(((rc[:, None, :] - rc[None, :, :]) ** 2).sum(-1))
         pad = 0.5 * d[d > 0].min() if np.any(d > 0) else 16.0

@@ -72,7 +72,7 @@ def compare_detectors(detector_a, detector_b, label_a, label_b, scored_a, scored
     for r in result["table"]:
         pct = "threshold contrast" in r["quantity"]
 
-        def fmt(v):
+        def fmt(v, pct=pct):
             if v is None or not np.isfinite(v):
                 return "—"
             return f"{100 * v:.3g} %" if pct else f"{v:.4g}"

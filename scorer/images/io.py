@@ -669,7 +669,6 @@ def write_dicom(path, pixels: np.ndarray, spacing_mm: tuple[float, float], tags:
     """
     import datetime as _dt
 
-    import pydicom
     from pydicom.datadict import dictionary_VR, tag_for_keyword
     from pydicom.dataset import FileDataset, FileMetaDataset
     from pydicom.uid import PYDICOM_IMPLEMENTATION_UID, UID, generate_uid

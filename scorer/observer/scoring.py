@@ -13,12 +13,10 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Callable, Sequence
 
-import numpy as np
 import pandas as pd
 
 from scorer.images.conversion import ConversionFunction
 from scorer.errors import LimenError
-from scorer.images.image import Image
 from scorer.images.io import LimenWarning, load_image
 from scorer.phantom.layout import Layout
 from scorer.observer.limits import HumanFactor, Limits, Verdict, evaluate, overall

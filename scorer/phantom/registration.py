@@ -314,7 +314,7 @@ def _match(p: np.ndarray, diam_mm: np.ndarray, z: np.ndarray, dz: np.ndarray,
         return None
     ii, jj = np.nonzero(~np.eye(K, dtype=bool))
     aa, bb = np.triu_indices(N, 1)
-    I = np.repeat(ii, len(aa))
+    I = np.repeat(ii, len(aa))  # noqa: E741 - I, J, A, B index pairs as in the matching equations
     J = np.repeat(jj, len(aa))
     A = np.tile(aa, len(ii))
     B = np.tile(bb, len(ii))

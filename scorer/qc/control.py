@@ -171,7 +171,7 @@ def evaluate_session(detector: str, session_id: int, history: pd.DataFrame, base
         c = float(r.threshold_contrast) if r.threshold_contrast is not None else np.nan
         where = f"{detector} {date}, {d:g} mm ({method})"
 
-        def add(rule, direction, value, reference, message):
+        def add(rule, direction, value, reference, message, d=d, where=where):
             alerts.append(Alert(detector, session_id, date, method, d, rule, direction,
                                 None if value is None or not np.isfinite(value) else float(value),
                                 None if reference is None else float(reference), f"{where}: {message}"))

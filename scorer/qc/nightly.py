@@ -6,7 +6,6 @@ write each in one transaction, quarantine what cannot be scored, raise and e-mai
 
 from __future__ import annotations
 
-import os
 import sys
 import time
 from dataclasses import dataclass, field

@@ -71,7 +71,7 @@ def _mtf_plot(curves: dict[str, dict], nyquist: dict[str, float | None]) -> str:
     fig, ax = _fig("Presampling MTF", "spatial frequency (cycles/mm)", "MTF")
     for label, m in curves.items():
         ax.plot(m["frequency_per_mm"], m["value"], label=label)
-    for label, n in nyquist.items():
+    for n in nyquist.values():
         if n:
             ax.axvline(n, ls=":", color="grey")
     ax.set_ylim(0, 1.05)
@@ -215,7 +215,7 @@ def _side_by_side_rows(comparison: dict) -> list[dict]:
     for r in comparison["table"]:
         pct = "threshold contrast" in r["quantity"]
 
-        def show(v, ci):
+        def show(v, ci, pct=pct):
             if v is None or not np.isfinite(v):
                 return "—"
             txt = f"{100 * v:.3g} %" if pct else f"{v:.4g}"

@@ -31,7 +31,7 @@ def curves_figure(a, level) -> str:
     by = a.by
     fig, ax = plt.subplots(figsize=(6.4, 4.6))
     rc = a.reader_curves[a.reader_curves[by] == level]
-    for i, (reader, g) in enumerate(rc.groupby("reader")):
+    for i, (_reader, g) in enumerate(rc.groupby("reader")):
         g = g.sort_values("diameter_mm")
         ax.plot(g["diameter_mm"], g["threshold_contrast"] * 100, "-", color="0.6", lw=0.8, alpha=0.8,
                 label="readers" if i == 0 else None)

@@ -157,7 +157,7 @@ def simulate_reader_study(rng: np.random.Generator, n_readers: int = 6, *,
         onehot = np.eye(m, dtype=bool)[true_site]             # (I, T, M)
         img_ids = [f"{det}-img{i + 1:03d}" for i in range(n_images)]
 
-        def frame(reader, chosen, rep, ms):
+        def frame(reader, chosen, rep, ms, det=det, img_ids=img_ids, true_site=true_site):
             return pd.DataFrame({
                 "reader": reader,
                 "detector": det,

@@ -116,7 +116,7 @@ def validate_trials(df: pd.DataFrame, source="responses") -> pd.DataFrame:
         out[c] = num.astype(float)
     raw = out["correct"]
     mapped = raw.map(lambda v: {True: 1, False: 0, "1": 1, "0": 0, "true": 1, "false": 0, "True": 1,
-                                "False": 0, 1: 1, 0: 0, 1.0: 1, 0.0: 0}.get(v, None))
+                                "False": 0}.get(v, None))   # 1/0 and 1.0/0.0 hash as True/False
     bad = mapped.isna().to_numpy()
     if bad.any():
         raise LimenError(f"{_row_label(out, bad)}: correct must be 0 or 1, got {raw.iloc[np.flatnonzero(bad)[0]]!r}",
@@ -664,7 +664,7 @@ def compare_groups(curves: pd.DataFrame, by: str = "detector", reference: str | 
     if table.empty:
         return table, notes
     table["p_adjusted"] = np.nan
-    for lev, idx in table.groupby("level").groups.items():
+    for idx in table.groupby("level").groups.values():
         pv = table.loc[idx, "p_value"].to_numpy()
         fin = np.isfinite(pv)
         adj = np.full(pv.shape, np.nan)

@@ -1,0 +1,81 @@
+"""One table of every benchmark's headline figures, read from bench/results/*.json after `make bench`.
+
+Each figure prints as ``name: value unit (floor: X)``; `make bench` prints them last, and writes the same table
+as Markdown to bench/results/table.md (copy it into bench/README.md with the date and machine kind).
+"""
+
+from __future__ import annotations
+
+import json
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any, Callable
+
+RESULTS = Path(__file__).resolve().parent / "results"
+
+
+@dataclass(frozen=True)
+class Figure:
+    name: str
+    file: str
+    get: Callable[[dict], Any]
+    unit: str
+    floor: str
+
+
+def _max_rows(key):
+    return lambda r: max(row[key] for row in r["rows"])
+
+
+FIGURES = [
+    Figure("cli_start_ratio_to_bare_python", "bench_cli.json", lambda r: r["ratio"], "×", "≤ 3"),
+    Figure("limen_help_s", "bench_cli.json", lambda r: r["limen_help_s"], "s", "< 1"),
+    Figure("simulate_full_size_s", "bench_simulate.json", _max_rows("simulate_s"), "s", "< 3"),
+    Figure("simulate_peak_rss", "bench_simulate.json", _max_rows("peak_rss_mb"), "MB", "< 1024"),
+    Figure("register_full_size_worst_median_s", "bench_register.json", lambda r: r["worst_median_s"], "s", "< target"),
+    Figure("score_to_load_ratio", "bench_score.json", lambda r: r["ratio"], "×", "≤ 3"),
+    Figure("detector_mtf_nnps_dqe_s", "bench_detector.json", lambda r: r["mtf_nnps_dqe_s"], "s", "< 10"),
+    Figure("analyse_20_readers_s", "analyse.json", lambda r: max(r["analyse_json_s"], r["analyse_with_report_s"]),
+           "s", "< 60"),
+    Figure("nightly_throughput_ratio_2_vs_1_workers", "bench_nightly.json", lambda r: r["throughput_ratio"], "×",
+           "≥ 1.7"),
+    Figure("nightly_db_overhead", "bench_nightly.json", lambda r: 100 * r["db_fraction"], "% of scoring", "< 5"),
+    Figure("web_region_get_p95", "web_load.json", lambda r: r["region_get_p95_ms"], "ms", "< 100"),
+    Figure("web_lost_plus_duplicated_responses", "web_load.json",
+           lambda r: r["lost_responses"] + r["duplicated_responses"], "", "= 0"),
+    Figure("dprime_ci_coverage_synthetic_M3", "bench_observer_coverage.json",
+           lambda r: 100 * r["synthetic_coverage_m3"], "%", "93–97"),
+    Figure("dprime_ci_coverage_synthetic_M5", "bench_observer_coverage.json",
+           lambda r: 100 * r["synthetic_coverage_m5"], "%", "93–97"),
+]
+
+
+def collect() -> list[tuple[Figure, Any]]:
+    """(figure, value) for every figure whose results file exists; value None when the file lacks it."""
+    out = []
+    for f in FIGURES:
+        path = RESULTS / f.file
+        if not path.is_file():
+            continue
+        try:
+            value = f.get(json.loads(path.read_text(encoding="utf-8")))
+        except (KeyError, TypeError, ValueError, ZeroDivisionError):
+            value = None
+        out.append((f, value))
+    return out
+
+
+def _fmt(v) -> str:
+    if v is None:
+        return "—"
+    return f"{v:.3g}" if isinstance(v, float) else str(v)
+
+
+def lines() -> list[str]:
+    return [f"{f.name}: {_fmt(v)} {f.unit} (floor: {f.floor})".replace("  ", " ") for f, v in collect()]
+
+
+def markdown(header: str = "") -> str:
+    rows = ["| figure | value | unit | floor |", "|---|---|---|---|"]
+    rows += [f"| {f.name} | {_fmt(v)} | {f.unit} | {f.floor} |" for f, v in collect()]
+    return (header + "\n\n" if header else "") + "\n".join(rows) + "\n"
