@@ -375,7 +375,7 @@ def kerma_ratio(fit_a: PowerLawFit, fit_b: PowerLawFit, *, n_draws: int = 4000, 
     da, db = fit_a.draws(n_draws, rng), fit_b.draws(n_draws, rng)
     with np.errstate(over="ignore", divide="ignore", invalid="ignore"):
         lr = np.where(db[:, 1] > 0, fit_b.x_center - fit_a.x_center + (db[:, 0] - da[:, 0]) / db[:, 1], np.inf)
-    lo, hi = _percentiles(np.exp(lr))
+        lo, hi = _percentiles(np.exp(lr))
     return {"ratio": float(np.exp(log_r)), "ci_low": lo, "ci_high": hi, "threshold_contrast": float(np.exp(log_c)),
             "reference_kerma_ugy": fit_a.reference_kerma_ugy, "note": ""}
 

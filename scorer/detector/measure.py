@@ -184,7 +184,7 @@ class DQEResult:
     by_direction: dict[str, np.ndarray]
     kerma_ugy: float
     q_per_mm2_ugy: float
-    ci_low: np.ndarray | None = None      # 95 % CI from the NNPS's standard error (the MTF's is not included)
+    ci_low: np.ndarray | None = None      # 95 % CI from the NNPS's and the MTF's standard errors
     ci_high: np.ndarray | None = None
     warnings: list[str] = field(default_factory=list)
 
@@ -195,7 +195,7 @@ class DQEResult:
         return {"frequency_per_mm": self.frequency_per_mm.tolist(), "value": self.value.tolist(),
                 "ci_low": None if self.ci_low is None else self.ci_low.tolist(),
                 "ci_high": None if self.ci_high is None else self.ci_high.tolist(),
-                "ci_note": "95 % CI from the NNPS standard error only (MTF uncertainty not included)",
+                "ci_note": "95 % CI from the NNPS standard error (ROI spread) and the MTF's (spread between edge segments)",
                 "by_direction": {k: v.tolist() for k, v in self.by_direction.items()},
                 "kerma_ugy": self.kerma_ugy, "q_per_mm2_ugy": self.q_per_mm2_ugy, "warnings": list(self.warnings)}
 
@@ -223,9 +223,14 @@ def compute_dqe(mtf: MTFResult, nnps: NNPSResult, kerma_ugy: float | None, q_per
         by_dir[d] = m.at(f) ** 2 / (kq * cut)
     rel = float(nnps.relative_uncertainty)
     z = 1.959963984540054
-    # DQE ∝ 1/NNPS: a relative standard error r of the NNPS gives the interval value/(1 ± z·r)
-    lo = value / (1.0 + z * rel)
-    hi = value / max(1.0 - z * rel, 0.05)
+    # DQE ∝ MTF²/NNPS: relative standard errors add in quadrature, the MTF's twice (first-order propagation);
+    # the interval is taken log-normal, value·exp(±z·r), per frequency
+    with np.errstate(divide="ignore", invalid="ignore"):
+        r_nnps = nnps.se_mm2 / nnps.value_mm2
+        r_mtf = (np.interp(f, mtf.frequency_ext_per_mm, mtf.se_ext) / mtf.at(f)) if mtf.se_ext is not None else 0.0
+    r_all = np.sqrt(np.nan_to_num(r_nnps, nan=rel) ** 2 + (2 * np.nan_to_num(r_mtf, nan=0.0)) ** 2)
+    lo = value * np.exp(-z * r_all)
+    hi = value * np.exp(z * r_all)
     warnings = []
     # flag DQE > 1 only beyond a simultaneous bound over all frequencies (Bonferroni), so that an ideal
     # detector, whose DQE is 1 at low frequency, is not flagged by chance at one of many frequencies
