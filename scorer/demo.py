@@ -92,7 +92,7 @@ def run(out: Path) -> Path:
     body = "<ul>" + "".join(f"<li><a href='{html.escape(h)}'>{html.escape(t)}</a></li>" for t, h in links) + "</ul>"
     scenario = ("<p class='fail'><b>Simulated data, invented scenario.</b> Harbourside Women's Health Centre "
                 "(invented) commissions a direct-conversion panel (HSX-SE-0417, room MAM2) and an indirect-conversion "
-                "panel (HSX-CS-2291, room MAM3); every image is simulated by Limen's physics model at 100 µGy and the "
+                "panel (HSX-CS-2291, room MAM3); every image is simulated by Limen's physics model (at 100 µGy; the dose series also at 25, 50 and 180 µGy) and the "
                 "six readers are a documented observer model, not people.</p>")
     index = out / "index.html"
     index.write_text(html_page("Limen demo — two mammography panels compared",
