@@ -6,8 +6,8 @@ import importlib
 import sys
 import time
 
-BENCHES = ["bench_cli", "bench_simulate", "bench_register", "bench_score", "bench_detector", "bench_analyse", "bench_nightly",
-           "bench_observer_coverage", "bench_web_load"]
+BENCHES = ["bench_cli", "bench_simulate", "bench_register", "bench_score", "bench_detector", "bench_analyse",
+           "bench_nightly", "bench_observer_coverage", "bench_dose_series", "bench_web_load"]
 
 
 def main() -> int:

@@ -27,6 +27,7 @@ COMMANDS: dict[str, tuple[str, str, str]] = {
     "analyse": ("analyse", "analyse", "Analyse a reader study: per-reader and pooled curves, human/model factor."),
     "nightly": ("nightly", "nightly", "Score an inbox of phantom images once per session; store, trend, alert."),
     "trend": ("trend", "trend", "Write the trend report (HTML, CSV) of a nightly database."),
+    "dose-series": ("dose_series", "dose_series", "Score phantom images at several air kermas: threshold against kerma, β, kerma for a limit."),
     "baseline": ("baseline", "baseline", "Show, set or clear the baselines the nightly alerts compare with."),
     "serve": ("serve", "serve", "Run the reader-study web app under waitress (add --demo for a ready study)."),
     "users": ("users", "users", "Add or list web-app accounts (coordinators and readers)."),

@@ -28,6 +28,10 @@ from scorer.reports import CAUTION, html_page
 
 DOSE_UGY = 100.0
 N_PHANTOM = 8
+#: the dose series: extra kermas (µGy; the 100 µGy images above are the fourth group), below saturation
+#: (direct panel ≈ 209 µGy, indirect ≈ 290 µGy), with few small images per group to keep the demo short
+SERIES_UGY = (25.0, 50.0, 180.0)
+N_SERIES = 4
 
 
 def _limen(args: list[str], allowed_exit=(0,)) -> int:
@@ -60,29 +64,35 @@ def run(out: Path) -> Path:
                 "--dose-ugy", str(DOSE_UGY), "--seed", str(seed + 2), "--out", str(d / "edges"), "--overwrite"])
         _limen(["simulate", "--detector", panel, "--kind", "edge", "--small", "--edge-angle-deg", "92.5",
                 "--dose-ugy", str(DOSE_UGY), "--seed", str(seed + 3), "--out", str(d / "edges"), "--overwrite"])
+        noise_csv = _simulate_series(d, panel, seed)
         conv = str(d / "images" / f"{panel}-conversion.toml")
         images = sorted(str(p) for p in (d / "images").glob("*.dcm"))
         # measure the panel first, then score the plate with templates shaped by the measured MTF
         _limen(["detector", "--flat", *sorted(str(p) for p in (d / "flats").glob("*.dcm")),
                 "--edge", *sorted(str(p) for p in (d / "edges").glob("*.dcm")),
-                "--kerma-ugy", str(DOSE_UGY), "--q", "5000", "--conversion", conv, "--out", str(d / "detector")])
+                "--kerma-ugy", str(DOSE_UGY), "--q", "5000", "--conversion", conv, "--noise-series", noise_csv,
+                "--out", str(d / "detector")])
         for observer, folder in (("npw", "score"), ("npwe", "score-npwe")):
             _limen(["score", *images, "--observer", observer, "--conversion", conv,
                     "--mtf", str(d / "detector" / "detector.json"), "--out", str(d / folder)])
         links += [(f"{panel} panel: contrast-detail report, NPW observer", f"{panel}/score/report.html"),
                   (f"{panel} panel: contrast-detail report, NPWE observer", f"{panel}/score-npwe/report.html"),
                   (f"{panel} panel: MTF, NNPS, DQE", f"{panel}/detector/detector.html")]
+    links += _reader_study(out)
+    links += _dose_series(out)
     _limen(["compare-detectors", str(out / "direct" / "detector" / "detector.json"),
             str(out / "indirect" / "detector" / "detector.json"), "--label-a", "direct (a-Se)",
             "--label-b", "indirect (CsI)", "--scored-a", str(out / "direct" / "score" / "results.json"),
-            "--scored-b", str(out / "indirect" / "score" / "results.json"), "--out", str(out / "comparison")])
-    links.append(("direct vs indirect, side by side", "comparison/comparison.html"))
-    links += _reader_study(out)
+            "--scored-b", str(out / "indirect" / "score" / "results.json"),
+            "--dose-a", str(out / "direct" / "dose-series" / "dose_series.json"),
+            "--dose-b", str(out / "indirect" / "dose-series" / "dose_series.json"), "--out", str(out / "comparison")])
+    links.insert(0, ("direct vs indirect, side by side: equal-quality kerma, noise components, MTF/NNPS/DQE",
+                     "comparison/comparison.html"))
     links += _nightly(out)  # nightly scoring (issue 13): simulated nights, one panel drifts and is caught
     body = "<ul>" + "".join(f"<li><a href='{html.escape(h)}'>{html.escape(t)}</a></li>" for t, h in links) + "</ul>"
     scenario = ("<p class='fail'><b>Simulated data, invented scenario.</b> Harbourside Women's Health Centre "
                 "(invented) commissions a direct-conversion panel (HSX-SE-0417, room MAM2) and an indirect-conversion "
-                "panel (HSX-CS-2291, room MAM3); every image is simulated by Limen's physics model at 100 µGy and the "
+                "panel (HSX-CS-2291, room MAM3); every image is simulated by Limen's physics model (at 100 µGy; the dose series also at 25, 50 and 180 µGy) and the "
                 "six readers are a documented observer model, not people.</p>")
     index = out / "index.html"
     index.write_text(html_page("Limen demo — two mammography panels compared",
@@ -91,6 +101,41 @@ def run(out: Path) -> Path:
     print(f"\nDemo finished in {time.perf_counter() - t0:.0f} s. Open {index.resolve()}")
     print(CAUTION)
     return index
+
+
+def _simulate_series(d: Path, panel: str, seed: int) -> str:
+    """Phantom images and flat fields at the series' other kermas; returns the flats' CSV path,kerma_ugy."""
+    rows = ["path,kerma_ugy"] + [f"{p.resolve()},{DOSE_UGY:g}" for p in sorted((d / "flats").glob("*.dcm"))]
+    for i, k in enumerate(SERIES_UGY):
+        _limen(["simulate", "--detector", panel, "--kind", "phantom", "--small", "--count", str(N_SERIES),
+                "--dose-ugy", str(k), "--rotate", "1.5", "--seed", str(seed + 10 + i), "--out",
+                str(d / "dose" / f"{k:g}uGy"), "--overwrite"])
+        _limen(["simulate", "--detector", panel, "--kind", "flat", "--small", "--count", "2",
+                "--dose-ugy", str(k), "--seed", str(seed + 20 + i), "--out", str(d / "dose-flats" / f"{k:g}uGy"),
+                "--overwrite"])
+        rows += [f"{p.resolve()},{k:g}" for p in sorted((d / "dose-flats" / f"{k:g}uGy").glob("*.dcm"))]
+    path = d / "dose-flats" / "flats.csv"
+    path.write_text("\n".join(rows) + "\n", encoding="utf-8")
+    return str(path)
+
+
+def _dose_series(out: Path) -> list[tuple[str, str]]:
+    """Each panel's plate images at four kermas (25–180 µGy), scored per kerma with the NPWE observer; the
+    kerma at which each diameter meets the example limits through the readers' human/model factor."""
+    from scorer.observer import EXAMPLE_LIMITS
+
+    links = []
+    for panel in ("direct", "indirect"):
+        d = out / panel
+        images = sorted(str(p) for p in (d / "images").glob("*.dcm"))
+        images += sorted(str(p) for k in SERIES_UGY for p in (d / "dose" / f"{k:g}uGy").glob("*.dcm"))
+        _limen(["dose-series", *images, "--observer", "npwe", "--conversion",
+                str(d / "images" / f"{panel}-conversion.toml"), "--mtf", str(d / "detector" / "detector.json"),
+                "--limits", str(EXAMPLE_LIMITS), "--human-factor-from",
+                str(out / "reader-study" / "analysis" / "analysis.json"), "--out", str(d / "dose-series")])
+        links.append((f"{panel} panel: threshold against air kerma (25–180 µGy), β, kerma for the limits",
+                      f"{panel}/dose-series/dose_series.html"))
+    return links
 
 
 def _verdict_summary(out: Path) -> str:

@@ -9,6 +9,8 @@ import numpy as np
 import pandas as pd
 
 from scorer.detector import load_detector_json, load_scored_json, compare
+from scorer.detector.comparison import load_dose_json
+from scorer.errors import LimenError
 from scorer.files import atomic_write_text
 from scorer.reports import dumps, write_json
 from scorer.commands.detector import alternatives_from_options, diameters_from_options
@@ -31,11 +33,15 @@ from scorer.commands.detector import alternatives_from_options, diameters_from_o
                    "scored results, else 4].")
 @click.option("--scored-method", type=click.Choice(["dprime", "count"]), default="dprime", show_default=True,
               help="Which scoring method's thresholds the side-by-side table and summary compare (both are plotted).")
+@click.option("--dose-a", type=click.Path(dir_okay=False), default=None,
+              help="'limen dose-series' JSON of the first detector: kerma each panel needs for the same threshold.")
+@click.option("--dose-b", type=click.Path(dir_okay=False), default=None,
+              help="'limen dose-series' JSON of the second detector.")
 @click.option("--json", "as_json", is_flag=True, help="Print one JSON object on stdout.")
 @click.option("--out", "out_dir", type=click.Path(file_okay=False), default=None,
               help="Write comparison.json, comparison.csv and comparison.html here.")
 def compare_detectors(detector_a, detector_b, label_a, label_b, scored_a, scored_b, layout_file, diameters,
-                      m_alternatives, scored_method, as_json, out_dir):
+                      m_alternatives, scored_method, dose_a, dose_b, as_json, out_dir):
     """Put two detectors measured by 'limen detector' side by side."""
     a, b = load_detector_json(detector_a), load_detector_json(detector_b)
 
@@ -50,10 +56,15 @@ def compare_detectors(detector_a, detector_b, label_a, label_b, scored_a, scored
     sa = load_scored_json(scored_a) if scored_a else None
     sb = load_scored_json(scored_b) if scored_b else None
     diam = diameters_from_options(diameters, layout_file)
+    if bool(dose_a) != bool(dose_b):
+        raise LimenError("give both --dose-a and --dose-b (a dose series of each detector)", "--dose-a")
+    da = load_dose_json(dose_a) if dose_a else None
+    db = load_dose_json(dose_b) if dose_b else None
     result = compare(a, b, (la, lb), diam, sa, sb, alternatives_from_options(m_alternatives, layout_file),
-                     scored_method=scored_method)
+                     scored_method=scored_method, dose_a=da, dose_b=db)
     result["inputs"] = {"detector_a": str(detector_a), "detector_b": str(detector_b),
-                        "scored_a": scored_a, "scored_b": scored_b, "layout": layout_file}
+                        "scored_a": scored_a, "scored_b": scored_b, "layout": layout_file,
+                        "dose_a": dose_a, "dose_b": dose_b}
     if out_dir:
         from scorer.reports import compare_report_html
 
@@ -81,5 +92,12 @@ def compare_detectors(detector_a, detector_b, label_a, label_b, scored_a, scored
     click.echo("")
     for s in result["summary"]:
         click.echo(s)
+    if result.get("equal_quality"):
+        click.echo("")
+        for s in result["equal_quality"]["sentences"]:
+            click.echo(s)
+    for lab, n in (result.get("noise_components") or {}).items():
+        if n.get("quantum_limited_text"):
+            click.echo(f"{lab}: {n['quantum_limited_text']}.")
     if out_dir:
         click.echo(f"wrote comparison.json and comparison.html to {out_dir}/")

@@ -11,7 +11,7 @@ import click
 import numpy as np
 
 from scorer.images import load_conversion
-from scorer.detector.measure import central_mean, fit_conversion, measure_detector, q_for_beam
+from scorer.detector.measure import central_mean, fit_conversion, measure_detector, measure_noise_series, q_for_beam
 from scorer.errors import LimenError
 from scorer.reports.detector import summary_rows
 from scorer.reports import dumps, write_json
@@ -159,6 +159,10 @@ def load_images_warn(paths, *, spacing, conversion, role: str):
               help="Conversion function (TOML or JSON) to linearise the images.")
 @click.option("--fit-conversion", "kerma_csv", type=click.Path(dir_okay=False), default=None,
               help="CSV path,kerma_ugy of flat fields at several kermas: fit the conversion function and use it.")
+@click.option("--noise-series", "noise_csv", type=click.Path(dir_okay=False), default=None,
+              help="CSV path,kerma_ugy of flat fields at several kermas: electronic, quantum and structure noise "
+                   "with CIs, the quantum-limited kerma range, and the DQE at each kerma (may be the "
+                   "--fit-conversion file).")
 @click.option("--diameters", default=None, help="Disc diameters (mm, comma-separated) for predicted thresholds.")
 @click.option("--layout", "layout_file", type=click.Path(dir_okay=False), default=None,
               help="Phantom layout whose diameters get predicted thresholds.")
@@ -169,13 +173,13 @@ def load_images_warn(paths, *, spacing, conversion, role: str):
 @click.option("--out", "out_dir", type=click.Path(file_okay=False), default=None,
               help="Write detector.json, detector.csv, nnps_2d.npy and detector.html here.")
 def detector(flat_files, edge_files, kerma_ugy, q_per_mm2_ugy, beam, pixel_spacing_mm, conversion_file,
-             kerma_csv, diameters, layout_file, m_alternatives, as_json, out_dir):
+             kerma_csv, noise_csv, diameters, layout_file, m_alternatives, as_json, out_dir):
     """Measure a detector as IEC 62220-1 describes: conversion function, MTF, NNPS and DQE.
 
     Flat fields give the NNPS, slanted-edge images the presampling MTF; the DQE
     needs the air kerma (--kerma-ugy) and q (--q, or --beam for an RQA quality).
     """
-    if not flat_files and not edge_files and not kerma_csv:
+    if not flat_files and not edge_files and not kerma_csv and not noise_csv:
         raise LimenError("no images: give flat fields (--flat FILES) and/or edge images (--edge FILES)")
     if q_per_mm2_ugy is not None and beam is not None:
         raise LimenError("give either --q or --beam, not both", "--q")
@@ -185,7 +189,7 @@ def detector(flat_files, edge_files, kerma_ugy, q_per_mm2_ugy, beam, pixel_spaci
         raise LimenError(f"q must be positive, got {q_per_mm2_ugy}", "--q")
     if kerma_ugy is not None and not kerma_ugy > 0:
         raise LimenError(f"air kerma must be positive, got {kerma_ugy}", "--kerma-ugy")
-    if (kerma_ugy is None) != (q_per_mm2_ugy is None):
+    if (kerma_ugy is None) != (q_per_mm2_ugy is None) and not (noise_csv and kerma_ugy is None):
         missing = "--q or --beam" if q_per_mm2_ugy is None else "--kerma-ugy"
         raise LimenError(f"DQE needs both the air kerma and q: {missing} missing", missing.split()[0])
     if conversion_file and kerma_csv:
@@ -215,11 +219,24 @@ def detector(flat_files, edge_files, kerma_ugy, q_per_mm2_ugy, beam, pixel_spaci
         notes.append("no conversion function given: pixel values are taken as proportional to air kerma "
                      "(zero offset); give --conversion or --fit-conversion for raw images")
         click.echo(f"warning: {notes[-1]}", err=True)
-    if not flats and not edges:
+    if not flats and not edges and not noise_csv:
         metrics = None
     else:
-        metrics = measure_detector(flats, edges, kerma_ugy=kerma_ugy, q_per_mm2_ugy=q_per_mm2_ugy, beam=beam,
-                                   conversion=conv_dict)
+        series_images: list = []
+        if noise_csv:
+            series = _read_kerma_csv(Path(noise_csv))
+            series_images = load_images_warn([p for p, _ in series], spacing=spacing, conversion=conv_fn, role="flat")
+        if flats or edges:
+            metrics = measure_detector(flats, edges, kerma_ugy=kerma_ugy, q_per_mm2_ugy=q_per_mm2_ugy, beam=beam,
+                                       conversion=conv_dict)
+        else:
+            metrics = measure_detector(series_images, (), conversion=conv_dict, q_per_mm2_ugy=q_per_mm2_ugy)
+        if not flats and not edges:
+            metrics.nnps = None  # a noise series alone gives no headline NNPS
+        if noise_csv:
+            metrics.noise_series = measure_noise_series(series_images, [k for _, k in series], mtf=metrics.mtf,
+                                                        mtf_by_direction=metrics.mtf_by_direction,
+                                                        q_per_mm2_ugy=q_per_mm2_ugy, path=noise_csv)
         metrics.warnings = notes + [w for im in flats + edges for w in im.metadata.warnings] + metrics.warnings
         if metrics.dqe is None and metrics.mtf is not None and metrics.nnps is not None:
             click.echo("note: DQE not computed: give --kerma-ugy and --q (or --beam)", err=True)

@@ -43,6 +43,14 @@ def load_detector_json(path) -> dict:
     return d
 
 
+def load_dose_json(path) -> dict:
+    """A ``limen dose-series --json`` output (keys "groups" and "fits")."""
+    d = _load_json(path, "dose-series JSON")
+    if not isinstance(d.get("fits"), list) or not isinstance(d.get("groups"), list):
+        raise LimenError("no 'fits' and 'groups' in this file: is it a 'limen dose-series' JSON?", path)
+    return d
+
+
 def load_scored_json(path) -> list[dict]:
     """Thresholds from a ``limen score --json`` output (key "thresholds")."""
     d = _load_json(path, "score JSON")
@@ -104,7 +112,8 @@ def decide(va, vb, ci_a, ci_b, higher_is_better: bool, la: str, lb: str) -> tupl
 
 
 def compare(a: dict, b: dict, labels=("A", "B"), diameters_mm=None, scored_a=None, scored_b=None,
-            m_alternatives: int | dict[float, int] | None = None, scored_method: str = "dprime") -> dict:
+            m_alternatives: int | dict[float, int] | None = None, scored_method: str = "dprime",
+            dose_a: dict | None = None, dose_b: dict | None = None) -> dict:
     """Side-by-side table, threshold rows and a plain-language summary of two detector JSONs.
 
     ``m_alternatives``: the M of the criterion for predicted thresholds, one for all diameters or per
@@ -112,6 +121,8 @@ def compare(a: dict, b: dict, labels=("A", "B"), diameters_mm=None, scored_a=Non
     the same criterion), else 4.  ``scored_method`` ("dprime" or "count") chooses which scoring method's
     thresholds enter the side-by-side table and the summary; both are listed and plotted, each under its
     own label.  A detector is called better at a point only where the two 95 % CIs do not overlap.
+    ``dose_a``/``dose_b`` (``limen dose-series`` JSONs) add the kerma each panel needs for the same threshold
+    (:func:`scorer.detector.dose.compare_series`) under ``equal_quality``.
     """
     if scored_method not in SCORED_METHODS:
         raise LimenError(f"unknown scoring method {scored_method!r}; choose dprime or count", "--scored-method")
@@ -195,7 +206,16 @@ def compare(a: dict, b: dict, labels=("A", "B"), diameters_mm=None, scored_a=Non
     if a.get("kerma_ugy") and b.get("kerma_ugy") and not np.isclose(a["kerma_ugy"], b["kerma_ugy"], rtol=0.05):
         summary.append(f"The flat fields were taken at different air kermas ({a['kerma_ugy']:g} vs "
                        f"{b['kerma_ugy']:g} µGy): NNPS and predicted thresholds depend on kerma; compare DQE instead.")
+    equal = None
+    if dose_a is not None and dose_b is not None:
+        from scorer.detector.dose import compare_series
+
+        equal = compare_series(dose_a, dose_b, (la, lb), a, b)
+    noise = {lab: (det.get("noise_series") or {}) for lab, det in ((la, a), (lb, b)) if det.get("noise_series")}
     return {"labels": [la, lb], "table": table, "thresholds": thresholds, "summary": summary,
+            "equal_quality": equal, "noise_components": {lab: {"components": n.get("components"),
+                                                               "quantum_limited_text": n.get("quantum_limited_text")}
+                                                         for lab, n in noise.items()},
             "diameters_mm": diam, "scored_method": scored_method,
             "m_alternatives": ({f"{k:g}": v for k, v in m_alternatives.items()} if isinstance(m_alternatives, dict)
                                else m_alternatives)}

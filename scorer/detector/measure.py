@@ -184,7 +184,7 @@ class DQEResult:
     by_direction: dict[str, np.ndarray]
     kerma_ugy: float
     q_per_mm2_ugy: float
-    ci_low: np.ndarray | None = None      # 95 % CI from the NNPS's standard error (the MTF's is not included)
+    ci_low: np.ndarray | None = None      # 95 % CI from the NNPS's and the MTF's standard errors
     ci_high: np.ndarray | None = None
     warnings: list[str] = field(default_factory=list)
 
@@ -195,7 +195,7 @@ class DQEResult:
         return {"frequency_per_mm": self.frequency_per_mm.tolist(), "value": self.value.tolist(),
                 "ci_low": None if self.ci_low is None else self.ci_low.tolist(),
                 "ci_high": None if self.ci_high is None else self.ci_high.tolist(),
-                "ci_note": "95 % CI from the NNPS standard error only (MTF uncertainty not included)",
+                "ci_note": "95 % CI from the NNPS standard error (ROI spread) and the MTF's (spread between edge segments)",
                 "by_direction": {k: v.tolist() for k, v in self.by_direction.items()},
                 "kerma_ugy": self.kerma_ugy, "q_per_mm2_ugy": self.q_per_mm2_ugy, "warnings": list(self.warnings)}
 
@@ -223,9 +223,14 @@ def compute_dqe(mtf: MTFResult, nnps: NNPSResult, kerma_ugy: float | None, q_per
         by_dir[d] = m.at(f) ** 2 / (kq * cut)
     rel = float(nnps.relative_uncertainty)
     z = 1.959963984540054
-    # DQE ∝ 1/NNPS: a relative standard error r of the NNPS gives the interval value/(1 ± z·r)
-    lo = value / (1.0 + z * rel)
-    hi = value / max(1.0 - z * rel, 0.05)
+    # DQE ∝ MTF²/NNPS: relative standard errors add in quadrature, the MTF's twice (first-order propagation);
+    # the interval is taken log-normal, value·exp(±z·r), per frequency
+    with np.errstate(divide="ignore", invalid="ignore"):
+        r_nnps = nnps.se_mm2 / nnps.value_mm2
+        r_mtf = (np.interp(f, mtf.frequency_ext_per_mm, mtf.se_ext) / mtf.at(f)) if mtf.se_ext is not None else 0.0
+    r_all = np.sqrt(np.nan_to_num(r_nnps, nan=rel) ** 2 + (2 * np.nan_to_num(r_mtf, nan=0.0)) ** 2)
+    lo = value * np.exp(-z * r_all)
+    hi = value * np.exp(z * r_all)
     warnings = []
     # flag DQE > 1 only beyond a simultaneous bound over all frequencies (Bonferroni), so that an ideal
     # detector, whose DQE is 1 at low frequency, is not flagged by chance at one of many frequencies
@@ -259,6 +264,7 @@ class DetectorMetrics:
     inputs: dict = field(default_factory=dict)
     warnings: list[str] = field(default_factory=list)
     predicted: list[dict] | None = None
+    noise_series: dict | None = None
 
     @property
     def edge_angle_deg(self):
@@ -290,6 +296,7 @@ class DetectorMetrics:
             "nyquist_per_mm": None if self.pixel_spacing_mm is None else 0.5 / float(np.sqrt(
                 self.pixel_spacing_mm[0] * self.pixel_spacing_mm[1])),
             "predicted": self.predicted,
+            "noise_series": self.noise_series,
             "inputs": self.inputs,
             "warnings": list(self.warnings),
         }
@@ -351,3 +358,53 @@ def measure_detector(flats: list[Image] = (), edges: list[Image] = (), *, kerma_
     return DetectorMetrics(mtf=mtf, mtf_by_direction=by_dir, nnps=nnps, dqe=dqe, conversion=conversion,
                            kerma_ugy=kerma_ugy, q_per_mm2_ugy=q_per_mm2_ugy, beam=beam,
                            pixel_spacing_mm=spacing, inputs=inputs, warnings=warnings)
+
+
+# ---------------------------------------------------------------- flats at several kermas
+
+def measure_noise_series(flats: list[Image], kerma_ugy, *, mtf: MTFResult | None = None,
+                         mtf_by_direction: dict[str, MTFResult] | None = None,
+                         q_per_mm2_ugy: float | None = None, roi_px: int = 256, path=None) -> dict:
+    """Noise components and, with an MTF and q, the DQE at each kerma, from flats at several air kermas.
+
+    Returns the ``noise_series`` entry of ``detector.json``: per kerma group the pixel variance (with its
+    standard error), the NNPS and the DQE (with its 95 % CI); the fit σ² = e + q·K + s·K² with CIs
+    (:mod:`scorer.detector.noise`); the same fit per frequency band of the noise power spectrum; and the
+    kerma range where quantum noise dominates.
+    """
+    from scorer.detector.noise import band_components, describe_quantum_range, fit_components, group_flats
+
+    flats = list(flats)
+    k = [float(v) for v in kerma_ugy]
+    if len(flats) != len(k):
+        raise LimenError("noise series: one air kerma per flat field is needed", path)
+    if any(not (v > 0 and np.isfinite(v)) for v in k):
+        raise LimenError("noise series: air kermas must be positive numbers (µGy)", path)
+    distinct = sorted(set(k))
+    if len(distinct) < 2:
+        raise LimenError(f"noise series: all flat fields are at {distinct[0]:g} µGy; the noise components need "
+                         "flat fields at two or more different air kermas", path)
+    groups = group_flats(flats, k, roi_px=min(roi_px, 128))
+    fit = fit_components([g.kerma_ugy for g in groups], [g.variance for g in groups],
+                         [g.variance_se for g in groups], path=path)
+    per_kerma, nnps_list = [], []
+    for g in groups:
+        ims = [im for im, kk in zip(flats, k) if kk == g.kerma_ugy]
+        nn = measure_nnps([im.pixels for im in ims], _spacing(ims), roi_px=roi_px,
+                          paths=[im.metadata.source_path or None for im in ims])
+        nnps_list.append(nn)
+        row = g.to_dict()
+        row["nnps"] = {"frequency_per_mm": nn.frequency_per_mm.tolist(), "value_mm2": nn.value_mm2.tolist(),
+                       "relative_uncertainty": nn.relative_uncertainty}
+        row["dqe"] = None
+        if mtf is not None and q_per_mm2_ugy:
+            dq = compute_dqe(mtf, nn, g.kerma_ugy, q_per_mm2_ugy, mtf_by_direction)
+            row["dqe"] = {"frequency_per_mm": dq.frequency_per_mm.tolist(), "value": dq.value.tolist(),
+                          "ci_low": dq.ci_low.tolist(), "ci_high": dq.ci_high.tolist()}
+        per_kerma.append(row)
+    comp = fit.to_dict()
+    return {"groups": per_kerma, "components": comp,
+            "bands": band_components([g.kerma_ugy for g in groups], nnps_list),
+            "quantum_limited_text": describe_quantum_range(comp["quantum_limited"], min(distinct), max(distinct)),
+            "model": "pixel variance σ²(K) = e + q·K + s·K² (electronic + quantum + structure; common practice), "
+                     "in the linearised image's units"}

@@ -53,6 +53,9 @@ MIN_STEP_TO_NOISE = 5.0
 #: above this, an MTF value at low frequency is physically implausible
 MAX_PLAUSIBLE_MTF = 1.05
 MIN_EDGE_ROWS = 32
+#: the edge is cut into this many segments along its length for the MTF's uncertainty (at least 64 rows each)
+N_SEGMENTS = 8
+Z95 = 1.959963984540054
 
 
 @dataclass
@@ -88,6 +91,18 @@ class MTFResult:
     esf_distance_mm: np.ndarray | None = None
     esf: np.ndarray | None = None
     warnings: list[str] = field(default_factory=list)
+    se_ext: np.ndarray | None = None     # standard error of value_ext (spread between segments of the edge)
+    n_segments: int = 0
+
+    @property
+    def se(self) -> np.ndarray | None:
+        return None if self.se_ext is None else self.se_ext[: self.value.size]
+
+    def ci(self) -> tuple[np.ndarray, np.ndarray] | None:
+        """95 % CI of ``value`` (normal, from ``se``), or None without segments."""
+        if self.se is None:
+            return None
+        return self.value - Z95 * self.se, self.value + Z95 * self.se
 
     @property
     def nyquist_per_mm(self) -> float:
@@ -110,6 +125,10 @@ class MTFResult:
             "lsf_half_width_px": self.lsf_half_width_px,
             "n_edge_rows": self.n_edge_rows,
             "empty_bins": self.empty_bins,
+            "ci_low": None if self.ci() is None else self.ci()[0].tolist(),
+            "ci_high": None if self.ci() is None else self.ci()[1].tolist(),
+            "ci_note": None if self.se is None else (f"95 % CI from the spread of the MTF between {self.n_segments} "
+                                                      "segments of the edge (per edge), combined over edges"),
             "warnings": list(self.warnings),
         }
 
@@ -297,21 +316,29 @@ def measure_mtf(pixels, spacing_mm, *, bin_fraction: float = DEFAULT_BIN_FRACTIO
     if empty:
         warnings.append(f"{empty} empty ESF bins filled by interpolation (edge short or angle small)")
 
-    lsf = np.zeros_like(esf)
-    lsf[1:-1] = (esf[2:] - esf[:-2]) / (2 * bw)
-    if lsf.sum() < 0:
-        lsf = -lsf
-    pos = np.clip(lsf, 0, None)
-    c = float((pos * np.arange(nb)).sum() / pos.sum()) if pos.sum() > 0 else nb / 2
-    lsf = lsf * _tukey_window(nb, c, lsf_half_width_px * pitch / bw)
-
-    nfft = max(1024, 1 << int(np.ceil(np.log2(4 * nb))))
-    spec = np.abs(np.fft.rfft(lsf, nfft))
-    if spec[0] <= 0:
-        raise LimenError("edge spread function has no net step", path)
-    f = np.fft.rfftfreq(nfft, d=bw)
-    mtf = spec / spec[0]
-    mtf = mtf / (np.sinc(f * bw) * np.sinc(2 * f * bw))  # box average and central difference
+    f, mtf = _mtf_from_esf(esf, bw, nb, lsf_half_width_px * pitch / bw, path)
+    # uncertainty: the same MTF from N_SEGMENTS consecutive segments of the edge; SE of the mean = SD/√n
+    n_seg = min(N_SEGMENTS, rows.size // 64)
+    se_full = None
+    if n_seg >= 2:
+        seg_of_row = np.minimum((np.arange(rows.size) * n_seg) // rows.size, n_seg - 1)
+        seg_mtf = []
+        for j in range(n_seg):
+            rs = np.repeat(seg_of_row == j, dist.shape[1]).reshape(dist.shape) & sel
+            ij = np.clip(np.floor((dist[rs] + lim) / bw).astype(int), 0, nb - 1)
+            cj = np.bincount(ij, minlength=nb)
+            sj = np.bincount(ij, weights=vals[rs], minlength=nb)
+            fj = cj > 0
+            if fj.sum() < nb // 2:
+                continue
+            esf_j = np.interp(centres, centres[fj], sj[fj] / cj[fj])
+            try:
+                seg_mtf.append(_mtf_from_esf(esf_j, bw, nb, lsf_half_width_px * pitch / bw, path)[1])
+            except LimenError:
+                continue
+        if len(seg_mtf) >= 2:
+            se_full = np.std(seg_mtf, axis=0, ddof=1) / np.sqrt(len(seg_mtf))
+            n_seg = len(seg_mtf)
     nyq = 0.5 / pitch
     low = (f > 0) & (f <= 0.5 * nyq)
     if low.any() and float(mtf[low].max()) > MAX_PLAUSIBLE_MTF:
@@ -326,8 +353,26 @@ def measure_mtf(pixels, spacing_mm, *, bin_fraction: float = DEFAULT_BIN_FRACTIO
         bin_width_mm=float(bw), lsf_half_width_px=int(lsf_half_width_px),
         n_edge_rows=int(rows.size), empty_bins=empty,
         esf_distance_mm=centres if keep_esf else None, esf=esf if keep_esf else None,
-        warnings=warnings,
+        warnings=warnings, se_ext=None if se_full is None else se_full[ext], n_segments=n_seg if se_full is not None else 0,
     )
+
+
+def _mtf_from_esf(esf: np.ndarray, bw: float, nb: int, window_bins: float, path) -> tuple[np.ndarray, np.ndarray]:
+    """Steps 4–5: LSF by central difference in a Tukey window, |FFT| normalised and corrected."""
+    lsf = np.zeros_like(esf)
+    lsf[1:-1] = (esf[2:] - esf[:-2]) / (2 * bw)
+    if lsf.sum() < 0:
+        lsf = -lsf
+    pos = np.clip(lsf, 0, None)
+    c = float((pos * np.arange(nb)).sum() / pos.sum()) if pos.sum() > 0 else nb / 2
+    lsf = lsf * _tukey_window(nb, c, window_bins)
+    nfft = max(1024, 1 << int(np.ceil(np.log2(4 * nb))))
+    spec = np.abs(np.fft.rfft(lsf, nfft))
+    if spec[0] <= 0:
+        raise LimenError("edge spread function has no net step", path)
+    f = np.fft.rfftfreq(nfft, d=bw)
+    mtf = spec / spec[0]
+    return f, mtf / (np.sinc(f * bw) * np.sinc(2 * f * bw))  # box average and central difference
 
 
 def mean_mtf(results: list[MTFResult], direction: str | None = None) -> MTFResult:
@@ -347,9 +392,15 @@ def mean_mtf(results: list[MTFResult], direction: str | None = None) -> MTFResul
     dirs = {r.direction for r in results}
     d = direction or (dirs.pop() if len(dirs) == 1 else "mean")
     warn = [w for r in results for w in r.warnings]
+    se_ext = None
+    if all(r.se_ext is not None for r in results):
+        # SE of a mean of independent curves: √(Σ se²)/n
+        se_ext = np.sqrt(np.sum([np.interp(fe, r.frequency_ext_per_mm, r.se_ext) ** 2 for r in results],
+                                axis=0)) / len(results)
     return MTFResult(frequency_per_mm=f, value=v, frequency_ext_per_mm=fe, value_ext=ve, direction=d,
                      edge_angle_deg=float(np.mean([r.edge_angle_deg for r in results])),
                      pixel_pitch_mm=float(np.mean([r.pixel_pitch_mm for r in results])),
                      bin_width_mm=ref.bin_width_mm, lsf_half_width_px=ref.lsf_half_width_px,
                      n_edge_rows=int(sum(r.n_edge_rows for r in results)),
-                     empty_bins=int(sum(r.empty_bins for r in results)), warnings=warn)
+                     empty_bins=int(sum(r.empty_bins for r in results)), warnings=warn, se_ext=se_ext,
+                     n_segments=int(min(r.n_segments for r in results)))

@@ -92,6 +92,11 @@ class NNPSResult:
         return 0.5 * (self.x_mm2 + self.y_mm2)
 
     @property
+    def se_mm2(self) -> np.ndarray:
+        """Standard error of :attr:`value_mm2` (the two cuts' errors combined as independent)."""
+        return 0.5 * np.sqrt(self.x_se_mm2 ** 2 + self.y_se_mm2 ** 2)
+
+    @property
     def relative_uncertainty(self) -> float:
         """Median relative standard error of the two 1-D cuts."""
         rel = np.concatenate([self.x_se_mm2 / self.x_mm2, self.y_se_mm2 / self.y_mm2])
@@ -113,6 +118,9 @@ class NNPSResult:
             "roi_px": self.roi_px,
             "n_lines": self.n_lines,
             "relative_uncertainty": self.relative_uncertainty,
+            "ci_low": (self.value_mm2 - 1.959963984540054 * self.se_mm2).tolist(),
+            "ci_high": (self.value_mm2 + 1.959963984540054 * self.se_mm2).tolist(),
+            "ci_note": "95 % CI from the ROI-to-ROI spread (half-overlapping ROIs: slightly too narrow)",
             "spacing_mm": list(self.spacing_mm),
             "warnings": list(self.warnings),
         }

@@ -32,9 +32,13 @@ chain, for each pixel, is:
    (Poisson and Swank fluctuations) is spread on the pixel grid; simplification
    (documented): noise above the Nyquist frequency is not spread before it aliases,
    which changes the NPS near Nyquist by a few per cent at most for L ≈ 0.4 pixel.
-4. **Read-out.**  ``PV = offset + g · f_fill · S + e``, with g the ADU per detected
+4. **Read-out.**  ``PV = offset + g · f_fill · G(x) · S + e``, with g the ADU per detected
    quantum, e ~ N(0, σ_e²) the additive electronic noise, rounded and clipped to
-   the panel's bit depth (14 bits).
+   the panel's bit depth (14 bits).  G(x) = 1 + σ_G·z(x) is an optional fixed pattern
+   (``gain_nonuniformity`` σ_G, default 0 = off): the residual pixel-to-pixel gain
+   variation left after flat-field correction, the same in every image of the panel
+   (drawn from ``pattern_seed``), which adds structure noise of variance σ_G²·K²
+   (in air-kerma units) to every image.
 
 The stored values are linear in air kerma; :attr:`SimulatedImage.conversion` is
 the exact linear conversion function ``PV = offset + gain · K``.
@@ -95,6 +99,8 @@ class DetectorModel:
     light_spread_mm: float = 0.0    # exponential LSF length L (0 = no spread)
     adu_per_quantum: float = 2.4    # ADU per detected quantum at full collection
     electronic_noise_adu: float = 3.0
+    gain_nonuniformity: float = 0.0  # relative SD of a fixed pixel-gain pattern (structure noise); 0 = off
+    pattern_seed: int = 0           # seed of that fixed pattern (the same for every image of the panel)
     offset_adu: float = 60.0
     bits: int = 14
     kvp: float = 28.0
@@ -185,6 +191,8 @@ def _validate_model(m: DetectorModel) -> None:
             raise ValueError(f"{k} must lie in (0, 1]")
     if m.light_spread_mm < 0 or m.electronic_noise_adu < 0:
         raise ValueError("light_spread_mm and electronic_noise_adu must be ≥ 0")
+    if not 0 <= m.gain_nonuniformity < 0.5:
+        raise ValueError("gain_nonuniformity must lie in [0, 0.5)")
 
 
 @dataclass
@@ -286,6 +294,16 @@ def _light_spread(image: np.ndarray, model: DetectorModel) -> np.ndarray:
     return sfft.irfft2(spec, s=image.shape, workers=-1)
 
 
+def gain_pattern(model: DetectorModel, shape: tuple[int, int]) -> np.ndarray:
+    """The panel's fixed pixel-gain pattern G = 1 + σ_G·z, z ~ N(0, 1) white, drawn from ``pattern_seed``.
+
+    The same ``shape`` always gives the same pattern, so every image of a panel carries it (structure
+    noise: variance ∝ K², it does not average out over images).
+    """
+    rng = np.random.default_rng([int(model.pattern_seed), int(shape[0]), int(shape[1])])
+    return 1.0 + model.gain_nonuniformity * rng.standard_normal(shape)
+
+
 def expose(transmission: np.ndarray, model: DetectorModel, dose_ugy: float,
            rng: np.random.Generator) -> np.ndarray:
     """Turn an object transmission map into a raw uint16 image (steps 1–4 of the module doc)."""
@@ -306,6 +324,8 @@ def expose(transmission: np.ndarray, model: DetectorModel, dose_ugy: float,
             fluct += np.sqrt(lam * excess).astype(f32) * rng.standard_normal(n.shape, dtype=f32)
         signal = lam + _light_spread(fluct, model)
         signal *= g
+        if model.gain_nonuniformity > 0:
+            signal *= gain_pattern(model, n.shape)
         if model.electronic_noise_adu > 0:
             signal += model.electronic_noise_adu * rng.standard_normal(n.shape, dtype=f32)
     else:  # no spread: both Gaussian terms can be drawn as one
@@ -313,6 +333,9 @@ def expose(transmission: np.ndarray, model: DetectorModel, dose_ugy: float,
         sd = np.sqrt(g * g * excess * lam + model.electronic_noise_adu ** 2)
         if np.any(sd > 0):
             signal += sd * rng.standard_normal(n.shape, dtype=f32)
+        if model.gain_nonuniformity > 0:
+            # the Swank term is scaled too (a ≤ 1.5 % error on its small variance at σ_G ≤ 0.1)
+            signal *= gain_pattern(model, n.shape)
     signal += model.offset_adu
     np.rint(signal, out=signal)
     np.clip(signal, 0, 2 ** model.bits - 1, out=signal)

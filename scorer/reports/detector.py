@@ -70,7 +70,8 @@ def _figure(svg: str, caption: str) -> str:
 def _mtf_plot(curves: dict[str, dict], nyquist: dict[str, float | None]) -> str:
     fig, ax = _fig("Presampling MTF", "spatial frequency (cycles/mm)", "MTF")
     for label, m in curves.items():
-        ax.plot(m["frequency_per_mm"], m["value"], label=label)
+        line = ax.plot(m["frequency_per_mm"], m["value"], label=label)
+        _band(ax, m["frequency_per_mm"], m.get("ci_low"), m.get("ci_high"), line[0].get_color())
     for n in nyquist.values():
         if n:
             ax.axvline(n, ls=":", color="grey")
@@ -79,18 +80,31 @@ def _mtf_plot(curves: dict[str, dict], nyquist: dict[str, float | None]) -> str:
     return figure_to_svg(fig)
 
 
+def _band(ax, f, lo, hi, color) -> None:
+    """A 95 % CI as a shaded band (nothing when the curve has none)."""
+    if lo is None or hi is None:
+        return
+    n = min(len(f), len(lo), len(hi))
+    ax.fill_between(np.asarray(f)[:n], np.asarray(lo, dtype=float)[:n], np.asarray(hi, dtype=float)[:n],
+                    color=color, alpha=0.2, lw=0)
+
+
 def _nnps_plot(curves: dict[str, tuple]) -> str:
     fig, ax = _fig("Normalised noise power spectrum", "spatial frequency (cycles/mm)", "NNPS (mm²)", logy=True)
-    for label, (f, v) in curves.items():
-        ax.plot(f, v, label=label)
+    for label, (f, v, *ci) in curves.items():
+        line = ax.plot(f, v, label=label)
+        if ci:
+            _band(ax, f, ci[0], ci[1], line[0].get_color())
     ax.legend()
     return figure_to_svg(fig)
 
 
 def _dqe_plot(curves: dict[str, tuple]) -> str:
     fig, ax = _fig("Detective quantum efficiency", "spatial frequency (cycles/mm)", "DQE")
-    for label, (f, v) in curves.items():
-        ax.plot(f, v, label=label)
+    for label, (f, v, *ci) in curves.items():
+        line = ax.plot(f, v, label=label)
+        if ci:
+            _band(ax, f, ci[0], ci[1], line[0].get_color())
     ax.set_ylim(0, 1.05)
     ax.legend()
     return figure_to_svg(fig)
@@ -163,6 +177,8 @@ def detector_report_html(result: dict, metrics=None, title: str = "Limen detecto
         n = result["nnps"]
         body = _figure(_nnps_plot({"x cut": (n["frequency_per_mm"], n["x_mm2"]),
                                    "y cut": (n["frequency_per_mm"], n["y_mm2"]),
+                                   "mean of the cuts": (n["frequency_per_mm"], n["value_mm2"], n.get("ci_low"),
+                                                        n.get("ci_high")),
                                    "radial average": (n["radial_frequency_per_mm"], n["radial_mm2"])}),
                        f"NNPS from {n['n_rois']} ROIs of {n['n_images']} flat field(s); relative standard error "
                        f"≈ {100 * n['relative_uncertainty']:.1f} % per frequency.")
@@ -172,12 +188,31 @@ def detector_report_html(result: dict, metrics=None, title: str = "Limen detecto
     if result.get("dqe"):
         q = result["dqe"]
         curves = {f"{d} direction": (q["frequency_per_mm"], v) for d, v in (q.get("by_direction") or {}).items()}
-        curves["headline"] = (q["frequency_per_mm"], q["value"])
+        curves["headline"] = (q["frequency_per_mm"], q["value"], q.get("ci_low"), q.get("ci_high"))
         sections.append(("DQE", _figure(_dqe_plot(curves),
                                         f"K = {q['kerma_ugy']:g} µGy, q = {q['q_per_mm2_ugy']:g} per mm² per µGy.")))
     else:
         sections.append(("DQE", "<p>Not computed: the DQE needs an edge image, flat fields, the air kerma K and "
                                 "q of the beam; Limen does not guess them.</p>"))
+    ns = result.get("noise_series")
+    if ns:
+        comp = ns["components"]
+        rows = [{"term": t, "value": f"{comp[t]['value']:.4g}",
+                 "95 % CI": "fixed at 0" if comp[t].get("fixed") else f"{comp[t]['ci_low']:.4g} – {comp[t]['ci_high']:.4g}",
+                 "units": u} for t, u in (("electronic", "µGy² (e)"), ("quantum", "µGy (q)"), ("structure", "1 (s)"))]
+        groups = [{"kerma (µGy)": g["kerma_ugy"], "flats": g["n_images"], "ROIs": g["n_rois"],
+                   "variance (µGy²)": f"{g['variance']:.4g} ± {g['variance_se']:.2g}",
+                   "relative SD": f"{100 * g['relative_sd']:.3g} %" if g.get("relative_sd") else "—",
+                   "fitted": f"{comp['electronic']['value'] + comp['quantum']['value'] * g['kerma_ugy'] + comp['structure']['value'] * g['kerma_ugy'] ** 2:.4g}"}
+                  for g in ns["groups"]]
+        body = (f"<p>{html.escape(ns['quantum_limited_text'][:1].upper() + ns['quantum_limited_text'][1:])}.</p>"
+                + table_html(rows, left=("term", "units")) + table_html(groups)
+                + f"<p class='note'>{html.escape(ns['model'])}; weighted least squares, 95 % CIs.</p>")
+        dq = {f"{g['kerma_ugy']:g} µGy": (g["dqe"]["frequency_per_mm"], g["dqe"]["value"], g["dqe"]["ci_low"],
+                                          g["dqe"]["ci_high"]) for g in ns["groups"] if g.get("dqe")}
+        if dq:
+            body += _figure(_dqe_plot(dq), "DQE at each kerma of the series (bands: 95 % CIs).")
+        sections.append(("Noise components from flats at several kermas", body))
     if result.get("conversion"):
         c = result["conversion"]
         rows = []
@@ -248,13 +283,49 @@ def compare_report_html(comparison: dict, a: dict, b: dict, title: str = "Limen 
                                                   {la: a.get("nyquist_per_mm"), lb: b.get("nyquist_per_mm")}),
                                         "Mean presampling MTF of each detector (dotted: Nyquist).")))
     if a.get("nnps") and b.get("nnps"):
-        sections.append(("NNPS", _figure(_nnps_plot({la: (a["nnps"]["frequency_per_mm"], a["nnps"]["value_mm2"]),
-                                                     lb: (b["nnps"]["frequency_per_mm"], b["nnps"]["value_mm2"])}),
+        sections.append(("NNPS", _figure(_nnps_plot({lab: (d["nnps"]["frequency_per_mm"], d["nnps"]["value_mm2"],
+                                                           d["nnps"].get("ci_low"), d["nnps"].get("ci_high"))
+                                                     for lab, d in ((la, a), (lb, b))}),
                                          "Mean of the two axis cuts; NNPS scales as 1/kerma, so compare at equal kerma.")))
     if a.get("dqe") and b.get("dqe"):
-        sections.append(("DQE", _figure(_dqe_plot({la: (a["dqe"]["frequency_per_mm"], a["dqe"]["value"]),
-                                                   lb: (b["dqe"]["frequency_per_mm"], b["dqe"]["value"])}),
-                                        "Headline DQE of each detector.")))
+        sections.append(("DQE", _figure(_dqe_plot({lab: (d["dqe"]["frequency_per_mm"], d["dqe"]["value"],
+                                                         d["dqe"].get("ci_low"), d["dqe"].get("ci_high"))
+                                                   for lab, d in ((la, a), (lb, b))}),
+                                        "Headline DQE of each detector (bands: 95 % CIs).")))
+    eq = comparison.get("equal_quality")
+    if eq and eq.get("ratios"):
+        rows = []
+        for r in eq["ratios"]:
+            rows.append({"diameter (mm)": r["diameter_mm"],
+                         f"kerma ratio {lb}/{la} (95 % CI)": "—" if r.get("ratio") is None else
+                         f"{r['ratio']:.3g} ({r['ci_low']:.3g}–{r['ci_high']:.3g})",
+                         "predicted from MTF, NNPS and noise": "—" if r.get("predicted_ratio") is None else
+                         f"{r['predicted_ratio']:.3g}",
+                         f"β {la}": f"{r['beta_a']:.3f}", f"β {lb}": f"{r['beta_b']:.3f}",
+                         "at threshold (%)": f"{100 * r['threshold_contrast']:.3g}"})
+        sections.insert(1, ("Equal image quality: the air kerma each panel needs",
+                            "<ul>" + "".join(f"<li>{html.escape(s)}</li>" for s in eq["sentences"]) + "</ul>"
+                            + table_html(rows) + f"<p class='note'>{html.escape(eq['note'])}; measured from the "
+                            "dose series (scored thresholds fitted as a·K^(−β)); the predicted ratio uses each "
+                            "panel's MTF and NNPS (Fourier NPW) carried to other kermas by its noise components, and "
+                            "has no CI.</p>"))
+    nc = comparison.get("noise_components") or {}
+    if nc:
+        rows = []
+        for lab, n in nc.items():
+            c = n.get("components") or {}
+            row = {"detector": lab}
+            for t, unit in (("electronic", "µGy²"), ("quantum", "µGy"), ("structure", "")):
+                v = c.get(t) or {}
+                row[f"{t} ({unit})" if unit else t] = "—" if v.get("value") is None else (
+                    f"{v['value']:.3g}" + ("" if v.get("ci_low") is None else
+                                           f" ({v['ci_low']:.3g}–{v['ci_high']:.3g})"))
+            row["where quantum noise dominates"] = n.get("quantum_limited_text") or ""
+            rows.append(row)
+        sections.insert(2 if eq else 1, ("Noise components", table_html(rows, left=("detector",
+                                                                                     "where quantum noise dominates"))
+                        + "<p class='note'>Pixel variance of the linearised flat fields σ²(K) = e + q·K + s·K² "
+                          "(electronic, quantum, structure), fitted by weighted least squares with 95 % CIs.</p>"))
     th = comparison.get("thresholds") or []
     if th:
         series: dict[str, list[dict]] = {}
