@@ -95,6 +95,9 @@ def run(out: Path) -> Path:
                 "panel (HSX-CS-2291, room MAM3); every image is simulated by Limen's physics model (at 100 µGy; the dose series also at 25, 50 and 180 µGy) and the "
                 "six readers are a documented observer model, not people.</p>")
     index = out / "index.html"
+    from scorer.invocation import set_invocation
+
+    set_invocation(["--out", str(out)], prog="python -m scorer.demo")   # the index is the demo's, not the last step's
     index.write_text(html_page("Limen demo — two mammography panels compared",
                                [("Scenario", scenario), ("Verdicts", _verdict_summary(out)), ("Reports", body)]),
                      encoding="utf-8")
