@@ -113,18 +113,20 @@ class OutputFolder:
                     owned |= listed
                 else:  # a killed run: everything that was not there before it started is its own
                     owned |= set(present) - {str(f) for f in old.get("foreign", []) if isinstance(f, str)}
-            for rel in sorted(owned & set(present)):
-                target = (p / rel)
-                if ".." in Path(rel).parts or not target.is_file():
-                    continue
-                try:
-                    target.unlink()
-                except OSError as exc:
-                    raise LimenError(f"cannot remove the earlier run's file ({exc.strerror or exc})", target) from None
-            self._prune_empty_dirs()
             foreign = set(present) - owned
         self.foreign = sorted(foreign)
+        # the manifest says "incomplete" before anything of the earlier run is removed, so a kill from here on
+        # leaves a folder that says what it is
         self._write_manifest(complete=False, files=[])
+        for rel in sorted(set(present) - foreign - {MANIFEST}):
+            target = p / rel
+            if ".." in Path(rel).parts or not target.is_file():
+                continue
+            try:
+                target.unlink()
+            except OSError as exc:
+                raise LimenError(f"cannot remove the earlier run's file ({exc.strerror or exc})", target) from None
+        self._prune_empty_dirs()
 
     def _present(self) -> list[str]:
         return sorted(str(f.relative_to(self.path)) for f in self.path.rglob("*") if f.is_file() or f.is_symlink())
