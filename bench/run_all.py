@@ -7,7 +7,7 @@ import sys
 import time
 
 BENCHES = ["bench_simulate", "bench_register", "bench_score", "bench_detector", "bench_analyse", "bench_nightly",
-           "bench_observer_coverage"]
+           "bench_observer_coverage", "bench_memory"]
 
 
 def main() -> int:
