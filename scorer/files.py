@@ -37,6 +37,9 @@ def atomic_write_bytes(path, data: bytes) -> Path:
     except OSError as exc:
         raise LimenError(f"cannot write here ({exc.strerror or exc})", path) from None
     try:
+        umask = os.umask(0)
+        os.umask(umask)
+        os.fchmod(fd, 0o666 & ~umask)      # mkstemp's 0600 would hide reports from the rest of the team
         with os.fdopen(fd, "wb") as fh:
             half = len(data) // 2
             fh.write(data[:half])
@@ -118,6 +121,7 @@ class OutputFolder:
         # the manifest says "incomplete" before anything of the earlier run is removed, so a kill from here on
         # leaves a folder that says what it is
         self._write_manifest(complete=False, files=[])
+        emptied = set()
         for rel in sorted(set(present) - foreign - {MANIFEST}):
             target = p / rel
             if ".." in Path(rel).parts or not target.is_file():
@@ -126,13 +130,16 @@ class OutputFolder:
                 target.unlink()
             except OSError as exc:
                 raise LimenError(f"cannot remove the earlier run's file ({exc.strerror or exc})", target) from None
-        self._prune_empty_dirs()
+            emptied.update(d for d in target.parents if p in d.parents)
+        self._prune_empty_dirs(emptied)
 
     def _present(self) -> list[str]:
         return sorted(str(f.relative_to(self.path)) for f in self.path.rglob("*") if f.is_file() or f.is_symlink())
 
-    def _prune_empty_dirs(self) -> None:
-        for d in sorted((d for d in self.path.rglob("*") if d.is_dir()), key=lambda d: len(d.parts), reverse=True):
+    @staticmethod
+    def _prune_empty_dirs(dirs) -> None:
+        """Remove the sub-folders (deepest first) that removing the earlier run's files left empty."""
+        for d in sorted(dirs, key=lambda d: len(d.parts), reverse=True):
             try:
                 d.rmdir()
             except OSError:
