@@ -7,7 +7,7 @@ import sys
 import time
 
 BENCHES = ["bench_cli", "bench_simulate", "bench_register", "bench_score", "bench_detector", "bench_analyse",
-           "bench_nightly", "bench_observer_coverage", "bench_dose_series", "bench_web_load"]
+           "bench_nightly", "bench_observer_coverage", "bench_dose_series", "bench_memory", "bench_web_load"]
 
 
 def main() -> int:

@@ -71,10 +71,10 @@ def run(out: Path) -> Path:
         _limen(["detector", "--flat", *sorted(str(p) for p in (d / "flats").glob("*.dcm")),
                 "--edge", *sorted(str(p) for p in (d / "edges").glob("*.dcm")),
                 "--kerma-ugy", str(DOSE_UGY), "--q", "5000", "--conversion", conv, "--noise-series", noise_csv,
-                "--out", str(d / "detector")])
+                "--replace", "--out", str(d / "detector")])
         for observer, folder in (("npw", "score"), ("npwe", "score-npwe")):
             _limen(["score", *images, "--observer", observer, "--conversion", conv,
-                    "--mtf", str(d / "detector" / "detector.json"), "--out", str(d / folder)])
+                    "--mtf", str(d / "detector" / "detector.json"), "--replace", "--out", str(d / folder)])
         links += [(f"{panel} panel: contrast-detail report, NPW observer", f"{panel}/score/report.html"),
                   (f"{panel} panel: contrast-detail report, NPWE observer", f"{panel}/score-npwe/report.html"),
                   (f"{panel} panel: MTF, NNPS, DQE", f"{panel}/detector/detector.html")]
@@ -85,7 +85,8 @@ def run(out: Path) -> Path:
             "--label-b", "indirect (CsI)", "--scored-a", str(out / "direct" / "score" / "results.json"),
             "--scored-b", str(out / "indirect" / "score" / "results.json"),
             "--dose-a", str(out / "direct" / "dose-series" / "dose_series.json"),
-            "--dose-b", str(out / "indirect" / "dose-series" / "dose_series.json"), "--out", str(out / "comparison")])
+            "--dose-b", str(out / "indirect" / "dose-series" / "dose_series.json"), "--replace",
+            "--out", str(out / "comparison")])
     links.insert(0, ("direct vs indirect, side by side: equal-quality kerma, noise components, MTF/NNPS/DQE",
                      "comparison/comparison.html"))
     links += _nightly(out)  # nightly scoring (issue 13): simulated nights, one panel drifts and is caught
@@ -215,7 +216,7 @@ def _reader_study(out: Path) -> list[tuple[str, str]]:
     print(f"\n6 invented readers (documented observer model, scorer/study/reader_model.py) read the demo images: "
           f"{study / 'reader_trials.csv'}")
     _limen(["analyse", str(study / "reader_trials.csv"), "--model", str(study / "model_trials.csv"),
-            "--by", "detector", "--out", str(study / "analysis")])
+            "--by", "detector", "--replace", "--out", str(study / "analysis")])
     links = [("reader study: human curves, human/model factor, detector comparison",
               "reader-study/analysis/report.html")]
     for panel in ("direct", "indirect"):
@@ -223,7 +224,7 @@ def _reader_study(out: Path) -> list[tuple[str, str]]:
         images = sorted(str(p) for p in (d / "images").glob("*.dcm"))
         _limen(["score", *images, "--observer", "npwe", "--conversion", str(d / "images" / f"{panel}-conversion.toml"),
                 "--mtf", str(d / "detector" / "detector.json"), "--limits", str(EXAMPLE_LIMITS),
-                "--human-factor-from", str(study / "analysis" / "analysis.json"), "--out", str(d / "verdict")],
+                "--human-factor-from", str(study / "analysis" / "analysis.json"), "--replace", "--out", str(d / "verdict")],
                allowed_exit=(0, 1, 3))
         links.append((f"{panel} panel: human-equivalent thresholds against the example limits",
                       f"{panel}/verdict/report.html"))

@@ -6,6 +6,7 @@ import tomllib
 from pathlib import Path
 
 from scorer.errors import LimenError
+from scorer.faults import fault_point
 
 
 def read_toml(path, what: str) -> dict:
@@ -36,8 +37,15 @@ def atomic_write_bytes(path, data: bytes) -> Path:
     except OSError as exc:
         raise LimenError(f"cannot write here ({exc.strerror or exc})", path) from None
     try:
+        umask = os.umask(0)
+        os.umask(umask)
+        os.fchmod(fd, 0o666 & ~umask)      # mkstemp's 0600 would hide reports from the rest of the team
         with os.fdopen(fd, "wb") as fh:
-            fh.write(data)
+            half = len(data) // 2
+            fh.write(data[:half])
+            fh.flush()
+            fault_point("write")      # crash tests kill the run here, half-way through a file
+            fh.write(data[half:])
             fh.flush()
             os.fsync(fh.fileno())
         os.replace(tmp, path)
@@ -59,3 +67,96 @@ def atomic_write_bytes(path, data: bytes) -> Path:
 def atomic_write_text(path, text: str) -> Path:
     """:func:`atomic_write_bytes` for UTF-8 text."""
     return atomic_write_bytes(path, text.encode("utf-8"))
+
+
+MANIFEST = ".limen-outputs.json"
+_TEMP_GLOB = ".*.part"
+
+
+class OutputFolder:
+    """The ``--out`` folder of one run: fresh, or emptied of what an earlier Limen run wrote there.
+
+    A folder that holds anything is refused unless ``replace`` is true; then only the files a previous
+    run owned (listed in its manifest ``.limen-outputs.json``, plus temporary ``.*.part`` files a killed run
+    left) are removed, and files of anyone else stay.  The manifest is written first with
+    ``"complete": false`` and the list of foreign files, and rewritten with ``"complete": true`` and the
+    files of this run by :meth:`finish`, so even a run killed midway can be replaced cleanly.
+    Every file is written with :func:`atomic_write_bytes` (complete or absent).
+    """
+
+    def __init__(self, path, *, replace: bool = False, command: str = "", option: str = "--out"):
+        import json
+
+        self.path = Path(path)
+        self.command = command
+        p = self.path
+        if p.exists() and not p.is_dir():
+            raise LimenError(f"is a file, not a folder; give a folder to {option}", p)
+        try:
+            p.mkdir(parents=True, exist_ok=True)
+            present = self._present()
+        except OSError as exc:
+            raise LimenError(f"cannot create the output folder given to {option} ({exc.strerror or exc})",
+                             p) from None
+        if present and not replace:
+            raise LimenError(f"output folder is not empty ({len(present)} file(s), e.g. {sorted(present)[0]}); "
+                             f"choose a new {option} folder or add --replace to replace what an earlier Limen "
+                             "run wrote there", p)
+        foreign = set(present)
+        if present:
+            old = None
+            try:
+                old = json.loads((p / MANIFEST).read_text(encoding="utf-8"))
+            except (OSError, ValueError):
+                pass
+            owned = {MANIFEST} | {f for f in present if Path(f).match(_TEMP_GLOB)}
+            if isinstance(old, dict):
+                listed = {str(f) for f in old.get("files", []) if isinstance(f, str)}
+                if old.get("complete"):
+                    owned |= listed
+                else:  # a killed run: everything that was not there before it started is its own
+                    owned |= set(present) - {str(f) for f in old.get("foreign", []) if isinstance(f, str)}
+            foreign = set(present) - owned
+        self.foreign = sorted(foreign)
+        # the manifest says "incomplete" before anything of the earlier run is removed, so a kill from here on
+        # leaves a folder that says what it is
+        self._write_manifest(complete=False, files=[])
+        emptied = set()
+        for rel in sorted(set(present) - foreign - {MANIFEST}):
+            target = p / rel
+            if ".." in Path(rel).parts or not target.is_file():
+                continue
+            try:
+                target.unlink()
+            except OSError as exc:
+                raise LimenError(f"cannot remove the earlier run's file ({exc.strerror or exc})", target) from None
+            emptied.update(d for d in target.parents if p in d.parents)
+        self._prune_empty_dirs(emptied)
+
+    def _present(self) -> list[str]:
+        return sorted(str(f.relative_to(self.path)) for f in self.path.rglob("*") if f.is_file() or f.is_symlink())
+
+    @staticmethod
+    def _prune_empty_dirs(dirs) -> None:
+        """Remove the sub-folders (deepest first) that removing the earlier run's files left empty."""
+        for d in sorted(dirs, key=lambda d: len(d.parts), reverse=True):
+            try:
+                d.rmdir()
+            except OSError:
+                pass
+
+    def _write_manifest(self, *, complete: bool, files: list[str]) -> None:
+        import json
+
+        atomic_write_text(self.path / MANIFEST, json.dumps(
+            {"format": "limen-outputs/1", "command": self.command, "complete": complete, "files": files,
+             "foreign": self.foreign}, indent=1) + "\n")
+
+    def __truediv__(self, name) -> Path:
+        return self.path / name
+
+    def finish(self) -> list[str]:
+        """Record the files this run wrote (everything now present but the foreign files) as complete."""
+        files = [f for f in self._present() if f != MANIFEST and f not in set(self.foreign)]
+        self._write_manifest(complete=True, files=files)
+        return files

@@ -15,7 +15,7 @@ import pytest
 
 SCORER = Path(__file__).resolve().parents[1] / "scorer"
 
-RANK = {"": 0, "errors": 0, "files": 0, "invocation": 0, "images": 1, "phantom": 2, "observer": 3, "detector": 4, "study": 4,
+RANK = {"": 0, "errors": 0, "files": 0, "invocation": 0, "resources": 0, "faults": 0, "images": 1, "phantom": 2, "observer": 3, "detector": 4, "study": 4,
         "qc": 5, "reports": 6, "commands": 7, "cli": 8, "demo": 9}
 
 

@@ -25,13 +25,21 @@ from scorer.reports import dumps
 @click.option("--json", "as_json", is_flag=True, help="Print one JSON object on stdout.")
 @click.option("--out", "out_dir", type=click.Path(file_okay=False), default=None,
               help="Write analysis.json, CSV tables and report.html here.")
-def analyse(responses, model_file, by, reference, n_boot, criterion_pc, seed, as_json, out_dir):
+@click.option("--replace", is_flag=True,
+              help="Let --out name a folder an earlier run wrote to: its files are replaced (others are kept).")
+def analyse(responses, model_file, by, reference, n_boot, criterion_pc, seed, as_json, out_dir, replace):
     """Per-reader and pooled contrast-detail curves, human/model factor, group comparison, agreement."""
     from scorer.images.io import image_content_hash as file_sha256   # SHA-256 of a file's bytes
+    from scorer.files import OutputFolder
     from scorer.study import analyse_study, load_trials
+    from scorer.study.stats import m_alternatives_of
 
     trials = load_trials(responses)
+    m_alternatives_of(trials, responses)     # a table with one candidate site is refused naming its file
     model = load_trials(model_file) if model_file else None
+    if model is not None:
+        m_alternatives_of(model, model_file)
+    folder = OutputFolder(out_dir, replace=replace, command="analyse") if out_dir else None
     steps = ["per-reader fits", "pooled curves", f"{by} comparison"] + (
         ["model observer", "human/model factor"] if model is not None else []) + ["agreement"]
     from tqdm import tqdm
@@ -42,9 +50,11 @@ def analyse(responses, model_file, by, reference, n_boot, criterion_pc, seed, as
         bar.set_postfix_str(step)
         bar.update(1)
 
-    a = analyse_study(trials, model, by=by, n_boot=n_boot, seed=seed, criterion_pc=criterion_pc,
-                      reference=reference, progress=progress)
-    bar.close()
+    try:
+        a = analyse_study(trials, model, by=by, n_boot=n_boot, seed=seed, criterion_pc=criterion_pc,
+                          reference=reference, progress=progress)
+    finally:
+        bar.close()
     meta = {"inputs": {"responses": {"path": str(responses), "sha256": file_sha256(responses)}},
             "seed": seed, "n_boot": n_boot}
     if model_file:
@@ -53,6 +63,7 @@ def analyse(responses, model_file, by, reference, n_boot, criterion_pc, seed, as
         from scorer.reports import write_outputs
 
         write_outputs(a, out_dir, meta)
+        folder.finish()
     if as_json:
         click.echo(dumps(a.to_json()))
         return
@@ -72,17 +83,31 @@ def _text_summary(a) -> str:
     if len(pc):
         lines.append("")
         lines.append(f"{a.by:<14}{'diam mm':>8}{'C_T %':>9}{'95 % CI %':>19}{'readers':>9}")
+        bounds = False
         for r in pc.to_dict("records"):
-            lines.append(f"{str(r[a.by]):<14}{r['diameter_mm']:>8g}{100 * r['threshold_contrast']:>9.3g}"
-                         f"{100 * r['ci_low']:>9.3g} – {100 * r['ci_high']:<7.3g}{r['n_readers']:>9d}")
+            ci = (f"{100 * r['ci_low']:>9.3g} – {100 * r['ci_high']:<7.3g}" if _finite(r["ci_low"], r["ci_high"])
+                  else f"{'—':>9}   {'':<7}")
+            ct = f"{100 * r['threshold_contrast']:>9.3g}" if _finite(r["threshold_contrast"]) else f"{'—':>9}"
+            if not r.get("converged", True):
+                ct = f"{format(100 * r['threshold_contrast'], '.3g') + '*':>9}"
+                bounds = True
+            lines.append(f"{str(r[a.by]):<14}{r['diameter_mm']:>8g}{ct}{ci}{int(r['n_readers']):>9d}")
+        if bounds:
+            lines.append("* a bound, not an estimate: every trial correct, or all at chance")
     if len(a.comparison):
         lines.append("")
         lines.extend(a.comparison["sentence"])
     hm = a.human_model
     if hm and hm.get("factor") is not None:
         lines.append("")
-        lines.append(f"human/model ({hm['observer']}) threshold factor: {hm['factor']:.3g} "
-                     f"(95 % CI {hm['ci_low']:.3g}–{hm['ci_high']:.3g})")
+        ci = f"{hm['ci_low']:.3g}–{hm['ci_high']:.3g}" if _finite(hm.get("ci_low"), hm.get("ci_high")) else "—"
+        lines.append(f"human/model ({hm['observer']}) threshold factor: {hm['factor']:.3g} (95 % CI {ci})")
     for note in a.notes:
         lines.append(f"note: {note}")
     return "\n".join(lines)
+
+
+def _finite(*values) -> bool:
+    import math
+
+    return all(v is not None and math.isfinite(float(v)) for v in values)

@@ -11,7 +11,7 @@ import pandas as pd
 from scorer.detector import load_detector_json, load_scored_json, compare
 from scorer.detector.comparison import load_dose_json
 from scorer.errors import LimenError
-from scorer.files import atomic_write_text
+from scorer.files import OutputFolder, atomic_write_text
 from scorer.reports import dumps, write_json
 from scorer.commands.detector import alternatives_from_options, diameters_from_options
 
@@ -40,10 +40,13 @@ from scorer.commands.detector import alternatives_from_options, diameters_from_o
 @click.option("--json", "as_json", is_flag=True, help="Print one JSON object on stdout.")
 @click.option("--out", "out_dir", type=click.Path(file_okay=False), default=None,
               help="Write comparison.json, comparison.csv and comparison.html here.")
+@click.option("--replace", is_flag=True,
+              help="Let --out name a folder an earlier run wrote to: its files are replaced (others are kept).")
 def compare_detectors(detector_a, detector_b, label_a, label_b, scored_a, scored_b, layout_file, diameters,
-                      m_alternatives, scored_method, dose_a, dose_b, as_json, out_dir):
+                      m_alternatives, scored_method, dose_a, dose_b, as_json, out_dir, replace):
     """Put two detectors measured by 'limen detector' side by side."""
     a, b = load_detector_json(detector_a), load_detector_json(detector_b)
+    folder = OutputFolder(out_dir, replace=replace, command="compare-detectors") if out_dir else None
 
     def default_label(p):
         p = Path(p)
@@ -68,13 +71,13 @@ def compare_detectors(detector_a, detector_b, label_a, label_b, scored_a, scored
     if out_dir:
         from scorer.reports import compare_report_html
 
-        out = Path(out_dir)
-        out.mkdir(parents=True, exist_ok=True)
+        out = folder.path
         write_json(out / "comparison.json", result)
         rows = [{k: (v if not isinstance(v, list) else " – ".join(f"{x:.4g}" for x in v)) for k, v in r.items()}
                 for r in result["table"]]
         atomic_write_text(out / "comparison.csv", pd.DataFrame(rows).to_csv(index=False))
         atomic_write_text(out / "comparison.html", compare_report_html(result, a, b))
+        folder.finish()
     if as_json:
         click.echo(dumps(result))
         return

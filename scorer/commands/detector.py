@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import csv
+import io
 import sys
 import warnings
 from pathlib import Path
@@ -13,6 +14,7 @@ import numpy as np
 from scorer.images import load_conversion
 from scorer.detector.measure import central_mean, fit_conversion, measure_detector, measure_noise_series, q_for_beam
 from scorer.errors import LimenError
+from scorer.files import OutputFolder, atomic_write_bytes, atomic_write_text
 from scorer.reports.detector import summary_rows
 from scorer.reports import dumps, write_json
 
@@ -172,8 +174,10 @@ def load_images_warn(paths, *, spacing, conversion, role: str):
 @click.option("--json", "as_json", is_flag=True, help="Print one JSON object on stdout.")
 @click.option("--out", "out_dir", type=click.Path(file_okay=False), default=None,
               help="Write detector.json, detector.csv, nnps_2d.npy and detector.html here.")
+@click.option("--replace", is_flag=True,
+              help="Let --out name a folder an earlier run wrote to: its files are replaced (others are kept).")
 def detector(flat_files, edge_files, kerma_ugy, q_per_mm2_ugy, beam, pixel_spacing_mm, conversion_file,
-             kerma_csv, noise_csv, diameters, layout_file, m_alternatives, as_json, out_dir):
+             kerma_csv, noise_csv, diameters, layout_file, m_alternatives, as_json, out_dir, replace):
     """Measure a detector as IEC 62220-1 describes: conversion function, MTF, NNPS and DQE.
 
     Flat fields give the NNPS, slanted-edge images the presampling MTF; the DQE
@@ -195,6 +199,7 @@ def detector(flat_files, edge_files, kerma_ugy, q_per_mm2_ugy, beam, pixel_spaci
     if conversion_file and kerma_csv:
         raise LimenError("give either --conversion or --fit-conversion, not both", "--conversion")
     diam = diameters_from_options(diameters, layout_file)
+    folder = OutputFolder(out_dir, replace=replace, command="detector") if out_dir else None
 
     conv_fn = None
     conv_dict = None
@@ -214,6 +219,8 @@ def detector(flat_files, edge_files, kerma_ugy, q_per_mm2_ugy, beam, pixel_spaci
     spacing = pixel_spacing_mm
     flats = load_images_warn(flat_files, spacing=spacing, conversion=conv_fn, role="flat")
     edges = load_images_warn(edge_files, spacing=spacing, conversion=conv_fn, role="edge")
+    _check_distinct_and_kerma(list(flat_files) + list(edge_files), flats + edges, kerma_ugy,
+                              linearised=conv_fn is not None, n_flats=len(flats))
     notes = []
     if conv_fn is None and (flats or edges):
         notes.append("no conversion function given: pixel values are taken as proportional to air kerma "
@@ -254,15 +261,17 @@ def detector(flat_files, edge_files, kerma_ugy, q_per_mm2_ugy, beam, pixel_spaci
         "edge_angle_deg": None, "predicted": None, "warnings": notes}
 
     if out_dir:
-        out = Path(out_dir)
-        out.mkdir(parents=True, exist_ok=True)
+        out = folder.path
         write_json(out / "detector.json", result)
         write_csv(out / "detector.csv", result)
         if metrics is not None and metrics.nnps is not None:
-            np.save(out / "nnps_2d.npy", metrics.nnps.nnps_2d_mm2)
+            buf = io.BytesIO()
+            np.save(buf, metrics.nnps.nnps_2d_mm2)
+            atomic_write_bytes(out / "nnps_2d.npy", buf.getvalue())
         from scorer.reports import detector_report_html
 
-        (out / "detector.html").write_text(detector_report_html(result, metrics), encoding="utf-8")
+        atomic_write_text(out / "detector.html", detector_report_html(result, metrics))
+        folder.finish()
     if as_json:
         click.echo(dumps(result))
     else:
@@ -276,6 +285,34 @@ def detector(flat_files, edge_files, kerma_ugy, q_per_mm2_ugy, beam, pixel_spaci
             click.echo(f"wrote detector.json, detector.csv and detector.html to {out_dir}/")
 
 
+#: plausible air kerma at the detector for a DQE measurement, µGy (common practice: IEC 62220-1 uses a few
+#: to a few hundred µGy; a factor of 100 either side is allowed)
+KERMA_RANGE_UGY = (0.01, 1.0e5)
+
+
+def _check_distinct_and_kerma(paths, images, kerma_ugy, *, linearised: bool, n_flats: int) -> None:
+    """Refuse the same image given twice (it would count as independent noise) and an air kerma that cannot be
+    the flats' (outside a plausible range, or, with a conversion function, far from the flats' own kerma)."""
+    seen: dict[str, str] = {}
+    for p, im in zip(paths, images):
+        twin = seen.get(im.metadata.content_sha256)
+        if twin is not None:
+            what = "given twice" if twin == str(p) else f"holds the same image as {twin}"
+            raise LimenError(f"{what}: it would be counted as two independent images", p)
+        seen[im.metadata.content_sha256] = str(p)
+    if kerma_ugy is None:
+        return
+    lo, hi = KERMA_RANGE_UGY
+    if not lo <= kerma_ugy <= hi:
+        raise LimenError(f"{kerma_ugy:g} µGy is outside the plausible range {lo:g}–{hi:g} µGy of air kerma at the "
+                         "detector", "--kerma-ugy")
+    if linearised and n_flats:
+        measured = float(np.median([central_mean(im.pixels, im.spacing_mm) for im in images[:n_flats]]))
+        if not 0.5 <= kerma_ugy / measured <= 2.0:
+            raise LimenError(f"{kerma_ugy:g} µGy disagrees with the flat fields' air kerma from the conversion "
+                             f"function ({measured:.4g} µGy)", "--kerma-ugy")
+
+
 def write_csv(path: Path, result: dict) -> None:
     """One row per NNPS frequency (up to Nyquist): MTF per direction and mean, NNPS cuts, DQE."""
     nn = result.get("nnps")
@@ -285,7 +322,7 @@ def write_csv(path: Path, result: dict) -> None:
     elif mtf:
         f = np.asarray(mtf["frequency_per_mm"])
     else:
-        Path(path).write_text("frequency_per_mm\n", encoding="utf-8")
+        atomic_write_text(path, "frequency_per_mm\n")
         return
     cols: dict[str, np.ndarray] = {"frequency_per_mm": f}
 
@@ -305,11 +342,12 @@ def write_csv(path: Path, result: dict) -> None:
         for d, v in (q.get("by_direction") or {}).items():
             cols[f"dqe_{d}"] = interp(q["frequency_per_mm"], v)
         cols["dqe"] = interp(q["frequency_per_mm"], q["value"])
-    with open(path, "w", newline="", encoding="utf-8") as fh:
-        w = csv.writer(fh)
-        w.writerow(list(cols))
-        for i in range(len(f)):
-            w.writerow(["" if not np.isfinite(c[i]) else f"{c[i]:.6g}" for c in cols.values()])
+    fh = io.StringIO(newline="")
+    w = csv.writer(fh)
+    w.writerow(list(cols))
+    for i in range(len(f)):
+        w.writerow(["" if not np.isfinite(c[i]) else f"{c[i]:.6g}" for c in cols.values()])
+    atomic_write_text(path, fh.getvalue())
 
 
 if __name__ == "__main__":  # pragma: no cover

@@ -12,6 +12,7 @@ from tqdm import tqdm
 
 from scorer.images import load_conversion
 from scorer.errors import LimenError
+from scorer.files import OutputFolder
 from scorer.invocation import current_command
 from scorer.phantom import load_layout
 from scorer.observer import HumanFactor, load_limits
@@ -101,8 +102,11 @@ def _blur_from_detector_json(path) -> SystemBlur:
 @click.option("--out", "out_dir", type=click.Path(file_okay=False), default=None,
               help="Write results.json, CSV tables, registration overlays (a diagnostic one when the phantom "
                    "cannot be found) and report.html here.")
+@click.option("--replace", is_flag=True,
+              help="Let --out name a folder an earlier run wrote to: its files are replaced (others are kept).")
 def score(images, layout_file, observer, method, limits_file, human_factor, factor_file, conversion_file, mtf_file,
-          viewing_distance_mm, pixel_spacing, n_boot, psychometric_form, dprime_ci, criterion, seed, as_json, out_dir):
+          viewing_distance_mm, pixel_spacing, n_boot, psychometric_form, dprime_ci, criterion, seed, as_json, out_dir,
+          replace):
     """Score contrast-detail phantom IMAGES with a model observer: threshold contrast per diameter.
 
     Exit status: 0 when every verdict passes or no limits were given, 1 when a verdict
@@ -120,7 +124,8 @@ def score(images, layout_file, observer, method, limits_file, human_factor, fact
     conversion = load_conversion(conversion_file) if conversion_file else None
     blur = _blur_from_detector_json(mtf_file) if mtf_file else None
     methods = ["dprime", "count"] if method == "both" else [method]
-    out = Path(out_dir) if out_dir else None
+    folder = OutputFolder(out_dir, replace=replace, command="score") if out_dir else None
+    out = folder.path if folder else None
     overlays: list[Path] = []
     bar = tqdm(total=len(images), desc=f"scoring ({observer.upper()})", unit="image", file=sys.stderr,
                disable=len(images) < 2)
@@ -149,6 +154,7 @@ def score(images, layout_file, observer, method, limits_file, human_factor, fact
     command = current_command() or ""
     if out is not None:
         write_score_outputs(result, out, overlays, command)
+        folder.finish()
     if as_json:
         click.echo(dumps(result.to_json()))
     else:

@@ -16,18 +16,24 @@ from scorer.reports import dumps
 @click.option("--method", type=click.Choice(["dprime", "count"]), default=None,
               help="Threshold method to plot (default: each detector's verdict method).")
 @click.option("--json", "as_json", is_flag=True, help="Print the paths written as JSON.")
-def trend(db, out_dir, config_file, method, as_json):
+@click.option("--replace", is_flag=True,
+              help="Let --out name a folder an earlier run wrote to: its files are replaced (others are kept).")
+def trend(db, out_dir, config_file, method, as_json, replace):
     """Write the trend report of a nightly database."""
     from scorer.commands.nightly import db_url_option, load_nightly_config
     from scorer.qc import open_store
     from scorer.reports.trend import write_trend_report
 
+    from scorer.files import OutputFolder
+
     config = load_nightly_config(config_file)
+    folder = OutputFolder(out_dir, replace=replace, command="trend")
     store = open_store(db_url_option(db))
     try:
         page = write_trend_report(store, out_dir, config.alerts, config.programme, method=method)
     finally:
         store.close()
+    folder.finish()
     if as_json:
         click.echo(dumps({"report": str(page), "csv": str(page.with_name("trend.csv")),
                           "alerts_csv": str(page.with_name("alerts.csv")), "json": str(page.with_name("trend.json"))}))

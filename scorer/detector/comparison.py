@@ -40,6 +40,9 @@ def load_detector_json(path) -> dict:
     d = _load_json(path, "detector JSON")
     if not any(d.get(k) for k in ("mtf", "nnps", "dqe")):
         raise LimenError("no MTF, NNPS or DQE in this file: is it a 'limen detector' JSON?", path)
+    for key, value_key in (("mtf", "value"), ("nnps", "value_mm2"), ("dqe", "value")):
+        if d.get(key) is not None:
+            _check_curve(d[key], key, value_key, path)
     return d
 
 
@@ -49,6 +52,28 @@ def load_dose_json(path) -> dict:
     if not isinstance(d.get("fits"), list) or not isinstance(d.get("groups"), list):
         raise LimenError("no 'fits' and 'groups' in this file: is it a 'limen dose-series' JSON?", path)
     return d
+
+
+def _check_curve(curve, key: str, value_key: str, path) -> None:
+    """A curve of a detector JSON: ``frequency_per_mm`` and ``value_key`` lists of numbers (null allowed for a
+    missing point), equally long, frequencies finite and increasing, at least two finite values."""
+    if not isinstance(curve, dict):
+        raise LimenError(f"'{key}' must be an object with frequency_per_mm and {value_key}", path)
+    arrays = {}
+    for name in ("frequency_per_mm", value_key):
+        raw = curve.get(name)
+        if not isinstance(raw, list) or not raw:
+            raise LimenError(f"'{key}' lacks a '{name}' list", path)
+        if any(isinstance(v, bool) or not (v is None or isinstance(v, (int, float))) for v in raw):
+            raise LimenError(f"'{key}.{name}' holds something other than numbers", path)
+        arrays[name] = np.array([np.nan if v is None else v for v in raw], dtype=float)
+    f, v = arrays["frequency_per_mm"], arrays[value_key]
+    if len(f) != len(v):
+        raise LimenError(f"'{key}' has {len(f)} frequencies but {len(v)} values", path)
+    if not np.all(np.isfinite(f)) or np.any(np.diff(f) <= 0):
+        raise LimenError(f"'{key}.frequency_per_mm' must be finite and increasing", path)
+    if np.isfinite(v).sum() < 2:
+        raise LimenError(f"'{key}.{value_key}' has fewer than two finite values", path)
 
 
 def load_scored_json(path) -> list[dict]:

@@ -28,6 +28,7 @@ from __future__ import annotations
 import hashlib
 import io
 import re
+import struct
 import warnings
 from pathlib import Path
 
@@ -35,6 +36,7 @@ import numpy as np
 
 from scorer.images.conversion import ConversionFunction
 from scorer.errors import LimenError
+from scorer.resources import check_limit
 from scorer.images.image import Image, ImageMetadata
 
 __all__ = [
@@ -161,10 +163,16 @@ def load_image(path, pixel_spacing_mm: float | tuple[float, float] | None = None
     if fmt == "dicom":
         pixels, file_spacing, spacing_source = _read_dicom(data, path, meta)
     else:
+        _check_declared_size(_declared_shape(data, fmt), path)
         pixels = _READERS[fmt](data, path)
         file_spacing, spacing_source = None, ""
 
+    eight_bit = fmt != "dicom" and np.asarray(pixels).dtype.kind in "iub" and np.asarray(pixels).dtype.itemsize == 1
     pixels = _as_2d(pixels, path, fmt)
+    if eight_bit:
+        meta.warnings.append("8-bit pixel data: 256 grey levels are too few for threshold contrasts of a few "
+                             "per cent (a detector's raw image has 12–16 bits); thresholds may be too high")
+        warnings.warn(f"{path}: {meta.warnings[-1]}", LimenWarning, stacklevel=2)
 
     if pixel_spacing_mm is not None:
         spacing = _check_spacing(pixel_spacing_mm, path, "given pixel spacing")
@@ -204,6 +212,38 @@ def load_image(path, pixel_spacing_mm: float | tuple[float, float] | None = None
         warnings.warn(f"{path}: {_FOR_PRESENTATION_WARNING}", LimenWarning, stacklevel=2)
     return Image(pixels=np.ascontiguousarray(pixels, dtype=np.float64),
                  spacing_mm=spacing, metadata=meta)
+
+
+def _declared_shape(data: bytes, fmt: str) -> tuple[int, ...] | None:
+    """Image shape as the file's header declares it, read without decoding the pixels (None if unknown)."""
+    try:
+        if fmt == "png" and len(data) >= 24 and data[12:16] == b"IHDR":
+            # PNG (ISO/IEC 15948) IHDR: width and height, big-endian 32-bit, right after the chunk type
+            width, height = struct.unpack(">II", data[16:24])
+            return (height, width)
+        if fmt == "npy":
+            f = io.BytesIO(data)
+            version = np.lib.format.read_magic(f)
+            shape, _, _ = np.lib.format._read_array_header(f, version)
+            return tuple(int(v) for v in shape)
+        if fmt == "tiff":
+            import tifffile
+
+            with tifffile.TiffFile(io.BytesIO(data)) as tif:
+                return tuple(int(v) for v in tif.pages[0].shape) if len(tif.pages) else None
+    except Exception:  # a damaged header: the reader itself reports it
+        return None
+    return None
+
+
+def _check_declared_size(shape, path: Path) -> None:
+    """Refuse an image whose declared size exceeds LIMEN_MAX_IMAGE_MEGAPIXELS before it is decoded."""
+    if not shape:
+        return
+    n = float(np.prod([float(v) for v in shape]))
+    check_limit("LIMEN_MAX_IMAGE_MEGAPIXELS", n / 1e6,
+                f"image declares {'×'.join(str(int(v)) for v in shape)} pixels ({n / 1e6:.4g} megapixels), which",
+                path)
 
 
 def _read_bytes(path: Path) -> bytes:
@@ -304,6 +344,11 @@ _READERS = {"tiff": _read_tiff, "png": _read_png, "npy": _read_npy}
 
 # ---- DICOM
 
+#: DICOM Modality (0008,0060) values of projection X-ray images (PS3.3 C.7.3.1.1.1); "OT" (other) is
+#: accepted for secondary captures; anything else (CT, MR, US, NM, PT …) is refused
+_PROJECTION_MODALITIES = frozenset({"MG", "DX", "CR", "RG", "PX", "IO", "XA", "RF", "DR", "OT"})
+
+
 def _read_dicom(data: bytes, path: Path, meta: ImageMetadata):
     """Pixels (rescaled), the file's spacing and where it came from; fills ``meta``."""
     import pydicom
@@ -333,6 +378,14 @@ def _read_dicom(data: bytes, path: Path, meta: ImageMetadata):
     samples = _int_or_none(ds.get("SamplesPerPixel")) or 1
     frames = _int_or_none(ds.get("NumberOfFrames")) or 1
     rows, cols = _int_or_none(ds.get("Rows")), _int_or_none(ds.get("Columns"))
+    modality = (meta.modality or "").upper()
+    if modality and modality not in _PROJECTION_MODALITIES:
+        raise LimenError(f"Modality (0008,0060) is {modality}, not a projection X-ray image; Limen scores "
+                         f"detector images ({', '.join(sorted(m for m in _PROJECTION_MODALITIES if m))})", path)
+    photometric = str(ds.get("PhotometricInterpretation", "MONOCHROME2")).strip().upper()
+    if samples == 1 and photometric not in ("MONOCHROME1", "MONOCHROME2", ""):
+        raise LimenError(f"Photometric Interpretation (0028,0004) is {photometric}, not a grey (MONOCHROME) "
+                         "image; Limen needs a single grey channel", path)
     if samples > 1:
         raise LimenError(f"colour DICOM image ({samples} samples per pixel, Photometric Interpretation "
                          f"{ds.get('PhotometricInterpretation', '?')}, shape {rows}×{cols}×{samples}); "
@@ -341,7 +394,13 @@ def _read_dicom(data: bytes, path: Path, meta: ImageMetadata):
         raise LimenError(f"multi-frame DICOM image ({frames} frames of {rows}×{cols}, shape "
                          f"{frames}×{rows}×{cols}); Limen needs one 2-D image", path)
 
+    _check_declared_size(tuple(v for v in (frames, rows, cols, samples) if v) if rows and cols else None, path)
     _check_decoder(ds, path)
+    bits = _int_or_none(ds.get("BitsStored"))
+    if bits is not None and bits <= 8:
+        meta.warnings.append(f"{bits}-bit pixel data (Bits Stored): too few grey levels for threshold contrasts "
+                             "of a few per cent (a detector's raw image has 12–16 bits); thresholds may be too high")
+        warnings.warn(f"{path}: {meta.warnings[-1]}", LimenWarning, stacklevel=2)
     try:
         with warnings.catch_warnings():
             warnings.simplefilter("ignore")

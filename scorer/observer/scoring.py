@@ -17,6 +17,9 @@ import pandas as pd
 
 from scorer.images.conversion import ConversionFunction
 from scorer.errors import LimenError
+import numpy as np
+
+from scorer.resources import check_limit
 from scorer.images.io import LimenWarning, load_image
 from scorer.phantom.layout import Layout
 from scorer.observer.limits import HumanFactor, Limits, Verdict, evaluate, overall
@@ -119,10 +122,29 @@ def score_images(paths: Sequence, layout: Layout, *, observer: str = "npw", meth
     for m in methods:
         if m not in METHODS:
             raise LimenError(f"unknown method {m!r}; choose dprime, count or both")
+    if criterion_pc is not None:
+        m_max = max(t.m_alternatives for t in layout.targets)
+        m_min = min(t.m_alternatives for t in layout.targets)
+        if not (np.isfinite(criterion_pc) and 1.0 / m_min < criterion_pc < 1.0):
+            raise LimenError(f"{criterion_pc:g} must lie between chance and 1 for every target (chance is "
+                             f"1/{m_min} for the layout's {m_min}-AFC targets"
+                             + (f", 1/{m_max} for its {m_max}-AFC ones" if m_max != m_min else "") + ")",
+                             "--criterion")
+    if viewing_distance_mm is not None and not (np.isfinite(viewing_distance_mm) and viewing_distance_mm > 0):
+        raise LimenError(f"must be a positive distance in mm, got {viewing_distance_mm:g}", "--viewing-distance-mm")
     cfg_kw = {"observer": observer, "blur": blur}
     if viewing_distance_mm is not None:
         cfg_kw["viewing_distance_mm"] = viewing_distance_mm
     config = ObserverConfig(**cfg_kw)
+    check_limit("LIMEN_MAX_BOOTSTRAP_CELLS", n_boot * len(paths),
+                f"--n-boot {n_boot} × {len(paths)} images = {n_boot * len(paths)}", "--n-boot")
+    seen_paths: dict[Path, str] = {}
+    for p in paths:
+        key = Path(p).resolve()
+        if key in seen_paths:
+            raise LimenError(f"given twice (as {seen_paths[key]} and {p}); each image may be scored once", p)
+        seen_paths[key] = str(p)
+    seen_hashes: dict[str, str] = {}
     notes: list[str] = []
     if conversion is None:
         notes.append("no conversion function given: stored pixel values are taken as proportional to air kerma")
@@ -136,6 +158,10 @@ def score_images(paths: Sequence, layout: Layout, *, observer: str = "npw", meth
             image = load_image(path, pixel_spacing_mm=pixel_spacing_mm, conversion=conversion, min_shape=min_shape)
         for w in caught:
             notes.append(str(w.message))
+        twin = seen_hashes.setdefault(image.metadata.content_sha256, str(path))
+        if twin != str(path):
+            raise LimenError(f"holds the same bytes as {twin}: the same image given twice would be counted as two "
+                             "independent images", path)
         detectors.add((image.metadata.detector_id or image.metadata.device_serial, image.metadata.station_name))
         try:
             placement = register(image, layout, max_residual_px=max_residual_px, path=path)

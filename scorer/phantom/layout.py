@@ -54,6 +54,7 @@ import numpy as np
 
 from scorer.errors import LimenError
 from scorer.files import read_toml
+from scorer.resources import check_limit
 
 FORMAT = "limen-layout/1"
 PHANTOM_DIR = Path(__file__).resolve().parents[2] / "phantoms"
@@ -248,6 +249,11 @@ def parse_layout(data: dict, path="<layout>") -> Layout:
     t_raw = data.get("targets", [])
     if not isinstance(t_raw, list) or not t_raw:
         fail("[[targets]]", "no targets")
+    n_sites = sum(len(d.get("sites_mm") or []) + len(d.get("background_sites_mm") or []) + ("known_site_mm" in d)
+                  if isinstance(d, dict) and isinstance(d.get("sites_mm", []), list)
+                  and isinstance(d.get("background_sites_mm", []), list) else 1 for d in t_raw)
+    check_limit("LIMEN_MAX_LAYOUT_SITES", n_sites,
+                f"[[targets]]: {len(t_raw)} targets with {n_sites} candidate sites", p)
     targets: list[Target] = []
     seen_ids: set[str] = set()
     for i, d in enumerate(t_raw):
@@ -317,9 +323,20 @@ def _check_overlaps(targets, markers, fail) -> None:
     from scipy.spatial import cKDTree
 
     tree = cKDTree(xy)
-    reach = 2 * radius.max() * (1 + SITE_CLEARANCE_RADII)
-    for i, j in sorted(tree.query_pairs(reach)):
-        need = radius[i] + radius[j] + SITE_CLEARANCE_RADII * max(radius[i], radius[j])
-        dist = float(np.hypot(*(xy[i] - xy[j])))
-        if dist < need:
-            fail(owner[j], f"overlaps {owner[i]}: centres {dist:.2f} mm apart, need at least {need:.2f} mm")
+    # a pair (i, j) with r_i ≥ r_j clashes only within (2 + clearance)·r_i of i: each item queries its own reach
+    # and keeps partners no larger than itself, so the work and memory grow with the sites, not their square
+    reach = (2 + SITE_CLEARANCE_RADII) * radius
+    worst = None
+    for i, near in enumerate(tree.query_ball_point(xy, reach)):
+        for j in near:
+            if j == i or radius[j] > radius[i] or (radius[j] == radius[i] and j < i):
+                continue
+            need = radius[i] + radius[j] + SITE_CLEARANCE_RADII * max(radius[i], radius[j])
+            dist = float(np.hypot(*(xy[i] - xy[j])))
+            if dist < need:
+                pair = (min(i, j), max(i, j))
+                if worst is None or pair < worst[0]:
+                    worst = (pair, dist, need)
+    if worst is not None:
+        (i, j), dist, need = worst
+        fail(owner[j], f"overlaps {owner[i]}: centres {dist:.2f} mm apart, need at least {need:.2f} mm")

@@ -43,6 +43,8 @@ References
 
 from __future__ import annotations
 
+import io
+import warnings
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -50,6 +52,7 @@ import numpy as np
 from scipy import ndimage as ndi
 
 from scorer.errors import LimenError
+from scorer.files import atomic_write_bytes
 from scorer.phantom.geometry import PhantomTransform
 from scorer.images.image import Image
 from scorer.phantom.layout import Layout
@@ -550,7 +553,10 @@ def draw_overlay(image: Image, layout: Layout, placement: Placement | None, out_
     from matplotlib.patches import Circle, Polygon
 
     out = Path(out_png)
-    out.parent.mkdir(parents=True, exist_ok=True)
+    try:
+        out.parent.mkdir(parents=True, exist_ok=True)
+    except OSError as exc:
+        raise LimenError(f"cannot create the overlay folder ({exc.strerror or exc})", out.parent) from None
     pix = np.asarray(image.pixels)
     rows, cols = pix.shape
     f = max(1, int(np.ceil(max(rows, cols) / OVERLAY_MAX_PX)))
@@ -618,12 +624,10 @@ def draw_overlay(image: Image, layout: Layout, placement: Placement | None, out_
            Line2D([], [], color="cyan", label="phantom outline")]
     ax.legend(handles=key, loc="lower right", fontsize=9, framealpha=0.85, facecolor="black", labelcolor="white",
               edgecolor="0.5")
-    import io
-
-    from scorer.files import atomic_write_bytes
-
     buf = io.BytesIO()
-    fig.savefig(buf, format="png")
+    with warnings.catch_warnings():   # a file name in a script the font lacks is drawn as boxes, not warned about
+        warnings.filterwarnings("ignore", message=r"Glyph .* missing from")
+        fig.savefig(buf, format="png")
     atomic_write_bytes(out, buf.getvalue())
     return out
 

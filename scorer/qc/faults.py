@@ -9,20 +9,4 @@ not yet written), ``quarantine`` (a reason file written, the file not yet moved)
 
 from __future__ import annotations
 
-import os
-import signal
-
-ENV = "LIMEN_FAULT_INJECT"
-_passed: dict[str, int] = {}
-
-
-def fault_point(name: str) -> None:
-    spec = os.environ.get(ENV)
-    if not spec:
-        return
-    point, _, nth = spec.partition(":")
-    if point != name:
-        return
-    _passed[name] = _passed.get(name, 0) + 1
-    if _passed[name] >= int(nth or 1):
-        os.kill(os.getpid(), signal.SIGKILL)
+from scorer.faults import ENV, _passed, fault_point  # noqa: F401  (one hook for the whole package)

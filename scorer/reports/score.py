@@ -11,6 +11,8 @@ matplotlib.use("Agg")
 import matplotlib.pyplot as plt  # noqa: E402
 import numpy as np  # noqa: E402
 
+from scorer.errors import LimenError  # noqa: E402
+from scorer.files import atomic_write_text  # noqa: E402
 from scorer.observer.npw import METHOD_TEXT  # noqa: E402
 from scorer.observer.psychometric import fit_psychometric  # noqa: E402
 from scorer.reports.html import error_bars, figure_to_svg, html_page, plain_log_ticks, table_html, write_json  # noqa: E402
@@ -126,19 +128,22 @@ def _thumb(png: Path, max_px: int = 560) -> str:
 def write_score_outputs(result, out_dir, overlays: list[Path] | None = None, command: str = "") -> dict:
     """Write results.json, responses.csv, trials.csv, thresholds.csv, verdicts.csv and report.html."""
     out = Path(out_dir)
-    out.mkdir(parents=True, exist_ok=True)
+    try:
+        out.mkdir(parents=True, exist_ok=True)
+    except OSError as exc:
+        raise LimenError(f"cannot create the output folder ({exc.strerror or exc})", out) from None
     js = result.to_json()
     if command:
         js["command"] = command
     write_json(out / "results.json", js)
-    result.responses.to_csv(out / "responses.csv", index=False)
-    result.trials.to_csv(out / "trials.csv", index=False)
-    result.thresholds_frame().to_csv(out / "thresholds.csv", index=False)
+    atomic_write_text(out / "responses.csv", result.responses.to_csv(index=False))
+    atomic_write_text(out / "trials.csv", result.trials.to_csv(index=False))
+    atomic_write_text(out / "thresholds.csv", result.thresholds_frame().to_csv(index=False))
     if result.verdicts is not None:
         import pandas as pd
 
-        pd.DataFrame([v.to_dict() for v in result.verdicts]).to_csv(out / "verdicts.csv", index=False)
-    (out / "report.html").write_text(render_html(result, overlays or [], command), encoding="utf-8")
+        atomic_write_text(out / "verdicts.csv", pd.DataFrame([v.to_dict() for v in result.verdicts]).to_csv(index=False))
+    atomic_write_text(out / "report.html", render_html(result, overlays or [], command))
     return {"json": out / "results.json", "report": out / "report.html"}
 
 

@@ -13,7 +13,10 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from scorer.reports.html import READABLE, display_records, error_bars, figure_to_svg, html_page, plain_log_ticks, table_html, write_json
+from scorer.errors import LimenError  # noqa: E402
+from scorer.files import atomic_write_text  # noqa: E402
+from scorer.reports.html import (READABLE, display_records, error_bars, figure_to_svg, html_page, plain_log_ticks,
+                                 table_html, write_json)
 
 
 def _plt():
@@ -110,7 +113,10 @@ def _records(df: pd.DataFrame, cols) -> list[dict]:
 def write_outputs(a, out_dir, meta: dict | None = None) -> dict:
     """Write analysis.json, CSV tables and report.html into ``out_dir``; return their paths."""
     out = Path(out_dir)
-    out.mkdir(parents=True, exist_ok=True)
+    try:
+        out.mkdir(parents=True, exist_ok=True)
+    except OSError as exc:
+        raise LimenError(f"cannot create the output folder ({exc.strerror or exc})", out) from None
     paths = {}
     tables = {"reader_curves.csv": a.reader_curves, "pooled_curves.csv": a.pooled_curves,
               "model_curves.csv": a.model_curves, "between_reader_cv.csv": a.cv,
@@ -119,12 +125,12 @@ def write_outputs(a, out_dir, meta: dict | None = None) -> dict:
         tables["human_model_factor.csv"] = pd.DataFrame(a.human_model["per_diameter"])
     for name, df in tables.items():
         if df is not None and len(df):
-            df.to_csv(out / name, index=False)
+            atomic_write_text(out / name, df.to_csv(index=False))
             paths[name] = str(out / name)
 
     write_json(out / "analysis.json", {**a.to_json(), "meta": meta or {}})
     paths["analysis.json"] = str(out / "analysis.json")
-    (out / "report.html").write_text(report_html(a, meta), encoding="utf-8")
+    atomic_write_text(out / "report.html", report_html(a, meta))
     paths["report.html"] = str(out / "report.html")
     return paths
 

@@ -20,6 +20,8 @@ import matplotlib.pyplot as plt  # noqa: E402
 import numpy as np  # noqa: E402
 import pandas as pd  # noqa: E402
 
+from scorer.errors import LimenError  # noqa: E402
+from scorer.files import atomic_write_text  # noqa: E402
 from scorer.qc.config import AlertRules  # noqa: E402
 from scorer.qc.control import control_limits, ewma, ewma_halfwidth  # noqa: E402
 from scorer.reports.html import figure_to_svg, html_page, table_html, write_json  # noqa: E402
@@ -145,16 +147,19 @@ def write_trend_report(store, out_dir, rules: AlertRules | None = None, programm
     """Write trend.html, trend.csv, alerts.csv and trend.json into ``out_dir``; returns the HTML path."""
     rules = rules or AlertRules()
     out = Path(out_dir)
-    out.mkdir(parents=True, exist_ok=True)
+    try:
+        out.mkdir(parents=True, exist_ok=True)
+    except OSError as exc:
+        raise LimenError(f"cannot create the output folder ({exc.strerror or exc})", out) from None
     frame = trend_frame(store, rules)
     alerts = store.alerts()
     cols = ["detector", "session_id", "session_date", "n_images", "kvp", "flags", "method", "observer", "diameter_mm",
             "threshold_contrast", "ci_low", "ci_high", "in_baseline", "baseline", "shewhart_low", "shewhart_high",
             "ewma", "ewma_low", "ewma_high", "compared_contrast", "acceptable", "verdict", "alerts"]
-    frame.reindex(columns=cols).to_csv(out / "trend.csv", index=False)
-    pd.DataFrame(alerts, columns=["id", "session_id", "detector", "session_date", "method", "diameter_mm", "rule",
-                                  "direction", "value", "reference", "message", "emailed"]).to_csv(
-        out / "alerts.csv", index=False)
+    atomic_write_text(out / "trend.csv", frame.reindex(columns=cols).to_csv(index=False))
+    atomic_write_text(out / "alerts.csv", pd.DataFrame(alerts, columns=[
+        "id", "session_id", "detector", "session_date", "method", "diameter_mm", "rule", "direction", "value",
+        "reference", "message", "emailed"]).to_csv(index=False))
     sessions = store.sessions()
     quarantine = store.quarantine_log()
     write_json(out / "trend.json", {"programme": programme, "rules": rules.__dict__, "sessions": sessions,
@@ -184,8 +189,8 @@ def write_trend_report(store, out_dir, rules: AlertRules | None = None, programm
     sections.append(("Files", "<p>trend.csv (every threshold with baseline and limits), alerts.csv, trend.json "
                               "beside this page.</p>"))
     page = out / "trend.html"
-    page.write_text(html_page(f"{programme}: nightly trend", sections,
-                              meta={"rules": rules.__dict__, "database": store_display(store)}), encoding="utf-8")
+    atomic_write_text(page, html_page(f"{programme}: nightly trend", sections,
+                                      meta={"rules": rules.__dict__, "database": store_display(store)}))
     return page
 
 

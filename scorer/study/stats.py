@@ -71,6 +71,11 @@ def load_trials(path) -> pd.DataFrame:
         df = pd.read_csv(path, dtype={"reader": str, "detector": str, "image": str, "target": str})
     except (pd.errors.ParserError, pd.errors.EmptyDataError, UnicodeDecodeError) as exc:
         raise LimenError(f"cannot read as CSV ({str(exc).splitlines()[0]})", path) from None
+    except (OSError, ValueError) as exc:
+        raise LimenError(f"cannot read as CSV ({' '.join(str(exc).split())})", path) from None
+    if len(df.columns) == 1 and ";" in str(df.columns[0]):
+        raise LimenError("columns are separated by semicolons; Limen reads comma-separated CSV "
+                         "(export with ',' as the separator)", path)
     return validate_trials(df, source=path)
 
 
@@ -114,6 +119,10 @@ def validate_trials(df: pd.DataFrame, source="responses") -> pd.DataFrame:
             raise LimenError(f"{_row_label(out, bad)}: {c} {num.iloc[np.flatnonzero(bad)[0]]:g} is {what} "
                              f"({c} must be a positive fraction{'' if c == 'contrast' else ' in mm'})", source)
         out[c] = num.astype(float)
+    bad = (out["contrast"] >= 1).to_numpy()
+    if bad.any():
+        raise LimenError(f"{_row_label(out, bad)}: contrast {out['contrast'].iloc[np.flatnonzero(bad)[0]]:g} is not "
+                         "below 1; contrasts are fractions (0.012 for 1.2 %), not per cent", source)
     raw = out["correct"]
     mapped = raw.map(lambda v: {True: 1, False: 0, "1": 1, "0": 0, "true": 1, "false": 0, "True": 1,
                                 "False": 0}.get(v, None))   # 1/0 and 1.0/0.0 hash as True/False
@@ -145,6 +154,14 @@ def validate_trials(df: pd.DataFrame, source="responses") -> pd.DataFrame:
         if bad.any():
             raise LimenError(f"{_row_label(out, bad)}: n_alternatives must be a whole number ≥ 2", source)
         out["n_alternatives"] = num.astype(int)
+    key = ["reader", "detector", "image", "target"] + [c for c in ("session", "repeat") if c in out.columns]
+    dup = out.duplicated(subset=key, keep=False).to_numpy()
+    if dup.any():
+        i = np.flatnonzero(dup)
+        first = out.iloc[i[0]]
+        j = next(k for k in i[1:] if all(out.iloc[k][c] == first[c] for c in key))
+        raise LimenError(f"{_row_label(out, np.arange(len(out)) == j)} repeats {_row_label(out, dup)}: the same "
+                         f"{', '.join(key)} twice (add a 'repeat' column if a reader read a target twice)", source)
     return out
 
 
@@ -627,7 +644,8 @@ def compare_groups(curves: pd.DataFrame, by: str = "detector", reference: str | 
             g = g[g["reader"].isin(paired)]
             n_r = len(paired)
             if n_r < 2:
-                notes.append(f"{lev} vs {ref} at {diam:g} mm: {n_r} reader(s) read both, need at least 2")
+                notes.append(f"{lev} vs {ref} at {diam:g} mm: {n_r} reader(s) have an estimated threshold (not a "
+                             "bound) on both, need at least 2")
                 continue
             g["log_t"] = np.log10(g["threshold_contrast"])
             g["grp"] = np.where(g[by] == lev, 1.0, 0.0)
@@ -770,6 +788,12 @@ def analyse_study(trials: pd.DataFrame, model: pd.DataFrame | None = None, *, by
         p = {d: criterion_at(m, d, criterion_pc) for d in m}
     else:
         p = halfway_criterion(m) if criterion_pc is None else float(criterion_pc)
+    if criterion_pc is not None:
+        for d in sorted(set(trials["diameter_mm"])):
+            md = m_at(m, d)
+            if not 1.0 / md < criterion_pc < 1.0:
+                raise LimenError(f"{criterion_pc:g} must lie between chance (1/{md} for {md}-AFC at {d:g} mm) and 1",
+                                 "--criterion")
     notes = []
     if "source" in trials.columns and trials["source"].astype(str).str.contains("simulated").any():
         notes.append("Simulated readers: these trials come from Limen's documented observer model "
@@ -785,7 +809,10 @@ def analyse_study(trials: pd.DataFrame, model: pd.DataFrame | None = None, *, by
     notes += pn
     cv = between_reader_cv(rc, by)
     if cv.empty:
-        notes.append("between-reader CV needs at least 2 readers")
+        n_r = trials["reader"].nunique()
+        notes.append("between-reader CV needs at least 2 readers" if n_r < 2 else
+                     f"between-reader CV needs at least 2 of the {n_r} readers with an estimated threshold (not a "
+                     "bound) at one diameter")
     say(f"{by} comparison")
     comp, cn = compare_groups(rc, by, reference, ci, trials=trials, m=m, n_boot=n_boot, rng=rng)
     if len(comp) and n_boot < 2:

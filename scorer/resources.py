@@ -1,0 +1,55 @@
+"""Resource budgets: inputs whose declared size would need more memory than a stated budget are refused
+before anything is allocated, with a one-line error naming the limit and how to raise it.
+
+Each limit has a default and an environment variable that raises (or lowers) it:
+
+=============================  =========  ==========================================================
+variable                       default    what it bounds
+=============================  =========  ==========================================================
+LIMEN_MAX_IMAGE_MEGAPIXELS     80         rows × columns of one image, read from the file's header
+                                          before decoding (a 24 × 30 cm field at 50 µm is 29 Mpx;
+                                          80 Mpx of float64 pixels is 640 MB)
+LIMEN_MAX_LAYOUT_SITES         5000       candidate sites (discs and their alternatives) of a layout;
+                                          the bundled demo plate has 350
+LIMEN_MAX_BOOTSTRAP_CELLS      20000000   bootstrap resamples × images (the resampling weights held
+                                          at once: 160 MB of 64-bit counts)
+=============================  =========  ==========================================================
+"""
+
+from __future__ import annotations
+
+import os
+
+from scorer.errors import LimenError
+
+#: variable -> (default, unit shown in messages)
+LIMITS: dict[str, tuple[float, str]] = {
+    "LIMEN_MAX_IMAGE_MEGAPIXELS": (80.0, "megapixels"),
+    "LIMEN_MAX_LAYOUT_SITES": (5000.0, "sites"),
+    "LIMEN_MAX_BOOTSTRAP_CELLS": (2.0e7, "resamples × images"),
+}
+
+
+def limit(name: str) -> float:
+    """The current value of a limit: its environment variable if set to a positive number, else the default."""
+    default, _ = LIMITS[name]
+    text = os.environ.get(name, "").strip()
+    if not text:
+        return default
+    try:
+        value = float(text)
+    except ValueError:
+        raise LimenError(f"environment variable {name}={text!r} is not a number") from None
+    if not value > 0:
+        raise LimenError(f"environment variable {name}={text!r} must be positive")
+    return value
+
+
+def check_limit(name: str, value: float, what: str, path=None) -> None:
+    """Refuse ``value`` (in the limit's unit) above the limit ``name``: a one-line LimenError saying what was
+    asked for, the limit, and the environment variable that raises it."""
+    cap = limit(name)
+    if value > cap:
+        unit = LIMITS[name][1]
+        raise LimenError(f"{what} exceeds the limit of {cap:g} {unit} (memory budget); "
+                         f"raise it with the environment variable {name} if this is intended", path)

@@ -1,0 +1,164 @@
+"""Atomic outputs: a run killed with SIGKILL at any moment leaves complete files (or none), never a truncated one
+that parses; a non-empty --out is refused unless --replace, which clears only what Limen wrote; a re-run succeeds.
+
+Kills use the fault hook ``LIMEN_FAULT_INJECT=write:n`` (``scorer/faults.py``): the process kills itself half-way
+through writing its n-th output file, the worst moment for a non-atomic writer. A few timed kills at random
+moments are added. Every file left must parse completely (JSON, CSV, HTML ending in ``</html>``, PNG with its
+IEND chunk, NPY of the declared size).
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import signal
+import subprocess
+import sys
+import time
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import pytest
+from click.testing import CliRunner
+
+from helpers import MINI
+from scorer.cli import main
+from scorer.files import MANIFEST
+
+
+@pytest.fixture(scope="module")
+def images(tmp_path_factory):
+    d = tmp_path_factory.mktemp("atomic")
+    res = CliRunner().invoke(main, ["simulate", "--small", "--layout", str(MINI), "--count", "2", "--seed", "4",
+                                    "--out", str(d)])
+    assert res.exit_code == 0, res.output
+    return sorted(d.glob("*.dcm"))
+
+
+def _limen(args, env_extra=None, timeout=300):
+    env = {**os.environ, **(env_extra or {})}
+    return subprocess.run([sys.executable, "-m", "scorer.cli", *map(str, args)], env=env, capture_output=True,
+                          text=True, timeout=timeout)
+
+
+def _score_args(images, out, *extra):
+    return ["score", *images, "--layout", MINI, "--n-boot", "20", "--out", out, *extra]
+
+
+def _check_complete(folder: Path) -> list[str]:
+    """Parse every file in ``folder`` completely; return the names checked (a failure raises)."""
+    checked = []
+    for p in sorted(folder.rglob("*")):
+        if not p.is_file():
+            continue
+        name = p.name
+        if name.endswith(".part"):
+            continue           # a temporary file of the killed write: never a result name
+        data = p.read_bytes()
+        if name.endswith(".json"):
+            json.loads(data)
+        elif name.endswith(".csv"):
+            frame = pd.read_csv(p)
+            assert len(frame.columns) >= 1
+            # a cut CSV could still parse: its last line must be complete (ends in a newline)
+            assert data.endswith(b"\n"), name
+        elif name.endswith(".html"):
+            assert data.rstrip().endswith(b"</html>"), name
+        elif name.endswith(".png"):
+            assert data[:8] == b"\x89PNG\r\n\x1a\n" and data[-12:-4] == b"\x00\x00\x00\x00IEND", name
+        elif name.endswith(".npy"):
+            np.load(p)
+        checked.append(str(p.relative_to(folder)))
+    return checked
+
+
+def test_killed_at_every_file_leaves_only_complete_files(images, tmp_path):
+    """Kill the run half-way through its 1st, 2nd, … output file; each time the folder holds complete files only,
+    and ``--replace`` then finishes the job. Without atomic writes the killed file would be half written."""
+    out = tmp_path / "out"
+    ok = _limen(_score_args(images, out))
+    assert ok.returncode == 0, ok.stderr
+    full = _check_complete(out)
+    n_files = len(full)   # overlays, results.json, 4 CSV, report.html and the manifest (written twice)
+    assert n_files >= 8
+    killed_at = []
+    for n in range(1, n_files + 3):
+        res = _limen(_score_args(images, out, "--replace"), {"LIMEN_FAULT_INJECT": f"write:{n}"})
+        if res.returncode == 0:
+            break
+        assert res.returncode == -signal.SIGKILL, res.stderr
+        killed_at.append(n)
+        _check_complete(out)
+        manifest = json.loads((out / MANIFEST).read_text())
+        # a reader can tell an interrupted run from a finished one: killed while the new manifest was written,
+        # the previous complete result is still all there; later, the manifest says "incomplete"
+        if manifest["complete"]:
+            assert all((out / f).is_file() for f in manifest["files"])
+        else:
+            assert n > 1
+    assert len(killed_at) >= 8
+    final = _limen(_score_args(images, out, "--replace"))
+    assert final.returncode == 0, final.stderr
+    assert sorted(_check_complete(out)) == sorted(full)
+    assert not list(out.rglob("*.part"))
+    assert json.loads((out / MANIFEST).read_text())["complete"] is True
+
+
+def test_timed_kills_leave_only_complete_files(images, tmp_path):
+    """SIGKILL at a few moments during a run (common practice for crash tests: kill, then inspect)."""
+    out = tmp_path / "out"
+    for delay in (0.8, 1.6, 2.4, 3.2):
+        proc = subprocess.Popen([sys.executable, "-m", "scorer.cli", *map(str, _score_args(images, out, "--replace"))],
+                                stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+        time.sleep(delay)
+        proc.send_signal(signal.SIGKILL)
+        proc.wait(timeout=60)
+        if out.exists():
+            _check_complete(out)
+    res = _limen(_score_args(images, out, "--replace"))
+    assert res.returncode == 0, res.stderr
+    _check_complete(out)
+
+
+def test_non_empty_out_refused_and_replace_clears_only_limens_files(images, tmp_path):
+    out = tmp_path / "out"
+    first = CliRunner().invoke(main, [str(a) for a in _score_args(images, out)])
+    assert first.exit_code == 0, first.output
+    (out / "my notes.txt").write_text("the physicist's own file")
+    stale = out / "overlays" / "old-image.png"      # as if an earlier run had scored another image
+    stale.write_bytes((out / "overlays" / f"{images[0].stem}.png").read_bytes())
+    manifest = json.loads((out / MANIFEST).read_text())
+    manifest["files"].append("overlays/old-image.png")
+    (out / MANIFEST).write_text(json.dumps(manifest))
+
+    again = CliRunner().invoke(main, [str(a) for a in _score_args(images[:1], out)])
+    assert again.exit_code == 2 and "--replace" in again.stderr and len(again.stderr.strip().splitlines()) == 1
+
+    rep = CliRunner().invoke(main, [str(a) for a in _score_args(images[:1], out, "--replace")])
+    assert rep.exit_code == 0, rep.output
+    assert (out / "my notes.txt").read_text() == "the physicist's own file"     # not Limen's: kept
+    assert not stale.exists()                                                     # Limen's, stale: removed
+    assert sorted(p.name for p in (out / "overlays").iterdir()) == [f"{images[0].stem}.png"]
+    assert json.loads((out / "results.json").read_text())["images"][0]["path"] == str(images[0])
+
+
+@pytest.mark.parametrize("command", ["analyse", "detector", "compare-detectors"])
+def test_other_commands_refuse_a_non_empty_out(command, tmp_path, images):
+    out = tmp_path / "full"
+    out.mkdir()
+    (out / "x.txt").write_text("x")
+    args = {"analyse": ["analyse", tmp_path / "none.csv"],
+            "detector": ["detector", "--flat", images[0]],
+            "compare-detectors": ["compare-detectors", tmp_path / "a.json", tmp_path / "b.json"]}[command]
+    if command == "analyse":
+        from scorer.study import simulate_reader_study
+
+        simulate_reader_study(np.random.default_rng(1), 2, diameters_mm=(1.0,), n_images=4).trials.to_csv(
+            args[1], index=False)
+    if command == "compare-detectors":
+        for p in args[1:]:
+            p.write_text(json.dumps({"mtf": {"frequency_per_mm": [0, 1, 2], "value": [1, 0.8, 0.5]}}))
+    res = CliRunner().invoke(main, [str(a) for a in args] + ["--out", str(out)])
+    assert res.exit_code == 2, res.output
+    assert "--replace" in res.stderr and len(res.stderr.strip().splitlines()) == 1
