@@ -19,7 +19,9 @@ demo: venv
 	$(PY) -m scorer.demo --out $(DEMO)
 
 test: venv
-	$(PY) -m pytest -q -n 2 tests
+	$(VENV)/bin/ruff check .
+	$(VENV)/bin/ruff format --check .
+	$(PY) -m pytest -q -n 2 tests --cov --cov-report=term --cov-fail-under=85
 
 bench: venv
 	$(PY) -m bench.run_all

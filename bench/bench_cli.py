@@ -28,8 +28,13 @@ def main() -> dict:
     bare = _median_s([sys.executable, "-c", "pass"])
     helps = _median_s([sys.executable, "-m", "scorer.cli", "--help"])
     version = _median_s([sys.executable, "-m", "scorer.cli", "--version"])
-    out = {"bare_python_s": bare, "limen_help_s": helps, "limen_version_s": version, "ratio": helps / bare,
-           "repeats": REPEATS}
+    out = {
+        "bare_python_s": bare,
+        "limen_help_s": helps,
+        "limen_version_s": version,
+        "ratio": helps / bare,
+        "repeats": REPEATS,
+    }
     res = Path(__file__).resolve().parent / "results"
     res.mkdir(exist_ok=True)
     (res / "bench_cli.json").write_text(json.dumps(out, indent=2) + "\n", encoding="utf-8")

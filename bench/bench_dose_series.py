@@ -43,8 +43,9 @@ def _groups(model, layout, kermas, n, tmp: Path, seed, small: bool) -> OrderedDi
         paths = []
         for i in range(n):
             sim = simulate(model, "phantom", k, seed=[seed, int(10 * k), i], small=small, layout=layout)
-            paths.append(str(write_simulated(sim, tmp / f"{seed}" / f"k{k:g}", f"i{i}",
-                                             dt.datetime(2026, 11, 30, 8, i))))
+            paths.append(
+                str(write_simulated(sim, tmp / f"{seed}" / f"k{k:g}", f"i{i}", dt.datetime(2026, 11, 30, 8, i)))
+            )
         groups[float(k)] = paths
     return groups
 
@@ -64,8 +65,10 @@ def speed(tmp: Path) -> dict:
         score_dose_series(groups, lay, conversion=conv)
         t_series = time.perf_counter() - t
         out[panel] = {"score_s": t_score, "dose_series_s": t_series, "ratio": t_series / t_score}
-        print(f"{panel}: limen score on 40 images {t_score:.1f} s, dose series {t_series:.1f} s "
-              f"-> ratio {t_series / t_score:.2f}")
+        print(
+            f"{panel}: limen score on 40 images {t_score:.1f} s, dose series {t_series:.1f} s "
+            f"-> ratio {t_series / t_score:.2f}"
+        )
     return out
 
 
@@ -89,11 +92,18 @@ def coverage(tmp: Path, repeats: int) -> dict:
             ratios.setdefault(d, []).append(k["ratio"])
     all_cov = sum(hits.values()) / max(sum(total.values()), 1)
     for d in sorted(total):
-        print(f"{d:g} mm: coverage {hits[d] / total[d]:.3f} of {total[d]}, median ratio "
-              f"{np.median(ratios[d]):.3f} (truth {TRUE_RATIO})")
-    return {"per_diameter": {f"{d:g}": {"coverage": hits[d] / total[d], "n": total[d],
-                                        "median_ratio": float(np.median(ratios[d]))} for d in total},
-            "coverage": all_cov, "repeats": repeats}
+        print(
+            f"{d:g} mm: coverage {hits[d] / total[d]:.3f} of {total[d]}, median ratio "
+            f"{np.median(ratios[d]):.3f} (truth {TRUE_RATIO})"
+        )
+    return {
+        "per_diameter": {
+            f"{d:g}": {"coverage": hits[d] / total[d], "n": total[d], "median_ratio": float(np.median(ratios[d]))}
+            for d in total
+        },
+        "coverage": all_cov,
+        "repeats": repeats,
+    }
 
 
 def main() -> None:
@@ -108,8 +118,10 @@ def main() -> None:
     ok_s = worst < FLOOR_SPEED
     ok_c = COVERAGE[0] <= cov["coverage"] <= COVERAGE[1]
     print(f"dose_series_time_ratio: {worst:.2f} x (floor: {FLOOR_SPEED}) {'PASS' if ok_s else 'FAIL'}")
-    print(f"kerma_ratio_ci_coverage: {100 * cov['coverage']:.1f} % (floor: {100 * COVERAGE[0]:.0f}–"
-          f"{100 * COVERAGE[1]:.0f} %) {'PASS' if ok_c else 'FAIL'}")
+    print(
+        f"kerma_ratio_ci_coverage: {100 * cov['coverage']:.1f} % (floor: {100 * COVERAGE[0]:.0f}–"
+        f"{100 * COVERAGE[1]:.0f} %) {'PASS' if ok_c else 'FAIL'}"
+    )
 
 
 if __name__ == "__main__":

@@ -3,7 +3,8 @@
 1. Peak memory of scoring grows at most linearly with images × sites: tracemalloc's peak (numpy arrays are
    traced) while ``score_images`` scores 1, 2, 4 and 8 simulated images of the demo plate, and the plate cut to
    ¼, ½ and all of its targets. The peak must grow no faster than linearly: peak(8 images) / peak(1 image) ≤ 8
-   and peak(all sites) / peak(¼ of them) ≤ the ratio of sites. (Images are scored one after another, so the peak is in fact nearly flat.)
+   and peak(all sites) / peak(¼ of them) ≤ the ratio of sites. (Images are scored one after another, so the
+   peak is in fact nearly flat.)
 2. Peak memory of scoring one image ≤ 8× the image's float64 pixels; the marginal MB per extra image.
 3. A layout with 12 000 targets is refused (LIMEN_MAX_LAYOUT_SITES) within 10 s instead of being scored for
    minutes in gigabytes.
@@ -28,7 +29,7 @@ from scorer.errors import LimenError
 from scorer.observer import score_images
 from scorer.phantom import load_layout
 
-FLOOR_PEAK_X = 8.0     # peak of scoring one image, in multiples of its float64 pixels
+FLOOR_PEAK_X = 8.0  # peak of scoring one image, in multiples of its float64 pixels
 FLOOR_REFUSAL_S = 10.0
 
 
@@ -59,16 +60,19 @@ def main() -> dict:
             sub = dataclasses.replace(lay, targets=targets[: max(1, int(round(frac * len(targets))))])
             n_sites = sum(len(t.sites_mm) for t in sub.targets)
             for n_img in (1, 2, 4, 8):
-                peak = _peak_mb(lambda n_img=n_img, sub=sub: score_images(paths[:n_img], sub, conversion=conv, n_boot=200,
-                                                                          seed=0))
+                peak = _peak_mb(
+                    lambda n_img=n_img, sub=sub: score_images(paths[:n_img], sub, conversion=conv, n_boot=200, seed=0)
+                )
                 rows.append({"images": n_img, "sites": n_sites, "peak_mb": peak})
                 print(f"  {n_img} image(s) × {n_sites} sites: peak {peak:.1f} MB", flush=True)
         # refusal of a huge layout
         head = lay.source_path and Path(lay.source_path).read_text(encoding="utf-8").split("[[targets]]")[0]
-        body = "".join(f'[[targets]]\nid = "t{i}"\ndiameter_mm = 0.05\ncontrast = 0.01\n'
-                       f"sites_mm = [[{20 + (i % 110) * 0.4:.2f}, {20 + (i // 110) * 0.4:.2f}], "
-                       f"[{20.2 + (i % 110) * 0.4:.2f}, {20 + (i // 110) * 0.4:.2f}]]\nsignal_site = 0\n"
-                       for i in range(12000))
+        body = "".join(
+            f'[[targets]]\nid = "t{i}"\ndiameter_mm = 0.05\ncontrast = 0.01\n'
+            f"sites_mm = [[{20 + (i % 110) * 0.4:.2f}, {20 + (i // 110) * 0.4:.2f}], "
+            f"[{20.2 + (i % 110) * 0.4:.2f}, {20 + (i // 110) * 0.4:.2f}]]\nsignal_site = 0\n"
+            for i in range(12000)
+        )
         huge = tmp / "huge.toml"
         huge.write_text(head + body, encoding="utf-8")
         t = time.perf_counter()
@@ -83,26 +87,40 @@ def main() -> dict:
         return next(r["peak_mb"] for r in rows if r["images"] == n_img and r["sites"] == n_sites)
 
     s_lo, s_hi = min(r["sites"] for r in rows), max(r["sites"] for r in rows)
-    ratio_images = peak(8, s_hi) / peak(1, s_hi)            # linear growth would be 8
-    ratio_sites = peak(8, s_hi) / peak(8, s_lo)              # linear growth would be s_hi / s_lo
+    ratio_images = peak(8, s_hi) / peak(1, s_hi)  # linear growth would be 8
+    ratio_sites = peak(8, s_hi) / peak(8, s_lo)  # linear growth would be s_hi / s_lo
     full = [r for r in rows if r["sites"] == s_hi]
     per_image = float(np.polyfit([r["images"] for r in full], [r["peak_mb"] for r in full], 1)[0])
     image_mb = n_px * 8 / 1e6
-    out = {"rows": rows, "peak_ratio_8_vs_1_images": ratio_images, "peak_ratio_sites": ratio_sites,
-           "site_ratio": s_hi / s_lo, "peak_per_extra_image_mb": per_image,
-           "peak_one_image_mb": peak(1, s_hi), "image_float64_mb": image_mb,
-           "layout_12000_refused": refused, "layout_12000_refusal_s": refusal_s}
+    out = {
+        "rows": rows,
+        "peak_ratio_8_vs_1_images": ratio_images,
+        "peak_ratio_sites": ratio_sites,
+        "site_ratio": s_hi / s_lo,
+        "peak_per_extra_image_mb": per_image,
+        "peak_one_image_mb": peak(1, s_hi),
+        "image_float64_mb": image_mb,
+        "layout_12000_refused": refused,
+        "layout_12000_refusal_s": refusal_s,
+    }
     Path("bench/results").mkdir(parents=True, exist_ok=True)
     Path("bench/results/bench_memory.json").write_text(json.dumps(out, indent=2))
     one_x = peak(1, s_hi) / image_mb
     print(f"memory_peak_ratio_8_vs_1_images: {ratio_images:.2f} (floor: ≤ 8, linear)")
     print(f"memory_peak_ratio_{s_hi}_vs_{s_lo}_sites: {ratio_sites:.2f} (floor: ≤ {s_hi / s_lo:.2f}, linear)")
     print(f"memory_peak_per_extra_image: {per_image:.1f} MB (floor: none)")
-    print(f"memory_peak_one_image: {one_x:.1f} × the image's float64 pixels, {peak(1, s_hi):.0f} MB "
-          f"(floor: ≤ {FLOOR_PEAK_X:g})")
+    print(
+        f"memory_peak_one_image: {one_x:.1f} × the image's float64 pixels, {peak(1, s_hi):.0f} MB "
+        f"(floor: ≤ {FLOOR_PEAK_X:g})"
+    )
     print(f"layout_12000_targets_refused: {refusal_s:.2f} s (floor: ≤ {FLOOR_REFUSAL_S:g} s, refused={refused})")
-    ok = (ratio_images <= 8 and ratio_sites <= s_hi / s_lo and one_x <= FLOOR_PEAK_X and refused
-          and refusal_s <= FLOOR_REFUSAL_S)
+    ok = (
+        ratio_images <= 8
+        and ratio_sites <= s_hi / s_lo
+        and one_x <= FLOOR_PEAK_X
+        and refused
+        and refusal_s <= FLOOR_REFUSAL_S
+    )
     if not ok:
         raise SystemExit("bench_memory: floor not met")
     return out

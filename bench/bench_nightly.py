@@ -31,8 +31,14 @@ def _inbox(root: Path) -> Path:
     inbox = root / "inbox"
     t = time.perf_counter()
     for k in range(N_SESSIONS):
-        simulate_night(inbox, dt.date(2026, 3, 2) + dt.timedelta(days=k), [Panel("direct", 100.0)],
-                       n_images=PER_SESSION, seed=k, small=False)
+        simulate_night(
+            inbox,
+            dt.date(2026, 3, 2) + dt.timedelta(days=k),
+            [Panel("direct", 100.0)],
+            n_images=PER_SESSION,
+            seed=k,
+            small=False,
+        )
     print(f"simulated {N_SESSIONS * PER_SESSION} full-size images in {time.perf_counter() - t:.0f} s", flush=True)
     return inbox
 
@@ -45,8 +51,10 @@ def _config(root: Path):
     m = detector_model("direct")
     save_conversion(m.conversion_function(), root / "direct-conversion.toml")
     p = root / "nightly.toml"
-    p.write_text('format = "limen-nightly/1"\n[defaults]\nmin_images = 8\n'
-                 f'[[detectors]]\ndetector_id = "{m.detector_id}"\nconversion = "direct-conversion.toml"\n')
+    p.write_text(
+        'format = "limen-nightly/1"\n[defaults]\nmin_images = 8\n'
+        f'[[detectors]]\ndetector_id = "{m.detector_id}"\nconversion = "direct-conversion.toml"\n'
+    )
     return load_config(p)
 
 
@@ -60,13 +68,22 @@ def run(root: Path, inbox: Path, config, workers: int) -> dict:
     wall = time.perf_counter() - t
     assert len(r.sessions_scored) == N_SESSIONS and r.scored_images == N_SESSIONS * PER_SESSION, r.to_json()
     n = r.scored_images
-    out = {"workers": workers, "wall_s": wall, "images_per_s": n / wall, "timings_s": r.timings,
-           "scoring_s_per_image": r.timings["scoring_s"] / n, "db_s_per_image": r.timings["db_s"] / n,
-           "read_s_per_image": r.timings.get("read_s", 0.0) / n}
+    out = {
+        "workers": workers,
+        "wall_s": wall,
+        "images_per_s": n / wall,
+        "timings_s": r.timings,
+        "scoring_s_per_image": r.timings["scoring_s"] / n,
+        "db_s_per_image": r.timings["db_s"] / n,
+        "read_s_per_image": r.timings.get("read_s", 0.0) / n,
+    }
     out["db_fraction"] = out["db_s_per_image"] / out["scoring_s_per_image"]
-    print(f"workers={workers}: {wall:.1f} s wall, {out['images_per_s']:.3f} images/s; per image: scoring "
-          f"{out['scoring_s_per_image']:.2f} s, database {1000 * out['db_s_per_image']:.1f} ms "
-          f"({100 * out['db_fraction']:.2f} %), scan read {out['read_s_per_image']:.2f} s", flush=True)
+    print(
+        f"workers={workers}: {wall:.1f} s wall, {out['images_per_s']:.3f} images/s; per image: scoring "
+        f"{out['scoring_s_per_image']:.2f} s, database {1000 * out['db_s_per_image']:.1f} ms "
+        f"({100 * out['db_fraction']:.2f} %), scan read {out['read_s_per_image']:.2f} s",
+        flush=True,
+    )
     return out
 
 
@@ -83,13 +100,28 @@ def main() -> dict:
         load_after = os.getloadavg()
     ratio = two["images_per_s"] / one["images_per_s"]
     db_frac = max(one["db_fraction"], two["db_fraction"])
-    res = {"n_images": N_SESSIONS * PER_SESSION, "n_sessions": N_SESSIONS, "cpu_count": os.cpu_count(),
-           "load_average_before": load_before, "load_average_after": load_after, "one_worker": one,
-           "two_workers": two, "throughput_ratio": ratio, "floor_ratio": FLOOR_RATIO, "ratio_pass": ratio >= FLOOR_RATIO,
-           "db_fraction": db_frac, "floor_db_fraction": FLOOR_DB_FRACTION, "db_pass": db_frac < FLOOR_DB_FRACTION}
-    print(f"throughput ratio 2 vs 1 workers: {ratio:.2f} (floor {FLOOR_RATIO}) {'PASS' if res['ratio_pass'] else 'FAIL'}")
-    print(f"database overhead per image: {100 * db_frac:.2f} % of scoring time (floor {100 * FLOOR_DB_FRACTION:g} %) "
-          f"{'PASS' if res['db_pass'] else 'FAIL'}")
+    res = {
+        "n_images": N_SESSIONS * PER_SESSION,
+        "n_sessions": N_SESSIONS,
+        "cpu_count": os.cpu_count(),
+        "load_average_before": load_before,
+        "load_average_after": load_after,
+        "one_worker": one,
+        "two_workers": two,
+        "throughput_ratio": ratio,
+        "floor_ratio": FLOOR_RATIO,
+        "ratio_pass": ratio >= FLOOR_RATIO,
+        "db_fraction": db_frac,
+        "floor_db_fraction": FLOOR_DB_FRACTION,
+        "db_pass": db_frac < FLOOR_DB_FRACTION,
+    }
+    print(
+        f"throughput ratio 2 vs 1 workers: {ratio:.2f} (floor {FLOOR_RATIO}) {'PASS' if res['ratio_pass'] else 'FAIL'}"
+    )
+    print(
+        f"database overhead per image: {100 * db_frac:.2f} % of scoring time (floor {100 * FLOOR_DB_FRACTION:g} %) "
+        f"{'PASS' if res['db_pass'] else 'FAIL'}"
+    )
     print(f"load average before/after: {load_before} / {load_after}")
     (results_dir / "bench_nightly.json").write_text(json.dumps(res, indent=2) + "\n")
     return res

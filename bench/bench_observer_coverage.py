@@ -31,8 +31,14 @@ sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "tests"))
 
 from npw_truth import layout_truth, make_noise, mean_image  # noqa: E402
 from scorer.images import Image  # noqa: E402
-from scorer.observer import (ObserverConfig, SystemBlur, dprime_for_pc, dprime_thresholds,  # noqa: E402
-                             halfway_criterion, score_image)
+from scorer.observer import (
+    ObserverConfig,
+    SystemBlur,
+    dprime_for_pc,
+    dprime_thresholds,  # noqa: E402
+    halfway_criterion,
+    score_image,
+)
 from scorer.phantom import PhantomTransform, load_layout  # noqa: E402
 
 FLOOR = (0.93, 0.97)
@@ -42,10 +48,14 @@ MINI = Path(__file__).resolve().parents[1] / "tests" / "data" / "mini-plate.toml
 
 def _pose(layout, rotation_deg=3.7, shift=(0.3, 0.6)):
     shape = (int(layout.height_mm / PIX) + 20, int(layout.width_mm / PIX) + 20)
-    tf = PhantomTransform.from_params(rotation_deg=rotation_deg, flipped=False, magnification=1.0,
-                                      phantom_center_mm=layout.center_mm,
-                                      center_px=((shape[0] - 1) / 2 + shift[0], (shape[1] - 1) / 2 + shift[1]),
-                                      pixel_mm=PIX)
+    tf = PhantomTransform.from_params(
+        rotation_deg=rotation_deg,
+        flipped=False,
+        magnification=1.0,
+        phantom_center_mm=layout.center_mm,
+        center_px=((shape[0] - 1) / 2 + shift[0], (shape[1] - 1) / 2 + shift[1]),
+        pixel_mm=PIX,
+    )
     return shape, SimpleNamespace(transform=tf, markers_px={})
 
 
@@ -57,18 +67,34 @@ def coverage(corr_px: float, n_rep: int, seed: int = 0) -> pd.DataFrame:
     for d, g in layout_truth(lay, pl.transform, BACKGROUND, SIGMA, corr_px).groupby("diameter_mm"):
         m = int(g.m_alternatives.iloc[0])
         dt_ = dprime_for_pc(halfway_criterion(m), m)
-        truth[d] = {"local": dt_ * np.sqrt(np.mean(1 / g.local ** 2)), "kb": dt_ * np.sqrt(np.mean(1 / g.kb ** 2)),
-                    "phase_avg": dt_ / np.sqrt(np.mean(g.kb ** 2)), "kb_min": dt_ / g.kb.max(),
-                    "kb_max": dt_ / g.kb.min()}
+        truth[d] = {
+            "local": dt_ * np.sqrt(np.mean(1 / g.local**2)),
+            "kb": dt_ * np.sqrt(np.mean(1 / g.kb**2)),
+            "phase_avg": dt_ / np.sqrt(np.mean(g.kb**2)),
+            "kb_min": dt_ / g.kb.max(),
+            "kb_max": dt_ / g.kb.min(),
+        }
     cfg = ObserverConfig("npw", blur=SystemBlur(0.0))
     rows = []
     for r in tqdm(range(n_rep), desc=f"coverage, noise corr {corr_px:g} px", file=sys.stderr):
         rng = np.random.default_rng([seed, r, int(10 * corr_px)])
-        frames = [score_image(Image(mean + make_noise(rng, shape, SIGMA, corr_px), (PIX, PIX)), lay, pl, cfg,
-                              image_id=f"i{i}") for i in range(N_IMAGES)]
+        frames = [
+            score_image(
+                Image(mean + make_noise(rng, shape, SIGMA, corr_px), (PIX, PIX)), lay, pl, cfg, image_id=f"i{i}"
+            )
+            for i in range(N_IMAGES)
+        ]
         for p in dprime_thresholds(pd.concat(frames, ignore_index=True), n_boot=0).points:
-            rows.append({"repeat": r, "diameter_mm": p.diameter_mm, "estimate": p.threshold_contrast,
-                         "ci_low": p.ci_low, "ci_high": p.ci_high, **truth[p.diameter_mm]})
+            rows.append(
+                {
+                    "repeat": r,
+                    "diameter_mm": p.diameter_mm,
+                    "estimate": p.threshold_contrast,
+                    "ci_low": p.ci_low,
+                    "ci_high": p.ci_high,
+                    **truth[p.diameter_mm],
+                }
+            )
     return pd.DataFrame(rows)
 
 
@@ -83,18 +109,26 @@ def synthetic_df(m: int, n_rep: int = 1000, seed: int = 1) -> float:
         resp = sigma * rng.standard_normal((N_IMAGES, contrasts.size, m))
         resp[np.arange(N_IMAGES)[:, None], np.arange(contrasts.size)[None, :], truth_site] += contrasts
         ii, jj, ss = np.meshgrid(np.arange(N_IMAGES), np.arange(contrasts.size), np.arange(m), indexing="ij")
-        df = pd.DataFrame({"image": ii.ravel(), "target": jj.ravel(), "diameter_mm": 0.5,
-                           "contrast": contrasts[jj.ravel()], "m_alternatives": m, "site": ss.ravel(),
-                           "is_signal": (ss == truth_site[..., None]).ravel(), "response": resp.ravel(),
-                           "observer": "npw"})
+        df = pd.DataFrame(
+            {
+                "image": ii.ravel(),
+                "target": jj.ravel(),
+                "diameter_mm": 0.5,
+                "contrast": contrasts[jj.ravel()],
+                "m_alternatives": m,
+                "site": ss.ravel(),
+                "is_signal": (ss == truth_site[..., None]).ravel(),
+                "response": resp.ravel(),
+                "observer": "npw",
+            }
+        )
         p = dprime_thresholds(df, n_boot=0).points[0]
         hits += p.ci_low <= dt_ * sigma <= p.ci_high
     return hits / n_rep
 
 
 def main(n_rep: int = 300) -> dict:
-    out = {"date": dt.datetime.now().isoformat(timespec="seconds"), "repeats": n_rep, "images": N_IMAGES,
-           "noise": {}}
+    out = {"date": dt.datetime.now().isoformat(timespec="seconds"), "repeats": n_rep, "images": N_IMAGES, "noise": {}}
     lines = []
     for corr in (0.0, 1.0):
         res = coverage(corr, n_rep)
@@ -102,16 +136,22 @@ def main(n_rep: int = 300) -> dict:
         per = {}
         for d, g in res.groupby("diameter_mm"):
             cov = float(np.mean((g.ci_low <= g.local) & (g.local <= g.ci_high)))
-            per[d] = {"coverage": cov,
-                      "median_error_vs_local_pct": 100 * float(np.median(g.estimate / g.local) - 1),
-                      "median_error_vs_known_background_pct": 100 * float(np.median(g.estimate / g.kb) - 1),
-                      "median_error_vs_phase_average_pct": 100 * float(np.median(g.estimate / g.phase_avg) - 1),
-                      "site_range_kb_threshold": [float(g.kb_min.iloc[0]), float(g.kb_max.iloc[0])]}
-            lines.append(f"dprime_ci_coverage_{name}_{d:g}mm: {100 * cov:.1f} % (floor: {100 * FLOOR[0]:.0f}–"
-                         f"{100 * FLOOR[1]:.0f} %)")
-            lines.append(f"dprime_median_error_{name}_{d:g}mm: {per[d]['median_error_vs_local_pct']:+.2f} % "
-                         f"(vs known background {per[d]['median_error_vs_known_background_pct']:+.2f} %, "
-                         f"vs phase-averaged d′² {per[d]['median_error_vs_phase_average_pct']:+.2f} %)")
+            per[d] = {
+                "coverage": cov,
+                "median_error_vs_local_pct": 100 * float(np.median(g.estimate / g.local) - 1),
+                "median_error_vs_known_background_pct": 100 * float(np.median(g.estimate / g.kb) - 1),
+                "median_error_vs_phase_average_pct": 100 * float(np.median(g.estimate / g.phase_avg) - 1),
+                "site_range_kb_threshold": [float(g.kb_min.iloc[0]), float(g.kb_max.iloc[0])],
+            }
+            lines.append(
+                f"dprime_ci_coverage_{name}_{d:g}mm: {100 * cov:.1f} % (floor: {100 * FLOOR[0]:.0f}–"
+                f"{100 * FLOOR[1]:.0f} %)"
+            )
+            lines.append(
+                f"dprime_median_error_{name}_{d:g}mm: {per[d]['median_error_vs_local_pct']:+.2f} % "
+                f"(vs known background {per[d]['median_error_vs_known_background_pct']:+.2f} %, "
+                f"vs phase-averaged d′² {per[d]['median_error_vs_phase_average_pct']:+.2f} %)"
+            )
         out["noise"][name] = per
     for m in (3, 5):
         cov = synthetic_df(m)

@@ -24,8 +24,12 @@ from scorer.detector import Pose, detector_model, simulate
 
 TARGET_S = 0.5
 DOSE_UGY = 25.0
-POSES = [Pose(0.0, False, 1.0), Pose(37.0, True, 0.8, (10.0, -6.0)),
-         Pose(203.0, True, 1.17, (8.0, -5.0)), Pose(290.0, False, 1.1, (0.0, 3.0))]
+POSES = [
+    Pose(0.0, False, 1.0),
+    Pose(37.0, True, 0.8, (10.0, -6.0)),
+    Pose(203.0, True, 1.17, (8.0, -5.0)),
+    Pose(290.0, False, 1.1, (0.0, 3.0)),
+]
 REPEATS = 5
 
 
@@ -41,17 +45,29 @@ def main() -> dict:
                 t0 = time.perf_counter()
                 pl = register(img, layout)
                 times.append(time.perf_counter() - t0)
-            err = max(float(np.hypot(*(np.asarray(pl.markers_px[m]) - np.asarray(rc))))
-                      for m, rc in sim.truth["fiducials_px"].items())
+            err = max(
+                float(np.hypot(*(np.asarray(pl.markers_px[m]) - np.asarray(rc))))
+                for m, rc in sim.truth["fiducials_px"].items()
+            )
             d_rot = abs((pl.rotation_deg - pose.rotation_deg + 180.0) % 360.0 - 180.0)
-            rows.append({"model": model_name, "rotation_deg": pose.rotation_deg, "flipped": pose.flipped,
-                         "magnification": pose.magnification, "median_s": round(float(np.median(times)), 4),
-                         "max_marker_error_px": round(err, 4), "rotation_error_deg": round(d_rot, 4),
-                         "magnification_rel_error": round(abs(pl.magnification / pose.magnification - 1), 6),
-                         "residual_px": round(pl.residual_px, 4)})
+            rows.append(
+                {
+                    "model": model_name,
+                    "rotation_deg": pose.rotation_deg,
+                    "flipped": pose.flipped,
+                    "magnification": pose.magnification,
+                    "median_s": round(float(np.median(times)), 4),
+                    "max_marker_error_px": round(err, 4),
+                    "rotation_error_deg": round(d_rot, 4),
+                    "magnification_rel_error": round(abs(pl.magnification / pose.magnification - 1), 6),
+                    "residual_px": round(pl.residual_px, 4),
+                }
+            )
             r = rows[-1]
-            print(f"{model_name:<9} rot {pose.rotation_deg:6.1f} flip {pose.flipped!s:<5} mag {pose.magnification:4.2f}"
-                  f"  {r['median_s'] * 1000:6.1f} ms  max error {err:.3f} px  residual {pl.residual_px:.3f} px")
+            print(
+                f"{model_name:<9} rot {pose.rotation_deg:6.1f} flip {pose.flipped!s:<5} mag {pose.magnification:4.2f}"
+                f"  {r['median_s'] * 1000:6.1f} ms  max error {err:.3f} px  residual {pl.residual_px:.3f} px"
+            )
     worst_s = max(r["median_s"] for r in rows)
     out = {
         "benchmark": "bench_register",
@@ -65,8 +81,10 @@ def main() -> dict:
         "machine": platform.machine(),
         "python": platform.python_version(),
     }
-    print(f"worst median time {worst_s * 1000:.1f} ms (target < {TARGET_S * 1000:.0f} ms); "
-          f"max marker error {out['max_marker_error_px']:.3f} px")
+    print(
+        f"worst median time {worst_s * 1000:.1f} ms (target < {TARGET_S * 1000:.0f} ms); "
+        f"max marker error {out['max_marker_error_px']:.3f} px"
+    )
     res_dir = Path(__file__).resolve().parent / "results"
     res_dir.mkdir(exist_ok=True)
     (res_dir / "bench_register.json").write_text(json.dumps(out, indent=2) + "\n", encoding="utf-8")

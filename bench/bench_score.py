@@ -55,12 +55,21 @@ def speed(tmp: Path) -> dict:
         t = time.perf_counter()
         score_images(paths[:n], lay, methods=["dprime", "count"], conversion=conv, n_boot=200)
         per_image[n] = (time.perf_counter() - t) / n
-    print(f"full-size {img.shape}: load {np.median(load_t):.3f} s, score {np.median(score_t):.3f} s "
-          f"-> ratio {ratio:.2f} (floor {FLOOR_RATIO}) {'PASS' if ratio <= FLOOR_RATIO else 'FAIL'}")
-    print("time per image with n images (whole score_images call incl. load and 200 bootstraps): "
-          + ", ".join(f"n={n}: {v:.2f} s" for n, v in per_image.items()))
-    return {"load_s": load_t, "score_s": score_t, "ratio": ratio, "pass": ratio <= FLOOR_RATIO,
-            "per_image_s": per_image}
+    print(
+        f"full-size {img.shape}: load {np.median(load_t):.3f} s, score {np.median(score_t):.3f} s "
+        f"-> ratio {ratio:.2f} (floor {FLOOR_RATIO}) {'PASS' if ratio <= FLOOR_RATIO else 'FAIL'}"
+    )
+    print(
+        "time per image with n images (whole score_images call incl. load and 200 bootstraps): "
+        + ", ".join(f"n={n}: {v:.2f} s" for n, v in per_image.items())
+    )
+    return {
+        "load_s": load_t,
+        "score_s": score_t,
+        "ratio": ratio,
+        "pass": ratio <= FLOOR_RATIO,
+        "per_image_s": per_image,
+    }
 
 
 def ci_widths() -> dict:
@@ -75,23 +84,36 @@ def ci_widths() -> dict:
 
             img = Image(sim.kerma_ugy(), sim.spacing_mm)
             pl = register(img, lay)
-            frames.append(score_image(img, lay, pl, ObserverConfig("npw", blur=estimate_blur(img, lay, pl)),
-                                      image_id=f"i{i}"))
+            frames.append(
+                score_image(img, lay, pl, ObserverConfig("npw", blur=estimate_blur(img, lay, pl)), image_id=f"i{i}")
+            )
         df = pd.concat(frames, ignore_index=True)
         b = count_thresholds(decide(df), n_boot=1000, seed=1)
         # d′ CIs from each of the four disjoint 4-image subsets of the same 16 images
-        subsets = [dprime_thresholds(df[df["image"].isin([f"i{i}" for i in range(s0, s0 + 4)])], n_boot=0)
-                   for s0 in (0, 4, 8, 12)]
+        subsets = [
+            dprime_thresholds(df[df["image"].isin([f"i{i}" for i in range(s0, s0 + 4)])], n_boot=0)
+            for s0 in (0, 4, 8, 12)
+        ]
         for j, pb in enumerate(b.points):
             wb = np.log(pb.ci_high / pb.ci_low)
             wa = [np.log(c.points[j].ci_high / c.points[j].ci_low) for c in subsets]
-            rows.append({"detector": name, "diameter_mm": pb.diameter_mm, "dprime_4_width_log": wa,
-                         "count_16_width_log": wb, "ratio": float(np.mean(wa) / wb),
-                         "ratio_each": [w / wb for w in wa], "pass": bool(np.mean(wa) <= wb)})
+            rows.append(
+                {
+                    "detector": name,
+                    "diameter_mm": pb.diameter_mm,
+                    "dprime_4_width_log": wa,
+                    "count_16_width_log": wb,
+                    "ratio": float(np.mean(wa) / wb),
+                    "ratio_each": [w / wb for w in wa],
+                    "pass": bool(np.mean(wa) <= wb),
+                }
+            )
     for r in rows:
-        print(f"{r['detector']:9s} {r['diameter_mm']:5.2f} mm: CI width d′(4 images) / count(16 images) = "
-              f"{r['ratio']:.2f} (four subsets: {', '.join(f'{x:.2f}' for x in r['ratio_each'])}) "
-              f"{'PASS' if r['pass'] else 'FAIL'}")
+        print(
+            f"{r['detector']:9s} {r['diameter_mm']:5.2f} mm: CI width d′(4 images) / count(16 images) = "
+            f"{r['ratio']:.2f} (four subsets: {', '.join(f'{x:.2f}' for x in r['ratio_each'])}) "
+            f"{'PASS' if r['pass'] else 'FAIL'}"
+        )
     return {"rows": rows, "n_pass": sum(r["pass"] for r in rows), "n": len(rows)}
 
 

@@ -24,7 +24,9 @@ from scorer.detector import detector_model, simulate, write_simulated
 name, out = sys.argv[1], Path(sys.argv[2])
 m = detector_model(name)
 t = time.perf_counter(); sim = simulate(m, "phantom", 100.0, seed=1); t_sim = time.perf_counter() - t
-t = time.perf_counter(); write_simulated(sim, out, name, datetime.datetime(2026, 11, 30, 8, 0)); t_write = time.perf_counter() - t
+t = time.perf_counter()
+write_simulated(sim, out, name, datetime.datetime(2026, 11, 30, 8, 0))
+t_write = time.perf_counter() - t
 print(json.dumps({"detector": name, "shape": list(sim.pixels.shape), "simulate_s": t_sim, "write_dicom_s": t_write,
                   "peak_rss_mb": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0}))
 """
@@ -40,9 +42,11 @@ def main() -> dict:
             row["process_s"] = time.perf_counter() - t
             row["pass"] = row["simulate_s"] < FLOOR_S and row["peak_rss_mb"] < FLOOR_MB
             rows.append(row)
-            print(f"{name:9s} {row['shape']}: simulate {row['simulate_s']:.2f} s (floor {FLOOR_S} s), write DICOM "
-                  f"{row['write_dicom_s']:.2f} s, peak memory {row['peak_rss_mb']:.0f} MB (floor {FLOOR_MB:.0f} MB)"
-                  f" -> {'PASS' if row['pass'] else 'FAIL'}")
+            print(
+                f"{name:9s} {row['shape']}: simulate {row['simulate_s']:.2f} s (floor {FLOOR_S} s), write DICOM "
+                f"{row['write_dicom_s']:.2f} s, peak memory {row['peak_rss_mb']:.0f} MB (floor {FLOOR_MB:.0f} MB)"
+                f" -> {'PASS' if row['pass'] else 'FAIL'}"
+            )
     out = {"benchmark": "bench_simulate", "rows": rows}
     Path("bench/results").mkdir(parents=True, exist_ok=True)
     Path("bench/results/bench_simulate.json").write_text(json.dumps(out, indent=2))

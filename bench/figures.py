@@ -35,18 +35,39 @@ FIGURES = [
     Figure("register_full_size_worst_median_s", "bench_register.json", lambda r: r["worst_median_s"], "s", "< target"),
     Figure("score_to_load_ratio", "bench_score.json", lambda r: r["ratio"], "×", "≤ 3"),
     Figure("detector_mtf_nnps_dqe_s", "bench_detector.json", lambda r: r["mtf_nnps_dqe_s"], "s", "< 10"),
-    Figure("analyse_20_readers_s", "analyse.json", lambda r: max(r["analyse_json_s"], r["analyse_with_report_s"]),
-           "s", "< 60"),
-    Figure("nightly_throughput_ratio_2_vs_1_workers", "bench_nightly.json", lambda r: r["throughput_ratio"], "×",
-           "≥ 1.7"),
+    Figure(
+        "analyse_20_readers_s",
+        "analyse.json",
+        lambda r: max(r["analyse_json_s"], r["analyse_with_report_s"]),
+        "s",
+        "< 60",
+    ),
+    Figure(
+        "nightly_throughput_ratio_2_vs_1_workers", "bench_nightly.json", lambda r: r["throughput_ratio"], "×", "≥ 1.7"
+    ),
     Figure("nightly_db_overhead", "bench_nightly.json", lambda r: 100 * r["db_fraction"], "% of scoring", "< 5"),
     Figure("web_region_get_p95", "web_load.json", lambda r: r["region_get_p95_ms"], "ms", "< 100"),
-    Figure("web_lost_plus_duplicated_responses", "web_load.json",
-           lambda r: r["lost_responses"] + r["duplicated_responses"], "", "= 0"),
-    Figure("dprime_ci_coverage_synthetic_M3", "bench_observer_coverage.json",
-           lambda r: 100 * r["synthetic_coverage_m3"], "%", "93–97"),
-    Figure("dprime_ci_coverage_synthetic_M5", "bench_observer_coverage.json",
-           lambda r: 100 * r["synthetic_coverage_m5"], "%", "93–97"),
+    Figure(
+        "web_lost_plus_duplicated_responses",
+        "web_load.json",
+        lambda r: r["lost_responses"] + r["duplicated_responses"],
+        "",
+        "= 0",
+    ),
+    Figure(
+        "dprime_ci_coverage_synthetic_M3",
+        "bench_observer_coverage.json",
+        lambda r: 100 * r["synthetic_coverage_m3"],
+        "%",
+        "93–97",
+    ),
+    Figure(
+        "dprime_ci_coverage_synthetic_M5",
+        "bench_observer_coverage.json",
+        lambda r: 100 * r["synthetic_coverage_m5"],
+        "%",
+        "93–97",
+    ),
 ]
 
 

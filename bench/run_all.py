@@ -6,8 +6,19 @@ import importlib
 import sys
 import time
 
-BENCHES = ["bench_cli", "bench_simulate", "bench_register", "bench_score", "bench_detector", "bench_analyse",
-           "bench_nightly", "bench_observer_coverage", "bench_dose_series", "bench_memory", "bench_web_load"]
+BENCHES = [
+    "bench_cli",
+    "bench_simulate",
+    "bench_register",
+    "bench_score",
+    "bench_detector",
+    "bench_analyse",
+    "bench_nightly",
+    "bench_observer_coverage",
+    "bench_dose_series",
+    "bench_memory",
+    "bench_web_load",
+]
 
 
 def main() -> int:
@@ -32,8 +43,10 @@ def main() -> int:
     import platform
 
     RESULTS.mkdir(exist_ok=True)
-    (RESULTS / "table.md").write_text(markdown(f"Measured {datetime.date.today()} on {platform.machine()}, "
-                                               f"{platform.python_version()}"), encoding="utf-8")
+    (RESULTS / "table.md").write_text(
+        markdown(f"Measured {datetime.date.today()} on {platform.machine()}, {platform.python_version()}"),
+        encoding="utf-8",
+    )
     if failed:
         print("failed: " + ", ".join(failed))
     return 1 if failed else 0

@@ -53,14 +53,27 @@ PREDICTED_NPW_THRESHOLD = {
 }
 
 TRIANGLE_SIDE_MM = 3.0
-TRIANGLE_PITCH_MM = 6.0           # cell centres along a band
+TRIANGLE_PITCH_MM = 6.0  # cell centres along a band
 PENTAGON_SIDE_MM = {0.5: 4.0, 0.7: 4.0, 1.0: 4.0, 2.0: 8.0}
 PENTAGON_PITCH_MM = {0.5: 11.0, 0.7: 11.0, 1.0: 11.0, 2.0: 22.0}
 # band centre (y, mm) per diameter; the 2.0 mm band has two rows
-BAND_Y_MM = {0.07: 16.0, 0.1: 22.5, 0.15: 29.0, 0.25: 35.5, 0.35: 42.0,
-             0.5: 51.5, 0.7: 62.0, 1.0: 72.5, 2.0: (90.5, 110.5)}
-FIDUCIALS = [("N", WIDTH_MM / 2, 6.0), ("E", WIDTH_MM - 6.0, HEIGHT_MM / 2),
-             ("S", WIDTH_MM / 2, HEIGHT_MM - 6.0), ("W", 6.0, HEIGHT_MM / 2)]
+BAND_Y_MM = {
+    0.07: 16.0,
+    0.1: 22.5,
+    0.15: 29.0,
+    0.25: 35.5,
+    0.35: 42.0,
+    0.5: 51.5,
+    0.7: 62.0,
+    1.0: 72.5,
+    2.0: (90.5, 110.5),
+}
+FIDUCIALS = [
+    ("N", WIDTH_MM / 2, 6.0),
+    ("E", WIDTH_MM - 6.0, HEIGHT_MM / 2),
+    ("S", WIDTH_MM / 2, HEIGHT_MM - 6.0),
+    ("W", 6.0, HEIGHT_MM / 2),
+]
 FIDUCIAL_DIAMETER_MM = 3.5
 KEY = ("key", 15.0, 11.0, 6.0)
 MARKER_CONTRAST = 0.6
@@ -115,11 +128,25 @@ def build() -> str:
         "",
     ]
     for fid, x, y in FIDUCIALS:
-        lines += ["[[fiducials]]", f'id = "{fid}"', f"x_mm = {x}", f"y_mm = {y}",
-                  f"diameter_mm = {FIDUCIAL_DIAMETER_MM}", f"contrast = {MARKER_CONTRAST}", ""]
+        lines += [
+            "[[fiducials]]",
+            f'id = "{fid}"',
+            f"x_mm = {x}",
+            f"y_mm = {y}",
+            f"diameter_mm = {FIDUCIAL_DIAMETER_MM}",
+            f"contrast = {MARKER_CONTRAST}",
+            "",
+        ]
     kid, kx, ky, kd = KEY
-    lines += ["[orientation_key]", f'id = "{kid}"', f"x_mm = {kx}", f"y_mm = {ky}",
-              f"diameter_mm = {kd}", f"contrast = {MARKER_CONTRAST}", ""]
+    lines += [
+        "[orientation_key]",
+        f'id = "{kid}"',
+        f"x_mm = {kx}",
+        f"y_mm = {ky}",
+        f"diameter_mm = {kd}",
+        f"contrast = {MARKER_CONTRAST}",
+        "",
+    ]
     for d in sorted(PREDICTED_NPW_THRESHOLD):
         for j, (c, (cx, cy, up)) in enumerate(zip(contrast_ladder(d), cell_centres(d))):
             if d <= 0.35:
@@ -127,9 +154,15 @@ def build() -> str:
             else:
                 sites = polygon_sites(cx, cy, 5, PENTAGON_SIDE_MM[d], True)
             sites_txt = ", ".join(f"[{x:g}, {y:g}]" for x, y in sites)
-            lines += ["[[targets]]", f'id = "d{int(round(d * 1000)):04d}-c{j + 1:02d}"',
-                      f"diameter_mm = {d}", f"contrast = {c}", f"sites_mm = [{sites_txt}]",
-                      f"signal_site = {int(rng.integers(len(sites)))}", ""]
+            lines += [
+                "[[targets]]",
+                f'id = "d{int(round(d * 1000)):04d}-c{j + 1:02d}"',
+                f"diameter_mm = {d}",
+                f"contrast = {c}",
+                f"sites_mm = [{sites_txt}]",
+                f"signal_site = {int(rng.integers(len(sites)))}",
+                "",
+            ]
     return "\n".join(lines)
 
 

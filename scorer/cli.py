@@ -20,14 +20,26 @@ from scorer.invocation import set_invocation
 # Modules are imported only when their command runs (or its own --help is asked for), so `limen --help`
 # and `limen --version` load neither numpy nor matplotlib. tests/test_cli.py checks the help lines match.
 COMMANDS: dict[str, tuple[str, str, str]] = {
-    "simulate": ("simulate", "simulate", "Simulate raw direct/indirect panel images (phantom, flat, edge) for demos and tests."),
+    "simulate": (
+        "simulate",
+        "simulate",
+        "Simulate raw direct/indirect panel images (phantom, flat, edge) for demos and tests.",
+    ),
     "score": ("score", "score", "Score contrast-detail phantom images: threshold contrast per diameter, verdicts."),
-    "detector": ("detector", "detector", "Measure a detector: conversion function, MTF, NNPS, DQE, predicted thresholds."),
+    "detector": (
+        "detector",
+        "detector",
+        "Measure a detector: conversion function, MTF, NNPS, DQE, predicted thresholds.",
+    ),
     "compare-detectors": ("compare_detectors", "compare_detectors", "Put two measured detectors side by side."),
     "analyse": ("analyse", "analyse", "Analyse a reader study: per-reader and pooled curves, human/model factor."),
     "nightly": ("nightly", "nightly", "Score an inbox of phantom images once per session; store, trend, alert."),
     "trend": ("trend", "trend", "Write the trend report (HTML, CSV) of a nightly database."),
-    "dose-series": ("dose_series", "dose_series", "Score phantom images at several air kermas: threshold against kerma, β, kerma for a limit."),
+    "dose-series": (
+        "dose_series",
+        "dose_series",
+        "Score phantom images at several air kermas: threshold against kerma, β, kerma for a limit.",
+    ),
     "baseline": ("baseline", "baseline", "Show, set or clear the baselines the nightly alerts compare with."),
     "serve": ("serve", "serve", "Run the reader-study web app under waitress (add --demo for a ready study)."),
     "users": ("users", "users", "Add or list web-app accounts (coordinators and readers)."),

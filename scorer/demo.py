@@ -55,53 +55,180 @@ def run(out: Path) -> Path:
     links: list[tuple[str, str]] = []
     for panel, seed in (("direct", 417), ("indirect", 2291)):
         d = out / panel
-        _limen(["simulate", "--detector", panel, "--kind", "phantom", "--small", "--count", str(N_PHANTOM),
-                "--dose-ugy", str(DOSE_UGY), "--rotate", "1.5", "--seed", str(seed), "--out", str(d / "images"),
-                "--overwrite"])
-        _limen(["simulate", "--detector", panel, "--kind", "flat", "--small", "--count", "4",
-                "--dose-ugy", str(DOSE_UGY), "--seed", str(seed + 1), "--out", str(d / "flats"), "--overwrite"])
-        _limen(["simulate", "--detector", panel, "--kind", "edge", "--small", "--edge-angle-deg", "2.5",
-                "--dose-ugy", str(DOSE_UGY), "--seed", str(seed + 2), "--out", str(d / "edges"), "--overwrite"])
-        _limen(["simulate", "--detector", panel, "--kind", "edge", "--small", "--edge-angle-deg", "92.5",
-                "--dose-ugy", str(DOSE_UGY), "--seed", str(seed + 3), "--out", str(d / "edges"), "--overwrite"])
+        _limen(
+            [
+                "simulate",
+                "--detector",
+                panel,
+                "--kind",
+                "phantom",
+                "--small",
+                "--count",
+                str(N_PHANTOM),
+                "--dose-ugy",
+                str(DOSE_UGY),
+                "--rotate",
+                "1.5",
+                "--seed",
+                str(seed),
+                "--out",
+                str(d / "images"),
+                "--overwrite",
+            ]
+        )
+        _limen(
+            [
+                "simulate",
+                "--detector",
+                panel,
+                "--kind",
+                "flat",
+                "--small",
+                "--count",
+                "4",
+                "--dose-ugy",
+                str(DOSE_UGY),
+                "--seed",
+                str(seed + 1),
+                "--out",
+                str(d / "flats"),
+                "--overwrite",
+            ]
+        )
+        _limen(
+            [
+                "simulate",
+                "--detector",
+                panel,
+                "--kind",
+                "edge",
+                "--small",
+                "--edge-angle-deg",
+                "2.5",
+                "--dose-ugy",
+                str(DOSE_UGY),
+                "--seed",
+                str(seed + 2),
+                "--out",
+                str(d / "edges"),
+                "--overwrite",
+            ]
+        )
+        _limen(
+            [
+                "simulate",
+                "--detector",
+                panel,
+                "--kind",
+                "edge",
+                "--small",
+                "--edge-angle-deg",
+                "92.5",
+                "--dose-ugy",
+                str(DOSE_UGY),
+                "--seed",
+                str(seed + 3),
+                "--out",
+                str(d / "edges"),
+                "--overwrite",
+            ]
+        )
         noise_csv = _simulate_series(d, panel, seed)
         conv = str(d / "images" / f"{panel}-conversion.toml")
         images = sorted(str(p) for p in (d / "images").glob("*.dcm"))
         # measure the panel first, then score the plate with templates shaped by the measured MTF
-        _limen(["detector", "--flat", *sorted(str(p) for p in (d / "flats").glob("*.dcm")),
-                "--edge", *sorted(str(p) for p in (d / "edges").glob("*.dcm")),
-                "--kerma-ugy", str(DOSE_UGY), "--q", "5000", "--conversion", conv, "--noise-series", noise_csv,
-                "--replace", "--out", str(d / "detector")])
+        _limen(
+            [
+                "detector",
+                "--flat",
+                *sorted(str(p) for p in (d / "flats").glob("*.dcm")),
+                "--edge",
+                *sorted(str(p) for p in (d / "edges").glob("*.dcm")),
+                "--kerma-ugy",
+                str(DOSE_UGY),
+                "--q",
+                "5000",
+                "--conversion",
+                conv,
+                "--noise-series",
+                noise_csv,
+                "--replace",
+                "--out",
+                str(d / "detector"),
+            ]
+        )
         for observer, folder in (("npw", "score"), ("npwe", "score-npwe")):
-            _limen(["score", *images, "--observer", observer, "--conversion", conv,
-                    "--mtf", str(d / "detector" / "detector.json"), "--replace", "--out", str(d / folder)])
-        links += [(f"{panel} panel: contrast-detail report, NPW observer", f"{panel}/score/report.html"),
-                  (f"{panel} panel: contrast-detail report, NPWE observer", f"{panel}/score-npwe/report.html"),
-                  (f"{panel} panel: MTF, NNPS, DQE", f"{panel}/detector/detector.html")]
+            _limen(
+                [
+                    "score",
+                    *images,
+                    "--observer",
+                    observer,
+                    "--conversion",
+                    conv,
+                    "--mtf",
+                    str(d / "detector" / "detector.json"),
+                    "--replace",
+                    "--out",
+                    str(d / folder),
+                ]
+            )
+        links += [
+            (f"{panel} panel: contrast-detail report, NPW observer", f"{panel}/score/report.html"),
+            (f"{panel} panel: contrast-detail report, NPWE observer", f"{panel}/score-npwe/report.html"),
+            (f"{panel} panel: MTF, NNPS, DQE", f"{panel}/detector/detector.html"),
+        ]
     links += _reader_study(out)
     links += _dose_series(out)
-    _limen(["compare-detectors", str(out / "direct" / "detector" / "detector.json"),
-            str(out / "indirect" / "detector" / "detector.json"), "--label-a", "direct (a-Se)",
-            "--label-b", "indirect (CsI)", "--scored-a", str(out / "direct" / "score" / "results.json"),
-            "--scored-b", str(out / "indirect" / "score" / "results.json"),
-            "--dose-a", str(out / "direct" / "dose-series" / "dose_series.json"),
-            "--dose-b", str(out / "indirect" / "dose-series" / "dose_series.json"), "--replace",
-            "--out", str(out / "comparison")])
-    links.insert(0, ("direct vs indirect, side by side: equal-quality kerma, noise components, MTF/NNPS/DQE",
-                     "comparison/comparison.html"))
+    _limen(
+        [
+            "compare-detectors",
+            str(out / "direct" / "detector" / "detector.json"),
+            str(out / "indirect" / "detector" / "detector.json"),
+            "--label-a",
+            "direct (a-Se)",
+            "--label-b",
+            "indirect (CsI)",
+            "--scored-a",
+            str(out / "direct" / "score" / "results.json"),
+            "--scored-b",
+            str(out / "indirect" / "score" / "results.json"),
+            "--dose-a",
+            str(out / "direct" / "dose-series" / "dose_series.json"),
+            "--dose-b",
+            str(out / "indirect" / "dose-series" / "dose_series.json"),
+            "--replace",
+            "--out",
+            str(out / "comparison"),
+        ]
+    )
+    links.insert(
+        0,
+        (
+            "direct vs indirect, side by side: equal-quality kerma, noise components, MTF/NNPS/DQE",
+            "comparison/comparison.html",
+        ),
+    )
     links += _nightly(out)  # nightly scoring (issue 13): simulated nights, one panel drifts and is caught
     body = "<ul>" + "".join(f"<li><a href='{html.escape(h)}'>{html.escape(t)}</a></li>" for t, h in links) + "</ul>"
-    scenario = ("<p class='fail'><b>Simulated data, invented scenario.</b> Harbourside Women's Health Centre "
-                "(invented) commissions a direct-conversion panel (HSX-SE-0417, room MAM2) and an indirect-conversion "
-                "panel (HSX-CS-2291, room MAM3); every image is simulated by Limen's physics model (at 100 µGy; the dose series also at 25, 50 and 180 µGy) and the "
-                "six readers are a documented observer model, not people.</p>")
+    scenario = (
+        "<p class='fail'><b>Simulated data, invented scenario.</b> Harbourside Women's Health Centre "
+        "(invented) commissions a direct-conversion panel (HSX-SE-0417, room MAM2) and an indirect-conversion "
+        "panel (HSX-CS-2291, room MAM3); every image is simulated by Limen's physics model (at 100 µGy; the dose "
+        "series also at 25, 50 and 180 µGy) and the "
+        "six readers are a documented observer model, not people.</p>"
+    )
     index = out / "index.html"
     from scorer.invocation import set_invocation
 
-    set_invocation(["--out", str(out)], prog="python -m scorer.demo")   # the index is the demo's, not the last step's
-    index.write_text(html_page("Limen demo — two mammography panels compared",
-                               [("Scenario", scenario), ("Verdicts", _verdict_summary(out)), ("Reports", body)]),
-                     encoding="utf-8")
+    set_invocation(["--out", str(out)], prog="python -m scorer.demo")  # the index is the demo's, not the last step's
+    index.write_text(
+        html_page(
+            "Limen demo — two mammography panels compared",
+            [("Scenario", scenario), ("Verdicts", _verdict_summary(out)), ("Reports", body)],
+        ),
+        encoding="utf-8",
+    )
     print(f"\nDemo finished in {time.perf_counter() - t0:.0f} s. Open {index.resolve()}")
     print(CAUTION)
     return index
@@ -111,12 +238,46 @@ def _simulate_series(d: Path, panel: str, seed: int) -> str:
     """Phantom images and flat fields at the series' other kermas; returns the flats' CSV path,kerma_ugy."""
     rows = ["path,kerma_ugy"] + [f"{p.resolve()},{DOSE_UGY:g}" for p in sorted((d / "flats").glob("*.dcm"))]
     for i, k in enumerate(SERIES_UGY):
-        _limen(["simulate", "--detector", panel, "--kind", "phantom", "--small", "--count", str(N_SERIES),
-                "--dose-ugy", str(k), "--rotate", "1.5", "--seed", str(seed + 10 + i), "--out",
-                str(d / "dose" / f"{k:g}uGy"), "--overwrite"])
-        _limen(["simulate", "--detector", panel, "--kind", "flat", "--small", "--count", "2",
-                "--dose-ugy", str(k), "--seed", str(seed + 20 + i), "--out", str(d / "dose-flats" / f"{k:g}uGy"),
-                "--overwrite"])
+        _limen(
+            [
+                "simulate",
+                "--detector",
+                panel,
+                "--kind",
+                "phantom",
+                "--small",
+                "--count",
+                str(N_SERIES),
+                "--dose-ugy",
+                str(k),
+                "--rotate",
+                "1.5",
+                "--seed",
+                str(seed + 10 + i),
+                "--out",
+                str(d / "dose" / f"{k:g}uGy"),
+                "--overwrite",
+            ]
+        )
+        _limen(
+            [
+                "simulate",
+                "--detector",
+                panel,
+                "--kind",
+                "flat",
+                "--small",
+                "--count",
+                "2",
+                "--dose-ugy",
+                str(k),
+                "--seed",
+                str(seed + 20 + i),
+                "--out",
+                str(d / "dose-flats" / f"{k:g}uGy"),
+                "--overwrite",
+            ]
+        )
         rows += [f"{p.resolve()},{k:g}" for p in sorted((d / "dose-flats" / f"{k:g}uGy").glob("*.dcm"))]
     path = d / "dose-flats" / "flats.csv"
     path.write_text("\n".join(rows) + "\n", encoding="utf-8")
@@ -133,12 +294,30 @@ def _dose_series(out: Path) -> list[tuple[str, str]]:
         d = out / panel
         images = sorted(str(p) for p in (d / "images").glob("*.dcm"))
         images += sorted(str(p) for k in SERIES_UGY for p in (d / "dose" / f"{k:g}uGy").glob("*.dcm"))
-        _limen(["dose-series", *images, "--observer", "npwe", "--conversion",
-                str(d / "images" / f"{panel}-conversion.toml"), "--mtf", str(d / "detector" / "detector.json"),
-                "--limits", str(EXAMPLE_LIMITS), "--human-factor-from",
-                str(out / "reader-study" / "analysis" / "analysis.json"), "--out", str(d / "dose-series")])
-        links.append((f"{panel} panel: threshold against air kerma (25–180 µGy), β, kerma for the limits",
-                      f"{panel}/dose-series/dose_series.html"))
+        _limen(
+            [
+                "dose-series",
+                *images,
+                "--observer",
+                "npwe",
+                "--conversion",
+                str(d / "images" / f"{panel}-conversion.toml"),
+                "--mtf",
+                str(d / "detector" / "detector.json"),
+                "--limits",
+                str(EXAMPLE_LIMITS),
+                "--human-factor-from",
+                str(out / "reader-study" / "analysis" / "analysis.json"),
+                "--out",
+                str(d / "dose-series"),
+            ]
+        )
+        links.append(
+            (
+                f"{panel} panel: threshold against air kerma (25–180 µGy), β, kerma for the limits",
+                f"{panel}/dose-series/dose_series.html",
+            )
+        )
     return links
 
 
@@ -154,26 +333,40 @@ def _verdict_summary(out: Path) -> str:
         if not path.is_file():
             continue
         r = json.loads(path.read_text(encoding="utf-8"))
-        overall.append(f"<li>{panel} panel: <span class='{html.escape(r['overall_verdict'])}'>"
-                       f"{html.escape(r['overall_verdict'].upper())}</span> against {html.escape(r['limits']['name'])}"
-                       f" (human/model factor {r['human_factor']:.3g})</li>")
+        overall.append(
+            f"<li>{panel} panel: <span class='{html.escape(r['overall_verdict'])}'>"
+            f"{html.escape(r['overall_verdict'].upper())}</span> against {html.escape(r['limits']['name'])}"
+            f" (human/model factor {r['human_factor']:.3g})</li>"
+        )
         for v in r["verdicts"]:
             if v["verdict"] == "no limit":
                 continue
-            ci = (f"{100 * v['ci_low']:.3g}–{100 * v['ci_high']:.3g}" if v.get("ci_low") is not None
-                  and v.get("ci_high") is not None else "—")
-            rows.append({"panel": panel, "diameter (mm)": v["diameter_mm"],
-                         "human-equivalent threshold (%)": f"{100 * v['threshold_contrast']:.3g}",
-                         "95 % CI (%)": ci,
-                         "acceptable limit (%)": f"{100 * v['acceptable']:.3g}"
-                         + (" (interpolated)" if v.get("limit_interpolated") else ""),
-                         "verdict": v["verdict"]})
+            ci = (
+                f"{100 * v['ci_low']:.3g}–{100 * v['ci_high']:.3g}"
+                if v.get("ci_low") is not None and v.get("ci_high") is not None
+                else "—"
+            )
+            rows.append(
+                {
+                    "panel": panel,
+                    "diameter (mm)": v["diameter_mm"],
+                    "human-equivalent threshold (%)": f"{100 * v['threshold_contrast']:.3g}",
+                    "95 % CI (%)": ci,
+                    "acceptable limit (%)": f"{100 * v['acceptable']:.3g}"
+                    + (" (interpolated)" if v.get("limit_interpolated") else ""),
+                    "verdict": v["verdict"],
+                }
+            )
     if not rows:
         return "<p>No verdicts were computed.</p>"
-    return ("<ul>" + "".join(overall) + "</ul>"
-            + table_html(rows, left=["panel", "verdict", "95 % CI (%)", "acceptable limit (%)"])
-            + "<p class='meta'>Verdicts at interpolated limits inform; the overall verdict rests on the diameters the "
-              "limits file lists.</p>")
+    return (
+        "<ul>"
+        + "".join(overall)
+        + "</ul>"
+        + table_html(rows, left=["panel", "verdict", "95 % CI (%)", "acceptable limit (%)"])
+        + "<p class='meta'>Verdicts at interpolated limits inform; the overall verdict rests on the diameters the "
+        "limits file lists.</p>"
+    )
 
 
 def _nightly(out: Path) -> list[tuple[str, str]]:
@@ -186,8 +379,21 @@ def _nightly(out: Path) -> list[tuple[str, str]]:
     for i, (date, panels) in enumerate(plan.nights):
         simulate_night(plan.inbox, date, panels, n_images=5, seed=2026)
         report = ["--report", str(out / "nightly" / "trend")] if i == len(plan.nights) - 1 else []
-        _limen(["nightly", "--inbox", str(plan.inbox), "--config", str(plan.config), "--db", db,
-                "--settle-seconds", "0", *report], allowed_exit=(0, 1))
+        _limen(
+            [
+                "nightly",
+                "--inbox",
+                str(plan.inbox),
+                "--config",
+                str(plan.config),
+                "--db",
+                db,
+                "--settle-seconds",
+                "0",
+                *report,
+            ],
+            allowed_exit=(0, 1),
+        )
     return [("nightly QC: eight simulated mornings, one panel drifts and is caught", "nightly/trend/trend.html")]
 
 
@@ -205,29 +411,62 @@ def _reader_study(out: Path) -> list[tuple[str, str]]:
     study.mkdir(parents=True, exist_ok=True)
     rng = np.random.default_rng(2026)
     readers = reader_model.draw_readers(rng, 6, reader_model.ReaderPopulation(median_factor=1.8, lapse_max=0.03))
-    responses = pd.concat([pd.read_csv(out / p / "score-npwe" / "responses.csv") for p in ("direct", "indirect")],
-                          ignore_index=True)
+    responses = pd.concat(
+        [pd.read_csv(out / p / "score-npwe" / "responses.csv") for p in ("direct", "indirect")], ignore_index=True
+    )
     human = reader_model.readers_from_responses(responses, readers, rng, n_repeats=2)
-    model = pd.concat([pd.read_csv(out / p / "score-npwe" / "trials.csv") for p in ("direct", "indirect")],
-                      ignore_index=True)
+    model = pd.concat(
+        [pd.read_csv(out / p / "score-npwe" / "trials.csv") for p in ("direct", "indirect")], ignore_index=True
+    )
     human.to_csv(study / "reader_trials.csv", index=False)
     model.to_csv(study / "model_trials.csv", index=False)
     readers.to_csv(study / "reader_parameters.csv", index=False)
-    print(f"\n6 invented readers (documented observer model, scorer/study/reader_model.py) read the demo images: "
-          f"{study / 'reader_trials.csv'}")
-    _limen(["analyse", str(study / "reader_trials.csv"), "--model", str(study / "model_trials.csv"),
-            "--by", "detector", "--replace", "--out", str(study / "analysis")])
-    links = [("reader study: human curves, human/model factor, detector comparison",
-              "reader-study/analysis/report.html")]
+    print(
+        f"\n6 invented readers (documented observer model, scorer/study/reader_model.py) read the demo images: "
+        f"{study / 'reader_trials.csv'}"
+    )
+    _limen(
+        [
+            "analyse",
+            str(study / "reader_trials.csv"),
+            "--model",
+            str(study / "model_trials.csv"),
+            "--by",
+            "detector",
+            "--replace",
+            "--out",
+            str(study / "analysis"),
+        ]
+    )
+    links = [
+        ("reader study: human curves, human/model factor, detector comparison", "reader-study/analysis/report.html")
+    ]
     for panel in ("direct", "indirect"):
         d = out / panel
         images = sorted(str(p) for p in (d / "images").glob("*.dcm"))
-        _limen(["score", *images, "--observer", "npwe", "--conversion", str(d / "images" / f"{panel}-conversion.toml"),
-                "--mtf", str(d / "detector" / "detector.json"), "--limits", str(EXAMPLE_LIMITS),
-                "--human-factor-from", str(study / "analysis" / "analysis.json"), "--replace", "--out", str(d / "verdict")],
-               allowed_exit=(0, 1, 3))
-        links.append((f"{panel} panel: human-equivalent thresholds against the example limits",
-                      f"{panel}/verdict/report.html"))
+        _limen(
+            [
+                "score",
+                *images,
+                "--observer",
+                "npwe",
+                "--conversion",
+                str(d / "images" / f"{panel}-conversion.toml"),
+                "--mtf",
+                str(d / "detector" / "detector.json"),
+                "--limits",
+                str(EXAMPLE_LIMITS),
+                "--human-factor-from",
+                str(study / "analysis" / "analysis.json"),
+                "--replace",
+                "--out",
+                str(d / "verdict"),
+            ],
+            allowed_exit=(0, 1, 3),
+        )
+        links.append(
+            (f"{panel} panel: human-equivalent thresholds against the example limits", f"{panel}/verdict/report.html")
+        )
     return links
 
 

@@ -39,12 +39,12 @@ def atomic_write_bytes(path, data: bytes) -> Path:
     try:
         umask = os.umask(0)
         os.umask(umask)
-        os.fchmod(fd, 0o666 & ~umask)      # mkstemp's 0600 would hide reports from the rest of the team
+        os.fchmod(fd, 0o666 & ~umask)  # mkstemp's 0600 would hide reports from the rest of the team
         with os.fdopen(fd, "wb") as fh:
             half = len(data) // 2
             fh.write(data[:half])
             fh.flush()
-            fault_point("write")      # crash tests kill the run here, half-way through a file
+            fault_point("write")  # crash tests kill the run here, half-way through a file
             fh.write(data[half:])
             fh.flush()
             os.fsync(fh.fileno())
@@ -96,12 +96,14 @@ class OutputFolder:
             p.mkdir(parents=True, exist_ok=True)
             present = self._present()
         except OSError as exc:
-            raise LimenError(f"cannot create the output folder given to {option} ({exc.strerror or exc})",
-                             p) from None
+            raise LimenError(f"cannot create the output folder given to {option} ({exc.strerror or exc})", p) from None
         if present and not replace:
-            raise LimenError(f"output folder is not empty ({len(present)} file(s), e.g. {sorted(present)[0]}); "
-                             f"choose a new {option} folder or add --replace to replace what an earlier Limen "
-                             "run wrote there", p)
+            raise LimenError(
+                f"output folder is not empty ({len(present)} file(s), e.g. {sorted(present)[0]}); "
+                f"choose a new {option} folder or add --replace to replace what an earlier Limen "
+                "run wrote there",
+                p,
+            )
         foreign = set(present)
         if present:
             old = None
@@ -148,9 +150,20 @@ class OutputFolder:
     def _write_manifest(self, *, complete: bool, files: list[str]) -> None:
         import json
 
-        atomic_write_text(self.path / MANIFEST, json.dumps(
-            {"format": "limen-outputs/1", "command": self.command, "complete": complete, "files": files,
-             "foreign": self.foreign}, indent=1) + "\n")
+        atomic_write_text(
+            self.path / MANIFEST,
+            json.dumps(
+                {
+                    "format": "limen-outputs/1",
+                    "command": self.command,
+                    "complete": complete,
+                    "files": files,
+                    "foreign": self.foreign,
+                },
+                indent=1,
+            )
+            + "\n",
+        )
 
     def __truediv__(self, name) -> Path:
         return self.path / name

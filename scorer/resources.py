@@ -51,5 +51,8 @@ def check_limit(name: str, value: float, what: str, path=None) -> None:
     cap = limit(name)
     if value > cap:
         unit = LIMITS[name][1]
-        raise LimenError(f"{what} exceeds the limit of {cap:g} {unit} (memory budget); "
-                         f"raise it with the environment variable {name} if this is intended", path)
+        raise LimenError(
+            f"{what} exceeds the limit of {cap:g} {unit} (memory budget); "
+            f"raise it with the environment variable {name} if this is intended",
+            path,
+        )

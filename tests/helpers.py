@@ -30,27 +30,43 @@ def grid_layout(diameters_mm, contrasts, n_repeat=1, spacing_mm=None, seed=0):
         cx = margin + cell * (i % ncols) + cell / 2
         cy = margin + cell * (i // ncols) + cell / 2
         h = sp / 2
-        targets.append({"id": f"t{i}", "diameter_mm": d, "contrast": c,
-                        "sites_mm": [[cx - h, cy - h], [cx + h, cy - h], [cx - h, cy + h], [cx + h, cy + h]],
-                        "signal_site": int(rng.integers(4))})
+        targets.append(
+            {
+                "id": f"t{i}",
+                "diameter_mm": d,
+                "contrast": c,
+                "sites_mm": [[cx - h, cy - h], [cx + h, cy - h], [cx - h, cy + h], [cx + h, cy + h]],
+                "signal_site": int(rng.integers(4)),
+            }
+        )
     nrows = int(np.ceil(len(combos) / ncols))
     w = 2 * margin + cell * ncols
     h = 2 * margin + cell * nrows
-    data = {"format": "limen-layout/1", "phantom": {"name": "test grid", "width_mm": w, "height_mm": h},
-            "fiducials": [{"id": "A", "x_mm": 4.0, "y_mm": 4.0, "diameter_mm": 3.0, "contrast": 0.6},
-                          {"id": "B", "x_mm": w - 4, "y_mm": 4.0, "diameter_mm": 3.0, "contrast": 0.6},
-                          {"id": "C", "x_mm": w - 4, "y_mm": h - 4, "diameter_mm": 3.0, "contrast": 0.6},
-                          {"id": "D", "x_mm": 4.0, "y_mm": h - 4, "diameter_mm": 3.0, "contrast": 0.6}],
-            "orientation_key": {"id": "key", "x_mm": 12.0, "y_mm": h - 4, "diameter_mm": 5.0, "contrast": 0.6},
-            "targets": targets}
+    data = {
+        "format": "limen-layout/1",
+        "phantom": {"name": "test grid", "width_mm": w, "height_mm": h},
+        "fiducials": [
+            {"id": "A", "x_mm": 4.0, "y_mm": 4.0, "diameter_mm": 3.0, "contrast": 0.6},
+            {"id": "B", "x_mm": w - 4, "y_mm": 4.0, "diameter_mm": 3.0, "contrast": 0.6},
+            {"id": "C", "x_mm": w - 4, "y_mm": h - 4, "diameter_mm": 3.0, "contrast": 0.6},
+            {"id": "D", "x_mm": 4.0, "y_mm": h - 4, "diameter_mm": 3.0, "contrast": 0.6},
+        ],
+        "orientation_key": {"id": "key", "x_mm": 12.0, "y_mm": h - 4, "diameter_mm": 5.0, "contrast": 0.6},
+        "targets": targets,
+    }
     return parse_layout(data, "test-grid")
 
 
 def known_placement(layout, shape, pixel_mm, magnification=1.0):
     """A placement with the phantom centred on the image, as the simulator puts it (no registration)."""
-    tf = PhantomTransform.from_params(rotation_deg=0.0, flipped=False, magnification=magnification,
-                                      phantom_center_mm=layout.center_mm,
-                                      center_px=((shape[0] - 1) / 2, (shape[1] - 1) / 2), pixel_mm=pixel_mm)
+    tf = PhantomTransform.from_params(
+        rotation_deg=0.0,
+        flipped=False,
+        magnification=magnification,
+        phantom_center_mm=layout.center_mm,
+        center_px=((shape[0] - 1) / 2, (shape[1] - 1) / 2),
+        pixel_mm=pixel_mm,
+    )
     return SimpleNamespace(transform=tf, markers_px={})
 
 

@@ -41,7 +41,7 @@ def exact_disc(center_rc, radius_px, shape):
     off = (np.arange(SUB) + 0.5) / SUB - 0.5
     ys = (np.arange(r0, r1)[:, None] + off).reshape(-1) - cr
     xs = (np.arange(c0, c1)[:, None] + off).reshape(-1) - cc
-    inside = (ys[:, None] ** 2 + xs[None, :] ** 2) <= radius_px ** 2
+    inside = (ys[:, None] ** 2 + xs[None, :] ** 2) <= radius_px**2
     out[r0:r1, c0:c1] = inside.reshape(r1 - r0, SUB, c1 - c0, SUB).mean(axis=(1, 3))
     return out
 
@@ -52,8 +52,8 @@ def noise_filter(shape, corr_px):
         return None
     fr = np.fft.fftfreq(shape[0])[:, None]
     fc = np.fft.fftfreq(shape[1])[None, :]
-    h = np.exp(-2 * np.pi ** 2 * corr_px ** 2 * (fr ** 2 + fc ** 2))
-    return h / np.sqrt(np.mean(h ** 2))  # Parseval: Σh² = mean |H|² = 1
+    h = np.exp(-2 * np.pi**2 * corr_px**2 * (fr**2 + fc**2))
+    return h / np.sqrt(np.mean(h**2))  # Parseval: Σh² = mean |H|² = 1
 
 
 def make_noise(rng, shape, sigma, corr_px=0.0):
@@ -65,11 +65,11 @@ def make_noise(rng, shape, sigma, corr_px=0.0):
 def cov_times(x, sigma, corr_px=0.0):
     """K·x for the noise of :func:`make_noise` (x on a patch; zero-padded so the circular product is linear)."""
     if not corr_px:
-        return sigma ** 2 * x
+        return sigma**2 * x
     pad = int(np.ceil(8 * corr_px)) + 1
     xp = np.pad(x, pad)
     H = noise_filter(xp.shape, corr_px)  # the kernel of K is h ⋆ h: its transfer function is |H|²
-    y = np.real(np.fft.ifft2(np.fft.fft2(xp) * H ** 2)) * sigma ** 2
+    y = np.real(np.fft.ifft2(np.fft.fft2(xp) * H**2)) * sigma**2
     return y[pad:-pad, pad:-pad]
 
 
@@ -90,7 +90,7 @@ def roi_radius_px(layout, scale):
     d, _ = cKDTree(np.asarray(xy)).query(np.asarray(xy), k=2)
     out, i = {}, 0
     for t in layout.targets:
-        out[t.id] = float(d[i:i + t.m_alternatives, 1].min()) / 2 * scale
+        out[t.id] = float(d[i : i + t.m_alternatives, 1].min()) / 2 * scale
         i += t.m_alternatives
     return out
 
@@ -105,7 +105,7 @@ def site_dprime(center_rc, radius_px, roi_px, background, sigma, corr_px=0.0, ma
     h = int(np.ceil(rr)) + 1
     ri, ci = int(round(center_rc[0])), int(round(center_rc[1]))
     s = exact_disc((center_rc[0] - ri + h, center_rc[1] - ci + h), radius_px, (2 * h + 1, 2 * h + 1))
-    yy, xx = np.mgrid[-h:h + 1, -h:h + 1].astype(float)
+    yy, xx = np.mgrid[-h : h + 1, -h : h + 1].astype(float)
     dy, dx = yy - (center_rc[0] - ri), xx - (center_rc[1] - ci)
     dist = np.hypot(dy, dx)
     roi = dist <= rr
@@ -116,7 +116,7 @@ def site_dprime(center_rc, radius_px, roi_px, background, sigma, corr_px=0.0, ma
     coef = np.linalg.solve(A_r.T @ A_r, A_roi.T @ w[roi])
     w_loc = w.copy()
     w_loc[ring] -= A_r @ coef
-    sig = background * float(w.ravel() @ s.ravel())          # wᵀΔs per unit contrast
+    sig = background * float(w.ravel() @ s.ravel())  # wᵀΔs per unit contrast
     kb = sig / np.sqrt(float(w.ravel() @ cov_times(w, sigma, corr_px).ravel()))
     loc = sig / np.sqrt(float(w_loc.ravel() @ cov_times(w_loc, sigma, corr_px).ravel()))
     return kb, loc

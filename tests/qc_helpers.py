@@ -7,7 +7,6 @@ import json
 from pathlib import Path
 
 
-
 from helpers import MINI
 from scorer.detector import detector_model
 from scorer.images import save_conversion, write_dicom
@@ -32,22 +31,42 @@ def night(inbox, date, panels, n_images=4, seed=0):
     return simulate_night(inbox, date, panels, n_images=n_images, seed=seed, layout=layout())
 
 
-def write_config(root, min_images=4, baseline_sessions=3, n_boot=50, methods=("dprime", "count"), extra="",
-                 detector_extra="", accept_unlisted=False) -> Path:
+def write_config(
+    root,
+    min_images=4,
+    baseline_sessions=3,
+    n_boot=50,
+    methods=("dprime", "count"),
+    extra="",
+    detector_extra="",
+    accept_unlisted=False,
+) -> Path:
     """A limen-nightly/1 file for the two simulated panels (conversion functions from the simulator)."""
     root = Path(root)
     root.mkdir(parents=True, exist_ok=True)
-    lines = ['format = "limen-nightly/1"', 'programme = "test programme (invented)"', "[defaults]",
-             f'layout = "{MINI.as_posix()}"', f"min_images = {min_images}", f"baseline_sessions = {baseline_sessions}",
-             f"n_boot = {n_boot}", "methods = [" + ", ".join(f'"{m}"' for m in methods) + "]",
-             f"accept_unlisted = {'true' if accept_unlisted else 'false'}"]
+    lines = [
+        'format = "limen-nightly/1"',
+        'programme = "test programme (invented)"',
+        "[defaults]",
+        f'layout = "{MINI.as_posix()}"',
+        f"min_images = {min_images}",
+        f"baseline_sessions = {baseline_sessions}",
+        f"n_boot = {n_boot}",
+        "methods = [" + ", ".join(f'"{m}"' for m in methods) + "]",
+        f"accept_unlisted = {'true' if accept_unlisted else 'false'}",
+    ]
     lines.append(extra)
     for name in ("direct", "indirect"):
         m = detector_model(name)
         conv = root / f"{name}-conversion.toml"
         save_conversion(m.conversion_function(), conv)
-        lines += ["[[detectors]]", f'name = "{m.detector_id}"', f'detector_id = "{m.detector_id}"',
-                  f'conversion = "{conv.name}"', detector_extra]
+        lines += [
+            "[[detectors]]",
+            f'name = "{m.detector_id}"',
+            f'detector_id = "{m.detector_id}"',
+            f'conversion = "{conv.name}"',
+            detector_extra,
+        ]
     p = root / "nightly.toml"
     p.write_text("\n".join(lines) + "\n", encoding="utf-8")
     return p
@@ -78,8 +97,13 @@ def bad_files(inbox, good_file) -> dict:
     write_dicom(inbox / "processed.dcm", pixels, (0.085, 0.085), dict(tags, PresentationIntentType="FOR PRESENTATION"))
     write_dicom(inbox / "stranger.dcm", pixels, (0.085, 0.085), dict(tags, DetectorID="ZZ-9999"))
     (inbox / "notes.txt").write_text("not an image\n")
-    return {"truncated": cut, "non_image": inbox / "report.dcm", "presentation": inbox / "processed.dcm",
-            "unknown": inbox / "stranger.dcm", "text": inbox / "notes.txt"}
+    return {
+        "truncated": cut,
+        "non_image": inbox / "report.dcm",
+        "presentation": inbox / "processed.dcm",
+        "unknown": inbox / "stranger.dcm",
+        "text": inbox / "notes.txt",
+    }
 
 
 def flat_field(inbox, date, detector="direct", seed=5) -> Path:
@@ -117,10 +141,12 @@ def check_database(url, expected_sessions: int, images_per_session=None):
                     assert len(imgs) == images_per_session
                 assert all(i.registration for i in imgs)
                 methods = json.loads(x.settings)["methods"]
-                assert s.scalar(select(func.count()).select_from(ThresholdRow)
-                                .where(ThresholdRow.session_id == x.id)) == n_diam * len(methods)
-                assert s.scalar(select(func.count()).select_from(ResponseRow)
-                                .where(ResponseRow.session_id == x.id)) == n_sites * len(imgs)
+                assert s.scalar(
+                    select(func.count()).select_from(ThresholdRow).where(ThresholdRow.session_id == x.id)
+                ) == n_diam * len(methods)
+                assert s.scalar(
+                    select(func.count()).select_from(ResponseRow).where(ResponseRow.session_id == x.id)
+                ) == n_sites * len(imgs)
             free = s.scalar(select(func.count()).select_from(ImageRow).where(ImageRow.session_id.is_(None)))
             shas = s.scalars(select(ImageRow.sha256)).all()
             assert len(shas) == len(set(shas))
@@ -137,7 +163,7 @@ def thresholds(url) -> list[tuple]:
         df = store.thresholds_frame()
     finally:
         store.close()
-    return [(r.detector, r.session_date, r.method, r.diameter_mm, r.threshold_contrast, r.ci_low, r.ci_high)
-            for r in df.itertuples()]
-
-
+    return [
+        (r.detector, r.session_date, r.method, r.diameter_mm, r.threshold_contrast, r.ci_low, r.ci_high)
+        for r in df.itertuples()
+    ]

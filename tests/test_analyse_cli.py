@@ -24,8 +24,20 @@ def study_files(tmp_path_factory):
 
 
 def test_json_has_the_documented_keys(study_files):
-    res = CliRunner().invoke(main, ["analyse", str(study_files / "reads.csv"), "--model", str(study_files / "model.csv"),
-                                    "--json", "--n-boot", "100", "--seed", "3"])
+    res = CliRunner().invoke(
+        main,
+        [
+            "analyse",
+            str(study_files / "reads.csv"),
+            "--model",
+            str(study_files / "model.csv"),
+            "--json",
+            "--n-boot",
+            "100",
+            "--seed",
+            "3",
+        ],
+    )
     assert res.exit_code == 0, res.output
     out = json.loads(res.stdout)
     for key in ("readers", "curves", "detector_comparison", "human_model_factor", "agreement"):
@@ -37,21 +49,50 @@ def test_json_has_the_documented_keys(study_files):
         assert {"diameter_mm", "ratio", "ci_low", "ci_high", "p_adjusted"} <= set(c)
     assert out["human_model_factor"]["factor"] > 1
     # same seed, same numbers
-    res2 = CliRunner().invoke(main, ["analyse", str(study_files / "reads.csv"), "--model", str(study_files / "model.csv"),
-                                     "--json", "--n-boot", "100", "--seed", "3"])
+    res2 = CliRunner().invoke(
+        main,
+        [
+            "analyse",
+            str(study_files / "reads.csv"),
+            "--model",
+            str(study_files / "model.csv"),
+            "--json",
+            "--n-boot",
+            "100",
+            "--seed",
+            "3",
+        ],
+    )
     assert json.loads(res2.stdout)["curves"] == out["curves"]
 
 
 def test_out_writes_report_and_tables(study_files, tmp_path):
-    res = CliRunner().invoke(main, ["analyse", str(study_files / "reads.csv"), "--model", str(study_files / "model.csv"),
-                                    "--out", str(tmp_path / "out"), "--n-boot", "50"])
+    res = CliRunner().invoke(
+        main,
+        [
+            "analyse",
+            str(study_files / "reads.csv"),
+            "--model",
+            str(study_files / "model.csv"),
+            "--out",
+            str(tmp_path / "out"),
+            "--n-boot",
+            "50",
+        ],
+    )
     assert res.exit_code == 0, res.output
     assert "human/model (npwe) threshold factor" in res.stdout
-    for name in ("analysis.json", "report.html", "reader_curves.csv", "pooled_curves.csv", "comparison.csv",
-                 "human_model_factor.csv"):
+    for name in (
+        "analysis.json",
+        "report.html",
+        "reader_curves.csv",
+        "pooled_curves.csv",
+        "comparison.csv",
+        "human_model_factor.csv",
+    ):
         assert (tmp_path / "out" / name).is_file(), name
     page = (tmp_path / "out" / "report.html").read_text()
-    assert "never replace" in page and page.count("<svg") >= 4      # curves ×2, forest, Bland–Altman
+    assert "never replace" in page and page.count("<svg") >= 4  # curves ×2, forest, Bland–Altman
     # the page says the readers are simulated, and shows contrasts in % with readable headings
     assert "Simulated readers:" in page
     assert "threshold (%)" in page and "threshold_contrast" not in page

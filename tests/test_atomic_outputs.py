@@ -30,16 +30,18 @@ from scorer.files import MANIFEST
 @pytest.fixture(scope="module")
 def images(tmp_path_factory):
     d = tmp_path_factory.mktemp("atomic")
-    res = CliRunner().invoke(main, ["simulate", "--small", "--layout", str(MINI), "--count", "2", "--seed", "4",
-                                    "--out", str(d)])
+    res = CliRunner().invoke(
+        main, ["simulate", "--small", "--layout", str(MINI), "--count", "2", "--seed", "4", "--out", str(d)]
+    )
     assert res.exit_code == 0, res.output
     return sorted(d.glob("*.dcm"))
 
 
 def _limen(args, env_extra=None, timeout=300):
     env = {**os.environ, **(env_extra or {})}
-    return subprocess.run([sys.executable, "-m", "scorer.cli", *map(str, args)], env=env, capture_output=True,
-                          text=True, timeout=timeout)
+    return subprocess.run(
+        [sys.executable, "-m", "scorer.cli", *map(str, args)], env=env, capture_output=True, text=True, timeout=timeout
+    )
 
 
 def _score_args(images, out, *extra):
@@ -54,7 +56,7 @@ def _check_complete(folder: Path) -> list[str]:
             continue
         name = p.name
         if name.endswith(".part"):
-            continue           # a temporary file of the killed write: never a result name
+            continue  # a temporary file of the killed write: never a result name
         data = p.read_bytes()
         if name.endswith(".json"):
             json.loads(data)
@@ -80,7 +82,7 @@ def test_killed_at_every_file_leaves_only_complete_files(images, tmp_path):
     ok = _limen(_score_args(images, out))
     assert ok.returncode == 0, ok.stderr
     full = _check_complete(out)
-    n_files = len(full)   # overlays, results.json, 4 CSV, report.html and the manifest (written twice)
+    n_files = len(full)  # overlays, results.json, 4 CSV, report.html and the manifest (written twice)
     assert n_files >= 8
     killed_at = []
     for n in range(1, n_files + 3):
@@ -109,8 +111,11 @@ def test_timed_kills_leave_only_complete_files(images, tmp_path):
     """SIGKILL at a few moments during a run (common practice for crash tests: kill, then inspect)."""
     out = tmp_path / "out"
     for delay in (0.8, 1.6, 2.4, 3.2):
-        proc = subprocess.Popen([sys.executable, "-m", "scorer.cli", *map(str, _score_args(images, out, "--replace"))],
-                                stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+        proc = subprocess.Popen(
+            [sys.executable, "-m", "scorer.cli", *map(str, _score_args(images, out, "--replace"))],
+            stdout=subprocess.DEVNULL,
+            stderr=subprocess.DEVNULL,
+        )
         time.sleep(delay)
         proc.send_signal(signal.SIGKILL)
         proc.wait(timeout=60)
@@ -126,7 +131,7 @@ def test_non_empty_out_refused_and_replace_clears_only_limens_files(images, tmp_
     first = CliRunner().invoke(main, [str(a) for a in _score_args(images, out)])
     assert first.exit_code == 0, first.output
     (out / "my notes.txt").write_text("the physicist's own file")
-    stale = out / "overlays" / "old-image.png"      # as if an earlier run had scored another image
+    stale = out / "overlays" / "old-image.png"  # as if an earlier run had scored another image
     stale.write_bytes((out / "overlays" / f"{images[0].stem}.png").read_bytes())
     manifest = json.loads((out / MANIFEST).read_text())
     manifest["files"].append("overlays/old-image.png")
@@ -137,8 +142,8 @@ def test_non_empty_out_refused_and_replace_clears_only_limens_files(images, tmp_
 
     rep = CliRunner().invoke(main, [str(a) for a in _score_args(images[:1], out, "--replace")])
     assert rep.exit_code == 0, rep.output
-    assert (out / "my notes.txt").read_text() == "the physicist's own file"     # not Limen's: kept
-    assert not stale.exists()                                                     # Limen's, stale: removed
+    assert (out / "my notes.txt").read_text() == "the physicist's own file"  # not Limen's: kept
+    assert not stale.exists()  # Limen's, stale: removed
     assert sorted(p.name for p in (out / "overlays").iterdir()) == [f"{images[0].stem}.png"]
     assert json.loads((out / "results.json").read_text())["images"][0]["path"] == str(images[0])
 
@@ -148,14 +153,17 @@ def test_other_commands_refuse_a_non_empty_out(command, tmp_path, images):
     out = tmp_path / "full"
     out.mkdir()
     (out / "x.txt").write_text("x")
-    args = {"analyse": ["analyse", tmp_path / "none.csv"],
-            "detector": ["detector", "--flat", images[0]],
-            "compare-detectors": ["compare-detectors", tmp_path / "a.json", tmp_path / "b.json"]}[command]
+    args = {
+        "analyse": ["analyse", tmp_path / "none.csv"],
+        "detector": ["detector", "--flat", images[0]],
+        "compare-detectors": ["compare-detectors", tmp_path / "a.json", tmp_path / "b.json"],
+    }[command]
     if command == "analyse":
         from scorer.study import simulate_reader_study
 
         simulate_reader_study(np.random.default_rng(1), 2, diameters_mm=(1.0,), n_images=4).trials.to_csv(
-            args[1], index=False)
+            args[1], index=False
+        )
     if command == "compare-detectors":
         for p in args[1:]:
             p.write_text(json.dumps({"mtf": {"frequency_per_mm": [0, 1, 2], "value": [1, 0.8, 0.5]}}))

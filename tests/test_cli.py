@@ -13,10 +13,12 @@ from scorer.cli import COMMANDS, main
 def test_help_and_version_load_no_heavy_module():
     # `limen --help` must answer at once: the commands' modules (numpy, scipy, matplotlib, pandas) load only
     # when their command runs. Checked by import, not by a timer (timings live in bench/).
-    code = ("import sys; from scorer.cli import main\n"
-            "try:\n    main.main(args=['--help'], standalone_mode=False)\nexcept SystemExit:\n    pass\n"
-            "heavy = [m for m in ('numpy', 'scipy', 'matplotlib', 'pandas') if m in sys.modules]\n"
-            "print('HEAVY:' + ','.join(heavy))")
+    code = (
+        "import sys; from scorer.cli import main\n"
+        "try:\n    main.main(args=['--help'], standalone_mode=False)\nexcept SystemExit:\n    pass\n"
+        "heavy = [m for m in ('numpy', 'scipy', 'matplotlib', 'pandas') if m in sys.modules]\n"
+        "print('HEAVY:' + ','.join(heavy))"
+    )
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True).stdout
     assert out.strip().splitlines()[-1] == "HEAVY:"
 

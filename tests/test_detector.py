@@ -7,7 +7,7 @@ import numpy as np
 import pytest
 from scipy.stats import norm
 
-from scorer.detector.measure import (beam_qualities, compute_dqe, fit_conversion, measure_detector, q_for_beam)
+from scorer.detector.measure import beam_qualities, compute_dqe, fit_conversion, measure_detector, q_for_beam
 from scorer.errors import LimenError
 from scorer.images import Image
 from scorer.detector import measure_mtf
@@ -15,6 +15,7 @@ from scorer.detector import measure_nnps
 
 
 # ---------------------------------------------------------------- synthetic images
+
 
 def gaussian_edge(n=256, angle_deg=2.5, sigma_mm=0.05, pitch_mm=0.1, horizontal=False, lo=100.0, hi=1000.0):
     """Point-sampled edge blurred by a Gaussian of sd sigma: ESF = Φ(d/σ) sampled at pixel centres."""
@@ -35,10 +36,11 @@ def aperture_edge(n=256, angle_deg=2.5, sub=16):
         for dc in s:
             d = (c + dc - (n - 1) / 2) * np.cos(th) - (r + dr - (n - 1) / 2) * np.sin(th)
             frac += d > 0
-    return frac / sub ** 2
+    return frac / sub**2
 
 
 # ---------------------------------------------------------------- MTF
+
 
 @pytest.mark.parametrize("angle_deg", [1.5, 2.5, 3.5, 5.0, -2.0])
 @pytest.mark.parametrize("horizontal", [False, True])
@@ -50,7 +52,7 @@ def test_mtf_gaussian_edge(angle_deg, horizontal, sigma_mm):
     f = res.frequency_per_mm
     assert f.max() == pytest.approx(1.1 * 0.5 / p, abs=0.05)  # reported up to 1.1 × Nyquist
     upto = f <= 0.5 / p + 1e-9
-    expected = np.exp(-2 * np.pi ** 2 * sigma_mm ** 2 * f ** 2)
+    expected = np.exp(-2 * np.pi**2 * sigma_mm**2 * f**2)
     err = np.abs(res.value - expected)[upto].max()
     assert err < 0.02, err  # measured: < 0.003 for all angles and orientations
     assert res.direction == ("y" if horizontal else "x")
@@ -94,6 +96,7 @@ def test_mtf_simulated_panels():
 
 # ---------------------------------------------------------------- NNPS
 
+
 def white_flats(n_images=4, size=512, mean=1000.0, sd=20.0, seed=0):
     rng = np.random.default_rng(seed)
     return [mean + rng.normal(0.0, sd, (size, size)) for _ in range(n_images)]
@@ -103,7 +106,7 @@ def test_nnps_white_noise():
     # White noise of variance σ² on Δx × Δy pixels: NPS = σ²ΔxΔy (Parseval), NNPS = σ²ΔxΔy/m² (REFERENCES.md).
     p, m, sd = 0.1, 1000.0, 20.0
     res = measure_nnps(white_flats(mean=m, sd=sd), (p, p))
-    expected = sd ** 2 * p * p / m ** 2
+    expected = sd**2 * p * p / m**2
     assert res.n_rois == 36  # 3 × 3 half-overlapping 256-px ROIs per 512-px image
     for cut in (res.x_mm2, res.y_mm2, res.radial_mm2, res.value_mm2):
         assert np.mean(cut) == pytest.approx(expected, rel=0.05)
@@ -137,6 +140,7 @@ def test_nnps_bad_input():
 
 # ---------------------------------------------------------------- DQE
 
+
 def test_dqe_ideal_poisson_counter():
     # Ideal quantum counter: NNPS = 1/(qK), presampling MTF = |sinc(pf)|, so DQE(f) = sinc²(pf) → 1 at low
     # frequency (REFERENCES.md; Poisson variance = mean).
@@ -164,8 +168,9 @@ def test_dqe_simulated_direct_panel_low_frequency():
     flats = [sim.simulate(model, "flat", dose_ugy=100.0, seed=s, small=True) for s in range(4)]
     edge = sim.simulate(model, "edge", dose_ugy=100.0, seed=9, small=True)
     ims = [Image(s.kerma_ugy(), s.spacing_mm) for s in flats]
-    met = measure_detector(ims, [Image(edge.kerma_ugy(), edge.spacing_mm)], kerma_ugy=100.0,
-                           q_per_mm2_ugy=model.q_per_mm2_ugy)
+    met = measure_detector(
+        ims, [Image(edge.kerma_ugy(), edge.spacing_mm)], kerma_ugy=100.0, q_per_mm2_ugy=model.q_per_mm2_ugy
+    )
     low = met.dqe.frequency_per_mm <= 1.0
     assert np.mean(met.dqe.value[low]) == pytest.approx(model.qde * model.swank, abs=0.06)
 
@@ -183,6 +188,7 @@ def test_dqe_refuses_without_kerma_or_q():
 
 
 # ---------------------------------------------------------------- conversion function and q table
+
 
 def test_conversion_fit_linear_and_log():
     k = np.array([5.0, 10.0, 25.0, 50.0, 100.0])
@@ -210,7 +216,11 @@ def test_beam_quality_table():
     # q values of RQA beam qualities, IEC 62220-1-1 (from memory, as in REFERENCES.md).
     table = beam_qualities()
     assert {k: v["q_per_mm2_ugy"] for k, v in table.items()} == {
-        "RQA3": 21759.0, "RQA5": 29653.0, "RQA7": 32362.0, "RQA9": 31077.0}
+        "RQA3": 21759.0,
+        "RQA5": 29653.0,
+        "RQA7": 32362.0,
+        "RQA9": 31077.0,
+    }
     assert all(v["note"] == "from memory" for v in table.values())
     assert q_for_beam("rqa5") == 29653.0
     with pytest.raises(LimenError, match="unknown beam"):

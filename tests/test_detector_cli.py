@@ -49,9 +49,24 @@ def measured(panels, tmp_path_factory):
     root = tmp_path_factory.mktemp("measured")
     out = {}
     for name, p in panels.items():
-        res = run("detector", "--flat", *p["flats"], "--edge", p["ev"], p["eh"], "--conversion", p["conv"],
-                  "--kerma-ugy", 100, "--q", p["model"].q_per_mm2_ugy, "--diameters", "0.1,0.25,0.5,1",
-                  "--out", root / name)
+        res = run(
+            "detector",
+            "--flat",
+            *p["flats"],
+            "--edge",
+            p["ev"],
+            p["eh"],
+            "--conversion",
+            p["conv"],
+            "--kerma-ugy",
+            100,
+            "--q",
+            p["model"].q_per_mm2_ugy,
+            "--diameters",
+            "0.1,0.25,0.5,1",
+            "--out",
+            root / name,
+        )
         assert res.exit_code == 0, res.output
         out[name] = root / name
     return out
@@ -59,8 +74,21 @@ def measured(panels, tmp_path_factory):
 
 def test_detector_json_keys_and_values(panels):
     p = panels["direct"]
-    res = run("detector", "--flat", *p["flats"], "--edge", p["ev"], p["eh"], "--conversion", p["conv"],
-              "--kerma-ugy", 100, "--q", p["model"].q_per_mm2_ugy, "--json")
+    res = run(
+        "detector",
+        "--flat",
+        *p["flats"],
+        "--edge",
+        p["ev"],
+        p["eh"],
+        "--conversion",
+        p["conv"],
+        "--kerma-ugy",
+        100,
+        "--q",
+        p["model"].q_per_mm2_ugy,
+        "--json",
+    )
     assert res.exit_code == 0, res.output
     d = json.loads(res.stdout)
     assert set(d["mtf"]) >= {"frequency_per_mm", "value"}
@@ -118,14 +146,17 @@ def test_for_presentation_flat_warns(tmp_path, panels):
     json.loads(res.stdout)  # stdout stays one JSON object
 
 
-@pytest.mark.parametrize("args, words", [
-    ([], "no images"),
-    (["--flat", "{flat}", "--edge", "{edge}", "--kerma-ugy", "100"], "--q"),
-    (["--flat", "{flat}", "--edge", "{edge}", "--q", "5000"], "--kerma-ugy"),
-    (["--flat", "{flat}", "--beam", "RQA5", "--q", "5000", "--kerma-ugy", "1"], "not both"),
-    (["--flat", "{flat}", "--beam", "XYZ", "--kerma-ugy", "1"], "unknown beam"),
-    (["--flat", "missing.dcm"], "missing.dcm"),
-])
+@pytest.mark.parametrize(
+    "args, words",
+    [
+        ([], "no images"),
+        (["--flat", "{flat}", "--edge", "{edge}", "--kerma-ugy", "100"], "--q"),
+        (["--flat", "{flat}", "--edge", "{edge}", "--q", "5000"], "--kerma-ugy"),
+        (["--flat", "{flat}", "--beam", "RQA5", "--q", "5000", "--kerma-ugy", "1"], "not both"),
+        (["--flat", "{flat}", "--beam", "XYZ", "--kerma-ugy", "1"], "unknown beam"),
+        (["--flat", "missing.dcm"], "missing.dcm"),
+    ],
+)
 def test_bad_input_exit_2_one_line(panels, args, words):
     p = panels["direct"]
     args = [a.format(flat=p["flats"][0], edge=p["ev"]) for a in args]
@@ -139,17 +170,41 @@ def test_bad_input_exit_2_one_line(panels, args, words):
 def test_compare_detectors(measured, tmp_path):
     a, b = measured["direct"] / "detector.json", measured["indirect"] / "detector.json"
     scored = tmp_path / "score_a.json"
-    scored.write_text(json.dumps({"observer": "npw", "thresholds": [
-        {"diameter_mm": 0.5, "threshold_contrast": 0.006, "ci_low": 0.005, "ci_high": 0.007, "method": "dprime",
-         "n_images": 8}]}))
-    res = run("compare-detectors", a, b, "--scored-a", scored, "--diameters", "0.1,0.5", "--json", "--out", tmp_path / "cmp")
+    scored.write_text(
+        json.dumps(
+            {
+                "observer": "npw",
+                "thresholds": [
+                    {
+                        "diameter_mm": 0.5,
+                        "threshold_contrast": 0.006,
+                        "ci_low": 0.005,
+                        "ci_high": 0.007,
+                        "method": "dprime",
+                        "n_images": 8,
+                    }
+                ],
+            }
+        )
+    )
+    res = run(
+        "compare-detectors", a, b, "--scored-a", scored, "--diameters", "0.1,0.5", "--json", "--out", tmp_path / "cmp"
+    )
     assert res.exit_code == 0, res.output
     d = json.loads(res.stdout)
     assert d["labels"] == ["direct", "indirect"]
     q = {r["quantity"]: r for r in d["table"]}
-    for key in ("MTF at 1 cycles/mm", "MTF at 2 cycles/mm", "MTF at 5 cycles/mm", "MTF at own Nyquist",
-                "NNPS at 0.5 cycles/mm (mm²)", "DQE at 0.5 cycles/mm", "DQE at 2 cycles/mm",
-                "predicted NPW threshold contrast at 0.1 mm", "scored NPW (d′ method) threshold contrast at 0.5 mm"):
+    for key in (
+        "MTF at 1 cycles/mm",
+        "MTF at 2 cycles/mm",
+        "MTF at 5 cycles/mm",
+        "MTF at own Nyquist",
+        "NNPS at 0.5 cycles/mm (mm²)",
+        "DQE at 0.5 cycles/mm",
+        "DQE at 2 cycles/mm",
+        "predicted NPW threshold contrast at 0.1 mm",
+        "scored NPW (d′ method) threshold contrast at 0.5 mm",
+    ):
         assert key in q
     # common practice: the direct (a-Se) panel keeps the sharper MTF and higher DQE at the same pitch; the MTF
     # now carries a CI (spread between edge segments), so at 5 cycles/mm the claim rests on non-overlapping CIs
@@ -165,9 +220,24 @@ def test_compare_detectors_predicts_with_the_scored_criterion(measured, tmp_path
     # (halfway Pc of 5-AFC is 0.6, of 4-AFC 0.625; Green & Swets 1966)
     a, b = measured["direct"] / "detector.json", measured["indirect"] / "detector.json"
     scored = tmp_path / "score_a.json"
-    scored.write_text(json.dumps({"observer": "npw", "thresholds": [
-        {"diameter_mm": 1.0, "threshold_contrast": 0.003, "ci_low": 0.0025, "ci_high": 0.0035, "method": "dprime",
-         "n_images": 8, "m_alternatives": 5}]}))
+    scored.write_text(
+        json.dumps(
+            {
+                "observer": "npw",
+                "thresholds": [
+                    {
+                        "diameter_mm": 1.0,
+                        "threshold_contrast": 0.003,
+                        "ci_low": 0.0025,
+                        "ci_high": 0.0035,
+                        "method": "dprime",
+                        "n_images": 8,
+                        "m_alternatives": 5,
+                    }
+                ],
+            }
+        )
+    )
     res = run("compare-detectors", a, b, "--scored-a", scored, "--json")
     assert res.exit_code == 0, res.output
     d = json.loads(res.stdout)
@@ -176,7 +246,8 @@ def test_compare_detectors_predicts_with_the_scored_criterion(measured, tmp_path
     p5 = next(t for t in d["thresholds"] if t["source"] == "predicted NPW" and t["detector"] == "direct")
     p4 = next(t for t in forced["thresholds"] if t["source"] == "predicted NPW" and t["detector"] == "direct")
     assert p5["threshold_contrast"] / p4["threshold_contrast"] == pytest.approx(
-        dprime_for_pc(0.6, 5) / dprime_for_pc(0.625, 4), rel=1e-9)
+        dprime_for_pc(0.6, 5) / dprime_for_pc(0.625, 4), rel=1e-9
+    )
 
 
 def test_compare_detectors_bad_json(tmp_path, measured):
@@ -188,9 +259,25 @@ def test_compare_detectors_bad_json(tmp_path, measured):
 
 def _scored(tmp_path, name, rows):
     p = tmp_path / name
-    p.write_text(json.dumps({"observer": "npw", "thresholds": [
-        {"diameter_mm": d, "threshold_contrast": t, "ci_low": lo, "ci_high": hi, "method": m, "n_images": 8,
-         "m_alternatives": 3} for d, t, lo, hi, m in rows]}))
+    p.write_text(
+        json.dumps(
+            {
+                "observer": "npw",
+                "thresholds": [
+                    {
+                        "diameter_mm": d,
+                        "threshold_contrast": t,
+                        "ci_low": lo,
+                        "ci_high": hi,
+                        "method": m,
+                        "n_images": 8,
+                        "m_alternatives": 3,
+                    }
+                    for d, t, lo, hi, m in rows
+                ],
+            }
+        )
+    )
     return p
 
 
@@ -198,20 +285,37 @@ def test_compare_detectors_keeps_the_two_scoring_methods_apart_and_claims_only_b
     # found in use: "scored NPW" appeared twice per diameter (d′ and count) and the table took whichever came
     # first; and a 3 % tolerance, not the CIs, decided "better"
     a, b = measured["direct"] / "detector.json", measured["indirect"] / "detector.json"
-    sa = _scored(tmp_path, "a.json", [(0.5, 0.0050, 0.0045, 0.0055, "dprime"), (1.0, 0.0030, 0.0027, 0.0033, "dprime"),
-                                      (0.5, 0.0040, 0.0020, 0.0060, "count"), (1.0, 0.0031, 0.0020, 0.0045, "count")])
-    sb = _scored(tmp_path, "b.json", [(0.5, 0.0070, 0.0063, 0.0077, "dprime"), (1.0, 0.0031, 0.0028, 0.0034, "dprime"),
-                                      (0.5, 0.0060, 0.0040, 0.0090, "count"), (1.0, 0.0036, 0.0025, 0.0050, "count")])
+    sa = _scored(
+        tmp_path,
+        "a.json",
+        [
+            (0.5, 0.0050, 0.0045, 0.0055, "dprime"),
+            (1.0, 0.0030, 0.0027, 0.0033, "dprime"),
+            (0.5, 0.0040, 0.0020, 0.0060, "count"),
+            (1.0, 0.0031, 0.0020, 0.0045, "count"),
+        ],
+    )
+    sb = _scored(
+        tmp_path,
+        "b.json",
+        [
+            (0.5, 0.0070, 0.0063, 0.0077, "dprime"),
+            (1.0, 0.0031, 0.0028, 0.0034, "dprime"),
+            (0.5, 0.0060, 0.0040, 0.0090, "count"),
+            (1.0, 0.0036, 0.0025, 0.0050, "count"),
+        ],
+    )
     d = json.loads(run("compare-detectors", a, b, "--scored-a", sa, "--scored-b", sb, "--json").stdout)
     q = {r["quantity"]: r for r in d["table"]}
     assert d["scored_method"] == "dprime"
-    assert q["scored NPW (d′ method) threshold contrast at 0.5 mm"]["better"] == "direct"      # CIs apart
+    assert q["scored NPW (d′ method) threshold contrast at 0.5 mm"]["better"] == "direct"  # CIs apart
     assert q["scored NPW (d′ method) threshold contrast at 1 mm"]["better"] == "no clear difference"  # overlap
     assert not any("count method" in k for k in q)
     sources = {t["source"] for t in d["thresholds"]}
     assert {"scored NPW (d′ method)", "scored NPW (count method)"} <= sources
-    c = json.loads(run("compare-detectors", a, b, "--scored-a", sa, "--scored-b", sb, "--scored-method", "count",
-                       "--json").stdout)
+    c = json.loads(
+        run("compare-detectors", a, b, "--scored-a", sa, "--scored-b", sb, "--scored-method", "count", "--json").stdout
+    )
     qc = {r["quantity"]: r for r in c["table"]}
     assert qc["scored NPW (count method) threshold contrast at 0.5 mm"]["better"] == "no clear difference"
     assert not any("d′ method" in k for k in qc)
@@ -222,9 +326,11 @@ def test_inputs_that_are_not_what_they_claim_are_refused(panels, tmp_path):
     # --flat was measured as noise (IEC 62220-1: flat fields are free of objects, edges are sharp steps)
     p = panels["direct"]
     phantom = write_simulated(simulate(p["model"], "phantom", 100.0, seed=3, small=True), tmp_path, "ph", T0)
-    cases = [(["--edge", p["flats"][0]], "no edge"),
-             (["--flat", p["ev"]], "not a flat field"),
-             (["--flat", phantom], "not a flat field")]
+    cases = [
+        (["--edge", p["flats"][0]], "no edge"),
+        (["--flat", p["ev"]], "not a flat field"),
+        (["--flat", phantom], "not a flat field"),
+    ]
     for args, words in cases:
         res = run("detector", *args, "--conversion", p["conv"])
         assert res.exit_code == 2, (args, res.output)
@@ -240,7 +346,7 @@ def test_implausible_mtf_is_flagged():
     n = 256
     yy, xx = np.mgrid[0:n, 0:n].astype(float)
     d = (xx - n / 2) - np.tan(np.radians(2.5)) * (yy - n / 2)
-    img = 1000 + 900 * (d > 0) + 500 * np.exp(-np.abs(d) / 3.0) * np.sign(d)   # processed: overshoot both sides
+    img = 1000 + 900 * (d > 0) + 500 * np.exp(-np.abs(d) / 3.0) * np.sign(d)  # processed: overshoot both sides
     img += np.random.default_rng(0).normal(0, 3, img.shape)
     res = measure_mtf(img, (0.1, 0.1))
     assert any("implausible MTF" in w for w in res.warnings)

@@ -9,7 +9,7 @@ from collections import OrderedDict
 import numpy as np
 import pytest
 
-from scorer.detector.dose import (PowerLawFit, fit_power_law, group_by_kerma, kerma_ratio, score_dose_series)
+from scorer.detector.dose import PowerLawFit, fit_power_law, group_by_kerma, kerma_ratio, score_dose_series
 from scorer.detector.noise import fit_components, group_flats
 from scorer.detector.simulator import detector_model, simulate, write_simulated
 from scorer.errors import LimenError
@@ -21,7 +21,7 @@ from helpers import MINI
 DIRECT = detector_model("direct")
 QL = DIRECT.with_overrides(electronic_noise_adu=0.0)
 #: quantum term of the direct panel in air-kerma units (µGy per µGy of kerma): 1/(q·p²·η·A_S), Poisson + Swank
-Q_K = 1.0 / (DIRECT.q_per_mm2_ugy * DIRECT.pixel_pitch_mm ** 2 * DIRECT.qde * DIRECT.swank)
+Q_K = 1.0 / (DIRECT.q_per_mm2_ugy * DIRECT.pixel_pitch_mm**2 * DIRECT.qde * DIRECT.swank)
 
 
 def _series(tmp_path, model, kermas, n=8, seed=0):
@@ -40,7 +40,7 @@ def _pooled_beta(result):
     """Inverse-variance mean of β over diameters (independent sites) and its 95 % CI."""
     b = np.array([f["beta"] for f in result.fits])
     se = np.array([(f["beta_ci_high"] - f["beta_ci_low"]) / (2 * 1.96) for f in result.fits])
-    w = 1 / se ** 2
+    w = 1 / se**2
     m = float(np.sum(w * b) / w.sum())
     half = 1.96 / np.sqrt(w.sum())
     return m, m - half, m + half
@@ -49,7 +49,7 @@ def _pooled_beta(result):
 def _predicted_beta(e, s, kermas):
     """Slope of log √(σ²(K)/K²) against log K over the groups (the noise model; NPW d′ ∝ 1/σ, common practice)."""
     k = np.asarray(kermas, float)
-    return -np.polyfit(np.log(k), 0.5 * np.log(e / k ** 2 + Q_K / k + s), 1)[0]
+    return -np.polyfit(np.log(k), 0.5 * np.log(e / k**2 + Q_K / k + s), 1)[0]
 
 
 def test_rose_beta_half_on_quantum_limited_images(tmp_path):
@@ -76,8 +76,8 @@ def test_electronic_noise_raises_beta_at_low_kerma(tmp_path):
     m, lo, hi = _pooled_beta(res)
     pred = _predicted_beta(e, 0.0, kermas)
     assert pred > 0.7
-    assert lo > 0.5, (m, lo, hi)                       # steeper than the Rose model
-    assert lo < pred < hi, (m, lo, hi, pred)           # as the noise model predicts
+    assert lo > 0.5, (m, lo, hi)  # steeper than the Rose model
+    assert lo < pred < hi, (m, lo, hi, pred)  # as the noise model predicts
 
 
 def test_structure_noise_lowers_beta_at_high_kerma(tmp_path):
@@ -89,7 +89,7 @@ def test_structure_noise_lowers_beta_at_high_kerma(tmp_path):
     m, lo, hi = _pooled_beta(res)
     pred = _predicted_beta(0.0, s, kermas)
     assert pred < 0.2
-    assert hi < 0.5, (m, lo, hi)                       # flatter than the Rose model
+    assert hi < 0.5, (m, lo, hi)  # flatter than the Rose model
     assert lo < pred < hi, (m, lo, hi, pred)
 
 
@@ -112,7 +112,7 @@ def test_noise_components_from_synthetic_variances():
         lo, hi = fit.ci(i)
         assert lo < want < hi
     x = np.column_stack([np.ones_like(k), k, k * k])
-    ref = sm.WLS(var, x, weights=1 / se ** 2).fit(cov_type="fixed scale")
+    ref = sm.WLS(var, x, weights=1 / se**2).fit(cov_type="fixed scale")
     assert np.allclose(fit.params, ref.params, rtol=1e-8)
     assert np.allclose(np.sqrt(np.diag(fit.cov)), ref.bse, rtol=1e-6)
     ql = fit.quantum_limited_range()
@@ -131,7 +131,7 @@ def test_noise_components_from_simulated_flats():
             ks.append(k)
     g = group_flats(ims, ks)
     fit = fit_components([x.kerma_ugy for x in g], [x.variance for x in g], [x.variance_se for x in g])
-    truth = ((60.0 ** 2 + 1 / 12) / model.gain_adu_per_ugy ** 2, Q_K, 0.02 ** 2)
+    truth = ((60.0**2 + 1 / 12) / model.gain_adu_per_ugy**2, Q_K, 0.02**2)
     for i, want in enumerate(truth):
         lo, hi = fit.ci(i)
         assert lo < want * (1 + 0.01 * (i == 2)) and want * (1 - 0.01 * (i == 2)) < hi, (i, lo, want, hi)
@@ -147,7 +147,7 @@ def test_kerma_ratio_ci_coverage_synthetic():
     hits, n = 0, 300
     for i in range(n):
         ca = 0.02 * (k / 50) ** -beta * np.exp(se * rng.standard_normal(k.size))
-        cb = 0.02 * ratio ** beta * (k / 50) ** -beta * np.exp(se * rng.standard_normal(k.size))
+        cb = 0.02 * ratio**beta * (k / 50) ** -beta * np.exp(se * rng.standard_normal(k.size))
         fa = fit_power_law(k, ca, np.full(k.size, se), 0.1)
         fb = fit_power_law(k, cb, np.full(k.size, se), 0.1)
         r = kerma_ratio(fa, fb, n_draws=1000, seed=i)
@@ -163,7 +163,7 @@ def test_power_law_fit_matches_statsmodels():
     c = np.array([0.05, 0.036, 0.024, 0.019, 0.016])
     se = np.array([0.1, 0.08, 0.12, 0.09, 0.15])
     f = fit_power_law(k, c, se, 0.25)
-    ref = sm.WLS(np.log(c), sm.add_constant(np.log(k)), weights=1 / se ** 2).fit(cov_type="fixed scale")
+    ref = sm.WLS(np.log(c), sm.add_constant(np.log(k)), weights=1 / se**2).fit(cov_type="fixed scale")
     assert f.beta == pytest.approx(-ref.params[1], rel=1e-9)
     if f.overdispersion == 1.0:
         assert np.sqrt(f.cov[1, 1]) == pytest.approx(ref.bse[1], rel=1e-9)
@@ -198,10 +198,16 @@ def test_cli_bad_input_one_line(tmp_path):
     save_conversion(QL.conversion_function(), conv)
     csv = tmp_path / "k.csv"
     csv.write_text(f"path,kerma_ugy\n{paths[0]},50\n")
-    for extra, msg in ((["--conversion", str(conv)], "one air kerma"), (["--kerma-csv", str(csv)], "no air kerma"),
-                       ([], "unknown")):
-        p = subprocess.run([sys.executable, "-m", "scorer.cli", "dose-series", *paths, "--layout", str(MINI), *extra],
-                           capture_output=True, text=True)
+    for extra, msg in (
+        (["--conversion", str(conv)], "one air kerma"),
+        (["--kerma-csv", str(csv)], "no air kerma"),
+        ([], "unknown"),
+    ):
+        p = subprocess.run(
+            [sys.executable, "-m", "scorer.cli", "dose-series", *paths, "--layout", str(MINI), *extra],
+            capture_output=True,
+            text=True,
+        )
         assert p.returncode == 2, p.stderr
         err = [ln for ln in p.stderr.splitlines() if ln.startswith("error")]
         assert len(err) == 1 and msg in err[0] and "Traceback" not in p.stderr
@@ -239,12 +245,26 @@ def test_detector_cli_noise_series(tmp_path):
         for i in range(2):
             sim = simulate(DIRECT, "flat", k, seed=[3, int(k), i], small=True)
             rows.append(f"{write_simulated(sim, tmp_path / f'k{k:g}', f'f{i}', dt.datetime(2026, 1, 1))},{k:g}")
-    edge = write_simulated(simulate(DIRECT, "edge", 100.0, seed=9, small=True), tmp_path, "edge",
-                           dt.datetime(2026, 1, 1))
+    edge = write_simulated(
+        simulate(DIRECT, "edge", 100.0, seed=9, small=True), tmp_path, "edge", dt.datetime(2026, 1, 1)
+    )
     (tmp_path / "flats.csv").write_text("\n".join(rows) + "\n")
     save_conversion(DIRECT.conversion_function(), tmp_path / "conv.toml")
-    r = CliRunner().invoke(main, ["detector", "--noise-series", str(tmp_path / "flats.csv"), "--edge", str(edge),
-                                  "--q", "5000", "--conversion", str(tmp_path / "conv.toml"), "--json"])
+    r = CliRunner().invoke(
+        main,
+        [
+            "detector",
+            "--noise-series",
+            str(tmp_path / "flats.csv"),
+            "--edge",
+            str(edge),
+            "--q",
+            "5000",
+            "--conversion",
+            str(tmp_path / "conv.toml"),
+            "--json",
+        ],
+    )
     assert r.exit_code == 0, r.output
     d = json.loads(r.stdout if hasattr(r, "stdout") else r.output)
     q = d["noise_series"]["components"]["quantum"]

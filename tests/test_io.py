@@ -82,12 +82,16 @@ def _edit_dicom(src: Path, dst: Path, **changes) -> Path:
 
 # ----------------------------------------------------------------------------- round trips
 
+
 # PS3.5 Annex A transfer syntax UIDs.
-@pytest.mark.parametrize("syntax, uid", [
-    ("explicit-little", "1.2.840.10008.1.2.1"),
-    ("jpeg-ls-lossless", "1.2.840.10008.1.2.4.80"),
-    ("jpeg2000-lossless", "1.2.840.10008.1.2.4.90"),
-])
+@pytest.mark.parametrize(
+    "syntax, uid",
+    [
+        ("explicit-little", "1.2.840.10008.1.2.1"),
+        ("jpeg-ls-lossless", "1.2.840.10008.1.2.4.80"),
+        ("jpeg2000-lossless", "1.2.840.10008.1.2.4.90"),
+    ],
+)
 def test_dicom_round_trip_is_bit_exact_with_metadata(tmp_path, syntax, uid):
     px = _pixels()
     path = write_dicom(tmp_path / f"mg_{syntax}.dcm", px, (0.085, 0.085), tags=TAGS, transfer_syntax=syntax)
@@ -99,7 +103,7 @@ def test_dicom_round_trip_is_bit_exact_with_metadata(tmp_path, syntax, uid):
     assert ds.file_meta.TransferSyntaxUID.is_encapsulated == (syntax != "explicit-little")
     assert ds.SOPClassUID == SOP_CLASS_MG_FOR_PROCESSING == "1.2.840.10008.5.1.4.1.1.1.2.1"
     assert ds.file_meta.MediaStorageSOPInstanceUID == ds.SOPInstanceUID
-    assert ds.PhotometricInterpretation == "MONOCHROME2"          # (0028,0004)
+    assert ds.PhotometricInterpretation == "MONOCHROME2"  # (0028,0004)
     assert (ds.BitsAllocated, ds.BitsStored, ds.HighBit, ds.PixelRepresentation) == (16, 14, 13, 0)
     assert [float(v) for v in ds.ImagerPixelSpacing] == [0.085, 0.085]  # (0018,1164)
 
@@ -111,17 +115,17 @@ def test_dicom_round_trip_is_bit_exact_with_metadata(tmp_path, syntax, uid):
     m = img.metadata
     assert m.file_format == "dicom"
     assert m.spacing_source == "Imager Pixel Spacing (0018,1164)"
-    assert m.modality == "MG"                                       # (0008,0060)
-    assert m.presentation_intent == "FOR PROCESSING"                # (0008,0068)
-    assert m.detector_type == "DIRECT"                              # (0018,7004)
-    assert m.kvp == 28.0                                            # (0018,0060)
-    assert m.exposure_uas == 80000.0                                # (0018,1153)
-    assert m.detector_id == "ALDER-SE-0042"                         # (0018,700A)
-    assert m.device_serial == "NV-77103"                            # (0018,1000)
-    assert m.station_name == "NORTHVALE_MAMMO2"                     # (0008,1010)
-    assert m.manufacturer == "Invented Imaging Works"               # (0008,0070)
-    assert m.magnification_factor == pytest.approx(1.08)            # (0018,1114)
-    assert m.acquisition_datetime == "2026-11-30T08:30:00"          # (0008,002A) DT → ISO 8601
+    assert m.modality == "MG"  # (0008,0060)
+    assert m.presentation_intent == "FOR PROCESSING"  # (0008,0068)
+    assert m.detector_type == "DIRECT"  # (0018,7004)
+    assert m.kvp == 28.0  # (0018,0060)
+    assert m.exposure_uas == 80000.0  # (0018,1153)
+    assert m.detector_id == "ALDER-SE-0042"  # (0018,700A)
+    assert m.device_serial == "NV-77103"  # (0018,1000)
+    assert m.station_name == "NORTHVALE_MAMMO2"  # (0008,1010)
+    assert m.manufacturer == "Invented Imaging Works"  # (0008,0070)
+    assert m.magnification_factor == pytest.approx(1.08)  # (0018,1114)
+    assert m.acquisition_datetime == "2026-11-30T08:30:00"  # (0008,002A) DT → ISO 8601
     assert m.content_sha256 == hashlib.sha256(path.read_bytes()).hexdigest()
     assert m.source_path == str(path)
     assert not m.linearised and m.warnings == []
@@ -142,8 +146,9 @@ def test_compressed_dicom_decodes_bit_exact_with_pylibjpeg_plugins(tmp_path, syn
 def test_rle_and_implicit_round_trip(tmp_path):
     px = _pixels(bits=16, seed=5)
     for syntax, uid in (("rle-lossless", "1.2.840.10008.1.2.5"), ("implicit-little", "1.2.840.10008.1.2")):
-        path = write_dicom(tmp_path / f"{syntax}.dcm", px, (0.07, 0.07), tags={"BitsStored": 16},
-                           transfer_syntax=syntax)
+        path = write_dicom(
+            tmp_path / f"{syntax}.dcm", px, (0.07, 0.07), tags={"BitsStored": 16}, transfer_syntax=syntax
+        )
         assert pydicom.dcmread(path).file_meta.TransferSyntaxUID == uid  # PS3.5 Annex A
         assert np.array_equal(load_image(path).pixels, px)
 
@@ -229,19 +234,20 @@ def test_image_content_hash_matches_fips_180_2_vector(tmp_path):
 
 # ----------------------------------------------------------------------------- spacing
 
+
 def test_imager_pixel_spacing_preferred_over_pixel_spacing(tmp_path):
     # PS3.3 C.8.11.4: Imager Pixel Spacing (0018,1164) is at the detector plane; Pixel Spacing
     # (0028,0030) may be calibrated to the object.  Values are (row spacing, column spacing).
-    path = write_dicom(tmp_path / "both.dcm", _pixels(), (0.1, 0.05),
-                       tags={"PixelSpacing": [0.09, 0.045]})
+    path = write_dicom(tmp_path / "both.dcm", _pixels(), (0.1, 0.05), tags={"PixelSpacing": [0.09, 0.045]})
     img = load_image(path)
     assert img.spacing_mm == (0.1, 0.05)
     assert img.metadata.spacing_source == "Imager Pixel Spacing (0018,1164)"
 
 
 def test_pixel_spacing_used_when_imager_pixel_spacing_absent(tmp_path):
-    path = write_dicom(tmp_path / "ps.dcm", _pixels(), (0.1, 0.1),
-                       tags={"ImagerPixelSpacing": None, "PixelSpacing": [0.094, 0.047]})
+    path = write_dicom(
+        tmp_path / "ps.dcm", _pixels(), (0.1, 0.1), tags={"ImagerPixelSpacing": None, "PixelSpacing": [0.094, 0.047]}
+    )
     assert "ImagerPixelSpacing" not in pydicom.dcmread(path)
     img = load_image(path)
     assert img.spacing_mm == (0.094, 0.047)  # (0028,0030): row, then column
@@ -261,6 +267,7 @@ def test_explicit_spacing_overrides_dicom_and_is_recorded(tmp_path):
 
 
 # ----------------------------------------------------------------------------- pixel values
+
 
 def test_rescale_slope_and_intercept_applied(tmp_path):
     # PS3.3 C.11.1.1.2: output units = Rescale Slope (0028,1053) × stored value + Rescale Intercept (0028,1052).
@@ -309,10 +316,15 @@ def test_logarithmic_conversion_to_non_finite_kerma_is_an_error(tmp_path):
 
 # ----------------------------------------------------------------------------- metadata
 
+
 def test_for_presentation_warns(tmp_path):
     # PS3.3 C.8.11.1.1.1: FOR PRESENTATION images are processed for display (not linear).
-    path = write_dicom(tmp_path / "pres.dcm", _pixels(), (0.1, 0.1),
-                       tags={"Modality": "MG", "PresentationIntentType": "FOR PRESENTATION"})
+    path = write_dicom(
+        tmp_path / "pres.dcm",
+        _pixels(),
+        (0.1, 0.1),
+        tags={"Modality": "MG", "PresentationIntentType": "FOR PRESENTATION"},
+    )
     with pytest.warns(LimenWarning, match="not linear in air kerma") as record:
         img = load_image(path)
     assert str(path) in str(record[0].message)
@@ -336,9 +348,16 @@ def test_exposure_in_mas_and_separate_date_time(tmp_path):
     assert img.metadata.acquisition_datetime == "2026-12-01T14:15:02.25"
 
 
-@pytest.mark.parametrize("dt", [
-    "20261130083000", "20261130083000.123456", "20261130083000+0100", "20261130083000.5-0530", "20261130",
-])
+@pytest.mark.parametrize(
+    "dt",
+    [
+        "20261130083000",
+        "20261130083000.123456",
+        "20261130083000+0100",
+        "20261130083000.5-0530",
+        "20261130",
+    ],
+)
 def test_dicom_datetime_to_iso_agrees_with_python_datetime(dt):
     # PS3.5 6.2 DT: YYYYMMDDHHMMSS.FFFFFF&ZZXX; Python's datetime is the reference parser of the ISO text.
     from datetime import datetime
@@ -358,9 +377,9 @@ def test_dicom_datetime_to_iso_rejects_invalid(bad):
 
 # ----------------------------------------------------------------------------- bad input
 
+
 def _mg(tmp_path, name="ok.dcm", syntax="explicit-little", **kw) -> Path:
-    return write_dicom(tmp_path / name, _pixels(), (0.1, 0.1), tags={"Modality": "MG"},
-                       transfer_syntax=syntax, **kw)
+    return write_dicom(tmp_path / name, _pixels(), (0.1, 0.1), tags={"Modality": "MG"}, transfer_syntax=syntax, **kw)
 
 
 def _raises(path, match, **kwargs) -> str:
@@ -380,13 +399,16 @@ def test_directory_and_empty_file(tmp_path):
     _raises(empty, "empty")
 
 
-@pytest.mark.parametrize("name, content, match", [
-    ("notes.dcm", b"this is a text file, not DICOM\n" * 10, "not a DICOM file"),
-    ("photo.jpg", b"\xff\xd8\xff\xe0" + b"\0" * 200, "not a recognised image file .*extension '.jpg'"),
-    ("README", b"hello", "no extension"),
-    ("fake.png", b"GIF89a" + b"\0" * 100, "not a PNG file"),
-    ("fake.tif", b"\0" * 100, "not a TIFF file"),
-])
+@pytest.mark.parametrize(
+    "name, content, match",
+    [
+        ("notes.dcm", b"this is a text file, not DICOM\n" * 10, "not a DICOM file"),
+        ("photo.jpg", b"\xff\xd8\xff\xe0" + b"\0" * 200, "not a recognised image file .*extension '.jpg'"),
+        ("README", b"hello", "no extension"),
+        ("fake.png", b"GIF89a" + b"\0" * 100, "not a PNG file"),
+        ("fake.tif", b"\0" * 100, "not a TIFF file"),
+    ],
+)
 def test_not_an_image(tmp_path, name, content, match):
     p = tmp_path / name
     p.write_bytes(content)
@@ -440,8 +462,17 @@ def test_rgb_dicom(tmp_path):
     # Samples per Pixel (0028,0002) = 3, Photometric Interpretation (0028,0004) RGB.
     src = _mg(tmp_path)
     rgb = np.zeros((48, 64, 3), dtype=np.uint8)
-    p = _edit_dicom(src, tmp_path / "rgb.dcm", SamplesPerPixel=3, PhotometricInterpretation="RGB",
-                    PlanarConfiguration=0, BitsAllocated=8, BitsStored=8, HighBit=7, PixelData=rgb.tobytes())
+    p = _edit_dicom(
+        src,
+        tmp_path / "rgb.dcm",
+        SamplesPerPixel=3,
+        PhotometricInterpretation="RGB",
+        PlanarConfiguration=0,
+        BitsAllocated=8,
+        BitsStored=8,
+        HighBit=7,
+        PixelData=rgb.tobytes(),
+    )
     msg = _raises(p, "3 samples per pixel")
     assert "48×64×3" in msg
 
@@ -546,6 +577,7 @@ def test_transfer_syntax_pydicom_cannot_decode(tmp_path):
 
 # ----------------------------------------------------------------------------- writer errors
 
+
 def test_write_dicom_rejects_values_beyond_bits_stored(tmp_path):
     px = np.full((8, 8), 20000, dtype=np.uint16)  # > 2**14 − 1
     with pytest.raises(LimenError, match="do not fit in BitsStored = 14"):
@@ -555,15 +587,18 @@ def test_write_dicom_rejects_values_beyond_bits_stored(tmp_path):
     assert (ds.BitsStored, ds.HighBit) == (16, 15)
 
 
-@pytest.mark.parametrize("kwargs, match", [
-    ({"pixels": np.zeros((2, 8, 8), dtype=np.uint16)}, "2-D"),
-    ({"pixels": np.zeros((8, 8), dtype=np.float32)}, "unsigned 16-bit"),
-    ({"pixels": -np.ones((8, 8), dtype=np.int32)}, "do not fit in 16 bits"),
-    ({"tags": {"NotAKeyword": 1}}, "unknown DICOM keyword"),
-    ({"tags": {"Rows": 3}}, "set from the pixel array"),
-    ({"transfer_syntax": "jpeg-baseline"}, "unknown transfer syntax"),
-    ({"spacing_mm": (0.0, 0.1)}, "must be positive"),
-])
+@pytest.mark.parametrize(
+    "kwargs, match",
+    [
+        ({"pixels": np.zeros((2, 8, 8), dtype=np.uint16)}, "2-D"),
+        ({"pixels": np.zeros((8, 8), dtype=np.float32)}, "unsigned 16-bit"),
+        ({"pixels": -np.ones((8, 8), dtype=np.int32)}, "do not fit in 16 bits"),
+        ({"tags": {"NotAKeyword": 1}}, "unknown DICOM keyword"),
+        ({"tags": {"Rows": 3}}, "set from the pixel array"),
+        ({"transfer_syntax": "jpeg-baseline"}, "unknown transfer syntax"),
+        ({"spacing_mm": (0.0, 0.1)}, "must be positive"),
+    ],
+)
 def test_write_dicom_bad_arguments(tmp_path, kwargs, match):
     args = {"pixels": np.zeros((8, 8), dtype=np.uint16), "spacing_mm": (0.1, 0.1)} | kwargs
     with pytest.raises(LimenError, match=match) as ei:

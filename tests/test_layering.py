@@ -15,8 +15,24 @@ import pytest
 
 SCORER = Path(__file__).resolve().parents[1] / "scorer"
 
-RANK = {"": 0, "errors": 0, "files": 0, "invocation": 0, "resources": 0, "faults": 0, "images": 1, "phantom": 2, "observer": 3, "detector": 4, "study": 4,
-        "qc": 5, "reports": 6, "commands": 7, "cli": 8, "demo": 9}
+RANK = {
+    "": 0,
+    "errors": 0,
+    "files": 0,
+    "invocation": 0,
+    "resources": 0,
+    "faults": 0,
+    "images": 1,
+    "phantom": 2,
+    "observer": 3,
+    "detector": 4,
+    "study": 4,
+    "qc": 5,
+    "reports": 6,
+    "commands": 7,
+    "cli": 8,
+    "demo": 9,
+}
 
 
 def _module_name(path: Path) -> str:
@@ -44,7 +60,7 @@ def _imports(path: Path) -> list[tuple[int, str]]:
         elif isinstance(node, ast.ImportFrom):
             if node.level:
                 base = package.split(".")
-                base = base[:len(base) - (node.level - 1)]
+                base = base[: len(base) - (node.level - 1)]
                 target = ".".join(base + ([node.module] if node.module else []))
                 names = [target] if node.module else [f"{target}.{a.name}" for a in node.names]
                 found += [(node.lineno, n) for n in names]

@@ -27,7 +27,7 @@ def test_demo_plate_loads_with_the_designed_content():
         ts = lay.targets_with_diameter(d)
         assert len(ts) == 10
         assert {t.m_alternatives for t in ts} == ({3} if d <= 0.35 else {5})
-        assert all(t.material is None for t in ts)   # a generic attenuating-disc plate
+        assert all(t.material is None for t in ts)  # a generic attenuating-disc plate
         cs = sorted(t.contrast for t in ts)
         assert cs[-1] / cs[0] > 30  # 0.3x the lower to 10x the higher panel threshold
     # signal sites are spread over every position of a cell, not always the same one
@@ -42,8 +42,9 @@ def test_demo_plate_sites_are_regular_polygons():
         xy = t.sites
         sides = np.hypot(*(xy - np.roll(xy, 1, axis=0)).T)
         assert np.ptp(sides) < 0.01, t.id
-        assert sides[0] == pytest.approx(3.0 if t.m_alternatives == 3 else (8.0 if t.diameter_mm == 2.0 else 4.0),
-                                         abs=0.01)
+        assert sides[0] == pytest.approx(
+            3.0 if t.m_alternatives == 3 else (8.0 if t.diameter_mm == 2.0 else 4.0), abs=0.01
+        )
 
 
 def test_demo_plate_is_generated_by_its_script():
@@ -57,8 +58,15 @@ def test_demo_plate_is_generated_by_its_script():
 
 def test_known_site_design():
     data = tomllib.loads(MINI.read_text())
-    data["targets"] = [{"id": "k1", "diameter_mm": 1.0, "contrast": 0.01, "known_site_mm": [20.0, 20.0],
-                        "background_sites_mm": [[26.0, 20.0], [20.0, 26.0]]}]
+    data["targets"] = [
+        {
+            "id": "k1",
+            "diameter_mm": 1.0,
+            "contrast": 0.01,
+            "known_site_mm": [20.0, 20.0],
+            "background_sites_mm": [[26.0, 20.0], [20.0, 26.0]],
+        }
+    ]
     lay = parse_layout(data, "k.toml")
     t = lay.targets[0]
     assert t.design == "known" and t.signal_site == 0 and t.m_alternatives == 3
@@ -73,15 +81,33 @@ def _broken(mutate):
 CASES = [
     ("unknown key", lambda d: d["targets"][0].__setitem__("colour", "red"), r"target 'm00'.*unknown key 'colour'"),
     ("unknown top key", lambda d: d.__setitem__("extras", 1), r"top level.*unknown key 'extras'"),
-    ("overlap", lambda d: d["targets"][1].__setitem__("sites_mm", [[5.6, 6.5], [9.5, 6.5], [3.5, 9.5], [9.5, 9.5]]),
-     r"overlaps"),
-    ("outside", lambda d: d["targets"][0].__setitem__("sites_mm", [[-1.0, 6.5], [7.5, 6.5], [4.5, 9.5], [7.5, 9.5]]),
-     r"target 'm00'.*outside"),
-    ("diameter", lambda d: d["targets"][2].__setitem__("diameter_mm", 0.0), r"target 'm02'.*diameter_mm must be positive"),
-    ("contrast high", lambda d: d["targets"][3].__setitem__("contrast", 1.2), r"target 'm03'.*contrast must lie in \(0, 1\)"),
+    (
+        "overlap",
+        lambda d: d["targets"][1].__setitem__("sites_mm", [[5.6, 6.5], [9.5, 6.5], [3.5, 9.5], [9.5, 9.5]]),
+        r"overlaps",
+    ),
+    (
+        "outside",
+        lambda d: d["targets"][0].__setitem__("sites_mm", [[-1.0, 6.5], [7.5, 6.5], [4.5, 9.5], [7.5, 9.5]]),
+        r"target 'm00'.*outside",
+    ),
+    (
+        "diameter",
+        lambda d: d["targets"][2].__setitem__("diameter_mm", 0.0),
+        r"target 'm02'.*diameter_mm must be positive",
+    ),
+    (
+        "contrast high",
+        lambda d: d["targets"][3].__setitem__("contrast", 1.2),
+        r"target 'm03'.*contrast must lie in \(0, 1\)",
+    ),
     ("contrast zero", lambda d: d["targets"][3].__setitem__("contrast", 0.0), r"contrast must lie in \(0, 1\)"),
     ("two fiducials", lambda d: d.__setitem__("fiducials", d["fiducials"][:2]), r"at least three fiducial"),
-    ("truth index", lambda d: d["targets"][4].__setitem__("signal_site", 5), r"target 'm04'.*signal_site 5 is out of range 0..4"),
+    (
+        "truth index",
+        lambda d: d["targets"][4].__setitem__("signal_site", 5),
+        r"target 'm04'.*signal_site 5 is out of range 0..4",
+    ),
     ("no key", lambda d: d.pop("orientation_key"), r"orientation_key"),
     ("format", lambda d: d.__setitem__("format", "other/2"), r"format"),
 ]

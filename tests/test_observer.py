@@ -19,8 +19,12 @@ def _disc_image(diameter_mm, contrast, sigma, n_repeat, seed=0, blur_sigma_px=0.
     shape = (int(lay.height_mm / PIXEL_MM) + 2, int(lay.width_mm / PIXEL_MM) + 2)
     pl = known_placement(lay, shape, PIXEL_MM)
     t = np.ones(shape)
-    render_discs(t, pl.transform.to_pixel([m.xy_mm for m in lay.markers]),
-                 [m.diameter_mm / 2 / PIXEL_MM for m in lay.markers], [m.contrast for m in lay.markers])
+    render_discs(
+        t,
+        pl.transform.to_pixel([m.xy_mm for m in lay.markers]),
+        [m.diameter_mm / 2 / PIXEL_MM for m in lay.markers],
+        [m.contrast for m in lay.markers],
+    )
     sig = [tt.signal_xy_mm for tt in lay.targets]
     render_discs(t, pl.transform.to_pixel(sig), [diameter_mm / 2 / PIXEL_MM] * len(sig), [contrast] * len(sig))
     if blur_sigma_px > 0:
@@ -40,9 +44,9 @@ def test_npw_dprime_equals_norm_of_signal_over_sigma(diameter_mm):
     measured = (s.mean() - b.mean()) / np.sqrt(0.5 * (s.var() + b.var()))
     rad = diameter_mm / 2 / PIXEL_MM
     cov = disc_coverage((20.3, 20.6), rad, (41, 41))
-    analytic = bg * c * np.sqrt((cov ** 2).sum()) / sigma
+    analytic = bg * c * np.sqrt((cov**2).sum()) / sigma
     # sampling error of a d′ estimate from n signal and 3n noise responses
-    se = np.sqrt(1 / n + 1 / (3 * n) + analytic ** 2 / (4 * n))
+    se = np.sqrt(1 / n + 1 / (3 * n) + analytic**2 / (4 * n))
     assert measured == pytest.approx(analytic, abs=3 * se)
     # the response is an unbiased contrast estimate (within 3 standard errors)
     assert s.mean() - b.mean() == pytest.approx(c, abs=3 * np.sqrt(s.var() / len(s) + b.var() / len(b)))
@@ -71,8 +75,16 @@ def test_decide_picks_largest_response_and_scores_truth():
     img, lay, pl = _disc_image(1.0, 0.2, 1.0, 20, seed=5)  # obvious discs: every decision correct
     tr = decide(score_image(img, lay, pl, ObserverConfig("npw", blur=SystemBlur(0.0))))
     assert len(tr) == 20 and tr["correct"].all()
-    assert set(tr.columns) >= {"reader", "image", "target", "diameter_mm", "contrast", "chosen_site", "true_site",
-                               "correct"}
+    assert set(tr.columns) >= {
+        "reader",
+        "image",
+        "target",
+        "diameter_mm",
+        "contrast",
+        "chosen_site",
+        "true_site",
+        "correct",
+    }
     img, lay, pl = _disc_image(1.0, 1e-6, 1.0, 400, seed=6)  # invisible discs: chance, 1/4
     tr = decide(score_image(img, lay, pl, ObserverConfig("npw", blur=SystemBlur(0.0))))
     assert tr["correct"].mean() == pytest.approx(0.25, abs=3 * np.sqrt(0.25 * 0.75 / 400))

@@ -26,18 +26,26 @@ SHARP = ObserverConfig("npw", blur=SystemBlur(0.0))
 
 def _pose(layout, rotation_deg=3.7, shift=(0.3, 0.6), margin=20):
     shape = (int(layout.height_mm / PIX) + margin, int(layout.width_mm / PIX) + margin)
-    tf = PhantomTransform.from_params(rotation_deg=rotation_deg, flipped=False, magnification=1.0,
-                                      phantom_center_mm=layout.center_mm,
-                                      center_px=((shape[0] - 1) / 2 + shift[0], (shape[1] - 1) / 2 + shift[1]),
-                                      pixel_mm=PIX)
+    tf = PhantomTransform.from_params(
+        rotation_deg=rotation_deg,
+        flipped=False,
+        magnification=1.0,
+        phantom_center_mm=layout.center_mm,
+        center_px=((shape[0] - 1) / 2 + shift[0], (shape[1] - 1) / 2 + shift[1]),
+        pixel_mm=PIX,
+    )
     return shape, SimpleNamespace(transform=tf, markers_px={})
 
 
 def _score(layout, shape, pl, n_images, sigma, corr_px, seed):
     mean = mean_image(layout, pl.transform, shape, BACKGROUND)
     rng = np.random.default_rng(seed)
-    frames = [score_image(Image(mean + make_noise(rng, shape, sigma, corr_px), (PIX, PIX)), layout, pl, SHARP,
-                          image_id=f"i{i}") for i in range(n_images)]
+    frames = [
+        score_image(
+            Image(mean + make_noise(rng, shape, sigma, corr_px), (PIX, PIX)), layout, pl, SHARP, image_id=f"i{i}"
+        )
+        for i in range(n_images)
+    ]
     return pd.concat(frames, ignore_index=True)
 
 
@@ -66,8 +74,17 @@ def _kb_templates(layout, tf):
             r0, c0 = int(rc[0] - rad) - 2, int(rc[1] - rad) - 2
             n = int(2 * rad) + 5
             s = exact_disc((rc[0] - r0, rc[1] - c0), rad, (n, n))
-            out.append((t.id, k, t.diameter_mm, t.contrast if k == t.signal_site else 0.0, slice(r0, r0 + n),
-                        slice(c0, c0 + n), s))
+            out.append(
+                (
+                    t.id,
+                    k,
+                    t.diameter_mm,
+                    t.contrast if k == t.signal_site else 0.0,
+                    slice(r0, r0 + n),
+                    slice(c0, c0 + n),
+                    s,
+                )
+            )
     return out
 
 
@@ -85,8 +102,10 @@ def test_dprime_per_unit_contrast_matches_barrett_myers(corr_px):
         g = mean + make_noise(rng, shape, sigma, corr_px)
         frames.append(score_image(Image(g, (PIX, PIX)), lay, pl, SHARP, image_id=f"i{i}"))
         # the known-background observer t = sᵀ(b − g)/(b·sᵀs), b known (Barrett & Myers 2004, ch. 13)
-        kb_rows += [(tid, k, d, float(np.sum(s * (BACKGROUND - g[rs, cs]))) / (BACKGROUND * float(np.sum(s * s))) - c)
-                    for tid, k, d, c, rs, cs, s in kb_tpl]
+        kb_rows += [
+            (tid, k, d, float(np.sum(s * (BACKGROUND - g[rs, cs]))) / (BACKGROUND * float(np.sum(s * s))) - c)
+            for tid, k, d, c, rs, cs, s in kb_tpl
+        ]
     df = pd.concat(frames, ignore_index=True)
     df["noise"] = df.response - np.where(df.is_signal, df.contrast, 0.0)
     kb_df = pd.DataFrame(kb_rows, columns=["target", "site", "diameter_mm", "noise"])
@@ -94,11 +113,13 @@ def test_dprime_per_unit_contrast_matches_barrett_myers(corr_px):
     for (d, g), (_, gk) in zip(df.groupby("diameter_mm"), kb_df.groupby("diameter_mm")):
         t = truth.loc[list(zip(g.target, g.site))]
         local = 1.0 / np.sqrt(np.mean(1.0 / t.local.to_numpy() ** 2))  # analytic, with w′
-        kb = 1.0 / np.sqrt(np.mean(1.0 / t.kb.to_numpy() ** 2))        # analytic, with w
-        for measured, analytic, per_site in ((1.0 / np.sqrt(np.mean(g.noise ** 2)), local, t.local.to_numpy()),
-                                             (1.0 / np.sqrt(np.mean(gk.noise ** 2)), kb, t.kb.to_numpy())):
-            v = 1.0 / per_site ** 2   # each response's variance; relative SE of 1/σ̂ = ½·√(2Σv²)/Σv
-            tol = 3.5 * 0.5 * np.sqrt(2 * np.sum(v ** 2)) / np.sum(v)
+        kb = 1.0 / np.sqrt(np.mean(1.0 / t.kb.to_numpy() ** 2))  # analytic, with w
+        for measured, analytic, per_site in (
+            (1.0 / np.sqrt(np.mean(g.noise**2)), local, t.local.to_numpy()),
+            (1.0 / np.sqrt(np.mean(gk.noise**2)), kb, t.kb.to_numpy()),
+        ):
+            v = 1.0 / per_site**2  # each response's variance; relative SE of 1/σ̂ = ½·√(2Σv²)/Σv
+            tol = 3.5 * 0.5 * np.sqrt(2 * np.sum(v**2)) / np.sum(v)
             assert measured == pytest.approx(analytic, rel=tol), (d, measured, analytic)
         if d >= 1.0:  # the ring holds ~14 disc areas here: the plane fit costs ≈ 3.5 % of d′ (w′ vs w)
             assert 0.95 * kb < local < 0.98 * kb
@@ -114,7 +135,7 @@ def test_dprime_ci_covers_the_named_observers_truth_quick():
     ct = {}
     for d, g in truth.groupby("diameter_mm"):
         m = int(g.m_alternatives.iloc[0])
-        ct[d] = dprime_for_pc(halfway_criterion(m), m) * np.sqrt(np.mean(1.0 / g.local ** 2))
+        ct[d] = dprime_for_pc(halfway_criterion(m), m) * np.sqrt(np.mean(1.0 / g.local**2))
     hits, errs = {d: 0 for d in ct}, {d: [] for d in ct}
     n_rep = 40
     for r in range(n_rep):
@@ -122,5 +143,5 @@ def test_dprime_ci_covers_the_named_observers_truth_quick():
             hits[p.diameter_mm] += p.ci_low <= ct[p.diameter_mm] <= p.ci_high
             errs[p.diameter_mm].append(np.log(p.threshold_contrast / ct[p.diameter_mm]))
     for d in ct:
-        assert hits[d] / n_rep >= 0.85, (d, hits[d])                 # 95 % nominal; binomial slack for 40 repeats
+        assert hits[d] / n_rep >= 0.85, (d, hits[d])  # 95 % nominal; binomial slack for 40 repeats
         assert abs(np.mean(errs[d])) < 3 * np.std(errs[d]) / np.sqrt(n_rep) + 0.01, d

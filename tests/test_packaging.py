@@ -17,8 +17,11 @@ def _pyproject():
 
 def test_every_package_is_listed_in_pyproject():
     listed = set(_pyproject()["tool"]["setuptools"]["packages"])
-    found = {".".join(p.parent.relative_to(ROOT).parts) for top in ("scorer", "webapp")
-             for p in (ROOT / top).rglob("__init__.py")}
+    found = {
+        ".".join(p.parent.relative_to(ROOT).parts)
+        for top in ("scorer", "webapp")
+        for p in (ROOT / top).rglob("__init__.py")
+    }
     assert found - listed == set(), "add these packages to [tool.setuptools] packages in pyproject.toml"
 
 
@@ -26,8 +29,11 @@ def test_every_package_is_listed_in_pyproject():
 def test_non_editable_install_scores_with_the_bundled_layout(tmp_path):
     # build the wheel (no setuptools deprecation warning may appear), install it without its dependencies
     # into a fresh venv that borrows this interpreter's packages, and run simulate + score from elsewhere
-    build = subprocess.run([sys.executable, "-m", "pip", "wheel", "--no-deps", "-q", "-w", str(tmp_path / "dist"),
-                            str(ROOT)], capture_output=True, text=True)
+    build = subprocess.run(
+        [sys.executable, "-m", "pip", "wheel", "--no-deps", "-q", "-w", str(tmp_path / "dist"), str(ROOT)],
+        capture_output=True,
+        text=True,
+    )
     if build.returncode != 0 and "Could not find a version" in build.stderr + build.stdout:
         pytest.skip("no package index reachable to fetch the build backend")
     assert build.returncode == 0, build.stderr
@@ -36,22 +42,35 @@ def test_non_editable_install_scores_with_the_bundled_layout(tmp_path):
     venv = tmp_path / "venv"
     subprocess.run([sys.executable, "-m", "venv", "--without-pip", str(venv)], check=True)
     vpy = venv / "bin" / "python"
-    site = subprocess.run([str(vpy), "-c", "import sysconfig; print(sysconfig.get_paths()['purelib'])"],
-                          capture_output=True, text=True, check=True).stdout.strip()
+    site = subprocess.run(
+        [str(vpy), "-c", "import sysconfig; print(sysconfig.get_paths()['purelib'])"],
+        capture_output=True,
+        text=True,
+        check=True,
+    ).stdout.strip()
     (Path(site) / "borrowed-deps.pth").write_text(sysconfig.get_paths()["purelib"] + "\n")
-    subprocess.run([sys.executable, "-m", "pip", "--python", str(vpy), "install", "--no-deps", "-q", str(wheel)],
-                   check=True, capture_output=True)
+    subprocess.run(
+        [sys.executable, "-m", "pip", "--python", str(vpy), "install", "--no-deps", "-q", str(wheel)],
+        check=True,
+        capture_output=True,
+    )
     work = tmp_path / "elsewhere"
     work.mkdir()
     limen = venv / "bin" / "limen"
-    where = subprocess.run([str(vpy), "-c", "import scorer; print(scorer.__file__)"], cwd=work, capture_output=True,
-                           text=True, check=True).stdout
-    assert str(venv) in where                    # the installed copy, not the checkout
-    sim = subprocess.run([str(limen), "simulate", "--small", "--count", "2", "--seed", "5", "--out", "img"], cwd=work,
-                         capture_output=True, text=True)
+    where = subprocess.run(
+        [str(vpy), "-c", "import scorer; print(scorer.__file__)"], cwd=work, capture_output=True, text=True, check=True
+    ).stdout
+    assert str(venv) in where  # the installed copy, not the checkout
+    sim = subprocess.run(
+        [str(limen), "simulate", "--small", "--count", "2", "--seed", "5", "--out", "img"],
+        cwd=work,
+        capture_output=True,
+        text=True,
+    )
     assert sim.returncode == 0, sim.stderr
     images = sorted(str(p) for p in (work / "img").glob("*.dcm"))
-    res = subprocess.run([str(limen), "score", *images, "--method", "dprime", "--json"], cwd=work,
-                         capture_output=True, text=True)
+    res = subprocess.run(
+        [str(limen), "score", *images, "--method", "dprime", "--json"], cwd=work, capture_output=True, text=True
+    )
     assert res.returncode == 0, res.stderr
     assert '"Cairn demo plate"' in res.stdout

@@ -31,8 +31,8 @@ def test_npw_white_noise_matches_spatial_form(radius_px):
     # NPW in white noise of sd σ (relative units), MTF = 1: d′ = a√A/σ, A the disc area in pixels
     # (Barrett & Myers, Foundations of Image Science (2004) ch. 13; REFERENCES.md).
     p, sigma = 0.1, 0.02
-    dp = dprime_per_contrast(2 * radius_px * p, ones, white(sigma ** 2 * p * p), p)
-    expected = np.sqrt(np.pi * radius_px ** 2) / sigma
+    dp = dprime_per_contrast(2 * radius_px * p, ones, white(sigma**2 * p * p), p)
+    expected = np.sqrt(np.pi * radius_px**2) / sigma
     assert dp == pytest.approx(expected, rel=0.01)  # measured: −0.38 % (R = 8 px), −0.20 % (15 px)
 
 
@@ -46,15 +46,15 @@ def test_npw_small_blurred_disc_counts_aliased_signal():
     n = 16 * sub
     y, x = (np.mgrid[0:n, 0:n] + 0.5) / sub * p
     c = n / 2 / sub * p
-    fine = ((x - c) ** 2 + (y - c) ** 2 <= r_mm ** 2).astype(float)
+    fine = ((x - c) ** 2 + (y - c) ** 2 <= r_mm**2).astype(float)
     blurred = ndimage.gaussian_filter(fine, blur_mm / p * sub, mode="constant")
     energies = [np.sum(blurred[oy::sub, ox::sub] ** 2) for oy in range(0, sub, 2) for ox in range(0, sub, 2)]
     brute = np.sqrt(np.mean(energies)) / sigma
-    mtf = lambda f: np.exp(-2 * np.pi ** 2 * blur_mm ** 2 * f ** 2)  # noqa: E731
-    dp = dprime_per_contrast(2 * r_mm, mtf, white(sigma ** 2 * p * p), p)
+    mtf = lambda f: np.exp(-2 * np.pi**2 * blur_mm**2 * f**2)  # noqa: E731
+    dp = dprime_per_contrast(2 * r_mm, mtf, white(sigma**2 * p * p), p)
     assert dp == pytest.approx(brute, rel=0.015)  # measured: −0.6 %
     # without the aliased power (integrating only inside the Nyquist square) it is clearly low (−3.4 %)
-    dp_nyq = dprime_per_contrast(2 * r_mm, mtf, white(sigma ** 2 * p * p), p, extent_nyquist=1.0)
+    dp_nyq = dprime_per_contrast(2 * r_mm, mtf, white(sigma**2 * p * p), p, extent_nyquist=1.0)
     assert dp_nyq < 0.98 * brute
 
 
@@ -66,20 +66,28 @@ def test_threshold_uses_mafc_criterion():
         assert r.dprime_threshold == pytest.approx(1.235, abs=1e-3)
         assert r.threshold_contrast * r.dprime_per_unit_contrast == pytest.approx(dprime_for_pc(0.625, 4))
         assert r.method == "predicted" and r.observer == "npw"
-    assert set(res[0].to_dict()) >= {"diameter_mm", "threshold_contrast", "method", "observer", "ci_low",
-                                      "ci_high", "n_images"}
+    assert set(res[0].to_dict()) >= {
+        "diameter_mm",
+        "threshold_contrast",
+        "method",
+        "observer",
+        "ci_low",
+        "ci_high",
+        "n_images",
+    }
 
 
 def test_each_diameter_uses_the_criterion_of_its_own_m():
     # A plate whose cells differ in M (3-AFC and 5-AFC): each diameter's threshold uses the halfway Pc of its
     # own M, Pc = 1/M + (1 − 1/M)/2, and the d′ that gives it (Green & Swets 1966; M-AFC integral by quad).
     p = 0.1
-    res = predict_thresholds([0.25, 1.0, 2.0], ones, white(1e-6), p, observers=["npw"],
-                             m_alternatives={0.25: 3, 1.0: 5})
+    res = predict_thresholds(
+        [0.25, 1.0, 2.0], ones, white(1e-6), p, observers=["npw"], m_alternatives={0.25: 3, 1.0: 5}
+    )
     by_d = {r.diameter_mm: r for r in res}
     assert by_d[0.25].m_alternatives == 3 and by_d[0.25].criterion_pc == pytest.approx(2 / 3)
     assert by_d[1.0].m_alternatives == 5 and by_d[1.0].criterion_pc == pytest.approx(0.6)
-    assert by_d[2.0].m_alternatives == 4            # not in the mapping: 4-AFC
+    assert by_d[2.0].m_alternatives == 4  # not in the mapping: 4-AFC
     for r in res:
         assert r.dprime_threshold == pytest.approx(dprime_for_pc(r.criterion_pc, r.m_alternatives))
     single = predict_thresholds([1.0], ones, white(1e-6), p, observers=["npw"], m_alternatives=5)[0]
@@ -111,13 +119,21 @@ def test_npwe_not_better_than_npw_in_white_noise():
 
 def test_predict_from_detector_dict():
     f = np.linspace(0, 11.76, 300)
-    det = {"mtf_extended": {"frequency_per_mm": f.tolist(), "value": np.abs(np.sinc(0.085 * f)).tolist()},
-           "nnps": {"radial_frequency_per_mm": [0.1, 8.0], "radial_mm2": [2e-6, 2e-6],
-                    "frequency_per_mm": [0.1, 5.88], "value_mm2": [2e-6, 2e-6]},
-           "pixel_spacing_mm": [0.085, 0.085], "kerma_ugy": 100.0}
+    det = {
+        "mtf_extended": {"frequency_per_mm": f.tolist(), "value": np.abs(np.sinc(0.085 * f)).tolist()},
+        "nnps": {
+            "radial_frequency_per_mm": [0.1, 8.0],
+            "radial_mm2": [2e-6, 2e-6],
+            "frequency_per_mm": [0.1, 5.88],
+            "value_mm2": [2e-6, 2e-6],
+        },
+        "pixel_spacing_mm": [0.085, 0.085],
+        "kerma_ugy": 100.0,
+    }
     res = predict_from_detector(det, [0.1, 1.0])
     assert [r.observer for r in res] == ["npw", "npw", "npwe", "npwe"]
     assert res[0].threshold_contrast > res[1].threshold_contrast > 0
     from scorer.errors import LimenError
+
     with pytest.raises(LimenError):
         predict_from_detector({"mtf": None, "nnps": None}, [0.1])

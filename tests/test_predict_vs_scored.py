@@ -21,16 +21,23 @@ def test_predicted_threshold_matches_image_scored_dprime_threshold(panel):
     model = detector_model(panel)
     lay = load_layout(MINI)
     dose = 100.0
-    flats = [Image(s.kerma_ugy(), s.spacing_mm)
-             for s in (simulate(model, "flat", dose, seed=50 + i, small=True) for i in range(4))]
-    edges = [Image(s.kerma_ugy(), s.spacing_mm)
-             for s in (simulate(model, "edge", dose, seed=60 + i, small=True, edge_angle_deg=a)
-                       for i, a in enumerate((2.5, 92.5)))]
+    flats = [
+        Image(s.kerma_ugy(), s.spacing_mm)
+        for s in (simulate(model, "flat", dose, seed=50 + i, small=True) for i in range(4))
+    ]
+    edges = [
+        Image(s.kerma_ugy(), s.spacing_mm)
+        for s in (
+            simulate(model, "edge", dose, seed=60 + i, small=True, edge_angle_deg=a) for i, a in enumerate((2.5, 92.5))
+        )
+    ]
     det = measure_detector(flats, edges, kerma_ugy=dose, q_per_mm2_ugy=model.q_per_mm2_ugy).to_dict()
     # each diameter's criterion follows its cells (3-AFC triangles, 5-AFC pentagons on the mini plate)
     m_of = {d: lay.targets_with_diameter(d)[0].m_alternatives for d in lay.diameters_mm}
-    predicted = {p.diameter_mm: p.threshold_contrast
-                 for p in predict_from_detector(det, lay.diameters_mm, observers=("npw",), m_alternatives=m_of)}
+    predicted = {
+        p.diameter_mm: p.threshold_contrast
+        for p in predict_from_detector(det, lay.diameters_mm, observers=("npw",), m_alternatives=m_of)
+    }
     # the physicist's workflow: score the plate with templates shaped by the measured MTF. 32 images: with 16 the
     # d′ CI is about ±13 %, and at 1.0 mm the scored value sits ~8 % above the prediction (the local-background
     # loss of Limen's observer; measured on this plate over seeds 7–9: +2 to +18 % with 16 images, +8/+13 % with 32)

@@ -22,15 +22,21 @@ from hypothesis import HealthCheck, given, settings, strategies as st
 from helpers import MINI
 from scorer.errors import LimenError
 
-SETTINGS = settings(max_examples=60, deadline=None, suppress_health_check=[HealthCheck.too_slow],
-                    derandomize=True)
+SETTINGS = settings(max_examples=60, deadline=None, suppress_health_check=[HealthCheck.too_slow], derandomize=True)
 
 # values a hand-edited TOML file or a spreadsheet could hold where a number, text or list was expected
-scalars = st.one_of(st.none(), st.booleans(), st.integers(-10**12, 10**12),
-                    st.floats(allow_nan=True, allow_infinity=True), st.text(max_size=12))
-values = st.recursive(scalars, lambda inner: st.one_of(st.lists(inner, max_size=4),
-                                                       st.dictionaries(st.text(max_size=8), inner, max_size=3)),
-                      max_leaves=8)
+scalars = st.one_of(
+    st.none(),
+    st.booleans(),
+    st.integers(-(10**12), 10**12),
+    st.floats(allow_nan=True, allow_infinity=True),
+    st.text(max_size=12),
+)
+values = st.recursive(
+    scalars,
+    lambda inner: st.one_of(st.lists(inner, max_size=4), st.dictionaries(st.text(max_size=8), inner, max_size=3)),
+    max_leaves=8,
+)
 
 
 def _paths(obj, prefix=()):
@@ -103,9 +109,13 @@ def test_layout_file_of_random_text(text):
 
 
 # ---------------------------------------------------------------- limits
-LIMITS_DOC = {"format": "limen-limits/1", "name": "test", "observer": "npw", "source": "invented for a test",
-              "limits": [{"diameter_mm": 0.1, "acceptable": 0.2, "achievable": 0.15},
-                         {"diameter_mm": 1.0, "acceptable": 0.014}]}
+LIMITS_DOC = {
+    "format": "limen-limits/1",
+    "name": "test",
+    "observer": "npw",
+    "source": "invented for a test",
+    "limits": [{"diameter_mm": 0.1, "acceptable": 0.2, "achievable": 0.15}, {"diameter_mm": 1.0, "acceptable": 0.014}],
+}
 
 
 @SETTINGS
@@ -123,10 +133,13 @@ def test_limits_parser_gives_limits_or_a_limen_error(doc):
 
 
 # ---------------------------------------------------------------- nightly configuration
-CONFIG_DOC = {"format": "limen-nightly/1", "programme": "test programme",
-              "defaults": {"accept_unlisted": False},
-              "alerts": {},
-              "detectors": [{"name": "room 1", "detector_id": "HSX-SE-0417"}]}
+CONFIG_DOC = {
+    "format": "limen-nightly/1",
+    "programme": "test programme",
+    "defaults": {"accept_unlisted": False},
+    "alerts": {},
+    "detectors": [{"name": "room 1", "detector_id": "HSX-SE-0417"}],
+}
 
 
 @SETTINGS
@@ -178,7 +191,7 @@ def damaged_image(draw):
         data[16:24] = struct.pack(">II", w, h)
         data[29:33] = struct.pack(">I", zlib.crc32(bytes(data[12:29])) & 0xFFFFFFFF)
     if draw(st.booleans()):
-        data = data[:draw(st.integers(0, len(data)))]
+        data = data[: draw(st.integers(0, len(data)))]
     return ext, bytes(data)
 
 
@@ -225,7 +238,7 @@ def damaged_table(draw):
             df = pd.concat([df, df.iloc[[draw(st.integers(0, len(df) - 1))]]], ignore_index=True)
         elif what == "cut":
             df = df.head(draw(st.integers(0, len(df))))
-        elif what == "percent" and "contrast" in df.columns:       # contrasts typed in per cent
+        elif what == "percent" and "contrast" in df.columns:  # contrasts typed in per cent
             df["contrast"] = pd.to_numeric(df["contrast"], errors="coerce") * 100
     return df
 

@@ -25,7 +25,7 @@ from scorer.observer.psychometric import (
 
 M = 4
 TRUE_CT = 0.02
-LEVELS = np.geomspace(0.005, 0.08, 10)   # one target per contrast, as on a phantom row
+LEVELS = np.geomspace(0.005, 0.08, 10)  # one target per contrast, as on a phantom row
 
 
 def true_k(ct=TRUE_CT, m=M):
@@ -54,7 +54,7 @@ def test_table_closed_form_and_published_values():
     assert np.abs(pc_mafc_fast(d, 2) - stats.norm.cdf(d / np.sqrt(2))).max() < 1e-6
     # M = 4 values listed in REFERENCES.md (computed there with scipy quad; tables in Hacker & Ratcliff 1979)
     np.testing.assert_allclose(pc_mafc_fast([0.5, 1.0, 2.0, 3.0], 4), [0.3933, 0.5520, 0.8228, 0.9564], atol=6e-5)
-    assert pc_mafc_fast(0.0, 4) == pytest.approx(0.25, abs=1e-9)      # chance at d′ = 0
+    assert pc_mafc_fast(0.0, 4) == pytest.approx(0.25, abs=1e-9)  # chance at d′ = 0
 
 
 # ----------------------------------------------------------------------------- recovery
@@ -94,13 +94,13 @@ def test_batch_fit_equals_single_fit():
         assert f.params["k"] == pytest.approx(kk, rel=1e-7)
         # ML property: it beats nearby k (scipy's bounded scalar optimiser as an independent check)
         from scipy.optimize import minimize_scalar
+
         def nll(lk, row=row):
             return -np.sum(stats.binom.logpmf(row, 8, pc_mafc_fast(np.exp(lk) * LEVELS, M)))
 
-        r = minimize_scalar(nll, bounds=(np.log(kk) - 1, np.log(kk) + 1), method="bounded",
-                            options={"xatol": 1e-9})
+        r = minimize_scalar(nll, bounds=(np.log(kk) - 1, np.log(kk) + 1), method="bounded", options={"xatol": 1e-9})
         assert np.exp(r.x) == pytest.approx(kk, rel=1e-5)
-        assert f.loglik == pytest.approx(-r.fun, abs=1e-7)   # full binomial log-likelihood (scipy.stats.binom)
+        assert f.loglik == pytest.approx(-r.fun, abs=1e-7)  # full binomial log-likelihood (scipy.stats.binom)
 
 
 def test_fitted_lapse_recovered():
@@ -175,13 +175,13 @@ def test_bootstrap_weights_designs():
     rng = np.random.default_rng(0)
     w = bootstrap_weights(10, 500, rng)
     assert w.shape == (500, 10) and np.all(w.sum(axis=1) == 10)
-    assert abs(w.mean() - 1.0) < 0.05                      # each unit drawn once on average
+    assert abs(w.mean() - 1.0) < 0.05  # each unit drawn once on average
     # two-stage: 4 readers × 5 images each; every resample draws 4 readers' worth of images
     cluster = np.repeat(np.arange(4), 5)
     w2 = bootstrap_weights(20, 400, rng, cluster=cluster)
     assert np.all(w2.sum(axis=1) == 20)
     per_reader = np.stack([w2[:, cluster == j].sum(axis=1) for j in range(4)], axis=1)
-    assert np.all(per_reader % 5 == 0)                     # whole readers are drawn
+    assert np.all(per_reader % 5 == 0)  # whole readers are drawn
     # stratified: images within reader, reader totals fixed
     w3 = stratified_weights(cluster, 300, rng)
     assert np.all(np.stack([w3[:, cluster == j].sum(axis=1) for j in range(4)], axis=1) == 5)
@@ -221,7 +221,7 @@ def test_logistic_biased_low_for_linear_observer():
     y = rng.binomial(n, pc_mafc(true_k() * levels, M))
     t_log = fit_psychometric(levels, y, n, M, form="logistic").threshold()
     t_mafc = fit_psychometric(levels, y, n, M).threshold()
-    assert t_mafc == pytest.approx(TRUE_CT, rel=0.03)    # SE of log C_T here ≈ 0.007
+    assert t_mafc == pytest.approx(TRUE_CT, rel=0.03)  # SE of log C_T here ≈ 0.007
     assert 0.80 < t_log / TRUE_CT < 0.97
 
 
@@ -257,7 +257,7 @@ def test_bad_input_raises_limen_error():
         fit_psychometric(LEVELS, n, n, M, lapse=0.5)
     fit = fit_psychometric(LEVELS, n // 2 + 1, n, M)
     with pytest.raises(LimenError, match="criterion"):
-        fit.threshold(0.2)                                   # below chance for 4-AFC
+        fit.threshold(0.2)  # below chance for 4-AFC
 
 
 def test_summary_and_pc():

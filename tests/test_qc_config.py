@@ -16,20 +16,27 @@ def _write(tmp_path, body, name="n.toml"):
     return p
 
 
-@pytest.mark.parametrize("body,message", [
-    ("[defaults]\nmin_images = 1\n", "[defaults]: min_images must be in 2–1000, got 1"),
-    ("[defaults]\nsurprise = 1\n", "[defaults]: unknown key 'surprise'"),
-    ("[[detectors]]\nname = \"x\"\n", "detectors entry 1: give detector_id, device_serial or station_name"),
-    ("[[detectors]]\ndetector_id = \"A\"\n[[detectors]]\ndetector_id = \"A\"\n", "name 'A' is used twice"),
-    ("[[detectors]]\ndetector_id = \"A\"\nlayout = \"missing.toml\"\n", "missing.toml"),
-    ("[[detectors]]\ndetector_id = \"A\"\nobserver = \"eye\"\n", "observer must be npw or npwe"),
-    ("[[detectors]]\ndetector_id = \"A\"\n[detectors.expected]\nexposure_uas = [5, 1]\n",
-     "expected.exposure_uas must be [lowest, highest] in µAs"),
-    ("[alerts]\nrules = [\"magic\"]\n", "[alerts] rules must be a list drawn from"),
-    ("[smtp]\nhost = \"mail\"\nrecipients = [\"nobody\"]\n", "[smtp] recipients must be a list of e-mail addresses"),
-    ("[[detectors]]\ndetector_id = \"A\"\nhuman_factor = 2\nhuman_factor_from = \"a.json\"\n",
-     "give human_factor or human_factor_from, not both"),
-])
+@pytest.mark.parametrize(
+    "body,message",
+    [
+        ("[defaults]\nmin_images = 1\n", "[defaults]: min_images must be in 2–1000, got 1"),
+        ("[defaults]\nsurprise = 1\n", "[defaults]: unknown key 'surprise'"),
+        ('[[detectors]]\nname = "x"\n', "detectors entry 1: give detector_id, device_serial or station_name"),
+        ('[[detectors]]\ndetector_id = "A"\n[[detectors]]\ndetector_id = "A"\n', "name 'A' is used twice"),
+        ('[[detectors]]\ndetector_id = "A"\nlayout = "missing.toml"\n', "missing.toml"),
+        ('[[detectors]]\ndetector_id = "A"\nobserver = "eye"\n', "observer must be npw or npwe"),
+        (
+            '[[detectors]]\ndetector_id = "A"\n[detectors.expected]\nexposure_uas = [5, 1]\n',
+            "expected.exposure_uas must be [lowest, highest] in µAs",
+        ),
+        ('[alerts]\nrules = ["magic"]\n', "[alerts] rules must be a list drawn from"),
+        ('[smtp]\nhost = "mail"\nrecipients = ["nobody"]\n', "[smtp] recipients must be a list of e-mail addresses"),
+        (
+            '[[detectors]]\ndetector_id = "A"\nhuman_factor = 2\nhuman_factor_from = "a.json"\n',
+            "give human_factor or human_factor_from, not both",
+        ),
+    ],
+)
 def test_bad_configurations_give_one_line_errors_naming_the_file(tmp_path, body, message):
     p = _write(tmp_path, body)
     with pytest.raises(LimenError) as exc:
@@ -52,15 +59,18 @@ def test_wrong_format_and_human_limits_without_factor(tmp_path):
 
 
 def test_matching_defaults_and_unlisted_detectors(tmp_path):
-    p = _write(tmp_path, f'[defaults]\nmin_images = 6\nlayout = "{MINI.as_posix()}"\n'
-                         '[[detectors]]\nname = "room 2"\nstation_name = "ST-2"\nmin_images = 8\n'
-                         '[[detectors]]\ndetector_id = "D-1"\n')
+    p = _write(
+        tmp_path,
+        f'[defaults]\nmin_images = 6\nlayout = "{MINI.as_posix()}"\n'
+        '[[detectors]]\nname = "room 2"\nstation_name = "ST-2"\nmin_images = 8\n'
+        '[[detectors]]\ndetector_id = "D-1"\n',
+    )
     c = load_config(p)
     assert c.detector_for(None, None, "ST-2").name == "room 2"
     assert c.detector_for(None, None, "ST-2").min_images == 8
     assert c.detector_for("D-1", None, None).min_images == 6
     assert c.detector_for("D-1", None, None).layout.name == "mini test plate"
-    assert c.detector_for("OTHER", None, None) is None          # accept_unlisted defaults to false
+    assert c.detector_for("OTHER", None, None) is None  # accept_unlisted defaults to false
     p2 = _write(tmp_path, "[defaults]\naccept_unlisted = true\n", "m.toml")
     assert load_config(p2).detector_for("OTHER", None, None).name == "OTHER"
 
@@ -69,5 +79,9 @@ def test_expected_settings_flags():
     e = Expected(kvp=28.0, kvp_tolerance=0.5, anode="W", filter="RH", exposure_uas=(40000, 120000))
     assert e.check(28.4, "w", "rh", 80000) == []
     flags = e.check(29.0, "MO", None, 20000)
-    assert flags == ["kVp 29 (expected 28 ± 0.5)", "anode MO (expected W)", "filter not recorded (expected RH)",
-                     "exposure 20 mAs (expected 40–120 mAs)"]
+    assert flags == [
+        "kVp 29 (expected 28 ± 0.5)",
+        "anode MO (expected W)",
+        "filter not recorded (expected RH)",
+        "exposure 20 mAs (expected 40–120 mAs)",
+    ]

@@ -47,9 +47,19 @@ def _history(values, cis=None, start=1, date0="2026-03-01"):
     rows = []
     for i, v in enumerate(values):
         lo, hi = (v / 1.2, v * 1.2) if cis is None else cis[i]
-        rows.append({"session_id": start + i, "session_date": str(pd.Timestamp(date0) + pd.Timedelta(days=i))[:10],
-                     "method": "dprime", "diameter_mm": 0.5, "threshold_contrast": v, "ci_low": lo, "ci_high": hi,
-                     "verdict": None, "acceptable": None})
+        rows.append(
+            {
+                "session_id": start + i,
+                "session_date": str(pd.Timestamp(date0) + pd.Timedelta(days=i))[:10],
+                "method": "dprime",
+                "diameter_mm": 0.5,
+                "threshold_contrast": v,
+                "ci_low": lo,
+                "ci_high": hi,
+                "verdict": None,
+                "acceptable": None,
+            }
+        )
     return pd.DataFrame(rows)
 
 
@@ -93,9 +103,9 @@ def test_baseline_rule_needs_the_whole_ci_beyond_the_allowed_fraction():
     base = [0.010, 0.010, 0.010, 0.010]
     ref = 0.010
     rules = AlertRules(rules=("baseline",), worse_fraction=0.25)
-    h = _history(base + [0.016], cis=[(0.008, 0.0125)] * 4 + [(0.0124, 0.02)])   # CI reaches below 1.25×
+    h = _history(base + [0.016], cis=[(0.008, 0.0125)] * 4 + [(0.0124, 0.02)])  # CI reaches below 1.25×
     assert _judge(h, 5, rules) == []
-    h = _history(base + [0.016], cis=[(0.008, 0.0125)] * 4 + [(0.0126, 0.02)])   # CI entirely above 1.25×
+    h = _history(base + [0.016], cis=[(0.008, 0.0125)] * 4 + [(0.0126, 0.02)])  # CI entirely above 1.25×
     (a,) = _judge(h, 5, rules)
     assert a.rule == "baseline" and a.reference == pytest.approx(ref)
 
@@ -106,7 +116,7 @@ def test_ewma_catches_a_small_sustained_shift_the_shewhart_rule_misses():
     base = list(0.01 * 10 ** rng.normal(0, 0.05, k))
     b = compute_baseline(_history(base)).iloc[0]
     m, s = b.mean_log10, b.sigma_log10
-    shifted = [10 ** (m + 1.5 * s)] * 10       # 1.5 σ: inside the Shewhart limits every time
+    shifted = [10 ** (m + 1.5 * s)] * 10  # 1.5 σ: inside the Shewhart limits every time
     h = _history(base + shifted)
     rules = AlertRules(rules=("shewhart", "ewma"))
     first = None
@@ -117,7 +127,7 @@ def test_ewma_catches_a_small_sustained_shift_the_shewhart_rule_misses():
             first = sid - k
     # z_t − m = 1.5σ(1 − 0.8^t) exceeds 3σ·√(0.2/1.8·(1 − 0.64^t) + 1/K) first at this t (direct arithmetic)
     t = np.arange(1, 11)
-    expect = int(t[1.5 * (1 - 0.8 ** t) > 3 * np.sqrt(ewma_sigma_factor(0.2, t) ** 2 + 1 / k)][0])
+    expect = int(t[1.5 * (1 - 0.8**t) > 3 * np.sqrt(ewma_sigma_factor(0.2, t) ** 2 + 1 / k)][0])
     assert first == expect
 
 

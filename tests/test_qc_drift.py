@@ -38,8 +38,9 @@ def smtp_sink():
             self.messages = []
 
         async def handle_DATA(self, server, session, envelope):
-            self.messages.append((envelope.mail_from, list(envelope.rcpt_tos),
-                                  envelope.content.decode("utf-8", "replace")))
+            self.messages.append(
+                (envelope.mail_from, list(envelope.rcpt_tos), envelope.content.decode("utf-8", "replace"))
+            )
             return "250 OK"
 
     sink = Sink()
@@ -53,17 +54,32 @@ def smtp_sink():
 def nights(tmp_path_factory, smtp_sink):
     ctl, sink = smtp_sink
     root = tmp_path_factory.mktemp("drift")
-    smtp = (f'[smtp]\nhost = "127.0.0.1"\nport = {ctl.port}\nsender = "limen@example.org"\n'
-            'recipients = ["physics@example.org"]')
+    smtp = (
+        f'[smtp]\nhost = "127.0.0.1"\nport = {ctl.port}\nsender = "limen@example.org"\n'
+        'recipients = ["physics@example.org"]'
+    )
     cfg = write_config(root / "cfg", baseline_sessions=N_BASE, n_boot=50, methods=("dprime",), extra=smtp)
     db = f"sqlite:///{root / 'drift.sqlite'}"
     runs = []
     for k, dose in enumerate(DOSES):
         date = FIRST + dt.timedelta(days=k)
         night(root / "inbox", date, [Panel("direct", dose), Panel("indirect", 100.0)], seed=100 + k)
-        res = CliRunner().invoke(main, ["nightly", "--inbox", str(root / "inbox"), "--config", str(cfg), "--db", db,
-                                        "--settle-seconds", "0", "--json"]
-                                 + (["--report", str(root / "report")] if k == len(DOSES) - 1 else []))
+        res = CliRunner().invoke(
+            main,
+            [
+                "nightly",
+                "--inbox",
+                str(root / "inbox"),
+                "--config",
+                str(cfg),
+                "--db",
+                db,
+                "--settle-seconds",
+                "0",
+                "--json",
+            ]
+            + (["--report", str(root / "report")] if k == len(DOSES) - 1 else []),
+        )
         runs.append((res.exit_code, json.loads(res.stdout), res.output))
     return {"root": root, "cfg": cfg, "db": db, "runs": runs, "sink": sink}
 
@@ -106,8 +122,9 @@ def test_trend_report_and_csv(nights, tmp_path):
     assert df["in_baseline"].sum() == 2 * N_BASE * 3
     assert (df[df["detector"] == INDIRECT]["alerts"].fillna("") == "").all()
     assert len(pd.read_csv(rep / "alerts.csv")) == sum(len(js["alerts"]) for _, js, _ in nights["runs"])
-    res = CliRunner().invoke(main, ["trend", "--db", nights["db"], "--out", str(tmp_path / "t"), "--json",
-                                    "--config", str(nights["cfg"])])
+    res = CliRunner().invoke(
+        main, ["trend", "--db", nights["db"], "--out", str(tmp_path / "t"), "--json", "--config", str(nights["cfg"])]
+    )
     assert res.exit_code == 0, res.output
     assert (tmp_path / "t" / "trend.html").exists() and json.loads(res.stdout)["csv"].endswith("trend.csv")
 
@@ -120,11 +137,25 @@ def test_baseline_commands(nights, tmp_path):
     res = CliRunner().invoke(main, ["baseline", "show", "--db", str(db_file), "--json"])
     rows = json.loads(res.stdout)
     assert {r["source"] for r in rows} == {"automatic"} and {r["n_sessions"] for r in rows} == {N_BASE}
-    res = CliRunner().invoke(main, ["baseline", "set", "--db", str(db_file), "--detector", DIRECT, "--from",
-                                    str(FIRST + dt.timedelta(days=3)), "--to", str(FIRST + dt.timedelta(days=5))])
+    res = CliRunner().invoke(
+        main,
+        [
+            "baseline",
+            "set",
+            "--db",
+            str(db_file),
+            "--detector",
+            DIRECT,
+            "--from",
+            str(FIRST + dt.timedelta(days=3)),
+            "--to",
+            str(FIRST + dt.timedelta(days=5)),
+        ],
+    )
     assert res.exit_code == 0, res.output
-    rows = json.loads(CliRunner().invoke(main, ["baseline", "show", "--db", str(db_file), "--detector", DIRECT,
-                                                "--json"]).stdout)
+    rows = json.loads(
+        CliRunner().invoke(main, ["baseline", "show", "--db", str(db_file), "--detector", DIRECT, "--json"]).stdout
+    )
     assert {r["source"] for r in rows} == {"explicit"} and {r["n_sessions"] for r in rows} == {3}
     res = CliRunner().invoke(main, ["baseline", "set", "--db", str(db_file), "--detector", DIRECT, "--sessions", "999"])
     assert res.exit_code == 2 and "not scored sessions" in res.output

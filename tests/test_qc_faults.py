@@ -39,8 +39,22 @@ def _copy(template, dest):
 
 
 def _cmd(inbox, cfg, db, *extra):
-    return [sys.executable, "-m", "scorer.cli", "nightly", "--inbox", str(inbox), "--config", str(cfg), "--db", db,
-            "--settle-seconds", "0", "--json", *extra]
+    return [
+        sys.executable,
+        "-m",
+        "scorer.cli",
+        "nightly",
+        "--inbox",
+        str(inbox),
+        "--config",
+        str(cfg),
+        "--db",
+        db,
+        "--settle-seconds",
+        "0",
+        "--json",
+        *extra,
+    ]
 
 
 def _env(fault=None):
@@ -57,15 +71,24 @@ def _check_quarantine(inbox):
     assert not (inbox / "notes.txt").exists()
 
 
-@pytest.mark.parametrize("fault,workers", [("scanned", 1), ("claimed", 1), ("scored:2", 1), ("mid-write:2", 1),
-                                           ("committed:1", 1), ("committed:3", 1), ("quarantine", 1),
-                                           ("mid-write:1", 2)])
+@pytest.mark.parametrize(
+    "fault,workers",
+    [
+        ("scanned", 1),
+        ("claimed", 1),
+        ("scored:2", 1),
+        ("mid-write:2", 1),
+        ("committed:1", 1),
+        ("committed:3", 1),
+        ("quarantine", 1),
+        ("mid-write:1", 2),
+    ],
+)
 def test_killed_run_then_rerun_scores_every_session_exactly_once(template, tmp_path, fault, workers):
     inbox, cfg = _copy(template, tmp_path / "w")
     db = f"sqlite:///{tmp_path / 'n.sqlite'}"
     extra = ["--workers", str(workers)] if workers > 1 else []
-    killed = subprocess.run(_cmd(inbox, cfg, db, *extra), env=_env(fault), capture_output=True, text=True,
-                            timeout=300)
+    killed = subprocess.run(_cmd(inbox, cfg, db, *extra), env=_env(fault), capture_output=True, text=True, timeout=300)
     assert killed.returncode == -signal.SIGKILL, killed.stderr[-2000:]
     again = subprocess.run(_cmd(inbox, cfg, db, *extra), env=_env(), capture_output=True, text=True, timeout=300)
     assert again.returncode == 0, again.stderr[-2000:]
@@ -94,8 +117,10 @@ def test_killed_at_random_moments(template, tmp_path):
 
 def _concurrent(template, tmp_path, db):
     inbox, cfg = _copy(template, tmp_path / "w")
-    procs = [subprocess.Popen(_cmd(inbox, cfg, db), env=_env(), stdout=subprocess.PIPE, stderr=subprocess.PIPE,
-                              text=True) for _ in range(2)]
+    procs = [
+        subprocess.Popen(_cmd(inbox, cfg, db), env=_env(), stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+        for _ in range(2)
+    ]
     outs = [p.communicate(timeout=300) for p in procs]
     for p, (_out, err) in zip(procs, outs):
         assert p.returncode == 0, err[-2000:]
@@ -129,23 +154,23 @@ def test_claims_are_compare_and_set(tmp_path):
     from scorer.images import image_content_hash
 
     store.add_images([examine(f, image_content_hash(f), cfg) for f in files])
-    (key, imgs), = store.free_groups().items()
+    ((key, imgs),) = store.free_groups().items()
     first = store.claim(key, imgs)
     assert first is not None
-    assert store.claim(key, imgs) is None                 # every image already bound
+    assert store.claim(key, imgs) is None  # every image already bound
     assert store.claim(key, imgs[:1]) is None
-    assert store.stale_claims() == []                     # our own live claim
+    assert store.stale_claims() == []  # our own live claim
     gone = subprocess.Popen([sys.executable, "-c", "pass"])
     gone.wait()
     from sqlalchemy import update
 
     from scorer.qc.store import SessionRow
 
-    with store.transaction() as s:                        # the holder was a process of this host that has ended
+    with store.transaction() as s:  # the holder was a process of this host that has ended
         s.execute(update(SessionRow).values(claim_pid=gone.pid))
     assert store.stale_claims() == [(first[0], first[1])]
     assert store.take_over(first[0], "not-the-token") is None
     token = store.take_over(first[0], first[1])
-    assert token is not None and store.take_over(first[0], first[1]) is None   # only one run takes it over
+    assert token is not None and store.take_over(first[0], first[1]) is None  # only one run takes it over
     assert store.stale_claims() == []
     store.close()

@@ -28,20 +28,30 @@ def _nightly(args):
 @pytest.fixture
 def scene(tmp_path):
     inbox = tmp_path / "inbox"
-    d1 = night(inbox, D1, ["direct"], seed=1)                    # complete session
+    d1 = night(inbox, D1, ["direct"], seed=1)  # complete session
     i1 = night(tmp_path / "staging", D1, ["indirect"], n_images=4, seed=2)
-    for f in i1[:3]:                                             # too few images: waits for the fourth
+    for f in i1[:3]:  # too few images: waits for the fourth
         (inbox / f.parent.name).mkdir(parents=True, exist_ok=True)
         shutil.copy(f, inbox / f.parent.name / f.name)
-    d2 = night(inbox, D2, ["direct"], seed=3)                    # complete, plus a flat field below
+    d2 = night(inbox, D2, ["direct"], seed=3)  # complete, plus a flat field below
     flat = flat_field(inbox, D2)
     dup = inbox / "copies" / "renamed-copy.dcm"
     dup.parent.mkdir()
     shutil.copy(d1[0], dup)
     bad = bad_files(inbox, d1[1])
     cfg = write_config(tmp_path / "cfg")
-    return {"inbox": inbox, "d1": d1, "i1": i1, "d2": d2, "flat": flat, "dup": dup, "bad": bad, "cfg": cfg,
-            "db": f"sqlite:///{tmp_path / 'nightly.sqlite'}", "tmp": tmp_path}
+    return {
+        "inbox": inbox,
+        "d1": d1,
+        "i1": i1,
+        "d2": d2,
+        "flat": flat,
+        "dup": dup,
+        "bad": bad,
+        "cfg": cfg,
+        "db": f"sqlite:///{tmp_path / 'nightly.sqlite'}",
+        "tmp": tmp_path,
+    }
 
 
 def test_sessions_scored_once_bad_files_quarantined_waiting_session_completes(scene):
@@ -95,8 +105,9 @@ def test_sessions_scored_once_bad_files_quarantined_waiting_session_completes(sc
     js = json.loads(res.stdout)
     assert res.exit_code == 0, res.output
     assert js["sessions_scored"] == 1 and js["scored_images"] == 4 and js["sessions_waiting"] == 0
-    assert sorted(d["path"] for d in js["duplicates"]) == sorted([str(scene["dup"]),
-                                                                 str(inbox / "late" / "scored-before-renamed.dcm")])
+    assert sorted(d["path"] for d in js["duplicates"]) == sorted(
+        [str(scene["dup"]), str(inbox / "late" / "scored-before-renamed.dcm")]
+    )
     check_database(db, 3, images_per_session=4)
 
 

@@ -28,8 +28,11 @@ def _responses(url):
 
     store = open_store(url)
     with store.transaction() as s:
-        rows = s.execute(select(ImageRow.sha256, ResponseRow.target, ResponseRow.site, ResponseRow.response)
-                         .join(ImageRow, ImageRow.id == ResponseRow.image_id)).all()
+        rows = s.execute(
+            select(ImageRow.sha256, ResponseRow.target, ResponseRow.site, ResponseRow.response).join(
+                ImageRow, ImageRow.id == ResponseRow.image_id
+            )
+        ).all()
     store.close()
     return sorted(tuple(r) for r in rows)
 

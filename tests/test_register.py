@@ -11,12 +11,20 @@ from scorer.errors import LimenError
 from scorer.images import Image, ImageMetadata
 from scorer.phantom import Target, load_layout
 from scorer.phantom import Placement, RegistrationError, draw_overlay, fit_similarity, register
-from scorer.detector.simulator import (Pose, _phantom_field_shape, detector_model, expose, phantom_transform,
-                             phantom_transmission, render_discs, simulate)
+from scorer.detector.simulator import (
+    Pose,
+    _phantom_field_shape,
+    detector_model,
+    expose,
+    phantom_transform,
+    phantom_transmission,
+    render_discs,
+    simulate,
+)
 
 MINI = Path(__file__).parent / "data" / "mini-plate.toml"
-DOSE_UGY = 25.0      # the lowest demo dose
-PIXEL_TOL = 0.5      # issue 3: "within 0.5 px at every fiducial"
+DOSE_UGY = 25.0  # the lowest demo dose
+PIXEL_TOL = 0.5  # issue 3: "within 0.5 px at every fiducial"
 # Our own tighter bound on the measured centres: the full-resolution sub-pixel refinement
 # reaches ~0.06 px here, whereas the coarse block centroid alone errs by up to ~0.4 px.
 REFINED_TOL = 0.2
@@ -85,20 +93,29 @@ POSES = [  # rotation_deg, flipped, magnification, shift_mm — rotations spread
 
 
 @pytest.mark.parametrize("model", ["direct", "indirect"])
-@pytest.mark.parametrize("pose", POSES, ids=lambda p: f"r{p.rotation_deg:g}-{'F' if p.flipped else 'N'}-m{p.magnification:g}")
+@pytest.mark.parametrize(
+    "pose", POSES, ids=lambda p: f"r{p.rotation_deg:g}-{'F' if p.flipped else 'N'}-m{p.magnification:g}"
+)
 def test_registration_recovers_known_pose(mini, model, pose):
-    sim = simulate(detector_model(model), "phantom", DOSE_UGY, seed=int(pose.rotation_deg * 10) + 1,
-                   small=True, layout=mini, pose=pose)
+    sim = simulate(
+        detector_model(model),
+        "phantom",
+        DOSE_UGY,
+        seed=int(pose.rotation_deg * 10) + 1,
+        small=True,
+        layout=mini,
+        pose=pose,
+    )
     pl = register(_image(sim), mini)
 
-    truth = sim.truth["fiducials_px"]           # the simulator's own marker centres (row, col)
+    truth = sim.truth["fiducials_px"]  # the simulator's own marker centres (row, col)
     assert set(pl.markers_px) == set(truth)
     xy = np.array([m.xy_mm for m in mini.markers])
     fitted = pl.transform.to_pixel(xy)
     for i, m in enumerate(mini.markers):
         t = np.asarray(truth[m.id])
         assert np.hypot(*(np.asarray(pl.markers_px[m.id]) - t)) < REFINED_TOL, m.id  # measured centre
-        assert np.hypot(*(fitted[i] - t)) < PIXEL_TOL, m.id                           # fitted transform
+        assert np.hypot(*(fitted[i] - t)) < PIXEL_TOL, m.id  # fitted transform
     # the whole plate, not only the markers: target sites too, against the simulator's transform
     tf_true = phantom_transform(mini, pose, sim.pixels.shape, sim.spacing_mm[0])
     sites = np.concatenate([t.sites for t in mini.targets])
@@ -138,7 +155,7 @@ def test_non_square_pixels_are_handled(mini):
     px = sim.pixels.astype(float)
     p = sim.spacing_mm[0]
     new_cols = int(px.shape[1] / 1.05)
-    c_new = np.arange(new_cols) * 1.05            # sample positions in old columns
+    c_new = np.arange(new_cols) * 1.05  # sample positions in old columns
     resampled = np.stack([np.interp(c_new, np.arange(px.shape[1]), row) for row in px])
     img = Image(resampled, (p, 1.05 * p))
     pl = register(img, mini)
@@ -166,7 +183,8 @@ def test_marker_sized_distractors_outside_the_plate_do_not_confuse_it(mini):
     while len(extra) < 12:
         rc = rng.uniform(30, 870, size=2)
         if np.hypot(*(rc - centre)) > 0.5 * np.hypot(44, 36) * 1.05 / p + 40 and all(
-                np.hypot(*(rc - e)) > 60 for e in extra):
+            np.hypot(*(rc - e)) > 60 for e in extra
+        ):
             extra.append(rc)
     radii = [(2.0 if i % 3 else 3.5) * 1.05 / p / 2 for i in range(12)]
     render_discs(trans, np.array(extra), radii, [0.6] * 12)
@@ -176,7 +194,7 @@ def test_marker_sized_distractors_outside_the_plate_do_not_confuse_it(mini):
     for m, t in zip(mini.markers, truth):
         assert np.hypot(*(np.asarray(pl.markers_px[m.id]) - t)) < REFINED_TOL
     assert pl.flipped and _angle_diff(pl.rotation_deg, 211.0) < 0.2
-    assert len(pl.candidates_px) >= 17        # the distractors are reported for the overlay
+    assert len(pl.candidates_px) >= 17  # the distractors are reported for the overlay
 
 
 # ----------------------------------------------------------------- refusals
@@ -194,9 +212,8 @@ def test_phantom_partly_outside_the_field_is_refused(mini):
     # The right-hand fiducial E falls outside a field too narrow for the shifted plate.
     pose = Pose(0.0, False, 1.0, (10.0, 0.0))
     shape = _phantom_field_shape(mini, Pose(), 0.085)
-    sim = simulate(detector_model("indirect"), "phantom", DOSE_UGY, seed=5, layout=mini, pose=pose,
-                   shape=shape)
-    assert not 0 <= sim.truth["fiducials_px"]["E"][1] < shape[1]   # the premise
+    sim = simulate(detector_model("indirect"), "phantom", DOSE_UGY, seed=5, layout=mini, pose=pose, shape=shape)
+    assert not 0 <= sim.truth["fiducials_px"]["E"][1] < shape[1]  # the premise
     with pytest.raises(RegistrationError) as exc:
         register(_image(sim, "cut.dcm"), mini)
     msg = str(exc.value)
@@ -210,9 +227,16 @@ def test_target_sites_outside_the_field_are_refused(mini):
     layout = dataclasses.replace(mini, targets=mini.targets + (extra,))
     n_sites = sum(t.m_alternatives for t in layout.targets)
     cols = 660
-    shift_x = cols / 2 * 0.085 - (50.5 - mini.width_mm / 2)    # puts phantom x = 50.5 mm on the image's right edge
-    sim = simulate(detector_model("direct"), "phantom", DOSE_UGY, seed=6, layout=layout,
-                   pose=Pose(0.0, False, 1.0, (shift_x, 0.0)), shape=(660, cols))
+    shift_x = cols / 2 * 0.085 - (50.5 - mini.width_mm / 2)  # puts phantom x = 50.5 mm on the image's right edge
+    sim = simulate(
+        detector_model("direct"),
+        "phantom",
+        DOSE_UGY,
+        seed=6,
+        layout=layout,
+        pose=Pose(0.0, False, 1.0, (shift_x, 0.0)),
+        shape=(660, cols),
+    )
     with pytest.raises(RegistrationError) as exc:
         register(_image(sim, "edge.dcm"), layout)
     assert "field edge" in str(exc.value) and f"2 of {n_sites} target sites" in str(exc.value)
@@ -221,15 +245,17 @@ def test_target_sites_outside_the_field_are_refused(mini):
 
 
 def test_residual_above_limit_is_refused(mini):
-    sim = simulate(detector_model("direct"), "phantom", DOSE_UGY, seed=7, small=True, layout=mini,
-                   pose=Pose(120.0, False, 1.0))
+    sim = simulate(
+        detector_model("direct"), "phantom", DOSE_UGY, seed=7, small=True, layout=mini, pose=Pose(120.0, False, 1.0)
+    )
     with pytest.raises(RegistrationError, match=r"residual 0\.\d\d px RMS .* exceeds the limit of 0\.001 px"):
         register(_image(sim), mini, max_residual_px=0.001)
 
 
 def test_magnification_outside_range_is_refused(mini):
-    sim = simulate(detector_model("direct"), "phantom", DOSE_UGY, seed=8, small=True, layout=mini,
-                   pose=Pose(30.0, True, 1.4))
+    sim = simulate(
+        detector_model("direct"), "phantom", DOSE_UGY, seed=8, small=True, layout=mini, pose=Pose(30.0, True, 1.4)
+    )
     with pytest.raises(RegistrationError, match=r"magnification 1\.40\d lies outside the allowed range 0\.8–1\.2"):
         register(_image(sim), mini, magnification_range=(0.8, 1.2))
 
@@ -249,8 +275,9 @@ def _is_png(path: Path) -> tuple[int, int]:
 
 
 def test_overlay_png_is_written(mini, tmp_path):
-    sim = simulate(detector_model("indirect"), "phantom", DOSE_UGY, seed=3, small=True, layout=mini,
-                   pose=Pose(37.0, True, 1.2))
+    sim = simulate(
+        detector_model("indirect"), "phantom", DOSE_UGY, seed=3, small=True, layout=mini, pose=Pose(37.0, True, 1.2)
+    )
     img = _image(sim)
     pl = register(img, mini)
     out = draw_overlay(img, mini, pl, tmp_path / "sub" / "overlay.png", title="test")

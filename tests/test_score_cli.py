@@ -17,8 +17,25 @@ from scorer.observer import score_images
 @pytest.fixture(scope="module")
 def direct_set(tmp_path_factory):
     out = tmp_path_factory.mktemp("direct")
-    res = CliRunner().invoke(main, ["simulate", "--detector", "direct", "--small", "--layout", str(MINI),
-                                    "--count", "6", "--seed", "11", "--rotate", "17", "--out", str(out)])
+    res = CliRunner().invoke(
+        main,
+        [
+            "simulate",
+            "--detector",
+            "direct",
+            "--small",
+            "--layout",
+            str(MINI),
+            "--count",
+            "6",
+            "--seed",
+            "11",
+            "--rotate",
+            "17",
+            "--out",
+            str(out),
+        ],
+    )
     assert res.exit_code == 0, res.output
     return out
 
@@ -29,8 +46,18 @@ def _run(args):
 
 def test_json_output_has_the_agreed_shape(direct_set):
     files = sorted(str(p) for p in direct_set.glob("*.dcm"))
-    res = _run(files + ["--layout", str(MINI), "--json", "--n-boot", "200",
-                        "--conversion", str(direct_set / "direct-conversion.toml")])
+    res = _run(
+        files
+        + [
+            "--layout",
+            str(MINI),
+            "--json",
+            "--n-boot",
+            "200",
+            "--conversion",
+            str(direct_set / "direct-conversion.toml"),
+        ]
+    )
     assert res.exit_code == 0, res.output
     js = json.loads(res.stdout)
     assert js["observer"] == "npw"
@@ -71,17 +98,19 @@ def test_out_writes_report_tables_and_overlays(direct_set, tmp_path):
 
 def _limits(tmp_path, observer, value):
     p = tmp_path / f"lim-{observer}-{value}.toml"
-    p.write_text(f'format = "limen-limits/1"\nobserver = "{observer}"\nsource = "test values (invented)"\n'
-                 f"[[limits]]\ndiameter_mm = 0.1\nacceptable = {value}\n"
-                 f"[[limits]]\ndiameter_mm = 1.0\nacceptable = {value / 10}\n")
+    p.write_text(
+        f'format = "limen-limits/1"\nobserver = "{observer}"\nsource = "test values (invented)"\n'
+        f"[[limits]]\ndiameter_mm = 0.1\nacceptable = {value}\n"
+        f"[[limits]]\ndiameter_mm = 1.0\nacceptable = {value / 10}\n"
+    )
     return p
 
 
 def test_exit_codes_follow_the_verdicts(direct_set, tmp_path):
     files = sorted(str(p) for p in direct_set.glob("*.dcm"))
     base = files + ["--layout", str(MINI), "--n-boot", "200"]
-    assert _run(base + ["--limits", str(_limits(tmp_path, "npw", 0.5))]).exit_code == 0     # generous: pass
-    res = _run(base + ["--limits", str(_limits(tmp_path, "npw", 0.002)), "--json"])         # strict: fail
+    assert _run(base + ["--limits", str(_limits(tmp_path, "npw", 0.5))]).exit_code == 0  # generous: pass
+    res = _run(base + ["--limits", str(_limits(tmp_path, "npw", 0.002)), "--json"])  # strict: fail
     assert res.exit_code == 1
     assert {v["verdict"] for v in json.loads(res.stdout)["verdicts"]} == {"fail"}
     # human limits with model thresholds need a human/model factor
@@ -89,11 +118,14 @@ def test_exit_codes_follow_the_verdicts(direct_set, tmp_path):
     assert res.exit_code == 2 and "human-factor" in res.output
     assert _run(base + ["--limits", str(_limits(tmp_path, "human", 0.5)), "--human-factor", "3"]).exit_code == 0
     # a limit inside the CI: INDETERMINATE has its own exit status, 3 (documented in the README)
-    th = {t["diameter_mm"]: t for t in json.loads(_run(base + ["--json"]).stdout)["thresholds"]
-          if t["method"] == "dprime"}
+    th = {
+        t["diameter_mm"]: t for t in json.loads(_run(base + ["--json"]).stdout)["thresholds"] if t["method"] == "dprime"
+    }
     mid = tmp_path / "mid.toml"
-    mid.write_text('format = "limen-limits/1"\nobserver = "npw"\nsource = "test values (invented)"\n'
-                   f"[[limits]]\ndiameter_mm = 1.0\nacceptable = {th[1.0]['threshold_contrast']}\n")
+    mid.write_text(
+        'format = "limen-limits/1"\nobserver = "npw"\nsource = "test values (invented)"\n'
+        f"[[limits]]\ndiameter_mm = 1.0\nacceptable = {th[1.0]['threshold_contrast']}\n"
+    )
     res = _run(base + ["--limits", str(mid), "--json"])
     assert json.loads(res.stdout)["overall_verdict"] == "indeterminate" and res.exit_code == 3
     # a human factor without limits has no effect, and says so
@@ -111,7 +143,7 @@ def test_bad_inputs_give_one_line_and_exit_2(direct_set, tmp_path):
     ]
     npy = tmp_path / "a.npy"
     np.save(npy, np.ones((50, 50)))
-    cases.append(([str(npy), "--layout", str(MINI)], "--pixel-spacing"))   # the error names the option
+    cases.append(([str(npy), "--layout", str(MINI)], "--pixel-spacing"))  # the error names the option
     for args, needle in cases:
         res = _run(args)
         assert res.exit_code == 2, res.output
@@ -175,8 +207,11 @@ def _bad_files(tmp, good_dcm):
 def test_every_bad_image_exits_2_with_one_line(direct_set, tmp_path):
     good = next(direct_set.glob("*.dcm"))
     for path, needle in _bad_files(tmp_path, good):
-        res = _run([str(path), "--layout", str(MINI), "--pixel-spacing", "0.085"] if path.suffix != ".dcm"
-                   else [str(path), "--layout", str(MINI)])
+        res = _run(
+            [str(path), "--layout", str(MINI), "--pixel-spacing", "0.085"]
+            if path.suffix != ".dcm"
+            else [str(path), "--layout", str(MINI)]
+        )
         assert res.exit_code == 2, (path, res.output)
         lines = [ln for ln in res.output.splitlines() if ln.strip()]
         assert len(lines) == 1 and lines[0].startswith("error: ") and path.name in lines[0], res.output
@@ -190,8 +225,13 @@ def test_compressed_dicom_without_its_decoder_exits_2(direct_set, tmp_path, monk
     img = load_image(next(direct_set.glob("*.dcm")))
     from scorer.images import write_dicom
 
-    p = write_dicom(tmp_path / "jls.dcm", img.pixels.astype(np.uint16), img.spacing_mm, {"Modality": "MG"},
-                    transfer_syntax="jpeg-ls-lossless")
+    p = write_dicom(
+        tmp_path / "jls.dcm",
+        img.pixels.astype(np.uint16),
+        img.spacing_mm,
+        {"Modality": "MG"},
+        transfer_syntax="jpeg-ls-lossless",
+    )
     monkeypatch.setattr(JPEGLSLosslessDecoder, "_available", {})
     res = _run([str(p), "--layout", str(MINI)])
     assert res.exit_code == 2
@@ -201,8 +241,10 @@ def test_compressed_dicom_without_its_decoder_exits_2(direct_set, tmp_path, monk
 
 def test_count_form_and_dprime_ci_options(direct_set):
     files = sorted(str(p) for p in direct_set.glob("*.dcm"))
-    res = _run(files + ["--layout", str(MINI), "--json", "--n-boot", "100", "--psychometric", "logistic",
-                        "--dprime-ci", "bootstrap"])
+    res = _run(
+        files
+        + ["--layout", str(MINI), "--json", "--n-boot", "100", "--psychometric", "logistic", "--dprime-ci", "bootstrap"]
+    )
     assert res.exit_code == 0, res.output
     js = json.loads(res.stdout)
     assert js["settings"]["count_form"] == "logistic" and js["settings"]["dprime_ci"] == "bootstrap"
@@ -211,17 +253,41 @@ def test_count_form_and_dprime_ci_options(direct_set):
 def test_human_factor_from_an_analysis_file(direct_set, tmp_path):
     files = sorted(str(p) for p in direct_set.glob("*.dcm"))
     analysis = tmp_path / "analysis.json"
-    analysis.write_text(json.dumps({"human_model_factor": {"observer": "npwe", "factor": 1.9, "by_observer": [
-        {"observer": "npwe", "factor": 1.9}]}}))
+    analysis.write_text(
+        json.dumps(
+            {
+                "human_model_factor": {
+                    "observer": "npwe",
+                    "factor": 1.9,
+                    "by_observer": [{"observer": "npwe", "factor": 1.9}],
+                }
+            }
+        )
+    )
     lim = _limits(tmp_path, "human", 0.5)
-    res = _run(files + ["--layout", str(MINI), "--n-boot", "100", "--observer", "npwe", "--limits", str(lim),
-                        "--human-factor-from", str(analysis), "--json"])
+    res = _run(
+        files
+        + [
+            "--layout",
+            str(MINI),
+            "--n-boot",
+            "100",
+            "--observer",
+            "npwe",
+            "--limits",
+            str(lim),
+            "--human-factor-from",
+            str(analysis),
+            "--json",
+        ]
+    )
     js = json.loads(res.stdout)
     assert res.exit_code == {"pass": 0, "indeterminate": 3}[js["overall_verdict"]], res.output
     assert js["human_factor"] == 1.9
     # a factor measured for another observer must not be used
-    res = _run(files + ["--layout", str(MINI), "--observer", "npw", "--limits", str(lim),
-                        "--human-factor-from", str(analysis)])
+    res = _run(
+        files + ["--layout", str(MINI), "--observer", "npw", "--limits", str(lim), "--human-factor-from", str(analysis)]
+    )
     assert res.exit_code == 2 and "no human/model factor for the NPW observer" in res.output
 
 
@@ -240,8 +306,23 @@ def test_two_images_of_the_demo_plate_give_a_report_not_a_crash(tmp_path):
     # Found by the robustness audit: with two images a count-method CI came out with both ends equal and a
     # hair above the estimate (floating point), and the contrast-detail plot raised "yerr must not contain
     # negative values", leaving no report.html and exit 1. A CI contains its estimate by construction.
-    sim = CliRunner().invoke(main, ["simulate", "--detector", "direct", "--kind", "phantom", "--small", "--count", "2",
-                                    "--seed", "3", "--out", str(tmp_path / "img")])
+    sim = CliRunner().invoke(
+        main,
+        [
+            "simulate",
+            "--detector",
+            "direct",
+            "--kind",
+            "phantom",
+            "--small",
+            "--count",
+            "2",
+            "--seed",
+            "3",
+            "--out",
+            str(tmp_path / "img"),
+        ],
+    )
     assert sim.exit_code == 0, sim.output
     files = sorted(str(p) for p in (tmp_path / "img").glob("*.dcm"))
     res = _run(files + ["--n-boot", "50", "--out", str(tmp_path / "r")])
@@ -258,10 +339,10 @@ def test_a_ci_always_contains_its_estimate():
     est = 0.0123
     p = ThresholdPoint(1.0, est, est * (1 + 1e-15), est * (1 + 1e-15), "count", "npw", 2, 3, 2 / 3)
     assert p.ci_low <= p.threshold_contrast <= p.ci_high
-    p = ThresholdPoint(1.0, est, 0.010, 0.011, "count", "npw", 2, 3, 2 / 3)   # estimate above a skewed interval
+    p = ThresholdPoint(1.0, est, 0.010, 0.011, "count", "npw", 2, 3, 2 / 3)  # estimate above a skewed interval
     assert (p.ci_low, p.ci_high) == (0.010, est)
     nan = ThresholdPoint(1.0, float("nan"), 0.01, 0.02, "count", "npw", 2, 3, 2 / 3)
-    assert (nan.ci_low, nan.ci_high) == (0.01, 0.02)   # nothing to enclose
+    assert (nan.ci_low, nan.ci_high) == (0.01, 0.02)  # nothing to enclose
 
 
 def test_error_bars_never_negative():

@@ -16,15 +16,16 @@ MINI = Path(__file__).parent / "data" / "mini-plate.toml"
 
 def _pure_quantum():
     # gain 1, no excess noise, no electronic noise, no offset: pixel value = absorbed quanta
-    return detector_model("direct").with_overrides(swank=1.0, electronic_noise_adu=0.0, adu_per_quantum=1.0,
-                                                   offset_adu=0.0, qde=1.0, q_per_mm2_ugy=5000.0)
+    return detector_model("direct").with_overrides(
+        swank=1.0, electronic_noise_adu=0.0, adu_per_quantum=1.0, offset_adu=0.0, qde=1.0, q_per_mm2_ugy=5000.0
+    )
 
 
 def test_poisson_variance_equals_mean_on_pure_quantum_flat_field():
     # Poisson counting: variance = mean (REFERENCES.md, "Quantum-limited detection"; Rose 1948)
     sim = simulate(_pure_quantum(), "flat", dose_ugy=40.0, seed=3, small=True)
     px = sim.pixels.astype(float)
-    expected_mean = 5000.0 * 40.0 * 0.085 ** 2
+    expected_mean = 5000.0 * 40.0 * 0.085**2
     assert px.mean() == pytest.approx(expected_mean, rel=0.002)
     # relative standard error of a variance from n = 262144 samples is sqrt(2/n) = 0.28 %
     assert px.var(ddof=1) / px.mean() == pytest.approx(1.0, abs=0.015)
@@ -37,10 +38,10 @@ def _radial_nps(field, pixel_mm):
     acc = np.zeros((roi, roi))
     for i in range(n):
         for j in range(n):
-            blk = field[i * roi:(i + 1) * roi, j * roi:(j + 1) * roi]
+            blk = field[i * roi : (i + 1) * roi, j * roi : (j + 1) * roi]
             blk = blk - blk.mean()
             acc += np.abs(np.fft.fft2(blk)) ** 2
-    nps = acc / (n * n) * pixel_mm ** 2 / (roi * roi)
+    nps = acc / (n * n) * pixel_mm**2 / (roi * roi)
     f = np.fft.fftfreq(roi, d=pixel_mm)
     fr = np.hypot(f[:, None], f[None, :])
     return nps, fr
@@ -53,7 +54,7 @@ def test_direct_panel_noise_is_white_with_nps_sigma2_dxdy():
     sim = simulate(m, "flat", dose_ugy=100.0, seed=5, small=True)
     px = sim.kerma_ugy()
     nps, fr = _radial_nps(px, m.pixel_pitch_mm)
-    level = px.var() * m.pixel_pitch_mm ** 2
+    level = px.var() * m.pixel_pitch_mm**2
     nyq = 0.5 / m.pixel_pitch_mm
     low = nps[(fr > 0.5) & (fr < 0.3 * nyq)].mean()
     high = nps[(fr > 0.7 * nyq) & (fr < nyq)].mean()
@@ -75,8 +76,9 @@ def test_indirect_panel_noise_falls_with_frequency():
 def test_mean_signal_is_proportional_to_dose():
     # A linear panel: mean linearised signal ∝ air kerma (conversion function, IEC 62220-1-2)
     doses = np.array([25.0, 50.0, 100.0, 200.0])
-    means = np.array([simulate(detector_model("indirect"), "flat", d, seed=int(d), small=True).kerma_ugy().mean()
-                      for d in doses])
+    means = np.array(
+        [simulate(detector_model("indirect"), "flat", d, seed=int(d), small=True).kerma_ugy().mean() for d in doses]
+    )
     slope = (doses @ means) / (doses @ doses)
     assert slope == pytest.approx(1.0, rel=0.005)
     assert np.max(np.abs(means / doses - slope)) < 0.005
@@ -129,9 +131,28 @@ def test_phantom_pose_places_markers_where_truth_says():
 def test_cli_writes_dicom_and_truth_sidecar(tmp_path):
     from scorer.images import load_image
 
-    res = CliRunner().invoke(main, ["simulate", "--detector", "indirect", "--kind", "phantom", "--small",
-                                    "--layout", str(MINI), "--rotate", "90", "--flip", "--count", "2",
-                                    "--seed", "4", "--out", str(tmp_path)])
+    res = CliRunner().invoke(
+        main,
+        [
+            "simulate",
+            "--detector",
+            "indirect",
+            "--kind",
+            "phantom",
+            "--small",
+            "--layout",
+            str(MINI),
+            "--rotate",
+            "90",
+            "--flip",
+            "--count",
+            "2",
+            "--seed",
+            "4",
+            "--out",
+            str(tmp_path),
+        ],
+    )
     assert res.exit_code == 0, res.output
     files = sorted(tmp_path.glob("*.dcm"))
     assert len(files) == 2
@@ -147,13 +168,16 @@ def test_cli_writes_dicom_and_truth_sidecar(tmp_path):
     assert not np.array_equal(img.pixels, load_image(files[1]).pixels)
 
 
-@pytest.mark.parametrize("args,msg", [
-    (["--dose-ugy", "0"], "--dose-ugy must be positive"),
-    (["--layout", "nowhere.toml"], "nowhere.toml: cannot read layout file"),
-    (["--magnification", "5"], "--magnification must lie in"),
-    (["--rotate", "nan"], "--rotate must be a finite number"),        # found by the robustness audit
-    (["--seed", "-1"], "--seed"),
-])
+@pytest.mark.parametrize(
+    "args,msg",
+    [
+        (["--dose-ugy", "0"], "--dose-ugy must be positive"),
+        (["--layout", "nowhere.toml"], "nowhere.toml: cannot read layout file"),
+        (["--magnification", "5"], "--magnification must lie in"),
+        (["--rotate", "nan"], "--rotate must be a finite number"),  # found by the robustness audit
+        (["--seed", "-1"], "--seed"),
+    ],
+)
 def test_cli_bad_input_one_line_exit_2(tmp_path, args, msg):
     res = CliRunner().invoke(main, ["simulate", "--small", "--out", str(tmp_path)] + args)
     assert res.exit_code == 2
@@ -193,8 +217,10 @@ def test_two_edge_orientations_in_one_folder_never_collide(tmp_path):
     again = run(main, ["simulate", "--kind", "edge", "--small", "--edge-angle-deg", "2.5", "--out", str(tmp_path)])
     lines = [ln for ln in again.output.splitlines() if ln.strip()]
     assert again.exit_code == 2 and len(lines) == 1 and "already exists" in lines[0] and "--overwrite" in lines[0]
-    ok = run(main, ["simulate", "--kind", "edge", "--small", "--edge-angle-deg", "2.5", "--out", str(tmp_path),
-                    "--overwrite"])
+    ok = run(
+        main,
+        ["simulate", "--kind", "edge", "--small", "--edge-angle-deg", "2.5", "--out", str(tmp_path), "--overwrite"],
+    )
     assert ok.exit_code == 0, ok.output
     # both orientations measured: the detector reports an MTF along x and along y (IEC 62220-1: both directions)
     det = run(main, ["detector", "--edge", *map(str, sorted(tmp_path.glob("*.dcm"))), "--json"])

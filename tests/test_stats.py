@@ -39,8 +39,9 @@ def small_study(seed=0, **kw):
 # ----------------------------------------------------------------------------- reader model
 def test_reader_model_marginal_pc_matches_mafc_formula():
     # The generator's choices follow Pc = Pc_M(d′_r) with d′_r = d′_T·C/C_T,r (Green & Swets 1966).
-    st = simulate_reader_study(np.random.default_rng(3), 3, detectors={"A": 1.0}, diameters_mm=(0.5,),
-                               n_images=400, n_contrasts=6)
+    st = simulate_reader_study(
+        np.random.default_rng(3), 3, detectors={"A": 1.0}, diameters_mm=(0.5,), n_images=400, n_contrasts=6
+    )
     tr = st.trials.merge(st.truth, on=["reader", "detector", "diameter_mm"])
     d_t = dprime_for_pc(0.625, 4)
     tr["pc_true"] = pc_mafc_fast(d_t * tr["contrast"] / tr["threshold_contrast"], 4)
@@ -56,8 +57,9 @@ def test_per_reader_bootstrap_ci_coverage():
     # contrasts.  Measured coverage 0.92 (0.945 with 24 images); the plain percentile interval gave 0.895.
     hits, errs = [], []
     for s in range(100):
-        st = simulate_reader_study(np.random.default_rng(500 + s), 2, detectors={"A": 1.0}, diameters_mm=(0.5,),
-                                   n_images=16)
+        st = simulate_reader_study(
+            np.random.default_rng(500 + s), 2, detectors={"A": 1.0}, diameters_mm=(0.5,), n_images=16
+        )
         rc = reader_curves(st.trials, 4, np.random.default_rng(s), 200)
         m = rc.merge(st.truth, on=["reader", "detector", "diameter_mm"], suffixes=("", "_true"))
         hits += list((m.ci_low <= m.threshold_contrast_true) & (m.threshold_contrast_true <= m.ci_high))
@@ -72,7 +74,7 @@ def _marginal_threshold(pop: ReaderPopulation, c_model: float, m=4, crit=0.625):
     """Threshold of the population-averaged psychometric function E_F[Pc_M(d′_T·C/(F·C_model))]."""
     from scipy.optimize import brentq
 
-    sd = np.sqrt(np.log1p(pop.cv_between ** 2))
+    sd = np.sqrt(np.log1p(pop.cv_between**2))
     z, w = np.polynomial.hermite_e.hermegauss(40)
     w = w / w.sum()
     f = np.exp(np.log(pop.median_factor) + sd * z)
@@ -89,8 +91,9 @@ def test_pooled_gee_ci_coverage():
     truth = _marginal_threshold(pop, model_threshold(1.0))
     hits, errs = 0, []
     for s in range(200):
-        st = simulate_reader_study(np.random.default_rng(1000 + s), 8, detectors={"A": 1.0}, diameters_mm=(1.0,),
-                                   n_images=16, population=pop)
+        st = simulate_reader_study(
+            np.random.default_rng(1000 + s), 8, detectors={"A": 1.0}, diameters_mm=(1.0,), n_images=16, population=pop
+        )
         pc, notes = pooled_curves(st.trials, 4)
         r = pc.iloc[0]
         hits += r.ci_low <= truth <= r.ci_high
@@ -122,8 +125,9 @@ def test_detector_ratio_recovered_and_null():
     # excludes 1 with 10 readers × 48 images per detector (with 16 images the shared image noise makes
     # the CI ≈ ±25 % and it may include 1); with a true ratio of 1 the CI includes 1 and the
     # Holm-adjusted p-values stay above 0.05 (Holm 1979).  Measured: 1.28 (1.14–1.44), 1.18 (1.06–1.31).
-    st = simulate_reader_study(np.random.default_rng(21), 10, detectors={"direct": 1.0, "indirect": 1.3},
-                               diameters_mm=(0.1, 0.5), n_images=48)
+    st = simulate_reader_study(
+        np.random.default_rng(21), 10, detectors={"direct": 1.0, "indirect": 1.3}, diameters_mm=(0.1, 0.5), n_images=48
+    )
     rc = reader_curves(st.trials, 4, np.random.default_rng(0), 0)
     comp, _ = compare_groups(rc, "detector", trials=st.trials, m=4, n_boot=200, rng=np.random.default_rng(1))
     assert len(comp) == 2
@@ -131,10 +135,17 @@ def test_detector_ratio_recovered_and_null():
         assert r.ci_low > 1.0 and r.ci_low <= 1.3 <= r.ci_high, r
         assert abs(np.log(r.ratio / 1.3)) < 0.15
         assert r.p_adjusted < 0.05
-    st0 = simulate_reader_study(np.random.default_rng(22), 10, detectors={"direct": 1.0, "indirect": 1.0},
-                                diameters_mm=(0.1, 0.5), n_images=16)
-    comp0, _ = compare_groups(reader_curves(st0.trials, 4, np.random.default_rng(0), 0), "detector",
-                              trials=st0.trials, m=4, n_boot=200, rng=np.random.default_rng(1))
+    st0 = simulate_reader_study(
+        np.random.default_rng(22), 10, detectors={"direct": 1.0, "indirect": 1.0}, diameters_mm=(0.1, 0.5), n_images=16
+    )
+    comp0, _ = compare_groups(
+        reader_curves(st0.trials, 4, np.random.default_rng(0), 0),
+        "detector",
+        trials=st0.trials,
+        m=4,
+        n_boot=200,
+        rng=np.random.default_rng(1),
+    )
     for r in comp0.itertuples():
         assert r.ci_low <= 1.0 <= r.ci_high and r.p_adjusted > 0.05
     assert "no clear difference" in comp0.sentence.iloc[0]
@@ -146,10 +157,17 @@ def test_ratio_ci_coverage():
     # variance from the bootstrap over images).  Measured coverage 0.94.
     hits = 0
     for s in range(100):
-        st = simulate_reader_study(np.random.default_rng(3000 + s), 6, detectors={"a": 1.0, "b": 1.3},
-                                   diameters_mm=(0.5,), n_images=12)
-        comp, _ = compare_groups(reader_curves(st.trials, 4, np.random.default_rng(s), 0), "detector",
-                                 trials=st.trials, m=4, n_boot=60, rng=np.random.default_rng(s))
+        st = simulate_reader_study(
+            np.random.default_rng(3000 + s), 6, detectors={"a": 1.0, "b": 1.3}, diameters_mm=(0.5,), n_images=12
+        )
+        comp, _ = compare_groups(
+            reader_curves(st.trials, 4, np.random.default_rng(s), 0),
+            "detector",
+            trials=st.trials,
+            m=4,
+            n_boot=60,
+            rng=np.random.default_rng(s),
+        )
         hits += comp.ci_low.iloc[0] <= 1.3 <= comp.ci_high.iloc[0]
     assert 0.90 <= hits / 100 <= 0.98, hits / 100
 
@@ -179,8 +197,9 @@ def test_human_model_factor_recovered():
     # studies with 8 readers × 2 detectors × 2 diameters gave coverage 0.95, mean log error +0.026.
     hits, errs = 0, []
     for s in range(60):
-        st = simulate_reader_study(np.random.default_rng(700 + s), 6, detectors={"A": 1.0}, diameters_mm=(0.5,),
-                                   n_images=16)
+        st = simulate_reader_study(
+            np.random.default_rng(700 + s), 6, detectors={"A": 1.0}, diameters_mm=(0.5,), n_images=16
+        )
         hm = human_model_factor(st.trials, st.model_trials, 4, np.random.default_rng(s), 200)
         geo = float(np.exp(np.log(st.readers.factor).mean()))
         hits += hm["ci_low"] <= geo <= hm["ci_high"]
@@ -220,22 +239,34 @@ def test_cohen_kappa_published_example_and_statsmodels():
     y[:150] = x[:150]
     tab = np.zeros((4, 4))
     np.add.at(tab, (x, y), 1)
-    po, pe = np.trace(tab) / 300, (tab.sum(1) @ tab.sum(0)) / 300 ** 2
+    po, pe = np.trace(tab) / 300, (tab.sum(1) @ tab.sum(0)) / 300**2
     assert cohen_kappa_table(x, y)["kappa"] == pytest.approx((po - pe) / (1 - pe), abs=1e-12)
 
 
 def test_fleiss_kappa_published_example():
     # Fleiss (1971) kappa; worked example of 10 subjects × 14 raters × 5 categories, κ = 0.210
     # (from memory, as reproduced in many references).  Also the hand formula.
-    counts = np.array([[0, 0, 0, 0, 14], [0, 2, 6, 4, 2], [0, 0, 3, 5, 6], [0, 3, 9, 2, 0], [2, 2, 8, 1, 1],
-                       [7, 7, 0, 0, 0], [3, 2, 6, 3, 0], [2, 5, 3, 2, 2], [6, 5, 2, 1, 0], [0, 2, 2, 3, 7]])
+    counts = np.array(
+        [
+            [0, 0, 0, 0, 14],
+            [0, 2, 6, 4, 2],
+            [0, 0, 3, 5, 6],
+            [0, 3, 9, 2, 0],
+            [2, 2, 8, 1, 1],
+            [7, 7, 0, 0, 0],
+            [3, 2, 6, 3, 0],
+            [2, 5, 3, 2, 2],
+            [6, 5, 2, 1, 0],
+            [0, 2, 2, 3, 7],
+        ]
+    )
     labels = pd.DataFrame([np.repeat(np.arange(5), row) for row in counts])
     res = fleiss_kappa_items(labels)
     assert res["kappa"] == pytest.approx(0.210, abs=5e-4)
     n = 14
     p_j = counts.sum(0) / counts.sum()
-    p_i = ((counts ** 2).sum(1) - n) / (n * (n - 1))
-    hand = (p_i.mean() - (p_j ** 2).sum()) / (1 - (p_j ** 2).sum())
+    p_i = ((counts**2).sum(1) - n) / (n * (n - 1))
+    hand = (p_i.mean() - (p_j**2).sum()) / (1 - (p_j**2).sum())
     assert res["kappa"] == pytest.approx(hand, abs=1e-12)
 
 
@@ -253,14 +284,23 @@ def test_agreement_from_trial_table():
 
 
 # ----------------------------------------------------------------------------- validation
-@pytest.mark.parametrize("mutate, message", [
-    (lambda d: d.drop(columns=["correct"]), "missing column"),
-    (lambda d: d.assign(correct=d["correct"].where(d.index != 5, 2)), r"row 6 \(line 7\): correct must be 0 or 1"),
-    (lambda d: d.assign(contrast=d["contrast"].where(d.index != 3, -0.01)), r"row 4 \(line 5\): contrast -0.01 is negative"),
-    (lambda d: d.assign(diameter_mm=d["diameter_mm"].astype(object).where(d.index != 0, "big")), "row 1 .*not a number"),
-    (lambda d: d.assign(reader=d["reader"].where(d.index != 2, None)), "row 3 .*empty reader"),
-    (lambda d: d.assign(correct=1 - d["correct"]), "row 1 .*chosen_site"),
-])
+@pytest.mark.parametrize(
+    "mutate, message",
+    [
+        (lambda d: d.drop(columns=["correct"]), "missing column"),
+        (lambda d: d.assign(correct=d["correct"].where(d.index != 5, 2)), r"row 6 \(line 7\): correct must be 0 or 1"),
+        (
+            lambda d: d.assign(contrast=d["contrast"].where(d.index != 3, -0.01)),
+            r"row 4 \(line 5\): contrast -0.01 is negative",
+        ),
+        (
+            lambda d: d.assign(diameter_mm=d["diameter_mm"].astype(object).where(d.index != 0, "big")),
+            "row 1 .*not a number",
+        ),
+        (lambda d: d.assign(reader=d["reader"].where(d.index != 2, None)), "row 3 .*empty reader"),
+        (lambda d: d.assign(correct=1 - d["correct"]), "row 1 .*chosen_site"),
+    ],
+)
 def test_malformed_tables_give_clear_errors(mutate, message):
     st = small_study(1, n_readers=2, n_repeats=1)
     with pytest.raises(LimenError, match=message):
@@ -302,12 +342,36 @@ def test_readers_from_image_responses_have_their_designed_factor():
         for j, c in enumerate(contrasts):
             truth = int(rng.integers(m))
             for s in range(m):
-                rows.append((f"i{i}", f"t{j}", 0.5, c, m, s, s == truth,
-                             (c if s == truth else 0.0) + sigma * rng.standard_normal(), "npw"))
-    resp = pd.DataFrame(rows, columns=["image", "target", "diameter_mm", "contrast", "m_alternatives", "site",
-                                       "is_signal", "response", "observer"])
-    readers = pd.DataFrame({"reader": ["r1"], "factor": [2.0], "efficiency": [0.5], "internal_noise": [np.sqrt(1.0)],
-                            "lapse": [0.0]})  # F = √(1+1)/√0.5 = 2
+                rows.append(
+                    (
+                        f"i{i}",
+                        f"t{j}",
+                        0.5,
+                        c,
+                        m,
+                        s,
+                        s == truth,
+                        (c if s == truth else 0.0) + sigma * rng.standard_normal(),
+                        "npw",
+                    )
+                )
+    resp = pd.DataFrame(
+        rows,
+        columns=[
+            "image",
+            "target",
+            "diameter_mm",
+            "contrast",
+            "m_alternatives",
+            "site",
+            "is_signal",
+            "response",
+            "observer",
+        ],
+    )
+    readers = pd.DataFrame(
+        {"reader": ["r1"], "factor": [2.0], "efficiency": [0.5], "internal_noise": [np.sqrt(1.0)], "lapse": [0.0]}
+    )  # F = √(1+1)/√0.5 = 2
     tr = readers_from_responses(resp, readers, rng)
     tr["m_alternatives"] = m
     human = count_thresholds(tr, n_boot=0).points[0].threshold_contrast
@@ -330,8 +394,20 @@ def test_a_plate_with_3_and_5_site_cells_uses_each_diameters_own_criterion():
                     true = int(rng.integers(m))
                     chosen = true if rng.random() < min(0.95, 0.4 + 10 * c / d) else int(rng.integers(m))
                     rows.append((f"r{r}", "A", f"i{i}", f"t{d}-{c}", d, c, chosen, true, int(chosen == true)))
-    trials = pd.DataFrame(rows, columns=["reader", "detector", "image", "target", "diameter_mm", "contrast",
-                                         "chosen_site", "true_site", "correct"])
+    trials = pd.DataFrame(
+        rows,
+        columns=[
+            "reader",
+            "detector",
+            "image",
+            "target",
+            "diameter_mm",
+            "contrast",
+            "chosen_site",
+            "true_site",
+            "correct",
+        ],
+    )
     m = m_alternatives_of(trials)
     assert m == {0.25: 3, 1.0: 5}
     assert criterion_at(m, 0.25, None) == pytest.approx(2 / 3) and criterion_at(m, 1.0, None) == pytest.approx(0.6)

@@ -31,8 +31,9 @@ def test_a_doubled_threshold_is_detected_far_above_chance():
 
 
 def test_population_from_a_pilot_analysis_and_bad_input():
-    pop = population_from_analysis({"between_reader_cv": [{"cv_between": 0.1}, {"cv_between": 0.2}],
-                                    "human_model_factor": {"factor": 2.5}})
+    pop = population_from_analysis(
+        {"between_reader_cv": [{"cv_between": 0.1}, {"cv_between": 0.2}], "human_model_factor": {"factor": 2.5}}
+    )
     assert isinstance(pop, ReaderPopulation) and pop.median_factor == 2.5 and pop.cv_between == pytest.approx(0.15)
     with pytest.raises(LimenError, match="between-reader CV"):
         population_from_analysis({"between_reader_cv": []})

@@ -23,8 +23,15 @@ import pytest
 from webapp_helpers import MINI, PASSWORDS, accounts_app
 
 CHROMIUM = "/usr/bin/chromium"
-CHROMIUM_ARGS = ["--headless", "--no-sandbox", "--disable-gpu", "--disable-background-networking",
-                 "--disable-component-update", "--disable-sync", "--no-first-run"]
+CHROMIUM_ARGS = [
+    "--headless",
+    "--no-sandbox",
+    "--disable-gpu",
+    "--disable-background-networking",
+    "--disable-component-update",
+    "--disable-sync",
+    "--no-first-run",
+]
 ARTIFACTS = Path(__file__).parent / "artifacts" / "browser"
 
 
@@ -32,12 +39,12 @@ def _darkest_site(gray: np.ndarray, sites) -> int:
     """What a careful reader does on the screen: the discs are darker; compare disc-sized neighbourhoods of the
     candidate sites at a few scales, in units of the displayed noise."""
     noise = max(1.4826 * np.median(np.abs(np.diff(gray, axis=1))) / np.sqrt(2), 1e-6)
-    yy, xx = np.mgrid[:gray.shape[0], :gray.shape[1]]
+    yy, xx = np.mgrid[: gray.shape[0], : gray.shape[1]]
     best = np.full(len(sites), -np.inf)
     for radius in (0.75, 1.5, 2.5, 4.0, 6.0):
         means, counts = [], []
         for r, c in sites:
-            m = (yy - r) ** 2 + (xx - c) ** 2 <= radius ** 2
+            m = (yy - r) ** 2 + (xx - c) ** 2 <= radius**2
             means.append(gray[m].mean())
             counts.append(m.sum())
         z = (np.median(means) - np.array(means)) / (noise / np.sqrt(np.array(counts)))
@@ -148,7 +155,7 @@ def test_coordinator_and_reader_in_chromium(server, tmp_path):
             rp.wait_for_selector("#check[data-ready]")
             sites = json.loads(rp.get_attribute("#check", "data-sites"))
             gray = _screen(rp)
-            pick = int(np.argmax([gray[r - 4:r + 5, c - 4:c + 5].mean() for r, c in sites]))
+            pick = int(np.argmax([gray[r - 4 : r + 5, c - 4 : c + 5].mean() for r, c in sites]))
             box = rp.locator("#pixels").bounding_box()
             scale = box["width"] / gray.shape[1]
             rp.mouse.click(box["x"] + (sites[pick][1] + 0.5) * scale, box["y"] + (sites[pick][0] + 0.5) * scale)
@@ -159,8 +166,10 @@ def test_coordinator_and_reader_in_chromium(server, tmp_path):
             # ---------------------------------------------------------------- reader: every trial
             chosen, windows_shown, n = [], [], 0
             while True:
-                rp.wait_for_function("() => document.getElementById('reader').dataset.ready"
-                                     " || !document.getElementById('done').classList.contains('hidden')")
+                rp.wait_for_function(
+                    "() => document.getElementById('reader').dataset.ready"
+                    " || !document.getElementById('done').classList.contains('hidden')"
+                )
                 if rp.locator("#done").is_visible():
                     break
                 practice = rp.locator("#practice-tag").is_visible()
@@ -169,7 +178,7 @@ def test_coordinator_and_reader_in_chromium(server, tmp_path):
                 gray = _screen(rp)
                 site = _darkest_site(gray, sites)
                 scale = box["width"] / gray.shape[1]
-                if n == 5:      # drag: wider window, and press keys for invert on/off and zoom in/out
+                if n == 5:  # drag: wider window, and press keys for invert on/off and zoom in/out
                     rp.mouse.move(box["x"] + 5, box["y"] + 5)
                     rp.mouse.down()
                     rp.mouse.move(box["x"] + 60, box["y"] + 25, steps=6)
@@ -178,13 +187,12 @@ def test_coordinator_and_reader_in_chromium(server, tmp_path):
                         rp.keyboard.press(key)
                 if n == 3:
                     rp.screenshot(path=str(ARTIFACTS / "reading-screen.png"))
-                if n % 2:       # mouse: click the site, then the Confirm button
-                    rp.mouse.click(box["x"] + (sites[site][1] + 0.5) * scale,
-                                   box["y"] + (sites[site][0] + 0.5) * scale)
+                if n % 2:  # mouse: click the site, then the Confirm button
+                    rp.mouse.click(box["x"] + (sites[site][1] + 0.5) * scale, box["y"] + (sites[site][0] + 0.5) * scale)
                     assert rp.inner_text("#choice") == str(site + 1)
                     windows_shown.append(float(rp.inner_text("#wl-window")))
                     rp.click("#confirm")
-                else:           # keyboard: the site's number, then Enter
+                else:  # keyboard: the site's number, then Enter
                     rp.keyboard.press(str(site + 1))
                     assert rp.inner_text("#choice") == str(site + 1)
                     windows_shown.append(float(rp.inner_text("#wl-window")))
@@ -204,17 +212,22 @@ def test_coordinator_and_reader_in_chromium(server, tmp_path):
             csv_path = tmp_path / "export.csv"
             dl.value.save_as(csv_path)
             df = pd.read_csv(csv_path)
-            assert df["chosen_site"].tolist() == chosen            # exactly the responses given, in order
-            assert set(df["reader"]) == {"reader1"} and set(df["detector"]) == {"HSX panel direct",
-                                                                                  "HSX panel indirect"}
-            assert (df["response_ms"] > 0).all() and df["window"].nunique() >= 2   # the drag changed W/L
+            assert df["chosen_site"].tolist() == chosen  # exactly the responses given, in order
+            assert set(df["reader"]) == {"reader1"} and set(df["detector"]) == {
+                "HSX panel direct",
+                "HSX panel indirect",
+            }
+            assert (df["response_ms"] > 0).all() and df["window"].nunique() >= 2  # the drag changed W/L
             cp.click("#analysis-link")
             cp.click("#run-analysis")
             frame = cp.frame_locator("#report")
             frame.locator("text=Human readers vs model observer").wait_for()
             cp.screenshot(path=str(ARTIFACTS / "analysis-page.png"), full_page=True)
-            cp.goto(cp.get_attribute("#report-link", "href") if cp.get_attribute("#report-link", "href")
-                    .startswith("http") else base + cp.get_attribute("#report-link", "href"))
+            cp.goto(
+                cp.get_attribute("#report-link", "href")
+                if cp.get_attribute("#report-link", "href").startswith("http")
+                else base + cp.get_attribute("#report-link", "href")
+            )
             cp.screenshot(path=str(ARTIFACTS / "analysis-report.png"), full_page=True)
         finally:
             browser.close()

@@ -17,14 +17,16 @@ from scorer.cli import main
 
 def test_users_add_generated_prompted_duplicate_and_list(tmp_path):
     inst = str(tmp_path / "inst")
-    r = CliRunner().invoke(main, ["users", "add", "dr.hale", "--role", "coordinator", "--generate",
-                                  "--instance", inst])
+    r = CliRunner().invoke(main, ["users", "add", "dr.hale", "--role", "coordinator", "--generate", "--instance", inst])
     assert r.exit_code == 0, r.output
     password = re.search(r"password \(shown once\): (\S+)", r.output).group(1)
-    r = CliRunner().invoke(main, ["users", "add", "reader_07", "--role", "reader", "--instance", inst],
-                           input="correct horse battery\ncorrect horse battery\n")
+    r = CliRunner().invoke(
+        main,
+        ["users", "add", "reader_07", "--role", "reader", "--instance", inst],
+        input="correct horse battery\ncorrect horse battery\n",
+    )
     assert r.exit_code == 0, r.output
-    assert "correct horse" not in r.output          # a prompted password is never echoed
+    assert "correct horse" not in r.output  # a prompted password is never echoed
     r = CliRunner().invoke(main, ["users", "add", "reader_07", "--role", "reader", "--generate", "--instance", inst])
     assert r.exit_code == 2 and "error: user name 'reader_07' is taken" in r.output
     r = CliRunner().invoke(main, ["users", "add", "bad name!", "--role", "reader", "--generate", "--instance", inst])
@@ -36,6 +38,7 @@ def test_users_add_generated_prompted_duplicate_and_list(tmp_path):
     # the accounts work in the app built on the same instance folder
     from webapp import create_app
     from webapp_helpers import csrf_from
+
     app = create_app({"INSTANCE_PATH": inst})
     c = app.test_client()
     tok = csrf_from(c.get("/login").text)
@@ -43,8 +46,12 @@ def test_users_add_generated_prompted_duplicate_and_list(tmp_path):
     tok = csrf_from(c.get("/login").text)
     c2 = app.test_client()
     tok2 = csrf_from(c2.get("/login").text)
-    assert c2.post("/login", data={"username": "reader_07", "password": "correct horse battery",
-                                   "csrf_token": tok2}).status_code == 302
+    assert (
+        c2.post(
+            "/login", data={"username": "reader_07", "password": "correct horse battery", "csrf_token": tok2}
+        ).status_code
+        == 302
+    )
     audit = c.get("/coordinator/audit").text
     assert audit.count("add_user") == 2
 
@@ -60,9 +67,13 @@ def test_serve_demo_gives_a_study_a_newcomer_can_read(tmp_path):
 
     port = _free_port()
     exe = Path(sys.executable).with_name("limen")
-    proc = subprocess.Popen([str(exe), "serve", "--demo", "--port", str(port), "--instance", str(tmp_path / "i")],
-                            stdout=subprocess.PIPE, stderr=subprocess.STDOUT, text=True,
-                            env={**os.environ, "PYTHONUNBUFFERED": "1"})
+    proc = subprocess.Popen(
+        [str(exe), "serve", "--demo", "--port", str(port), "--instance", str(tmp_path / "i")],
+        stdout=subprocess.PIPE,
+        stderr=subprocess.STDOUT,
+        text=True,
+        env={**os.environ, "PYTHONUNBUFFERED": "1"},
+    )
     lines = []
     try:
         deadline = time.time() + 180
@@ -79,8 +90,11 @@ def test_serve_demo_gives_a_study_a_newcomer_can_read(tmp_path):
         s = requests.Session()
         page = s.get(f"http://127.0.0.1:{port}/login", timeout=10).text
         tok = re.search(r'name="csrf_token" value="([^"]+)"', page).group(1)
-        r = s.post(f"http://127.0.0.1:{port}/login", data={"username": "reader1", "password": pw, "csrf_token": tok},
-                   timeout=10)
+        r = s.post(
+            f"http://127.0.0.1:{port}/login",
+            data={"username": "reader1", "password": pw, "csrf_token": tok},
+            timeout=10,
+        )
         assert r.status_code == 200 and "Demo reader study" in r.text and "Start" in r.text
     finally:
         proc.terminate()

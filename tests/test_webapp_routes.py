@@ -25,7 +25,7 @@ SIGNED_IN = {"anonymous": "login", "reader": "ok", "other_reader": "ok", "outsid
 
 # endpoint -> (method, expected outcome per visitor); destructive routes run last (close_study, then logout)
 MATRIX = {
-    "auth.index": ("GET", {**PUBLIC, "anonymous": "login"}),   # public, but sends visitors to sign in
+    "auth.index": ("GET", {**PUBLIC, "anonymous": "login"}),  # public, but sends visitors to sign in
     "auth.login": ("GET", PUBLIC),
     "coordinator.dashboard": ("GET", COORD),
     "coordinator.audit_log": ("GET", COORD),
@@ -57,7 +57,9 @@ MATRIX = {
 
 
 def _outcome(resp) -> str:
-    if resp.status_code == 401 or (resp.status_code in (301, 302, 303) and "/login" in resp.headers.get("Location", "")):
+    if resp.status_code == 401 or (
+        resp.status_code in (301, 302, 303) and "/login" in resp.headers.get("Location", "")
+    ):
         return "login"
     if resp.status_code in (403, 404):
         return str(resp.status_code)
@@ -70,13 +72,14 @@ def study(tmp_path_factory):
     c = app.test_client()
     tok = login(c, "reader1")
     pass_display_check(c, study_id, tok)
-    read_all(c, study_id, tok, limit=4)                  # some responses, so the analysis has data
+    read_all(c, study_id, tok, limit=4)  # some responses, so the analysis has data
     trial = c.get(f"/reading/api/studies/{study_id}/next").json
     cc = app.test_client()
     ctok = login(cc, "coordinator")
     assert cc.post(f"/analysis/studies/{study_id}/run", data={"csrf_token": ctok}).status_code == 302
     from webapp.models import AnalysisRun
     from webapp.security import db
+
     with app.app_context():
         run_id = db().query(AnalysisRun).first().id
     return app, {"study_id": study_id, "public_id": trial["trial"], "run_id": run_id}
@@ -86,7 +89,7 @@ def test_every_route_is_in_the_matrix(study):
     app, _ = study
     endpoints = {r.endpoint for r in app.url_map.iter_rules() if r.endpoint != "static"}
     assert endpoints == set(MATRIX), f"add to MATRIX: {endpoints - set(MATRIX)}; stale: {set(MATRIX) - endpoints}"
-    for ep in endpoints:   # every view declares who may use it
+    for ep in endpoints:  # every view declares who may use it
         assert getattr(app.view_functions[ep], "limen_roles", None), ep
 
 
@@ -97,7 +100,7 @@ def test_role_route_matrix(study):
     rules = {r.endpoint: r for r in app.url_map.iter_rules() if r.endpoint != "static"}
     wrong, cells = [], 0
     clients = {}
-    for visitor in VISITORS:     # one signed-in browser per visitor; enrolled readers pass the display check
+    for visitor in VISITORS:  # one signed-in browser per visitor; enrolled readers pass the display check
         c = app.test_client()
         token = login(c, USERS[visitor]) if visitor != "anonymous" else csrf_from(c.get("/login").text)
         if visitor in ("reader", "other_reader"):
@@ -112,16 +115,24 @@ def test_role_route_matrix(study):
             if method == "GET":
                 resp = c.get(url)
             elif endpoint.startswith("reading."):
-                body = {"chosen_site": 1, "response_ms": 900, "window": 500.0, "level": 2000.0, "zoom": 1,
-                        "site": 0, "viewing_distance_mm": 500}
+                body = {
+                    "chosen_site": 1,
+                    "response_ms": 900,
+                    "window": 500.0,
+                    "level": 2000.0,
+                    "zoom": 1,
+                    "site": 0,
+                    "viewing_distance_mm": 500,
+                }
                 resp = c.post(url, json=body, headers={"X-CSRFToken": token})
             else:
                 resp = c.post(url, data={"csrf_token": token})
             cells += 1
             got = _outcome(resp)
             if got != expected[visitor]:
-                wrong.append(f"{method} {url} as {visitor}: expected {expected[visitor]}, got {got} "
-                             f"({resp.status_code})")
+                wrong.append(
+                    f"{method} {url} as {visitor}: expected {expected[visitor]}, got {got} ({resp.status_code})"
+                )
     print(f"role x route matrix: {len(MATRIX)} routes x {len(VISITORS)} visitors = {cells} cells")
     assert cells == len(MATRIX) * len(VISITORS)
     assert not wrong, "\n".join(wrong)

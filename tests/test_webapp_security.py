@@ -10,8 +10,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from webapp_helpers import (PASSWORDS, accounts_app, csrf_from, demo_app, login, pass_display_check, race,
-                            reader_client)
+from webapp_helpers import PASSWORDS, accounts_app, csrf_from, demo_app, login, pass_display_check, race, reader_client
 
 
 @pytest.fixture
@@ -24,14 +23,14 @@ def test_state_changing_requests_without_a_csrf_token_are_refused(demo):
     app, sid = demo
     c = app.test_client()
     r = c.post("/login", data={"username": "reader1", "password": PASSWORDS["reader1"]})
-    assert r.status_code == 400 and "security token" in r.text        # sign-in form itself
+    assert r.status_code == 400 and "security token" in r.text  # sign-in form itself
     tok = login(c, "reader1")
     pass_display_check(c, sid, tok)
     t = c.get(f"/reading/api/studies/{sid}/next").json
     body = {"chosen_site": 0, "response_ms": 1000, "window": 100.0, "level": 50.0, "zoom": 1}
-    assert c.post(t["response_url"], json=body).status_code == 400                       # no header
+    assert c.post(t["response_url"], json=body).status_code == 400  # no header
     assert c.post(t["response_url"], json=body, headers={"X-CSRFToken": "forged"}).status_code == 400
-    assert c.get(f"/reading/api/studies/{sid}/next").json["trial"] == t["trial"]          # nothing stored
+    assert c.get(f"/reading/api/studies/{sid}/next").json["trial"] == t["trial"]  # nothing stored
     cc = app.test_client()
     login(cc, "coordinator")
     assert cc.post(f"/coordinator/studies/{sid}/close").status_code == 400
@@ -47,8 +46,9 @@ def test_security_headers_and_cookie_flags(demo):
     assert "script-src 'self'" in csp and "unsafe-inline" not in csp and "frame-ancestors 'none'" in csp
     assert page.headers["X-Content-Type-Options"] == "nosniff"
     assert page.headers["X-Frame-Options"] == "DENY"
-    r = c.post("/login", data={"username": "reader1", "password": PASSWORDS["reader1"],
-                               "csrf_token": csrf_from(page.text)})
+    r = c.post(
+        "/login", data={"username": "reader1", "password": PASSWORDS["reader1"], "csrf_token": csrf_from(page.text)}
+    )
     cookie = r.headers.get("Set-Cookie", "")
     assert "HttpOnly" in cookie and "SameSite=Lax" in cookie
     # no page of the app carries an inline script or inline event handler (the CSP would block it anyway)
@@ -77,8 +77,10 @@ def test_login_attempts_are_rate_limited(tmp_path):
     app, _ = demo_app(tmp_path, LOGIN_RATE_LIMIT="3 per minute")
     c = app.test_client()
     tok = csrf_from(c.get("/login").text)
-    codes = [c.post("/login", data={"username": "reader1", "password": "wrong", "csrf_token": tok}).status_code
-             for _ in range(4)]
+    codes = [
+        c.post("/login", data={"username": "reader1", "password": "wrong", "csrf_token": tok}).status_code
+        for _ in range(4)
+    ]
     assert codes == [401, 401, 401, 429]
     # even the right password is refused while the limit holds
     r = c.post("/login", data={"username": "reader1", "password": PASSWORDS["reader1"], "csrf_token": tok})
@@ -92,8 +94,10 @@ def test_open_redirect_after_login_is_refused(demo):
     app, _ = demo
     c = app.test_client()
     tok = csrf_from(c.get("/login").text)
-    r = c.post("/login?next=//evil.example/x", data={"username": "reader1", "password": PASSWORDS["reader1"],
-                                                     "csrf_token": tok})
+    r = c.post(
+        "/login?next=//evil.example/x",
+        data={"username": "reader1", "password": PASSWORDS["reader1"], "csrf_token": tok},
+    )
     assert r.status_code == 302 and "evil" not in r.headers["Location"]
 
 
@@ -111,8 +115,11 @@ def _reader_texts(client, sid, token):
         if t["done"]:
             break
         client.get(t["region_url"])
-        a = client.post(t["response_url"], json={"chosen_site": 0, "response_ms": 800, "window": 1.0, "level": 1.0,
-                                                 "zoom": 1}, headers={"X-CSRFToken": token})
+        a = client.post(
+            t["response_url"],
+            json={"chosen_site": 0, "response_ms": 800, "window": 1.0, "level": 1.0, "zoom": 1},
+            headers={"X-CSRFToken": token},
+        )
         answers.append((t, a.json))
     return texts, answers
 
@@ -125,8 +132,14 @@ def test_truth_and_blinded_labels_never_reach_the_reader(tmp_path):
     with app.app_context():
         images = db().query(StudyImage).all()
         regions = db().query(Region).all()
-        secret = {im.detector for im in images} | {im.label for im in images} | {im.code for im in images} | \
-            {im.sha256[:16] for im in images} | {r.target for r in regions} | {"HSX", "direct", "indirect"}
+        secret = (
+            {im.detector for im in images}
+            | {im.label for im in images}
+            | {im.code for im in images}
+            | {im.sha256[:16] for im in images}
+            | {r.target for r in regions}
+            | {"HSX", "direct", "indirect"}
+        )
         numbers = {f"{r.contrast}" for r in regions} | {f"{r.diameter_mm}" for r in regions if r.diameter_mm != 1.0}
     c = app.test_client()
     tok = login(c, "reader1")
@@ -135,7 +148,7 @@ def test_truth_and_blinded_labels_never_reach_the_reader(tmp_path):
     blob = re.sub(r'csrf[-_]token" (?:value|content)="[^"]+"|[0-9a-f]{24}', "", "\n".join(texts))
     for word in sorted(secret):
         assert word not in blob, f"{word!r} reached the reader"
-    for num in sorted(numbers):     # as a number of its own, not as digits inside another one
+    for num in sorted(numbers):  # as a number of its own, not as digits inside another one
         assert not re.search(rf"(?<![\d.]){re.escape(num)}(?!\d)", blob), f"{num} reached the reader"
     for key in ("true_site", "signal_site", "correct", "contrast", "diameter", "detector", "target", "image"):
         assert f'"{key}' not in blob, key
@@ -213,8 +226,9 @@ def test_the_database_itself_refuses_a_second_response(demo):
 
 # --------------------------------------------------------------------------- uploads
 def _draft_study(app, client, token):
-    r = client.post("/coordinator/studies/new", data={"name": "upload test", "layout": "cairn-demo-plate.toml",
-                                                      "csrf_token": token})
+    r = client.post(
+        "/coordinator/studies/new", data={"name": "upload test", "layout": "cairn-demo-plate.toml", "csrf_token": token}
+    )
     assert r.status_code == 302, r.text
     return int(r.headers["Location"].rstrip("/").split("/")[-1])
 
@@ -226,14 +240,18 @@ def test_uploads_are_checked_and_stored_under_their_hash(tmp_path):
 
     app = accounts_app(tmp_path, MAX_IMAGE_BYTES=600_000)
     from webapp.security import db
+
     c = app.test_client()
     tok = login(c, "coordinator")
     sid = _draft_study(app, c, tok)
     url = f"/coordinator/studies/{sid}/images"
 
     def post(name, data, **extra):
-        return c.post(url, data={"csrf_token": tok, "detector": "panel A", **extra,
-                                 "images": (io.BytesIO(data), name)}, content_type="multipart/form-data")
+        return c.post(
+            url,
+            data={"csrf_token": tok, "detector": "panel A", **extra, "images": (io.BytesIO(data), name)},
+            content_type="multipart/form-data",
+        )
 
     r = post("notes.exe", b"MZ\x90\x00")
     assert r.status_code == 400 and "notes.exe" in r.text and "must be one of" in r.text
@@ -258,6 +276,7 @@ def test_uploads_are_checked_and_stored_under_their_hash(tmp_path):
     # the same image twice is kept once
     post("again.png", data, pixel_spacing_mm="0.085")
     from webapp.models import StudyImage
+
     with app.app_context():
         assert db().query(StudyImage).count() == 1
 
@@ -267,9 +286,11 @@ def test_upload_size_limit_for_the_whole_request(tmp_path):
     c = app.test_client()
     tok = login(c, "coordinator")
     sid = _draft_study(app, c, tok)
-    r = c.post(f"/coordinator/studies/{sid}/images",
-               data={"csrf_token": tok, "detector": "A", "images": (io.BytesIO(b"x" * 20_000), "a.dcm")},
-               content_type="multipart/form-data")
+    r = c.post(
+        f"/coordinator/studies/{sid}/images",
+        data={"csrf_token": tok, "detector": "A", "images": (io.BytesIO(b"x" * 20_000), "a.dcm")},
+        content_type="multipart/form-data",
+    )
     assert r.status_code == 413
 
 
@@ -282,6 +303,7 @@ def test_coordinator_actions_are_audited(demo):
     c.post(f"/coordinator/studies/{sid}/close", data={"csrf_token": tok})
     from webapp.models import AuditEntry
     from webapp.security import db
+
     with app.app_context():
         actions = [(e.action, e.user.username if e.user else None) for e in db().query(AuditEntry).all()]
     assert ("export_responses", "coordinator") in actions and ("close_study", "coordinator") in actions

@@ -13,20 +13,20 @@ import pytest
 from click.testing import CliRunner
 
 from scorer.phantom import load_layout
-from webapp_helpers import (MINI, accounts_app, answer, demo_app, login, pass_display_check, read_all, reader_client)
+from webapp_helpers import MINI, accounts_app, answer, demo_app, login, pass_display_check, read_all, reader_client
 
 
 def _darkest_site(trial, data):
     """A simple reader working on exactly the bytes the browser receives: the discs lower the air kerma, so
     pick the site whose surroundings (disc-sized averages at a few scales, in noise units) are darkest."""
     px = np.frombuffer(data, "<u2").reshape(trial["rows"], trial["cols"]).astype(float)
-    noise = 1.4826 * np.median(np.abs(np.diff(px, axis=1))) / np.sqrt(2)       # robust pixel noise (MAD)
-    yy, xx = np.mgrid[:px.shape[0], :px.shape[1]]
+    noise = 1.4826 * np.median(np.abs(np.diff(px, axis=1))) / np.sqrt(2)  # robust pixel noise (MAD)
+    yy, xx = np.mgrid[: px.shape[0], : px.shape[1]]
     best = np.full(len(trial["sites"]), -np.inf)
     for radius in (0.75, 1.5, 2.5, 4.0, 6.0):
         means, counts = [], []
         for r, c in trial["sites"]:
-            m = (yy - r) ** 2 + (xx - c) ** 2 <= radius ** 2
+            m = (yy - r) ** 2 + (xx - c) ** 2 <= radius**2
             means.append(px[m].mean())
             counts.append(m.sum())
         means = np.array(means)
@@ -52,10 +52,10 @@ def test_schedules_same_items_for_every_reader_in_their_own_order(tmp_path):
         main = [r for r, p, rep in seq if not p and rep == 0]
         reps = [r for r, p, rep in seq if rep == 1]
         assert len(set(main)) == 10 and set(reps) <= set(main) and len(set(reps)) == 3
-        assert seq[-3:] == [(r, False, 1) for r in reps]            # repeats come after the first readings
+        assert seq[-3:] == [(r, False, 1) for r in reps]  # repeats come after the first readings
     mains = {k: [r for r, p, rep in s if not p and rep == 0] for k, s in seqs.items()}
-    assert len({frozenset(m) for m in mains.values()}) == 1              # the same items for every reader
-    assert len({tuple(m) for m in mains.values()}) == 3                  # in a different order each
+    assert len({frozenset(m) for m in mains.values()}) == 1  # the same items for every reader
+    assert len({tuple(m) for m in mains.values()}) == 3  # in a different order each
 
 
 def test_reader_pixels_are_the_linear_image_in_air_kerma(tmp_path):
@@ -77,11 +77,12 @@ def test_reader_pixels_are_the_linear_image_in_air_kerma(tmp_path):
         reg = db().get(Region, tr.region_id)
         im = db().get(StudyImage, reg.image_id)
         scale = st.ugy_per_unit
-        ref = load_image(Path(app.config["STORE_DIR"]) / im.stored_name,
-                         conversion=load_conversion(im.conversion_file)).pixels
+        ref = load_image(
+            Path(app.config["STORE_DIR"]) / im.stored_name, conversion=load_conversion(im.conversion_file)
+        ).pixels
     kerma = data * scale
     assert np.median(kerma) == pytest.approx(100.0, rel=0.02)
-    crop = ref[reg.row0:reg.row0 + t["rows"], reg.col0:reg.col0 + t["cols"]]
+    crop = ref[reg.row0 : reg.row0 + t["rows"], reg.col0 : reg.col0 + t["cols"]]
     assert np.max(np.abs(kerma - crop)) <= 0.5 * scale + 1e-9
     # a 16-bit step is far finer than the quantum noise, so W/L in the browser loses nothing to rounding
     assert scale < 0.01 * np.std(crop)
@@ -124,7 +125,7 @@ def test_export_is_what_limen_analyse_reads(tmp_path):
     df = pd.read_csv(io.StringIO(r.text), dtype={"reader": str, "image": str, "target": str})
     assert list(df.columns) == TRIAL_COLUMNS + OPTIONAL_COLUMNS + ["window", "level", "timestamp"]
     for name, sites in sent.items():
-        assert df[df["reader"] == name]["chosen_site"].tolist() == sites       # exactly the responses given
+        assert df[df["reader"] == name]["chosen_site"].tolist() == sites  # exactly the responses given
     assert (df["correct"] == (df["chosen_site"] == df["true_site"])).all()
     # each trial's M is its target's number of candidate sites on the mini plate (3-site or 5-site cells)
     m_of = {t.id: t.m_alternatives for t in load_layout(MINI).targets}
@@ -145,9 +146,9 @@ def test_leave_and_resume(tmp_path):
     first = read_all(c, sid, tok, limit=3)
     c.post("/logout", data={"csrf_token": tok})
     assert c.get(f"/reading/api/studies/{sid}/next").status_code == 401
-    c2 = app.test_client()                        # another day, another browser
+    c2 = app.test_client()  # another day, another browser
     tok2 = login(c2, "reader1")
-    assert c2.get(f"/reading/studies/{sid}").status_code == 302            # display check again first
+    assert c2.get(f"/reading/studies/{sid}").status_code == 302  # display check again first
     pass_display_check(c2, sid, tok2)
     nxt = c2.get(f"/reading/api/studies/{sid}/next").json
     assert nxt["answered"] == 2 and nxt["number"] == 3 and not nxt["practice"]
@@ -191,12 +192,21 @@ def test_display_check_needs_the_right_site_and_records_the_screen(tmp_path):
     c.get(f"/reading/studies/{sid}/check")
     with app.app_context():
         right = db().query(ReadingSession).one().check_site
-    r = c.post(f"/reading/api/studies/{sid}/check", json={"site": (right + 1) % 4, "viewing_distance_mm": 600},
-               headers={"X-CSRFToken": tok})
+    r = c.post(
+        f"/reading/api/studies/{sid}/check",
+        json={"site": (right + 1) % 4, "viewing_distance_mm": 600},
+        headers={"X-CSRFToken": tok},
+    )
     assert r.json["passed"] is False
-    assert c.get(f"/reading/studies/{sid}").status_code == 302           # still no reading
-    assert c.post(f"/reading/api/studies/{sid}/check", json={"site": 0, "viewing_distance_mm": 5},
-                  headers={"X-CSRFToken": tok}).status_code == 400
+    assert c.get(f"/reading/studies/{sid}").status_code == 302  # still no reading
+    assert (
+        c.post(
+            f"/reading/api/studies/{sid}/check",
+            json={"site": 0, "viewing_distance_mm": 5},
+            headers={"X-CSRFToken": tok},
+        ).status_code
+        == 400
+    )
     pass_display_check(c, sid, tok)
     with app.app_context():
         rs = db().query(ReadingSession).one()
@@ -204,6 +214,7 @@ def test_display_check_needs_the_right_site_and_records_the_screen(tmp_path):
         assert rs.screen_width == 1920 and rs.device_pixel_ratio == 1
     # the pattern: a disc 3 of 255 grey levels above a dark field at one of the four sites
     from webapp.services import CHECK_SITES, display_check_pattern
+
     px = np.frombuffer(display_check_pattern(2, 7), "<u2").reshape(192, 192) / 257
     levels = [px[r, c] for r, c in CHECK_SITES]
     assert levels[2] - levels[0] == pytest.approx(3) and levels[0] == levels[1] == levels[3] < 40
@@ -238,17 +249,35 @@ def test_coordinator_builds_a_study_through_the_forms(tmp_path):
     c = app.test_client()
     tok = login(c, "coordinator")
     layout_bytes = MINI.read_bytes()
-    r = c.post("/coordinator/studies/new", data={
-        "csrf_token": tok, "name": "Room 2 vs room 3", "layout_file": (io.BytesIO(layout_bytes), "mini.toml"),
-        "trials_per_reader": "12", "seed": "5", "repeat_percent": "25", "n_practice": "2", "observer": "npw",
-        "readers": [str(rid)]}, content_type="multipart/form-data")
+    r = c.post(
+        "/coordinator/studies/new",
+        data={
+            "csrf_token": tok,
+            "name": "Room 2 vs room 3",
+            "layout_file": (io.BytesIO(layout_bytes), "mini.toml"),
+            "trials_per_reader": "12",
+            "seed": "5",
+            "repeat_percent": "25",
+            "n_practice": "2",
+            "observer": "npw",
+            "readers": [str(rid)],
+        },
+        content_type="multipart/form-data",
+    )
     assert r.status_code == 302, r.text
     sid = int(r.headers["Location"].split("/")[-1])
     files = _simulated_files(tmp_path)
     for det, (paths, conv) in files.items():
-        r = c.post(f"/coordinator/studies/{sid}/images", data={
-            "csrf_token": tok, "detector": f"panel {det}", "conversion_file": (io.BytesIO(conv.read_bytes()), "c.toml"),
-            "images": [(io.BytesIO(p.read_bytes()), p.name) for p in paths]}, content_type="multipart/form-data")
+        r = c.post(
+            f"/coordinator/studies/{sid}/images",
+            data={
+                "csrf_token": tok,
+                "detector": f"panel {det}",
+                "conversion_file": (io.BytesIO(conv.read_bytes()), "c.toml"),
+                "images": [(io.BytesIO(p.read_bytes()), p.name) for p in paths],
+            },
+            content_type="multipart/form-data",
+        )
         assert r.status_code == 302, r.text
     r = c.post(f"/coordinator/studies/{sid}/open", data={"csrf_token": tok})
     assert r.status_code == 302, r.text
@@ -284,10 +313,10 @@ def test_analysis_page_shows_readers_against_the_model(tmp_path):
     rep = cc.get(src)
     assert rep.status_code == 200 and "frame-ancestors 'self'" in rep.headers["Content-Security-Policy"]
     assert "script" not in rep.headers["Content-Security-Policy"] and "<script" not in rep.text
-    for heading in ("Contrast-detail curves", "Human readers vs model observer", "Reader agreement",
-                    "comparison"):
+    for heading in ("Contrast-detail curves", "Human readers vs model observer", "Reader agreement", "comparison"):
         assert heading in rep.text, heading
     import json
+
     a = json.loads(cc.get(f"/analysis/studies/{sid}/analysis.json").text)
     assert a["human_model_factor"]["observer"] == "npwe" and sorted(a["readers"]) == ["reader1", "reader2"]
 
@@ -297,16 +326,37 @@ def test_planning_page_estimates_power_from_a_stated_spread_and_refuses_oversize
     c = app.test_client()
     tok = login(c, "coordinator")
     assert "Estimate power" in c.get("/analysis/plan").text
-    form = {"csrf_token": tok, "ratio": "2.0", "diameter_mm": "0.25", "target_power": "50", "alpha": "0.05",
-            "readers": "4", "images": "8", "n_sim": "10", "seed": "4", "source": "stated", "median_factor": "1.6",
-            "cv_between": "15"}
+    form = {
+        "csrf_token": tok,
+        "ratio": "2.0",
+        "diameter_mm": "0.25",
+        "target_power": "50",
+        "alpha": "0.05",
+        "readers": "4",
+        "images": "8",
+        "n_sim": "10",
+        "seed": "4",
+        "source": "stated",
+        "median_factor": "1.6",
+        "cv_between": "15",
+    }
     r = c.post("/analysis/plan", data=form)
     assert r.status_code == 200, r.text
     assert 'id="power-table"' in r.text and "stated between-reader spread" in r.text
     # the page shows what scorer.study.power_by_simulation computes for the same settings
     from scorer.study import ReaderPopulation, power_by_simulation
-    ref = power_by_simulation(2.0, (4,), (8,), population=ReaderPopulation(1.6, 0.15), diameter_mm=0.25,
-                              target_power=0.5, n_sim=10, n_boot=50, seed=4)
+
+    ref = power_by_simulation(
+        2.0,
+        (4,),
+        (8,),
+        population=ReaderPopulation(1.6, 0.15),
+        diameter_mm=0.25,
+        target_power=0.5,
+        n_sim=10,
+        n_boot=50,
+        seed=4,
+    )
     assert f"{ref.cells['power'].iloc[0] * 100:.0f} %" in r.text
     r = c.post("/analysis/plan", data={**form, "readers": "4, 6, 8", "images": "8, 16, 32", "n_sim": "100"})
     assert r.status_code == 400 and "more than 400" in r.text
@@ -322,23 +372,40 @@ def test_import_a_folder_scored_by_limen_score(tmp_path):
     root = tmp_path / "root"
     files = _simulated_files(root)
     paths, conv = files["direct"]
-    res = CliRunner().invoke(main, ["score", *map(str, paths), "--layout", str(MINI), "--conversion", str(conv),
-                                    "--n-boot", "0", "--out", str(root / "direct" / "score")])
+    res = CliRunner().invoke(
+        main,
+        [
+            "score",
+            *map(str, paths),
+            "--layout",
+            str(MINI),
+            "--conversion",
+            str(conv),
+            "--n-boot",
+            "0",
+            "--out",
+            str(root / "direct" / "score"),
+        ],
+    )
     assert res.exit_code in (0, 1), res.output
     app = accounts_app(tmp_path, IMPORT_ROOT=str(root))
     c = app.test_client()
     tok = login(c, "coordinator")
-    r = c.post("/coordinator/studies/new", data={"csrf_token": tok, "name": "imported", "layout": "cairn-demo-plate.toml"})
+    r = c.post(
+        "/coordinator/studies/new", data={"csrf_token": tok, "name": "imported", "layout": "cairn-demo-plate.toml"}
+    )
     sid = int(r.headers["Location"].split("/")[-1])
     r = c.post(f"/coordinator/studies/{sid}/import", data={"csrf_token": tok, "folder": "../", "detector": "A"})
     assert r.status_code == 400 and "inside the import root" in r.text
     r = c.post(f"/coordinator/studies/{sid}/import", data={"csrf_token": tok, "folder": "direct", "detector": "A"})
     assert r.status_code == 400 and "no results.json" in r.text
-    r = c.post(f"/coordinator/studies/{sid}/import", data={"csrf_token": tok, "folder": "direct/score",
-                                                          "detector": "panel A"})
+    r = c.post(
+        f"/coordinator/studies/{sid}/import", data={"csrf_token": tok, "folder": "direct/score", "detector": "panel A"}
+    )
     assert r.status_code == 302, r.text
     with app.app_context():
         im = db().query(StudyImage).one()
         from scorer.images import load_conversion
-        assert load_conversion(im.conversion_file) == load_conversion(conv)      # the scoring's conversion
+
+        assert load_conversion(im.conversion_file) == load_conversion(conv)  # the scoring's conversion
         assert im.detector == "panel A" and im.stored_name == f"{im.sha256}.dcm"

@@ -9,8 +9,12 @@ from pathlib import Path
 import numpy as np
 
 MINI = Path(__file__).parent / "data" / "mini-plate.toml"
-PASSWORDS = {"coordinator": "coord-pass-123", "reader1": "reader1-pass", "reader2": "reader2-pass",
-             "reader3": "reader3-pass"}
+PASSWORDS = {
+    "coordinator": "coord-pass-123",
+    "reader1": "reader1-pass",
+    "reader2": "reader2-pass",
+    "reader3": "reader3-pass",
+}
 
 
 def make_app(tmp_path, db_url=None, **config):
@@ -23,17 +27,33 @@ def make_app(tmp_path, db_url=None, **config):
     return create_app(cfg)
 
 
-def demo_app(tmp_path, db_url=None, n_readers=2, trials_per_reader=8, n_practice=2, repeat_fraction=0.25,
-             show_feedback=False, **config):
+def demo_app(
+    tmp_path,
+    db_url=None,
+    n_readers=2,
+    trials_per_reader=8,
+    n_practice=2,
+    repeat_fraction=0.25,
+    show_feedback=False,
+    **config,
+):
     """An app with an open study on simulated mini-plate images (1 direct + 1 indirect), ``n_readers`` readers
     enrolled, and one more reader (``outsider``) not enrolled."""
     from webapp.demo import create_demo_study, ensure_user
     from webapp.security import db
 
     app = make_app(tmp_path, db_url, **config)
-    out = create_demo_study(app, n_readers=n_readers, images_per_detector=1, trials_per_reader=trials_per_reader,
-                            n_practice=n_practice, repeat_fraction=repeat_fraction, layout_path=str(MINI),
-                            passwords=PASSWORDS, show_feedback=show_feedback)
+    out = create_demo_study(
+        app,
+        n_readers=n_readers,
+        images_per_detector=1,
+        trials_per_reader=trials_per_reader,
+        n_practice=n_practice,
+        repeat_fraction=repeat_fraction,
+        layout_path=str(MINI),
+        passwords=PASSWORDS,
+        show_feedback=show_feedback,
+    )
     with app.app_context():
         ensure_user(db(), "outsider", "reader", "outsider-pass")
         db().commit()
@@ -63,17 +83,29 @@ def pass_display_check(client, study_id, token):
     assert client.get(f"/reading/studies/{study_id}/check").status_code == 200
     px = np.frombuffer(client.get(f"/reading/api/studies/{study_id}/check/pattern").data, "<u2")
     px = px.reshape(CHECK_SIZE, CHECK_SIZE)
-    site = int(np.argmax([px[r - 3:r + 4, c - 3:c + 4].mean() for r, c in CHECK_SITES]))
-    r = client.post(f"/reading/api/studies/{study_id}/check", json={
-        "site": site, "viewing_distance_mm": 550, "screen_width": 1920, "screen_height": 1080,
-        "device_pixel_ratio": 1, "browser_zoom": 1}, headers={"X-CSRFToken": token})
+    site = int(np.argmax([px[r - 3 : r + 4, c - 3 : c + 4].mean() for r, c in CHECK_SITES]))
+    r = client.post(
+        f"/reading/api/studies/{study_id}/check",
+        json={
+            "site": site,
+            "viewing_distance_mm": 550,
+            "screen_width": 1920,
+            "screen_height": 1080,
+            "device_pixel_ratio": 1,
+            "browser_zoom": 1,
+        },
+        headers={"X-CSRFToken": token},
+    )
     assert r.status_code == 200 and r.json["passed"], r.json
     return r.json
 
 
 def answer(client, token, trial, site=0, ms=1500, window=1000.0, level=3000.0):
-    return client.post(trial["response_url"], json={"chosen_site": site, "response_ms": ms, "window": window,
-                                                    "level": level, "zoom": 1}, headers={"X-CSRFToken": token})
+    return client.post(
+        trial["response_url"],
+        json={"chosen_site": site, "response_ms": ms, "window": window, "level": level, "zoom": 1},
+        headers={"X-CSRFToken": token},
+    )
 
 
 def read_all(client, study_id, token, chooser=None, limit=None):
@@ -114,8 +146,13 @@ def race(app, client, url, token, n):
         tc = app.test_client()
         tc.set_cookie("session", cookie)
         barrier.wait()
-        codes.append(tc.post(url, json={"chosen_site": site % 4, "response_ms": 700, "window": 9.0, "level": 3.0,
-                                        "zoom": 1}, headers={"X-CSRFToken": token}).status_code)
+        codes.append(
+            tc.post(
+                url,
+                json={"chosen_site": site % 4, "response_ms": 700, "window": 9.0, "level": 3.0, "zoom": 1},
+                headers={"X-CSRFToken": token},
+            ).status_code
+        )
 
     threads = [threading.Thread(target=tab, args=(i,)) for i in range(n)]
     for th in threads:

@@ -19,17 +19,17 @@ ENV_DATABASE_URL = "LIMEN_DATABASE_URL"
 ENV_SECRET_KEY = "LIMEN_SECRET_KEY"
 
 DEFAULTS = {
-    "MAX_CONTENT_LENGTH": 512 * 1024 * 1024,     # one upload request (several images)
-    "MAX_IMAGE_BYTES": 128 * 1024 * 1024,       # one image file
-    "LOGIN_RATE_LIMIT": "10 per minute",        # failed logins per (address, user name)
+    "MAX_CONTENT_LENGTH": 512 * 1024 * 1024,  # one upload request (several images)
+    "MAX_IMAGE_BYTES": 128 * 1024 * 1024,  # one image file
+    "LOGIN_RATE_LIMIT": "10 per minute",  # failed logins per (address, user name)
     "ANALYSIS_N_BOOT": 400,
-    "IMPORT_ROOT": None,                        # server folder coordinators may import scored folders from
+    "IMPORT_ROOT": None,  # server folder coordinators may import scored folders from
     "SESSION_COOKIE_HTTPONLY": True,
     "SESSION_COOKIE_SAMESITE": "Lax",
-    "SESSION_COOKIE_SECURE": False,             # set True behind HTTPS (limen serve --secure-cookies)
+    "SESSION_COOKIE_SECURE": False,  # set True behind HTTPS (limen serve --secure-cookies)
     "REMEMBER_COOKIE_HTTPONLY": True,
     "REMEMBER_COOKIE_SAMESITE": "Lax",
-    "WTF_CSRF_TIME_LIMIT": None,                # token valid for the login session
+    "WTF_CSRF_TIME_LIMIT": None,  # token valid for the login session
     "SESSION_PROTECTION": "strong",
 }
 

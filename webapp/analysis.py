@@ -3,8 +3,7 @@ model observer beside the human readers (coordinators only)."""
 
 from __future__ import annotations
 
-from flask import Blueprint, Response as FlaskResponse, abort, current_app, flash, g, redirect, render_template, \
-    url_for
+from flask import Blueprint, Response as FlaskResponse, abort, current_app, flash, g, redirect, render_template, url_for
 from sqlalchemy import func, select
 
 from webapp import services
@@ -20,18 +19,27 @@ def _study(study_id: int) -> Study:
 
 
 def _latest(study_id: int) -> AnalysisRun | None:
-    return db().execute(select(AnalysisRun).where(AnalysisRun.study_id == study_id)
-                        .order_by(AnalysisRun.id.desc())).scalars().first()
+    return (
+        db()
+        .execute(select(AnalysisRun).where(AnalysisRun.study_id == study_id).order_by(AnalysisRun.id.desc()))
+        .scalars()
+        .first()
+    )
 
 
 @bp.route("/studies/<int:study_id>")
 @coordinator_only
 def page(study_id):
     st = _study(study_id)
-    n = db().scalar(select(func.count(Response.id)).join(Trial).where(Trial.study_id == st.id,
-                                                                      Trial.practice.is_(False))) or 0
-    return render_template("analysis/page.html", study=st, run=_latest(st.id), n_responses=n,
-                           n_boot=current_app.config["ANALYSIS_N_BOOT"])
+    n = (
+        db().scalar(
+            select(func.count(Response.id)).join(Trial).where(Trial.study_id == st.id, Trial.practice.is_(False))
+        )
+        or 0
+    )
+    return render_template(
+        "analysis/page.html", study=st, run=_latest(st.id), n_responses=n, n_boot=current_app.config["ANALYSIS_N_BOOT"]
+    )
 
 
 @bp.route("/studies/<int:study_id>/run", methods=["POST"])
@@ -67,7 +75,7 @@ def analysis_json(study_id):
 
 
 # --------------------------------------------------------------------------- study planning
-MAX_SIMULATED_STUDIES = 400       # keeps one planning request to about a minute on a small server
+MAX_SIMULATED_STUDIES = 400  # keeps one planning request to about a minute on a small server
 
 
 def _int_list(raw: str, label: str) -> list[int]:
@@ -93,12 +101,17 @@ def plan():
     from scorer.errors import LimenError
     from scorer.study import ReaderPopulation, population_from_analysis, power_by_simulation
 
-    pilots = db().execute(select(Study).join(AnalysisRun, AnalysisRun.study_id == Study.id).distinct()
-                          .order_by(Study.id)).scalars().all()
+    pilots = (
+        db()
+        .execute(select(Study).join(AnalysisRun, AnalysisRun.study_id == Study.id).distinct().order_by(Study.id))
+        .scalars()
+        .all()
+    )
     form = request.form if request.method == "POST" else {}
     result, error = None, None
     if request.method == "POST":
         try:
+
             def num(key, lo, hi, label):
                 try:
                     v = float(form.get(key, ""))
@@ -116,8 +129,10 @@ def plan():
             readers = _int_list(form.get("readers", ""), "readers")
             images = _int_list(form.get("images", ""), "images per detector")
             if len(readers) * len(images) * n_sim > MAX_SIMULATED_STUDIES:
-                raise LimenError(f"{len(readers) * len(images)} designs × {n_sim} simulated studies is more than "
-                                 f"{MAX_SIMULATED_STUDIES}: try fewer designs or fewer simulations")
+                raise LimenError(
+                    f"{len(readers) * len(images)} designs × {n_sim} simulated studies is more than "
+                    f"{MAX_SIMULATED_STUDIES}: try fewer designs or fewer simulations"
+                )
             if form.get("source") == "pilot":
                 st = _study(int(form.get("pilot") or 0))
                 run_ = _latest(st.id)
@@ -126,18 +141,39 @@ def plan():
                 population = population_from_analysis(json.loads(run_.analysis_json))
                 source = f"pilot study “{st.name}” ({run_.n_responses} responses)"
             else:
-                population = ReaderPopulation(median_factor=num("median_factor", 1.0, 10.0, "human/model factor"),
-                                              cv_between=num("cv_between", 0.0, 100.0, "between-reader CV (%)") / 100)
+                population = ReaderPopulation(
+                    median_factor=num("median_factor", 1.0, 10.0, "human/model factor"),
+                    cv_between=num("cv_between", 0.0, 100.0, "between-reader CV (%)") / 100,
+                )
                 source = "stated between-reader spread"
-            plan_ = power_by_simulation(ratio, readers, images, population=population, diameter_mm=diameter,
-                                        alpha=alpha, target_power=target, n_sim=n_sim, n_boot=50,
-                                        seed=int(num("seed", 0, 2 ** 31 - 1, "seed")) if form.get("seed") else 0)
+            plan_ = power_by_simulation(
+                ratio,
+                readers,
+                images,
+                population=population,
+                diameter_mm=diameter,
+                alpha=alpha,
+                target_power=target,
+                n_sim=n_sim,
+                n_boot=50,
+                seed=int(num("seed", 0, 2**31 - 1, "seed")) if form.get("seed") else 0,
+            )
             grid = {(r["n_readers"], r["n_images"]): r for r in plan_.cells.to_dict("records")}
             result = {"plan": plan_, "grid": grid, "readers": readers, "images": images, "source": source}
-            audit("plan_study", None, ratio=ratio, diameter_mm=diameter, readers=readers, images=images,
-                  n_sim=n_sim, source=source, recommended=plan_.recommended)
+            audit(
+                "plan_study",
+                None,
+                ratio=ratio,
+                diameter_mm=diameter,
+                readers=readers,
+                images=images,
+                n_sim=n_sim,
+                source=source,
+                recommended=plan_.recommended,
+            )
             db().commit()
         except LimenError as exc:
             error = str(exc)
-    return render_template("analysis/plan.html", pilots=pilots, form=form, result=result, error=error), \
-        (400 if error else 200)
+    return render_template("analysis/plan.html", pilots=pilots, form=form, result=result, error=error), (
+        400 if error else 200
+    )

@@ -21,6 +21,7 @@ def _dummy_hash() -> str:
     global _DUMMY_HASH
     if _DUMMY_HASH is None:
         from webapp.security import hash_password
+
         _DUMMY_HASH = hash_password("limen-no-such-user")
     return _DUMMY_HASH
 

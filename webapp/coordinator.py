@@ -9,8 +9,17 @@ import json
 import secrets
 from pathlib import Path
 
-from flask import Blueprint, Response as FlaskResponse, abort, current_app, flash, redirect, render_template, \
-    request, url_for
+from flask import (
+    Blueprint,
+    Response as FlaskResponse,
+    abort,
+    current_app,
+    flash,
+    redirect,
+    render_template,
+    request,
+    url_for,
+)
 from sqlalchemy import func, select
 from sqlalchemy.exc import IntegrityError
 
@@ -34,8 +43,9 @@ def _draft(study_id: int) -> Study:
     return st
 
 
-def _add_image(st: Study, stream, name: str, detector: str, known: set, conv_path=None, conversion=None,
-               spacing=None) -> dict | None:
+def _add_image(
+    st: Study, stream, name: str, detector: str, known: set, conv_path=None, conversion=None, spacing=None
+) -> dict | None:
     """Store one image file under its hash, check it reads as an image, add it to the study (once)."""
     label = services.safe_label(name)
     suffix = services.check_suffix(name, services.IMAGE_SUFFIXES, "image file")
@@ -46,8 +56,18 @@ def _add_image(st: Study, stream, name: str, detector: str, known: set, conv_pat
         flash(f"{label}: the same image is already in the study; skipped.", "info")
         return None
     known.add(digest)
-    db().add(StudyImage(study_id=st.id, sha256=digest, stored_name=path.name, code=f"img-{digest[:10]}",
-                        detector=detector, conversion_file=conv_path, pixel_spacing_mm=spacing, label=label))
+    db().add(
+        StudyImage(
+            study_id=st.id,
+            sha256=digest,
+            stored_name=path.name,
+            code=f"img-{digest[:10]}",
+            detector=detector,
+            conversion_file=conv_path,
+            pixel_spacing_mm=spacing,
+            label=label,
+        )
+    )
     return {"label": label, "sha256": digest}
 
 
@@ -136,10 +156,13 @@ def new_study():
             layout = services.validate_layout_file(path, key)
         n_targets = len(layout.targets)
         study = Study(
-            name=name, created_by=_current_id(), layout_file=str(path), layout_name=layout.name,
+            name=name,
+            created_by=_current_id(),
+            layout_file=str(path),
+            layout_name=layout.name,
             m_alternatives=max(t.m_alternatives for t in layout.targets),
             trials_per_reader=_num(f, "trials_per_reader", int, 1, 100000, "trials per reader", n_targets),
-            seed=_num(f, "seed", int, 0, 2 ** 31 - 1, "randomisation seed", secrets.randbelow(2 ** 31)),
+            seed=_num(f, "seed", int, 0, 2**31 - 1, "randomisation seed", secrets.randbelow(2**31)),
             repeat_fraction=_num(f, "repeat_percent", float, 0, 100, "repeated trials (%)", 0.0) / 100.0,
             n_practice=_num(f, "n_practice", int, 0, 50, "practice trials", 4),
             show_feedback=f.get("show_feedback") == "on",
@@ -154,9 +177,18 @@ def new_study():
     s.add(study)
     s.flush()
     _set_enrolment(study, request.form.getlist("readers"))
-    audit("create_study", study.id, name=name, layout=layout.name, trials_per_reader=study.trials_per_reader,
-          seed=study.seed, repeat_fraction=study.repeat_fraction, n_practice=study.n_practice,
-          show_feedback=study.show_feedback, observer=study.observer)
+    audit(
+        "create_study",
+        study.id,
+        name=name,
+        layout=layout.name,
+        trials_per_reader=study.trials_per_reader,
+        seed=study.seed,
+        repeat_fraction=study.repeat_fraction,
+        n_practice=study.n_practice,
+        show_feedback=study.show_feedback,
+        observer=study.observer,
+    )
     s.commit()
     flash("Study created. Add its images, then open it for reading.", "info")
     return redirect(url_for("coordinator.study", study_id=study.id))
@@ -164,6 +196,7 @@ def new_study():
 
 def _current_id() -> int:
     from flask_login import current_user
+
     return int(current_user.id)
 
 
@@ -192,25 +225,68 @@ def study(study_id):
     s = db()
     progress = []
     for e in sorted(st.enrolments, key=lambda e: e.user.username):
-        total = s.scalar(select(func.count(Trial.id)).where(Trial.study_id == st.id, Trial.reader_id == e.user_id,
-                                                            Trial.practice.is_(False))) or 0
-        done = s.scalar(select(func.count(Response.id)).join(Trial).where(
-            Trial.study_id == st.id, Trial.reader_id == e.user_id, Trial.practice.is_(False))) or 0
-        last = s.scalar(select(func.max(Response.created_at)).join(Trial).where(
-            Trial.study_id == st.id, Trial.reader_id == e.user_id))
-        sess = s.execute(select(ReadingSession).where(ReadingSession.study_id == st.id,
-                                                      ReadingSession.reader_id == e.user_id)
-                         .order_by(ReadingSession.id.desc())).scalars().first()
-        progress.append({"reader": e.user.username, "user_id": e.user_id, "done": done, "total": total,
-                         "last": last, "session": sess})
+        total = (
+            s.scalar(
+                select(func.count(Trial.id)).where(
+                    Trial.study_id == st.id, Trial.reader_id == e.user_id, Trial.practice.is_(False)
+                )
+            )
+            or 0
+        )
+        done = (
+            s.scalar(
+                select(func.count(Response.id))
+                .join(Trial)
+                .where(Trial.study_id == st.id, Trial.reader_id == e.user_id, Trial.practice.is_(False))
+            )
+            or 0
+        )
+        last = s.scalar(
+            select(func.max(Response.created_at))
+            .join(Trial)
+            .where(Trial.study_id == st.id, Trial.reader_id == e.user_id)
+        )
+        sess = (
+            s.execute(
+                select(ReadingSession)
+                .where(ReadingSession.study_id == st.id, ReadingSession.reader_id == e.user_id)
+                .order_by(ReadingSession.id.desc())
+            )
+            .scalars()
+            .first()
+        )
+        progress.append(
+            {
+                "reader": e.user.username,
+                "user_id": e.user_id,
+                "done": done,
+                "total": total,
+                "last": last,
+                "session": sess,
+            }
+        )
     notes = json.loads(st_notes) if (st_notes := _notes_of(st)) else []
-    return render_template("coordinator/study.html", study=st, progress=progress, readers=_readers(),
-                           enrolled={e.user_id for e in st.enrolments}, notes=notes)
+    return render_template(
+        "coordinator/study.html",
+        study=st,
+        progress=progress,
+        readers=_readers(),
+        enrolled={e.user_id for e in st.enrolments},
+        notes=notes,
+    )
 
 
 def _notes_of(st: Study) -> str | None:
-    e = db().execute(select(AuditEntry).where(AuditEntry.study_id == st.id, AuditEntry.action == "open_study")
-                     .order_by(AuditEntry.id.desc())).scalars().first()
+    e = (
+        db()
+        .execute(
+            select(AuditEntry)
+            .where(AuditEntry.study_id == st.id, AuditEntry.action == "open_study")
+            .order_by(AuditEntry.id.desc())
+        )
+        .scalars()
+        .first()
+    )
     if e is None:
         return None
     return json.dumps(json.loads(e.detail).get("notes", []))
@@ -238,16 +314,20 @@ def add_images(study_id):
     if conv and conv.filename:
         label = services.safe_label(conv.filename)
         suffix = services.check_suffix(conv.filename, services.LAYOUT_SUFFIXES, "conversion function file")
-        _, path = services.store_bytes(conv.stream, suffix, Path(current_app.config["STORE_DIR"]) / "conversions",
-                                       1024 * 1024, label)
+        _, path = services.store_bytes(
+            conv.stream, suffix, Path(current_app.config["STORE_DIR"]) / "conversions", 1024 * 1024, label
+        )
         conversion = services.validate_conversion_file(path, label)
         conv_path = str(path)
     files = [fs for fs in request.files.getlist("images") if fs and fs.filename]
     if not files:
         raise LimenError("choose at least one image file (DICOM, TIFF, PNG or .npy)")
     known = {im.sha256 for im in st.images}
-    added = [a for fs in files
-             if (a := _add_image(st, fs.stream, fs.filename, detector, known, conv_path, conversion, spacing))]
+    added = [
+        a
+        for fs in files
+        if (a := _add_image(st, fs.stream, fs.filename, detector, known, conv_path, conversion, spacing))
+    ]
     audit("add_images", st.id, detector=detector, images=added, conversion=conv_path)
     db().commit()
     flash(f"Added {len(added)} image(s) from detector {detector}.", "info")
@@ -280,8 +360,9 @@ def import_folder(study_id):
     conv_path, conversion = None, None
     if conv:
         text = json.dumps(conv, sort_keys=True).encode()
-        _, path = services.store_bytes(io.BytesIO(text), ".json", Path(current_app.config["STORE_DIR"]) / "conversions",
-                                       1024 * 1024, "conversion")
+        _, path = services.store_bytes(
+            io.BytesIO(text), ".json", Path(current_app.config["STORE_DIR"]) / "conversions", 1024 * 1024, "conversion"
+        )
         conversion = services.validate_conversion_file(path, f"{folder.name}/results.json conversion")
         conv_path = str(path)
     known = {im.sha256 for im in st.images}
@@ -314,8 +395,7 @@ def open_study(study_id):
         raise
     st.status = "open"
     st.opened_at = utcnow()
-    audit("open_study", st.id, notes=notes, region_px=st.region_rows, images=len(st.images),
-          readers=len(st.enrolments))
+    audit("open_study", st.id, notes=notes, region_px=st.region_rows, images=len(st.images), readers=len(st.enrolments))
     s.commit()
     flash("Study open: readers can start.", "info")
     return redirect(url_for("coordinator.study", study_id=st.id))
@@ -336,8 +416,7 @@ def close_study(study_id):
 
 
 def _csv(text: str, name: str) -> FlaskResponse:
-    return FlaskResponse(text, mimetype="text/csv",
-                         headers={"Content-Disposition": f'attachment; filename="{name}"'})
+    return FlaskResponse(text, mimetype="text/csv", headers={"Content-Disposition": f'attachment; filename="{name}"'})
 
 
 @bp.route("/studies/<int:study_id>/responses.csv")

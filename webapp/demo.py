@@ -37,11 +37,22 @@ def ensure_user(session, username: str, role: str, password: str | None = None) 
     return password
 
 
-def create_demo_study(app, *, name: str = "Demo reader study, Harbourside (invented)", n_readers: int = 3,
-                      images_per_detector: int = 2, trials_per_reader: int = 40, n_practice: int = 3,
-                      repeat_fraction: float = 0.1, layout_path: str | None = None, seed: int = 2026,
-                      passwords: dict | None = None, reader_prefix: str = "reader", show_feedback: bool = False,
-                      open_study: bool = True) -> dict:
+def create_demo_study(
+    app,
+    *,
+    name: str = "Demo reader study, Harbourside (invented)",
+    n_readers: int = 3,
+    images_per_detector: int = 2,
+    trials_per_reader: int = 40,
+    n_practice: int = 3,
+    repeat_fraction: float = 0.1,
+    layout_path: str | None = None,
+    seed: int = 2026,
+    passwords: dict | None = None,
+    reader_prefix: str = "reader",
+    show_feedback: bool = False,
+    open_study: bool = True,
+) -> dict:
     """Create accounts and a reader study on simulated images; return {"study_id", "credentials"}."""
     from scorer.detector import detector_model, simulate, write_simulated
     from scorer.images import save_conversion
@@ -59,10 +70,19 @@ def create_demo_study(app, *, name: str = "Demo reader study, Harbourside (inven
             creds[r] = ensure_user(s, r, "reader", passwords.get(r))
         layout = load_layout(layout_path) if layout_path else load_layout()
         coord = s.execute(select(User).where(User.username == "coordinator")).scalars().one()
-        study = Study(name=name, created_by=coord.id, layout_file=str(layout.source_path), layout_name=layout.name,
-                      m_alternatives=max(t.m_alternatives for t in layout.targets),
-                      trials_per_reader=trials_per_reader, seed=seed, repeat_fraction=repeat_fraction,
-                      n_practice=n_practice, show_feedback=show_feedback, observer="npwe")
+        study = Study(
+            name=name,
+            created_by=coord.id,
+            layout_file=str(layout.source_path),
+            layout_name=layout.name,
+            m_alternatives=max(t.m_alternatives for t in layout.targets),
+            trials_per_reader=trials_per_reader,
+            seed=seed,
+            repeat_fraction=repeat_fraction,
+            n_practice=n_practice,
+            show_feedback=show_feedback,
+            observer="npwe",
+        )
         s.add(study)
         s.flush()
         store = Path(app.config["STORE_DIR"])
@@ -75,16 +95,25 @@ def create_demo_study(app, *, name: str = "Demo reader study, Harbourside (inven
                 conv.parent.mkdir(parents=True, exist_ok=True)
                 save_conversion(model.conversion_function(), conv)
                 for i in range(images_per_detector):
-                    sim = simulate(model, "phantom", DEMO_DOSE_UGY, np.random.default_rng(seeds[k]), small=True,
-                                   layout=layout)
+                    sim = simulate(
+                        model, "phantom", DEMO_DOSE_UGY, np.random.default_rng(seeds[k]), small=True, layout=layout
+                    )
                     k += 1
                     acquired = _dt.datetime(2026, 11, 30, 7, 30) + _dt.timedelta(minutes=2 * i)
                     path = write_simulated(sim, Path(tmp), f"{det}-{i + 1:02d}", acquired)
                     with open(path, "rb") as fh:
                         digest, stored = services.store_bytes(fh, ".dcm", store, 1 << 30, path.name)
-                    s.add(StudyImage(study_id=study.id, sha256=digest, stored_name=stored.name,
-                                     code=f"img-{digest[:10]}", detector=label, conversion_file=str(conv),
-                                     label=path.name))
+                    s.add(
+                        StudyImage(
+                            study_id=study.id,
+                            sha256=digest,
+                            stored_name=stored.name,
+                            code=f"img-{digest[:10]}",
+                            detector=label,
+                            conversion_file=str(conv),
+                            label=path.name,
+                        )
+                    )
         for r in readers:
             uid = s.execute(select(User.id).where(User.username == r)).scalar_one()
             s.add(Enrolment(study_id=study.id, user_id=uid))
@@ -94,6 +123,7 @@ def create_demo_study(app, *, name: str = "Demo reader study, Harbourside (inven
             services.open_study(s, study, store)
             study.status = "open"
             from webapp.models import utcnow
+
             study.opened_at = utcnow()
         s.commit()
         return {"study_id": study.id, "credentials": creds}

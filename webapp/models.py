@@ -16,8 +16,19 @@ from __future__ import annotations
 import datetime as _dt
 import json
 
-from sqlalchemy import (Boolean, DateTime, Float, ForeignKey, Index, Integer, String, Text, UniqueConstraint,
-                        create_engine, event)
+from sqlalchemy import (
+    Boolean,
+    DateTime,
+    Float,
+    ForeignKey,
+    Index,
+    Integer,
+    String,
+    Text,
+    UniqueConstraint,
+    create_engine,
+    event,
+)
 from sqlalchemy.orm import DeclarativeBase, Mapped, mapped_column, relationship, scoped_session, sessionmaker
 
 ROLES = ("coordinator", "reader")
@@ -67,7 +78,7 @@ class Study(Base):
     status: Mapped[str] = mapped_column(String(16), default="draft")
     created_by: Mapped[int] = mapped_column(ForeignKey("users.id"))
     created_at: Mapped[_dt.datetime] = mapped_column(DateTime, default=utcnow)
-    layout_file: Mapped[str] = mapped_column(String(300))          # path of the layout TOML on the server
+    layout_file: Mapped[str] = mapped_column(String(300))  # path of the layout TOML on the server
     layout_name: Mapped[str] = mapped_column(String(200))
     m_alternatives: Mapped[int] = mapped_column(Integer, default=4)
     trials_per_reader: Mapped[int] = mapped_column(Integer)
@@ -98,12 +109,12 @@ class StudyImage(Base):
     id: Mapped[int] = mapped_column(primary_key=True)
     study_id: Mapped[int] = mapped_column(ForeignKey("studies.id"), index=True)
     sha256: Mapped[str] = mapped_column(String(64))
-    stored_name: Mapped[str] = mapped_column(String(80))             # <sha256>.<ext>, never a client path
-    code: Mapped[str] = mapped_column(String(32))                     # image id in exports: "img-<sha8>"
-    detector: Mapped[str] = mapped_column(String(100))               # coordinator's label, never shown to readers
+    stored_name: Mapped[str] = mapped_column(String(80))  # <sha256>.<ext>, never a client path
+    code: Mapped[str] = mapped_column(String(32))  # image id in exports: "img-<sha8>"
+    detector: Mapped[str] = mapped_column(String(100))  # coordinator's label, never shown to readers
     conversion_file: Mapped[str | None] = mapped_column(String(300), nullable=True)
     pixel_spacing_mm: Mapped[float | None] = mapped_column(Float, nullable=True)  # for files without one
-    label: Mapped[str] = mapped_column(String(200), default="")      # sanitised original name, coordinator only
+    label: Mapped[str] = mapped_column(String(200), default="")  # sanitised original name, coordinator only
     rows: Mapped[int] = mapped_column(Integer, default=0)
     cols: Mapped[int] = mapped_column(Integer, default=0)
     registration_json: Mapped[str | None] = mapped_column(Text, nullable=True)
@@ -123,10 +134,10 @@ class Region(Base):
     target: Mapped[str] = mapped_column(String(64))
     diameter_mm: Mapped[float] = mapped_column(Float)
     contrast: Mapped[float] = mapped_column(Float)
-    true_site: Mapped[int] = mapped_column(Integer)                   # never sent before the response is stored
+    true_site: Mapped[int] = mapped_column(Integer)  # never sent before the response is stored
     row0: Mapped[int] = mapped_column(Integer)
     col0: Mapped[int] = mapped_column(Integer)
-    sites_json: Mapped[str] = mapped_column(Text)                     # [[row, col], ...] in region pixels
+    sites_json: Mapped[str] = mapped_column(Text)  # [[row, col], ...] in region pixels
 
     image: Mapped[StudyImage] = relationship()
 
@@ -151,11 +162,13 @@ class Trial(Base):
     """One presentation in a reader's sequence (practice, first reading or repeat)."""
 
     __tablename__ = "trials"
-    __table_args__ = (UniqueConstraint("study_id", "reader_id", "seq"),
-                      Index("ix_trials_reader_seq", "study_id", "reader_id", "seq"))
+    __table_args__ = (
+        UniqueConstraint("study_id", "reader_id", "seq"),
+        Index("ix_trials_reader_seq", "study_id", "reader_id", "seq"),
+    )
 
     id: Mapped[int] = mapped_column(primary_key=True)
-    public_id: Mapped[str] = mapped_column(String(32), unique=True, index=True)   # opaque, random
+    public_id: Mapped[str] = mapped_column(String(32), unique=True, index=True)  # opaque, random
     study_id: Mapped[int] = mapped_column(ForeignKey("studies.id"))
     reader_id: Mapped[int] = mapped_column(ForeignKey("users.id"))
     seq: Mapped[int] = mapped_column(Integer)
@@ -171,7 +184,7 @@ class Response(Base):
     __tablename__ = "responses"
 
     id: Mapped[int] = mapped_column(primary_key=True)
-    trial_id: Mapped[int] = mapped_column(ForeignKey("trials.id"), unique=True)   # stored once
+    trial_id: Mapped[int] = mapped_column(ForeignKey("trials.id"), unique=True)  # stored once
     chosen_site: Mapped[int] = mapped_column(Integer)
     correct: Mapped[bool] = mapped_column(Boolean)
     response_ms: Mapped[int] = mapped_column(Integer)
@@ -195,7 +208,7 @@ class ReadingSession(Base):
     reader_id: Mapped[int] = mapped_column(ForeignKey("users.id"), index=True)
     number: Mapped[int] = mapped_column(Integer, default=1)
     started_at: Mapped[_dt.datetime] = mapped_column(DateTime, default=utcnow)
-    check_site: Mapped[int] = mapped_column(Integer)                  # the display check's answer (server only)
+    check_site: Mapped[int] = mapped_column(Integer)  # the display check's answer (server only)
     check_seed: Mapped[int] = mapped_column(Integer)
     check_attempts: Mapped[int] = mapped_column(Integer, default=0)
     check_passed: Mapped[bool] = mapped_column(Boolean, default=False)
@@ -244,6 +257,7 @@ def make_engine(url: str):
         kwargs.update(pool_size=10, max_overflow=20, pool_pre_ping=True)
     engine = create_engine(url, **kwargs)
     if url.startswith("sqlite"):
+
         @event.listens_for(engine, "connect")
         def _sqlite_pragmas(dbapi_conn, _record):
             cur = dbapi_conn.cursor()
@@ -252,6 +266,7 @@ def make_engine(url: str):
             cur.execute("PRAGMA foreign_keys=ON")
             cur.execute("PRAGMA busy_timeout=30000")
             cur.close()
+
     return engine
 
 

@@ -11,8 +11,18 @@ from __future__ import annotations
 import math
 import secrets
 
-from flask import Blueprint, Response as FlaskResponse, abort, current_app, jsonify, redirect, render_template, \
-    request, session, url_for
+from flask import (
+    Blueprint,
+    Response as FlaskResponse,
+    abort,
+    current_app,
+    jsonify,
+    redirect,
+    render_template,
+    request,
+    session,
+    url_for,
+)
 from flask_login import current_user
 from sqlalchemy import func, select
 from sqlalchemy.exc import IntegrityError
@@ -34,8 +44,11 @@ def _enrolled(study_id: int, states=("open", "closed")) -> Study:
     st = db().get(Study, study_id)
     if st is None or st.status not in states:
         abort(404)
-    e = db().execute(select(Enrolment.id).where(Enrolment.study_id == study_id,
-                                                Enrolment.user_id == current_user.id)).first()
+    e = (
+        db()
+        .execute(select(Enrolment.id).where(Enrolment.study_id == study_id, Enrolment.user_id == current_user.id))
+        .first()
+    )
     if e is None:
         abort(404)
     return st
@@ -60,10 +73,16 @@ def _passed_session(study_id: int) -> ReadingSession | None:
 
 def _counts(study_id: int) -> dict:
     """Trials and answers of the signed-in reader, practice apart (one query)."""
-    rows = db().execute(select(Trial.practice, func.count(Trial.id), func.count(Response.id))
-                        .outerjoin(Response, Response.trial_id == Trial.id)
-                        .where(Trial.study_id == study_id, Trial.reader_id == current_user.id)
-                        .group_by(Trial.practice)).all()
+    rows = (
+        db()
+        .execute(
+            select(Trial.practice, func.count(Trial.id), func.count(Response.id))
+            .outerjoin(Response, Response.trial_id == Trial.id)
+            .where(Trial.study_id == study_id, Trial.reader_id == current_user.id)
+            .group_by(Trial.practice)
+        )
+        .all()
+    )
     out = {"answered": 0, "total": 0, "practice_answered": 0, "practice_total": 0}
     for practice, n, answered in rows:
         key = "practice_" if practice else ""
@@ -75,9 +94,17 @@ def _counts(study_id: int) -> dict:
 @bp.route("/")
 @reader_only
 def home():
-    rows = db().execute(select(Study).join(Enrolment, Enrolment.study_id == Study.id)
-                        .where(Enrolment.user_id == current_user.id, Study.status.in_(("open", "closed")))
-                        .order_by(Study.id)).scalars().all()
+    rows = (
+        db()
+        .execute(
+            select(Study)
+            .join(Enrolment, Enrolment.study_id == Study.id)
+            .where(Enrolment.user_id == current_user.id, Study.status.in_(("open", "closed")))
+            .order_by(Study.id)
+        )
+        .scalars()
+        .all()
+    )
     studies = [{"study": st, **_counts(st.id)} for st in rows]
     return render_template("reading/home.html", studies=studies)
 
@@ -85,7 +112,7 @@ def home():
 # --------------------------------------------------------------------------- display check
 def _new_check(rs: ReadingSession) -> None:
     rs.check_site = secrets.randbelow(len(services.CHECK_SITES))
-    rs.check_seed = secrets.randbelow(2 ** 31)
+    rs.check_seed = secrets.randbelow(2**31)
 
 
 @bp.route("/studies/<int:study_id>/check")
@@ -96,16 +123,27 @@ def check(study_id):
     sid = session.get(_session_key(study_id))
     rs = s.get(ReadingSession, sid) if sid else None
     if rs is None or rs.reader_id != current_user.id or rs.study_id != study_id:
-        number = (s.scalar(select(func.max(ReadingSession.number)).where(
-            ReadingSession.study_id == study_id, ReadingSession.reader_id == current_user.id)) or 0) + 1
-        rs = ReadingSession(study_id=study_id, reader_id=current_user.id, number=number, check_site=0,
-                            check_seed=0, user_agent=(request.user_agent.string or "")[:300])
+        number = (
+            s.scalar(
+                select(func.max(ReadingSession.number)).where(
+                    ReadingSession.study_id == study_id, ReadingSession.reader_id == current_user.id
+                )
+            )
+            or 0
+        ) + 1
+        rs = ReadingSession(
+            study_id=study_id,
+            reader_id=current_user.id,
+            number=number,
+            check_site=0,
+            check_seed=0,
+            user_agent=(request.user_agent.string or "")[:300],
+        )
         _new_check(rs)
         s.add(rs)
         s.commit()
         session[_session_key(study_id)] = rs.id
-    return render_template("reading/check.html", study=st, rs=rs, size=services.CHECK_SIZE,
-                           sites=services.CHECK_SITES)
+    return render_template("reading/check.html", study=st, rs=rs, size=services.CHECK_SIZE, sites=services.CHECK_SITES)
 
 
 @bp.route("/api/studies/<int:study_id>/check/pattern")
@@ -117,8 +155,11 @@ def check_pattern(study_id):
     if rs is None or rs.reader_id != current_user.id:
         return jsonify(error="open the display check page first"), 409
     body = services.display_check_pattern(rs.check_site, rs.check_seed)
-    return FlaskResponse(body, mimetype="application/octet-stream",
-                         headers={"X-Rows": str(services.CHECK_SIZE), "X-Cols": str(services.CHECK_SIZE)})
+    return FlaskResponse(
+        body,
+        mimetype="application/octet-stream",
+        headers={"X-Rows": str(services.CHECK_SIZE), "X-Cols": str(services.CHECK_SIZE)},
+    )
 
 
 def _float(data, key, lo, hi):
@@ -158,8 +199,9 @@ def check_answer(study_id):
     else:
         _new_check(rs)
     s.commit()
-    return jsonify(passed=passed, attempts=rs.check_attempts,
-                   next=url_for("reading.read", study_id=study_id) if passed else None)
+    return jsonify(
+        passed=passed, attempts=rs.check_attempts, next=url_for("reading.read", study_id=study_id) if passed else None
+    )
 
 
 # --------------------------------------------------------------------------- reading
@@ -181,36 +223,71 @@ def next_trial(study_id):
     counts = _counts(st.id)
     if st.status != "open":
         return jsonify(done=True, closed=True, **counts)
-    t = db().execute(select(Trial).outerjoin(Response, Response.trial_id == Trial.id)
-                     .where(Trial.study_id == st.id, Trial.reader_id == current_user.id, Response.id.is_(None))
-                     .order_by(Trial.seq).limit(1)).scalars().first()
+    t = (
+        db()
+        .execute(
+            select(Trial)
+            .outerjoin(Response, Response.trial_id == Trial.id)
+            .where(Trial.study_id == st.id, Trial.reader_id == current_user.id, Response.id.is_(None))
+            .order_by(Trial.seq)
+            .limit(1)
+        )
+        .scalars()
+        .first()
+    )
     if t is None:
         return jsonify(done=True, closed=False, **counts)
     reg = t.region
-    return jsonify(done=False, trial=t.public_id, practice=bool(t.practice),
-                   number=counts["answered"] + (0 if t.practice else 1),
-                   practice_number=counts["practice_answered"] + 1 if t.practice else None,
-                   rows=st.region_rows, cols=st.region_cols, sites=reg.sites, m=len(reg.sites),
-                   magnification=st.magnification,
-                   region_url=url_for("reading.region", public_id=t.public_id),
-                   response_url=url_for("reading.respond", public_id=t.public_id), **counts)
+    return jsonify(
+        done=False,
+        trial=t.public_id,
+        practice=bool(t.practice),
+        number=counts["answered"] + (0 if t.practice else 1),
+        practice_number=counts["practice_answered"] + 1 if t.practice else None,
+        rows=st.region_rows,
+        cols=st.region_cols,
+        sites=reg.sites,
+        m=len(reg.sites),
+        magnification=st.magnification,
+        region_url=url_for("reading.region", public_id=t.public_id),
+        response_url=url_for("reading.respond", public_id=t.public_id),
+        **counts,
+    )
 
 
 @bp.route("/api/trials/<public_id>/region")
 @reader_only
 def region(public_id):
     # one query on the hot path: whose trial, is the study open, where is the crop, which stored image
-    row = db().execute(select(Trial.reader_id, Study.status, Study.region_rows, Study.region_cols, Region.row0,
-                              Region.col0, StudyImage.sha256)
-                       .join(Study, Study.id == Trial.study_id).join(Region, Region.id == Trial.region_id)
-                       .join(StudyImage, StudyImage.id == Region.image_id)
-                       .where(Trial.public_id == public_id)).first()
+    row = (
+        db()
+        .execute(
+            select(
+                Trial.reader_id,
+                Study.status,
+                Study.region_rows,
+                Study.region_cols,
+                Region.row0,
+                Region.col0,
+                StudyImage.sha256,
+            )
+            .join(Study, Study.id == Trial.study_id)
+            .join(Region, Region.id == Trial.region_id)
+            .join(StudyImage, StudyImage.id == Region.image_id)
+            .where(Trial.public_id == public_id)
+        )
+        .first()
+    )
     if row is None or row.reader_id != current_user.id or row.status != "open":
         abort(404)
-    body = services.region_bytes(current_app.config["STORE_DIR"], row.sha256, row.row0, row.col0, row.region_rows,
-                                 row.region_cols)
-    return FlaskResponse(body, mimetype="application/octet-stream",
-                         headers={"X-Rows": str(row.region_rows), "X-Cols": str(row.region_cols)})
+    body = services.region_bytes(
+        current_app.config["STORE_DIR"], row.sha256, row.row0, row.col0, row.region_rows, row.region_cols
+    )
+    return FlaskResponse(
+        body,
+        mimetype="application/octet-stream",
+        headers={"X-Rows": str(row.region_rows), "X-Cols": str(row.region_cols)},
+    )
 
 
 @bp.route("/api/trials/<public_id>/response", methods=["POST"])
@@ -242,11 +319,22 @@ def respond(public_id):
     if t.response is not None:
         return jsonify(error="this trial is already answered", duplicate=True), 409
     correct = site == t.region.true_site
-    s.add(Response(trial_id=t.id, chosen_site=site, correct=correct, response_ms=ms, window=window, level=level,
-                   zoom=zoom, inverted=bool(data.get("inverted", False)), session_id=rs.id))
+    s.add(
+        Response(
+            trial_id=t.id,
+            chosen_site=site,
+            correct=correct,
+            response_ms=ms,
+            window=window,
+            level=level,
+            zoom=zoom,
+            inverted=bool(data.get("inverted", False)),
+            session_id=rs.id,
+        )
+    )
     try:
         s.commit()
-    except IntegrityError:      # the same trial answered at the same moment from another tab
+    except IntegrityError:  # the same trial answered at the same moment from another tab
         s.rollback()
         return jsonify(error="this trial is already answered", duplicate=True), 409
     out = {"stored": True}

@@ -25,8 +25,10 @@ from werkzeug.security import check_password_hash, generate_password_hash
 
 from scorer.errors import LimenError
 
-CSP = ("default-src 'self'; script-src 'self'; style-src 'self'; img-src 'self' data:; connect-src 'self'; "
-       "object-src 'none'; base-uri 'none'; form-action 'self'; frame-src 'self'; frame-ancestors 'none'")
+CSP = (
+    "default-src 'self'; script-src 'self'; style-src 'self'; img-src 'self' data:; connect-src 'self'; "
+    "object-src 'none'; base-uri 'none'; form-action 'self'; frame-src 'self'; frame-ancestors 'none'"
+)
 # the stored analysis report (scorer.reports) carries its own inline <style> and SVG: no script at all
 REPORT_CSP = "default-src 'none'; style-src 'unsafe-inline'; img-src data:; frame-ancestors 'self'"
 
@@ -62,6 +64,7 @@ def wants_json() -> bool:
 
 def role_required(*roles):
     """Allow the view to users of ``roles`` only: anonymous → login (401 for API calls), other roles → 403."""
+
     def deco(view):
         @functools.wraps(view)
         def wrapped(*args, **kwargs):
@@ -70,8 +73,10 @@ def role_required(*roles):
             if current_user.role not in roles:
                 abort(403)
             return view(*args, **kwargs)
+
         wrapped.limen_roles = roles
         return wrapped
+
     return deco
 
 
@@ -86,8 +91,11 @@ def audit(action: str, study_id: int | None = None, **detail) -> None:
     from webapp.models import AuditEntry
 
     uid = current_user.id if current_user and current_user.is_authenticated else None
-    db().add(AuditEntry(user_id=uid, action=action, study_id=study_id,
-                        detail=json.dumps(detail, default=str, sort_keys=True)))
+    db().add(
+        AuditEntry(
+            user_id=uid, action=action, study_id=study_id, detail=json.dumps(detail, default=str, sort_keys=True)
+        )
+    )
 
 
 def _login_key() -> str:
@@ -119,15 +127,21 @@ def init_security(app) -> None:
         if wants_json() or request.method != "GET":
             return jsonify(error="sign in first"), 401
         from flask import redirect, url_for
+
         return redirect(url_for("auth.login", next=request.full_path if request.query_string else request.path))
 
     # one limiter per app, so apps built side by side (tests) keep separate counts
-    limiter = Limiter(key_func=get_remote_address, app=app, storage_uri="memory://",
-                      enabled=app.config.get("RATELIMIT_ENABLED", True))
+    limiter = Limiter(
+        key_func=get_remote_address, app=app, storage_uri="memory://", enabled=app.config.get("RATELIMIT_ENABLED", True)
+    )
     app.extensions["limen_limiter"] = limiter
     view = app.view_functions["auth.login"]
-    limited = limiter.limit(lambda: app.config["LOGIN_RATE_LIMIT"], key_func=_login_key, methods=["POST"],
-                            deduct_when=lambda response: response.status_code != 302)(view)
+    limited = limiter.limit(
+        lambda: app.config["LOGIN_RATE_LIMIT"],
+        key_func=_login_key,
+        methods=["POST"],
+        deduct_when=lambda response: response.status_code != 302,
+    )(view)
     limited.limen_roles = getattr(view, "limen_roles", ("anonymous",))
     app.view_functions["auth.login"] = limited
 
@@ -147,8 +161,12 @@ def init_security(app) -> None:
 
     @app.errorhandler(CSRFError)
     def _csrf(exc):
-        return _page(400, "Request refused", "The form had no valid security token (it may have expired, "
-                     "or it was sent from another site). Go back, reload the page and try again.")
+        return _page(
+            400,
+            "Request refused",
+            "The form had no valid security token (it may have expired, "
+            "or it was sent from another site). Go back, reload the page and try again.",
+        )
 
     @app.errorhandler(LimenError)
     def _limen(exc):
@@ -174,4 +192,5 @@ def init_security(app) -> None:
     @app.context_processor
     def _globals():
         from scorer.reports import CAUTION
+
         return {"CAUTION": CAUTION}

@@ -87,8 +87,9 @@ def store_bytes(stream, suffix: str, store_dir: Path, max_bytes: int, label: str
 def check_suffix(name: str, allowed: set[str], what: str) -> str:
     suffix = Path(safe_label(name)).suffix.lower()
     if suffix not in allowed:
-        raise LimenError(f"{what} must be one of {', '.join(sorted(allowed))} (got '{suffix or 'no extension'}')",
-                         safe_label(name))
+        raise LimenError(
+            f"{what} must be one of {', '.join(sorted(allowed))} (got '{suffix or 'no extension'}')", safe_label(name)
+        )
     return ".dcm" if suffix == ".dicom" else suffix
 
 
@@ -109,6 +110,7 @@ def validate_image_file(path: Path, label: str, pixel_spacing_mm=None, conversio
         with warnings.catch_warnings():
             warnings.simplefilter("ignore", LimenWarning)
             return load_image(path, pixel_spacing_mm=pixel_spacing_mm, conversion=conversion)
+
     return _named(label, path, read)
 
 
@@ -165,7 +167,7 @@ def display_path(store_dir: Path, sha256: str) -> Path:
 def region_bytes(store_dir: Path, sha256: str, row0: int, col0: int, rows: int, cols: int) -> bytes:
     """The region's linear 16-bit pixels, little-endian, row-major."""
     arr = PIXELS.get(display_path(store_dir, sha256))
-    return np.ascontiguousarray(arr[row0:row0 + rows, col0:col0 + cols], dtype="<u2").tobytes()
+    return np.ascontiguousarray(arr[row0 : row0 + rows, col0 : col0 + cols], dtype="<u2").tobytes()
 
 
 # =========================================================================== opening a study
@@ -215,9 +217,17 @@ def open_study(session, study, store_dir: Path, progress=None) -> list[str]:
         conversion = load_conversion(conv_file) if conv_file else None
         paths = [str(store_dir / im.stored_name) for im in images]
         say(f"scoring {len(paths)} image(s) with the {study.observer.upper()} model observer")
-        res = score_images(paths, layout, observer=study.observer, methods=["count"], conversion=conversion,
-                           pixel_spacing_mm=spacing,
-                           viewing_distance_mm=study.viewing_distance_mm, n_boot=0, seed=study.seed)
+        res = score_images(
+            paths,
+            layout,
+            observer=study.observer,
+            methods=["count"],
+            conversion=conversion,
+            pixel_spacing_mm=spacing,
+            viewing_distance_mm=study.viewing_distance_mm,
+            n_boot=0,
+            seed=study.seed,
+        )
         notes += [n for n in res.warnings if n not in notes]
         name_to_image = {Path(p).name: im for p, im in zip(paths, images)}
         tr = res.trials.copy()
@@ -263,9 +273,19 @@ def open_study(session, study, store_dir: Path, progress=None) -> list[str]:
     regions = []
     for (code, tid), (r0, c0, sites) in boxes.items():
         t = targets[tid]
-        regions.append(Region(study_id=study.id, image_id=by_code[code][0].id, target=tid,
-                              diameter_mm=float(t.diameter_mm), contrast=float(t.contrast),
-                              true_site=int(t.signal_site), row0=r0, col0=c0, sites_json=json.dumps(sites)))
+        regions.append(
+            Region(
+                study_id=study.id,
+                image_id=by_code[code][0].id,
+                target=tid,
+                diameter_mm=float(t.diameter_mm),
+                contrast=float(t.contrast),
+                true_site=int(t.signal_site),
+                row0=r0,
+                col0=c0,
+                sites_json=json.dumps(sites),
+            )
+        )
     session.add_all(regions)
     session.flush()
     model = pd.concat(model_frames, ignore_index=True)
@@ -309,14 +329,23 @@ def build_schedules(session, study, regions) -> None:
         seq += [(main[i], False, 0) for i in r_rng.permutation(len(main))]
         seq += [(repeats[i], False, 1) for i in r_rng.permutation(len(repeats))]
         for k, (region, is_practice, rep) in enumerate(seq):
-            rows.append(Trial(public_id=secrets.token_hex(12), study_id=study.id, reader_id=enrol.user_id,
-                              seq=k, region_id=region.id, practice=is_practice, repeat=rep))
+            rows.append(
+                Trial(
+                    public_id=secrets.token_hex(12),
+                    study_id=study.id,
+                    reader_id=enrol.user_id,
+                    seq=k,
+                    region_id=region.id,
+                    practice=is_practice,
+                    repeat=rep,
+                )
+            )
     session.add_all(rows)
 
 
 # =========================================================================== display check
 CHECK_SIZE = 192
-CHECK_SITES = [(48, 48), (48, 144), (144, 48), (144, 144)]   # (row, col)
+CHECK_SITES = [(48, 48), (48, 144), (144, 48), (144, 144)]  # (row, col)
 
 
 def display_check_pattern(site: int, seed: int) -> bytes:
@@ -328,9 +357,9 @@ def display_check_pattern(site: int, seed: int) -> bytes:
     img = np.full((CHECK_SIZE, CHECK_SIZE), base, dtype=float)
     yy, xx = np.mgrid[:CHECK_SIZE, :CHECK_SIZE]
     r, c = CHECK_SITES[site]
-    img[(yy - r) ** 2 + (xx - c) ** 2 <= 14 ** 2] = base + 3
+    img[(yy - r) ** 2 + (xx - c) ** 2 <= 14**2] = base + 3
     img[:, :8] = 0
-    img[:, -8:] = 255            # black and white bars at the edges frame the grey scale
+    img[:, -8:] = 255  # black and white bars at the edges frame the grey scale
     return (img * 257).astype("<u2").tobytes()
 
 
@@ -341,22 +370,56 @@ def responses_frame(session, study) -> pd.DataFrame:
 
     from webapp.models import ReadingSession, Region, Response, StudyImage, Trial, User
 
-    q = (select(User.username, StudyImage.detector, StudyImage.code, Region.target, Region.diameter_mm,
-                Region.contrast, Response.chosen_site, Region.true_site, Response.correct, Response.response_ms,
-                ReadingSession.number, Trial.repeat, Response.window, Response.level, Response.created_at,
-                Region.sites_json)
-         .join(Trial, Response.trial_id == Trial.id)
-         .join(User, Trial.reader_id == User.id)
-         .join(Region, Trial.region_id == Region.id)
-         .join(StudyImage, Region.image_id == StudyImage.id)
-         .outerjoin(ReadingSession, Response.session_id == ReadingSession.id)
-         .where(Trial.study_id == study.id, Trial.practice.is_(False))
-         .order_by(User.username, Trial.seq))
+    q = (
+        select(
+            User.username,
+            StudyImage.detector,
+            StudyImage.code,
+            Region.target,
+            Region.diameter_mm,
+            Region.contrast,
+            Response.chosen_site,
+            Region.true_site,
+            Response.correct,
+            Response.response_ms,
+            ReadingSession.number,
+            Trial.repeat,
+            Response.window,
+            Response.level,
+            Response.created_at,
+            Region.sites_json,
+        )
+        .join(Trial, Response.trial_id == Trial.id)
+        .join(User, Trial.reader_id == User.id)
+        .join(Region, Trial.region_id == Region.id)
+        .join(StudyImage, Region.image_id == StudyImage.id)
+        .outerjoin(ReadingSession, Response.session_id == ReadingSession.id)
+        .where(Trial.study_id == study.id, Trial.practice.is_(False))
+        .order_by(User.username, Trial.seq)
+    )
     rows = session.execute(q).all()
     scale = float(study.ugy_per_unit or 1.0)
-    df = pd.DataFrame(rows, columns=["reader", "detector", "image", "target", "diameter_mm", "contrast",
-                                     "chosen_site", "true_site", "correct", "response_ms", "session", "repeat",
-                                     "window", "level", "timestamp", "sites_json"])
+    df = pd.DataFrame(
+        rows,
+        columns=[
+            "reader",
+            "detector",
+            "image",
+            "target",
+            "diameter_mm",
+            "contrast",
+            "chosen_site",
+            "true_site",
+            "correct",
+            "response_ms",
+            "session",
+            "repeat",
+            "window",
+            "level",
+            "timestamp",
+            "sites_json",
+        ],
+    )
     df["correct"] = df["correct"].astype(int)
     df["session"] = df["session"].fillna(1).astype(int)
     # each trial's own M (a plate may use 3-site cells for some diameters and 5-site cells for others)
@@ -374,8 +437,9 @@ def responses_csv(session, study) -> str:
 def model_frame(study) -> pd.DataFrame | None:
     if not study.model_trials_csv:
         return None
-    return pd.read_csv(io.StringIO(study.model_trials_csv), dtype={"reader": str, "detector": str, "image": str,
-                                                                  "target": str})
+    return pd.read_csv(
+        io.StringIO(study.model_trials_csv), dtype={"reader": str, "detector": str, "image": str, "target": str}
+    )
 
 
 def run_analysis(session, study, n_boot: int, seed: int = 0):
@@ -393,19 +457,38 @@ def run_analysis(session, study, n_boot: int, seed: int = 0):
         raise LimenError("no responses stored yet: nothing to analyse")
     csv_text = df.to_csv(index=False)
     digest = hashlib.sha256(f"{n_boot}|{seed}|".encode() + csv_text.encode()).hexdigest()
-    cached = session.execute(select(AnalysisRun).where(AnalysisRun.study_id == study.id,
-                                                       AnalysisRun.responses_sha256 == digest)).scalars().first()
+    cached = (
+        session.execute(
+            select(AnalysisRun).where(AnalysisRun.study_id == study.id, AnalysisRun.responses_sha256 == digest)
+        )
+        .scalars()
+        .first()
+    )
     if cached is not None:
         return cached
     trials = validate_trials(df, source=f"study {study.id} responses")
     model_raw = model_frame(study)
-    model = validate_trials(model_raw, source=f"study {study.id} model-observer trials") \
-        if model_raw is not None and len(model_raw) else None
+    model = (
+        validate_trials(model_raw, source=f"study {study.id} model-observer trials")
+        if model_raw is not None and len(model_raw)
+        else None
+    )
     a = analyse_study(trials, model, by="detector", n_boot=n_boot, seed=seed)
-    meta = {"study": study.name, "layout": study.layout_name, "observer": study.observer,
-            "responses_sha256": hashlib.sha256(csv_text.encode()).hexdigest(), "n_responses": int(len(df)),
-            "seed": seed, "n_boot": n_boot}
-    run = AnalysisRun(study_id=study.id, responses_sha256=digest, n_responses=int(len(df)),
-                      report_html=report_html(a, meta), analysis_json=dumps({**a.to_json(), "meta": meta}))
+    meta = {
+        "study": study.name,
+        "layout": study.layout_name,
+        "observer": study.observer,
+        "responses_sha256": hashlib.sha256(csv_text.encode()).hexdigest(),
+        "n_responses": int(len(df)),
+        "seed": seed,
+        "n_boot": n_boot,
+    }
+    run = AnalysisRun(
+        study_id=study.id,
+        responses_sha256=digest,
+        n_responses=int(len(df)),
+        report_html=report_html(a, meta),
+        analysis_json=dumps({**a.to_json(), "meta": meta}),
+    )
     session.add(run)
     return run

@@ -11,37 +11,66 @@ from scorer.reports import dumps
 
 @click.command("analyse")
 @click.argument("responses", type=click.Path(dir_okay=False))
-@click.option("--model", "model_file", type=click.Path(dir_okay=False), default=None,
-              help="Model-observer trials (e.g. DIR/trials.csv from `limen score --out DIR`).")
-@click.option("--by", default="detector", show_default=True,
-              help="Column whose levels are compared (ratio of thresholds to the reference level).")
+@click.option(
+    "--model",
+    "model_file",
+    type=click.Path(dir_okay=False),
+    default=None,
+    help="Model-observer trials (e.g. DIR/trials.csv from `limen score --out DIR`).",
+)
+@click.option(
+    "--by",
+    default="detector",
+    show_default=True,
+    help="Column whose levels are compared (ratio of thresholds to the reference level).",
+)
 @click.option("--reference", default=None, help="Reference level of --by (default: first in sort order).")
-@click.option("--n-boot", type=click.IntRange(0, 100000), default=1000, show_default=True,
-              help="Bootstrap resamples.")
-@click.option("--criterion", "criterion_pc", type=float, default=None,
-              help="Threshold proportion correct (default: halfway between chance and 1).")
-@click.option("--seed", type=click.IntRange(min=0), default=0, show_default=True,
-              help="Seed of the bootstrap (non-negative integer); the same seed gives the same intervals.")
+@click.option("--n-boot", type=click.IntRange(0, 100000), default=1000, show_default=True, help="Bootstrap resamples.")
+@click.option(
+    "--criterion",
+    "criterion_pc",
+    type=float,
+    default=None,
+    help="Threshold proportion correct (default: halfway between chance and 1).",
+)
+@click.option(
+    "--seed",
+    type=click.IntRange(min=0),
+    default=0,
+    show_default=True,
+    help="Seed of the bootstrap (non-negative integer); the same seed gives the same intervals.",
+)
 @click.option("--json", "as_json", is_flag=True, help="Print one JSON object on stdout.")
-@click.option("--out", "out_dir", type=click.Path(file_okay=False), default=None,
-              help="Write analysis.json, CSV tables and report.html here.")
-@click.option("--replace", is_flag=True,
-              help="Let --out name a folder an earlier run wrote to: its files are replaced (others are kept).")
+@click.option(
+    "--out",
+    "out_dir",
+    type=click.Path(file_okay=False),
+    default=None,
+    help="Write analysis.json, CSV tables and report.html here.",
+)
+@click.option(
+    "--replace",
+    is_flag=True,
+    help="Let --out name a folder an earlier run wrote to: its files are replaced (others are kept).",
+)
 def analyse(responses, model_file, by, reference, n_boot, criterion_pc, seed, as_json, out_dir, replace):
     """Per-reader and pooled contrast-detail curves, human/model factor, group comparison, agreement."""
-    from scorer.images.io import image_content_hash as file_sha256   # SHA-256 of a file's bytes
+    from scorer.images.io import image_content_hash as file_sha256  # SHA-256 of a file's bytes
     from scorer.files import OutputFolder
     from scorer.study import analyse_study, load_trials
     from scorer.study.stats import m_alternatives_of
 
     trials = load_trials(responses)
-    m_alternatives_of(trials, responses)     # a table with one candidate site is refused naming its file
+    m_alternatives_of(trials, responses)  # a table with one candidate site is refused naming its file
     model = load_trials(model_file) if model_file else None
     if model is not None:
         m_alternatives_of(model, model_file)
     folder = OutputFolder(out_dir, replace=replace, command="analyse") if out_dir else None
-    steps = ["per-reader fits", "pooled curves", f"{by} comparison"] + (
-        ["model observer", "human/model factor"] if model is not None else []) + ["agreement"]
+    steps = (
+        ["per-reader fits", "pooled curves", f"{by} comparison"]
+        + (["model observer", "human/model factor"] if model is not None else [])
+        + ["agreement"]
+    )
     from tqdm import tqdm
 
     bar = tqdm(total=len(steps), desc="analysing", file=sys.stderr, disable=as_json and not sys.stderr.isatty())
@@ -51,12 +80,23 @@ def analyse(responses, model_file, by, reference, n_boot, criterion_pc, seed, as
         bar.update(1)
 
     try:
-        a = analyse_study(trials, model, by=by, n_boot=n_boot, seed=seed, criterion_pc=criterion_pc,
-                          reference=reference, progress=progress)
+        a = analyse_study(
+            trials,
+            model,
+            by=by,
+            n_boot=n_boot,
+            seed=seed,
+            criterion_pc=criterion_pc,
+            reference=reference,
+            progress=progress,
+        )
     finally:
         bar.close()
-    meta = {"inputs": {"responses": {"path": str(responses), "sha256": file_sha256(responses)}},
-            "seed": seed, "n_boot": n_boot}
+    meta = {
+        "inputs": {"responses": {"path": str(responses), "sha256": file_sha256(responses)}},
+        "seed": seed,
+        "n_boot": n_boot,
+    }
     if model_file:
         meta["inputs"]["model"] = {"path": str(model_file), "sha256": file_sha256(model_file)}
     if out_dir:
@@ -85,8 +125,11 @@ def _text_summary(a) -> str:
         lines.append(f"{a.by:<14}{'diam mm':>8}{'C_T %':>9}{'95 % CI %':>19}{'readers':>9}")
         bounds = False
         for r in pc.to_dict("records"):
-            ci = (f"{100 * r['ci_low']:>9.3g} – {100 * r['ci_high']:<7.3g}" if _finite(r["ci_low"], r["ci_high"])
-                  else f"{'—':>9}   {'':<7}")
+            ci = (
+                f"{100 * r['ci_low']:>9.3g} – {100 * r['ci_high']:<7.3g}"
+                if _finite(r["ci_low"], r["ci_high"])
+                else f"{'—':>9}   {'':<7}"
+            )
             ct = f"{100 * r['threshold_contrast']:>9.3g}" if _finite(r["threshold_contrast"]) else f"{'—':>9}"
             if not r.get("converged", True):
                 ct = f"{format(100 * r['threshold_contrast'], '.3g') + '*':>9}"

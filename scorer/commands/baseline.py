@@ -29,16 +29,25 @@ def show(db, detector, as_json):
     store = _open(db)
     try:
         out = []
-        for det in ([detector] if detector else store.detectors()):
+        for det in [detector] if detector else store.detectors():
             for method in ("dprime", "count"):
                 bl = store.baseline(det, method)
                 if bl is None:
                     continue
                 frame, last, ids, source = bl
                 for r in frame.sort_values("diameter_mm").itertuples():
-                    out.append({"detector": det, "method": method, "diameter_mm": r.diameter_mm,
-                                "baseline_contrast": 10 ** r.mean_log10, "sigma_log10": r.sigma_log10,
-                                "n_sessions": r.n_sessions, "sessions": sorted(ids), "source": source})
+                    out.append(
+                        {
+                            "detector": det,
+                            "method": method,
+                            "diameter_mm": r.diameter_mm,
+                            "baseline_contrast": 10**r.mean_log10,
+                            "sigma_log10": r.sigma_log10,
+                            "n_sessions": r.n_sessions,
+                            "sessions": sorted(ids),
+                            "source": source,
+                        }
+                    )
     finally:
         store.close()
     if as_json:
@@ -47,9 +56,11 @@ def show(db, detector, as_json):
     if not out:
         click.echo("no baselines yet")
     for r in out:
-        click.echo(f"{r['detector']}  {r['method']:>6}  {r['diameter_mm']:>6g} mm  C_T {100 * r['baseline_contrast']:.3g} %"
-                   f"  σ(log10) {r['sigma_log10']:.3f}  {r['source']} from sessions "
-                   f"{', '.join(map(str, r['sessions']))}")
+        click.echo(
+            f"{r['detector']}  {r['method']:>6}  {r['diameter_mm']:>6g} mm  C_T {100 * r['baseline_contrast']:.3g} %"
+            f"  σ(log10) {r['sigma_log10']:.3f}  {r['source']} from sessions "
+            f"{', '.join(map(str, r['sessions']))}"
+        )
 
 
 @baseline.command("set")
@@ -70,17 +81,19 @@ def set_(db, detector, sessions, date_from, date_to):
             except ValueError:
                 raise LimenError(f"not a list of session ids: {sessions!r}", "--sessions") from None
         else:
-            ids = [s["id"] for s in store.sessions(detector)
-                   if (not date_from or s["session_date"] >= date_from) and (not date_to or s["session_date"] <= date_to)]
+            ids = [
+                s["id"]
+                for s in store.sessions(detector)
+                if (not date_from or s["session_date"] >= date_from) and (not date_to or s["session_date"] <= date_to)
+            ]
             if not ids:
-                raise LimenError(f"no scored sessions of {detector!r} between {date_from or '…'} and {date_to or '…'}",
-                                 "--from/--to")
+                raise LimenError(
+                    f"no scored sessions of {detector!r} between {date_from or '…'} and {date_to or '…'}", "--from/--to"
+                )
         store.set_baseline(detector, ids)
     finally:
         store.close()
     click.echo(f"baseline of {detector} set from sessions {', '.join(map(str, sorted(ids)))}")
-
-
 
 
 @baseline.command("clear")

@@ -21,29 +21,80 @@ from scorer.commands.detector import alternatives_from_options, diameters_from_o
 @click.argument("detector_b", type=click.Path(dir_okay=False))
 @click.option("--label-a", default=None, help="Name of the first detector (default: its file's folder or stem).")
 @click.option("--label-b", default=None, help="Name of the second detector.")
-@click.option("--scored-a", type=click.Path(dir_okay=False), default=None,
-              help="'limen score' JSON of phantom images from the first detector.")
-@click.option("--scored-b", type=click.Path(dir_okay=False), default=None,
-              help="'limen score' JSON of phantom images from the second detector.")
-@click.option("--layout", "layout_file", type=click.Path(dir_okay=False), default=None,
-              help="Phantom layout whose diameters get predicted thresholds.")
+@click.option(
+    "--scored-a",
+    type=click.Path(dir_okay=False),
+    default=None,
+    help="'limen score' JSON of phantom images from the first detector.",
+)
+@click.option(
+    "--scored-b",
+    type=click.Path(dir_okay=False),
+    default=None,
+    help="'limen score' JSON of phantom images from the second detector.",
+)
+@click.option(
+    "--layout",
+    "layout_file",
+    type=click.Path(dir_okay=False),
+    default=None,
+    help="Phantom layout whose diameters get predicted thresholds.",
+)
 @click.option("--diameters", default=None, help="Disc diameters (mm, comma-separated) for predicted thresholds.")
-@click.option("--alternatives", "m_alternatives", type=click.IntRange(2, 64), default=None,
-              help="M of the M-AFC criterion for predicted thresholds [default: each diameter's M in --layout or in the "
-                   "scored results, else 4].")
-@click.option("--scored-method", type=click.Choice(["dprime", "count"]), default="dprime", show_default=True,
-              help="Which scoring method's thresholds the side-by-side table and summary compare (both are plotted).")
-@click.option("--dose-a", type=click.Path(dir_okay=False), default=None,
-              help="'limen dose-series' JSON of the first detector: kerma each panel needs for the same threshold.")
-@click.option("--dose-b", type=click.Path(dir_okay=False), default=None,
-              help="'limen dose-series' JSON of the second detector.")
+@click.option(
+    "--alternatives",
+    "m_alternatives",
+    type=click.IntRange(2, 64),
+    default=None,
+    help="M of the M-AFC criterion for predicted thresholds [default: each diameter's M in --layout or in the "
+    "scored results, else 4].",
+)
+@click.option(
+    "--scored-method",
+    type=click.Choice(["dprime", "count"]),
+    default="dprime",
+    show_default=True,
+    help="Which scoring method's thresholds the side-by-side table and summary compare (both are plotted).",
+)
+@click.option(
+    "--dose-a",
+    type=click.Path(dir_okay=False),
+    default=None,
+    help="'limen dose-series' JSON of the first detector: kerma each panel needs for the same threshold.",
+)
+@click.option(
+    "--dose-b", type=click.Path(dir_okay=False), default=None, help="'limen dose-series' JSON of the second detector."
+)
 @click.option("--json", "as_json", is_flag=True, help="Print one JSON object on stdout.")
-@click.option("--out", "out_dir", type=click.Path(file_okay=False), default=None,
-              help="Write comparison.json, comparison.csv and comparison.html here.")
-@click.option("--replace", is_flag=True,
-              help="Let --out name a folder an earlier run wrote to: its files are replaced (others are kept).")
-def compare_detectors(detector_a, detector_b, label_a, label_b, scored_a, scored_b, layout_file, diameters,
-                      m_alternatives, scored_method, dose_a, dose_b, as_json, out_dir, replace):
+@click.option(
+    "--out",
+    "out_dir",
+    type=click.Path(file_okay=False),
+    default=None,
+    help="Write comparison.json, comparison.csv and comparison.html here.",
+)
+@click.option(
+    "--replace",
+    is_flag=True,
+    help="Let --out name a folder an earlier run wrote to: its files are replaced (others are kept).",
+)
+def compare_detectors(
+    detector_a,
+    detector_b,
+    label_a,
+    label_b,
+    scored_a,
+    scored_b,
+    layout_file,
+    diameters,
+    m_alternatives,
+    scored_method,
+    dose_a,
+    dose_b,
+    as_json,
+    out_dir,
+    replace,
+):
     """Put two detectors measured by 'limen detector' side by side."""
     a, b = load_detector_json(detector_a), load_detector_json(detector_b)
     folder = OutputFolder(out_dir, replace=replace, command="compare-detectors") if out_dir else None
@@ -63,18 +114,36 @@ def compare_detectors(detector_a, detector_b, label_a, label_b, scored_a, scored
         raise LimenError("give both --dose-a and --dose-b (a dose series of each detector)", "--dose-a")
     da = load_dose_json(dose_a) if dose_a else None
     db = load_dose_json(dose_b) if dose_b else None
-    result = compare(a, b, (la, lb), diam, sa, sb, alternatives_from_options(m_alternatives, layout_file),
-                     scored_method=scored_method, dose_a=da, dose_b=db)
-    result["inputs"] = {"detector_a": str(detector_a), "detector_b": str(detector_b),
-                        "scored_a": scored_a, "scored_b": scored_b, "layout": layout_file,
-                        "dose_a": dose_a, "dose_b": dose_b}
+    result = compare(
+        a,
+        b,
+        (la, lb),
+        diam,
+        sa,
+        sb,
+        alternatives_from_options(m_alternatives, layout_file),
+        scored_method=scored_method,
+        dose_a=da,
+        dose_b=db,
+    )
+    result["inputs"] = {
+        "detector_a": str(detector_a),
+        "detector_b": str(detector_b),
+        "scored_a": scored_a,
+        "scored_b": scored_b,
+        "layout": layout_file,
+        "dose_a": dose_a,
+        "dose_b": dose_b,
+    }
     if out_dir:
         from scorer.reports import compare_report_html
 
         out = folder.path
         write_json(out / "comparison.json", result)
-        rows = [{k: (v if not isinstance(v, list) else " – ".join(f"{x:.4g}" for x in v)) for k, v in r.items()}
-                for r in result["table"]]
+        rows = [
+            {k: (v if not isinstance(v, list) else " – ".join(f"{x:.4g}" for x in v)) for k, v in r.items()}
+            for r in result["table"]
+        ]
         atomic_write_text(out / "comparison.csv", pd.DataFrame(rows).to_csv(index=False))
         atomic_write_text(out / "comparison.html", compare_report_html(result, a, b))
         folder.finish()
@@ -90,6 +159,7 @@ def compare_detectors(detector_a, detector_b, label_a, label_b, scored_a, scored
             if v is None or not np.isfinite(v):
                 return "—"
             return f"{100 * v:.3g} %" if pct else f"{v:.4g}"
+
         verdict = r["better"] + (f" ({r['basis']})" if r.get("basis") and r["better"] else "")
         click.echo(f"{r['quantity']:<{w}}  {fmt(r[la]):>14}  {fmt(r[lb]):>14}  {verdict}")
     click.echo("")

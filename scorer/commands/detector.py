@@ -89,8 +89,10 @@ def alternatives_from_options(m_alternatives: int | None, layout_file: str | Non
         from scorer.phantom import load_layout
 
         lay = load_layout(layout_file)
-        return {float(d): Counter(t.m_alternatives for t in lay.targets_with_diameter(d)).most_common(1)[0][0]
-                for d in lay.diameters_mm}
+        return {
+            float(d): Counter(t.m_alternatives for t in lay.targets_with_diameter(d)).most_common(1)[0][0]
+            for d in lay.diameters_mm
+        }
     return None
 
 
@@ -135,11 +137,15 @@ def load_images_warn(paths, *, spacing, conversion, role: str):
                 click.echo(f"warning: {p}: {text}", err=True)
         if (im.metadata.presentation_intent or "").upper() == "FOR PRESENTATION":
             if role == "flat":
-                msg = (f"{p}: flat field is FOR PRESENTATION (processed for display): the NNPS of a processed "
-                       "image is meaningless; use FOR PROCESSING images")
+                msg = (
+                    f"{p}: flat field is FOR PRESENTATION (processed for display): the NNPS of a processed "
+                    "image is meaningless; use FOR PROCESSING images"
+                )
             else:
-                msg = (f"{p}: edge image is FOR PRESENTATION (processed for display): its MTF includes the "
-                       "processing and is not the detector's presampling MTF")
+                msg = (
+                    f"{p}: edge image is FOR PRESENTATION (processed for display): its MTF includes the "
+                    "processing and is not the detector's presampling MTF"
+                )
             click.echo(f"warning: {msg}", err=True)
             im.metadata.warnings.append(msg)
         images.append(im)
@@ -147,37 +153,104 @@ def load_images_warn(paths, *, spacing, conversion, role: str):
 
 
 @click.command("detector", cls=GreedyFilesCommand)
-@click.option("--flat", "flat_files", multiple=True, type=click.Path(dir_okay=False),
-              help="Flat-field image(s) at one air kerma, for the NNPS (several files after one flag).")
-@click.option("--edge", "edge_files", multiple=True, type=click.Path(dir_okay=False),
-              help="Slanted-edge image(s); one near-vertical and one near-horizontal give both orientations.")
+@click.option(
+    "--flat",
+    "flat_files",
+    multiple=True,
+    type=click.Path(dir_okay=False),
+    help="Flat-field image(s) at one air kerma, for the NNPS (several files after one flag).",
+)
+@click.option(
+    "--edge",
+    "edge_files",
+    multiple=True,
+    type=click.Path(dir_okay=False),
+    help="Slanted-edge image(s); one near-vertical and one near-horizontal give both orientations.",
+)
 @click.option("--kerma-ugy", type=float, default=None, help="Air kerma at the detector for the flat fields (µGy).")
-@click.option("--q", "q_per_mm2_ugy", type=float, default=None,
-              help="Photon fluence per air kerma of the beam, per mm² per µGy (required for mammography beams).")
+@click.option(
+    "--q",
+    "q_per_mm2_ugy",
+    type=float,
+    default=None,
+    help="Photon fluence per air kerma of the beam, per mm² per µGy (required for mammography beams).",
+)
 @click.option("--beam", default=None, help="Beam quality with a tabulated q: RQA3, RQA5, RQA7 or RQA9.")
-@click.option("--pixel-spacing", "pixel_spacing_mm", type=float, default=None,
-              help="Pixel spacing in mm (needed for TIFF/PNG/NPY; overrides DICOM).")
-@click.option("--conversion", "conversion_file", type=click.Path(dir_okay=False), default=None,
-              help="Conversion function (TOML or JSON) to linearise the images.")
-@click.option("--fit-conversion", "kerma_csv", type=click.Path(dir_okay=False), default=None,
-              help="CSV path,kerma_ugy of flat fields at several kermas: fit the conversion function and use it.")
-@click.option("--noise-series", "noise_csv", type=click.Path(dir_okay=False), default=None,
-              help="CSV path,kerma_ugy of flat fields at several kermas: electronic, quantum and structure noise "
-                   "with CIs, the quantum-limited kerma range, and the DQE at each kerma (may be the "
-                   "--fit-conversion file).")
+@click.option(
+    "--pixel-spacing",
+    "pixel_spacing_mm",
+    type=float,
+    default=None,
+    help="Pixel spacing in mm (needed for TIFF/PNG/NPY; overrides DICOM).",
+)
+@click.option(
+    "--conversion",
+    "conversion_file",
+    type=click.Path(dir_okay=False),
+    default=None,
+    help="Conversion function (TOML or JSON) to linearise the images.",
+)
+@click.option(
+    "--fit-conversion",
+    "kerma_csv",
+    type=click.Path(dir_okay=False),
+    default=None,
+    help="CSV path,kerma_ugy of flat fields at several kermas: fit the conversion function and use it.",
+)
+@click.option(
+    "--noise-series",
+    "noise_csv",
+    type=click.Path(dir_okay=False),
+    default=None,
+    help="CSV path,kerma_ugy of flat fields at several kermas: electronic, quantum and structure noise "
+    "with CIs, the quantum-limited kerma range, and the DQE at each kerma (may be the "
+    "--fit-conversion file).",
+)
 @click.option("--diameters", default=None, help="Disc diameters (mm, comma-separated) for predicted thresholds.")
-@click.option("--layout", "layout_file", type=click.Path(dir_okay=False), default=None,
-              help="Phantom layout whose diameters get predicted thresholds.")
-@click.option("--alternatives", "m_alternatives", type=click.IntRange(2, 64), default=None,
-              help="M of the M-AFC criterion used for predicted thresholds [default: each diameter's M in --layout, "
-                   "else 4].")
+@click.option(
+    "--layout",
+    "layout_file",
+    type=click.Path(dir_okay=False),
+    default=None,
+    help="Phantom layout whose diameters get predicted thresholds.",
+)
+@click.option(
+    "--alternatives",
+    "m_alternatives",
+    type=click.IntRange(2, 64),
+    default=None,
+    help="M of the M-AFC criterion used for predicted thresholds [default: each diameter's M in --layout, else 4].",
+)
 @click.option("--json", "as_json", is_flag=True, help="Print one JSON object on stdout.")
-@click.option("--out", "out_dir", type=click.Path(file_okay=False), default=None,
-              help="Write detector.json, detector.csv, nnps_2d.npy and detector.html here.")
-@click.option("--replace", is_flag=True,
-              help="Let --out name a folder an earlier run wrote to: its files are replaced (others are kept).")
-def detector(flat_files, edge_files, kerma_ugy, q_per_mm2_ugy, beam, pixel_spacing_mm, conversion_file,
-             kerma_csv, noise_csv, diameters, layout_file, m_alternatives, as_json, out_dir, replace):
+@click.option(
+    "--out",
+    "out_dir",
+    type=click.Path(file_okay=False),
+    default=None,
+    help="Write detector.json, detector.csv, nnps_2d.npy and detector.html here.",
+)
+@click.option(
+    "--replace",
+    is_flag=True,
+    help="Let --out name a folder an earlier run wrote to: its files are replaced (others are kept).",
+)
+def detector(
+    flat_files,
+    edge_files,
+    kerma_ugy,
+    q_per_mm2_ugy,
+    beam,
+    pixel_spacing_mm,
+    conversion_file,
+    kerma_csv,
+    noise_csv,
+    diameters,
+    layout_file,
+    m_alternatives,
+    as_json,
+    out_dir,
+    replace,
+):
     """Measure a detector as IEC 62220-1 describes: conversion function, MTF, NNPS and DQE.
 
     Flat fields give the NNPS, slanted-edge images the presampling MTF; the DQE
@@ -209,8 +282,9 @@ def detector(flat_files, edge_files, kerma_ugy, q_per_mm2_ugy, beam, pixel_spaci
     elif kerma_csv:
         entries = _read_kerma_csv(Path(kerma_csv))
         raw = load_images_warn([p for p, _ in entries], spacing=pixel_spacing_mm, conversion=None, role="flat")
-        fit = fit_conversion([k for _, k in entries], [central_mean(im.pixels, im.spacing_mm) for im in raw],
-                             path=kerma_csv)
+        fit = fit_conversion(
+            [k for _, k in entries], [central_mean(im.pixels, im.spacing_mm) for im in raw], path=kerma_csv
+        )
         conv_fn = fit.conversion
         conv_dict = fit.to_dict()
         if fit.nonlinear:
@@ -219,12 +293,19 @@ def detector(flat_files, edge_files, kerma_ugy, q_per_mm2_ugy, beam, pixel_spaci
     spacing = pixel_spacing_mm
     flats = load_images_warn(flat_files, spacing=spacing, conversion=conv_fn, role="flat")
     edges = load_images_warn(edge_files, spacing=spacing, conversion=conv_fn, role="edge")
-    _check_distinct_and_kerma(list(flat_files) + list(edge_files), flats + edges, kerma_ugy,
-                              linearised=conv_fn is not None, n_flats=len(flats))
+    _check_distinct_and_kerma(
+        list(flat_files) + list(edge_files),
+        flats + edges,
+        kerma_ugy,
+        linearised=conv_fn is not None,
+        n_flats=len(flats),
+    )
     notes = []
     if conv_fn is None and (flats or edges):
-        notes.append("no conversion function given: pixel values are taken as proportional to air kerma "
-                     "(zero offset); give --conversion or --fit-conversion for raw images")
+        notes.append(
+            "no conversion function given: pixel values are taken as proportional to air kerma "
+            "(zero offset); give --conversion or --fit-conversion for raw images"
+        )
         click.echo(f"warning: {notes[-1]}", err=True)
     if not flats and not edges and not noise_csv:
         metrics = None
@@ -234,31 +315,52 @@ def detector(flat_files, edge_files, kerma_ugy, q_per_mm2_ugy, beam, pixel_spaci
             series = _read_kerma_csv(Path(noise_csv))
             series_images = load_images_warn([p for p, _ in series], spacing=spacing, conversion=conv_fn, role="flat")
         if flats or edges:
-            metrics = measure_detector(flats, edges, kerma_ugy=kerma_ugy, q_per_mm2_ugy=q_per_mm2_ugy, beam=beam,
-                                       conversion=conv_dict)
+            metrics = measure_detector(
+                flats, edges, kerma_ugy=kerma_ugy, q_per_mm2_ugy=q_per_mm2_ugy, beam=beam, conversion=conv_dict
+            )
         else:
             metrics = measure_detector(series_images, (), conversion=conv_dict, q_per_mm2_ugy=q_per_mm2_ugy)
         if not flats and not edges:
             metrics.nnps = None  # a noise series alone gives no headline NNPS
         if noise_csv:
-            metrics.noise_series = measure_noise_series(series_images, [k for _, k in series], mtf=metrics.mtf,
-                                                        mtf_by_direction=metrics.mtf_by_direction,
-                                                        q_per_mm2_ugy=q_per_mm2_ugy, path=noise_csv)
+            metrics.noise_series = measure_noise_series(
+                series_images,
+                [k for _, k in series],
+                mtf=metrics.mtf,
+                mtf_by_direction=metrics.mtf_by_direction,
+                q_per_mm2_ugy=q_per_mm2_ugy,
+                path=noise_csv,
+            )
         metrics.warnings = notes + [w for im in flats + edges for w in im.metadata.warnings] + metrics.warnings
         if metrics.dqe is None and metrics.mtf is not None and metrics.nnps is not None:
             click.echo("note: DQE not computed: give --kerma-ugy and --q (or --beam)", err=True)
         if diam and metrics.mtf is not None and metrics.nnps is not None:
             from scorer.detector import predict_from_detector
 
-            metrics.predicted = [p.to_dict() for p in
-                                 predict_from_detector(metrics.to_dict(), diam,
-                                                       m_alternatives=alternatives_from_options(m_alternatives, layout_file) or 4)]
+            metrics.predicted = [
+                p.to_dict()
+                for p in predict_from_detector(
+                    metrics.to_dict(), diam, m_alternatives=alternatives_from_options(m_alternatives, layout_file) or 4
+                )
+            ]
         elif diam:
-            raise LimenError("predicted thresholds need both flat fields (--flat) and an edge image (--edge)",
-                             "--diameters")
-    result = metrics.to_dict() if metrics is not None else {
-        "mtf": None, "mtf_extended": None, "nnps": None, "dqe": None, "conversion": conv_dict,
-        "edge_angle_deg": None, "predicted": None, "warnings": notes}
+            raise LimenError(
+                "predicted thresholds need both flat fields (--flat) and an edge image (--edge)", "--diameters"
+            )
+    result = (
+        metrics.to_dict()
+        if metrics is not None
+        else {
+            "mtf": None,
+            "mtf_extended": None,
+            "nnps": None,
+            "dqe": None,
+            "conversion": conv_dict,
+            "edge_angle_deg": None,
+            "predicted": None,
+            "warnings": notes,
+        }
+    )
 
     if out_dir:
         out = folder.path
@@ -304,13 +406,18 @@ def _check_distinct_and_kerma(paths, images, kerma_ugy, *, linearised: bool, n_f
         return
     lo, hi = KERMA_RANGE_UGY
     if not lo <= kerma_ugy <= hi:
-        raise LimenError(f"{kerma_ugy:g} µGy is outside the plausible range {lo:g}–{hi:g} µGy of air kerma at the "
-                         "detector", "--kerma-ugy")
+        raise LimenError(
+            f"{kerma_ugy:g} µGy is outside the plausible range {lo:g}–{hi:g} µGy of air kerma at the detector",
+            "--kerma-ugy",
+        )
     if linearised and n_flats:
         measured = float(np.median([central_mean(im.pixels, im.spacing_mm) for im in images[:n_flats]]))
         if not 0.5 <= kerma_ugy / measured <= 2.0:
-            raise LimenError(f"{kerma_ugy:g} µGy disagrees with the flat fields' air kerma from the conversion "
-                             f"function ({measured:.4g} µGy)", "--kerma-ugy")
+            raise LimenError(
+                f"{kerma_ugy:g} µGy disagrees with the flat fields' air kerma from the conversion "
+                f"function ({measured:.4g} µGy)",
+                "--kerma-ugy",
+            )
 
 
 def write_csv(path: Path, result: dict) -> None:

@@ -10,37 +10,115 @@ import click
 
 @click.command("dose-series")
 @click.argument("images", nargs=-1, required=True, type=click.Path(dir_okay=False))
-@click.option("--layout", "layout_file", type=click.Path(dir_okay=False), default=None,
-              help="Phantom layout TOML (default: the bundled demo plate).")
-@click.option("--conversion", "conversion_file", type=click.Path(dir_okay=False), default=None,
-              help="Conversion function that linearises the images; without --kerma-csv each image's kerma is "
-                   "its plate background through it.")
-@click.option("--kerma-csv", "kerma_csv", type=click.Path(dir_okay=False), default=None,
-              help="CSV path,kerma_ugy giving each image's air kerma at the detector (µGy).")
-@click.option("--observer", type=click.Choice(["npw", "npwe"]), default="npw", show_default=True,
-              help="Model observer: non-prewhitening (npw) or with the eye filter (npwe).")
-@click.option("--method", type=click.Choice(["dprime", "count", "both"]), default="dprime", show_default=True,
-              help="Threshold method per group; the d′ method is fitted when computed, else the count method.")
-@click.option("--limits", "limits_file", type=click.Path(dir_okay=False), default=None,
-              help="Limits TOML: report the kerma at which each diameter's threshold meets its limit.")
-@click.option("--human-factor", type=float, default=None,
-              help="Human/model threshold factor, needed to use limits written for human readers.")
-@click.option("--human-factor-from", "factor_file", type=click.Path(dir_okay=False), default=None,
-              help="analysis.json from `limen analyse --model`: take the human/model factor measured for this "
-                   "observer.")
-@click.option("--mtf", "mtf_file", type=click.Path(dir_okay=False), default=None,
-              help="Detector JSON from `limen detector` whose measured MTF shapes the templates.")
-@click.option("--pixel-spacing", "pixel_spacing", type=float, default=None,
-              help="Pixel spacing (mm) for images without DICOM spacing (TIFF, PNG, npy).")
-@click.option("--n-boot", type=click.IntRange(0, 100000), default=1000, show_default=True,
-              help="Bootstrap resamples of the images for the count method.")
-@click.option("--seed", type=click.IntRange(min=0), default=0, show_default=True,
-              help="Seed of the bootstrap and of the kerma CIs' draws.")
+@click.option(
+    "--layout",
+    "layout_file",
+    type=click.Path(dir_okay=False),
+    default=None,
+    help="Phantom layout TOML (default: the bundled demo plate).",
+)
+@click.option(
+    "--conversion",
+    "conversion_file",
+    type=click.Path(dir_okay=False),
+    default=None,
+    help="Conversion function that linearises the images; without --kerma-csv each image's kerma is "
+    "its plate background through it.",
+)
+@click.option(
+    "--kerma-csv",
+    "kerma_csv",
+    type=click.Path(dir_okay=False),
+    default=None,
+    help="CSV path,kerma_ugy giving each image's air kerma at the detector (µGy).",
+)
+@click.option(
+    "--observer",
+    type=click.Choice(["npw", "npwe"]),
+    default="npw",
+    show_default=True,
+    help="Model observer: non-prewhitening (npw) or with the eye filter (npwe).",
+)
+@click.option(
+    "--method",
+    type=click.Choice(["dprime", "count", "both"]),
+    default="dprime",
+    show_default=True,
+    help="Threshold method per group; the d′ method is fitted when computed, else the count method.",
+)
+@click.option(
+    "--limits",
+    "limits_file",
+    type=click.Path(dir_okay=False),
+    default=None,
+    help="Limits TOML: report the kerma at which each diameter's threshold meets its limit.",
+)
+@click.option(
+    "--human-factor",
+    type=float,
+    default=None,
+    help="Human/model threshold factor, needed to use limits written for human readers.",
+)
+@click.option(
+    "--human-factor-from",
+    "factor_file",
+    type=click.Path(dir_okay=False),
+    default=None,
+    help="analysis.json from `limen analyse --model`: take the human/model factor measured for this observer.",
+)
+@click.option(
+    "--mtf",
+    "mtf_file",
+    type=click.Path(dir_okay=False),
+    default=None,
+    help="Detector JSON from `limen detector` whose measured MTF shapes the templates.",
+)
+@click.option(
+    "--pixel-spacing",
+    "pixel_spacing",
+    type=float,
+    default=None,
+    help="Pixel spacing (mm) for images without DICOM spacing (TIFF, PNG, npy).",
+)
+@click.option(
+    "--n-boot",
+    type=click.IntRange(0, 100000),
+    default=1000,
+    show_default=True,
+    help="Bootstrap resamples of the images for the count method.",
+)
+@click.option(
+    "--seed",
+    type=click.IntRange(min=0),
+    default=0,
+    show_default=True,
+    help="Seed of the bootstrap and of the kerma CIs' draws.",
+)
 @click.option("--json", "as_json", is_flag=True, help="Print one JSON object on stdout.")
-@click.option("--out", "out_dir", type=click.Path(file_okay=False), default=None,
-              help="Write dose_series.json, dose_series.csv and dose_series.html here.")
-def dose_series(images, layout_file, conversion_file, kerma_csv, observer, method, limits_file, human_factor,
-                factor_file, mtf_file, pixel_spacing, n_boot, seed, as_json, out_dir):
+@click.option(
+    "--out",
+    "out_dir",
+    type=click.Path(file_okay=False),
+    default=None,
+    help="Write dose_series.json, dose_series.csv and dose_series.html here.",
+)
+def dose_series(
+    images,
+    layout_file,
+    conversion_file,
+    kerma_csv,
+    observer,
+    method,
+    limits_file,
+    human_factor,
+    factor_file,
+    mtf_file,
+    pixel_spacing,
+    n_boot,
+    seed,
+    as_json,
+    out_dir,
+):
     """Score phantom IMAGES taken at several air kermas: per diameter C_T(K) = a·K^(−β) with CIs.
 
     Images are grouped by kerma (by folder when they lie in several folders, else by value);
@@ -73,24 +151,40 @@ def dose_series(images, layout_file, conversion_file, kerma_csv, observer, metho
     elif conversion is not None:
         kermas = []
         for p in tqdm(images, desc="kerma of each image", unit="image", file=sys.stderr, disable=len(images) < 2):
-            kermas.append(background_kerma_ugy(load_image(p, pixel_spacing_mm=pixel_spacing,
-                                                          conversion=conversion).pixels))
+            kermas.append(
+                background_kerma_ugy(load_image(p, pixel_spacing_mm=pixel_spacing, conversion=conversion).pixels)
+            )
         source = "plate background through the conversion function"
     else:
         raise LimenError("the air kerma of each image is unknown: give --kerma-csv or --conversion", "--kerma-csv")
     groups = group_by_kerma(images, kermas, source=source)
     bar = tqdm(total=len(images), desc="scoring kerma groups", unit="image", file=sys.stderr)
     try:
-        result = score_dose_series(groups, layout, observer=observer, method=method, limits=limits,
-                                   human_factor=human_factor, seed=seed, conversion=conversion,
-                                   pixel_spacing_mm=pixel_spacing, blur=blur, n_boot=n_boot,
-                                   on_group=lambda k, paths, res: bar.update(len(paths)))
+        result = score_dose_series(
+            groups,
+            layout,
+            observer=observer,
+            method=method,
+            limits=limits,
+            human_factor=human_factor,
+            seed=seed,
+            conversion=conversion,
+            pixel_spacing_mm=pixel_spacing,
+            blur=blur,
+            n_boot=n_boot,
+            on_group=lambda k, paths, res: bar.update(len(paths)),
+        )
     finally:
         bar.close()
     data = result.to_json()
-    data["inputs"] = {"images": list(images), "kerma_source": "csv" if kerma_csv else "conversion",
-                      "kerma_csv": kerma_csv, "conversion": conversion_file, "layout": layout_file,
-                      "limits": limits_file}
+    data["inputs"] = {
+        "images": list(images),
+        "kerma_source": "csv" if kerma_csv else "conversion",
+        "kerma_csv": kerma_csv,
+        "conversion": conversion_file,
+        "layout": layout_file,
+        "limits": limits_file,
+    }
     if out_dir:
         import pandas as pd
 
@@ -100,17 +194,36 @@ def dose_series(images, layout_file, conversion_file, kerma_csv, observer, metho
         out = Path(out_dir)
         out.mkdir(parents=True, exist_ok=True)
         write_json(out / "dose_series.json", data)
-        rows = [{"kerma_ugy": g["kerma_ugy"], "n_images": g["n_images"], **{k: p[k] for k in (
-            "diameter_mm", "threshold_contrast", "ci_low", "ci_high", "method", "observer", "censored")},
-            "fom_per_ugy": f["fom_per_ugy"]} for g in data["groups"] for p, f in zip(g["thresholds"],
-                                                                                     g["figure_of_merit"])]
+        rows = [
+            {
+                "kerma_ugy": g["kerma_ugy"],
+                "n_images": g["n_images"],
+                **{
+                    k: p[k]
+                    for k in (
+                        "diameter_mm",
+                        "threshold_contrast",
+                        "ci_low",
+                        "ci_high",
+                        "method",
+                        "observer",
+                        "censored",
+                    )
+                },
+                "fom_per_ugy": f["fom_per_ugy"],
+            }
+            for g in data["groups"]
+            for p, f in zip(g["thresholds"], g["figure_of_merit"])
+        ]
         atomic_write_text(out / "dose_series.csv", pd.DataFrame(rows).to_csv(index=False))
         atomic_write_text(out / "dose_series.html", dose_series_html(data))
     if as_json:
         click.echo(dumps(data))
         return
-    click.echo(f"{len(data['groups'])} kerma groups: " + ", ".join(
-        f"{g['kerma_ugy']:.3g} µGy ({g['n_images']} images)" for g in data["groups"]))
+    click.echo(
+        f"{len(data['groups'])} kerma groups: "
+        + ", ".join(f"{g['kerma_ugy']:.3g} µGy ({g['n_images']} images)" for g in data["groups"])
+    )
     click.echo(f"{'diameter mm':>11}  {'β':>6}  {'95% CI':>13}  {'kerma for limit µGy (95% CI)':>30}")
     for f in data["fits"]:
         if f.get("beta") is None:
@@ -118,10 +231,16 @@ def dose_series(images, layout_file, conversion_file, kerma_csv, observer, metho
             continue
         k = f.get("kerma_for_limit_ugy")
         ci = f.get("kerma_for_limit_ci") or [np.nan, np.nan]
-        ktxt = "—" if k is None or not np.isfinite(k) else f"{k:.3g} ({ci[0]:.3g}–{ci[1]:.3g})" + (
-            " extrapolated" if f.get("kerma_for_limit_extrapolated") else "")
-        click.echo(f"{f['diameter_mm']:>11.3g}  {f['beta']:>6.3f}  {f['beta_ci_low']:>6.3f}–{f['beta_ci_high']:<6.3f}"
-                   f"  {ktxt:>30}")
+        ktxt = (
+            "—"
+            if k is None or not np.isfinite(k)
+            else f"{k:.3g} ({ci[0]:.3g}–{ci[1]:.3g})"
+            + (" extrapolated" if f.get("kerma_for_limit_extrapolated") else "")
+        )
+        click.echo(
+            f"{f['diameter_mm']:>11.3g}  {f['beta']:>6.3f}  {f['beta_ci_low']:>6.3f}–{f['beta_ci_high']:<6.3f}"
+            f"  {ktxt:>30}"
+        )
     for w in data["warnings"]:
         click.echo(f"warning: {w}", err=True)
     if out_dir:

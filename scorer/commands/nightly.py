@@ -30,29 +30,67 @@ def load_nightly_config(path):
 
 
 @click.command("nightly")
-@click.option("--inbox", type=click.Path(file_okay=False), required=True,
-              help="Folder of incoming phantom images (scanned recursively).")
-@click.option("--config", "config_file", type=click.Path(dir_okay=False), default=None,
-              help="Nightly configuration (limen-nightly/1 TOML). Without it: bundled layout, no limits, "
-                   "4 images per session.")
-@click.option("--db", "db", default=None,
-              help="Database: SQLAlchemy URL (postgresql+psycopg://user@host/db) or a SQLite file path "
-                   "(default: limen-nightly.sqlite beside the inbox).")
-@click.option("--report", "report_dir", type=click.Path(file_okay=False), default=None,
-              help="Write the trend report (trend.html, CSV, JSON) here after the run.")
-@click.option("--workers", type=click.IntRange(1, 256), default=None,
-              help="Score sessions on a local pool of N processes.")
-@click.option("--dask", "dask_address", default=None,
-              help="Score sessions on an existing Dask scheduler, e.g. tcp://10.0.0.5:8786.")
-@click.option("--quarantine", "quarantine_dir", type=click.Path(file_okay=False), default=None,
-              help="Where unusable files are moved (default: INBOX/quarantine).")
-@click.option("--settle-seconds", type=click.FloatRange(0), default=60.0, show_default=True,
-              help="Leave files modified more recently than this for the next run (they may still be arriving).")
-@click.option("--lease-seconds", type=click.FloatRange(10), default=1800.0, show_default=True,
-              help="A claim on a session not renewed for this long is taken over by another run.")
+@click.option(
+    "--inbox",
+    type=click.Path(file_okay=False),
+    required=True,
+    help="Folder of incoming phantom images (scanned recursively).",
+)
+@click.option(
+    "--config",
+    "config_file",
+    type=click.Path(dir_okay=False),
+    default=None,
+    help="Nightly configuration (limen-nightly/1 TOML). Without it: bundled layout, no limits, 4 images per session.",
+)
+@click.option(
+    "--db",
+    "db",
+    default=None,
+    help="Database: SQLAlchemy URL (postgresql+psycopg://user@host/db) or a SQLite file path "
+    "(default: limen-nightly.sqlite beside the inbox).",
+)
+@click.option(
+    "--report",
+    "report_dir",
+    type=click.Path(file_okay=False),
+    default=None,
+    help="Write the trend report (trend.html, CSV, JSON) here after the run.",
+)
+@click.option(
+    "--workers", type=click.IntRange(1, 256), default=None, help="Score sessions on a local pool of N processes."
+)
+@click.option(
+    "--dask",
+    "dask_address",
+    default=None,
+    help="Score sessions on an existing Dask scheduler, e.g. tcp://10.0.0.5:8786.",
+)
+@click.option(
+    "--quarantine",
+    "quarantine_dir",
+    type=click.Path(file_okay=False),
+    default=None,
+    help="Where unusable files are moved (default: INBOX/quarantine).",
+)
+@click.option(
+    "--settle-seconds",
+    type=click.FloatRange(0),
+    default=60.0,
+    show_default=True,
+    help="Leave files modified more recently than this for the next run (they may still be arriving).",
+)
+@click.option(
+    "--lease-seconds",
+    type=click.FloatRange(10),
+    default=1800.0,
+    show_default=True,
+    help="A claim on a session not renewed for this long is taken over by another run.",
+)
 @click.option("--json", "as_json", is_flag=True, help="Print one JSON object on stdout.")
-def nightly(inbox, config_file, db, report_dir, workers, dask_address, quarantine_dir, settle_seconds,
-            lease_seconds, as_json):
+def nightly(
+    inbox, config_file, db, report_dir, workers, dask_address, quarantine_dir, settle_seconds, lease_seconds, as_json
+):
     """Score new phantom images in INBOX once per session; store, trend and alert.
 
     Exit status: 0 all well, 1 an alert was raised, 2 bad input, usage or database error.
@@ -68,9 +106,17 @@ def nightly(inbox, config_file, db, report_dir, workers, dask_address, quarantin
     url = db_url_option(db) or default_db_url(Path(inbox).resolve().parent)
     store = open_store(url)
     try:
-        result = run_nightly(inbox, config, store=store, quarantine_dir=quarantine_dir, workers=workers or 1,
-                             dask=dask_address, settle_s=settle_seconds, lease_s=lease_seconds,
-                             progress=not as_json)
+        result = run_nightly(
+            inbox,
+            config,
+            store=store,
+            quarantine_dir=quarantine_dir,
+            workers=workers or 1,
+            dask=dask_address,
+            settle_s=settle_seconds,
+            lease_s=lease_seconds,
+            progress=not as_json,
+        )
         page = None
         if report_dir:
             from scorer.reports.trend import write_trend_report
@@ -91,11 +137,15 @@ def nightly(inbox, config_file, db, report_dir, workers, dask_address, quarantin
 
 
 def _print(result, page) -> None:
-    click.echo(f"{result.scored_images} image(s) scored in {len(result.sessions_scored)} session(s) "
-               f"[{result.runner}; {result.db}]")
+    click.echo(
+        f"{result.scored_images} image(s) scored in {len(result.sessions_scored)} session(s) "
+        f"[{result.runner}; {result.db}]"
+    )
     for s in result.sessions_scored:
-        click.echo(f"  scored  {s['detector']}  {s['session_date']}  {s['images']} images  "
-                   f"verdict: {s['overall_verdict']}  alerts: {s['alerts']}")
+        click.echo(
+            f"  scored  {s['detector']}  {s['session_date']}  {s['images']} images  "
+            f"verdict: {s['overall_verdict']}  alerts: {s['alerts']}"
+        )
     for w in result.waiting:
         click.echo(f"  waiting {w['detector']}  {w['session_date']}  {w['images']} of {w['needed']} images")
     for d in result.duplicates:

@@ -36,17 +36,23 @@ def human_factor_from_analysis(path, observer: str) -> HumanFactor:
     except OSError as exc:
         raise LimenError(f"cannot read analysis file ({exc.strerror or exc})", path) from None
     except (ValueError, KeyError, TypeError):
-        raise LimenError("not an analysis.json with a human_model_factor (run limen analyse with --model)",
-                         path) from None
+        raise LimenError(
+            "not an analysis.json with a human_model_factor (run limen analyse with --model)", path
+        ) from None
     entries = (hm.get("by_observer") or [hm]) if isinstance(hm, dict) else []
     for e in entries:
         if str(e.get("observer", "")).lower() == observer and e.get("factor"):
             lo, hi = e.get("ci_low"), e.get("ci_high")
-            return HumanFactor(float(e["factor"]), None if lo is None else float(lo), None if hi is None else float(hi),
-                               source=str(path))
+            return HumanFactor(
+                float(e["factor"]),
+                None if lo is None else float(lo),
+                None if hi is None else float(hi),
+                source=str(path),
+            )
     found = ", ".join(sorted({str(e.get("observer")) for e in entries})) or "none"
-    raise LimenError(f"no human/model factor for the {observer.upper()} observer in this analysis "
-                     f"(factors for: {found})", path)
+    raise LimenError(
+        f"no human/model factor for the {observer.upper()} observer in this analysis (factors for: {found})", path
+    )
 
 
 def _blur_from_detector_json(path) -> SystemBlur:
@@ -57,8 +63,9 @@ def _blur_from_detector_json(path) -> SystemBlur:
     except OSError as exc:
         raise LimenError(f"cannot read MTF file ({exc.strerror or exc})", path) from None
     except (ValueError, KeyError, TypeError):
-        raise LimenError("not a detector JSON with mtf.frequency_per_mm and mtf.value (from limen detector --json)",
-                         path) from None
+        raise LimenError(
+            "not a detector JSON with mtf.frequency_per_mm and mtf.value (from limen detector --json)", path
+        ) from None
     if len(f) < 3 or len(f) != len(v):
         raise LimenError("MTF needs at least three frequencies with one value each", path)
     return SystemBlur(frequency_per_mm=tuple(f), mtf=tuple(v), source=f"measured MTF from {path}")
@@ -66,47 +73,145 @@ def _blur_from_detector_json(path) -> SystemBlur:
 
 @click.command("score")
 @click.argument("images", nargs=-1, required=True, type=click.Path(dir_okay=False))
-@click.option("--layout", "layout_file", type=click.Path(dir_okay=False), default=None,
-              help="Phantom layout TOML (default: the bundled demo plate).")
-@click.option("--observer", type=click.Choice(["npw", "npwe"]), default="npw", show_default=True,
-              help="Model observer: non-prewhitening (npw) or with the eye filter (npwe).")
-@click.option("--method", type=click.Choice(["dprime", "count", "both"]), default="both", show_default=True,
-              help="Threshold method: d′ regression on the responses, counts of correct M-AFC decisions, or both.")
-@click.option("--limits", "limits_file", type=click.Path(dir_okay=False), default=None,
-              help="Limits TOML (threshold contrast per diameter, the observer it is for, its source).")
-@click.option("--human-factor", type=float, default=None,
-              help="Human/model threshold factor, needed to compare model thresholds with limits for human readers.")
-@click.option("--human-factor-from", "factor_file", type=click.Path(dir_okay=False), default=None,
-              help="analysis.json from `limen analyse --model`: take the human/model factor measured for this "
-                   "observer.")
-@click.option("--conversion", "conversion_file", type=click.Path(dir_okay=False), default=None,
-              help="Conversion function TOML/JSON that linearises pixel values to air kerma.")
-@click.option("--mtf", "mtf_file", type=click.Path(dir_okay=False), default=None,
-              help="Detector JSON from `limen detector` whose measured MTF shapes the templates.")
-@click.option("--viewing-distance-mm", type=float, default=None,
-              help="NPWE: eye-to-image distance in image-plane millimetres (default 500).")
-@click.option("--pixel-spacing", "pixel_spacing", type=float, default=None,
-              help="Pixel spacing (mm) for images without DICOM spacing (TIFF, PNG, npy).")
-@click.option("--n-boot", type=click.IntRange(0, 100000), default=1000, show_default=True,
-              help="Bootstrap resamples of the images for the count method (and a bootstrap d′ interval).")
-@click.option("--psychometric", "psychometric_form", type=click.Choice(["mafc", "logistic"]), default="mafc",
-              show_default=True, help="Count method's psychometric function: the linear-observer M-AFC form, or a "
-                                      "logistic in log contrast (documented alternative; reads ~10 % low).")
-@click.option("--dprime-ci", type=click.Choice(["analytic", "bootstrap"]), default="analytic", show_default=True,
-              help="d′ method's confidence interval: analytic (sampling variance of d′) or image bootstrap.")
-@click.option("--criterion", type=float, default=None,
-              help="Proportion correct at threshold (default halfway between chance and 1).")
-@click.option("--seed", type=click.IntRange(min=0), default=0, show_default=True,
-              help="Seed of the bootstrap (non-negative integer); the same seed gives the same intervals.")
+@click.option(
+    "--layout",
+    "layout_file",
+    type=click.Path(dir_okay=False),
+    default=None,
+    help="Phantom layout TOML (default: the bundled demo plate).",
+)
+@click.option(
+    "--observer",
+    type=click.Choice(["npw", "npwe"]),
+    default="npw",
+    show_default=True,
+    help="Model observer: non-prewhitening (npw) or with the eye filter (npwe).",
+)
+@click.option(
+    "--method",
+    type=click.Choice(["dprime", "count", "both"]),
+    default="both",
+    show_default=True,
+    help="Threshold method: d′ regression on the responses, counts of correct M-AFC decisions, or both.",
+)
+@click.option(
+    "--limits",
+    "limits_file",
+    type=click.Path(dir_okay=False),
+    default=None,
+    help="Limits TOML (threshold contrast per diameter, the observer it is for, its source).",
+)
+@click.option(
+    "--human-factor",
+    type=float,
+    default=None,
+    help="Human/model threshold factor, needed to compare model thresholds with limits for human readers.",
+)
+@click.option(
+    "--human-factor-from",
+    "factor_file",
+    type=click.Path(dir_okay=False),
+    default=None,
+    help="analysis.json from `limen analyse --model`: take the human/model factor measured for this observer.",
+)
+@click.option(
+    "--conversion",
+    "conversion_file",
+    type=click.Path(dir_okay=False),
+    default=None,
+    help="Conversion function TOML/JSON that linearises pixel values to air kerma.",
+)
+@click.option(
+    "--mtf",
+    "mtf_file",
+    type=click.Path(dir_okay=False),
+    default=None,
+    help="Detector JSON from `limen detector` whose measured MTF shapes the templates.",
+)
+@click.option(
+    "--viewing-distance-mm",
+    type=float,
+    default=None,
+    help="NPWE: eye-to-image distance in image-plane millimetres (default 500).",
+)
+@click.option(
+    "--pixel-spacing",
+    "pixel_spacing",
+    type=float,
+    default=None,
+    help="Pixel spacing (mm) for images without DICOM spacing (TIFF, PNG, npy).",
+)
+@click.option(
+    "--n-boot",
+    type=click.IntRange(0, 100000),
+    default=1000,
+    show_default=True,
+    help="Bootstrap resamples of the images for the count method (and a bootstrap d′ interval).",
+)
+@click.option(
+    "--psychometric",
+    "psychometric_form",
+    type=click.Choice(["mafc", "logistic"]),
+    default="mafc",
+    show_default=True,
+    help="Count method's psychometric function: the linear-observer M-AFC form, or a "
+    "logistic in log contrast (documented alternative; reads ~10 % low).",
+)
+@click.option(
+    "--dprime-ci",
+    type=click.Choice(["analytic", "bootstrap"]),
+    default="analytic",
+    show_default=True,
+    help="d′ method's confidence interval: analytic (sampling variance of d′) or image bootstrap.",
+)
+@click.option(
+    "--criterion",
+    type=float,
+    default=None,
+    help="Proportion correct at threshold (default halfway between chance and 1).",
+)
+@click.option(
+    "--seed",
+    type=click.IntRange(min=0),
+    default=0,
+    show_default=True,
+    help="Seed of the bootstrap (non-negative integer); the same seed gives the same intervals.",
+)
 @click.option("--json", "as_json", is_flag=True, help="Print one JSON object on stdout.")
-@click.option("--out", "out_dir", type=click.Path(file_okay=False), default=None,
-              help="Write results.json, CSV tables, registration overlays (a diagnostic one when the phantom "
-                   "cannot be found) and report.html here.")
-@click.option("--replace", is_flag=True,
-              help="Let --out name a folder an earlier run wrote to: its files are replaced (others are kept).")
-def score(images, layout_file, observer, method, limits_file, human_factor, factor_file, conversion_file, mtf_file,
-          viewing_distance_mm, pixel_spacing, n_boot, psychometric_form, dprime_ci, criterion, seed, as_json, out_dir,
-          replace):
+@click.option(
+    "--out",
+    "out_dir",
+    type=click.Path(file_okay=False),
+    default=None,
+    help="Write results.json, CSV tables, registration overlays (a diagnostic one when the phantom "
+    "cannot be found) and report.html here.",
+)
+@click.option(
+    "--replace",
+    is_flag=True,
+    help="Let --out name a folder an earlier run wrote to: its files are replaced (others are kept).",
+)
+def score(
+    images,
+    layout_file,
+    observer,
+    method,
+    limits_file,
+    human_factor,
+    factor_file,
+    conversion_file,
+    mtf_file,
+    viewing_distance_mm,
+    pixel_spacing,
+    n_boot,
+    psychometric_form,
+    dprime_ci,
+    criterion,
+    seed,
+    as_json,
+    out_dir,
+    replace,
+):
     """Score contrast-detail phantom IMAGES with a model observer: threshold contrast per diameter.
 
     Exit status: 0 when every verdict passes or no limits were given, 1 when a verdict
@@ -127,28 +232,51 @@ def score(images, layout_file, observer, method, limits_file, human_factor, fact
     folder = OutputFolder(out_dir, replace=replace, command="score") if out_dir else None
     out = folder.path if folder else None
     overlays: list[Path] = []
-    bar = tqdm(total=len(images), desc=f"scoring ({observer.upper()})", unit="image", file=sys.stderr,
-               disable=len(images) < 2)
+    bar = tqdm(
+        total=len(images), desc=f"scoring ({observer.upper()})", unit="image", file=sys.stderr, disable=len(images) < 2
+    )
 
     def on_image(i, path, image, placement):
         if out is not None:
-            overlays.append(draw_overlay(image, layout, placement, out / "overlays" / f"{Path(path).stem}.png",
-                                         title=Path(path).name))
+            overlays.append(
+                draw_overlay(
+                    image, layout, placement, out / "overlays" / f"{Path(path).stem}.png", title=Path(path).name
+                )
+            )
         bar.update(1)
 
     def on_failure(path, image, exc):
         if out is not None:
-            png = draw_overlay(image, layout, getattr(exc, "placement", None),
-                               out / "overlays" / f"{Path(path).stem}-FAILED.png",
-                               candidates_px=getattr(exc, "candidates_px", None), title=f"{Path(path).name}: {exc}")
+            png = draw_overlay(
+                image,
+                layout,
+                getattr(exc, "placement", None),
+                out / "overlays" / f"{Path(path).stem}-FAILED.png",
+                candidates_px=getattr(exc, "candidates_px", None),
+                title=f"{Path(path).name}: {exc}",
+            )
             click.echo(f"diagnostic overlay: {png}", err=True)
 
     try:
-        result = score_images(list(images), layout, observer=observer, methods=methods, conversion=conversion,
-                              pixel_spacing_mm=pixel_spacing, blur=blur, viewing_distance_mm=viewing_distance_mm,
-                              n_boot=n_boot, seed=seed, criterion_pc=criterion, limits=limits,
-                              human_factor=human_factor, on_image=on_image, on_failure=on_failure,
-                              count_form=psychometric_form, dprime_ci=dprime_ci)
+        result = score_images(
+            list(images),
+            layout,
+            observer=observer,
+            methods=methods,
+            conversion=conversion,
+            pixel_spacing_mm=pixel_spacing,
+            blur=blur,
+            viewing_distance_mm=viewing_distance_mm,
+            n_boot=n_boot,
+            seed=seed,
+            criterion_pc=criterion,
+            limits=limits,
+            human_factor=human_factor,
+            on_image=on_image,
+            on_failure=on_failure,
+            count_form=psychometric_form,
+            dprime_ci=dprime_ci,
+        )
     finally:
         bar.close()
     command = current_command() or ""
@@ -166,8 +294,11 @@ def score(images, layout_file, observer, method, limits_file, human_factor, fact
     for c in result.curves.values():
         for p in c.points:
             if p.method == "count" and p.n_images < 3:
-                click.echo(f"warning: count method at {p.diameter_mm:g} mm rests on {p.n_images} image(s): "
-                           "its threshold and CI are unreliable; score more images", err=True)
+                click.echo(
+                    f"warning: count method at {p.diameter_mm:g} mm rests on {p.n_images} image(s): "
+                    "its threshold and CI are unreliable; score more images",
+                    err=True,
+                )
                 break
     if result.verdicts is not None and result.overall_verdict == "fail":
         sys.exit(EXIT_FAIL)
@@ -199,12 +330,18 @@ def _print_table(result) -> None:
             line += f"  {p.display(unit=''):>18} {ci:>15}"
         if result.verdicts is not None:
             v = vmap.get(d)
-            lim = "—" if v is None or v.acceptable is None else f"{100 * v.acceptable:.3g}" + \
-                ("*" if v.limit_interpolated else "")
+            lim = (
+                "—"
+                if v is None or v.acceptable is None
+                else f"{100 * v.acceptable:.3g}" + ("*" if v.limit_interpolated else "")
+            )
             if result.human_factor:
                 if v:
-                    vci = f"{100 * v.ci_low:.3g}–{100 * v.ci_high:.3g}" if np.isfinite(v.ci_low) and \
-                        np.isfinite(v.ci_high) else "—"
+                    vci = (
+                        f"{100 * v.ci_low:.3g}–{100 * v.ci_high:.3g}"
+                        if np.isfinite(v.ci_low) and np.isfinite(v.ci_high)
+                        else "—"
+                    )
                     line += f"  {100 * v.threshold_contrast:>8.3g} {vci:>13}"
                 else:
                     line += f"  {'':>8} {'':>13}"
@@ -215,7 +352,9 @@ def _print_table(result) -> None:
             click.echo("* limit interpolated (log–log) between the diameters of the limits file")
         if result.human_factor_ci:
             lo, hi = result.human_factor_ci
-            click.echo(f"human/model factor {result.human_factor:.3g} (95 % CI {lo:.3g}–{hi:.3g}); its uncertainty "
-                       "is included in the human-equivalent CIs")
+            click.echo(
+                f"human/model factor {result.human_factor:.3g} (95 % CI {lo:.3g}–{hi:.3g}); its uncertainty "
+                "is included in the human-equivalent CIs"
+            )
         click.echo(f"overall: {result.overall_verdict.upper()}")
     click.echo(CAUTION)

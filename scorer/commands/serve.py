@@ -22,18 +22,40 @@ def build_config(db_url, instance, import_root=None, secure_cookies=False) -> di
 
 @click.command("serve")
 @click.option("--host", default="127.0.0.1", show_default=True, help="Address to listen on.")
-@click.option("--port", type=click.IntRange(0, 65535), default=8000, show_default=True,
-              help="TCP port to listen on (0: any free port).")
-@click.option("--db", "db_url", default=None,
-              help="SQLAlchemy database URL (default: $LIMEN_DATABASE_URL, else SQLite in the instance folder).")
-@click.option("--instance", type=click.Path(file_okay=False), default=None,
-              help="Instance folder (database, secret key, image store).")
+@click.option(
+    "--port",
+    type=click.IntRange(0, 65535),
+    default=8000,
+    show_default=True,
+    help="TCP port to listen on (0: any free port).",
+)
+@click.option(
+    "--db",
+    "db_url",
+    default=None,
+    help="SQLAlchemy database URL (default: $LIMEN_DATABASE_URL, else SQLite in the instance folder).",
+)
+@click.option(
+    "--instance",
+    type=click.Path(file_okay=False),
+    default=None,
+    help="Instance folder (database, secret key, image store).",
+)
 @click.option("--threads", type=click.IntRange(1, 64), default=8, show_default=True, help="Server threads.")
-@click.option("--connection-limit", type=click.IntRange(10, 10000), default=500, show_default=True,
-              help="Open connections at most (each reader's browser keeps several alive).")
+@click.option(
+    "--connection-limit",
+    type=click.IntRange(10, 10000),
+    default=500,
+    show_default=True,
+    help="Open connections at most (each reader's browser keeps several alive).",
+)
 @click.option("--demo", is_flag=True, help="Create a demo study on simulated images with invented readers first.")
-@click.option("--import-root", type=click.Path(file_okay=False, exists=True), default=None,
-              help="Server folder whose `limen score --out` folders coordinators may import.")
+@click.option(
+    "--import-root",
+    type=click.Path(file_okay=False, exists=True),
+    default=None,
+    help="Server folder whose `limen score --out` folders coordinators may import.",
+)
 @click.option("--secure-cookies", is_flag=True, help="Send cookies over HTTPS only (behind a TLS proxy).")
 def serve(host, port, db_url, instance, threads, connection_limit, demo, import_root, secure_cookies):
     """Run the reader-study web app (coordinators set up studies, readers read in their browser).
@@ -54,10 +76,8 @@ def serve(host, port, db_url, instance, threads, connection_limit, demo, import_
         click.echo("demo accounts (passwords shown once):")
         for name, pw in out["credentials"].items():
             click.echo(f"  {name:<12} {pw}")
-    server = create_server(app, host=host, port=port, threads=threads, connection_limit=connection_limit,
-                           ident="limen")
-    click.echo(f"Limen reader studies on http://{server.effective_host}:{server.effective_port}/ "
-               "(Ctrl-C to stop)")
+    server = create_server(app, host=host, port=port, threads=threads, connection_limit=connection_limit, ident="limen")
+    click.echo(f"Limen reader studies on http://{server.effective_host}:{server.effective_port}/ (Ctrl-C to stop)")
     if demo:
         click.echo("sign in as 'coordinator' to follow the study, or as reader1 to read.")
     sys.stdout.flush()

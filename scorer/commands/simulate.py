@@ -27,42 +27,127 @@ def image_stem(panel: str, kind: str, dose_ugy: float, index: int, edge_angle_de
 
 
 @click.command("simulate")
-@click.option("--detector", "detector", type=click.Choice(["direct", "indirect"]), default="direct",
-              show_default=True, help="Preset panel model.")
-@click.option("--model", "model_file", type=click.Path(dir_okay=False), default=None,
-              help="Detector-model TOML (base = direct|indirect plus overrides); replaces --detector.")
-@click.option("--kind", type=click.Choice(["phantom", "flat", "edge"]), default="phantom", show_default=True,
-              help="What is imaged: the phantom plate, an open (flat) field, or a slanted edge.")
+@click.option(
+    "--detector",
+    "detector",
+    type=click.Choice(["direct", "indirect"]),
+    default="direct",
+    show_default=True,
+    help="Preset panel model.",
+)
+@click.option(
+    "--model",
+    "model_file",
+    type=click.Path(dir_okay=False),
+    default=None,
+    help="Detector-model TOML (base = direct|indirect plus overrides); replaces --detector.",
+)
+@click.option(
+    "--kind",
+    type=click.Choice(["phantom", "flat", "edge"]),
+    default="phantom",
+    show_default=True,
+    help="What is imaged: the phantom plate, an open (flat) field, or a slanted edge.",
+)
 @click.option("--dose-ugy", type=float, default=100.0, show_default=True, help="Air kerma at the detector (µGy).")
-@click.option("--count", type=click.IntRange(1, 1000), default=1, show_default=True,
-              help="Number of images (independent noise, same pose).")
-@click.option("--seed", type=click.IntRange(min=0), default=0, show_default=True,
-              help="Seed of the noise (non-negative integer); the same seed gives the same images.")
-@click.option("--out", "out_dir", type=click.Path(file_okay=False), required=True,
-              help="Folder for the images, their JSON truth sidecars and the panel's conversion function.")
+@click.option(
+    "--count",
+    type=click.IntRange(1, 1000),
+    default=1,
+    show_default=True,
+    help="Number of images (independent noise, same pose).",
+)
+@click.option(
+    "--seed",
+    type=click.IntRange(min=0),
+    default=0,
+    show_default=True,
+    help="Seed of the noise (non-negative integer); the same seed gives the same images.",
+)
+@click.option(
+    "--out",
+    "out_dir",
+    type=click.Path(file_okay=False),
+    required=True,
+    help="Folder for the images, their JSON truth sidecars and the panel's conversion function.",
+)
 @click.option("--small", is_flag=True, help="Crop the field to what the phantom needs (512² for flat/edge).")
-@click.option("--rotate", "rotate_deg", type=float, default=0.0, show_default=True,
-              help="Phantom rotation (degrees, counter-clockwise on the displayed image).")
+@click.option(
+    "--rotate",
+    "rotate_deg",
+    type=float,
+    default=0.0,
+    show_default=True,
+    help="Phantom rotation (degrees, counter-clockwise on the displayed image).",
+)
 @click.option("--flip", is_flag=True, help="Phantom lies mirrored (upside down).")
-@click.option("--shift-mm", nargs=2, type=float, default=(0.0, 0.0), show_default=True,
-              help="Phantom centre offset from the field centre, DX DY in mm.")
-@click.option("--magnification", type=float, default=1.0, show_default=True,
-              help="Geometric magnification of the phantom at the detector.")
-@click.option("--layout", "layout_file", type=click.Path(dir_okay=False), default=None,
-              help="Phantom layout TOML (default: the bundled demo plate).")
-@click.option("--edge-angle-deg", type=float, default=2.5, show_default=True,
-              help="Edge angle from the column axis; add 90 for a near-horizontal edge.")
-@click.option("--format", "fmt", type=click.Choice(["dicom", "tiff", "png", "npy"]), default="dicom",
-              show_default=True, help="Image file format.")
+@click.option(
+    "--shift-mm",
+    nargs=2,
+    type=float,
+    default=(0.0, 0.0),
+    show_default=True,
+    help="Phantom centre offset from the field centre, DX DY in mm.",
+)
+@click.option(
+    "--magnification",
+    type=float,
+    default=1.0,
+    show_default=True,
+    help="Geometric magnification of the phantom at the detector.",
+)
+@click.option(
+    "--layout",
+    "layout_file",
+    type=click.Path(dir_okay=False),
+    default=None,
+    help="Phantom layout TOML (default: the bundled demo plate).",
+)
+@click.option(
+    "--edge-angle-deg",
+    type=float,
+    default=2.5,
+    show_default=True,
+    help="Edge angle from the column axis; add 90 for a near-horizontal edge.",
+)
+@click.option(
+    "--format",
+    "fmt",
+    type=click.Choice(["dicom", "tiff", "png", "npy"]),
+    default="dicom",
+    show_default=True,
+    help="Image file format.",
+)
 @click.option("--overwrite", is_flag=True, help="Replace images of the same name already in --out (default: refuse).")
-def simulate(detector, model_file, kind, dose_ugy, count, seed, out_dir, small, rotate_deg, flip,
-             shift_mm, magnification, layout_file, edge_angle_deg, fmt, overwrite):
+def simulate(
+    detector,
+    model_file,
+    kind,
+    dose_ugy,
+    count,
+    seed,
+    out_dir,
+    small,
+    rotate_deg,
+    flip,
+    shift_mm,
+    magnification,
+    layout_file,
+    edge_angle_deg,
+    fmt,
+    overwrite,
+):
     """Simulate raw (FOR PROCESSING) detector images with a JSON ground-truth sidecar each."""
     model = load_detector_model(model_file) if model_file else detector_model(detector)
     layout = load_layout(layout_file) if kind == "phantom" else None
-    for opt, val in (("--dose-ugy", dose_ugy), ("--rotate", rotate_deg), ("--shift-mm", shift_mm[0]),
-                     ("--shift-mm", shift_mm[1]), ("--magnification", magnification),
-                     ("--edge-angle-deg", edge_angle_deg)):
+    for opt, val in (
+        ("--dose-ugy", dose_ugy),
+        ("--rotate", rotate_deg),
+        ("--shift-mm", shift_mm[0]),
+        ("--shift-mm", shift_mm[1]),
+        ("--magnification", magnification),
+        ("--edge-angle-deg", edge_angle_deg),
+    ):
         if not math.isfinite(val):
             raise LimenError(f"{opt} must be a finite number, got {val}", opt)
     if not dose_ugy > 0:
@@ -70,18 +155,24 @@ def simulate(detector, model_file, kind, dose_ugy, count, seed, out_dir, small, 
     pose = Pose(rotation_deg=rotate_deg, flipped=flip, magnification=magnification, shift_mm=tuple(shift_mm))
     rngs = [np.random.default_rng(s) for s in np.random.SeedSequence(seed).spawn(count)]
     out = Path(out_dir)
-    stems = [image_stem(model.name, kind, dose_ugy, i, edge_angle_deg if kind == "edge" else None)
-             for i in range(count)]
+    stems = [
+        image_stem(model.name, kind, dose_ugy, i, edge_angle_deg if kind == "edge" else None) for i in range(count)
+    ]
     if not overwrite and out.is_dir():
         clash = sorted(p.name for st in stems for p in out.glob(f"{st}.*"))
         if clash:
-            raise LimenError(f"{out / clash[0]} already exists ({len(clash)} file(s) of this run would be replaced); "
-                             "choose another --out or add --overwrite", out)
+            raise LimenError(
+                f"{out / clash[0]} already exists ({len(clash)} file(s) of this run would be replaced); "
+                "choose another --out or add --overwrite",
+                out,
+            )
     written = []
-    for i, rng in enumerate(tqdm(rngs, desc=f"simulating {model.name} {kind}", unit="image",
-                                 disable=count < 2, file=sys.stderr)):
-        sim = run_simulation(model, kind, dose_ugy, rng, small=small, layout=layout, pose=pose,
-                             edge_angle_deg=edge_angle_deg)
+    for i, rng in enumerate(
+        tqdm(rngs, desc=f"simulating {model.name} {kind}", unit="image", disable=count < 2, file=sys.stderr)
+    ):
+        sim = run_simulation(
+            model, kind, dose_ugy, rng, small=small, layout=layout, pose=pose, edge_angle_deg=edge_angle_deg
+        )
         sim.truth["seed"] = seed
         sim.truth["index"] = i
         stem = stems[i]
@@ -89,5 +180,7 @@ def simulate(detector, model_file, kind, dose_ugy, count, seed, out_dir, small, 
         written.append(write_simulated(sim, out, stem, acquired, fmt))
     # the panel's conversion function, as a physicist would hold it from commissioning
     save_conversion(model.conversion_function(), out / f"{model.name}-conversion.toml")
-    click.echo(f"wrote {len(written)} {kind} image(s) of the {model.name} panel to {out}/ "
-               f"(conversion function: {model.name}-conversion.toml)")
+    click.echo(
+        f"wrote {len(written)} {kind} image(s) of the {model.name} panel to {out}/ "
+        f"(conversion function: {model.name}-conversion.toml)"
+    )

@@ -18,8 +18,12 @@ def _app(db_url, instance):
 
 
 _db_options = [
-    click.option("--db", "db_url", default=None,
-                 help="SQLAlchemy database URL (default: $LIMEN_DATABASE_URL, else SQLite in the instance folder)."),
+    click.option(
+        "--db",
+        "db_url",
+        default=None,
+        help="SQLAlchemy database URL (default: $LIMEN_DATABASE_URL, else SQLite in the instance folder).",
+    ),
     click.option("--instance", type=click.Path(file_okay=False), default=None, help="Instance folder."),
 ]
 
@@ -59,8 +63,13 @@ def add(name, role, generate, db_url, instance):
     with app.app_context():
         s = db()
         s.add(User(username=name, password_hash=hash_password(password), role=role))
-        s.add(AuditEntry(user_id=None, action="add_user",
-                         detail=json.dumps({"username": name, "role": role, "via": "limen users add"})))
+        s.add(
+            AuditEntry(
+                user_id=None,
+                action="add_user",
+                detail=json.dumps({"username": name, "role": role, "via": "limen users add"}),
+            )
+        )
         try:
             s.commit()
         except IntegrityError:

@@ -11,13 +11,42 @@ from . import simulator as simulator
 
 from .mtf import MTFResult as MTFResult, measure_mtf as measure_mtf, mean_mtf as mean_mtf
 from .nnps import NNPSResult as NNPSResult, measure_nnps as measure_nnps
-from .measure import DetectorMetrics as DetectorMetrics, measure_detector as measure_detector, fit_conversion as fit_conversion, compute_dqe as compute_dqe, q_for_beam as q_for_beam, beam_qualities as beam_qualities
-from .predict import PredictedThreshold as PredictedThreshold, predict_thresholds as predict_thresholds, predict_from_detector as predict_from_detector
-from .simulator import DetectorModel as DetectorModel, Pose as Pose, SimulatedImage as SimulatedImage, detector_model as detector_model, load_detector_model as load_detector_model, simulate as simulate, write_simulated as write_simulated
-from .dose import score_dose_series as score_dose_series, group_by_kerma as group_by_kerma, fit_power_law as fit_power_law, kerma_ratio as kerma_ratio, compare_series as compare_series
+from .measure import (
+    DetectorMetrics as DetectorMetrics,
+    measure_detector as measure_detector,
+    fit_conversion as fit_conversion,
+    compute_dqe as compute_dqe,
+    q_for_beam as q_for_beam,
+    beam_qualities as beam_qualities,
+)
+from .predict import (
+    PredictedThreshold as PredictedThreshold,
+    predict_thresholds as predict_thresholds,
+    predict_from_detector as predict_from_detector,
+)
+from .simulator import (
+    DetectorModel as DetectorModel,
+    Pose as Pose,
+    SimulatedImage as SimulatedImage,
+    detector_model as detector_model,
+    load_detector_model as load_detector_model,
+    simulate as simulate,
+    write_simulated as write_simulated,
+)
+from .dose import (
+    score_dose_series as score_dose_series,
+    group_by_kerma as group_by_kerma,
+    fit_power_law as fit_power_law,
+    kerma_ratio as kerma_ratio,
+    compare_series as compare_series,
+)
 from .noise import fit_components as fit_components, group_flats as group_flats
 from .measure import measure_noise_series as measure_noise_series
-from .comparison import compare as compare, load_detector_json as load_detector_json, load_scored_json as load_scored_json
+from .comparison import (
+    compare as compare,
+    load_detector_json as load_detector_json,
+    load_scored_json as load_scored_json,
+)
 
 __all__ = [
     "comparison",

@@ -85,13 +85,20 @@ def load_scored_json(path) -> list[dict]:
     out = []
     for i, r in enumerate(rows):
         try:
-            out.append({"diameter_mm": float(r["diameter_mm"]),
-                        "threshold_contrast": None if r.get("threshold_contrast") is None
-                        else float(r["threshold_contrast"]),
-                        "ci_low": r.get("ci_low"), "ci_high": r.get("ci_high"),
-                        "method": r.get("method"), "n_images": r.get("n_images"),
-                        "m_alternatives": None if r.get("m_alternatives") is None else int(r["m_alternatives"]),
-                        "observer": r.get("observer") or d.get("observer")})
+            out.append(
+                {
+                    "diameter_mm": float(r["diameter_mm"]),
+                    "threshold_contrast": None
+                    if r.get("threshold_contrast") is None
+                    else float(r["threshold_contrast"]),
+                    "ci_low": r.get("ci_low"),
+                    "ci_high": r.get("ci_high"),
+                    "method": r.get("method"),
+                    "n_images": r.get("n_images"),
+                    "m_alternatives": None if r.get("m_alternatives") is None else int(r["m_alternatives"]),
+                    "observer": r.get("observer") or d.get("observer"),
+                }
+            )
         except (KeyError, TypeError, ValueError):
             raise LimenError(f"thresholds[{i}] lacks a numeric diameter_mm/threshold_contrast", path) from None
     return out
@@ -136,9 +143,18 @@ def decide(va, vb, ci_a, ci_b, higher_is_better: bool, la: str, lb: str) -> tupl
     return NO_CLEAR, "95 % CIs overlap"
 
 
-def compare(a: dict, b: dict, labels=("A", "B"), diameters_mm=None, scored_a=None, scored_b=None,
-            m_alternatives: int | dict[float, int] | None = None, scored_method: str = "dprime",
-            dose_a: dict | None = None, dose_b: dict | None = None) -> dict:
+def compare(
+    a: dict,
+    b: dict,
+    labels=("A", "B"),
+    diameters_mm=None,
+    scored_a=None,
+    scored_b=None,
+    m_alternatives: int | dict[float, int] | None = None,
+    scored_method: str = "dprime",
+    dose_a: dict | None = None,
+    dose_b: dict | None = None,
+) -> dict:
     """Side-by-side table, threshold rows and a plain-language summary of two detector JSONs.
 
     ``m_alternatives``: the M of the criterion for predicted thresholds, one for all diameters or per
@@ -157,31 +173,79 @@ def compare(a: dict, b: dict, labels=("A", "B"), diameters_mm=None, scored_a=Non
 
     def row(quantity, va, vb, higher, group, point="", ci_a=None, ci_b=None):
         better, basis = decide(va, vb, ci_a, ci_b, higher, la, lb)
-        table.append({"quantity": quantity, la: va, lb: vb,
-                      f"{la} 95% CI": list(ci_a) if ci_a else None, f"{lb} 95% CI": list(ci_b) if ci_b else None,
-                      "better": better, "basis": basis, "higher_is_better": higher})
+        table.append(
+            {
+                "quantity": quantity,
+                la: va,
+                lb: vb,
+                f"{la} 95% CI": list(ci_a) if ci_a else None,
+                f"{lb} 95% CI": list(ci_b) if ci_b else None,
+                "better": better,
+                "basis": basis,
+                "higher_is_better": higher,
+            }
+        )
         if va is not None and vb is not None:
             points.setdefault(group, []).append((point, better, basis, va, vb))
 
     for f in (1.0, 2.0, 5.0):
         va, vb = _at(a.get("mtf"), f), _at(b.get("mtf"), f)
-        row(f"MTF at {f:g} cycles/mm", va, vb, True, "MTF", f"{f:g} cycles/mm",
-            _curve_ci(a.get("mtf"), f, va), _curve_ci(b.get("mtf"), f, vb))
+        row(
+            f"MTF at {f:g} cycles/mm",
+            va,
+            vb,
+            True,
+            "MTF",
+            f"{f:g} cycles/mm",
+            _curve_ci(a.get("mtf"), f, va),
+            _curve_ci(b.get("mtf"), f, vb),
+        )
     na, nb = a.get("nyquist_per_mm"), b.get("nyquist_per_mm")
     va, vb = _at(a.get("mtf"), na), _at(b.get("mtf"), nb)
-    row("MTF at own Nyquist", va, vb, True, "MTF", "Nyquist", _curve_ci(a.get("mtf"), na, va),
-        _curve_ci(b.get("mtf"), nb, vb))
+    row(
+        "MTF at own Nyquist",
+        va,
+        vb,
+        True,
+        "MTF",
+        "Nyquist",
+        _curve_ci(a.get("mtf"), na, va),
+        _curve_ci(b.get("mtf"), nb, vb),
+    )
     table.append({"quantity": "Nyquist frequency (cycles/mm)", la: na, lb: nb, "better": "", "basis": ""})
     for f in (0.5, 2.0):
         va, vb = _at(a.get("nnps"), f, "value_mm2"), _at(b.get("nnps"), f, "value_mm2")
-        row(f"NNPS at {f:g} cycles/mm (mm²)", va, vb, False, "NNPS", f"{f:g} cycles/mm",
-            _curve_ci(a.get("nnps"), f, va), _curve_ci(b.get("nnps"), f, vb))
-    table.append({"quantity": "air kerma of the flat fields (µGy)", la: a.get("kerma_ugy"), lb: b.get("kerma_ugy"),
-                  "better": "", "basis": ""})
+        row(
+            f"NNPS at {f:g} cycles/mm (mm²)",
+            va,
+            vb,
+            False,
+            "NNPS",
+            f"{f:g} cycles/mm",
+            _curve_ci(a.get("nnps"), f, va),
+            _curve_ci(b.get("nnps"), f, vb),
+        )
+    table.append(
+        {
+            "quantity": "air kerma of the flat fields (µGy)",
+            la: a.get("kerma_ugy"),
+            lb: b.get("kerma_ugy"),
+            "better": "",
+            "basis": "",
+        }
+    )
     for f in (0.5, 2.0):
         va, vb = _at(a.get("dqe"), f), _at(b.get("dqe"), f)
-        row(f"DQE at {f:g} cycles/mm", va, vb, True, "DQE", f"{f:g} cycles/mm",
-            _curve_ci(a.get("dqe"), f, va), _curve_ci(b.get("dqe"), f, vb))
+        row(
+            f"DQE at {f:g} cycles/mm",
+            va,
+            vb,
+            True,
+            "DQE",
+            f"{f:g} cycles/mm",
+            _curve_ci(a.get("dqe"), f, va),
+            _curve_ci(b.get("dqe"), f, vb),
+        )
 
     thresholds: list[dict] = []
     diam = list(diameters_mm) if diameters_mm else None
@@ -189,8 +253,11 @@ def compare(a: dict, b: dict, labels=("A", "B"), diameters_mm=None, scored_a=Non
         ds = sorted({r["diameter_mm"] for r in (scored_a or []) + (scored_b or [])})
         diam = ds or list(DEFAULT_DIAMETERS_MM)
     if m_alternatives is None:
-        m_alternatives = {float(r["diameter_mm"]): int(r["m_alternatives"]) for r in (scored_a or []) + (scored_b or [])
-                          if r.get("m_alternatives")} or 4
+        m_alternatives = {
+            float(r["diameter_mm"]): int(r["m_alternatives"])
+            for r in (scored_a or []) + (scored_b or [])
+            if r.get("m_alternatives")
+        } or 4
     pred = {}
     for label, det in ((la, a), (lb, b)):
         try:
@@ -198,52 +265,107 @@ def compare(a: dict, b: dict, labels=("A", "B"), diameters_mm=None, scored_a=Non
         except LimenError:
             pred[label] = []
         for p in pred[label]:
-            thresholds.append({"detector": label, "source": f"predicted {p.observer.upper()}",
-                               "diameter_mm": p.diameter_mm, "threshold_contrast": p.threshold_contrast,
-                               "ci_low": None, "ci_high": None, "method": "predicted", "observer": p.observer})
+            thresholds.append(
+                {
+                    "detector": label,
+                    "source": f"predicted {p.observer.upper()}",
+                    "diameter_mm": p.diameter_mm,
+                    "threshold_contrast": p.threshold_contrast,
+                    "ci_low": None,
+                    "ci_high": None,
+                    "method": "predicted",
+                    "observer": p.observer,
+                }
+            )
     for label, sc in ((la, scored_a), (lb, scored_b)):
         for r in sc or []:
             obs = (r.get("observer") or "").upper()
             method = r.get("method") or "dprime"
-            thresholds.append({"detector": label, "source": scored_source(obs, method),
-                               "diameter_mm": r["diameter_mm"], "threshold_contrast": r["threshold_contrast"],
-                               "ci_low": r.get("ci_low"), "ci_high": r.get("ci_high"), "method": method,
-                               "observer": r.get("observer"), "censored": r.get("censored"),
-                               "extrapolated": r.get("extrapolated")})
+            thresholds.append(
+                {
+                    "detector": label,
+                    "source": scored_source(obs, method),
+                    "diameter_mm": r["diameter_mm"],
+                    "threshold_contrast": r["threshold_contrast"],
+                    "ci_low": r.get("ci_low"),
+                    "ci_high": r.get("ci_high"),
+                    "method": method,
+                    "observer": r.get("observer"),
+                    "censored": r.get("censored"),
+                    "extrapolated": r.get("extrapolated"),
+                }
+            )
     # threshold rows in the side-by-side table (lower is better): predicted, and the chosen scoring method
     sources = sorted({t["source"] for t in thresholds if t["method"] in ("predicted", scored_method)})
     for src in sources:
-        for d in diam if src.startswith("predicted") else sorted({t["diameter_mm"] for t in thresholds
-                                                                   if t["source"] == src}):
-            ta = next((t for t in thresholds
-                       if t["detector"] == la and t["source"] == src and np.isclose(t["diameter_mm"], d)), None)
-            tb = next((t for t in thresholds
-                       if t["detector"] == lb and t["source"] == src and np.isclose(t["diameter_mm"], d)), None)
+        for d in (
+            diam
+            if src.startswith("predicted")
+            else sorted({t["diameter_mm"] for t in thresholds if t["source"] == src})
+        ):
+            ta = next(
+                (
+                    t
+                    for t in thresholds
+                    if t["detector"] == la and t["source"] == src and np.isclose(t["diameter_mm"], d)
+                ),
+                None,
+            )
+            tb = next(
+                (
+                    t
+                    for t in thresholds
+                    if t["detector"] == lb and t["source"] == src and np.isclose(t["diameter_mm"], d)
+                ),
+                None,
+            )
 
             def ci(t):
-                return None if t is None or t.get("ci_low") is None or t.get("ci_high") is None \
+                return (
+                    None
+                    if t is None or t.get("ci_low") is None or t.get("ci_high") is None
                     else (float(t["ci_low"]), float(t["ci_high"]))
-            row(f"{src} threshold contrast at {d:g} mm", None if ta is None else ta["threshold_contrast"],
-                None if tb is None else tb["threshold_contrast"], False, f"{src} threshold contrast", f"{d:g} mm",
-                ci(ta), ci(tb))
+                )
+
+            row(
+                f"{src} threshold contrast at {d:g} mm",
+                None if ta is None else ta["threshold_contrast"],
+                None if tb is None else tb["threshold_contrast"],
+                False,
+                f"{src} threshold contrast",
+                f"{d:g} mm",
+                ci(ta),
+                ci(tb),
+            )
 
     summary = _summary(points, la, lb)
     if a.get("kerma_ugy") and b.get("kerma_ugy") and not np.isclose(a["kerma_ugy"], b["kerma_ugy"], rtol=0.05):
-        summary.append(f"The flat fields were taken at different air kermas ({a['kerma_ugy']:g} vs "
-                       f"{b['kerma_ugy']:g} µGy): NNPS and predicted thresholds depend on kerma; compare DQE instead.")
+        summary.append(
+            f"The flat fields were taken at different air kermas ({a['kerma_ugy']:g} vs "
+            f"{b['kerma_ugy']:g} µGy): NNPS and predicted thresholds depend on kerma; compare DQE instead."
+        )
     equal = None
     if dose_a is not None and dose_b is not None:
         from scorer.detector.dose import compare_series
 
         equal = compare_series(dose_a, dose_b, (la, lb), a, b)
     noise = {lab: (det.get("noise_series") or {}) for lab, det in ((la, a), (lb, b)) if det.get("noise_series")}
-    return {"labels": [la, lb], "table": table, "thresholds": thresholds, "summary": summary,
-            "equal_quality": equal, "noise_components": {lab: {"components": n.get("components"),
-                                                               "quantum_limited_text": n.get("quantum_limited_text")}
-                                                         for lab, n in noise.items()},
-            "diameters_mm": diam, "scored_method": scored_method,
-            "m_alternatives": ({f"{k:g}": v for k, v in m_alternatives.items()} if isinstance(m_alternatives, dict)
-                               else m_alternatives)}
+    return {
+        "labels": [la, lb],
+        "table": table,
+        "thresholds": thresholds,
+        "summary": summary,
+        "equal_quality": equal,
+        "noise_components": {
+            lab: {"components": n.get("components"), "quantum_limited_text": n.get("quantum_limited_text")}
+            for lab, n in noise.items()
+        },
+        "diameters_mm": diam,
+        "scored_method": scored_method,
+        "m_alternatives": (
+            {f"{k:g}": v for k, v in m_alternatives.items()} if isinstance(m_alternatives, dict) else m_alternatives
+        ),
+    }
 
 
 def scored_source(observer: str, method: str) -> str:
@@ -253,28 +375,37 @@ def scored_source(observer: str, method: str) -> str:
 
 def _summary(points: dict[str, list[tuple[str, str, str, float, float]]], la: str, lb: str) -> list[str]:
     """One plain sentence per group of quantities: who is better where the 95 % CIs allow saying so."""
-    text = {"MTF": ("sharper (higher MTF)", "higher MTF", "higher"),
-            "NNPS": ("less noisy (lower NNPS)", "lower NNPS", "lower"),
-            "DQE": ("more dose-efficient (higher DQE)", "higher DQE", "higher")}
+    text = {
+        "MTF": ("sharper (higher MTF)", "higher MTF", "higher"),
+        "NNPS": ("less noisy (lower NNPS)", "lower NNPS", "lower"),
+        "DQE": ("more dose-efficient (higher DQE)", "higher DQE", "higher"),
+    }
     out = []
     for group, ps in points.items():
         whole, short, word = text.get(group, (f"better (lower {group})", f"lower {group}", "lower"))
         if all(basis == POINT_ONLY for _, _, basis, _, _ in ps):
             # no uncertainty: describe the measured values, claim nothing
             higher = word == "higher"
-            where = {la: [p for p, _, _, va, vb in ps if (va > vb) == higher and va != vb],
-                     lb: [p for p, _, _, va, vb in ps if (vb > va) == higher and va != vb]}
+            where = {
+                la: [p for p, _, _, va, vb in ps if (va > vb) == higher and va != vb],
+                lb: [p for p, _, _, va, vb in ps if (vb > va) == higher and va != vb],
+            }
             parts = [f"{lab} {word} at {', '.join(where[lab])}" for lab in (la, lb) if where[lab]]
-            out.append(f"{group} (measured values; no uncertainty available, so no claim of a difference): "
-                       + "; ".join(parts) + ".")
+            out.append(
+                f"{group} (measured values; no uncertainty available, so no claim of a difference): "
+                + "; ".join(parts)
+                + "."
+            )
             continue
         where = {lab: [p for p, w, _, _, _ in ps if w == lab] for lab in (la, lb, NO_CLEAR)}
         unknown = [p for p, w, basis, _, _ in ps if basis == POINT_ONLY]
         n = len(ps)
         if len(where[la]) == n or len(where[lb]) == n:
             who = la if len(where[la]) == n else lb
-            out.append(f"{who} is {whole} at every point compared, with non-overlapping 95 % CIs "
-                       f"({', '.join(p for p, *_ in ps)}).")
+            out.append(
+                f"{who} is {whole} at every point compared, with non-overlapping 95 % CIs "
+                f"({', '.join(p for p, *_ in ps)})."
+            )
         elif len(where[NO_CLEAR]) == n:
             out.append(f"{group}: no clear difference (the 95 % CIs overlap everywhere compared).")
         else:
@@ -287,6 +418,3 @@ def _summary(points: dict[str, list[tuple[str, str, str, float, float]]], la: st
     if not out:
         out.append("Nothing comparable: the two files share no measured quantity.")
     return out
-
-
-

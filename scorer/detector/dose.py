@@ -64,11 +64,12 @@ CLUSTER_RTOL = 0.15
 
 # ----------------------------------------------------------------------------- grouping
 
+
 def background_kerma_ugy(pixels) -> float:
     """Air kerma of the plate's own background: the median of the linearised central half of the image."""
     a = np.asarray(pixels)
     h, w = a.shape
-    return float(np.median(a[h // 4: h - h // 4, w // 4: w - w // 4]))
+    return float(np.median(a[h // 4 : h - h // 4, w // 4 : w - w // 4]))
 
 
 def group_by_kerma(paths: Sequence, kerma_ugy: Sequence[float | None], *, source: str = "kerma") -> "OrderedDict":
@@ -80,8 +81,11 @@ def group_by_kerma(paths: Sequence, kerma_ugy: Sequence[float | None], *, source
     paths = [str(p) for p in paths]
     missing = [p for p, k in zip(paths, kerma_ugy) if k is None or not np.isfinite(k)]
     if missing:
-        raise LimenError(f"no air kerma for {len(missing)} image(s) (first: {missing[0]}); every image of a dose "
-                         f"series needs one ({source})", missing[0])
+        raise LimenError(
+            f"no air kerma for {len(missing)} image(s) (first: {missing[0]}); every image of a dose "
+            f"series needs one ({source})",
+            missing[0],
+        )
     bad = [p for p, k in zip(paths, kerma_ugy) if not k > 0]
     if bad:
         raise LimenError(f"air kerma must be positive ({source})", bad[0])
@@ -104,16 +108,23 @@ def group_by_kerma(paths: Sequence, kerma_ugy: Sequence[float | None], *, source
         out.append((float(ks.mean()), [paths[i] for i in idx]))
     out.sort(key=lambda t: t[0])
     if len(out) < 2:
-        raise LimenError(f"all {len(paths)} image(s) are at one air kerma ({out[0][0]:.3g} µGy): a dose series needs "
-                         "images at two or more kermas", paths[0])
+        raise LimenError(
+            f"all {len(paths)} image(s) are at one air kerma ({out[0][0]:.3g} µGy): a dose series needs "
+            "images at two or more kermas",
+            paths[0],
+        )
     for (k1, p1), (k2, p2) in zip(out, out[1:]):
         if k2 < k1 * (1 + SAME_KERMA_RTOL):
-            raise LimenError(f"two groups at the same air kerma ({k1:.3g} and {k2:.3g} µGy: {Path(p1[0]).parent} and "
-                             f"{Path(p2[0]).parent}); merge them or correct the kerma", p2[0])
+            raise LimenError(
+                f"two groups at the same air kerma ({k1:.3g} and {k2:.3g} µGy: {Path(p1[0]).parent} and "
+                f"{Path(p2[0]).parent}); merge them or correct the kerma",
+                p2[0],
+            )
     return OrderedDict(out)
 
 
 # ----------------------------------------------------------------------------- fitting
+
 
 @dataclass
 class PowerLawFit:
@@ -122,9 +133,9 @@ class PowerLawFit:
     diameter_mm: float
     beta: float
     beta_ci: tuple[float, float]
-    alpha: float                  # log threshold at K = exp(x̄)
-    x_center: float               # x̄, weighted mean of log K
-    cov: np.ndarray               # 2 × 2 covariance of (α, β)
+    alpha: float  # log threshold at K = exp(x̄)
+    x_center: float  # x̄, weighted mean of log K
+    cov: np.ndarray  # 2 × 2 covariance of (α, β)
     chi2: float
     dof: int
     overdispersion: float
@@ -143,21 +154,39 @@ class PowerLawFit:
         return rng.multivariate_normal([self.alpha, self.beta], self.cov, size=n, method="svd")
 
     def to_dict(self) -> dict:
-        return {"diameter_mm": self.diameter_mm, "beta": self.beta, "beta_ci_low": self.beta_ci[0],
-                "beta_ci_high": self.beta_ci[1], "log_threshold_at_reference": self.alpha,
-                "reference_kerma_ugy": self.reference_kerma_ugy,
-                "threshold_at_reference": float(np.exp(self.alpha)),
-                "cov_alpha_beta": self.cov.tolist(), "chi2": self.chi2, "dof": self.dof,
-                "overdispersion": self.overdispersion, "n_groups": self.n_groups, "kermas_ugy": self.kermas_ugy,
-                "note": self.note}
+        return {
+            "diameter_mm": self.diameter_mm,
+            "beta": self.beta,
+            "beta_ci_low": self.beta_ci[0],
+            "beta_ci_high": self.beta_ci[1],
+            "log_threshold_at_reference": self.alpha,
+            "reference_kerma_ugy": self.reference_kerma_ugy,
+            "threshold_at_reference": float(np.exp(self.alpha)),
+            "cov_alpha_beta": self.cov.tolist(),
+            "chi2": self.chi2,
+            "dof": self.dof,
+            "overdispersion": self.overdispersion,
+            "n_groups": self.n_groups,
+            "kermas_ugy": self.kermas_ugy,
+            "note": self.note,
+        }
 
     @classmethod
     def from_dict(cls, d: dict) -> "PowerLawFit":
-        return cls(float(d["diameter_mm"]), float(d["beta"]), (float(d["beta_ci_low"]), float(d["beta_ci_high"])),
-                   float(d["log_threshold_at_reference"]), float(np.log(d["reference_kerma_ugy"])),
-                   np.asarray(d["cov_alpha_beta"], dtype=float), float(d.get("chi2") or 0), int(d.get("dof") or 0),
-                   float(d.get("overdispersion") or 1), int(d.get("n_groups") or 0), list(d.get("kermas_ugy") or []),
-                   str(d.get("note") or ""))
+        return cls(
+            float(d["diameter_mm"]),
+            float(d["beta"]),
+            (float(d["beta_ci_low"]), float(d["beta_ci_high"])),
+            float(d["log_threshold_at_reference"]),
+            float(np.log(d["reference_kerma_ugy"])),
+            np.asarray(d["cov_alpha_beta"], dtype=float),
+            float(d.get("chi2") or 0),
+            int(d.get("dof") or 0),
+            float(d.get("overdispersion") or 1),
+            int(d.get("n_groups") or 0),
+            list(d.get("kermas_ugy") or []),
+            str(d.get("note") or ""),
+        )
 
 
 def log_se_from_ci(t: float, lo: float, hi: float) -> float:
@@ -175,9 +204,10 @@ def fit_power_law(kerma_ugy, threshold, log_se, diameter_mm: float = float("nan"
     ok = np.isfinite(k) & (k > 0) & np.isfinite(c) & (c > 0) & np.isfinite(se) & (se > 0)
     k, c, se = k[ok], c[ok], se[ok]
     if np.unique(k).size < 2:
-        raise LimenError(f"at {diameter_mm:g} mm fewer than two kerma groups have a threshold with a CI: "
-                         "β cannot be fitted")
-    x, y, w = np.log(k), np.log(c), 1.0 / se ** 2
+        raise LimenError(
+            f"at {diameter_mm:g} mm fewer than two kerma groups have a threshold with a CI: β cannot be fitted"
+        )
+    x, y, w = np.log(k), np.log(c), 1.0 / se**2
     xc = float(np.sum(w * x) / np.sum(w))
     sxx = float(np.sum(w * (x - xc) ** 2))
     slope = float(np.sum(w * (x - xc) * y) / sxx)
@@ -196,8 +226,20 @@ def fit_power_law(kerma_ugy, threshold, log_se, diameter_mm: float = float("nan"
     cov = np.diag([1.0 / np.sum(w), 1.0 / sxx]) * factor
     beta = -slope
     half = q * np.sqrt(cov[1, 1])
-    return PowerLawFit(float(diameter_mm), beta, (beta - half, beta + half), alpha, xc, cov, chi2, dof, factor,
-                       int(k.size), [float(v) for v in k], note)
+    return PowerLawFit(
+        float(diameter_mm),
+        beta,
+        (beta - half, beta + half),
+        alpha,
+        xc,
+        cov,
+        chi2,
+        dof,
+        factor,
+        int(k.size),
+        [float(v) for v in k],
+        note,
+    )
 
 
 def _percentiles(x: np.ndarray) -> tuple[float, float]:
@@ -207,8 +249,9 @@ def _percentiles(x: np.ndarray) -> tuple[float, float]:
     return float(x[int(np.floor(0.025 * (x.size - 1)))]), float(x[int(np.ceil(0.975 * (x.size - 1)))])
 
 
-def kerma_for_threshold(fit: PowerLawFit, target: float, factor: HumanFactor | None = None, *, n_draws: int = 4000,
-                        seed: int = 0) -> tuple[float, float, float]:
+def kerma_for_threshold(
+    fit: PowerLawFit, target: float, factor: HumanFactor | None = None, *, n_draws: int = 4000, seed: int = 0
+) -> tuple[float, float, float]:
     """Kerma (µGy) at which factor × C_T(K) equals ``target``, with its 95 % CI (draws; module docstring)."""
     lf = 0.0 if factor is None else float(np.log(factor.value))
     se_f = 0.0
@@ -228,24 +271,34 @@ def kerma_for_threshold(fit: PowerLawFit, target: float, factor: HumanFactor | N
 
 # ----------------------------------------------------------------------------- scoring a series
 
+
 @dataclass
 class DoseGroup:
     kerma_ugy: float
     paths: list[str]
-    thresholds: list[dict]          # ThresholdPoint dicts of the fitted method
-    result: object = None           # the group's ScoreResult (not serialised)
+    thresholds: list[dict]  # ThresholdPoint dicts of the fitted method
+    result: object = None  # the group's ScoreResult (not serialised)
 
     def to_dict(self) -> dict:
         fom = []
         for p in self.thresholds:
             t, lo, hi = p["threshold_contrast"], p["ci_low"], p["ci_high"]
             ok = t is not None and np.isfinite(t) and t > 0 and not p.get("censored")
-            fom.append({"diameter_mm": p["diameter_mm"],
-                        "fom_per_ugy": 1.0 / (t * t * self.kerma_ugy) if ok else None,
-                        "ci_low": 1.0 / (hi * hi * self.kerma_ugy) if ok and np.isfinite(hi) and hi > 0 else None,
-                        "ci_high": 1.0 / (lo * lo * self.kerma_ugy) if ok and np.isfinite(lo) and lo > 0 else None})
-        return {"kerma_ugy": self.kerma_ugy, "n_images": len(self.paths), "paths": self.paths,
-                "thresholds": self.thresholds, "figure_of_merit": fom}
+            fom.append(
+                {
+                    "diameter_mm": p["diameter_mm"],
+                    "fom_per_ugy": 1.0 / (t * t * self.kerma_ugy) if ok else None,
+                    "ci_low": 1.0 / (hi * hi * self.kerma_ugy) if ok and np.isfinite(hi) and hi > 0 else None,
+                    "ci_high": 1.0 / (lo * lo * self.kerma_ugy) if ok and np.isfinite(lo) and lo > 0 else None,
+                }
+            )
+        return {
+            "kerma_ugy": self.kerma_ugy,
+            "n_images": len(self.paths),
+            "paths": self.paths,
+            "thresholds": self.thresholds,
+            "figure_of_merit": fom,
+        }
 
 
 @dataclass
@@ -263,14 +316,26 @@ class DoseSeriesResult:
         return [PowerLawFit.from_dict(f) for f in self.fits if f.get("beta") is not None]
 
     def to_json(self) -> dict:
-        return {"observer": self.observer, "method": self.method,
-                "groups": [g.to_dict() for g in self.groups], "fits": self.fits,
-                "limits": None if self.limits is None else {"name": self.limits.name, "observer": self.limits.observer,
-                                                            "source": self.limits.source, "path": self.limits.path},
-                "human_factor": None if self.human_factor is None else self.human_factor.value,
-                "human_factor_ci": None if self.human_factor is None or not self.human_factor.has_ci
-                else [self.human_factor.ci_low, self.human_factor.ci_high],
-                "settings": self.settings, "warnings": self.warnings}
+        return {
+            "observer": self.observer,
+            "method": self.method,
+            "groups": [g.to_dict() for g in self.groups],
+            "fits": self.fits,
+            "limits": None
+            if self.limits is None
+            else {
+                "name": self.limits.name,
+                "observer": self.limits.observer,
+                "source": self.limits.source,
+                "path": self.limits.path,
+            },
+            "human_factor": None if self.human_factor is None else self.human_factor.value,
+            "human_factor_ci": None
+            if self.human_factor is None or not self.human_factor.has_ci
+            else [self.human_factor.ci_low, self.human_factor.ci_high],
+            "settings": self.settings,
+            "warnings": self.warnings,
+        }
 
 
 def _factor_for(limits: Limits | None, observer: str, human_factor) -> HumanFactor | None:
@@ -279,21 +344,26 @@ def _factor_for(limits: Limits | None, observer: str, human_factor) -> HumanFact
         return None
     if limits.observer == "human" and observer in ("npw", "npwe"):
         if human_factor is None:
-            raise LimenError(f"{limits.path or 'limits'}: these limits are for human readers and the thresholds come "
-                             f"from the {observer.upper()} model observer; give a human/model factor (--human-factor)",
-                             "--human-factor")
+            raise LimenError(
+                f"{limits.path or 'limits'}: these limits are for human readers and the thresholds come "
+                f"from the {observer.upper()} model observer; give a human/model factor (--human-factor)",
+                "--human-factor",
+            )
         f = human_factor if isinstance(human_factor, HumanFactor) else HumanFactor(float(human_factor))
         if not f.value > 0:
             raise LimenError(f"--human-factor must be positive, got {f.value}", "--human-factor")
         return f
     if limits.observer != observer:
-        raise LimenError(f"{limits.path or 'limits'}: these limits are for the {limits.observer} observer, the "
-                         f"thresholds come from {observer}")
+        raise LimenError(
+            f"{limits.path or 'limits'}: these limits are for the {limits.observer} observer, the "
+            f"thresholds come from {observer}"
+        )
     return None
 
 
-def fit_series(groups: list[DoseGroup], *, limits: Limits | None = None, factor: HumanFactor | None = None,
-               seed: int = 0) -> tuple[list[dict], list[str]]:
+def fit_series(
+    groups: list[DoseGroup], *, limits: Limits | None = None, factor: HumanFactor | None = None, seed: int = 0
+) -> tuple[list[dict], list[str]]:
     """Per diameter: β over all groups (and over the lowest/highest three when there are four or more),
     the kerma for the acceptable and achievable limits, as JSON-ready dicts."""
     notes: list[str] = []
@@ -307,8 +377,14 @@ def fit_series(groups: list[DoseGroup], *, limits: Limits | None = None, factor:
                 continue
             se = log_se_from_ci(p["threshold_contrast"], p["ci_low"], p["ci_high"])
             rows.append((g.kerma_ugy, p["threshold_contrast"], se))
-        entry: dict = {"diameter_mm": d, "beta": None, "beta_ci_low": None, "beta_ci_high": None,
-                       "kerma_for_limit_ugy": None, "kerma_for_limit_ci": None}
+        entry: dict = {
+            "diameter_mm": d,
+            "beta": None,
+            "beta_ci_low": None,
+            "beta_ci_high": None,
+            "kerma_for_limit_ugy": None,
+            "kerma_for_limit_ci": None,
+        }
         try:
             fit = fit_power_law(*zip(*rows), diameter_mm=d) if rows else None
         except LimenError as exc:
@@ -322,8 +398,12 @@ def fit_series(groups: list[DoseGroup], *, limits: Limits | None = None, factor:
         if len(rows) >= 4:
             for name, sub in (("low", rows[:3]), ("high", rows[-3:])):
                 f2 = fit_power_law(*zip(*sub), diameter_mm=d)
-                entry[f"beta_{name}"] = {"beta": f2.beta, "ci_low": f2.beta_ci[0], "ci_high": f2.beta_ci[1],
-                                         "kermas_ugy": f2.kermas_ugy}
+                entry[f"beta_{name}"] = {
+                    "beta": f2.beta,
+                    "ci_low": f2.beta_ci[0],
+                    "ci_high": f2.beta_ci[1],
+                    "kermas_ugy": f2.kermas_ugy,
+                }
         if limits is not None:
             for which, level in (("limit", limits.acceptable_at(d)), ("achievable", limits.achievable_at(d))):
                 if level is None:
@@ -338,9 +418,18 @@ def fit_series(groups: list[DoseGroup], *, limits: Limits | None = None, factor:
     return fits, notes
 
 
-def score_dose_series(groups: "OrderedDict[float, list[str]]", layout, *, observer: str = "npw",
-                      method: str = "dprime", limits: Limits | None = None, human_factor=None, seed: int = 0,
-                      on_group: Callable | None = None, **score_kwargs) -> DoseSeriesResult:
+def score_dose_series(
+    groups: "OrderedDict[float, list[str]]",
+    layout,
+    *,
+    observer: str = "npw",
+    method: str = "dprime",
+    limits: Limits | None = None,
+    human_factor=None,
+    seed: int = 0,
+    on_group: Callable | None = None,
+    **score_kwargs,
+) -> DoseSeriesResult:
     """Score each kerma group with :func:`scorer.observer.score_images` and fit the dose response per diameter."""
     from scorer.observer.scoring import score_images
 
@@ -350,8 +439,7 @@ def score_dose_series(groups: "OrderedDict[float, list[str]]", layout, *, observ
     out_groups, warnings = [], []
     for k, paths in groups.items():
         res = score_images(paths, layout, observer=observer, methods=methods, seed=seed, **score_kwargs)
-        out_groups.append(DoseGroup(float(k), list(paths), [p.to_dict() for p in res.curves[fit_method].points],
-                                    res))
+        out_groups.append(DoseGroup(float(k), list(paths), [p.to_dict() for p in res.curves[fit_method].points], res))
         warnings += [f"{k:.3g} µGy: {w}" for w in res.warnings]
         if on_group is not None:
             on_group(k, paths, res)
@@ -364,20 +452,33 @@ def score_dose_series(groups: "OrderedDict[float, list[str]]", layout, *, observ
 
 # ----------------------------------------------------------------------------- two panels
 
+
 def kerma_ratio(fit_a: PowerLawFit, fit_b: PowerLawFit, *, n_draws: int = 4000, seed: int = 0) -> dict:
     """K_B/K_A at the threshold A reaches at the centre of its series, with a 95 % CI (module docstring)."""
     log_c = fit_a.alpha
     if not fit_b.beta > 0:
-        return {"ratio": None, "ci_low": None, "ci_high": None, "threshold_contrast": float(np.exp(log_c)),
-                "reference_kerma_ugy": fit_a.reference_kerma_ugy, "note": "panel B's β is not positive"}
+        return {
+            "ratio": None,
+            "ci_low": None,
+            "ci_high": None,
+            "threshold_contrast": float(np.exp(log_c)),
+            "reference_kerma_ugy": fit_a.reference_kerma_ugy,
+            "note": "panel B's β is not positive",
+        }
     log_r = fit_b.x_center - fit_a.x_center + (fit_b.alpha - log_c) / fit_b.beta
     rng = np.random.default_rng(seed)
     da, db = fit_a.draws(n_draws, rng), fit_b.draws(n_draws, rng)
     with np.errstate(over="ignore", divide="ignore", invalid="ignore"):
         lr = np.where(db[:, 1] > 0, fit_b.x_center - fit_a.x_center + (db[:, 0] - da[:, 0]) / db[:, 1], np.inf)
         lo, hi = _percentiles(np.exp(lr))
-    return {"ratio": float(np.exp(log_r)), "ci_low": lo, "ci_high": hi, "threshold_contrast": float(np.exp(log_c)),
-            "reference_kerma_ugy": fit_a.reference_kerma_ugy, "note": ""}
+    return {
+        "ratio": float(np.exp(log_r)),
+        "ci_low": lo,
+        "ci_high": hi,
+        "threshold_contrast": float(np.exp(log_c)),
+        "reference_kerma_ugy": fit_a.reference_kerma_ugy,
+        "note": "",
+    }
 
 
 def relative_variance(components: dict | None):
@@ -386,12 +487,14 @@ def relative_variance(components: dict | None):
         return lambda k: 1.0 / np.asarray(k, dtype=float)
     e, q, s = (float(components[t]["value"]) for t in ("electronic", "quantum", "structure"))
     e, s = max(e, 0.0), max(s, 0.0)
-    return lambda k: (e + q * np.asarray(k, dtype=float) + s * np.asarray(k, dtype=float) ** 2) / np.asarray(
-        k, dtype=float) ** 2
+    return lambda k: (
+        (e + q * np.asarray(k, dtype=float) + s * np.asarray(k, dtype=float) ** 2) / np.asarray(k, dtype=float) ** 2
+    )
 
 
-def predicted_kerma_ratios(det_a: dict, det_b: dict, diameters_mm: Sequence[float], reference_kerma_ugy: float,
-                           m_alternatives=4) -> list[dict]:
+def predicted_kerma_ratios(
+    det_a: dict, det_b: dict, diameters_mm: Sequence[float], reference_kerma_ugy: float, m_alternatives=4
+) -> list[dict]:
     """K_B/K_A at equal predicted NPW threshold, from each panel's MTF and NNPS and its noise components."""
     from scorer.detector.predict import predict_from_detector
 
@@ -417,8 +520,15 @@ def predicted_kerma_ratios(det_a: dict, det_b: dict, diameters_mm: Sequence[floa
         ct_a_ref = a.threshold_contrast * np.sqrt(float(ra(reference_kerma_ugy)) / float(ra(k0a)))
         ka = kerma_for(a.threshold_contrast, k0a, ra, ct_a_ref)
         kb = kerma_for(b.threshold_contrast, k0b, rb, ct_a_ref)
-        out.append({"diameter_mm": a.diameter_mm, "ratio": kb / ka if np.isfinite(kb) and ka > 0 else None,
-                    "threshold_contrast": float(ct_a_ref), "kerma_a_ugy": ka, "kerma_b_ugy": kb})
+        out.append(
+            {
+                "diameter_mm": a.diameter_mm,
+                "ratio": kb / ka if np.isfinite(kb) and ka > 0 else None,
+                "threshold_contrast": float(ct_a_ref),
+                "kerma_a_ugy": ka,
+                "kerma_b_ugy": kb,
+            }
+        )
     return out
 
 
@@ -430,16 +540,26 @@ def ratio_sentence(d: float, r: dict, la: str, lb: str) -> str:
     ci = f"95 % CI {lo:.3g}–{hi:.3g}" if lo is not None and hi is not None and np.isfinite(hi) else "CI unbounded"
     at = f"at the threshold {la} reaches at {r['reference_kerma_ugy']:.3g} µGy, {100 * r['threshold_contrast']:.3g} %"
     if lo is not None and hi is not None and lo <= 1.0 <= hi:
-        return (f"At {d:g} mm no clear difference: {lb} needs {ratio:.3g}× the air kerma of {la} for the same "
-                f"threshold ({ci}, which includes 1; {at}).")
+        return (
+            f"At {d:g} mm no clear difference: {lb} needs {ratio:.3g}× the air kerma of {la} for the same "
+            f"threshold ({ci}, which includes 1; {at})."
+        )
     if ratio >= 1:
-        return (f"At {d:g} mm {lb} needs {ratio:.3g}× the air kerma of {la} for the same threshold ({ci}; {at}).")
-    return (f"At {d:g} mm {la} needs {1 / ratio:.3g}× the air kerma of {lb} for the same threshold "
-            f"(95 % CI {1 / hi:.3g}–{1 / lo:.3g}; {at}).")
+        return f"At {d:g} mm {lb} needs {ratio:.3g}× the air kerma of {la} for the same threshold ({ci}; {at})."
+    return (
+        f"At {d:g} mm {la} needs {1 / ratio:.3g}× the air kerma of {lb} for the same threshold "
+        f"(95 % CI {1 / hi:.3g}–{1 / lo:.3g}; {at})."
+    )
 
 
-def compare_series(series_a: dict, series_b: dict, labels=("A", "B"), det_a: dict | None = None,
-                   det_b: dict | None = None, seed: int = 0) -> dict:
+def compare_series(
+    series_a: dict,
+    series_b: dict,
+    labels=("A", "B"),
+    det_a: dict | None = None,
+    det_b: dict | None = None,
+    seed: int = 0,
+) -> dict:
     """Per diameter the measured kerma ratio B/A at equal threshold (with CI, one sentence each) and,
     with both detector JSONs, the ratio predicted from MTF, NNPS and noise components."""
     la, lb = labels
@@ -454,16 +574,25 @@ def compare_series(series_a: dict, series_b: dict, labels=("A", "B"), det_a: dic
     predicted = []
     if det_a and det_b and rows:
         try:
-            m = {float(p["diameter_mm"]): int(p["m_alternatives"]) for g in series_a.get("groups", [])[:1]
-                 for p in g["thresholds"]} or 4
-            predicted = predicted_kerma_ratios(det_a, det_b, [r["diameter_mm"] for r in rows],
-                                               rows[0]["reference_kerma_ugy"], m_alternatives=m)
+            m = {
+                float(p["diameter_mm"]): int(p["m_alternatives"])
+                for g in series_a.get("groups", [])[:1]
+                for p in g["thresholds"]
+            } or 4
+            predicted = predicted_kerma_ratios(
+                det_a, det_b, [r["diameter_mm"] for r in rows], rows[0]["reference_kerma_ugy"], m_alternatives=m
+            )
         except LimenError as exc:
             predicted = [{"note": str(exc)}]
     pmap = {round(p["diameter_mm"], 6): p for p in predicted if "diameter_mm" in p}
     for r in rows:
         p = pmap.get(round(r["diameter_mm"], 6))
         r["predicted_ratio"] = None if p is None else p["ratio"]
-    return {"labels": [la, lb], "ratios": rows, "sentences": sentences, "predicted": predicted,
-            "note": "ratio = kerma panel B needs / kerma panel A needs for the same threshold contrast, at the "
-                    "threshold panel A reaches at the centre of its series"}
+    return {
+        "labels": [la, lb],
+        "ratios": rows,
+        "sentences": sentences,
+        "predicted": predicted,
+        "note": "ratio = kerma panel B needs / kerma panel A needs for the same threshold contrast, at the "
+        "threshold panel A reaches at the centre of its series",
+    }

@@ -37,6 +37,7 @@ MIN_R_SQUARED = 0.99
 
 # ---------------------------------------------------------------- beam qualities
 
+
 def beam_qualities() -> dict[str, dict]:
     """The shipped beam-quality table: name → {"q_per_mm2_ugy", "standard", "note"}.
 
@@ -47,8 +48,11 @@ def beam_qualities() -> dict[str, dict]:
     lines = [ln for ln in text.splitlines() if ln.strip() and not ln.lstrip().startswith("#")]
     out = {}
     for row in csv.DictReader(io.StringIO("\n".join(lines))):
-        out[row["beam"].strip().upper()] = {"q_per_mm2_ugy": float(row["q_per_mm2_ugy"]),
-                                            "standard": row["standard"], "note": row["note"]}
+        out[row["beam"].strip().upper()] = {
+            "q_per_mm2_ugy": float(row["q_per_mm2_ugy"]),
+            "standard": row["standard"],
+            "note": row["note"],
+        }
     return out
 
 
@@ -57,12 +61,15 @@ def q_for_beam(beam: str) -> float:
     table = beam_qualities()
     key = str(beam).strip().upper()
     if key not in table:
-        raise LimenError(f"unknown beam quality {beam!r}; known: {', '.join(sorted(table))} "
-                         "(for mammography give q directly)", "--beam")
+        raise LimenError(
+            f"unknown beam quality {beam!r}; known: {', '.join(sorted(table))} (for mammography give q directly)",
+            "--beam",
+        )
     return table[key]["q_per_mm2_ugy"]
 
 
 # ---------------------------------------------------------------- conversion function
+
 
 @dataclass
 class LineFit:
@@ -73,8 +80,13 @@ class LineFit:
     max_relative_kerma_error: float
 
     def to_dict(self) -> dict:
-        return dict(kind=self.kind, offset=self.offset, gain=self.gain, r_squared=self.r_squared,
-                    max_relative_kerma_error=self.max_relative_kerma_error)
+        return dict(
+            kind=self.kind,
+            offset=self.offset,
+            gain=self.gain,
+            r_squared=self.r_squared,
+            max_relative_kerma_error=self.max_relative_kerma_error,
+        )
 
 
 @dataclass
@@ -97,14 +109,23 @@ class ConversionFit:
     def conversion(self) -> ConversionFunction:
         """The chosen fit as the linearisation used everywhere else in Limen."""
         c = self.chosen
-        return ConversionFunction(kind=c.kind, offset=c.offset, gain=c.gain,
-                                  source=f"fitted by limen detector ({c.kind}, R² = {c.r_squared:.5f})")
+        return ConversionFunction(
+            kind=c.kind,
+            offset=c.offset,
+            gain=c.gain,
+            source=f"fitted by limen detector ({c.kind}, R² = {c.r_squared:.5f})",
+        )
 
     def to_dict(self) -> dict:
         return {
-            "kind": self.kind, "offset": self.chosen.offset, "gain": self.chosen.gain,
-            "r_squared": self.chosen.r_squared, "nonlinear": self.nonlinear, "note": self.note,
-            "kerma_ugy": self.kerma_ugy.tolist(), "mean_pixel_value": self.mean_pixel_value.tolist(),
+            "kind": self.kind,
+            "offset": self.chosen.offset,
+            "gain": self.chosen.gain,
+            "r_squared": self.chosen.r_squared,
+            "nonlinear": self.nonlinear,
+            "note": self.note,
+            "kerma_ugy": self.kerma_ugy.tolist(),
+            "mean_pixel_value": self.mean_pixel_value.tolist(),
             "linear": self.linear.to_dict(),
             "logarithmic": None if self.logarithmic is None else self.logarithmic.to_dict(),
         }
@@ -123,8 +144,9 @@ def _line_fit(kind: str, x: np.ndarray, pv: np.ndarray, kerma: np.ndarray) -> Li
     return LineFit(kind, float(offset), float(gain), float(r2), err)
 
 
-def fit_conversion(kerma_ugy, mean_pixel_value, *, kind: str | None = None,
-                   tolerance: float = NONLINEARITY_TOLERANCE, path=None) -> ConversionFit:
+def fit_conversion(
+    kerma_ugy, mean_pixel_value, *, kind: str | None = None, tolerance: float = NONLINEARITY_TOLERANCE, path=None
+) -> ConversionFit:
     """Fit linear (PV = o + g·K) and logarithmic (PV = o + g·ln K) responses.
 
     Parameters
@@ -160,8 +182,10 @@ def fit_conversion(kerma_ugy, mean_pixel_value, *, kind: str | None = None,
     if k.size < 3:
         note = "only two air kermas: R² is 1 by construction and linearity is not tested"
     elif nonlinear:
-        note = (f"response not {kind} within {tolerance:.0%} (largest kerma error "
-                f"{chosen.max_relative_kerma_error:.1%}, R² = {chosen.r_squared:.4f})")
+        note = (
+            f"response not {kind} within {tolerance:.0%} (largest kerma error "
+            f"{chosen.max_relative_kerma_error:.1%}, R² = {chosen.r_squared:.4f})"
+        )
     return ConversionFit(k, pv, lin, log, kind, nonlinear, note)
 
 
@@ -172,10 +196,11 @@ def central_mean(pixels, spacing_mm, side_mm: float = 10.0) -> float:
     w = max(8, int(round(side_mm / spacing_mm[1])))
     h, w = min(h, a.shape[0]), min(w, a.shape[1])
     r0, c0 = (a.shape[0] - h) // 2, (a.shape[1] - w) // 2
-    return float(np.mean(a[r0:r0 + h, c0:c0 + w], dtype=np.float64))
+    return float(np.mean(a[r0 : r0 + h, c0 : c0 + w], dtype=np.float64))
 
 
 # ---------------------------------------------------------------- DQE
+
 
 @dataclass
 class DQEResult:
@@ -184,7 +209,7 @@ class DQEResult:
     by_direction: dict[str, np.ndarray]
     kerma_ugy: float
     q_per_mm2_ugy: float
-    ci_low: np.ndarray | None = None      # 95 % CI from the NNPS's and the MTF's standard errors
+    ci_low: np.ndarray | None = None  # 95 % CI from the NNPS's and the MTF's standard errors
     ci_high: np.ndarray | None = None
     warnings: list[str] = field(default_factory=list)
 
@@ -192,16 +217,26 @@ class DQEResult:
         return np.interp(frequency_per_mm, self.frequency_per_mm, self.value, left=np.nan, right=np.nan)
 
     def to_dict(self) -> dict:
-        return {"frequency_per_mm": self.frequency_per_mm.tolist(), "value": self.value.tolist(),
-                "ci_low": None if self.ci_low is None else self.ci_low.tolist(),
-                "ci_high": None if self.ci_high is None else self.ci_high.tolist(),
-                "ci_note": "95 % CI from the NNPS standard error (ROI spread) and the MTF's (spread between edge segments)",
-                "by_direction": {k: v.tolist() for k, v in self.by_direction.items()},
-                "kerma_ugy": self.kerma_ugy, "q_per_mm2_ugy": self.q_per_mm2_ugy, "warnings": list(self.warnings)}
+        return {
+            "frequency_per_mm": self.frequency_per_mm.tolist(),
+            "value": self.value.tolist(),
+            "ci_low": None if self.ci_low is None else self.ci_low.tolist(),
+            "ci_high": None if self.ci_high is None else self.ci_high.tolist(),
+            "ci_note": "95 % CI from the NNPS standard error (ROI spread) and the MTF's (spread between edge segments)",
+            "by_direction": {k: v.tolist() for k, v in self.by_direction.items()},
+            "kerma_ugy": self.kerma_ugy,
+            "q_per_mm2_ugy": self.q_per_mm2_ugy,
+            "warnings": list(self.warnings),
+        }
 
 
-def compute_dqe(mtf: MTFResult, nnps: NNPSResult, kerma_ugy: float | None, q_per_mm2_ugy: float | None,
-                mtf_by_direction: dict[str, MTFResult] | None = None) -> DQEResult:
+def compute_dqe(
+    mtf: MTFResult,
+    nnps: NNPSResult,
+    kerma_ugy: float | None,
+    q_per_mm2_ugy: float | None,
+    mtf_by_direction: dict[str, MTFResult] | None = None,
+) -> DQEResult:
     """DQE(f) = MTF²(f) / (K · q · NNPS(f)) on the NNPS frequency grid (up to Nyquist).
 
     Refuses (LimenError) without a positive air kerma K (µGy) and q (per mm² per µGy):
@@ -240,13 +275,16 @@ def compute_dqe(mtf: MTFResult, nnps: NNPSResult, kerma_ugy: float | None, q_per
     lo_all = value / (1.0 + z_all * rel)
     above = np.isfinite(lo_all) & (lo_all > 1.0)
     if above.any():
-        warnings.append(f"DQE exceeds 1 beyond its uncertainty at {int(above.sum())} frequencies (up to "
-                        f"{float(np.nanmax(value)):.2f}): impossible for a real detector; check the air kerma, q and "
-                        "the conversion function")
+        warnings.append(
+            f"DQE exceeds 1 beyond its uncertainty at {int(above.sum())} frequencies (up to "
+            f"{float(np.nanmax(value)):.2f}): impossible for a real detector; check the air kerma, q and "
+            "the conversion function"
+        )
     return DQEResult(f, value, by_dir, float(kerma_ugy), float(q_per_mm2_ugy), lo, hi, warnings)
 
 
 # ---------------------------------------------------------------- everything together
+
 
 @dataclass
 class DetectorMetrics:
@@ -276,15 +314,23 @@ class DetectorMetrics:
         mtf = None
         if self.mtf is not None:
             mtf = self.mtf.to_dict()
-            mtf["by_direction"] = {d: {"frequency_per_mm": m.frequency_per_mm.tolist(), "value": m.value.tolist(),
-                                       "edge_angle_deg": m.edge_angle_deg}
-                                   for d, m in self.mtf_by_direction.items()}
+            mtf["by_direction"] = {
+                d: {
+                    "frequency_per_mm": m.frequency_per_mm.tolist(),
+                    "value": m.value.tolist(),
+                    "edge_angle_deg": m.edge_angle_deg,
+                }
+                for d, m in self.mtf_by_direction.items()
+            }
         return {
             "mtf": mtf,
-            "mtf_extended": None if self.mtf is None else {
+            "mtf_extended": None
+            if self.mtf is None
+            else {
                 "frequency_per_mm": self.mtf.frequency_ext_per_mm.tolist(),
                 "value": self.mtf.value_ext.tolist(),
-                "note": "presampling MTF up to 2 × Nyquist, used for the aliasing terms of the prediction"},
+                "note": "presampling MTF up to 2 × Nyquist, used for the aliasing terms of the prediction",
+            },
             "nnps": None if self.nnps is None else self.nnps.to_dict(),
             "dqe": None if self.dqe is None else self.dqe.to_dict(),
             "conversion": self.conversion,
@@ -293,8 +339,9 @@ class DetectorMetrics:
             "q_per_mm2_ugy": self.q_per_mm2_ugy,
             "beam": self.beam,
             "pixel_spacing_mm": None if self.pixel_spacing_mm is None else list(self.pixel_spacing_mm),
-            "nyquist_per_mm": None if self.pixel_spacing_mm is None else 0.5 / float(np.sqrt(
-                self.pixel_spacing_mm[0] * self.pixel_spacing_mm[1])),
+            "nyquist_per_mm": None
+            if self.pixel_spacing_mm is None
+            else 0.5 / float(np.sqrt(self.pixel_spacing_mm[0] * self.pixel_spacing_mm[1])),
             "predicted": self.predicted,
             "noise_series": self.noise_series,
             "inputs": self.inputs,
@@ -308,15 +355,24 @@ def _spacing(images: list[Image]) -> tuple[float, float] | None:
     s0 = tuple(float(v) for v in images[0].spacing_mm)
     for im in images[1:]:
         if not np.allclose(im.spacing_mm, s0, rtol=1e-4):
-            raise LimenError(f"pixel spacing {tuple(im.spacing_mm)} mm differs from {s0} mm of the other images",
-                             im.metadata.source_path or None)
+            raise LimenError(
+                f"pixel spacing {tuple(im.spacing_mm)} mm differs from {s0} mm of the other images",
+                im.metadata.source_path or None,
+            )
     return s0  # type: ignore[return-value]
 
 
-def measure_detector(flats: list[Image] = (), edges: list[Image] = (), *, kerma_ugy: float | None = None,
-                     q_per_mm2_ugy: float | None = None, beam: str | None = None,
-                     conversion: dict | None = None, require_dqe: bool = False,
-                     roi_px: int = 256) -> DetectorMetrics:
+def measure_detector(
+    flats: list[Image] = (),
+    edges: list[Image] = (),
+    *,
+    kerma_ugy: float | None = None,
+    q_per_mm2_ugy: float | None = None,
+    beam: str | None = None,
+    conversion: dict | None = None,
+    require_dqe: bool = False,
+    roi_px: int = 256,
+) -> DetectorMetrics:
     """MTF from the edge images, NNPS from the flat fields, and the DQE when K and q are known.
 
     Images must already be linear in air kerma (a conversion function applied by
@@ -343,8 +399,9 @@ def measure_detector(flats: list[Image] = (), edges: list[Image] = (), *, kerma_
         mtf = mean_mtf(list(by_dir.values()), direction="mean" if len(by_dir) > 1 else None)
     nnps = None
     if flats:
-        nnps = measure_nnps([im.pixels for im in flats], spacing, roi_px=roi_px,
-                            paths=[im.metadata.source_path or None for im in flats])
+        nnps = measure_nnps(
+            [im.pixels for im in flats], spacing, roi_px=roi_px, paths=[im.metadata.source_path or None for im in flats]
+        )
         warnings += nnps.warnings
     dqe = None
     if mtf is not None and nnps is not None and (require_dqe or (kerma_ugy is not None and q_per_mm2_ugy is not None)):
@@ -352,19 +409,40 @@ def measure_detector(flats: list[Image] = (), edges: list[Image] = (), *, kerma_
         warnings += dqe.warnings
     elif require_dqe:
         raise LimenError("DQE needs both an edge image (--edge) and flat fields (--flat)")
-    inputs = {"flat": [im.metadata.source_path for im in flats], "edge": [im.metadata.source_path for im in edges],
-              "flat_sha256": [im.metadata.content_sha256 for im in flats],
-              "edge_sha256": [im.metadata.content_sha256 for im in edges]}
-    return DetectorMetrics(mtf=mtf, mtf_by_direction=by_dir, nnps=nnps, dqe=dqe, conversion=conversion,
-                           kerma_ugy=kerma_ugy, q_per_mm2_ugy=q_per_mm2_ugy, beam=beam,
-                           pixel_spacing_mm=spacing, inputs=inputs, warnings=warnings)
+    inputs = {
+        "flat": [im.metadata.source_path for im in flats],
+        "edge": [im.metadata.source_path for im in edges],
+        "flat_sha256": [im.metadata.content_sha256 for im in flats],
+        "edge_sha256": [im.metadata.content_sha256 for im in edges],
+    }
+    return DetectorMetrics(
+        mtf=mtf,
+        mtf_by_direction=by_dir,
+        nnps=nnps,
+        dqe=dqe,
+        conversion=conversion,
+        kerma_ugy=kerma_ugy,
+        q_per_mm2_ugy=q_per_mm2_ugy,
+        beam=beam,
+        pixel_spacing_mm=spacing,
+        inputs=inputs,
+        warnings=warnings,
+    )
 
 
 # ---------------------------------------------------------------- flats at several kermas
 
-def measure_noise_series(flats: list[Image], kerma_ugy, *, mtf: MTFResult | None = None,
-                         mtf_by_direction: dict[str, MTFResult] | None = None,
-                         q_per_mm2_ugy: float | None = None, roi_px: int = 256, path=None) -> dict:
+
+def measure_noise_series(
+    flats: list[Image],
+    kerma_ugy,
+    *,
+    mtf: MTFResult | None = None,
+    mtf_by_direction: dict[str, MTFResult] | None = None,
+    q_per_mm2_ugy: float | None = None,
+    roi_px: int = 256,
+    path=None,
+) -> dict:
     """Noise components and, with an MTF and q, the DQE at each kerma, from flats at several air kermas.
 
     Returns the ``noise_series`` entry of ``detector.json``: per kerma group the pixel variance (with its
@@ -382,29 +460,47 @@ def measure_noise_series(flats: list[Image], kerma_ugy, *, mtf: MTFResult | None
         raise LimenError("noise series: air kermas must be positive numbers (µGy)", path)
     distinct = sorted(set(k))
     if len(distinct) < 2:
-        raise LimenError(f"noise series: all flat fields are at {distinct[0]:g} µGy; the noise components need "
-                         "flat fields at two or more different air kermas", path)
+        raise LimenError(
+            f"noise series: all flat fields are at {distinct[0]:g} µGy; the noise components need "
+            "flat fields at two or more different air kermas",
+            path,
+        )
     groups = group_flats(flats, k, roi_px=min(roi_px, 128))
-    fit = fit_components([g.kerma_ugy for g in groups], [g.variance for g in groups],
-                         [g.variance_se for g in groups], path=path)
+    fit = fit_components(
+        [g.kerma_ugy for g in groups], [g.variance for g in groups], [g.variance_se for g in groups], path=path
+    )
     per_kerma, nnps_list = [], []
     for g in groups:
         ims = [im for im, kk in zip(flats, k) if kk == g.kerma_ugy]
-        nn = measure_nnps([im.pixels for im in ims], _spacing(ims), roi_px=roi_px,
-                          paths=[im.metadata.source_path or None for im in ims])
+        nn = measure_nnps(
+            [im.pixels for im in ims],
+            _spacing(ims),
+            roi_px=roi_px,
+            paths=[im.metadata.source_path or None for im in ims],
+        )
         nnps_list.append(nn)
         row = g.to_dict()
-        row["nnps"] = {"frequency_per_mm": nn.frequency_per_mm.tolist(), "value_mm2": nn.value_mm2.tolist(),
-                       "relative_uncertainty": nn.relative_uncertainty}
+        row["nnps"] = {
+            "frequency_per_mm": nn.frequency_per_mm.tolist(),
+            "value_mm2": nn.value_mm2.tolist(),
+            "relative_uncertainty": nn.relative_uncertainty,
+        }
         row["dqe"] = None
         if mtf is not None and q_per_mm2_ugy:
             dq = compute_dqe(mtf, nn, g.kerma_ugy, q_per_mm2_ugy, mtf_by_direction)
-            row["dqe"] = {"frequency_per_mm": dq.frequency_per_mm.tolist(), "value": dq.value.tolist(),
-                          "ci_low": dq.ci_low.tolist(), "ci_high": dq.ci_high.tolist()}
+            row["dqe"] = {
+                "frequency_per_mm": dq.frequency_per_mm.tolist(),
+                "value": dq.value.tolist(),
+                "ci_low": dq.ci_low.tolist(),
+                "ci_high": dq.ci_high.tolist(),
+            }
         per_kerma.append(row)
     comp = fit.to_dict()
-    return {"groups": per_kerma, "components": comp,
-            "bands": band_components([g.kerma_ugy for g in groups], nnps_list),
-            "quantum_limited_text": describe_quantum_range(comp["quantum_limited"], min(distinct), max(distinct)),
-            "model": "pixel variance σ²(K) = e + q·K + s·K² (electronic + quantum + structure; common practice), "
-                     "in the linearised image's units"}
+    return {
+        "groups": per_kerma,
+        "components": comp,
+        "bands": band_components([g.kerma_ugy for g in groups], nnps_list),
+        "quantum_limited_text": describe_quantum_range(comp["quantum_limited"], min(distinct), max(distinct)),
+        "model": "pixel variance σ²(K) = e + q·K + s·K² (electronic + quantum + structure; common practice), "
+        "in the linearised image's units",
+    }

@@ -91,7 +91,7 @@ class MTFResult:
     esf_distance_mm: np.ndarray | None = None
     esf: np.ndarray | None = None
     warnings: list[str] = field(default_factory=list)
-    se_ext: np.ndarray | None = None     # standard error of value_ext (spread between segments of the edge)
+    se_ext: np.ndarray | None = None  # standard error of value_ext (spread between segments of the edge)
     n_segments: int = 0
 
     @property
@@ -110,8 +110,7 @@ class MTFResult:
 
     def at(self, frequency_per_mm):
         """MTF interpolated at the given frequencies (NaN beyond the extended range)."""
-        return np.interp(frequency_per_mm, self.frequency_ext_per_mm, self.value_ext,
-                         left=np.nan, right=np.nan)
+        return np.interp(frequency_per_mm, self.frequency_ext_per_mm, self.value_ext, left=np.nan, right=np.nan)
 
     def to_dict(self) -> dict:
         return {
@@ -127,8 +126,12 @@ class MTFResult:
             "empty_bins": self.empty_bins,
             "ci_low": None if self.ci() is None else self.ci()[0].tolist(),
             "ci_high": None if self.ci() is None else self.ci()[1].tolist(),
-            "ci_note": None if self.se is None else (f"95 % CI from the spread of the MTF between {self.n_segments} "
-                                                      "segments of the edge (per edge), combined over edges"),
+            "ci_note": None
+            if self.se is None
+            else (
+                f"95 % CI from the spread of the MTF between {self.n_segments} "
+                "segments of the edge (per edge), combined over edges"
+            ),
             "warnings": list(self.warnings),
         }
 
@@ -232,10 +235,16 @@ def _tukey_window(n: int, centre: float, half_width_bins: float, alpha: float = 
     return w
 
 
-def measure_mtf(pixels, spacing_mm, *, bin_fraction: float = DEFAULT_BIN_FRACTION,
-                lsf_half_width_px: int = DEFAULT_LSF_HALF_WIDTH_PX,
-                report_max_fraction_nyquist: float = 1.1, path=None,
-                keep_esf: bool = False) -> MTFResult:
+def measure_mtf(
+    pixels,
+    spacing_mm,
+    *,
+    bin_fraction: float = DEFAULT_BIN_FRACTION,
+    lsf_half_width_px: int = DEFAULT_LSF_HALF_WIDTH_PX,
+    report_max_fraction_nyquist: float = 1.1,
+    path=None,
+    keep_esf: bool = False,
+) -> MTFResult:
     """Presampling MTF from one slanted-edge image (see the module docstring).
 
     Parameters
@@ -279,8 +288,11 @@ def measure_mtf(pixels, spacing_mm, *, bin_fraction: float = DEFAULT_BIN_FRACTIO
 
     shift_px = abs(b) * (rows.max() - rows.min())
     if shift_px < 1.0:
-        raise LimenError(f"edge angle {np.degrees(np.arctan(b * dx / dy)):.2f}° too small: the edge moves "
-                         f"{shift_px:.2f} px along its length, need at least 1 px to oversample", path)
+        raise LimenError(
+            f"edge angle {np.degrees(np.arctan(b * dx / dy)):.2f}° too small: the edge moves "
+            f"{shift_px:.2f} px along its length, need at least 1 px to oversample",
+            path,
+        )
     angle_deg = float(np.degrees(np.arctan(b * dx / dy)))
     if not (1.0 <= abs(angle_deg) <= 10.0):
         warnings.append(f"edge angle {angle_deg:.2f}° outside 1°–10° (about 1.5°–3° recommended)")
@@ -311,8 +323,11 @@ def measure_mtf(pixels, spacing_mm, *, bin_fraction: float = DEFAULT_BIN_FRACTIO
         step = abs(float(hi_side.mean() - lo_side.mean()))
         noise = float(np.sqrt(0.5 * (lo_side.var() + hi_side.var())))
         if noise > 0 and step < MIN_STEP_TO_NOISE * noise:
-            raise LimenError(f"no edge: the step across the fitted line is {step / noise:.1f}× the pixel noise "
-                             f"(need ≥ {MIN_STEP_TO_NOISE:g}×); is this a flat field given as an edge?", path)
+            raise LimenError(
+                f"no edge: the step across the fitted line is {step / noise:.1f}× the pixel noise "
+                f"(need ≥ {MIN_STEP_TO_NOISE:g}×); is this a flat field given as an edge?",
+                path,
+            )
     if empty:
         warnings.append(f"{empty} empty ESF bins filled by interpolation (edge short or angle small)")
 
@@ -342,18 +357,29 @@ def measure_mtf(pixels, spacing_mm, *, bin_fraction: float = DEFAULT_BIN_FRACTIO
     nyq = 0.5 / pitch
     low = (f > 0) & (f <= 0.5 * nyq)
     if low.any() and float(mtf[low].max()) > MAX_PLAUSIBLE_MTF:
-        warnings.append(f"implausible MTF: {float(mtf[low].max()):.2f} > {MAX_PLAUSIBLE_MTF:g} below half the "
-                        "Nyquist frequency (an MTF cannot exceed 1; check that this is a sharp, straight edge)")
+        warnings.append(
+            f"implausible MTF: {float(mtf[low].max()):.2f} > {MAX_PLAUSIBLE_MTF:g} below half the "
+            "Nyquist frequency (an MTF cannot exceed 1; check that this is a sharp, straight edge)"
+        )
     ext = f <= 2.0 * nyq + 1e-12
     rep = f <= report_max_fraction_nyquist * nyq + 1e-12
     return MTFResult(
-        frequency_per_mm=f[rep], value=mtf[rep],
-        frequency_ext_per_mm=f[ext], value_ext=mtf[ext],
-        direction=direction, edge_angle_deg=angle_deg, pixel_pitch_mm=float(pitch),
-        bin_width_mm=float(bw), lsf_half_width_px=int(lsf_half_width_px),
-        n_edge_rows=int(rows.size), empty_bins=empty,
-        esf_distance_mm=centres if keep_esf else None, esf=esf if keep_esf else None,
-        warnings=warnings, se_ext=None if se_full is None else se_full[ext], n_segments=n_seg if se_full is not None else 0,
+        frequency_per_mm=f[rep],
+        value=mtf[rep],
+        frequency_ext_per_mm=f[ext],
+        value_ext=mtf[ext],
+        direction=direction,
+        edge_angle_deg=angle_deg,
+        pixel_pitch_mm=float(pitch),
+        bin_width_mm=float(bw),
+        lsf_half_width_px=int(lsf_half_width_px),
+        n_edge_rows=int(rows.size),
+        empty_bins=empty,
+        esf_distance_mm=centres if keep_esf else None,
+        esf=esf if keep_esf else None,
+        warnings=warnings,
+        se_ext=None if se_full is None else se_full[ext],
+        n_segments=n_seg if se_full is not None else 0,
     )
 
 
@@ -395,12 +421,22 @@ def mean_mtf(results: list[MTFResult], direction: str | None = None) -> MTFResul
     se_ext = None
     if all(r.se_ext is not None for r in results):
         # SE of a mean of independent curves: √(Σ se²)/n
-        se_ext = np.sqrt(np.sum([np.interp(fe, r.frequency_ext_per_mm, r.se_ext) ** 2 for r in results],
-                                axis=0)) / len(results)
-    return MTFResult(frequency_per_mm=f, value=v, frequency_ext_per_mm=fe, value_ext=ve, direction=d,
-                     edge_angle_deg=float(np.mean([r.edge_angle_deg for r in results])),
-                     pixel_pitch_mm=float(np.mean([r.pixel_pitch_mm for r in results])),
-                     bin_width_mm=ref.bin_width_mm, lsf_half_width_px=ref.lsf_half_width_px,
-                     n_edge_rows=int(sum(r.n_edge_rows for r in results)),
-                     empty_bins=int(sum(r.empty_bins for r in results)), warnings=warn, se_ext=se_ext,
-                     n_segments=int(min(r.n_segments for r in results)))
+        se_ext = np.sqrt(np.sum([np.interp(fe, r.frequency_ext_per_mm, r.se_ext) ** 2 for r in results], axis=0)) / len(
+            results
+        )
+    return MTFResult(
+        frequency_per_mm=f,
+        value=v,
+        frequency_ext_per_mm=fe,
+        value_ext=ve,
+        direction=d,
+        edge_angle_deg=float(np.mean([r.edge_angle_deg for r in results])),
+        pixel_pitch_mm=float(np.mean([r.pixel_pitch_mm for r in results])),
+        bin_width_mm=ref.bin_width_mm,
+        lsf_half_width_px=ref.lsf_half_width_px,
+        n_edge_rows=int(sum(r.n_edge_rows for r in results)),
+        empty_bins=int(sum(r.empty_bins for r in results)),
+        warnings=warn,
+        se_ext=se_ext,
+        n_segments=int(min(r.n_segments for r in results)),
+    )

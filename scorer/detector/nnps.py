@@ -94,7 +94,7 @@ class NNPSResult:
     @property
     def se_mm2(self) -> np.ndarray:
         """Standard error of :attr:`value_mm2` (the two cuts' errors combined as independent)."""
-        return 0.5 * np.sqrt(self.x_se_mm2 ** 2 + self.y_se_mm2 ** 2)
+        return 0.5 * np.sqrt(self.x_se_mm2**2 + self.y_se_mm2**2)
 
     @property
     def relative_uncertainty(self) -> float:
@@ -139,9 +139,9 @@ def _full_from_half(p_half: np.ndarray, n: int) -> np.ndarray:
     """Full (…, n, n) power spectrum from the rfft2 half (…, n, n//2+1): P(−v, −u) = P(v, u)."""
     full = np.empty(p_half.shape[:-1] + (n,))
     h = n // 2
-    full[..., :h + 1] = p_half
+    full[..., : h + 1] = p_half
     rows = (-np.arange(n)) % n
-    full[..., h + 1:] = p_half[..., rows, :][..., h - 1:0:-1]
+    full[..., h + 1 :] = p_half[..., rows, :][..., h - 1 : 0 : -1]
     return full
 
 
@@ -170,11 +170,10 @@ def check_flat_field(pixels: np.ndarray, path=None, block_px: int = FLAT_BLOCK_P
     nb_r, nb_c = a.shape[0] // block_px, a.shape[1] // block_px
     if nb_r < 4 or nb_c < 4:
         return
-    m = a[:nb_r * block_px, :nb_c * block_px].reshape(nb_r, block_px, nb_c, block_px).mean(axis=(1, 3))
+    m = a[: nb_r * block_px, : nb_c * block_px].reshape(nb_r, block_px, nb_c, block_px).mean(axis=(1, 3))
     yy, xx = np.mgrid[0:nb_r, 0:nb_c].astype(float)
     yy, xx = (yy - yy.mean()) / max(nb_r, 1), (xx - xx.mean()) / max(nb_c, 1)
-    A = np.column_stack([np.ones(m.size), xx.ravel(), yy.ravel(), xx.ravel() ** 2, (xx * yy).ravel(),
-                         yy.ravel() ** 2])
+    A = np.column_stack([np.ones(m.size), xx.ravel(), yy.ravel(), xx.ravel() ** 2, (xx * yy).ravel(), yy.ravel() ** 2])
     coef, *_ = np.linalg.lstsq(A, m.ravel(), rcond=None)
     r = m - (A @ coef).reshape(m.shape)
     # robust noise of one block mean, from differences of neighbouring blocks (insensitive to a few outliers)
@@ -187,13 +186,24 @@ def check_flat_field(pixels: np.ndarray, path=None, block_px: int = FLAT_BLOCK_P
     n_bad = int((z > FLAT_OUTLIER_SDS).sum())
     if n_bad:
         rc = (int((worst[0] + 0.5) * block_px), int((worst[1] + 0.5) * block_px))
-        raise LimenError(f"not a flat field: {n_bad} region(s) depart from a smooth trend by more than "
-                         f"{FLAT_OUTLIER_SDS:g} noise SDs (largest {z.max():.0f} SDs near row {rc[0]}, column "
-                         f"{rc[1]}): an edge, a phantom or an object is in the field", path)
+        raise LimenError(
+            f"not a flat field: {n_bad} region(s) depart from a smooth trend by more than "
+            f"{FLAT_OUTLIER_SDS:g} noise SDs (largest {z.max():.0f} SDs near row {rc[0]}, column "
+            f"{rc[1]}): an edge, a phantom or an object is in the field",
+            path,
+        )
 
 
-def measure_nnps(images, spacing_mm, *, roi_px: int = DEFAULT_ROI_PX, region_mm: float | None = DEFAULT_REGION_MM,
-                 n_lines: int = DEFAULT_N_LINES, paths=None, check_flat: bool = True) -> NNPSResult:
+def measure_nnps(
+    images,
+    spacing_mm,
+    *,
+    roi_px: int = DEFAULT_ROI_PX,
+    region_mm: float | None = DEFAULT_REGION_MM,
+    n_lines: int = DEFAULT_N_LINES,
+    paths=None,
+    check_flat: bool = True,
+) -> NNPSResult:
     """NNPS from one or more linearised flat fields (see the module docstring).
 
     Parameters
@@ -234,11 +244,12 @@ def measure_nnps(images, spacing_mm, *, roi_px: int = DEFAULT_ROI_PX, region_mm:
             h = min(a.shape[0], int(round(region_mm / dy)))
             w = min(a.shape[1], int(round(region_mm / dx)))
             r0, c0 = (a.shape[0] - h) // 2, (a.shape[1] - w) // 2
-            a = a[r0:r0 + h, c0:c0 + w]
+            a = a[r0 : r0 + h, c0 : c0 + w]
         a = np.asarray(a, dtype=np.float64)
         if min(a.shape) < roi_px:
-            raise LimenError(f"flat field region {a.shape[0]}x{a.shape[1]} px is smaller than one "
-                             f"{roi_px}x{roi_px} ROI", path)
+            raise LimenError(
+                f"flat field region {a.shape[0]}x{a.shape[1]} px is smaller than one {roi_px}x{roi_px} ROI", path
+            )
         if not np.all(np.isfinite(a)):
             raise LimenError("flat field holds non-finite pixel values", path)
         if check_flat:
@@ -247,30 +258,31 @@ def measure_nnps(images, spacing_mm, *, roi_px: int = DEFAULT_ROI_PX, region_mm:
         rs, cs = _roi_starts(a.shape[0], roi_px), _roi_starts(a.shape[1], roi_px)
         # process one row of ROIs at a time (memory stays at a few ROIs' worth)
         for r in rs:
-            strip = np.stack([a[r:r + roi_px, c:c + roi_px] for c in cs])  # (k, n, n)
+            strip = np.stack([a[r : r + roi_px, c : c + roi_px] for c in cs])  # (k, n, n)
             flat = strip.reshape(len(cs), -1)
             if mean_region <= 0:
-                raise LimenError("flat field has a non-positive mean signal: is it linearised "
-                                 "(conversion function applied)?", path)
+                raise LimenError(
+                    "flat field has a non-positive mean signal: is it linearised (conversion function applied)?", path
+                )
             resid = flat - (flat @ basis) @ basis.T
             f2 = sfft.rfft2(resid.reshape(strip.shape), workers=-1)
-            p = _full_from_half(f2.real ** 2 + f2.imag ** 2, roi_px)
-            p *= (dx * dy / (roi_px * roi_px)) / mean_region ** 2
+            p = _full_from_half(f2.real**2 + f2.imag**2, roi_px)
+            p *= (dx * dy / (roi_px * roi_px)) / mean_region**2
             spec_sum += p.sum(axis=0)
             # per-ROI 1-D cuts (unshifted indices: v = ±1..±n_lines are rows 1..n and -n..-1)
-            lines = np.r_[1:n_lines + 1, -n_lines:0]
+            lines = np.r_[1 : n_lines + 1, -n_lines:0]
             cuts_x.append(p[:, lines, :].mean(axis=1))
             cuts_y.append(p[:, :, lines].mean(axis=2))
             means.extend([mean_region] * len(cs))
             n_rois += len(cs)
     nps = spec_sum / n_rois
     half = roi_px // 2
-    cx = np.concatenate(cuts_x)[:, 1:half + 1]
-    cy = np.concatenate(cuts_y)[:, 1:half + 1]
+    cx = np.concatenate(cuts_x)[:, 1 : half + 1]
+    cy = np.concatenate(cuts_y)[:, 1 : half + 1]
     fu = np.fft.fftfreq(roi_px, d=dx)
     fv = np.fft.fftfreq(roi_px, d=dy)
-    freq_x = np.abs(fu[1:half + 1])
-    freq_y = np.abs(fv[1:half + 1])
+    freq_x = np.abs(fu[1 : half + 1])
+    freq_y = np.abs(fv[1 : half + 1])
     if not np.allclose(freq_x, freq_y, rtol=1e-6):
         warnings.append("non-square pixels: the y cut is reported on the x frequency grid by interpolation")
     x_cut, y_cut = cx.mean(axis=0), cy.mean(axis=0)
@@ -279,8 +291,10 @@ def measure_nnps(images, spacing_mm, *, roi_px: int = DEFAULT_ROI_PX, region_mm:
     y_cut = np.interp(freq_x, freq_y, y_cut)
     y_se = np.interp(freq_x, freq_y, y_se)
     if n_rois < 16:
-        warnings.append(f"only {n_rois} ROIs: the NNPS is noisy (relative error ≈ {1 / np.sqrt(n_rois * 2 * n_lines):.0%} "
-                        "per frequency)")
+        warnings.append(
+            f"only {n_rois} ROIs: the NNPS is noisy (relative error ≈ {1 / np.sqrt(n_rois * 2 * n_lines):.0%} "
+            "per frequency)"
+        )
 
     # radial average excluding both axes
     uu, vv = np.meshgrid(fu, fv)
@@ -300,8 +314,18 @@ def measure_nnps(images, spacing_mm, *, roi_px: int = DEFAULT_ROI_PX, region_mm:
     return NNPSResult(
         nnps_2d_mm2=np.fft.fftshift(nps),
         frequency_2d_per_mm=(np.fft.fftshift(fv), np.fft.fftshift(fu)),
-        frequency_per_mm=freq_x, x_mm2=x_cut, y_mm2=y_cut, x_se_mm2=x_se, y_se_mm2=y_se,
-        radial_frequency_per_mm=rf, radial_mm2=rv,
-        mean_signal=float(np.mean(means)), n_rois=n_rois, n_images=len(images), roi_px=roi_px,
-        n_lines=int(n_lines), spacing_mm=(dy, dx), warnings=warnings,
+        frequency_per_mm=freq_x,
+        x_mm2=x_cut,
+        y_mm2=y_cut,
+        x_se_mm2=x_se,
+        y_se_mm2=y_se,
+        radial_frequency_per_mm=rf,
+        radial_mm2=rv,
+        mean_signal=float(np.mean(means)),
+        n_rois=n_rois,
+        n_images=len(images),
+        roi_px=roi_px,
+        n_lines=int(n_lines),
+        spacing_mm=(dy, dx),
+        warnings=warnings,
     )

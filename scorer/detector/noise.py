@@ -52,24 +52,29 @@ TERMS = ("electronic", "quantum", "structure")
 BANDS_NYQUIST = ((0.05, 0.25), (0.25, 0.6), (0.6, 1.0))
 
 
-def flat_roi_variances(pixels, spacing_mm, *, roi_px: int = 128, region_mm: float | None = DEFAULT_REGION_MM
-                       ) -> tuple[np.ndarray, float]:
+def flat_roi_variances(
+    pixels, spacing_mm, *, roi_px: int = 128, region_mm: float | None = DEFAULT_REGION_MM
+) -> tuple[np.ndarray, float]:
     """Detrended variance of each non-overlapping ROI of a linearised flat field, and the region's mean."""
     a = np.asarray(pixels, dtype=np.float64)
     if region_mm is not None:
         h = min(a.shape[0], int(round(region_mm / spacing_mm[0])))
         w = min(a.shape[1], int(round(region_mm / spacing_mm[1])))
         r0, c0 = (a.shape[0] - h) // 2, (a.shape[1] - w) // 2
-        a = a[r0:r0 + h, c0:c0 + w]
+        a = a[r0 : r0 + h, c0 : c0 + w]
     n_r, n_c = a.shape[0] // roi_px, a.shape[1] // roi_px
     if n_r < 1 or n_c < 1:
         raise LimenError(f"flat field {a.shape[0]}x{a.shape[1]} px is smaller than one {roi_px}x{roi_px} ROI")
     basis = _poly_basis(roi_px)
     r0, c0 = (a.shape[0] - n_r * roi_px) // 2, (a.shape[1] - n_c * roi_px) // 2
-    blocks = (a[r0:r0 + n_r * roi_px, c0:c0 + n_c * roi_px]
-              .reshape(n_r, roi_px, n_c, roi_px).transpose(0, 2, 1, 3).reshape(n_r * n_c, roi_px * roi_px))
+    blocks = (
+        a[r0 : r0 + n_r * roi_px, c0 : c0 + n_c * roi_px]
+        .reshape(n_r, roi_px, n_c, roi_px)
+        .transpose(0, 2, 1, 3)
+        .reshape(n_r * n_c, roi_px * roi_px)
+    )
     resid = blocks - (blocks @ basis) @ basis.T
-    var = (resid ** 2).sum(axis=1) / (roi_px * roi_px - basis.shape[1])
+    var = (resid**2).sum(axis=1) / (roi_px * roi_px - basis.shape[1])
     return var, float(a.mean())
 
 
@@ -80,11 +85,11 @@ class ComponentFit:
     kerma_ugy: np.ndarray
     variance: np.ndarray
     variance_se: np.ndarray
-    params: np.ndarray            # (e, q, s); s = 0 when fixed
-    cov: np.ndarray               # 3 × 3 (zeros for a fixed term)
+    params: np.ndarray  # (e, q, s); s = 0 when fixed
+    cov: np.ndarray  # 3 × 3 (zeros for a fixed term)
     chi2: float
     dof: int
-    overdispersion: float         # factor the covariance was scaled by (1 when not over-dispersed)
+    overdispersion: float  # factor the covariance was scaled by (1 when not over-dispersed)
     terms: tuple[str, ...]
     units: str = "µGy²"
 
@@ -101,8 +106,13 @@ class ComponentFit:
         """Kermas where q·K is the largest term, [e/q, q/s], with 95 % CIs from draws of the fitted parameters."""
         e, q, s = self.params
         if not q > 0:
-            return {"low_ugy": None, "high_ugy": None, "low_ci": None, "high_ci": None,
-                    "note": "no positive quantum term: the noise is not quantum-limited at any kerma measured"}
+            return {
+                "low_ugy": None,
+                "high_ugy": None,
+                "low_ci": None,
+                "high_ci": None,
+                "note": "no positive quantum term: the noise is not quantum-limited at any kerma measured",
+            }
         rng = np.random.default_rng(seed)
         draws = rng.multivariate_normal(self.params, self.cov, size=n_draws, method="svd")
         dq = np.where(draws[:, 1] > 0, draws[:, 1], np.nan)
@@ -113,18 +123,34 @@ class ComponentFit:
         hi_d = np.where(np.isfinite(dq), hi_d, 0.0)
         low = max(e, 0.0) / q
         high = q / s if s > 0 else float("inf")
-        return {"low_ugy": float(low), "high_ugy": float(high),
-                "low_ci": _percentiles(lo_d), "high_ci": _percentiles(hi_d), "note": ""}
+        return {
+            "low_ugy": float(low),
+            "high_ugy": float(high),
+            "low_ci": _percentiles(lo_d),
+            "high_ci": _percentiles(hi_d),
+            "note": "",
+        }
 
     def to_dict(self) -> dict:
-        out = {"kerma_ugy": self.kerma_ugy.tolist(), "variance": self.variance.tolist(),
-               "variance_se": self.variance_se.tolist(), "chi2": self.chi2, "dof": self.dof,
-               "overdispersion": self.overdispersion, "units": self.units, "terms": list(self.terms)}
+        out = {
+            "kerma_ugy": self.kerma_ugy.tolist(),
+            "variance": self.variance.tolist(),
+            "variance_se": self.variance_se.tolist(),
+            "chi2": self.chi2,
+            "dof": self.dof,
+            "overdispersion": self.overdispersion,
+            "units": self.units,
+            "terms": list(self.terms),
+        }
         for i, name in enumerate(TERMS):
             lo, hi = self.ci(i)
             fixed = name not in self.terms
-            out[name] = {"value": float(self.params[i]), "ci_low": None if fixed else lo,
-                         "ci_high": None if fixed else hi, "fixed": fixed}
+            out[name] = {
+                "value": float(self.params[i]),
+                "ci_low": None if fixed else lo,
+                "ci_high": None if fixed else hi,
+                "fixed": fixed,
+            }
         out["quantum_limited"] = self.quantum_limited_range()
         return out
 
@@ -135,8 +161,9 @@ def _percentiles(x: np.ndarray) -> list[float]:
     return [float(x[int(np.floor(0.025 * (x.size - 1)))]), float(x[int(np.ceil(0.975 * (x.size - 1)))])]
 
 
-def fit_components(kerma_ugy, variance, variance_se, *, structure: bool | None = None, units: str = "µGy²",
-                   path=None) -> ComponentFit:
+def fit_components(
+    kerma_ugy, variance, variance_se, *, structure: bool | None = None, units: str = "µGy²", path=None
+) -> ComponentFit:
     """Weighted least-squares fit of σ²(K) = e + q·K + s·K² (s fixed at 0 with ``structure=False``).
 
     Parameters
@@ -159,11 +186,12 @@ def fit_components(kerma_ugy, variance, variance_se, *, structure: bool | None =
     if structure and n_k < 3:
         raise LimenError("the structure-noise term needs flat fields at three or more different air kermas", path)
     if np.any(~(se > 0)):
-        raise LimenError("noise components: each kerma needs a positive variance standard error "
-                         "(more than one ROI)", path)
+        raise LimenError(
+            "noise components: each kerma needs a positive variance standard error (more than one ROI)", path
+        )
     cols = [np.ones_like(k), k] + ([k * k] if structure else [])
     x = np.column_stack(cols)
-    w = 1.0 / se ** 2
+    w = 1.0 / se**2
     xtwx = x.T @ (w[:, None] * x)
     cov_r = np.linalg.inv(xtwx)
     beta = cov_r @ (x.T @ (w * y))
@@ -175,9 +203,9 @@ def fit_components(kerma_ugy, variance, variance_se, *, structure: bool | None =
         factor = chi2 / dof
     cov_r = cov_r * factor
     params = np.zeros(3)
-    params[:x.shape[1]] = beta
+    params[: x.shape[1]] = beta
     cov = np.zeros((3, 3))
-    cov[:x.shape[1], :x.shape[1]] = cov_r
+    cov[: x.shape[1], : x.shape[1]] = cov_r
     terms = TERMS if structure else TERMS[:2]
     return ComponentFit(k, y, se, params, cov, chi2, dof, factor, terms, units)
 
@@ -195,10 +223,16 @@ class KermaGroupNoise:
     paths: list[str] = field(default_factory=list)
 
     def to_dict(self) -> dict:
-        return {"kerma_ugy": self.kerma_ugy, "n_images": self.n_images, "n_rois": self.n_rois,
-                "mean_signal": self.mean_signal, "variance": self.variance, "variance_se": self.variance_se,
-                "relative_sd": float(np.sqrt(self.variance) / self.mean_signal) if self.mean_signal > 0 else None,
-                "paths": self.paths}
+        return {
+            "kerma_ugy": self.kerma_ugy,
+            "n_images": self.n_images,
+            "n_rois": self.n_rois,
+            "mean_signal": self.mean_signal,
+            "variance": self.variance,
+            "variance_se": self.variance_se,
+            "relative_sd": float(np.sqrt(self.variance) / self.mean_signal) if self.mean_signal > 0 else None,
+            "paths": self.paths,
+        }
 
 
 def group_flats(images, kerma_ugy, *, roi_px: int = 128) -> list[KermaGroupNoise]:
@@ -231,7 +265,7 @@ def band_components(kermas, nnps_results, *, structure: bool | None = None) -> l
             continue
         vals, ses = [], []
         for n in nnps_results:
-            m2 = n.mean_signal ** 2
+            m2 = n.mean_signal**2
             v = 0.5 * (n.x_mm2[sel] + n.y_mm2[sel]) * m2
             s = 0.5 * np.sqrt(n.x_se_mm2[sel] ** 2 + n.y_se_mm2[sel] ** 2) * m2
             vals.append(float(v.mean()))
@@ -254,14 +288,18 @@ def describe_quantum_range(ql: dict, kmin: float, kmax: float) -> str:
         return ql.get("note") or "quantum-limited range not determined"
     lo_ci, hi_ci = ql.get("low_ci") or [np.nan, np.nan], ql.get("high_ci") or [np.nan, np.nan]
     if lo_ci[1] < kmin:
-        low_txt = (f"from below the lowest kerma measured ({kmin:g} µGy; electronic noise equals quantum noise at "
-                   f"{lo:.2g} µGy, 95 % CI up to {lo_ci[1]:.2g} µGy)")
+        low_txt = (
+            f"from below the lowest kerma measured ({kmin:g} µGy; electronic noise equals quantum noise at "
+            f"{lo:.2g} µGy, 95 % CI up to {lo_ci[1]:.2g} µGy)"
+        )
     else:
         low_txt = f"from {lo:.3g} µGy (95 % CI {lo_ci[0]:.3g}–{lo_ci[1]:.3g})"
     if not np.isfinite(hi) or hi_ci[0] > kmax:
-        hi_txt = (f"to above the highest kerma measured ({kmax:g} µGy"
-                  + (f"; structure noise would equal it at {hi:.3g} µGy)" if np.isfinite(hi) else
-                     "; no structure noise resolved)"))
+        hi_txt = f"to above the highest kerma measured ({kmax:g} µGy" + (
+            f"; structure noise would equal it at {hi:.3g} µGy)"
+            if np.isfinite(hi)
+            else "; no structure noise resolved)"
+        )
     else:
         hi_txt = f"to {hi:.3g} µGy (95 % CI {hi_ci[0]:.3g}–{hi_ci[1]:.3g})"
     return f"quantum noise dominates {low_txt} {hi_txt}"

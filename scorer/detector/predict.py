@@ -76,7 +76,7 @@ def disc_ft(frequency_per_mm, radius_mm: float, amplitude: float = 1.0):
     small = np.abs(f) < 1e-12
     fs = f[~small]
     out[~small] = amplitude * radius_mm * special.j1(2 * np.pi * radius_mm * fs) / fs
-    out[small] = amplitude * np.pi * radius_mm ** 2
+    out[small] = amplitude * np.pi * radius_mm**2
     return out
 
 
@@ -101,9 +101,16 @@ def _fold(g: np.ndarray, nyquist: float) -> np.ndarray:
     return np.mod(g + nyquist, 2 * nyquist) - nyquist
 
 
-def dprime_per_contrast(diameter_mm: float, mtf, nnps, pixel_pitch_mm: float, *, observer: str = "npw",
-                        viewing_distance_mm: float = DEFAULT_VIEWING_DISTANCE_MM,
-                        extent_nyquist: float = 3.0) -> float:
+def dprime_per_contrast(
+    diameter_mm: float,
+    mtf,
+    nnps,
+    pixel_pitch_mm: float,
+    *,
+    observer: str = "npw",
+    viewing_distance_mm: float = DEFAULT_VIEWING_DISTANCE_MM,
+    extent_nyquist: float = 3.0,
+) -> float:
     """d′ of a disc of unit contrast (see the module docstring for the integrals).
 
     Parameters
@@ -147,11 +154,19 @@ def dprime_per_contrast(diameter_mm: float, mtf, nnps, pixel_pitch_mm: float, *,
     return float(num / np.sqrt(den))
 
 
-def predict_thresholds(diameters_mm: Sequence[float], mtf, nnps, pixel_pitch_mm: float, *,
-                       observers: Sequence[str] = OBSERVERS, m_alternatives: int | Mapping[float, int] = 4,
-                       criterion_pc: float | None = None,
-                       measured_kerma_ugy: float | None = None, target_kerma_ugy: float | None = None,
-                       viewing_distance_mm: float = DEFAULT_VIEWING_DISTANCE_MM) -> list[PredictedThreshold]:
+def predict_thresholds(
+    diameters_mm: Sequence[float],
+    mtf,
+    nnps,
+    pixel_pitch_mm: float,
+    *,
+    observers: Sequence[str] = OBSERVERS,
+    m_alternatives: int | Mapping[float, int] = 4,
+    criterion_pc: float | None = None,
+    measured_kerma_ugy: float | None = None,
+    target_kerma_ugy: float | None = None,
+    viewing_distance_mm: float = DEFAULT_VIEWING_DISTANCE_MM,
+) -> list[PredictedThreshold]:
     """Predicted threshold contrast per diameter and observer.
 
     ``m_alternatives`` is one M for every diameter, or a mapping diameter (mm) → M when
@@ -161,6 +176,7 @@ def predict_thresholds(diameters_mm: Sequence[float], mtf, nnps, pixel_pitch_mm:
     and ``target_kerma_ugy``, the NNPS is scaled by measured/target — valid only
     where quantum noise dominates (no electronic-noise term).
     """
+
     def criterion(d: float) -> tuple[int, float, float]:
         if isinstance(m_alternatives, Mapping):
             m = next((int(v) for k, v in m_alternatives.items() if np.isclose(float(k), d)), 4)
@@ -180,12 +196,21 @@ def predict_thresholds(diameters_mm: Sequence[float], mtf, nnps, pixel_pitch_mm:
     for obs in observers:
         for d in diameters_mm:
             m, pc, d_t = criterion(float(d))
-            dp = dprime_per_contrast(float(d), mtf, nnps_f, pixel_pitch_mm, observer=obs,
-                                     viewing_distance_mm=viewing_distance_mm)
+            dp = dprime_per_contrast(
+                float(d), mtf, nnps_f, pixel_pitch_mm, observer=obs, viewing_distance_mm=viewing_distance_mm
+            )
             ct = d_t / dp if np.isfinite(dp) and dp > 0 else float("nan")
-            out.append(PredictedThreshold(diameter_mm=float(d), threshold_contrast=float(ct), observer=obs,
-                                          dprime_per_unit_contrast=dp, dprime_threshold=d_t,
-                                          criterion_pc=pc, m_alternatives=m))
+            out.append(
+                PredictedThreshold(
+                    diameter_mm=float(d),
+                    threshold_contrast=float(ct),
+                    observer=obs,
+                    dprime_per_unit_contrast=dp,
+                    dprime_threshold=d_t,
+                    criterion_pc=pc,
+                    m_alternatives=m,
+                )
+            )
     return out
 
 

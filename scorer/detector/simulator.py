@@ -87,20 +87,20 @@ class DetectorModel:
     """
 
     name: str
-    conversion: str                 # "direct" (a-Se) or "indirect" (CsI + a-Si:H)
-    detector_type: str              # DICOM Detector Type: DIRECT or SCINTILLATOR
+    conversion: str  # "direct" (a-Se) or "indirect" (CsI + a-Si:H)
+    detector_type: str  # DICOM Detector Type: DIRECT or SCINTILLATOR
     pixel_pitch_mm: float = 0.085
-    rows: int = 2816                # 239.4 mm
-    cols: int = 3520                # 299.2 mm
-    q_per_mm2_ugy: float = 5000.0   # photons per mm² per µGy, ~28 kV W/Rh mammography beam (from memory)
-    qde: float = 0.90               # quantum detection efficiency η
-    swank: float = 0.95             # Swank factor A_S
-    fill_factor: float = 1.0        # fraction of charge/light collected by the pixel
-    light_spread_mm: float = 0.0    # exponential LSF length L (0 = no spread)
-    adu_per_quantum: float = 2.4    # ADU per detected quantum at full collection
+    rows: int = 2816  # 239.4 mm
+    cols: int = 3520  # 299.2 mm
+    q_per_mm2_ugy: float = 5000.0  # photons per mm² per µGy, ~28 kV W/Rh mammography beam (from memory)
+    qde: float = 0.90  # quantum detection efficiency η
+    swank: float = 0.95  # Swank factor A_S
+    fill_factor: float = 1.0  # fraction of charge/light collected by the pixel
+    light_spread_mm: float = 0.0  # exponential LSF length L (0 = no spread)
+    adu_per_quantum: float = 2.4  # ADU per detected quantum at full collection
     electronic_noise_adu: float = 3.0
     gain_nonuniformity: float = 0.0  # relative SD of a fixed pixel-gain pattern (structure noise); 0 = off
-    pattern_seed: int = 0           # seed of that fixed pattern (the same for every image of the panel)
+    pattern_seed: int = 0  # seed of that fixed pattern (the same for every image of the panel)
     offset_adu: float = 60.0
     bits: int = 14
     kvp: float = 28.0
@@ -112,12 +112,13 @@ class DetectorModel:
     @property
     def gain_adu_per_ugy(self) -> float:
         """Mean pixel value per µGy above the offset (the conversion function's slope)."""
-        p2 = self.pixel_pitch_mm ** 2
+        p2 = self.pixel_pitch_mm**2
         return self.q_per_mm2_ugy * p2 * self.qde * self.adu_per_quantum * self.fill_factor
 
     def conversion_function(self) -> ConversionFunction:
-        return ConversionFunction("linear", self.offset_adu, self.gain_adu_per_ugy,
-                                  source=f"simulated panel {self.name}")
+        return ConversionFunction(
+            "linear", self.offset_adu, self.gain_adu_per_ugy, source=f"simulated panel {self.name}"
+        )
 
     def light_transfer(self, frequency_per_mm) -> np.ndarray:
         """Light-spread transfer function T_light(f) = 1 / (1 + (2πLf)²)."""
@@ -138,17 +139,33 @@ class DetectorModel:
 
 PRESETS: dict[str, DetectorModel] = {
     "direct": DetectorModel(
-        name="direct", conversion="direct", detector_type="DIRECT",
-        qde=0.90, swank=0.95, fill_factor=1.0, light_spread_mm=0.0,
-        adu_per_quantum=2.4, electronic_noise_adu=3.0,
-        detector_id="HSX-SE-0417", station_name="HARBOURSIDE-MAM2",
-        institution="Harbourside Women's Health Centre (invented)"),
+        name="direct",
+        conversion="direct",
+        detector_type="DIRECT",
+        qde=0.90,
+        swank=0.95,
+        fill_factor=1.0,
+        light_spread_mm=0.0,
+        adu_per_quantum=2.4,
+        electronic_noise_adu=3.0,
+        detector_id="HSX-SE-0417",
+        station_name="HARBOURSIDE-MAM2",
+        institution="Harbourside Women's Health Centre (invented)",
+    ),
     "indirect": DetectorModel(
-        name="indirect", conversion="indirect", detector_type="SCINTILLATOR",
-        qde=0.80, swank=0.85, fill_factor=0.65, light_spread_mm=0.035,
-        adu_per_quantum=3.2, electronic_noise_adu=4.0,
-        detector_id="HSX-CS-2291", station_name="HARBOURSIDE-MAM3",
-        institution="Harbourside Women's Health Centre (invented)"),
+        name="indirect",
+        conversion="indirect",
+        detector_type="SCINTILLATOR",
+        qde=0.80,
+        swank=0.85,
+        fill_factor=0.65,
+        light_spread_mm=0.035,
+        adu_per_quantum=3.2,
+        electronic_noise_adu=4.0,
+        detector_id="HSX-CS-2291",
+        station_name="HARBOURSIDE-MAM3",
+        institution="Harbourside Women's Health Centre (invented)",
+    ),
 }
 
 
@@ -157,8 +174,9 @@ def detector_model(name: str) -> DetectorModel:
     try:
         return PRESETS[name]
     except KeyError:
-        raise LimenError(f"unknown detector model {name!r}; choose one of {', '.join(PRESETS)} "
-                         "or give a model file") from None
+        raise LimenError(
+            f"unknown detector model {name!r}; choose one of {', '.join(PRESETS)} or give a model file"
+        ) from None
 
 
 def load_detector_model(path) -> DetectorModel:
@@ -197,7 +215,7 @@ def _validate_model(m: DetectorModel) -> None:
 
 @dataclass
 class SimulatedImage:
-    pixels: np.ndarray              # uint16 raw values
+    pixels: np.ndarray  # uint16 raw values
     spacing_mm: tuple[float, float]
     conversion: ConversionFunction
     model: DetectorModel
@@ -211,8 +229,9 @@ class SimulatedImage:
 
 
 # --------------------------------------------------------------------------- rendering
-def render_discs(transmission: np.ndarray, centers_rc, radii_px, contrasts, spread_px: float = 0.0,
-                 spread_supersample: int = 8) -> None:
+def render_discs(
+    transmission: np.ndarray, centers_rc, radii_px, contrasts, spread_px: float = 0.0, spread_supersample: int = 8
+) -> None:
     """Multiply ``transmission`` in place by 1 − C·coverage for each disc.
 
     With ``spread_px`` > 0 (the exponential LSF length L in pixels) the disc is first
@@ -236,17 +255,23 @@ def render_discs(transmission: np.ndarray, centers_rc, radii_px, contrasts, spre
         sub = (np.arange(n * S) + 0.5) / S - 0.5
         inside = ((r0 + sub[:, None] - rc[0]) ** 2 + (c0 + sub[None, :] - rc[1]) ** 2) <= rad * rad
         f = np.hypot(sfft.fftfreq(n * S, d=1.0 / S)[:, None], sfft.rfftfreq(n * S, d=1.0 / S)[None, :])
-        spread = sfft.irfft2(sfft.rfft2(inside.astype(np.float64)) / (1.0 + (2 * np.pi * spread_px * f) ** 2),
-                             s=inside.shape)
+        spread = sfft.irfft2(
+            sfft.rfft2(inside.astype(np.float64)) / (1.0 + (2 * np.pi * spread_px * f) ** 2), s=inside.shape
+        )
         cov = spread.reshape(n, S, n, S).mean(axis=(1, 3))
         rs0, cs0 = max(r0, 0), max(c0, 0)
         rs1, cs1 = min(r0 + n, transmission.shape[0]), min(c0 + n, transmission.shape[1])
         if rs0 < rs1 and cs0 < cs1:
-            transmission[rs0:rs1, cs0:cs1] *= 1.0 - c * cov[rs0 - r0:rs1 - r0, cs0 - c0:cs1 - c0]
+            transmission[rs0:rs1, cs0:cs1] *= 1.0 - c * cov[rs0 - r0 : rs1 - r0, cs0 - c0 : cs1 - c0]
 
 
-def render_edge(shape: tuple[int, int], angle_deg: float, edge_transmission: float = 0.02,
-                center_rc: tuple[float, float] | None = None, spread_px: float = 0.0) -> np.ndarray:
+def render_edge(
+    shape: tuple[int, int],
+    angle_deg: float,
+    edge_transmission: float = 0.02,
+    center_rc: tuple[float, float] | None = None,
+    spread_px: float = 0.0,
+) -> np.ndarray:
     """Transmission of a straight opaque-ish edge through ``center_rc``.
 
     ``angle_deg`` is the edge's angle from the column axis (vertical); 0–45° gives a
@@ -272,7 +297,7 @@ def render_edge(shape: tuple[int, int], angle_deg: float, edge_transmission: flo
     sub = (np.arange(s) + 0.5) / s - 0.5
     dr = np.repeat(sub, s)
     dc = np.tile(sub, s)
-    d_sub = (dist[ri, ci][:, None] + dc[None, :] * n_col + dr[None, :] * n_row)
+    d_sub = dist[ri, ci][:, None] + dc[None, :] * n_col + dr[None, :] * n_row
     if spread_px > 0:
         e = np.exp(-np.abs(d_sub) / spread_px)
         cov[ri, ci] = np.where(d_sub >= 0, 1.0 - 0.5 * e, 0.5 * e).mean(axis=1)
@@ -304,12 +329,11 @@ def gain_pattern(model: DetectorModel, shape: tuple[int, int]) -> np.ndarray:
     return 1.0 + model.gain_nonuniformity * rng.standard_normal(shape)
 
 
-def expose(transmission: np.ndarray, model: DetectorModel, dose_ugy: float,
-           rng: np.random.Generator) -> np.ndarray:
+def expose(transmission: np.ndarray, model: DetectorModel, dose_ugy: float, rng: np.random.Generator) -> np.ndarray:
     """Turn an object transmission map into a raw uint16 image (steps 1–4 of the module doc)."""
     if not dose_ugy > 0:
         raise LimenError(f"--dose-ugy must be positive, got {dose_ugy}")
-    p2 = model.pixel_pitch_mm ** 2
+    p2 = model.pixel_pitch_mm**2
     lam = transmission * (model.q_per_mm2_ugy * dose_ugy * p2 * model.qde)
     n = rng.poisson(lam)
     excess = 1.0 / model.swank - 1.0
@@ -330,7 +354,7 @@ def expose(transmission: np.ndarray, model: DetectorModel, dose_ugy: float,
             signal += model.electronic_noise_adu * rng.standard_normal(n.shape, dtype=f32)
     else:  # no spread: both Gaussian terms can be drawn as one
         signal = g * n.astype(np.float64)
-        sd = np.sqrt(g * g * excess * lam + model.electronic_noise_adu ** 2)
+        sd = np.sqrt(g * g * excess * lam + model.electronic_noise_adu**2)
         if np.any(sd > 0):
             signal += sd * rng.standard_normal(n.shape, dtype=f32)
         if model.gain_nonuniformity > 0:
@@ -338,7 +362,7 @@ def expose(transmission: np.ndarray, model: DetectorModel, dose_ugy: float,
             signal *= gain_pattern(model, n.shape)
     signal += model.offset_adu
     np.rint(signal, out=signal)
-    np.clip(signal, 0, 2 ** model.bits - 1, out=signal)
+    np.clip(signal, 0, 2**model.bits - 1, out=signal)
     return signal.astype(np.uint16)
 
 
@@ -350,7 +374,7 @@ class Pose:
     rotation_deg: float = 0.0
     flipped: bool = False
     magnification: float = 1.0
-    shift_mm: tuple[float, float] = (0.0, 0.0)   # phantom centre from field centre (x right, y down)
+    shift_mm: tuple[float, float] = (0.0, 0.0)  # phantom centre from field centre (x right, y down)
 
 
 def _phantom_field_shape(layout: Layout, pose: Pose, pixel_mm: float) -> tuple[int, int]:
@@ -365,32 +389,59 @@ def _phantom_field_shape(layout: Layout, pose: Pose, pixel_mm: float) -> tuple[i
 
 
 def phantom_transform(layout: Layout, pose: Pose, shape: tuple[int, int], pixel_mm: float) -> PhantomTransform:
-    center = ((shape[0] - 1) / 2.0 + pose.shift_mm[1] / pixel_mm,
-              (shape[1] - 1) / 2.0 + pose.shift_mm[0] / pixel_mm)
-    return PhantomTransform.from_params(rotation_deg=pose.rotation_deg, flipped=pose.flipped,
-                                        magnification=pose.magnification,
-                                        phantom_center_mm=layout.center_mm, center_px=center,
-                                        pixel_mm=pixel_mm)
+    center = ((shape[0] - 1) / 2.0 + pose.shift_mm[1] / pixel_mm, (shape[1] - 1) / 2.0 + pose.shift_mm[0] / pixel_mm)
+    return PhantomTransform.from_params(
+        rotation_deg=pose.rotation_deg,
+        flipped=pose.flipped,
+        magnification=pose.magnification,
+        phantom_center_mm=layout.center_mm,
+        center_px=center,
+        pixel_mm=pixel_mm,
+    )
 
 
-def phantom_transmission(layout: Layout, transform: PhantomTransform, shape: tuple[int, int],
-                         pixel_mm: float, magnification: float, spread_px: float = 0.0) -> np.ndarray:
+def phantom_transmission(
+    layout: Layout,
+    transform: PhantomTransform,
+    shape: tuple[int, int],
+    pixel_mm: float,
+    magnification: float,
+    spread_px: float = 0.0,
+) -> np.ndarray:
     """Transmission map of the plate — its discs (signal sites only) and markers — as the
     pixels see it (aperture-integrated, and spread first when ``spread_px`` > 0)."""
     trans = np.ones(shape, dtype=np.float64)
     scale = magnification / pixel_mm
     markers = layout.markers
-    render_discs(trans, transform.to_pixel([m.xy_mm for m in markers]),
-                 [m.diameter_mm / 2 * scale for m in markers], [m.contrast for m in markers], spread_px)
+    render_discs(
+        trans,
+        transform.to_pixel([m.xy_mm for m in markers]),
+        [m.diameter_mm / 2 * scale for m in markers],
+        [m.contrast for m in markers],
+        spread_px,
+    )
     sig = [t.signal_xy_mm for t in layout.targets]
-    render_discs(trans, transform.to_pixel(sig), [t.diameter_mm / 2 * scale for t in layout.targets],
-                 [t.contrast for t in layout.targets], spread_px)
+    render_discs(
+        trans,
+        transform.to_pixel(sig),
+        [t.diameter_mm / 2 * scale for t in layout.targets],
+        [t.contrast for t in layout.targets],
+        spread_px,
+    )
     return trans
 
 
-def simulate(model: DetectorModel, kind: str = "phantom", dose_ugy: float = 100.0, seed=0,
-             small: bool = False, layout: Layout | None = None, pose: Pose = Pose(),
-             edge_angle_deg: float = 2.5, shape: tuple[int, int] | None = None) -> SimulatedImage:
+def simulate(
+    model: DetectorModel,
+    kind: str = "phantom",
+    dose_ugy: float = 100.0,
+    seed=0,
+    small: bool = False,
+    layout: Layout | None = None,
+    pose: Pose = Pose(),
+    edge_angle_deg: float = 2.5,
+    shape: tuple[int, int] | None = None,
+) -> SimulatedImage:
     """Simulate one raw image.
 
     Parameters
@@ -422,9 +473,13 @@ def simulate(model: DetectorModel, kind: str = "phantom", dose_ugy: float = 100.
             shape = _phantom_field_shape(layout, pose, p) if small else (model.rows, model.cols)
         tf = phantom_transform(layout, pose, shape, p)
         trans = phantom_transmission(layout, tf, shape, p, pose.magnification, model.light_spread_mm / p)
-        truth.update(layout=layout.source_path, layout_name=layout.name,
-                     pose=asdict(pose), transform={"matrix": tf.matrix, "offset": tf.offset},
-                     fiducials_px={m.id: tf.to_pixel(m.xy_mm)[0].tolist() for m in layout.markers})
+        truth.update(
+            layout=layout.source_path,
+            layout_name=layout.name,
+            pose=asdict(pose),
+            transform={"matrix": tf.matrix, "offset": tf.offset},
+            fiducials_px={m.id: tf.to_pixel(m.xy_mm)[0].tolist() for m in layout.markers},
+        )
     elif kind == "flat":
         shape = shape or ((SMALL_FIELD_PX, SMALL_FIELD_PX) if small else (model.rows, model.cols))
         trans = np.ones(shape, dtype=np.float64)
@@ -459,20 +514,24 @@ def dicom_tags(model: DetectorModel, acquired: _dt.datetime, dose_ugy: float) ->
     }
 
 
-def write_simulated(sim: SimulatedImage, out_dir: Path, stem: str, acquired: _dt.datetime,
-                    fmt: str = "dicom") -> Path:
+def write_simulated(sim: SimulatedImage, out_dir: Path, stem: str, acquired: _dt.datetime, fmt: str = "dicom") -> Path:
     """Write the image (DICOM by default) and its JSON ground-truth sidecar."""
     from scorer.images.io import write_dicom, write_image
 
     out_dir = Path(out_dir)
     out_dir.mkdir(parents=True, exist_ok=True)
     if fmt == "dicom":
-        path = write_dicom(out_dir / f"{stem}.dcm", sim.pixels, sim.spacing_mm,
-                           dicom_tags(sim.model, acquired, sim.dose_ugy))
+        path = write_dicom(
+            out_dir / f"{stem}.dcm", sim.pixels, sim.spacing_mm, dicom_tags(sim.model, acquired, sim.dose_ugy)
+        )
     else:
         path = write_image(out_dir / f"{stem}.{fmt}", sim.pixels)
     side = dict(sim.truth)
-    side.update(image=path.name, acquired=acquired.isoformat(), spacing_mm=list(sim.spacing_mm),
-                sha256=hashlib.sha256(path.read_bytes()).hexdigest())
+    side.update(
+        image=path.name,
+        acquired=acquired.isoformat(),
+        spacing_mm=list(sim.spacing_mm),
+        sha256=hashlib.sha256(path.read_bytes()).hexdigest(),
+    )
     path.with_suffix(".json").write_text(json.dumps(side, indent=2, default=str) + "\n", encoding="utf-8")
     return path

@@ -5,8 +5,18 @@ from . import image as image
 from . import io as io
 
 from .image import Image as Image, ImageMetadata as ImageMetadata
-from .io import LimenWarning as LimenWarning, load_image as load_image, write_dicom as write_dicom, write_image as write_image, image_content_hash as image_content_hash
-from .conversion import ConversionFunction as ConversionFunction, load_conversion as load_conversion, save_conversion as save_conversion
+from .io import (
+    LimenWarning as LimenWarning,
+    load_image as load_image,
+    write_dicom as write_dicom,
+    write_image as write_image,
+    image_content_hash as image_content_hash,
+)
+from .conversion import (
+    ConversionFunction as ConversionFunction,
+    load_conversion as load_conversion,
+    save_conversion as save_conversion,
+)
 
 __all__ = [
     "conversion",

@@ -82,8 +82,12 @@ def load_conversion(path) -> ConversionFunction:
         if key not in data:
             raise LimenError(f"conversion function lacks '{key}'", path)
     try:
-        return ConversionFunction(kind=str(data["kind"]), offset=float(data["offset"]),
-                                  gain=float(data["gain"]), source=str(data.get("source", "")))
+        return ConversionFunction(
+            kind=str(data["kind"]),
+            offset=float(data["offset"]),
+            gain=float(data["gain"]),
+            source=str(data.get("source", "")),
+        )
     except (TypeError, ValueError) as exc:
         raise LimenError(f"bad conversion function: {exc}", path) from None
 

@@ -13,10 +13,10 @@ class ImageMetadata:
 
     source_path: str = ""
     content_sha256: str = ""
-    file_format: str = ""            # "dicom", "tiff", "png", "npy"
+    file_format: str = ""  # "dicom", "tiff", "png", "npy"
     modality: str | None = None
-    detector_type: str | None = None         # DICOM (0018,7004): DIRECT, SCINTILLATOR, ...
-    presentation_intent: str | None = None   # (0008,0068): FOR PROCESSING / FOR PRESENTATION
+    detector_type: str | None = None  # DICOM (0018,7004): DIRECT, SCINTILLATOR, ...
+    presentation_intent: str | None = None  # (0008,0068): FOR PROCESSING / FOR PRESENTATION
     kvp: float | None = None
     exposure_uas: float | None = None
     detector_id: str | None = None
@@ -26,9 +26,9 @@ class ImageMetadata:
     manufacturer: str | None = None
     magnification_factor: float | None = None  # (0018,1114) if present
     linearised: bool = False
-    conversion: dict | None = None           # the conversion function applied, if any
+    conversion: dict | None = None  # the conversion function applied, if any
     warnings: list[str] = field(default_factory=list)
-    spacing_source: str = ""               # where spacing_mm came from: tag name or "argument"
+    spacing_source: str = ""  # where spacing_mm came from: tag name or "argument"
 
     def to_dict(self) -> dict:
         return asdict(self)

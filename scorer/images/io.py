@@ -84,11 +84,19 @@ _FOR_PRESENTATION_WARNING = (
 )
 
 # Elements that write_dicom derives from the pixel array itself.
-_DERIVED_KEYWORDS = {"Rows", "Columns", "BitsAllocated", "SamplesPerPixel", "PixelData",
-                     "NumberOfFrames", "TransferSyntaxUID"}
+_DERIVED_KEYWORDS = {
+    "Rows",
+    "Columns",
+    "BitsAllocated",
+    "SamplesPerPixel",
+    "PixelData",
+    "NumberOfFrames",
+    "TransferSyntaxUID",
+}
 
 
 # --------------------------------------------------------------------------- hashing
+
 
 def image_content_hash(path) -> str:
     """SHA-256 (hex) of a file's bytes, as recorded in ``ImageMetadata.content_sha256``."""
@@ -105,9 +113,13 @@ def image_content_hash(path) -> str:
 
 # --------------------------------------------------------------------------- reading
 
-def load_image(path, pixel_spacing_mm: float | tuple[float, float] | None = None,
-               conversion: ConversionFunction | None = None,
-               min_shape: tuple[int, int] | None = None) -> Image:
+
+def load_image(
+    path,
+    pixel_spacing_mm: float | tuple[float, float] | None = None,
+    conversion: ConversionFunction | None = None,
+    min_shape: tuple[int, int] | None = None,
+) -> Image:
     """Read a detector image from a DICOM, TIFF, PNG or ``.npy`` file.
 
     Parameters
@@ -157,8 +169,7 @@ def load_image(path, pixel_spacing_mm: float | tuple[float, float] | None = None
     path = Path(path)
     data = _read_bytes(path)
     fmt = _sniff_format(data, path)
-    meta = ImageMetadata(source_path=str(path), content_sha256=hashlib.sha256(data).hexdigest(),
-                         file_format=fmt)
+    meta = ImageMetadata(source_path=str(path), content_sha256=hashlib.sha256(data).hexdigest(), file_format=fmt)
 
     if fmt == "dicom":
         pixels, file_spacing, spacing_source = _read_dicom(data, path, meta)
@@ -170,8 +181,10 @@ def load_image(path, pixel_spacing_mm: float | tuple[float, float] | None = None
     eight_bit = fmt != "dicom" and np.asarray(pixels).dtype.kind in "iub" and np.asarray(pixels).dtype.itemsize == 1
     pixels = _as_2d(pixels, path, fmt)
     if eight_bit:
-        meta.warnings.append("8-bit pixel data: 256 grey levels are too few for threshold contrasts of a few "
-                             "per cent (a detector's raw image has 12–16 bits); thresholds may be too high")
+        meta.warnings.append(
+            "8-bit pixel data: 256 grey levels are too few for threshold contrasts of a few "
+            "per cent (a detector's raw image has 12–16 bits); thresholds may be too high"
+        )
         warnings.warn(f"{path}: {meta.warnings[-1]}", LimenWarning, stacklevel=2)
 
     if pixel_spacing_mm is not None:
@@ -179,29 +192,41 @@ def load_image(path, pixel_spacing_mm: float | tuple[float, float] | None = None
         if file_spacing is not None and not np.allclose(spacing, file_spacing, rtol=1e-9, atol=0):
             meta.warnings.append(
                 f"pixel spacing {_fmt_spacing(spacing)} mm given overrides "
-                f"{_fmt_spacing(file_spacing)} mm from {spacing_source}")
+                f"{_fmt_spacing(file_spacing)} mm from {spacing_source}"
+            )
         spacing_source = "argument"
     elif file_spacing is not None:
         spacing = file_spacing
     elif fmt == "dicom":
-        raise LimenError("no pixel spacing: the DICOM file has neither Imager Pixel Spacing (0018,1164) "
-                         "nor Pixel Spacing (0028,0030); give it in mm with --pixel-spacing", path)
+        raise LimenError(
+            "no pixel spacing: the DICOM file has neither Imager Pixel Spacing (0018,1164) "
+            "nor Pixel Spacing (0028,0030); give it in mm with --pixel-spacing",
+            path,
+        )
     else:
-        raise LimenError(f"no pixel spacing: a {fmt.upper()} file does not carry a reliable pixel "
-                         f"spacing; give it in mm with --pixel-spacing", path)
+        raise LimenError(
+            f"no pixel spacing: a {fmt.upper()} file does not carry a reliable pixel "
+            f"spacing; give it in mm with --pixel-spacing",
+            path,
+        )
     meta.spacing_source = spacing_source
 
     if min_shape is not None:
         need_r, need_c = (int(v) for v in min_shape)
         if pixels.shape[0] < need_r or pixels.shape[1] < need_c:
-            raise LimenError(f"image is {pixels.shape[0]}×{pixels.shape[1]} pixels, smaller than the "
-                             f"{need_r}×{need_c} pixels needed", path)
+            raise LimenError(
+                f"image is {pixels.shape[0]}×{pixels.shape[1]} pixels, smaller than the "
+                f"{need_r}×{need_c} pixels needed",
+                path,
+            )
 
     bad = ~np.isfinite(pixels)
     if bad.any():
         n_nan = int(np.isnan(pixels).sum())
-        raise LimenError(f"image has {int(bad.sum())} non-finite pixel value(s) "
-                         f"({n_nan} NaN, {int(bad.sum()) - n_nan} infinite)", path)
+        raise LimenError(
+            f"image has {int(bad.sum())} non-finite pixel value(s) ({n_nan} NaN, {int(bad.sum()) - n_nan} infinite)",
+            path,
+        )
 
     if conversion is not None:
         pixels = _linearise(pixels, conversion, path)
@@ -210,8 +235,7 @@ def load_image(path, pixel_spacing_mm: float | tuple[float, float] | None = None
 
     if meta.presentation_intent == "FOR PRESENTATION":
         warnings.warn(f"{path}: {_FOR_PRESENTATION_WARNING}", LimenWarning, stacklevel=2)
-    return Image(pixels=np.ascontiguousarray(pixels, dtype=np.float64),
-                 spacing_mm=spacing, metadata=meta)
+    return Image(pixels=np.ascontiguousarray(pixels, dtype=np.float64), spacing_mm=spacing, metadata=meta)
 
 
 def _declared_shape(data: bytes, fmt: str) -> tuple[int, ...] | None:
@@ -241,9 +265,12 @@ def _check_declared_size(shape, path: Path) -> None:
     if not shape:
         return
     n = float(np.prod([float(v) for v in shape]))
-    check_limit("LIMEN_MAX_IMAGE_MEGAPIXELS", n / 1e6,
-                f"image declares {'×'.join(str(int(v)) for v in shape)} pixels ({n / 1e6:.4g} megapixels), which",
-                path)
+    check_limit(
+        "LIMEN_MAX_IMAGE_MEGAPIXELS",
+        n / 1e6,
+        f"image declares {'×'.join(str(int(v)) for v in shape)} pixels ({n / 1e6:.4g} megapixels), which",
+        path,
+    )
 
 
 def _read_bytes(path: Path) -> bytes:
@@ -277,8 +304,11 @@ def _sniff_format(data: bytes, path: Path) -> str:
         if suffix in suffixes:
             raise LimenError(f"not a {name} file (its first bytes are not a {name} header)", path)
     shown = f"extension '{path.suffix}'" if path.suffix else "no extension"
-    raise LimenError(f"not a recognised image file ({shown}, no DICOM, TIFF, PNG or NumPy header); "
-                     "Limen reads DICOM, 16-bit TIFF, PNG and .npy", path)
+    raise LimenError(
+        f"not a recognised image file ({shown}, no DICOM, TIFF, PNG or NumPy header); "
+        "Limen reads DICOM, 16-bit TIFF, PNG and .npy",
+        path,
+    )
 
 
 def _as_2d(arr: np.ndarray, path: Path, fmt: str) -> np.ndarray:
@@ -289,11 +319,17 @@ def _as_2d(arr: np.ndarray, path: Path, fmt: str) -> np.ndarray:
     while arr.ndim > 2 and arr.shape[0] == 1:
         arr = arr[0]  # a (1, rows, cols) single frame
     if arr.ndim == 3 and arr.shape[-1] in (2, 3, 4) and fmt in ("png", "tiff"):
-        raise LimenError(f"colour image with {arr.shape[-1]} channels (shape {_fmt_shape(arr.shape)}); "
-                         "Limen needs a single grey channel", path)
+        raise LimenError(
+            f"colour image with {arr.shape[-1]} channels (shape {_fmt_shape(arr.shape)}); "
+            "Limen needs a single grey channel",
+            path,
+        )
     if arr.ndim != 2:
-        raise LimenError(f"{arr.ndim}-D data (shape {_fmt_shape(arr.shape)}); Limen needs one 2-D "
-                         "grey image (no colour, no stack of frames)", path)
+        raise LimenError(
+            f"{arr.ndim}-D data (shape {_fmt_shape(arr.shape)}); Limen needs one 2-D "
+            "grey image (no colour, no stack of frames)",
+            path,
+        )
     if arr.size == 0:
         raise LimenError(f"image has no pixels (shape {_fmt_shape(arr.shape)})", path)
     return arr.astype(np.float64, copy=False)
@@ -307,8 +343,11 @@ def _read_tiff(data: bytes, path: Path) -> np.ndarray:
             n_pages = len(tif.pages)
             if n_pages > 1:
                 page = tif.pages[0]
-                raise LimenError(f"multi-page TIFF ({n_pages} pages of shape {_fmt_shape(page.shape)}); "
-                                 "Limen needs one 2-D grey image", path)
+                raise LimenError(
+                    f"multi-page TIFF ({n_pages} pages of shape {_fmt_shape(page.shape)}); "
+                    "Limen needs one 2-D grey image",
+                    path,
+                )
             return tif.asarray()
     except LimenError:
         raise
@@ -380,26 +419,40 @@ def _read_dicom(data: bytes, path: Path, meta: ImageMetadata):
     rows, cols = _int_or_none(ds.get("Rows")), _int_or_none(ds.get("Columns"))
     modality = (meta.modality or "").upper()
     if modality and modality not in _PROJECTION_MODALITIES:
-        raise LimenError(f"Modality (0008,0060) is {modality}, not a projection X-ray image; Limen scores "
-                         f"detector images ({', '.join(sorted(m for m in _PROJECTION_MODALITIES if m))})", path)
+        raise LimenError(
+            f"Modality (0008,0060) is {modality}, not a projection X-ray image; Limen scores "
+            f"detector images ({', '.join(sorted(m for m in _PROJECTION_MODALITIES if m))})",
+            path,
+        )
     photometric = str(ds.get("PhotometricInterpretation", "MONOCHROME2")).strip().upper()
     if samples == 1 and photometric not in ("MONOCHROME1", "MONOCHROME2", ""):
-        raise LimenError(f"Photometric Interpretation (0028,0004) is {photometric}, not a grey (MONOCHROME) "
-                         "image; Limen needs a single grey channel", path)
+        raise LimenError(
+            f"Photometric Interpretation (0028,0004) is {photometric}, not a grey (MONOCHROME) "
+            "image; Limen needs a single grey channel",
+            path,
+        )
     if samples > 1:
-        raise LimenError(f"colour DICOM image ({samples} samples per pixel, Photometric Interpretation "
-                         f"{ds.get('PhotometricInterpretation', '?')}, shape {rows}×{cols}×{samples}); "
-                         "Limen needs a single grey channel", path)
+        raise LimenError(
+            f"colour DICOM image ({samples} samples per pixel, Photometric Interpretation "
+            f"{ds.get('PhotometricInterpretation', '?')}, shape {rows}×{cols}×{samples}); "
+            "Limen needs a single grey channel",
+            path,
+        )
     if frames > 1:
-        raise LimenError(f"multi-frame DICOM image ({frames} frames of {rows}×{cols}, shape "
-                         f"{frames}×{rows}×{cols}); Limen needs one 2-D image", path)
+        raise LimenError(
+            f"multi-frame DICOM image ({frames} frames of {rows}×{cols}, shape "
+            f"{frames}×{rows}×{cols}); Limen needs one 2-D image",
+            path,
+        )
 
     _check_declared_size(tuple(v for v in (frames, rows, cols, samples) if v) if rows and cols else None, path)
     _check_decoder(ds, path)
     bits = _int_or_none(ds.get("BitsStored"))
     if bits is not None and bits <= 8:
-        meta.warnings.append(f"{bits}-bit pixel data (Bits Stored): too few grey levels for threshold contrasts "
-                             "of a few per cent (a detector's raw image has 12–16 bits); thresholds may be too high")
+        meta.warnings.append(
+            f"{bits}-bit pixel data (Bits Stored): too few grey levels for threshold contrasts "
+            "of a few per cent (a detector's raw image has 12–16 bits); thresholds may be too high"
+        )
         warnings.warn(f"{path}: {meta.warnings[-1]}", LimenWarning, stacklevel=2)
     try:
         with warnings.catch_warnings():
@@ -407,8 +460,9 @@ def _read_dicom(data: bytes, path: Path, meta: ImageMetadata):
             arr = ds.pixel_array
     except (NotImplementedError, RuntimeError) as exc:
         ts = _transfer_syntax(ds)
-        raise LimenError(f"cannot decode pixel data in transfer syntax {_ts_text(ts)}: no usable decoder "
-                         f"({_exc_text(exc)})", path) from None
+        raise LimenError(
+            f"cannot decode pixel data in transfer syntax {_ts_text(ts)}: no usable decoder ({_exc_text(exc)})", path
+        ) from None
     except Exception as exc:  # short or damaged pixel data
         raise LimenError(f"truncated or damaged DICOM pixel data ({_exc_text(exc)})", path) from None
 
@@ -468,12 +522,16 @@ def _check_decoder(ds, path: Path) -> None:
     try:
         decoder = get_decoder(ts)
     except NotImplementedError:
-        raise LimenError(f"pixel data use the transfer syntax {_ts_text(ts)}, for which pydicom has "
-                         "no decoder", path) from None
+        raise LimenError(
+            f"pixel data use the transfer syntax {_ts_text(ts)}, for which pydicom has no decoder", path
+        ) from None
     if not decoder.is_available:
         missing = "; ".join(decoder.missing_dependencies) or "a decoding plugin"
-        raise LimenError(f"pixel data use the compressed transfer syntax {_ts_text(ts)}, and no decoder "
-                         f"for it is installed (install one of: {missing})", path)
+        raise LimenError(
+            f"pixel data use the compressed transfer syntax {_ts_text(ts)}, and no decoder "
+            f"for it is installed (install one of: {missing})",
+            path,
+        )
 
 
 def _apply_rescale(ds, arr: np.ndarray, path: Path) -> np.ndarray:
@@ -485,8 +543,9 @@ def _apply_rescale(ds, arr: np.ndarray, path: Path) -> np.ndarray:
         slope = 1.0 if slope is None else slope
         intercept = 0.0 if intercept is None else intercept
         if not np.isfinite(slope) or slope == 0 or not np.isfinite(intercept):
-            raise LimenError(f"unusable Rescale Slope (0028,1053) {slope} / Rescale Intercept (0028,1052) "
-                             f"{intercept}", path)
+            raise LimenError(
+                f"unusable Rescale Slope (0028,1053) {slope} / Rescale Intercept (0028,1052) {intercept}", path
+            )
         return pixels * slope + intercept
     if "ModalityLUTSequence" in ds:
         from pydicom.pixels import apply_modality_lut
@@ -494,8 +553,7 @@ def _apply_rescale(ds, arr: np.ndarray, path: Path) -> np.ndarray:
         try:
             return np.asarray(apply_modality_lut(arr, ds), dtype=np.float64)
         except Exception as exc:
-            raise LimenError(f"cannot apply the Modality LUT Sequence (0028,3000) ({_exc_text(exc)})",
-                             path) from None
+            raise LimenError(f"cannot apply the Modality LUT Sequence (0028,3000) ({_exc_text(exc)})", path) from None
     return pixels
 
 
@@ -503,8 +561,10 @@ def _dicom_spacing(ds, path: Path, meta: ImageMetadata):
     """Imager Pixel Spacing (0018,1164) at the detector plane, else Pixel Spacing (0028,0030)."""
     from pydicom.multival import MultiValue
 
-    for keyword, label in (("ImagerPixelSpacing", "Imager Pixel Spacing (0018,1164)"),
-                           ("PixelSpacing", "Pixel Spacing (0028,0030)")):
+    for keyword, label in (
+        ("ImagerPixelSpacing", "Imager Pixel Spacing (0018,1164)"),
+        ("PixelSpacing", "Pixel Spacing (0028,0030)"),
+    ):
         value = ds.get(keyword)
         if value is None or value == "" or (hasattr(value, "__len__") and len(value) == 0):
             continue
@@ -518,33 +578,35 @@ def _dicom_spacing(ds, path: Path, meta: ImageMetadata):
             raise LimenError(f"{label} has {len(values)} values, expected 2 (row, column)", path)
         spacing = _check_spacing(tuple(values), path, label)
         if keyword == "PixelSpacing":
-            meta.warnings.append("no Imager Pixel Spacing (0018,1164); spacing taken from Pixel Spacing "
-                                 "(0028,0030), which may be calibrated to the object rather than the "
-                                 "detector plane")
+            meta.warnings.append(
+                "no Imager Pixel Spacing (0018,1164); spacing taken from Pixel Spacing "
+                "(0028,0030), which may be calibrated to the object rather than the "
+                "detector plane"
+            )
         return spacing, label
     return None, ""
 
 
 def fill_dicom_metadata(ds, meta: ImageMetadata) -> None:
-    meta.modality = _text(ds, "Modality")                        # (0008,0060)
-    meta.detector_type = _text(ds, "DetectorType")               # (0018,7004)
-    intent = _text(ds, "PresentationIntentType")                 # (0008,0068)
+    meta.modality = _text(ds, "Modality")  # (0008,0060)
+    meta.detector_type = _text(ds, "DetectorType")  # (0018,7004)
+    intent = _text(ds, "PresentationIntentType")  # (0008,0068)
     meta.presentation_intent = intent.upper() if intent else None
-    meta.kvp = _float_or_none(ds.get("KVP"))                     # (0018,0060)
-    uas = _float_or_none(ds.get("ExposureInuAs"))                # (0018,1153)
+    meta.kvp = _float_or_none(ds.get("KVP"))  # (0018,0060)
+    uas = _float_or_none(ds.get("ExposureInuAs"))  # (0018,1153)
     if uas is None:
-        mas = _float_or_none(ds.get("ExposureInmAs"))            # (0018,9332)
+        mas = _float_or_none(ds.get("ExposureInmAs"))  # (0018,9332)
         if mas is None:
-            mas = _float_or_none(ds.get("Exposure"))             # (0018,1152), mAs
+            mas = _float_or_none(ds.get("Exposure"))  # (0018,1152), mAs
         uas = None if mas is None else mas * 1000.0
     meta.exposure_uas = uas
-    meta.detector_id = _text(ds, "DetectorID")                   # (0018,700A)
-    meta.device_serial = _text(ds, "DeviceSerialNumber")         # (0018,1000)
-    meta.station_name = _text(ds, "StationName")                 # (0008,1010)
-    meta.manufacturer = _text(ds, "Manufacturer")                # (0008,0070)
+    meta.detector_id = _text(ds, "DetectorID")  # (0018,700A)
+    meta.device_serial = _text(ds, "DeviceSerialNumber")  # (0018,1000)
+    meta.station_name = _text(ds, "StationName")  # (0008,1010)
+    meta.manufacturer = _text(ds, "Manufacturer")  # (0008,0070)
     meta.magnification_factor = _float_or_none(ds.get("EstimatedRadiographicMagnificationFactor"))  # (0018,1114)
 
-    dt = _text(ds, "AcquisitionDateTime")                        # (0008,002A)
+    dt = _text(ds, "AcquisitionDateTime")  # (0008,002A)
     iso = None
     if dt:
         iso = dicom_datetime_to_iso(dt)
@@ -555,8 +617,9 @@ def fill_dicom_metadata(ds, meta: ImageMetadata) -> None:
         if date:
             iso = dicom_datetime_to_iso(date + (_normalise_tm(time) if time else ""))
             if iso is None:
-                meta.warnings.append(f"Acquisition Date/Time (0008,0022)/(0008,0032) {date!r}/{time!r} "
-                                     "are not valid DICOM DA/TM values")
+                meta.warnings.append(
+                    f"Acquisition Date/Time (0008,0022)/(0008,0032) {date!r}/{time!r} are not valid DICOM DA/TM values"
+                )
     meta.acquisition_datetime = iso
 
     if meta.presentation_intent == "FOR PRESENTATION":
@@ -611,6 +674,7 @@ def dicom_datetime_to_iso(value: str) -> str | None:
 
 # ---- small helpers
 
+
 def _text(ds, keyword: str) -> str | None:
     value = ds.get(keyword)
     if value is None:
@@ -662,7 +726,9 @@ def _linearise(pixels: np.ndarray, conversion: ConversionFunction, path: Path) -
             f"{conversion.kind} conversion function (offset {conversion.offset:g}, gain {conversion.gain:g}) "
             f"gives non-finite air kerma for {int(bad.sum())} pixel(s) (pixel values "
             f"{float(pixels[bad].min()):g} to {float(pixels[bad].max()):g}); check that it belongs to this "
-            "detector", path)
+            "detector",
+            path,
+        )
     return kerma
 
 
@@ -683,8 +749,14 @@ def _exc_text(exc: BaseException) -> str:
 
 # --------------------------------------------------------------------------- writing
 
-def write_dicom(path, pixels: np.ndarray, spacing_mm: tuple[float, float], tags: dict | None = None,
-                transfer_syntax: str = "explicit-little") -> Path:
+
+def write_dicom(
+    path,
+    pixels: np.ndarray,
+    spacing_mm: tuple[float, float],
+    tags: dict | None = None,
+    transfer_syntax: str = "explicit-little",
+) -> Path:
     """Write a 2-D uint16 image as a DICOM Part 10 file.
 
     Parameters
@@ -736,8 +808,9 @@ def write_dicom(path, pixels: np.ndarray, spacing_mm: tuple[float, float], tags:
     path = Path(path)
     tags = dict(tags or {})
     if transfer_syntax not in TRANSFER_SYNTAXES:
-        raise LimenError(f"unknown transfer syntax {transfer_syntax!r}; choose one of "
-                         f"{', '.join(TRANSFER_SYNTAXES)}", path)
+        raise LimenError(
+            f"unknown transfer syntax {transfer_syntax!r}; choose one of {', '.join(TRANSFER_SYNTAXES)}", path
+        )
     ts_uid = UID(TRANSFER_SYNTAXES[transfer_syntax])
     arr = _check_uint16(pixels, path)
     spacing = _check_spacing(spacing_mm, path, "pixel spacing")
@@ -752,8 +825,11 @@ def write_dicom(path, pixels: np.ndarray, spacing_mm: tuple[float, float], tags:
     if not 1 <= bits_stored <= 16:
         raise LimenError(f"BitsStored must be 1 … 16, got {bits_stored}", path)
     if arr.size and int(arr.max()) > (1 << bits_stored) - 1:
-        raise LimenError(f"pixel values up to {int(arr.max())} do not fit in BitsStored = {bits_stored} "
-                         f"(maximum {(1 << bits_stored) - 1})", path)
+        raise LimenError(
+            f"pixel values up to {int(arr.max())} do not fit in BitsStored = {bits_stored} "
+            f"(maximum {(1 << bits_stored) - 1})",
+            path,
+        )
 
     modality = str(tags.get("Modality") or "DX").upper()
     sop_class = UID(SOP_CLASS_MG_FOR_PROCESSING if modality == "MG" else SOP_CLASS_DX_FOR_PROCESSING)
@@ -834,8 +910,7 @@ def write_dicom(path, pixels: np.ndarray, spacing_mm: tuple[float, float], tags:
         encoder = get_encoder(ts_uid)
         if not encoder.is_available:
             missing = "; ".join(encoder.missing_dependencies) or "an encoding plugin"
-            raise LimenError(f"cannot write {ts_uid.name}: no encoder installed (pydicom needs {missing})",
-                             path)
+            raise LimenError(f"cannot write {ts_uid.name}: no encoder installed (pydicom needs {missing})", path)
         try:
             ds.compress(ts_uid, arr, generate_instance_uid=False)
         except Exception as exc:
@@ -862,8 +937,13 @@ def _check_uint16(pixels, path: Path) -> np.ndarray:
     return arr.astype(np.uint16)
 
 
-def write_image(path, pixels: np.ndarray, spacing_mm: tuple[float, float] | float | None = None,
-                tags: dict | None = None, transfer_syntax: str = "explicit-little") -> Path:
+def write_image(
+    path,
+    pixels: np.ndarray,
+    spacing_mm: tuple[float, float] | float | None = None,
+    tags: dict | None = None,
+    transfer_syntax: str = "explicit-little",
+) -> Path:
     """Write a 2-D image as TIFF, PNG, ``.npy`` or DICOM, chosen by the extension.
 
     Parameters
@@ -891,8 +971,7 @@ def write_image(path, pixels: np.ndarray, spacing_mm: tuple[float, float] | floa
     if suffix in _NPY_SUFFIXES:
         arr = np.asarray(pixels)
         if arr.ndim != 2 or arr.dtype.kind not in "biuf":
-            raise LimenError(f"pixels must be a real 2-D array, got {arr.dtype} of shape "
-                             f"{_fmt_shape(arr.shape)}", path)
+            raise LimenError(f"pixels must be a real 2-D array, got {arr.dtype} of shape {_fmt_shape(arr.shape)}", path)
         out = _write_bytes(path, lambda fh: np.save(fh, arr, allow_pickle=False))
         return out
     if suffix in _TIFF_SUFFIXES:

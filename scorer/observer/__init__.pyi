@@ -8,12 +8,32 @@ from . import psychometric as psychometric
 from . import scoring as scoring
 from . import threshold as threshold
 
-from .npw import ObserverConfig as ObserverConfig, SystemBlur as SystemBlur, score_image as score_image, decide as decide, estimate_blur as estimate_blur
+from .npw import (
+    ObserverConfig as ObserverConfig,
+    SystemBlur as SystemBlur,
+    score_image as score_image,
+    decide as decide,
+    estimate_blur as estimate_blur,
+)
 from .eye import eye_filter as eye_filter
 from .mafc import pc_mafc as pc_mafc, dprime_for_pc as dprime_for_pc, halfway_criterion as halfway_criterion
 from .psychometric import fit_psychometric as fit_psychometric, PsychometricFit as PsychometricFit
-from .threshold import ThresholdCurve as ThresholdCurve, ThresholdPoint as ThresholdPoint, dprime_thresholds as dprime_thresholds, count_thresholds as count_thresholds, smooth_curve as smooth_curve
-from .limits import HumanFactor as HumanFactor, Limits as Limits, Verdict as Verdict, load_limits as load_limits, evaluate as evaluate, overall as overall, EXAMPLE_LIMITS as EXAMPLE_LIMITS
+from .threshold import (
+    ThresholdCurve as ThresholdCurve,
+    ThresholdPoint as ThresholdPoint,
+    dprime_thresholds as dprime_thresholds,
+    count_thresholds as count_thresholds,
+    smooth_curve as smooth_curve,
+)
+from .limits import (
+    HumanFactor as HumanFactor,
+    Limits as Limits,
+    Verdict as Verdict,
+    load_limits as load_limits,
+    evaluate as evaluate,
+    overall as overall,
+    EXAMPLE_LIMITS as EXAMPLE_LIMITS,
+)
 from .scoring import ScoreResult as ScoreResult, score_images as score_images
 
 __all__ = [

@@ -26,11 +26,15 @@ def cycles_per_degree(frequency_per_mm, viewing_distance_mm: float = DEFAULT_VIE
     return np.asarray(frequency_per_mm, dtype=float) * viewing_distance_mm * np.pi / 180.0
 
 
-def eye_filter(frequency_per_mm, viewing_distance_mm: float = DEFAULT_VIEWING_DISTANCE_MM,
-               n: float = EYE_EXPONENT_N, c_deg2: float = EYE_COEFF_C_DEG2):
+def eye_filter(
+    frequency_per_mm,
+    viewing_distance_mm: float = DEFAULT_VIEWING_DISTANCE_MM,
+    n: float = EYE_EXPONENT_N,
+    c_deg2: float = EYE_COEFF_C_DEG2,
+):
     """Eye filter E(f) for radial frequency ``frequency_per_mm`` (array), peak-normalised to 1."""
     rho = np.abs(cycles_per_degree(frequency_per_mm, viewing_distance_mm))
-    e = rho ** n * np.exp(-c_deg2 * rho ** 2)
+    e = rho**n * np.exp(-c_deg2 * rho**2)
     rho_peak = np.sqrt(n / (2.0 * c_deg2))
-    e_peak = rho_peak ** n * np.exp(-c_deg2 * rho_peak ** 2)
+    e_peak = rho_peak**n * np.exp(-c_deg2 * rho_peak**2)
     return e / e_peak

@@ -71,8 +71,9 @@ class Limits:
 
     def is_interpolated(self, diameter_mm: float) -> bool:
         """True where a limit exists only by interpolation between the file's diameters."""
-        return (self.acceptable_at(diameter_mm) is not None
-                and not any(np.isclose(d, diameter_mm, rtol=1e-6) for d in self.diameters_mm))
+        return self.acceptable_at(diameter_mm) is not None and not any(
+            np.isclose(d, diameter_mm, rtol=1e-6) for d in self.diameters_mm
+        )
 
     def acceptable_at(self, diameter_mm: float) -> float | None:
         return self._interp(self.acceptable, diameter_mm)
@@ -90,11 +91,14 @@ def load_limits(path) -> Limits:
     if extra:
         raise LimenError(f"unknown key {extra[0]!r} in limits file", path)
     if data.get("format") != FORMAT:
-        raise LimenError(f"expected format = \"{FORMAT}\", got {data.get('format')!r}", path)
+        raise LimenError(f'expected format = "{FORMAT}", got {data.get("format")!r}', path)
     observer = str(data.get("observer", "")).lower()
     if observer not in OBSERVERS:
-        raise LimenError(f"'observer' must be one of {', '.join(OBSERVERS)} (whose thresholds the limits are for), "
-                         f"got {data.get('observer')!r}", path)
+        raise LimenError(
+            f"'observer' must be one of {', '.join(OBSERVERS)} (whose thresholds the limits are for), "
+            f"got {data.get('observer')!r}",
+            path,
+        )
     if not str(data.get("source", "")).strip():
         raise LimenError("'source' is required: say where the limit values come from", path)
     rows = data.get("limits")
@@ -127,27 +131,34 @@ def load_limits(path) -> Limits:
     order = np.argsort(ds)
     if len(set(ds)) != len(ds):
         raise LimenError("two limits entries share a diameter", path)
-    return Limits(str(data.get("name", path.stem)), observer, str(data["source"]),
-                  tuple(ds[i] for i in order), tuple(acc[i] for i in order), tuple(ach[i] for i in order),
-                  str(data.get("condition", "")), str(path))
+    return Limits(
+        str(data.get("name", path.stem)),
+        observer,
+        str(data["source"]),
+        tuple(ds[i] for i in order),
+        tuple(acc[i] for i in order),
+        tuple(ach[i] for i in order),
+        str(data.get("condition", "")),
+        str(path),
+    )
 
 
 @dataclass
 class Verdict:
     diameter_mm: float
-    threshold_contrast: float        # as compared (× human factor where applied)
+    threshold_contrast: float  # as compared (× human factor where applied)
     ci_low: float
     ci_high: float
     acceptable: float | None
     achievable: float | None
-    verdict: str                     # pass | fail | indeterminate | no limit | no threshold
+    verdict: str  # pass | fail | indeterminate | no limit | no threshold
     achievable_met: bool | None
     method: str
     observer: str
     human_factor: float | None
     note: str = ""
-    limit_interpolated: bool = False # the limit at this diameter is interpolated between the file's diameters
-    censored: str = ""               # the threshold is only known to lie above/below a contrast offered
+    limit_interpolated: bool = False  # the limit at this diameter is interpolated between the file's diameters
+    censored: str = ""  # the threshold is only known to lie above/below a contrast offered
     human_factor_ci: tuple[float, float] | None = None
 
     def to_dict(self) -> dict:
@@ -165,8 +176,12 @@ class HumanFactor:
 
     @property
     def has_ci(self) -> bool:
-        return (self.ci_low is not None and self.ci_high is not None and 0 < self.ci_low <= self.value <= self.ci_high
-                and np.isfinite(self.ci_high))
+        return (
+            self.ci_low is not None
+            and self.ci_high is not None
+            and 0 < self.ci_low <= self.value <= self.ci_high
+            and np.isfinite(self.ci_high)
+        )
 
 
 def human_equivalent(t: float, lo: float, hi: float, factor: HumanFactor) -> tuple[float, float, float]:
@@ -199,13 +214,16 @@ def evaluate(curve, limits: Limits, human_factor: float | None = None) -> list[V
         if human_factor is None:
             raise LimenError(
                 f"{limits.path or 'limits'}: these limits are for human readers and the thresholds come from the "
-                f"{obs.upper()} model observer; give a human/model factor (--human-factor) to compare them")
+                f"{obs.upper()} model observer; give a human/model factor (--human-factor) to compare them"
+            )
         factor = human_factor if isinstance(human_factor, HumanFactor) else HumanFactor(float(human_factor))
         if not factor.value > 0:
             raise LimenError(f"--human-factor must be positive, got {factor.value}", "--human-factor")
     elif limits.observer != obs and not (limits.observer == "human" and obs == "human"):
-        raise LimenError(f"{limits.path or 'limits'}: these limits are for the {limits.observer} observer, "
-                         f"the thresholds come from {obs}")
+        raise LimenError(
+            f"{limits.path or 'limits'}: these limits are for the {limits.observer} observer, "
+            f"the thresholds come from {obs}"
+        )
     out = []
     for p in curve.points:
         if factor is not None:
@@ -219,22 +237,41 @@ def evaluate(curve, limits: Limits, human_factor: float | None = None) -> list[V
             v = "no limit"
         elif not np.isfinite(t):
             v = "no threshold"
-        elif not (np.isnan(lo) or np.isnan(hi)):   # a one-sided (censored) interval has an infinite end
+        elif not (np.isnan(lo) or np.isnan(hi)):  # a one-sided (censored) interval has an infinite end
             v = "pass" if hi < acc else "fail" if lo > acc else "indeterminate"
         else:
             v = "pass" if t < acc else "fail"
             note = "no confidence interval: verdict from the estimate alone"
         if censored:
-            note = (note + "; " if note else "") + f"threshold {'above' if censored == 'above' else 'below'} the " \
-                f"contrasts offered"
+            note = (
+                note + "; " if note else ""
+            ) + f"threshold {'above' if censored == 'above' else 'below'} the contrasts offered"
         met = None if ach is None or not np.isfinite(t) or censored == "above" else bool(t <= ach)
         interp = acc is not None and limits.is_interpolated(p.diameter_mm)
         if interp:
-            note = (note + "; " if note else "") + ("limit interpolated between the file's diameters (informative; "
-                                                    "the overall verdict rests on the listed diameters)")
-        out.append(Verdict(p.diameter_mm, t, lo, hi, acc, ach, v, met, p.method, p.observer,
-                           None if factor is None else factor.value, note, interp, censored,
-                           (factor.ci_low, factor.ci_high) if factor is not None and factor.has_ci else None))
+            note = (note + "; " if note else "") + (
+                "limit interpolated between the file's diameters (informative; "
+                "the overall verdict rests on the listed diameters)"
+            )
+        out.append(
+            Verdict(
+                p.diameter_mm,
+                t,
+                lo,
+                hi,
+                acc,
+                ach,
+                v,
+                met,
+                p.method,
+                p.observer,
+                None if factor is None else factor.value,
+                note,
+                interp,
+                censored,
+                (factor.ci_low, factor.ci_high) if factor is not None and factor.has_ci else None,
+            )
+        )
     return out
 
 

@@ -57,8 +57,13 @@ def pc_mafc(dprime, m: int):
             if v >= 0:
                 out[i] = _pc_scalar(round(float(v), 12), m)
             else:  # no chance floor clamp below zero d′
-                val, _ = integrate.quad(lambda x, v=v: stats.norm.pdf(x - v) * stats.norm.cdf(x) ** (m - 1),
-                                        v - 10.0, v + 10.0, epsabs=1e-12, limit=200)
+                val, _ = integrate.quad(
+                    lambda x, v=v: stats.norm.pdf(x - v) * stats.norm.cdf(x) ** (m - 1),
+                    v - 10.0,
+                    v + 10.0,
+                    epsabs=1e-12,
+                    limit=200,
+                )
                 out[i] = val
         out = out.reshape(d.shape)
     return float(out) if np.ndim(out) == 0 else out

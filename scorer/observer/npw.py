@@ -68,7 +68,7 @@ class SystemBlur:
             m = np.interp(f_mm, self.frequency_per_mm, self.mtf, right=self.mtf[-1])
             sinc = np.abs(np.sinc(f_cyc_per_px))
             return np.clip(m / np.maximum(sinc, 0.2), 0.0, 1.0)
-        return np.exp(-2.0 * np.pi ** 2 * self.sigma_px ** 2 * f_cyc_per_px ** 2)
+        return np.exp(-2.0 * np.pi**2 * self.sigma_px**2 * f_cyc_per_px**2)
 
     def margin_px(self) -> float:
         return 3.0 * self.sigma_px + 1.0 if self.mtf is None else 3.0
@@ -78,7 +78,7 @@ class SystemBlur:
 class ObserverConfig:
     observer: str = "npw"
     viewing_distance_mm: float = DEFAULT_VIEWING_DISTANCE_MM  # for NPWE: eye-to-image distance, image-plane units
-    blur: SystemBlur | None = None                           # None: estimate from the markers
+    blur: SystemBlur | None = None  # None: estimate from the markers
 
     def __post_init__(self):
         if self.observer not in OBSERVERS:
@@ -106,7 +106,7 @@ def estimate_blur(image: Image, layout: Layout, placement, max_sigma_px: float =
         r0, c0 = int(round(rc[0])) - h, int(round(rc[1])) - h
         if r0 < 0 or c0 < 0 or r0 + 2 * h + 1 > image.shape[0] or c0 + 2 * h + 1 > image.shape[1]:
             continue
-        g = np.asarray(image.pixels[r0:r0 + 2 * h + 1, c0:c0 + 2 * h + 1], dtype=float)
+        g = np.asarray(image.pixels[r0 : r0 + 2 * h + 1, c0 : c0 + 2 * h + 1], dtype=float)
         cov = disc_coverage((rc[0] - r0, rc[1] - c0), rad, g.shape)
         patches.append((g, cov))
     if not patches:
@@ -123,8 +123,7 @@ def estimate_blur(image: Image, layout: Layout, placement, max_sigma_px: float =
             total += float(r @ r) / max(coef[0], 1e-12) ** 2
         return total
 
-    fit = optimize.minimize_scalar(sse, bounds=(0.0, max_sigma_px), method="bounded",
-                                   options={"xatol": 0.01})
+    fit = optimize.minimize_scalar(sse, bounds=(0.0, max_sigma_px), method="bounded", options={"xatol": 0.01})
     return SystemBlur(float(fit.x), source=f"Gaussian fitted to {len(patches)} marker edges")
 
 
@@ -199,7 +198,7 @@ def _roi_geometry(layout: Layout, scale_px_per_mm: float) -> dict:
     i = 0
     for t in layout.targets:
         n = t.m_alternatives
-        out[t.id] = float(nearest[i:i + n].min()) / 2.0 * scale_px_per_mm
+        out[t.id] = float(nearest[i : i + n].min()) / 2.0 * scale_px_per_mm
         i += n
     return out
 
@@ -210,8 +209,9 @@ def saturation_level(pixels: np.ndarray, min_fraction: float = 1e-3) -> float | 
     return top if np.count_nonzero(pixels == top) >= min_fraction * pixels.size else None
 
 
-def score_image(image: Image, layout: Layout, placement, config: ObserverConfig = ObserverConfig(),
-                image_id: str | None = None) -> pd.DataFrame:
+def score_image(
+    image: Image, layout: Layout, placement, config: ObserverConfig = ObserverConfig(), image_id: str | None = None
+) -> pd.DataFrame:
     """Model-observer responses at every candidate site of every target.
 
     Returns
@@ -246,15 +246,17 @@ def score_image(image: Image, layout: Layout, placement, config: ObserverConfig 
         inner = rad + blur.margin_px()
         h = int(np.ceil(rr))
         bank = _TemplateBank(rad, h, blur, eye_tf, pixel_mm)
-        yy, xx = np.mgrid[-h:h + 1, -h:h + 1].astype(float)
+        yy, xx = np.mgrid[-h : h + 1, -h : h + 1].astype(float)
         for k, (r, c) in enumerate(sites_rc):
             ri, ci = int(round(r)), int(round(c))
             if ri - h < 0 or ci - h < 0 or ri + h + 1 > H or ci + h + 1 > W:
                 raise LimenError(f"target {t.id!r} site {k} lies at the image edge; the phantom is cut off")
-            g = pixels[ri - h:ri + h + 1, ci - h:ci + h + 1]
+            g = pixels[ri - h : ri + h + 1, ci - h : ci + h + 1]
             if saturated is not None and np.any(g >= saturated):
-                raise LimenError(f"target {t.id!r} site {k} is saturated (pixels at the detector's maximum "
-                                 "value); repeat the exposure at a lower dose")
+                raise LimenError(
+                    f"target {t.id!r} site {k} is saturated (pixels at the detector's maximum "
+                    "value); repeat the exposure at a lower dose"
+                )
             dy, dx = yy - (r - ri), xx - (c - ci)
             dist = np.hypot(dy, dx)
             roi = dist <= rr
@@ -268,10 +270,37 @@ def score_image(image: Image, layout: Layout, placement, config: ObserverConfig 
             s1, w = bank.get(r - ri, c - ci)
             w = np.where(roi, w, 0.0)
             resp = float(np.sum(w * data)) / float(np.sum(w * s1))
-            rows.append((image_id, t.id, t.diameter_mm, t.contrast, t.m_alternatives, k, k == t.signal_site,
-                         resp, float(r), float(c), config.observer))
-    df = pd.DataFrame(rows, columns=["image", "target", "diameter_mm", "contrast", "m_alternatives", "site",
-                                     "is_signal", "response", "row_px", "col_px", "observer"])
+            rows.append(
+                (
+                    image_id,
+                    t.id,
+                    t.diameter_mm,
+                    t.contrast,
+                    t.m_alternatives,
+                    k,
+                    k == t.signal_site,
+                    resp,
+                    float(r),
+                    float(c),
+                    config.observer,
+                )
+            )
+    df = pd.DataFrame(
+        rows,
+        columns=[
+            "image",
+            "target",
+            "diameter_mm",
+            "contrast",
+            "m_alternatives",
+            "site",
+            "is_signal",
+            "response",
+            "row_px",
+            "col_px",
+            "observer",
+        ],
+    )
     df.attrs["blur"] = {"sigma_px": blur.sigma_px, "source": blur.source}
     return df
 
@@ -284,18 +313,33 @@ def decide(responses: pd.DataFrame) -> pd.DataFrame:
     ``detector`` column first after ``reader`` when the responses carry one.
     """
     if responses.empty:
-        return pd.DataFrame(columns=["reader", "image", "target", "diameter_mm", "contrast", "chosen_site",
-                                     "true_site", "correct", "m_alternatives"])
+        return pd.DataFrame(
+            columns=[
+                "reader",
+                "image",
+                "target",
+                "diameter_mm",
+                "contrast",
+                "chosen_site",
+                "true_site",
+                "correct",
+                "m_alternatives",
+            ]
+        )
     idx = responses.groupby(["image", "target"], sort=False)["response"].idxmax()
     extra = ["detector"] if "detector" in responses.columns else []
-    chosen = responses.loc[idx, ["image", "target", "diameter_mm", "contrast", "m_alternatives", "site", "observer"]
-                           + extra]
+    chosen = responses.loc[
+        idx, ["image", "target", "diameter_mm", "contrast", "m_alternatives", "site", "observer"] + extra
+    ]
     truth = responses[responses["is_signal"]].set_index(["image", "target"])["site"]
     out = chosen.rename(columns={"site": "chosen_site", "observer": "reader"}).reset_index(drop=True)
     out["true_site"] = truth.reindex(list(zip(out["image"], out["target"]))).to_numpy()
     out["correct"] = (out["chosen_site"] == out["true_site"]).astype(int)
-    return out[["reader"] + extra + ["image", "target", "diameter_mm", "contrast", "chosen_site", "true_site",
-                                     "correct", "m_alternatives"]]
+    return out[
+        ["reader"]
+        + extra
+        + ["image", "target", "diameter_mm", "contrast", "chosen_site", "true_site", "correct", "m_alternatives"]
+    ]
 
 
 METHOD_TEXT = (

@@ -61,10 +61,10 @@ from scipy.special import expit, gammaln, logit, ndtr
 from scorer.errors import LimenError
 from scorer.observer.mafc import dprime_for_pc, halfway_criterion
 
-DPRIME_MAX = 12.0          # beyond this Pc_M is 1 to double precision for any practical M
-LAPSE_MAX = 0.1            # a fitted lapse rate is kept within [0, LAPSE_MAX]
-_FINE_STEP = 2e-4          # step of the fine lookup table in d′
-_EPS = 1e-12               # probabilities are kept within [_EPS, 1 − _EPS] inside logs
+DPRIME_MAX = 12.0  # beyond this Pc_M is 1 to double precision for any practical M
+LAPSE_MAX = 0.1  # a fitted lapse rate is kept within [0, LAPSE_MAX]
+_FINE_STEP = 2e-4  # step of the fine lookup table in d′
+_EPS = 1e-12  # probabilities are kept within [_EPS, 1 − _EPS] inside logs
 
 FORMS = ("mafc", "logistic")
 
@@ -77,7 +77,7 @@ def _pc_table(m: int) -> np.ndarray:
         raise ValueError(f"M-AFC needs at least 2 alternatives, got {m}")
     coarse = np.linspace(0.0, DPRIME_MAX, 2401)
     z = np.arange(-9.0, 9.0 + 1e-9, 0.01)
-    weights = stats.norm.pdf(z) * 0.01                     # trapezoid (ends are ~1e-18)
+    weights = stats.norm.pdf(z) * 0.01  # trapezoid (ends are ~1e-18)
     # Pc(d′) = ∫ φ(z) Φ(z + d′)^(M−1) dz  (x = z + d′ in the Green & Swets integral)
     pc = (ndtr(z[None, :] + coarse[:, None]) ** (m - 1)) @ weights
     fine = np.linspace(0.0, DPRIME_MAX, int(round(DPRIME_MAX / _FINE_STEP)) + 1)
@@ -170,9 +170,17 @@ def _k_bounds(levels: np.ndarray) -> tuple[float, float]:
     return 0.01 / pos.max(), DPRIME_MAX / pos.min()
 
 
-def fit_k_batch(levels, y, n, m_alternatives: int, lapse: float = 0.0,
-                guess_rate: float | None = None, n_grid: int = 121, n_golden: int = 44,
-                center: float | None = None) -> tuple[np.ndarray, np.ndarray]:
+def fit_k_batch(
+    levels,
+    y,
+    n,
+    m_alternatives: int,
+    lapse: float = 0.0,
+    guess_rate: float | None = None,
+    n_grid: int = 121,
+    n_golden: int = 44,
+    center: float | None = None,
+) -> tuple[np.ndarray, np.ndarray]:
     """Maximum-likelihood k of the M-AFC form for many data sets at once.
 
     Parameters
@@ -198,8 +206,9 @@ def fit_k_batch(levels, y, n, m_alternatives: int, lapse: float = 0.0,
         n2 = np.atleast_2d(np.asarray(n, dtype=float))
         lo_f, hi_f = np.log(_k_bounds(np.asarray(levels, dtype=float)))
         lo_c, hi_c = max(np.log(center) - 2.0, lo_f), min(np.log(center) + 2.0, hi_f)
-        k, at_b = _fit_k_grid(levels, y2, n2, m_alternatives, lapse, guess_rate, np.linspace(lo_c, hi_c, 33),
-                              n_golden - 8, (lo_f, hi_f))
+        k, at_b = _fit_k_grid(
+            levels, y2, n2, m_alternatives, lapse, guess_rate, np.linspace(lo_c, hi_c, 33), n_golden - 8, (lo_f, hi_f)
+        )
         edge = ((np.log(k) - lo_c < 0.13) & (lo_c > lo_f)) | ((hi_c - np.log(k) < 0.13) & (hi_c < hi_f))
         if edge.any():
             k_e, b_e = fit_k_batch(levels, y2[edge], n2[edge], m_alternatives, lapse, guess_rate, n_grid, n_golden)
@@ -208,8 +217,7 @@ def fit_k_batch(levels, y, n, m_alternatives: int, lapse: float = 0.0,
         return k, at_b
     levels = np.asarray(levels, dtype=float)
     lo, hi = np.log(_k_bounds(levels))
-    return _fit_k_grid(levels, y, n, m_alternatives, lapse, guess_rate, np.linspace(lo, hi, n_grid), n_golden,
-                       (lo, hi))
+    return _fit_k_grid(levels, y, n, m_alternatives, lapse, guess_rate, np.linspace(lo, hi, n_grid), n_golden, (lo, hi))
 
 
 def _fit_k_grid(levels, y, n, m_alternatives, lapse, guess_rate, grid, n_golden, bounds):
@@ -236,7 +244,7 @@ def _fit_k_grid(levels, y, n, m_alternatives, lapse, guess_rate, grid, n_golden,
     x1, x2 = b - g * (b - a), a + g * (b - a)
     f1, f2 = ll(x1), ll(x2)
     for _ in range(n_golden):
-        left = f1 >= f2                   # the maximum lies in [a, x2], else in [x1, b]
+        left = f1 >= f2  # the maximum lies in [a, x2], else in [x1, b]
         b = np.where(left, x2, b)
         a = np.where(left, a, x1)
         x1_new = np.where(left, b - g * (b - a), x2)
@@ -302,8 +310,10 @@ class PsychometricFit:
         gamma, lam = self.guess_rate, float(self.params["lapse"]) if lapse_adjusted else 0.0
         top = 1.0 - lam * (1.0 - gamma) if self.form == "mafc" else 1.0 - lam
         if not (gamma < p < top):
-            raise LimenError(f"criterion proportion correct {p:g} must lie between the guess rate "
-                             f"{gamma:g} and the fitted ceiling {top:g}")
+            raise LimenError(
+                f"criterion proportion correct {p:g} must lie between the guess rate "
+                f"{gamma:g} and the fitted ceiling {top:g}"
+            )
         return p
 
     def threshold(self, criterion_pc: float | None = None, lapse_adjusted: bool = False) -> float:
@@ -361,10 +371,12 @@ class PsychometricFit:
 
             def ll_lapse(lam):
                 return float(_loglik_p((1 - lam) * pc_mafc_fast(k * lv, m) + lam * gamma, y, n))
+
             if self.lapse_fixed:
                 return ll_lapse(float(self.params["lapse"]))
-            r = optimize.minimize_scalar(lambda lam: -ll_lapse(lam), bounds=(0.0, LAPSE_MAX), method="bounded",
-                                         options={"xatol": 1e-7})
+            r = optimize.minimize_scalar(
+                lambda lam: -ll_lapse(lam), bounds=(0.0, LAPSE_MAX), method="bounded", options={"xatol": 1e-7}
+            )
             return float(-r.fun)
         # logistic: alpha = log10 t − logit(F_p)/beta ; profile over beta (and lapse)
         fp = logit((p - gamma) / (1 - gamma))
@@ -375,13 +387,22 @@ class PsychometricFit:
             lam = float(self.params["lapse"]) if self.lapse_fixed else theta[1]
             alpha = np.log10(t) - fp / beta
             return float(_loglik_p(gamma + (1 - gamma - lam) * expit(beta * (x - alpha)), y, n))
+
         b0 = np.log(self.params["beta"])
         if self.lapse_fixed:
-            r = optimize.minimize_scalar(lambda th: -ll_beta([th]), bounds=(np.log(0.01), np.log(1000.0)),
-                                         method="bounded", options={"xatol": 1e-7})
+            r = optimize.minimize_scalar(
+                lambda th: -ll_beta([th]),
+                bounds=(np.log(0.01), np.log(1000.0)),
+                method="bounded",
+                options={"xatol": 1e-7},
+            )
             return float(-r.fun)
-        r = optimize.minimize(lambda th: -ll_beta(th), x0=[b0, float(self.params["lapse"])],
-                              bounds=[(np.log(0.01), np.log(1000.0)), (0.0, LAPSE_MAX)], method="L-BFGS-B")
+        r = optimize.minimize(
+            lambda th: -ll_beta(th),
+            x0=[b0, float(self.params["lapse"])],
+            bounds=[(np.log(0.01), np.log(1000.0)), (0.0, LAPSE_MAX)],
+            method="L-BFGS-B",
+        )
         return float(-r.fun)
 
     # .................................................................. display
@@ -392,11 +413,18 @@ class PsychometricFit:
         lines.append("Psychometric function fit".center(width))
         lines.append("=" * width)
         p = halfway_criterion(self.m_alternatives) if criterion_pc is None else float(criterion_pc)
-        left = [("Form:", self.form), ("Alternatives M:", str(self.m_alternatives)),
-                ("Guess rate:", f"{self.guess_rate:.4g}"),
-                ("Lapse:", ("fitted" if not self.lapse_fixed else "fixed") + f" {self.params['lapse']:.4g}")]
-        right = [("Trials:", str(self.n_trials_total)), ("Levels:", str(len(self._levels))),
-                 ("Log-likelihood:", f"{self.loglik:.4f}"), ("Converged:", "yes" if self.converged else "no")]
+        left = [
+            ("Form:", self.form),
+            ("Alternatives M:", str(self.m_alternatives)),
+            ("Guess rate:", f"{self.guess_rate:.4g}"),
+            ("Lapse:", ("fitted" if not self.lapse_fixed else "fixed") + f" {self.params['lapse']:.4g}"),
+        ]
+        right = [
+            ("Trials:", str(self.n_trials_total)),
+            ("Levels:", str(len(self._levels))),
+            ("Log-likelihood:", f"{self.loglik:.4f}"),
+            ("Converged:", "yes" if self.converged else "no"),
+        ]
         for (a, b), (c, d) in zip(left, right):
             lines.append(f"{a:<16}{b:>15}  {c:<16}{d:>15}")
         lines.append("-" * width)
@@ -441,8 +469,12 @@ def _threshold_from_params(form: str, params: dict, m: int, p: float, lapse_adju
     return float(10 ** (params["alpha"] + logit(frac) / params["beta"]))
 
 
-def _numeric_stderr(nll: Callable[[np.ndarray], float], x: np.ndarray, names: Sequence[str],
-                    transform: Sequence[Callable[[float], float]]) -> dict:
+def _numeric_stderr(
+    nll: Callable[[np.ndarray], float],
+    x: np.ndarray,
+    names: Sequence[str],
+    transform: Sequence[Callable[[float], float]],
+) -> dict:
     """Standard errors from the inverse observed information (finite-difference Hessian), delta method."""
     x = np.asarray(x, dtype=float)
     k = x.size
@@ -470,8 +502,15 @@ def _numeric_stderr(nll: Callable[[np.ndarray], float], x: np.ndarray, names: Se
 
 
 # --------------------------------------------------------------------------- fitting
-def fit_psychometric(contrast, n_correct, n_trials, m_alternatives: int, form: str = "mafc",
-                     lapse: float | None = 0.0, guess_rate: float | None = None) -> PsychometricFit:
+def fit_psychometric(
+    contrast,
+    n_correct,
+    n_trials,
+    m_alternatives: int,
+    form: str = "mafc",
+    lapse: float | None = 0.0,
+    guess_rate: float | None = None,
+) -> PsychometricFit:
     """Maximum-likelihood (binomial) fit of a psychometric function to forced-choice counts.
 
     Parameters
@@ -518,12 +557,15 @@ def fit_psychometric(contrast, n_correct, n_trials, m_alternatives: int, form: s
             k, at_b = fit_k_batch(levels, y[None], n[None], m, float(lapse))
             k, at_b, lam = float(k[0]), bool(at_b[0]), float(lapse)
         else:
+
             def prof(lam):
                 kk, _ = fit_k_batch(levels, y[None], n[None], m, lam)
                 p = (1 - lam) * pc_mafc_fast(kk[0] * levels, m) + lam * gamma
                 return -float(_loglik_p(p, y, n)), float(kk[0])
-            r = optimize.minimize_scalar(lambda lam: prof(lam)[0], bounds=(0.0, LAPSE_MAX), method="bounded",
-                                         options={"xatol": 1e-7})
+
+            r = optimize.minimize_scalar(
+                lambda lam: prof(lam)[0], bounds=(0.0, LAPSE_MAX), method="bounded", options={"xatol": 1e-7}
+            )
             # the bounded search never evaluates the end points exactly; check them
             cands = [(r.fun, float(r.x)), (prof(0.0)[0], 0.0), (prof(LAPSE_MAX)[0], LAPSE_MAX)]
             _, lam = min(cands)
@@ -535,14 +577,18 @@ def fit_psychometric(contrast, n_correct, n_trials, m_alternatives: int, form: s
         if at_b:
             lo, hi = _k_bounds(levels)
             side = "upper" if abs(np.log(k / hi)) < abs(np.log(k / lo)) else "lower"
-            notes.append(f"k at its {side} search bound ({'all or nearly all trials correct' if side == 'upper' else 'performance at chance'}); "
-                         "the threshold is only a bound")
+            notes.append(
+                f"k at its {side} search bound "
+                f"({'all or nearly all trials correct' if side == 'upper' else 'performance at chance'}); "
+                "the threshold is only a bound"
+            )
         free_x = [np.log(k)] + ([lam] if lapse is None else [])
         names = ["k"] + (["lapse"] if lapse is None else [])
 
         def nll(x):
             lam_ = x[1] if lapse is None else lam
             return -float(_loglik_p((1 - lam_) * pc_mafc_fast(np.exp(x[0]) * levels, m) + lam_ * gamma, y, n))
+
         tr = [np.exp] + ([lambda v: v] if lapse is None else [])
         stderr = _numeric_stderr(nll, np.array(free_x), names, tr) if not at_b else {"k": float("nan")}
         converged = not at_b
@@ -566,7 +612,7 @@ def fit_psychometric(contrast, n_correct, n_trials, m_alternatives: int, form: s
             s = 1.0 - gamma - lam_
             p = np.clip(gamma + s * f, _EPS, 1 - _EPS)
             val = -np.sum(y * np.log(p) + (n - y) * np.log1p(-p))
-            dp = -(y / p - (n - y) / (1 - p))          # d nll / d p
+            dp = -(y / p - (n - y) / (1 - p))  # d nll / d p
             fd = f * (1 - f)
             g = [np.sum(dp * s * fd * (-b)), np.sum(dp * s * fd * (x - a)) * b]
             if not lam_fixed:
@@ -583,17 +629,29 @@ def fit_psychometric(contrast, n_correct, n_trials, m_alternatives: int, form: s
                 if best is None or v < best[0]:
                     best = (v, th)
         bounds = [(a_lo, a_hi), (np.log(b_lo), np.log(b_hi))] + ([] if lam_fixed else [(0.0, LAPSE_MAX)])
-        res = optimize.minimize(nll_grad, x0=best[1], jac=True, method="L-BFGS-B", bounds=bounds,
-                                options={"ftol": 1e-15, "gtol": 1e-10, "maxiter": 2000})
+        res = optimize.minimize(
+            nll_grad,
+            x0=best[1],
+            jac=True,
+            method="L-BFGS-B",
+            bounds=bounds,
+            options={"ftol": 1e-15, "gtol": 1e-10, "maxiter": 2000},
+        )
         a, b, lam = unpack(res.x)
         params = {"alpha": float(a), "beta": float(b), "lapse": float(lam), "guess_rate": gamma}
         ll = -float(res.fun) + const
         tol_a, tol_b = 1e-6 * (a_hi - a_lo), 1e-6
-        at_b = (abs(a - a_lo) < tol_a or abs(a - a_hi) < tol_a or abs(res.x[1] - np.log(b_lo)) < tol_b
-                or abs(res.x[1] - np.log(b_hi)) < tol_b)
+        at_b = (
+            abs(a - a_lo) < tol_a
+            or abs(a - a_hi) < tol_a
+            or abs(res.x[1] - np.log(b_lo)) < tol_b
+            or abs(res.x[1] - np.log(b_hi)) < tol_b
+        )
         if at_b:
-            notes.append("a parameter is at its search bound (no interior maximum: e.g. all trials correct, "
-                         "at chance, or a single contrast level); the threshold is only a bound")
+            notes.append(
+                "a parameter is at its search bound (no interior maximum: e.g. all trials correct, "
+                "at chance, or a single contrast level); the threshold is only a bound"
+            )
         if not res.success and not at_b:
             notes.append(f"optimiser: {res.message}")
         converged = bool(res.success) and not at_b
@@ -602,9 +660,20 @@ def fit_psychometric(contrast, n_correct, n_trials, m_alternatives: int, form: s
         stderr = _numeric_stderr(lambda th: nll_grad(th)[0], np.asarray(res.x), names, tr) if converged else {}
     if lapse is None and params["lapse"] >= LAPSE_MAX - 1e-6:
         notes.append(f"fitted lapse rate at its upper bound {LAPSE_MAX}")
-    return PsychometricFit(form=form, m_alternatives=m, params=params, loglik=ll,
-                           n_trials_total=int(round(n.sum())), converged=converged, note="; ".join(notes),
-                           stderr=stderr, lapse_fixed=lapse is not None, _levels=levels, _y=y, _n=n)
+    return PsychometricFit(
+        form=form,
+        m_alternatives=m,
+        params=params,
+        loglik=ll,
+        n_trials_total=int(round(n.sum())),
+        converged=converged,
+        note="; ".join(notes),
+        stderr=stderr,
+        lapse_fixed=lapse is not None,
+        _levels=levels,
+        _y=y,
+        _n=n,
+    )
 
 
 # --------------------------------------------------------------------------- bootstrap
@@ -670,7 +739,7 @@ def bootstrap_weights(n_units: int, n_boot: int, rng: np.random.Generator, clust
     w = np.zeros((n_boot, n_units), dtype=np.int64)
     draws = rng.integers(0, labels.size, size=(n_boot, labels.size))
     for j, idx in enumerate(members):
-        times = np.sum(draws == j, axis=1)                     # how often cluster j is drawn, per resample
+        times = np.sum(draws == j, axis=1)  # how often cluster j is drawn, per resample
         total = int(times.sum())
         if total == 0:
             continue
@@ -750,10 +819,19 @@ class BootstrapResult:
         self.ci_low, self.ci_high = enclose_estimate(self.estimate, self.ci_low, self.ci_high)
 
 
-def bootstrap_threshold(units: UnitCounts, n_boot: int, rng: np.random.Generator, *, m_alternatives: int,
-                        criterion_pc: float | None = None, form: str = "mafc", lapse: float | None = 0.0,
-                        ci: float = 0.95, weights: np.ndarray | None = None,
-                        fit_fn: Callable[[np.ndarray, np.ndarray, np.ndarray], float] | None = None) -> BootstrapResult:
+def bootstrap_threshold(
+    units: UnitCounts,
+    n_boot: int,
+    rng: np.random.Generator,
+    *,
+    m_alternatives: int,
+    criterion_pc: float | None = None,
+    form: str = "mafc",
+    lapse: float | None = 0.0,
+    ci: float = 0.95,
+    weights: np.ndarray | None = None,
+    fit_fn: Callable[[np.ndarray, np.ndarray, np.ndarray], float] | None = None,
+) -> BootstrapResult:
     """Threshold contrast with a percentile bootstrap CI, resampling units.
 
     Parameters
@@ -792,7 +870,7 @@ def bootstrap_threshold(units: UnitCounts, n_boot: int, rng: np.random.Generator
     if fit_fn is None and form == "mafc" and lapse is not None:
         k0 = _dprime_for(p, int(m_alternatives)) / estimate if np.isfinite(estimate) and estimate > 0 else None
         k, at_b = fit_k_batch(levels[keep], yb[:, keep], nb[:, keep], m_alternatives, float(lapse), center=k0)
-        samples = _dprime_for(p, int(m_alternatives)) / k      # lapse-free threshold
+        samples = _dprime_for(p, int(m_alternatives)) / k  # lapse-free threshold
         n_bound = int(at_b.sum())
     else:
         samples = np.empty(n_boot)
@@ -805,5 +883,13 @@ def bootstrap_threshold(units: UnitCounts, n_boot: int, rng: np.random.Generator
     note = ""
     if n_bound:
         note = f"{n_bound} of {n_boot} resamples had no interior maximum (threshold at a search bound)"
-    return BootstrapResult(estimate=float(estimate), ci_low=lo, ci_high=hi, samples=np.asarray(samples),
-                           n_boot=int(n_boot), n_at_bound=n_bound, ci=ci, note=note)
+    return BootstrapResult(
+        estimate=float(estimate),
+        ci_low=lo,
+        ci_high=hi,
+        samples=np.asarray(samples),
+        n_boot=int(n_boot),
+        n_at_bound=n_bound,
+        ci=ci,
+        note=note,
+    )

@@ -79,10 +79,10 @@ class ThresholdPoint:
     m_alternatives: int
     criterion_pc: float
     note: str = ""
-    offered_min: float | None = None     # lowest and highest disc contrast the plate offers at this diameter
+    offered_min: float | None = None  # lowest and highest disc contrast the plate offers at this diameter
     offered_max: float | None = None
-    censored: str = ""                   # count method: "above" / "below" the contrasts offered
-    extrapolated: bool = False           # d′ method: the model-based value lies outside the contrasts offered
+    censored: str = ""  # count method: "above" / "below" the contrasts offered
+    extrapolated: bool = False  # d′ method: the model-based value lies outside the contrasts offered
 
     def __post_init__(self):
         # a CI always contains its estimate, by construction
@@ -117,15 +117,21 @@ def censor_point(p: ThresholdPoint, offered_min: float, offered_max: float) -> T
         return p
     if p.method == "count":
         if t > offered_max:
-            p.threshold_contrast, p.ci_low, p.ci_high, p.censored = float(offered_max), float(offered_max), np.inf, "above"
+            p.threshold_contrast, p.ci_low, p.ci_high, p.censored = (
+                float(offered_max),
+                float(offered_max),
+                np.inf,
+                "above",
+            )
             p.note = _join(p.note, f"above the highest contrast offered ({100 * offered_max:.3g} %)")
         elif t < offered_min:
             p.threshold_contrast, p.ci_low, p.ci_high, p.censored = float(offered_min), 0.0, float(offered_min), "below"
             p.note = _join(p.note, f"below the lowest contrast offered ({100 * offered_min:.3g} %)")
     elif t > offered_max or t < offered_min:
         p.extrapolated = True
-        p.note = _join(p.note, f"extrapolated: outside the contrasts offered ({100 * offered_min:.3g}–"
-                               f"{100 * offered_max:.3g} %)")
+        p.note = _join(
+            p.note, f"extrapolated: outside the contrasts offered ({100 * offered_min:.3g}–{100 * offered_max:.3g} %)"
+        )
     return p
 
 
@@ -208,27 +214,27 @@ def _dprime_arrays(group: pd.DataFrame):
 def _dprime_k(S, B, contrasts, W, dprime_t, local_factor=LOCAL_FIT_FACTOR):
     """Slope k of d′ = k·C per resample.  W: (R, n_images) image draw counts."""
     W = np.asarray(W, float)
-    n = W.sum(axis=1)                                   # (R,)
+    n = W.sum(axis=1)  # (R,)
     m1 = B.shape[2]
-    ms = (W @ S) / n[:, None]                           # (R, J) mean signal response
+    ms = (W @ S) / n[:, None]  # (R, J) mean signal response
     Bsum = B.sum(axis=2)
-    mb = (W @ Bsum) / (n[:, None] * m1)                 # (R, J) mean background response
+    mb = (W @ Bsum) / (n[:, None] * m1)  # (R, J) mean background response
     J = S.shape[1]
     if m1 >= 2:
         # σ² from the spread of the non-signal sites within each image and target (the comparison an
         # M-AFC decision makes); duplicated images in a resample repeat their terms without bias
         Bc = B - B.mean(axis=2, keepdims=True)
-        ss = W @ (Bc ** 2).sum(axis=2).sum(axis=1)
+        ss = W @ (Bc**2).sum(axis=2).sum(axis=1)
         df = n * J * (m1 - 1)
     else:
         # two sites only: pool over images instead; a resample's duplicates shrink the spread by (n−1)/n
-        ss_s = W @ (S ** 2) - n[:, None] * ms ** 2
-        ss_b = W @ (B ** 2).sum(axis=2) - n[:, None] * m1 * mb ** 2
+        ss_s = W @ (S**2) - n[:, None] * ms**2
+        ss_b = W @ (B**2).sum(axis=2) - n[:, None] * m1 * mb**2
         ss = ss_s.sum(axis=1) + ss_b.sum(axis=1)
         df = (n - 1) * (m1 + 1) * J
     with np.errstate(invalid="ignore", divide="ignore"):
         sigma = np.sqrt(np.maximum(ss, 0) / df)
-        d = (ms - mb) / sigma[:, None]                  # (R, J)
+        d = (ms - mb) / sigma[:, None]  # (R, J)
         C = np.asarray(contrasts, float)
         k = (d @ C) / (C @ C)
         ct0 = dprime_t / k
@@ -243,7 +249,7 @@ def _dprime_k(S, B, contrasts, W, dprime_t, local_factor=LOCAL_FIT_FACTOR):
                 first3[:3] = True
                 use[few] = first3
             Cw = np.where(use, C[None, :], 0.0)
-            k2 = (d * Cw).sum(axis=1) / (Cw ** 2).sum(axis=1)
+            k2 = (d * Cw).sum(axis=1) / (Cw**2).sum(axis=1)
     return k2, d, sigma, use, df
 
 
@@ -260,7 +266,7 @@ def _analytic_ci(d, C, use, n_img: int, m: int, df: float, est: float, ci: float
     if J < 2 or not np.all(np.isfinite(du)):
         return float("nan"), float("nan"), "too few targets for a confidence interval"
     k = float(du @ Cu / (Cu @ Cu))
-    var_d = m / ((m - 1.0) * n_img)                      # variance of each d′_j from the image noise
+    var_d = m / ((m - 1.0) * n_img)  # variance of each d′_j from the image noise
     var_logk = var_d / (k * k * (Cu @ Cu)) + 1.0 / (2.0 * df)
     # σ̂'s error scales every d′_j alike and is absorbed into k, so only var_d enters the residual test
     chi2 = float(np.sum((du - k * Cu) ** 2 / var_d))
@@ -274,8 +280,15 @@ def _analytic_ci(d, C, use, n_img: int, m: int, df: float, est: float, ci: float
     return float(est * np.exp(-half)), float(est * np.exp(half)), note
 
 
-def dprime_thresholds(responses: pd.DataFrame, *, criterion_pc: float | None = None, n_boot: int = 1000,
-                      seed: int | None = 0, ci: float = 0.95, ci_method: str = "analytic") -> ThresholdCurve:
+def dprime_thresholds(
+    responses: pd.DataFrame,
+    *,
+    criterion_pc: float | None = None,
+    n_boot: int = 1000,
+    seed: int | None = 0,
+    ci: float = 0.95,
+    ci_method: str = "analytic",
+) -> ThresholdCurve:
     """Threshold contrast per diameter by the d′ method (see module docstring).
 
     ``ci_method``: "analytic" (default; the sampling variance of the linear observer's d′,
@@ -309,14 +322,26 @@ def dprime_thresholds(responses: pd.DataFrame, *, criterion_pc: float | None = N
         if not np.isfinite(est) or k[0] <= 0:
             note = "no detectable signal at any contrast (d′ slope ≤ 0)"
             est = float("nan")
-        points.append(censor_point(ThresholdPoint(float(diam), float(est), float(lo), float(hi), "dprime", observer,
-                                                  n_img, m, p, note), float(C.min()), float(C.max())))
+        points.append(
+            censor_point(
+                ThresholdPoint(float(diam), float(est), float(lo), float(hi), "dprime", observer, n_img, m, p, note),
+                float(C.min()),
+                float(C.max()),
+            )
+        )
     return ThresholdCurve(points, "dprime", observer, n_boot, seed, smooth_curve(points), notes)
 
 
 # --------------------------------------------------------------------------- count method
-def count_thresholds(trials: pd.DataFrame, *, criterion_pc: float | None = None, n_boot: int = 1000,
-                     seed: int | None = 0, ci: float = 0.95, form: str = "mafc") -> ThresholdCurve:
+def count_thresholds(
+    trials: pd.DataFrame,
+    *,
+    criterion_pc: float | None = None,
+    n_boot: int = 1000,
+    seed: int | None = 0,
+    ci: float = 0.95,
+    form: str = "mafc",
+) -> ThresholdCurve:
     """Threshold contrast per diameter by the count method from an M-AFC trials table."""
     need = {"image", "target", "diameter_mm", "contrast", "correct", "m_alternatives", "reader"}
     missing = need - set(trials.columns)
@@ -330,8 +355,9 @@ def count_thresholds(trials: pd.DataFrame, *, criterion_pc: float | None = None,
         p = halfway_criterion(m) if criterion_pc is None else float(criterion_pc)
         units = unit_counts(g["contrast"].to_numpy(float), g["correct"].to_numpy(float), g["image"].to_numpy())
         n_img = units.n_units
-        res = bootstrap_threshold(units, n_boot if n_img >= 2 else 1, rng, m_alternatives=m, criterion_pc=p,
-                                  form=form, lapse=0.0, ci=ci)
+        res = bootstrap_threshold(
+            units, n_boot if n_img >= 2 else 1, rng, m_alternatives=m, criterion_pc=p, form=form, lapse=0.0, ci=ci
+        )
         note = res.note
         lo, hi = expanded_percentile_ci(res.samples, n_img, ci)
         if n_img < 2:
@@ -339,8 +365,15 @@ def count_thresholds(trials: pd.DataFrame, *, criterion_pc: float | None = None,
         if n_img < 3:
             note = _join(note, f"only {n_img} image(s): the count method's threshold is unreliable")
         cs = g["contrast"].to_numpy(float)
-        points.append(censor_point(ThresholdPoint(float(diam), float(res.estimate), float(lo), float(hi), "count",
-                                                  observer, n_img, m, p, note), float(cs.min()), float(cs.max())))
+        points.append(
+            censor_point(
+                ThresholdPoint(
+                    float(diam), float(res.estimate), float(lo), float(hi), "count", observer, n_img, m, p, note
+                ),
+                float(cs.min()),
+                float(cs.max()),
+            )
+        )
     return ThresholdCurve(points, "count", observer, n_boot, seed, smooth_curve(points))
 
 
@@ -365,8 +398,7 @@ def smooth_curve(points: list[ThresholdPoint]) -> CDCurve | None:
 
 
 def _check_responses(df: pd.DataFrame) -> None:
-    need = {"image", "target", "diameter_mm", "contrast", "m_alternatives", "site", "is_signal", "response",
-            "observer"}
+    need = {"image", "target", "diameter_mm", "contrast", "m_alternatives", "site", "is_signal", "response", "observer"}
     missing = need - set(df.columns)
     if missing:
         raise LimenError(f"responses table lacks column(s) {', '.join(sorted(missing))}")

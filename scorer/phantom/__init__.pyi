@@ -5,10 +5,23 @@ from . import geometry as geometry
 from . import layout as layout
 from . import registration as registration
 
-from .layout import Layout as Layout, Target as Target, Marker as Marker, load_layout as load_layout, parse_layout as parse_layout, default_layout_path as default_layout_path
+from .layout import (
+    Layout as Layout,
+    Target as Target,
+    Marker as Marker,
+    load_layout as load_layout,
+    parse_layout as parse_layout,
+    default_layout_path as default_layout_path,
+)
 from .geometry import PhantomTransform as PhantomTransform
 from .disc import disc_coverage as disc_coverage, disc_coverage_patch as disc_coverage_patch
-from .registration import Placement as Placement, RegistrationError as RegistrationError, register as register, draw_overlay as draw_overlay, fit_similarity as fit_similarity
+from .registration import (
+    Placement as Placement,
+    RegistrationError as RegistrationError,
+    register as register,
+    draw_overlay as draw_overlay,
+    fit_similarity as fit_similarity,
+)
 
 __all__ = [
     "disc",

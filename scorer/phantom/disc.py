@@ -39,7 +39,7 @@ def disc_coverage_patch(center_rc, radius_px: float, shape: tuple[int, int], sup
     sub = (np.arange(s) + 0.5) / s - 0.5
     rr = (np.arange(r0c, r1c)[:, None] + sub[None, :]).ravel()
     cc_ = (np.arange(c0c, c1c)[:, None] + sub[None, :]).ravel()
-    inside = ((rr[:, None] - cr) ** 2 + (cc_[None, :] - cc) ** 2) <= radius_px ** 2
+    inside = ((rr[:, None] - cr) ** 2 + (cc_[None, :] - cc) ** 2) <= radius_px**2
     cov = inside.reshape(r1c - r0c, s, c1c - c0c, s).mean(axis=(1, 3))
     return slice(r0c, r1c), slice(c0c, c1c), cov
 

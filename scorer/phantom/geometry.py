@@ -49,9 +49,16 @@ class PhantomTransform:
         return cls(((A[0, 0], A[0, 1]), (A[1, 0], A[1, 1])), (t[0], t[1]))
 
     @classmethod
-    def from_params(cls, *, rotation_deg: float, flipped: bool, magnification: float,
-                    phantom_center_mm: tuple[float, float], center_px: tuple[float, float],
-                    pixel_mm: float) -> "PhantomTransform":
+    def from_params(
+        cls,
+        *,
+        rotation_deg: float,
+        flipped: bool,
+        magnification: float,
+        phantom_center_mm: tuple[float, float],
+        center_px: tuple[float, float],
+        pixel_mm: float,
+    ) -> "PhantomTransform":
         """Place the phantom centre at pixel ``center_px`` = (row, col)."""
         F = np.diag([-1.0, 1.0]) if flipped else np.eye(2)
         A = (magnification / pixel_mm) * _rotation(rotation_deg) @ F

@@ -67,8 +67,17 @@ SITE_CLEARANCE_RADII = 1.0
 _TOP_KEYS = {"format", "phantom", "fiducials", "orientation_key", "targets"}
 _PHANTOM_KEYS = {"name", "width_mm", "height_mm", "description"}
 _MARKER_KEYS = {"id", "x_mm", "y_mm", "diameter_mm", "contrast"}
-_TARGET_KEYS = {"id", "diameter_mm", "contrast", "sites_mm", "signal_site", "known_site_mm",
-                "background_sites_mm", "material", "thickness_um"}
+_TARGET_KEYS = {
+    "id",
+    "diameter_mm",
+    "contrast",
+    "sites_mm",
+    "signal_site",
+    "known_site_mm",
+    "background_sites_mm",
+    "material",
+    "thickness_um",
+}
 
 
 @dataclass(frozen=True)
@@ -160,8 +169,9 @@ def default_layout_path() -> Path:
     try:
         return Path(str(resources.files("scorer.phantom.bundled").joinpath(DEFAULT_LAYOUT_NAME)))
     except ModuleNotFoundError:  # pragma: no cover - an install without the bundled layouts
-        raise LimenError("the bundled phantom layout is missing from this installation; give --layout FILE",
-                         DEFAULT_LAYOUT_NAME) from None
+        raise LimenError(
+            "the bundled phantom layout is missing from this installation; give --layout FILE", DEFAULT_LAYOUT_NAME
+        ) from None
 
 
 def load_layout(path=None) -> Layout:
@@ -199,15 +209,18 @@ def parse_layout(data: dict, path="<layout>") -> Layout:
         return float(v)
 
     def point(v, entry, key):
-        if (not isinstance(v, list) or len(v) != 2
-                or not all(isinstance(c, (int, float)) and not isinstance(c, bool) for c in v)):
+        if (
+            not isinstance(v, list)
+            or len(v) != 2
+            or not all(isinstance(c, (int, float)) and not isinstance(c, bool) for c in v)
+        ):
             fail(entry, f"'{key}' must be a pair [x_mm, y_mm], got {v!r}")
         return (float(v[0]), float(v[1]))
 
     unknown(data, _TOP_KEYS, "top level")
     fmt = data.get("format")
     if fmt != FORMAT:
-        fail("format", f"expected format = \"{FORMAT}\", got {fmt!r}")
+        fail("format", f'expected format = "{FORMAT}", got {fmt!r}')
     ph = data.get("phantom")
     if not isinstance(ph, dict):
         fail("[phantom]", "missing table")
@@ -219,8 +232,9 @@ def parse_layout(data: dict, path="<layout>") -> Layout:
     def inside(xy, r, entry):
         x, y = xy
         if x - r < 0 or y - r < 0 or x + r > width or y + r > height:
-            fail(entry, f"site ({x:g}, {y:g}) mm with radius {r:g} mm lies outside the "
-                        f"{width:g} × {height:g} mm outline")
+            fail(
+                entry, f"site ({x:g}, {y:g}) mm with radius {r:g} mm lies outside the {width:g} × {height:g} mm outline"
+            )
 
     def marker(d, entry) -> Marker:
         if not isinstance(d, dict):
@@ -236,9 +250,13 @@ def parse_layout(data: dict, path="<layout>") -> Layout:
 
     fid_raw = data.get("fiducials", [])
     if not isinstance(fid_raw, list) or len(fid_raw) < 3:
-        fail("[[fiducials]]", f"at least three fiducial markers are needed, found {len(fid_raw) if isinstance(fid_raw, list) else 0}")
-    fiducials = tuple(marker(d, f"fiducial {d.get('id', i) if isinstance(d, dict) else i}")
-                      for i, d in enumerate(fid_raw))
+        fail(
+            "[[fiducials]]",
+            f"at least three fiducial markers are needed, found {len(fid_raw) if isinstance(fid_raw, list) else 0}",
+        )
+    fiducials = tuple(
+        marker(d, f"fiducial {d.get('id', i) if isinstance(d, dict) else i}") for i, d in enumerate(fid_raw)
+    )
     if "orientation_key" not in data:
         fail("[orientation_key]", "missing table (one marker that breaks the plate's symmetry)")
     key = marker(data["orientation_key"], "orientation_key")
@@ -249,11 +267,17 @@ def parse_layout(data: dict, path="<layout>") -> Layout:
     t_raw = data.get("targets", [])
     if not isinstance(t_raw, list) or not t_raw:
         fail("[[targets]]", "no targets")
-    n_sites = sum(len(d.get("sites_mm") or []) + len(d.get("background_sites_mm") or []) + ("known_site_mm" in d)
-                  if isinstance(d, dict) and isinstance(d.get("sites_mm", []), list)
-                  and isinstance(d.get("background_sites_mm", []), list) else 1 for d in t_raw)
-    check_limit("LIMEN_MAX_LAYOUT_SITES", n_sites,
-                f"[[targets]]: {len(t_raw)} targets with {n_sites} candidate sites", p)
+    n_sites = sum(
+        len(d.get("sites_mm") or []) + len(d.get("background_sites_mm") or []) + ("known_site_mm" in d)
+        if isinstance(d, dict)
+        and isinstance(d.get("sites_mm", []), list)
+        and isinstance(d.get("background_sites_mm", []), list)
+        else 1
+        for d in t_raw
+    )
+    check_limit(
+        "LIMEN_MAX_LAYOUT_SITES", n_sites, f"[[targets]]: {len(t_raw)} targets with {n_sites} candidate sites", p
+    )
     targets: list[Target] = []
     seen_ids: set[str] = set()
     for i, d in enumerate(t_raw):
@@ -289,7 +313,8 @@ def parse_layout(data: dict, path="<layout>") -> Layout:
             if not isinstance(bg, list) or not bg:
                 fail(entry, "background_sites_mm needs at least one site")
             sites = (point(d["known_site_mm"], entry, "known_site_mm"),) + tuple(
-                point(v, entry, "background_sites_mm") for v in bg)
+                point(v, entry, "background_sites_mm") for v in bg
+            )
             s, design = 0, "known"
         else:
             fail(entry, "needs sites_mm + signal_site, or known_site_mm + background_sites_mm")
@@ -298,12 +323,12 @@ def parse_layout(data: dict, path="<layout>") -> Layout:
         thick = d.get("thickness_um")
         if thick is not None:
             thick = number(d, "thickness_um", entry, positive=True)
-        targets.append(Target(tid, diam, c, sites, s, design,
-                              None if d.get("material") is None else str(d["material"]), thick))
+        targets.append(
+            Target(tid, diam, c, sites, s, design, None if d.get("material") is None else str(d["material"]), thick)
+        )
 
     _check_overlaps(targets, fiducials + (key,), fail)
-    return Layout(name, width, height, fiducials, key, tuple(targets),
-                  str(ph.get("description", "")), p)
+    return Layout(name, width, height, fiducials, key, tuple(targets), str(ph.get("description", "")), p)
 
 
 def _check_overlaps(targets, markers, fail) -> None:

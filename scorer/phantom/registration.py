@@ -71,9 +71,9 @@ DEPTH_FRACTION = 0.35
 # Relative tolerance on the magnification range's ends (the fitted magnification of a plate
 # exactly at an end scatters by ~0.1 %).
 MAGNIFICATION_TOLERANCE = 0.005
-MAX_MARKER_BLOBS = 40       # marker-sized blobs refined and matched (deepest first)
-HYPOTHESIS_CHUNK = 4096    # hypotheses scored at once
-MAX_CANDIDATES = 500        # blobs kept for the overlay
+MAX_MARKER_BLOBS = 40  # marker-sized blobs refined and matched (deepest first)
+HYPOTHESIS_CHUNK = 4096  # hypotheses scored at once
+MAX_CANDIDATES = 500  # blobs kept for the overlay
 
 
 class RegistrationError(LimenError):
@@ -135,9 +135,11 @@ class Placement:
             "flipped": bool(self.flipped),
             "magnification": float(self.magnification),
             "markers_px": {k: [float(v[0]), float(v[1])] for k, v in self.markers_px.items()},
-            "transform": {"matrix": [[float(a) for a in row] for row in self.transform.matrix],
-                          "offset": [float(a) for a in self.transform.offset],
-                          "maps": "phantom (x_mm, y_mm) -> pixel (col, row)"},
+            "transform": {
+                "matrix": [[float(a) for a in row] for row in self.transform.matrix],
+                "offset": [float(a) for a in self.transform.offset],
+                "maps": "phantom (x_mm, y_mm) -> pixel (col, row)",
+            },
         }
 
 
@@ -170,7 +172,7 @@ def fit_similarity(src, dst, reflect: bool | None = None) -> tuple[np.ndarray, n
     x = src @ F  # F is its own inverse and symmetric
     mx, my = x.mean(axis=0), dst.mean(axis=0)
     xc, yc = x - mx, dst - my
-    var_x = np.mean(np.sum(xc ** 2, axis=1))
+    var_x = np.mean(np.sum(xc**2, axis=1))
     if var_x <= 0:
         raise ValueError("source points coincide")
     cov = yc.T @ xc / len(x)
@@ -202,7 +204,7 @@ def _block_mean(pix: np.ndarray, f: int) -> np.ndarray:
     if f == 1:
         return pix.astype(np.float64)
     h, w = pix.shape[0] // f, pix.shape[1] // f
-    a = pix[:h * f, :w * f]
+    a = pix[: h * f, : w * f]
     s = a.reshape(h, f, w * f).sum(axis=1, dtype=np.float64)
     return s.reshape(h, w, f).sum(axis=2) / (f * f)
 
@@ -233,14 +235,18 @@ def _coarse_blobs(pix: np.ndarray, f: int, closing_size: int, threshold: float) 
     labels, n = ndi.label(depth > threshold)
     if n == 0:
         return []
-    flat = np.flatnonzero(labels)           # only the (few) blob pixels are measured
+    flat = np.flatnonzero(labels)  # only the (few) blob pixels are measured
     lab = labels.ravel()[flat]
     dep = depth.ravel()[flat]
     r_idx, c_idx = np.divmod(flat, depth.shape[1])
     area = np.bincount(lab, minlength=n + 1)[1:].astype(float)
     wsum = np.bincount(lab, dep, minlength=n + 1)[1:]
-    cm = np.column_stack([np.bincount(lab, dep * r_idx, minlength=n + 1)[1:] / wsum,
-                          np.bincount(lab, dep * c_idx, minlength=n + 1)[1:] / wsum])
+    cm = np.column_stack(
+        [
+            np.bincount(lab, dep * r_idx, minlength=n + 1)[1:] / wsum,
+            np.bincount(lab, dep * c_idx, minlength=n + 1)[1:] / wsum,
+        ]
+    )
     peak = np.zeros(n + 1)
     np.maximum.at(peak, lab, dep)
     peak = peak[1:]
@@ -248,8 +254,9 @@ def _coarse_blobs(pix: np.ndarray, f: int, closing_size: int, threshold: float) 
     out = []
     for i in order:
         r, c = cm[i]
-        out.append(_Blob(r * f + (f - 1) / 2.0, c * f + (f - 1) / 2.0,
-                         2.0 * np.sqrt(area[i] / np.pi) * f, float(peak[i])))
+        out.append(
+            _Blob(r * f + (f - 1) / 2.0, c * f + (f - 1) / 2.0, 2.0 * np.sqrt(area[i] / np.pi) * f, float(peak[i]))
+        )
     return out
 
 
@@ -306,8 +313,9 @@ def _refine(pix: np.ndarray, r0: float, c0: float, diameter_px: float, iteration
 
 
 # --------------------------------------------------------------------------- matching
-def _match(p: np.ndarray, diam_mm: np.ndarray, z: np.ndarray, dz: np.ndarray,
-           mag_lo: float, mag_hi: float, tol_px_mm: float):
+def _match(
+    p: np.ndarray, diam_mm: np.ndarray, z: np.ndarray, dz: np.ndarray, mag_lo: float, mag_hi: float, tol_px_mm: float
+):
     """Best correspondence of blobs (complex detector mm ``p``, diameters) to markers ``z``.
 
     Returns (assignment array of blob index per marker, −1 if none; flip; complex s, t).
@@ -332,13 +340,13 @@ def _match(p: np.ndarray, diam_mm: np.ndarray, z: np.ndarray, dz: np.ndarray,
         if not ok.any():
             continue
         s_all, I_all, A_all, mag_all = s[ok], I[ok], A[ok], mag[ok]
-        for c0 in range(0, len(s_all), HYPOTHESIS_CHUNK):   # bounded memory: chunk × N × K
+        for c0 in range(0, len(s_all), HYPOTHESIS_CHUNK):  # bounded memory: chunk × N × K
             sl = slice(c0, c0 + HYPOTHESIS_CHUNK)
             s, Ia, Aa, mag = s_all[sl], I_all[sl], A_all[sl], mag_all[sl]
             t = p[Ia] - s * zz[Aa]
-            q = s[:, None] * zz[None, :] + t[:, None]                       # H × N predicted
-            dist = np.abs(q[:, :, None] - p[None, None, :])                 # H × N × K
-            dpred = mag[:, None] * dz[None, :]                              # H × N predicted diameters
+            q = s[:, None] * zz[None, :] + t[:, None]  # H × N predicted
+            dist = np.abs(q[:, :, None] - p[None, None, :])  # H × N × K
+            dpred = mag[:, None] * dz[None, :]  # H × N predicted diameters
             size_ok = np.abs(diam_mm[None, None, :] / dpred[:, :, None] - 1) < DIAMETER_TOLERANCE
             tol = np.maximum(tol_px_mm, 0.2 * dpred)[:, :, None]
             dist = np.where(size_ok & (dist < tol), dist, np.inf)
@@ -347,7 +355,7 @@ def _match(p: np.ndarray, diam_mm: np.ndarray, z: np.ndarray, dz: np.ndarray,
             found = np.isfinite(dmin)
             count = found.sum(axis=1)
             sse = np.where(found, dmin / dpred, 0.0) ** 2
-            score = count - np.minimum(sse.sum(axis=1), 0.99)   # count first, then relative error
+            score = count - np.minimum(sse.sum(axis=1), 0.99)  # count first, then relative error
             h = int(np.argmax(score))
             if best is None or score[h] > best[0]:
                 best = (float(score[h]), np.where(found[h], k[h], -1), flip, s[h], t[h])
@@ -357,8 +365,9 @@ def _match(p: np.ndarray, diam_mm: np.ndarray, z: np.ndarray, dz: np.ndarray,
 
 
 # --------------------------------------------------------------------------- main entry
-def register(image: Image, layout: Layout, *, max_residual_px: float = 1.0,
-             magnification_range=(0.8, 1.4), path=None) -> Placement:
+def register(
+    image: Image, layout: Layout, *, max_residual_px: float = 1.0, magnification_range=(0.8, 1.4), path=None
+) -> Placement:
     """Find the phantom's markers and fit the phantom-mm → pixel transform.
 
     Parameters
@@ -404,7 +413,9 @@ def register(image: Image, layout: Layout, *, max_residual_px: float = 1.0,
     if min(h_mm, w_mm) < short or h_mm * w_mm < short * long_:
         raise RegistrationError(
             f"image ({h_mm:.1f} × {w_mm:.1f} mm) is smaller than the phantom "
-            f"({layout.width_mm:g} × {layout.height_mm:g} mm at magnification ≥ {mag_lo:g})", where)
+            f"({layout.width_mm:g} × {layout.height_mm:g} mm at magnification ≥ {mag_lo:g})",
+            where,
+        )
 
     d_mm = np.array([m.diameter_mm for m in markers])
     c_min = min(m.contrast for m in markers)
@@ -432,8 +443,10 @@ def register(image: Image, layout: Layout, *, max_residual_px: float = 1.0,
 
     what = f"{len(layout.fiducials)} fiducials + orientation key"
     if len(good) < 3:
-        fail(f"phantom not found: {len(good)} of {n_exp} markers ({what}) found "
-             f"({len(blobs)} dark blob(s) in all); is the phantom in the field?")
+        fail(
+            f"phantom not found: {len(good)} of {n_exp} markers ({what}) found "
+            f"({len(blobs)} dark blob(s) in all); is the phantom in the field?"
+        )
 
     # match in detector millimetres (x = col·Δcol, y = row·Δrow)
     p = np.array([b.col * dc_mm + 1j * b.row * dr_mm for b in good])
@@ -441,13 +454,17 @@ def register(image: Image, layout: Layout, *, max_residual_px: float = 1.0,
     z = np.array([m.x_mm + 1j * m.y_mm for m in markers])
     best = _match(p, diam, z, d_mm, mag_lo / SIZE_SLACK, mag_hi * SIZE_SLACK, 3.0 * pixel_mm)
     if best is None:
-        fail(f"phantom not found: 0 of {n_exp} markers ({what}) found; {len(good)} marker-like "
-             f"blob(s), but no two of them fit the layout")
+        fail(
+            f"phantom not found: 0 of {n_exp} markers ({what}) found; {len(good)} marker-like "
+            f"blob(s), but no two of them fit the layout"
+        )
     assign, flip, s, t = best
     n_found = int((assign >= 0).sum())
     if n_found < 3:
-        fail(f"phantom not found: at most {n_found} of {n_exp} markers ({what}) found in the "
-             f"layout's arrangement among {len(good)} marker-like blob(s)")
+        fail(
+            f"phantom not found: at most {n_found} of {n_exp} markers ({what}) found in the "
+            f"layout's arrangement among {len(good)} marker-like blob(s)"
+        )
 
     def fit(found: list[int]) -> Placement:
         """Least-squares similarity on the found markers, in detector mm (non-square pixels)."""
@@ -460,10 +477,15 @@ def register(image: Image, layout: Layout, *, max_residual_px: float = 1.0,
         res = np.hypot(*(tf.to_pixel(src) - meas_rc).T)
         rotation, flipped, mag = _angle_of(A_mm)
         return Placement(
-            transform=tf, residual_px=float(np.sqrt(np.mean(res ** 2))), max_residual_px=float(res.max()),
-            rotation_deg=rotation, flipped=flipped, magnification=mag,
+            transform=tf,
+            residual_px=float(np.sqrt(np.mean(res**2))),
+            max_residual_px=float(res.max()),
+            rotation_deg=rotation,
+            flipped=flipped,
+            magnification=mag,
             markers_px={markers[i].id: (float(rc[0]), float(rc[1])) for i, rc in zip(found, meas_rc)},
-            candidates_px=candidates)
+            candidates_px=candidates,
+        )
 
     if n_found < n_exp:
         found = [i for i in range(n_exp) if assign[i] >= 0]
@@ -471,14 +493,21 @@ def register(image: Image, layout: Layout, *, max_residual_px: float = 1.0,
         partial = fit(found)
         pred = partial.transform.to_pixel([markers[i].xy_mm for i in missing])
         scale = partial.transform.scale_px_per_mm()
-        outside = [markers[i].id for i, rc in zip(missing, pred)
-                   if not _inside(rc, 0.5 * markers[i].diameter_mm * scale, rows, cols)]
+        outside = [
+            markers[i].id
+            for i, rc in zip(missing, pred)
+            if not _inside(rc, 0.5 * markers[i].diameter_mm * scale, rows, cols)
+        ]
         names = ", ".join(markers[i].id for i in missing)
         if outside:
-            fail(f"phantom cut off by the field edge: marker(s) {', '.join(outside)} would lie "
-                 f"outside the image ({n_found} of {n_exp} markers found)", partial)
-        fail(f"only {n_found} of {n_exp} markers found; marker(s) {names} not found where the "
-             f"others place them", partial)
+            fail(
+                f"phantom cut off by the field edge: marker(s) {', '.join(outside)} would lie "
+                f"outside the image ({n_found} of {n_exp} markers found)",
+                partial,
+            )
+        fail(
+            f"only {n_found} of {n_exp} markers found; marker(s) {names} not found where the others place them", partial
+        )
 
     placement = fit(list(range(n_exp)))
     transform = placement.transform
@@ -487,8 +516,7 @@ def register(image: Image, layout: Layout, *, max_residual_px: float = 1.0,
 
     # every marker and every target site (with its disc) must lie inside the image
     scale = transform.scale_px_per_mm()
-    bad_markers = [m.id for m, rc in zip(markers, meas_rc)
-                   if not _inside(rc, 0.5 * m.diameter_mm * scale, rows, cols)]
+    bad_markers = [m.id for m, rc in zip(markers, meas_rc) if not _inside(rc, 0.5 * m.diameter_mm * scale, rows, cols)]
     n_sites = n_out = 0
     for tg in layout.targets:
         rc = transform.to_pixel(tg.sites)
@@ -501,30 +529,33 @@ def register(image: Image, layout: Layout, *, max_residual_px: float = 1.0,
             parts.append(f"{n_out} of {n_sites} target sites")
         if bad_markers:
             parts.append(f"marker(s) {', '.join(bad_markers)}")
-        fail(f"phantom cut off by the field edge: {' and '.join(parts)} lie outside the image",
-             placement)
+        fail(f"phantom cut off by the field edge: {' and '.join(parts)} lie outside the image", placement)
     if not mag_lo * (1 - MAGNIFICATION_TOLERANCE) <= mag <= mag_hi * (1 + MAGNIFICATION_TOLERANCE):
         fail(f"magnification {mag:.3f} lies outside the allowed range {mag_lo:g}–{mag_hi:g}", placement)
     if placement.residual_px > max_residual_px:
-        fail(f"marker fit residual {placement.residual_px:.2f} px RMS (max {placement.max_residual_px:.2f} px) "
-             f"exceeds the limit of {max_residual_px:g} px; wrong layout file or a distorted image?",
-             placement)
+        fail(
+            f"marker fit residual {placement.residual_px:.2f} px RMS (max {placement.max_residual_px:.2f} px) "
+            f"exceeds the limit of {max_residual_px:g} px; wrong layout file or a distorted image?",
+            placement,
+        )
     return placement
 
 
 def _inside(rc, radius_px: float, rows: int, cols: int) -> bool:
     """Does a disc at (row, col) lie wholly inside the image (pixel edges at −½ and n − ½)?"""
     r, c = float(rc[0]), float(rc[1])
-    return (r - radius_px >= -0.5 and c - radius_px >= -0.5
-            and r + radius_px <= rows - 0.5 and c + radius_px <= cols - 0.5)
+    return (
+        r - radius_px >= -0.5 and c - radius_px >= -0.5 and r + radius_px <= rows - 0.5 and c + radius_px <= cols - 0.5
+    )
 
 
 # --------------------------------------------------------------------------- overlay
-OVERLAY_MAX_PX = 1400   # longest side of the plotted image
+OVERLAY_MAX_PX = 1400  # longest side of the plotted image
 
 
-def draw_overlay(image: Image, layout: Layout, placement: Placement | None, out_png,
-                 candidates_px=None, title: str = "") -> Path:
+def draw_overlay(
+    image: Image, layout: Layout, placement: Placement | None, out_png, candidates_px=None, title: str = ""
+) -> Path:
     """Write a PNG showing the image, the blobs found and (if any) the fitted placement.
 
     Parameters
@@ -580,8 +611,7 @@ def draw_overlay(image: Image, layout: Layout, placement: Placement | None, out_
 
     if candidates_px:
         circ = [Circle((c, r), max(d / 2, 2.0)) for r, c, d in candidates_px]
-        ax.add_collection(PatchCollection(circ, facecolor="none", edgecolor="yellow",
-                                          linestyle="--", linewidth=0.8))
+        ax.add_collection(PatchCollection(circ, facecolor="none", edgecolor="yellow", linestyle="--", linewidth=0.8))
     lines = [title] if title else []
     if placement is not None:
         tf = placement.transform
@@ -596,36 +626,59 @@ def draw_overlay(image: Image, layout: Layout, placement: Placement | None, out_
             for k, x in enumerate(rc):
                 (sig if k == tg.signal_site else sites).append(Circle((x[1], x[0]), rad))
         ax.add_collection(PatchCollection(sites, facecolor="none", edgecolor="deepskyblue", linewidth=0.5))
-        ax.add_collection(PatchCollection(sig, facecolor="none", edgecolor="orange", linewidth=0.9,
-                                          linestyle="--"))
+        ax.add_collection(PatchCollection(sig, facecolor="none", edgecolor="orange", linewidth=0.9, linestyle="--"))
         mk = tf.to_pixel([m.xy_mm for m in layout.markers])
-        ax.add_collection(PatchCollection(
-            [Circle((x[1], x[0]), 0.5 * m.diameter_mm * scale) for m, x in zip(layout.markers, mk)],
-            facecolor="none", edgecolor="lime", linewidth=1.2))
+        ax.add_collection(
+            PatchCollection(
+                [Circle((x[1], x[0]), 0.5 * m.diameter_mm * scale) for m, x in zip(layout.markers, mk)],
+                facecolor="none",
+                edgecolor="lime",
+                linewidth=1.2,
+            )
+        )
         for m, x in zip(layout.markers, mk):
-            ax.annotate(m.id, (x[1], x[0]), xytext=(8, -8), textcoords="offset points", color="lime", fontsize=11,
-                        fontweight="bold", bbox={"boxstyle": "round,pad=0.15", "fc": "black", "ec": "none", "alpha": 0.6})
+            ax.annotate(
+                m.id,
+                (x[1], x[0]),
+                xytext=(8, -8),
+                textcoords="offset points",
+                color="lime",
+                fontsize=11,
+                fontweight="bold",
+                bbox={"boxstyle": "round,pad=0.15", "fc": "black", "ec": "none", "alpha": 0.6},
+            )
         meas = np.array(list(placement.markers_px.values()))
         if len(meas):
             ax.plot(meas[:, 1], meas[:, 0], "+", color="red", markersize=10, mew=1.2)
-        lines.append(f"residual {placement.residual_px:.3f} px RMS (max {placement.max_residual_px:.3f} px); "
-                     f"rotation {placement.rotation_deg:.2f}°{', flipped' if placement.flipped else ''}; "
-                     f"magnification {placement.magnification:.4f}")
+        lines.append(
+            f"residual {placement.residual_px:.3f} px RMS (max {placement.max_residual_px:.3f} px); "
+            f"rotation {placement.rotation_deg:.2f}°{', flipped' if placement.flipped else ''}; "
+            f"magnification {placement.magnification:.4f}"
+        )
     else:
         lines.append(f"not registered: {len(candidates_px)} blob(s) found")
     fig.suptitle("\n".join(_wrap(x) for x in lines), fontsize=10)
     from matplotlib.lines import Line2D
 
-    key = [Line2D([], [], color="yellow", ls="--", label="blob found"),
-           Line2D([], [], color="lime", label="marker (fitted)"), Line2D([], [], color="red", marker="+", ls="",
-                                                                      label="marker centre measured"),
-           Line2D([], [], color="deepskyblue", label="candidate site"),
-           Line2D([], [], color="orange", ls="--", label="site holding the disc"),
-           Line2D([], [], color="cyan", label="phantom outline")]
-    ax.legend(handles=key, loc="lower right", fontsize=9, framealpha=0.85, facecolor="black", labelcolor="white",
-              edgecolor="0.5")
+    key = [
+        Line2D([], [], color="yellow", ls="--", label="blob found"),
+        Line2D([], [], color="lime", label="marker (fitted)"),
+        Line2D([], [], color="red", marker="+", ls="", label="marker centre measured"),
+        Line2D([], [], color="deepskyblue", label="candidate site"),
+        Line2D([], [], color="orange", ls="--", label="site holding the disc"),
+        Line2D([], [], color="cyan", label="phantom outline"),
+    ]
+    ax.legend(
+        handles=key,
+        loc="lower right",
+        fontsize=9,
+        framealpha=0.85,
+        facecolor="black",
+        labelcolor="white",
+        edgecolor="0.5",
+    )
     buf = io.BytesIO()
-    with warnings.catch_warnings():   # a file name in a script the font lacks is drawn as boxes, not warned about
+    with warnings.catch_warnings():  # a file name in a script the font lacks is drawn as boxes, not warned about
         warnings.filterwarnings("ignore", message=r"Glyph .* missing from")
         fig.savefig(buf, format="png")
     atomic_write_bytes(out, buf.getvalue())

@@ -9,9 +9,25 @@ from . import scale as scale
 from . import store as store
 from . import simulated as simulated
 
-from .config import NightlyConfig as NightlyConfig, DetectorConfig as DetectorConfig, load_config as load_config, default_config as default_config
-from .store import Store as Store, open_store as open_store, default_db_url as default_db_url, SCHEMA_VERSION as SCHEMA_VERSION
-from .control import Alert as Alert, compute_baseline as compute_baseline, evaluate_session as evaluate_session, ewma as ewma, ewma_sigma_factor as ewma_sigma_factor
+from .config import (
+    NightlyConfig as NightlyConfig,
+    DetectorConfig as DetectorConfig,
+    load_config as load_config,
+    default_config as default_config,
+)
+from .store import (
+    Store as Store,
+    open_store as open_store,
+    default_db_url as default_db_url,
+    SCHEMA_VERSION as SCHEMA_VERSION,
+)
+from .control import (
+    Alert as Alert,
+    compute_baseline as compute_baseline,
+    evaluate_session as evaluate_session,
+    ewma as ewma,
+    ewma_sigma_factor as ewma_sigma_factor,
+)
 from .scale import SessionJob as SessionJob, SessionOutcome as SessionOutcome, score_session as score_session
 from .nightly import NightlyResult as NightlyResult, run_nightly as run_nightly
 from .mail import send_alerts as send_alerts

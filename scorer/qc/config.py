@@ -70,11 +70,35 @@ from scorer.phantom.layout import Layout, load_layout
 FORMAT = "limen-nightly/1"
 RULES = ("baseline", "shewhart", "ewma", "limits")
 IDENTIFIERS = ("detector_id", "device_serial", "station_name")
-_DETECTOR_KEYS = {"name", *IDENTIFIERS, "layout", "limits", "conversion", "mtf", "human_factor",
-                  "human_factor_from", "expected", "observer", "methods", "n_boot", "seed", "min_images",
-                  "baseline_sessions"}
-_DEFAULT_KEYS = {"observer", "methods", "n_boot", "seed", "min_images", "baseline_sessions", "accept_unlisted",
-                 "layout", "limits", "conversion"}
+_DETECTOR_KEYS = {
+    "name",
+    *IDENTIFIERS,
+    "layout",
+    "limits",
+    "conversion",
+    "mtf",
+    "human_factor",
+    "human_factor_from",
+    "expected",
+    "observer",
+    "methods",
+    "n_boot",
+    "seed",
+    "min_images",
+    "baseline_sessions",
+}
+_DEFAULT_KEYS = {
+    "observer",
+    "methods",
+    "n_boot",
+    "seed",
+    "min_images",
+    "baseline_sessions",
+    "accept_unlisted",
+    "layout",
+    "limits",
+    "conversion",
+}
 _EXPECTED_KEYS = {"kvp", "kvp_tolerance", "anode", "filter", "exposure_uas"}
 _SMTP_KEYS = {"host", "port", "sender", "recipients", "starttls", "username", "password_env", "timeout_s"}
 _ALERT_KEYS = {"worse_fraction", "control_sigma", "ewma_lambda", "ewma_width", "rules"}
@@ -132,9 +156,14 @@ class DetectorConfig:
     baseline_sessions: int = 5
 
     def matches(self, detector_id, device_serial, station_name) -> bool:
-        return any(want is not None and got is not None and want.strip() == got.strip()
-                   for want, got in ((self.detector_id, detector_id), (self.device_serial, device_serial),
-                                     (self.station_name, station_name)))
+        return any(
+            want is not None and got is not None and want.strip() == got.strip()
+            for want, got in (
+                (self.detector_id, detector_id),
+                (self.device_serial, device_serial),
+                (self.station_name, station_name),
+            )
+        )
 
 
 @dataclass(frozen=True)
@@ -182,8 +211,9 @@ class NightlyConfig:
         ident = next((v.strip() for v in (detector_id, device_serial, station_name) if v and v.strip()), None)
         if ident is None or not self.accept_unlisted:
             return None
-        return dataclasses.replace(self.defaults, name=ident, detector_id=detector_id,
-                                   device_serial=device_serial, station_name=station_name)
+        return dataclasses.replace(
+            self.defaults, name=ident, detector_id=detector_id, device_serial=device_serial, station_name=station_name
+        )
 
     def by_name(self, name: str) -> DetectorConfig:
         for d in self.detectors:
@@ -211,7 +241,7 @@ def load_config(path, factor_loader: Callable | None = None, mtf_loader: Callabl
     base = path.parent
     _known(data, {"format", "programme", "defaults", "alerts", "smtp", "detectors"}, path, "the file")
     if data.get("format") != FORMAT:
-        raise LimenError(f"expected format = \"{FORMAT}\", got {data.get('format')!r}", path)
+        raise LimenError(f'expected format = "{FORMAT}", got {data.get("format")!r}', path)
     programme = _text(data.get("programme", "Nightly phantom QC"), path, "programme")
     dflt = _table(data.get("defaults", {}), path, "[defaults]")
     _known(dflt, _DEFAULT_KEYS, path, "[defaults]")
@@ -219,8 +249,9 @@ def load_config(path, factor_loader: Callable | None = None, mtf_loader: Callabl
     if not isinstance(accept, bool):
         raise LimenError("[defaults] accept_unlisted must be true or false", path)
     ctx = _Ctx(path, base, factor_loader, mtf_loader)
-    defaults = _detector(dict(dflt, name="(default)"), ctx, "[defaults]",
-                         DetectorConfig(name="(default)", layout=None), is_default=True)
+    defaults = _detector(
+        dict(dflt, name="(default)"), ctx, "[defaults]", DetectorConfig(name="(default)", layout=None), is_default=True
+    )
     if defaults.layout is None:
         defaults = dataclasses.replace(defaults, layout=load_layout())
     rows = data.get("detectors", [])
@@ -243,8 +274,15 @@ def load_config(path, factor_loader: Callable | None = None, mtf_loader: Callabl
         detectors.append(d)
     alerts = _alerts(_table(data.get("alerts", {}), path, "[alerts]"), path)
     smtp = _smtp(data["smtp"], path) if "smtp" in data else None
-    return NightlyConfig(programme=programme, detectors=tuple(detectors), defaults=defaults,
-                         accept_unlisted=accept, alerts=alerts, smtp=smtp, path=str(path))
+    return NightlyConfig(
+        programme=programme,
+        detectors=tuple(detectors),
+        defaults=defaults,
+        accept_unlisted=accept,
+        alerts=alerts,
+        smtp=smtp,
+        path=str(path),
+    )
 
 
 # --------------------------------------------------------------------------- validation helpers
@@ -315,7 +353,7 @@ def _detector(row: dict, ctx: _Ctx, where: str, defaults: DetectorConfig, is_def
     if "methods" in row:
         m = row["methods"]
         if not isinstance(m, list) or not m or any(x not in ("dprime", "count") for x in m):
-            raise LimenError(f"{where}: methods must be a list of \"dprime\" and/or \"count\"", path)
+            raise LimenError(f'{where}: methods must be a list of "dprime" and/or "count"', path)
         kw["methods"] = tuple(dict.fromkeys(m))
     if "n_boot" in row:
         kw["n_boot"] = _number(row["n_boot"], path, f"{where}: n_boot", 0, 100000, integer=True)
@@ -324,8 +362,9 @@ def _detector(row: dict, ctx: _Ctx, where: str, defaults: DetectorConfig, is_def
     if "min_images" in row:
         kw["min_images"] = _number(row["min_images"], path, f"{where}: min_images", 2, 1000, integer=True)
     if "baseline_sessions" in row:
-        kw["baseline_sessions"] = _number(row["baseline_sessions"], path, f"{where}: baseline_sessions", 2, 1000,
-                                          integer=True)
+        kw["baseline_sessions"] = _number(
+            row["baseline_sessions"], path, f"{where}: baseline_sessions", 2, 1000, integer=True
+        )
     if "human_factor" in row and "human_factor_from" in row:
         raise LimenError(f"{where}: give human_factor or human_factor_from, not both", path)
     if "human_factor" in row:
@@ -333,8 +372,9 @@ def _detector(row: dict, ctx: _Ctx, where: str, defaults: DetectorConfig, is_def
     if "human_factor_from" in row:
         if ctx.factor_loader is None:
             raise LimenError(f"{where}: human_factor_from needs the analysis reader of `limen nightly`", path)
-        kw["human_factor"] = float(ctx.factor_loader(ctx.file(row["human_factor_from"], where,
-                                                              "human_factor_from"), observer))
+        kw["human_factor"] = float(
+            ctx.factor_loader(ctx.file(row["human_factor_from"], where, "human_factor_from"), observer)
+        )
     if "mtf" in row:
         if ctx.mtf_loader is None:
             raise LimenError(f"{where}: mtf needs the detector-JSON reader of `limen nightly`", path)
@@ -343,11 +383,17 @@ def _detector(row: dict, ctx: _Ctx, where: str, defaults: DetectorConfig, is_def
         kw["expected"] = _expected(_table(row["expected"], path, f"{where}: expected"), path, where)
     d = dataclasses.replace(defaults, **kw)
     if d.limits is not None and d.limits.observer == "human" and d.human_factor is None:
-        raise LimenError(f"{where}: limits {d.limits.path} are for human readers; give human_factor or "
-                         "human_factor_from to compare model thresholds with them", path)
+        raise LimenError(
+            f"{where}: limits {d.limits.path} are for human readers; give human_factor or "
+            "human_factor_from to compare model thresholds with them",
+            path,
+        )
     if d.limits is not None and d.limits.observer not in ("human", d.observer):
-        raise LimenError(f"{where}: limits {d.limits.path} are for the {d.limits.observer.upper()} observer, "
-                         f"but this detector is scored with {d.observer.upper()}", path)
+        raise LimenError(
+            f"{where}: limits {d.limits.path} are for the {d.limits.observer.upper()} observer, "
+            f"but this detector is scored with {d.observer.upper()}",
+            path,
+        )
     return d
 
 
@@ -364,8 +410,12 @@ def _expected(t: dict, path, where) -> Expected:
             kw[key] = _text(t[key], path, f"{where}.{key}")
     if "exposure_uas" in t:
         r = t["exposure_uas"]
-        if (not isinstance(r, list) or len(r) != 2 or any(isinstance(v, bool) or not isinstance(v, (int, float))
-                                                           for v in r) or not 0 <= r[0] <= r[1]):
+        if (
+            not isinstance(r, list)
+            or len(r) != 2
+            or any(isinstance(v, bool) or not isinstance(v, (int, float)) for v in r)
+            or not 0 <= r[0] <= r[1]
+        ):
             raise LimenError(f"{where}.exposure_uas must be [lowest, highest] in µAs", path)
         kw["exposure_uas"] = (float(r[0]), float(r[1]))
     return Expected(**kw)
@@ -405,6 +455,13 @@ def _smtp(t, path) -> SmtpConfig:
     starttls = t.get("starttls", False)
     if not isinstance(starttls, bool):
         raise LimenError("[smtp] starttls must be true or false", path)
-    return SmtpConfig(host=host, port=port, sender=sender, recipients=tuple(rec), starttls=starttls,
-                      username=t.get("username") or None, password_env=t.get("password_env") or None,
-                      timeout_s=float(_number(t.get("timeout_s", 30.0), path, "[smtp] timeout_s", 1, 600)))
+    return SmtpConfig(
+        host=host,
+        port=port,
+        sender=sender,
+        recipients=tuple(rec),
+        starttls=starttls,
+        username=t.get("username") or None,
+        password_env=t.get("password_env") or None,
+        timeout_s=float(_number(t.get("timeout_s", 30.0), path, "[smtp] timeout_s", 1, 600)),
+    )

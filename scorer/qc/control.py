@@ -48,8 +48,8 @@ class Alert:
     session_date: str
     method: str
     diameter_mm: float
-    rule: str            # baseline | shewhart | ewma | limits
-    direction: str       # worse | better
+    rule: str  # baseline | shewhart | ewma | limits
+    direction: str  # worse | better
     value: float | None  # the session's threshold contrast (ewma: the EWMA's value, as a contrast)
     reference: float | None  # baseline threshold, control limit or acceptable limit (contrast)
     message: str
@@ -90,10 +90,19 @@ def compute_baseline(history: pd.DataFrame) -> pd.DataFrame:
         se = log_se_from_ci(g["ci_low"].to_numpy(float)[ok], g["ci_high"].to_numpy(float)[ok])
         se = se[np.isfinite(se)]
         se_w = float(np.median(se)) if se.size else 0.0
-        rows.append({"diameter_mm": float(d), "mean_log10": float(x.mean()), "sigma_log10": max(sd, se_w),
-                     "sd_between_log10": sd, "se_within_log10": se_w, "n_sessions": int(ok.sum())})
-    return pd.DataFrame(rows, columns=["diameter_mm", "mean_log10", "sigma_log10", "sd_between_log10",
-                                       "se_within_log10", "n_sessions"])
+        rows.append(
+            {
+                "diameter_mm": float(d),
+                "mean_log10": float(x.mean()),
+                "sigma_log10": max(sd, se_w),
+                "sd_between_log10": sd,
+                "se_within_log10": se_w,
+                "n_sessions": int(ok.sum()),
+            }
+        )
+    return pd.DataFrame(
+        rows, columns=["diameter_mm", "mean_log10", "sigma_log10", "sd_between_log10", "se_within_log10", "n_sessions"]
+    )
 
 
 def ewma(x, lam: float, start: float) -> np.ndarray:
@@ -114,20 +123,20 @@ def ewma_sigma_factor(lam: float, t) -> np.ndarray:
 def shewhart_halfwidth(sigma: float, n_baseline: int, rules, se_session: float = 0.0) -> float:
     """L √(σ_x² + σ²/K), σ_x = max(σ, this session's SE) (log10 units)."""
     sx = max(sigma, se_session if np.isfinite(se_session) else 0.0)
-    return rules.control_sigma * float(np.sqrt(sx ** 2 + sigma ** 2 / max(n_baseline, 1)))
+    return rules.control_sigma * float(np.sqrt(sx**2 + sigma**2 / max(n_baseline, 1)))
 
 
 def ewma_halfwidth(sigma: float, n_baseline: int, rules, t: int) -> float:
     """L σ √(λ/(2−λ)(1 − (1−λ)^(2t)) + 1/K) (log10 units)."""
     f = float(ewma_sigma_factor(rules.ewma_lambda, t))
-    return rules.ewma_width * sigma * float(np.sqrt(f ** 2 + 1 / max(n_baseline, 1)))
+    return rules.ewma_width * sigma * float(np.sqrt(f**2 + 1 / max(n_baseline, 1)))
 
 
 def control_limits(baseline_row, rules, t_after: int | None = None) -> dict:
     """Shewhart (and, for the t-th session after the baseline, EWMA) limits as contrasts (for plots)."""
     m, s, k = baseline_row["mean_log10"], baseline_row["sigma_log10"], int(baseline_row["n_sessions"])
     w = shewhart_halfwidth(s, k, rules)
-    out = {"baseline": 10 ** m, "shewhart_low": 10 ** (m - w), "shewhart_high": 10 ** (m + w)}
+    out = {"baseline": 10**m, "shewhart_low": 10 ** (m - w), "shewhart_high": 10 ** (m + w)}
     if t_after:
         w = ewma_halfwidth(s, k, rules, t_after)
         out.update(ewma_low=10 ** (m - w), ewma_high=10 ** (m + w))
@@ -138,8 +147,15 @@ def _pct(c) -> str:
     return f"{100 * c:.3g} %"
 
 
-def evaluate_session(detector: str, session_id: int, history: pd.DataFrame, baseline: pd.DataFrame | None,
-                     baseline_last: tuple[str, int] | None, baseline_ids: set, rules) -> list[Alert]:
+def evaluate_session(
+    detector: str,
+    session_id: int,
+    history: pd.DataFrame,
+    baseline: pd.DataFrame | None,
+    baseline_last: tuple[str, int] | None,
+    baseline_ids: set,
+    rules,
+) -> list[Alert]:
     """Alerts for one session of one detector and method.
 
     Parameters
@@ -160,11 +176,18 @@ def evaluate_session(detector: str, session_id: int, history: pd.DataFrame, base
     method = str(cur["method"].iloc[0]) if "method" in cur else ""
     base = {} if baseline is None else {round(float(r.diameter_mm), 6): r for r in baseline.itertuples()}
     order = history.drop_duplicates("session_id")[["session_id", "session_date"]].sort_values(
-        ["session_date", "session_id"])
-    after = [] if baseline_last is None else [
-        int(r.session_id) for r in order.itertuples()
-        if (str(r.session_date), int(r.session_id)) > (str(baseline_last[0]), int(baseline_last[1]))
-        and int(r.session_id) not in baseline_ids]
+        ["session_date", "session_id"]
+    )
+    after = (
+        []
+        if baseline_last is None
+        else [
+            int(r.session_id)
+            for r in order.itertuples()
+            if (str(r.session_date), int(r.session_id)) > (str(baseline_last[0]), int(baseline_last[1]))
+            and int(r.session_id) not in baseline_ids
+        ]
+    )
     judged = baseline is not None and session_id not in baseline_ids
     for r in cur.itertuples():
         d = float(r.diameter_mm)
@@ -172,41 +195,71 @@ def evaluate_session(detector: str, session_id: int, history: pd.DataFrame, base
         where = f"{detector} {date}, {d:g} mm ({method})"
 
         def add(rule, direction, value, reference, message, d=d, where=where):
-            alerts.append(Alert(detector, session_id, date, method, d, rule, direction,
-                                None if value is None or not np.isfinite(value) else float(value),
-                                None if reference is None else float(reference), f"{where}: {message}"))
+            alerts.append(
+                Alert(
+                    detector,
+                    session_id,
+                    date,
+                    method,
+                    d,
+                    rule,
+                    direction,
+                    None if value is None or not np.isfinite(value) else float(value),
+                    None if reference is None else float(reference),
+                    f"{where}: {message}",
+                )
+            )
 
         if "limits" in rules.rules and getattr(r, "verdict", None) == "fail":
-            add("limits", "worse", c, getattr(r, "acceptable", None),
+            add(
+                "limits",
+                "worse",
+                c,
+                getattr(r, "acceptable", None),
                 f"threshold contrast {_pct(c)} fails the acceptable limit"
-                + (f" {_pct(r.acceptable)}" if getattr(r, "acceptable", None) else ""))
+                + (f" {_pct(r.acceptable)}" if getattr(r, "acceptable", None) else ""),
+            )
         b = base.get(round(d, 6))
         if not judged or b is None or not (np.isfinite(c) and c > 0):
             continue
         m, s, k = float(b.mean_log10), float(b.sigma_log10), int(b.n_sessions)
         x = np.log10(c)
-        ref = 10 ** m
+        ref = 10**m
         if "baseline" in rules.rules:
             lo = float(r.ci_low) if r.ci_low is not None and np.isfinite(r.ci_low) else c
             if lo > ref * (1 + rules.worse_fraction):
-                add("baseline", "worse", c, ref,
+                add(
+                    "baseline",
+                    "worse",
+                    c,
+                    ref,
                     f"threshold contrast {_pct(c)} (CI from {_pct(lo)}) is more than {100 * rules.worse_fraction:g} % "
-                    f"above the baseline {_pct(ref)}")
+                    f"above the baseline {_pct(ref)}",
+                )
         se = float(log_se_from_ci(r.ci_low, r.ci_high)) if r.ci_low is not None and r.ci_high is not None else 0.0
         w = shewhart_halfwidth(s, k, rules, se if np.isfinite(se) else 0.0)
         if "shewhart" in rules.rules and s > 0 and abs(x - m) > w:
             direction = "worse" if x > m else "better"
             lim = 10 ** (m + np.sign(x - m) * w)
-            add("shewhart", direction, c, lim,
+            add(
+                "shewhart",
+                direction,
+                c,
+                lim,
                 f"threshold contrast {_pct(c)} is outside the {rules.control_sigma:g} σ control limit {_pct(lim)} "
-                f"(baseline {_pct(ref)})")
+                f"(baseline {_pct(ref)})",
+            )
         if "ewma" in rules.rules and s > 0 and session_id in after:
-            seq = [sid for sid in after if (str(order.set_index("session_id").loc[sid, "session_date"]), sid)
-                   <= (date, session_id)]
+            seq = [
+                sid
+                for sid in after
+                if (str(order.set_index("session_id").loc[sid, "session_date"]), sid) <= (date, session_id)
+            ]
             xs = []
             for sid in seq:
                 v = history[(history["session_id"] == sid) & np.isclose(history["diameter_mm"], d)][
-                    "threshold_contrast"].to_numpy(float)
+                    "threshold_contrast"
+                ].to_numpy(float)
                 if v.size and np.isfinite(v[0]) and v[0] > 0:
                     xs.append(np.log10(v[0]))
             if not xs:
@@ -216,7 +269,12 @@ def evaluate_session(detector: str, session_id: int, history: pd.DataFrame, base
             if abs(z - m) > w:
                 direction = "worse" if z > m else "better"
                 lim = 10 ** (m + np.sign(z - m) * w)
-                add("ewma", direction, 10 ** z, lim,
-                    f"EWMA of threshold contrast {_pct(10 ** z)} after {len(xs)} session(s) is outside its "
-                    f"control limit {_pct(lim)} (baseline {_pct(ref)})")
+                add(
+                    "ewma",
+                    direction,
+                    10**z,
+                    lim,
+                    f"EWMA of threshold contrast {_pct(10**z)} after {len(xs)} session(s) is outside its "
+                    f"control limit {_pct(lim)} (baseline {_pct(ref)})",
+                )
     return alerts

@@ -30,8 +30,8 @@ class InboxImage:
     path: str
     sha256: str
     detector: str
-    session_date: str                # YYYY-MM-DD
-    acquired: str | None = None      # ISO 8601
+    session_date: str  # YYYY-MM-DD
+    acquired: str | None = None  # ISO 8601
     detector_id: str | None = None
     device_serial: str | None = None
     station_name: str | None = None
@@ -89,27 +89,58 @@ def examine(path, sha256: str, config: NightlyConfig) -> InboxImage | Rejected:
         except LimenError as exc:
             return Rejected(str(path), sha256, _strip(str(exc), path))
     if md.presentation_intent == "FOR PRESENTATION":
-        return Rejected(str(path), sha256, "FOR PRESENTATION image: processed for display, its pixel values are "
-                                           "not linear in air kerma (export the FOR PROCESSING image)")
+        return Rejected(
+            str(path),
+            sha256,
+            "FOR PRESENTATION image: processed for display, its pixel values are "
+            "not linear in air kerma (export the FOR PROCESSING image)",
+        )
     if md.file_format != "dicom":
-        return Rejected(str(path), sha256, f"unknown detector: a {md.file_format.upper()} file carries no detector "
-                                           "identification (nightly scoring reads DICOM)")
+        return Rejected(
+            str(path),
+            sha256,
+            f"unknown detector: a {md.file_format.upper()} file carries no detector "
+            "identification (nightly scoring reads DICOM)",
+        )
     det = config.detector_for(md.detector_id, md.device_serial, md.station_name)
     if det is None:
-        ids = ", ".join(f"{k} {v!r}" for k, v in (("Detector ID", md.detector_id),
-                                                   ("Device Serial Number", md.device_serial),
-                                                   ("Station Name", md.station_name)) if v) or "no identifier"
+        ids = (
+            ", ".join(
+                f"{k} {v!r}"
+                for k, v in (
+                    ("Detector ID", md.detector_id),
+                    ("Device Serial Number", md.device_serial),
+                    ("Station Name", md.station_name),
+                )
+                if v
+            )
+            or "no identifier"
+        )
         return Rejected(str(path), sha256, f"unknown detector ({ids}): not in the nightly configuration")
     extra = _header_extras(path)
     date = (md.acquisition_datetime or "")[:10] or extra.get("content_date")
     if not date or len(date) != 10:
-        return Rejected(str(path), sha256, "no acquisition date (Acquisition DateTime, Acquisition Date or "
-                                           "Content Date): cannot tell which session the image belongs to")
+        return Rejected(
+            str(path),
+            sha256,
+            "no acquisition date (Acquisition DateTime, Acquisition Date or "
+            "Content Date): cannot tell which session the image belongs to",
+        )
     kvp = None if md.kvp is None else round(float(md.kvp), 1)
-    img = InboxImage(path=str(path), sha256=sha256, detector=det.name, session_date=date,
-                     acquired=md.acquisition_datetime, detector_id=md.detector_id, device_serial=md.device_serial,
-                     station_name=md.station_name, kvp=kvp, exposure_uas=md.exposure_uas,
-                     anode=extra.get("anode"), filter=extra.get("filter"))
+    img = InboxImage(
+        path=str(path),
+        sha256=sha256,
+        detector=det.name,
+        session_date=date,
+        acquired=md.acquisition_datetime,
+        detector_id=md.detector_id,
+        device_serial=md.device_serial,
+        station_name=md.station_name,
+        kvp=kvp,
+        exposure_uas=md.exposure_uas,
+        anode=extra.get("anode"),
+        filter=extra.get("filter"),
+    )
     img.flags = det.expected.check(img.kvp, img.anode, img.filter, img.exposure_uas)
     return img
 
@@ -175,7 +206,7 @@ def _header_extras(path: Path) -> dict:
 
 def _strip(message: str, path: Path) -> str:
     prefix = f"{path}: "
-    return message[len(prefix):] if message.startswith(prefix) else message
+    return message[len(prefix) :] if message.startswith(prefix) else message
 
 
 def quarantine_file(path, quarantine_dir, reason: str) -> Path | None:

@@ -8,8 +8,10 @@ from email.message import EmailMessage
 
 from scorer.errors import LimenError
 
-CAUTION = ("These alerts support, and never replace, the judgement of a qualified medical physicist; "
-           "local regulations and licensed practice prevail.")
+CAUTION = (
+    "These alerts support, and never replace, the judgement of a qualified medical physicist; "
+    "local regulations and licensed practice prevail."
+)
 
 
 def alert_message(smtp, alerts: list[dict], programme: str) -> EmailMessage:

@@ -38,11 +38,22 @@ class NightlyResult:
     timings: dict = field(default_factory=dict)
 
     def to_json(self) -> dict:
-        return {"scored_images": self.scored_images, "sessions_scored": len(self.sessions_scored),
-                "sessions_waiting": len(self.waiting), "quarantined": self.quarantined, "alerts": self.alerts,
-                "sessions": self.sessions_scored, "waiting": self.waiting, "duplicates": self.duplicates,
-                "arriving": self.arriving, "errors": self.errors, "emailed_alerts": self.emailed,
-                "runner": self.runner, "database": self.db, "timings_s": self.timings}
+        return {
+            "scored_images": self.scored_images,
+            "sessions_scored": len(self.sessions_scored),
+            "sessions_waiting": len(self.waiting),
+            "quarantined": self.quarantined,
+            "alerts": self.alerts,
+            "sessions": self.sessions_scored,
+            "waiting": self.waiting,
+            "duplicates": self.duplicates,
+            "arriving": self.arriving,
+            "errors": self.errors,
+            "emailed_alerts": self.emailed,
+            "runner": self.runner,
+            "database": self.db,
+            "timings_s": self.timings,
+        }
 
 
 class _Timer:
@@ -53,9 +64,18 @@ class _Timer:
         self.t[key] = self.t.get(key, 0.0) + dt
 
 
-def run_nightly(inbox, config: NightlyConfig | None = None, db_url: str | None = None, store: Store | None = None,
-                quarantine_dir=None, workers: int = 1, dask=None, settle_s: float = 0.0,
-                lease_s: float = DEFAULT_LEASE_S, progress: bool = False) -> NightlyResult:
+def run_nightly(
+    inbox,
+    config: NightlyConfig | None = None,
+    db_url: str | None = None,
+    store: Store | None = None,
+    quarantine_dir=None,
+    workers: int = 1,
+    dask=None,
+    settle_s: float = 0.0,
+    lease_s: float = DEFAULT_LEASE_S,
+    progress: bool = False,
+) -> NightlyResult:
     """Score every complete, unscored session in ``inbox`` once; see the module docstring.
 
     Parameters
@@ -87,8 +107,15 @@ def run_nightly(inbox, config: NightlyConfig | None = None, db_url: str | None =
         t = time.perf_counter()
         for key, imgs in sorted(store.free_groups().items()):
             det = config.by_name(imgs[0]["detector"])
-            result.waiting.append({"detector": imgs[0]["detector"], "session_date": imgs[0]["session_date"],
-                                   "group": key, "images": len(imgs), "needed": det.min_images})
+            result.waiting.append(
+                {
+                    "detector": imgs[0]["detector"],
+                    "session_date": imgs[0]["session_date"],
+                    "group": key,
+                    "images": len(imgs),
+                    "needed": det.min_images,
+                }
+            )
         tm.add("db_s", time.perf_counter() - t)
         if config.smtp is not None:
             _email(config, store, result)
@@ -206,11 +233,24 @@ def _jobs(config, store, lease_s, tm, claims, skip):
 
 def _job(config, sid, token, imgs) -> SessionJob:
     det = config.by_name(imgs[0]["detector"])
-    return SessionJob(session_id=sid, token=token, detector=det.name, session_date=imgs[0]["session_date"],
-                      group_key=imgs[0]["group_key"], paths=[im["path"] for im in imgs],
-                      shas=[im["sha256"] for im in imgs], layout=det.layout, observer=det.observer,
-                      methods=det.methods, conversion=det.conversion, blur=det.blur, limits=det.limits,
-                      human_factor=det.human_factor, n_boot=det.n_boot, seed=det.seed)
+    return SessionJob(
+        session_id=sid,
+        token=token,
+        detector=det.name,
+        session_date=imgs[0]["session_date"],
+        group_key=imgs[0]["group_key"],
+        paths=[im["path"] for im in imgs],
+        shas=[im["sha256"] for im in imgs],
+        layout=det.layout,
+        observer=det.observer,
+        methods=det.methods,
+        conversion=det.conversion,
+        blur=det.blur,
+        limits=det.limits,
+        human_factor=det.human_factor,
+        n_boot=det.n_boot,
+        seed=det.seed,
+    )
 
 
 def _score(config, store, qdir, workers, dask, lease_s, result, tm, progress):
@@ -227,8 +267,13 @@ def _score(config, store, qdir, workers, dask, lease_s, result, tm, progress):
             fault_point("claimed")
             retry = False
             renewed = time.monotonic()
-            bar = tqdm(total=sum(len(j.paths) for j in jobs), desc="scoring sessions", unit="image",
-                       file=sys.stderr, disable=not progress)
+            bar = tqdm(
+                total=sum(len(j.paths) for j in jobs),
+                desc="scoring sessions",
+                unit="image",
+                file=sys.stderr,
+                disable=not progress,
+            )
             for job, out in runner.run(jobs):
                 bar.update(len(job.paths))
                 tm.add("scoring_s", out.scoring_s)
@@ -241,9 +286,16 @@ def _score(config, store, qdir, workers, dask, lease_s, result, tm, progress):
                     if alerts is not None:
                         result.scored_images += len(job.paths)
                         verdict = out.overall_verdict
-                        result.sessions_scored.append({"id": job.session_id, "detector": job.detector,
-                                                       "session_date": job.session_date, "images": len(job.paths),
-                                                       "overall_verdict": verdict, "alerts": len(alerts)})
+                        result.sessions_scored.append(
+                            {
+                                "id": job.session_id,
+                                "detector": job.detector,
+                                "session_date": job.session_date,
+                                "images": len(job.paths),
+                                "overall_verdict": verdict,
+                                "alerts": len(alerts),
+                            }
+                        )
                         result.alerts += [a.to_dict() for a in alerts]
                     fault_point("committed")
                 elif out.failed_sha:
@@ -251,16 +303,18 @@ def _score(config, store, qdir, workers, dask, lease_s, result, tm, progress):
                         moved = quarantine_file(out.failed_path, qdir, out.reason)
                         if moved is not None:
                             store.record_quarantine(out.failed_sha, out.failed_path, moved, out.reason)
-                            result.quarantined.append({"path": out.failed_path, "reason": out.reason,
-                                                       "moved_to": str(moved)})
+                            result.quarantined.append(
+                                {"path": out.failed_path, "reason": out.reason, "moved_to": str(moved)}
+                            )
                         retry = True
                     claims.pop(job.session_id, None)
                 else:
                     store.release(job.session_id, job.token)
                     claims.pop(job.session_id, None)
                     skip.add(job.group_key)
-                    result.errors.append(f"session of {job.detector} ({len(job.paths)} images) not scored: "
-                                         f"{out.reason}")
+                    result.errors.append(
+                        f"session of {job.detector} ({len(job.paths)} images) not scored: {out.reason}"
+                    )
                 if time.monotonic() - renewed > lease_s / 3:
                     store.renew(claims, lease_s)
                     renewed = time.monotonic()

@@ -84,17 +84,27 @@ def score_session(job: SessionJob) -> SessionOutcome:
         current["path"] = str(path)
 
     try:
-        res = score_images(job.paths, job.layout, observer=job.observer, methods=list(job.methods),
-                           conversion=job.conversion, blur=job.blur, n_boot=job.n_boot, seed=job.seed,
-                           limits=job.limits, human_factor=job.human_factor, on_image=on_image,
-                           on_failure=on_failure)
+        res = score_images(
+            job.paths,
+            job.layout,
+            observer=job.observer,
+            methods=list(job.methods),
+            conversion=job.conversion,
+            blur=job.blur,
+            n_boot=job.n_boot,
+            seed=job.seed,
+            limits=job.limits,
+            human_factor=job.human_factor,
+            on_image=on_image,
+            on_failure=on_failure,
+        )
     except LimenError as exc:
         path = getattr(exc, "path", None) or current["path"]
         if path not in by_path:  # the error names no single image: report it against the session
             raise
         out.failed_path, out.failed_sha = path, by_path[path]
         msg = str(exc)
-        out.reason = msg[len(path) + 2:] if msg.startswith(f"{path}: ") else msg
+        out.reason = msg[len(path) + 2 :] if msg.startswith(f"{path}: ") else msg
         if exc.__class__.__name__ == "RegistrationError":
             out.reason = f"phantom not found: {out.reason}"
         out.scoring_s = time.perf_counter() - t0
@@ -103,18 +113,30 @@ def score_session(job: SessionJob) -> SessionOutcome:
     out.ok = True
     out.thresholds = [p.to_dict() for c in res.curves.values() for p in c.points]
     out.verdicts = None if res.verdicts is None else [v.to_dict() for v in res.verdicts]
-    out.images = [{"sha256": by_path[s.path], "registration": s.placement.to_dict(), "blur_sigma_px": s.blur_sigma_px,
-                   "n_correct": s.n_correct, "n_trials": s.n_trials} for s in res.images]
-    resp = res.responses[["image", "target", "diameter_mm", "contrast", "site", "is_signal", "response", "row_px",
-                          "col_px"]].copy()
+    out.images = [
+        {
+            "sha256": by_path[s.path],
+            "registration": s.placement.to_dict(),
+            "blur_sigma_px": s.blur_sigma_px,
+            "n_correct": s.n_correct,
+            "n_trials": s.n_trials,
+        }
+        for s in res.images
+    ]
+    resp = res.responses[
+        ["image", "target", "diameter_mm", "contrast", "site", "is_signal", "response", "row_px", "col_px"]
+    ].copy()
     resp["image"] = resp["image"].map(image_sha)
     out.responses = resp
     out.overall_verdict = res.overall_verdict
     out.verdict_method = res.verdict_method
     out.observer = res.observer
-    out.settings = dict(res.settings, human_factor=job.human_factor,
-                        limits=None if job.limits is None else job.limits.path,
-                        layout=job.layout.source_path)
+    out.settings = dict(
+        res.settings,
+        human_factor=job.human_factor,
+        limits=None if job.limits is None else job.limits.path,
+        layout=job.layout.source_path,
+    )
     out.warnings = list(dict.fromkeys(res.warnings))
     out.scoring_s = time.perf_counter() - t0
     return out
@@ -182,8 +204,12 @@ class PoolRunner:
         # spawned workers read these before numpy loads: one BLAS/OpenMP thread each
         self._env = {k: os.environ.get(k) for k in _THREAD_ENV}
         os.environ.update({k: "1" for k in _THREAD_ENV})
-        self.pool = ProcessPoolExecutor(max_workers=self.workers, mp_context=mp.get_context("spawn"),
-                                        initializer=_watch_parent, initargs=(os.getpid(),))
+        self.pool = ProcessPoolExecutor(
+            max_workers=self.workers,
+            mp_context=mp.get_context("spawn"),
+            initializer=_watch_parent,
+            initargs=(os.getpid(),),
+        )
         return self
 
     def __exit__(self, *exc):
@@ -222,8 +248,9 @@ class DaskRunner:
             else:  # a LocalCluster or other cluster object (tests, scripts)
                 self.client = Client(self.address)
         except (OSError, TimeoutError) as exc:
-            raise LimenError(f"cannot reach the Dask scheduler ({' '.join(str(exc).split())[:200]})",
-                             f"--dask {self.address}") from None
+            raise LimenError(
+                f"cannot reach the Dask scheduler ({' '.join(str(exc).split())[:200]})", f"--dask {self.address}"
+            ) from None
         return self
 
     def __exit__(self, *exc):
@@ -234,8 +261,10 @@ class DaskRunner:
         from distributed import as_completed as dask_completed
 
         jobs = list(jobs)
-        futures = {self.client.submit(_guarded, job, pure=False, key=f"limen-session-{job.session_id}-{job.token}"): job
-                   for job in jobs}
+        futures = {
+            self.client.submit(_guarded, job, pure=False, key=f"limen-session-{job.session_id}-{job.token}"): job
+            for job in jobs
+        }
         for fut in dask_completed(list(futures)):
             yield futures[fut], fut.result()
 

@@ -19,7 +19,7 @@ from scorer.images.io import write_dicom
 
 # Beam of the simulated panels: the simulator's 28 kV; anode/filter as DICOM writes them (invented setting).
 ANODE, FILTER = "TUNGSTEN", "RHODIUM"
-UAS_PER_UGY = 800.0   # invented tube output: exposure in µAs per µGy at the detector
+UAS_PER_UGY = 800.0  # invented tube output: exposure in µAs per µGy at the detector
 
 
 @dataclass
@@ -31,8 +31,16 @@ class Panel:
     tags: dict = field(default_factory=dict)
 
 
-def simulate_night(inbox, date: _dt.date, panels: list[Panel], n_images: int = 4, seed: int = 0,
-                   layout=None, small: bool = True, shape=None) -> list[Path]:
+def simulate_night(
+    inbox,
+    date: _dt.date,
+    panels: list[Panel],
+    n_images: int = 4,
+    seed: int = 0,
+    layout=None,
+    small: bool = True,
+    shape=None,
+) -> list[Path]:
     """Write ``n_images`` DICOM phantom images per panel, acquired on ``date``, under ``inbox/<date>/``.
 
     Tags: Detector ID and Station Name from the preset model, Acquisition DateTime 07:00 + 2 min per
@@ -49,11 +57,19 @@ def simulate_night(inbox, date: _dt.date, panels: list[Panel], n_images: int = 4
             sim = simulate(model, "phantom", panel.dose_ugy, rng, small=small, layout=layout, shape=shape)
             when = _dt.datetime.combine(date, _dt.time(7, 0)) + _dt.timedelta(minutes=2 * i)
             tags = dicom_tags(model, when, panel.dose_ugy)
-            tags.update({"ExposureInuAs": int(round(UAS_PER_UGY * panel.dose_ugy)), "AnodeTargetMaterial": ANODE,
-                         "FilterMaterial": FILTER})
+            tags.update(
+                {
+                    "ExposureInuAs": int(round(UAS_PER_UGY * panel.dose_ugy)),
+                    "AnodeTargetMaterial": ANODE,
+                    "FilterMaterial": FILTER,
+                }
+            )
             tags.update(panel.tags)
-            out.append(write_dicom(folder / f"{model.detector_id}-{date:%Y%m%d}-{i + 1:02d}.dcm", sim.pixels,
-                                   sim.spacing_mm, tags))
+            out.append(
+                write_dicom(
+                    folder / f"{model.detector_id}-{date:%Y%m%d}-{i + 1:02d}.dcm", sim.pixels, sim.spacing_mm, tags
+                )
+            )
     return out
 
 
@@ -64,9 +80,17 @@ class DemoPlan:
     nights: list[tuple[_dt.date, list[Panel]]]
 
 
-def demo_nights(root, n_nights: int = 8, baseline_sessions: int = 4, drift_start: int = 5,
-                drift_factor: float = 0.6, first_night: _dt.date = _dt.date(2026, 3, 2), layout_path=None,
-                n_images: int = 5, n_boot: int = 300) -> DemoPlan:
+def demo_nights(
+    root,
+    n_nights: int = 8,
+    baseline_sessions: int = 4,
+    drift_start: int = 5,
+    drift_factor: float = 0.6,
+    first_night: _dt.date = _dt.date(2026, 3, 2),
+    layout_path=None,
+    n_images: int = 5,
+    n_boot: int = 300,
+) -> DemoPlan:
     """Configuration and plan of simulated nights: the direct panel's dose falls from ``drift_start`` on.
 
     Scenario (invented): the Harbourside Women's Health Centre's two panels, HSX-SE-0417 (direct,
@@ -80,23 +104,37 @@ def demo_nights(root, n_nights: int = 8, baseline_sessions: int = 4, drift_start
     root.mkdir(parents=True, exist_ok=True)
     inbox = root / "inbox"
     inbox.mkdir(exist_ok=True)
-    lines = ['format = "limen-nightly/1"',
-             'programme = "Harbourside Women\'s Health Centre (invented): nightly phantom QC"', "",
-             "[defaults]", 'methods = ["dprime"]', f"n_boot = {n_boot}", f"min_images = {n_images}",
-             f"baseline_sessions = {baseline_sessions}", "accept_unlisted = false"]
+    lines = [
+        'format = "limen-nightly/1"',
+        'programme = "Harbourside Women\'s Health Centre (invented): nightly phantom QC"',
+        "",
+        "[defaults]",
+        'methods = ["dprime"]',
+        f"n_boot = {n_boot}",
+        f"min_images = {n_images}",
+        f"baseline_sessions = {baseline_sessions}",
+        "accept_unlisted = false",
+    ]
     if layout_path is not None:
         lines.append(f'layout = "{Path(layout_path).resolve().as_posix()}"')
-    lines += ["", "[alerts]", "worse_fraction = 0.25", "control_sigma = 3.0", "ewma_lambda = 0.2",
-              "ewma_width = 3.0"]
+    lines += ["", "[alerts]", "worse_fraction = 0.25", "control_sigma = 3.0", "ewma_lambda = 0.2", "ewma_width = 3.0"]
     for name, room in (("direct", "MAM2"), ("indirect", "MAM3")):
         model = detector_model(name)
         conv = root / f"{name}-conversion.toml"
         save_conversion(model.conversion_function(), conv)
-        lines += ["", "[[detectors]]", f'name = "{model.detector_id} ({room}, {name})"',
-                  f'detector_id = "{model.detector_id}"', f'conversion = "{conv.name}"',
-                  "[detectors.expected]", f"kvp = {model.kvp:g}", "kvp_tolerance = 0.5",
-                  f'anode = "{ANODE}"', f'filter = "{FILTER}"',
-                  f"exposure_uas = [{int(UAS_PER_UGY * 70)}, {int(UAS_PER_UGY * 140)}]"]
+        lines += [
+            "",
+            "[[detectors]]",
+            f'name = "{model.detector_id} ({room}, {name})"',
+            f'detector_id = "{model.detector_id}"',
+            f'conversion = "{conv.name}"',
+            "[detectors.expected]",
+            f"kvp = {model.kvp:g}",
+            "kvp_tolerance = 0.5",
+            f'anode = "{ANODE}"',
+            f'filter = "{FILTER}"',
+            f"exposure_uas = [{int(UAS_PER_UGY * 70)}, {int(UAS_PER_UGY * 140)}]",
+        ]
     config = root / "nightly.toml"
     config.write_text("\n".join(lines) + "\n", encoding="utf-8")
     nights = []

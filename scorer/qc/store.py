@@ -33,8 +33,24 @@ import uuid
 from contextlib import contextmanager
 from pathlib import Path
 
-from sqlalchemy import (Boolean, DateTime, Float, ForeignKey, Integer, String, Text, UniqueConstraint, create_engine,
-                        delete, event, func, insert, select, text, update)
+from sqlalchemy import (
+    Boolean,
+    DateTime,
+    Float,
+    ForeignKey,
+    Integer,
+    String,
+    Text,
+    UniqueConstraint,
+    create_engine,
+    delete,
+    event,
+    func,
+    insert,
+    select,
+    text,
+    update,
+)
 from sqlalchemy.engine import make_url
 from sqlalchemy.exc import SQLAlchemyError
 from sqlalchemy.orm import DeclarativeBase, Mapped, Session, mapped_column
@@ -63,7 +79,7 @@ class SessionRow(Base):
     detector: Mapped[str] = mapped_column(String(200), index=True)
     session_date: Mapped[str] = mapped_column(String(10), index=True)
     group_key: Mapped[str] = mapped_column(String(400))
-    state: Mapped[str] = mapped_column(String(16), index=True)          # claimed | scored
+    state: Mapped[str] = mapped_column(String(16), index=True)  # claimed | scored
     claim_token: Mapped[str | None] = mapped_column(String(64))
     claim_host: Mapped[str | None] = mapped_column(String(255))
     claim_pid: Mapped[int | None] = mapped_column(Integer)
@@ -77,8 +93,8 @@ class SessionRow(Base):
     kvp: Mapped[float | None] = mapped_column(Float)
     anode: Mapped[str | None] = mapped_column(String(32))
     filter: Mapped[str | None] = mapped_column(String(32))
-    flags: Mapped[str] = mapped_column(Text, default="[]")              # JSON list of setting flags
-    settings: Mapped[str] = mapped_column(Text, default="{}")           # JSON: scoring settings
+    flags: Mapped[str] = mapped_column(Text, default="[]")  # JSON list of setting flags
+    settings: Mapped[str] = mapped_column(Text, default="{}")  # JSON: scoring settings
     warnings: Mapped[str] = mapped_column(Text, default="[]")
     scoring_s: Mapped[float | None] = mapped_column(Float)
 
@@ -102,7 +118,7 @@ class ImageRow(Base):
     flags: Mapped[str] = mapped_column(Text, default="[]")
     first_seen: Mapped[_dt.datetime] = mapped_column(DateTime)
     session_id: Mapped[int | None] = mapped_column(ForeignKey("qc_sessions.id"), index=True)
-    registration: Mapped[str | None] = mapped_column(Text)              # JSON, once scored
+    registration: Mapped[str | None] = mapped_column(Text)  # JSON, once scored
     blur_sigma_px: Mapped[float | None] = mapped_column(Float)
     n_correct: Mapped[int | None] = mapped_column(Integer)
     n_trials: Mapped[int | None] = mapped_column(Integer)
@@ -123,8 +139,8 @@ class ThresholdRow(Base):
     m_alternatives: Mapped[int] = mapped_column(Integer)
     criterion_pc: Mapped[float | None] = mapped_column(Float)
     note: Mapped[str] = mapped_column(Text, default="")
-    compared_contrast: Mapped[float | None] = mapped_column(Float)      # as compared with the limit (× human factor)
-    acceptable: Mapped[float | None] = mapped_column(Float)             # limit, when limits are configured
+    compared_contrast: Mapped[float | None] = mapped_column(Float)  # as compared with the limit (× human factor)
+    acceptable: Mapped[float | None] = mapped_column(Float)  # limit, when limits are configured
     verdict: Mapped[str | None] = mapped_column(String(32))
 
 
@@ -155,10 +171,10 @@ class BaselineRow(Base):
     sd_between_log10: Mapped[float | None] = mapped_column(Float)
     se_within_log10: Mapped[float | None] = mapped_column(Float)
     n_sessions: Mapped[int] = mapped_column(Integer)
-    session_ids: Mapped[str] = mapped_column(Text)                     # JSON list
+    session_ids: Mapped[str] = mapped_column(Text)  # JSON list
     last_session_date: Mapped[str] = mapped_column(String(10))
     last_session_id: Mapped[int] = mapped_column(Integer)
-    source: Mapped[str] = mapped_column(String(16))                    # automatic | explicit
+    source: Mapped[str] = mapped_column(String(16))  # automatic | explicit
     created_at: Mapped[_dt.datetime] = mapped_column(DateTime)
 
 
@@ -172,7 +188,7 @@ class AlertRow(Base):
     method: Mapped[str] = mapped_column(String(16))
     diameter_mm: Mapped[float] = mapped_column(Float)
     rule: Mapped[str] = mapped_column(String(16))
-    direction: Mapped[str] = mapped_column(String(8))                  # worse | better
+    direction: Mapped[str] = mapped_column(String(8))  # worse | better
     value: Mapped[float | None] = mapped_column(Float)
     reference: Mapped[float | None] = mapped_column(Float)
     message: Mapped[str] = mapped_column(Text)
@@ -225,8 +241,9 @@ def open_store(url: str) -> Store:
     try:
         u = make_url(url)
     except Exception:
-        raise LimenError(f"not a database URL: {url!r} (e.g. sqlite:///nightly.sqlite or "
-                         "postgresql+psycopg://user@host/db)", "--db") from None
+        raise LimenError(
+            f"not a database URL: {url!r} (e.g. sqlite:///nightly.sqlite or postgresql+psycopg://user@host/db)", "--db"
+        ) from None
     kw = {}
     if u.get_backend_name() == "sqlite":
         if u.database and u.database != ":memory:":
@@ -251,8 +268,10 @@ def open_store(url: str) -> Store:
             if version is None:
                 conn.execute(insert(MetaRow).values(key="schema_version", value=str(SCHEMA_VERSION)))
             elif version > SCHEMA_VERSION:
-                raise LimenError(f"database schema version {version} is newer than this Limen's "
-                                 f"({SCHEMA_VERSION}); upgrade Limen", _display(url))
+                raise LimenError(
+                    f"database schema version {version} is newer than this Limen's ({SCHEMA_VERSION}); upgrade Limen",
+                    _display(url),
+                )
             else:
                 while version < SCHEMA_VERSION:
                     MIGRATIONS[version](conn)
@@ -263,8 +282,9 @@ def open_store(url: str) -> Store:
         raise
     except SQLAlchemyError as exc:
         engine.dispose()
-        raise LimenError(f"cannot open database: {' '.join(str(getattr(exc, 'orig', None) or exc).split())[:300]}",
-                         _display(url)) from None
+        raise LimenError(
+            f"cannot open database: {' '.join(str(getattr(exc, 'orig', None) or exc).split())[:300]}", _display(url)
+        ) from None
     return store
 
 
@@ -331,8 +351,13 @@ class _Ops:
         out = {}
         with self.transaction() as s:
             for i in range(0, len(shas), 500):
-                out.update(dict(s.execute(select(ImageRow.sha256, ImageRow.path)
-                                          .where(ImageRow.sha256.in_(shas[i:i + 500]))).all()))
+                out.update(
+                    dict(
+                        s.execute(
+                            select(ImageRow.sha256, ImageRow.path).where(ImageRow.sha256.in_(shas[i : i + 500]))
+                        ).all()
+                    )
+                )
         return out
 
     def quarantined(self, shas) -> dict:
@@ -341,8 +366,15 @@ class _Ops:
         out = {}
         with self.transaction() as s:
             for i in range(0, len(shas), 500):
-                out.update(dict(s.execute(select(QuarantineRow.sha256, QuarantineRow.reason)
-                                          .where(QuarantineRow.sha256.in_(shas[i:i + 500]))).all()))
+                out.update(
+                    dict(
+                        s.execute(
+                            select(QuarantineRow.sha256, QuarantineRow.reason).where(
+                                QuarantineRow.sha256.in_(shas[i : i + 500])
+                            )
+                        ).all()
+                    )
+                )
         return out
 
     def add_images(self, images) -> int:
@@ -350,11 +382,26 @@ class _Ops:
         if not images:
             return 0
         now = utcnow()
-        rows = [{"sha256": im.sha256, "path": im.path, "detector": im.detector, "group_key": im.group_key,
-                 "session_date": im.session_date, "acquired": im.acquired, "detector_id": im.detector_id,
-                 "device_serial": im.device_serial, "station_name": im.station_name, "kvp": im.kvp,
-                 "exposure_uas": im.exposure_uas, "anode": im.anode, "filter": im.filter,
-                 "flags": json.dumps(im.flags), "first_seen": now} for im in images]
+        rows = [
+            {
+                "sha256": im.sha256,
+                "path": im.path,
+                "detector": im.detector,
+                "group_key": im.group_key,
+                "session_date": im.session_date,
+                "acquired": im.acquired,
+                "detector_id": im.detector_id,
+                "device_serial": im.device_serial,
+                "station_name": im.station_name,
+                "kvp": im.kvp,
+                "exposure_uas": im.exposure_uas,
+                "anode": im.anode,
+                "filter": im.filter,
+                "flags": json.dumps(im.flags),
+                "first_seen": now,
+            }
+            for im in images
+        ]
         with self.transaction() as s:
             res = s.execute(self._insert(ImageRow.__table__), rows)
             return int(res.rowcount or 0)
@@ -363,12 +410,21 @@ class _Ops:
         """Record a quarantined file (completing the record a released session left, if there is one)."""
         moved = None if moved_to is None else str(moved_to)
         with self.transaction() as s:
-            res = s.execute(update(QuarantineRow).where(QuarantineRow.sha256 == sha256,
-                                                        QuarantineRow.original_path == str(original_path),
-                                                        QuarantineRow.moved_to.is_(None)).values(moved_to=moved))
+            res = s.execute(
+                update(QuarantineRow)
+                .where(
+                    QuarantineRow.sha256 == sha256,
+                    QuarantineRow.original_path == str(original_path),
+                    QuarantineRow.moved_to.is_(None),
+                )
+                .values(moved_to=moved)
+            )
             if not res.rowcount:
-                s.add(QuarantineRow(sha256=sha256, original_path=str(original_path), moved_to=moved, reason=reason,
-                                    at=utcnow()))
+                s.add(
+                    QuarantineRow(
+                        sha256=sha256, original_path=str(original_path), moved_to=moved, reason=reason, at=utcnow()
+                    )
+                )
 
     def free_groups(self) -> dict:
         """group_key → images not bound to any session (dicts), oldest first."""
@@ -392,15 +448,29 @@ class _Ops:
         first = images[0]
         now = utcnow()
         with self.transaction() as s:
-            row = SessionRow(detector=first["detector"], session_date=first["session_date"], group_key=group_key,
-                             state="claimed", claim_token=token, claim_host=self.host, claim_pid=self.pid,
-                             claim_expires=now + _dt.timedelta(seconds=lease_s), claimed_at=now,
-                             n_images=len(images), kvp=first["kvp"], anode=first["anode"], filter=first["filter"],
-                             flags=json.dumps(sorted({f for im in images for f in im["flags"]})))
+            row = SessionRow(
+                detector=first["detector"],
+                session_date=first["session_date"],
+                group_key=group_key,
+                state="claimed",
+                claim_token=token,
+                claim_host=self.host,
+                claim_pid=self.pid,
+                claim_expires=now + _dt.timedelta(seconds=lease_s),
+                claimed_at=now,
+                n_images=len(images),
+                kvp=first["kvp"],
+                anode=first["anode"],
+                filter=first["filter"],
+                flags=json.dumps(sorted({f for im in images for f in im["flags"]})),
+            )
             s.add(row)
             s.flush()
-            res = s.execute(update(ImageRow).where(ImageRow.id.in_([im["id"] for im in images]),
-                                                   ImageRow.session_id.is_(None)).values(session_id=row.id))
+            res = s.execute(
+                update(ImageRow)
+                .where(ImageRow.id.in_([im["id"] for im in images]), ImageRow.session_id.is_(None))
+                .values(session_id=row.id)
+            )
             if res.rowcount != len(images):
                 raise _Taken()  # another run bound one of them first: roll the whole claim back
             return row.id, token
@@ -409,8 +479,15 @@ class _Ops:
         """(session_id, token) of claims whose holder is gone: lease run out, or same host and process dead."""
         now = utcnow()
         with self.transaction() as s:
-            rows = s.execute(select(SessionRow.id, SessionRow.claim_token, SessionRow.claim_host, SessionRow.claim_pid,
-                                    SessionRow.claim_expires).where(SessionRow.state == "claimed")).all()
+            rows = s.execute(
+                select(
+                    SessionRow.id,
+                    SessionRow.claim_token,
+                    SessionRow.claim_host,
+                    SessionRow.claim_pid,
+                    SessionRow.claim_expires,
+                ).where(SessionRow.state == "claimed")
+            ).all()
         out = []
         for sid, token, host, pid, expires in rows:
             mine = host == self.host and pid == self.pid
@@ -423,10 +500,16 @@ class _Ops:
         """Take over a stale claim (compare-and-set on its token); the new token, or None if another run did."""
         token = uuid.uuid4().hex
         with self.transaction() as s:
-            res = s.execute(update(SessionRow).where(SessionRow.id == session_id, SessionRow.state == "claimed",
-                                                     SessionRow.claim_token == old_token)
-                            .values(claim_token=token, claim_host=self.host, claim_pid=self.pid,
-                                    claim_expires=utcnow() + _dt.timedelta(seconds=lease_s)))
+            res = s.execute(
+                update(SessionRow)
+                .where(SessionRow.id == session_id, SessionRow.state == "claimed", SessionRow.claim_token == old_token)
+                .values(
+                    claim_token=token,
+                    claim_host=self.host,
+                    claim_pid=self.pid,
+                    claim_expires=utcnow() + _dt.timedelta(seconds=lease_s),
+                )
+            )
             return token if res.rowcount == 1 else None
 
     def renew(self, claims: dict, lease_s: float = DEFAULT_LEASE_S) -> None:
@@ -435,16 +518,27 @@ class _Ops:
             return
         with self.transaction() as s:
             for sid, token in claims.items():
-                s.execute(update(SessionRow).where(SessionRow.id == sid, SessionRow.claim_token == token)
-                          .values(claim_expires=utcnow() + _dt.timedelta(seconds=lease_s)))
+                s.execute(
+                    update(SessionRow)
+                    .where(SessionRow.id == sid, SessionRow.claim_token == token)
+                    .values(claim_expires=utcnow() + _dt.timedelta(seconds=lease_s))
+                )
 
     def session_images(self, session_id: int) -> list[dict]:
         with self.transaction() as s:
-            return [_image_dict(r) for r in s.scalars(select(ImageRow).where(ImageRow.session_id == session_id)
-                                                       .order_by(ImageRow.id))]
+            return [
+                _image_dict(r)
+                for r in s.scalars(select(ImageRow).where(ImageRow.session_id == session_id).order_by(ImageRow.id))
+            ]
 
-    def release(self, session_id: int, token: str, drop_sha: str | None = None, drop_path: str | None = None,
-                reason: str | None = None) -> bool:
+    def release(
+        self,
+        session_id: int,
+        token: str,
+        drop_sha: str | None = None,
+        drop_path: str | None = None,
+        reason: str | None = None,
+    ) -> bool:
         """Give a claimed session up: its images become free again.
 
         With ``drop_sha`` that image leaves the database and its quarantine is recorded (reason)
@@ -457,8 +551,11 @@ class _Ops:
             s.execute(update(ImageRow).where(ImageRow.session_id == session_id).values(session_id=None))
             if drop_sha:
                 s.execute(delete(ImageRow).where(ImageRow.sha256 == drop_sha))
-                s.add(QuarantineRow(sha256=drop_sha, original_path=str(drop_path), moved_to=None,
-                                    reason=reason or "", at=utcnow()))
+                s.add(
+                    QuarantineRow(
+                        sha256=drop_sha, original_path=str(drop_path), moved_to=None, reason=reason or "", at=utcnow()
+                    )
+                )
             s.delete(row)
             return True
 
@@ -491,36 +588,74 @@ class _Ops:
                 row.overall_verdict = outcome.overall_verdict
                 row.settings, row.warnings = dumps(outcome.settings), dumps(outcome.warnings)
                 row.scoring_s = float(outcome.scoring_s)
-                ids = dict(s.execute(select(ImageRow.sha256, ImageRow.id)
-                                     .where(ImageRow.session_id == row.id)).all())
+                ids = dict(s.execute(select(ImageRow.sha256, ImageRow.id).where(ImageRow.session_id == row.id)).all())
                 if set(ids) != {im["sha256"] for im in outcome.images}:
-                    raise LimenError(f"session {row.id}: scored images differ from the claimed ones", _display(self.url))
+                    raise LimenError(
+                        f"session {row.id}: scored images differ from the claimed ones", _display(self.url)
+                    )
                 for im in outcome.images:
-                    s.execute(update(ImageRow).where(ImageRow.id == ids[im["sha256"]]).values(
-                        registration=dumps(im["registration"]), blur_sigma_px=float(im["blur_sigma_px"]),
-                        n_correct=int(im["n_correct"]), n_trials=int(im["n_trials"])))
+                    s.execute(
+                        update(ImageRow)
+                        .where(ImageRow.id == ids[im["sha256"]])
+                        .values(
+                            registration=dumps(im["registration"]),
+                            blur_sigma_px=float(im["blur_sigma_px"]),
+                            n_correct=int(im["n_correct"]),
+                            n_trials=int(im["n_trials"]),
+                        )
+                    )
                 verdicts = {round(v["diameter_mm"], 6): v for v in (outcome.verdicts or [])}
                 rows = []
                 for p in outcome.thresholds:
                     v = verdicts.get(round(p["diameter_mm"], 6)) if p["method"] == outcome.verdict_method else None
-                    rows.append({"session_id": row.id, "method": p["method"], "observer": p["observer"],
-                                 "diameter_mm": float(p["diameter_mm"]),
-                                 "threshold_contrast": _finite(p["threshold_contrast"]), "ci_low": _finite(p["ci_low"]),
-                                 "ci_high": _finite(p["ci_high"]), "n_images": int(p["n_images"]),
-                                 "m_alternatives": int(p["m_alternatives"]), "criterion_pc": _finite(p["criterion_pc"]),
-                                 "note": p.get("note") or "",
-                                 "compared_contrast": None if v is None else _finite(v["threshold_contrast"]),
-                                 "acceptable": None if v is None else _finite(v["acceptable"]),
-                                 "verdict": None if v is None else v["verdict"]})
+                    rows.append(
+                        {
+                            "session_id": row.id,
+                            "method": p["method"],
+                            "observer": p["observer"],
+                            "diameter_mm": float(p["diameter_mm"]),
+                            "threshold_contrast": _finite(p["threshold_contrast"]),
+                            "ci_low": _finite(p["ci_low"]),
+                            "ci_high": _finite(p["ci_high"]),
+                            "n_images": int(p["n_images"]),
+                            "m_alternatives": int(p["m_alternatives"]),
+                            "criterion_pc": _finite(p["criterion_pc"]),
+                            "note": p.get("note") or "",
+                            "compared_contrast": None if v is None else _finite(v["threshold_contrast"]),
+                            "acceptable": None if v is None else _finite(v["acceptable"]),
+                            "verdict": None if v is None else v["verdict"],
+                        }
+                    )
                 s.execute(insert(ThresholdRow), rows)
                 r = outcome.responses
-                s.execute(insert(ResponseRow), [
-                    {"session_id": row.id, "image_id": ids[img], "target": str(t), "diameter_mm": float(d),
-                     "contrast": float(c), "site": int(k), "is_signal": bool(sig), "response": float(x),
-                     "row_px": float(rp), "col_px": float(cp)}
-                    for img, t, d, c, k, sig, x, rp, cp in zip(
-                        r["image"], r["target"], r["diameter_mm"], r["contrast"], r["site"], r["is_signal"],
-                        r["response"], r["row_px"], r["col_px"])])
+                s.execute(
+                    insert(ResponseRow),
+                    [
+                        {
+                            "session_id": row.id,
+                            "image_id": ids[img],
+                            "target": str(t),
+                            "diameter_mm": float(d),
+                            "contrast": float(c),
+                            "site": int(k),
+                            "is_signal": bool(sig),
+                            "response": float(x),
+                            "row_px": float(rp),
+                            "col_px": float(cp),
+                        }
+                        for img, t, d, c, k, sig, x, rp, cp in zip(
+                            r["image"],
+                            r["target"],
+                            r["diameter_mm"],
+                            r["contrast"],
+                            r["site"],
+                            r["is_signal"],
+                            r["response"],
+                            r["row_px"],
+                            r["col_px"],
+                        )
+                    ],
+                )
                 fault_point("mid-write")
                 s.flush()
                 alerts = []
@@ -528,29 +663,52 @@ class _Ops:
                     hist = _thresholds(s, row.detector, method)
                     bl = self._baseline_in(s, row.detector, method)
                     if bl is None:
-                        bl = self._auto_baseline(s, row.detector, method, hist, det.baseline_sessions,
-                                                 compute_baseline)
+                        bl = self._auto_baseline(s, row.detector, method, hist, det.baseline_sessions, compute_baseline)
                     if method != outcome.verdict_method:
                         continue
                     frame, last, bids = (None, None, set()) if bl is None else bl[:3]
                     alerts = evaluate_session(row.detector, row.id, hist, frame, last, bids, rules)
                     for a in alerts:
-                        s.add(AlertRow(session_id=row.id, detector=a.detector, session_date=a.session_date,
-                                       method=a.method, diameter_mm=a.diameter_mm, rule=a.rule, direction=a.direction,
-                                       value=a.value, reference=a.reference, message=a.message, created_at=now))
+                        s.add(
+                            AlertRow(
+                                session_id=row.id,
+                                detector=a.detector,
+                                session_date=a.session_date,
+                                method=a.method,
+                                diameter_mm=a.diameter_mm,
+                                rule=a.rule,
+                                direction=a.direction,
+                                value=a.value,
+                                reference=a.reference,
+                                message=a.message,
+                                created_at=now,
+                            )
+                        )
                 return alerts
         except _Taken:
             return None
 
     def _baseline_in(self, s: Session, detector, method):
-        rows = s.scalars(select(BaselineRow).where(BaselineRow.detector == detector, BaselineRow.method == method)).all()
+        rows = s.scalars(
+            select(BaselineRow).where(BaselineRow.detector == detector, BaselineRow.method == method)
+        ).all()
         if not rows:
             return None
         import pandas as pd
 
-        df = pd.DataFrame([{"diameter_mm": r.diameter_mm, "mean_log10": r.mean_log10, "sigma_log10": r.sigma_log10,
-                            "sd_between_log10": r.sd_between_log10, "se_within_log10": r.se_within_log10,
-                            "n_sessions": r.n_sessions} for r in rows])
+        df = pd.DataFrame(
+            [
+                {
+                    "diameter_mm": r.diameter_mm,
+                    "mean_log10": r.mean_log10,
+                    "sigma_log10": r.sigma_log10,
+                    "sd_between_log10": r.sd_between_log10,
+                    "se_within_log10": r.se_within_log10,
+                    "n_sessions": r.n_sessions,
+                }
+                for r in rows
+            ]
+        )
         r0 = rows[0]
         return df, (r0.last_session_date, r0.last_session_id), set(json.loads(r0.session_ids)), r0.source
 
@@ -578,8 +736,10 @@ class _Ops:
             have = set(int(x) for x in hist["session_id"].unique())
             missing = sorted(set(session_ids) - have)
             if missing:
-                raise LimenError(f"session(s) {', '.join(map(str, missing))} are not scored sessions of detector "
-                                 f"{detector!r}", "--sessions")
+                raise LimenError(
+                    f"session(s) {', '.join(map(str, missing))} are not scored sessions of detector {detector!r}",
+                    "--sessions",
+                )
             if len(set(session_ids)) < 2:
                 raise LimenError("a baseline needs at least two sessions", "--sessions")
             sel = hist[hist["session_id"].isin(session_ids)]
@@ -602,18 +762,30 @@ class _Ops:
         with self.transaction() as s:
             return self._baseline_in(s, detector, method)
 
-    def put_baseline(self, s: Session, detector: str, method: str, frame, session_ids: list[int],
-                     last: tuple[str, int], source: str) -> None:
+    def put_baseline(
+        self, s: Session, detector: str, method: str, frame, session_ids: list[int], last: tuple[str, int], source: str
+    ) -> None:
         """Replace a detector's baseline for one method (inside the caller's transaction)."""
         s.execute(delete(BaselineRow).where(BaselineRow.detector == detector, BaselineRow.method == method))
         now = utcnow()
         for r in frame.itertuples():
-            s.add(BaselineRow(detector=detector, method=method, diameter_mm=float(r.diameter_mm),
-                              mean_log10=float(r.mean_log10), sigma_log10=float(r.sigma_log10),
-                              sd_between_log10=float(r.sd_between_log10), se_within_log10=float(r.se_within_log10),
-                              n_sessions=int(r.n_sessions), session_ids=json.dumps(sorted(session_ids)),
-                              last_session_date=last[0], last_session_id=int(last[1]), source=source,
-                              created_at=now))
+            s.add(
+                BaselineRow(
+                    detector=detector,
+                    method=method,
+                    diameter_mm=float(r.diameter_mm),
+                    mean_log10=float(r.mean_log10),
+                    sigma_log10=float(r.sigma_log10),
+                    sd_between_log10=float(r.sd_between_log10),
+                    se_within_log10=float(r.se_within_log10),
+                    n_sessions=int(r.n_sessions),
+                    session_ids=json.dumps(sorted(session_ids)),
+                    last_session_date=last[0],
+                    last_session_id=int(last[1]),
+                    source=source,
+                    created_at=now,
+                )
+            )
 
     def alerts(self, detector: str | None = None, unsent_only: bool = False) -> list[dict]:
         q = select(AlertRow).order_by(AlertRow.session_date, AlertRow.id)
@@ -622,10 +794,23 @@ class _Ops:
         if unsent_only:
             q = q.where(AlertRow.emailed_at.is_(None))
         with self.transaction() as s:
-            return [{"id": a.id, "session_id": a.session_id, "detector": a.detector, "session_date": a.session_date,
-                     "method": a.method, "diameter_mm": a.diameter_mm, "rule": a.rule, "direction": a.direction,
-                     "value": a.value, "reference": a.reference, "message": a.message,
-                     "emailed": a.emailed_at is not None} for a in s.scalars(q)]
+            return [
+                {
+                    "id": a.id,
+                    "session_id": a.session_id,
+                    "detector": a.detector,
+                    "session_date": a.session_date,
+                    "method": a.method,
+                    "diameter_mm": a.diameter_mm,
+                    "rule": a.rule,
+                    "direction": a.direction,
+                    "value": a.value,
+                    "reference": a.reference,
+                    "message": a.message,
+                    "emailed": a.emailed_at is not None,
+                }
+                for a in s.scalars(q)
+            ]
 
     def mark_emailed(self, alert_ids) -> None:
         with self.transaction() as s:
@@ -633,8 +818,14 @@ class _Ops:
 
     def detectors(self) -> list[str]:
         with self.transaction() as s:
-            return list(s.scalars(select(SessionRow.detector).where(SessionRow.state == "scored")
-                                  .distinct().order_by(SessionRow.detector)))
+            return list(
+                s.scalars(
+                    select(SessionRow.detector)
+                    .where(SessionRow.state == "scored")
+                    .distinct()
+                    .order_by(SessionRow.detector)
+                )
+            )
 
     def sessions(self, detector: str | None = None, state: str | None = "scored") -> list[dict]:
         q = select(SessionRow).order_by(SessionRow.detector, SessionRow.session_date, SessionRow.id)
@@ -643,22 +834,41 @@ class _Ops:
         if state is not None:
             q = q.where(SessionRow.state == state)
         with self.transaction() as s:
-            return [{"id": r.id, "detector": r.detector, "session_date": r.session_date, "state": r.state,
-                     "n_images": r.n_images, "kvp": r.kvp, "anode": r.anode, "filter": r.filter,
-                     "flags": json.loads(r.flags or "[]"), "overall_verdict": r.overall_verdict,
-                     "observer": r.observer, "verdict_method": r.verdict_method, "scored_at": r.scored_at,
-                     "scoring_s": r.scoring_s, "warnings": json.loads(r.warnings or "[]")} for r in s.scalars(q)]
+            return [
+                {
+                    "id": r.id,
+                    "detector": r.detector,
+                    "session_date": r.session_date,
+                    "state": r.state,
+                    "n_images": r.n_images,
+                    "kvp": r.kvp,
+                    "anode": r.anode,
+                    "filter": r.filter,
+                    "flags": json.loads(r.flags or "[]"),
+                    "overall_verdict": r.overall_verdict,
+                    "observer": r.observer,
+                    "verdict_method": r.verdict_method,
+                    "scored_at": r.scored_at,
+                    "scoring_s": r.scoring_s,
+                    "warnings": json.loads(r.warnings or "[]"),
+                }
+                for r in s.scalars(q)
+            ]
 
     def quarantine_log(self) -> list[dict]:
         with self.transaction() as s:
-            return [{"path": r.original_path, "moved_to": r.moved_to, "reason": r.reason, "at": r.at}
-                    for r in s.scalars(select(QuarantineRow).order_by(QuarantineRow.id))]
+            return [
+                {"path": r.original_path, "moved_to": r.moved_to, "reason": r.reason, "at": r.at}
+                for r in s.scalars(select(QuarantineRow).order_by(QuarantineRow.id))
+            ]
 
     def counts(self) -> dict:
         """Row counts per table (for tests and the bench)."""
         with self.transaction() as s:
-            return {t.__tablename__: int(s.scalar(select(func.count()).select_from(t)))
-                    for t in (SessionRow, ImageRow, ThresholdRow, ResponseRow, BaselineRow, AlertRow, QuarantineRow)}
+            return {
+                t.__tablename__: int(s.scalar(select(func.count()).select_from(t)))
+                for t in (SessionRow, ImageRow, ThresholdRow, ResponseRow, BaselineRow, AlertRow, QuarantineRow)
+            }
 
 
 def _finite(v):
@@ -672,22 +882,63 @@ def _finite(v):
 def _thresholds(s: Session, detector, method):
     import pandas as pd
 
-    q = (select(SessionRow.id.label("session_id"), SessionRow.detector, SessionRow.session_date,
-                SessionRow.n_images, SessionRow.flags, SessionRow.overall_verdict, SessionRow.kvp,
-                ThresholdRow.method, ThresholdRow.observer, ThresholdRow.diameter_mm,
-                ThresholdRow.threshold_contrast, ThresholdRow.ci_low, ThresholdRow.ci_high,
-                ThresholdRow.compared_contrast, ThresholdRow.acceptable, ThresholdRow.verdict)
-         .join(ThresholdRow, ThresholdRow.session_id == SessionRow.id)
-         .where(SessionRow.state == "scored"))
+    q = (
+        select(
+            SessionRow.id.label("session_id"),
+            SessionRow.detector,
+            SessionRow.session_date,
+            SessionRow.n_images,
+            SessionRow.flags,
+            SessionRow.overall_verdict,
+            SessionRow.kvp,
+            ThresholdRow.method,
+            ThresholdRow.observer,
+            ThresholdRow.diameter_mm,
+            ThresholdRow.threshold_contrast,
+            ThresholdRow.ci_low,
+            ThresholdRow.ci_high,
+            ThresholdRow.compared_contrast,
+            ThresholdRow.acceptable,
+            ThresholdRow.verdict,
+        )
+        .join(ThresholdRow, ThresholdRow.session_id == SessionRow.id)
+        .where(SessionRow.state == "scored")
+    )
     if detector is not None:
         q = q.where(SessionRow.detector == detector)
     if method is not None:
         q = q.where(ThresholdRow.method == method)
-    rows = s.execute(q.order_by(SessionRow.detector, SessionRow.session_date, SessionRow.id,
-                                ThresholdRow.method, ThresholdRow.diameter_mm)).mappings().all()
-    cols = ["session_id", "detector", "session_date", "n_images", "flags", "overall_verdict", "kvp", "method",
-            "observer", "diameter_mm", "threshold_contrast", "ci_low", "ci_high", "compared_contrast", "acceptable",
-            "verdict"]
+    rows = (
+        s.execute(
+            q.order_by(
+                SessionRow.detector,
+                SessionRow.session_date,
+                SessionRow.id,
+                ThresholdRow.method,
+                ThresholdRow.diameter_mm,
+            )
+        )
+        .mappings()
+        .all()
+    )
+    cols = [
+        "session_id",
+        "detector",
+        "session_date",
+        "n_images",
+        "flags",
+        "overall_verdict",
+        "kvp",
+        "method",
+        "observer",
+        "diameter_mm",
+        "threshold_contrast",
+        "ci_low",
+        "ci_high",
+        "compared_contrast",
+        "acceptable",
+        "verdict",
+    ]
     df = pd.DataFrame([dict(r) for r in rows], columns=cols)
     for c in ("threshold_contrast", "ci_low", "ci_high", "compared_contrast", "acceptable", "diameter_mm"):
         df[c] = pd.to_numeric(df[c], errors="coerce").astype(float)
@@ -695,9 +946,20 @@ def _thresholds(s: Session, detector, method):
 
 
 def _image_dict(r: ImageRow) -> dict:
-    return {"id": r.id, "sha256": r.sha256, "path": r.path, "detector": r.detector, "group_key": r.group_key,
-            "session_date": r.session_date, "kvp": r.kvp, "anode": r.anode, "filter": r.filter,
-            "exposure_uas": r.exposure_uas, "flags": json.loads(r.flags or "[]"), "session_id": r.session_id}
+    return {
+        "id": r.id,
+        "sha256": r.sha256,
+        "path": r.path,
+        "detector": r.detector,
+        "group_key": r.group_key,
+        "session_date": r.session_date,
+        "kvp": r.kvp,
+        "anode": r.anode,
+        "filter": r.filter,
+        "exposure_uas": r.exposure_uas,
+        "flags": json.loads(r.flags or "[]"),
+        "session_id": r.session_id,
+    }
 
 
 class Store(_Ops):
@@ -718,8 +980,9 @@ class Store(_Ops):
             with Session(self.engine, expire_on_commit=False) as s, s.begin():
                 yield s
         except SQLAlchemyError as exc:
-            raise LimenError(f"database error: {' '.join(str(exc.orig or exc).split())[:300]}",
-                             _display(self.url)) from None
+            raise LimenError(
+                f"database error: {' '.join(str(exc.orig or exc).split())[:300]}", _display(self.url)
+            ) from None
 
     def _insert(self, table):
         """INSERT … ON CONFLICT DO NOTHING in the database's own dialect."""

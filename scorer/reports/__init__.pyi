@@ -5,7 +5,14 @@ from . import html as html
 from . import score as score
 from . import study as study
 
-from .html import CAUTION as CAUTION, html_page as html_page, figure_to_svg as figure_to_svg, table_html as table_html, write_json as write_json, dumps as dumps
+from .html import (
+    CAUTION as CAUTION,
+    html_page as html_page,
+    figure_to_svg as figure_to_svg,
+    table_html as table_html,
+    write_json as write_json,
+    dumps as dumps,
+)
 from .score import write_score_outputs as write_score_outputs
 from .detector import detector_report_html as detector_report_html, compare_report_html as compare_report_html
 from .study import write_outputs as write_outputs

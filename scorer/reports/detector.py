@@ -27,8 +27,12 @@ def summary_rows(d: dict) -> list[tuple[str, str]]:
         f, v = np.asarray(n["frequency_per_mm"]), np.asarray(n["value_mm2"])
         for x in (0.5, 2):
             rows.append((f"NNPS at {x:g} /mm", f"{np.interp(x, f, v):.3e} mm²"))
-        rows.append(("NNPS ROIs", f"{n['n_rois']} from {n['n_images']} image(s), "
-                                  f"±{100 * n['relative_uncertainty']:.1f} % per frequency"))
+        rows.append(
+            (
+                "NNPS ROIs",
+                f"{n['n_rois']} from {n['n_images']} image(s), ±{100 * n['relative_uncertainty']:.1f} % per frequency",
+            )
+        )
     if d.get("dqe"):
         q = d["dqe"]
         f, v = np.asarray(q["frequency_per_mm"]), np.asarray(q["value"])
@@ -36,9 +40,14 @@ def summary_rows(d: dict) -> list[tuple[str, str]]:
             rows.append((f"DQE at {x:g} /mm", f"{np.interp(x, f, v):.3f}"))
     if d.get("conversion"):
         c = d["conversion"]
-        rows.append(("conversion", f"{c.get('kind')} offset {c.get('offset'):.4g} gain {c.get('gain'):.4g}"
-                                   + (f" R² {c['r_squared']:.5f}" if c.get("r_squared") is not None else "")
-                                   + (" NON-LINEAR" if c.get("nonlinear") else "")))
+        rows.append(
+            (
+                "conversion",
+                f"{c.get('kind')} offset {c.get('offset'):.4g} gain {c.get('gain'):.4g}"
+                + (f" R² {c['r_squared']:.5f}" if c.get("r_squared") is not None else "")
+                + (" NON-LINEAR" if c.get("nonlinear") else ""),
+            )
+        )
     return rows
 
 
@@ -85,8 +94,14 @@ def _band(ax, f, lo, hi, color) -> None:
     if lo is None or hi is None:
         return
     n = min(len(f), len(lo), len(hi))
-    ax.fill_between(np.asarray(f)[:n], np.asarray(lo, dtype=float)[:n], np.asarray(hi, dtype=float)[:n],
-                    color=color, alpha=0.2, lw=0)
+    ax.fill_between(
+        np.asarray(f)[:n],
+        np.asarray(lo, dtype=float)[:n],
+        np.asarray(hi, dtype=float)[:n],
+        color=color,
+        alpha=0.2,
+        lw=0,
+    )
 
 
 def _nnps_plot(curves: dict[str, tuple]) -> str:
@@ -143,8 +158,9 @@ def _thresholds_plot(series: dict[str, list[dict]]) -> str:
         if not rows:
             continue
         ls = "--" if "predicted" in label else "-"
-        ax.plot([r["diameter_mm"] for r in rows], [100 * r["threshold_contrast"] for r in rows], ls, marker="o",
-                label=label)
+        ax.plot(
+            [r["diameter_mm"] for r in rows], [100 * r["threshold_contrast"] for r in rows], ls, marker="o", label=label
+        )
     ax.legend(fontsize=8)
     return figure_to_svg(fig)
 
@@ -155,33 +171,48 @@ _METHOD = (
     "at zero frequency and corrected for the bin average and the finite difference). NNPS from 256 × 256 ROIs "
     "overlapping by half, each detrended with a 2-D second-order polynomial; 1-D cuts average 7 frequency "
     "rows each side of an axis, the axis excluded. DQE(f) = MTF²(f) / (K·q·NNPS(f)). After IEC 62220-1-1 and "
-    "62220-1-2; results are not a compliance test of either standard.</p>")
+    "62220-1-2; results are not a compliance test of either standard.</p>"
+)
 
 
 def detector_report_html(result: dict, metrics=None, title: str = "Limen detector measurement") -> str:
     """The ``limen detector`` report: summary table, MTF, NNPS (1-D and 2-D), DQE, conversion, predictions."""
-    sections = [("Summary", table_html([{"quantity": k, "value": v} for k, v in summary_rows(result)],
-                                       left=("quantity", "value")))]
+    sections = [
+        (
+            "Summary",
+            table_html([{"quantity": k, "value": v} for k, v in summary_rows(result)], left=("quantity", "value")),
+        )
+    ]
     if result.get("warnings"):
-        sections.append(("Warnings", "<ul>" + "".join(f"<li>{html.escape(w)}</li>" for w in result["warnings"])
-                         + "</ul>"))
+        sections.append(
+            ("Warnings", "<ul>" + "".join(f"<li>{html.escape(w)}</li>" for w in result["warnings"]) + "</ul>")
+        )
     nyq = result.get("nyquist_per_mm")
     if result.get("mtf"):
         m = result["mtf"]
         curves = {f"{d} direction": c for d, c in (m.get("by_direction") or {}).items()}
         if len(curves) != 1:
             curves["mean"] = m
-        sections.append(("MTF", _figure(_mtf_plot(curves, {"": nyq}),
-                                        "Presampling MTF up to 1.1 × Nyquist (dotted line: Nyquist).")))
+        sections.append(
+            (
+                "MTF",
+                _figure(_mtf_plot(curves, {"": nyq}), "Presampling MTF up to 1.1 × Nyquist (dotted line: Nyquist)."),
+            )
+        )
     if result.get("nnps"):
         n = result["nnps"]
-        body = _figure(_nnps_plot({"x cut": (n["frequency_per_mm"], n["x_mm2"]),
-                                   "y cut": (n["frequency_per_mm"], n["y_mm2"]),
-                                   "mean of the cuts": (n["frequency_per_mm"], n["value_mm2"], n.get("ci_low"),
-                                                        n.get("ci_high")),
-                                   "radial average": (n["radial_frequency_per_mm"], n["radial_mm2"])}),
-                       f"NNPS from {n['n_rois']} ROIs of {n['n_images']} flat field(s); relative standard error "
-                       f"≈ {100 * n['relative_uncertainty']:.1f} % per frequency.")
+        body = _figure(
+            _nnps_plot(
+                {
+                    "x cut": (n["frequency_per_mm"], n["x_mm2"]),
+                    "y cut": (n["frequency_per_mm"], n["y_mm2"]),
+                    "mean of the cuts": (n["frequency_per_mm"], n["value_mm2"], n.get("ci_low"), n.get("ci_high")),
+                    "radial average": (n["radial_frequency_per_mm"], n["radial_mm2"]),
+                }
+            ),
+            f"NNPS from {n['n_rois']} ROIs of {n['n_images']} flat field(s); relative standard error "
+            f"≈ {100 * n['relative_uncertainty']:.1f} % per frequency.",
+        )
         if metrics is not None and getattr(metrics, "nnps", None) is not None:
             body += _figure(_nnps_2d_plot(metrics.nnps), "2-D NNPS (zero frequency at the centre).")
         sections.append(("NNPS", body))
@@ -189,27 +220,61 @@ def detector_report_html(result: dict, metrics=None, title: str = "Limen detecto
         q = result["dqe"]
         curves = {f"{d} direction": (q["frequency_per_mm"], v) for d, v in (q.get("by_direction") or {}).items()}
         curves["headline"] = (q["frequency_per_mm"], q["value"], q.get("ci_low"), q.get("ci_high"))
-        sections.append(("DQE", _figure(_dqe_plot(curves),
-                                        f"K = {q['kerma_ugy']:g} µGy, q = {q['q_per_mm2_ugy']:g} per mm² per µGy.")))
+        sections.append(
+            (
+                "DQE",
+                _figure(_dqe_plot(curves), f"K = {q['kerma_ugy']:g} µGy, q = {q['q_per_mm2_ugy']:g} per mm² per µGy."),
+            )
+        )
     else:
-        sections.append(("DQE", "<p>Not computed: the DQE needs an edge image, flat fields, the air kerma K and "
-                                "q of the beam; Limen does not guess them.</p>"))
+        sections.append(
+            (
+                "DQE",
+                "<p>Not computed: the DQE needs an edge image, flat fields, the air kerma K and "
+                "q of the beam; Limen does not guess them.</p>",
+            )
+        )
     ns = result.get("noise_series")
     if ns:
         comp = ns["components"]
-        rows = [{"term": t, "value": f"{comp[t]['value']:.4g}",
-                 "95 % CI": "fixed at 0" if comp[t].get("fixed") else f"{comp[t]['ci_low']:.4g} – {comp[t]['ci_high']:.4g}",
-                 "units": u} for t, u in (("electronic", "µGy² (e)"), ("quantum", "µGy (q)"), ("structure", "1 (s)"))]
-        groups = [{"kerma (µGy)": g["kerma_ugy"], "flats": g["n_images"], "ROIs": g["n_rois"],
-                   "variance (µGy²)": f"{g['variance']:.4g} ± {g['variance_se']:.2g}",
-                   "relative SD": f"{100 * g['relative_sd']:.3g} %" if g.get("relative_sd") else "—",
-                   "fitted": f"{comp['electronic']['value'] + comp['quantum']['value'] * g['kerma_ugy'] + comp['structure']['value'] * g['kerma_ugy'] ** 2:.4g}"}
-                  for g in ns["groups"]]
-        body = (f"<p>{html.escape(ns['quantum_limited_text'][:1].upper() + ns['quantum_limited_text'][1:])}.</p>"
-                + table_html(rows, left=("term", "units")) + table_html(groups)
-                + f"<p class='note'>{html.escape(ns['model'])}; weighted least squares, 95 % CIs.</p>")
-        dq = {f"{g['kerma_ugy']:g} µGy": (g["dqe"]["frequency_per_mm"], g["dqe"]["value"], g["dqe"]["ci_low"],
-                                          g["dqe"]["ci_high"]) for g in ns["groups"] if g.get("dqe")}
+        rows = [
+            {
+                "term": t,
+                "value": f"{comp[t]['value']:.4g}",
+                "95 % CI": "fixed at 0"
+                if comp[t].get("fixed")
+                else f"{comp[t]['ci_low']:.4g} – {comp[t]['ci_high']:.4g}",
+                "units": u,
+            }
+            for t, u in (("electronic", "µGy² (e)"), ("quantum", "µGy (q)"), ("structure", "1 (s)"))
+        ]
+        groups = [
+            {
+                "kerma (µGy)": g["kerma_ugy"],
+                "flats": g["n_images"],
+                "ROIs": g["n_rois"],
+                "variance (µGy²)": f"{g['variance']:.4g} ± {g['variance_se']:.2g}",
+                "relative SD": f"{100 * g['relative_sd']:.3g} %" if g.get("relative_sd") else "—",
+                "fitted": _fitted_variance(comp, g["kerma_ugy"]),
+            }
+            for g in ns["groups"]
+        ]
+        body = (
+            f"<p>{html.escape(ns['quantum_limited_text'][:1].upper() + ns['quantum_limited_text'][1:])}.</p>"
+            + table_html(rows, left=("term", "units"))
+            + table_html(groups)
+            + f"<p class='note'>{html.escape(ns['model'])}; weighted least squares, 95 % CIs.</p>"
+        )
+        dq = {
+            f"{g['kerma_ugy']:g} µGy": (
+                g["dqe"]["frequency_per_mm"],
+                g["dqe"]["value"],
+                g["dqe"]["ci_low"],
+                g["dqe"]["ci_high"],
+            )
+            for g in ns["groups"]
+            if g.get("dqe")
+        }
         if dq:
             body += _figure(_dqe_plot(dq), "DQE at each kerma of the series (bands: 95 % CIs).")
         sections.append(("Noise components from flats at several kermas", body))
@@ -219,19 +284,36 @@ def detector_report_html(result: dict, metrics=None, title: str = "Limen detecto
         for kind in ("linear", "logarithmic"):
             if isinstance(c.get(kind), dict):
                 rows.append(c[kind])
-        body = table_html(rows) if rows else table_html([{k: v for k, v in c.items() if not isinstance(v, (list, dict))}])
+        body = (
+            table_html(rows) if rows else table_html([{k: v for k, v in c.items() if not isinstance(v, (list, dict))}])
+        )
         if c.get("nonlinear"):
             body += f"<p class='fail'>{html.escape(c.get('note') or 'non-linear response')}</p>"
         sections.append(("Conversion function", body))
     if result.get("predicted"):
-        sections.append(("Predicted threshold contrast",
-                         _figure(_thresholds_plot(_by_observer(result["predicted"], "predicted")),
-                                 "From the MTF and NNPS (NPW/NPWE, ICRU Report 54 Fourier form).")
-                         + table_html(*display_records(result["predicted"], ["observer", "diameter_mm",
-                                                                             "threshold_contrast",
-                                                                             "dprime_per_unit_contrast",
-                                                                             "criterion_pc", "m_alternatives"]),
-                                      left=("observer",))))
+        sections.append(
+            (
+                "Predicted threshold contrast",
+                _figure(
+                    _thresholds_plot(_by_observer(result["predicted"], "predicted")),
+                    "From the MTF and NNPS (NPW/NPWE, ICRU Report 54 Fourier form).",
+                )
+                + table_html(
+                    *display_records(
+                        result["predicted"],
+                        [
+                            "observer",
+                            "diameter_mm",
+                            "threshold_contrast",
+                            "dprime_per_unit_contrast",
+                            "criterion_pc",
+                            "m_alternatives",
+                        ],
+                    ),
+                    left=("observer",),
+                ),
+            )
+        )
     sections.append(("Method", _METHOD))
     return html_page(title, sections, meta={"inputs": result.get("inputs")})
 
@@ -258,12 +340,18 @@ def _side_by_side_rows(comparison: dict) -> list[dict]:
                 lo, hi = ci
                 txt += f" ({100 * lo:.3g}–{100 * hi:.3g})" if pct else f" ({lo:.3g}–{hi:.3g})"
             return txt
+
         diff = r.get("better") or ""
         if r.get("basis"):
             diff = f"{diff} — {r['basis']}" if diff else r["basis"]
-        out.append({"quantity": r["quantity"].replace("threshold contrast", "threshold contrast (%)"),
-                    la: show(r.get(la), r.get(f"{la} 95% CI")), lb: show(r.get(lb), r.get(f"{lb} 95% CI")),
-                    "difference": diff})
+        out.append(
+            {
+                "quantity": r["quantity"].replace("threshold contrast", "threshold contrast (%)"),
+                la: show(r.get(la), r.get(f"{la} 95% CI")),
+                lb: show(r.get(lb), r.get(f"{lb} 95% CI")),
+                "difference": diff,
+            }
+        )
     return out
 
 
@@ -271,44 +359,108 @@ def compare_report_html(comparison: dict, a: dict, b: dict, title: str = "Limen 
     """The ``limen compare-detectors`` report: side-by-side table, overlaid curves, summary."""
     la, lb = comparison["labels"]
     method = {"dprime": "d′ method", "count": "count method"}.get(comparison.get("scored_method", "dprime"), "")
-    sections = [("Summary", "<ul>" + "".join(f"<li>{html.escape(s)}</li>" for s in comparison["summary"]) + "</ul>"
-                 + f"<p class='note'>A detector is called better at a point only where the two 95 % confidence "
-                   f"intervals do not overlap; where they overlap the page says “no clear difference”, and where "
-                   f"a quantity has no interval (predicted thresholds, MTF and DQE without repeated measurements) "
-                   f"it shows the values and claims nothing. Scored thresholds in the table: {method}.</p>"),
-                ("Side by side", table_html(_side_by_side_rows(comparison), columns=["quantity", la, lb, "difference"],
-                                            left=("quantity", "difference")))]
+    sections = [
+        (
+            "Summary",
+            "<ul>"
+            + "".join(f"<li>{html.escape(s)}</li>" for s in comparison["summary"])
+            + "</ul>"
+            + f"<p class='note'>A detector is called better at a point only where the two 95 % confidence "
+            f"intervals do not overlap; where they overlap the page says “no clear difference”, and where "
+            f"a quantity has no interval (predicted thresholds, MTF and DQE without repeated measurements) "
+            f"it shows the values and claims nothing. Scored thresholds in the table: {method}.</p>",
+        ),
+        (
+            "Side by side",
+            table_html(
+                _side_by_side_rows(comparison),
+                columns=["quantity", la, lb, "difference"],
+                left=("quantity", "difference"),
+            ),
+        ),
+    ]
     if a.get("mtf") and b.get("mtf"):
-        sections.append(("MTF", _figure(_mtf_plot({la: a["mtf"], lb: b["mtf"]},
-                                                  {la: a.get("nyquist_per_mm"), lb: b.get("nyquist_per_mm")}),
-                                        "Mean presampling MTF of each detector (dotted: Nyquist).")))
+        sections.append(
+            (
+                "MTF",
+                _figure(
+                    _mtf_plot({la: a["mtf"], lb: b["mtf"]}, {la: a.get("nyquist_per_mm"), lb: b.get("nyquist_per_mm")}),
+                    "Mean presampling MTF of each detector (dotted: Nyquist).",
+                ),
+            )
+        )
     if a.get("nnps") and b.get("nnps"):
-        sections.append(("NNPS", _figure(_nnps_plot({lab: (d["nnps"]["frequency_per_mm"], d["nnps"]["value_mm2"],
-                                                           d["nnps"].get("ci_low"), d["nnps"].get("ci_high"))
-                                                     for lab, d in ((la, a), (lb, b))}),
-                                         "Mean of the two axis cuts; NNPS scales as 1/kerma, so compare at equal kerma.")))
+        sections.append(
+            (
+                "NNPS",
+                _figure(
+                    _nnps_plot(
+                        {
+                            lab: (
+                                d["nnps"]["frequency_per_mm"],
+                                d["nnps"]["value_mm2"],
+                                d["nnps"].get("ci_low"),
+                                d["nnps"].get("ci_high"),
+                            )
+                            for lab, d in ((la, a), (lb, b))
+                        }
+                    ),
+                    "Mean of the two axis cuts; NNPS scales as 1/kerma, so compare at equal kerma.",
+                ),
+            )
+        )
     if a.get("dqe") and b.get("dqe"):
-        sections.append(("DQE", _figure(_dqe_plot({lab: (d["dqe"]["frequency_per_mm"], d["dqe"]["value"],
-                                                         d["dqe"].get("ci_low"), d["dqe"].get("ci_high"))
-                                                   for lab, d in ((la, a), (lb, b))}),
-                                        "Headline DQE of each detector (bands: 95 % CIs).")))
+        sections.append(
+            (
+                "DQE",
+                _figure(
+                    _dqe_plot(
+                        {
+                            lab: (
+                                d["dqe"]["frequency_per_mm"],
+                                d["dqe"]["value"],
+                                d["dqe"].get("ci_low"),
+                                d["dqe"].get("ci_high"),
+                            )
+                            for lab, d in ((la, a), (lb, b))
+                        }
+                    ),
+                    "Headline DQE of each detector (bands: 95 % CIs).",
+                ),
+            )
+        )
     eq = comparison.get("equal_quality")
     if eq and eq.get("ratios"):
         rows = []
         for r in eq["ratios"]:
-            rows.append({"diameter (mm)": r["diameter_mm"],
-                         f"kerma ratio {lb}/{la} (95 % CI)": "—" if r.get("ratio") is None else
-                         f"{r['ratio']:.3g} ({r['ci_low']:.3g}–{r['ci_high']:.3g})",
-                         "predicted from MTF, NNPS and noise": "—" if r.get("predicted_ratio") is None else
-                         f"{r['predicted_ratio']:.3g}",
-                         f"β {la}": f"{r['beta_a']:.3f}", f"β {lb}": f"{r['beta_b']:.3f}",
-                         "at threshold (%)": f"{100 * r['threshold_contrast']:.3g}"})
-        sections.insert(1, ("Equal image quality: the air kerma each panel needs",
-                            "<ul>" + "".join(f"<li>{html.escape(s)}</li>" for s in eq["sentences"]) + "</ul>"
-                            + table_html(rows) + f"<p class='note'>{html.escape(eq['note'])}; measured from the "
-                            "dose series (scored thresholds fitted as a·K^(−β)); the predicted ratio uses each "
-                            "panel's MTF and NNPS (Fourier NPW) carried to other kermas by its noise components, and "
-                            "has no CI.</p>"))
+            rows.append(
+                {
+                    "diameter (mm)": r["diameter_mm"],
+                    f"kerma ratio {lb}/{la} (95 % CI)": "—"
+                    if r.get("ratio") is None
+                    else f"{r['ratio']:.3g} ({r['ci_low']:.3g}–{r['ci_high']:.3g})",
+                    "predicted from MTF, NNPS and noise": "—"
+                    if r.get("predicted_ratio") is None
+                    else f"{r['predicted_ratio']:.3g}",
+                    f"β {la}": f"{r['beta_a']:.3f}",
+                    f"β {lb}": f"{r['beta_b']:.3f}",
+                    "at threshold (%)": f"{100 * r['threshold_contrast']:.3g}",
+                }
+            )
+        sections.insert(
+            1,
+            (
+                "Equal image quality: the air kerma each panel needs",
+                "<ul>"
+                + "".join(f"<li>{html.escape(s)}</li>" for s in eq["sentences"])
+                + "</ul>"
+                + table_html(rows)
+                + f"<p class='note'>{html.escape(eq['note'])}; measured from the "
+                "dose series (scored thresholds fitted as a·K^(−β)); the predicted ratio uses each "
+                "panel's MTF and NNPS (Fourier NPW) carried to other kermas by its noise components, and "
+                "has no CI.</p>",
+            ),
+        )
     nc = comparison.get("noise_components") or {}
     if nc:
         rows = []
@@ -317,24 +469,50 @@ def compare_report_html(comparison: dict, a: dict, b: dict, title: str = "Limen 
             row = {"detector": lab}
             for t, unit in (("electronic", "µGy²"), ("quantum", "µGy"), ("structure", "")):
                 v = c.get(t) or {}
-                row[f"{t} ({unit})" if unit else t] = "—" if v.get("value") is None else (
-                    f"{v['value']:.3g}" + ("" if v.get("ci_low") is None else
-                                           f" ({v['ci_low']:.3g}–{v['ci_high']:.3g})"))
+                row[f"{t} ({unit})" if unit else t] = (
+                    "—"
+                    if v.get("value") is None
+                    else (
+                        f"{v['value']:.3g}"
+                        + ("" if v.get("ci_low") is None else f" ({v['ci_low']:.3g}–{v['ci_high']:.3g})")
+                    )
+                )
             row["where quantum noise dominates"] = n.get("quantum_limited_text") or ""
             rows.append(row)
-        sections.insert(2 if eq else 1, ("Noise components", table_html(rows, left=("detector",
-                                                                                     "where quantum noise dominates"))
-                        + "<p class='note'>Pixel variance of the linearised flat fields σ²(K) = e + q·K + s·K² "
-                          "(electronic, quantum, structure), fitted by weighted least squares with 95 % CIs.</p>"))
+        sections.insert(
+            2 if eq else 1,
+            (
+                "Noise components",
+                table_html(rows, left=("detector", "where quantum noise dominates"))
+                + "<p class='note'>Pixel variance of the linearised flat fields σ²(K) = e + q·K + s·K² "
+                "(electronic, quantum, structure), fitted by weighted least squares with 95 % CIs.</p>",
+            ),
+        )
     th = comparison.get("thresholds") or []
     if th:
         series: dict[str, list[dict]] = {}
         for r in th:
             series.setdefault(f"{r['detector']} {r['source']}", []).append(r)
-        sections.append(("Threshold contrast: predicted and scored",
-                         _figure(_thresholds_plot(series), "Dashed: predicted from MTF and NNPS; solid: scored "
-                                                           "from phantom images.")
-                         + table_html(*display_records(th, ["detector", "source", "diameter_mm", "threshold_contrast",
-                                                            "ci_low", "ci_high"]), left=("detector", "source"))))
+        sections.append(
+            (
+                "Threshold contrast: predicted and scored",
+                _figure(
+                    _thresholds_plot(series), "Dashed: predicted from MTF and NNPS; solid: scored from phantom images."
+                )
+                + table_html(
+                    *display_records(
+                        th, ["detector", "source", "diameter_mm", "threshold_contrast", "ci_low", "ci_high"]
+                    ),
+                    left=("detector", "source"),
+                ),
+            )
+        )
     sections.append(("Method", _METHOD))
     return html_page(title, sections, meta={"inputs": comparison.get("inputs")})
+
+
+def _fitted_variance(comp: dict, kerma_ugy: float) -> str:
+    """σ² = e + q·K + s·K² from the fitted noise components, as shown in the table."""
+    k = float(kerma_ugy)
+    v = comp["electronic"]["value"] + comp["quantum"]["value"] * k + comp["structure"]["value"] * k**2
+    return f"{v:.4g}"

@@ -25,8 +25,12 @@ def dose_response_svg(series: dict, title: str = "Threshold contrast against air
     fits = {round(f["diameter_mm"], 6): f for f in series.get("fits", [])}
     diams = sorted({p["diameter_mm"] for g in series["groups"] for p in g["thresholds"]})
     for _i, d in enumerate(diams):
-        pts = [(g["kerma_ugy"], p) for g in series["groups"] for p in g["thresholds"]
-               if np.isclose(p["diameter_mm"], d) and p["threshold_contrast"] is not None and not p.get("censored")]
+        pts = [
+            (g["kerma_ugy"], p)
+            for g in series["groups"]
+            for p in g["thresholds"]
+            if np.isclose(p["diameter_mm"], d) and p["threshold_contrast"] is not None and not p.get("censored")
+        ]
         if not pts:
             continue
         k = np.array([x for x, _ in pts])
@@ -56,15 +60,23 @@ def fit_rows(series: dict) -> list[dict]:
         if f.get("beta") is None:
             rows.append({"diameter (mm)": f["diameter_mm"], "β (95 % CI)": "—", "note": f.get("note", "")})
             continue
-        row = {"diameter (mm)": f["diameter_mm"],
-               "β (95 % CI)": f"{f['beta']:.3f} ({f['beta_ci_low']:.3f}–{f['beta_ci_high']:.3f})"}
+        row = {
+            "diameter (mm)": f["diameter_mm"],
+            "β (95 % CI)": f"{f['beta']:.3f} ({f['beta_ci_low']:.3f}–{f['beta_ci_high']:.3f})",
+        }
         for name in ("low", "high"):
             b = f.get(f"beta_{name}")
             row[f"β {name}-kerma groups"] = "—" if not b else f"{b['beta']:.3f} ({b['ci_low']:.3f}–{b['ci_high']:.3f})"
         k = f.get("kerma_for_limit_ugy")
         ci = f.get("kerma_for_limit_ci") or [None, None]
-        row["kerma for the acceptable limit (µGy)"] = "—" if k is None or not np.isfinite(k) else (
-            f"{k:.3g} ({ci[0]:.3g}–{ci[1]:.3g})" + (" extrapolated" if f.get("kerma_for_limit_extrapolated") else ""))
+        row["kerma for the acceptable limit (µGy)"] = (
+            "—"
+            if k is None or not np.isfinite(k)
+            else (
+                f"{k:.3g} ({ci[0]:.3g}–{ci[1]:.3g})"
+                + (" extrapolated" if f.get("kerma_for_limit_extrapolated") else "")
+            )
+        )
         row["note"] = f.get("note", "")
         rows.append(row)
     return rows
@@ -74,12 +86,19 @@ def group_rows(series: dict) -> list[dict]:
     rows = []
     for g in series["groups"]:
         for p, fom in zip(g["thresholds"], g["figure_of_merit"]):
-            rows.append({"kerma (µGy)": f"{g['kerma_ugy']:.3g}", "images": g["n_images"],
-                         "diameter (mm)": p["diameter_mm"],
-                         "threshold (%)": "—" if p["threshold_contrast"] is None else
-                         f"{100 * p['threshold_contrast']:.3g} ({100 * p['ci_low']:.3g}–{100 * p['ci_high']:.3g})",
-                         "FOM 1/(C²K) per µGy": "—" if fom["fom_per_ugy"] is None else
-                         f"{fom['fom_per_ugy']:.3g} ({fom['ci_low']:.3g}–{fom['ci_high']:.3g})"})
+            rows.append(
+                {
+                    "kerma (µGy)": f"{g['kerma_ugy']:.3g}",
+                    "images": g["n_images"],
+                    "diameter (mm)": p["diameter_mm"],
+                    "threshold (%)": "—"
+                    if p["threshold_contrast"] is None
+                    else f"{100 * p['threshold_contrast']:.3g} ({100 * p['ci_low']:.3g}–{100 * p['ci_high']:.3g})",
+                    "FOM 1/(C²K) per µGy": "—"
+                    if fom["fom_per_ugy"] is None
+                    else f"{fom['fom_per_ugy']:.3g} ({fom['ci_low']:.3g}–{fom['ci_high']:.3g})",
+                }
+            )
     return rows
 
 
@@ -91,16 +110,23 @@ METHOD_TEXT = (
     "(β &gt; 0.5) at low kerma, structure noise flattens it (β &lt; 0.5) at high kerma. The figure of merit "
     "1/(C_T²·K) is constant where the detector is quantum-limited. The kerma for a limit solves factor·C_T(K) = "
     "limit on the fitted curve (the human/model factor for limits written for human readers); its CI comes from "
-    "seeded draws of the fitted parameters and of the factor.</p>")
+    "seeded draws of the fitted parameters and of the factor.</p>"
+)
 
 
 def dose_series_html(series: dict, title: str = "Limen dose series") -> str:
-    sections = [("Threshold against kerma", "<figure>" + dose_response_svg(series) + "<figcaption>Points: each kerma "
-                 "group's threshold with its 95 % CI; lines: the fitted power law per diameter.</figcaption></figure>"),
-                ("Fitted exponent β and kerma for the limit", table_html(fit_rows(series))),
-                ("Per kerma group", table_html(group_rows(series)))]
+    sections = [
+        (
+            "Threshold against kerma",
+            "<figure>" + dose_response_svg(series) + "<figcaption>Points: each kerma "
+            "group's threshold with its 95 % CI; lines: the fitted power law per diameter.</figcaption></figure>",
+        ),
+        ("Fitted exponent β and kerma for the limit", table_html(fit_rows(series))),
+        ("Per kerma group", table_html(group_rows(series))),
+    ]
     if series.get("warnings"):
-        sections.append(("Warnings", "<ul>" + "".join(f"<li>{html.escape(w)}</li>" for w in series["warnings"])
-                         + "</ul>"))
+        sections.append(
+            ("Warnings", "<ul>" + "".join(f"<li>{html.escape(w)}</li>" for w in series["warnings"]) + "</ul>")
+        )
     sections.append(("Method", METHOD_TEXT))
     return html_page(title, sections, meta={"settings": series.get("settings")})

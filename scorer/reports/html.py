@@ -26,9 +26,11 @@ CAUTION = (
 )
 
 _STYLE = """
-body{font-family:system-ui,-apple-system,Segoe UI,Roboto,sans-serif;margin:2em auto;max-width:70em;color:#1b1b1b;line-height:1.45}
+body{font-family:system-ui,-apple-system,Segoe UI,Roboto,sans-serif;margin:2em auto;max-width:70em;color:#1b1b1b;
+line-height:1.45}
 h1{font-size:1.6em;margin-bottom:.2em} h2{font-size:1.25em;margin-top:1.6em;border-bottom:1px solid #ccc}
-table{border-collapse:collapse;margin:.6em 0;font-size:.92em} th,td{border:1px solid #bbb;padding:.25em .6em;text-align:right}
+table{border-collapse:collapse;margin:.6em 0;font-size:.92em}
+th,td{border:1px solid #bbb;padding:.25em .6em;text-align:right}
 th{background:#eef2f5} td.l,th.l{text-align:left}
 .caution{background:#fff6e0;border-left:5px solid #d08a00;padding:.6em 1em;margin:1em 0}
 .pass{color:#106b21;font-weight:600}.fail{color:#a4161a;font-weight:600}.indeterminate{color:#8a6d00;font-weight:600}
@@ -48,8 +50,9 @@ def figure_to_svg(fig) -> str:
     return text[start:] if start >= 0 else text
 
 
-def table_html(rows: list[dict], columns: list[str] | None = None, headers: dict | None = None,
-               left: Iterable[str] = ()) -> str:
+def table_html(
+    rows: list[dict], columns: list[str] | None = None, headers: dict | None = None, left: Iterable[str] = ()
+) -> str:
     """A plain HTML table from a list of dicts (floats shown with 4 significant figures)."""
     if not rows:
         return "<p><em>No rows.</em></p>"
@@ -95,6 +98,7 @@ def provenance() -> dict:
     }
     try:
         import statsmodels
+
         out["statsmodels"] = statsmodels.__version__
     except ImportError:  # pragma: no cover
         pass
@@ -115,7 +119,9 @@ def html_page(title: str, sections: list[tuple[str, str]], meta: dict | None = N
         if heading:
             parts.append(f"<h2>{html.escape(heading)}</h2>")
         parts.append(body)
-    parts.append("<h2>Provenance</h2><pre class='meta'>" + html.escape(json.dumps(meta, indent=2, default=str)) + "</pre>")
+    parts.append(
+        "<h2>Provenance</h2><pre class='meta'>" + html.escape(json.dumps(meta, indent=2, default=str)) + "</pre>"
+    )
     parts.append("</body></html>")
     return "\n".join(parts)
 
@@ -189,18 +195,31 @@ def plain_log_ticks(ax, axes: str = "xy") -> None:
 
 #: readable column headings for the tables of every report
 READABLE = {
-    "diameter_mm": "diameter (mm)", "threshold_contrast": "threshold (%)", "ci_low": "95 % CI low (%)",
-    "ci_high": "95 % CI high (%)", "n_trials": "trials", "n_images": "images", "n_readers": "readers",
-    "human_threshold": "human threshold (%)", "model_threshold": "model threshold (%)",
-    "human_equivalent_threshold": "human-equivalent threshold (%)", "p_value": "p", "p_adjusted": "p (Holm)",
-    "dprime_per_unit_contrast": "d′ per unit contrast", "criterion_pc": "Pc at threshold",
-    "m_alternatives": "alternatives (M)", "observed_agreement": "observed agreement", "n_pairs": "pairs",
+    "diameter_mm": "diameter (mm)",
+    "threshold_contrast": "threshold (%)",
+    "ci_low": "95 % CI low (%)",
+    "ci_high": "95 % CI high (%)",
+    "n_trials": "trials",
+    "n_images": "images",
+    "n_readers": "readers",
+    "human_threshold": "human threshold (%)",
+    "model_threshold": "model threshold (%)",
+    "human_equivalent_threshold": "human-equivalent threshold (%)",
+    "p_value": "p",
+    "p_adjusted": "p (Holm)",
+    "dprime_per_unit_contrast": "d′ per unit contrast",
+    "criterion_pc": "Pc at threshold",
+    "m_alternatives": "alternatives (M)",
+    "observed_agreement": "observed agreement",
+    "n_pairs": "pairs",
 }
 #: columns that hold contrasts (fractions in code, % on the page)
 CONTRAST_COLUMNS = {"threshold_contrast", "human_threshold", "model_threshold", "human_equivalent_threshold"}
 
 
-def display_records(records, columns, percent=CONTRAST_COLUMNS, ci_percent: bool = True) -> tuple[list[dict], list[str]]:
+def display_records(
+    records, columns, percent=CONTRAST_COLUMNS, ci_percent: bool = True
+) -> tuple[list[dict], list[str]]:
     """Rows for :func:`table_html` with contrasts in % (3 significant figures) and readable headings.
 
     ``ci_low``/``ci_high`` are shown in % too when ``ci_percent`` (they bound a contrast); pass False where they

@@ -42,30 +42,56 @@ def cd_plot(result, extra_curves=None, title=None):
         hi = np.array([p.ci_high for p in pts]) * 100
         col = COLOURS.get(method, None)
         plain = np.array([not getattr(p, "censored", "") for p in pts])
-        ax.errorbar(d[plain], t[plain], yerr=[e[plain] for e in error_bars(t, lo, hi)], fmt="o", ms=5, capsize=3,
-                    color=col, label=f"{curve.observer.upper()} {METHOD_LABEL.get(method, method)} (95 % CI)")
+        ax.errorbar(
+            d[plain],
+            t[plain],
+            yerr=[e[plain] for e in error_bars(t, lo, hi)],
+            fmt="o",
+            ms=5,
+            capsize=3,
+            color=col,
+            label=f"{curve.observer.upper()} {METHOD_LABEL.get(method, method)} (95 % CI)",
+        )
         extra = np.array([bool(getattr(p, "extrapolated", False)) for p in pts])
         if extra.any():
-            ax.plot(d[extra], t[extra], "o", ms=9, mfc="none", mec=col, label="extrapolated (outside the contrasts "
-                    "offered)")
+            ax.plot(
+                d[extra], t[extra], "o", ms=9, mfc="none", mec=col, label="extrapolated (outside the contrasts offered)"
+            )
         for mark, side in (("^", "above"), ("v", "below")):
             sel = np.array([getattr(p, "censored", "") == side for p in pts])
             if sel.any():
-                ax.plot(d[sel], t[sel], mark, ms=8, color=col, label=f"{METHOD_LABEL.get(method, method)}: "
-                        f"threshold {side} the contrasts offered (censored)")
+                ax.plot(
+                    d[sel],
+                    t[sel],
+                    mark,
+                    ms=8,
+                    color=col,
+                    label=f"{METHOD_LABEL.get(method, method)}: threshold {side} the contrasts offered (censored)",
+                )
         if curve.smooth is not None:
             x = np.geomspace(*curve.smooth.diameter_range_mm, 100)
             ax.plot(x, curve.smooth(x) * 100, "-", color=col, alpha=0.6, lw=1.2)
     if result.limits is not None:
         lim = result.limits
         scale = 1.0 / factor if result.human_factor else 1.0
-        ax.plot(lim.diameters_mm, np.array(lim.acceptable) * 100 * scale, "k--", lw=1.3, marker="x",
-                label="acceptable limit (× listed; dashed between: interpolated)"
-                + (f" ÷ human factor {factor:.3g}" if result.human_factor else ""))
+        ax.plot(
+            lim.diameters_mm,
+            np.array(lim.acceptable) * 100 * scale,
+            "k--",
+            lw=1.3,
+            marker="x",
+            label="acceptable limit (× listed; dashed between: interpolated)"
+            + (f" ÷ human factor {factor:.3g}" if result.human_factor else ""),
+        )
         ach = [(d, a) for d, a in zip(lim.diameters_mm, lim.achievable) if a is not None]
         if ach:
-            ax.plot([a[0] for a in ach], np.array([a[1] for a in ach]) * 100 * scale, "k:", lw=1.3,
-                    label="achievable level" + (" (same scale)" if result.human_factor else ""))
+            ax.plot(
+                [a[0] for a in ach],
+                np.array([a[1] for a in ach]) * 100 * scale,
+                "k:",
+                lw=1.3,
+                label="achievable level" + (" (same scale)" if result.human_factor else ""),
+            )
     ax.set_xscale("log")
     ax.set_yscale("log")
     plain_log_ticks(ax)
@@ -121,8 +147,10 @@ def _thumb(png: Path, max_px: int = 560) -> str:
         img = cv2.resize(img, None, fx=scale, fy=scale, interpolation=cv2.INTER_AREA)
     ok, buf = cv2.imencode(".jpg", img, [cv2.IMWRITE_JPEG_QUALITY, 82])
     data = base64.b64encode(buf.tobytes()).decode("ascii")
-    return (f"<a href='overlays/{Path(png).name}'><img alt='registration overlay {Path(png).name}' "
-            f"src='data:image/jpeg;base64,{data}' style='max-width:32%;margin:2px'></a>")
+    return (
+        f"<a href='overlays/{Path(png).name}'><img alt='registration overlay {Path(png).name}' "
+        f"src='data:image/jpeg;base64,{data}' style='max-width:32%;margin:2px'></a>"
+    )
 
 
 def write_score_outputs(result, out_dir, overlays: list[Path] | None = None, command: str = "") -> dict:
@@ -142,7 +170,9 @@ def write_score_outputs(result, out_dir, overlays: list[Path] | None = None, com
     if result.verdicts is not None:
         import pandas as pd
 
-        atomic_write_text(out / "verdicts.csv", pd.DataFrame([v.to_dict() for v in result.verdicts]).to_csv(index=False))
+        atomic_write_text(
+            out / "verdicts.csv", pd.DataFrame([v.to_dict() for v in result.verdicts]).to_csv(index=False)
+        )
     atomic_write_text(out / "report.html", render_html(result, overlays or [], command))
     return {"json": out / "results.json", "report": out / "report.html"}
 
@@ -152,9 +182,12 @@ def _ci_caption(result) -> str:
     parts = []
     st = result.settings
     if "dprime" in result.curves:
-        parts.append("d′ method: analytic interval from the sampling variance of the linear observer's d′, widened "
-                     "for over-dispersion" if st.get("dprime_ci", "analytic") == "analytic"
-                     else f"d′ method: expanded percentile bootstrap over images ({st.get('n_boot')} resamples)")
+        parts.append(
+            "d′ method: analytic interval from the sampling variance of the linear observer's d′, widened "
+            "for over-dispersion"
+            if st.get("dprime_ci", "analytic") == "analytic"
+            else f"d′ method: expanded percentile bootstrap over images ({st.get('n_boot')} resamples)"
+        )
     if "count" in result.curves:
         parts.append(f"count method: expanded percentile bootstrap over images ({st.get('n_boot')} resamples)")
     return "; ".join(parts)
@@ -162,44 +195,69 @@ def _ci_caption(result) -> str:
 
 def render_html(result, overlays: list[Path], command: str = "") -> str:
     meta0 = result.images[0].metadata if result.images else {}
-    intro = (f"<p>{len(result.images)} image(s) of <b>{result.layout.name}</b> scored by the "
-             f"<b>{result.observer.upper()}</b> model observer. Detector "
-             f"{meta0.get('detector_id') or meta0.get('device_serial') or 'unknown'}, station "
-             f"{meta0.get('station_name') or 'unknown'}, detector type {meta0.get('detector_type') or 'unknown'}, "
-             f"{meta0.get('kvp') or '—'} kV.</p>")
+    intro = (
+        f"<p>{len(result.images)} image(s) of <b>{result.layout.name}</b> scored by the "
+        f"<b>{result.observer.upper()}</b> model observer. Detector "
+        f"{meta0.get('detector_id') or meta0.get('device_serial') or 'unknown'}, station "
+        f"{meta0.get('station_name') or 'unknown'}, detector type {meta0.get('detector_type') or 'unknown'}, "
+        f"{meta0.get('kvp') or '—'} kV.</p>"
+    )
     n_sim = sum(1 for sc in result.images if (sc.metadata or {}).get("manufacturer") == SIMULATED_MANUFACTURER)
     if n_sim:
-        intro = (f"<p class='fail'><b>Simulated data:</b> {n_sim} of {len(result.images)} image(s) were made by "
-                 "Limen's physics simulator, not by a real detector (invented demo scenario).</p>") + intro
+        intro = (
+            f"<p class='fail'><b>Simulated data:</b> {n_sim} of {len(result.images)} image(s) were made by "
+            "Limen's physics simulator, not by a real detector (invented demo scenario).</p>"
+        ) + intro
     if result.verdicts is not None:
         ov = result.overall_verdict
-        intro += (f"<p>Overall verdict against <b>{result.limits.name}</b>: "
-                  f"<span class='{ov}'>{ov.upper()}</span> (method: {METHOD_LABEL[result.verdict_method]}"
-                  + (f"; human/model factor {result.human_factor:.3g}" if result.human_factor else "")
-                  + (f" (95 % CI {result.human_factor_ci[0]:.3g}–{result.human_factor_ci[1]:.3g}, included in the "
-                     "human-equivalent CIs)" if result.human_factor_ci else "") + ").</p>")
+        intro += (
+            f"<p>Overall verdict against <b>{result.limits.name}</b>: "
+            f"<span class='{ov}'>{ov.upper()}</span> (method: {METHOD_LABEL[result.verdict_method]}"
+            + (f"; human/model factor {result.human_factor:.3g}" if result.human_factor else "")
+            + (
+                f" (95 % CI {result.human_factor_ci[0]:.3g}–{result.human_factor_ci[1]:.3g}, included in the "
+                "human-equivalent CIs)"
+                if result.human_factor_ci
+                else ""
+            )
+            + ").</p>"
+        )
         intro += f"<p class='meta'>Limits source: {result.limits.source}</p>"
     if result.warnings:
         intro += "<ul>" + "".join(f"<li>{w}</li>" for w in result.warnings) + "</ul>"
-    sections = [("Summary", intro),
-                ("Contrast-detail curve", f"<figure>{figure_to_svg(cd_plot(result))}<figcaption>Threshold "
-                 f"contrast per disc diameter (log-log) with 95 % confidence intervals ({_ci_caption(result)}); "
-                 "lines: smooth curve log C = a + b·log d + c·(log d)². Triangles: censored thresholds (only "
-                 "known to lie above ▲ or below ▼ the contrasts the plate offers); open circles: d′-method values "
-                 "extrapolated beyond them.</figcaption></figure>")]
+    sections = [
+        ("Summary", intro),
+        (
+            "Contrast-detail curve",
+            f"<figure>{figure_to_svg(cd_plot(result))}<figcaption>Threshold "
+            f"contrast per disc diameter (log-log) with 95 % confidence intervals ({_ci_caption(result)}); "
+            "lines: smooth curve log C = a + b·log d + c·(log d)². Triangles: censored thresholds (only "
+            "known to lie above ▲ or below ▼ the contrasts the plate offers); open circles: d′-method values "
+            "extrapolated beyond them.</figcaption></figure>",
+        ),
+    ]
     rows = []
     for method, c in result.curves.items():
         for p in c.points:
             one_sided = bool(p.censored)
-            rows.append({"diameter (mm)": p.diameter_mm, "method": METHOD_LABEL[method],
-                         "threshold (%)": p.display(unit=""),
-                         "95 % CI (%)": "—" if one_sided or not np.isfinite(p.ci_low)
-                         else f"{100 * p.ci_low:.3g}–{100 * p.ci_high:.3g}",
-                         "contrasts offered (%)": "—" if p.offered_min is None
-                         else f"{100 * p.offered_min:.3g}–{100 * p.offered_max:.3g}",
-                         "images": p.n_images, "note": p.note})
+            rows.append(
+                {
+                    "diameter (mm)": p.diameter_mm,
+                    "method": METHOD_LABEL[method],
+                    "threshold (%)": p.display(unit=""),
+                    "95 % CI (%)": "—"
+                    if one_sided or not np.isfinite(p.ci_low)
+                    else f"{100 * p.ci_low:.3g}–{100 * p.ci_high:.3g}",
+                    "contrasts offered (%)": "—"
+                    if p.offered_min is None
+                    else f"{100 * p.offered_min:.3g}–{100 * p.offered_max:.3g}",
+                    "images": p.n_images,
+                    "note": p.note,
+                }
+            )
     sections.append(("Threshold contrast", table_html(rows, left=["method", "note"]) + METHOD_TEXT))
     if result.verdicts is not None:
+
         def lim(x, v):
             return "—" if x is None else f"{100 * x:.3g}" + (" (interpolated)" if v.limit_interpolated else "")
 
@@ -207,31 +265,56 @@ def render_html(result, overlays: list[Path], command: str = "") -> str:
             sign = {"above": "> ", "below": "< "}.get(v.censored, "")
             return f"{sign}{100 * v.threshold_contrast:.3g}" if np.isfinite(v.threshold_contrast) else "—"
 
-        vrows = [{"diameter (mm)": v.diameter_mm, "compared threshold (%)": comp(v),
-                  "95 % CI (%)": (f"{100 * v.ci_low:.3g}–{100 * v.ci_high:.3g}"
-                                  if np.isfinite(v.ci_low) and np.isfinite(v.ci_high) else "—"),
-                  "acceptable (%)": lim(v.acceptable, v), "achievable (%)": lim(v.achievable, v),
-                  "verdict": v.verdict,
-                  "achievable met": "—" if v.achievable_met is None else ("yes" if v.achievable_met else "no"),
-                  "note": v.note}
-                 for v in result.verdicts]
-        sections.append(("Verdict per diameter", table_html(vrows, left=["verdict", "95 % CI (%)", "achievable met",
-                                                                          "note"])))
-    sections.append(("Proportion correct per diameter",
-                     f"<figure>{figure_to_svg(psychometric_plot(result))}<figcaption>Observed proportion of correct "
-                     "M-AFC decisions per target over the images (M as in the layout: 3 or 5 on the demo plate), with the "
-                     "maximum-likelihood M-AFC psychometric "
-                     "function (dotted: chance).</figcaption></figure>"))
+        vrows = [
+            {
+                "diameter (mm)": v.diameter_mm,
+                "compared threshold (%)": comp(v),
+                "95 % CI (%)": (
+                    f"{100 * v.ci_low:.3g}–{100 * v.ci_high:.3g}"
+                    if np.isfinite(v.ci_low) and np.isfinite(v.ci_high)
+                    else "—"
+                ),
+                "acceptable (%)": lim(v.acceptable, v),
+                "achievable (%)": lim(v.achievable, v),
+                "verdict": v.verdict,
+                "achievable met": "—" if v.achievable_met is None else ("yes" if v.achievable_met else "no"),
+                "note": v.note,
+            }
+            for v in result.verdicts
+        ]
+        sections.append(
+            ("Verdict per diameter", table_html(vrows, left=["verdict", "95 % CI (%)", "achievable met", "note"]))
+        )
+    sections.append(
+        (
+            "Proportion correct per diameter",
+            f"<figure>{figure_to_svg(psychometric_plot(result))}<figcaption>Observed proportion of correct "
+            "M-AFC decisions per target over the images (M as in the layout: 3 or 5 on the demo plate), with the "
+            "maximum-likelihood M-AFC psychometric "
+            "function (dotted: chance).</figcaption></figure>",
+        )
+    )
     measured = isinstance(result.settings.get("blur"), dict) and "MTF" in str(result.settings["blur"].get("source"))
-    reg_rows = [{"image": s.image_id, "residual (px)": s.placement.residual_px,
-                 "max residual (px)": s.placement.max_residual_px, "rotation (°)": s.placement.rotation_deg,
-                 "flipped": "yes" if s.placement.flipped else "no", "magnification": s.placement.magnification,
-                 "template blur": "measured MTF" if measured else f"Gaussian σ {s.blur_sigma_px:.2f} px (markers)", "proportion correct": s.n_correct / max(s.n_trials, 1)}
-                for s in result.images]
+    reg_rows = [
+        {
+            "image": s.image_id,
+            "residual (px)": s.placement.residual_px,
+            "max residual (px)": s.placement.max_residual_px,
+            "rotation (°)": s.placement.rotation_deg,
+            "flipped": "yes" if s.placement.flipped else "no",
+            "magnification": s.placement.magnification,
+            "template blur": "measured MTF" if measured else f"Gaussian σ {s.blur_sigma_px:.2f} px (markers)",
+            "proportion correct": s.n_correct / max(s.n_trials, 1),
+        }
+        for s in result.images
+    ]
     reg_html = table_html(reg_rows, left=["image", "flipped", "template blur"])
     if overlays:
         reg_html += "<div>" + "".join(_thumb(p) for p in overlays[:12]) + "</div>"
     sections.append(("Images and registration", reg_html))
-    meta = {"settings": result.settings, "command": command,
-            "inputs": [{"path": s.path, "sha256": s.metadata.get("content_sha256")} for s in result.images]}
+    meta = {
+        "settings": result.settings,
+        "command": command,
+        "inputs": [{"path": s.path, "sha256": s.metadata.get("content_sha256")} for s in result.images],
+    }
     return html_page(f"Limen contrast-detail report — {result.layout.name}", sections, meta)

@@ -15,8 +15,16 @@ import pandas as pd
 
 from scorer.errors import LimenError  # noqa: E402
 from scorer.files import atomic_write_text  # noqa: E402
-from scorer.reports.html import (READABLE, display_records, error_bars, figure_to_svg, html_page, plain_log_ticks,
-                                 table_html, write_json)
+from scorer.reports.html import (
+    READABLE,
+    display_records,
+    error_bars,
+    figure_to_svg,
+    html_page,
+    plain_log_ticks,
+    table_html,
+    write_json,
+)
 
 
 def _plt():
@@ -36,17 +44,25 @@ def curves_figure(a, level) -> str:
     rc = a.reader_curves[a.reader_curves[by] == level]
     for i, (_reader, g) in enumerate(rc.groupby("reader")):
         g = g.sort_values("diameter_mm")
-        ax.plot(g["diameter_mm"], g["threshold_contrast"] * 100, "-", color="0.6", lw=0.8, alpha=0.8,
-                label="readers" if i == 0 else None)
+        ax.plot(
+            g["diameter_mm"],
+            g["threshold_contrast"] * 100,
+            "-",
+            color="0.6",
+            lw=0.8,
+            alpha=0.8,
+            label="readers" if i == 0 else None,
+        )
     pc = a.pooled_curves[a.pooled_curves[by] == level] if len(a.pooled_curves) else pd.DataFrame()
     if len(pc):
         pc = pc.sort_values("diameter_mm")
         y = pc["threshold_contrast"].to_numpy() * 100
         err = np.vstack(error_bars(y, pc["ci_low"].to_numpy() * 100, pc["ci_high"].to_numpy() * 100))
-        ax.errorbar(pc["diameter_mm"], y, yerr=err, fmt="o-", color="#1f4e79", lw=2, capsize=3,
-                    label="pooled readers (95 % CI)")
+        ax.errorbar(
+            pc["diameter_mm"], y, yerr=err, fmt="o-", color="#1f4e79", lw=2, capsize=3, label="pooled readers (95 % CI)"
+        )
     mc = a.model_curves[a.model_curves[by] == level] if len(a.model_curves) else pd.DataFrame()
-    for obs, g in (mc.groupby("reader") if len(mc) else []):
+    for obs, g in mc.groupby("reader") if len(mc) else []:
         g = g.sort_values("diameter_mm")
         ax.plot(g["diameter_mm"], g["threshold_contrast"] * 100, "s--", color="#b5541c", label=f"model {obs}")
     hm = a.human_model
@@ -54,8 +70,14 @@ def curves_figure(a, level) -> str:
         per = pd.DataFrame(hm["per_diameter"])
         per = per[per[by] == level].sort_values("diameter_mm")
         if len(per):
-            ax.plot(per["diameter_mm"], per["human_equivalent_threshold"] * 100, ":", color="#b5541c", lw=2,
-                    label=f"{hm['observer']} × factor {hm['factor']:.2f} (human-equivalent)")
+            ax.plot(
+                per["diameter_mm"],
+                per["human_equivalent_threshold"] * 100,
+                ":",
+                color="#b5541c",
+                lw=2,
+                label=f"{hm['observer']} × factor {hm['factor']:.2f} (human-equivalent)",
+            )
     ax.set_xscale("log")
     ax.set_yscale("log")
     plain_log_ticks(ax)
@@ -73,8 +95,14 @@ def forest_figure(a) -> str:
     fig, ax = plt.subplots(figsize=(6.4, 0.6 + 0.45 * len(comp)))
     labels = [f"{r.level} / {r.reference}, {r.diameter_mm:g} mm" for r in comp.itertuples()]
     yy = np.arange(len(comp))[::-1]
-    ax.errorbar(comp["ratio"], yy, xerr=error_bars(comp["ratio"], comp["ci_low"], comp["ci_high"]),
-                fmt="o", color="#1f4e79", capsize=3)
+    ax.errorbar(
+        comp["ratio"],
+        yy,
+        xerr=error_bars(comp["ratio"], comp["ci_low"], comp["ci_high"]),
+        fmt="o",
+        color="#1f4e79",
+        capsize=3,
+    )
     ax.axvline(1.0, color="k", lw=0.8)
     ax.set_yticks(yy, labels)
     ax.set_xscale("log")
@@ -98,8 +126,9 @@ def bland_altman_figure(ba: dict, observer: str) -> str:
 
 
 def _table(df: pd.DataFrame, cols, left=(), ci_percent: bool = True) -> str:
-    rows, heads = display_records(_records(df, cols), [c for c in cols if df is not None and c in df.columns],
-                                  ci_percent=ci_percent)
+    rows, heads = display_records(
+        _records(df, cols), [c for c in cols if df is not None and c in df.columns], ci_percent=ci_percent
+    )
     return table_html(rows, heads, left=[READABLE.get(c, c.replace("_", " ")) for c in left])
 
 
@@ -118,9 +147,13 @@ def write_outputs(a, out_dir, meta: dict | None = None) -> dict:
     except OSError as exc:
         raise LimenError(f"cannot create the output folder ({exc.strerror or exc})", out) from None
     paths = {}
-    tables = {"reader_curves.csv": a.reader_curves, "pooled_curves.csv": a.pooled_curves,
-              "model_curves.csv": a.model_curves, "between_reader_cv.csv": a.cv,
-              "comparison.csv": a.comparison}
+    tables = {
+        "reader_curves.csv": a.reader_curves,
+        "pooled_curves.csv": a.pooled_curves,
+        "model_curves.csv": a.model_curves,
+        "between_reader_cv.csv": a.cv,
+        "comparison.csv": a.comparison,
+    }
     if a.human_model and a.human_model.get("per_diameter"):
         tables["human_model_factor.csv"] = pd.DataFrame(a.human_model["per_diameter"])
     for name, df in tables.items():
@@ -145,71 +178,149 @@ def report_html(a, meta: dict | None = None) -> str:
     else:
         design = f"{a.m_alternatives}-alternative forced choice"
         crit = f"Pc = {a.criterion_pc:.4g}"
-    summary = (f"<p>{len(a.readers)} reader(s); {design}; threshold criterion {crit} (halfway between chance and "
-               f"1 unless set); {a.n_boot} bootstrap resamples, seed {a.seed}. Contrasts are shown in percent.</p>")
+    summary = (
+        f"<p>{len(a.readers)} reader(s); {design}; threshold criterion {crit} (halfway between chance and "
+        f"1 unless set); {a.n_boot} bootstrap resamples, seed {a.seed}. Contrasts are shown in percent.</p>"
+    )
     if any(n.startswith("Simulated readers") for n in a.notes):
-        summary = ("<p class='fail'><b>Simulated readers:</b> the trials on this page come from a documented "
-                   "observer model, not from people (invented demo data).</p>") + summary
+        summary = (
+            "<p class='fail'><b>Simulated readers:</b> the trials on this page come from a documented "
+            "observer model, not from people (invented demo data).</p>"
+        ) + summary
     if a.notes:
-        summary += "<p><strong>Notes</strong></p><ul>" + "".join(f"<li>{html.escape(n)}</li>" for n in a.notes) + "</ul>"
+        summary += (
+            "<p><strong>Notes</strong></p><ul>" + "".join(f"<li>{html.escape(n)}</li>" for n in a.notes) + "</ul>"
+        )
     sections.append(("Study", summary))
     levels = sorted(a.reader_curves[by].unique(), key=str) if len(a.reader_curves) else []
-    figs = "".join(f"<figure>{curves_figure(a, lv)}<figcaption>Contrast-detail curves, {html.escape(by)} "
-                   f"{html.escape(str(lv))}: each reader (grey), pooled readers with 95 % CI, model observer "
-                   f"and the human-equivalent model curve.</figcaption></figure>" for lv in levels)
+    figs = "".join(
+        f"<figure>{curves_figure(a, lv)}<figcaption>Contrast-detail curves, {html.escape(by)} "
+        f"{html.escape(str(lv))}: each reader (grey), pooled readers with 95 % CI, model observer "
+        f"and the human-equivalent model curve.</figcaption></figure>"
+        for lv in levels
+    )
     sections.append(("Contrast-detail curves", figs))
-    cols = ["reader", by, "diameter_mm", "threshold_contrast", "ci_low", "ci_high", "n_trials", "n_images",
-            "converged", "note"]
-    sections.append(("Pooled readers (GEE with reader clusters)",
-                     "<p>Population-averaged threshold from a GEE whose mean is the linear-observer M-AFC "
-                     "function Pc<sub>M</sub>(k·C) (guess rate 1/M built in), reader clusters, bias-reduced "
-                     "robust standard errors, t interval with readers − 1 degrees of freedom.</p>"
-                     + _table(a.pooled_curves, cols + ["n_readers"], left=["reader", by, "note"])))
+    cols = [
+        "reader",
+        by,
+        "diameter_mm",
+        "threshold_contrast",
+        "ci_low",
+        "ci_high",
+        "n_trials",
+        "n_images",
+        "converged",
+        "note",
+    ]
+    sections.append(
+        (
+            "Pooled readers (GEE with reader clusters)",
+            "<p>Population-averaged threshold from a GEE whose mean is the linear-observer M-AFC "
+            "function Pc<sub>M</sub>(k·C) (guess rate 1/M built in), reader clusters, bias-reduced "
+            "robust standard errors, t interval with readers − 1 degrees of freedom.</p>"
+            + _table(a.pooled_curves, cols + ["n_readers"], left=["reader", by, "note"]),
+        )
+    )
     sections.append(("Between-reader variation", table_html(_records(a.cv, list(a.cv.columns)), left=[by])))
-    sections.append(("Per-reader thresholds (bootstrap over images within reader)",
-                     _table(a.reader_curves, cols, left=["reader", by, "note"])))
+    sections.append(
+        (
+            "Per-reader thresholds (bootstrap over images within reader)",
+            _table(a.reader_curves, cols, left=["reader", by, "note"]),
+        )
+    )
     if len(a.model_curves):
         sections.append(("Model observer", _table(a.model_curves, cols, left=["reader", by, "note"])))
     if len(a.comparison):
         sents = "<ul>" + "".join(f"<li>{html.escape(s)}</li>" for s in a.comparison["sentence"]) + "</ul>"
-        sections.append((f"{by.capitalize()} comparison (mixed model on log thresholds, Holm-adjusted)",
-                         sents + f"<figure>{forest_figure(a)}</figure>"
-                         + _table(a.comparison, ["level", "reference", "diameter_mm", "ratio", "ci_low", "ci_high",
-                                                 "p_value", "p_adjusted", "n_readers", "method"],
-                                  left=["level", "reference", "method"], ci_percent=False)))
+        sections.append(
+            (
+                f"{by.capitalize()} comparison (mixed model on log thresholds, Holm-adjusted)",
+                sents
+                + f"<figure>{forest_figure(a)}</figure>"
+                + _table(
+                    a.comparison,
+                    [
+                        "level",
+                        "reference",
+                        "diameter_mm",
+                        "ratio",
+                        "ci_low",
+                        "ci_high",
+                        "p_value",
+                        "p_adjusted",
+                        "n_readers",
+                        "method",
+                    ],
+                    left=["level", "reference", "method"],
+                    ci_percent=False,
+                ),
+            )
+        )
     hm = a.human_model
     if hm and hm.get("factor") is not None:
-        body = (f"<p>Human/model ({html.escape(hm['observer'])}) threshold factor over all diameters: "
-                f"<strong>{hm['factor']:.3g}</strong> (95 % CI {hm['ci_low']:.3g}–{hm['ci_high']:.3g}; bootstrap "
-                f"over readers and images). Multiply the model's thresholds by it for human-equivalent values.</p>")
-        rows, heads = display_records(hm["per_diameter"], [by, "diameter_mm", "human_threshold", "model_threshold",
-                                                           "factor", "ci_low", "ci_high", "human_equivalent_threshold"],
-                                      ci_percent=False)
+        body = (
+            f"<p>Human/model ({html.escape(hm['observer'])}) threshold factor over all diameters: "
+            f"<strong>{hm['factor']:.3g}</strong> (95 % CI {hm['ci_low']:.3g}–{hm['ci_high']:.3g}; bootstrap "
+            f"over readers and images). Multiply the model's thresholds by it for human-equivalent values.</p>"
+        )
+        rows, heads = display_records(
+            hm["per_diameter"],
+            [
+                by,
+                "diameter_mm",
+                "human_threshold",
+                "model_threshold",
+                "factor",
+                "ci_low",
+                "ci_high",
+                "human_equivalent_threshold",
+            ],
+            ci_percent=False,
+        )
         for r in rows:
             r["factor"] = None if r.get("factor") is None else f"{r['factor']:.3g}"
         body += table_html(rows, heads, left=[by]) + "<p class='meta'>CI columns: 95 % CI of the factor.</p>"
         if hm.get("bland_altman"):
             ba = hm["bland_altman"]
-            body += (f"<figure>{bland_altman_figure(ba, hm['observer'])}<figcaption>Bias {ba['bias_log10']:.3f} "
-                     f"(factor {ba['factor_from_bias']:.3g}); 95 % limits of agreement {ba['loa_low_log10']:.3f} to "
-                     f"{ba['loa_high_log10']:.3f} in log10; {ba['n_pairs']} pairs.</figcaption></figure>")
+            body += (
+                f"<figure>{bland_altman_figure(ba, hm['observer'])}<figcaption>Bias {ba['bias_log10']:.3f} "
+                f"(factor {ba['factor_from_bias']:.3g}); 95 % limits of agreement {ba['loa_low_log10']:.3f} to "
+                f"{ba['loa_high_log10']:.3f} in log10; {ba['n_pairs']} pairs.</figcaption></figure>"
+            )
         sections.append(("Human readers vs model observer", body))
     agr = a.agreement
     inter, intra = agr.get("inter_reader", {}), agr.get("intra_reader", {})
     rows = []
-    for key, label in (("fleiss_chosen_site", "Fleiss' kappa, chosen site"), ("fleiss_correct", "Fleiss' kappa, correct")):
+    for key, label in (
+        ("fleiss_chosen_site", "Fleiss' kappa, chosen site"),
+        ("fleiss_correct", "Fleiss' kappa, correct"),
+    ):
         if inter.get(key):
-            rows.append({"measure": label, "kappa": inter[key]["kappa"], "items": inter[key]["n_items"],
-                         "raters": inter[key]["n_raters"]})
+            rows.append(
+                {
+                    "measure": label,
+                    "kappa": inter[key]["kappa"],
+                    "items": inter[key]["n_items"],
+                    "raters": inter[key]["n_raters"],
+                }
+            )
     if inter.get("pairwise_cohen_correct"):
         pcc = inter["pairwise_cohen_correct"]
-        rows.append({"measure": f"Cohen's kappa, correct, mean of {pcc['n_pairs_of_readers']} reader pairs",
-                     "kappa": pcc["mean"], "items": inter.get("n_items"), "raters": 2})
+        rows.append(
+            {
+                "measure": f"Cohen's kappa, correct, mean of {pcc['n_pairs_of_readers']} reader pairs",
+                "kappa": pcc["mean"],
+                "items": inter.get("n_items"),
+                "raters": 2,
+            }
+        )
     body = table_html(rows, left=["measure"]) if rows else ""
     if intra.get("per_reader"):
         body += "<p>Intra-reader (first two repeats, chosen site):</p>" + table_html(
-            intra["per_reader"], ["reader", "n_pairs", "observed_agreement", "kappa", "ci_low", "ci_high"],
-            left=["reader"])
+            intra["per_reader"],
+            ["reader", "n_pairs", "observed_agreement", "kappa", "ci_low", "ci_high"],
+            left=["reader"],
+        )
     for note in agr.get("notes", []):
         body += f"<p><em>{html.escape(note)}</em></p>"
     sections.append(("Reader agreement", body or "<p><em>Not estimated.</em></p>"))

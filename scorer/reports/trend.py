@@ -31,8 +31,16 @@ def trend_frame(store, rules: AlertRules) -> pd.DataFrame:
     """Every scored threshold with its detector's baseline, control limits and alert rules that fired."""
     df = store.thresholds_frame()
     if df.empty:
-        return df.assign(baseline=[], shewhart_low=[], shewhart_high=[], ewma=[], ewma_low=[], ewma_high=[],
-                         in_baseline=[], alerts=[])
+        return df.assign(
+            baseline=[],
+            shewhart_low=[],
+            shewhart_high=[],
+            ewma=[],
+            ewma_low=[],
+            ewma_high=[],
+            in_baseline=[],
+            alerts=[],
+        )
     alerts = pd.DataFrame(store.alerts())
     extra = []
     for (det, method), g in df.groupby(["detector", "method"], sort=False):
@@ -45,27 +53,42 @@ def trend_frame(store, rules: AlertRules) -> pd.DataFrame:
                 frame, last, ids, _src = bl
                 m = frame[np.isclose(frame["diameter_mm"], d)]
                 row = m.iloc[0] if len(m) else None
-            after = [] if bl is None else [int(s) for s, dt in zip(order["session_id"], order["session_date"])
-                                           if (str(dt), int(s)) > (str(bl[1][0]), int(bl[1][1]))
-                                           and int(s) not in bl[2]]
+            after = (
+                []
+                if bl is None
+                else [
+                    int(s)
+                    for s, dt in zip(order["session_id"], order["session_date"])
+                    if (str(dt), int(s)) > (str(bl[1][0]), int(bl[1][1])) and int(s) not in bl[2]
+                ]
+            )
             xs, t_after = [], 0
             for r in gd.itertuples():
-                rec = {"session_id": r.session_id, "method": method, "diameter_mm": d,
-                       "in_baseline": bool(bl is not None and int(r.session_id) in bl[2])}
+                rec = {
+                    "session_id": r.session_id,
+                    "method": method,
+                    "diameter_mm": d,
+                    "in_baseline": bool(bl is not None and int(r.session_id) in bl[2]),
+                }
                 if row is not None:
                     lim = control_limits(row, rules)
-                    rec.update(baseline=lim["baseline"], shewhart_low=lim["shewhart_low"],
-                               shewhart_high=lim["shewhart_high"])
+                    rec.update(
+                        baseline=lim["baseline"], shewhart_low=lim["shewhart_low"], shewhart_high=lim["shewhart_high"]
+                    )
                     if int(r.session_id) in after and np.isfinite(r.threshold_contrast) and r.threshold_contrast > 0:
                         xs.append(np.log10(r.threshold_contrast))
                         t_after += 1
                         z = ewma(xs, rules.ewma_lambda, row["mean_log10"])[-1]
                         w = ewma_halfwidth(row["sigma_log10"], int(row["n_sessions"]), rules, t_after)
-                        rec.update(ewma=10 ** z, ewma_low=10 ** (row["mean_log10"] - w),
-                                   ewma_high=10 ** (row["mean_log10"] + w))
+                        rec.update(
+                            ewma=10**z, ewma_low=10 ** (row["mean_log10"] - w), ewma_high=10 ** (row["mean_log10"] + w)
+                        )
                 if len(alerts):
-                    hit = alerts[(alerts["session_id"] == r.session_id) & (alerts["method"] == method)
-                                 & np.isclose(alerts["diameter_mm"], d)]
+                    hit = alerts[
+                        (alerts["session_id"] == r.session_id)
+                        & (alerts["method"] == method)
+                        & np.isclose(alerts["diameter_mm"], d)
+                    ]
                     rec["alerts"] = ", ".join(sorted(set(hit["rule"])))
                 extra.append(rec)
     ex = pd.DataFrame(extra)
@@ -88,7 +111,7 @@ def trend_figure(det_frame: pd.DataFrame, method: str, rules: AlertRules):
     ncol = min(3, len(diams))
     nrow = int(np.ceil(len(diams) / ncol))
     fig, axes = plt.subplots(nrow, ncol, figsize=(4.3 * ncol, 3.0 * nrow), squeeze=False, sharex=True)
-    for ax in axes.flat[len(diams):]:
+    for ax in axes.flat[len(diams) :]:
         ax.set_visible(False)
     for ax, d in zip(axes.flat, diams):
         s = g[np.isclose(g["diameter_mm"], d)].sort_values(["date", "session_id"])
@@ -99,18 +122,36 @@ def trend_figure(det_frame: pd.DataFrame, method: str, rules: AlertRules):
         if s["baseline"].notna().any():
             b = 100 * s["baseline"].to_numpy(float)
             ax.plot(x, b, color="#2a6f97", lw=1, label="baseline")
-            ax.fill_between(x, 100 * s["shewhart_low"].to_numpy(float), 100 * s["shewhart_high"].to_numpy(float),
-                            color="#2a6f97", alpha=0.12, lw=0, label=f"±{rules.control_sigma:g} σ control limits")
-            ax.plot(x, b * (1 + rules.worse_fraction), color="#2a6f97", ls=":", lw=1,
-                    label=f"baseline +{100 * rules.worse_fraction:g} %")
+            ax.fill_between(
+                x,
+                100 * s["shewhart_low"].to_numpy(float),
+                100 * s["shewhart_high"].to_numpy(float),
+                color="#2a6f97",
+                alpha=0.12,
+                lw=0,
+                label=f"±{rules.control_sigma:g} σ control limits",
+            )
+            ax.plot(
+                x,
+                b * (1 + rules.worse_fraction),
+                color="#2a6f97",
+                ls=":",
+                lw=1,
+                label=f"baseline +{100 * rules.worse_fraction:g} %",
+            )
             if s["ewma"].notna().any():
                 ax.plot(x, 100 * s["ewma"].to_numpy(float), color="#8a6d00", lw=1, ls="--", label="EWMA")
-                ax.plot(x, 100 * s["ewma_high"].to_numpy(float), color="#8a6d00", lw=0.8, ls=":",
-                        label="EWMA limit")
+                ax.plot(x, 100 * s["ewma_high"].to_numpy(float), color="#8a6d00", lw=0.8, ls=":", label="EWMA limit")
         if s["acceptable"].notna().any() and s["compared_contrast"].notna().any():
             f = (s["compared_contrast"] / s["threshold_contrast"]).to_numpy(float)
-            ax.plot(x, 100 * s["acceptable"].to_numpy(float) / f, color="#a4161a", lw=1, ls="-.",
-                    label="acceptable limit (model scale)")
+            ax.plot(
+                x,
+                100 * s["acceptable"].to_numpy(float) / f,
+                color="#a4161a",
+                lw=1,
+                ls="-.",
+                label="acceptable limit (model scale)",
+            )
         err = np.vstack([np.clip(y - lo, 0, None), np.clip(hi - y, 0, None)])
         err = np.where(np.isfinite(err), err, 0)
         base = s["in_baseline"].fillna(False).to_numpy(bool)
@@ -136,14 +177,22 @@ def trend_figure(det_frame: pd.DataFrame, method: str, rules: AlertRules):
             if lab not in labels:
                 handles.append(h)
                 labels.append(lab)
-    fig.legend(handles, labels, loc="lower center", ncol=min(4, len(labels)), fontsize=8, frameon=False,
-               bbox_to_anchor=(0.5, -0.02))
+    fig.legend(
+        handles,
+        labels,
+        loc="lower center",
+        ncol=min(4, len(labels)),
+        fontsize=8,
+        frameon=False,
+        bbox_to_anchor=(0.5, -0.02),
+    )
     fig.tight_layout(rect=(0, 0.07, 1, 1))
     return fig
 
 
-def write_trend_report(store, out_dir, rules: AlertRules | None = None, programme: str = "Nightly phantom QC",
-                       method: str | None = None) -> Path:
+def write_trend_report(
+    store, out_dir, rules: AlertRules | None = None, programme: str = "Nightly phantom QC", method: str | None = None
+) -> Path:
     """Write trend.html, trend.csv, alerts.csv and trend.json into ``out_dir``; returns the HTML path."""
     rules = rules or AlertRules()
     out = Path(out_dir)
@@ -153,44 +202,108 @@ def write_trend_report(store, out_dir, rules: AlertRules | None = None, programm
         raise LimenError(f"cannot create the output folder ({exc.strerror or exc})", out) from None
     frame = trend_frame(store, rules)
     alerts = store.alerts()
-    cols = ["detector", "session_id", "session_date", "n_images", "kvp", "flags", "method", "observer", "diameter_mm",
-            "threshold_contrast", "ci_low", "ci_high", "in_baseline", "baseline", "shewhart_low", "shewhart_high",
-            "ewma", "ewma_low", "ewma_high", "compared_contrast", "acceptable", "verdict", "alerts"]
+    cols = [
+        "detector",
+        "session_id",
+        "session_date",
+        "n_images",
+        "kvp",
+        "flags",
+        "method",
+        "observer",
+        "diameter_mm",
+        "threshold_contrast",
+        "ci_low",
+        "ci_high",
+        "in_baseline",
+        "baseline",
+        "shewhart_low",
+        "shewhart_high",
+        "ewma",
+        "ewma_low",
+        "ewma_high",
+        "compared_contrast",
+        "acceptable",
+        "verdict",
+        "alerts",
+    ]
     atomic_write_text(out / "trend.csv", frame.reindex(columns=cols).to_csv(index=False))
-    atomic_write_text(out / "alerts.csv", pd.DataFrame(alerts, columns=[
-        "id", "session_id", "detector", "session_date", "method", "diameter_mm", "rule", "direction", "value",
-        "reference", "message", "emailed"]).to_csv(index=False))
+    atomic_write_text(
+        out / "alerts.csv",
+        pd.DataFrame(
+            alerts,
+            columns=[
+                "id",
+                "session_id",
+                "detector",
+                "session_date",
+                "method",
+                "diameter_mm",
+                "rule",
+                "direction",
+                "value",
+                "reference",
+                "message",
+                "emailed",
+            ],
+        ).to_csv(index=False),
+    )
     sessions = store.sessions()
     quarantine = store.quarantine_log()
-    write_json(out / "trend.json", {"programme": programme, "rules": rules.__dict__, "sessions": sessions,
-                                    "thresholds": frame.reindex(columns=cols).to_dict(orient="records"),
-                                    "alerts": alerts, "quarantine": quarantine})
+    write_json(
+        out / "trend.json",
+        {
+            "programme": programme,
+            "rules": rules.__dict__,
+            "sessions": sessions,
+            "thresholds": frame.reindex(columns=cols).to_dict(orient="records"),
+            "alerts": alerts,
+            "quarantine": quarantine,
+        },
+    )
     sections = [("Summary", _summary(frame, sessions, alerts))]
     for det in sorted(frame["detector"].unique()) if len(frame) else []:
         dframe = frame[frame["detector"] == det]
         meth = method or _main_method(dframe, sessions, det)
-        body = (f"<figure>{figure_to_svg(trend_figure(dframe, meth, rules))}<figcaption>Threshold contrast per "
-                f"diameter ({meth} method, {dframe['observer'].iloc[0].upper()} observer) against the date of each "
-                "session, with 95 % confidence intervals. Squares: the sessions that form the baseline; shaded band: "
-                "Shewhart control limits; dotted: the baseline plus the allowed fraction; dashed: EWMA; red rings: "
-                "alerts; open triangles: sessions whose acquisition settings differ from the expected ones."
-                "</figcaption></figure>")
+        body = (
+            f"<figure>{figure_to_svg(trend_figure(dframe, meth, rules))}<figcaption>Threshold contrast per "
+            f"diameter ({meth} method, {dframe['observer'].iloc[0].upper()} observer) against the date of each "
+            "session, with 95 % confidence intervals. Squares: the sessions that form the baseline; shaded band: "
+            "Shewhart control limits; dotted: the baseline plus the allowed fraction; dashed: EWMA; red rings: "
+            "alerts; open triangles: sessions whose acquisition settings differ from the expected ones."
+            "</figcaption></figure>"
+        )
         body += _latest(dframe, meth) + _alert_table([a for a in alerts if a["detector"] == det])
         flagged = [s for s in sessions if s["detector"] == det and s["flags"]]
         if flagged:
             body += "<h3>Acquisition-setting flags</h3>" + table_html(
                 [{"date": s["session_date"], "session": s["id"], "flags": "; ".join(s["flags"])} for s in flagged],
-                left=["date", "flags"])
+                left=["date", "flags"],
+            )
         sections.append((det, body))
     if quarantine:
-        sections.append(("Quarantined files", table_html(
-            [{"file": q["path"], "reason": q["reason"], "moved to": q["moved_to"]} for q in quarantine[-50:]],
-            left=["file", "reason", "moved to"])))
-    sections.append(("Files", "<p>trend.csv (every threshold with baseline and limits), alerts.csv, trend.json "
-                              "beside this page.</p>"))
+        sections.append(
+            (
+                "Quarantined files",
+                table_html(
+                    [{"file": q["path"], "reason": q["reason"], "moved to": q["moved_to"]} for q in quarantine[-50:]],
+                    left=["file", "reason", "moved to"],
+                ),
+            )
+        )
+    sections.append(
+        (
+            "Files",
+            "<p>trend.csv (every threshold with baseline and limits), alerts.csv, trend.json beside this page.</p>",
+        )
+    )
     page = out / "trend.html"
-    atomic_write_text(page, html_page(f"{programme}: nightly trend", sections,
-                                      meta={"rules": rules.__dict__, "database": store_display(store)}))
+    atomic_write_text(
+        page,
+        html_page(
+            f"{programme}: nightly trend", sections, meta={"rules": rules.__dict__, "database": store_display(store)}
+        ),
+    )
     return page
 
 
@@ -213,10 +326,17 @@ def _summary(frame, sessions, alerts) -> str:
         ss = [s for s in sessions if s["detector"] == det]
         last = ss[-1]
         al = [a for a in alerts if a["detector"] == det]
-        rows.append({"detector": det, "sessions": len(ss), "first": ss[0]["session_date"],
-                     "latest": last["session_date"], "latest verdict": last["overall_verdict"],
-                     "alerts (latest session)": sum(a["session_id"] == last["id"] for a in al),
-                     "alerts (all)": len(al)})
+        rows.append(
+            {
+                "detector": det,
+                "sessions": len(ss),
+                "first": ss[0]["session_date"],
+                "latest": last["session_date"],
+                "latest verdict": last["overall_verdict"],
+                "alerts (latest session)": sum(a["session_id"] == last["id"] for a in al),
+                "alerts (all)": len(al),
+            }
+        )
     return table_html(rows, left=["detector", "first", "latest", "latest verdict"])
 
 
@@ -225,14 +345,22 @@ def _latest(dframe, method) -> str:
     last = g[g["session_id"] == g.sort_values(["session_date", "session_id"])["session_id"].iloc[-1]]
     rows = []
     for r in last.itertuples():
-        rows.append({"diameter mm": r.diameter_mm, "C_T %": 100 * r.threshold_contrast,
-                     "95% CI %": "—" if not np.isfinite(r.ci_low) else f"{100 * r.ci_low:.3g}–{100 * r.ci_high:.3g}",
-                     "baseline %": 100 * r.baseline if np.isfinite(r.baseline) else None,
-                     "ratio to baseline": r.threshold_contrast / r.baseline if np.isfinite(r.baseline) else None,
-                     "limit %": 100 * r.acceptable if np.isfinite(r.acceptable) else None,
-                     "verdict": r.verdict, "alerts": r.alerts or ""})
-    head = (f"<h3>Latest session: {html.escape(str(last['session_date'].iloc[0]))} "
-            f"(session {int(last['session_id'].iloc[0])}, {int(last['n_images'].iloc[0])} images)</h3>")
+        rows.append(
+            {
+                "diameter mm": r.diameter_mm,
+                "C_T %": 100 * r.threshold_contrast,
+                "95% CI %": "—" if not np.isfinite(r.ci_low) else f"{100 * r.ci_low:.3g}–{100 * r.ci_high:.3g}",
+                "baseline %": 100 * r.baseline if np.isfinite(r.baseline) else None,
+                "ratio to baseline": r.threshold_contrast / r.baseline if np.isfinite(r.baseline) else None,
+                "limit %": 100 * r.acceptable if np.isfinite(r.acceptable) else None,
+                "verdict": r.verdict,
+                "alerts": r.alerts or "",
+            }
+        )
+    head = (
+        f"<h3>Latest session: {html.escape(str(last['session_date'].iloc[0]))} "
+        f"(session {int(last['session_id'].iloc[0])}, {int(last['n_images'].iloc[0])} images)</h3>"
+    )
     return head + table_html(rows, left=["verdict", "alerts"])
 
 
@@ -240,6 +368,16 @@ def _alert_table(alerts) -> str:
     if not alerts:
         return "<p>No alerts.</p>"
     return "<h3>Alerts</h3>" + table_html(
-        [{"date": a["session_date"], "diameter mm": a["diameter_mm"], "rule": a["rule"], "direction": a["direction"],
-          "message": a["message"], "e-mailed": "yes" if a["emailed"] else "no"} for a in alerts[-100:]],
-        left=["date", "rule", "direction", "message", "e-mailed"])
+        [
+            {
+                "date": a["session_date"],
+                "diameter mm": a["diameter_mm"],
+                "rule": a["rule"],
+                "direction": a["direction"],
+                "message": a["message"],
+                "e-mailed": "yes" if a["emailed"] else "no",
+            }
+            for a in alerts[-100:]
+        ],
+        left=["date", "rule", "direction", "message", "e-mailed"],
+    )

@@ -5,10 +5,26 @@ from . import reader_model as reader_model
 from . import stats as stats
 from . import planning as planning
 
-from .stats import Analysis as Analysis, analyse_study as analyse_study, load_trials as load_trials, validate_trials as validate_trials, human_model_factor as human_model_factor, compare_groups as compare_groups
+from .stats import (
+    Analysis as Analysis,
+    analyse_study as analyse_study,
+    load_trials as load_trials,
+    validate_trials as validate_trials,
+    human_model_factor as human_model_factor,
+    compare_groups as compare_groups,
+)
 from .agreement import agreement_summary as agreement_summary
-from .planning import PowerPlan as PowerPlan, power_by_simulation as power_by_simulation, population_from_analysis as population_from_analysis
-from .reader_model import ReaderPopulation as ReaderPopulation, draw_readers as draw_readers, simulate_reader_study as simulate_reader_study, readers_from_responses as readers_from_responses
+from .planning import (
+    PowerPlan as PowerPlan,
+    power_by_simulation as power_by_simulation,
+    population_from_analysis as population_from_analysis,
+)
+from .reader_model import (
+    ReaderPopulation as ReaderPopulation,
+    draw_readers as draw_readers,
+    simulate_reader_study as simulate_reader_study,
+    readers_from_responses as readers_from_responses,
+)
 
 __all__ = [
     "agreement",

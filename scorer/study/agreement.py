@@ -38,16 +38,31 @@ def cohen_kappa_table(a, b, categories=None) -> dict:
     table = np.bincount(ia * len(cats) + ib, minlength=len(cats) ** 2).reshape(len(cats), len(cats)).astype(float)
     n = float(table.sum())
     po = float(np.trace(table) / n) if n else float("nan")
-    pe = float(table.sum(1) @ table.sum(0) / n ** 2) if n else float("nan")
-    out = {"n_pairs": int(n), "observed_agreement": po, "chance_agreement": pe, "categories": cats,
-           "table": table.astype(int).tolist()}
+    pe = float(table.sum(1) @ table.sum(0) / n**2) if n else float("nan")
+    out = {
+        "n_pairs": int(n),
+        "observed_agreement": po,
+        "chance_agreement": pe,
+        "categories": cats,
+        "table": table.astype(int).tolist(),
+    }
     if n == 0 or pe >= 1.0:
-        out.update(kappa=None, se=None, ci_low=None, ci_high=None,
-                   note="kappa undefined: chance agreement is 1 (one category only)" if n else "no pairs")
+        out.update(
+            kappa=None,
+            se=None,
+            ci_low=None,
+            ci_high=None,
+            note="kappa undefined: chance agreement is 1 (one category only)" if n else "no pairs",
+        )
         return out
     res = cohens_kappa(table)
-    out.update(kappa=float(res.kappa), se=float(res.std_kappa), ci_low=float(res.kappa_low),
-               ci_high=float(res.kappa_upp), note="")
+    out.update(
+        kappa=float(res.kappa),
+        se=float(res.std_kappa),
+        ci_low=float(res.kappa_low),
+        ci_high=float(res.kappa_upp),
+        note="",
+    )
     return out
 
 
@@ -101,9 +116,16 @@ def inter_reader_agreement(df: pd.DataFrame, by: str = "detector") -> dict:
         k = cohen_kappa_table(wide_corr[r1].astype(int), wide_corr[r2].astype(int), categories=[0, 1])["kappa"]
         if k is not None:
             pair_k.append(k)
-    out["pairwise_cohen_correct"] = ({"n_pairs_of_readers": len(pair_k), "mean": float(np.mean(pair_k)),
-                                      "min": float(np.min(pair_k)), "max": float(np.max(pair_k))}
-                                     if pair_k else None)
+    out["pairwise_cohen_correct"] = (
+        {
+            "n_pairs_of_readers": len(pair_k),
+            "mean": float(np.mean(pair_k)),
+            "min": float(np.min(pair_k)),
+            "max": float(np.max(pair_k)),
+        }
+        if pair_k
+        else None
+    )
     out["note"] = ""
     return out
 
@@ -128,15 +150,31 @@ def intra_reader_agreement(df: pd.DataFrame, by: str = "detector") -> dict:
         if len(both) < 2:
             continue
         res = cohen_kappa_table(a.loc[both], b.loc[both])
-        per.append({"reader": reader, "repeats": [int(reps[0]), int(reps[1])], "n_pairs": res["n_pairs"],
-                    "observed_agreement": res["observed_agreement"], "kappa": res["kappa"], "se": res["se"],
-                    "ci_low": res["ci_low"], "ci_high": res["ci_high"]})
+        per.append(
+            {
+                "reader": reader,
+                "repeats": [int(reps[0]), int(reps[1])],
+                "n_pairs": res["n_pairs"],
+                "observed_agreement": res["observed_agreement"],
+                "kappa": res["kappa"],
+                "se": res["se"],
+                "ci_low": res["ci_low"],
+                "ci_high": res["ci_high"],
+            }
+        )
     if not per:
-        return {"note": "no trial was read twice by the same reader: intra-reader agreement not estimated",
-                "per_reader": []}
+        return {
+            "note": "no trial was read twice by the same reader: intra-reader agreement not estimated",
+            "per_reader": [],
+        }
     ks = [r["kappa"] for r in per if r["kappa"] is not None]
-    return {"per_reader": per, "n_readers": len(per), "mean_kappa": float(np.mean(ks)) if ks else None,
-            "n_pairs_total": int(sum(r["n_pairs"] for r in per)), "note": ""}
+    return {
+        "per_reader": per,
+        "n_readers": len(per),
+        "mean_kappa": float(np.mean(ks)) if ks else None,
+        "n_pairs_total": int(sum(r["n_pairs"] for r in per)),
+        "note": "",
+    }
 
 
 def agreement_summary(df: pd.DataFrame, by: str = "detector") -> dict:

@@ -37,17 +37,26 @@ class PowerPlan:
     alpha: float
     target_power: float
     population: dict
-    cells: pd.DataFrame            # n_readers, n_images, power, ci_low, ci_high, n_sim, median_ratio
+    cells: pd.DataFrame  # n_readers, n_images, power, ci_low, ci_high, n_sim, median_ratio
     recommended: dict | None
     n_sim: int
     seed: int
     notes: list = field(default_factory=list)
 
     def to_json(self) -> dict:
-        return {"ratio": self.ratio, "diameter_mm": self.diameter_mm, "alpha": self.alpha,
-                "target_power": self.target_power, "population": self.population,
-                "cells": self.cells.to_dict("records"), "recommended": self.recommended, "n_sim": self.n_sim,
-                "seed": self.seed, "notes": self.notes, "method": "power by simulation (Burton et al. 2006)"}
+        return {
+            "ratio": self.ratio,
+            "diameter_mm": self.diameter_mm,
+            "alpha": self.alpha,
+            "target_power": self.target_power,
+            "population": self.population,
+            "cells": self.cells.to_dict("records"),
+            "recommended": self.recommended,
+            "n_sim": self.n_sim,
+            "seed": self.seed,
+            "notes": self.notes,
+            "method": "power by simulation (Burton et al. 2006)",
+        }
 
 
 def population_from_analysis(analysis: dict) -> ReaderPopulation:
@@ -63,10 +72,22 @@ def population_from_analysis(analysis: dict) -> ReaderPopulation:
     return ReaderPopulation(median_factor=float(factor), cv_between=float(np.mean(cvs)))
 
 
-def power_by_simulation(ratio: float, readers=(4, 6, 8), images=(8, 16), *, population: ReaderPopulation | None = None,
-                        diameter_mm: float = 0.25, m_alternatives: int = 4, n_contrasts: int = 10,
-                        alpha: float = 0.05, target_power: float = 0.8, n_sim: int = 100, n_boot: int = 100,
-                        seed: int = 0, progress=None) -> PowerPlan:
+def power_by_simulation(
+    ratio: float,
+    readers=(4, 6, 8),
+    images=(8, 16),
+    *,
+    population: ReaderPopulation | None = None,
+    diameter_mm: float = 0.25,
+    m_alternatives: int = 4,
+    n_contrasts: int = 10,
+    alpha: float = 0.05,
+    target_power: float = 0.8,
+    n_sim: int = 100,
+    n_boot: int = 100,
+    seed: int = 0,
+    progress=None,
+) -> PowerPlan:
     """Power to detect a threshold ratio ``ratio`` (test / reference detector) at one diameter.
 
     Parameters
@@ -103,14 +124,22 @@ def power_by_simulation(ratio: float, readers=(4, 6, 8), images=(8, 16), *, popu
             hits, ratios, failed = 0, [], 0
             for child in root.spawn(n_sim):
                 rng = np.random.default_rng(child)
-                st = simulate_reader_study(rng, n_r, detectors={"reference": 1.0, "test": float(ratio)},
-                                           diameters_mm=(float(diameter_mm),), n_contrasts=n_contrasts,
-                                           n_images=n_i, m_alternatives=m_alternatives, population=pop)
+                st = simulate_reader_study(
+                    rng,
+                    n_r,
+                    detectors={"reference": 1.0, "test": float(ratio)},
+                    diameters_mm=(float(diameter_mm),),
+                    n_contrasts=n_contrasts,
+                    n_images=n_i,
+                    m_alternatives=m_alternatives,
+                    population=pop,
+                )
                 rc = reader_curves(st.trials, m_alternatives, rng, n_boot=0)
-                comp, _ = compare_groups(rc, reference="reference", trials=st.trials, m=m_alternatives,
-                                         n_boot=n_boot, rng=rng)
+                comp, _ = compare_groups(
+                    rc, reference="reference", trials=st.trials, m=m_alternatives, n_boot=n_boot, rng=rng
+                )
                 if comp.empty or not np.isfinite(comp["p_value"].iloc[0]):
-                    failed += 1          # too few converged readers to compare: counts as not detected
+                    failed += 1  # too few converged readers to compare: counts as not detected
                 else:
                     hits += int(comp["p_value"].iloc[0] < alpha)
                     ratios.append(float(comp["ratio"].iloc[0]))
@@ -118,24 +147,51 @@ def power_by_simulation(ratio: float, readers=(4, 6, 8), images=(8, 16), *, popu
                 if progress is not None:
                     progress(done, total)
             lo, hi = proportion_confint(hits, n_sim, alpha=0.05, method="wilson")
-            rows.append({"n_readers": n_r, "n_images": n_i, "reads_per_reader": 2 * n_i, "power": hits / n_sim,
-                         "ci_low": float(lo), "ci_high": float(hi), "n_sim": n_sim,
-                         "median_ratio": float(np.median(ratios)) if ratios else float("nan"),
-                         "not_comparable": failed})
+            rows.append(
+                {
+                    "n_readers": n_r,
+                    "n_images": n_i,
+                    "reads_per_reader": 2 * n_i,
+                    "power": hits / n_sim,
+                    "ci_low": float(lo),
+                    "ci_high": float(hi),
+                    "n_sim": n_sim,
+                    "median_ratio": float(np.median(ratios)) if ratios else float("nan"),
+                    "not_comparable": failed,
+                }
+            )
             if failed:
-                notes.append(f"{n_r} readers × {n_i} images: {failed} of {n_sim} simulated studies could not be "
-                             "compared (too few converged readers) and count as not detected")
+                notes.append(
+                    f"{n_r} readers × {n_i} images: {failed} of {n_sim} simulated studies could not be "
+                    "compared (too few converged readers) and count as not detected"
+                )
     cells = pd.DataFrame(rows)
     ok = cells[cells["power"] >= target_power]
     recommended = None
     if len(ok):
         best = ok.assign(reads=ok["n_readers"] * ok["n_images"]).sort_values(["reads", "n_readers"]).iloc[0]
-        recommended = {"n_readers": int(best["n_readers"]), "n_images": int(best["n_images"]),
-                       "power": float(best["power"]), "ci_low": float(best["ci_low"])}
+        recommended = {
+            "n_readers": int(best["n_readers"]),
+            "n_images": int(best["n_images"]),
+            "power": float(best["power"]),
+            "ci_low": float(best["ci_low"]),
+        }
     else:
         notes.append(f"no design tried reaches {target_power:.0%} power: add readers or images")
-    return PowerPlan(ratio=float(ratio), diameter_mm=float(diameter_mm), alpha=float(alpha),
-                     target_power=float(target_power),
-                     population={"median_factor": pop.median_factor, "cv_between": pop.cv_between,
-                                 "internal_share": pop.internal_share, "lapse_max": pop.lapse_max},
-                     cells=cells, recommended=recommended, n_sim=int(n_sim), seed=int(seed), notes=notes)
+    return PowerPlan(
+        ratio=float(ratio),
+        diameter_mm=float(diameter_mm),
+        alpha=float(alpha),
+        target_power=float(target_power),
+        population={
+            "median_factor": pop.median_factor,
+            "cv_between": pop.cv_between,
+            "internal_share": pop.internal_share,
+            "lapse_max": pop.lapse_max,
+        },
+        cells=cells,
+        recommended=recommended,
+        n_sim=int(n_sim),
+        seed=int(seed),
+        notes=notes,
+    )

@@ -48,8 +48,17 @@ from scorer.observer.mafc import dprime_for_pc, halfway_criterion
 #: value of the optional ``source`` column in trials made by this module
 SIMULATED_SOURCE = "simulated reader model"
 
-TRIAL_COLUMNS = ["reader", "detector", "image", "target", "diameter_mm", "contrast",
-                 "chosen_site", "true_site", "correct"]
+TRIAL_COLUMNS = [
+    "reader",
+    "detector",
+    "image",
+    "target",
+    "diameter_mm",
+    "contrast",
+    "chosen_site",
+    "true_site",
+    "correct",
+]
 
 
 @dataclass
@@ -75,8 +84,8 @@ class SimulatedStudy:
 
     trials: pd.DataFrame
     model_trials: pd.DataFrame
-    readers: pd.DataFrame             # reader, factor, efficiency, internal_noise, lapse
-    truth: pd.DataFrame               # reader ('model' for the model observer), detector, diameter_mm, threshold_contrast
+    readers: pd.DataFrame  # reader, factor, efficiency, internal_noise, lapse
+    truth: pd.DataFrame  # reader ('model' for the model observer), detector, diameter_mm, threshold_contrast
     m_alternatives: int
     criterion_pc: float
     params: dict = field(default_factory=dict)
@@ -87,14 +96,23 @@ def model_threshold(diameter_mm, c1: float = 0.012, slope: float = 0.9):
     return c1 * np.asarray(diameter_mm, dtype=float) ** (-slope)
 
 
-def simulate_reader_study(rng: np.random.Generator, n_readers: int = 6, *,
-                          detectors: dict | None = None,
-                          diameters_mm=(0.1, 0.25, 0.5, 1.0),
-                          n_contrasts: int = 10, contrast_span: tuple[float, float] = (0.35, 3.0),
-                          n_images: int = 16, m_alternatives: int = 4, n_repeats: int = 1,
-                          population: ReaderPopulation | None = None,
-                          model_name: str = "npwe", c1: float = 0.012, slope: float = 0.9,
-                          reader_prefix: str = "reader") -> SimulatedStudy:
+def simulate_reader_study(
+    rng: np.random.Generator,
+    n_readers: int = 6,
+    *,
+    detectors: dict | None = None,
+    diameters_mm=(0.1, 0.25, 0.5, 1.0),
+    n_contrasts: int = 10,
+    contrast_span: tuple[float, float] = (0.35, 3.0),
+    n_images: int = 16,
+    m_alternatives: int = 4,
+    n_repeats: int = 1,
+    population: ReaderPopulation | None = None,
+    model_name: str = "npwe",
+    c1: float = 0.012,
+    slope: float = 0.9,
+    reader_prefix: str = "reader",
+) -> SimulatedStudy:
     """Simulate a reader study: every reader reads every image of every detector.
 
     Parameters
@@ -145,37 +163,39 @@ def simulate_reader_study(rng: np.random.Generator, n_readers: int = 6, *,
         else:
             r_d = np.full(diam.size, float(ratio))
         ct_model = ref_ct * r_d
-        a = d_t / np.repeat(ct_model, n_contrasts)           # per target: d′_model = a·C
+        a = d_t / np.repeat(ct_model, n_contrasts)  # per target: d′_model = a·C
         for j, d in enumerate(diam):
             truth.append({"reader": "model", "detector": det, "diameter_mm": d, "threshold_contrast": ct_model[j]})
             for r, name in enumerate(names):
-                truth.append({"reader": name, "detector": det, "diameter_mm": d,
-                              "threshold_contrast": ct_model[j] * factor[r]})
-        signal = a * t_contrast                               # (T,) model d′ per target
+                truth.append(
+                    {"reader": name, "detector": det, "diameter_mm": d, "threshold_contrast": ct_model[j] * factor[r]}
+                )
+        signal = a * t_contrast  # (T,) model d′ per target
         true_site = rng.integers(0, m, size=(n_images, n_targets))
         ext = rng.standard_normal((n_images, n_targets, m))  # external noise, shared by all who read the image
-        onehot = np.eye(m, dtype=bool)[true_site]             # (I, T, M)
+        onehot = np.eye(m, dtype=bool)[true_site]  # (I, T, M)
         img_ids = [f"{det}-img{i + 1:03d}" for i in range(n_images)]
 
         def frame(reader, chosen, rep, ms, det=det, img_ids=img_ids, true_site=true_site):
-            return pd.DataFrame({
-                "reader": reader,
-                "detector": det,
-                "image": np.repeat(img_ids, n_targets),
-                "target": np.tile(target_ids, n_images),
-                "diameter_mm": np.tile(t_diam, n_images),
-                "contrast": np.tile(t_contrast, n_images),
-                "chosen_site": chosen.ravel(),
-                "true_site": true_site.ravel(),
-                "correct": (chosen == true_site).ravel().astype(int),
-                "response_ms": ms.ravel(),
-                "session": rep + 1,
-                "repeat": rep,
-            })
+            return pd.DataFrame(
+                {
+                    "reader": reader,
+                    "detector": det,
+                    "image": np.repeat(img_ids, n_targets),
+                    "target": np.tile(target_ids, n_images),
+                    "diameter_mm": np.tile(t_diam, n_images),
+                    "contrast": np.tile(t_contrast, n_images),
+                    "chosen_site": chosen.ravel(),
+                    "true_site": true_site.ravel(),
+                    "correct": (chosen == true_site).ravel().astype(int),
+                    "response_ms": ms.ravel(),
+                    "session": rep + 1,
+                    "repeat": rep,
+                }
+            )
 
         t_model = ext + onehot * signal[None, :, None]
-        model_rows.append(frame(model_name, np.argmax(t_model, axis=2), 0,
-                                np.zeros((n_images, n_targets), dtype=int)))
+        model_rows.append(frame(model_name, np.argmax(t_model, axis=2), 0, np.zeros((n_images, n_targets), dtype=int)))
         for r, name in enumerate(names):
             s_r = np.sqrt(efficiency[r]) * signal
             for rep in range(n_repeats):
@@ -188,11 +208,24 @@ def simulate_reader_study(rng: np.random.Generator, n_readers: int = 6, *,
     trials = pd.concat(human_rows, ignore_index=True)
     model_trials = pd.concat(model_rows, ignore_index=True)
     trials = trials.assign(source=SIMULATED_SOURCE)
-    return SimulatedStudy(trials=trials, model_trials=model_trials, readers=readers,
-                          truth=pd.DataFrame(truth), m_alternatives=m, criterion_pc=crit,
-                          params={"detectors": detectors, "diameters_mm": diam.tolist(), "n_images": n_images,
-                                  "n_contrasts": n_contrasts, "n_repeats": n_repeats, "c1": c1, "slope": slope,
-                                  "population": pop.__dict__.copy()})
+    return SimulatedStudy(
+        trials=trials,
+        model_trials=model_trials,
+        readers=readers,
+        truth=pd.DataFrame(truth),
+        m_alternatives=m,
+        criterion_pc=crit,
+        params={
+            "detectors": detectors,
+            "diameters_mm": diam.tolist(),
+            "n_images": n_images,
+            "n_contrasts": n_contrasts,
+            "n_repeats": n_repeats,
+            "c1": c1,
+            "slope": slope,
+            "population": pop.__dict__.copy(),
+        },
+    )
 
 
 def write_demo_study(out_dir, seed: int = 2026, n_readers: int = 6, n_repeats: int = 2) -> dict:
@@ -202,8 +235,12 @@ def write_demo_study(out_dir, seed: int = 2026, n_readers: int = 6, n_repeats: i
     out = Path(out_dir)
     out.mkdir(parents=True, exist_ok=True)
     study = simulate_reader_study(np.random.default_rng(seed), n_readers, n_repeats=n_repeats)
-    paths = {"readers": out / "reader_trials.csv", "model": out / "model_trials.csv", "truth": out / "truth.csv",
-             "reader_parameters": out / "reader_parameters.csv"}
+    paths = {
+        "readers": out / "reader_trials.csv",
+        "model": out / "model_trials.csv",
+        "truth": out / "truth.csv",
+        "reader_parameters": out / "reader_parameters.csv",
+    }
     study.trials.to_csv(paths["readers"], index=False)
     study.model_trials.to_csv(paths["model"], index=False)
     study.truth.to_csv(paths["truth"], index=False)
@@ -221,23 +258,32 @@ if __name__ == "__main__":  # python -m scorer.study.reader_model OUT_DIR [SEED]
     print("wrote " + ", ".join(written.values()))
 
 
-def draw_readers(rng: np.random.Generator, n_readers: int, population: ReaderPopulation | None = None,
-                 reader_prefix: str = "reader") -> pd.DataFrame:
+def draw_readers(
+    rng: np.random.Generator, n_readers: int, population: ReaderPopulation | None = None, reader_prefix: str = "reader"
+) -> pd.DataFrame:
     """Invented readers: factor F, template efficiency e, internal noise σ and lapse λ (see module doc)."""
     pop = population or ReaderPopulation()
-    sd_log = np.sqrt(np.log1p(pop.cv_between ** 2))
+    sd_log = np.sqrt(np.log1p(pop.cv_between**2))
     log_f = np.log(pop.median_factor) + sd_log * rng.standard_normal(n_readers)
     factor = np.exp(log_f)
     internal = np.sqrt(np.maximum(np.exp(pop.internal_share * 2 * log_f) - 1.0, 0.0))
-    efficiency = (1.0 + internal ** 2) / factor ** 2
+    efficiency = (1.0 + internal**2) / factor**2
     lapse = rng.uniform(0.0, pop.lapse_max, n_readers) if pop.lapse_max > 0 else np.zeros(n_readers)
     width = max(2, len(str(n_readers)))
-    return pd.DataFrame({"reader": [f"{reader_prefix}{i + 1:0{width}d}" for i in range(n_readers)],
-                         "factor": factor, "efficiency": efficiency, "internal_noise": internal, "lapse": lapse})
+    return pd.DataFrame(
+        {
+            "reader": [f"{reader_prefix}{i + 1:0{width}d}" for i in range(n_readers)],
+            "factor": factor,
+            "efficiency": efficiency,
+            "internal_noise": internal,
+            "lapse": lapse,
+        }
+    )
 
 
-def readers_from_responses(responses: pd.DataFrame, readers: pd.DataFrame, rng: np.random.Generator,
-                           n_repeats: int = 1) -> pd.DataFrame:
+def readers_from_responses(
+    responses: pd.DataFrame, readers: pd.DataFrame, rng: np.random.Generator, n_repeats: int = 1
+) -> pd.DataFrame:
     """Invented human readers reading the same phantom images as a model observer.
 
     ``responses`` is the model observer's per-site table from :func:`scorer.observer.npw.score_image`
@@ -282,12 +328,24 @@ def readers_from_responses(responses: pd.DataFrame, readers: pd.DataFrame, rng: 
                 chosen = np.argmax(t, axis=1)
                 lapsed = rng.random(chosen.size) < r.lapse
                 chosen = np.where(lapsed, rng.integers(0, m, size=chosen.size), chosen)
-                out.append(pd.DataFrame({
-                    "reader": r.reader, "detector": dname, "image": images, "target": targets,
-                    "diameter_mm": diam, "contrast": contrast, "chosen_site": chosen, "true_site": true_site,
-                    "correct": (chosen == true_site).astype(int),
-                    "response_ms": np.round(rng.lognormal(np.log(2500), 0.4, chosen.size)).astype(int),
-                    "session": rep + 1, "repeat": rep}))
+                out.append(
+                    pd.DataFrame(
+                        {
+                            "reader": r.reader,
+                            "detector": dname,
+                            "image": images,
+                            "target": targets,
+                            "diameter_mm": diam,
+                            "contrast": contrast,
+                            "chosen_site": chosen,
+                            "true_site": true_site,
+                            "correct": (chosen == true_site).astype(int),
+                            "response_ms": np.round(rng.lognormal(np.log(2500), 0.4, chosen.size)).astype(int),
+                            "session": rep + 1,
+                            "repeat": rep,
+                        }
+                    )
+                )
     table = pd.concat(out, ignore_index=True)
-    table["source"] = SIMULATED_SOURCE   # a report of these trials must say the readers are not people
+    table["source"] = SIMULATED_SOURCE  # a report of these trials must say the readers are not people
     return table

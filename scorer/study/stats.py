@@ -74,8 +74,10 @@ def load_trials(path) -> pd.DataFrame:
     except (OSError, ValueError) as exc:
         raise LimenError(f"cannot read as CSV ({' '.join(str(exc).split())})", path) from None
     if len(df.columns) == 1 and ";" in str(df.columns[0]):
-        raise LimenError("columns are separated by semicolons; Limen reads comma-separated CSV "
-                         "(export with ',' as the separator)", path)
+        raise LimenError(
+            "columns are separated by semicolons; Limen reads comma-separated CSV (export with ',' as the separator)",
+            path,
+        )
     return validate_trials(df, source=path)
 
 
@@ -96,8 +98,9 @@ def validate_trials(df: pd.DataFrame, source="responses") -> pd.DataFrame:
         raise LimenError("trial table must be a table (DataFrame)", source)
     missing = [c for c in TRIAL_COLUMNS if c not in df.columns]
     if missing:
-        raise LimenError(f"missing column(s) {', '.join(missing)}; a trial table needs {', '.join(TRIAL_COLUMNS)}",
-                         source)
+        raise LimenError(
+            f"missing column(s) {', '.join(missing)}; a trial table needs {', '.join(TRIAL_COLUMNS)}", source
+        )
     if len(df) == 0:
         raise LimenError("trial table has no rows", source)
     out = df.copy()
@@ -111,36 +114,48 @@ def validate_trials(df: pd.DataFrame, source="responses") -> pd.DataFrame:
         num = pd.to_numeric(out[c], errors="coerce")
         bad = num.isna().to_numpy()
         if bad.any():
-            raise LimenError(f"{_row_label(out, bad)}: {c} {out[c].iloc[np.flatnonzero(bad)[0]]!r} is not a number",
-                             source)
+            raise LimenError(
+                f"{_row_label(out, bad)}: {c} {out[c].iloc[np.flatnonzero(bad)[0]]!r} is not a number", source
+            )
         bad = ~np.isfinite(num.to_numpy()) | (num.to_numpy() <= 0)
         if bad.any():
             what = "negative" if num.iloc[np.flatnonzero(bad)[0]] < 0 else "not a positive number"
-            raise LimenError(f"{_row_label(out, bad)}: {c} {num.iloc[np.flatnonzero(bad)[0]]:g} is {what} "
-                             f"({c} must be a positive fraction{'' if c == 'contrast' else ' in mm'})", source)
+            raise LimenError(
+                f"{_row_label(out, bad)}: {c} {num.iloc[np.flatnonzero(bad)[0]]:g} is {what} "
+                f"({c} must be a positive fraction{'' if c == 'contrast' else ' in mm'})",
+                source,
+            )
         out[c] = num.astype(float)
     bad = (out["contrast"] >= 1).to_numpy()
     if bad.any():
-        raise LimenError(f"{_row_label(out, bad)}: contrast {out['contrast'].iloc[np.flatnonzero(bad)[0]]:g} is not "
-                         "below 1; contrasts are fractions (0.012 for 1.2 %), not per cent", source)
+        raise LimenError(
+            f"{_row_label(out, bad)}: contrast {out['contrast'].iloc[np.flatnonzero(bad)[0]]:g} is not "
+            "below 1; contrasts are fractions (0.012 for 1.2 %), not per cent",
+            source,
+        )
     raw = out["correct"]
-    mapped = raw.map(lambda v: {True: 1, False: 0, "1": 1, "0": 0, "true": 1, "false": 0, "True": 1,
-                                "False": 0}.get(v, None))   # 1/0 and 1.0/0.0 hash as True/False
+    mapped = raw.map(
+        lambda v: {True: 1, False: 0, "1": 1, "0": 0, "true": 1, "false": 0, "True": 1, "False": 0}.get(v, None)
+    )  # 1/0 and 1.0/0.0 hash as True/False
     bad = mapped.isna().to_numpy()
     if bad.any():
-        raise LimenError(f"{_row_label(out, bad)}: correct must be 0 or 1, got {raw.iloc[np.flatnonzero(bad)[0]]!r}",
-                         source)
+        raise LimenError(
+            f"{_row_label(out, bad)}: correct must be 0 or 1, got {raw.iloc[np.flatnonzero(bad)[0]]!r}", source
+        )
     out["correct"] = mapped.astype(int)
     for c in ("chosen_site", "true_site"):
         out[c] = out[c].astype(str).str.strip()
-        out[c] = out[c].str.replace(r"\.0$", "", regex=True)    # 2.0 read as float means site 2
+        out[c] = out[c].str.replace(r"\.0$", "", regex=True)  # 2.0 read as float means site 2
     agree = (out["chosen_site"] == out["true_site"]).astype(int).to_numpy()
     bad = agree != out["correct"].to_numpy()
     if bad.any():
         i = np.flatnonzero(bad)[0]
-        raise LimenError(f"{_row_label(out, bad)}: correct = {out['correct'].iloc[i]} but chosen_site "
-                         f"{out['chosen_site'].iloc[i]} {'equals' if agree[i] else 'differs from'} true_site "
-                         f"{out['true_site'].iloc[i]}", source)
+        raise LimenError(
+            f"{_row_label(out, bad)}: correct = {out['correct'].iloc[i]} but chosen_site "
+            f"{out['chosen_site'].iloc[i]} {'equals' if agree[i] else 'differs from'} true_site "
+            f"{out['true_site'].iloc[i]}",
+            source,
+        )
     for c in ("repeat", "session"):
         if c in out.columns:
             num = pd.to_numeric(out[c], errors="coerce")
@@ -160,8 +175,11 @@ def validate_trials(df: pd.DataFrame, source="responses") -> pd.DataFrame:
         i = np.flatnonzero(dup)
         first = out.iloc[i[0]]
         j = next(k for k in i[1:] if all(out.iloc[k][c] == first[c] for c in key))
-        raise LimenError(f"{_row_label(out, np.arange(len(out)) == j)} repeats {_row_label(out, dup)}: the same "
-                         f"{', '.join(key)} twice (add a 'repeat' column if a reader read a target twice)", source)
+        raise LimenError(
+            f"{_row_label(out, np.arange(len(out)) == j)} repeats {_row_label(out, dup)}: the same "
+            f"{', '.join(key)} twice (add a 'repeat' column if a reader read a target twice)",
+            source,
+        )
     return out
 
 
@@ -174,14 +192,20 @@ def m_alternatives_of(df: pd.DataFrame, source="responses") -> int | dict[float,
         if "n_alternatives" in df.columns:
             vals = pd.unique(g["n_alternatives"])
             if len(vals) != 1:
-                raise LimenError(f"n_alternatives must be the same on every row of one diameter (found "
-                                 f"{', '.join(str(int(v)) for v in sorted(vals))} at {float(diam):g} mm)", source)
+                raise LimenError(
+                    f"n_alternatives must be the same on every row of one diameter (found "
+                    f"{', '.join(str(int(v)) for v in sorted(vals))} at {float(diam):g} mm)",
+                    source,
+                )
             m = int(vals[0])
         else:
             m = len(set(g["chosen_site"]).union(set(g["true_site"])))
         if m < 2:
-            raise LimenError(f"only {m} candidate site seen at {float(diam):g} mm; M-AFC needs at least 2 (add an "
-                             "n_alternatives column)", source)
+            raise LimenError(
+                f"only {m} candidate site seen at {float(diam):g} mm; M-AFC needs at least 2 (add an "
+                "n_alternatives column)",
+                source,
+            )
         per[float(diam)] = m
     ms = set(per.values())
     return ms.pop() if len(ms) == 1 else per
@@ -203,8 +227,15 @@ def criterion_at(m: int | dict[float, int], diameter_mm: float, criterion_pc: fl
 
 
 # =========================================================================== per-reader curves
-def reader_curves(df: pd.DataFrame, m: int, rng: np.random.Generator, n_boot: int = 1000, by: str = "detector",
-                  criterion_pc: float | None = None, ci: float = 0.95) -> pd.DataFrame:
+def reader_curves(
+    df: pd.DataFrame,
+    m: int,
+    rng: np.random.Generator,
+    n_boot: int = 1000,
+    by: str = "detector",
+    criterion_pc: float | None = None,
+    ci: float = 0.95,
+) -> pd.DataFrame:
     """Per reader × group × diameter: ML M-AFC fit, threshold, bootstrap CI over images
     (expanded percentile interval, Hesterberg, The American Statistician 69 (2015)).
 
@@ -232,10 +263,23 @@ def reader_curves(df: pd.DataFrame, m: int, rng: np.random.Generator, n_boot: in
                 note = "; ".join(x for x in (note, res.note) if x)
         else:
             note = "; ".join(x for x in (note, "one image only: no bootstrap CI") if x)
-        rows.append({"reader": reader, by: grp, "diameter_mm": float(diam), "threshold_contrast": t,
-                     "ci_low": lo, "ci_high": hi, "log10_se": se, "n_trials": int(len(g)),
-                     "n_images": int(u.n_units), "pc_observed": float(g["correct"].mean()),
-                     "k": fit.params["k"], "converged": bool(fit.converged), "note": note})
+        rows.append(
+            {
+                "reader": reader,
+                by: grp,
+                "diameter_mm": float(diam),
+                "threshold_contrast": t,
+                "ci_low": lo,
+                "ci_high": hi,
+                "log10_se": se,
+                "n_trials": int(len(g)),
+                "n_images": int(u.n_units),
+                "pc_observed": float(g["correct"].mean()),
+                "k": fit.params["k"],
+                "converged": bool(fit.converged),
+                "note": note,
+            }
+        )
     return pd.DataFrame(rows)
 
 
@@ -261,8 +305,9 @@ def _mafc_link_class():
             return np.log(np.maximum(dprime_for_pc_fast(self._clip_p(p), self.m), 1e-6))
 
         def inverse(self, z):
-            return np.clip(pc_mafc_fast(np.exp(np.clip(z, -30, np.log(12.0))), self.m), 1.0 / self.m + 1e-12,
-                           1.0 - 1e-12)
+            return np.clip(
+                pc_mafc_fast(np.exp(np.clip(z, -30, np.log(12.0))), self.m), 1.0 / self.m + 1e-12, 1.0 - 1e-12
+            )
 
         def inverse_deriv(self, z):
             d = np.exp(np.clip(z, -30, np.log(12.0)))
@@ -294,11 +339,16 @@ def fit_pooled_gee(g: pd.DataFrame, m: int):
     u = unit_counts(g["contrast"].to_numpy(), g["correct"].to_numpy(), g["reader"].to_numpy())
     k0, _ = fit_k_batch(u.levels, u.y.sum(0)[None], u.n.sum(0)[None], m)
     with warnings.catch_warnings():
-        warnings.simplefilter("ignore")   # statsmodels warns that a custom link is not one of its own
+        warnings.simplefilter("ignore")  # statsmodels warns that a custom link is not one of its own
         family = sm.families.Binomial(link=_mafc_link_class()(m), check_link=False)
-        model = sm.GEE(g["correct"].to_numpy(float), np.ones((len(g), 1)), groups=g["reader"].to_numpy(),
-                       offset=np.log(g["contrast"].to_numpy(float)), family=family,
-                       cov_struct=sm.cov_struct.Independence())
+        model = sm.GEE(
+            g["correct"].to_numpy(float),
+            np.ones((len(g), 1)),
+            groups=g["reader"].to_numpy(),
+            offset=np.log(g["contrast"].to_numpy(float)),
+            family=family,
+            cov_struct=sm.cov_struct.Independence(),
+        )
         res = model.fit(start_params=np.log(k0), cov_type="bias_reduced", maxiter=100)
     return res
 
@@ -350,7 +400,7 @@ def pooled_mafc_gee(levels, y, n, m: int) -> PooledFit:
     mu = np.clip(pc_mafc_fast(d, m), 1e-12, 1 - 1e-12)
     dmu = dpc_mafc_fast(d, m) * d
     v = mu * (1 - mu)
-    w_info, w_score = dmu ** 2 / v, dmu / v
+    w_info, w_score = dmu**2 / v, dmu / v
     nan = float("nan")
     info_r = n_r @ w_info
     a = float(info_r.sum())
@@ -361,30 +411,39 @@ def pooled_mafc_gee(levels, y, n, m: int) -> PooledFit:
         info = nn @ w_info
         u = (yy - nn * mu) @ w_score
         h = info / a
-        s_r = float(np.sum(u ** 2))
+        s_r = float(np.sum(u**2))
         s_bc = float(np.sum((u / (1 - h)) ** 2)) if np.all(h < 1) else nan
         return s_r, s_bc
 
     s_r, s_bc = one_way(y_r, n_r)
     se_tw = nan
     if two_way:
-        s_img, _ = one_way(y.sum(0), n.sum(0))   # many images: no small-sample correction needed
+        s_img, _ = one_way(y.sum(0), n.sum(0))  # many images: no small-sample correction needed
         u_cell = (y - n * mu) @ w_score
-        total = s_bc + s_img - float(np.sum(u_cell ** 2))
-        if total <= 0:                           # can happen in tiny samples; fall back to readers only
+        total = s_bc + s_img - float(np.sum(u_cell**2))
+        if total <= 0:  # can happen in tiny samples; fall back to readers only
             total = s_bc
         se_tw = float(np.sqrt(total) / a)
-    return PooledFit(float(np.log(k[0])), float(np.sqrt(s_r) / a), float(np.sqrt(s_bc) / a), se_tw,
-                     bool(at_b[0]), int(y.shape[0]), int(y.shape[1]) if two_way else 0)
+    return PooledFit(
+        float(np.log(k[0])),
+        float(np.sqrt(s_r) / a),
+        float(np.sqrt(s_bc) / a),
+        se_tw,
+        bool(at_b[0]),
+        int(y.shape[0]),
+        int(y.shape[1]) if two_way else 0,
+    )
 
 
-def pooled_curves(df: pd.DataFrame, m: int, by: str = "detector", criterion_pc: float | None = None,
-                  ci: float = 0.95) -> tuple[pd.DataFrame, list[str]]:
+def pooled_curves(
+    df: pd.DataFrame, m: int, by: str = "detector", criterion_pc: float | None = None, ci: float = 0.95
+) -> tuple[pd.DataFrame, list[str]]:
     """Population threshold per group × diameter from a GEE with reader clusters.
 
     The threshold is ``d′_T / k`` with d′_T = d′_M(criterion); its CI is
     ``exp(log C_T ± t · SE(log k))`` with the two-way (reader × image) cluster-robust SE,
-    the reader part bias-reduced, and a t quantile with R − 1 degrees of freedom (R readers).  Needs ≥ 3 readers; smaller
+    the reader part bias-reduced, and a t quantile with R − 1 degrees of freedom (R readers).  Needs ≥ 3 readers;
+    smaller
     studies get a note instead of a row.
     """
     m_all = m
@@ -411,12 +470,23 @@ def pooled_curves(df: pd.DataFrame, m: int, by: str = "detector", criterion_pc: 
         dof = max(n_r - 1, 1)
         tq = sps.t.ppf(0.5 + ci / 2, dof)
         t_hat = d_t / np.exp(logk)
-        rows.append({"reader": "pooled", by: grp, "diameter_mm": float(diam), "threshold_contrast": float(t_hat),
-                     "ci_low": float(t_hat * np.exp(-tq * se)) if np.isfinite(se) else float("nan"),
-                     "ci_high": float(t_hat * np.exp(tq * se)) if np.isfinite(se) else float("nan"),
-                     "log10_se": float(se / np.log(10)), "n_trials": int(len(g)), "n_readers": int(n_r),
-                     "n_images": int(n_img), "method": "GEE, M-AFC link, reader × image clusters",
-                     "converged": conv, "note": note})
+        rows.append(
+            {
+                "reader": "pooled",
+                by: grp,
+                "diameter_mm": float(diam),
+                "threshold_contrast": float(t_hat),
+                "ci_low": float(t_hat * np.exp(-tq * se)) if np.isfinite(se) else float("nan"),
+                "ci_high": float(t_hat * np.exp(tq * se)) if np.isfinite(se) else float("nan"),
+                "log10_se": float(se / np.log(10)),
+                "n_trials": int(len(g)),
+                "n_readers": int(n_r),
+                "n_images": int(n_img),
+                "method": "GEE, M-AFC link, reader × image clusters",
+                "converged": conv,
+                "note": note,
+            }
+        )
     return pd.DataFrame(rows), notes
 
 
@@ -437,12 +507,19 @@ def between_reader_cv(curves: pd.DataFrame, by: str = "detector") -> pd.DataFram
         ln = np.log(t)
         var_obs = float(np.var(ln, ddof=1))
         se_ln = g["log10_se"].to_numpy() * np.log(10)
-        within = float(np.nanmean(se_ln ** 2)) if np.isfinite(se_ln).any() else 0.0
+        within = float(np.nanmean(se_ln**2)) if np.isfinite(se_ln).any() else 0.0
         var_b = max(var_obs - within, 0.0)
-        rows.append({by: grp, "diameter_mm": float(diam), "n_readers": int(len(g)),
-                     "cv_observed": float(np.std(t, ddof=1) / np.mean(t)),
-                     "cv_between": float(np.sqrt(np.expm1(var_b))),
-                     "sd_log_observed": float(np.sqrt(var_obs)), "sd_log_within": float(np.sqrt(within))})
+        rows.append(
+            {
+                by: grp,
+                "diameter_mm": float(diam),
+                "n_readers": int(len(g)),
+                "cv_observed": float(np.std(t, ddof=1) / np.mean(t)),
+                "cv_between": float(np.sqrt(np.expm1(var_b))),
+                "sd_log_observed": float(np.sqrt(var_obs)),
+                "sd_log_within": float(np.sqrt(within)),
+            }
+        )
     return pd.DataFrame(rows)
 
 
@@ -459,9 +536,17 @@ def _counts_cube(g: pd.DataFrame, readers, images, levels) -> tuple[np.ndarray, 
     return y, n
 
 
-def human_model_factor(human: pd.DataFrame, model: pd.DataFrame, m: int, rng: np.random.Generator,
-                       n_boot: int = 1000, by: str = "detector", criterion_pc: float | None = None,
-                       ci: float = 0.95, reader_curves_df: pd.DataFrame | None = None) -> dict:
+def human_model_factor(
+    human: pd.DataFrame,
+    model: pd.DataFrame,
+    m: int,
+    rng: np.random.Generator,
+    n_boot: int = 1000,
+    by: str = "detector",
+    criterion_pc: float | None = None,
+    ci: float = 0.95,
+    reader_curves_df: pd.DataFrame | None = None,
+) -> dict:
     """Human/model threshold factor per group × diameter and overall, with bootstrap CIs.
 
     Human threshold: pooled ML fit (the GEE point estimate under independence) over all
@@ -512,19 +597,39 @@ def human_model_factor(human: pd.DataFrame, model: pd.DataFrame, m: int, rng: np
             nb = np.einsum("br,bi,ril->bl", wr, wi_h, nh, optimize=True)
             kb_h, _ = fit_k_batch(levels, yb, nb, m, center=kh[0])
             kb_m, _ = fit_k_batch(levels, wi_m @ ym, wi_m @ nm, m, center=km[0])
-            fb = kb_m / kb_h                      # (d_t/kh)/(d_t/km)
+            fb = kb_m / kb_h  # (d_t/kh)/(d_t/km)
             lo, hi = percentile_ci(fb, ci)
             note = ""
             if bh[0] or bm[0]:
                 note = "a threshold is at a search bound (all correct or chance): the factor is only a bound"
-            per.append({by: grp, "diameter_mm": float(diam), "human_threshold": float(t_h),
-                        "model_threshold": float(t_m), "factor": float(t_h / t_m), "ci_low": lo, "ci_high": hi,
-                        "human_equivalent_threshold": float(t_m * (t_h / t_m)), "n_readers": int(len(readers)),
-                        "n_images": int(len(images_h)), "note": note})
+            per.append(
+                {
+                    by: grp,
+                    "diameter_mm": float(diam),
+                    "human_threshold": float(t_h),
+                    "model_threshold": float(t_m),
+                    "factor": float(t_h / t_m),
+                    "ci_low": lo,
+                    "ci_high": hi,
+                    "human_equivalent_threshold": float(t_m * (t_h / t_m)),
+                    "n_readers": int(len(readers)),
+                    "n_images": int(len(images_h)),
+                    "note": note,
+                }
+            )
             samples.append(np.log(fb))
         if not per:
-            out_all.append({"observer": obs, "factor": None, "ci_low": None, "ci_high": None, "per_diameter": [],
-                            "bland_altman": None, "note": "; ".join(notes) or "no matching model trials"})
+            out_all.append(
+                {
+                    "observer": obs,
+                    "factor": None,
+                    "ci_low": None,
+                    "ci_high": None,
+                    "per_diameter": [],
+                    "bland_altman": None,
+                    "note": "; ".join(notes) or "no matching model trials",
+                }
+            )
             continue
         est = float(np.exp(np.mean([np.log(r["factor"]) for r in per])))
         overall = np.exp(np.mean(np.stack(samples), axis=0))
@@ -537,8 +642,17 @@ def human_model_factor(human: pd.DataFrame, model: pd.DataFrame, m: int, rng: np
         ba = None
         if reader_curves_df is not None and len(reader_curves_df):
             ba = bland_altman_log(reader_curves_df, pd.DataFrame(per), by)
-        out_all.append({"observer": obs, "factor": est, "ci_low": lo, "ci_high": hi, "per_diameter": per,
-                        "bland_altman": ba, "note": "; ".join(notes)})
+        out_all.append(
+            {
+                "observer": obs,
+                "factor": est,
+                "ci_low": lo,
+                "ci_high": hi,
+                "per_diameter": per,
+                "bland_altman": ba,
+                "note": "; ".join(notes),
+            }
+        )
     first = dict(out_all[0]) if out_all else None
     if first is not None:
         first["by_observer"] = out_all
@@ -558,12 +672,18 @@ def bland_altman_log(reader_df: pd.DataFrame, per: pd.DataFrame, by: str) -> dic
     lh, lm = np.log10(merged["threshold_contrast"].to_numpy()), np.log10(merged["model_threshold"].to_numpy())
     d = lh - lm
     bias, sd = float(np.mean(d)), float(np.std(d, ddof=1))
-    return {"n_pairs": int(len(d)), "bias_log10": bias, "sd_log10": sd,
-            "loa_low_log10": bias - 1.96 * sd, "loa_high_log10": bias + 1.96 * sd,
-            "factor_from_bias": float(10 ** bias),
-            "points": [{"reader": r, by: gv, "diameter_mm": float(dm), "mean_log10": float(a), "diff_log10": float(b)}
-                       for r, gv, dm, a, b in zip(merged["reader"], merged[by], merged["diameter_mm"],
-                                                  (lh + lm) / 2, d)]}
+    return {
+        "n_pairs": int(len(d)),
+        "bias_log10": bias,
+        "sd_log10": sd,
+        "loa_low_log10": bias - 1.96 * sd,
+        "loa_high_log10": bias + 1.96 * sd,
+        "factor_from_bias": float(10**bias),
+        "points": [
+            {"reader": r, by: gv, "diameter_mm": float(dm), "mean_log10": float(a), "diff_log10": float(b)}
+            for r, gv, dm, a, b in zip(merged["reader"], merged[by], merged["diameter_mm"], (lh + lm) / 2, d)
+        ],
+    }
 
 
 # =========================================================================== group comparison
@@ -572,8 +692,9 @@ def _pct_phrase(ratio: float) -> str:
     return f"{abs(pct):.0f} % {'higher' if pct >= 0 else 'lower'}"
 
 
-def _image_sampling_se(trials: pd.DataFrame, by: str, ref, lev, diam: float, readers, m: int, n_boot: int,
-                       rng: np.random.Generator) -> float:
+def _image_sampling_se(
+    trials: pd.DataFrame, by: str, ref, lev, diam: float, readers, m: int, n_boot: int, rng: np.random.Generator
+) -> float:
     """Shared image-sampling SD (log10) of the mean-over-readers log threshold ratio.
 
     Every reader reads the same images of a group, so the images' noise is common to all
@@ -595,20 +716,27 @@ def _image_sampling_se(trials: pd.DataFrame, by: str, ref, lev, diam: float, rea
         k0, _ = fit_k_batch(levels, y.sum((0, 1))[None], n.sum((0, 1))[None], m)
         k, _ = fit_k_batch(levels, yb, nb, m, center=k0[0])
         means.append(-np.log10(k).reshape(n_boot, len(readers)))
-    diff = means[1] - means[0]                          # (B, R) per-reader log10 ratio in each resample
+    diff = means[1] - means[0]  # (B, R) per-reader log10 ratio in each resample
     r = diff.shape[1]
     if r < 2:
         return float(np.std(diff[:, 0], ddof=1))
     cov = np.cov(diff, rowvar=False)
     # only the covariance between readers is the shared image part; each reader's own
     # variance (diagonal) is already in the mixed model's residual
-    shared = (cov.sum() - np.trace(cov)) / r ** 2
+    shared = (cov.sum() - np.trace(cov)) / r**2
     return float(np.sqrt(max(shared, 0.0)))
 
 
-def compare_groups(curves: pd.DataFrame, by: str = "detector", reference: str | None = None,
-                   ci: float = 0.95, trials: pd.DataFrame | None = None, m: int | None = None,
-                   n_boot: int = 0, rng: np.random.Generator | None = None) -> tuple[pd.DataFrame, list[str]]:
+def compare_groups(
+    curves: pd.DataFrame,
+    by: str = "detector",
+    reference: str | None = None,
+    ci: float = 0.95,
+    trials: pd.DataFrame | None = None,
+    m: int | None = None,
+    n_boot: int = 0,
+    rng: np.random.Generator | None = None,
+) -> tuple[pd.DataFrame, list[str]]:
     """Ratio of thresholds (level / reference) per diameter from a linear mixed model.
 
     Model per diameter: log10 T_{r,g} = β₀ + β_g + u_r + ε, u_r ~ N(0, τ²) (reader random
@@ -644,8 +772,10 @@ def compare_groups(curves: pd.DataFrame, by: str = "detector", reference: str | 
             g = g[g["reader"].isin(paired)]
             n_r = len(paired)
             if n_r < 2:
-                notes.append(f"{lev} vs {ref} at {diam:g} mm: {n_r} reader(s) have an estimated threshold (not a "
-                             "bound) on both, need at least 2")
+                notes.append(
+                    f"{lev} vs {ref} at {diam:g} mm: {n_r} reader(s) have an estimated threshold (not a "
+                    "bound) on both, need at least 2"
+                )
                 continue
             g["log_t"] = np.log10(g["threshold_contrast"])
             g["grp"] = np.where(g[by] == lev, 1.0, 0.0)
@@ -667,17 +797,38 @@ def compare_groups(curves: pd.DataFrame, by: str = "detector", reference: str | 
             se_mixed = se
             se_img = float("nan")
             if trials is not None and n_boot > 1 and m is not None:
-                se_img = _image_sampling_se(trials, by, ref, lev, float(diam), sorted(paired), m, n_boot,
-                                            rng if rng is not None else np.random.default_rng(0))
-                se = float(np.sqrt(se_mixed ** 2 + se_img ** 2))
+                se_img = _image_sampling_se(
+                    trials,
+                    by,
+                    ref,
+                    lev,
+                    float(diam),
+                    sorted(paired),
+                    m,
+                    n_boot,
+                    rng if rng is not None else np.random.default_rng(0),
+                )
+                se = float(np.sqrt(se_mixed**2 + se_img**2))
             dfree = n_r - 1
             tq = sps.t.ppf(0.5 + ci / 2, dfree)
             pval = float(2 * sps.t.sf(abs(beta / se), dfree)) if se > 0 else float("nan")
-            rows.append({"level": lev, "reference": ref, "diameter_mm": float(diam), "ratio": float(10 ** beta),
-                         "ci_low": float(10 ** (beta - tq * se)), "ci_high": float(10 ** (beta + tq * se)),
-                         "log10_ratio": beta, "se_log10": se, "se_log10_mixedlm": se_mixed,
-                         "se_log10_images": se_img, "p_value": pval, "n_readers": int(n_r),
-                         "method": method})
+            rows.append(
+                {
+                    "level": lev,
+                    "reference": ref,
+                    "diameter_mm": float(diam),
+                    "ratio": float(10**beta),
+                    "ci_low": float(10 ** (beta - tq * se)),
+                    "ci_high": float(10 ** (beta + tq * se)),
+                    "log10_ratio": beta,
+                    "se_log10": se,
+                    "se_log10_mixedlm": se_mixed,
+                    "se_log10_images": se_img,
+                    "p_value": pval,
+                    "n_readers": int(n_r),
+                    "method": method,
+                }
+            )
     table = pd.DataFrame(rows)
     if table.empty:
         return table, notes
@@ -700,13 +851,16 @@ def comparison_sentence(r: dict, by: str = "detector", ci: float = 0.95) -> str:
 
     def bound(x):
         return _pct_phrase(x)
+
     verdict = ""
     if lo <= 1.0 <= hi:
         verdict = " — no clear difference"
     p = r.get("p_adjusted", float("nan"))
     ptxt = f"; Holm-adjusted p = {p:.2g}" if np.isfinite(p) else ""
-    return (f"At {r['diameter_mm']:g} mm the {r['level']} {by}'s threshold is {_pct_phrase(r['ratio'])} than the "
-            f"{r['reference']} {by}'s ({ci * 100:.0f} % CI {bound(lo)} to {bound(hi)}{ptxt}){verdict}.")
+    return (
+        f"At {r['diameter_mm']:g} mm the {r['level']} {by}'s threshold is {_pct_phrase(r['ratio'])} than the "
+        f"{r['reference']} {by}'s ({ci * 100:.0f} % CI {bound(lo)} to {bound(hi)}{ptxt}){verdict}."
+    )
 
 
 # =========================================================================== everything
@@ -715,7 +869,7 @@ class Analysis:
     """All results of :func:`analyse_study` (tables as DataFrames, the rest as plain dicts)."""
 
     by: str
-    m_alternatives: int | dict[float, int]       # one M for the study, or one per diameter
+    m_alternatives: int | dict[float, int]  # one M for the study, or one per diameter
     criterion_pc: float | dict[float, float]
     readers: list
     reader_curves: pd.DataFrame
@@ -742,28 +896,60 @@ class Analysis:
         comp = []
         if len(self.comparison):
             for r in self.comparison.to_dict("records"):
-                comp.append({self.by if self.by != "detector" else "detector": r["level"], "reference": r["reference"],
-                             "diameter_mm": r["diameter_mm"], "ratio": r["ratio"], "ci_low": r["ci_low"],
-                             "ci_high": r["ci_high"], "p_value": r["p_value"], "p_adjusted": r["p_adjusted"],
-                             "n_readers": r["n_readers"], "method": r["method"], "sentence": r["sentence"]})
+                comp.append(
+                    {
+                        self.by if self.by != "detector" else "detector": r["level"],
+                        "reference": r["reference"],
+                        "diameter_mm": r["diameter_mm"],
+                        "ratio": r["ratio"],
+                        "ci_low": r["ci_low"],
+                        "ci_high": r["ci_high"],
+                        "p_value": r["p_value"],
+                        "p_adjusted": r["p_adjusted"],
+                        "n_readers": r["n_readers"],
+                        "method": r["method"],
+                        "sentence": r["sentence"],
+                    }
+                )
+
         def keyed(v):
             return {f"{k:g}": x for k, x in v.items()} if isinstance(v, dict) else v
-        return {"by": self.by, "m_alternatives": keyed(self.m_alternatives), "criterion_pc": keyed(self.criterion_pc),
-                "readers": self.readers, "curves": self.curves_records(),
-                "between_reader_cv": self.cv.to_dict("records") if len(self.cv) else [],
-                "detector_comparison": comp, "human_model_factor": self.human_model, "agreement": self.agreement,
-                "notes": self.notes, "seed": self.seed, "n_boot": self.n_boot}
+
+        return {
+            "by": self.by,
+            "m_alternatives": keyed(self.m_alternatives),
+            "criterion_pc": keyed(self.criterion_pc),
+            "readers": self.readers,
+            "curves": self.curves_records(),
+            "between_reader_cv": self.cv.to_dict("records") if len(self.cv) else [],
+            "detector_comparison": comp,
+            "human_model_factor": self.human_model,
+            "agreement": self.agreement,
+            "notes": self.notes,
+            "seed": self.seed,
+            "n_boot": self.n_boot,
+        }
 
 
-def model_curves(model: pd.DataFrame, m: int, rng: np.random.Generator, n_boot: int, by: str,
-                 criterion_pc: float | None) -> pd.DataFrame:
+def model_curves(
+    model: pd.DataFrame, m: int, rng: np.random.Generator, n_boot: int, by: str, criterion_pc: float | None
+) -> pd.DataFrame:
     """Model-observer thresholds (same fits and bootstrap as the readers)."""
     return reader_curves(model, m, rng, n_boot, by, criterion_pc)
 
 
-def analyse_study(trials: pd.DataFrame, model: pd.DataFrame | None = None, *, by: str = "detector",
-                  n_boot: int = 1000, seed: int | None = 0, criterion_pc: float | None = None,
-                  reference: str | None = None, ci: float = 0.95, progress=None) -> Analysis:
+def analyse_study(
+    trials: pd.DataFrame,
+    model: pd.DataFrame | None = None,
+    *,
+    by: str = "detector",
+    n_boot: int = 1000,
+    seed: int | None = 0,
+    criterion_pc: float | None = None,
+    reference: str | None = None,
+    ci: float = 0.95,
+    progress=None,
+) -> Analysis:
     """Run every analysis of a reader study; degrade with notes when the study is too small.
 
     ``trials`` and ``model`` must already be validated (:func:`validate_trials`).
@@ -782,8 +968,11 @@ def analyse_study(trials: pd.DataFrame, model: pd.DataFrame | None = None, *, by
         m_model = m_alternatives_of(model, "model responses")
         for d in sorted(set(trials["diameter_mm"]) & set(model["diameter_mm"])):
             if m_at(m_model, d) != m_at(m, d):
-                raise LimenError(f"model-observer table has {m_at(m_model, d)} alternatives per target at {d:g} mm "
-                                 f"but the readers' has {m_at(m, d)}", "--model")
+                raise LimenError(
+                    f"model-observer table has {m_at(m_model, d)} alternatives per target at {d:g} mm "
+                    f"but the readers' has {m_at(m, d)}",
+                    "--model",
+                )
     if isinstance(m, dict):
         p = {d: criterion_at(m, d, criterion_pc) for d in m}
     else:
@@ -792,32 +981,42 @@ def analyse_study(trials: pd.DataFrame, model: pd.DataFrame | None = None, *, by
         for d in sorted(set(trials["diameter_mm"])):
             md = m_at(m, d)
             if not 1.0 / md < criterion_pc < 1.0:
-                raise LimenError(f"{criterion_pc:g} must lie between chance (1/{md} for {md}-AFC at {d:g} mm) and 1",
-                                 "--criterion")
+                raise LimenError(
+                    f"{criterion_pc:g} must lie between chance (1/{md} for {md}-AFC at {d:g} mm) and 1", "--criterion"
+                )
     notes = []
     if "source" in trials.columns and trials["source"].astype(str).str.contains("simulated").any():
-        notes.append("Simulated readers: these trials come from Limen's documented observer model "
-                     "(scorer/study/reader_model.py), not from people; the figures illustrate the method only.")
+        notes.append(
+            "Simulated readers: these trials come from Limen's documented observer model "
+            "(scorer/study/reader_model.py), not from people; the figures illustrate the method only."
+        )
     say("per-reader fits")
     rc = reader_curves(trials, m, rng, n_boot, by, criterion_pc, ci)
     n_bad = int((~rc["converged"]).sum())
     if n_bad:
-        notes.append(f"{n_bad} per-reader threshold(s) have no interior maximum (all correct or at chance); "
-                     "they are bounds, not estimates")
+        notes.append(
+            f"{n_bad} per-reader threshold(s) have no interior maximum (all correct or at chance); "
+            "they are bounds, not estimates"
+        )
     say("pooled curves")
     pc_df, pn = pooled_curves(trials, m, by, criterion_pc, ci)
     notes += pn
     cv = between_reader_cv(rc, by)
     if cv.empty:
         n_r = trials["reader"].nunique()
-        notes.append("between-reader CV needs at least 2 readers" if n_r < 2 else
-                     f"between-reader CV needs at least 2 of the {n_r} readers with an estimated threshold (not a "
-                     "bound) at one diameter")
+        notes.append(
+            "between-reader CV needs at least 2 readers"
+            if n_r < 2
+            else f"between-reader CV needs at least 2 of the {n_r} readers with an estimated threshold (not a "
+            "bound) at one diameter"
+        )
     say(f"{by} comparison")
     comp, cn = compare_groups(rc, by, reference, ci, trials=trials, m=m, n_boot=n_boot, rng=rng)
     if len(comp) and n_boot < 2:
-        notes.append(f"{by} comparison without the image-sampling variance (needs bootstrap resamples): "
-                     "its CIs are too narrow when all readers read the same images")
+        notes.append(
+            f"{by} comparison without the image-sampling variance (needs bootstrap resamples): "
+            "its CIs are too narrow when all readers read the same images"
+        )
     notes += cn
     mc = pd.DataFrame()
     hm = None
@@ -829,6 +1028,19 @@ def analyse_study(trials: pd.DataFrame, model: pd.DataFrame | None = None, *, by
     say("agreement")
     agr = agreement_summary(trials, by)
     notes += agr.get("notes", [])
-    return Analysis(by=by, m_alternatives=m, criterion_pc=p, readers=sorted(trials["reader"].unique().tolist()),
-                    reader_curves=rc, pooled_curves=pc_df, model_curves=mc, cv=cv, comparison=comp,
-                    human_model=hm, agreement=agr, notes=notes, seed=seed, n_boot=n_boot)
+    return Analysis(
+        by=by,
+        m_alternatives=m,
+        criterion_pc=p,
+        readers=sorted(trials["reader"].unique().tolist()),
+        reader_curves=rc,
+        pooled_curves=pc_df,
+        model_curves=mc,
+        cv=cv,
+        comparison=comp,
+        human_model=hm,
+        agreement=agr,
+        notes=notes,
+        seed=seed,
+        n_boot=n_boot,
+    )
