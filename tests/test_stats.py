@@ -413,3 +413,42 @@ def test_a_plate_with_3_and_5_site_cells_uses_each_diameters_own_criterion():
     assert criterion_at(m, 0.25, None) == pytest.approx(2 / 3) and criterion_at(m, 1.0, None) == pytest.approx(0.6)
     a = analyse_study(trials, n_boot=20, seed=1)
     assert a.to_json()["m_alternatives"] == {"0.25": 3, "1": 5}
+
+
+def test_reader_thresholds_outside_the_contrasts_shown_are_flagged_censored():
+    # a reader right at every contrast only bounds the threshold from above by the lowest contrast shown; a
+    # reader at chance bounds it from below by the highest (issue: "106 % when the highest disc is 45 %")
+    from scorer.reports.study import report_html
+    from scorer.study.stats import analyse_study
+
+    rows = []
+    for r, skill in (("sharp", 1.0), ("blind", 0.0), ("mid1", 0.6), ("mid2", 0.6)):
+        rng = np.random.default_rng(len(r))
+        for i in range(6):
+            for c in (0.05, 0.1, 0.2, 0.45):
+                true = int(rng.integers(4))
+                good = rng.random() < (skill if r in ("sharp", "blind") else min(0.95, 0.25 + 2 * c))
+                chosen = true if good else (true + 1 + int(rng.integers(3))) % 4
+                rows.append((r, "A", f"i{i}", f"t{c}", 0.5, c, chosen, true, int(chosen == true), 4))
+    trials = pd.DataFrame(
+        rows,
+        columns=[
+            "reader",
+            "detector",
+            "image",
+            "target",
+            "diameter_mm",
+            "contrast",
+            "chosen_site",
+            "true_site",
+            "correct",
+            "n_alternatives",
+        ],
+    )
+    a = analyse_study(trials, n_boot=20, seed=2)
+    flags = dict(zip(a.reader_curves["reader"], a.reader_curves["censored"]))
+    assert flags["sharp"] == "below" and flags["blind"] == "above"
+    js = a.to_json()
+    assert any(c.get("censored") == "above" for c in js["curves"] if c["reader"] == "blind")
+    page = report_html(a)
+    assert "&gt; 45 (censored)" in page or "> 45 (censored)" in page

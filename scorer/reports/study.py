@@ -126,10 +126,25 @@ def bland_altman_figure(ba: dict, observer: str) -> str:
 
 
 def _table(df: pd.DataFrame, cols, left=(), ci_percent: bool = True) -> str:
+    rows, heads = _display(df, cols, ci_percent)
+    return table_html(rows, heads, left=[READABLE.get(c, c.replace("_", " ")) for c in left])
+
+
+def _display(df: pd.DataFrame, cols, ci_percent: bool):
+    """Rows in % with readable headings; a censored threshold shows as '> highest offered' with no CI."""
     rows, heads = display_records(
         _records(df, cols), [c for c in cols if df is not None and c in df.columns], ci_percent=ci_percent
     )
-    return table_html(rows, heads, left=[READABLE.get(c, c.replace("_", " ")) for c in left])
+    recs = _records(df, cols + ["censored", "offered_min", "offered_max"])
+    for row, rec in zip(rows, recs):
+        side = rec.get("censored")
+        if side in ("above", "below") and "threshold (%)" in row:
+            bound = rec["offered_max"] if side == "above" else rec["offered_min"]
+            row["threshold (%)"] = f"{'>' if side == 'above' else '<'} {100 * bound:.3g} (censored)"
+            for h in ("95 % CI low (%)", "95 % CI high (%)"):
+                if h in row:
+                    row[h] = "—"
+    return rows, heads
 
 
 def _records(df: pd.DataFrame, cols) -> list[dict]:

@@ -242,7 +242,10 @@ def reader_curves(
     Images are resampled with replacement within the reader (all trials of an image —
     every target and every repeat — move together).  Columns: reader, <by>, diameter_mm,
     threshold_contrast, ci_low, ci_high, log10_se (bootstrap SD of log10 threshold),
-    n_trials, n_images, pc_observed, k, converged, note.
+    n_trials, n_images, pc_observed, k, converged, censored, offered_min, offered_max, note.
+    ``censored`` is "above" ("below") when the fitted threshold lies above the highest (below the lowest)
+    contrast this reader was shown at that diameter: the data then only bound it, and reports show it as
+    "> highest" ("< lowest"); the fitted value is kept for the statistics that pool readers.
     """
     m_all = m
     rows = []
@@ -277,10 +280,24 @@ def reader_curves(
                 "pc_observed": float(g["correct"].mean()),
                 "k": fit.params["k"],
                 "converged": bool(fit.converged),
+                "censored": _censored(t, g["contrast"]),
+                "offered_min": float(g["contrast"].min()),
+                "offered_max": float(g["contrast"].max()),
                 "note": note,
             }
         )
     return pd.DataFrame(rows)
+
+
+def _censored(threshold: float, contrasts: pd.Series) -> str:
+    """'above' / 'below' when a threshold lies outside the contrasts offered, else ''."""
+    if threshold is None or not np.isfinite(threshold):
+        return ""
+    if threshold > float(contrasts.max()):
+        return "above"
+    if threshold < float(contrasts.min()):
+        return "below"
+    return ""
 
 
 # =========================================================================== pooled curve (GEE)
@@ -888,7 +905,9 @@ class Analysis:
         out = []
         for df in (self.reader_curves, self.pooled_curves, self.model_curves):
             if len(df):
-                extra = [c for c in ("n_trials", "n_images", "n_readers", "converged", "note") if c in df.columns]
+                extra = [
+                    c for c in ("n_trials", "n_images", "n_readers", "converged", "censored", "note") if c in df.columns
+                ]
                 out.extend(df[cols + extra].to_dict("records"))
         return out
 
