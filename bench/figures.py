@@ -68,6 +68,22 @@ FIGURES = [
         "%",
         "93–97",
     ),
+    Figure(
+        "dose_series_to_score_time_ratio",
+        "bench_dose_series.json",
+        lambda r: max(v["ratio"] for v in r["speed"].values()),
+        "×",
+        "< 2",
+    ),
+    Figure("memory_peak_8_over_1_images", "bench_memory.json", lambda r: r["peak_ratio_8_vs_1_images"], "×", "≤ 8"),
+    Figure(
+        "memory_peak_sites_ratio",
+        "bench_memory.json",
+        lambda r: r["peak_ratio_sites"],
+        "×",
+        "≤ ratio of sites",
+    ),
+    Figure("memory_refuse_12000_targets_s", "bench_memory.json", lambda r: r["layout_12000_refusal_s"], "s", "≤ 10"),
 ]
 
 
