@@ -85,3 +85,19 @@ def test_expected_settings_flags():
         "filter not recorded (expected RH)",
         "exposure 20 mAs (expected 40–120 mAs)",
     ]
+
+
+def test_human_factor_from_an_analysis_keeps_its_ci(tmp_path):
+    # `human_factor_from` reads the factor as `limen score --human-factor-from` does, CI included, so nightly
+    # verdicts carry the factor's uncertainty too (found in review: the factor was cast to float and failed)
+    import json
+
+    (tmp_path / "analysis.json").write_text(
+        json.dumps(
+            {"human_model_factor": {"by_observer": [{"observer": "npw", "factor": 2.1, "ci_low": 1.8, "ci_high": 2.5}]}}
+        ),
+        encoding="utf-8",
+    )
+    p = _write(tmp_path, '[[detectors]]\ndetector_id = "D-1"\nhuman_factor_from = "analysis.json"\n')
+    hf = load_config(p).detector_for("D-1", None, None).human_factor
+    assert (hf.value, hf.ci_low, hf.ci_high) == (2.1, 1.8, 2.5)

@@ -128,22 +128,18 @@ def dose_series(
     from tqdm import tqdm
 
     from scorer.commands.detector import _read_kerma_csv
-    from scorer.commands.score import _blur_from_detector_json, human_factor_from_analysis
     from scorer.detector.dose import background_kerma_ugy, group_by_kerma, score_dose_series
     from scorer.errors import LimenError
     from scorer.images import load_conversion, load_image
-    from scorer.observer import load_limits
+    from scorer.observer import SystemBlur, load_limits, resolve_human_factor
     from scorer.phantom import load_layout
     from scorer.reports import CAUTION, dumps, write_json
 
-    if factor_file:
-        if human_factor is not None:
-            raise LimenError("give either --human-factor or --human-factor-from, not both", "--human-factor")
-        human_factor = human_factor_from_analysis(factor_file, observer)
+    human_factor = resolve_human_factor(human_factor, factor_file, observer)
     layout = load_layout(layout_file)
     limits = load_limits(limits_file) if limits_file else None
     conversion = load_conversion(conversion_file) if conversion_file else None
-    blur = _blur_from_detector_json(mtf_file) if mtf_file else None
+    blur = SystemBlur.from_detector_json(mtf_file) if mtf_file else None
     if kerma_csv:
         table = {str(p.resolve()): k for p, k in _read_kerma_csv(Path(kerma_csv))}
         kermas = [table.get(str(Path(p).resolve())) for p in images]

@@ -21,12 +21,11 @@ def db_url_option(value: str | None) -> str | None:
 
 def load_nightly_config(path):
     """The nightly configuration with human/model factors and MTFs read as `limen score` reads them."""
-    from scorer.commands.score import _blur_from_detector_json, human_factor_from_analysis
     from scorer.qc import default_config, load_config
 
     if path is None:
         return default_config()
-    return load_config(path, factor_loader=human_factor_from_analysis, mtf_loader=_blur_from_detector_json)
+    return load_config(path)
 
 
 @click.command("nightly")

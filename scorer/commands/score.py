@@ -2,7 +2,6 @@
 
 from __future__ import annotations
 
-import json
 import sys
 from pathlib import Path
 
@@ -11,11 +10,10 @@ import numpy as np
 from tqdm import tqdm
 
 from scorer.images import load_conversion
-from scorer.errors import LimenError
 from scorer.files import OutputFolder
 from scorer.invocation import current_command
 from scorer.phantom import load_layout
-from scorer.observer import HumanFactor, load_limits
+from scorer.observer import load_limits, resolve_human_factor
 from scorer.observer import SystemBlur
 from scorer.phantom import draw_overlay
 from scorer.reports import CAUTION, dumps
@@ -26,49 +24,6 @@ from scorer.observer import score_images
 #: exit status of `limen score` (documented in the README)
 EXIT_FAIL = 1
 EXIT_INDETERMINATE = 3
-
-
-def human_factor_from_analysis(path, observer: str) -> HumanFactor:
-    """The human/model threshold factor that `limen analyse --model` measured for ``observer``."""
-    try:
-        data = json.loads(Path(path).read_text(encoding="utf-8"))
-        hm = data["human_model_factor"]
-    except OSError as exc:
-        raise LimenError(f"cannot read analysis file ({exc.strerror or exc})", path) from None
-    except (ValueError, KeyError, TypeError):
-        raise LimenError(
-            "not an analysis.json with a human_model_factor (run limen analyse with --model)", path
-        ) from None
-    entries = (hm.get("by_observer") or [hm]) if isinstance(hm, dict) else []
-    for e in entries:
-        if str(e.get("observer", "")).lower() == observer and e.get("factor"):
-            lo, hi = e.get("ci_low"), e.get("ci_high")
-            return HumanFactor(
-                float(e["factor"]),
-                None if lo is None else float(lo),
-                None if hi is None else float(hi),
-                source=str(path),
-            )
-    found = ", ".join(sorted({str(e.get("observer")) for e in entries})) or "none"
-    raise LimenError(
-        f"no human/model factor for the {observer.upper()} observer in this analysis (factors for: {found})", path
-    )
-
-
-def _blur_from_detector_json(path) -> SystemBlur:
-    try:
-        data = json.loads(Path(path).read_text(encoding="utf-8"))
-        mtf = data["mtf"]
-        f, v = [float(x) for x in mtf["frequency_per_mm"]], [float(x) for x in mtf["value"]]
-    except OSError as exc:
-        raise LimenError(f"cannot read MTF file ({exc.strerror or exc})", path) from None
-    except (ValueError, KeyError, TypeError):
-        raise LimenError(
-            "not a detector JSON with mtf.frequency_per_mm and mtf.value (from limen detector --json)", path
-        ) from None
-    if len(f) < 3 or len(f) != len(v):
-        raise LimenError("MTF needs at least three frequencies with one value each", path)
-    return SystemBlur(frequency_per_mm=tuple(f), mtf=tuple(v), source=f"measured MTF from {path}")
 
 
 @click.command("score")
@@ -218,16 +173,13 @@ def score(
     fails, 2 on bad input, 3 when the overall verdict is indeterminate (a confidence
     interval straddles a limit: more images are needed).
     """
-    if factor_file:
-        if human_factor is not None:
-            raise LimenError("give either --human-factor or --human-factor-from, not both", "--human-factor")
-        human_factor = human_factor_from_analysis(factor_file, observer)
+    human_factor = resolve_human_factor(human_factor, factor_file, observer)
     if (human_factor is not None) and not limits_file:
         click.echo("warning: --human-factor/--human-factor-from has no effect without --limits", err=True)
     layout = load_layout(layout_file)
     limits = load_limits(limits_file) if limits_file else None
     conversion = load_conversion(conversion_file) if conversion_file else None
-    blur = _blur_from_detector_json(mtf_file) if mtf_file else None
+    blur = SystemBlur.from_detector_json(mtf_file) if mtf_file else None
     methods = ["dprime", "count"] if method == "both" else [method]
     folder = OutputFolder(out_dir, replace=replace, command="score") if out_dir else None
     out = folder.path if folder else None

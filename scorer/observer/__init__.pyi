@@ -27,6 +27,8 @@ from .threshold import (
 )
 from .limits import (
     HumanFactor as HumanFactor,
+    human_factor_from_analysis as human_factor_from_analysis,
+    resolve_human_factor as resolve_human_factor,
     Limits as Limits,
     Verdict as Verdict,
     load_limits as load_limits,
@@ -61,6 +63,8 @@ __all__ = [
     "count_thresholds",
     "smooth_curve",
     "HumanFactor",
+    "human_factor_from_analysis",
+    "resolve_human_factor",
     "Limits",
     "Verdict",
     "load_limits",

@@ -28,6 +28,8 @@ one the comparison is refused.
 
 from __future__ import annotations
 
+import json
+
 from dataclasses import dataclass, asdict
 from pathlib import Path
 
@@ -294,3 +296,39 @@ def overall(verdicts: list[Verdict]) -> str:
     if "pass" in vs:
         return "pass"
     return "no limit"
+
+
+def human_factor_from_analysis(path, observer: str) -> HumanFactor:
+    """The human/model threshold factor that `limen analyse --model` measured for ``observer``."""
+    try:
+        data = json.loads(Path(path).read_text(encoding="utf-8"))
+        hm = data["human_model_factor"]
+    except OSError as exc:
+        raise LimenError(f"cannot read analysis file ({exc.strerror or exc})", path) from None
+    except (ValueError, KeyError, TypeError):
+        raise LimenError(
+            "not an analysis.json with a human_model_factor (run limen analyse with --model)", path
+        ) from None
+    entries = (hm.get("by_observer") or [hm]) if isinstance(hm, dict) else []
+    for e in entries:
+        if str(e.get("observer", "")).lower() == observer and e.get("factor"):
+            lo, hi = e.get("ci_low"), e.get("ci_high")
+            return HumanFactor(
+                float(e["factor"]),
+                None if lo is None else float(lo),
+                None if hi is None else float(hi),
+                source=str(path),
+            )
+    found = ", ".join(sorted({str(e.get("observer")) for e in entries})) or "none"
+    raise LimenError(
+        f"no human/model factor for the {observer.upper()} observer in this analysis (factors for: {found})", path
+    )
+
+
+def resolve_human_factor(value: float | None, analysis_file, observer: str) -> HumanFactor | float | None:
+    """The human/model factor from ``--human-factor`` or ``--human-factor-from`` (an analysis.json), never both."""
+    if analysis_file:
+        if value is not None:
+            raise LimenError("give either --human-factor or --human-factor-from, not both", "--human-factor")
+        return human_factor_from_analysis(analysis_file, observer)
+    return value

@@ -70,6 +70,26 @@ class SystemBlur:
             return np.clip(m / np.maximum(sinc, 0.2), 0.0, 1.0)
         return np.exp(-2.0 * np.pi**2 * self.sigma_px**2 * f_cyc_per_px**2)
 
+    @classmethod
+    def from_detector_json(cls, path) -> "SystemBlur":
+        """The measured presampling MTF in a ``limen detector`` JSON (keys mtf.frequency_per_mm, mtf.value)."""
+        import json
+        from pathlib import Path
+
+        try:
+            data = json.loads(Path(path).read_text(encoding="utf-8"))
+            mtf = data["mtf"]
+            f, v = [float(x) for x in mtf["frequency_per_mm"]], [float(x) for x in mtf["value"]]
+        except OSError as exc:
+            raise LimenError(f"cannot read MTF file ({exc.strerror or exc})", path) from None
+        except (ValueError, KeyError, TypeError):
+            raise LimenError(
+                "not a detector JSON with mtf.frequency_per_mm and mtf.value (from limen detector --json)", path
+            ) from None
+        if len(f) < 3 or len(f) != len(v):
+            raise LimenError("MTF needs at least three frequencies with one value each", path)
+        return cls(frequency_per_mm=tuple(f), mtf=tuple(v), source=f"measured MTF from {path}")
+
     def margin_px(self) -> float:
         return 3.0 * self.sigma_px + 1.0 if self.mtf is None else 3.0
 

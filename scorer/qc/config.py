@@ -63,7 +63,7 @@ from typing import Callable
 from scorer.errors import LimenError
 from scorer.files import read_toml
 from scorer.images.conversion import ConversionFunction, load_conversion
-from scorer.observer.limits import Limits, load_limits
+from scorer.observer.limits import HumanFactor, Limits, load_limits
 from scorer.observer.npw import SystemBlur
 from scorer.phantom.layout import Layout, load_layout
 
@@ -146,7 +146,7 @@ class DetectorConfig:
     limits: Limits | None = None
     conversion: ConversionFunction | None = None
     blur: SystemBlur | None = None
-    human_factor: float | None = None
+    human_factor: float | HumanFactor | None = None
     expected: Expected = Expected()
     observer: str = "npw"
     methods: tuple[str, ...] = ("dprime", "count")
@@ -233,8 +233,10 @@ def load_config(path, factor_loader: Callable | None = None, mtf_loader: Callabl
     Parameters
     ----------
     path : the TOML file.
-    factor_loader : ``factor_loader(analysis_json, observer) -> float`` for ``human_factor_from``.
-    mtf_loader : ``mtf_loader(detector_json) -> SystemBlur`` for ``mtf``.
+    factor_loader : ``factor_loader(analysis_json, observer) -> float`` for ``human_factor_from``
+        (default: :func:`scorer.observer.human_factor_from_analysis`).
+    mtf_loader : ``mtf_loader(detector_json) -> SystemBlur`` for ``mtf``
+        (default: :meth:`scorer.observer.SystemBlur.from_detector_json`).
     """
     path = Path(path)
     data = read_toml(path, "nightly configuration")
@@ -248,7 +250,9 @@ def load_config(path, factor_loader: Callable | None = None, mtf_loader: Callabl
     accept = dflt.get("accept_unlisted", False)
     if not isinstance(accept, bool):
         raise LimenError("[defaults] accept_unlisted must be true or false", path)
-    ctx = _Ctx(path, base, factor_loader, mtf_loader)
+    from scorer.observer import SystemBlur, human_factor_from_analysis
+
+    ctx = _Ctx(path, base, factor_loader or human_factor_from_analysis, mtf_loader or SystemBlur.from_detector_json)
     defaults = _detector(
         dict(dflt, name="(default)"), ctx, "[defaults]", DetectorConfig(name="(default)", layout=None), is_default=True
     )
@@ -370,14 +374,9 @@ def _detector(row: dict, ctx: _Ctx, where: str, defaults: DetectorConfig, is_def
     if "human_factor" in row:
         kw["human_factor"] = float(_number(row["human_factor"], path, f"{where}: human_factor", 0.01, 100))
     if "human_factor_from" in row:
-        if ctx.factor_loader is None:
-            raise LimenError(f"{where}: human_factor_from needs the analysis reader of `limen nightly`", path)
-        kw["human_factor"] = float(
-            ctx.factor_loader(ctx.file(row["human_factor_from"], where, "human_factor_from"), observer)
-        )
+        # a HumanFactor keeps its CI, which the verdicts carry (as `limen score --human-factor-from` does)
+        kw["human_factor"] = ctx.factor_loader(ctx.file(row["human_factor_from"], where, "human_factor_from"), observer)
     if "mtf" in row:
-        if ctx.mtf_loader is None:
-            raise LimenError(f"{where}: mtf needs the detector-JSON reader of `limen nightly`", path)
         kw["blur"] = ctx.mtf_loader(ctx.file(row["mtf"], where, "mtf"))
     if "expected" in row:
         kw["expected"] = _expected(_table(row["expected"], path, f"{where}: expected"), path, where)
