@@ -273,3 +273,26 @@ def test_detector_cli_noise_series(tmp_path):
     dq = d["noise_series"]["groups"][0]["dqe"]
     assert all(lo <= v <= hi for lo, v, hi in zip(dq["ci_low"], dq["value"], dq["ci_high"]))
     assert "quantum noise dominates" in d["noise_series"]["quantum_limited_text"]
+
+
+def test_dose_report_says_when_its_images_are_simulated():
+    # every report of simulated data says so on the page itself (issue on report honesty)
+    from scorer.reports.dose import dose_series_html
+
+    pts = [
+        {
+            "diameter_mm": 1.0,
+            "threshold_contrast": 0.01 * (50 / k) ** 0.5,
+            "ci_low": 0.008 * (50 / k) ** 0.5,
+            "ci_high": 0.012 * (50 / k) ** 0.5,
+        }
+        for k in (25, 50, 100)
+    ]
+    groups = [
+        {"kerma_ugy": k, "n_images": 4, "n_simulated": n, "paths": [], "thresholds": [p], "figure_of_merit": []}
+        for k, p, n in zip((25, 50, 100), pts, (4, 4, 4))
+    ]
+    page = dose_series_html({"groups": groups, "fits": [], "settings": {}})
+    assert "Simulated data:</b> 12 of 12 image(s)" in page
+    real = [dict(g, n_simulated=0) for g in groups]
+    assert "Simulated data" not in dose_series_html({"groups": real, "fits": [], "settings": {}})

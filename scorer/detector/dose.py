@@ -292,9 +292,12 @@ class DoseGroup:
                     "ci_high": 1.0 / (lo * lo * self.kerma_ugy) if ok and np.isfinite(lo) and lo > 0 else None,
                 }
             )
+        images = getattr(self.result, "images", None) or []
         return {
             "kerma_ugy": self.kerma_ugy,
             "n_images": len(self.paths),
+            # images written by Limen's simulator (DICOM Manufacturer), so the report can say so on the page
+            "n_simulated": sum(1 for im in images if (im.metadata or {}).get("manufacturer") == "Limen simulation"),
             "paths": self.paths,
             "thresholds": self.thresholds,
             "figure_of_merit": fom,

@@ -50,7 +50,14 @@ def dose_response_svg(series: dict, title: str = "Threshold contrast against air
     ax.set_ylabel("threshold contrast (%)")
     ax.set_title(title)
     ax.grid(True, which="both", alpha=0.3)
-    ax.legend(fontsize=7, ncol=2)
+    from matplotlib.ticker import NullFormatter
+
+    kermas = sorted({float(g["kerma_ugy"]) for g in series.get("groups", [])})
+    if kermas:
+        ax.set_xticks(kermas)  # label the kermas measured (plain numbers), not decades
+        ax.xaxis.set_minor_formatter(NullFormatter())
+    ax.legend(fontsize=7, ncol=3, loc="upper center", bbox_to_anchor=(0.5, -0.16), frameon=False)
+    fig.subplots_adjust(bottom=0.3)
     return figure_to_svg(fig)
 
 
@@ -115,10 +122,20 @@ METHOD_TEXT = (
 
 
 def dose_series_html(series: dict, title: str = "Limen dose series") -> str:
+    n_sim = sum(int(g.get("n_simulated") or 0) for g in series.get("groups", []))
+    n_all = sum(int(g.get("n_images") or 0) for g in series.get("groups", []))
+    banner = (
+        (
+            f"<p class='fail'><b>Simulated data:</b> {n_sim} of {n_all} image(s) were made by Limen's physics "
+            "simulator, not by a real detector (invented demo scenario).</p>"
+        )
+        if n_sim
+        else ""
+    )
     sections = [
         (
             "Threshold against kerma",
-            "<figure>" + dose_response_svg(series) + "<figcaption>Points: each kerma "
+            banner + "<figure>" + dose_response_svg(series) + "<figcaption>Points: each kerma "
             "group's threshold with its 95 % CI; lines: the fitted power law per diameter.</figcaption></figure>",
         ),
         ("Fitted exponent β and kerma for the limit", table_html(fit_rows(series))),

@@ -165,7 +165,7 @@ def trend_figure(det_frame: pd.DataFrame, method: str, rules: AlertRules):
             ax.plot(x[base], y[base], "s", mfc="none", mec="#2a6f97", ms=8, label="baseline session")
         if alert.any():
             ax.plot(x[alert], y[alert], "o", mfc="none", mec="#a4161a", mew=2, ms=11, label="alert")
-        ax.set_yscale("log")
+        # linear axis: a session's thresholds stay within a factor of a few, where log ticks would read 6×10⁻¹
         ax.set_title(f"{d:g} mm")
         ax.set_ylabel("threshold contrast (%)")
         ax.grid(True, which="both", alpha=0.25)
