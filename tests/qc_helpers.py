@@ -6,6 +6,8 @@ import datetime as dt
 import json
 from pathlib import Path
 
+import numpy as np
+
 
 from helpers import MINI
 from scorer.detector import detector_model
@@ -167,3 +169,45 @@ def thresholds(url) -> list[tuple]:
         (r.detector, r.session_date, r.method, r.diameter_mm, r.threshold_contrast, r.ci_low, r.ci_high)
         for r in df.itertuples()
     ]
+
+
+def assert_stored_like_direct(url, detector, session_date, direct) -> None:
+    """The responses and per-image counts stored for one session equal a direct ``score_images`` result."""
+    import pandas as pd
+    from sqlalchemy import select
+
+    from scorer.images.io import image_content_hash
+    from scorer.qc.store import ImageRow, ResponseRow, SessionRow, open_store
+
+    cols = ["target", "site", "diameter_mm", "contrast", "is_signal", "response", "row_px", "col_px"]
+    store = open_store(url)
+    try:
+        with store.transaction() as s:
+            rows = s.execute(
+                select(ImageRow.sha256, *(getattr(ResponseRow, c) for c in cols))
+                .join(ImageRow, ImageRow.id == ResponseRow.image_id)
+                .join(SessionRow, SessionRow.id == ResponseRow.session_id)
+                .where(SessionRow.detector == detector, SessionRow.session_date == str(session_date))
+            ).all()
+            counts = dict(
+                (sha, (nc, nt))
+                for sha, nc, nt in s.execute(
+                    select(ImageRow.sha256, ImageRow.n_correct, ImageRow.n_trials)
+                    .join(SessionRow, SessionRow.id == ImageRow.session_id)
+                    .where(SessionRow.detector == detector, SessionRow.session_date == str(session_date))
+                ).all()
+            )
+    finally:
+        store.close()
+    got = pd.DataFrame(rows, columns=["image", *cols]).sort_values(["image", "target", "site"], ignore_index=True)
+    sha = {im.image_id: image_content_hash(im.path) for im in direct.images}
+    want = direct.responses[["image", *cols]].copy()
+    want["image"] = want["image"].map(sha)
+    want = want.sort_values(["image", "target", "site"], ignore_index=True)
+    assert len(got) == len(want) > 0
+    for c in cols:
+        if c in ("target", "image"):
+            assert got[c].astype(str).tolist() == want[c].astype(str).tolist()
+        else:
+            np.testing.assert_allclose(got[c].astype(float), want[c].astype(float), rtol=1e-12, err_msg=c)
+    assert counts == {sha[im.image_id]: (im.n_correct, im.n_trials) for im in direct.images}

@@ -12,7 +12,19 @@ import numpy as np
 import pytest
 from click.testing import CliRunner
 
-from qc_helpers import D1, D2, DIRECT, INDIRECT, bad_files, check_database, flat_field, layout, night, write_config
+from qc_helpers import (
+    D1,
+    D2,
+    DIRECT,
+    INDIRECT,
+    assert_stored_like_direct,
+    bad_files,
+    check_database,
+    flat_field,
+    layout,
+    night,
+    write_config,
+)
 from scorer.cli import main
 from scorer.images import load_conversion
 from scorer.observer import score_images
@@ -91,6 +103,8 @@ def test_sessions_scored_once_bad_files_quarantined_waiting_session_completes(sc
     got = df[df["session_date"] == str(D2)].sort_values(["method", "diameter_mm"])
     want = direct.thresholds_frame().sort_values(["method", "diameter_mm"])
     np.testing.assert_allclose(got["threshold_contrast"].to_numpy(), want["threshold_contrast"].to_numpy(), rtol=1e-12)
+    # and so are its responses per site and each image's correct/trial counts
+    assert_stored_like_direct(db, DIRECT, D2, direct)
 
     # re-run: nothing new is scored, nothing re-quarantined
     res = _nightly(["--inbox", str(inbox), "--config", str(scene["cfg"]), "--db", db, "--json"])
@@ -185,5 +199,35 @@ def test_store_on_postgresql(postgres_url, scene):
     js = json.loads(res.stdout)
     assert js["sessions_scored"] == 2 and len(js["quarantined"]) == 6
     check_database(postgres_url, 2, images_per_session=4)
+    conv = load_conversion(scene["cfg"].parent / "direct-conversion.toml")
+    direct = score_images(sorted(map(str, scene["d2"])), layout(), conversion=conv, n_boot=50, seed=0)
+    assert_stored_like_direct(postgres_url, DIRECT, D2, direct)
     res = _nightly(["--inbox", str(inbox), "--config", str(scene["cfg"]), "--db", postgres_url, "--json"])
     assert json.loads(res.stdout)["sessions_scored"] == 0
+
+
+def test_report_folder_is_rewritten_each_night_keeping_foreign_files(scene):
+    """--report names the same folder every night: the previous night's files are replaced (through the
+    manifest of scorer.files.OutputFolder), a file someone else put there stays, a file is refused."""
+    inbox, db, report = scene["inbox"], scene["db"], scene["tmp"] / "report"
+    args = ["--inbox", str(inbox), "--config", str(scene["cfg"]), "--db", db, "--json", "--report", str(report)]
+    res = _nightly(args)
+    assert res.exit_code == 0, res.output
+    manifest = json.loads((report / ".limen-outputs.json").read_text())
+    assert manifest["complete"] and "trend.html" in manifest["files"]
+    (report / "notes-by-the-physicist.txt").write_text("keep me\n")
+    (report / "stale-from-an-older-release.csv").write_text("x\n")  # owned by the earlier run: listed below
+    manifest["files"].append("stale-from-an-older-release.csv")
+    (report / ".limen-outputs.json").write_text(json.dumps(manifest))
+    res = _nightly(args)
+    assert res.exit_code == 0, res.output
+    assert json.loads(res.stdout)["report"] == str(report / "trend.html")
+    assert (report / "notes-by-the-physicist.txt").read_text() == "keep me\n"
+    assert not (report / "stale-from-an-older-release.csv").exists()
+    assert (report / "trend.html").stat().st_size > 0
+    assert not list(report.glob(".*.part"))
+    afile = scene["tmp"] / "a-file"
+    afile.write_text("")
+    res = _nightly(["--inbox", str(inbox), "--config", str(scene["cfg"]), "--db", db, "--report", str(afile)])
+    assert res.exit_code == 2 and "'--report'" in res.output and "is a file" in res.output
+    assert res.output.count("\n") == 1

@@ -118,9 +118,13 @@ def nightly(
         )
         page = None
         if report_dir:
+            from scorer.files import OutputFolder
             from scorer.reports.trend import write_trend_report
 
+            # the report is rewritten every night: last night's files (and only those) are replaced
+            folder = OutputFolder(report_dir, replace=True, command="nightly", option="--report")
             page = write_trend_report(store, report_dir, config.alerts, config.programme)
+            folder.finish()
     finally:
         store.close()
     if as_json:

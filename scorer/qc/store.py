@@ -42,6 +42,7 @@ from sqlalchemy import (
     String,
     Text,
     UniqueConstraint,
+    bindparam,
     create_engine,
     delete,
     event,
@@ -303,6 +304,10 @@ def _sqlite_transactions(engine) -> None:
         cur.execute("PRAGMA foreign_keys = ON")
         if engine.url.database not in (None, "", ":memory:"):
             cur.execute("PRAGMA journal_mode = WAL")
+            # WAL with synchronous NORMAL: a killed process (even SIGKILL) or a crashed machine leaves the
+            # database consistent; only a power cut may undo the last commits, whose images are still in
+            # the inbox and are scored again by the next run.  FULL would fsync at every commit.
+            cur.execute("PRAGMA synchronous = NORMAL")
         cur.close()
 
     @event.listens_for(engine, "begin")
@@ -593,17 +598,19 @@ class _Ops:
                     raise LimenError(
                         f"session {row.id}: scored images differ from the claimed ones", _display(self.url)
                     )
-                for im in outcome.images:
-                    s.execute(
-                        update(ImageRow)
-                        .where(ImageRow.id == ids[im["sha256"]])
-                        .values(
-                            registration=dumps(im["registration"]),
-                            blur_sigma_px=float(im["blur_sigma_px"]),
-                            n_correct=int(im["n_correct"]),
-                            n_trials=int(im["n_trials"]),
-                        )
-                    )
+                s.connection().execute(
+                    update(ImageRow.__table__).where(ImageRow.__table__.c.id == bindparam("image_pk")),
+                    [
+                        {
+                            "image_pk": ids[im["sha256"]],
+                            "registration": dumps(im["registration"]),
+                            "blur_sigma_px": float(im["blur_sigma_px"]),
+                            "n_correct": int(im["n_correct"]),
+                            "n_trials": int(im["n_trials"]),
+                        }
+                        for im in outcome.images
+                    ],
+                )
                 verdicts = {round(v["diameter_mm"], 6): v for v in (outcome.verdicts or [])}
                 rows = []
                 for p in outcome.thresholds:
@@ -628,33 +635,23 @@ class _Ops:
                     )
                 s.execute(insert(ThresholdRow), rows)
                 r = outcome.responses
-                s.execute(
-                    insert(ResponseRow),
-                    [
-                        {
-                            "session_id": row.id,
-                            "image_id": ids[img],
-                            "target": str(t),
-                            "diameter_mm": float(d),
-                            "contrast": float(c),
-                            "site": int(k),
-                            "is_signal": bool(sig),
-                            "response": float(x),
-                            "row_px": float(rp),
-                            "col_px": float(cp),
-                        }
-                        for img, t, d, c, k, sig, x, rp, cp in zip(
-                            r["image"],
-                            r["target"],
-                            r["diameter_mm"],
-                            r["contrast"],
-                            r["site"],
-                            r["is_signal"],
-                            r["response"],
-                            r["row_px"],
-                            r["col_px"],
-                        )
-                    ],
+                image_ids = [ids[h] for h in r["image"].tolist()]
+                n = len(image_ids)
+                self._insert_many(
+                    s,
+                    ResponseRow.__table__,
+                    {
+                        "session_id": [row.id] * n,
+                        "image_id": image_ids,
+                        "target": [str(t) for t in r["target"].tolist()],
+                        "diameter_mm": r["diameter_mm"].astype(float).tolist(),
+                        "contrast": r["contrast"].astype(float).tolist(),
+                        "site": r["site"].astype(int).tolist(),
+                        "is_signal": r["is_signal"].astype(bool).tolist(),
+                        "response": r["response"].astype(float).tolist(),
+                        "row_px": r["row_px"].astype(float).tolist(),
+                        "col_px": r["col_px"].astype(float).tolist(),
+                    },
                 )
                 fault_point("mid-write")
                 s.flush()
@@ -993,6 +990,21 @@ class Store(_Ops):
         else:  # pragma: no cover - other databases: plain insert
             return insert(table)
         return dialect_insert(table).on_conflict_do_nothing()
+
+    def _insert_many(self, s: Session, table, columns: dict[str, list]) -> None:
+        """Insert many rows given as equal-length column lists through the driver's own executemany.
+
+        The ORM and Core paths build a parameter dictionary per row, which for the ~350 responses of
+        each image cost more than the scoring budget allows (issue 13: database time under 5 % of
+        scoring time); one prepared statement with plain tuples does the same insert in a fraction.
+        """
+        names = list(columns)
+        rows = list(zip(*(columns[c] for c in names)))
+        if not rows:
+            return
+        mark = "?" if self.engine.dialect.paramstyle == "qmark" else "%s"
+        sql = f"INSERT INTO {table.name} ({', '.join(names)}) VALUES ({', '.join([mark] * len(names))})"
+        s.connection().exec_driver_sql(sql, rows)
 
     def close(self) -> None:
         self.engine.dispose()
