@@ -101,9 +101,13 @@ def run_nightly(
     result = NightlyResult(db=_display(store.url))
     tm = _Timer()
     try:
-        _scan(inbox, qdir, config, store, settle_s, result, tm, progress)
-        fault_point("scanned")
-        _score(config, store, qdir, workers, dask, lease_s, result, tm, progress)
+        # the runner starts first: a process pool's workers start and import while the inbox is scanned, and
+        # an unreachable Dask scheduler is reported before any work is done
+        with make_runner(workers, dask) as runner:
+            result.runner = runner.name
+            _scan(inbox, qdir, config, store, settle_s, result, tm, progress)
+            fault_point("scanned")
+            _score(config, store, qdir, runner, lease_s, result, tm, progress)
         t = time.perf_counter()
         for key, imgs in sorted(store.free_groups().items()):
             det = config.by_name(imgs[0]["detector"])
@@ -253,75 +257,71 @@ def _job(config, sid, token, imgs) -> SessionJob:
     )
 
 
-def _score(config, store, qdir, workers, dask, lease_s, result, tm, progress):
+def _score(config, store, qdir, runner, lease_s, result, tm, progress):
     from tqdm import tqdm
 
     claims: dict[int, str] = {}
     skip: set[str] = set()  # groups that failed as a whole in this run: not retried until the next run
-    with make_runner(workers, dask) as runner:
-        result.runner = runner.name
-        for _round in range(1000):  # each round re-forms sessions after a quarantined image
-            jobs = _jobs(config, store, lease_s, tm, claims, skip)
-            if not jobs:
-                break
-            fault_point("claimed")
-            retry = False
-            renewed = time.monotonic()
-            bar = tqdm(
-                total=sum(len(j.paths) for j in jobs),
-                desc="scoring sessions",
-                unit="image",
-                file=sys.stderr,
-                disable=not progress,
-            )
-            for job, out in runner.run(jobs):
-                bar.update(len(job.paths))
-                tm.add("scoring_s", out.scoring_s)
-                fault_point("scored")
-                t = time.perf_counter()
-                det = config.by_name(job.detector)
-                if out.ok:
-                    alerts = store.write_session(out, det, config.alerts)
-                    claims.pop(job.session_id, None)
-                    if alerts is not None:
-                        result.scored_images += len(job.paths)
-                        verdict = out.overall_verdict
-                        result.sessions_scored.append(
-                            {
-                                "id": job.session_id,
-                                "detector": job.detector,
-                                "session_date": job.session_date,
-                                "images": len(job.paths),
-                                "overall_verdict": verdict,
-                                "alerts": len(alerts),
-                            }
-                        )
-                        result.alerts += [a.to_dict() for a in alerts]
-                    fault_point("committed")
-                elif out.failed_sha:
-                    if store.release(job.session_id, job.token, out.failed_sha, out.failed_path, out.reason):
-                        moved = quarantine_file(out.failed_path, qdir, out.reason)
-                        if moved is not None:
-                            store.record_quarantine(out.failed_sha, out.failed_path, moved, out.reason)
-                            result.quarantined.append(
-                                {"path": out.failed_path, "reason": out.reason, "moved_to": str(moved)}
-                            )
-                        retry = True
-                    claims.pop(job.session_id, None)
-                else:
-                    store.release(job.session_id, job.token)
-                    claims.pop(job.session_id, None)
-                    skip.add(job.group_key)
-                    result.errors.append(
-                        f"session of {job.detector} ({len(job.paths)} images) not scored: {out.reason}"
+    for _round in range(1000):  # each round re-forms sessions after a quarantined image
+        jobs = _jobs(config, store, lease_s, tm, claims, skip)
+        if not jobs:
+            break
+        fault_point("claimed")
+        retry = False
+        renewed = time.monotonic()
+        bar = tqdm(
+            total=sum(len(j.paths) for j in jobs),
+            desc="scoring sessions",
+            unit="image",
+            file=sys.stderr,
+            disable=not progress,
+        )
+        for job, out in runner.run(jobs):
+            bar.update(len(job.paths))
+            tm.add("scoring_s", out.scoring_s)
+            fault_point("scored")
+            t = time.perf_counter()
+            det = config.by_name(job.detector)
+            if out.ok:
+                alerts = store.write_session(out, det, config.alerts)
+                claims.pop(job.session_id, None)
+                if alerts is not None:
+                    result.scored_images += len(job.paths)
+                    verdict = out.overall_verdict
+                    result.sessions_scored.append(
+                        {
+                            "id": job.session_id,
+                            "detector": job.detector,
+                            "session_date": job.session_date,
+                            "images": len(job.paths),
+                            "overall_verdict": verdict,
+                            "alerts": len(alerts),
+                        }
                     )
-                if time.monotonic() - renewed > lease_s / 3:
-                    store.renew(claims, lease_s)
-                    renewed = time.monotonic()
-                tm.add("db_s", time.perf_counter() - t)
-            bar.close()
-            if not retry:
-                break
+                    result.alerts += [a.to_dict() for a in alerts]
+                fault_point("committed")
+            elif out.failed_sha:
+                if store.release(job.session_id, job.token, out.failed_sha, out.failed_path, out.reason):
+                    moved = quarantine_file(out.failed_path, qdir, out.reason)
+                    if moved is not None:
+                        store.record_quarantine(out.failed_sha, out.failed_path, moved, out.reason)
+                        result.quarantined.append(
+                            {"path": out.failed_path, "reason": out.reason, "moved_to": str(moved)}
+                        )
+                    retry = True
+                claims.pop(job.session_id, None)
+            else:
+                store.release(job.session_id, job.token)
+                claims.pop(job.session_id, None)
+                skip.add(job.group_key)
+                result.errors.append(f"session of {job.detector} ({len(job.paths)} images) not scored: {out.reason}")
+            if time.monotonic() - renewed > lease_s / 3:
+                store.renew(claims, lease_s)
+                renewed = time.monotonic()
+            tm.add("db_s", time.perf_counter() - t)
+        bar.close()
+        if not retry:
+            break
 
 
 def _email(config, store, result):

@@ -170,9 +170,9 @@ _THREAD_ENV = ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS")
 
 
 def _watch_parent(parent_pid: int, every_s: float = 0.5) -> None:
-    """Pool worker set-up: one thread for OpenCV (N workers use N cores, not N × cores), and exit as
-    soon as the coordinating process is gone (killed, even by SIGKILL) instead of waiting for work
-    forever with its files open."""
+    """Pool worker set-up: one thread for OpenCV (N workers use N cores, not N × cores), exit as soon
+    as the coordinating process is gone (killed, even by SIGKILL) instead of waiting for work forever
+    with its files open, and load the scoring code before the first job arrives."""
     import threading
 
     try:
@@ -189,6 +189,12 @@ def _watch_parent(parent_pid: int, every_s: float = 0.5) -> None:
             time.sleep(every_s)
 
     threading.Thread(target=watch, daemon=True, name="limen-parent-watch").start()
+    import scorer.observer.scoring  # noqa: F401  (numpy, scipy, OpenCV, scikit-image load now, not in the first job)
+
+
+def _started() -> int:
+    """A no-op job: submitting one per worker starts the workers (and their imports) at once."""
+    return os.getpid()
 
 
 class PoolRunner:
@@ -210,6 +216,9 @@ class PoolRunner:
             initializer=_watch_parent,
             initargs=(os.getpid(),),
         )
+        # workers start on demand: one no-op each starts them all now, so they import while the inbox is scanned
+        for _ in range(self.workers):
+            self.pool.submit(_started)
         return self
 
     def __exit__(self, *exc):
