@@ -350,3 +350,29 @@ def test_implausible_mtf_is_flagged():
     img += np.random.default_rng(0).normal(0, 3, img.shape)
     res = measure_mtf(img, (0.1, 0.1))
     assert any("implausible MTF" in w for w in res.warnings)
+
+
+def test_steep_edge_refused_and_measurement_warnings_reach_stderr(panels, tmp_path):
+    # IEC 62220-1 (from memory): the edge for the presampling MTF sits about 1.5°–3° off the pixel rows or
+    # columns; a 45° edge gives an MTF along the diagonal, which must not be reported as the row/column MTF
+    p = panels["direct"]
+    steep = write_simulated(
+        simulate(p["model"], "edge", 100.0, seed=30, small=True, edge_angle_deg=45.0), tmp_path, "e45", T0
+    )
+    res = run("detector", "--edge", steep, "--conversion", p["conv"])
+    assert res.exit_code == 2, res.output
+    lines = [ln for ln in res.stderr.splitlines() if ln.startswith("error:")]
+    assert len(lines) == 1 and "more than 10°" in lines[0] and "e45" in lines[0], res.stderr
+    # a moderately tilted edge (6°) is measured; one below 1° is measured with a warning printed on stderr,
+    # not only kept in the JSON
+    ok = write_simulated(
+        simulate(p["model"], "edge", 100.0, seed=31, small=True, edge_angle_deg=6.0), tmp_path, "e6", T0
+    )
+    res = run("detector", "--edge", ok, "--conversion", p["conv"])
+    assert res.exit_code == 0, res.output
+    flat = write_simulated(
+        simulate(p["model"], "edge", 100.0, seed=32, small=True, edge_angle_deg=0.7), tmp_path, "e07", T0
+    )
+    res = run("detector", "--edge", flat, "--conversion", p["conv"])
+    assert res.exit_code == 0, res.output
+    assert "warning:" in res.stderr and "below 1°" in res.stderr

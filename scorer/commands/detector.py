@@ -331,6 +331,8 @@ def detector(
                 q_per_mm2_ugy=q_per_mm2_ugy,
                 path=noise_csv,
             )
+        for w in metrics.warnings:  # the measurement's own (edge angle, NNPS, DQE): on stderr, not only in JSON
+            click.echo(f"warning: {' '.join(str(w).split())}", err=True)
         metrics.warnings = notes + [w for im in flats + edges for w in im.metadata.warnings] + metrics.warnings
         if metrics.dqe is None and metrics.mtf is not None and metrics.nnps is not None:
             click.echo("note: DQE not computed: give --kerma-ugy and --q (or --beam)", err=True)
