@@ -36,6 +36,7 @@ import numpy as np
 
 from scorer.images.conversion import ConversionFunction
 from scorer.errors import LimenError
+from scorer.files import atomic_write_bytes
 from scorer.resources import check_limit
 from scorer.images.image import Image, ImageMetadata
 
@@ -1074,12 +1075,13 @@ def write_dicom(
         except Exception as exc:
             raise LimenError(f"cannot encode pixel data as {ts_uid.name} ({_exc_text(exc)})", path) from None
 
+    buf = io.BytesIO()
+    ds.save_as(buf, enforce_file_format=True)
     try:
         path.parent.mkdir(parents=True, exist_ok=True)
-        ds.save_as(path, enforce_file_format=True)
     except OSError as exc:
         raise LimenError(f"cannot write DICOM file ({exc.strerror or exc})", path) from None
-    return path
+    return atomic_write_bytes(path, buf.getvalue())  # complete or absent, never a truncated file that parses
 
 
 def _check_uint16(pixels, path: Path) -> np.ndarray:
@@ -1153,10 +1155,11 @@ def write_image(
 
 
 def _write_bytes(path: Path, write) -> Path:
+    """Encode in memory with ``write(file_object)``, then write the file atomically (complete or absent)."""
+    buf = io.BytesIO()
+    write(buf)
     try:
         path.parent.mkdir(parents=True, exist_ok=True)
-        with path.open("wb") as fh:
-            write(fh)
     except OSError as exc:
         raise LimenError(f"cannot write file ({exc.strerror or exc})", path) from None
-    return path
+    return atomic_write_bytes(path, buf.getvalue())
