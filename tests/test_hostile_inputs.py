@@ -513,6 +513,15 @@ CASES = [
         not_says=("nan – nan", "nan–nan", "needs at least 2 readers"),
     ),
     Case("csv-directory", lambda w: ["analyse", w.sim], 2, ("directory",), "sim"),
+    # the largest --n-boot on 4 readers × 2 detectors × 10 contrasts: 100000 × 1320 likelihood-grid cells per
+    # resample, about 7.5 GB at the 57 bytes per cell measured (tests/test_stats.py); refused before any fit
+    Case(
+        "analyse-n-boot-over-budget",
+        lambda w: ["analyse", w.reads, "--n-boot", "100000"],
+        2,
+        ("132000000", "LIMEN_MAX_BOOTSTRAP_CELLS"),
+        "--n-boot",
+    ),
     Case(
         "analyse-out-under-a-file",
         lambda w: ["analyse", w.reads, "--n-boot", "10", "--out", w.reads / "sub"],
