@@ -24,6 +24,7 @@ import sys
 import time
 from pathlib import Path
 
+from scorer.files import atomic_write_text
 from scorer.reports import CAUTION, html_page
 
 DOSE_UGY = 100.0
@@ -222,12 +223,12 @@ def run(out: Path) -> Path:
     from scorer.invocation import set_invocation
 
     set_invocation(["--out", str(out)], prog="python -m scorer.demo")  # the index is the demo's, not the last step's
-    index.write_text(
+    atomic_write_text(
+        index,
         html_page(
             "Limen demo — two mammography panels compared",
             [("Scenario", scenario), ("Verdicts", _verdict_summary(out)), ("Reports", body)],
         ),
-        encoding="utf-8",
     )
     print(f"\nDemo finished in {time.perf_counter() - t0:.0f} s. Open {index.resolve()}")
     print(CAUTION)
@@ -280,7 +281,7 @@ def _simulate_series(d: Path, panel: str, seed: int) -> str:
         )
         rows += [f"{p.resolve()},{k:g}" for p in sorted((d / "dose-flats" / f"{k:g}uGy").glob("*.dcm"))]
     path = d / "dose-flats" / "flats.csv"
-    path.write_text("\n".join(rows) + "\n", encoding="utf-8")
+    atomic_write_text(path, "\n".join(rows) + "\n")
     return str(path)
 
 
@@ -418,9 +419,9 @@ def _reader_study(out: Path) -> list[tuple[str, str]]:
     model = pd.concat(
         [pd.read_csv(out / p / "score-npwe" / "trials.csv") for p in ("direct", "indirect")], ignore_index=True
     )
-    human.to_csv(study / "reader_trials.csv", index=False)
-    model.to_csv(study / "model_trials.csv", index=False)
-    readers.to_csv(study / "reader_parameters.csv", index=False)
+    atomic_write_text(study / "reader_trials.csv", human.to_csv(index=False))
+    atomic_write_text(study / "model_trials.csv", model.to_csv(index=False))
+    atomic_write_text(study / "reader_parameters.csv", readers.to_csv(index=False))
     print(
         f"\n6 invented readers (documented observer model, scorer/study/reader_model.py) read the demo images: "
         f"{study / 'reader_trials.csv'}"

@@ -11,8 +11,12 @@ LIMEN_MAX_IMAGE_MEGAPIXELS     80         rows × columns of one image, read fro
                                           80 Mpx of float64 pixels is 640 MB)
 LIMEN_MAX_LAYOUT_SITES         5000       candidate sites (discs and their alternatives) of a layout;
                                           the bundled demo plate has 350
-LIMEN_MAX_BOOTSTRAP_CELLS      20000000   bootstrap resamples × images (the resampling weights held
-                                          at once: 160 MB of 64-bit counts)
+LIMEN_MAX_BOOTSTRAP_CELLS      20000000   bootstrap cells held at once: resamples × images for
+                                          ``limen score`` (the resampling weights: 160 MB of 64-bit
+                                          counts); resamples × the largest per-resample block for
+                                          ``limen analyse`` (its likelihood grids; about 57 bytes per
+                                          cell measured, 1.1 GB at the limit; see
+                                          scorer.study.stats.bootstrap_block)
 =============================  =========  ==========================================================
 """
 
@@ -26,7 +30,7 @@ from scorer.errors import LimenError
 LIMITS: dict[str, tuple[float, str]] = {
     "LIMEN_MAX_IMAGE_MEGAPIXELS": (80.0, "megapixels"),
     "LIMEN_MAX_LAYOUT_SITES": (5000.0, "sites"),
-    "LIMEN_MAX_BOOTSTRAP_CELLS": (2.0e7, "resamples × images"),
+    "LIMEN_MAX_BOOTSTRAP_CELLS": (2.0e7, "bootstrap cells"),
 }
 
 

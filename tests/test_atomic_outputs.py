@@ -170,3 +170,128 @@ def test_other_commands_refuse_a_non_empty_out(command, tmp_path, images):
     res = CliRunner().invoke(main, [str(a) for a in args] + ["--out", str(out)])
     assert res.exit_code == 2, res.output
     assert "--replace" in res.stderr and len(res.stderr.strip().splitlines()) == 1
+
+
+def _simulate_args(out, *extra):
+    return ["simulate", "--small", "--layout", MINI, "--count", "2", "--seed", "9", "--out", out, *extra]
+
+
+def _check_simulated(folder: Path) -> dict[str, np.ndarray]:
+    """Every file ``limen simulate`` left parses completely: each DICOM decodes to its declared size (pydicom), each
+    sidecar is JSON whose SHA-256 is that of its image when both are there, the conversion TOML reads back.
+    Returns the pixels of each image by name."""
+    import hashlib
+    import tomllib
+
+    import pydicom
+
+    from scorer.images import load_conversion
+
+    pixels = {}
+    for p in sorted(folder.iterdir()):
+        if p.name.endswith(".part"):
+            continue  # the temporary of the killed write: never a result name
+        if p.suffix == ".dcm":
+            ds = pydicom.dcmread(p)
+            arr = ds.pixel_array
+            assert arr.shape == (int(ds.Rows), int(ds.Columns)), p.name
+            pixels[p.name] = arr
+        elif p.suffix == ".json":
+            side = json.loads(p.read_bytes())
+            image = folder / side["image"]
+            if image.exists():
+                assert hashlib.sha256(image.read_bytes()).hexdigest() == side["sha256"], p.name
+        elif p.suffix == ".toml":
+            tomllib.loads(p.read_text(encoding="utf-8"))
+            load_conversion(p)
+        else:
+            raise AssertionError(f"unexpected file {p.name}")
+    return pixels
+
+
+def test_simulate_killed_at_every_file_leaves_only_complete_files(tmp_path):
+    """``limen simulate`` killed half-way through its n-th file (two DICOMs, their sidecars, the conversion
+    function: 5 files) leaves the n − 1 files before it complete and the n-th absent; a re-run with --overwrite
+    (the clash message asks for it) writes the same images and leaves no temporary behind."""
+    ref = tmp_path / "ref"
+    ok = _limen(_simulate_args(ref))
+    assert ok.returncode == 0, ok.stderr
+    reference = _check_simulated(ref)
+    n_files = len(list(ref.iterdir()))
+    assert n_files == 5 and len(reference) == 2
+    killed_at = []
+    for n in range(1, n_files + 2):
+        out = tmp_path / f"killed-{n}"
+        res = _limen(_simulate_args(out), {"LIMEN_FAULT_INJECT": f"write:{n}"})
+        if res.returncode == 0:
+            break
+        assert res.returncode == -signal.SIGKILL, res.stderr
+        killed_at.append(n)
+        _check_simulated(out)
+        assert len([p for p in out.iterdir() if not p.name.endswith(".part")]) == n - 1
+        assert len(list(out.glob(".*.part"))) == 1  # the killed file exists only under its temporary name
+        again = _limen(_simulate_args(out, "--overwrite"))
+        assert again.returncode == 0, again.stderr
+        got = _check_simulated(out)
+        assert sorted(got) == sorted(reference)
+        for name, arr in reference.items():
+            np.testing.assert_array_equal(got[name], arr)  # same seed, same pixels
+        assert not list(out.glob(".*.part"))
+    assert killed_at == list(range(1, n_files + 1))
+
+
+class _Killed(BaseException):
+    """Stands in for SIGKILL at the write fault point, in-process."""
+
+
+def _writers(tmp_path):
+    """(name, call, the file that must be complete or absent, the fault-point pass to die at)."""
+    import datetime as dt
+
+    from scorer.detector import detector_model, simulate, write_simulated
+    from scorer.images import ConversionFunction, save_conversion, write_dicom, write_image
+    from scorer.qc.simulated import demo_nights
+    from scorer.study.reader_model import write_demo_study
+
+    px = np.arange(64 * 48, dtype=np.uint16).reshape(64, 48)
+    sim = simulate(detector_model("direct"), "flat", 50.0, seed=1, small=True)
+    t0 = dt.datetime(2026, 11, 30, 8, 0)
+    return [
+        ("write_dicom", lambda: write_dicom(tmp_path / "a.dcm", px, (0.1, 0.1)), tmp_path / "a.dcm", 1),
+        ("write_image npy", lambda: write_image(tmp_path / "a.npy", px), tmp_path / "a.npy", 1),
+        ("write_image tiff", lambda: write_image(tmp_path / "a.tiff", px), tmp_path / "a.tiff", 1),
+        ("write_image png", lambda: write_image(tmp_path / "a.png", px), tmp_path / "a.png", 1),
+        (
+            "save_conversion",
+            lambda: save_conversion(ConversionFunction("linear", 60.0, 20.0), tmp_path / "c.toml"),
+            tmp_path / "c.toml",
+            1,
+        ),
+        ("simulator sidecar", lambda: write_simulated(sim, tmp_path, "s", t0), tmp_path / "s.json", 2),
+        ("reader study CSV", lambda: write_demo_study(tmp_path / "study"), tmp_path / "study" / "truth.csv", 3),
+        ("nightly demo config", lambda: demo_nights(tmp_path / "qc"), tmp_path / "qc" / "nightly.toml", 3),
+    ]
+
+
+@pytest.mark.parametrize("index", range(8))
+def test_writers_write_through_the_atomic_writer(index, tmp_path, monkeypatch):
+    """Each writer outside the report folders passes the write fault point of ``atomic_write_bytes``: stopped there,
+    its file is absent (not half written) and no temporary is left; unstopped, it is written."""
+    import scorer.files
+
+    name, call, target, die_at = _writers(tmp_path)[index]
+    passes = []
+
+    def fault(point):
+        passes.append(point)
+        if point == "write" and len(passes) == die_at:
+            raise _Killed(name)
+
+    monkeypatch.setattr(scorer.files, "fault_point", fault)
+    with pytest.raises(_Killed):
+        call()
+    assert not target.exists(), name
+    assert not list(tmp_path.rglob(".*.part")), name
+    monkeypatch.setattr(scorer.files, "fault_point", lambda point: None)
+    call()
+    assert target.is_file() and target.stat().st_size > 0, name

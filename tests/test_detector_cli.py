@@ -125,6 +125,33 @@ def test_fit_conversion_from_csv(panels):
     assert c["offset"] == pytest.approx(p["model"].offset_adu, abs=5)
 
 
+def test_fit_conversion_of_a_falling_panel(panels, tmp_path):
+    # DICOM PS3.3 C.8.11.3: sign -1 = higher stored values mean less X-ray beam intensity.  Scoring refuses such
+    # images without a conversion function and names --fit-conversion as the way out, so the fit must read them:
+    # stored as 2^BitsStored − 1 − PV, the fitted linear response is the original one mirrored (gain −g,
+    # offset 2^BitsStored − 1 − o), and the edge linearised with it gives the original panel's MTF.
+    import pydicom
+
+    p = panels["indirect"]
+    for f in p["dir"].glob("*.dcm"):
+        ds = pydicom.dcmread(f)
+        top = (1 << int(ds.BitsStored)) - 1
+        ds.PixelData = (top - ds.pixel_array.astype(np.int64)).astype("<u2").tobytes()
+        ds.PixelIntensityRelationshipSign = -1
+        ds.save_as(tmp_path / f.name, enforce_file_format=True)
+    csv = tmp_path / "kermas.csv"
+    csv.write_text(p["csv"].read_text(encoding="utf-8"), encoding="utf-8")
+    refused = run("detector", "--flat", tmp_path / p["flats"][0].name, "--json")
+    assert refused.exit_code == 2 and "(0028,1041) is -1" in refused.output
+    fell = run("detector", "--fit-conversion", csv, "--edge", tmp_path / p["ev"].name, "--json")
+    assert fell.exit_code == 0, fell.output
+    rose = run("detector", "--fit-conversion", p["csv"], "--edge", p["ev"], "--json")
+    a, b = json.loads(rose.stdout), json.loads(fell.stdout)
+    assert b["conversion"]["gain"] == pytest.approx(-a["conversion"]["gain"], rel=1e-9)
+    assert b["conversion"]["offset"] == pytest.approx(top - a["conversion"]["offset"], rel=1e-9)
+    np.testing.assert_allclose(b["mtf"]["value"], a["mtf"]["value"], rtol=1e-6, atol=1e-9)
+
+
 def test_out_writes_json_csv_html(measured):
     d = measured["direct"]
     data = json.loads((d / "detector.json").read_text())

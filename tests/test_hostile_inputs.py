@@ -328,6 +328,37 @@ CASES = [
         ("colour",),
     ),
     Case("dicom-compressed-no-decoder", lambda w: _score(_dicom(w, "mpeg.dcm", _mpeg2_syntax)), 2, ("decoder",)),
+    # DICOM PS3.3 C.8.11.3: Pixel Intensity Relationship Sign (0028,1041) -1 = higher stored values mean less X-ray
+    # beam intensity; scoring needs values rising with kerma, so only a conversion function of this detector may
+    # linearise them (one with negative gain); a rising conversion function contradicts the file
+    Case("dicom-sign-minus-one", lambda w: _score(_inverted(w)[0]), 2, ("(0028,1041) is -1", "--conversion")),
+    Case(
+        "dicom-sign-minus-one-with-its-conversion",
+        lambda w: _score(_inverted(w)[0], extra=["--conversion", _inverted(w)[1]]),
+        0,
+        (),
+        not_says=("(0028,1041)",),
+    ),
+    Case(
+        "dicom-sign-minus-one-with-rising-conversion",
+        lambda w: _score(_inverted(w)[0], extra=["--conversion", w.conv]),
+        2,
+        ("conversion function", "(0028,1041) is -1"),
+    ),
+    # DICOM PS3.3 C.7.6.3.1.2: MONOCHROME1 is for display only; without the sign the relation to the beam is unknown
+    Case(
+        "dicom-monochrome1-without-sign",
+        lambda w: _score(_dicom(w, "mono1.dcm", _monochrome1_without_sign)),
+        2,
+        ("MONOCHROME1", "--conversion"),
+    ),
+    # DICOM PS3.3 C.8.11.3: Pixel Intensity Relationship (0028,1040) LOG is not proportional to beam intensity
+    Case(
+        "dicom-log-relationship",
+        lambda w: _score(_dicom(w, "log.dcm", lambda ds: setattr(ds, "PixelIntensityRelationship", "LOG"))),
+        2,
+        ("(0028,1040) is LOG", "--conversion"),
+    ),
     Case(
         "mixed-image-sizes",
         lambda w: _score(
@@ -482,6 +513,15 @@ CASES = [
         not_says=("nan – nan", "nan–nan", "needs at least 2 readers"),
     ),
     Case("csv-directory", lambda w: ["analyse", w.sim], 2, ("directory",), "sim"),
+    # the largest --n-boot on 4 readers × 2 detectors × 10 contrasts: 100000 × 1320 likelihood-grid cells per
+    # resample, about 7.5 GB at the 57 bytes per cell measured (tests/test_stats.py); refused before any fit
+    Case(
+        "analyse-n-boot-over-budget",
+        lambda w: ["analyse", w.reads, "--n-boot", "100000"],
+        2,
+        ("132000000", "LIMEN_MAX_BOOTSTRAP_CELLS"),
+        "--n-boot",
+    ),
     Case(
         "analyse-out-under-a-file",
         lambda w: ["analyse", w.reads, "--n-boot", "10", "--out", w.reads / "sub"],
@@ -550,6 +590,46 @@ CASES = [
         "--rotate",
     ),
 ]
+
+
+def _monochrome1_without_sign(ds):
+    ds.PhotometricInterpretation = "MONOCHROME1"
+    del ds.PixelIntensityRelationshipSign
+
+
+def _inverted(w):
+    """The first phantom image stored falling, PV' = 2^BitsStored − 1 − PV with sign -1 and MONOCHROME1, and the
+    conversion function that undoes it (offset' = 2^BitsStored − 1 − offset, gain' = −gain): the same kerma."""
+    from scorer.images import ConversionFunction, load_conversion, save_conversion
+
+    ds = pydicom.dcmread(w.ph[0])
+    top = (1 << int(ds.BitsStored)) - 1
+    image, conv_path = w.bad / "inverted.dcm", w.bad / "inverted-conversion.toml"
+    if not image.exists():
+        ds.PixelData = (top - ds.pixel_array.astype(np.int64)).astype("<u2").tobytes()
+        ds.PixelIntensityRelationshipSign = -1
+        ds.PhotometricInterpretation = "MONOCHROME1"
+        ds.save_as(image, enforce_file_format=False)
+        conv = load_conversion(w.conv)
+        save_conversion(ConversionFunction("linear", top - conv.offset, -conv.gain, source="inverted"), conv_path)
+    return image, conv_path
+
+
+def test_inverted_dicom_with_its_conversion_scores_as_the_original(W):
+    # stored falling (PS3.3 C.8.11.3, sign -1) and linearised by the matching falling conversion function, the image
+    # is the same air kerma as the original, so every site's response (a contrast estimate) is the same
+    from scorer.images import load_conversion
+    from scorer.observer import score_images
+    from scorer.phantom import load_layout
+
+    layout = load_layout(MINI)
+    image, conv_path = _inverted(W)
+    kw = dict(methods=["dprime"], n_boot=20, seed=1)
+    a = score_images([W.ph[0]], layout, conversion=load_conversion(W.conv), **kw)
+    b = score_images([image], layout, conversion=load_conversion(conv_path), **kw)
+    np.testing.assert_allclose(b.responses["response"], a.responses["response"], rtol=1e-9, atol=1e-12)
+    assert b.images[0].metadata["intensity_direction"] == "falling"
+    assert a.images[0].metadata["intensity_direction"] == "rising"
 
 
 def _mpeg2_syntax(ds):

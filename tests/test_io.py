@@ -635,3 +635,161 @@ def test_decoder_failure_at_decode_time_names_the_syntax(tmp_path, monkeypatch):
     monkeypatch.setattr(JPEG2000LosslessDecoder, "_available", {})
     msg = _raises(p, "cannot decode pixel data in transfer syntax")
     assert "JPEG 2000 Image Compression (Lossless Only)" in msg and "1.2.840.10008.1.2.4.90" in msg
+
+
+# ----------------------------------------------------------------------------- pixel intensity relationship
+# DICOM PS3.3 C.8.11.3 (DX Image module): Pixel Intensity Relationship (0028,1040) is LIN (approximately
+# proportional to X-ray beam intensity), LOG or OTHER; Pixel Intensity Relationship Sign (0028,1041) is +1 (lower
+# stored values mean less beam intensity) or -1 (higher stored values mean less intensity).  PS3.3 C.7.6.3.1.2:
+# Photometric Interpretation MONOCHROME1 / MONOCHROME2 only says whether the lowest value is displayed white or
+# black.  Scoring needs values rising in proportion to air kerma (contrast = fractional drop, DEVELOPERS.md).
+
+
+def _mg_tags(tmp_path, name="ok.dcm", tags=None) -> Path:
+    return write_dicom(tmp_path / name, _pixels(), (0.1, 0.1), tags={"Modality": "MG", **(tags or {})})
+
+
+def _two_level_kerma(shape=(48, 64), background_ugy=100.0, contrast=0.02):
+    """Air kerma: a background and a square whose kerma is lower by the fractional ``contrast``."""
+    k = np.full(shape, background_ugy)
+    k[16:32, 24:40] *= 1.0 - contrast
+    return k
+
+
+def _contrast(pixels) -> float:
+    return 1.0 - float(pixels[16:32, 24:40].mean()) / float(pixels[:8, :].mean())
+
+
+def test_default_dicom_records_lin_rising(tmp_path):
+    # write_dicom writes LIN / +1 / MONOCHROME2 (PS3.3 C.8.11.3, C.7.6.3.1.2); load_image keeps them
+    md = load_image(_mg(tmp_path)).metadata
+    assert (md.photometric_interpretation, md.intensity_relationship, md.intensity_sign) == ("MONOCHROME2", "LIN", 1)
+    assert md.intensity_direction == "rising"
+
+
+@pytest.mark.parametrize("photometric", ["MONOCHROME1", "MONOCHROME2"])
+def test_sign_minus_one_is_refused_without_conversion(tmp_path, photometric):
+    # PS3.3 C.8.11.3: sign -1 = higher stored values correspond to less X-ray beam intensity
+    p = _mg_tags(tmp_path, tags={"PixelIntensityRelationshipSign": -1, "PhotometricInterpretation": photometric})
+    msg = _raises(p, r"Pixel Intensity Relationship Sign \(0028,1041\) is -1")
+    assert "fall" in msg and "--conversion" in msg
+
+
+def test_falling_image_with_its_conversion_gives_kerma_and_contrast(tmp_path):
+    # A falling linear response PV = 16000 − 20·K (PS3.3 C.8.11.3 LIN, sign -1) is exactly what a conversion
+    # function with negative gain describes (K = (PV − offset)/gain); linearised, the square's contrast is the
+    # fractional kerma drop it was built with.  The rising twin (PV = 60 + 20·K, sign +1) gives the same kerma.
+    kerma = _two_level_kerma()
+    rising_conv = ConversionFunction("linear", offset=60.0, gain=20.0)
+    falling_conv = ConversionFunction("linear", offset=16000.0, gain=-20.0)
+    rising = write_dicom(
+        tmp_path / "up.dcm", np.rint(rising_conv.to_pixel_value(kerma)).astype(np.uint16), (0.1, 0.1), tags=TAGS
+    )
+    falling = write_dicom(
+        tmp_path / "down.dcm",
+        np.rint(falling_conv.to_pixel_value(kerma)).astype(np.uint16),
+        (0.1, 0.1),
+        tags={**TAGS, "PixelIntensityRelationshipSign": -1, "PhotometricInterpretation": "MONOCHROME1"},
+    )
+    up = load_image(rising, conversion=rising_conv)
+    down = load_image(falling, conversion=falling_conv)
+    assert down.metadata.intensity_direction == "falling" and down.metadata.intensity_sign == -1
+    # integer stored values: the kerma is off by at most half a step, 0.5 / |gain| µGy
+    np.testing.assert_allclose(down.pixels, kerma, rtol=0, atol=0.5 / 20.0 + 1e-12)
+    np.testing.assert_allclose(down.pixels, up.pixels, rtol=0, atol=1e-12)
+    assert _contrast(down.pixels) == pytest.approx(0.02, abs=1e-4)
+    # the stored values themselves rise where the kerma drops: read as if rising, the "contrast" is negative
+    raw = load_image(falling, for_conversion_fit=True).pixels
+    assert _contrast(raw) < 0
+
+
+def test_conversion_running_against_the_sign_is_refused(tmp_path):
+    # PS3.3 C.8.11.3: sign -1 falls with intensity; a conversion with gain > 0 makes kerma rise with the value
+    p = _mg_tags(tmp_path, tags={"PixelIntensityRelationshipSign": -1})
+    msg = _raises(p, "conversion function", conversion=ConversionFunction("linear", 60.0, 20.0))
+    assert "(0028,1041) is -1" in msg and "rise" in msg
+    # and a falling conversion on a +1 (rising) file
+    q = _mg(tmp_path, name="up.dcm")
+    msg = _raises(q, "conversion function", conversion=ConversionFunction("logarithmic", 9000.0, -500.0))
+    assert "(0028,1041) is +1" in msg
+
+
+@pytest.mark.parametrize(
+    "slope, sign, accepted",
+    [(-1.0, 1, False), (-1.0, -1, True), (2.0, -1, False)],
+)
+def test_rescale_slope_sign_enters_the_direction(tmp_path, slope, sign, accepted):
+    # PS3.3 C.11.1.1.2: output = Rescale Slope × stored value + Rescale Intercept, so a negative slope turns
+    # values rising with intensity (sign +1, which describes the stored values) into falling ones and back
+    tags = {"RescaleSlope": slope, "RescaleIntercept": 20000.0, "PixelIntensityRelationshipSign": sign}
+    p = _mg_tags(tmp_path, tags=tags)
+    if accepted:
+        img = load_image(p)
+        assert img.metadata.intensity_direction == "rising"
+        np.testing.assert_array_equal(img.pixels, slope * _pixels().astype(np.float64) + 20000.0)
+    else:
+        msg = _raises(p, r"\(0028,1041\)")
+        assert "fall" in msg
+        if slope < 0:
+            assert "Rescale Slope (0028,1053) is -1" in msg
+
+
+def test_monochrome1_with_sign_plus_one_is_not_inverted(tmp_path):
+    # PS3.3 C.7.6.3.1.2: MONOCHROME1 is a display instruction; with sign +1 the values rise with intensity and are
+    # read as stored
+    p = _mg_tags(tmp_path, tags={"PhotometricInterpretation": "MONOCHROME1", "PixelIntensityRelationshipSign": 1})
+    img = load_image(p)
+    np.testing.assert_array_equal(img.pixels, _pixels().astype(np.float64))
+    assert img.metadata.photometric_interpretation == "MONOCHROME1" and img.metadata.intensity_direction == "rising"
+
+
+def test_monochrome1_without_sign_needs_a_conversion(tmp_path):
+    # PS3.3 C.7.6.3.1.2 / C.8.11.3: without (0028,1041) a MONOCHROME1 file does not say how its values relate to
+    # the beam, so it is refused unless a conversion function measured on the detector says it
+    p = _mg_tags(tmp_path, tags={"PhotometricInterpretation": "MONOCHROME1", "PixelIntensityRelationshipSign": None})
+    msg = _raises(p, "MONOCHROME1")
+    assert "unknown" in msg and "--conversion" in msg
+    conv = ConversionFunction("linear", offset=16383.0, gain=-20.0)
+    img = load_image(p, conversion=conv)
+    assert img.metadata.intensity_direction is None and img.metadata.intensity_sign is None
+    np.testing.assert_allclose(img.pixels, (_pixels().astype(np.float64) - 16383.0) / -20.0, rtol=1e-15)
+    # MONOCHROME2 without the sign is read as before: stored values taken as rising
+    q = _mg_tags(tmp_path, name="m2.dcm", tags={"PixelIntensityRelationshipSign": None})
+    assert load_image(q).metadata.intensity_direction == "rising"
+
+
+@pytest.mark.parametrize("value", [0, 2])
+def test_sign_outside_plus_minus_one_is_refused(tmp_path, value):
+    # PS3.3 C.8.11.3: the enumerated values of (0028,1041) are +1 and -1
+    p = _mg_tags(tmp_path, tags={"PixelIntensityRelationshipSign": value})
+    msg = _raises(p, r"\(0028,1041\)")
+    assert "neither +1 nor -1" in msg
+
+
+@pytest.mark.parametrize("relationship", ["LOG", "OTHER"])
+def test_log_or_other_relationship_is_refused_without_conversion(tmp_path, relationship):
+    # PS3.3 C.8.11.3: LOG is a non-linear (logarithmic) relation to beam intensity, OTHER an unstated one; a
+    # fractional drop of such values is not the fractional drop of kerma
+    p = _mg_tags(tmp_path, tags={"PixelIntensityRelationship": relationship})
+    msg = _raises(p, rf"Pixel Intensity Relationship \(0028,1040\) is {relationship}")
+    assert "--conversion" in msg
+
+
+def test_log_relationship_with_conversion_kinds(tmp_path):
+    # PS3.3 C.8.11.3 LOG with a logarithmic conversion PV = offset + gain·ln K: read without a warning, and the
+    # contrast of the square is the fractional kerma drop (analytic inverse K = exp((PV − offset)/gain))
+    kerma = _two_level_kerma(contrast=0.05)
+    conv = ConversionFunction("logarithmic", offset=1000.0, gain=2000.0)
+    pv = np.rint(conv.to_pixel_value(kerma)).astype(np.uint16)
+    p = write_dicom(tmp_path / "log.dcm", pv, (0.1, 0.1), tags={**TAGS, "PixelIntensityRelationship": "LOG"})
+    with warnings.catch_warnings():
+        warnings.simplefilter("error", LimenWarning)
+        img = load_image(p, conversion=conv)
+    assert img.metadata.intensity_relationship == "LOG"
+    assert _contrast(img.pixels) == pytest.approx(0.05, abs=1e-3)
+    # a linear conversion on LOG data (or a logarithmic one on LIN data) is warned, and the warning kept
+    with pytest.warns(LimenWarning, match=r"\(0028,1040\) is LOG but the conversion function is linear"):
+        img = load_image(p, conversion=ConversionFunction("linear", 0.0, 100.0))
+    assert any("is LOG" in w for w in img.metadata.warnings)
+    with pytest.warns(LimenWarning, match=r"is LIN but the conversion function is logarithmic"):
+        load_image(_mg(tmp_path, name="lin.dcm"), conversion=conv)

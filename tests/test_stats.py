@@ -452,3 +452,28 @@ def test_reader_thresholds_outside_the_contrasts_shown_are_flagged_censored():
     assert any(c.get("censored") == "above" for c in js["curves"] if c["reader"] == "blind")
     page = report_html(a)
     assert "&gt; 45 (censored)" in page or "> 45 (censored)" in page
+
+
+def test_bootstrap_block_predicts_the_peak_memory_of_analyse_study():
+    # The budget LIMEN_MAX_BOOTSTRAP_CELLS is checked against n_boot × bootstrap_block(); measured with Python's
+    # tracemalloc (numpy reports its array buffers to it), the peak memory of analyse_study must grow in proportion
+    # to that count: about 57 bytes per cell were measured (an 8-byte likelihood grid with its temporaries), so a
+    # check that the budget bounds memory at all is 20–120 bytes per cell, and doubling n_boot doubles the peak.
+    import tracemalloc
+
+    from scorer.study.stats import bootstrap_block
+
+    st = small_study(seed=5, n_repeats=1, n_contrasts=8)
+    block, where = bootstrap_block(st.trials, st.model_trials, "detector")
+    assert block == 4 * 33 * 8 and "4 curve(s)" in where  # 4 readers refitted at once to compare 2 detectors
+    analyse_study(st.trials, st.model_trials, n_boot=10)  # imports and caches outside the measurement
+    peaks = {}
+    for n_boot in (1000, 2000):
+        tracemalloc.start()
+        try:
+            analyse_study(st.trials, st.model_trials, n_boot=n_boot)
+            peaks[n_boot] = tracemalloc.get_traced_memory()[1]
+        finally:
+            tracemalloc.stop()
+        assert 20 <= peaks[n_boot] / (n_boot * block) <= 120, peaks
+    assert peaks[2000] / peaks[1000] == pytest.approx(2.0, rel=0.15)

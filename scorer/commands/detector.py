@@ -116,15 +116,16 @@ def _read_kerma_csv(path: Path) -> list[tuple[Path, float]]:
     return out
 
 
-def load_images_warn(paths, *, spacing, conversion, role: str):
-    """Load images, turning LimenWarnings into one stderr line each; FOR PRESENTATION flats get the NNPS warning."""
+def load_images_warn(paths, *, spacing, conversion, role: str, for_conversion_fit: bool = False):
+    """Load images, turning LimenWarnings into one stderr line each; FOR PRESENTATION flats get the NNPS warning.
+    ``for_conversion_fit`` reads the stored values whatever their relation to the beam (see ``load_image``)."""
     from scorer.images import load_image
 
     images = []
     for p in paths:
         with warnings.catch_warnings(record=True) as caught:
             warnings.simplefilter("always")
-            im = load_image(p, pixel_spacing_mm=spacing, conversion=conversion)
+            im = load_image(p, pixel_spacing_mm=spacing, conversion=conversion, for_conversion_fit=for_conversion_fit)
         shown = set()
         for w in caught:
             text = str(w.message)
@@ -281,7 +282,9 @@ def detector(
         conv_dict = conv_fn.to_dict()
     elif kerma_csv:
         entries = _read_kerma_csv(Path(kerma_csv))
-        raw = load_images_warn([p for p, _ in entries], spacing=pixel_spacing_mm, conversion=None, role="flat")
+        raw = load_images_warn(
+            [p for p, _ in entries], spacing=pixel_spacing_mm, conversion=None, role="flat", for_conversion_fit=True
+        )
         fit = fit_conversion(
             [k for _, k in entries], [central_mean(im.pixels, im.spacing_mm) for im in raw], path=kerma_csv
         )

@@ -1,8 +1,14 @@
-"""``limen simulate``: physics-based direct/indirect panel images for demos and tests."""
+"""``limen simulate``: physics-based direct/indirect panel images for demos and tests.
+
+Every file (image, JSON sidecar, conversion function) is written complete or not at all
+(:func:`scorer.files.atomic_write_bytes`): a run killed midway leaves whole files and, at most, a hidden
+``.NAME.*.part`` temporary, which a re-run writing the same names removes.
+"""
 
 from __future__ import annotations
 
 import datetime as _dt
+import glob
 import math
 import sys
 from pathlib import Path
@@ -166,6 +172,12 @@ def simulate(
                 "choose another --out or add --overwrite",
                 out,
             )
+    _remove_own_temporaries(
+        out,
+        [f"{st}.{'dcm' if fmt == 'dicom' else fmt}" for st in stems]
+        + [f"{st}.json" for st in stems]
+        + [f"{model.name}-conversion.toml"],
+    )
     written = []
     for i, rng in enumerate(
         tqdm(rngs, desc=f"simulating {model.name} {kind}", unit="image", disable=count < 2, file=sys.stderr)
@@ -184,3 +196,16 @@ def simulate(
         f"wrote {len(written)} {kind} image(s) of the {model.name} panel to {out}/ "
         f"(conversion function: {model.name}-conversion.toml)"
     )
+
+
+def _remove_own_temporaries(out: Path, names: list[str]) -> None:
+    """Remove the temporaries (``.NAME.*.part``, see :func:`scorer.files.atomic_write_bytes`) that a killed run
+    left for the files this run is about to write; nobody else's files are touched."""
+    if not out.is_dir():
+        return
+    for name in names:
+        for tmp in out.glob(f".{glob.escape(name)}.*.part"):
+            try:
+                tmp.unlink()
+            except OSError:
+                pass  # gone already, or not ours to remove: it never has a result name

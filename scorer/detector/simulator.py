@@ -516,6 +516,7 @@ def dicom_tags(model: DetectorModel, acquired: _dt.datetime, dose_ugy: float) ->
 
 def write_simulated(sim: SimulatedImage, out_dir: Path, stem: str, acquired: _dt.datetime, fmt: str = "dicom") -> Path:
     """Write the image (DICOM by default) and its JSON ground-truth sidecar."""
+    from scorer.files import atomic_write_text
     from scorer.images.io import write_dicom, write_image
 
     out_dir = Path(out_dir)
@@ -533,5 +534,5 @@ def write_simulated(sim: SimulatedImage, out_dir: Path, stem: str, acquired: _dt
         spacing_mm=list(sim.spacing_mm),
         sha256=hashlib.sha256(path.read_bytes()).hexdigest(),
     )
-    path.with_suffix(".json").write_text(json.dumps(side, indent=2, default=str) + "\n", encoding="utf-8")
+    atomic_write_text(path.with_suffix(".json"), json.dumps(side, indent=2, default=str) + "\n")
     return path

@@ -26,6 +26,7 @@ from pathlib import Path
 import numpy as np
 
 from scorer.errors import LimenError
+from scorer.files import atomic_write_text
 
 KINDS = ("linear", "logarithmic")
 
@@ -93,8 +94,8 @@ def load_conversion(path) -> ConversionFunction:
 
 
 def save_conversion(conv: ConversionFunction, path) -> None:
-    """Write a conversion function as TOML (readable by :func:`load_conversion`)."""
+    """Write a conversion function as TOML (readable by :func:`load_conversion`), complete or absent."""
     lines = [f'kind = "{conv.kind}"', f"offset = {conv.offset!r}", f"gain = {conv.gain!r}"]
     if conv.source:
         lines.append("source = " + json.dumps(conv.source))
-    Path(path).write_text("\n".join(lines) + "\n", encoding="utf-8")
+    atomic_write_text(Path(path), "\n".join(lines) + "\n")

@@ -25,6 +25,12 @@ class ImageMetadata:
     acquisition_datetime: str | None = None  # ISO 8601 when known
     manufacturer: str | None = None
     magnification_factor: float | None = None  # (0018,1114) if present
+    photometric_interpretation: str | None = None  # (0028,0004): MONOCHROME1 / MONOCHROME2 (display only)
+    intensity_relationship: str | None = None  # (0028,1040): LIN, LOG or OTHER, as the file says
+    intensity_sign: int | None = None  # (0028,1041): +1 / -1 as stored (None when absent or not a number)
+    # how the values Limen reads (after Rescale Slope or the Modality LUT) move with X-ray intensity:
+    # "rising", "falling", or None when the file does not say (see scorer.images.io.load_image)
+    intensity_direction: str | None = None
     linearised: bool = False
     conversion: dict | None = None  # the conversion function applied, if any
     warnings: list[str] = field(default_factory=list)

@@ -36,6 +36,7 @@ import numpy as np
 
 from scorer.images.conversion import ConversionFunction
 from scorer.errors import LimenError
+from scorer.files import atomic_write_bytes
 from scorer.resources import check_limit
 from scorer.images.image import Image, ImageMetadata
 
@@ -119,6 +120,7 @@ def load_image(
     pixel_spacing_mm: float | tuple[float, float] | None = None,
     conversion: ConversionFunction | None = None,
     min_shape: tuple[int, int] | None = None,
+    for_conversion_fit: bool = False,
 ) -> Image:
     """Read a detector image from a DICOM, TIFF, PNG or ``.npy`` file.
 
@@ -138,6 +140,9 @@ def load_image(
         ``metadata.conversion`` records the function.
     min_shape : (int, int), optional
         Smallest acceptable (rows, columns).
+    for_conversion_fit : bool
+        Read the stored values (after Rescale Slope/Intercept) whatever their relation to the X-ray
+        beam, for fitting a conversion function to them; never for scoring.
 
     Returns
     -------
@@ -152,19 +157,40 @@ def load_image(
         file, a DICOM without pixel data or whose compressed transfer syntax has no
         installed decoder, colour or multi-frame data, an image smaller than
         ``min_shape``, NaN or infinite pixels, a missing or invalid pixel spacing, or
-        a conversion that gives non-finite air kerma.
+        a conversion that gives non-finite air kerma.  Without a conversion function, a DICOM
+        image whose values do not rise in proportion to the X-ray intensity: Pixel Intensity
+        Relationship Sign (0028,1041) −1 (a negative Rescale Slope flips it), no sign with
+        MONOCHROME1, or Pixel Intensity Relationship (0028,1040) LOG or OTHER.  With one, a
+        conversion function that rises where the file says the values fall, or falls where
+        they rise.
+
+    Notes
+    -----
+    Scoring takes the contrast of a disc as the fractional drop of the pixel value behind it,
+    which holds only for values rising in proportion to air kerma.  Photometric
+    Interpretation (0028,0004) only says how to display the values (MONOCHROME1: the lowest
+    value is shown white); how they relate to the beam is what Pixel Intensity Relationship
+    (0028,1040) and its Sign (0028,1041) say, for the stored values.  Falling values are never
+    inverted by guesswork: ``c − PV`` is proportional to kerma only with ``c`` the value at
+    zero kerma, which no tag gives, and any other ``c`` scales every contrast.  A conversion
+    function measured on the detector (gain < 0 for a falling response) does it exactly.  A
+    DICOM image with neither sign nor MONOCHROME1 is taken as rising (the stored values of a
+    raw image, as before).  The tags and the direction found are kept in the metadata.
 
     Warns
     -----
     LimenWarning
         For a FOR PRESENTATION image (processed, not linear in air kerma); the same
-        text is added to ``metadata.warnings``.
+        text is added to ``metadata.warnings``.  Also when the conversion function's kind
+        (linear, logarithmic) differs from the file's Pixel Intensity Relationship (LIN, LOG).
 
     References
     ----------
     DICOM PS3.3 C.8.11.4 (DX Detector module: Imager Pixel Spacing), C.7.6.2 (Image
     Plane: Pixel Spacing), C.8.11.1 (DX Series: Presentation Intent Type), C.11.1
-    (Modality LUT: Rescale Slope and Intercept).
+    (Modality LUT: Rescale Slope and Intercept), C.8.11.3 (DX Image module: Pixel
+    Intensity Relationship and Pixel Intensity Relationship Sign), C.7.6.3.1.2
+    (Photometric Interpretation).
     """
     path = Path(path)
     data = _read_bytes(path)
@@ -172,7 +198,9 @@ def load_image(
     meta = ImageMetadata(source_path=str(path), content_sha256=hashlib.sha256(data).hexdigest(), file_format=fmt)
 
     if fmt == "dicom":
-        pixels, file_spacing, spacing_source = _read_dicom(data, path, meta)
+        pixels, file_spacing, spacing_source = _read_dicom(
+            data, path, meta, conversion=conversion, for_conversion_fit=for_conversion_fit
+        )
     else:
         _check_declared_size(_declared_shape(data, fmt), path)
         pixels = _READERS[fmt](data, path)
@@ -388,7 +416,13 @@ _READERS = {"tiff": _read_tiff, "png": _read_png, "npy": _read_npy}
 _PROJECTION_MODALITIES = frozenset({"MG", "DX", "CR", "RG", "PX", "IO", "XA", "RF", "DR", "OT"})
 
 
-def _read_dicom(data: bytes, path: Path, meta: ImageMetadata):
+def _read_dicom(
+    data: bytes,
+    path: Path,
+    meta: ImageMetadata,
+    conversion: ConversionFunction | None = None,
+    for_conversion_fit: bool = False,
+):
     """Pixels (rescaled), the file's spacing and where it came from; fills ``meta``."""
     import pydicom
 
@@ -444,6 +478,7 @@ def _read_dicom(data: bytes, path: Path, meta: ImageMetadata):
             f"{frames}×{rows}×{cols}); Limen needs one 2-D image",
             path,
         )
+    _check_intensity_relation(ds, meta, conversion, path, for_conversion_fit)
 
     _check_declared_size(tuple(v for v in (frames, rows, cols, samples) if v) if rows and cols else None, path)
     _check_decoder(ds, path)
@@ -557,6 +592,129 @@ def _apply_rescale(ds, arr: np.ndarray, path: Path) -> np.ndarray:
     return pixels
 
 
+def _modality_transform_falls(ds) -> bool | None:
+    """Whether the Modality LUT (PS3.3 C.11.1) turns rising stored values into falling ones: a negative
+    Rescale Slope (0028,1053), or a LUT whose last entry is below its first; None when that cannot be told."""
+    if "RescaleSlope" in ds or "RescaleIntercept" in ds:
+        slope = _float_or_none(ds.get("RescaleSlope"))
+        return slope is not None and slope < 0
+    if "ModalityLUTSequence" in ds:
+        try:
+            item = ds.ModalityLUTSequence[0]
+            lut = item.LUTData
+            if isinstance(lut, (bytes, bytearray)):
+                lut = np.frombuffer(bytes(lut), dtype="<u2")
+            lut = np.asarray(lut, dtype=np.float64).ravel()
+            return bool(lut[-1] < lut[0]) if lut.size >= 2 and lut[-1] != lut[0] else None
+        except Exception:  # a damaged LUT: the rescale step reports it
+            return None
+    return False
+
+
+def _fill_intensity_relation(ds, meta: ImageMetadata) -> None:
+    """Photometric Interpretation, Pixel Intensity Relationship and its Sign, and the direction of the values
+    Limen reads (after the Modality LUT) with X-ray intensity (PS3.3 C.8.11.3, C.7.6.3.1.2, C.11.1)."""
+    photometric = _text(ds, "PhotometricInterpretation")  # (0028,0004)
+    meta.photometric_interpretation = photometric.upper() if photometric else None
+    relationship = _text(ds, "PixelIntensityRelationship")  # (0028,1040)
+    meta.intensity_relationship = relationship.upper() if relationship else None
+    raw_sign = ds.get("PixelIntensityRelationshipSign")  # (0028,1041)
+    sign = _float_or_none(raw_sign)
+    meta.intensity_sign = int(sign) if sign is not None and sign == int(sign) else None
+    if _text(ds, "PixelIntensityRelationshipSign") is not None:
+        stored = {1: "rising", -1: "falling"}.get(meta.intensity_sign) if meta.intensity_sign is not None else None
+    elif meta.photometric_interpretation == "MONOCHROME1":
+        stored = None  # a display instruction only: it does not say how the values relate to the beam
+    else:
+        stored = "rising"  # a raw image's stored values, as Limen has always read them
+    flips = _modality_transform_falls(ds)
+    if stored is None or flips is None:
+        meta.intensity_direction = None
+    elif flips:
+        meta.intensity_direction = "falling" if stored == "rising" else "rising"
+    else:
+        meta.intensity_direction = stored
+
+
+def _intensity_basis(ds, meta: ImageMetadata) -> str:
+    """What in the file the direction of its values rests on, for messages."""
+    text = _text(ds, "PixelIntensityRelationshipSign")
+    if text is not None:
+        if meta.intensity_sign in (1, -1):
+            basis = f"Pixel Intensity Relationship Sign (0028,1041) is {meta.intensity_sign:+d}"
+        else:
+            basis = f"Pixel Intensity Relationship Sign (0028,1041) is {text!r}, neither +1 nor -1"
+    elif meta.photometric_interpretation == "MONOCHROME1":
+        basis = (
+            "Photometric Interpretation (0028,0004) is MONOCHROME1 and Pixel Intensity Relationship Sign "
+            "(0028,1041) is absent"
+        )
+    else:
+        basis = "Pixel Intensity Relationship Sign (0028,1041) is absent"
+    flips = _modality_transform_falls(ds)
+    if flips and "RescaleSlope" in ds:
+        basis += f" and Rescale Slope (0028,1053) is {_float_or_none(ds.get('RescaleSlope')):g}"
+    elif flips:
+        basis += " and the Modality LUT (0028,3000) falls"
+    elif flips is None and "ModalityLUTSequence" in ds:
+        basis += " and the direction of the Modality LUT (0028,3000) cannot be told"
+    return basis
+
+
+def _check_intensity_relation(
+    ds, meta: ImageMetadata, conversion: ConversionFunction | None, path: Path, for_conversion_fit: bool
+) -> None:
+    """Refuse values that would be scored as if rising in proportion to air kerma when the file says they do not
+    (see :func:`load_image`, Notes).  A conversion function measured on the detector decides instead, unless it
+    runs the other way than the file says."""
+    direction = meta.intensity_direction
+    relationship = meta.intensity_relationship
+    fix = (
+        "give this detector's conversion function with --conversion (fitted on its own images, e.g. by "
+        "limen detector --fit-conversion), which turns the stored values into air kerma"
+    )
+    if conversion is None:
+        if for_conversion_fit:
+            return
+        if direction == "falling":
+            raise LimenError(
+                f"{_intensity_basis(ds, meta)}: pixel values fall as X-ray intensity rises, and scoring needs "
+                "values rising in proportion to air kerma (inverting them needs the value at zero kerma, which "
+                f"the file does not give); {fix}",
+                path,
+            )
+        if direction is None:
+            raise LimenError(
+                f"{_intensity_basis(ds, meta)}: whether pixel values rise or fall with X-ray intensity is "
+                f"unknown; {fix}",
+                path,
+            )
+        if relationship not in (None, "LIN"):
+            raise LimenError(
+                f"Pixel Intensity Relationship (0028,1040) is {relationship}: pixel values are not proportional "
+                f"to X-ray intensity, and scoring needs values proportional to air kerma; {fix}",
+                path,
+            )
+        return
+    rises = conversion.gain > 0  # kerma rises with the pixel value (linear and logarithmic kinds alike)
+    if direction is not None and rises != (direction == "rising"):
+        raise LimenError(
+            f"the {conversion.kind} conversion function (gain {conversion.gain:g}) makes air kerma "
+            f"{'rise' if rises else 'fall'} with the pixel value, but {_intensity_basis(ds, meta)}, i.e. the "
+            f"values {'rise' if direction == 'rising' else 'fall'} with X-ray intensity; check that the "
+            "conversion function belongs to this detector and these images",
+            path,
+        )
+    expected = {"LIN": "linear", "LOG": "logarithmic"}.get(relationship or "")
+    if expected and expected != conversion.kind:
+        meta.warnings.append(
+            f"Pixel Intensity Relationship (0028,1040) is {relationship} but the conversion function is "
+            f"{conversion.kind}: one of them does not describe this detector; check the conversion function "
+            "against flat fields of known air kerma"
+        )
+        warnings.warn(f"{path}: {meta.warnings[-1]}", LimenWarning, stacklevel=4)
+
+
 def _dicom_spacing(ds, path: Path, meta: ImageMetadata):
     """Imager Pixel Spacing (0018,1164) at the detector plane, else Pixel Spacing (0028,0030)."""
     from pydicom.multival import MultiValue
@@ -605,6 +763,7 @@ def fill_dicom_metadata(ds, meta: ImageMetadata) -> None:
     meta.station_name = _text(ds, "StationName")  # (0008,1010)
     meta.manufacturer = _text(ds, "Manufacturer")  # (0008,0070)
     meta.magnification_factor = _float_or_none(ds.get("EstimatedRadiographicMagnificationFactor"))  # (0018,1114)
+    _fill_intensity_relation(ds, meta)
 
     dt = _text(ds, "AcquisitionDateTime")  # (0008,002A)
     iso = None
@@ -916,12 +1075,13 @@ def write_dicom(
         except Exception as exc:
             raise LimenError(f"cannot encode pixel data as {ts_uid.name} ({_exc_text(exc)})", path) from None
 
+    buf = io.BytesIO()
+    ds.save_as(buf, enforce_file_format=True)
     try:
         path.parent.mkdir(parents=True, exist_ok=True)
-        ds.save_as(path, enforce_file_format=True)
     except OSError as exc:
         raise LimenError(f"cannot write DICOM file ({exc.strerror or exc})", path) from None
-    return path
+    return atomic_write_bytes(path, buf.getvalue())  # complete or absent, never a truncated file that parses
 
 
 def _check_uint16(pixels, path: Path) -> np.ndarray:
@@ -995,10 +1155,11 @@ def write_image(
 
 
 def _write_bytes(path: Path, write) -> Path:
+    """Encode in memory with ``write(file_object)``, then write the file atomically (complete or absent)."""
+    buf = io.BytesIO()
+    write(buf)
     try:
         path.parent.mkdir(parents=True, exist_ok=True)
-        with path.open("wb") as fh:
-            write(fh)
     except OSError as exc:
         raise LimenError(f"cannot write file ({exc.strerror or exc})", path) from None
-    return path
+    return atomic_write_bytes(path, buf.getvalue())

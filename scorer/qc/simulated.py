@@ -13,6 +13,7 @@ from pathlib import Path
 
 import numpy as np
 
+from scorer.files import atomic_write_text
 from scorer.detector.simulator import detector_model, dicom_tags, simulate
 from scorer.images.conversion import save_conversion
 from scorer.images.io import write_dicom
@@ -136,7 +137,7 @@ def demo_nights(
             f"exposure_uas = [{int(UAS_PER_UGY * 70)}, {int(UAS_PER_UGY * 140)}]",
         ]
     config = root / "nightly.toml"
-    config.write_text("\n".join(lines) + "\n", encoding="utf-8")
+    atomic_write_text(config, "\n".join(lines) + "\n")
     nights = []
     for k in range(1, n_nights + 1):
         dose = 100.0 * (drift_factor ** (k - drift_start + 1) if k >= drift_start else 1.0)

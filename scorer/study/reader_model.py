@@ -232,6 +232,8 @@ def write_demo_study(out_dir, seed: int = 2026, n_readers: int = 6, n_repeats: i
     """Write an invented reader study (readers.csv, model.csv, truth.csv) for the demo; return paths."""
     from pathlib import Path
 
+    from scorer.files import atomic_write_text
+
     out = Path(out_dir)
     out.mkdir(parents=True, exist_ok=True)
     study = simulate_reader_study(np.random.default_rng(seed), n_readers, n_repeats=n_repeats)
@@ -241,10 +243,13 @@ def write_demo_study(out_dir, seed: int = 2026, n_readers: int = 6, n_repeats: i
         "truth": out / "truth.csv",
         "reader_parameters": out / "reader_parameters.csv",
     }
-    study.trials.to_csv(paths["readers"], index=False)
-    study.model_trials.to_csv(paths["model"], index=False)
-    study.truth.to_csv(paths["truth"], index=False)
-    study.readers.to_csv(paths["reader_parameters"], index=False)
+    for key, frame in (
+        ("readers", study.trials),
+        ("model", study.model_trials),
+        ("truth", study.truth),
+        ("reader_parameters", study.readers),
+    ):
+        atomic_write_text(paths[key], frame.to_csv(index=False))
     return {k: str(v) for k, v in paths.items()}
 
 

@@ -43,6 +43,7 @@ from scipy import stats as sps
 
 from scorer.errors import LimenError
 from scorer.observer.mafc import halfway_criterion
+from scorer.resources import check_limit
 from scorer.observer.psychometric import (
     _dprime_for,
     bootstrap_threshold,
@@ -957,6 +958,44 @@ def model_curves(
     return reader_curves(model, m, rng, n_boot, by, criterion_pc)
 
 
+#: points of the local likelihood grid :func:`~scorer.observer.psychometric.fit_k_batch` evaluates for every
+#: resample at once when refitting around the full-data estimate (rows at its edge are refitted on the full grid)
+_RESAMPLE_GRID_POINTS = 33
+
+
+def bootstrap_block(trials: pd.DataFrame, model: pd.DataFrame | None, by: str) -> tuple[int, str]:
+    """The most cells one bootstrap resample holds at once in :func:`analyse_study`, and where.
+
+    Per group × diameter every resample holds one draw count per image (:func:`bootstrap_weights`: each
+    reader's images, the readers' crossed draw, the model's), the resampled counts per reader × contrast level,
+    and, largest, the likelihood grid over which each fit is refitted (:func:`fit_k_batch`:
+    33 points × contrast levels per fitted curve).  One curve is fitted per resample for a reader's CI, the pooled
+    human curve and the model's; the image-sampling variance of a comparison between groups fits every reader's
+    curve in each resample at once, readers × 33 × levels.  The block is the largest of these.  Each cell of the
+    grid carries a few temporaries of 8 bytes (about 60 bytes per cell measured).
+    """
+    best, where = 0, ""
+    n_groups = trials[by].nunique()
+    for (grp, diam), g in trials.groupby([by, "diameter_mm"], sort=True):
+        levels = set(g["contrast"].unique())
+        images = g["image"].nunique()
+        if model is not None:
+            gm = model[(model[by] == grp) & np.isclose(model["diameter_mm"], diam)]
+            levels |= set(gm["contrast"].unique())
+            images = max(images, gm["image"].nunique())
+        n_readers = g["reader"].nunique()
+        curves = n_readers if n_groups > 1 else 1  # curves fitted per resample at once
+        grid = curves * _RESAMPLE_GRID_POINTS * len(levels)
+        for size, what in (
+            (images, f"{images} images"),
+            (n_readers * len(levels), f"{n_readers} readers × {len(levels)} contrast levels"),
+            (grid, f"likelihood grid of {curves} curve(s) × {_RESAMPLE_GRID_POINTS} points × {len(levels)} levels"),
+        ):
+            if size > best:
+                best, where = int(size), f"{what}, {by} {grp} at {float(diam):g} mm"
+    return best, where
+
+
 def analyse_study(
     trials: pd.DataFrame,
     model: pd.DataFrame | None = None,
@@ -981,6 +1020,15 @@ def analyse_study(
     if model is not None and by not in model.columns:
         raise LimenError(f"--by column {by!r} is not in the model-observer table")
     say = progress or (lambda s: None)
+    if n_boot > 0:
+        # the resampled counts are allocated per group × diameter inside the fits; refuse before any of them
+        block, where = bootstrap_block(trials, model, by)
+        check_limit(
+            "LIMEN_MAX_BOOTSTRAP_CELLS",
+            n_boot * block,
+            f"--n-boot {n_boot} resamples × {block} cells each ({where}) = {n_boot * block} cells held at once",
+            "--n-boot",
+        )
     rng = np.random.default_rng(seed)
     m = m_alternatives_of(trials)
     if model is not None:
