@@ -24,10 +24,19 @@ def read_toml(path, what: str) -> dict:
         raise LimenError(f"not valid TOML: {exc}", path) from None
 
 
-def atomic_write_bytes(path, data: bytes) -> Path:
+def atomic_write_bytes(path, data: bytes, *, mode: int = 0o666) -> Path:
     """Write a file so that it is either complete or absent: a temporary name in the same folder, flushed
     to disk, then renamed over the target (an atomic step on POSIX file systems).  A run killed midway
     leaves the previous file, or none, never a truncated one that parses."""
+    half = len(data) // 2
+    return atomic_write_chunks(path, (data[:half], data[half:]), mode=mode)
+
+
+def atomic_write_chunks(path, chunks, *, mode: int = 0o666) -> Path:
+    """:func:`atomic_write_bytes` for data that comes in pieces (an upload streamed from disk), so a large file
+    is never held in memory whole.  ``mode`` (less the umask) is the new file's permission; ``0o600`` keeps
+    a secret readable by its owner only from the first byte on.  Crash tests kill the process once the first
+    piece is written (``LIMEN_FAULT_INJECT=write:n``)."""
     import os
     import tempfile
 
@@ -37,16 +46,13 @@ def atomic_write_bytes(path, data: bytes) -> Path:
     except OSError as exc:
         raise LimenError(f"cannot write here ({exc.strerror or exc})", path) from None
     try:
-        umask = os.umask(0)
-        os.umask(umask)
-        os.fchmod(fd, 0o666 & ~umask)  # mkstemp's 0600 would hide reports from the rest of the team
+        os.fchmod(fd, mode & ~_umask())  # mkstemp's 0600 would hide reports from the rest of the team
         with os.fdopen(fd, "wb") as fh:
-            half = len(data) // 2
-            fh.write(data[:half])
-            fh.flush()
-            fault_point("write")  # crash tests kill the run here, half-way through a file
-            fh.write(data[half:])
-            fh.flush()
+            for i, chunk in enumerate(chunks):
+                fh.write(chunk)
+                fh.flush()
+                if i == 0:
+                    fault_point("write")  # crash tests kill the run here, part-way through a file
             os.fsync(fh.fileno())
         os.replace(tmp, path)
     except OSError as exc:
@@ -64,9 +70,26 @@ def atomic_write_bytes(path, data: bytes) -> Path:
     return path
 
 
-def atomic_write_text(path, text: str) -> Path:
+def atomic_write_text(path, text: str, *, mode: int = 0o666) -> Path:
     """:func:`atomic_write_bytes` for UTF-8 text."""
-    return atomic_write_bytes(path, text.encode("utf-8"))
+    return atomic_write_bytes(path, text.encode("utf-8"), mode=mode)
+
+
+def _umask() -> int:
+    """The process umask, read without changing it where Linux reports it: setting it to 0 for a moment (the
+    only portable way to read it) would let another thread of the web app create world-writable files."""
+    import os
+
+    try:
+        with open("/proc/self/status", encoding="ascii") as fh:
+            for line in fh:
+                if line.startswith("Umask:"):
+                    return int(line.split()[1], 8)
+    except (OSError, ValueError, IndexError):
+        pass
+    umask = os.umask(0)
+    os.umask(umask)
+    return umask
 
 
 MANIFEST = ".limen-outputs.json"

@@ -34,15 +34,41 @@ DEFAULTS = {
 }
 
 
+MIN_SECRET_KEY_CHARS = 32  # the generated key has 64 hex digits (256 bits); fewer than 32 means a damaged file
+
+
 def _secret_key(instance: Path) -> str:
+    """The session-signing key: ``LIMEN_SECRET_KEY``, else ``<instance>/secret_key``, generated on first start.
+
+    The file is written whole or not at all (owner-readable only from its first byte), so a server killed while
+    creating it leaves no key file and the next start makes a new one.  A key file that is present but empty or
+    shorter than :data:`MIN_SECRET_KEY_CHARS` (cut short by an older version, or edited by hand) is refused with a
+    one-line error rather than used: an empty key would sign every session with nothing secret, and replacing
+    the file silently would log every reader out and could split servers that share it.
+    """
+    from scorer.errors import LimenError
+    from scorer.files import atomic_write_text
+
     key = os.environ.get(ENV_SECRET_KEY)
     if key:
         return key
     path = instance / "secret_key"
     if not path.exists():
-        path.write_text(secrets.token_hex(32), encoding="ascii")
-        path.chmod(0o600)
-    return path.read_text(encoding="ascii").strip()
+        atomic_write_text(path, secrets.token_hex(32), mode=0o600)
+    try:
+        key = path.read_text(encoding="ascii").strip()
+    except OSError as exc:
+        raise LimenError(f"cannot read the secret key file ({exc.strerror or exc})", path) from None
+    except UnicodeDecodeError:
+        raise LimenError("secret key file is not ASCII text; delete it to have a new key generated", path) from None
+    if len(key) < MIN_SECRET_KEY_CHARS:
+        what = "is empty" if not key else f"holds only {len(key)} characters (at least {MIN_SECRET_KEY_CHARS} needed)"
+        raise LimenError(
+            f"secret key file {what}, perhaps cut short by a crash; delete it to have a new key generated "
+            f"(readers will have to sign in again) or set {ENV_SECRET_KEY}",
+            path,
+        )
+    return key
 
 
 def create_app(config: dict | None = None) -> Flask:

@@ -13,10 +13,8 @@ from __future__ import annotations
 import hashlib
 import io
 import json
-import os
 import re
 import secrets
-import tempfile
 import threading
 import warnings
 from collections import OrderedDict
@@ -49,39 +47,65 @@ def safe_label(name: str | None) -> str:
     return base[:120] or "upload"
 
 
+STORE_CHUNK_BYTES = 1 << 20
+
+
 def store_bytes(stream, suffix: str, store_dir: Path, max_bytes: int, label: str) -> tuple[str, Path]:
     """Copy an upload into the content store as ``<sha256><suffix>``; return (sha256, path).
 
-    The client's file name is never used for the stored path, only its (checked) extension.
+    The client's file name is never used for the stored path, only its (checked) extension.  The stream is
+    read once to hash and size it, then (from the start again) written with
+    :func:`scorer.files.atomic_write_chunks`: a server killed mid-copy leaves no stored file, never a truncated
+    one under a hash it does not match.  A stream whose content changes between the two readings (a file
+    being rewritten during a folder import) is refused.  A stream that cannot seek is held in memory (at most
+    ``max_bytes``).
     """
+    from scorer.files import atomic_write_chunks
+
     store_dir.mkdir(parents=True, exist_ok=True)
+    try:
+        start = stream.tell() if stream.seekable() else None
+    except (AttributeError, OSError):
+        start = None
     h = hashlib.sha256()
     size = 0
-    fd, tmp = tempfile.mkstemp(dir=store_dir, prefix=".upload-")
-    try:
-        with os.fdopen(fd, "wb") as out:
-            while True:
-                chunk = stream.read(1 << 20)
-                if not chunk:
-                    break
-                size += len(chunk)
-                if size > max_bytes:
-                    raise LimenError(f"file is larger than the limit of {max_bytes // (1024 * 1024)} MB", label)
-                h.update(chunk)
-                out.write(chunk)
-        if size == 0:
-            raise LimenError("file is empty", label)
-        digest = h.hexdigest()
-        final = store_dir / f"{digest}{suffix}"
-        if final.exists():
-            os.unlink(tmp)
+    held = []  # only for a stream that cannot be read twice
+    while chunk := stream.read(STORE_CHUNK_BYTES):
+        size += len(chunk)
+        if size > max_bytes:
+            raise LimenError(f"file is larger than the limit of {max_bytes // (1024 * 1024)} MB", label)
+        h.update(chunk)
+        if start is None:
+            held.append(chunk)
+    if size == 0:
+        raise LimenError("file is empty", label)
+    digest = h.hexdigest()
+    final = store_dir / f"{digest}{suffix}"
+    if not final.exists():
+        if start is not None:
+            stream.seek(start)
+            held = _reread(stream, size, digest, label)
+        atomic_write_chunks(final, held, mode=0o600)
+    return digest, final
+
+
+def _reread(stream, size: int, digest: str, label: str):
+    """The stream's bytes again, checked against the first reading's size and hash before the last piece is
+    handed on (so a changed stream raises before the stored file is renamed into place)."""
+    h = hashlib.sha256()
+    n = 0
+    while chunk := stream.read(STORE_CHUNK_BYTES):
+        n += len(chunk)
+        h.update(chunk)
+        if n > size:
+            break
+        if n < size:
+            yield chunk
         else:
-            os.replace(tmp, final)
-        return digest, final
-    except BaseException:
-        if os.path.exists(tmp):
-            os.unlink(tmp)
-        raise
+            pending = chunk
+    if n != size or h.hexdigest() != digest:
+        raise LimenError("file changed while it was being stored; upload or import it again", label)
+    yield pending
 
 
 def check_suffix(name: str, allowed: set[str], what: str) -> str:
@@ -196,6 +220,7 @@ def _region_boxes(sites_by_key: dict, shape_by_image: dict) -> tuple[int, dict]:
 def open_study(session, study, store_dir: Path, progress=None) -> list[str]:
     """Score the study's images with the model observer, cut the reading regions, write the display
     pixels and build every reader's schedule. Returns notes for the coordinator."""
+    from scorer.files import atomic_write_bytes
     from scorer.images import LimenWarning, load_conversion, load_image
     from scorer.observer import score_images
     from scorer.phantom import load_layout
@@ -262,9 +287,9 @@ def open_study(session, study, store_dir: Path, progress=None) -> list[str]:
         path = display_path(store_dir, im.sha256)
         path.parent.mkdir(parents=True, exist_ok=True)
         if not path.exists():
-            tmp = path.with_suffix(f".{secrets.token_hex(4)}.tmp.npy")
-            np.save(tmp, u16)
-            os.replace(tmp, path)
+            buf = io.BytesIO()
+            np.save(buf, u16)
+            atomic_write_bytes(path, buf.getvalue())
     del arrays
     size, boxes = _region_boxes(sites_by_key, shape_by_image)
     study.region_rows = study.region_cols = size

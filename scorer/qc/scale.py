@@ -239,6 +239,31 @@ class PoolRunner:
 DASK_CONNECT_TIMEOUT_S = 20.0
 
 
+def _connect_within(client_class, address: str, timeout_s: float):
+    """``Client(address)`` with a bound on the whole start-up.  Client's own ``timeout`` covers opening the
+    connection, but a port where something else listens and never answers (a wrong port number) left the
+    start-up waiting for ever; the nightly would hang instead of failing.  The attempt runs in a daemon thread
+    given twice the connect timeout; one still waiting then is abandoned with :class:`TimeoutError`."""
+    import threading
+
+    box = {}
+
+    def connect():
+        try:
+            box["client"] = client_class(address, timeout=f"{timeout_s:g}s")
+        except BaseException as exc:  # handed to the caller's thread below
+            box["error"] = exc
+
+    t = threading.Thread(target=connect, daemon=True, name="limen-dask-connect")
+    t.start()
+    t.join(2 * timeout_s)
+    if t.is_alive():
+        raise TimeoutError(f"no answer from a Dask scheduler within {2 * timeout_s:g} s; is this its address and port?")
+    if "error" in box:
+        raise box["error"]
+    return box["client"]
+
+
 class DaskRunner:
     """Sends sessions to an existing Dask distributed scheduler (``dask scheduler`` / ``dask worker``)."""
 
@@ -253,12 +278,17 @@ class DaskRunner:
             raise LimenError("--dask needs the 'distributed' package (pip install 'dask[distributed]')") from None
         try:
             if isinstance(self.address, str):
-                self.client = Client(self.address, timeout=f"{DASK_CONNECT_TIMEOUT_S:g}s")
+                self.client = _connect_within(Client, self.address, DASK_CONNECT_TIMEOUT_S)
             else:  # a LocalCluster or other cluster object (tests, scripts)
                 self.client = Client(self.address)
         except (OSError, TimeoutError) as exc:
             raise LimenError(
                 f"cannot reach the Dask scheduler ({' '.join(str(exc).split())[:200]})", f"--dask {self.address}"
+            ) from None
+        except ValueError as exc:  # distributed's address parser: no port, unknown scheme
+            raise LimenError(
+                f"not a Dask scheduler address, expected tcp://HOST:PORT ({' '.join(str(exc).split())[:200]})",
+                f"--dask {self.address}",
             ) from None
         return self
 
