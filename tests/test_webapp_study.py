@@ -13,7 +13,18 @@ import pytest
 from click.testing import CliRunner
 
 from scorer.phantom import load_layout
-from webapp_helpers import MINI, accounts_app, answer, demo_app, login, pass_display_check, read_all, reader_client
+from webapp_helpers import (
+    MINI,
+    PASSWORDS,
+    accounts_app,
+    answer,
+    demo_app,
+    login,
+    make_app,
+    pass_display_check,
+    read_all,
+    reader_client,
+)
 
 
 def _darkest_site(trial, data):
@@ -409,3 +420,55 @@ def test_import_a_folder_scored_by_limen_score(tmp_path):
 
         assert load_conversion(im.conversion_file) == load_conversion(conv)  # the scoring's conversion
         assert im.detector == "panel A" and im.stored_name == f"{im.sha256}.dcm"
+
+
+def test_an_image_in_two_studies_is_shown_on_each_studys_own_scale(tmp_path):
+    """The 16-bit display scale is chosen per study (from the study's brightest image), so the same image in a
+    second study with other images must be served on the second study's scale: its pixels times that study's
+    µGy per unit reproduce scorer's load_image to within one 16-bit step (a file shared by image hash alone
+    was 2.3 % off)."""
+    from scorer.images import load_conversion, load_image
+    from webapp import services
+    from webapp.demo import create_demo_study
+    from webapp.models import Region, Study, StudyImage
+    from webapp.security import db
+
+    app = make_app(tmp_path)
+    kw = dict(n_readers=1, trials_per_reader=8, n_practice=0, repeat_fraction=0, layout_path=str(MINI))
+    a = create_demo_study(app, images_per_detector=1, passwords=PASSWORDS, **kw)["study_id"]
+    b = create_demo_study(
+        app, images_per_detector=3, passwords=PASSWORDS, reader_prefix="other", open_study=False, seed=7, **kw
+    )["study_id"]
+    store = Path(app.config["STORE_DIR"])
+    with app.app_context():
+        sa, sb = db().get(Study, a), db().get(Study, b)
+        first = sa.images[0]  # study A's first image is added to study B too, which is then opened
+        db().add(
+            StudyImage(
+                study_id=b,
+                sha256=first.sha256,
+                stored_name=first.stored_name,
+                code=f"img-b-{first.sha256[:8]}",
+                detector=first.detector,
+                conversion_file=first.conversion_file,
+                label=first.label,
+            )
+        )
+        db().flush()
+        db().refresh(sb)
+        services.open_study(db(), sb, store)
+        sb.status = "open"
+        db().commit()
+        shared = {i.sha256 for i in sa.images} & {i.sha256 for i in sb.images}
+        assert shared and sa.ugy_per_unit != sb.ugy_per_unit
+        for st in (sa, sb):
+            for im in st.images:
+                if im.sha256 not in shared:
+                    continue
+                reg = db().query(Region).filter(Region.image_id == im.id).first()
+                n = st.region_rows
+                data = np.frombuffer(services.region_bytes(store, im.sha256, st.id, reg.row0, reg.col0, n, n), "<u2")
+                ref = load_image(store / im.stored_name, conversion=load_conversion(im.conversion_file)).pixels
+                crop = ref[reg.row0 : reg.row0 + n, reg.col0 : reg.col0 + n].ravel()
+                assert np.max(np.abs(data * st.ugy_per_unit - crop)) <= 0.5 * st.ugy_per_unit + 1e-9
+                assert db().get(StudyImage, im.id).study_id == st.id

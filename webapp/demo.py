@@ -55,7 +55,6 @@ def create_demo_study(
 ) -> dict:
     """Create accounts and a reader study on simulated images; return {"study_id", "credentials"}."""
     from scorer.detector import detector_model, simulate, write_simulated
-    from scorer.files import atomic_write_bytes
     from scorer.images import save_conversion
     from scorer.phantom import load_layout
     from webapp import services
@@ -94,9 +93,7 @@ def create_demo_study(
                 model = detector_model(det)
                 conv = store / "conversions" / f"demo-{det}.toml"
                 conv.parent.mkdir(parents=True, exist_ok=True)
-                # written beside the simulated images, then put in place whole (a running server may read it)
-                save_conversion(model.conversion_function(), Path(tmp) / conv.name)
-                atomic_write_bytes(conv, (Path(tmp) / conv.name).read_bytes())
+                save_conversion(model.conversion_function(), conv)  # whole or absent (a running server may read it)
                 for i in range(images_per_detector):
                     sim = simulate(
                         model, "phantom", DEMO_DOSE_UGY, np.random.default_rng(seeds[k]), small=True, layout=layout

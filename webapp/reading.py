@@ -264,6 +264,7 @@ def region(public_id):
         .execute(
             select(
                 Trial.reader_id,
+                Trial.study_id,
                 Study.status,
                 Study.region_rows,
                 Study.region_cols,
@@ -281,7 +282,7 @@ def region(public_id):
     if row is None or row.reader_id != current_user.id or row.status != "open":
         abort(404)
     body = services.region_bytes(
-        current_app.config["STORE_DIR"], row.sha256, row.row0, row.col0, row.region_rows, row.region_cols
+        current_app.config["STORE_DIR"], row.sha256, row.study_id, row.row0, row.col0, row.region_rows, row.region_cols
     )
     return FlaskResponse(
         body,

@@ -184,13 +184,24 @@ class PixelCache:
 PIXELS = PixelCache()
 
 
-def display_path(store_dir: Path, sha256: str) -> Path:
-    return Path(store_dir) / "display" / f"{sha256}.u16.npy"
+def display_path(store_dir: Path, sha256: str, study_id: int | None = None) -> Path:
+    """The 16-bit display pixels of one image in one study.
+
+    Per study, because the 16-bit scale (``Study.ugy_per_unit``) and the conversion function are the
+    study's: the same image in two studies can have two different files.  ``study_id=None`` is the
+    shared name earlier releases used (kept for studies they opened).
+    """
+    if study_id is None:
+        return Path(store_dir) / "display" / f"{sha256}.u16.npy"
+    return Path(store_dir) / "display" / f"study-{int(study_id)}" / f"{sha256}.u16.npy"
 
 
-def region_bytes(store_dir: Path, sha256: str, row0: int, col0: int, rows: int, cols: int) -> bytes:
+def region_bytes(store_dir: Path, sha256: str, study_id: int, row0: int, col0: int, rows: int, cols: int) -> bytes:
     """The region's linear 16-bit pixels, little-endian, row-major."""
-    arr = PIXELS.get(display_path(store_dir, sha256))
+    path = display_path(store_dir, sha256, study_id)
+    if not path.exists():  # a study opened by an earlier release
+        path = display_path(store_dir, sha256)
+    arr = PIXELS.get(path)
     return np.ascontiguousarray(arr[row0 : row0 + rows, col0 : col0 + cols], dtype="<u2").tobytes()
 
 
@@ -284,12 +295,11 @@ def open_study(session, study, store_dir: Path, progress=None) -> list[str]:
     for code, px in arrays.items():
         im = by_code[code][0]
         u16 = np.clip(np.round(np.maximum(px, 0.0) / scale), 0, U16_MAX).astype("<u2")
-        path = display_path(store_dir, im.sha256)
+        path = display_path(store_dir, im.sha256, study.id)
         path.parent.mkdir(parents=True, exist_ok=True)
-        if not path.exists():
-            buf = io.BytesIO()
-            np.save(buf, u16)
-            atomic_write_bytes(path, buf.getvalue())
+        buf = io.BytesIO()
+        np.save(buf, u16)
+        atomic_write_bytes(path, buf.getvalue())
     del arrays
     size, boxes = _region_boxes(sites_by_key, shape_by_image)
     study.region_rows = study.region_cols = size
