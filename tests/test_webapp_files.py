@@ -218,3 +218,42 @@ def test_store_bytes_limits_still_apply(tmp_path):
     with pytest.raises(LimenError, match="up.png: file is larger than the limit"):
         store_bytes(io.BytesIO(b"x" * 101), ".png", tmp_path, 100, "up.png")
     assert list(tmp_path.iterdir()) == []
+
+
+def test_two_servers_starting_at_once_share_one_secret_key(tmp_path, monkeypatch):
+    """Of two processes creating the key of a new instance folder at the same moment, one key wins (the file is
+    linked into place only if absent) and both use it; no temporary is left."""
+    monkeypatch.delenv("LIMEN_SECRET_KEY", raising=False)
+    inst = tmp_path / "inst"
+    code = (
+        "import sys, time; from webapp import create_app\n"
+        "t = float(sys.argv[2])\n"
+        "while time.time() < t: pass\n"
+        "print(create_app({'INSTANCE_PATH': sys.argv[1]}).config['SECRET_KEY'])"
+    )
+    import time
+
+    start = str(time.time() + 4.0)  # both past their imports, then racing for the file
+    procs = [
+        subprocess.Popen([sys.executable, "-c", code, str(inst), start], env=_env(), stdout=subprocess.PIPE, text=True)
+        for _ in range(2)
+    ]
+    keys = [p.communicate(timeout=60)[0].strip() for p in procs]
+    assert all(p.returncode == 0 for p in procs)
+    assert keys[0] == keys[1] == (inst / "secret_key").read_text() and len(keys[0]) == 64
+    assert not list(inst.glob(".*.part"))
+
+
+def test_stale_temporaries_of_a_killed_server_are_removed_at_start(tmp_path):
+    from webapp import STALE_TEMPORARY_S, create_app
+
+    store = tmp_path / "inst" / "store"
+    (store / "display" / "study-1").mkdir(parents=True)
+    old = store / "display" / "study-1" / ".abc.u16.npy.x1.part"
+    fresh = store / ".def.dcm.x2.part"
+    old.write_bytes(b"half")
+    fresh.write_bytes(b"being written")
+    t = old.stat().st_mtime - STALE_TEMPORARY_S - 10
+    os.utime(old, (t, t))
+    create_app({"INSTANCE_PATH": str(tmp_path / "inst"), "SECRET_KEY": "k" * 64})
+    assert not old.exists() and fresh.exists()  # a write in progress (younger than an hour) is left alone

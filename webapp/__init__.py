@@ -54,7 +54,16 @@ def _secret_key(instance: Path) -> str:
         return key
     path = instance / "secret_key"
     if not path.exists():
-        atomic_write_text(path, secrets.token_hex(32), mode=0o600)
+        # written whole under a name of this process, then linked into place: link() fails when the file exists,
+        # so of two servers starting at once on a new instance folder, one key wins and both use it
+        tmp = instance / f".secret_key.{os.getpid()}.part"
+        atomic_write_text(tmp, secrets.token_hex(32), mode=0o600)
+        try:
+            os.link(tmp, path)
+        except FileExistsError:
+            pass
+        finally:
+            tmp.unlink(missing_ok=True)
     try:
         key = path.read_text(encoding="ascii").strip()
     except OSError as exc:
@@ -69,6 +78,25 @@ def _secret_key(instance: Path) -> str:
             path,
         )
     return key
+
+
+#: a temporary file of the atomic writer older than this was left by a killed process (a live write takes seconds)
+STALE_TEMPORARY_S = 3600.0
+
+
+def _remove_stale_temporaries(store: Path) -> int:
+    """Remove the ``.*.part`` files a killed server left in the content store (never read; only disk space)."""
+    import time
+
+    now, n = time.time(), 0
+    for p in store.rglob(".*.part"):
+        try:
+            if now - p.stat().st_mtime > STALE_TEMPORARY_S:
+                p.unlink()
+                n += 1
+        except OSError:
+            pass
+    return n
 
 
 def create_app(config: dict | None = None) -> Flask:
@@ -97,6 +125,7 @@ def create_app(config: dict | None = None) -> Flask:
     store = Path(app.config.get("STORE_DIR") or instance / "store")
     store.mkdir(parents=True, exist_ok=True)
     app.config["STORE_DIR"] = str(store)
+    _remove_stale_temporaries(store)
 
     from webapp import models
     from webapp.security import init_security

@@ -24,6 +24,7 @@ from sqlalchemy import (
     Index,
     Integer,
     String,
+    text,
     Text,
     UniqueConstraint,
     create_engine,
@@ -275,4 +276,19 @@ def make_session_factory(engine):
 
 
 def create_schema(engine) -> None:
-    Base.metadata.create_all(engine)
+    """Create the tables that are missing, one process at a time.
+
+    ``create_all`` looks for each table, then creates it: two servers starting at once on a new database both
+    saw no table and the second failed ("table users already exists").  The check and the creation now run in
+    one transaction that holds the database's write lock (SQLite ``BEGIN IMMEDIATE``; a PostgreSQL advisory lock).
+    """
+    if engine.dialect.name == "sqlite":
+        with engine.connect() as conn:
+            conn.exec_driver_sql("BEGIN IMMEDIATE")
+            Base.metadata.create_all(conn)
+            conn.commit()
+        return
+    with engine.begin() as conn:
+        if engine.dialect.name == "postgresql":
+            conn.execute(text("SELECT pg_advisory_xact_lock(6177002)"))
+        Base.metadata.create_all(conn)
