@@ -33,7 +33,30 @@ FIGURES = [
     Figure("simulate_full_size_s", "bench_simulate.json", _max_rows("simulate_s"), "s", "< 3"),
     Figure("simulate_peak_rss", "bench_simulate.json", _max_rows("peak_rss_mb"), "MB", "< 1024"),
     Figure("register_full_size_worst_median_s", "bench_register.json", lambda r: r["worst_median_s"], "s", "< target"),
-    Figure("score_to_load_ratio", "bench_score.json", lambda r: r["ratio"], "×", "≤ 3"),
+    Figure("score_to_load_ratio", "bench_score.json", lambda r: r["speed"]["ratio"], "×", "≤ 3"),
+    Figure("score_s_per_image_1", "bench_score.json", lambda r: r["speed"]["per_image_s"]["1"], "s", "—"),
+    Figure("score_s_per_image_16", "bench_score.json", lambda r: r["speed"]["per_image_s"]["16"], "s", "—"),
+    Figure(
+        "score_per_image_16_over_1",
+        "bench_score.json",
+        lambda r: r["speed"]["per_image_16_over_1"],
+        "×",
+        "≤ 1.2 (linear in images)",
+    ),
+    Figure(
+        "ci_width_dprime4_over_count16_worst",
+        "bench_score.json",
+        lambda r: r["ci_width"]["worst_ratio_by_n"]["4"],
+        "×",
+        "≤ 1",
+    ),
+    Figure(
+        "ci_width_smallest_n_dprime_matching_count16",
+        "bench_score.json",
+        lambda r: r["ci_width"]["smallest_n_matching_count_16"],
+        "images",
+        "≤ 4",
+    ),
     Figure("detector_mtf_nnps_dqe_s", "bench_detector.json", lambda r: r["mtf_nnps_dqe_s"], "s", "< 10"),
     Figure(
         "analyse_20_readers_s",
@@ -83,6 +106,7 @@ FIGURES = [
         "×",
         "≤ ratio of sites",
     ),
+    Figure("memory_peak_per_extra_image", "bench_memory.json", lambda r: r["peak_per_extra_image_mb"], "MB", "—"),
     Figure("memory_refuse_12000_targets_s", "bench_memory.json", lambda r: r["layout_12000_refusal_s"], "s", "≤ 10"),
 ]
 
