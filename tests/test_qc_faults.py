@@ -100,6 +100,25 @@ def test_killed_run_then_rerun_scores_every_session_exactly_once(template, tmp_p
     _check_quarantine(inbox)
 
 
+@pytest.mark.parametrize("fault", ["claimed", "mid-write:2", "committed:1"])
+def test_killed_run_on_postgresql_then_rerun_scores_every_session_exactly_once(template, tmp_path, postgres_url, fault):
+    # the same invariants with the database a server: a SIGKILLed client leaves its transaction open until the server
+    # notices the closed socket, and a claim behind it; the re-run must finish without waiting for the lease
+    inbox, cfg = _copy(template, tmp_path / "w")
+    killed = subprocess.run(
+        _cmd(inbox, cfg, postgres_url), env=_env(fault), capture_output=True, text=True, timeout=300
+    )
+    assert killed.returncode == -signal.SIGKILL, killed.stderr[-2000:]
+    again = subprocess.run(_cmd(inbox, cfg, postgres_url), env=_env(), capture_output=True, text=True, timeout=300)
+    assert again.returncode == 0, again.stderr[-2000:]
+    point, _, nth = fault.partition(":")
+    n = int(nth or 1)
+    first_done = n if point == "committed" else n - 1 if point == "mid-write" else 0
+    assert json.loads(again.stdout)["sessions_scored"] == N_SESSIONS - first_done
+    check_database(postgres_url, N_SESSIONS, images_per_session=4)
+    _check_quarantine(inbox)
+
+
 def test_killed_at_random_moments(template, tmp_path):
     rnd = random.Random(7)
     for k in range(2):
@@ -174,3 +193,26 @@ def test_claims_are_compare_and_set(tmp_path):
     assert token is not None and store.take_over(first[0], first[1]) is None  # only one run takes it over
     assert store.stale_claims() == []
     store.close()
+
+
+def test_quarantine_race_keeps_the_reason_of_the_run_that_moved_the_file(tmp_path, monkeypatch):
+    # two runs quarantining one file at once both chose the same name: the one whose move failed removed the reason
+    # file of the one whose move succeeded (seen in the concurrent PostgreSQL test), leaving a reason-less file
+    import shutil as _shutil
+
+    import scorer.qc.inbox as inbox_mod
+
+    f = tmp_path / "inbox" / "notes.txt"
+    f.parent.mkdir()
+    f.write_text("not an image\n")
+    q = tmp_path / "inbox" / "quarantine"
+    real_move = _shutil.move
+
+    def other_run_moves_first(src, dst):
+        real_move(src, dst)  # the other run's move, between this run's choice of name and its own move
+        raise FileNotFoundError(src)
+
+    monkeypatch.setattr(inbox_mod.shutil, "move", other_run_moves_first)
+    assert inbox_mod.quarantine_file(f, q, "not a recognised image file") is None
+    assert sorted(p.name for p in q.iterdir()) == ["notes.txt", "notes.txt.reason.txt"]
+    assert (q / "notes.txt.reason.txt").read_text() == "not a recognised image file\n"

@@ -231,6 +231,9 @@ def quarantine_file(path, quarantine_dir, reason: str) -> Path | None:
     try:
         shutil.move(str(path), str(dest))
     except FileNotFoundError:
-        note.unlink(missing_ok=True)
+        # another run moved it first; when it moved it to the same name, the reason file is that run's (the same
+        # reason), so it stays — removing it left a quarantined file without its reason
+        if not dest.exists():
+            note.unlink(missing_ok=True)
         return None
     return dest

@@ -346,9 +346,22 @@ class _Ops:
         """(path, size, mtime_ns, sha256) rows into the file cache (insert or replace)."""
         if not rows:
             return
+        values = [
+            {"path": p, "size": n, "mtime_ns": m, "sha256": h} for p, n, m, h in dict((r[0], r) for r in rows).values()
+        ]
         with self.transaction() as s:
-            s.execute(delete(FileRow).where(FileRow.path.in_([r[0] for r in rows])))
-            s.execute(insert(FileRow), [{"path": p, "size": n, "mtime_ns": m, "sha256": h} for p, n, m, h in rows])
+            if self.is_sqlite or self.engine.dialect.name == "postgresql":
+                # an upsert: two runs scanning the same inbox at once both remember its files (a delete then an
+                # insert let the second run's insert hit the first's row on PostgreSQL: duplicate key)
+                stmt = self._dialect_insert(FileRow.__table__)
+                stmt = stmt.on_conflict_do_update(
+                    index_elements=[FileRow.__table__.c.path],
+                    set_={c: getattr(stmt.excluded, c) for c in ("size", "mtime_ns", "sha256")},
+                )
+                s.execute(stmt, values)
+            else:  # pragma: no cover - other databases
+                s.execute(delete(FileRow).where(FileRow.path.in_([v["path"] for v in values])))
+                s.execute(insert(FileRow), values)
 
     def known_images(self, shas) -> dict:
         """sha256 → path recorded, for the given hashes that are already in the database."""
@@ -981,15 +994,19 @@ class Store(_Ops):
                 f"database error: {' '.join(str(exc.orig or exc).split())[:300]}", _display(self.url)
             ) from None
 
-    def _insert(self, table):
-        """INSERT … ON CONFLICT DO NOTHING in the database's own dialect."""
+    def _dialect_insert(self, table):
+        """The database's own INSERT construct (with ON CONFLICT clauses) for SQLite and PostgreSQL."""
         if self.is_sqlite:
             from sqlalchemy.dialects.sqlite import insert as dialect_insert
-        elif self.engine.dialect.name == "postgresql":
+        else:
             from sqlalchemy.dialects.postgresql import insert as dialect_insert
-        else:  # pragma: no cover - other databases: plain insert
+        return dialect_insert(table)
+
+    def _insert(self, table):
+        """INSERT … ON CONFLICT DO NOTHING in the database's own dialect."""
+        if not (self.is_sqlite or self.engine.dialect.name == "postgresql"):  # pragma: no cover - plain insert
             return insert(table)
-        return dialect_insert(table).on_conflict_do_nothing()
+        return self._dialect_insert(table).on_conflict_do_nothing()
 
     def _insert_many(self, s: Session, table, columns: dict[str, list]) -> None:
         """Insert many rows given as equal-length column lists through the driver's own executemany.
