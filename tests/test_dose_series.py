@@ -137,6 +137,36 @@ def test_noise_components_from_simulated_flats():
         assert lo < want * (1 + 0.01 * (i == 2)) and want * (1 - 0.01 * (i == 2)) < hi, (i, lo, want, hi)
 
 
+@pytest.mark.parametrize("panel", ["direct", "indirect"])
+def test_electronic_noise_ci_covers_the_simulator_truth(panel):
+    # σ²(K) = e + q·K + s·K², the quadratic noise-variance model of flat panels (common practice).  The simulator
+    # adds white read-out noise σ_e (ADU) *after* the indirect panel's light spread, and rounds to integers, so
+    # the pixel variance it adds is σ_e² + 1/12 ADU² (Sheppard's correction; from memory) whatever the spread;
+    # through the conversion function's slope g (ADU/µGy, fill factor included) that is e = (σ_e² + 1/12)/g².
+    # The spread only filters the quantum term (it lands in q).  Kermas 0.5–5 µGy, where e is 1–40 % of the
+    # variance, so the fit pins e to ±1 % (indirect) and ±5 % (direct, 1 SD): a truth off by a few % (indirect)
+    # or with the fill factor left out fails.
+    # Over 30 seeded repeats the 95 % CI should cover e about 95 % of the time (binomial: ≥ 26/30 allows
+    # P ≈ 6 % of an unlucky draw at a true 95 %; these seeds are fixed), without a bias in the estimate.
+    m = detector_model(panel)
+    e_true = (m.electronic_noise_adu**2 + 1 / 12) / m.gain_adu_per_ugy**2
+    kermas = [0.5, 1.0, 2.0, 5.0]
+    z, hits = [], 0
+    for rep in range(30):
+        ims = [
+            Image(simulate(m, "flat", k, seed=[rep, int(10 * k)], small=True).kerma_ugy(), (m.pixel_pitch_mm,) * 2)
+            for k in kermas
+        ]
+        g = group_flats(ims, kermas)
+        fit = fit_components([x.kerma_ugy for x in g], [x.variance for x in g], [x.variance_se for x in g])
+        lo, hi = fit.ci(0)
+        hits += lo <= e_true <= hi
+        z.append((fit.params[0] - e_true) / np.sqrt(fit.cov[0, 0]))
+    z = np.array(z)
+    assert hits >= 26, (hits, z)
+    assert abs(z.mean()) < 0.55 and 0.7 < z.std(ddof=1) < 1.35, (z.mean(), z.std(ddof=1))
+
+
 def test_kerma_ratio_ci_coverage_synthetic():
     # two power laws with a known kerma ratio R = 1.4 (B needs 1.4× A's kerma: a_B = a_A·R^β), thresholds drawn
     # log-normally with the standard error their CIs state; the 95 % CI should cover R in ~95 % of repeats
