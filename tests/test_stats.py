@@ -454,6 +454,31 @@ def test_reader_thresholds_outside_the_contrasts_shown_are_flagged_censored():
     assert "&gt; 45 (censored)" in page or "> 45 (censored)" in page
 
 
+def test_analyse_study_is_the_same_to_the_last_bit_with_the_fits_in_chunks(monkeypatch):
+    # The batch fits evaluate their likelihood grid in chunks of rows (GRID_CHUNK_CELLS) to bound memory; every
+    # row is its own ML problem, so a whole study analysed with small chunks must equal the same study with every
+    # batch in one chunk, number for number (JSON floats are written round-trip exact; common practice: a chunked
+    # computation is checked against the unchunked one).
+    import scorer.observer.psychometric as psy
+
+    st = small_study(seed=6, n_repeats=1, n_contrasts=8)
+    calls = []
+    real = psy._fit_k_rows
+    monkeypatch.setattr(psy, "_fit_k_rows", lambda *a: calls.append(a[1].shape[0]) or real(*a))
+    out = {}
+    for chunk in (10**12, 33 * 8 * 16):
+        monkeypatch.setattr(psy, "GRID_CHUNK_CELLS", chunk)
+        calls.clear()
+        a = analyse_study(st.trials, st.model_trials, n_boot=200, seed=4)
+        out[chunk] = (a, dumps(a.to_json()), max(calls), len(calls))
+    (whole, whole_json, whole_rows, whole_calls), (small, small_json, small_rows, small_calls) = out.values()
+    assert whole_rows == 200 * 4 and small_rows <= 16 and small_calls > 5 * whole_calls  # chunks were used
+    assert small_json == whole_json
+    pd.testing.assert_frame_equal(small.reader_curves, whole.reader_curves, check_exact=True)
+    pd.testing.assert_frame_equal(small.comparison, whole.comparison, check_exact=True)
+    assert whole.human_model["factor"] > 1 and len(whole.comparison) == 2  # every bootstrap was exercised
+
+
 def test_bootstrap_block_predicts_the_peak_memory_of_analyse_study():
     # The budget LIMEN_MAX_BOOTSTRAP_CELLS is checked against n_boot × bootstrap_block(); measured with Python's
     # tracemalloc (numpy reports its array buffers to it), the peak memory of analyse_study must grow in proportion
