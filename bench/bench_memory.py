@@ -8,8 +8,11 @@
 2. Peak memory of scoring one image ≤ 8× the image's float64 pixels; the marginal MB per extra image.
 3. A layout with 12 000 targets is refused (LIMEN_MAX_LAYOUT_SITES) within 10 s instead of being scored for
    minutes in gigabytes.
+4. Peak memory of ``analyse_study`` (4 readers, 2 detectors, 8 images, 8 contrasts, model observer) at 1 000 and
+   10 000 bootstrap resamples: the fits' likelihood grid is evaluated in chunks, so ten times the resamples may
+   at most double the peak (before the chunks: 60 and 600 MB).
 
-Run with ``.venv/bin/python -m bench.bench_memory`` (about a minute).
+Run with ``.venv/bin/python -m bench.bench_memory`` (about a minute and a half).
 """
 
 from __future__ import annotations
@@ -31,6 +34,7 @@ from scorer.phantom import load_layout
 
 FLOOR_PEAK_X = 8.0  # peak of scoring one image, in multiples of its float64 pixels
 FLOOR_REFUSAL_S = 10.0
+FLOOR_ANALYSE_X = 2.0  # peak at 10 000 resamples / peak at 1 000
 
 
 def _peak_mb(fn) -> float:
@@ -41,6 +45,20 @@ def _peak_mb(fn) -> float:
         return tracemalloc.get_traced_memory()[1] / 1e6
     finally:
         tracemalloc.stop()
+
+
+def _analyse_peaks() -> dict[int, float]:
+    from scorer.study import analyse_study, simulate_reader_study
+
+    st = simulate_reader_study(
+        np.random.default_rng(5), 4, diameters_mm=(0.25, 1.0), n_images=8, n_repeats=1, n_contrasts=8
+    )
+    analyse_study(st.trials, st.model_trials, n_boot=10)  # imports and tables outside the measurement
+    peaks = {}
+    for n_boot in (1000, 10000):
+        peaks[n_boot] = _peak_mb(lambda n_boot=n_boot: analyse_study(st.trials, st.model_trials, n_boot=n_boot))
+        print(f"  analyse_study, {n_boot} resamples: peak {peaks[n_boot]:.1f} MB", flush=True)
+    return peaks
 
 
 def main() -> dict:
@@ -83,6 +101,9 @@ def main() -> dict:
             refused = "LIMEN_MAX_LAYOUT_SITES" in str(exc)
         refusal_s = time.perf_counter() - t
 
+    analyse = _analyse_peaks()
+    analyse_x = analyse[10000] / analyse[1000]
+
     def peak(n_img, n_sites):
         return next(r["peak_mb"] for r in rows if r["images"] == n_img and r["sites"] == n_sites)
 
@@ -102,6 +123,7 @@ def main() -> dict:
         "image_float64_mb": image_mb,
         "layout_12000_refused": refused,
         "layout_12000_refusal_s": refusal_s,
+        "analyse_peak_mb": analyse,
     }
     Path("bench/results").mkdir(parents=True, exist_ok=True)
     Path("bench/results/bench_memory.json").write_text(json.dumps(out, indent=2))
@@ -114,12 +136,17 @@ def main() -> dict:
         f"(floor: ≤ {FLOOR_PEAK_X:g})"
     )
     print(f"layout_12000_targets_refused: {refusal_s:.2f} s (floor: ≤ {FLOOR_REFUSAL_S:g} s, refused={refused})")
+    print(
+        f"memory_analyse_peak_10000_vs_1000_resamples: {analyse_x:.2f} ({analyse[1000]:.0f} → {analyse[10000]:.0f} MB) "
+        f"(floor: ≤ {FLOOR_ANALYSE_X:g})"
+    )
     ok = (
         ratio_images <= 8
         and ratio_sites <= s_hi / s_lo
         and one_x <= FLOOR_PEAK_X
         and refused
         and refusal_s <= FLOOR_REFUSAL_S
+        and analyse_x <= FLOOR_ANALYSE_X
     )
     if not ok:
         raise SystemExit("bench_memory: floor not met")

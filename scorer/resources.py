@@ -14,9 +14,13 @@ LIMEN_MAX_LAYOUT_SITES         5000       candidate sites (discs and their alter
 LIMEN_MAX_BOOTSTRAP_CELLS      20000000   bootstrap cells held at once: resamples × images for
                                           ``limen score`` (the resampling weights: 160 MB of 64-bit
                                           counts); resamples × the largest per-resample block for
-                                          ``limen analyse`` (its likelihood grids; about 57 bytes per
-                                          cell measured, 1.1 GB at the limit; see
-                                          scorer.study.stats.bootstrap_block)
+                                          ``limen analyse`` (draw counts per image and reader,
+                                          resampled counts per reader × contrast level, stored
+                                          estimates; about 20 bytes per cell measured, 400 MB at the
+                                          limit; see scorer.study.stats.bootstrap_block).  The fits'
+                                          likelihood grid is evaluated in chunks of bounded size
+                                          (about 30 MB, scorer.observer.psychometric.GRID_CHUNK_CELLS)
+                                          and is not counted
 =============================  =========  ==========================================================
 """
 

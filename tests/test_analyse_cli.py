@@ -118,22 +118,23 @@ def test_one_reader_study_gives_notes_not_a_crash(study_files):
 
 
 def test_bootstrap_budget_refuses_before_any_fit(study_files):
-    # reads.csv: 4 readers, 2 detectors, 10 contrasts per diameter (simulate_reader_study's default n_contrasts),
-    # so comparing the detectors refits the 4 readers' curves in every resample at once on the 33-point local
-    # likelihood grid (scorer.study.stats.bootstrap_block): 4 × 33 × 10 = 1320 cells per resample, 660 000 for 500
+    # reads.csv: 4 readers, 2 detectors, 8 images, 10 contrasts per diameter (simulate_reader_study's default
+    # n_contrasts).  Each resample holds the draw counts of the 8 images and 4 readers and the resampled counts of
+    # the 4 readers × 10 levels (refitted at once to compare the detectors; scorer.study.stats.bootstrap_block):
+    # 52 cells per resample, 26 000 for 500.  The likelihood grid is evaluated in chunks and not counted.
     reads = str(study_files / "reads.csv")
     args = ["analyse", reads, "--n-boot", "500", "--json"]
-    over = CliRunner().invoke(main, args, env={"LIMEN_MAX_BOOTSTRAP_CELLS": "659999"})
+    over = CliRunner().invoke(main, args, env={"LIMEN_MAX_BOOTSTRAP_CELLS": "25999"})
     assert over.exit_code == 2, over.output
     lines = over.stderr.strip().splitlines()
-    assert len(lines) == 1 and lines[0].startswith("error: --n-boot 500 ")
-    assert "660000" in lines[0] and "LIMEN_MAX_BOOTSTRAP_CELLS" in lines[0] and "4 curve(s)" in lines[0]
+    assert len(lines) == 1 and lines[0].startswith("error: --n-boot 500 resamples × 52 cells each ")
+    assert "26000" in lines[0] and "LIMEN_MAX_BOOTSTRAP_CELLS" in lines[0] and "4 readers × 10 contrast" in lines[0]
     assert over.stdout == ""  # refused before anything was computed or printed
-    at = CliRunner().invoke(main, args, env={"LIMEN_MAX_BOOTSTRAP_CELLS": "660000"})
+    at = CliRunner().invoke(main, args, env={"LIMEN_MAX_BOOTSTRAP_CELLS": "26000"})
     assert at.exit_code == 0, at.output
-    # one reader, one detector: the largest block is one curve's grid, 33 × 10 = 330 cells per resample
+    # one reader, one detector: 8 images + 1 reader + 1 reader × 10 levels = 19 cells per resample
     one = str(study_files / "one.csv")
     res = CliRunner().invoke(
-        main, ["analyse", one, "--n-boot", "100", "--json"], env={"LIMEN_MAX_BOOTSTRAP_CELLS": "32999"}
+        main, ["analyse", one, "--n-boot", "100", "--json"], env={"LIMEN_MAX_BOOTSTRAP_CELLS": "1899"}
     )
-    assert res.exit_code == 2 and "33000" in res.stderr
+    assert res.exit_code == 2 and "1900" in res.stderr

@@ -103,6 +103,60 @@ def test_batch_fit_equals_single_fit():
         assert f.loglik == pytest.approx(-r.fun, abs=1e-7)  # full binomial log-likelihood (scipy.stats.binom)
 
 
+def test_batch_fit_in_chunks_equals_one_batch(monkeypatch):
+    # Every row of a batch fit is an independent ML problem, so fitting the rows in chunks (bounded memory)
+    # must give the same estimates to the last bit as one batch (common practice: a chunked computation is
+    # checked against the unchunked one).  Rows: 4-image resamples (some far enough from the centre to be
+    # refitted on the full grid), an all-correct row and an all-wrong row (estimates at the search bounds).
+    import scorer.observer.psychometric as psy
+
+    rng = np.random.default_rng(8)
+    ys = np.stack([simulate_images(rng, 4).sum(axis=0) for _ in range(60)] + [np.full(LEVELS.size, 4)])
+    ys = np.vstack([ys, np.zeros(LEVELS.size)])
+    n = np.full_like(ys, 4)
+    whole_k, whole_b = fit_k_batch(LEVELS, ys, n, M, center=true_k(), chunk_cells=10**12)
+    assert whole_b[-2:].all() and not whole_b[:-2].all()
+    assert np.any(np.abs(np.log(whole_k / true_k())) > 2.0)  # rows refitted on the full 121-point grid
+    calls = []
+    real = psy._fit_k_rows
+    monkeypatch.setattr(psy, "_fit_k_rows", lambda *a: calls.append(a[1].shape[0]) or real(*a))
+    for chunk in (1, 33 * LEVELS.size * 7 + 5, 121 * LEVELS.size * 3):
+        calls.clear()
+        k, b = fit_k_batch(LEVELS, ys, n, M, center=true_k(), chunk_cells=chunk)
+        np.testing.assert_array_equal(k, whole_k)
+        np.testing.assert_array_equal(b, whole_b)
+        assert len(calls) > 2 and max(calls) <= max(1, chunk // (33 * LEVELS.size))  # it did fit in chunks
+    # without a centre (121-point grid from the start)
+    k, b = fit_k_batch(LEVELS, ys, n, M, chunk_cells=121 * LEVELS.size * 5)
+    k1, b1 = fit_k_batch(LEVELS, ys, n, M, chunk_cells=10**12)
+    np.testing.assert_array_equal(k, k1)
+    np.testing.assert_array_equal(b, b1)
+
+
+def test_batch_fit_memory_is_bounded_by_the_chunk():
+    # tracemalloc (Python standard library) sees numpy's array buffers.  One batch of 4000 rows × 33 grid points
+    # × 10 levels holds its whole likelihood grid (1.3 million cells, tens of MB with its temporaries); in chunks
+    # of 50 000 cells the peak is a few MB (2.8 MB measured; 74 MB in one batch): the chunk's grid plus the rows'
+    # own counts.
+    import tracemalloc
+
+    rng = np.random.default_rng(9)
+    ys = rng.binomial(8, pc_mafc(true_k() * LEVELS, M), size=(4000, LEVELS.size)).astype(float)
+    n = np.full_like(ys, 8.0)
+    fit_k_batch(LEVELS, ys[:2], n[:2], M)  # the Pc_M table (about 70 MB while it is built) outside the measurement
+    peaks = {}
+    for chunk in (50_000, 10**12):
+        tracemalloc.start()
+        try:
+            fit_k_batch(LEVELS, ys, n, M, center=true_k(), chunk_cells=chunk)
+            peaks[chunk] = tracemalloc.get_traced_memory()[1] / 1e6
+        finally:
+            tracemalloc.stop()
+    rows_mb = ys.nbytes * 2 / 1e6  # the counts themselves (0.6 MB)
+    assert peaks[50_000] < 100 * 50_000 / 1e6 + 4 * rows_mb, peaks
+    assert peaks[10**12] > 30 * 4000 * 33 * LEVELS.size / 1e6, peaks
+
+
 def test_fitted_lapse_recovered():
     # Wichmann & Hill (2001) part I: a lapse rate is identifiable from the upper asymptote.
     rng = np.random.default_rng(3)

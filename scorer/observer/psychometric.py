@@ -65,6 +65,11 @@ DPRIME_MAX = 12.0  # beyond this Pc_M is 1 to double precision for any practical
 LAPSE_MAX = 0.1  # a fitted lapse rate is kept within [0, LAPSE_MAX]
 _FINE_STEP = 2e-4  # step of the fine lookup table in d′
 _EPS = 1e-12  # probabilities are kept within [_EPS, 1 − _EPS] inside logs
+#: most likelihood-grid cells (rows × grid points × contrast levels) a batch fit evaluates at once; larger batches
+#: are fitted in chunks of rows.  The grid and its temporaries take about 60 bytes per cell (tracemalloc), so a
+#: chunk holds about 30 MB whatever the number of rows (e.g. bootstrap resamples); every row is fitted on its own,
+#: so chunking leaves the results unchanged to the last bit
+GRID_CHUNK_CELLS = 500_000
 
 FORMS = ("mafc", "logistic")
 
@@ -180,6 +185,7 @@ def fit_k_batch(
     n_grid: int = 121,
     n_golden: int = 44,
     center: float | None = None,
+    chunk_cells: int | None = None,
 ) -> tuple[np.ndarray, np.ndarray]:
     """Maximum-likelihood k of the M-AFC form for many data sets at once.
 
@@ -188,6 +194,9 @@ def fit_k_batch(
     levels : (L,) contrasts shared by all data sets.
     y, n : (B, L) correct counts and trial counts, one row per data set (e.g. bootstrap resamples).
     m_alternatives, lapse, guess_rate : as in :func:`fit_psychometric` (lapse fixed here).
+    chunk_cells : most grid cells (rows × grid points × levels) evaluated at once; default
+        :data:`GRID_CHUNK_CELLS`.  Rows are fitted in chunks of that size (at least one row per chunk),
+        so memory is bounded by the chunk, not by B; the results do not depend on it.
 
     Returns
     -------
@@ -207,23 +216,52 @@ def fit_k_batch(
         lo_f, hi_f = np.log(_k_bounds(np.asarray(levels, dtype=float)))
         lo_c, hi_c = max(np.log(center) - 2.0, lo_f), min(np.log(center) + 2.0, hi_f)
         k, at_b = _fit_k_grid(
-            levels, y2, n2, m_alternatives, lapse, guess_rate, np.linspace(lo_c, hi_c, 33), n_golden - 8, (lo_f, hi_f)
+            levels,
+            y2,
+            n2,
+            m_alternatives,
+            lapse,
+            guess_rate,
+            np.linspace(lo_c, hi_c, 33),
+            n_golden - 8,
+            (lo_f, hi_f),
+            chunk_cells,
         )
         edge = ((np.log(k) - lo_c < 0.13) & (lo_c > lo_f)) | ((hi_c - np.log(k) < 0.13) & (hi_c < hi_f))
         if edge.any():
-            k_e, b_e = fit_k_batch(levels, y2[edge], n2[edge], m_alternatives, lapse, guess_rate, n_grid, n_golden)
+            k_e, b_e = fit_k_batch(
+                levels, y2[edge], n2[edge], m_alternatives, lapse, guess_rate, n_grid, n_golden, chunk_cells=chunk_cells
+            )
             k, at_b = k.copy(), at_b.copy()
             k[edge], at_b[edge] = k_e, b_e
         return k, at_b
     levels = np.asarray(levels, dtype=float)
     lo, hi = np.log(_k_bounds(levels))
-    return _fit_k_grid(levels, y, n, m_alternatives, lapse, guess_rate, np.linspace(lo, hi, n_grid), n_golden, (lo, hi))
+    grid = np.linspace(lo, hi, n_grid)
+    return _fit_k_grid(levels, y, n, m_alternatives, lapse, guess_rate, grid, n_golden, (lo, hi), chunk_cells)
 
 
-def _fit_k_grid(levels, y, n, m_alternatives, lapse, guess_rate, grid, n_golden, bounds):
+def _fit_k_grid(levels, y, n, m_alternatives, lapse, guess_rate, grid, n_golden, bounds, chunk_cells=None):
+    """:func:`_fit_k_rows` on chunks of rows holding at most ``chunk_cells`` grid cells each."""
     levels = np.asarray(levels, dtype=float)
     y = np.atleast_2d(np.asarray(y, dtype=float))
     n = np.atleast_2d(np.asarray(n, dtype=float))
+    cells = GRID_CHUNK_CELLS if chunk_cells is None else int(chunk_cells)
+    rows = max(1, cells // (grid.size * max(levels.size, 1)))
+    if y.shape[0] <= rows:
+        return _fit_k_rows(levels, y, n, m_alternatives, lapse, guess_rate, grid, n_golden, bounds)
+    k = np.empty(y.shape[0])
+    at_bound = np.empty(y.shape[0], dtype=bool)
+    for s in range(0, y.shape[0], rows):
+        part = slice(s, s + rows)
+        k[part], at_bound[part] = _fit_k_rows(
+            levels, y[part], n[part], m_alternatives, lapse, guess_rate, grid, n_golden, bounds
+        )
+    return k, at_bound
+
+
+def _fit_k_rows(levels, y, n, m_alternatives, lapse, guess_rate, grid, n_golden, bounds):
+    """Grid search then golden-section refinement of log k for every row of ``y``, ``n`` (2-D) at once."""
     m = int(m_alternatives)
     gamma = 1.0 / m if guess_rate is None else float(guess_rate)
     lo, hi = bounds

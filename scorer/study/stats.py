@@ -958,25 +958,26 @@ def model_curves(
     return reader_curves(model, m, rng, n_boot, by, criterion_pc)
 
 
-#: points of the local likelihood grid :func:`~scorer.observer.psychometric.fit_k_batch` evaluates for every
-#: resample at once when refitting around the full-data estimate (rows at its edge are refitted on the full grid)
-_RESAMPLE_GRID_POINTS = 33
-
-
 def bootstrap_block(trials: pd.DataFrame, model: pd.DataFrame | None, by: str) -> tuple[int, str]:
-    """The most cells one bootstrap resample holds at once in :func:`analyse_study`, and where.
+    """The most bootstrap cells one resample holds at once in :func:`analyse_study`, and where.
 
-    Per group × diameter every resample holds one draw count per image (:func:`bootstrap_weights`: each
-    reader's images, the readers' crossed draw, the model's), the resampled counts per reader × contrast level,
-    and, largest, the likelihood grid over which each fit is refitted (:func:`fit_k_batch`:
-    33 points × contrast levels per fitted curve).  One curve is fitted per resample for a reader's CI, the pooled
-    human curve and the model's; the image-sampling variance of a comparison between groups fits every reader's
-    curve in each resample at once, readers × 33 × levels.  The block is the largest of these.  Each cell of the
-    grid carries a few temporaries of 8 bytes (about 60 bytes per cell measured).
+    A cell is one number per resample that stays in memory while a group × diameter is refitted.  Per group ×
+    diameter every resample holds its draw counts, one per image (:func:`bootstrap_weights`: each reader's
+    images, the human/model factor's image draw, the model's) and one per reader (the factor's crossed reader
+    draw), and its resampled counts per reader × contrast level (the image-sampling variance of a comparison
+    between groups refits every reader's curve in each resample at once).  With a model-observer table the
+    human/model factor also keeps one estimate per group × diameter for every resample until it forms the
+    overall factor.  The block is the largest images + readers + readers × levels over the group × diameter
+    pairs, plus those stored estimates.  Each cell costs about 20 bytes measured with tracemalloc (correct and
+    trial counts, and their floating-point copies for the fit; tests/test_stats.py).
+
+    The likelihood grid of the fits is not counted: :func:`~scorer.observer.psychometric.fit_k_batch` evaluates
+    it in chunks of at most :data:`~scorer.observer.psychometric.GRID_CHUNK_CELLS` cells (about 30 MB)
+    whatever the number of resamples.
     """
     best, where = 0, ""
-    n_groups = trials[by].nunique()
-    for (grp, diam), g in trials.groupby([by, "diameter_mm"], sort=True):
+    pairs = trials.groupby([by, "diameter_mm"], sort=True)
+    for (grp, diam), g in pairs:
         levels = set(g["contrast"].unique())
         images = g["image"].nunique()
         if model is not None:
@@ -984,15 +985,16 @@ def bootstrap_block(trials: pd.DataFrame, model: pd.DataFrame | None, by: str) -
             levels |= set(gm["contrast"].unique())
             images = max(images, gm["image"].nunique())
         n_readers = g["reader"].nunique()
-        curves = n_readers if n_groups > 1 else 1  # curves fitted per resample at once
-        grid = curves * _RESAMPLE_GRID_POINTS * len(levels)
-        for size, what in (
-            (images, f"{images} images"),
-            (n_readers * len(levels), f"{n_readers} readers × {len(levels)} contrast levels"),
-            (grid, f"likelihood grid of {curves} curve(s) × {_RESAMPLE_GRID_POINTS} points × {len(levels)} levels"),
-        ):
-            if size > best:
-                best, where = int(size), f"{what}, {by} {grp} at {float(diam):g} mm"
+        size = images + n_readers + n_readers * len(levels)
+        if size > best:
+            best = int(size)
+            where = (
+                f"draws of {images} images and {n_readers} readers, counts of {n_readers} readers × "
+                f"{len(levels)} contrast levels, {by} {grp} at {float(diam):g} mm"
+            )
+    if model is not None and pairs.ngroups:
+        best += int(pairs.ngroups)
+        where += f"; {pairs.ngroups} human/model factor estimates ({by} × diameter)"
     return best, where
 
 
@@ -1021,7 +1023,8 @@ def analyse_study(
         raise LimenError(f"--by column {by!r} is not in the model-observer table")
     say = progress or (lambda s: None)
     if n_boot > 0:
-        # the resampled counts are allocated per group × diameter inside the fits; refuse before any of them
+        # the draws and resampled counts are allocated per group × diameter inside the fits (the likelihood grid
+        # in chunks of bounded size); refuse before any of them
         block, where = bootstrap_block(trials, model, by)
         check_limit(
             "LIMEN_MAX_BOOTSTRAP_CELLS",
