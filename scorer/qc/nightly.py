@@ -6,6 +6,7 @@ write each in one transaction, quarantine what cannot be scored, raise and e-mai
 
 from __future__ import annotations
 
+import os
 import sys
 import time
 from dataclasses import dataclass, field
@@ -105,7 +106,8 @@ def run_nightly(
         # an unreachable Dask scheduler is reported before any work is done
         with make_runner(workers, dask) as runner:
             result.runner = runner.name
-            _scan(inbox, qdir, config, store, settle_s, result, tm, progress)
+            hash_threads = max(1, min(int(workers or 1), os.cpu_count() or 1)) if dask is None else 1
+            _scan(inbox, qdir, config, store, settle_s, result, tm, progress, hash_threads)
             fault_point("scanned")
             _score(config, store, qdir, runner, lease_s, result, tm, progress)
         t = time.perf_counter()
@@ -138,7 +140,7 @@ def _display(url: str) -> str:
 
 
 # --------------------------------------------------------------------------- scan
-def _scan(inbox, qdir, config, store, settle_s, result, tm, progress):
+def _scan(inbox, qdir, config, store, settle_s, result, tm, progress, hash_threads=1):
     from tqdm import tqdm
 
     t = time.perf_counter()
@@ -146,7 +148,7 @@ def _scan(inbox, qdir, config, store, settle_s, result, tm, progress):
     cache = store.file_cache()
     tm.add("db_s", time.perf_counter() - t)
     now = time.time()
-    hashed, remember = [], []
+    hashed, remember, to_hash = [], [], []
     t = time.perf_counter()
     for f in files:
         try:
@@ -160,9 +162,10 @@ def _scan(inbox, qdir, config, store, settle_s, result, tm, progress):
         if c and c[0] == st.st_size and c[1] == str(st.st_mtime_ns):
             hashed.append((f, c[2]))
             continue
-        try:
-            sha = image_content_hash(f)
-        except LimenError:
+        to_hash.append((f, st))
+    # new files are hashed on as many threads as the run has workers (hashlib releases the GIL on large reads)
+    for (f, st), sha in zip(to_hash, _hash_all([f for f, _ in to_hash], hash_threads)):
+        if sha is None:
             continue  # vanished between listing and reading
         hashed.append((f, sha))
         remember.append((str(f), st.st_size, str(st.st_mtime_ns), sha))
@@ -201,6 +204,23 @@ def _scan(inbox, qdir, config, store, settle_s, result, tm, progress):
     store.add_images(new)
     store.remember_files(remember)
     tm.add("db_s", time.perf_counter() - t)
+
+
+def _hash_one(path):
+    try:
+        return image_content_hash(path)
+    except LimenError:
+        return None
+
+
+def _hash_all(paths, threads: int) -> list:
+    """SHA-256 of each file (None for one that vanished), in order; on ``threads`` threads."""
+    if threads <= 1 or len(paths) < 2:
+        return [_hash_one(p) for p in paths]
+    from concurrent.futures import ThreadPoolExecutor
+
+    with ThreadPoolExecutor(max_workers=threads, thread_name_prefix="limen-hash") as ex:
+        return list(ex.map(_hash_one, paths))
 
 
 def _quarantine(store, qdir, path, sha, reason, result):
