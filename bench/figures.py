@@ -107,6 +107,13 @@ FIGURES = [
         "≤ ratio of sites",
     ),
     Figure("memory_peak_per_extra_image", "bench_memory.json", lambda r: r["peak_per_extra_image_mb"], "MB", "—"),
+    Figure(
+        "memory_analyse_peak_10000_over_1000_resamples",
+        "bench_memory.json",
+        lambda r: r["analyse_peak_mb"]["10000"] / r["analyse_peak_mb"]["1000"],
+        "×",
+        "≤ 2",
+    ),
     Figure("memory_refuse_12000_targets_s", "bench_memory.json", lambda r: r["layout_12000_refusal_s"], "s", "≤ 10"),
 ]
 
