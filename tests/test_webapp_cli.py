@@ -99,3 +99,49 @@ def test_serve_demo_gives_a_study_a_newcomer_can_read(tmp_path):
     finally:
         proc.terminate()
         proc.wait(timeout=20)
+
+
+def test_users_disable_enable_and_password_reset(tmp_path):
+    """A reader who leaves is disabled: no new sign-in, and a session already open ends at its next request
+    (common practice for shared clinical systems); enabling restores the account; a reset password replaces the
+    old one; every change is in the audit log; an unknown name is one line, exit 2."""
+    from webapp import create_app
+    from webapp_helpers import csrf_from
+
+    inst = str(tmp_path / "inst")
+
+    def cli(*args, **kw):
+        return CliRunner().invoke(main, ["users", *args, "--instance", inst], **kw)
+
+    r = cli("add", "dr.hale", "--role", "coordinator", "--generate")
+    coord_pw = re.search(r"password \(shown once\): (\S+)", r.output).group(1)
+    r = cli("add", "reader_07", "--role", "reader", "--generate")
+    old_pw = re.search(r"password \(shown once\): (\S+)", r.output).group(1)
+    app = create_app({"INSTANCE_PATH": inst})
+
+    def sign_in(name, pw):
+        c = app.test_client()
+        tok = csrf_from(c.get("/login").text)
+        return c, c.post("/login", data={"username": name, "password": pw, "csrf_token": tok}).status_code
+
+    reader, code = sign_in("reader_07", old_pw)
+    assert code == 302 and reader.get("/reading/").status_code == 200
+    r = cli("disable", "reader_07")
+    assert r.exit_code == 0 and "disabled reader_07" in r.output
+    assert reader.get("/reading/").status_code in (302, 401)  # the open session is over
+    assert sign_in("reader_07", old_pw)[1] != 302
+    r = cli("list")
+    assert re.search(r"reader_07\s+reader\s+disabled", r.output)
+    assert cli("enable", "reader_07").exit_code == 0
+    assert sign_in("reader_07", old_pw)[1] == 302
+    r = cli("password", "reader_07", input="a new long secret\na new long secret\n")
+    assert r.exit_code == 0 and "a new long secret" not in r.output
+    assert sign_in("reader_07", old_pw)[1] != 302
+    assert sign_in("reader_07", "a new long secret")[1] == 302
+    r = cli("password", "reader_07", input="short\nshort\n")
+    assert r.exit_code == 2 and "at least 10 characters" in r.output
+    r = cli("disable", "nobody")
+    assert r.exit_code == 2 and r.output.count("\n") == 1 and "no account named 'nobody'" in r.output
+    coord, code = sign_in("dr.hale", coord_pw)
+    audit = coord.get("/coordinator/audit").text
+    assert all(a in audit for a in ("disable_user", "enable_user", "reset_password"))

@@ -36,7 +36,7 @@ def _with_db(f):
 
 @click.group("users")
 def users():
-    """Add and list the web app's accounts."""
+    """Add, list, disable, enable the web app's accounts and reset passwords."""
 
 
 @users.command("add")
@@ -93,3 +93,72 @@ def list_users(db_url, instance):
     with app.app_context():
         for u in db().execute(select(User).order_by(User.username)).scalars():
             click.echo(f"{u.username:<24}{u.role:<13}{'active' if u.active else 'disabled'}")
+
+
+def _change(name, db_url, instance, action: str, detail: dict, change) -> None:
+    """Apply ``change(user)`` to account NAME in one transaction with an audit entry; unknown NAME is an error."""
+    from sqlalchemy import select
+
+    from webapp.models import AuditEntry, User
+    from webapp.security import db
+
+    app = _app(db_url, instance)
+    with app.app_context():
+        s = db()
+        user = s.execute(select(User).where(User.username == name)).scalars().first()
+        if user is None:
+            raise LimenError(f"no account named {name!r} (see 'limen users list')")
+        change(user)
+        s.add(AuditEntry(user_id=None, action=action, detail=json.dumps({"username": name, **detail})))
+        s.commit()
+
+
+@users.command("disable")
+@click.argument("name")
+@_with_db
+def disable(name, db_url, instance):
+    """Disable account NAME: it can no longer sign in, and a signed-in session ends at its next request.
+
+    Its reads and the studies it coordinated stay as they are (nothing is deleted).
+    """
+    _change(
+        name, db_url, instance, "disable_user", {"via": "limen users disable"}, lambda u: setattr(u, "active", False)
+    )
+    click.echo(f"disabled {name}")
+
+
+@users.command("enable")
+@click.argument("name")
+@_with_db
+def enable(name, db_url, instance):
+    """Enable account NAME again."""
+    _change(name, db_url, instance, "enable_user", {"via": "limen users enable"}, lambda u: setattr(u, "active", True))
+    click.echo(f"enabled {name}")
+
+
+@users.command("password")
+@click.argument("name")
+@click.option("--generate", is_flag=True, help="Generate a password and show it once instead of prompting.")
+@_with_db
+def password(name, generate, db_url, instance):
+    """Set a new password for account NAME (prompted, or generated with --generate)."""
+    from webapp.security import hash_password
+
+    if generate:
+        new = secrets.token_urlsafe(12)
+    else:
+        new = click.prompt("new password", hide_input=True, confirmation_prompt=True)
+        if len(new) < 10:
+            raise LimenError("password: at least 10 characters")
+    hashed = hash_password(new)
+    _change(
+        name,
+        db_url,
+        instance,
+        "reset_password",
+        {"via": "limen users password"},
+        lambda u: setattr(u, "password_hash", hashed),
+    )
+    click.echo(f"new password set for {name}")
+    if generate:
+        click.echo(f"password (shown once): {new}")
