@@ -209,10 +209,30 @@ def _simulate_series(d: Path, panel: str, seed: int) -> str:
     return str(path)
 
 
+def _against_limits(out: Path, panel: str) -> list[str]:
+    """Options that score a panel's plate as the readers would see it: NPWE templates shaped by the measured
+    MTF, thresholds turned human-equivalent by the reader study's factor and checked against the example
+    limits (shared by the verdict and the dose series)."""
+    from scorer.observer import EXAMPLE_LIMITS
+
+    d = out / panel
+    return [
+        "--observer",
+        "npwe",
+        "--conversion",
+        str(d / "images" / f"{panel}-conversion.toml"),
+        "--mtf",
+        str(d / "detector" / "detector.json"),
+        "--limits",
+        str(EXAMPLE_LIMITS),
+        "--human-factor-from",
+        str(out / "reader-study" / "analysis" / "analysis.json"),
+    ]
+
+
 def _dose_series(out: Path) -> list[tuple[str, str]]:
     """Each panel's plate images at four kermas (25–180 µGy), scored per kerma with the NPWE observer; the
     kerma at which each diameter meets the example limits through the readers' human/model factor."""
-    from scorer.observer import EXAMPLE_LIMITS
 
     links = []
     for panel in ("direct", "indirect"):
@@ -223,16 +243,7 @@ def _dose_series(out: Path) -> list[tuple[str, str]]:
             [
                 "dose-series",
                 *images,
-                "--observer",
-                "npwe",
-                "--conversion",
-                str(d / "images" / f"{panel}-conversion.toml"),
-                "--mtf",
-                str(d / "detector" / "detector.json"),
-                "--limits",
-                str(EXAMPLE_LIMITS),
-                "--human-factor-from",
-                str(out / "reader-study" / "analysis" / "analysis.json"),
+                *_against_limits(out, panel),
                 "--out",
                 str(d / "dose-series"),
             ]
@@ -330,7 +341,6 @@ def _reader_study(out: Path) -> list[tuple[str, str]]:
     import pandas as pd
 
     import scorer.study.reader_model as reader_model
-    from scorer.observer import EXAMPLE_LIMITS
 
     study = out / "reader-study"
     study.mkdir(parents=True, exist_ok=True)
@@ -373,16 +383,7 @@ def _reader_study(out: Path) -> list[tuple[str, str]]:
             [
                 "score",
                 *images,
-                "--observer",
-                "npwe",
-                "--conversion",
-                str(d / "images" / f"{panel}-conversion.toml"),
-                "--mtf",
-                str(d / "detector" / "detector.json"),
-                "--limits",
-                str(EXAMPLE_LIMITS),
-                "--human-factor-from",
-                str(study / "analysis" / "analysis.json"),
+                *_against_limits(out, panel),
                 "--replace",
                 "--out",
                 str(d / "verdict"),
