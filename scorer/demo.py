@@ -33,6 +33,10 @@ N_PHANTOM = 8
 #: (direct panel ≈ 209 µGy, indirect ≈ 290 µGy), with few small images per group to keep the demo short
 SERIES_UGY = (25.0, 50.0, 180.0)
 N_SERIES = 4
+#: the plate lies slightly turned, as on a real table (registration must find it)
+PHANTOM_ROTATE_DEG = 1.5
+#: two slanted edges per panel: near-vertical and near-horizontal (MTF in both directions)
+EDGE_ANGLES_DEG = (2.5, 92.5)
 
 
 def _limen(args: list[str], allowed_exit=(0,)) -> int:
@@ -50,90 +54,40 @@ def _limen(args: list[str], allowed_exit=(0,)) -> int:
     return code
 
 
+def _simulate(
+    panel: str,
+    kind: str,
+    folder: Path,
+    seed: int,
+    *,
+    count: int | None = None,
+    dose_ugy: float = DOSE_UGY,
+    edge_angle_deg: float | None = None,
+    rotate_deg: float | None = None,
+) -> None:
+    """One ``limen simulate`` step of the demo: small field, images of one panel, kind and kerma into folder
+    (replacing those of an earlier demo run)."""
+    args = ["simulate", "--detector", panel, "--kind", kind, "--small"]
+    if count is not None:
+        args += ["--count", str(count)]
+    if edge_angle_deg is not None:
+        args += ["--edge-angle-deg", str(edge_angle_deg)]
+    args += ["--dose-ugy", str(dose_ugy)]
+    if rotate_deg is not None:
+        args += ["--rotate", str(rotate_deg)]
+    _limen([*args, "--seed", str(seed), "--out", str(folder), "--overwrite"])
+
+
 def run(out: Path) -> Path:
     out = Path(out)
     t0 = time.perf_counter()
     links: list[tuple[str, str]] = []
     for panel, seed in (("direct", 417), ("indirect", 2291)):
         d = out / panel
-        _limen(
-            [
-                "simulate",
-                "--detector",
-                panel,
-                "--kind",
-                "phantom",
-                "--small",
-                "--count",
-                str(N_PHANTOM),
-                "--dose-ugy",
-                str(DOSE_UGY),
-                "--rotate",
-                "1.5",
-                "--seed",
-                str(seed),
-                "--out",
-                str(d / "images"),
-                "--overwrite",
-            ]
-        )
-        _limen(
-            [
-                "simulate",
-                "--detector",
-                panel,
-                "--kind",
-                "flat",
-                "--small",
-                "--count",
-                "4",
-                "--dose-ugy",
-                str(DOSE_UGY),
-                "--seed",
-                str(seed + 1),
-                "--out",
-                str(d / "flats"),
-                "--overwrite",
-            ]
-        )
-        _limen(
-            [
-                "simulate",
-                "--detector",
-                panel,
-                "--kind",
-                "edge",
-                "--small",
-                "--edge-angle-deg",
-                "2.5",
-                "--dose-ugy",
-                str(DOSE_UGY),
-                "--seed",
-                str(seed + 2),
-                "--out",
-                str(d / "edges"),
-                "--overwrite",
-            ]
-        )
-        _limen(
-            [
-                "simulate",
-                "--detector",
-                panel,
-                "--kind",
-                "edge",
-                "--small",
-                "--edge-angle-deg",
-                "92.5",
-                "--dose-ugy",
-                str(DOSE_UGY),
-                "--seed",
-                str(seed + 3),
-                "--out",
-                str(d / "edges"),
-                "--overwrite",
-            ]
-        )
+        _simulate(panel, "phantom", d / "images", seed, count=N_PHANTOM, rotate_deg=PHANTOM_ROTATE_DEG)
+        _simulate(panel, "flat", d / "flats", seed + 1, count=4)
+        for i, angle_deg in enumerate(EDGE_ANGLES_DEG):  # near-vertical and near-horizontal edge
+            _simulate(panel, "edge", d / "edges", seed + 2 + i, edge_angle_deg=angle_deg)
         noise_csv = _simulate_series(d, panel, seed)
         conv = str(d / "images" / f"{panel}-conversion.toml")
         images = sorted(str(p) for p in (d / "images").glob("*.dcm"))
@@ -239,56 +193,46 @@ def _simulate_series(d: Path, panel: str, seed: int) -> str:
     """Phantom images and flat fields at the series' other kermas; returns the flats' CSV path,kerma_ugy."""
     rows = ["path,kerma_ugy"] + [f"{p.resolve()},{DOSE_UGY:g}" for p in sorted((d / "flats").glob("*.dcm"))]
     for i, k in enumerate(SERIES_UGY):
-        _limen(
-            [
-                "simulate",
-                "--detector",
-                panel,
-                "--kind",
-                "phantom",
-                "--small",
-                "--count",
-                str(N_SERIES),
-                "--dose-ugy",
-                str(k),
-                "--rotate",
-                "1.5",
-                "--seed",
-                str(seed + 10 + i),
-                "--out",
-                str(d / "dose" / f"{k:g}uGy"),
-                "--overwrite",
-            ]
+        _simulate(
+            panel,
+            "phantom",
+            d / "dose" / f"{k:g}uGy",
+            seed + 10 + i,
+            count=N_SERIES,
+            dose_ugy=k,
+            rotate_deg=PHANTOM_ROTATE_DEG,
         )
-        _limen(
-            [
-                "simulate",
-                "--detector",
-                panel,
-                "--kind",
-                "flat",
-                "--small",
-                "--count",
-                "2",
-                "--dose-ugy",
-                str(k),
-                "--seed",
-                str(seed + 20 + i),
-                "--out",
-                str(d / "dose-flats" / f"{k:g}uGy"),
-                "--overwrite",
-            ]
-        )
+        _simulate(panel, "flat", d / "dose-flats" / f"{k:g}uGy", seed + 20 + i, count=2, dose_ugy=k)
         rows += [f"{p.resolve()},{k:g}" for p in sorted((d / "dose-flats" / f"{k:g}uGy").glob("*.dcm"))]
     path = d / "dose-flats" / "flats.csv"
     atomic_write_text(path, "\n".join(rows) + "\n")
     return str(path)
 
 
+def _against_limits(out: Path, panel: str) -> list[str]:
+    """Options that score a panel's plate as the readers would see it: NPWE templates shaped by the measured
+    MTF, thresholds turned human-equivalent by the reader study's factor and checked against the example
+    limits (shared by the verdict and the dose series)."""
+    from scorer.observer import EXAMPLE_LIMITS
+
+    d = out / panel
+    return [
+        "--observer",
+        "npwe",
+        "--conversion",
+        str(d / "images" / f"{panel}-conversion.toml"),
+        "--mtf",
+        str(d / "detector" / "detector.json"),
+        "--limits",
+        str(EXAMPLE_LIMITS),
+        "--human-factor-from",
+        str(out / "reader-study" / "analysis" / "analysis.json"),
+    ]
+
+
 def _dose_series(out: Path) -> list[tuple[str, str]]:
     """Each panel's plate images at four kermas (25–180 µGy), scored per kerma with the NPWE observer; the
     kerma at which each diameter meets the example limits through the readers' human/model factor."""
-    from scorer.observer import EXAMPLE_LIMITS
 
     links = []
     for panel in ("direct", "indirect"):
@@ -299,16 +243,7 @@ def _dose_series(out: Path) -> list[tuple[str, str]]:
             [
                 "dose-series",
                 *images,
-                "--observer",
-                "npwe",
-                "--conversion",
-                str(d / "images" / f"{panel}-conversion.toml"),
-                "--mtf",
-                str(d / "detector" / "detector.json"),
-                "--limits",
-                str(EXAMPLE_LIMITS),
-                "--human-factor-from",
-                str(out / "reader-study" / "analysis" / "analysis.json"),
+                *_against_limits(out, panel),
                 "--out",
                 str(d / "dose-series"),
             ]
@@ -406,7 +341,6 @@ def _reader_study(out: Path) -> list[tuple[str, str]]:
     import pandas as pd
 
     import scorer.study.reader_model as reader_model
-    from scorer.observer import EXAMPLE_LIMITS
 
     study = out / "reader-study"
     study.mkdir(parents=True, exist_ok=True)
@@ -449,16 +383,7 @@ def _reader_study(out: Path) -> list[tuple[str, str]]:
             [
                 "score",
                 *images,
-                "--observer",
-                "npwe",
-                "--conversion",
-                str(d / "images" / f"{panel}-conversion.toml"),
-                "--mtf",
-                str(d / "detector" / "detector.json"),
-                "--limits",
-                str(EXAMPLE_LIMITS),
-                "--human-factor-from",
-                str(study / "analysis" / "analysis.json"),
+                *_against_limits(out, panel),
                 "--replace",
                 "--out",
                 str(d / "verdict"),

@@ -6,6 +6,8 @@ import sys
 
 import click
 
+from scorer.commands import options
+
 from scorer.reports import dumps
 
 
@@ -25,7 +27,7 @@ from scorer.reports import dumps
     help="Column whose levels are compared (ratio of thresholds to the reference level).",
 )
 @click.option("--reference", default=None, help="Reference level of --by (default: first in sort order).")
-@click.option("--n-boot", type=click.IntRange(0, 100000), default=1000, show_default=True, help="Bootstrap resamples.")
+@options.n_boot("Bootstrap resamples.")
 @click.option(
     "--criterion",
     "criterion_pc",
@@ -33,26 +35,10 @@ from scorer.reports import dumps
     default=None,
     help="Threshold proportion correct (default: halfway between chance and 1).",
 )
-@click.option(
-    "--seed",
-    type=click.IntRange(min=0),
-    default=0,
-    show_default=True,
-    help="Seed of the bootstrap (non-negative integer); the same seed gives the same intervals.",
-)
-@click.option("--json", "as_json", is_flag=True, help="Print one JSON object on stdout.")
-@click.option(
-    "--out",
-    "out_dir",
-    type=click.Path(file_okay=False),
-    default=None,
-    help="Write analysis.json, CSV tables and report.html here.",
-)
-@click.option(
-    "--replace",
-    is_flag=True,
-    help="Let --out name a folder an earlier run wrote to: its files are replaced (others are kept).",
-)
+@options.seed()
+@options.json_output()
+@options.out_folder("Write analysis.json, CSV tables and report.html here.")
+@options.replace()
 def analyse(responses, model_file, by, reference, n_boot, criterion_pc, seed, as_json, out_dir, replace):
     """Per-reader and pooled contrast-detail curves, human/model factor, group comparison, agreement."""
     from scorer.images.io import image_content_hash as file_sha256  # SHA-256 of a file's bytes

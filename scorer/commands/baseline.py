@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import click
 
+from scorer.commands import options
 from scorer.errors import LimenError
 from scorer.reports import dumps
 
@@ -21,7 +22,7 @@ def baseline():
 
 
 @baseline.command("show")
-@click.option("--db", required=True, help="Database URL or SQLite file written by `limen nightly`.")
+@options.nightly_db()
 @click.option("--detector", default=None, help="Only this detector (its name in the database).")
 @click.option("--json", "as_json", is_flag=True)
 def show(db, detector, as_json):
@@ -64,7 +65,7 @@ def show(db, detector, as_json):
 
 
 @baseline.command("set")
-@click.option("--db", required=True, help="Database URL or SQLite file written by `limen nightly`.")
+@options.nightly_db()
 @click.option("--detector", required=True, help="The detector's name in the database.")
 @click.option("--sessions", default=None, help="Comma-separated session ids (from `limen trend` or --json).")
 @click.option("--from", "date_from", default=None, help="First session date (YYYY-MM-DD) of the baseline.")
@@ -97,7 +98,7 @@ def set_(db, detector, sessions, date_from, date_to):
 
 
 @baseline.command("clear")
-@click.option("--db", required=True, help="Database URL or SQLite file written by `limen nightly`.")
+@options.nightly_db()
 @click.option("--detector", required=True, help="The detector's name in the database.")
 def clear(db, detector):
     """Forget a detector's baseline; the automatic one is rebuilt from its first sessions."""

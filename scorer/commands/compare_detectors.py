@@ -13,6 +13,7 @@ from scorer.detector.comparison import load_dose_json
 from scorer.errors import LimenError
 from scorer.files import OutputFolder, atomic_write_text
 from scorer.reports import dumps, write_json
+from scorer.commands import options
 from scorer.commands.detector import alternatives_from_options, diameters_from_options
 
 
@@ -33,21 +34,11 @@ from scorer.commands.detector import alternatives_from_options, diameters_from_o
     default=None,
     help="'limen score' JSON of phantom images from the second detector.",
 )
-@click.option(
-    "--layout",
-    "layout_file",
-    type=click.Path(dir_okay=False),
-    default=None,
-    help="Phantom layout whose diameters get predicted thresholds.",
-)
-@click.option("--diameters", default=None, help="Disc diameters (mm, comma-separated) for predicted thresholds.")
-@click.option(
-    "--alternatives",
-    "m_alternatives",
-    type=click.IntRange(2, 64),
-    default=None,
-    help="M of the M-AFC criterion for predicted thresholds [default: each diameter's M in --layout or in the "
-    "scored results, else 4].",
+@options.layout(options.PREDICTION_LAYOUT_HELP)
+@options.diameters()
+@options.alternatives(
+    "M of the M-AFC criterion for predicted thresholds [default: each diameter's M in --layout or in the "
+    "scored results, else 4]."
 )
 @click.option(
     "--scored-method",
@@ -65,19 +56,9 @@ from scorer.commands.detector import alternatives_from_options, diameters_from_o
 @click.option(
     "--dose-b", type=click.Path(dir_okay=False), default=None, help="'limen dose-series' JSON of the second detector."
 )
-@click.option("--json", "as_json", is_flag=True, help="Print one JSON object on stdout.")
-@click.option(
-    "--out",
-    "out_dir",
-    type=click.Path(file_okay=False),
-    default=None,
-    help="Write comparison.json, comparison.csv and comparison.html here.",
-)
-@click.option(
-    "--replace",
-    is_flag=True,
-    help="Let --out name a folder an earlier run wrote to: its files are replaced (others are kept).",
-)
+@options.json_output()
+@options.out_folder("Write comparison.json, comparison.csv and comparison.html here.")
+@options.replace()
 def compare_detectors(
     detector_a,
     detector_b,

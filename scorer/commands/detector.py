@@ -11,6 +11,7 @@ from pathlib import Path
 import click
 import numpy as np
 
+from scorer.commands import options
 from scorer.images import load_conversion
 from scorer.detector.measure import central_mean, fit_conversion, measure_detector, measure_noise_series, q_for_beam
 from scorer.errors import LimenError
@@ -207,34 +208,14 @@ def load_images_warn(paths, *, spacing, conversion, role: str, for_conversion_fi
     "with CIs, the quantum-limited kerma range, and the DQE at each kerma (may be the "
     "--fit-conversion file).",
 )
-@click.option("--diameters", default=None, help="Disc diameters (mm, comma-separated) for predicted thresholds.")
-@click.option(
-    "--layout",
-    "layout_file",
-    type=click.Path(dir_okay=False),
-    default=None,
-    help="Phantom layout whose diameters get predicted thresholds.",
+@options.diameters()
+@options.layout(options.PREDICTION_LAYOUT_HELP)
+@options.alternatives(
+    "M of the M-AFC criterion used for predicted thresholds [default: each diameter's M in --layout, else 4]."
 )
-@click.option(
-    "--alternatives",
-    "m_alternatives",
-    type=click.IntRange(2, 64),
-    default=None,
-    help="M of the M-AFC criterion used for predicted thresholds [default: each diameter's M in --layout, else 4].",
-)
-@click.option("--json", "as_json", is_flag=True, help="Print one JSON object on stdout.")
-@click.option(
-    "--out",
-    "out_dir",
-    type=click.Path(file_okay=False),
-    default=None,
-    help="Write detector.json, detector.csv, nnps_2d.npy and detector.html here.",
-)
-@click.option(
-    "--replace",
-    is_flag=True,
-    help="Let --out name a folder an earlier run wrote to: its files are replaced (others are kept).",
-)
+@options.json_output()
+@options.out_folder("Write detector.json, detector.csv, nnps_2d.npy and detector.html here.")
+@options.replace()
 def detector(
     flat_files,
     edge_files,

@@ -7,23 +7,15 @@ from pathlib import Path
 
 import click
 
+from scorer.commands import options
+
 
 @click.command("dose-series")
 @click.argument("images", nargs=-1, required=True, type=click.Path(dir_okay=False))
-@click.option(
-    "--layout",
-    "layout_file",
-    type=click.Path(dir_okay=False),
-    default=None,
-    help="Phantom layout TOML (default: the bundled demo plate).",
-)
-@click.option(
-    "--conversion",
-    "conversion_file",
-    type=click.Path(dir_okay=False),
-    default=None,
-    help="Conversion function that linearises the images; without --kerma-csv each image's kerma is "
-    "its plate background through it.",
+@options.layout()
+@options.conversion(
+    "Conversion function that linearises the images; without --kerma-csv each image's kerma is "
+    "its plate background through it."
 )
 @click.option(
     "--kerma-csv",
@@ -32,76 +24,19 @@ import click
     default=None,
     help="CSV path,kerma_ugy giving each image's air kerma at the detector (µGy).",
 )
-@click.option(
-    "--observer",
-    type=click.Choice(["npw", "npwe"]),
-    default="npw",
-    show_default=True,
-    help="Model observer: non-prewhitening (npw) or with the eye filter (npwe).",
+@options.observer()
+@options.threshold_method(
+    "dprime", "Threshold method per group; the d′ method is fitted when computed, else the count method."
 )
-@click.option(
-    "--method",
-    type=click.Choice(["dprime", "count", "both"]),
-    default="dprime",
-    show_default=True,
-    help="Threshold method per group; the d′ method is fitted when computed, else the count method.",
-)
-@click.option(
-    "--limits",
-    "limits_file",
-    type=click.Path(dir_okay=False),
-    default=None,
-    help="Limits TOML: report the kerma at which each diameter's threshold meets its limit.",
-)
-@click.option(
-    "--human-factor",
-    type=float,
-    default=None,
-    help="Human/model threshold factor, needed to use limits written for human readers.",
-)
-@click.option(
-    "--human-factor-from",
-    "factor_file",
-    type=click.Path(dir_okay=False),
-    default=None,
-    help="analysis.json from `limen analyse --model`: take the human/model factor measured for this observer.",
-)
-@click.option(
-    "--mtf",
-    "mtf_file",
-    type=click.Path(dir_okay=False),
-    default=None,
-    help="Detector JSON from `limen detector` whose measured MTF shapes the templates.",
-)
-@click.option(
-    "--pixel-spacing",
-    "pixel_spacing",
-    type=float,
-    default=None,
-    help="Pixel spacing (mm) for images without DICOM spacing (TIFF, PNG, npy).",
-)
-@click.option(
-    "--n-boot",
-    type=click.IntRange(0, 100000),
-    default=1000,
-    show_default=True,
-    help="Bootstrap resamples of the images for the count method.",
-)
-@click.option(
-    "--seed",
-    type=click.IntRange(min=0),
-    default=0,
-    show_default=True,
-    help="Seed of the bootstrap and of the kerma CIs' draws.",
-)
-@click.option("--json", "as_json", is_flag=True, help="Print one JSON object on stdout.")
-@click.option(
-    "--out",
-    "out_dir",
-    type=click.Path(file_okay=False),
-    default=None,
-    help="Write dose_series.json, dose_series.csv and dose_series.html here.",
-)
+@options.limits("Limits TOML: report the kerma at which each diameter's threshold meets its limit.")
+@options.human_factor("Human/model threshold factor, needed to use limits written for human readers.")
+@options.human_factor_from()
+@options.mtf()
+@options.pixel_spacing()
+@options.n_boot("Bootstrap resamples of the images for the count method.")
+@options.seed("Seed of the bootstrap and of the kerma CIs' draws.")
+@options.json_output()
+@options.out_folder("Write dose_series.json, dose_series.csv and dose_series.html here.")
 def dose_series(
     images,
     layout_file,

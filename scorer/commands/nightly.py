@@ -6,6 +6,7 @@ import sys
 
 import click
 
+from scorer.commands import options
 from scorer.errors import LimenError
 from scorer.reports import CAUTION, dumps
 
@@ -86,7 +87,7 @@ def load_nightly_config(path):
     show_default=True,
     help="A claim on a session not renewed for this long is taken over by another run.",
 )
-@click.option("--json", "as_json", is_flag=True, help="Print one JSON object on stdout.")
+@options.json_output()
 def nightly(
     inbox, config_file, db, report_dir, workers, dask_address, quarantine_dir, settle_seconds, lease_seconds, as_json
 ):

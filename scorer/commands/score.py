@@ -9,6 +9,7 @@ import click
 import numpy as np
 from tqdm import tqdm
 
+from scorer.commands import options
 from scorer.images import load_conversion
 from scorer.files import OutputFolder
 from scorer.invocation import current_command
@@ -28,81 +29,25 @@ EXIT_INDETERMINATE = 3
 
 @click.command("score")
 @click.argument("images", nargs=-1, required=True, type=click.Path(dir_okay=False))
-@click.option(
-    "--layout",
-    "layout_file",
-    type=click.Path(dir_okay=False),
-    default=None,
-    help="Phantom layout TOML (default: the bundled demo plate).",
+@options.layout()
+@options.observer()
+@options.threshold_method(
+    "both",
+    "Threshold method: d′ regression on the responses, counts of correct M-AFC decisions, or both.",
 )
-@click.option(
-    "--observer",
-    type=click.Choice(["npw", "npwe"]),
-    default="npw",
-    show_default=True,
-    help="Model observer: non-prewhitening (npw) or with the eye filter (npwe).",
-)
-@click.option(
-    "--method",
-    type=click.Choice(["dprime", "count", "both"]),
-    default="both",
-    show_default=True,
-    help="Threshold method: d′ regression on the responses, counts of correct M-AFC decisions, or both.",
-)
-@click.option(
-    "--limits",
-    "limits_file",
-    type=click.Path(dir_okay=False),
-    default=None,
-    help="Limits TOML (threshold contrast per diameter, the observer it is for, its source).",
-)
-@click.option(
-    "--human-factor",
-    type=float,
-    default=None,
-    help="Human/model threshold factor, needed to compare model thresholds with limits for human readers.",
-)
-@click.option(
-    "--human-factor-from",
-    "factor_file",
-    type=click.Path(dir_okay=False),
-    default=None,
-    help="analysis.json from `limen analyse --model`: take the human/model factor measured for this observer.",
-)
-@click.option(
-    "--conversion",
-    "conversion_file",
-    type=click.Path(dir_okay=False),
-    default=None,
-    help="Conversion function TOML/JSON that linearises pixel values to air kerma.",
-)
-@click.option(
-    "--mtf",
-    "mtf_file",
-    type=click.Path(dir_okay=False),
-    default=None,
-    help="Detector JSON from `limen detector` whose measured MTF shapes the templates.",
-)
+@options.limits("Limits TOML (threshold contrast per diameter, the observer it is for, its source).")
+@options.human_factor("Human/model threshold factor, needed to compare model thresholds with limits for human readers.")
+@options.human_factor_from()
+@options.conversion("Conversion function TOML/JSON that linearises pixel values to air kerma.")
+@options.mtf()
 @click.option(
     "--viewing-distance-mm",
     type=float,
     default=None,
     help="NPWE: eye-to-image distance in image-plane millimetres (default 500).",
 )
-@click.option(
-    "--pixel-spacing",
-    "pixel_spacing",
-    type=float,
-    default=None,
-    help="Pixel spacing (mm) for images without DICOM spacing (TIFF, PNG, npy).",
-)
-@click.option(
-    "--n-boot",
-    type=click.IntRange(0, 100000),
-    default=1000,
-    show_default=True,
-    help="Bootstrap resamples of the images for the count method (and a bootstrap d′ interval).",
-)
+@options.pixel_spacing()
+@options.n_boot("Bootstrap resamples of the images for the count method (and a bootstrap d′ interval).")
 @click.option(
     "--psychometric",
     "psychometric_form",
@@ -125,27 +70,13 @@ EXIT_INDETERMINATE = 3
     default=None,
     help="Proportion correct at threshold (default halfway between chance and 1).",
 )
-@click.option(
-    "--seed",
-    type=click.IntRange(min=0),
-    default=0,
-    show_default=True,
-    help="Seed of the bootstrap (non-negative integer); the same seed gives the same intervals.",
+@options.seed()
+@options.json_output()
+@options.out_folder(
+    "Write results.json, CSV tables, registration overlays (a diagnostic one when the phantom "
+    "cannot be found) and report.html here."
 )
-@click.option("--json", "as_json", is_flag=True, help="Print one JSON object on stdout.")
-@click.option(
-    "--out",
-    "out_dir",
-    type=click.Path(file_okay=False),
-    default=None,
-    help="Write results.json, CSV tables, registration overlays (a diagnostic one when the phantom "
-    "cannot be found) and report.html here.",
-)
-@click.option(
-    "--replace",
-    is_flag=True,
-    help="Let --out name a folder an earlier run wrote to: its files are replaced (others are kept).",
-)
+@options.replace()
 def score(
     images,
     layout_file,

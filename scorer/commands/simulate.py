@@ -17,6 +17,7 @@ import click
 import numpy as np
 from tqdm import tqdm
 
+from scorer.commands import options
 from scorer.images import save_conversion
 from scorer.errors import LimenError
 from scorer.phantom import load_layout
@@ -63,19 +64,9 @@ def image_stem(panel: str, kind: str, dose_ugy: float, index: int, edge_angle_de
     show_default=True,
     help="Number of images (independent noise, same pose).",
 )
-@click.option(
-    "--seed",
-    type=click.IntRange(min=0),
-    default=0,
-    show_default=True,
-    help="Seed of the noise (non-negative integer); the same seed gives the same images.",
-)
-@click.option(
-    "--out",
-    "out_dir",
-    type=click.Path(file_okay=False),
-    required=True,
-    help="Folder for the images, their JSON truth sidecars and the panel's conversion function.",
+@options.seed("Seed of the noise (non-negative integer); the same seed gives the same images.")
+@options.out_folder(
+    "Folder for the images, their JSON truth sidecars and the panel's conversion function.", required=True
 )
 @click.option("--small", is_flag=True, help="Crop the field to what the phantom needs (512² for flat/edge).")
 @click.option(
@@ -102,13 +93,7 @@ def image_stem(panel: str, kind: str, dose_ugy: float, index: int, edge_angle_de
     show_default=True,
     help="Geometric magnification of the phantom at the detector.",
 )
-@click.option(
-    "--layout",
-    "layout_file",
-    type=click.Path(dir_okay=False),
-    default=None,
-    help="Phantom layout TOML (default: the bundled demo plate).",
-)
+@options.layout()
 @click.option(
     "--edge-angle-deg",
     type=float,

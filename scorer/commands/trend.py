@@ -4,18 +4,14 @@ from __future__ import annotations
 
 import click
 
+from scorer.commands import options
+
 from scorer.reports import dumps
 
 
 @click.command("trend")
-@click.option("--db", "db", required=True, help="Database URL or SQLite file written by `limen nightly`.")
-@click.option(
-    "--out",
-    "out_dir",
-    type=click.Path(file_okay=False),
-    required=True,
-    help="Write trend.html, trend.csv, alerts.csv and trend.json here.",
-)
+@options.nightly_db()
+@options.out_folder("Write trend.html, trend.csv, alerts.csv and trend.json here.", required=True)
 @click.option(
     "--config",
     "config_file",
@@ -29,12 +25,8 @@ from scorer.reports import dumps
     default=None,
     help="Threshold method to plot (default: each detector's verdict method).",
 )
-@click.option("--json", "as_json", is_flag=True, help="Print the paths written as JSON.")
-@click.option(
-    "--replace",
-    is_flag=True,
-    help="Let --out name a folder an earlier run wrote to: its files are replaced (others are kept).",
-)
+@options.json_output("Print the paths written as JSON.")
+@options.replace()
 def trend(db, out_dir, config_file, method, as_json, replace):
     """Write the trend report of a nightly database."""
     from scorer.commands.nightly import db_url_option, load_nightly_config
