@@ -51,7 +51,7 @@ def _jobs(app):
 
 
 def test_open_study_job_runs_to_done_and_records_its_progress_in_the_database(tmp_path):
-    from webapp.models import Job, Region, Study
+    from webapp.models import AuditEntry, Job, Region, Study
     from webapp.security import db
 
     app, sid = _draft_app(tmp_path)
@@ -87,6 +87,8 @@ def test_open_study_job_runs_to_done_and_records_its_progress_in_the_database(tm
         assert st.status == "open" and db().query(Region).filter_by(study_id=sid).count() == 2 * 18
         row = db().get(Job, job["id"])
         assert row.active_key is None and row.started_at <= row.finished_at
+        (entry,) = db().query(AuditEntry).filter_by(action="open_study", study_id=sid).all()
+        assert entry.user_id == row.created_by  # the job acts for the coordinator who started it
     page = c.get(f"/jobs/{job['id']}").text
     assert 'id="job-result"' in page and "<progress" in page and "Caution." in page
     assert "job.js" not in page  # a finished job's page stops polling
