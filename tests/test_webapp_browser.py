@@ -142,7 +142,11 @@ def test_coordinator_and_reader_in_chromium(server, tmp_path):
                 cp.click("#upload-images")
                 cp.wait_for_selector("#image-table")
             assert cp.locator("#image-table tbody tr").count() == 2
-            cp.click("#open-study")
+            cp.click("#open-study")  # a background job: its page follows the progress, then links to the study
+            cp.wait_for_selector("#job-progress")
+            cp.wait_for_selector("#job-result", timeout=120_000)
+            cp.screenshot(path=str(ARTIFACTS / "open-study-job.png"))
+            cp.click("#job-result")
             cp.wait_for_selector("#progress")
             assert cp.inner_text("#study-status") == "open"
 
@@ -220,6 +224,8 @@ def test_coordinator_and_reader_in_chromium(server, tmp_path):
             assert (df["response_ms"] > 0).all() and df["window"].nunique() >= 2  # the drag changed W/L
             cp.click("#analysis-link")
             cp.click("#run-analysis")
+            cp.wait_for_selector("#job-result", timeout=120_000)
+            cp.click("#job-result")
             frame = cp.frame_locator("#report")
             frame.locator("text=Human readers vs model observer").wait_for()
             cp.screenshot(path=str(ARTIFACTS / "analysis-page.png"), full_page=True)

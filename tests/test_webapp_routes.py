@@ -11,7 +11,7 @@ from __future__ import annotations
 
 import pytest
 
-from webapp_helpers import csrf_from, demo_app, login, pass_display_check, read_all
+from webapp_helpers import csrf_from, demo_app, login, pass_display_check, read_all, wait_job
 
 VISITORS = ("anonymous", "reader", "other_reader", "outsider", "coordinator")
 USERS = {"reader": "reader1", "other_reader": "reader2", "outsider": "outsider", "coordinator": "coordinator"}
@@ -37,6 +37,8 @@ MATRIX = {
     "analysis.report": ("GET", COORD),
     "analysis.analysis_json": ("GET", COORD),
     "analysis.plan": ("GET", COORD),
+    "jobs.page": ("GET", COORD),
+    "jobs.status": ("GET", COORD),
     "reading.home": ("GET", READER_HOME),
     "reading.check": ("GET", STUDY_READER),
     "reading.check_pattern": ("GET", STUDY_READER),
@@ -76,13 +78,14 @@ def study(tmp_path_factory):
     trial = c.get(f"/reading/api/studies/{study_id}/next").json
     cc = app.test_client()
     ctok = login(cc, "coordinator")
-    assert cc.post(f"/analysis/studies/{study_id}/run", data={"csrf_token": ctok}).status_code == 302
+    job = wait_job(cc, cc.post(f"/analysis/studies/{study_id}/run", data={"csrf_token": ctok}))
+    assert job["state"] == "done", job
     from webapp.models import AnalysisRun
     from webapp.security import db
 
     with app.app_context():
         run_id = db().query(AnalysisRun).first().id
-    return app, {"study_id": study_id, "public_id": trial["trial"], "run_id": run_id}
+    return app, {"study_id": study_id, "public_id": trial["trial"], "run_id": run_id, "job_id": job["id"]}
 
 
 def test_every_route_is_in_the_matrix(study):

@@ -24,6 +24,7 @@ from webapp_helpers import (
     pass_display_check,
     read_all,
     reader_client,
+    wait_job,
 )
 
 
@@ -290,8 +291,9 @@ def test_coordinator_builds_a_study_through_the_forms(tmp_path):
             content_type="multipart/form-data",
         )
         assert r.status_code == 302, r.text
-    r = c.post(f"/coordinator/studies/{sid}/open", data={"csrf_token": tok})
-    assert r.status_code == 302, r.text
+    job = wait_job(c, c.post(f"/coordinator/studies/{sid}/open", data={"csrf_token": tok}))
+    assert job["state"] == "done" and job["progress_fraction"] == 1.0, job
+    assert job["result_url"] == f"/coordinator/studies/{sid}"
     with app.app_context():
         st = db().get(Study, sid)
         assert st.status == "open" and st.observer == "npw" and len(st.images) == 2
@@ -318,7 +320,7 @@ def test_analysis_page_shows_readers_against_the_model(tmp_path):
     cc = app.test_client()
     tok = login(cc, "coordinator")
     assert "Not analysed yet" in cc.get(f"/analysis/studies/{sid}").text
-    assert cc.post(f"/analysis/studies/{sid}/run", data={"csrf_token": tok}).status_code == 302
+    assert wait_job(cc, cc.post(f"/analysis/studies/{sid}/run", data={"csrf_token": tok}))["state"] == "done"
     page = cc.get(f"/analysis/studies/{sid}").text
     src = page.split('id="report"')[1].split('src="')[1].split('"')[0]
     rep = cc.get(src)
@@ -351,7 +353,9 @@ def test_planning_page_estimates_power_from_a_stated_spread_and_refuses_oversize
         "median_factor": "1.6",
         "cv_between": "15",
     }
-    r = c.post("/analysis/plan", data=form)
+    job = wait_job(c, c.post("/analysis/plan", data=form))
+    assert job["state"] == "done", job
+    r = c.get(f"/jobs/{job['id']}")
     assert r.status_code == 200, r.text
     assert 'id="power-table"' in r.text and "stated between-reader spread" in r.text
     # the page shows what scorer.study.power_by_simulation computes for the same settings

@@ -162,6 +162,21 @@ def race(app, client, url, token, n):
     return sorted(codes)
 
 
+def wait_job(client, resp, timeout_s=120.0):
+    """Follow a POST that started a background job (a redirect to its page) until the job ends; return its
+    JSON status."""
+    import time
+
+    assert resp.status_code == 302 and "/jobs/" in resp.headers["Location"], (resp.status_code, resp.text[:300])
+    url = resp.headers["Location"].split("?")[0] + ".json"
+    end = time.monotonic() + timeout_s
+    while True:
+        st = client.get(url).json
+        if st["state"] in ("done", "failed") or time.monotonic() > end:
+            return st
+        time.sleep(0.05)
+
+
 def reader_client(app, study_id, name="reader1"):
     """A reader's browser, signed in and past the display check: (client, CSRF token)."""
     c = app.test_client()

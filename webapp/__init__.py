@@ -24,6 +24,9 @@ DEFAULTS = {
     "LOGIN_RATE_LIMIT": "10 per minute",  # failed logins per (address, user name)
     "ANALYSIS_N_BOOT": 400,
     "IMPORT_ROOT": None,  # server folder coordinators may import scored folders from
+    "JOB_WORKERS": 2,  # background jobs (opening a study, analysis, planning) running at once
+    "JOB_HEARTBEAT_S": 10.0,  # a running job's server refreshes its heartbeat this often
+    "JOB_STALE_S": 60.0,  # a queued/running job without a heartbeat for this long was left by a stopped server
     "SESSION_COOKIE_HTTPONLY": True,
     "SESSION_COOKIE_SAMESITE": "Lax",
     "SESSION_COOKIE_SECURE": False,  # set True behind HTTPS (limen serve --secure-cookies)
@@ -107,7 +110,8 @@ def create_app(config: dict | None = None) -> Flask:
     config : dict, optional
         Flask settings plus ``DATABASE_URL`` (SQLAlchemy URL), ``INSTANCE_PATH`` (instance folder),
         ``STORE_DIR`` (content store, default ``<instance>/store``), ``LOGIN_RATE_LIMIT``,
-        ``MAX_IMAGE_BYTES``, ``ANALYSIS_N_BOOT``, ``IMPORT_ROOT``.
+        ``MAX_IMAGE_BYTES``, ``ANALYSIS_N_BOOT``, ``IMPORT_ROOT``, ``JOB_WORKERS``, ``JOB_HEARTBEAT_S``,
+        ``JOB_STALE_S``.
     """
     config = dict(config or {})
     kwargs = {"instance_relative_config": False}
@@ -136,15 +140,29 @@ def create_app(config: dict | None = None) -> Flask:
     app.extensions["limen_engine"] = engine
     app.extensions["limen_db"] = session_factory
 
+    from webapp.jobs import JobRunner, fail_stale_jobs
+
+    runner = JobRunner(
+        app,
+        workers=app.config["JOB_WORKERS"],
+        heartbeat_s=app.config["JOB_HEARTBEAT_S"],
+        stale_s=app.config["JOB_STALE_S"],
+    )
+    app.extensions["limen_jobs"] = runner
+    with session_factory() as s:  # jobs a killed server left queued or running
+        fail_stale_jobs(s, runner.stale_s)
+    session_factory.remove()
+
     @app.teardown_appcontext
     def _remove_session(_exc=None):
         session_factory.remove()
 
-    from webapp import analysis, auth, coordinator, reading
+    from webapp import analysis, auth, coordinator, job_pages, reading
 
     app.register_blueprint(auth.bp)
     app.register_blueprint(coordinator.bp)
     app.register_blueprint(reading.bp)
     app.register_blueprint(analysis.bp)
+    app.register_blueprint(job_pages.bp)
     init_security(app)
     return app

@@ -3,7 +3,7 @@ model observer beside the human readers (coordinators only)."""
 
 from __future__ import annotations
 
-from flask import Blueprint, Response as FlaskResponse, abort, current_app, flash, g, redirect, render_template, url_for
+from flask import Blueprint, Response as FlaskResponse, abort, current_app, g, redirect, render_template, url_for
 from sqlalchemy import func, select
 
 from webapp import services
@@ -38,21 +38,48 @@ def page(study_id):
         or 0
     )
     return render_template(
-        "analysis/page.html", study=st, run=_latest(st.id), n_responses=n, n_boot=current_app.config["ANALYSIS_N_BOOT"]
+        "analysis/page.html",
+        study=st,
+        run=_latest(st.id),
+        n_responses=n,
+        n_boot=current_app.config["ANALYSIS_N_BOOT"],
+        job=_running(f"analysis:{st.id}"),
     )
+
+
+def _analysis_work(n_boot: int):
+    """The background work of an analysis (webapp.jobs): the statistics and the stored report."""
+
+    def work(s, job, progress):
+        from webapp.jobs import JobResult
+
+        st = s.get(Study, job.study_id)
+        r = services.run_analysis(s, st, n_boot=n_boot, seed=int(st.seed), progress=progress)
+        s.flush()
+        audit("run_analysis", st.id, by=job.created_by, n_responses=r.n_responses, n_boot=n_boot)
+        return JobResult(ref=f"analysis_run:{r.id}", message=f"Analysed {r.n_responses} responses.")
+
+    return work
+
+
+def _running(key: str):
+    from webapp.models import Job
+
+    return db().execute(select(Job).where(Job.active_key == key)).scalars().first()
 
 
 @bp.route("/studies/<int:study_id>/run", methods=["POST"])
 @coordinator_only
 def run(study_id):
+    """Start the analysis in the background (or find the job already running it) and show its progress."""
+    from flask_login import current_user
+
     st = _study(study_id)
-    s = db()
     n_boot = int(current_app.config["ANALYSIS_N_BOOT"])
-    r = services.run_analysis(s, st, n_boot=n_boot, seed=int(st.seed))
-    audit("run_analysis", st.id, n_responses=r.n_responses, n_boot=n_boot)
-    s.commit()
-    flash(f"Analysed {r.n_responses} responses.", "info")
-    return redirect(url_for("analysis.page", study_id=st.id))
+    job, _started = current_app.extensions["limen_jobs"].start(
+        db(), "analysis", f"analysis:{st.id}", int(current_user.id), _analysis_work(n_boot), study_id=st.id
+    )
+    return redirect(url_for("jobs.page", job_id=job.id))
 
 
 @bp.route("/studies/<int:study_id>/report/<int:run_id>")
@@ -90,6 +117,57 @@ def _int_list(raw: str, label: str) -> list[int]:
     return vals
 
 
+def _plan_work(params: dict):
+    """The background work of a planning run (webapp.jobs): power by simulation, one step per simulated study."""
+
+    def work(s, job, progress):
+        from scorer.reports.html import dumps
+        from scorer.study import ReaderPopulation, power_by_simulation
+        from webapp.jobs import JobResult
+
+        p = params
+        plan_ = power_by_simulation(
+            p["ratio"],
+            p["readers"],
+            p["images"],
+            population=ReaderPopulation(**p["population"]),
+            diameter_mm=p["diameter_mm"],
+            alpha=p["alpha"],
+            target_power=p["target_power"],
+            n_sim=p["n_sim"],
+            n_boot=50,
+            seed=p["seed"],
+            progress=lambda done, total: progress(f"{done} of {total} simulated studies", done / max(total, 1)),
+        )
+        audit(
+            "plan_study",
+            None,
+            by=job.created_by,
+            ratio=p["ratio"],
+            diameter_mm=p["diameter_mm"],
+            readers=p["readers"],
+            images=p["images"],
+            n_sim=p["n_sim"],
+            source=p["source"],
+            recommended=plan_.recommended,
+        )
+        doc = {"plan": plan_.to_json(), "readers": p["readers"], "images": p["images"], "source": p["source"]}
+        return JobResult(message="Power estimated.", json=dumps(doc))
+
+    return work
+
+
+def plan_result(job) -> dict | None:
+    """A finished planning job's power table, as the plan template reads it."""
+    import json
+
+    if job.kind != "plan" or not job.result_json:
+        return None
+    doc = json.loads(job.result_json)
+    doc["grid"] = {(c["n_readers"], c["n_images"]): c for c in doc["plan"]["cells"]}
+    return doc
+
+
 @bp.route("/plan", methods=["GET", "POST"])
 @coordinator_only
 def plan():
@@ -97,9 +175,10 @@ def plan():
     import json
 
     from flask import request
+    from flask_login import current_user
 
     from scorer.errors import LimenError
-    from scorer.study import ReaderPopulation, population_from_analysis, power_by_simulation
+    from scorer.study import ReaderPopulation, population_from_analysis
 
     pilots = (
         db()
@@ -108,7 +187,7 @@ def plan():
         .all()
     )
     form = request.form if request.method == "POST" else {}
-    result, error = None, None
+    error = None
     if request.method == "POST":
         try:
 
@@ -146,34 +225,23 @@ def plan():
                     cv_between=num("cv_between", 0.0, 100.0, "between-reader CV (%)") / 100,
                 )
                 source = "stated between-reader spread"
-            plan_ = power_by_simulation(
-                ratio,
-                readers,
-                images,
-                population=population,
-                diameter_mm=diameter,
-                alpha=alpha,
-                target_power=target,
-                n_sim=n_sim,
-                n_boot=50,
-                seed=int(num("seed", 0, 2**31 - 1, "seed")) if form.get("seed") else 0,
+            params = {
+                "ratio": ratio,
+                "readers": readers,
+                "images": images,
+                "population": {"median_factor": population.median_factor, "cv_between": population.cv_between},
+                "diameter_mm": diameter,
+                "alpha": alpha,
+                "target_power": target,
+                "n_sim": n_sim,
+                "seed": int(num("seed", 0, 2**31 - 1, "seed")) if form.get("seed") else 0,
+                "source": source,
+            }
+            uid = int(current_user.id)
+            job, _started = current_app.extensions["limen_jobs"].start(
+                db(), "plan", f"plan:user:{uid}", uid, _plan_work(params), params=params
             )
-            grid = {(r["n_readers"], r["n_images"]): r for r in plan_.cells.to_dict("records")}
-            result = {"plan": plan_, "grid": grid, "readers": readers, "images": images, "source": source}
-            audit(
-                "plan_study",
-                None,
-                ratio=ratio,
-                diameter_mm=diameter,
-                readers=readers,
-                images=images,
-                n_sim=n_sim,
-                source=source,
-                recommended=plan_.recommended,
-            )
-            db().commit()
+            return redirect(url_for("jobs.page", job_id=job.id))
         except LimenError as exc:
             error = str(exc)
-    return render_template("analysis/plan.html", pilots=pilots, form=form, result=result, error=error), (
-        400 if error else 200
-    )
+    return render_template("analysis/plan.html", pilots=pilots, form=form, error=error), (400 if error else 200)

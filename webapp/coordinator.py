@@ -40,6 +40,8 @@ def _draft(study_id: int) -> Study:
     st = _study(study_id)
     if st.status != "draft":
         raise LimenError("images and readers can be changed only before the study is opened")
+    if open_job(st.id) is not None:
+        raise LimenError("the study is being opened: images and readers can no longer be changed")
     return st
 
 
@@ -273,6 +275,7 @@ def study(study_id):
         readers=_readers(),
         enrolled={e.user_id for e in st.enrolments},
         notes=notes,
+        open_job=open_job(st.id) if st.status == "draft" else None,
     )
 
 
@@ -381,24 +384,59 @@ def import_folder(study_id):
     return redirect(url_for("coordinator.study", study_id=st.id))
 
 
+def _open_study_work(store_dir: Path):
+    """The background work of opening a study (webapp.jobs): scores, regions, display pixels, schedules."""
+
+    def work(s, job, progress):
+        from webapp.jobs import JobResult
+
+        st = s.get(Study, job.study_id)
+        if st is None or st.status != "draft":
+            raise LimenError("the study is already open or closed")
+        notes = services.open_study(s, st, store_dir, progress=progress)
+        st.status = "open"
+        st.opened_at = utcnow()
+        audit(
+            "open_study",
+            st.id,
+            by=job.created_by,
+            notes=notes,
+            region_px=st.region_rows,
+            images=len(st.images),
+            readers=len(st.enrolments),
+        )
+        return JobResult(ref=f"study:{st.id}", message="Study open: readers can start.")
+
+    return work
+
+
+def open_job(study_id: int):
+    """The queued or running job opening this study, if any."""
+    from webapp.models import Job
+
+    return db().execute(select(Job).where(Job.active_key == f"open_study:{study_id}")).scalars().first()
+
+
 @bp.route("/studies/<int:study_id>/open", methods=["POST"])
 @coordinator_only
 def open_study(study_id):
+    """Start opening the study in the background (or find the job already doing it) and show its progress."""
     st = _study(study_id)
     if st.status != "draft":
         raise LimenError("the study is already open or closed")
-    s = db()
-    try:
-        notes = services.open_study(s, st, Path(current_app.config["STORE_DIR"]))
-    except LimenError:
-        s.rollback()
-        raise
-    st.status = "open"
-    st.opened_at = utcnow()
-    audit("open_study", st.id, notes=notes, region_px=st.region_rows, images=len(st.images), readers=len(st.enrolments))
-    s.commit()
-    flash("Study open: readers can start.", "info")
-    return redirect(url_for("coordinator.study", study_id=st.id))
+    if not st.images:
+        raise LimenError("the study has no images yet; add images before opening it")
+    if not st.enrolments:
+        raise LimenError("no readers are enrolled; choose at least one reader")
+    job, _started = current_app.extensions["limen_jobs"].start(
+        db(),
+        "open_study",
+        f"open_study:{st.id}",
+        _current_id(),
+        _open_study_work(Path(current_app.config["STORE_DIR"])),
+        study_id=st.id,
+    )
+    return redirect(url_for("jobs.page", job_id=job.id))
 
 
 @bp.route("/studies/<int:study_id>/close", methods=["POST"])

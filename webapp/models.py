@@ -248,6 +248,42 @@ class AnalysisRun(Base):
     analysis_json: Mapped[str] = mapped_column(Text)
 
 
+JOB_STATES = ("queued", "running", "done", "failed")
+
+
+class Job(Base):
+    """A long operation (opening a study, an analysis, a planning run) run in the background.
+
+    ``active_key`` names the operation (e.g. ``open_study:3``) while the job is queued or running and is cleared
+    when it ends: the unique constraint lets the database itself refuse a second start of the same operation.
+    ``heartbeat_at`` is refreshed by the server running the job; a queued or running job whose heartbeat has
+    stopped was left by a server that was killed (see :func:`webapp.jobs.fail_stale_jobs`).
+    """
+
+    __tablename__ = "jobs"
+
+    id: Mapped[int] = mapped_column(primary_key=True)
+    kind: Mapped[str] = mapped_column(String(32))
+    study_id: Mapped[int | None] = mapped_column(ForeignKey("studies.id"), nullable=True, index=True)
+    created_by: Mapped[int] = mapped_column(ForeignKey("users.id"))
+    state: Mapped[str] = mapped_column(String(16), default="queued")
+    active_key: Mapped[str | None] = mapped_column(String(100), unique=True, nullable=True)
+    params_json: Mapped[str] = mapped_column(Text, default="{}")
+    progress_text: Mapped[str] = mapped_column(String(300), default="waiting for a free worker")
+    progress_fraction: Mapped[float] = mapped_column(Float, default=0.0)
+    result_ref: Mapped[str | None] = mapped_column(String(100), nullable=True)  # "study:3", "analysis_run:7"
+    result_json: Mapped[str | None] = mapped_column(Text, nullable=True)  # planning's power table
+    error: Mapped[str | None] = mapped_column(String(500), nullable=True)  # one line
+    created_at: Mapped[_dt.datetime] = mapped_column(DateTime, default=utcnow)
+    started_at: Mapped[_dt.datetime | None] = mapped_column(DateTime, nullable=True)
+    finished_at: Mapped[_dt.datetime | None] = mapped_column(DateTime, nullable=True)
+    heartbeat_at: Mapped[_dt.datetime | None] = mapped_column(DateTime, nullable=True)
+
+    @property
+    def finished(self) -> bool:
+        return self.state in ("done", "failed")
+
+
 # --------------------------------------------------------------------------- engine and sessions
 def make_engine(url: str):
     """An engine for ``url``; SQLite gets WAL, a busy timeout and foreign keys on."""

@@ -86,11 +86,12 @@ def public(view):
     return view
 
 
-def audit(action: str, study_id: int | None = None, **detail) -> None:
-    """Record a coordinator action (committed with the caller's transaction)."""
+def audit(action: str, study_id: int | None = None, *, by: int | None = None, **detail) -> None:
+    """Record a coordinator action (committed with the caller's transaction); ``by`` names the user when there
+    is no signed-in request (a background job acts for the coordinator who started it)."""
     from webapp.models import AuditEntry
 
-    uid = current_user.id if current_user and current_user.is_authenticated else None
+    uid = by if by is not None else current_user.id if current_user and current_user.is_authenticated else None
     db().add(
         AuditEntry(
             user_id=uid, action=action, study_id=study_id, detail=json.dumps(detail, default=str, sort_keys=True)

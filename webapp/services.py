@@ -230,14 +230,18 @@ def _region_boxes(sites_by_key: dict, shape_by_image: dict) -> tuple[int, dict]:
 
 def open_study(session, study, store_dir: Path, progress=None) -> list[str]:
     """Score the study's images with the model observer, cut the reading regions, write the display
-    pixels and build every reader's schedule. Returns notes for the coordinator."""
+    pixels and build every reader's schedule. Returns notes for the coordinator.
+
+    ``progress``, if given, is called as ``progress(text, fraction)`` (fraction of the work done, 0–1) before each
+    step; the last call comes before the first database write, so a progress writer never waits for this
+    session's write lock."""
     from scorer.files import atomic_write_bytes
     from scorer.images import LimenWarning, load_conversion, load_image
     from scorer.observer import score_images
     from scorer.phantom import load_layout
     from webapp.models import Region
 
-    say = progress or (lambda s: None)
+    say = progress or (lambda text, fraction=None: None)
     if not study.images:
         raise LimenError("the study has no images yet; add images before opening it")
     if not study.enrolments:
@@ -249,10 +253,16 @@ def open_study(session, study, store_dir: Path, progress=None) -> list[str]:
         groups.setdefault((im.conversion_file, im.pixel_spacing_mm), []).append(im)
     notes: list[str] = []
     model_frames, sites_by_key, shape_by_image, by_code, placements = [], {}, {}, {}, {}
+    n_images, n_scored = len(study.images), 0
     for (conv_file, spacing), images in groups.items():
         conversion = load_conversion(conv_file) if conv_file else None
         paths = [str(store_dir / im.stored_name) for im in images]
-        say(f"scoring {len(paths)} image(s) with the {study.observer.upper()} model observer")
+        say(
+            f"scoring {len(paths)} image(s) with the {study.observer.upper()} model observer "
+            f"({n_scored} of {n_images} done)",
+            0.05 + 0.75 * n_scored / n_images,
+        )
+        n_scored += len(paths)
         res = score_images(
             paths,
             layout,
@@ -278,7 +288,7 @@ def open_study(session, study, store_dir: Path, progress=None) -> list[str]:
                 sites_by_key[(im.code, t.id)] = score.placement.transform.to_pixel(t.sites)
             by_code[im.code] = (im, conversion, spacing)
     # the display pixels: linear in air kerma (µGy with a conversion function), one 16-bit scale for the study
-    say("writing display pixels")
+    say("writing display pixels", 0.8)
     arrays = {}
     top = 0.0
     for code, (im, conversion, spacing) in by_code.items():
@@ -305,6 +315,7 @@ def open_study(session, study, store_dir: Path, progress=None) -> list[str]:
     study.region_rows = study.region_cols = size
     study.m_alternatives = int(max(t.m_alternatives for t in layout.targets))
     targets = {t.id: t for t in layout.targets}
+    say("building reader schedules", 0.9)
     regions = []
     for (code, tid), (r0, c0, sites) in boxes.items():
         t = targets[tid]
@@ -325,7 +336,6 @@ def open_study(session, study, store_dir: Path, progress=None) -> list[str]:
     session.flush()
     model = pd.concat(model_frames, ignore_index=True)
     study.model_trials_csv = model.to_csv(index=False)
-    say("building reader schedules")
     build_schedules(session, study, regions)
     return notes
 
@@ -477,9 +487,12 @@ def model_frame(study) -> pd.DataFrame | None:
     )
 
 
-def run_analysis(session, study, n_boot: int, seed: int = 0):
+def run_analysis(session, study, n_boot: int, seed: int = 0, progress=None):
     """Analyse the stored responses with :func:`scorer.study.analyse_study` (model observer included);
-    return the :class:`webapp.models.AnalysisRun` (cached by the responses' hash)."""
+    return the :class:`webapp.models.AnalysisRun` (cached by the responses' hash).
+
+    ``progress``, if given, is called as ``progress(text, fraction)`` at each step (fraction None while the
+    statistics run: their steps are named, not measured)."""
     from sqlalchemy import select
 
     from scorer.reports.study import report_html
@@ -487,6 +500,8 @@ def run_analysis(session, study, n_boot: int, seed: int = 0):
     from scorer.study import analyse_study, validate_trials
     from webapp.models import AnalysisRun
 
+    say = progress or (lambda text, fraction=None: None)
+    say("reading the stored responses", 0.02)
     df = responses_frame(session, study)
     if df.empty:
         raise LimenError("no responses stored yet: nothing to analyse")
@@ -508,7 +523,9 @@ def run_analysis(session, study, n_boot: int, seed: int = 0):
         if model_raw is not None and len(model_raw)
         else None
     )
-    a = analyse_study(trials, model, by="detector", n_boot=n_boot, seed=seed)
+    say(f"analysing {len(df)} responses ({n_boot} bootstrap resamples)", 0.05)
+    a = analyse_study(trials, model, by="detector", n_boot=n_boot, seed=seed, progress=lambda text: say(text))
+    say("writing the report", 0.95)
     meta = {
         "study": study.name,
         "layout": study.layout_name,
