@@ -24,12 +24,31 @@ def read_toml(path, what: str) -> dict:
         raise LimenError(f"not valid TOML: {exc}", path) from None
 
 
+def read_json(path, what: str) -> dict:
+    """Parse a JSON object written by Limen; unreadable, malformed or non-object files raise a one-line
+    LimenError naming the file and ``what`` it should have been."""
+    import json
+
+    path = Path(path)
+    try:
+        data = json.loads(path.read_text(encoding="utf-8"))
+    except OSError as exc:
+        raise LimenError(f"cannot read {what} ({exc.strerror or exc})", path) from None
+    except UnicodeDecodeError:
+        raise LimenError(f"{what} is not UTF-8 text", path) from None
+    except ValueError as exc:
+        raise LimenError(f"not valid JSON: {exc}", path) from None
+    if not isinstance(data, dict):
+        raise LimenError(f"not a {what} (expected a JSON object)", path)
+    return data
+
+
 def atomic_write_bytes(path, data: bytes, *, mode: int = 0o666) -> Path:
     """Write a file so that it is either complete or absent: a temporary name in the same folder, flushed
     to disk, then renamed over the target (an atomic step on POSIX file systems).  A run killed midway
     leaves the previous file, or none, never a truncated one that parses."""
-    half = len(data) // 2
-    return atomic_write_chunks(path, (data[:half], data[half:]), mode=mode)
+    view, half = memoryview(data), len(data) // 2  # halves without copying the data
+    return atomic_write_chunks(path, (view[:half], view[half:]), mode=mode)
 
 
 def atomic_write_chunks(path, chunks, *, mode: int = 0o666) -> Path:

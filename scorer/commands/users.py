@@ -34,6 +34,19 @@ def _with_db(f):
     return f
 
 
+MIN_PASSWORD_CHARS = 10
+
+
+def _new_password(generate: bool, prompt: str) -> str:
+    """A generated password (shown once by the caller) or one prompted twice, at least MIN_PASSWORD_CHARS long."""
+    if generate:
+        return secrets.token_urlsafe(12)
+    password = click.prompt(prompt, hide_input=True, confirmation_prompt=True)
+    if len(password) < MIN_PASSWORD_CHARS:
+        raise LimenError(f"password: at least {MIN_PASSWORD_CHARS} characters")
+    return password
+
+
 @click.group("users")
 def users():
     """Add, list, disable, enable the web app's accounts and reset passwords."""
@@ -53,12 +66,7 @@ def add(name, role, generate, db_url, instance):
 
     if not name or len(name) > 64 or not all(ch.isalnum() or ch in "._-" for ch in name):
         raise LimenError(f"user name {name!r}: use 1–64 letters, digits, '.', '_' or '-'")
-    if generate:
-        password = secrets.token_urlsafe(12)
-    else:
-        password = click.prompt("password", hide_input=True, confirmation_prompt=True)
-        if len(password) < 10:
-            raise LimenError("password: at least 10 characters")
+    password = _new_password(generate, "password")
     app = _app(db_url, instance)
     with app.app_context():
         s = db()
@@ -144,12 +152,7 @@ def password(name, generate, db_url, instance):
     """Set a new password for account NAME (prompted, or generated with --generate)."""
     from webapp.security import hash_password
 
-    if generate:
-        new = secrets.token_urlsafe(12)
-    else:
-        new = click.prompt("new password", hide_input=True, confirmation_prompt=True)
-        if len(new) < 10:
-            raise LimenError("password: at least 10 characters")
+    new = _new_password(generate, "new password")
     hashed = hash_password(new)
     _change(
         name,

@@ -5,12 +5,11 @@ Used by ``limen compare-detectors`` (and the web app); reads the JSON written by
 
 from __future__ import annotations
 
-import json
-from pathlib import Path
 
 import numpy as np
 
 from scorer.errors import LimenError
+from scorer.files import read_json
 from scorer.detector.predict import predict_from_detector
 
 #: diameters (mm) used when neither --diameters, --layout nor a scored JSON gives any (common practice)
@@ -23,21 +22,8 @@ SCORED_METHODS = ("dprime", "count")
 METHOD_NAMES = {"dprime": "d′ method", "count": "count method"}
 
 
-def _load_json(path, what: str) -> dict:
-    p = Path(path)
-    try:
-        data = json.loads(p.read_text(encoding="utf-8"))
-    except OSError as exc:
-        raise LimenError(f"cannot read {what} ({exc.strerror or exc})", p) from None
-    except ValueError as exc:
-        raise LimenError(f"not valid JSON: {exc}", p) from None
-    if not isinstance(data, dict):
-        raise LimenError(f"not a {what} (expected a JSON object)", p)
-    return data
-
-
 def load_detector_json(path) -> dict:
-    d = _load_json(path, "detector JSON")
+    d = read_json(path, "detector JSON")
     if not any(d.get(k) for k in ("mtf", "nnps", "dqe")):
         raise LimenError("no MTF, NNPS or DQE in this file: is it a 'limen detector' JSON?", path)
     for key, value_key in (("mtf", "value"), ("nnps", "value_mm2"), ("dqe", "value")):
@@ -48,7 +34,7 @@ def load_detector_json(path) -> dict:
 
 def load_dose_json(path) -> dict:
     """A ``limen dose-series --json`` output (keys "groups" and "fits")."""
-    d = _load_json(path, "dose-series JSON")
+    d = read_json(path, "dose-series JSON")
     if not isinstance(d.get("fits"), list) or not isinstance(d.get("groups"), list):
         raise LimenError("no 'fits' and 'groups' in this file: is it a 'limen dose-series' JSON?", path)
     return d
@@ -78,7 +64,7 @@ def _check_curve(curve, key: str, value_key: str, path) -> None:
 
 def load_scored_json(path) -> list[dict]:
     """Thresholds from a ``limen score --json`` output (key "thresholds")."""
-    d = _load_json(path, "score JSON")
+    d = read_json(path, "score JSON")
     rows = d.get("thresholds")
     if not isinstance(rows, list) or not rows:
         raise LimenError("no 'thresholds' list in this score JSON", path)

@@ -28,7 +28,6 @@ one the comparison is refused.
 
 from __future__ import annotations
 
-import json
 
 from dataclasses import dataclass, asdict
 from pathlib import Path
@@ -36,7 +35,7 @@ from pathlib import Path
 import numpy as np
 
 from scorer.errors import LimenError
-from scorer.files import read_toml
+from scorer.files import read_json, read_toml
 
 FORMAT = "limen-limits/1"
 OBSERVERS = ("human", "npw", "npwe")
@@ -300,12 +299,10 @@ def overall(verdicts: list[Verdict]) -> str:
 
 def human_factor_from_analysis(path, observer: str) -> HumanFactor:
     """The human/model threshold factor that `limen analyse --model` measured for ``observer``."""
+    data = read_json(path, "analysis file (an analysis.json)")
     try:
-        data = json.loads(Path(path).read_text(encoding="utf-8"))
         hm = data["human_model_factor"]
-    except OSError as exc:
-        raise LimenError(f"cannot read analysis file ({exc.strerror or exc})", path) from None
-    except (ValueError, KeyError, TypeError):
+    except KeyError:
         raise LimenError(
             "not an analysis.json with a human_model_factor (run limen analyse with --model)", path
         ) from None

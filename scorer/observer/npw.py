@@ -73,15 +73,12 @@ class SystemBlur:
     @classmethod
     def from_detector_json(cls, path) -> "SystemBlur":
         """The measured presampling MTF in a ``limen detector`` JSON (keys mtf.frequency_per_mm, mtf.value)."""
-        import json
-        from pathlib import Path
+        from scorer.files import read_json
 
+        data = read_json(path, "MTF file (a limen detector JSON)")
         try:
-            data = json.loads(Path(path).read_text(encoding="utf-8"))
             mtf = data["mtf"]
             f, v = [float(x) for x in mtf["frequency_per_mm"]], [float(x) for x in mtf["value"]]
-        except OSError as exc:
-            raise LimenError(f"cannot read MTF file ({exc.strerror or exc})", path) from None
         except (ValueError, KeyError, TypeError):
             raise LimenError(
                 "not a detector JSON with mtf.frequency_per_mm and mtf.value (from limen detector --json)", path

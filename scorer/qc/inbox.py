@@ -16,6 +16,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 
 from scorer.errors import LimenError
+from scorer.files import atomic_write_text
 from scorer.images.io import LimenWarning, load_image
 from scorer.qc.config import NightlyConfig
 from scorer.qc.faults import fault_point
@@ -224,9 +225,7 @@ def quarantine_file(path, quarantine_dir, reason: str) -> Path | None:
         dest = qdir / f"{path.stem}-{n}{path.suffix}"
         n += 1
     note = dest.with_name(dest.name + REASON_SUFFIX)
-    tmp = note.with_name(f".{note.name}.{os.getpid()}.tmp")
-    tmp.write_text(" ".join(reason.split()) + "\n", encoding="utf-8")
-    os.replace(tmp, note)
+    atomic_write_text(note, " ".join(reason.split()) + "\n")
     fault_point("quarantine")
     try:
         shutil.move(str(path), str(dest))
