@@ -46,7 +46,7 @@ def aperture_edge(n=256, angle_deg=2.5, sub=16):
 @pytest.mark.parametrize("horizontal", [False, True])
 @pytest.mark.parametrize("sigma_mm", [0.03, 0.08])
 def test_mtf_gaussian_edge(angle_deg, horizontal, sigma_mm):
-    # Gaussian blur of sd σ: MTF(f) = exp(−2π²σ²f²) (Fourier transform of a Gaussian; REFERENCES.md).
+    # Gaussian blur of sd σ: MTF(f) = exp(−2π²σ²f²) (Fourier transform of a Gaussian; docs/references.md).
     p = 0.1
     res = measure_mtf(gaussian_edge(angle_deg=angle_deg, sigma_mm=sigma_mm, pitch_mm=p, horizontal=horizontal), (p, p))
     f = res.frequency_per_mm
@@ -60,7 +60,7 @@ def test_mtf_gaussian_edge(angle_deg, horizontal, sigma_mm):
 
 
 def test_mtf_square_aperture_sinc():
-    # Square pixel aperture, 100 % fill: MTF(f) = |sinc(pf)|, 2/π at Nyquist (REFERENCES.md).
+    # Square pixel aperture, 100 % fill: MTF(f) = |sinc(pf)|, 2/π at Nyquist (docs/references.md).
     p = 0.085
     res = measure_mtf(100 + 900 * aperture_edge(angle_deg=3.0), (p, p))
     f = res.frequency_per_mm
@@ -80,7 +80,7 @@ def test_mtf_refuses_unusable_edges():
 
 def test_mtf_simulated_panels():
     # Direct conversion, 100 % fill factor: presampling MTF = |sinc(pf)| → 2/π ≈ 0.637 at Nyquist
-    # (REFERENCES.md, square pixel aperture); indirect: the simulator's analytic presampling MTF.
+    # (docs/references.md, square pixel aperture); indirect: the simulator's analytic presampling MTF.
     sim = pytest.importorskip("scorer.detector.simulator")
     for name in ("direct", "indirect"):
         model = sim.detector_model(name)
@@ -103,7 +103,7 @@ def white_flats(n_images=4, size=512, mean=1000.0, sd=20.0, seed=0):
 
 
 def test_nnps_white_noise():
-    # White noise of variance σ² on Δx × Δy pixels: NPS = σ²ΔxΔy (Parseval), NNPS = σ²ΔxΔy/m² (REFERENCES.md).
+    # White noise of variance σ² on Δx × Δy pixels: NPS = σ²ΔxΔy (Parseval), NNPS = σ²ΔxΔy/m² (docs/references.md).
     p, m, sd = 0.1, 1000.0, 20.0
     res = measure_nnps(white_flats(mean=m, sd=sd), (p, p))
     expected = sd**2 * p * p / m**2
@@ -143,7 +143,7 @@ def test_nnps_bad_input():
 
 def test_dqe_ideal_poisson_counter():
     # Ideal quantum counter: NNPS = 1/(qK), presampling MTF = |sinc(pf)|, so DQE(f) = sinc²(pf) → 1 at low
-    # frequency (REFERENCES.md; Poisson variance = mean).
+    # frequency (docs/references.md; Poisson variance = mean).
     rng = np.random.default_rng(11)
     p, q, k = 0.1, 25000.0, 40.0  # photons per mm² per µGy, µGy → 10 000 counts per pixel
     lam = q * k * p * p
@@ -213,7 +213,7 @@ def test_conversion_fit_bad_input():
 
 
 def test_beam_quality_table():
-    # q values of RQA beam qualities, IEC 62220-1-1 (from memory, as in REFERENCES.md).
+    # q values of RQA beam qualities, IEC 62220-1-1 (from memory, as in docs/references.md).
     table = beam_qualities()
     assert {k: v["q_per_mm2_ugy"] for k, v in table.items()} == {
         "RQA3": 21759.0,

@@ -97,7 +97,7 @@ def test_detector_json_keys_and_values(panels):
     assert d["conversion"]["kind"] == "linear"
     assert set(d["edge_angle_deg"]) == {"x", "y"}
     assert abs(d["edge_angle_deg"]["x"]) == pytest.approx(2.5, abs=0.1)
-    # direct panel, 100 % fill factor: MTF at Nyquist = 2/π (square aperture; REFERENCES.md)
+    # direct panel, 100 % fill factor: MTF at Nyquist = 2/π (square aperture; docs/references.md)
     nyq = d["nyquist_per_mm"]
     assert np.interp(nyq, d["mtf"]["frequency_per_mm"], d["mtf"]["value"]) == pytest.approx(2 / np.pi, abs=0.03)
     assert d["nnps"]["n_rois"] == 27

@@ -19,7 +19,7 @@ def _curve(points, observer="npw"):
 
 
 def test_example_file_holds_the_guideline_values_from_memory():
-    # European guidelines, 4th ed. (2006), digital mammography (values from memory, REFERENCES.md)
+    # European guidelines, 4th ed. (2006), digital mammography (values from memory, docs/references.md)
     lim = load_limits(EXAMPLE_LIMITS)
     assert lim.observer == "human"
     assert lim.acceptable_at(0.1) == pytest.approx(0.23)

@@ -9,19 +9,19 @@ from scorer.observer import dprime_for_pc, halfway_criterion, pc_mafc
 
 @pytest.mark.parametrize("d", [0.0, 0.5, 1.0, 2.0, 3.5])
 def test_two_afc_is_phi_of_d_over_root2(d):
-    # 2-AFC: Pc = Φ(d′/√2) (Green & Swets 1966; REFERENCES.md)
+    # 2-AFC: Pc = Φ(d′/√2) (Green & Swets 1966; docs/references.md)
     assert pc_mafc(d, 2) == pytest.approx(stats.norm.cdf(d / np.sqrt(2)), abs=1e-12)
 
 
 @pytest.mark.parametrize("d,pc", [(0.5, 0.3933), (1.0, 0.5520), (2.0, 0.8228), (3.0, 0.9564)])
 def test_four_afc_matches_tabulated_values(d, pc):
-    # M = 4 values of ∫φ(x−d′)Φ(x)³dx (REFERENCES.md, computed with scipy.integrate.quad;
+    # M = 4 values of ∫φ(x−d′)Φ(x)³dx (docs/references.md, computed with scipy.integrate.quad;
     # tables in Hacker & Ratcliff, Perception & Psychophysics 26 (1979))
     assert pc_mafc(d, 4) == pytest.approx(pc, abs=6e-5)
 
 
 def test_inverse_at_the_halfway_criterion():
-    # Pc = 0.625 at M = 4 ↔ d′ = 1.235 (REFERENCES.md); halfway between chance and 1 is common practice
+    # Pc = 0.625 at M = 4 ↔ d′ = 1.235 (docs/references.md); halfway between chance and 1 is common practice
     assert halfway_criterion(4) == 0.625
     assert dprime_for_pc(0.625, 4) == pytest.approx(1.235, abs=5e-4)
     for m in (2, 3, 4, 8):

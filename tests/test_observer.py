@@ -36,7 +36,7 @@ def _disc_image(diameter_mm, contrast, sigma, n_repeat, seed=0, blur_sigma_px=0.
 @pytest.mark.parametrize("diameter_mm", [0.3, 1.0])
 def test_npw_dprime_equals_norm_of_signal_over_sigma(diameter_mm):
     # NPW in white noise: d′ = ‖Δs‖/σ (Barrett & Myers, Foundations of Image Science (2004), ch. 13);
-    # sampled d′ = (mean t_s − mean t_n)/√(½(var t_s + var t_n)) (REFERENCES.md)
+    # sampled d′ = (mean t_s − mean t_n)/√(½(var t_s + var t_n)) (docs/references.md)
     bg, c, sigma, n = 100.0, 0.05, 10.0, 150
     img, lay, pl = _disc_image(diameter_mm, c, sigma, n)
     df = score_image(img, lay, pl, ObserverConfig("npw", blur=SystemBlur(0.0)))

@@ -17,7 +17,7 @@ def white(value):
 
 
 def test_disc_ft_matches_hankel_transform():
-    # FT of a disc of radius R: R·J₁(2πRf)/f (ICRU Report 54; REFERENCES.md), equal to the Hankel
+    # FT of a disc of radius R: R·J₁(2πRf)/f (ICRU Report 54; docs/references.md), equal to the Hankel
     # transform 2π∫₀ᴿ r J₀(2πfr) dr computed here with scipy.integrate.quad.
     r = 0.4
     for f in (0.0, 0.3, 1.1, 2.7):
@@ -29,7 +29,7 @@ def test_disc_ft_matches_hankel_transform():
 @pytest.mark.parametrize("radius_px", [8, 15])
 def test_npw_white_noise_matches_spatial_form(radius_px):
     # NPW in white noise of sd σ (relative units), MTF = 1: d′ = a√A/σ, A the disc area in pixels
-    # (Barrett & Myers, Foundations of Image Science (2004) ch. 13; REFERENCES.md).
+    # (Barrett & Myers, Foundations of Image Science (2004) ch. 13; docs/references.md).
     p, sigma = 0.1, 0.02
     dp = dprime_per_contrast(2 * radius_px * p, ones, white(sigma**2 * p * p), p)
     expected = np.sqrt(np.pi * radius_px**2) / sigma
@@ -59,7 +59,7 @@ def test_npw_small_blurred_disc_counts_aliased_signal():
 
 
 def test_threshold_uses_mafc_criterion():
-    # 4-AFC, Pc = 0.625 (halfway) ↔ d′ = 1.235 (Green & Swets; REFERENCES.md, computed with quad).
+    # 4-AFC, Pc = 0.625 (halfway) ↔ d′ = 1.235 (Green & Swets; docs/references.md, computed with quad).
     p = 0.1
     res = predict_thresholds([0.5, 1.0], ones, white(1e-6), p, observers=["npw"])
     for r in res:

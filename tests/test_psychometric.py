@@ -52,7 +52,7 @@ def test_table_closed_form_and_published_values():
     # M = 2: Pc = Φ(d′/√2) exactly (Green & Swets 1966)
     d = np.linspace(0, 8, 97)
     assert np.abs(pc_mafc_fast(d, 2) - stats.norm.cdf(d / np.sqrt(2))).max() < 1e-6
-    # M = 4 values listed in REFERENCES.md (computed there with scipy quad; tables in Hacker & Ratcliff 1979)
+    # M = 4 values listed in docs/references.md (computed there with scipy quad; tables in Hacker & Ratcliff 1979)
     np.testing.assert_allclose(pc_mafc_fast([0.5, 1.0, 2.0, 3.0], 4), [0.3933, 0.5520, 0.8228, 0.9564], atol=6e-5)
     assert pc_mafc_fast(0.0, 4) == pytest.approx(0.25, abs=1e-9)  # chance at d′ = 0
 
@@ -267,7 +267,7 @@ def test_logistic_without_guess_equals_statsmodels_glm():
 
 
 def test_logistic_biased_low_for_linear_observer():
-    # REFERENCES.md: a logistic in log C fitted to a linear observer's counts puts the threshold
+    # docs/references.md: a logistic in log C fitted to a linear observer's counts puts the threshold
     # about 10 % low.  Large samples so the bias is not masked by noise.  Measured ratio ≈ 0.9.
     rng = np.random.default_rng(6)
     levels = np.geomspace(0.005, 0.08, 10)

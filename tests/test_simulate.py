@@ -22,7 +22,7 @@ def _pure_quantum():
 
 
 def test_poisson_variance_equals_mean_on_pure_quantum_flat_field():
-    # Poisson counting: variance = mean (REFERENCES.md, "Quantum-limited detection"; Rose 1948)
+    # Poisson counting: variance = mean (docs/references.md, "Quantum-limited detection"; Rose 1948)
     sim = simulate(_pure_quantum(), "flat", dose_ugy=40.0, seed=3, small=True)
     px = sim.pixels.astype(float)
     expected_mean = 5000.0 * 40.0 * 0.085**2
@@ -49,7 +49,7 @@ def _radial_nps(field, pixel_mm):
 
 def test_direct_panel_noise_is_white_with_nps_sigma2_dxdy():
     # White noise of variance σ² on Δx × Δy pixels: NPS = σ²ΔxΔy at every frequency (Parseval;
-    # REFERENCES.md "Detector measurements").  The direct panel has no spread, so its noise is white.
+    # docs/references.md "Detector measurements").  The direct panel has no spread, so its noise is white.
     m = detector_model("direct")
     sim = simulate(m, "flat", dose_ugy=100.0, seed=5, small=True)
     px = sim.kerma_ugy()
@@ -93,7 +93,7 @@ def _presampled_mtf_at(model, freqs, seed=11):
 
 
 def test_direct_panel_mtf_at_nyquist_is_aperture_sinc():
-    # Square aperture of width a = pitch: MTF(f_N) = sin(π/2)/(π/2) = 2/π (REFERENCES.md)
+    # Square aperture of width a = pitch: MTF(f_N) = sin(π/2)/(π/2) = 2/π (docs/references.md)
     m = detector_model("direct")
     nyq = 0.5 / m.pixel_pitch_mm
     (mtf_nyq,) = _presampled_mtf_at(m, [nyq])

@@ -101,7 +101,7 @@ def test_dprime_method_recovers_threshold_and_ci_covers_truth(n_images):
         p = dprime_thresholds(_synthetic_responses(rng, sigma, n_images=n_images), n_boot=0, seed=r).points[0]
         covered += p.ci_low <= truth <= p.ci_high
         errors.append(np.log(p.threshold_contrast / truth))
-    assert abs(np.mean(errors)) < 0.04  # unbiased to 4 % (pooled noise, REFERENCES.md)
+    assert abs(np.mean(errors)) < 0.04  # unbiased to 4 % (pooled noise, docs/references.md)
     assert 0.90 <= covered / n_rep <= 0.98
 
 
@@ -128,7 +128,7 @@ def test_count_and_dprime_methods_agree_within_their_cis():
 
 
 def test_dprime_ci_from_4_images_narrower_than_count_ci_from_16():
-    # REFERENCES.md: the d′ method needs fewer exposures (spread of log C_T 0.113 from 4 images vs 0.152 from 16)
+    # docs/references.md: the d′ method needs fewer exposures (spread of log C_T 0.113 from 4 images vs 0.152 from 16)
     rng = np.random.default_rng(9)
     a = dprime_thresholds(_synthetic_responses(rng, n_images=4), n_boot=500).points[0]
     b = count_thresholds(decide(_synthetic_responses(rng, n_images=16)), n_boot=500).points[0]

@@ -1,7 +1,7 @@
 """Human eye contrast-sensitivity filter for the NPWE observer.
 
 E(ρ) = ρⁿ exp(−cρ²), ρ in cycles per degree of visual angle, with n = 1.3 and
-c = 0.04 deg² (peak near 4 cycles/degree; values from memory, see REFERENCES).
+c = 0.04 deg² (peak near 4 cycles/degree; values from memory, see docs/references.md).
 A spatial frequency f in cycles/mm on the image seen from a viewing distance
 D mm is ρ = f · D · π/180 cycles/degree.
 

@@ -15,7 +15,7 @@ Two forms are offered for proportion correct ``Pc`` against contrast ``C``
 ``form="logistic"`` (documented alternative)
     ``Pc(C) = γ + (1 − γ − λ) / (1 + exp(−β (log10 C − α)))`` with parameters
     α (log10 contrast at the midpoint) and β (slope per decade).  For a linear
-    observer this form puts the threshold about 10 % low (REFERENCES.md), so it
+    observer this form puts the threshold about 10 % low (docs/references.md), so it
     is not the default.  With γ = 0 and λ = 0 it is a plain logistic regression.
 
 The lapse rate is fixed at ``lapse`` when a number is given, or fitted within

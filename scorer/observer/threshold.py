@@ -8,7 +8,7 @@ is the contrast where Pc reaches the criterion (default halfway between chance a
 
 *d′ method* — per target, d′ = (mean signal-site response − mean non-signal-site
 response) / σ, with σ the response standard deviation pooled over every site of the
-diameter (pooling is what keeps d′ unbiased with few images — REFERENCES.md): with
+diameter (pooling is what keeps d′ unbiased with few images — docs/references.md): with
 three or more sites per target, σ² is the variance of the non-signal sites about their
 mean within each image and target (the noise an M-AFC decision meets), pooled over
 images and targets; with two sites, the pooled within-target variance over images.  A
