@@ -176,7 +176,7 @@ def assert_stored_like_direct(url, detector, session_date, direct) -> None:
     import pandas as pd
     from sqlalchemy import select
 
-    from scorer.images.io import image_content_hash
+    from scorer.images.loading import image_content_hash
     from scorer.qc.store import ImageRow, ResponseRow, SessionRow, open_store
 
     cols = ["target", "site", "diameter_mm", "contrast", "is_signal", "response", "row_px", "col_px"]

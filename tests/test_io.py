@@ -1,4 +1,4 @@
-"""Tests for scorer.images.io: reading and writing detector images.
+"""Tests for reading and writing detector images (scorer.images.loading, .writers and the modules they use).
 
 Outside references used below:
 * DICOM PS3.3 (tags and their meaning), PS3.4 Annex B (storage SOP class UIDs),
@@ -26,16 +26,10 @@ from pydicom.uid import UID, ExplicitVRLittleEndian, generate_uid
 
 from scorer.images import ConversionFunction
 from scorer.errors import LimenError
-from scorer.images.io import (
-    SOP_CLASS_DX_FOR_PROCESSING,
-    SOP_CLASS_MG_FOR_PROCESSING,
-    LimenWarning,
-    dicom_datetime_to_iso,
-    image_content_hash,
-    load_image,
-    write_dicom,
-    write_image,
-)
+from scorer.images.dates import dicom_datetime_to_iso
+from scorer.images.image import LimenWarning
+from scorer.images.loading import image_content_hash, load_image
+from scorer.images.writers import SOP_CLASS_DX_FOR_PROCESSING, SOP_CLASS_MG_FOR_PROCESSING, write_dicom, write_image
 
 # An invented scenario: station, detector and serial belong to no real site.
 TAGS = {
@@ -627,11 +621,11 @@ def test_write_image_bad_extension_and_dicom_needs_spacing(tmp_path):
 def test_decoder_failure_at_decode_time_names_the_syntax(tmp_path, monkeypatch):
     # pydicom's own error when no plugin can decode (raised inside pixel_array) must also
     # become a one-line LimenError naming the transfer syntax, not a traceback.
-    import scorer.images.io as sio
+    import scorer.images.dicom_reader as dicom_reader
     from pydicom.pixels.decoders import JPEG2000LosslessDecoder
 
     p = _mg(tmp_path, syntax="jpeg2000-lossless")
-    monkeypatch.setattr(sio, "_check_decoder", lambda ds, path: None)
+    monkeypatch.setattr(dicom_reader, "_check_decoder", lambda ds, path: None)
     monkeypatch.setattr(JPEG2000LosslessDecoder, "_available", {})
     msg = _raises(p, "cannot decode pixel data in transfer syntax")
     assert "JPEG 2000 Image Compression (Lossless Only)" in msg and "1.2.840.10008.1.2.4.90" in msg

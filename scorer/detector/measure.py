@@ -376,7 +376,7 @@ def measure_detector(
     """MTF from the edge images, NNPS from the flat fields, and the DQE when K and q are known.
 
     Images must already be linear in air kerma (a conversion function applied by
-    :func:`scorer.images.io.load_image`).  Edges of the same orientation are averaged; the
+    :func:`scorer.images.loading.load_image`).  Edges of the same orientation are averaged; the
     headline MTF is the mean of the orientations measured.  The DQE is computed
     only when ``kerma_ugy`` and q (or ``beam``) are given; with ``require_dqe`` their
     absence is an error.

@@ -517,7 +517,7 @@ def dicom_tags(model: DetectorModel, acquired: _dt.datetime, dose_ugy: float) ->
 def write_simulated(sim: SimulatedImage, out_dir: Path, stem: str, acquired: _dt.datetime, fmt: str = "dicom") -> Path:
     """Write the image (DICOM by default) and its JSON ground-truth sidecar."""
     from scorer.files import atomic_write_text
-    from scorer.images.io import write_dicom, write_image
+    from scorer.images.writers import write_dicom, write_image
 
     out_dir = Path(out_dir)
     out_dir.mkdir(parents=True, exist_ok=True)

@@ -1,7 +1,10 @@
 """Image files in, one :class:`Image` out: pixels linear in air kerma, spacing and metadata.
 
-Modules: ``image`` (Image, ImageMetadata), ``io`` (load_image, write_dicom, write_image, content hash),
-``conversion`` (conversion functions pixel value ↔ air kerma and their TOML file).
+Modules: ``image`` (Image, ImageMetadata, LimenWarning), ``loading`` (load_image, content hash), which uses
+``formats`` (format sniffing, size from headers), ``dicom_reader``, ``raster_readers`` (TIFF, PNG, .npy),
+``dicom_tags`` (metadata, direction of the pixel values), ``spacing``, ``dates`` and ``messages``;
+``writers`` (write_dicom, write_image); ``conversion`` (conversion functions pixel value ↔ air kerma and their
+TOML file).
 
 May import: ``scorer.errors``, ``scorer.files`` only (the bottom layer).
 """

@@ -2,15 +2,17 @@
 
 from . import conversion as conversion
 from . import image as image
-from . import io as io
+from . import loading as loading
+from . import writers as writers
 
-from .image import Image as Image, ImageMetadata as ImageMetadata
-from .io import (
-    LimenWarning as LimenWarning,
+from .image import Image as Image, ImageMetadata as ImageMetadata, LimenWarning as LimenWarning
+from .loading import (
     load_image as load_image,
+    image_content_hash as image_content_hash,
+)
+from .writers import (
     write_dicom as write_dicom,
     write_image as write_image,
-    image_content_hash as image_content_hash,
 )
 from .conversion import (
     ConversionFunction as ConversionFunction,
@@ -21,7 +23,8 @@ from .conversion import (
 __all__ = [
     "conversion",
     "image",
-    "io",
+    "loading",
+    "writers",
     "Image",
     "ImageMetadata",
     "LimenWarning",

@@ -1,4 +1,4 @@
-"""The Image object that travels from :mod:`scorer.images.io` to the analysis modules."""
+"""The Image object that travels from :mod:`scorer.images.loading` to the analysis modules, and LimenWarning."""
 
 from __future__ import annotations
 
@@ -29,7 +29,7 @@ class ImageMetadata:
     intensity_relationship: str | None = None  # (0028,1040): LIN, LOG or OTHER, as the file says
     intensity_sign: int | None = None  # (0028,1041): +1 / -1 as stored (None when absent or not a number)
     # how the values Limen reads (after Rescale Slope or the Modality LUT) move with X-ray intensity:
-    # "rising", "falling", or None when the file does not say (see scorer.images.io.load_image)
+    # "rising", "falling", or None when the file does not say (see scorer.images.loading.load_image)
     intensity_direction: str | None = None
     linearised: bool = False
     conversion: dict | None = None  # the conversion function applied, if any
@@ -66,3 +66,7 @@ class Image:
     def pixel_mm(self) -> float:
         """Mean pixel pitch in mm (row and column pitch are almost always equal)."""
         return float(np.sqrt(self.spacing_mm[0] * self.spacing_mm[1]))
+
+
+class LimenWarning(UserWarning):
+    """Something about an input the user must know, though the work can go on."""

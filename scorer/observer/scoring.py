@@ -20,7 +20,8 @@ from scorer.errors import LimenError
 import numpy as np
 
 from scorer.resources import check_limit
-from scorer.images.io import LimenWarning, load_image
+from scorer.images.image import LimenWarning
+from scorer.images.loading import load_image
 from scorer.phantom.layout import Layout
 from scorer.observer.limits import HumanFactor, Limits, Verdict, evaluate, overall
 from scorer.observer.npw import ObserverConfig, SystemBlur, decide, estimate_blur, score_image

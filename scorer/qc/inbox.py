@@ -17,7 +17,8 @@ from pathlib import Path
 
 from scorer.errors import LimenError
 from scorer.files import atomic_write_text
-from scorer.images.io import LimenWarning, load_image
+from scorer.images.image import LimenWarning
+from scorer.images.loading import load_image
 from scorer.qc.config import NightlyConfig
 from scorer.qc.faults import fault_point
 
@@ -157,7 +158,7 @@ def _quick_metadata(path: Path):
     """
     import pydicom
     from scorer.images.image import ImageMetadata
-    from scorer.images.io import fill_dicom_metadata  # the same tags load_image reads
+    from scorer.images.dicom_tags import fill_dicom_metadata  # the same tags load_image reads
 
     try:
         with path.open("rb") as fh:

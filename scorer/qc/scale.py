@@ -67,7 +67,7 @@ def score_session(job: SessionJob) -> SessionOutcome:
     A file that fails (unreadable, changed since the scan, phantom not found) is named in
     ``failed_path``/``reason`` so the coordinator can quarantine it and re-form the session.
     """
-    from scorer.images.io import load_image  # noqa: F401  (warm import in workers)
+    from scorer.images.loading import load_image  # noqa: F401  (warm import in workers)
     from scorer.observer.scoring import score_images
 
     t0 = time.perf_counter()

@@ -16,7 +16,7 @@ import numpy as np
 from scorer.files import atomic_write_text
 from scorer.detector.simulator import detector_model, dicom_tags, simulate
 from scorer.images.conversion import save_conversion
-from scorer.images.io import write_dicom
+from scorer.images.writers import write_dicom
 
 # Beam of the simulated panels: the simulator's 28 kV; anode/filter as DICOM writes them (invented setting).
 ANODE, FILTER = "TUNGSTEN", "RHODIUM"
