@@ -17,7 +17,7 @@ LIMEN_MAX_BOOTSTRAP_CELLS      20000000   bootstrap cells held at once: resample
                                           ``limen analyse`` (draw counts per image and reader,
                                           resampled counts per reader × contrast level, stored
                                           estimates; about 20 bytes per cell measured, 400 MB at the
-                                          limit; see scorer.study.stats.bootstrap_block).  The fits'
+                                          limit; see scorer.study.analysis.bootstrap_block).  The fits'
                                           likelihood grid is evaluated in chunks of bounded size
                                           (about 30 MB, scorer.observer.psychometric.GRID_CHUNK_CELLS)
                                           and is not counted

@@ -120,7 +120,7 @@ def test_one_reader_study_gives_notes_not_a_crash(study_files):
 def test_bootstrap_budget_refuses_before_any_fit(study_files):
     # reads.csv: 4 readers, 2 detectors, 8 images, 10 contrasts per diameter (simulate_reader_study's default
     # n_contrasts).  Each resample holds the draw counts of the 8 images and 4 readers and the resampled counts of
-    # the 4 readers × 10 levels (refitted at once to compare the detectors; scorer.study.stats.bootstrap_block):
+    # the 4 readers × 10 levels (refitted at once to compare the detectors; scorer.study.analysis.bootstrap_block):
     # 52 cells per resample, 26 000 for 500.  The likelihood grid is evaluated in chunks and not counted.
     reads = str(study_files / "reads.csv")
     args = ["analyse", reads, "--n-boot", "500", "--json"]

@@ -1,9 +1,9 @@
 """The layering of ``scorer/`` stays true: a lower package never imports a higher one.
 
-images < phantom < observer < detector, study < qc < reports < commands < cli < demo (DEVELOPERS.md).
-``detector`` and ``study`` sit side by side and never import each other.  The base modules
-(``scorer``, ``scorer.errors``, ``scorer.files``) import no package at all.  Every import counts,
-including those inside functions (they are how heavy modules load late, but still a dependency).
+images < phantom < observer < detector, study < workflow < qc < reports < commands < cli < demo (DEVELOPERS.md).
+``detector`` and ``study`` sit side by side and never import each other; ``workflow`` reads files for both.
+The base modules (``scorer``, ``scorer.errors``, ``scorer.files``) import no package at all.  Every import
+counts, including those inside functions (they are how heavy modules load late, but still a dependency).
 """
 
 from __future__ import annotations
@@ -27,11 +27,12 @@ RANK = {
     "observer": 3,
     "detector": 4,
     "study": 4,
-    "qc": 5,
-    "reports": 6,
-    "commands": 7,
-    "cli": 8,
-    "demo": 9,
+    "workflow": 5,
+    "qc": 6,
+    "reports": 7,
+    "commands": 8,
+    "cli": 9,
+    "demo": 10,
 }
 
 
@@ -102,14 +103,17 @@ def test_the_check_catches_an_upward_import(tmp_path, monkeypatch):
     (fake / "images").mkdir(parents=True)
     (fake / "images" / "bad.py").write_text("def f():\n    from scorer.observer import score_images\n")
     (fake / "detector").mkdir()
-    (fake / "detector" / "also_bad.py").write_text("from scorer.study.stats import analyse_study\n")
+    (fake / "detector" / "also_bad.py").write_text("from scorer.study.analysis import analyse_study\n")
+    (fake / "study").mkdir()
+    (fake / "study" / "reads_files.py").write_text("from scorer.workflow import load_trials\n")
     monkeypatch.setattr(__import__(__name__), "SCORER", fake)
     found = _violations()
     assert any("images/bad.py:2" in v for v in found)
     assert any("detector/also_bad.py:1" in v for v in found)
+    assert any("study/reads_files.py:1" in v for v in found)  # workflow sits above study
 
 
-@pytest.mark.parametrize("package", ["images", "phantom", "observer", "detector", "study", "qc", "reports"])
+@pytest.mark.parametrize("package", ["images", "phantom", "observer", "detector", "study", "workflow", "qc", "reports"])
 def test_every_public_name_is_importable(package):
     import importlib
 

@@ -230,23 +230,24 @@ def damaged_table(draw):
     df = TRIALS.copy().astype(object)
     for _ in range(draw(st.integers(1, 4))):
         what = draw(st.sampled_from(["cell", "drop", "dup", "cut", "percent"]))
-        if what == "cell":
+        if what == "cell" and len(df):
             df.iat[draw(st.integers(0, len(df) - 1)), draw(st.integers(0, df.shape[1] - 1))] = draw(scalars)
         elif what == "drop" and df.shape[1] > 1:
             df = df.drop(columns=[draw(st.sampled_from(list(df.columns)))])
-        elif what == "dup":
+        elif what == "dup" and len(df):
             df = pd.concat([df, df.iloc[[draw(st.integers(0, len(df) - 1))]]], ignore_index=True)
         elif what == "cut":
             df = df.head(draw(st.integers(0, len(df))))
         elif what == "percent" and "contrast" in df.columns:  # contrasts typed in per cent
-            df["contrast"] = pd.to_numeric(df["contrast"], errors="coerce") * 100
+            # kept as object, like every column, so a later "cell" damage may put any value there
+            df["contrast"] = (pd.to_numeric(df["contrast"], errors="coerce") * 100).astype(object)
     return df
 
 
 @SETTINGS
 @given(damaged_table())
 def test_trial_validator_gives_a_table_or_a_limen_error(df):
-    from scorer.study.stats import validate_trials
+    from scorer.study.trials import validate_trials
 
     try:
         out = validate_trials(df, source="mutated.csv")
@@ -262,7 +263,7 @@ def test_trial_validator_gives_a_table_or_a_limen_error(df):
 @SETTINGS
 @given(st.binary(max_size=400) | st.text(max_size=400).map(lambda t: t.encode("utf-8")))
 def test_trial_file_of_random_bytes(data):
-    from scorer.study import load_trials
+    from scorer.workflow import load_trials
 
     with tempfile.TemporaryDirectory() as d:
         p = Path(d) / "random.csv"
@@ -276,7 +277,7 @@ def test_trial_file_of_random_bytes(data):
 @SETTINGS
 @given(st.binary(max_size=200))
 def test_trial_csv_with_a_valid_header_and_random_body(body):
-    from scorer.study import load_trials
+    from scorer.workflow import load_trials
 
     head = TRIALS.head(3).to_csv(index=False).encode()
     with tempfile.TemporaryDirectory() as d:

@@ -1,4 +1,5 @@
-"""Tests of scorer.study.stats, scorer.study.agreement and scorer.study.reader_model.
+"""Tests of the reader-study analysis (scorer.study.analysis and its parts), scorer.study.agreement and
+scorer.study.reader_model.
 
 Simulated readers come from the documented model in scorer.study.reader_model (linear
 observers in M-AFC; Green & Swets 1966), so true thresholds are known.
@@ -18,16 +19,12 @@ from scorer.observer import dprime_for_pc
 from scorer.observer.psychometric import pc_mafc_fast, unit_counts
 from scorer.study.reader_model import ReaderPopulation, model_threshold, simulate_reader_study
 from scorer.reports import dumps
-from scorer.study.stats import (
-    analyse_study,
-    compare_groups,
-    fit_pooled_gee,
-    human_model_factor,
-    pooled_curves,
-    pooled_mafc_gee,
-    reader_curves,
-    validate_trials,
-)
+from scorer.study.analysis import analyse_study
+from scorer.study.group_comparison import compare_groups
+from scorer.study.human_factor import human_model_factor
+from scorer.study.pooled_gee import fit_pooled_gee, pooled_curves, pooled_mafc_gee
+from scorer.study.reader_fits import reader_curves
+from scorer.study.trials import validate_trials
 
 
 def small_study(seed=0, **kw):
@@ -383,7 +380,8 @@ def test_a_plate_with_3_and_5_site_cells_uses_each_diameters_own_criterion():
     # found when the demo plate got 3-AFC triangles and 5-AFC pentagons: the study statistics took M from the
     # number of site labels over the whole table (5) and applied the 5-AFC criterion to 3-AFC targets.
     # Halfway criteria: Pc = 2/3 for M = 3, 0.6 for M = 5 (Green & Swets 1966; common practice).
-    from scorer.study.stats import analyse_study, criterion_at, m_alternatives_of
+    from scorer.study.alternatives import criterion_at, m_alternatives_of
+    from scorer.study.analysis import analyse_study
 
     rng = np.random.default_rng(7)
     rows = []
@@ -419,7 +417,7 @@ def test_reader_thresholds_outside_the_contrasts_shown_are_flagged_censored():
     # a reader right at every contrast only bounds the threshold from above by the lowest contrast shown; a
     # reader at chance bounds it from below by the highest (issue: "106 % when the highest disc is 45 %")
     from scorer.reports.study import report_html
-    from scorer.study.stats import analyse_study
+    from scorer.study.analysis import analyse_study
 
     rows = []
     for r, skill in (("sharp", 1.0), ("blind", 0.0), ("mid1", 0.6), ("mid2", 0.6)):
@@ -491,7 +489,7 @@ def test_bootstrap_block_predicts_the_peak_memory_of_analyse_study():
     import tracemalloc
 
     from scorer.observer.psychometric import GRID_CHUNK_CELLS
-    from scorer.study.stats import bootstrap_block
+    from scorer.study.analysis import bootstrap_block
 
     st = small_study(seed=5, n_repeats=1, n_contrasts=8)
     block, where = bootstrap_block(st.trials, st.model_trials, "detector")

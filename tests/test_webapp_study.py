@@ -120,8 +120,7 @@ def test_export_is_what_limen_analyse_reads(tmp_path):
     app, sid = demo_app(tmp_path, n_readers=2)
     from scorer.cli import main
     from scorer.study import validate_trials
-    from scorer.study.reader_model import TRIAL_COLUMNS
-    from scorer.study.stats import OPTIONAL_COLUMNS
+    from scorer.study.trials import OPTIONAL_COLUMNS, TRIAL_COLUMNS
 
     sent = {}
     for name in ("reader1", "reader2"):

@@ -33,8 +33,7 @@ EXTRA_EXPORT_COLUMNS = ["window", "level", "timestamp"]
 
 def export_columns() -> list[str]:
     """The responses CSV: every column ``limen analyse`` reads, then window, level and timestamp."""
-    from scorer.study.reader_model import TRIAL_COLUMNS
-    from scorer.study.stats import OPTIONAL_COLUMNS
+    from scorer.study.trials import OPTIONAL_COLUMNS, TRIAL_COLUMNS
 
     return list(TRIAL_COLUMNS) + [c for c in OPTIONAL_COLUMNS if c not in TRIAL_COLUMNS] + EXTRA_EXPORT_COLUMNS
 
@@ -482,9 +481,9 @@ def responses_csv(session, study) -> str:
 def model_frame(study) -> pd.DataFrame | None:
     if not study.model_trials_csv:
         return None
-    return pd.read_csv(
-        io.StringIO(study.model_trials_csv), dtype={"reader": str, "detector": str, "image": str, "target": str}
-    )
+    from scorer.study.trials import LABEL_COLUMNS
+
+    return pd.read_csv(io.StringIO(study.model_trials_csv), dtype=dict.fromkeys(LABEL_COLUMNS, str))
 
 
 def run_analysis(session, study, n_boot: int, seed: int = 0, progress=None):

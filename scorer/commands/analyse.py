@@ -43,8 +43,9 @@ def analyse(responses, model_file, by, reference, n_boot, criterion_pc, seed, as
     """Per-reader and pooled contrast-detail curves, human/model factor, group comparison, agreement."""
     from scorer.images.loading import image_content_hash as file_sha256  # SHA-256 of a file's bytes
     from scorer.files import OutputFolder
-    from scorer.study import analyse_study, load_trials
-    from scorer.study.stats import m_alternatives_of
+    from scorer.study import analyse_study
+    from scorer.study.alternatives import m_alternatives_of
+    from scorer.workflow import load_trials
 
     trials = load_trials(responses)
     m_alternatives_of(trials, responses)  # a table with one candidate site is refused naming its file

@@ -1,4 +1,4 @@
-"""HTML report and CSV tables of a reader-study analysis (:class:`scorer.study.stats.Analysis`).
+"""HTML report and CSV tables of a reader-study analysis (:class:`scorer.study.analysis.Analysis`).
 
 Plots: contrast-detail curves per group (per reader, pooled with CI, model observer and
 human-equivalent model curve), log-log; forest plot of the group comparison; Bland–Altman

@@ -1,18 +1,25 @@
 """Public entry points of this package (read by lazy_loader.attach_stub and type checkers)."""
 
 from . import agreement as agreement
+from . import alternatives as alternatives
+from . import analysis as analysis
+from . import counts as counts
+from . import group_comparison as group_comparison
+from . import human_factor as human_factor
+from . import pooled_gee as pooled_gee
+from . import reader_fits as reader_fits
 from . import reader_model as reader_model
-from . import stats as stats
+from . import trials as trials
+from . import wording as wording
 from . import planning as planning
 
-from .stats import (
+from .analysis import (
     Analysis as Analysis,
     analyse_study as analyse_study,
-    load_trials as load_trials,
-    validate_trials as validate_trials,
-    human_model_factor as human_model_factor,
-    compare_groups as compare_groups,
 )
+from .trials import validate_trials as validate_trials
+from .human_factor import human_model_factor as human_model_factor
+from .group_comparison import compare_groups as compare_groups
 from .agreement import agreement_summary as agreement_summary
 from .planning import (
     PowerPlan as PowerPlan,
@@ -28,11 +35,18 @@ from .reader_model import (
 
 __all__ = [
     "agreement",
+    "alternatives",
+    "analysis",
+    "counts",
+    "group_comparison",
+    "human_factor",
+    "pooled_gee",
+    "reader_fits",
     "reader_model",
-    "stats",
+    "trials",
+    "wording",
     "Analysis",
     "analyse_study",
-    "load_trials",
     "validate_trials",
     "human_model_factor",
     "compare_groups",

@@ -4,9 +4,9 @@ Power by simulation (Burton et al. 2006): for each design (readers × images per
 studies are simulated with :func:`scorer.study.reader_model.simulate_reader_study` — invented readers whose
 thresholds spread between readers as in a pilot study (or as stated), reading images of a reference detector
 and of one whose thresholds are ``ratio`` times higher — and each is analysed exactly as a real study is: a
-per-reader M-AFC fit (:func:`scorer.study.stats.reader_curves`) and the detector comparison
-(:func:`scorer.study.stats.compare_groups`, mixed model plus the image-sampling variance). Power is the share
-of simulated studies whose comparison is significant at ``alpha``; its interval is Wilson's
+per-reader M-AFC fit (:func:`scorer.study.reader_fits.reader_curves`) and the detector comparison
+(:func:`scorer.study.group_comparison.compare_groups`, mixed model plus the image-sampling variance). Power is
+the share of simulated studies whose comparison is significant at ``alpha``; its interval is Wilson's
 (statsmodels ``proportion_confint``).
 
 References
@@ -113,7 +113,8 @@ def power_by_simulation(
         raise LimenError("n_sim must be at least 1")
     from statsmodels.stats.proportion import proportion_confint
 
-    from scorer.study.stats import compare_groups, reader_curves
+    from scorer.study.group_comparison import compare_groups
+    from scorer.study.reader_fits import reader_curves
 
     pop = population or ReaderPopulation()
     root = np.random.SeedSequence(seed)

@@ -48,18 +48,6 @@ from scorer.observer.mafc import dprime_for_pc, halfway_criterion
 #: value of the optional ``source`` column in trials made by this module
 SIMULATED_SOURCE = "simulated reader model"
 
-TRIAL_COLUMNS = [
-    "reader",
-    "detector",
-    "image",
-    "target",
-    "diameter_mm",
-    "contrast",
-    "chosen_site",
-    "true_site",
-    "correct",
-]
-
 
 @dataclass
 class ReaderPopulation:
@@ -132,7 +120,7 @@ def simulate_reader_study(
 
     Returns
     -------
-    SimulatedStudy with the human and model trial tables (columns of :data:`TRIAL_COLUMNS`
+    SimulatedStudy with the human and model trial tables (columns of :data:`scorer.study.trials.TRIAL_COLUMNS`
     plus ``response_ms``, ``session``, ``repeat``) and the true thresholds.
     """
     pop = population or ReaderPopulation()
