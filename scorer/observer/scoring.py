@@ -105,6 +105,15 @@ def _image_ids(paths: Sequence[str]) -> list[str]:
     return [str(p) for p in paths]
 
 
+def _checked(image) -> Image:
+    if not isinstance(image, Image):
+        raise TypeError(
+            f"score_images takes Image objects, got {type(image).__name__}; "
+            "to score image files call scorer.workflow.score_files"
+        )
+    return image
+
+
 def score_images(
     images: Sequence[Image],
     layout: Layout,
@@ -151,7 +160,7 @@ def score_images(
     if not len(images):
         raise LimenError("no images given")
     if names is None:
-        names = [images[i].metadata.source_path or f"image {i + 1}" for i in range(len(images))]
+        names = [_checked(images[i]).metadata.source_path or f"image {i + 1}" for i in range(len(images))]
     elif len(names) != len(images):
         raise ValueError(f"{len(names)} names for {len(images)} images")
     methods = [m for m in methods]
@@ -187,11 +196,7 @@ def score_images(
     scores, frames = [], []
     detectors = set()
     for i, (image, path, image_id) in enumerate(zip(images, names, ids)):
-        if not isinstance(image, Image):
-            raise TypeError(
-                f"score_images takes Image objects, got {type(image).__name__}; "
-                "to score image files call scorer.workflow.score_files"
-            )
+        _checked(image)
         twin = seen_hashes.setdefault(image.metadata.content_sha256, str(path))
         if twin != str(path):
             raise LimenError(
