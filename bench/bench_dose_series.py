@@ -1,7 +1,7 @@
 """Floors and accuracy of the dose series (issue 11).
 
 1. Speed: a 5-kerma × 8-image series per panel (full-size simulated images of the demo plate) scored and fitted by
-   :func:`scorer.detector.score_dose_series` in under 2× the time :func:`scorer.observer.score_images` (what
+   :func:`scorer.workflow.score_dose_series` in under 2× the time :func:`scorer.workflow.score_files` (what
    ``limen score`` runs) needs for the same 40 images.
 2. Coverage of the kerma-ratio CI: a simulated pair with a known ratio — panel B is the direct panel with its
    quantum detection efficiency divided by 1.4, so it needs 1.4× the air kerma for the same threshold wherever
@@ -26,10 +26,10 @@ from pathlib import Path
 import numpy as np
 from tqdm import tqdm
 
-from scorer.detector import detector_model, kerma_ratio, score_dose_series, simulate, write_simulated
+from scorer.detector import detector_model, kerma_ratio, simulate
 from scorer.detector.dose import PowerLawFit
-from scorer.observer import score_images
 from scorer.phantom import load_layout
+from scorer.workflow import score_dose_series, score_files, write_simulated
 
 FLOOR_SPEED = 2.0
 COVERAGE = (0.90, 0.98)
@@ -59,7 +59,7 @@ def speed(tmp: Path) -> dict:
         paths = [p for ps in groups.values() for p in ps]
         conv = m.conversion_function()
         t = time.perf_counter()
-        score_images(paths, lay, conversion=conv)
+        score_files(paths, lay, conversion=conv)
         t_score = time.perf_counter() - t
         t = time.perf_counter()
         score_dose_series(groups, lay, conversion=conv)

@@ -1,7 +1,7 @@
 """Floors (issue 14, bounded resources).
 
 1. Peak memory of scoring grows at most linearly with images × sites: tracemalloc's peak (numpy arrays are
-   traced) while ``score_images`` scores 1, 2, 4 and 8 simulated images of the demo plate, and the plate cut to
+   traced) while ``score_files`` scores 1, 2, 4 and 8 simulated images of the demo plate, and the plate cut to
    ¼, ½ and all of its targets. The peak must grow no faster than linearly: peak(8 images) / peak(1 image) ≤ 8
    and peak(all sites) / peak(¼ of them) ≤ the ratio of sites. (Images are scored one after another, so the
    peak is in fact nearly flat.)
@@ -27,10 +27,10 @@ from pathlib import Path
 
 import numpy as np
 
-from scorer.detector import detector_model, simulate, write_simulated
+from scorer.detector import detector_model, simulate
 from scorer.errors import LimenError
-from scorer.observer import score_images
 from scorer.phantom import load_layout
+from scorer.workflow import score_files, write_simulated
 
 FLOOR_PEAK_X = 8.0  # peak of scoring one image, in multiples of its float64 pixels
 FLOOR_REFUSAL_S = 10.0
@@ -79,7 +79,7 @@ def main() -> dict:
             n_sites = sum(len(t.sites_mm) for t in sub.targets)
             for n_img in (1, 2, 4, 8):
                 peak = _peak_mb(
-                    lambda n_img=n_img, sub=sub: score_images(paths[:n_img], sub, conversion=conv, n_boot=200, seed=0)
+                    lambda n_img=n_img, sub=sub: score_files(paths[:n_img], sub, conversion=conv, n_boot=200, seed=0)
                 )
                 rows.append({"images": n_img, "sites": n_sites, "peak_mb": peak})
                 print(f"  {n_img} image(s) × {n_sites} sites: peak {peak:.1f} MB", flush=True)

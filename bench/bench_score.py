@@ -2,7 +2,7 @@
 
 1. Scoring one full-size image (registration + blur estimate + NPW observer at every site) takes at most 3× the
    time to load it (decode + linearise), measured side by side in one run (median of 4 images); and the cost
-   grows linearly with the number of images: time per image of a whole ``score_images`` call for 1, 2, 4, 8 and
+   grows linearly with the number of images: time per image of a whole ``score_files`` call for 1, 2, 4, 8 and
    16 images (median of 3 repeats each), and its ratio 16 vs 1.
 2. With the d′ method, the threshold CI from N images is no wider than the count method's from 16: the ratio of
    mean CI widths (in log contrast) per diameter, on simulated images of the demo plate, for N = 2, 4 and 8
@@ -27,8 +27,8 @@ from scorer.images import load_image
 from scorer.phantom import load_layout
 from scorer.observer import ObserverConfig, decide, estimate_blur, score_image
 from scorer.phantom import register
-from scorer.observer import score_images
-from scorer.detector import detector_model, simulate, write_simulated
+from scorer.workflow import score_files, write_simulated
+from scorer.detector import detector_model, simulate
 from scorer.observer import count_thresholds, dprime_thresholds
 
 FLOOR_RATIO = 3.0
@@ -42,7 +42,7 @@ def speed(tmp: Path) -> dict:
     conv = m.conversion_function()
     paths = []
     for i in range(16):
-        sim = simulate(m, "phantom", 100.0, seed=100 + i)
+        sim = simulate(m, "phantom", 100.0, seed=100 + i, layout=lay)
         paths.append(write_simulated(sim, tmp, f"full-{i}", dt.datetime(2026, 11, 30, 8, i)))
     load_t, score_t = [], []
     for p in paths[:4]:
@@ -60,7 +60,7 @@ def speed(tmp: Path) -> dict:
         runs = []
         for _ in range(3):
             t = time.perf_counter()
-            score_images(paths[:n], lay, methods=["dprime", "count"], conversion=conv, n_boot=200)
+            score_files(paths[:n], lay, methods=["dprime", "count"], conversion=conv, n_boot=200)
             runs.append((time.perf_counter() - t) / n)
         per_image[n] = float(np.median(runs))
     print(
@@ -68,7 +68,7 @@ def speed(tmp: Path) -> dict:
         f"-> ratio {ratio:.2f} (floor {FLOOR_RATIO}) {'PASS' if ratio <= FLOOR_RATIO else 'FAIL'}"
     )
     print(
-        "time per image with n images (whole score_images call incl. load and 200 bootstraps, median of 3): "
+        "time per image with n images (whole score_files call incl. load and 200 bootstraps, median of 3): "
         + ", ".join(f"n={n}: {v:.2f} s" for n, v in per_image.items())
     )
     return {

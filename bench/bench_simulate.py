@@ -20,10 +20,11 @@ FLOOR_MB = 1024.0
 _CHILD = r"""
 import json, resource, sys, time, datetime
 from pathlib import Path
-from scorer.detector import detector_model, simulate, write_simulated
+from scorer.detector import detector_model, simulate
+from scorer.workflow import load_layout, write_simulated
 name, out = sys.argv[1], Path(sys.argv[2])
-m = detector_model(name)
-t = time.perf_counter(); sim = simulate(m, "phantom", 100.0, seed=1); t_sim = time.perf_counter() - t
+m, lay = detector_model(name), load_layout()
+t = time.perf_counter(); sim = simulate(m, "phantom", 100.0, seed=1, layout=lay); t_sim = time.perf_counter() - t
 t = time.perf_counter()
 write_simulated(sim, out, name, datetime.datetime(2026, 11, 30, 8, 0))
 t_write = time.perf_counter() - t

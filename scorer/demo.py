@@ -213,7 +213,7 @@ def _against_limits(out: Path, panel: str) -> list[str]:
     """Options that score a panel's plate as the readers would see it: NPWE templates shaped by the measured
     MTF, thresholds turned human-equivalent by the reader study's factor and checked against the example
     limits (shared by the verdict and the dose series)."""
-    from scorer.observer import EXAMPLE_LIMITS
+    from scorer.workflow import EXAMPLE_LIMITS
 
     d = out / panel
     return [

@@ -172,7 +172,7 @@ def thresholds(url) -> list[tuple]:
 
 
 def assert_stored_like_direct(url, detector, session_date, direct) -> None:
-    """The responses and per-image counts stored for one session equal a direct ``score_images`` result."""
+    """The responses and per-image counts stored for one session equal a direct ``score_files`` result."""
     import pandas as pd
     from sqlalchemy import select
 

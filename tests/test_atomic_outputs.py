@@ -248,7 +248,8 @@ def _writers(tmp_path):
     """(name, call, the file that must be complete or absent, the fault-point pass to die at)."""
     import datetime as dt
 
-    from scorer.detector import detector_model, simulate, write_simulated
+    from scorer.detector import detector_model, simulate
+    from scorer.workflow import write_simulated
     from scorer.images import ConversionFunction, save_conversion, write_dicom, write_image
     from scorer.qc.simulated import demo_nights
     from scorer.study.reader_model import write_demo_study

@@ -7,11 +7,12 @@ import numpy as np
 import pytest
 from scipy.stats import norm
 
-from scorer.detector.measure import beam_qualities, compute_dqe, fit_conversion, measure_detector, q_for_beam
+from scorer.detector.measure import compute_dqe, fit_conversion, measure_detector
 from scorer.errors import LimenError
 from scorer.images import Image
 from scorer.detector import measure_mtf
 from scorer.detector import measure_nnps
+from scorer.workflow import beam_qualities, q_for_beam
 
 
 # ---------------------------------------------------------------- synthetic images

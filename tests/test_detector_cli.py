@@ -12,7 +12,8 @@ from click.testing import CliRunner
 from scorer.cli import main
 from scorer.images import save_conversion
 from scorer.images import write_dicom
-from scorer.detector import detector_model, simulate, write_simulated
+from scorer.detector import detector_model, simulate
+from scorer.workflow import load_layout, write_simulated
 
 T0 = dt.datetime(2026, 11, 30, 8, 0, 0)
 
@@ -352,7 +353,9 @@ def test_inputs_that_are_not_what_they_claim_are_refused(panels, tmp_path):
     # found in use: a flat given as --edge exited 0 with MTF values up to 52; an edge or a phantom given as
     # --flat was measured as noise (IEC 62220-1: flat fields are free of objects, edges are sharp steps)
     p = panels["direct"]
-    phantom = write_simulated(simulate(p["model"], "phantom", 100.0, seed=3, small=True), tmp_path, "ph", T0)
+    phantom = write_simulated(
+        simulate(p["model"], "phantom", 100.0, seed=3, small=True, layout=load_layout()), tmp_path, "ph", T0
+    )
     cases = [
         (["--edge", p["flats"][0]], "no edge"),
         (["--flat", p["ev"]], "not a flat field"),

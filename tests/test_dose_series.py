@@ -10,12 +10,13 @@ from collections import OrderedDict
 import numpy as np
 import pytest
 
-from scorer.detector.dose import PowerLawFit, fit_power_law, group_by_kerma, kerma_ratio, score_dose_series
+from scorer.detector.dose import PowerLawFit, fit_power_law, group_by_kerma, kerma_ratio
 from scorer.detector.noise import fit_components, group_flats
-from scorer.detector.simulator import detector_model, simulate, write_simulated
+from scorer.detector.simulator import detector_model, simulate
 from scorer.errors import LimenError
 from scorer.images import Image
 from scorer.phantom import load_layout
+from scorer.workflow import score_dose_series, write_simulated
 
 from helpers import MINI
 
@@ -390,7 +391,7 @@ def _compare(series, *extra):
 
 
 def test_compare_detectors_dose_ratio_equals_the_library(two_panel_series):
-    from scorer.detector.comparison import load_detector_json, load_dose_json
+    from scorer.workflow import load_detector_json, load_dose_json
     from scorer.detector.dose import compare_series
 
     a, b = two_panel_series["direct"], two_panel_series["indirect"]

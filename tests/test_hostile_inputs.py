@@ -628,14 +628,14 @@ def test_inverted_dicom_with_its_conversion_scores_as_the_original(W):
     # stored falling (PS3.3 C.8.11.3, sign -1) and linearised by the matching falling conversion function, the image
     # is the same air kerma as the original, so every site's response (a contrast estimate) is the same
     from scorer.images import load_conversion
-    from scorer.observer import score_images
+    from scorer.workflow import score_files
     from scorer.phantom import load_layout
 
     layout = load_layout(MINI)
     image, conv_path = _inverted(W)
     kw = dict(methods=["dprime"], n_boot=20, seed=1)
-    a = score_images([W.ph[0]], layout, conversion=load_conversion(W.conv), **kw)
-    b = score_images([image], layout, conversion=load_conversion(conv_path), **kw)
+    a = score_files([W.ph[0]], layout, conversion=load_conversion(W.conv), **kw)
+    b = score_files([image], layout, conversion=load_conversion(conv_path), **kw)
     np.testing.assert_allclose(b.responses["response"], a.responses["response"], rtol=1e-9, atol=1e-12)
     assert b.images[0].metadata["intensity_direction"] == "falling"
     assert a.images[0].metadata["intensity_direction"] == "rising"

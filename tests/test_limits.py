@@ -4,8 +4,9 @@ import numpy as np
 import pytest
 
 from scorer.errors import LimenError
-from scorer.observer import EXAMPLE_LIMITS, evaluate, load_limits, overall
+from scorer.observer import evaluate, overall
 from scorer.observer import ThresholdCurve, ThresholdPoint
+from scorer.workflow import EXAMPLE_LIMITS, load_limits
 
 
 def _curve(points, observer="npw"):

@@ -1,7 +1,7 @@
 """Property-based tests (hypothesis): any input to a parser gives a valid result or the project's one-line
 LimenError, never another exception.
 
-Parsers covered: the layout format (``parse_layout``), the limits file (``load_limits``), the nightly
+Parsers covered: the layout format (``parse_layout``), the limits file (``parse_limits``), the nightly
 configuration (``load_config``), the image reader (``load_image``, on mutated DICOM, PNG, TIFF and NumPy files)
 and the reader-study trial table (``load_trials`` / ``validate_trials``). Inputs are valid documents with random
 mutations (a value replaced by a random one, a key dropped, bytes flipped or cut), plus free random text.
@@ -121,14 +121,13 @@ LIMITS_DOC = {
 @SETTINGS
 @given(mutated(LIMITS_DOC))
 def test_limits_parser_gives_limits_or_a_limen_error(doc):
-    from scorer.observer import load_limits
+    from scorer.observer import parse_limits
 
-    with mock.patch("scorer.observer.limits.read_toml", return_value=doc):
-        try:
-            lim = load_limits("mutated-limits.toml")
-        except LimenError as exc:
-            _one_line(exc)
-            return
+    try:
+        lim = parse_limits(doc, "mutated-limits.toml")
+    except LimenError as exc:
+        _one_line(exc)
+        return
     assert all(np.isfinite(a) and a > 0 for a in lim.acceptable)
 
 

@@ -51,7 +51,7 @@ def test_wrong_format_and_human_limits_without_factor(tmp_path):
     p.write_text('format = "other/1"\n')
     with pytest.raises(LimenError, match="expected format"):
         load_config(p)
-    from scorer.observer import EXAMPLE_LIMITS
+    from scorer.workflow import EXAMPLE_LIMITS
 
     p = _write(tmp_path, f'[[detectors]]\ndetector_id = "A"\nlimits = "{EXAMPLE_LIMITS.as_posix()}"\n')
     with pytest.raises(LimenError, match="are for human readers; give human_factor"):

@@ -1,8 +1,8 @@
 """`limen nightly` on an inbox with good sessions and every kind of bad file; idempotency; waiting sessions.
 
-Expected behaviour is the issue's specification; the scoring itself is `score_images` (tested elsewhere
+Expected behaviour is the issue's specification; the scoring itself is `score_files` (tested elsewhere
 against published formulas), so here the check is that each session's stored thresholds equal a direct
-`score_images` call on the same files (same seed), and that nothing is scored twice.
+`score_files` call on the same files (same seed), and that nothing is scored twice.
 """
 
 import json
@@ -27,7 +27,7 @@ from qc_helpers import (
 )
 from scorer.cli import main
 from scorer.images import load_conversion
-from scorer.observer import score_images
+from scorer.workflow import score_files
 from scorer.qc import load_config, open_store, run_nightly
 from scorer.qc.store import SCHEMA_VERSION
 
@@ -94,9 +94,9 @@ def test_sessions_scored_once_bad_files_quarantined_waiting_session_completes(sc
         assert note.count("\n") == 1 and note.strip() == q["reason"]
     sessions, free = check_database(db, 2, images_per_session=4)
     assert free == 3
-    # the stored thresholds are exactly those of score_images on the same files with the same seed
+    # the stored thresholds are exactly those of score_files on the same files with the same seed
     conv = load_conversion(scene["cfg"].parent / "direct-conversion.toml")
-    direct = score_images(sorted(map(str, scene["d2"])), layout(), conversion=conv, n_boot=50, seed=0)
+    direct = score_files(sorted(map(str, scene["d2"])), layout(), conversion=conv, n_boot=50, seed=0)
     store = open_store(db)
     df = store.thresholds_frame(detector=DIRECT)
     store.close()
@@ -200,7 +200,7 @@ def test_store_on_postgresql(postgres_url, scene):
     assert js["sessions_scored"] == 2 and len(js["quarantined"]) == 6
     check_database(postgres_url, 2, images_per_session=4)
     conv = load_conversion(scene["cfg"].parent / "direct-conversion.toml")
-    direct = score_images(sorted(map(str, scene["d2"])), layout(), conversion=conv, n_boot=50, seed=0)
+    direct = score_files(sorted(map(str, scene["d2"])), layout(), conversion=conv, n_boot=50, seed=0)
     assert_stored_like_direct(postgres_url, DIRECT, D2, direct)
     res = _nightly(["--inbox", str(inbox), "--config", str(scene["cfg"]), "--db", postgres_url, "--json"])
     assert json.loads(res.stdout)["sessions_scored"] == 0

@@ -11,7 +11,7 @@ from helpers import MINI
 from scorer.cli import main
 from scorer.images import load_image, write_image
 from scorer.phantom import load_layout
-from scorer.observer import score_images
+from scorer.workflow import score_files
 
 
 @pytest.fixture(scope="module")
@@ -169,8 +169,8 @@ def test_thresholds_unchanged_by_rotating_or_mirroring_every_image(direct_set, t
     from scorer.images import load_conversion
 
     c = load_conversion(conv)
-    a = score_images(files, lay, methods=["dprime"], conversion=c, n_boot=0)
-    b = score_images(moved, lay, methods=["dprime"], conversion=c, n_boot=0, pixel_spacing_mm=0.085)
+    a = score_files(files, lay, methods=["dprime"], conversion=c, n_boot=0)
+    b = score_files(moved, lay, methods=["dprime"], conversion=c, n_boot=0, pixel_spacing_mm=0.085)
     for pa, pb in zip(a.curves["dprime"].points, b.curves["dprime"].points):
         assert pb.threshold_contrast == pytest.approx(pa.threshold_contrast, rel=0.10)
     assert b.images[0].placement.flipped == (transform == "mirror")

@@ -187,7 +187,7 @@ def test_cli_bad_input_one_line_exit_2(tmp_path, args, msg):
 
 def test_detector_model_file_overrides_and_rejects_unknown_keys(tmp_path):
     from scorer.errors import LimenError
-    from scorer.detector import load_detector_model
+    from scorer.workflow import load_detector_model
 
     good = tmp_path / "panel.toml"
     good.write_text('base = "indirect"\nlight_spread_mm = 0.06\nelectronic_noise_adu = 2.0\n')

@@ -83,7 +83,8 @@ def server(tmp_path):
 
 
 def _images(tmp_path):
-    from scorer.detector import detector_model, simulate, write_simulated
+    from scorer.detector import detector_model, simulate
+    from scorer.workflow import write_simulated
     from scorer.images import save_conversion
     from scorer.phantom import load_layout
 

@@ -232,7 +232,8 @@ def test_display_check_needs_the_right_site_and_records_the_screen(tmp_path):
 
 
 def _simulated_files(tmp_path, n=1):
-    from scorer.detector import detector_model, simulate, write_simulated
+    from scorer.detector import detector_model, simulate
+    from scorer.workflow import write_simulated
     from scorer.images import save_conversion
     from scorer.phantom import load_layout
 

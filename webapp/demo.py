@@ -54,9 +54,9 @@ def create_demo_study(
     open_study: bool = True,
 ) -> dict:
     """Create accounts and a reader study on simulated images; return {"study_id", "credentials"}."""
-    from scorer.detector import detector_model, simulate, write_simulated
+    from scorer.detector import detector_model, simulate
     from scorer.images import save_conversion
-    from scorer.phantom import load_layout
+    from scorer.workflow import load_layout, write_simulated
     from webapp import services
     from webapp.models import Enrolment, Study, StudyImage, User
     from webapp.security import db

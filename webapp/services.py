@@ -1,8 +1,8 @@
 """Study logistics between the views and :mod:`scorer`: content store, study opening, schedules, regions,
 export and analysis.
 
-Nothing here computes physics or statistics: images are read by :func:`scorer.images.load_image`,
-placed by :func:`scorer.phantom.register` (through :func:`scorer.observer.score_images`, which also
+Nothing here computes physics or statistics: images are read by :func:`scorer.workflow.load_image`,
+placed by :func:`scorer.phantom.register` (through :func:`scorer.workflow.score_files`, which also
 gives the model observer's trials), and analysed by :func:`scorer.study.analyse_study`. What is
 here is bookkeeping: which reader sees which region in which order, the pixel crops they see, and the
 tidy table the statistics read.
@@ -127,7 +127,7 @@ def _named(label: str, path: Path, read):
 
 def validate_image_file(path: Path, label: str, pixel_spacing_mm=None, conversion=None):
     """Read the stored file as an image (the real type check); errors name the uploaded file."""
-    from scorer.images import LimenWarning, load_image
+    from scorer.workflow import LimenWarning, load_image
 
     def read():
         with warnings.catch_warnings():
@@ -138,13 +138,13 @@ def validate_image_file(path: Path, label: str, pixel_spacing_mm=None, conversio
 
 
 def validate_layout_file(path: Path, label: str):
-    from scorer.phantom import load_layout
+    from scorer.workflow import load_layout
 
     return _named(label, path, lambda: load_layout(path))
 
 
 def validate_conversion_file(path: Path, label: str):
-    from scorer.images import load_conversion
+    from scorer.workflow import load_conversion
 
     return _named(label, path, lambda: load_conversion(path))
 
@@ -235,9 +235,7 @@ def open_study(session, study, store_dir: Path, progress=None) -> list[str]:
     step; the last call comes before the first database write, so a progress writer never waits for this
     session's write lock."""
     from scorer.files import atomic_write_bytes
-    from scorer.images import LimenWarning, load_conversion, load_image
-    from scorer.observer import score_images
-    from scorer.phantom import load_layout
+    from scorer.workflow import LimenWarning, load_conversion, load_image, load_layout, score_files
     from webapp.models import Region
 
     say = progress or (lambda text, fraction=None: None)
@@ -262,7 +260,7 @@ def open_study(session, study, store_dir: Path, progress=None) -> list[str]:
             0.05 + 0.75 * n_scored / n_images,
         )
         n_scored += len(paths)
-        res = score_images(
+        res = score_files(
             paths,
             layout,
             observer=study.observer,

@@ -41,7 +41,7 @@ from scorer.reports import dumps
 @options.replace()
 def analyse(responses, model_file, by, reference, n_boot, criterion_pc, seed, as_json, out_dir, replace):
     """Per-reader and pooled contrast-detail curves, human/model factor, group comparison, agreement."""
-    from scorer.images.loading import image_content_hash as file_sha256  # SHA-256 of a file's bytes
+    from scorer.workflow import image_content_hash as file_sha256  # SHA-256 of a file's bytes
     from scorer.files import OutputFolder
     from scorer.study import analyse_study
     from scorer.study.alternatives import m_alternatives_of

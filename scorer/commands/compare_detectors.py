@@ -8,8 +8,8 @@ import click
 import numpy as np
 import pandas as pd
 
-from scorer.detector import load_detector_json, load_scored_json, compare
-from scorer.detector.comparison import load_dose_json
+from scorer.detector import compare
+from scorer.workflow import load_detector_json, load_dose_json, load_scored_json
 from scorer.errors import LimenError
 from scorer.files import OutputFolder, atomic_write_text
 from scorer.reports import dumps, write_json

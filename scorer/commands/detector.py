@@ -5,15 +5,12 @@ from __future__ import annotations
 import csv
 import io
 import sys
-import warnings
 from pathlib import Path
 
 import click
 import numpy as np
 
 from scorer.commands import options
-from scorer.images import load_conversion
-from scorer.detector.measure import central_mean, fit_conversion, measure_detector, measure_noise_series, q_for_beam
 from scorer.errors import LimenError
 from scorer.files import OutputFolder, atomic_write_bytes, atomic_write_text
 from scorer.reports.detector import summary_rows
@@ -71,7 +68,7 @@ def diameters_from_options(diameters: str | None, layout_file: str | None) -> li
     """Diameters (mm) from ``--diameters`` or a layout file's targets."""
     d = _parse_diameters(diameters)
     if d is None and layout_file:
-        from scorer.phantom import load_layout
+        from scorer.workflow import load_layout
 
         d = [float(v) for v in load_layout(layout_file).diameters_mm]
     return d
@@ -87,7 +84,7 @@ def alternatives_from_options(m_alternatives: int | None, layout_file: str | Non
     if layout_file:
         from collections import Counter
 
-        from scorer.phantom import load_layout
+        from scorer.workflow import load_layout
 
         lay = load_layout(layout_file)
         return {
@@ -95,63 +92,6 @@ def alternatives_from_options(m_alternatives: int | None, layout_file: str | Non
             for d in lay.diameters_mm
         }
     return None
-
-
-def _read_kerma_csv(path: Path) -> list[tuple[Path, float]]:
-    """CSV with columns ``path,kerma_ugy`` (paths relative to the CSV's folder)."""
-    try:
-        text = path.read_text(encoding="utf-8")
-    except OSError as exc:
-        raise LimenError(f"cannot read kerma CSV ({exc.strerror or exc})", path) from None
-    rows = list(csv.DictReader(ln for ln in text.splitlines() if ln.strip() and not ln.startswith("#")))
-    if not rows or not {"path", "kerma_ugy"} <= set(rows[0]):
-        raise LimenError("kerma CSV needs the columns path,kerma_ugy", path)
-    out = []
-    for n, r in enumerate(rows, start=2):
-        try:
-            k = float(r["kerma_ugy"])
-        except (TypeError, ValueError):
-            raise LimenError(f"line {n}: kerma_ugy {r['kerma_ugy']!r} is not a number", path) from None
-        p = Path(r["path"].strip())
-        out.append((p if p.is_absolute() else path.parent / p, k))
-    return out
-
-
-def load_images_warn(paths, *, spacing, conversion, role: str, for_conversion_fit: bool = False):
-    """Load images, turning LimenWarnings into one stderr line each; FOR PRESENTATION flats get the NNPS warning.
-    ``for_conversion_fit`` reads the stored values whatever their relation to the beam (see ``load_image``)."""
-    from scorer.images import load_image
-
-    images = []
-    for p in paths:
-        with warnings.catch_warnings(record=True) as caught:
-            warnings.simplefilter("always")
-            im = load_image(p, pixel_spacing_mm=spacing, conversion=conversion, for_conversion_fit=for_conversion_fit)
-        shown = set()
-        for w in caught:
-            text = str(w.message)
-            if text not in shown:
-                shown.add(text)
-                click.echo(f"warning: {text}", err=True)
-        for text in im.metadata.warnings:
-            if text not in shown and not any(text in s for s in shown):
-                shown.add(text)
-                click.echo(f"warning: {p}: {text}", err=True)
-        if (im.metadata.presentation_intent or "").upper() == "FOR PRESENTATION":
-            if role == "flat":
-                msg = (
-                    f"{p}: flat field is FOR PRESENTATION (processed for display): the NNPS of a processed "
-                    "image is meaningless; use FOR PROCESSING images"
-                )
-            else:
-                msg = (
-                    f"{p}: edge image is FOR PRESENTATION (processed for display): its MTF includes the "
-                    "processing and is not the detector's presampling MTF"
-                )
-            click.echo(f"warning: {msg}", err=True)
-            im.metadata.warnings.append(msg)
-        images.append(im)
-    return images
 
 
 @click.command("detector", cls=GreedyFilesCommand)
@@ -243,6 +183,8 @@ def detector(
     if q_per_mm2_ugy is not None and beam is not None:
         raise LimenError("give either --q or --beam, not both", "--q")
     if beam is not None:
+        from scorer.workflow import q_for_beam
+
         q_per_mm2_ugy = q_for_beam(beam)
     if q_per_mm2_ugy is not None and not q_per_mm2_ugy > 0:
         raise LimenError(f"q must be positive, got {q_per_mm2_ugy}", "--q")
@@ -256,68 +198,22 @@ def detector(
     diam = diameters_from_options(diameters, layout_file)
     folder = OutputFolder(out_dir, replace=replace, command="detector") if out_dir else None
 
-    conv_fn = None
-    conv_dict = None
-    if conversion_file:
-        conv_fn = load_conversion(conversion_file)
-        conv_dict = conv_fn.to_dict()
-    elif kerma_csv:
-        entries = _read_kerma_csv(Path(kerma_csv))
-        raw = load_images_warn(
-            [p for p, _ in entries], spacing=pixel_spacing_mm, conversion=None, role="flat", for_conversion_fit=True
-        )
-        fit = fit_conversion(
-            [k for _, k in entries], [central_mean(im.pixels, im.spacing_mm) for im in raw], path=kerma_csv
-        )
-        conv_fn = fit.conversion
-        conv_dict = fit.to_dict()
-        if fit.nonlinear:
-            click.echo(f"warning: {kerma_csv}: {fit.note}", err=True)
+    from scorer.workflow import measure_detector_files
 
-    spacing = pixel_spacing_mm
-    flats = load_images_warn(flat_files, spacing=spacing, conversion=conv_fn, role="flat")
-    edges = load_images_warn(edge_files, spacing=spacing, conversion=conv_fn, role="edge")
-    _check_distinct_and_kerma(
-        list(flat_files) + list(edge_files),
-        flats + edges,
-        kerma_ugy,
-        linearised=conv_fn is not None,
-        n_flats=len(flats),
+    measured = measure_detector_files(
+        flat_files,
+        edge_files,
+        kerma_ugy=kerma_ugy,
+        q_per_mm2_ugy=q_per_mm2_ugy,
+        beam=beam,
+        pixel_spacing_mm=pixel_spacing_mm,
+        conversion_file=conversion_file,
+        kerma_csv=kerma_csv,
+        noise_csv=noise_csv,
+        warn=lambda text: click.echo(f"warning: {text}", err=True),
     )
-    notes = []
-    if conv_fn is None and (flats or edges):
-        notes.append(
-            "no conversion function given: pixel values are taken as proportional to air kerma "
-            "(zero offset); give --conversion or --fit-conversion for raw images"
-        )
-        click.echo(f"warning: {notes[-1]}", err=True)
-    if not flats and not edges and not noise_csv:
-        metrics = None
-    else:
-        series_images: list = []
-        if noise_csv:
-            series = _read_kerma_csv(Path(noise_csv))
-            series_images = load_images_warn([p for p, _ in series], spacing=spacing, conversion=conv_fn, role="flat")
-        if flats or edges:
-            metrics = measure_detector(
-                flats, edges, kerma_ugy=kerma_ugy, q_per_mm2_ugy=q_per_mm2_ugy, beam=beam, conversion=conv_dict
-            )
-        else:
-            metrics = measure_detector(series_images, (), conversion=conv_dict, q_per_mm2_ugy=q_per_mm2_ugy)
-        if not flats and not edges:
-            metrics.nnps = None  # a noise series alone gives no headline NNPS
-        if noise_csv:
-            metrics.noise_series = measure_noise_series(
-                series_images,
-                [k for _, k in series],
-                mtf=metrics.mtf,
-                mtf_by_direction=metrics.mtf_by_direction,
-                q_per_mm2_ugy=q_per_mm2_ugy,
-                path=noise_csv,
-            )
-        for w in metrics.warnings:  # the measurement's own (edge angle, NNPS, DQE): on stderr, not only in JSON
-            click.echo(f"warning: {' '.join(str(w).split())}", err=True)
-        metrics.warnings = notes + [w for im in flats + edges for w in im.metadata.warnings] + metrics.warnings
+    metrics, conv_dict, notes = measured.metrics, measured.conversion, measured.notes
+    if metrics is not None:
         if metrics.dqe is None and metrics.mtf is not None and metrics.nnps is not None:
             click.echo("note: DQE not computed: give --kerma-ugy and --q (or --beam)", err=True)
         if diam and metrics.mtf is not None and metrics.nnps is not None:
@@ -371,39 +267,6 @@ def detector(
                 click.echo(f"  {p['observer']:<5} {p['diameter_mm']:>6.3g} mm  {100 * p['threshold_contrast']:.3g}")
         if out_dir:
             click.echo(f"wrote detector.json, detector.csv and detector.html to {out_dir}/")
-
-
-#: plausible air kerma at the detector for a DQE measurement, µGy (common practice: IEC 62220-1 uses a few
-#: to a few hundred µGy; a factor of 100 either side is allowed)
-KERMA_RANGE_UGY = (0.01, 1.0e5)
-
-
-def _check_distinct_and_kerma(paths, images, kerma_ugy, *, linearised: bool, n_flats: int) -> None:
-    """Refuse the same image given twice (it would count as independent noise) and an air kerma that cannot be
-    the flats' (outside a plausible range, or, with a conversion function, far from the flats' own kerma)."""
-    seen: dict[str, str] = {}
-    for p, im in zip(paths, images):
-        twin = seen.get(im.metadata.content_sha256)
-        if twin is not None:
-            what = "given twice" if twin == str(p) else f"holds the same image as {twin}"
-            raise LimenError(f"{what}: it would be counted as two independent images", p)
-        seen[im.metadata.content_sha256] = str(p)
-    if kerma_ugy is None:
-        return
-    lo, hi = KERMA_RANGE_UGY
-    if not lo <= kerma_ugy <= hi:
-        raise LimenError(
-            f"{kerma_ugy:g} µGy is outside the plausible range {lo:g}–{hi:g} µGy of air kerma at the detector",
-            "--kerma-ugy",
-        )
-    if linearised and n_flats:
-        measured = float(np.median([central_mean(im.pixels, im.spacing_mm) for im in images[:n_flats]]))
-        if not 0.5 <= kerma_ugy / measured <= 2.0:
-            raise LimenError(
-                f"{kerma_ugy:g} µGy disagrees with the flat fields' air kerma from the conversion "
-                f"function ({measured:.4g} µGy)",
-                "--kerma-ugy",
-            )
 
 
 def write_csv(path: Path, result: dict) -> None:

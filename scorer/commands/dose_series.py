@@ -62,29 +62,33 @@ def dose_series(
     import numpy as np
     from tqdm import tqdm
 
-    from scorer.commands.detector import _read_kerma_csv
-    from scorer.detector.dose import background_kerma_ugy, group_by_kerma, score_dose_series
+    from scorer.detector.dose import group_by_kerma
     from scorer.errors import LimenError
-    from scorer.images import load_conversion, load_image
-    from scorer.observer import SystemBlur, load_limits, resolve_human_factor
-    from scorer.phantom import load_layout
     from scorer.reports import CAUTION, dumps, write_json
+    from scorer.workflow import (
+        file_background_kerma_ugy,
+        load_conversion,
+        load_layout,
+        load_limits,
+        load_mtf,
+        read_kerma_csv,
+        resolve_human_factor,
+        score_dose_series,
+    )
 
     human_factor = resolve_human_factor(human_factor, factor_file, observer)
     layout = load_layout(layout_file)
     limits = load_limits(limits_file) if limits_file else None
     conversion = load_conversion(conversion_file) if conversion_file else None
-    blur = SystemBlur.from_detector_json(mtf_file) if mtf_file else None
+    blur = load_mtf(mtf_file) if mtf_file else None
     if kerma_csv:
-        table = {str(p.resolve()): k for p, k in _read_kerma_csv(Path(kerma_csv))}
+        table = {str(p.resolve()): k for p, k in read_kerma_csv(kerma_csv)}
         kermas = [table.get(str(Path(p).resolve())) for p in images]
         source = f"not listed in {kerma_csv}"
     elif conversion is not None:
         kermas = []
         for p in tqdm(images, desc="kerma of each image", unit="image", file=sys.stderr, disable=len(images) < 2):
-            kermas.append(
-                background_kerma_ugy(load_image(p, pixel_spacing_mm=pixel_spacing, conversion=conversion).pixels)
-            )
+            kermas.append(file_background_kerma_ugy(p, conversion=conversion, pixel_spacing_mm=pixel_spacing))
         source = "plate background through the conversion function"
     else:
         raise LimenError("the air kerma of each image is unknown: give --kerma-csv or --conversion", "--kerma-csv")

@@ -10,16 +10,12 @@ import numpy as np
 from tqdm import tqdm
 
 from scorer.commands import options
-from scorer.images import load_conversion
 from scorer.files import OutputFolder
 from scorer.invocation import current_command
-from scorer.phantom import load_layout
-from scorer.observer import load_limits, resolve_human_factor
-from scorer.observer import SystemBlur
 from scorer.phantom import draw_overlay
 from scorer.reports import CAUTION, dumps
 from scorer.reports.score import METHOD_LABEL, write_score_outputs
-from scorer.observer import score_images
+from scorer.workflow import load_conversion, load_layout, load_limits, load_mtf, resolve_human_factor, score_files
 
 
 #: exit status of `limen score` (documented in the README)
@@ -110,7 +106,7 @@ def score(
     layout = load_layout(layout_file)
     limits = load_limits(limits_file) if limits_file else None
     conversion = load_conversion(conversion_file) if conversion_file else None
-    blur = SystemBlur.from_detector_json(mtf_file) if mtf_file else None
+    blur = load_mtf(mtf_file) if mtf_file else None
     methods = ["dprime", "count"] if method == "both" else [method]
     folder = OutputFolder(out_dir, replace=replace, command="score") if out_dir else None
     out = folder.path if folder else None
@@ -141,7 +137,7 @@ def score(
             click.echo(f"diagnostic overlay: {png}", err=True)
 
     try:
-        result = score_images(
+        result = score_files(
             list(images),
             layout,
             observer=observer,

@@ -20,8 +20,8 @@ from tqdm import tqdm
 from scorer.commands import options
 from scorer.images import save_conversion
 from scorer.errors import LimenError
-from scorer.phantom import load_layout
-from scorer.detector import Pose, detector_model, load_detector_model, simulate as run_simulation, write_simulated
+from scorer.detector import Pose, detector_model, simulate as run_simulation
+from scorer.workflow import load_detector_model, load_layout, write_simulated
 
 DEFAULT_START = _dt.datetime(2026, 11, 30, 7, 30, 0)
 

@@ -2,11 +2,15 @@
 the panel simulator and the side-by-side comparison of two panels.
 
 Modules: ``mtf`` (slanted edge), ``nnps`` (flat fields), ``measure`` (conversion fit, DQE, the whole
-measurement), ``predict`` (Fourier NPW/NPWE prediction), ``simulate`` (direct/indirect panels),
-``compare`` (two panels side by side).
+measurement), ``noise`` (noise components), ``predict`` (Fourier NPW/NPWE prediction), ``simulator``
+(direct/indirect panels), ``dose`` (the dose axis), ``comparison`` (two panels side by side).
 
-May import: ``scorer.observer``, ``scorer.phantom``, ``scorer.images`` and the base modules
-(never ``scorer.study``, which sits beside it).
+Data in, data out: nothing here reads a file (``scorer.workflow`` reads flat, edge and phantom images,
+detector/score/dose-series JSON and model files, and writes simulated images; tests/test_layering.py
+keeps it so).
+
+May import: ``scorer.observer``, ``scorer.phantom``, ``scorer.images`` (never its file readers) and the
+base modules (never ``scorer.study``, which sits beside it).
 """
 
 import lazy_loader as _lazy

@@ -16,8 +16,6 @@ from .measure import (
     measure_detector as measure_detector,
     fit_conversion as fit_conversion,
     compute_dqe as compute_dqe,
-    q_for_beam as q_for_beam,
-    beam_qualities as beam_qualities,
 )
 from .predict import (
     PredictedThreshold as PredictedThreshold,
@@ -29,12 +27,13 @@ from .simulator import (
     Pose as Pose,
     SimulatedImage as SimulatedImage,
     detector_model as detector_model,
-    load_detector_model as load_detector_model,
+    detector_model_from_dict as detector_model_from_dict,
     simulate as simulate,
-    write_simulated as write_simulated,
+    dicom_tags as dicom_tags,
 )
 from .dose import (
-    score_dose_series as score_dose_series,
+    dose_series as dose_series,
+    background_kerma_ugy as background_kerma_ugy,
     group_by_kerma as group_by_kerma,
     fit_power_law as fit_power_law,
     kerma_ratio as kerma_ratio,
@@ -44,15 +43,17 @@ from .noise import fit_components as fit_components, group_flats as group_flats
 from .measure import measure_noise_series as measure_noise_series
 from .comparison import (
     compare as compare,
-    load_detector_json as load_detector_json,
-    load_scored_json as load_scored_json,
+    check_detector_json as check_detector_json,
+    check_dose_json as check_dose_json,
+    scored_thresholds as scored_thresholds,
 )
 
 __all__ = [
     "comparison",
     "dose",
     "noise",
-    "score_dose_series",
+    "dose_series",
+    "background_kerma_ugy",
     "group_by_kerma",
     "fit_power_law",
     "kerma_ratio",
@@ -74,8 +75,6 @@ __all__ = [
     "measure_detector",
     "fit_conversion",
     "compute_dqe",
-    "q_for_beam",
-    "beam_qualities",
     "PredictedThreshold",
     "predict_thresholds",
     "predict_from_detector",
@@ -83,10 +82,11 @@ __all__ = [
     "Pose",
     "SimulatedImage",
     "detector_model",
-    "load_detector_model",
+    "detector_model_from_dict",
     "simulate",
-    "write_simulated",
+    "dicom_tags",
     "compare",
-    "load_detector_json",
-    "load_scored_json",
+    "check_detector_json",
+    "check_dose_json",
+    "scored_thresholds",
 ]

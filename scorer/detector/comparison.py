@@ -1,7 +1,8 @@
 """Two detectors side by side: MTF, NNPS, DQE, predicted and scored threshold contrast, in plain words.
 
-Used by ``limen compare-detectors`` (and the web app); reads the JSON written by
-``limen detector`` and ``limen score``."""
+Used by ``limen compare-detectors`` (and the web app) on the JSON written by ``limen detector``,
+``limen score`` and ``limen dose-series``: :mod:`scorer.workflow` reads those files, the ``check_*``
+functions here validate their parsed content (errors name the file)."""
 
 from __future__ import annotations
 
@@ -9,7 +10,6 @@ from __future__ import annotations
 import numpy as np
 
 from scorer.errors import LimenError
-from scorer.files import read_json
 from scorer.detector.predict import predict_from_detector
 
 #: diameters (mm) used when neither --diameters, --layout nor a scored JSON gives any (common practice)
@@ -22,8 +22,8 @@ SCORED_METHODS = ("dprime", "count")
 METHOD_NAMES = {"dprime": "d′ method", "count": "count method"}
 
 
-def load_detector_json(path) -> dict:
-    d = read_json(path, "detector JSON")
+def check_detector_json(d: dict, path) -> dict:
+    """A parsed ``limen detector`` JSON, checked: MTF, NNPS or DQE present, each a sound curve."""
     if not any(d.get(k) for k in ("mtf", "nnps", "dqe")):
         raise LimenError("no MTF, NNPS or DQE in this file: is it a 'limen detector' JSON?", path)
     for key, value_key in (("mtf", "value"), ("nnps", "value_mm2"), ("dqe", "value")):
@@ -32,9 +32,8 @@ def load_detector_json(path) -> dict:
     return d
 
 
-def load_dose_json(path) -> dict:
-    """A ``limen dose-series --json`` output (keys "groups" and "fits")."""
-    d = read_json(path, "dose-series JSON")
+def check_dose_json(d: dict, path) -> dict:
+    """A parsed ``limen dose-series --json`` output, checked (keys "groups" and "fits")."""
     if not isinstance(d.get("fits"), list) or not isinstance(d.get("groups"), list):
         raise LimenError("no 'fits' and 'groups' in this file: is it a 'limen dose-series' JSON?", path)
     return d
@@ -62,9 +61,8 @@ def _check_curve(curve, key: str, value_key: str, path) -> None:
         raise LimenError(f"'{key}.{value_key}' has fewer than two finite values", path)
 
 
-def load_scored_json(path) -> list[dict]:
-    """Thresholds from a ``limen score --json`` output (key "thresholds")."""
-    d = read_json(path, "score JSON")
+def scored_thresholds(d: dict, path) -> list[dict]:
+    """Thresholds from a parsed ``limen score --json`` output (key "thresholds")."""
     rows = d.get("thresholds")
     if not isinstance(rows, list) or not rows:
         raise LimenError("no 'thresholds' list in this score JSON", path)

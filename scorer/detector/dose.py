@@ -1,8 +1,9 @@
 """The dose axis: contrast-detail thresholds scored at several air kermas, and the kerma each panel needs.
 
 **Dose response.**  Phantom images are grouped by the air kerma at the detector; each
-group is scored with :func:`scorer.observer.score_images` (one call per group, so each
-group's thresholds and CIs are exactly those ``limen score`` gives for its images).
+group is scored as ``limen score`` scores it (one call per group, so each group's thresholds
+and CIs are exactly those ``limen score`` gives for its images; the files are read by
+:func:`scorer.workflow.score_dose_series`, which calls :func:`dose_series`).
 Per diameter the thresholds are fitted by
 
     C_T(K) = a · K^(−β),   i.e.   log C_T = α − β·(log K − x̄)
@@ -421,9 +422,9 @@ def fit_series(
     return fits, notes
 
 
-def score_dose_series(
-    groups: "OrderedDict[float, list[str]]",
-    layout,
+def dose_series(
+    groups: "OrderedDict[float, list]",
+    score_group: Callable,
     *,
     observer: str = "npw",
     method: str = "dprime",
@@ -431,17 +432,21 @@ def score_dose_series(
     human_factor=None,
     seed: int = 0,
     on_group: Callable | None = None,
-    **score_kwargs,
 ) -> DoseSeriesResult:
-    """Score each kerma group with :func:`scorer.observer.score_images` and fit the dose response per diameter."""
-    from scorer.observer.scoring import score_images
+    """Score each kerma group and fit the dose response per diameter.
 
+    ``groups`` maps each kerma (µGy) to its images (file paths: :func:`group_by_kerma`); ``score_group(images,
+    methods)`` scores one group and returns its :class:`~scorer.observer.scoring.ScoreResult` —
+    :func:`scorer.workflow.score_dose_series` passes :func:`scorer.workflow.score_files`, so each group's
+    thresholds are exactly those ``limen score`` gives for its images.  ``on_group(kerma, images, result)``
+    is called after each group.
+    """
     factor = _factor_for(limits, observer, human_factor)
     methods = ["dprime", "count"] if method == "both" else [method]
     fit_method = "dprime" if "dprime" in methods else "count"
     out_groups, warnings = [], []
     for k, paths in groups.items():
-        res = score_images(paths, layout, observer=observer, methods=methods, seed=seed, **score_kwargs)
+        res = score_group(paths, methods)
         out_groups.append(DoseGroup(float(k), list(paths), [p.to_dict() for p in res.curves[fit_method].points], res))
         warnings += [f"{k:.3g} µGy: {w}" for w in res.warnings]
         if on_group is not None:

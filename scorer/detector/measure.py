@@ -1,10 +1,11 @@
 """Detector physics: conversion function, MTF, NNPS and DQE in one place.
 
-This module fits the conversion function from flat fields at several air kermas,
-holds the beam-quality table of q (photons per mm² per µGy), computes
+This module fits the conversion function from flat fields at several air kermas, computes
 DQE(f) = MTF²(f) / (K · q · NNPS(f)), and gathers everything into
 :class:`DetectorMetrics` (what ``limen detector`` writes as ``detector.json``).
 The slanted-edge MTF lives in :mod:`scorer.detector.mtf`, the NNPS in :mod:`scorer.detector.nnps`.
+It takes images and numbers and reads no file: :mod:`scorer.workflow` loads the flat and edge images and
+the shipped beam-quality table of q (photons per mm² per µGy).
 
 References
 ----------
@@ -15,10 +16,7 @@ References
 
 from __future__ import annotations
 
-import csv
-import io
 from dataclasses import dataclass, field
-from importlib import resources
 
 import numpy as np
 
@@ -33,39 +31,6 @@ from scorer.detector.nnps import NNPSResult, measure_nnps
 NONLINEARITY_TOLERANCE = 0.05
 #: smallest R² of the fitted conversion function before it is flagged (common practice)
 MIN_R_SQUARED = 0.99
-
-
-# ---------------------------------------------------------------- beam qualities
-
-
-def beam_qualities() -> dict[str, dict]:
-    """The shipped beam-quality table: name → {"q_per_mm2_ugy", "standard", "note"}.
-
-    General-radiography RQA qualities only (values from memory of IEC 62220-1-1);
-    mammography q values must be supplied by the user.
-    """
-    text = resources.files("scorer").joinpath("data/beam_qualities.csv").read_text(encoding="utf-8")
-    lines = [ln for ln in text.splitlines() if ln.strip() and not ln.lstrip().startswith("#")]
-    out = {}
-    for row in csv.DictReader(io.StringIO("\n".join(lines))):
-        out[row["beam"].strip().upper()] = {
-            "q_per_mm2_ugy": float(row["q_per_mm2_ugy"]),
-            "standard": row["standard"],
-            "note": row["note"],
-        }
-    return out
-
-
-def q_for_beam(beam: str) -> float:
-    """q (photons per mm² per µGy) of a named beam quality, e.g. ``"RQA5"``."""
-    table = beam_qualities()
-    key = str(beam).strip().upper()
-    if key not in table:
-        raise LimenError(
-            f"unknown beam quality {beam!r}; known: {', '.join(sorted(table))} (for mammography give q directly)",
-            "--beam",
-        )
-    return table[key]["q_per_mm2_ugy"]
 
 
 # ---------------------------------------------------------------- conversion function
@@ -375,17 +340,21 @@ def measure_detector(
 ) -> DetectorMetrics:
     """MTF from the edge images, NNPS from the flat fields, and the DQE when K and q are known.
 
-    Images must already be linear in air kerma (a conversion function applied by
-    :func:`scorer.images.loading.load_image`).  Edges of the same orientation are averaged; the
+    Images must already be linear in air kerma (a conversion function applied when they were
+    read, :func:`scorer.workflow.measure_detector_files`).  Edges of the same orientation are averaged; the
     headline MTF is the mean of the orientations measured.  The DQE is computed
-    only when ``kerma_ugy`` and q (or ``beam``) are given; with ``require_dqe`` their
-    absence is an error.
+    only when ``kerma_ugy`` and q are given (``beam`` only names the beam quality; its tabulated q is
+    :func:`scorer.workflow.q_for_beam`); with ``require_dqe`` their absence is an error.
     """
     flats, edges = list(flats), list(edges)
     if not flats and not edges:
         raise LimenError("no images: give flat fields (--flat) and/or edge images (--edge)")
     if beam is not None and q_per_mm2_ugy is None:
-        q_per_mm2_ugy = q_for_beam(beam)
+        raise LimenError(
+            f"beam quality {beam!r} given without its q: pass q_per_mm2_ugy (scorer.workflow.q_for_beam looks up "
+            "the shipped table)",
+            "--beam",
+        )
     spacing = _spacing(flats + edges)
     warnings: list[str] = []
     groups: dict[str, list[MTFResult]] = {}

@@ -59,10 +59,8 @@ from __future__ import annotations
 
 import dataclasses
 import datetime as _dt
-import hashlib
-import json
 from dataclasses import dataclass, field, asdict
-from pathlib import Path
+from pathlib import PurePath
 
 import numpy as np
 from scipy import fft as sfft
@@ -70,9 +68,8 @@ from scipy import fft as sfft
 from scorer.images.conversion import ConversionFunction
 from scorer.phantom.disc import SUPERSAMPLE, disc_coverage_patch
 from scorer.errors import LimenError
-from scorer.files import read_toml
 from scorer.phantom.geometry import PhantomTransform
-from scorer.phantom.layout import Layout, load_layout
+from scorer.phantom.layout import Layout
 
 SMALL_FIELD_PX = 512
 SMALL_MARGIN_MM = 6.0
@@ -179,10 +176,13 @@ def detector_model(name: str) -> DetectorModel:
         ) from None
 
 
-def load_detector_model(path) -> DetectorModel:
-    """A model file: ``base = "direct"|"indirect"`` plus any DetectorModel field to override."""
-    path = Path(path)
-    data = read_toml(path, "detector model")
+def detector_model_from_dict(data: dict, path) -> DetectorModel:
+    """A model file's parsed TOML: ``base = "direct"|"indirect"`` plus any DetectorModel field to override.
+
+    ``path`` names the file in errors; :func:`scorer.workflow.load_detector_model` reads it.
+    """
+    path = PurePath(path)
+    data = dict(data)
     base = detector_model(str(data.pop("base", "direct")))
     names = {f.name: f for f in dataclasses.fields(DetectorModel)}
     kw = {}
@@ -453,8 +453,9 @@ def simulate(
     seed : int or numpy.random.Generator
     small : bool
         Crop the field to what the phantom needs (phantom) or to 512 × 512 (flat, edge).
-    layout : Layout, optional
-        Phantom layout (default: the bundled demo plate).
+    layout : Layout
+        Phantom layout, needed for kind="phantom" (``scorer.workflow.load_layout()`` reads the bundled demo
+        plate).
     pose : Pose
         Rotation, flip, magnification and shift of the phantom.
     edge_angle_deg : float
@@ -466,7 +467,8 @@ def simulate(
     p = model.pixel_pitch_mm
     truth: dict = {"kind": kind, "dose_ugy": float(dose_ugy), "detector_model": model.to_dict()}
     if kind == "phantom":
-        layout = layout or load_layout()
+        if layout is None:
+            raise ValueError("a phantom image needs its layout (scorer.workflow.load_layout() gives the bundled plate)")
         if not 0.5 <= pose.magnification <= 2.0:
             raise LimenError(f"--magnification must lie in 0.5–2.0, got {pose.magnification}")
         if shape is None:
@@ -495,7 +497,7 @@ def simulate(
     return SimulatedImage(pixels, (p, p), conv, model, kind, float(dose_ugy), truth)
 
 
-# --------------------------------------------------------------------------- files
+# ------------------------------------------------ DICOM attributes (scorer.workflow.write_simulated writes them)
 def dicom_tags(model: DetectorModel, acquired: _dt.datetime, dose_ugy: float) -> dict:
     """DICOM attributes for a simulated raw image (PS3.3 keywords)."""
     return {
@@ -512,27 +514,3 @@ def dicom_tags(model: DetectorModel, acquired: _dt.datetime, dose_ugy: float) ->
         "BitsStored": model.bits,
         "ImageComments": f"Limen simulation, {model.conversion} conversion, {dose_ugy:g} uGy at detector",
     }
-
-
-def write_simulated(sim: SimulatedImage, out_dir: Path, stem: str, acquired: _dt.datetime, fmt: str = "dicom") -> Path:
-    """Write the image (DICOM by default) and its JSON ground-truth sidecar."""
-    from scorer.files import atomic_write_text
-    from scorer.images.writers import write_dicom, write_image
-
-    out_dir = Path(out_dir)
-    out_dir.mkdir(parents=True, exist_ok=True)
-    if fmt == "dicom":
-        path = write_dicom(
-            out_dir / f"{stem}.dcm", sim.pixels, sim.spacing_mm, dicom_tags(sim.model, acquired, sim.dose_ugy)
-        )
-    else:
-        path = write_image(out_dir / f"{stem}.{fmt}", sim.pixels)
-    side = dict(sim.truth)
-    side.update(
-        image=path.name,
-        acquired=acquired.isoformat(),
-        spacing_mm=list(sim.spacing_mm),
-        sha256=hashlib.sha256(path.read_bytes()).hexdigest(),
-    )
-    atomic_write_text(path.with_suffix(".json"), json.dumps(side, indent=2, default=str) + "\n")
-    return path

@@ -2,9 +2,12 @@
 
 Modules: ``npw`` (NPW/NPWE responses, M-AFC decisions), ``eye`` (eye filter), ``mafc`` (Pc(d′) for
 M-AFC), ``psychometric`` (ML fits, bootstrap helpers), ``threshold`` (d′ and count methods →
-ThresholdCurve), ``limits`` (limits files, verdicts), ``scoring`` (score_images: the main job).
+ThresholdCurve), ``limits`` (limits, verdicts), ``scoring`` (score_images: the main job on Image objects).
 
-May import: ``scorer.phantom``, ``scorer.images`` and the base modules.
+Data in, data out: nothing here reads a file (``scorer.workflow`` reads image, limits, MTF and
+human/model factor files and calls these functions; tests/test_layering.py keeps it so).
+
+May import: ``scorer.phantom``, ``scorer.images`` (never its file readers) and the base modules.
 """
 
 import lazy_loader as _lazy

@@ -27,14 +27,12 @@ from .threshold import (
 )
 from .limits import (
     HumanFactor as HumanFactor,
-    human_factor_from_analysis as human_factor_from_analysis,
-    resolve_human_factor as resolve_human_factor,
+    parse_human_factor as parse_human_factor,
     Limits as Limits,
     Verdict as Verdict,
-    load_limits as load_limits,
+    parse_limits as parse_limits,
     evaluate as evaluate,
     overall as overall,
-    EXAMPLE_LIMITS as EXAMPLE_LIMITS,
 )
 from .scoring import ScoreResult as ScoreResult, score_images as score_images
 
@@ -63,14 +61,12 @@ __all__ = [
     "count_thresholds",
     "smooth_curve",
     "HumanFactor",
-    "human_factor_from_analysis",
-    "resolve_human_factor",
+    "parse_human_factor",
     "Limits",
     "Verdict",
-    "load_limits",
+    "parse_limits",
     "evaluate",
     "overall",
-    "EXAMPLE_LIMITS",
     "ScoreResult",
     "score_images",
 ]

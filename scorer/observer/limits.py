@@ -24,23 +24,23 @@ interpolated linearly in log(diameter)–log(contrast), never extrapolated):
 Limits written for human readers are compared with model-observer thresholds only
 through a human/model factor (human threshold ≈ factor × model threshold); without
 one the comparison is refused.
+
+:func:`parse_limits` validates a limits file's parsed TOML; reading it is
+:func:`scorer.workflow.load_limits`'s job (this module reads no file).
 """
 
 from __future__ import annotations
 
 
 from dataclasses import dataclass, asdict
-from pathlib import Path
+from pathlib import PurePath
 
 import numpy as np
 
 from scorer.errors import LimenError
-from scorer.files import read_json, read_toml
 
 FORMAT = "limen-limits/1"
 OBSERVERS = ("human", "npw", "npwe")
-DATA_DIR = Path(__file__).resolve().parents[1] / "data"
-EXAMPLE_LIMITS = DATA_DIR / "limits-eu-guidelines-2006-digital-mammography.toml"
 
 
 @dataclass(frozen=True)
@@ -83,10 +83,13 @@ class Limits:
         return self._interp(self.achievable, diameter_mm)
 
 
-def load_limits(path) -> Limits:
-    """Read and validate a limits file (errors name the file and the entry)."""
-    path = Path(path)
-    data = read_toml(path, "limits file")
+def parse_limits(data: dict, path) -> Limits:
+    """Validate the parsed TOML of a limits file (errors name ``path`` and the entry).
+
+    ``path`` is the file the table came from: named in errors, kept as ``Limits.path``, and its stem is the
+    name when the file gives none.  Reading the file is :func:`scorer.workflow.load_limits`'s job.
+    """
+    path = PurePath(path)
     allowed = {"format", "name", "observer", "source", "condition", "limits"}
     extra = sorted(set(data) - allowed)
     if extra:
@@ -297,9 +300,12 @@ def overall(verdicts: list[Verdict]) -> str:
     return "no limit"
 
 
-def human_factor_from_analysis(path, observer: str) -> HumanFactor:
-    """The human/model threshold factor that `limen analyse --model` measured for ``observer``."""
-    data = read_json(path, "analysis file (an analysis.json)")
+def parse_human_factor(data: dict, observer: str, path) -> HumanFactor:
+    """The human/model threshold factor that `limen analyse --model` measured for ``observer``.
+
+    ``data`` is the parsed analysis.json; ``path`` names it in errors and becomes the factor's source
+    (:func:`scorer.workflow.human_factor_from_analysis` reads the file).
+    """
     try:
         hm = data["human_model_factor"]
     except KeyError:
@@ -320,12 +326,3 @@ def human_factor_from_analysis(path, observer: str) -> HumanFactor:
     raise LimenError(
         f"no human/model factor for the {observer.upper()} observer in this analysis (factors for: {found})", path
     )
-
-
-def resolve_human_factor(value: float | None, analysis_file, observer: str) -> HumanFactor | float | None:
-    """The human/model factor from ``--human-factor`` or ``--human-factor-from`` (an analysis.json), never both."""
-    if analysis_file:
-        if value is not None:
-            raise LimenError("give either --human-factor or --human-factor-from, not both", "--human-factor")
-        return human_factor_from_analysis(analysis_file, observer)
-    return value

@@ -71,11 +71,11 @@ class SystemBlur:
         return np.exp(-2.0 * np.pi**2 * self.sigma_px**2 * f_cyc_per_px**2)
 
     @classmethod
-    def from_detector_json(cls, path) -> "SystemBlur":
-        """The measured presampling MTF in a ``limen detector`` JSON (keys mtf.frequency_per_mm, mtf.value)."""
-        from scorer.files import read_json
+    def from_detector_dict(cls, data: dict, path) -> "SystemBlur":
+        """The measured presampling MTF in a parsed ``limen detector`` JSON (keys mtf.frequency_per_mm, mtf.value).
 
-        data = read_json(path, "MTF file (a limen detector JSON)")
+        ``path`` names the file in errors and in ``source``; :func:`scorer.workflow.load_mtf` reads it.
+        """
         try:
             mtf = data["mtf"]
             f, v = [float(x) for x in mtf["frequency_per_mm"]], [float(x) for x in mtf["value"]]

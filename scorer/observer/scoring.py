@@ -1,32 +1,29 @@
 """The main job in one call: images of a contrast-detail phantom → thresholds → verdicts.
 
 :func:`score_images` chains the modules of the one-direction flow (DESIGN.md):
-``io.load_image`` → ``register.register`` → ``observer.score_image`` →
-``threshold`` (d′ and count methods) → ``limits.evaluate``.  It reads files but
-writes none; the CLI and the web app decide what to write.
+``register.register`` → ``observer.score_image`` → ``threshold`` (d′ and count methods) →
+``limits.evaluate``.  It takes :class:`~scorer.images.image.Image` objects and reads and writes no
+file: :func:`scorer.workflow.score_files` reads the image files (one at a time) and calls it.
 """
 
 from __future__ import annotations
 
-import warnings
 from dataclasses import dataclass, field
-from pathlib import Path
+from pathlib import PurePath
 from typing import Callable, Sequence
 
+import numpy as np
 import pandas as pd
 
-from scorer.images.conversion import ConversionFunction
 from scorer.errors import LimenError
-import numpy as np
-
-from scorer.resources import check_limit
-from scorer.images.image import LimenWarning
-from scorer.images.loading import load_image
-from scorer.phantom.layout import Layout
+from scorer.images.conversion import ConversionFunction
+from scorer.images.image import Image
 from scorer.observer.limits import HumanFactor, Limits, Verdict, evaluate, overall
 from scorer.observer.npw import ObserverConfig, SystemBlur, decide, estimate_blur, score_image
-from scorer.phantom.registration import register
 from scorer.observer.threshold import ThresholdCurve, count_thresholds, dprime_thresholds
+from scorer.phantom.layout import Layout
+from scorer.phantom.registration import register
+from scorer.resources import check_limit
 
 METHODS = ("dprime", "count")
 
@@ -102,20 +99,29 @@ class ScoreResult:
 
 
 def _image_ids(paths: Sequence[str]) -> list[str]:
-    names = [Path(p).name for p in paths]
+    names = [PurePath(p).name for p in paths]
     if len(set(names)) == len(names):
         return names
     return [str(p) for p in paths]
 
 
+def _checked(image) -> Image:
+    if not isinstance(image, Image):
+        raise TypeError(
+            f"score_images takes Image objects, got {type(image).__name__}; "
+            "to score image files call scorer.workflow.score_files"
+        )
+    return image
+
+
 def score_images(
-    paths: Sequence,
+    images: Sequence[Image],
     layout: Layout,
     *,
+    names: Sequence | None = None,
     observer: str = "npw",
     methods: Sequence[str] = METHODS,
     conversion: ConversionFunction | None = None,
-    pixel_spacing_mm=None,
     blur: SystemBlur | None = None,
     viewing_distance_mm: float | None = None,
     n_boot: int = 1000,
@@ -134,19 +140,29 @@ def score_images(
 
     Parameters
     ----------
-    paths : image files (DICOM, TIFF, PNG, npy).
+    images : the images (:class:`~scorer.images.image.Image`), each taken once, in order; a lazy sequence
+        that reads each file when it is reached (:class:`scorer.workflow.ImageFiles`) keeps one image in
+        memory at a time.
     layout : the phantom's layout.
+    names : one label per image (its file), used in messages, as ``ImageScore.path`` and, by base name,
+        as the image id; default: each image's ``metadata.source_path``.
     observer : "npw" or "npwe".
     methods : any of "dprime", "count".
-    conversion : conversion function to linearise the pixels (none: the stored values are
-        taken as proportional to air kerma, with a warning).
+    conversion : the conversion function the images were linearised with, recorded in the settings
+        (none: the stored values were taken as proportional to air kerma).
     blur : system spread for the templates (none: estimated from the markers of each image).
-    on_image : called as ``on_image(index, path, image, placement)`` after each image.
-    on_failure : called as ``on_failure(path, image, exception)`` when registration fails,
+    on_image : called as ``on_image(index, name, image, placement)`` after each image.
+    on_failure : called as ``on_failure(name, image, exception)`` when registration fails,
         before the error is raised.
+
+    To score image files, call :func:`scorer.workflow.score_files`.
     """
-    if not paths:
+    if not len(images):
         raise LimenError("no images given")
+    if names is None:
+        names = [_checked(images[i]).metadata.source_path or f"image {i + 1}" for i in range(len(images))]
+    elif len(names) != len(images):
+        raise ValueError(f"{len(names)} names for {len(images)} images")
     methods = [m for m in methods]
     for m in methods:
         if m not in METHODS:
@@ -170,30 +186,17 @@ def score_images(
     config = ObserverConfig(**cfg_kw)
     check_limit(
         "LIMEN_MAX_BOOTSTRAP_CELLS",
-        n_boot * len(paths),
-        f"--n-boot {n_boot} × {len(paths)} images = {n_boot * len(paths)}",
+        n_boot * len(images),
+        f"--n-boot {n_boot} × {len(images)} images = {n_boot * len(images)}",
         "--n-boot",
     )
-    seen_paths: dict[Path, str] = {}
-    for p in paths:
-        key = Path(p).resolve()
-        if key in seen_paths:
-            raise LimenError(f"given twice (as {seen_paths[key]} and {p}); each image may be scored once", p)
-        seen_paths[key] = str(p)
     seen_hashes: dict[str, str] = {}
     notes: list[str] = []
-    if conversion is None:
-        notes.append("no conversion function given: stored pixel values are taken as proportional to air kerma")
-    ids = _image_ids([str(p) for p in paths])
+    ids = _image_ids([str(p) for p in names])
     scores, frames = [], []
     detectors = set()
-    min_shape = None
-    for i, (path, image_id) in enumerate(zip(paths, ids)):
-        with warnings.catch_warnings(record=True) as caught:
-            warnings.simplefilter("always", LimenWarning)
-            image = load_image(path, pixel_spacing_mm=pixel_spacing_mm, conversion=conversion, min_shape=min_shape)
-        for w in caught:
-            notes.append(str(w.message))
+    for i, (image, path, image_id) in enumerate(zip(images, names, ids)):
+        _checked(image)
         twin = seen_hashes.setdefault(image.metadata.content_sha256, str(path))
         if twin != str(path):
             raise LimenError(

@@ -7,8 +7,9 @@ claims, one-transaction writes), ``control`` (baselines, Shewhart and EWMA rules
 e-mail over SMTP), ``nightly`` (run_nightly: the whole run as one call), ``simulated`` (simulated
 nights for the demo and tests), ``faults`` (fault injection for the crash tests).
 
-May import: ``scorer.images``, ``scorer.phantom``, ``scorer.observer``, ``scorer.detector``,
-``scorer.study`` and the base modules; never ``scorer.reports`` or ``scorer.commands``.
+May import: ``scorer.workflow`` (every image, layout, limits, conversion and MTF file is read through it),
+``scorer.images``, ``scorer.phantom``, ``scorer.observer``, ``scorer.detector``, ``scorer.study`` and the base
+modules; never ``scorer.reports`` or ``scorer.commands``.
 """
 
 import lazy_loader as _lazy

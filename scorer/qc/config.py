@@ -62,10 +62,11 @@ from typing import Callable
 
 from scorer.errors import LimenError
 from scorer.files import read_toml
-from scorer.images.conversion import ConversionFunction, load_conversion
-from scorer.observer.limits import HumanFactor, Limits, load_limits
+from scorer.images.conversion import ConversionFunction
+from scorer.observer.limits import HumanFactor, Limits
 from scorer.observer.npw import SystemBlur
-from scorer.phantom.layout import Layout, load_layout
+from scorer.phantom.layout import Layout
+from scorer.workflow.inputs import load_conversion, load_layout, load_limits
 
 FORMAT = "limen-nightly/1"
 RULES = ("baseline", "shewhart", "ewma", "limits")
@@ -234,9 +235,9 @@ def load_config(path, factor_loader: Callable | None = None, mtf_loader: Callabl
     ----------
     path : the TOML file.
     factor_loader : ``factor_loader(analysis_json, observer) -> float`` for ``human_factor_from``
-        (default: :func:`scorer.observer.human_factor_from_analysis`).
+        (default: :func:`scorer.workflow.human_factor_from_analysis`).
     mtf_loader : ``mtf_loader(detector_json) -> SystemBlur`` for ``mtf``
-        (default: :meth:`scorer.observer.SystemBlur.from_detector_json`).
+        (default: :func:`scorer.workflow.load_mtf`).
     """
     path = Path(path)
     data = read_toml(path, "nightly configuration")
@@ -250,9 +251,9 @@ def load_config(path, factor_loader: Callable | None = None, mtf_loader: Callabl
     accept = dflt.get("accept_unlisted", False)
     if not isinstance(accept, bool):
         raise LimenError("[defaults] accept_unlisted must be true or false", path)
-    from scorer.observer import SystemBlur, human_factor_from_analysis
+    from scorer.workflow.inputs import human_factor_from_analysis, load_mtf
 
-    ctx = _Ctx(path, base, factor_loader or human_factor_from_analysis, mtf_loader or SystemBlur.from_detector_json)
+    ctx = _Ctx(path, base, factor_loader or human_factor_from_analysis, mtf_loader or load_mtf)
     defaults = _detector(
         dict(dflt, name="(default)"), ctx, "[defaults]", DetectorConfig(name="(default)", layout=None), is_default=True
     )

@@ -11,14 +11,12 @@ from __future__ import annotations
 
 import os
 import shutil
-import warnings
 from dataclasses import dataclass, field
 from pathlib import Path
 
 from scorer.errors import LimenError
 from scorer.files import atomic_write_text
-from scorer.images.image import LimenWarning
-from scorer.images.loading import load_image
+from scorer.workflow.headers import read_acquisition_extras, read_image_metadata
 from scorer.qc.config import NightlyConfig
 from scorer.qc.faults import fault_point
 
@@ -78,18 +76,14 @@ def examine(path, sha256: str, config: NightlyConfig) -> InboxImage | Rejected:
 
     A DICOM file whose header is sound (pixel data present, as long as the file) is placed from
     its header alone: decoding is left to the scoring workers, where a file that still fails is
-    quarantined and its session re-formed.  Anything else is read fully by ``load_image``, whose
-    error names the problem.
+    quarantined and its session re-formed.  Anything else is read fully
+    (:func:`scorer.workflow.read_image_metadata`), whose error names the problem.
     """
     path = Path(path)
-    md = _quick_metadata(path)
-    if md is None:
-        try:
-            with warnings.catch_warnings():
-                warnings.simplefilter("ignore", LimenWarning)
-                md = load_image(path).metadata
-        except LimenError as exc:
-            return Rejected(str(path), sha256, _strip(str(exc), path))
+    try:
+        md = read_image_metadata(path)
+    except LimenError as exc:
+        return Rejected(str(path), sha256, _strip(str(exc), path))
     if md.presentation_intent == "FOR PRESENTATION":
         return Rejected(
             str(path),
@@ -119,7 +113,7 @@ def examine(path, sha256: str, config: NightlyConfig) -> InboxImage | Rejected:
             or "no identifier"
         )
         return Rejected(str(path), sha256, f"unknown detector ({ids}): not in the nightly configuration")
-    extra = _header_extras(path)
+    extra = read_acquisition_extras(path)
     date = (md.acquisition_datetime or "")[:10] or extra.get("content_date")
     if not date or len(date) != 10:
         return Rejected(
@@ -145,65 +139,6 @@ def examine(path, sha256: str, config: NightlyConfig) -> InboxImage | Rejected:
     )
     img.flags = det.expected.check(img.kvp, img.anode, img.filter, img.exposure_uas)
     return img
-
-
-_PIXEL_TAGS = (0x7FE00010, 0x7FE00008, 0x7FE00009)  # Pixel Data, Float / Double Float Pixel Data
-
-
-def _quick_metadata(path: Path):
-    """ImageMetadata from the DICOM header without decoding pixels, or None when a full read must judge.
-
-    The pixel data element must be present and, when not encapsulated, end within the file; a file
-    that fails either (or is not plainly DICOM) goes to ``load_image`` for its one-line error.
-    """
-    import pydicom
-    from scorer.images.image import ImageMetadata
-    from scorer.images.dicom_tags import fill_dicom_metadata  # the same tags load_image reads
-
-    try:
-        with path.open("rb") as fh:
-            head = fh.read(132)
-        if len(head) < 132 or head[128:132] != b"DICM":
-            return None
-        size = path.stat().st_size
-        with warnings.catch_warnings():
-            warnings.simplefilter("ignore")
-            ds = pydicom.dcmread(path, defer_size="256 KB")
-        raw = next((ds._dict[t] for t in _PIXEL_TAGS if t in ds._dict), None)
-        if raw is None:
-            return None
-        length, tell = getattr(raw, "length", None), getattr(raw, "value_tell", None)
-        if length is None or tell is None or (length != 0xFFFFFFFF and tell + length > size):
-            return None
-        if any(int(ds.get(k) or 1) > 1 for k in ("SamplesPerPixel", "NumberOfFrames")):
-            return None
-        meta = ImageMetadata(source_path=str(path), file_format="dicom")
-        fill_dicom_metadata(ds, meta)
-        return meta
-    except Exception:  # any oddity: let load_image judge and explain
-        return None
-
-
-def _header_extras(path: Path) -> dict:
-    """Anode Target Material (0018,1191), Filter Material (0018,7050) and Content Date (0008,0023)."""
-    import pydicom
-
-    out = {}
-    try:
-        with warnings.catch_warnings():
-            warnings.simplefilter("ignore")
-            ds = pydicom.dcmread(path, stop_before_pixels=True, force=True)
-    except Exception:  # load_image has read the file already; a header it could read is readable
-        return out
-    for key, kw in (("anode", "AnodeTargetMaterial"), ("filter", "FilterMaterial")):
-        v = ds.get(kw)
-        if v:
-            out[key] = "\\".join(str(x) for x in v) if not isinstance(v, str) and hasattr(v, "__iter__") else str(v)
-            out[key] = out[key].strip().upper() or None
-    cd = str(ds.get("ContentDate") or "").strip()
-    if len(cd) == 8 and cd.isdigit():
-        out["content_date"] = f"{cd[:4]}-{cd[4:6]}-{cd[6:]}"
-    return out
 
 
 def _strip(message: str, path: Path) -> str:

@@ -13,7 +13,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 
 from scorer.errors import LimenError
-from scorer.images.loading import image_content_hash
+from scorer.workflow.inputs import image_content_hash
 from scorer.qc.config import NightlyConfig, default_config
 from scorer.qc.faults import fault_point
 from scorer.qc.inbox import InboxImage, examine, list_files, quarantine_file

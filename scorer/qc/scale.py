@@ -62,13 +62,12 @@ class SessionOutcome:
 
 
 def score_session(job: SessionJob) -> SessionOutcome:
-    """Score one session's images with ``scorer.observer.score_images``; a bad image ends it with its reason.
+    """Score one session's images with ``scorer.workflow.score_files``; a bad image ends it with its reason.
 
     A file that fails (unreadable, changed since the scan, phantom not found) is named in
     ``failed_path``/``reason`` so the coordinator can quarantine it and re-form the session.
     """
-    from scorer.images.loading import load_image  # noqa: F401  (warm import in workers)
-    from scorer.observer.scoring import score_images
+    from scorer.workflow.scoring import score_files
 
     t0 = time.perf_counter()
     out = SessionOutcome(job.session_id, job.token, ok=False)
@@ -84,7 +83,7 @@ def score_session(job: SessionJob) -> SessionOutcome:
         current["path"] = str(path)
 
     try:
-        res = score_images(
+        res = score_files(
             job.paths,
             job.layout,
             observer=job.observer,
@@ -189,7 +188,7 @@ def _watch_parent(parent_pid: int, every_s: float = 0.5) -> None:
             time.sleep(every_s)
 
     threading.Thread(target=watch, daemon=True, name="limen-parent-watch").start()
-    import scorer.observer.scoring  # noqa: F401  (numpy, scipy, OpenCV, scikit-image load now, not in the first job)
+    import scorer.workflow.scoring  # noqa: F401  (numpy, scipy, OpenCV, scikit-image load now, not in the first job)
 
 
 def _started() -> int:

@@ -49,6 +49,10 @@ def simulate_night(
     overrides any of them.  Returns the files written.
     """
     out = []
+    if layout is None:
+        from scorer.workflow.inputs import load_layout
+
+        layout = load_layout()  # the bundled demo plate
     folder = Path(inbox) / date.isoformat()
     seeds = np.random.SeedSequence([seed, date.toordinal()]).spawn(len(panels) * n_images)
     for p_i, panel in enumerate(panels):

@@ -1,0 +1,84 @@
+"""The files a score is configured with: layout, conversion function, images, limits, human/model factor,
+measured MTF and kerma CSV — each read here and handed to the pure packages as data.
+
+Errors name the file and the problem on one line (:class:`~scorer.errors.LimenError`).
+"""
+
+from __future__ import annotations
+
+import csv
+from pathlib import Path
+
+from scorer.errors import LimenError
+from scorer.files import read_json, read_toml
+from scorer.images.conversion import load_conversion
+from scorer.images.image import LimenWarning
+from scorer.images.loading import image_content_hash, load_image
+from scorer.observer.limits import HumanFactor, Limits, parse_human_factor, parse_limits
+from scorer.observer.npw import SystemBlur
+from scorer.phantom.layout import load_layout
+
+__all__ = [
+    "EXAMPLE_LIMITS",
+    "LimenWarning",
+    "human_factor_from_analysis",
+    "image_content_hash",
+    "load_conversion",
+    "load_image",
+    "load_layout",
+    "load_limits",
+    "load_mtf",
+    "read_kerma_csv",
+    "resolve_human_factor",
+]
+
+DATA_DIR = Path(__file__).resolve().parents[1] / "data"
+#: the limits file shipped with Limen (limits of the European guidelines for digital mammography, 2006)
+EXAMPLE_LIMITS = DATA_DIR / "limits-eu-guidelines-2006-digital-mammography.toml"
+
+
+def load_limits(path) -> Limits:
+    """Read and validate a limits file ``limen-limits/1`` (errors name the file and the entry)."""
+    path = Path(path)
+    return parse_limits(read_toml(path, "limits file"), path)
+
+
+def human_factor_from_analysis(path, observer: str) -> HumanFactor:
+    """The human/model threshold factor that `limen analyse --model` measured for ``observer``, from its
+    analysis.json."""
+    return parse_human_factor(read_json(path, "analysis file (an analysis.json)"), observer, path)
+
+
+def resolve_human_factor(value: float | None, analysis_file, observer: str) -> HumanFactor | float | None:
+    """The human/model factor from ``--human-factor`` or ``--human-factor-from`` (an analysis.json), never both."""
+    if analysis_file:
+        if value is not None:
+            raise LimenError("give either --human-factor or --human-factor-from, not both", "--human-factor")
+        return human_factor_from_analysis(analysis_file, observer)
+    return value
+
+
+def load_mtf(path) -> SystemBlur:
+    """The measured presampling MTF of a ``limen detector`` JSON, as the templates' system blur."""
+    return SystemBlur.from_detector_dict(read_json(path, "MTF file (a limen detector JSON)"), path)
+
+
+def read_kerma_csv(path) -> list[tuple[Path, float]]:
+    """CSV with columns ``path,kerma_ugy`` (paths relative to the CSV's folder; ``#`` lines are comments)."""
+    path = Path(path)
+    try:
+        text = path.read_text(encoding="utf-8")
+    except OSError as exc:
+        raise LimenError(f"cannot read kerma CSV ({exc.strerror or exc})", path) from None
+    rows = list(csv.DictReader(ln for ln in text.splitlines() if ln.strip() and not ln.startswith("#")))
+    if not rows or not {"path", "kerma_ugy"} <= set(rows[0]):
+        raise LimenError("kerma CSV needs the columns path,kerma_ugy", path)
+    out = []
+    for n, r in enumerate(rows, start=2):
+        try:
+            k = float(r["kerma_ugy"])
+        except (TypeError, ValueError):
+            raise LimenError(f"line {n}: kerma_ugy {r['kerma_ugy']!r} is not a number", path) from None
+        p = Path(r["path"].strip())
+        out.append((p if p.is_absolute() else path.parent / p, k))
+    return out
