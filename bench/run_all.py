@@ -16,6 +16,7 @@ BENCHES = [
     "bench_nightly",
     "bench_observer_coverage",
     "bench_dose_series",
+    "bench_adaptive",
     "bench_memory",
     "bench_web_load",
 ]

@@ -12,6 +12,8 @@ from . import reader_model as reader_model
 from . import trials as trials
 from . import wording as wording
 from . import planning as planning
+from . import adaptive as adaptive
+from . import precision as precision
 
 from .analysis import (
     Analysis as Analysis,
@@ -26,6 +28,20 @@ from .planning import (
     power_by_simulation as power_by_simulation,
     population_from_analysis as population_from_analysis,
 )
+from .adaptive import (
+    AdaptiveState as AdaptiveState,
+    ThresholdEstimate as ThresholdEstimate,
+    new_state as new_state,
+    next_level as next_level,
+    update as update,
+    estimate as estimate,
+    expected_entropy as expected_entropy,
+    posterior as posterior,
+    state_from_json as state_from_json,
+    next_cell as next_cell,
+    plate_levels as plate_levels,
+)
+from .precision import PrecisionPlan as PrecisionPlan, trials_for_precision as trials_for_precision
 from .reader_model import (
     ReaderPopulation as ReaderPopulation,
     draw_readers as draw_readers,
@@ -59,4 +75,19 @@ __all__ = [
     "PowerPlan",
     "power_by_simulation",
     "population_from_analysis",
+    "adaptive",
+    "precision",
+    "AdaptiveState",
+    "ThresholdEstimate",
+    "new_state",
+    "next_level",
+    "update",
+    "estimate",
+    "expected_entropy",
+    "posterior",
+    "state_from_json",
+    "next_cell",
+    "plate_levels",
+    "PrecisionPlan",
+    "trials_for_precision",
 ]
