@@ -139,7 +139,7 @@ def test_echo_is_answered(node):
     assert status.Status == SUCCESS  # PS3.4 A.4 / PS3.7 9.3.5: Success 0000
     line = node.wait_lines(1)[0]
     assert line.startswith(f"association {MODALITY} from 127.0.0.1:") and "released" in line
-    assert "1 echo(es)" in line and "0 image(s) stored" in line and "0 refusal(s)" in line and "\n" not in line
+    assert "1 echo(es)" in line and "0 image(s) stored" in line and "0 image(s) refused" in line and "\n" not in line
 
 
 def test_images_are_stored_byte_complete_and_read_by_the_nightly_scanner(node, tmp_path):
@@ -151,7 +151,7 @@ def test_images_are_stored_byte_complete_and_read_by_the_nightly_scanner(node, t
     assoc.release()
     assert statuses == [SUCCESS, SUCCESS] and again == SUCCESS
     line = node.wait_lines(1)[0]
-    assert "2 image(s) stored" in line and "1 already in the inbox" in line and "0 refusal(s)" in line
+    assert "2 image(s) stored" in line and "1 already in the inbox" in line and "0 image(s) refused" in line
 
     inbox = Path(node.config.inbox)
     stored = dcm_files(inbox)
@@ -226,7 +226,10 @@ def test_other_sop_classes_and_lossy_syntaxes_are_refused_in_negotiation(node, t
         assoc.send_c_store(ct)
     assoc.release()
     line = node.wait_lines(1)[0]
-    assert "2 refusal(s)" in line and "CT Image Storage" in line and "abstract syntax not supported" in line
+    assert (
+        "0 image(s) refused, 2 proposed context(s) not accepted: Digital Mammography X-Ray Image Storage - For " in line
+    )
+    assert "(no acceptable transfer syntax); CT Image Storage (1.2.840.10008.5.1.4.1.1.2) (abstract syntax " in line
     assert dcm_files(node.config.inbox) == []
 
 
@@ -442,7 +445,9 @@ def test_signal_stops_it_cleanly(tmp_path, sig):
         proc.wait()
     assert proc.returncode == 0, err
     assert (
-        out.strip().splitlines()[-1].endswith("stopped: 1 association(s) (0 rejected), 0 image(s) stored, 0 refusal(s)")
+        out.strip()
+        .splitlines()[-1]
+        .endswith("stopped: 1 association(s) (0 rejected), 0 image(s) stored, 0 image(s) refused")
     )
     assert err == ""
 
@@ -526,5 +531,20 @@ def test_sigterm_lets_an_open_association_finish(tmp_path):
         proc.kill()
         proc.wait()
     assert proc.returncode == 0, err
-    assert "2 image(s) stored" in out and out.strip().endswith("2 image(s) stored, 0 refusal(s)")
+    assert "2 image(s) stored" in out and out.strip().endswith("2 image(s) stored, 0 image(s) refused")
     assert len(dcm_files(tmp_path / "inbox")) == 2
+
+
+def test_an_image_that_cannot_be_written_is_refused_with_a7xx(node, tmp_path):
+    # PS3.4 Table B.2-1: A700 Refused: Out of Resources -- never a success for an image that is not on disk
+    src = night(tmp_path / "modality", D1, ["direct"], n_images=1)[0]
+    inbox = Path(node.config.inbox)
+    inbox.rmdir()
+    inbox.write_text("the inbox was replaced by a file\n")
+    assoc = scu().associate(node.host, node.port, ae_title=OURS)
+    status = assoc.send_c_store(src).Status
+    assoc.release()
+    assert 0xA700 <= status <= 0xA7FF
+    lines = node.wait_lines(2)
+    assert lines[0].startswith("error: ") and str(inbox) in lines[0]
+    assert "0 image(s) stored, 1 image(s) refused (status 0xA700: cannot write it to the inbox)" in lines[1]

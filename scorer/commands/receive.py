@@ -71,5 +71,5 @@ def receive(config_file, port):
     t = receiver.totals
     _say(
         f"stopped: {t['associations']} association(s) ({t['rejected']} rejected), {t['stored']} image(s) stored, "
-        f"{t['refusals']} refusal(s)"
+        f"{t['refused']} image(s) refused"
     )

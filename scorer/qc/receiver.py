@@ -178,7 +178,11 @@ class AssociationRecord:
     stored: int = 0
     already_here: int = 0
     echoes: int = 0
-    refused: list[str] = field(default_factory=list)
+    refused: list[str] = field(default_factory=list)  # images refused (C-STORE failure status)
+    contexts_rejected: list[str] = field(default_factory=list)  # "name (why)", transfer-syntax ones first
+
+    #: rejected contexts named in the line; the rest are counted (a modality may propose a hundred classes)
+    SHOWN_CONTEXTS = 3
 
     def line(self) -> str:
         if not self.calling_ae:
@@ -191,7 +195,17 @@ class AssociationRecord:
             parts.append(f"{self.already_here} already in the inbox")
         if self.echoes:
             parts.append(f"{self.echoes} echo(es)")
-        parts.append(f"{len(self.refused)} refusal(s)" + (f": {'; '.join(self.refused)}" if self.refused else ""))
+        parts.append(
+            f"{len(self.refused)} image(s) refused" + (f" ({'; '.join(self.refused)})" if self.refused else "")
+        )
+        if self.contexts_rejected:
+            shown = self.contexts_rejected[: self.SHOWN_CONTEXTS]
+            more = len(self.contexts_rejected) - len(shown)
+            parts.append(
+                f"{len(self.contexts_rejected)} proposed context(s) not accepted: "
+                + "; ".join(shown)
+                + (f"; and {more} more" if more else "")
+            )
         return f"{who}: " + ", ".join(parts)
 
 
@@ -209,7 +223,7 @@ class Receiver:
         self.port = config.port if port is None else port
         self.writer = InboxWriter(config.inbox)
         self.address: tuple[str, int] | None = None
-        self.totals = {"associations": 0, "rejected": 0, "stored": 0, "refusals": 0}
+        self.totals = {"associations": 0, "rejected": 0, "stored": 0, "refused": 0}
         self._records: dict[int, AssociationRecord] = {}
         self._lock = threading.Lock()
         self._server = None
@@ -321,9 +335,11 @@ class Receiver:
     def _on_established(self, event) -> None:
         rec = self._titles(event)
         rec.outcome = "open"
-        for cx in event.assoc.rejected_contexts:
+        # PS3.8 9.3.3.2: result 4 (none of the proposed transfer syntaxes) matters most: one of our classes,
+        # offered only in a lossy or unknown encoding; result 3 is the rest of what the modality can send
+        for cx in sorted(event.assoc.rejected_contexts, key=lambda c: c.result != 4):
             what = {3: "abstract syntax not supported", 4: "no acceptable transfer syntax"}.get(cx.result, "rejected")
-            rec.refused.append(f"context {_sop_name(cx.abstract_syntax)} ({what})")
+            rec.contexts_rejected.append(f"{_sop_name(cx.abstract_syntax)} ({what})")
 
     def _on_echo(self, event) -> int:
         self._record(event.assoc).echoes += 1
@@ -338,7 +354,7 @@ class Receiver:
             else:
                 rec.stored += 1
         else:
-            rec.refused.append(f"image 0x{status:04X} {note}")
+            rec.refused.append(f"status 0x{status:04X}: {note}")
         return status
 
     def store(self, event) -> tuple[int, str]:
@@ -379,7 +395,7 @@ class Receiver:
             self.totals["associations"] += 1 if rec.calling_ae else 0
             self.totals["rejected"] += 1 if rec.outcome.startswith("rejected") else 0
             self.totals["stored"] += rec.stored
-            self.totals["refusals"] += len(rec.refused)
+            self.totals["refused"] += len(rec.refused)
         self.log(rec.line())
 
 
