@@ -35,6 +35,11 @@ COMMANDS: dict[str, tuple[str, str, str]] = {
     "analyse": ("analyse", "analyse", "Analyse a reader study: per-reader and pooled curves, human/model factor."),
     "nightly": ("nightly", "nightly", "Score an inbox of phantom images once per session; store, trend, alert."),
     "trend": ("trend", "trend", "Write the trend report (HTML, CSV) of a nightly database."),
+    "receive": (
+        "receive",
+        "receive",
+        "Receive QC images from modalities over DICOM (C-STORE) into the nightly inbox.",
+    ),
     "dose-series": (
         "dose_series",
         "dose_series",

@@ -89,6 +89,19 @@ def atomic_write_chunks(path, chunks, *, mode: int = 0o666) -> Path:
     return path
 
 
+def sync_folder(path) -> None:
+    """Flush a folder's entries to disk (``fsync`` on the folder itself), so a file just renamed into it
+    survives a power cut as well as a killed process; call it after :func:`atomic_write_bytes` when the
+    file's presence is promised to someone (an acknowledged DICOM C-STORE)."""
+    import os
+
+    fd = os.open(path, os.O_RDONLY | getattr(os, "O_DIRECTORY", 0))
+    try:
+        os.fsync(fd)
+    finally:
+        os.close(fd)
+
+
 def atomic_write_text(path, text: str, *, mode: int = 0o666) -> Path:
     """:func:`atomic_write_bytes` for UTF-8 text."""
     return atomic_write_bytes(path, text.encode("utf-8"), mode=mode)

@@ -35,6 +35,16 @@ def _write(tmp_path, body, name="n.toml"):
             '[[detectors]]\ndetector_id = "A"\nhuman_factor = 2\nhuman_factor_from = "a.json"\n',
             "give human_factor or human_factor_from, not both",
         ),
+        ('[receive]\ncalling_ae_titles = ["MAM2_QC"]\n', "[receive] inbox must name the folder"),
+        ('[receive]\ninbox = "in"\n', "[receive] calling_ae_titles must list the AE titles"),
+        ('[receive]\ninbox = "in"\ncalling_ae_titles = []\n', "[receive] calling_ae_titles must list"),
+        # DICOM PS3.5 6.2, VR AE: at most 16 characters, no backslash, no control character
+        ('[receive]\ninbox = "in"\ncalling_ae_titles = ["SEVENTEEN_CHARS_X"]\n', "(DICOM AE title)"),
+        ('[receive]\ninbox = "in"\ncalling_ae_titles = ["A", "A"]\n', "lists an AE title twice"),
+        ('[receive]\ninbox = "in"\ncalling_ae_titles = ["A"]\nae_title = "TAB\\tHERE"\n', "[receive] ae_title"),
+        ('[receive]\ninbox = "in"\ncalling_ae_titles = ["A"]\nport = 0\n', "[receive] port must be in 1–65535"),
+        ('[receive]\ninbox = "in"\ncalling_ae_titles = ["A"]\nbind = ""\n', "[receive] bind must be"),
+        ('[receive]\ninbox = "in"\ncalling_ae_titles = ["A"]\npeers = 1\n', "[receive]: unknown key 'peers'"),
     ],
 )
 def test_bad_configurations_give_one_line_errors_naming_the_file(tmp_path, body, message):
@@ -101,3 +111,15 @@ def test_human_factor_from_an_analysis_keeps_its_ci(tmp_path):
     p = _write(tmp_path, '[[detectors]]\ndetector_id = "D-1"\nhuman_factor_from = "analysis.json"\n')
     hf = load_config(p).detector_for("D-1", None, None).human_factor
     assert (hf.value, hf.ci_low, hf.ci_high) == (2.1, 1.8, 2.5)
+
+
+def test_receive_table_defaults_and_relative_inbox(tmp_path):
+    from scorer.qc.config import load_receive_config
+
+    p = _write(tmp_path, '[receive]\ninbox = "qc-inbox"\ncalling_ae_titles = [" MAM2_QC ", "MAM3_QC"]\n')
+    for rc in (load_config(p).receive, load_receive_config(p)):
+        # 11112: the port registered for DICOM (IANA service name "dicom"; from memory); loopback unless told
+        assert (rc.ae_title, rc.port, rc.bind) == ("LIMEN_QC", 11112, "127.0.0.1")
+        assert rc.inbox == str((tmp_path / "qc-inbox").resolve())
+        assert rc.calling_ae_titles == ("MAM2_QC", "MAM3_QC")  # leading/trailing spaces are not significant
+    assert load_config(_write(tmp_path, "", "plain.toml")).receive is None

@@ -6,6 +6,7 @@ from . import inbox as inbox
 from . import mail as mail
 from . import nightly as nightly
 from . import scale as scale
+from . import receiver as receiver
 from . import store as store
 from . import simulated as simulated
 
@@ -14,6 +15,8 @@ from .config import (
     DetectorConfig as DetectorConfig,
     load_config as load_config,
     default_config as default_config,
+    ReceiveConfig as ReceiveConfig,
+    load_receive_config as load_receive_config,
 )
 from .store import (
     Store as Store,
@@ -40,12 +43,15 @@ __all__ = [
     "mail",
     "nightly",
     "scale",
+    "receiver",
     "store",
     "simulated",
     "NightlyConfig",
     "DetectorConfig",
     "load_config",
     "default_config",
+    "ReceiveConfig",
+    "load_receive_config",
     "Store",
     "open_store",
     "default_db_url",

@@ -47,6 +47,14 @@ Format ``limen-nightly/1`` (TOML, our own design)::
     filter = "RH"               # Filter Material (0018,7050)
     exposure_uas = [40000, 160000]   # Exposure in µAs (0018,1153): accepted range
 
+    [receive]                   # optional: the DICOM node of `limen receive` (see scorer/qc/receiver.py)
+    ae_title = "LIMEN_QC"       # our (called) AE title, 1–16 characters (default LIMEN_QC)
+    port = 11112                # TCP port (default 11112, the port registered for DICOM)
+    bind = "127.0.0.1"          # address to listen on (default: this machine only; give the address the
+                                #   modalities reach, or "0.0.0.0" for every interface)
+    inbox = "/data/qc-inbox"    # where received images are written (the folder `limen nightly --inbox` scans)
+    calling_ae_titles = ["MAM2_QC", "MAM3_QC"]   # the modalities allowed to send; any other is rejected
+
 Relative paths are taken from the configuration file's folder.  Without a configuration
 file every detector gets the bundled layout, no limits and a minimum of 4 images per
 session.  Every problem raises a one-line :class:`~scorer.errors.LimenError` naming the
@@ -103,6 +111,7 @@ _DEFAULT_KEYS = {
 _EXPECTED_KEYS = {"kvp", "kvp_tolerance", "anode", "filter", "exposure_uas"}
 _SMTP_KEYS = {"host", "port", "sender", "recipients", "starttls", "username", "password_env", "timeout_s"}
 _ALERT_KEYS = {"worse_fraction", "control_sigma", "ewma_lambda", "ewma_width", "rules"}
+_RECEIVE_KEYS = {"ae_title", "port", "bind", "inbox", "calling_ae_titles"}
 
 
 @dataclass(frozen=True)
@@ -189,6 +198,18 @@ class SmtpConfig:
 
 
 @dataclass(frozen=True)
+class ReceiveConfig:
+    """The DICOM node of ``limen receive``: who we are, where we listen, whom we accept, where images go."""
+
+    inbox: str  # absolute, or relative to the working folder when built by hand
+    calling_ae_titles: tuple[str, ...]
+    ae_title: str = "LIMEN_QC"
+    port: int = 11112  # the port registered for DICOM (IANA service "dicom"; from memory)
+    bind: str = "127.0.0.1"
+    path: str | None = None  # the configuration file, named in errors
+
+
+@dataclass(frozen=True)
 class NightlyConfig:
     """The whole nightly configuration (see the module docstring for the file format)."""
 
@@ -198,6 +219,7 @@ class NightlyConfig:
     accept_unlisted: bool = True
     alerts: AlertRules = AlertRules()
     smtp: SmtpConfig | None = None
+    receive: ReceiveConfig | None = None
     path: str | None = None
 
     def detector_for(self, detector_id, device_serial, station_name) -> DetectorConfig | None:
@@ -242,7 +264,7 @@ def load_config(path, factor_loader: Callable | None = None, mtf_loader: Callabl
     path = Path(path)
     data = read_toml(path, "nightly configuration")
     base = path.parent
-    _known(data, {"format", "programme", "defaults", "alerts", "smtp", "detectors"}, path, "the file")
+    _known(data, {"format", "programme", "defaults", "alerts", "smtp", "detectors", "receive"}, path, "the file")
     if data.get("format") != FORMAT:
         raise LimenError(f'expected format = "{FORMAT}", got {data.get("format")!r}', path)
     programme = _text(data.get("programme", "Nightly phantom QC"), path, "programme")
@@ -279,6 +301,7 @@ def load_config(path, factor_loader: Callable | None = None, mtf_loader: Callabl
         detectors.append(d)
     alerts = _alerts(_table(data.get("alerts", {}), path, "[alerts]"), path)
     smtp = _smtp(data["smtp"], path) if "smtp" in data else None
+    receive = _receive(data["receive"], path) if "receive" in data else None
     return NightlyConfig(
         programme=programme,
         detectors=tuple(detectors),
@@ -286,8 +309,27 @@ def load_config(path, factor_loader: Callable | None = None, mtf_loader: Callabl
         accept_unlisted=accept,
         alerts=alerts,
         smtp=smtp,
+        receive=receive,
         path=str(path),
     )
+
+
+def load_receive_config(path) -> ReceiveConfig:
+    """Read the ``[receive]`` table of a ``limen-nightly/1`` file (and its format line), nothing else.
+
+    ``limen receive`` keeps receiving while a physicist edits the detectors' layouts or limits, so it
+    neither loads nor validates them; ``limen nightly`` (:func:`load_config`) validates the whole file,
+    ``[receive]`` included.
+    """
+    path = Path(path)
+    data = read_toml(path, "nightly configuration")
+    if data.get("format") != FORMAT:
+        raise LimenError(f'expected format = "{FORMAT}", got {data.get("format")!r}', path)
+    if "receive" not in data:
+        raise LimenError(
+            "no [receive] table: add one with inbox and calling_ae_titles (see limen receive --help)", path
+        )
+    return _receive(data["receive"], path)
 
 
 # --------------------------------------------------------------------------- validation helpers
@@ -464,4 +506,46 @@ def _smtp(t, path) -> SmtpConfig:
         username=t.get("username") or None,
         password_env=t.get("password_env") or None,
         timeout_s=float(_number(t.get("timeout_s", 30.0), path, "[smtp] timeout_s", 1, 600)),
+    )
+
+
+def _ae_title(value, path, where) -> str:
+    """An AE title as DICOM PS3.5 (section 6.2, VR AE) defines it: 1–16 characters of the default repertoire,
+    no backslash, no control character; leading and trailing spaces are not significant."""
+    if not isinstance(value, str):
+        raise LimenError(f"{where} must be a string, got {value!r}", path)
+    text = value.strip()
+    if not 1 <= len(text) <= 16 or any(not " " <= ch <= "~" or ch == "\\" for ch in text):
+        raise LimenError(
+            f"{where} must be 1–16 printable ASCII characters without a backslash (DICOM AE title), got {value!r}",
+            path,
+        )
+    return text
+
+
+def _receive(t, path) -> ReceiveConfig:
+    t = _table(t, path, "[receive]")
+    _known(t, _RECEIVE_KEYS, path, "[receive]")
+    if "inbox" not in t:
+        raise LimenError("[receive] inbox must name the folder received images are written to", path)
+    inbox = Path(_text(t["inbox"], path, "[receive] inbox")).expanduser()
+    if not inbox.is_absolute():
+        inbox = Path(path).parent / inbox
+    callers = t.get("calling_ae_titles")
+    if not isinstance(callers, list) or not callers:
+        raise LimenError(
+            "[receive] calling_ae_titles must list the AE titles of the modalities allowed to send "
+            "(a node that accepts anyone is refused)",
+            path,
+        )
+    titles = [_ae_title(c, path, "[receive] calling_ae_titles entry") for c in callers]
+    if len(set(titles)) != len(titles):
+        raise LimenError("[receive] calling_ae_titles lists an AE title twice", path)
+    return ReceiveConfig(
+        inbox=str(inbox.resolve()),
+        calling_ae_titles=tuple(titles),
+        ae_title=_ae_title(t.get("ae_title", "LIMEN_QC"), path, "[receive] ae_title"),
+        port=_number(t.get("port", 11112), path, "[receive] port", 1, 65535, integer=True),
+        bind=_text(t.get("bind", "127.0.0.1"), path, "[receive] bind"),
+        path=str(path),
     )
