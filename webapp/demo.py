@@ -25,8 +25,10 @@ def ensure_user(session, username: str, role: str, password: str | None = None) 
     from webapp.models import User
     from webapp.security import hash_password
 
+    from webapp.accounts import find_user
+
     password = password or secrets.token_urlsafe(9)
-    user = session.execute(select(User).where(User.username == username)).scalars().first()
+    user = find_user(session, username)
     if user is None:
         session.add(User(username=username, password_hash=hash_password(password), role=role))
     else:
