@@ -14,7 +14,7 @@ import csv
 import io
 import re
 
-FORMULA_START = ("=", "+", "-", "@", "\t", "\r")
+FORMULA_START = ("=", "+", "-", "@", "\t", "\r", "\0")  # OWASP's list; ASVS 1.2.10 adds the null character
 _NUMBER = re.compile(r"[+-]?(?:\d+\.?\d*|\.\d+)(?:[eE][+-]?\d+)?")
 
 
