@@ -141,6 +141,10 @@ class LimenRequest(Request):
 
 def _limit_body() -> None:
     """Set this request's body limit from its route and user, and refuse a larger declared length at once."""
+    chunked = "chunked" in request.headers.get("Transfer-Encoding", "").lower()
+    if not chunked and not request.content_length:  # no body (every GET): no need to look at the user
+        request.max_content_length = current_app.config["MAX_FORM_BYTES"]
+        return
     view = current_app.view_functions.get(request.endpoint)
     big = (
         getattr(view, "limen_upload", False)
@@ -152,7 +156,7 @@ def _limit_body() -> None:
     request.max_content_length = limit
     if request.content_length is not None and request.content_length > limit:
         raise RequestEntityTooLarge(message)
-    if request.content_length is None and "chunked" in request.headers.get("Transfer-Encoding", "").lower():
+    if request.content_length is None and chunked:
         # werkzeug cuts a streamed body off at the limit and hands on what came so far; refuse it instead
         request.environ["wsgi.input"] = _BodyCap(request.environ["wsgi.input"], limit, message)
         request.max_content_length = limit + 1
