@@ -17,6 +17,21 @@ from flask import Flask
 
 ENV_DATABASE_URL = "LIMEN_DATABASE_URL"
 ENV_SECRET_KEY = "LIMEN_SECRET_KEY"
+ENV_INSTANCE = "LIMEN_INSTANCE"
+
+
+def default_instance() -> Path:
+    """The instance folder when none is given: ``$LIMEN_INSTANCE``, else ``reader-studies`` in the user's data
+    folder (platformdirs: ``~/.local/share/limen`` on Linux, ``%LOCALAPPDATA%\\limen`` on Windows,
+    ``~/Library/Application Support/limen`` on macOS) — never inside the installed package or a checkout, where
+    an upgrade or a ``git clean`` would take the studies with it."""
+    env = os.environ.get(ENV_INSTANCE)
+    if env:
+        return Path(env)
+    import platformdirs
+
+    return platformdirs.user_data_path("limen", appauthor=False) / "reader-studies"
+
 
 DEFAULTS = {
     "MAX_CONTENT_LENGTH": 512 * 1024 * 1024,  # one upload request (several images), coordinators only
@@ -117,16 +132,15 @@ def create_app(config: dict | None = None) -> Flask:
     Parameters
     ----------
     config : dict, optional
-        Flask settings plus ``DATABASE_URL`` (SQLAlchemy URL), ``INSTANCE_PATH`` (instance folder),
+        Flask settings plus ``DATABASE_URL`` (SQLAlchemy URL), ``INSTANCE_PATH`` (instance folder, default
+        :func:`default_instance`),
         ``STORE_DIR`` (content store, default ``<instance>/store``), ``MAX_IMAGE_BYTES``, ``MAX_FORM_BYTES``,
         ``TRUSTED_PROXIES``, the ``LOGIN_*`` throttle settings, ``ANALYSIS_N_BOOT``, ``IMPORT_ROOT``,
         ``JOB_WORKERS``, ``JOB_HEARTBEAT_S``, ``JOB_STALE_S`` (see ``DEFAULTS``).
     """
     config = dict(config or {})
-    kwargs = {"instance_relative_config": False}
-    if config.get("INSTANCE_PATH"):
-        kwargs["instance_path"] = str(Path(config["INSTANCE_PATH"]).resolve())
-    app = Flask(__name__, **kwargs)
+    instance_path = Path(config.get("INSTANCE_PATH") or default_instance()).expanduser().resolve()
+    app = Flask(__name__, instance_path=str(instance_path), instance_relative_config=False)
     instance = Path(app.instance_path)
     instance.mkdir(parents=True, exist_ok=True)
     app.config.update(DEFAULTS)

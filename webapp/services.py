@@ -213,6 +213,23 @@ def validate_conversion_file(path: Path, label: str):
     return _named(label, path, lambda: load_conversion(path))
 
 
+def stored_file(path_text: str, store_dir: Path) -> Path:
+    """A layout or conversion file the database names by the absolute path it had when it was added.
+
+    The file of that name in the same folder of *this* instance's store comes first (an instance restored from a
+    backup, or moved: the old path may be gone or belong to another instance; stored files are named by their
+    hash, so a same-named file is the same file), then the path itself, then a bundled layout of that name
+    (Limen installed elsewhere).  A file found nowhere is returned as named, for the reader to report."""
+    p = Path(path_text)
+    here = Path(store_dir) / p.parent.name / p.name
+    if here.is_file():
+        return here
+    if p.is_file():
+        return p
+    bundled = bundled_layouts().get(p.name)
+    return Path(bundled) if bundled else p
+
+
 def bundled_layouts() -> dict[str, str]:
     """Layouts shipped with Limen: {file name: path}."""
     from scorer.phantom.layout import PHANTOM_DIR
@@ -309,8 +326,8 @@ def open_study(session, study, store_dir: Path, progress=None) -> list[str]:
         raise LimenError("the study has no images yet; add images before opening it")
     if not study.enrolments:
         raise LimenError("no readers are enrolled; choose at least one reader")
-    layout = load_layout(study.layout_file)
     store_dir = Path(store_dir)
+    layout = load_layout(stored_file(study.layout_file, store_dir))
     groups: dict[tuple, list] = {}
     for im in study.images:
         groups.setdefault((im.conversion_file, im.pixel_spacing_mm), []).append(im)
@@ -318,7 +335,7 @@ def open_study(session, study, store_dir: Path, progress=None) -> list[str]:
     model_frames, sites_by_key, shape_by_image, by_code, placements = [], {}, {}, {}, {}
     n_images, n_scored = len(study.images), 0
     for (conv_file, spacing), images in groups.items():
-        conversion = load_conversion(conv_file) if conv_file else None
+        conversion = load_conversion(stored_file(conv_file, store_dir)) if conv_file else None
         paths = [str(store_dir / im.stored_name) for im in images]
         say(
             f"scoring {len(paths)} image(s) with the {study.observer.upper()} model observer "

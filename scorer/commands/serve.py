@@ -50,7 +50,8 @@ def make_server(app, **kwargs):
     "--instance",
     type=click.Path(file_okay=False),
     default=None,
-    help="Instance folder (database, secret key, image store).",
+    help="Instance folder: database, secret key, image store (default: $LIMEN_INSTANCE, else "
+    "reader-studies in the user's data folder, e.g. ~/.local/share/limen/reader-studies).",
 )
 @click.option("--threads", type=click.IntRange(1, 64), default=8, show_default=True, help="Server threads.")
 @click.option(
@@ -84,6 +85,7 @@ def serve(host, port, db_url, instance, threads, connection_limit, demo, import_
     from webapp import create_app
 
     app = create_app(build_config(db_url, instance, import_root, secure_cookies, trusted_proxies))
+    click.echo(f"instance: {app.instance_path}", err=True)
     click.echo(f"database: {app.config['DATABASE_URL'].split('@')[-1]}", err=True)
     if demo:
         from webapp.demo import create_demo_study

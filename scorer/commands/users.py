@@ -24,7 +24,12 @@ _db_options = [
         default=None,
         help="SQLAlchemy database URL (default: $LIMEN_DATABASE_URL, else SQLite in the instance folder).",
     ),
-    click.option("--instance", type=click.Path(file_okay=False), default=None, help="Instance folder."),
+    click.option(
+        "--instance",
+        type=click.Path(file_okay=False),
+        default=None,
+        help="Instance folder (default: $LIMEN_INSTANCE, else reader-studies in the user's data folder).",
+    ),
 ]
 
 
