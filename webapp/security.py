@@ -1,4 +1,4 @@
-"""Sessions, roles, CSRF, login rate limit, security headers, audit log and error pages.
+"""Sessions, roles, CSRF, request body limits, security headers, audit log and error pages.
 
 * Passwords: werkzeug's salted scrypt hashes (``generate_password_hash``).
 * Sessions: Flask-Login; cookies HttpOnly and SameSite=Lax (Secure behind HTTPS).  The session names the
@@ -21,13 +21,12 @@ from __future__ import annotations
 import functools
 import io
 import json
-
 import tempfile
 
 from flask import Request, abort, current_app, g, jsonify, render_template, request
 from flask_login import LoginManager, current_user
-from werkzeug.exceptions import RequestEntityTooLarge
 from flask_wtf.csrf import CSRFError, CSRFProtect
+from werkzeug.exceptions import RequestEntityTooLarge
 from werkzeug.security import check_password_hash, generate_password_hash
 
 from scorer.errors import LimenError
