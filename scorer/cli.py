@@ -47,7 +47,8 @@ COMMANDS: dict[str, tuple[str, str, str]] = {
     ),
     "baseline": ("baseline", "baseline", "Show, set or clear the baselines the nightly alerts compare with."),
     "serve": ("serve", "serve", "Run the reader-study web app under waitress (add --demo for a ready study)."),
-    "users": ("users", "users", "Add, list, disable or enable web-app accounts; reset passwords."),
+    "users": ("users", "users", "Add, list, disable or enable web-app accounts; reset passwords; end sessions."),
+    "backup": ("backup", "backup", "Back up a web-app instance (database, image store, key) into a new folder."),
 }
 
 

@@ -57,13 +57,33 @@ def atomic_write_chunks(path, chunks, *, mode: int = 0o666) -> Path:
     a secret readable by its owner only from the first byte on.  Crash tests kill the process once the first
     piece is written (``LIMEN_FAULT_INJECT=write:n``)."""
     import os
-    import tempfile
 
     path = Path(path)
+    tmp = write_staged(path.parent, chunks, prefix=f".{path.name}.", mode=mode, target=path)
     try:
-        fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".part", dir=path.parent)
+        os.replace(tmp, path)
     except OSError as exc:
+        discard(tmp)
         raise LimenError(f"cannot write here ({exc.strerror or exc})", path) from None
+    return path
+
+
+def write_staged(folder, chunks, *, prefix: str = ".staged.", suffix: str = "", mode: int = 0o666, target=None):
+    """Write ``chunks`` to a new temporary file ``<prefix>XXXX.part<suffix>`` in ``folder``, flushed to disk, and
+    return its path; the caller gives it its final name (``os.replace``, atomic on POSIX) or :func:`discard` s it.
+    Used where the final name is known only once the data is written and checked (the content store names files
+    by their hash).  Anything that goes wrong (including an exception raised by ``chunks``) removes the file.
+    The name keeps ``suffix`` so a reader that looks at the extension can check the file before it is placed;
+    the ``.part`` in it lets a start-up sweep find temporaries a killed process left."""
+    import os
+    import tempfile
+
+    folder = Path(folder)
+    where = Path(target) if target is not None else folder
+    try:
+        fd, tmp = tempfile.mkstemp(prefix=prefix, suffix=".part" + suffix, dir=folder)
+    except OSError as exc:
+        raise LimenError(f"cannot write here ({exc.strerror or exc})", where) from None
     try:
         os.fchmod(fd, mode & ~_umask())  # mkstemp's 0600 would hide reports from the rest of the team
         with os.fdopen(fd, "wb") as fh:
@@ -73,20 +93,23 @@ def atomic_write_chunks(path, chunks, *, mode: int = 0o666) -> Path:
                 if i == 0:
                     fault_point("write")  # crash tests kill the run here, part-way through a file
             os.fsync(fh.fileno())
-        os.replace(tmp, path)
     except OSError as exc:
-        try:
-            os.unlink(tmp)
-        except OSError:
-            pass
-        raise LimenError(f"cannot write here ({exc.strerror or exc})", path) from None
+        discard(tmp)
+        raise LimenError(f"cannot write here ({exc.strerror or exc})", where) from None
     except BaseException:
-        try:
-            os.unlink(tmp)
-        except OSError:
-            pass
+        discard(tmp)
         raise
-    return path
+    return Path(tmp)
+
+
+def discard(path) -> None:
+    """Remove a file if it is there (a staged temporary that will not be used)."""
+    import os
+
+    try:
+        os.unlink(path)
+    except OSError:
+        pass
 
 
 def sync_folder(path) -> None:

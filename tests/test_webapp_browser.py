@@ -71,10 +71,10 @@ def server(tmp_path):
     if not Path(CHROMIUM).exists():
         pytest.skip(f"{CHROMIUM} not found: install Debian's chromium (.ci/run does) for the browser tests")
     pytest.importorskip("playwright.sync_api", reason="playwright (test extra) not installed")
-    from waitress import create_server
+    from scorer.commands.serve import make_server
 
     app = accounts_app(tmp_path, ("coordinator", "reader1"), ANALYSIS_N_BOOT=20)
-    srv = create_server(app, host="127.0.0.1", port=0, threads=4)
+    srv = make_server(app, host="127.0.0.1", port=0, threads=4)
     th = threading.Thread(target=srv.run, daemon=True)
     th.start()
     yield f"http://127.0.0.1:{srv.effective_port}", app

@@ -59,8 +59,8 @@ def _complete_files(instance: Path) -> list[str]:
 
     names = []
     for p in sorted(instance.rglob("*")):
-        if not p.is_file() or p.name.endswith(".part") or p.name.startswith("limen.db"):
-            continue  # temporaries of the killed write; the database is SQLite's own (transactions, journal)
+        if not p.is_file() or ".part" in p.suffixes or p.name.startswith("limen.db"):
+            continue  # temporaries (.*.part, .*.part.<ext>) of the killed write; the database is SQLite's own
         rel = str(p.relative_to(instance))
         data = p.read_bytes()
         if p.name == "secret_key":
@@ -97,7 +97,7 @@ def test_killed_at_every_write_leaves_only_complete_files(tmp_path):
             break
         assert r.returncode == -signal.SIGKILL, (n, r.returncode, r.stderr[-2000:])
         left = _complete_files(inst)
-        assert len(list(inst.rglob(".*.part"))) <= 1  # the killed file, never under its real name
+        assert len(list(inst.rglob(".*.part*"))) <= 1  # the killed file, never under its real name
         counts.append(len(left))
         last = inst
     assert counts == sorted(counts) and counts[0] == 0 and counts[-1] == len(written) - 1, counts
@@ -251,9 +251,13 @@ def test_stale_temporaries_of_a_killed_server_are_removed_at_start(tmp_path):
     (store / "display" / "study-1").mkdir(parents=True)
     old = store / "display" / "study-1" / ".abc.u16.npy.x1.part"
     fresh = store / ".def.dcm.x2.part"
+    staged = store / ".upload.x3.part.dcm"  # an upload staged under its extension, to be checked before placing
     old.write_bytes(b"half")
     fresh.write_bytes(b"being written")
+    staged.write_bytes(b"half an upload")
     t = old.stat().st_mtime - STALE_TEMPORARY_S - 10
     os.utime(old, (t, t))
+    os.utime(staged, (t, t))
     create_app({"INSTANCE_PATH": str(tmp_path / "inst"), "SECRET_KEY": "k" * 64})
-    assert not old.exists() and fresh.exists()  # a write in progress (younger than an hour) is left alone
+    assert not old.exists() and not staged.exists()
+    assert fresh.exists()  # a write in progress (younger than an hour) is left alone

@@ -42,3 +42,35 @@ def test_study_on_postgresql(tmp_path, postgres_url):
     with app.app_context():
         db().remove()
     app.extensions["limen_engine"].dispose()
+
+
+def test_accounts_sessions_and_sign_in_throttle_on_postgresql(tmp_path, postgres_url):
+    """The new columns and table on PostgreSQL: names unique regardless of case, sessions ended on the server,
+    failed sign-ins counted in the database."""
+    from sqlalchemy.exc import IntegrityError
+
+    from webapp.models import SignInFailure, User
+    from webapp.security import db
+    from webapp_helpers import accounts_app, csrf_from
+
+    app = accounts_app(tmp_path, ("coordinator", "reader1"), DATABASE_URL=postgres_url, LOGIN_FREE_FAILURES=1)
+    with app.app_context():
+        db().add(User(username="READER1", password_hash="x", role="reader"))
+        with pytest.raises(IntegrityError):
+            db().commit()
+        db().rollback()
+    c = app.test_client()
+    tok = login(c, "reader1")
+    copy = app.test_client()
+    copy.set_cookie("session", c.get_cookie("session").value)
+    c.post("/logout", data={"csrf_token": tok})
+    assert copy.get("/reading/").status_code == 302
+    g = app.test_client()
+    tok = csrf_from(g.get("/login").text)
+    codes = [
+        g.post("/login", data={"username": "Reader1", "password": "wrong", "csrf_token": tok}).status_code
+        for _ in range(3)
+    ]
+    assert codes == [401, 401, 429]
+    with app.app_context():
+        assert db().query(SignInFailure).filter_by(name_key="reader1").count() == 2

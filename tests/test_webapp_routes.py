@@ -53,6 +53,7 @@ MATRIX = {
     "coordinator.import_folder": ("POST", COORD),
     "analysis.run": ("POST", COORD),
     "coordinator.open_study": ("POST", COORD),
+    "coordinator.sign_out_everywhere": ("POST", COORD),  # of the "bystander" account, so no visitor is signed out
     "coordinator.close_study": ("POST", COORD),
     "auth.logout": ("POST", SIGNED_IN),
 }
@@ -83,9 +84,16 @@ def study(tmp_path_factory):
     from webapp.models import AnalysisRun
     from webapp.security import db
 
+    from webapp.demo import ensure_user
+    from webapp.models import User
+
     with app.app_context():
         run_id = db().query(AnalysisRun).first().id
-    return app, {"study_id": study_id, "public_id": trial["trial"], "run_id": run_id, "job_id": job["id"]}
+        ensure_user(db(), "bystander", "reader", "bystander-pass")
+        db().commit()
+        user_id = db().query(User).filter_by(username="bystander").one().id
+    ids = {"study_id": study_id, "public_id": trial["trial"], "run_id": run_id, "job_id": job["id"], "user_id": user_id}
+    return app, ids
 
 
 def test_every_route_is_in_the_matrix(study):

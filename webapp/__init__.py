@@ -17,11 +17,34 @@ from flask import Flask
 
 ENV_DATABASE_URL = "LIMEN_DATABASE_URL"
 ENV_SECRET_KEY = "LIMEN_SECRET_KEY"
+ENV_INSTANCE = "LIMEN_INSTANCE"
+
+
+def default_instance() -> Path:
+    """The instance folder when none is given: ``$LIMEN_INSTANCE``, else ``reader-studies`` in the user's data
+    folder (platformdirs: ``~/.local/share/limen`` on Linux, ``%LOCALAPPDATA%\\limen`` on Windows,
+    ``~/Library/Application Support/limen`` on macOS) — never inside the installed package or a checkout, where
+    an upgrade or a ``git clean`` would take the studies with it."""
+    env = os.environ.get(ENV_INSTANCE)
+    if env:
+        return Path(env)
+    import platformdirs
+
+    return platformdirs.user_data_path("limen", appauthor=False) / "reader-studies"
+
 
 DEFAULTS = {
-    "MAX_CONTENT_LENGTH": 512 * 1024 * 1024,  # one upload request (several images)
-    "MAX_IMAGE_BYTES": 128 * 1024 * 1024,  # one image file
-    "LOGIN_RATE_LIMIT": "10 per minute",  # failed logins per (address, user name)
+    "MAX_CONTENT_LENGTH": 512 * 1024 * 1024,  # one upload request (several images), coordinators only
+    "MAX_IMAGE_BYTES": 128 * 1024 * 1024,  # one uploaded file
+    "MAX_FORM_BYTES": 1024 * 1024,  # any other request body (sign-in, forms, a reader's answers)
+    "TRUSTED_PROXIES": 0,  # reverse proxies in front whose X-Forwarded-For/-Proto are believed (werkzeug ProxyFix)
+    # sign-in throttle (webapp.throttle): free failures per (name, client), then a wait doubling from the base
+    "LOGIN_FREE_FAILURES": 5,
+    "LOGIN_BASE_DELAY_S": 1.0,
+    "LOGIN_MAX_DELAY_S": 900.0,
+    "LOGIN_FAILURE_WINDOW_S": 86400.0,
+    "LOGIN_ACCOUNT_ALARM": 20,  # failures on one name from all clients: its address pairs lose the free failures
+    "LOGIN_ADDRESS_ALARM": 50,  # failures from one address over all names: ditto for that address
     "ANALYSIS_N_BOOT": 400,
     "IMPORT_ROOT": None,  # server folder coordinators may import scored folders from
     "JOB_WORKERS": 2,  # background jobs (opening a study, analysis, planning) running at once
@@ -88,11 +111,12 @@ STALE_TEMPORARY_S = 3600.0
 
 
 def _remove_stale_temporaries(store: Path) -> int:
-    """Remove the ``.*.part`` files a killed server left in the content store (never read; only disk space)."""
+    """Remove the temporaries (``.*.part``, ``.*.part.<ext>``) a killed server left in the content store (never
+    read; only disk space)."""
     import time
 
     now, n = time.time(), 0
-    for p in store.rglob(".*.part"):
+    for p in store.rglob(".*.part*"):
         try:
             if now - p.stat().st_mtime > STALE_TEMPORARY_S:
                 p.unlink()
@@ -108,20 +132,28 @@ def create_app(config: dict | None = None) -> Flask:
     Parameters
     ----------
     config : dict, optional
-        Flask settings plus ``DATABASE_URL`` (SQLAlchemy URL), ``INSTANCE_PATH`` (instance folder),
-        ``STORE_DIR`` (content store, default ``<instance>/store``), ``LOGIN_RATE_LIMIT``,
-        ``MAX_IMAGE_BYTES``, ``ANALYSIS_N_BOOT``, ``IMPORT_ROOT``, ``JOB_WORKERS``, ``JOB_HEARTBEAT_S``,
-        ``JOB_STALE_S``.
+        Flask settings plus ``DATABASE_URL`` (SQLAlchemy URL), ``INSTANCE_PATH`` (instance folder, default
+        :func:`default_instance`),
+        ``STORE_DIR`` (content store, default ``<instance>/store``), ``MAX_IMAGE_BYTES``, ``MAX_FORM_BYTES``,
+        ``TRUSTED_PROXIES``, the ``LOGIN_*`` throttle settings, ``ANALYSIS_N_BOOT``, ``IMPORT_ROOT``,
+        ``JOB_WORKERS``, ``JOB_HEARTBEAT_S``, ``JOB_STALE_S`` (see ``DEFAULTS``).
     """
     config = dict(config or {})
-    kwargs = {"instance_relative_config": False}
-    if config.get("INSTANCE_PATH"):
-        kwargs["instance_path"] = str(Path(config["INSTANCE_PATH"]).resolve())
-    app = Flask(__name__, **kwargs)
+    instance_path = Path(config.get("INSTANCE_PATH") or default_instance()).expanduser().resolve()
+    app = Flask(__name__, instance_path=str(instance_path), instance_relative_config=False)
     instance = Path(app.instance_path)
     instance.mkdir(parents=True, exist_ok=True)
     app.config.update(DEFAULTS)
     app.config.update(config)
+    proxies = app.config["TRUSTED_PROXIES"]
+    if not isinstance(proxies, int) or isinstance(proxies, bool) or not 0 <= proxies <= 5:
+        from scorer.errors import LimenError
+
+        raise LimenError(f"TRUSTED_PROXIES must be a whole number from 0 to 5, got {proxies!r}")
+    if proxies:  # the client address and scheme as the trusted proxies saw them; headers of anyone else ignored
+        from werkzeug.middleware.proxy_fix import ProxyFix
+
+        app.wsgi_app = ProxyFix(app.wsgi_app, x_for=proxies, x_proto=proxies)
     if not app.config.get("SECRET_KEY"):
         app.config["SECRET_KEY"] = _secret_key(instance)
     url = app.config.get("DATABASE_URL") or os.environ.get(ENV_DATABASE_URL) or f"sqlite:///{instance / 'limen.db'}"
@@ -156,6 +188,20 @@ def create_app(config: dict | None = None) -> Flask:
     @app.teardown_appcontext
     def _remove_session(_exc=None):
         session_factory.remove()
+
+    @app.after_request
+    def _discard_refused_uploads(resp):
+        """A failed request leaves none of the files it stored (a batch refused for its third file)."""
+        from flask import g
+
+        new = g.pop("limen_new_files", None)
+        if new and resp.status_code >= 400:
+            from webapp.services import discard_unreferenced
+
+            s = session_factory()
+            s.rollback()
+            discard_unreferenced(s, new)
+        return resp
 
     from webapp import analysis, auth, coordinator, job_pages, reading
 

@@ -26,7 +26,8 @@ from sqlalchemy.exc import IntegrityError
 from scorer.errors import LimenError
 from webapp import services
 from webapp.models import AuditEntry, Enrolment, ReadingSession, Response, Study, StudyImage, Trial, User, utcnow
-from webapp.security import study_or_404, audit, db, hash_password, role_required
+from webapp.accounts import check_new_name, end_sessions
+from webapp.security import study_or_404, audit, db, hash_password, role_required, upload
 
 bp = Blueprint("coordinator", __name__, url_prefix="/coordinator")
 coordinator_only = role_required("coordinator")
@@ -52,8 +53,15 @@ def _add_image(
     label = services.safe_label(name)
     suffix = services.check_suffix(name, services.IMAGE_SUFFIXES, "image file")
     store = Path(current_app.config["STORE_DIR"])
-    digest, path = services.store_bytes(stream, suffix, store, current_app.config["MAX_IMAGE_BYTES"], label)
-    services.validate_image_file(path, label, spacing, conversion)
+    stored = services.store_file(
+        stream,
+        suffix,
+        store,
+        current_app.config["MAX_IMAGE_BYTES"],
+        label,
+        check=lambda p: services.validate_image_file(p, label, spacing, conversion),
+    )
+    digest, path = stored.sha256, stored.path
     if digest in known:
         flash(f"{label}: the same image is already in the study; skipped.", "info")
         return None
@@ -102,15 +110,14 @@ def _num(form, key, kind, lo, hi, label, default=None):
 @coordinator_only
 def dashboard():
     studies = db().execute(select(Study).order_by(Study.created_at.desc())).scalars().all()
-    return render_template("coordinator/dashboard.html", studies=studies, readers=_readers())
+    accounts = db().execute(select(User).order_by(User.role, User.username)).scalars().all()
+    return render_template("coordinator/dashboard.html", studies=studies, readers=_readers(), accounts=accounts)
 
 
 @bp.route("/readers", methods=["POST"])
 @coordinator_only
 def add_reader():
-    name = (request.form.get("username") or "").strip()
-    if not name or len(name) > 64 or not all(ch.isalnum() or ch in "._-" for ch in name):
-        raise LimenError("user name: 1–64 letters, digits, '.', '_' or '-'")
+    name = check_new_name(request.form.get("username") or "")
     password = secrets.token_urlsafe(12)
     s = db()
     s.add(User(username=name, password_hash=hash_password(password), role="reader"))
@@ -119,8 +126,22 @@ def add_reader():
         s.commit()
     except IntegrityError:
         s.rollback()
-        raise LimenError(f"user name {name!r} is taken") from None
+        raise LimenError(f"user name {name!r} is taken (names are compared without regard to case)") from None
     flash(f"Reader {name} added. Password (shown once, give it to the reader): {password}", "secret")
+    return redirect(url_for("coordinator.dashboard"))
+
+
+@bp.route("/accounts/<int:user_id>/sign-out", methods=["POST"])
+@coordinator_only
+def sign_out_everywhere(user_id):
+    """End every session of an account (a lost laptop, a shared password): it must sign in again."""
+    user = db().get(User, user_id)
+    if user is None:
+        abort(404)
+    end_sessions(user)
+    audit("sign_out_everywhere", username=user.username)
+    db().commit()
+    flash(f"Every session of {user.username} has ended; the account must sign in again.", "info")
     return redirect(url_for("coordinator.dashboard"))
 
 
@@ -133,6 +154,7 @@ def audit_log():
 
 # --------------------------------------------------------------------------- creating a study
 @bp.route("/studies/new", methods=["GET", "POST"])
+@upload
 @coordinator_only
 def new_study():
     layouts = services.bundled_layouts()
@@ -148,8 +170,15 @@ def new_study():
         if upload and upload.filename:
             label = services.safe_label(upload.filename)
             suffix = services.check_suffix(upload.filename, services.LAYOUT_SUFFIXES, "layout file")
-            _, path = services.store_bytes(upload.stream, suffix, store / "layouts", 1024 * 1024, label)
-            layout = services.validate_layout_file(path, label)
+            stored = services.store_file(
+                upload.stream,
+                suffix,
+                store / "layouts",
+                1024 * 1024,
+                label,
+                check=lambda p: services.validate_layout_file(p, label),
+            )
+            path, layout = stored.path, stored.checked
         else:
             key = f.get("layout") or ""
             if key not in layouts:
@@ -307,6 +336,7 @@ def set_readers(study_id):
 
 
 @bp.route("/studies/<int:study_id>/images", methods=["POST"])
+@upload
 @coordinator_only
 def add_images(study_id):
     st = _draft(study_id)
@@ -317,11 +347,15 @@ def add_images(study_id):
     if conv and conv.filename:
         label = services.safe_label(conv.filename)
         suffix = services.check_suffix(conv.filename, services.LAYOUT_SUFFIXES, "conversion function file")
-        _, path = services.store_bytes(
-            conv.stream, suffix, Path(current_app.config["STORE_DIR"]) / "conversions", 1024 * 1024, label
+        stored = services.store_file(
+            conv.stream,
+            suffix,
+            Path(current_app.config["STORE_DIR"]) / "conversions",
+            1024 * 1024,
+            label,
+            check=lambda p: services.validate_conversion_file(p, label),
         )
-        conversion = services.validate_conversion_file(path, label)
-        conv_path = str(path)
+        conversion, conv_path = stored.checked, str(stored.path)
     files = [fs for fs in request.files.getlist("images") if fs and fs.filename]
     if not files:
         raise LimenError("choose at least one image file (DICOM, TIFF, PNG or .npy)")
@@ -348,11 +382,13 @@ def import_folder(study_id):
         raise LimenError("folder import is switched off (start the server with --import-root DIR)")
     root = Path(root).resolve()
     folder = (root / (request.form.get("folder") or "").strip()).resolve()
-    if root != folder and root not in folder.parents:
+    if not _inside(root, folder):
         raise LimenError("the folder must lie inside the import root")
     results = folder / "results.json"
     if not results.is_file():
         raise LimenError("no results.json here: give a folder written by `limen score --out`", folder.name)
+    if not _inside(root, results.resolve()):
+        raise LimenError("results.json links to a file outside the import root", folder.name)
     detector = _detector_label(request.form)
     try:
         info = json.loads(results.read_text(encoding="utf-8"))
@@ -363,15 +399,22 @@ def import_folder(study_id):
     conv_path, conversion = None, None
     if conv:
         text = json.dumps(conv, sort_keys=True).encode()
-        _, path = services.store_bytes(
-            io.BytesIO(text), ".json", Path(current_app.config["STORE_DIR"]) / "conversions", 1024 * 1024, "conversion"
+        what = f"{folder.name}/results.json conversion"
+        stored = services.store_file(
+            io.BytesIO(text),
+            ".json",
+            Path(current_app.config["STORE_DIR"]) / "conversions",
+            1024 * 1024,
+            "conversion",
+            check=lambda p: services.validate_conversion_file(p, what),
         )
-        conversion = services.validate_conversion_file(path, f"{folder.name}/results.json conversion")
-        conv_path = str(path)
+        conversion, conv_path = stored.checked, str(stored.path)
     known = {im.sha256 for im in st.images}
     added = []
     for p in entries:
-        src = (p if p.is_absolute() else folder / p).resolve()
+        src = (p if p.is_absolute() else folder / p).resolve()  # symbolic links and '..' followed
+        if not _inside(root, src):
+            raise LimenError(f"image {p.name} listed in results.json lies outside the import root", folder.name)
         if not src.is_file():
             raise LimenError(f"image {p.name} listed in results.json is missing", folder.name)
         with open(src, "rb") as fh:
@@ -382,6 +425,11 @@ def import_folder(study_id):
     db().commit()
     flash(f"Imported {len(added)} image(s) from {folder.name}.", "info")
     return redirect(url_for("coordinator.study", study_id=st.id))
+
+
+def _inside(root: Path, path: Path) -> bool:
+    """Whether a resolved path is the (resolved) import root or lies below it."""
+    return path == root or root in path.parents
 
 
 def _open_study_work(store_dir: Path):
@@ -454,7 +502,12 @@ def close_study(study_id):
 
 
 def _csv(text: str, name: str) -> FlaskResponse:
-    return FlaskResponse(text, mimetype="text/csv", headers={"Content-Disposition": f'attachment; filename="{name}"'})
+    """A CSV download; cells that a spreadsheet would run as formulas are neutralised (webapp.csv_safety)."""
+    from webapp.csv_safety import neutralise_csv
+
+    return FlaskResponse(
+        neutralise_csv(text), mimetype="text/csv", headers={"Content-Disposition": f'attachment; filename="{name}"'}
+    )
 
 
 @bp.route("/studies/<int:study_id>/responses.csv")

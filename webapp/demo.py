@@ -21,18 +21,23 @@ DETECTORS = {"direct": "HSX-SE-0417 (direct, MAM2)", "indirect": "HSX-CS-2291 (i
 
 
 def ensure_user(session, username: str, role: str, password: str | None = None) -> str:
-    """Create (or reset the password of) an account; return the password."""
+    """Create (or reset the password of, ending its sessions) an account; return the password."""
     from webapp.models import User
     from webapp.security import hash_password
 
+    from webapp.accounts import find_user
+
     password = password or secrets.token_urlsafe(9)
-    user = session.execute(select(User).where(User.username == username)).scalars().first()
+    user = find_user(session, username)
     if user is None:
         session.add(User(username=username, password_hash=hash_password(password), role=role))
     else:
+        from webapp.accounts import end_sessions
+
         user.password_hash = hash_password(password)
         user.role = role
         user.active = True
+        end_sessions(user)  # a new password ends the sessions signed in with the old one
     session.flush()
     return password
 

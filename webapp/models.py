@@ -4,7 +4,8 @@ SQLite in the instance folder by default; any SQLAlchemy URL otherwise (PostgreS
 
 Integrity rules the database itself enforces (not only the code):
 
-* one account per user name;
+* one account per user name, regardless of case and Unicode form (``users.username_key``, see
+  :mod:`webapp.accounts`);
 * a reader is enrolled in a study at most once;
 * one trial per (study, reader, position in the reader's sequence);
 * **one response per trial** (``responses.trial_id`` is unique): a response submitted twice, or from
@@ -30,7 +31,15 @@ from sqlalchemy import (
     create_engine,
     event,
 )
-from sqlalchemy.orm import DeclarativeBase, Mapped, mapped_column, relationship, scoped_session, sessionmaker
+from sqlalchemy.orm import (
+    DeclarativeBase,
+    Mapped,
+    mapped_column,
+    relationship,
+    scoped_session,
+    sessionmaker,
+    validates,
+)
 
 ROLES = ("coordinator", "reader")
 STUDY_STATES = ("draft", "open", "closed")
@@ -49,10 +58,22 @@ class User(Base):
 
     id: Mapped[int] = mapped_column(primary_key=True)
     username: Mapped[str] = mapped_column(String(64), unique=True, index=True)
+    # NFKC + case fold of the name (webapp.accounts.name_key), set with the name: unique, so "dup" and "DUP"
+    # cannot both exist; nullable only in databases upgraded from a release without it (see create_schema)
+    username_key: Mapped[str | None] = mapped_column(String(64), unique=True, index=True)
     password_hash: Mapped[str] = mapped_column(String(255))
     role: Mapped[str] = mapped_column(String(16))
     active: Mapped[bool] = mapped_column(Boolean, default=True)
     created_at: Mapped[_dt.datetime] = mapped_column(DateTime, default=utcnow)
+    # raised by sign-out, a new password, disabling and "sign out everywhere": older session cookies stop working
+    session_generation: Mapped[int] = mapped_column(Integer, default=0, server_default="0")
+
+    @validates("username")
+    def _set_key(self, _field, name):
+        from webapp.accounts import name_key
+
+        self.username_key = name_key(name)
+        return name
 
     # Flask-Login protocol
     @property
@@ -68,7 +89,9 @@ class User(Base):
         return False
 
     def get_id(self) -> str:
-        return str(self.id)
+        from webapp.accounts import session_id
+
+        return session_id(self)
 
 
 class Study(Base):
@@ -248,6 +271,28 @@ class AnalysisRun(Base):
     analysis_json: Mapped[str] = mapped_column(Text)
 
 
+class SignInFailure(Base):
+    """One failed sign-in, kept while it counts for the throttle (:mod:`webapp.throttle`).
+
+    ``name_key`` is the typed name's key (an account's, or a name no account has); ``client`` is what the
+    attempt is charged to: ``"addr:<address>"``, or ``"dev:<id>"`` for a browser holding a device cookie for
+    that name.  Rows older than the throttle's window are deleted.
+    """
+
+    __tablename__ = "sign_in_failures"
+    __table_args__ = (
+        Index("ix_sign_in_failures_pair", "name_key", "client", "at"),
+        Index("ix_sign_in_failures_name", "name_key", "at"),
+        Index("ix_sign_in_failures_address", "address", "at"),
+    )
+
+    id: Mapped[int] = mapped_column(primary_key=True)
+    at: Mapped[_dt.datetime] = mapped_column(DateTime, default=utcnow, index=True)
+    name_key: Mapped[str] = mapped_column(String(80))
+    client: Mapped[str] = mapped_column(String(80))
+    address: Mapped[str] = mapped_column(String(64))
+
+
 JOB_STATES = ("queued", "running", "done", "failed")
 
 
@@ -322,9 +367,41 @@ def create_schema(engine) -> None:
         with engine.connect() as conn:
             conn.exec_driver_sql("BEGIN IMMEDIATE")
             Base.metadata.create_all(conn)
+            _add_missing_columns(conn)
             conn.commit()
         return
     with engine.begin() as conn:
         if engine.dialect.name == "postgresql":
             conn.execute(text("SELECT pg_advisory_xact_lock(6177002)"))
         Base.metadata.create_all(conn)
+        _add_missing_columns(conn)
+
+
+def _add_missing_columns(conn) -> None:
+    """Add the columns of ``users`` that databases made by an earlier release lack (``create_all`` adds missing
+    tables, never columns): ``session_generation`` (0) and ``username_key`` (filled from the names, with its
+    unique index).  Of accounts whose names differ only by case, the oldest keeps the name; the others get no
+    key, so they can no longer sign in (a warning names them).  Schema migrations proper are to come (Alembic)."""
+    import logging
+
+    from sqlalchemy import inspect
+
+    from webapp.accounts import name_key
+
+    cols = {c["name"] for c in inspect(conn).get_columns("users")}
+    if "session_generation" not in cols:
+        conn.execute(text("ALTER TABLE users ADD COLUMN session_generation INTEGER NOT NULL DEFAULT 0"))
+    if "username_key" in cols:
+        return
+    conn.execute(text("ALTER TABLE users ADD COLUMN username_key VARCHAR(64)"))
+    owner: dict[str, str] = {}
+    for uid, name in conn.execute(text("SELECT id, username FROM users ORDER BY id")).all():
+        key = name_key(name)
+        if key in owner:
+            logging.getLogger("limen").warning(
+                "account %r differs from %r only by case: it can no longer sign in", name, owner[key]
+            )
+            continue
+        owner[key] = name
+        conn.execute(text("UPDATE users SET username_key = :k WHERE id = :i"), {"k": key, "i": uid})
+    conn.execute(text("CREATE UNIQUE INDEX ix_users_username_key ON users (username_key)"))

@@ -1,10 +1,15 @@
-"""Sessions, roles, CSRF, login rate limit, security headers, audit log and error pages.
+"""Sessions, roles, CSRF, request body limits, security headers, audit log and error pages.
 
 * Passwords: werkzeug's salted scrypt hashes (``generate_password_hash``).
-* Sessions: Flask-Login; cookies HttpOnly and SameSite=Lax (Secure behind HTTPS).
+* Sessions: Flask-Login; cookies HttpOnly and SameSite=Lax (Secure behind HTTPS).  The session names the
+  account and its session generation (:mod:`webapp.accounts`): the user loader refuses a session of an older
+  generation, so sign-out, a new password, disabling and "sign out everywhere" end sessions on the server.
 * CSRF: Flask-WTF's ``CSRFProtect`` on every POST (forms carry a hidden token, the viewer's fetch calls
   send it in the ``X-CSRFToken`` header).
-* Login attempts: Flask-Limiter, counting failed logins per (client address, user name).
+* Sign-in attempts: throttled per name, client and address (:mod:`webapp.throttle`).
+* Request bodies: refused (413) from their declared length before anything reads them; at most
+  ``MAX_FORM_BYTES`` except on upload routes for a coordinator (``MAX_CONTENT_LENGTH``); a chunked body is cut
+  off at the same limit; each uploaded file is spooled with ``MAX_IMAGE_BYTES`` applied while it arrives.
 * Every route declares its role with :func:`role_required`; a reader reaching another reader's trial
   or a study they are not enrolled in gets 404, a reader on a coordinator page 403.
 * Headers: ``X-Content-Type-Options: nosniff``, ``X-Frame-Options: DENY`` and a Content-Security-Policy with
@@ -14,13 +19,14 @@
 from __future__ import annotations
 
 import functools
+import io
 import json
+import tempfile
 
-from flask import abort, current_app, g, jsonify, render_template, request
-from flask_limiter import Limiter
-from flask_limiter.util import get_remote_address
+from flask import Request, abort, current_app, g, jsonify, render_template, request
 from flask_login import LoginManager, current_user
 from flask_wtf.csrf import CSRFError, CSRFProtect
+from werkzeug.exceptions import RequestEntityTooLarge
 from werkzeug.security import check_password_hash, generate_password_hash
 
 from scorer.errors import LimenError
@@ -99,13 +105,86 @@ def audit(action: str, study_id: int | None = None, *, by: int | None = None, **
     )
 
 
-def _login_key() -> str:
-    return f"{get_remote_address()}|{(request.form.get('username') or '').strip().lower()}"
+def upload(view):
+    """Mark a view as taking uploads: its requests may reach ``MAX_CONTENT_LENGTH`` (for its own roles only)."""
+    view.limen_upload = True
+    return view
+
+
+def _size(n: int) -> str:
+    return f"{n / (1024 * 1024):g} MB" if n >= 1024 * 1024 else f"{n / 1024:g} kB"
+
+
+class _CappedSpool(tempfile.SpooledTemporaryFile):
+    """Where the form parser writes one uploaded file: in memory up to 500 kB, then a temporary file; refused
+    (413 naming the file) the moment it passes the per-file limit, before the rest arrives."""
+
+    def __init__(self, limit: int, label: str):
+        super().__init__(max_size=500 * 1024)
+        self._limit, self._label, self._n = limit, label, 0
+
+    def write(self, data):
+        self._n += len(data)
+        if self._n > self._limit:
+            self.close()
+            raise RequestEntityTooLarge(f"{self._label}: file is larger than the limit of {_size(self._limit)}")
+        return super().write(data)
+
+
+class LimenRequest(Request):
+    def _get_file_stream(self, total_content_length, content_type, filename=None, content_length=None):
+        from webapp.services import safe_label
+
+        return _CappedSpool(current_app.config["MAX_IMAGE_BYTES"], safe_label(filename))
+
+
+def _limit_body() -> None:
+    """Set this request's body limit from its route and user, and refuse a larger declared length at once."""
+    chunked = "chunked" in request.headers.get("Transfer-Encoding", "").lower()
+    if not chunked and not request.content_length:  # no body (every GET): no need to look at the user
+        request.max_content_length = current_app.config["MAX_FORM_BYTES"]
+        return
+    view = current_app.view_functions.get(request.endpoint)
+    big = (
+        getattr(view, "limen_upload", False)
+        and current_user.is_authenticated
+        and current_user.role in getattr(view, "limen_roles", ())
+    )
+    limit = current_app.config["MAX_CONTENT_LENGTH"] if big else current_app.config["MAX_FORM_BYTES"]
+    message = f"This request is larger than the {_size(limit)} this page accepts."
+    request.max_content_length = limit
+    if request.content_length is not None and request.content_length > limit:
+        raise RequestEntityTooLarge(message)
+    if request.content_length is None and chunked:
+        # werkzeug cuts a streamed body off at the limit and hands on what came so far; refuse it instead
+        request.environ["wsgi.input"] = _BodyCap(request.environ["wsgi.input"], limit, message)
+        request.max_content_length = limit + 1
+
+
+class _BodyCap(io.RawIOBase):
+    """A chunked request body that raises 413 once more than ``limit`` bytes have arrived."""
+
+    def __init__(self, stream, limit: int, message: str):
+        self._stream, self._limit, self._message, self._n = stream, limit, message, 0
+
+    def readable(self):
+        return True
+
+    def readinto(self, buf):
+        data = self._stream.read(len(buf))
+        self._n += len(data)
+        if self._n > self._limit:
+            raise RequestEntityTooLarge(self._message)
+        buf[: len(data)] = data
+        return len(data)
 
 
 def init_security(app) -> None:
+    from webapp.accounts import parse_session_id
     from webapp.models import User
 
+    app.request_class = LimenRequest
+    app.before_request(_limit_body)  # before CSRFProtect's hook, the first to read the body
     csrf.init_app(app)
 
     login = LoginManager()
@@ -116,12 +195,14 @@ def init_security(app) -> None:
     app.extensions["limen_login"] = login
 
     @login.user_loader
-    def _load(uid):
-        try:
-            user = db().get(User, int(uid))
-        except (TypeError, ValueError):
+    def _load(raw):
+        ids = parse_session_id(raw)
+        if ids is None:
             return None
-        return user if user is not None and user.active else None
+        user = db().get(User, ids[0])
+        if user is None or not user.active or int(user.session_generation or 0) != ids[1]:
+            return None  # disabled, or the session was ended (sign-out, new password, sign out everywhere)
+        return user
 
     @login.unauthorized_handler
     def _unauthorized():
@@ -130,21 +211,6 @@ def init_security(app) -> None:
         from flask import redirect, url_for
 
         return redirect(url_for("auth.login", next=request.full_path if request.query_string else request.path))
-
-    # one limiter per app, so apps built side by side (tests) keep separate counts
-    limiter = Limiter(
-        key_func=get_remote_address, app=app, storage_uri="memory://", enabled=app.config.get("RATELIMIT_ENABLED", True)
-    )
-    app.extensions["limen_limiter"] = limiter
-    view = app.view_functions["auth.login"]
-    limited = limiter.limit(
-        lambda: app.config["LOGIN_RATE_LIMIT"],
-        key_func=_login_key,
-        methods=["POST"],
-        deduct_when=lambda response: response.status_code != 302,
-    )(view)
-    limited.limen_roles = getattr(view, "limen_roles", ("anonymous",))
-    app.view_functions["auth.login"] = limited
 
     @app.after_request
     def _headers(resp):
@@ -183,12 +249,10 @@ def init_security(app) -> None:
 
     @app.errorhandler(413)
     def _too_large(exc):
-        limit = app.config["MAX_CONTENT_LENGTH"] // (1024 * 1024)
-        return _page(413, "Upload too large", f"An upload may hold at most {limit} MB in total.")
-
-    @app.errorhandler(429)
-    def _too_many(exc):
-        return _page(429, "Too many attempts", "Too many failed sign-ins; wait a minute and try again.")
+        said = exc.description if isinstance(exc, RequestEntityTooLarge) else None
+        if not said or said == RequestEntityTooLarge.description:
+            said = f"This request is larger than the {_size(request.max_content_length or 0)} this page accepts."
+        return _page(413, "Too large", said)
 
     @app.context_processor
     def _globals():

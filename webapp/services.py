@@ -18,6 +18,7 @@ import secrets
 import threading
 import warnings
 from collections import OrderedDict
+from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
@@ -49,17 +50,40 @@ def safe_label(name: str | None) -> str:
 STORE_CHUNK_BYTES = 1 << 20
 
 
+@dataclass(frozen=True)
+class Stored:
+    """A file in the content store: its hash, path, whether this call put it there, and the check's result."""
+
+    sha256: str
+    path: Path
+    new: bool
+    checked: object = None
+
+
 def store_bytes(stream, suffix: str, store_dir: Path, max_bytes: int, label: str) -> tuple[str, Path]:
-    """Copy an upload into the content store as ``<sha256><suffix>``; return (sha256, path).
+    """:func:`store_file` without a check; return (sha256, path)."""
+    out = store_file(stream, suffix, store_dir, max_bytes, label)
+    return out.sha256, out.path
+
+
+def store_file(stream, suffix: str, store_dir: Path, max_bytes: int, label: str, check=None) -> Stored:
+    """Copy an upload into the content store as ``<sha256><suffix>``, placed only if ``check`` accepts it.
 
     The client's file name is never used for the stored path, only its (checked) extension.  The stream is
-    read once to hash and size it, then (from the start again) written with
-    :func:`scorer.files.atomic_write_chunks`: a server killed mid-copy leaves no stored file, never a truncated
-    one under a hash it does not match.  A stream whose content changes between the two readings (a file
-    being rewritten during a folder import) is refused.  A stream that cannot seek is held in memory (at most
-    ``max_bytes``).
+    read once to hash and size it, then (from the start again) written under a temporary name
+    (:func:`scorer.files.write_staged`); ``check(temporary path)`` — reading it as an image, a layout… — runs
+    on those bytes, and only then is the file renamed to its hash.  So a refused file (too large, empty, not
+    an image) leaves nothing in the store, and a server killed mid-copy leaves no file under a hash it does not
+    match.  A stream whose content changes between the two readings (a file being rewritten during a folder
+    import) is refused.  A stream that cannot seek is held in memory (at most ``max_bytes``).  When the store
+    already holds the hash, ``check`` runs on the stored file and nothing is written.
+
+    Inside a request, files this call placed are listed in ``flask.g.limen_new_files``: the request's end
+    removes them again if the request failed and no committed row refers to them (:func:`discard_unreferenced`).
     """
-    from scorer.files import atomic_write_chunks
+    import os
+
+    from scorer.files import discard, write_staged
 
     store_dir.mkdir(parents=True, exist_ok=True)
     try:
@@ -80,12 +104,51 @@ def store_bytes(stream, suffix: str, store_dir: Path, max_bytes: int, label: str
         raise LimenError("file is empty", label)
     digest = h.hexdigest()
     final = store_dir / f"{digest}{suffix}"
-    if not final.exists():
-        if start is not None:
-            stream.seek(start)
-            held = _reread(stream, size, digest, label)
-        atomic_write_chunks(final, held, mode=0o600)
-    return digest, final
+    if final.exists():
+        return Stored(digest, final, False, check(final) if check else None)
+    if start is not None:
+        stream.seek(start)
+        held = _reread(stream, size, digest, label)
+    tmp = write_staged(store_dir, held, prefix=".upload.", suffix=suffix, mode=0o600, target=final)
+    try:
+        checked = check(tmp) if check else None
+        os.replace(tmp, final)
+    except BaseException:
+        discard(tmp)
+        raise
+    _note_new_file(final)
+    return Stored(digest, final, True, checked)
+
+
+def _note_new_file(path: Path) -> None:
+    from flask import g, has_request_context
+
+    if has_request_context():
+        g.setdefault("limen_new_files", []).append(path)
+
+
+def discard_unreferenced(session, paths) -> list[Path]:
+    """Remove store files that no study refers to (as image, layout or conversion function); return them.
+
+    Called at the end of a failed request on the files it placed, after its transaction is rolled back, so an
+    upload refused after some of its files were stored (a later file of the batch was bad) leaves nothing."""
+    from sqlalchemy import or_, select
+
+    from scorer.files import discard
+    from webapp.models import Study, StudyImage
+
+    gone = []
+    for p in paths:
+        used = (
+            session.execute(
+                select(StudyImage.id).where(or_(StudyImage.stored_name == p.name, StudyImage.conversion_file == str(p)))
+            ).first()
+            or session.execute(select(Study.id).where(Study.layout_file == str(p))).first()
+        )
+        if not used:
+            discard(p)
+            gone.append(p)
+    return gone
 
 
 def _reread(stream, size: int, digest: str, label: str):
@@ -147,6 +210,23 @@ def validate_conversion_file(path: Path, label: str):
     from scorer.workflow import load_conversion
 
     return _named(label, path, lambda: load_conversion(path))
+
+
+def stored_file(path_text: str, store_dir: Path) -> Path:
+    """A layout or conversion file the database names by the absolute path it had when it was added.
+
+    The file of that name in the same folder of *this* instance's store comes first (an instance restored from a
+    backup, or moved: the old path may be gone or belong to another instance; stored files are named by their
+    hash, so a same-named file is the same file), then the path itself, then a bundled layout of that name
+    (Limen installed elsewhere).  A file found nowhere is returned as named, for the reader to report."""
+    p = Path(path_text)
+    here = Path(store_dir) / p.parent.name / p.name
+    if here.is_file():
+        return here
+    if p.is_file():
+        return p
+    bundled = bundled_layouts().get(p.name)
+    return Path(bundled) if bundled else p
 
 
 def bundled_layouts() -> dict[str, str]:
@@ -243,8 +323,8 @@ def open_study(session, study, store_dir: Path, progress=None) -> list[str]:
         raise LimenError("the study has no images yet; add images before opening it")
     if not study.enrolments:
         raise LimenError("no readers are enrolled; choose at least one reader")
-    layout = load_layout(study.layout_file)
     store_dir = Path(store_dir)
+    layout = load_layout(stored_file(study.layout_file, store_dir))
     groups: dict[tuple, list] = {}
     for im in study.images:
         groups.setdefault((im.conversion_file, im.pixel_spacing_mm), []).append(im)
@@ -252,7 +332,7 @@ def open_study(session, study, store_dir: Path, progress=None) -> list[str]:
     model_frames, sites_by_key, shape_by_image, by_code, placements = [], {}, {}, {}, {}
     n_images, n_scored = len(study.images), 0
     for (conv_file, spacing), images in groups.items():
-        conversion = load_conversion(conv_file) if conv_file else None
+        conversion = load_conversion(stored_file(conv_file, store_dir)) if conv_file else None
         paths = [str(store_dir / im.stored_name) for im in images]
         say(
             f"scoring {len(paths)} image(s) with the {study.observer.upper()} model observer "

@@ -7,8 +7,10 @@ import sys
 import click
 
 
-def build_config(db_url, instance, import_root=None, secure_cookies=False) -> dict:
+def build_config(db_url, instance, import_root=None, secure_cookies=False, trusted_proxies=0) -> dict:
     config = {}
+    if trusted_proxies:
+        config["TRUSTED_PROXIES"] = int(trusted_proxies)
     if db_url:
         config["DATABASE_URL"] = db_url
     if instance:
@@ -18,6 +20,15 @@ def build_config(db_url, instance, import_root=None, secure_cookies=False) -> di
     if secure_cookies:
         config.update(SESSION_COOKIE_SECURE=True, REMEMBER_COOKIE_SECURE=True)
     return config
+
+
+def make_server(app, **kwargs):
+    """A waitress server for ``app``.  Waitress receives a whole request body before the app sees it, so its own
+    limit is set to the app's largest (``MAX_CONTENT_LENGTH``): a longer declared body is refused with 413 from
+    its headers, without reading it, and a chunked one is cut off there."""
+    from waitress import create_server
+
+    return create_server(app, max_request_body_size=int(app.config["MAX_CONTENT_LENGTH"]) + 1, ident="limen", **kwargs)
 
 
 @click.command("serve")
@@ -39,7 +50,8 @@ def build_config(db_url, instance, import_root=None, secure_cookies=False) -> di
     "--instance",
     type=click.Path(file_okay=False),
     default=None,
-    help="Instance folder (database, secret key, image store).",
+    help="Instance folder: database, secret key, image store (default: $LIMEN_INSTANCE, else "
+    "reader-studies in the user's data folder, e.g. ~/.local/share/limen/reader-studies).",
 )
 @click.option("--threads", type=click.IntRange(1, 64), default=8, show_default=True, help="Server threads.")
 @click.option(
@@ -57,16 +69,23 @@ def build_config(db_url, instance, import_root=None, secure_cookies=False) -> di
     help="Server folder whose `limen score --out` folders coordinators may import.",
 )
 @click.option("--secure-cookies", is_flag=True, help="Send cookies over HTTPS only (behind a TLS proxy).")
-def serve(host, port, db_url, instance, threads, connection_limit, demo, import_root, secure_cookies):
+@click.option(
+    "--trusted-proxies",
+    type=click.IntRange(0, 5),
+    default=0,
+    show_default=True,
+    help="Reverse proxies in front of the server whose X-Forwarded-For/-Proto headers are believed "
+    "(1 for one nginx or Apache in front; 0: the socket's peer is the client).",
+)
+def serve(host, port, db_url, instance, threads, connection_limit, demo, import_root, secure_cookies, trusted_proxies):
     """Run the reader-study web app (coordinators set up studies, readers read in their browser).
 
     Results support, and never replace, a qualified medical physicist's judgement.
     """
-    from waitress import create_server
-
     from webapp import create_app
 
-    app = create_app(build_config(db_url, instance, import_root, secure_cookies))
+    app = create_app(build_config(db_url, instance, import_root, secure_cookies, trusted_proxies))
+    click.echo(f"instance: {app.instance_path}", err=True)
     click.echo(f"database: {app.config['DATABASE_URL'].split('@')[-1]}", err=True)
     if demo:
         from webapp.demo import create_demo_study
@@ -76,7 +95,7 @@ def serve(host, port, db_url, instance, threads, connection_limit, demo, import_
         click.echo("demo accounts (passwords shown once):")
         for name, pw in out["credentials"].items():
             click.echo(f"  {name:<12} {pw}")
-    server = create_server(app, host=host, port=port, threads=threads, connection_limit=connection_limit, ident="limen")
+    server = make_server(app, host=host, port=port, threads=threads, connection_limit=connection_limit)
     click.echo(f"Limen reader studies on http://{server.effective_host}:{server.effective_port}/ (Ctrl-C to stop)")
     if demo:
         click.echo("sign in as 'coordinator' to follow the study, or as reader1 to read.")

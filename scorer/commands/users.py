@@ -24,7 +24,12 @@ _db_options = [
         default=None,
         help="SQLAlchemy database URL (default: $LIMEN_DATABASE_URL, else SQLite in the instance folder).",
     ),
-    click.option("--instance", type=click.Path(file_okay=False), default=None, help="Instance folder."),
+    click.option(
+        "--instance",
+        type=click.Path(file_okay=False),
+        default=None,
+        help="Instance folder (default: $LIMEN_INSTANCE, else reader-studies in the user's data folder).",
+    ),
 ]
 
 
@@ -49,7 +54,7 @@ def _new_password(generate: bool, prompt: str) -> str:
 
 @click.group("users")
 def users():
-    """Add, list, disable, enable the web app's accounts and reset passwords."""
+    """Add, list, disable, enable the web app's accounts, reset passwords and end sessions."""
 
 
 @users.command("add")
@@ -64,8 +69,9 @@ def add(name, role, generate, db_url, instance):
     from webapp.models import AuditEntry, User
     from webapp.security import db, hash_password
 
-    if not name or len(name) > 64 or not all(ch.isalnum() or ch in "._-" for ch in name):
-        raise LimenError(f"user name {name!r}: use 1–64 letters, digits, '.', '_' or '-'")
+    from webapp.accounts import check_new_name
+
+    name = check_new_name(name)
     password = _new_password(generate, "password")
     app = _app(db_url, instance)
     with app.app_context():
@@ -82,10 +88,21 @@ def add(name, role, generate, db_url, instance):
             s.commit()
         except IntegrityError:
             s.rollback()
-            raise LimenError(f"user name {name!r} is taken") from None
+            raise LimenError(f"user name {name!r} is taken (names are compared without regard to case)") from None
     click.echo(f"added {role} {name}")
     if generate:
         click.echo(f"password (shown once): {password}")
+
+
+@users.command("sign-out")
+@click.argument("name")
+@_with_db
+def sign_out(name, db_url, instance):
+    """End every session of account NAME at its next request (it signs in again with its password)."""
+    from webapp.accounts import end_sessions
+
+    _change(name, db_url, instance, "sign_out_everywhere", {"via": "limen users sign-out"}, end_sessions)
+    click.echo(f"every session of {name} has ended")
 
 
 @users.command("list")
@@ -105,19 +122,18 @@ def list_users(db_url, instance):
 
 def _change(name, db_url, instance, action: str, detail: dict, change) -> None:
     """Apply ``change(user)`` to account NAME in one transaction with an audit entry; unknown NAME is an error."""
-    from sqlalchemy import select
-
-    from webapp.models import AuditEntry, User
+    from webapp.accounts import find_user, shown_name
+    from webapp.models import AuditEntry
     from webapp.security import db
 
     app = _app(db_url, instance)
     with app.app_context():
         s = db()
-        user = s.execute(select(User).where(User.username == name)).scalars().first()
+        user = find_user(s, name)
         if user is None:
-            raise LimenError(f"no account named {name!r} (see 'limen users list')")
+            raise LimenError(f"no account named {shown_name(name)!r} (see 'limen users list')")
         change(user)
-        s.add(AuditEntry(user_id=None, action=action, detail=json.dumps({"username": name, **detail})))
+        s.add(AuditEntry(user_id=None, action=action, detail=json.dumps({"username": user.username, **detail})))
         s.commit()
 
 
@@ -125,13 +141,17 @@ def _change(name, db_url, instance, action: str, detail: dict, change) -> None:
 @click.argument("name")
 @_with_db
 def disable(name, db_url, instance):
-    """Disable account NAME: it can no longer sign in, and a signed-in session ends at its next request.
+    """Disable account NAME: it can no longer sign in, and its sessions end at their next request.
 
     Its reads and the studies it coordinated stay as they are (nothing is deleted).
     """
-    _change(
-        name, db_url, instance, "disable_user", {"via": "limen users disable"}, lambda u: setattr(u, "active", False)
-    )
+    from webapp.accounts import end_sessions
+
+    def change(user):
+        user.active = False
+        end_sessions(user)
+
+    _change(name, db_url, instance, "disable_user", {"via": "limen users disable"}, change)
     click.echo(f"disabled {name}")
 
 
@@ -149,19 +169,18 @@ def enable(name, db_url, instance):
 @click.option("--generate", is_flag=True, help="Generate a password and show it once instead of prompting.")
 @_with_db
 def password(name, generate, db_url, instance):
-    """Set a new password for account NAME (prompted, or generated with --generate)."""
+    """Set a new password for account NAME (prompted, or generated with --generate); its sessions end."""
+    from webapp.accounts import end_sessions
     from webapp.security import hash_password
 
     new = _new_password(generate, "new password")
     hashed = hash_password(new)
-    _change(
-        name,
-        db_url,
-        instance,
-        "reset_password",
-        {"via": "limen users password"},
-        lambda u: setattr(u, "password_hash", hashed),
-    )
+
+    def change(user):
+        user.password_hash = hashed
+        end_sessions(user)
+
+    _change(name, db_url, instance, "reset_password", {"via": "limen users password"}, change)
     click.echo(f"new password set for {name}")
     if generate:
         click.echo(f"password (shown once): {new}")
