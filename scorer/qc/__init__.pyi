@@ -7,6 +7,14 @@ from . import mail as mail
 from . import nightly as nightly
 from . import scale as scale
 from . import store as store
+from . import tables as tables
+from . import engine as engine
+from . import schema as schema
+from . import intake as intake
+from . import claims as claims
+from . import results as results
+from . import baselines as baselines
+from . import queries as queries
 from . import simulated as simulated
 
 from .config import (
@@ -15,12 +23,9 @@ from .config import (
     load_config as load_config,
     default_config as default_config,
 )
-from .store import (
-    Store as Store,
-    open_store as open_store,
-    default_db_url as default_db_url,
-    SCHEMA_VERSION as SCHEMA_VERSION,
-)
+from .store import Store as Store, open_store as open_store
+from .engine import default_db_url as default_db_url
+from .schema import SCHEMA_VERSION as SCHEMA_VERSION
 from .control import (
     Alert as Alert,
     compute_baseline as compute_baseline,
@@ -41,6 +46,14 @@ __all__ = [
     "nightly",
     "scale",
     "store",
+    "tables",
+    "engine",
+    "schema",
+    "intake",
+    "claims",
+    "results",
+    "baselines",
+    "queries",
     "simulated",
     "NightlyConfig",
     "DetectorConfig",
