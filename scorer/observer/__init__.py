@@ -1,8 +1,10 @@
 """The model observer and what follows from its responses: thresholds, limits, verdicts.
 
 Modules: ``npw`` (NPW/NPWE responses, M-AFC decisions), ``eye`` (eye filter), ``mafc`` (Pc(d′) for
-M-AFC), ``psychometric`` (ML fits, bootstrap helpers), ``threshold`` (d′ and count methods →
-ThresholdCurve), ``limits`` (limits files, verdicts), ``scoring`` (score_images: the main job).
+M-AFC), ``mafc_fast`` (tabulated Pc_M, batch fits of k), ``psychometric`` (ML fits),
+``psychometric_bootstrap`` (threshold with a bootstrap CI), ``bootstrap`` (resampling weights,
+percentile intervals), ``threshold`` (d′ and count methods → ThresholdCurve), ``limits`` (limits
+files, verdicts), ``scoring`` (score_images: the main job).
 
 May import: ``scorer.phantom``, ``scorer.images`` and the base modules.
 """

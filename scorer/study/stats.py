@@ -44,19 +44,10 @@ from scipy import stats as sps
 from scorer.errors import LimenError
 from scorer.observer.mafc import halfway_criterion
 from scorer.resources import check_limit
-from scorer.observer.psychometric import (
-    _dprime_for,
-    bootstrap_threshold,
-    bootstrap_weights,
-    expanded_percentile_ci,
-    dpc_mafc_fast,
-    dprime_for_pc_fast,
-    fit_k_batch,
-    fit_psychometric,
-    pc_mafc_fast,
-    percentile_ci,
-    unit_counts,
-)
+from scorer.observer.bootstrap import bootstrap_weights, expanded_percentile_ci, percentile_ci, unit_counts
+from scorer.observer.mafc_fast import _dprime_for, dpc_mafc_fast, dprime_for_pc_fast, fit_k_batch, pc_mafc_fast
+from scorer.observer.psychometric import fit_psychometric
+from scorer.observer.psychometric_bootstrap import bootstrap_threshold
 from scorer.study.reader_model import TRIAL_COLUMNS
 
 OPTIONAL_COLUMNS = ["response_ms", "session", "repeat", "n_alternatives"]
