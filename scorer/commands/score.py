@@ -16,8 +16,7 @@ from scorer.invocation import current_command
 from scorer.phantom import load_layout
 from scorer.observer import load_limits, resolve_human_factor
 from scorer.observer import SystemBlur
-from scorer.phantom import draw_overlay
-from scorer.reports import CAUTION, dumps
+from scorer.reports import CAUTION, draw_overlay, dumps
 from scorer.reports.score import METHOD_LABEL, write_score_outputs
 from scorer.observer import score_images
 
