@@ -19,7 +19,7 @@ LIMEN_MAX_BOOTSTRAP_CELLS      20000000   bootstrap cells held at once: resample
                                           estimates; about 20 bytes per cell measured, 400 MB at the
                                           limit; see scorer.study.analysis.bootstrap_block).  The fits'
                                           likelihood grid is evaluated in chunks of bounded size
-                                          (about 30 MB, scorer.observer.psychometric.GRID_CHUNK_CELLS)
+                                          (about 30 MB, scorer.observer.mafc_fast.GRID_CHUNK_CELLS)
                                           and is not counted
 =============================  =========  ==========================================================
 """

@@ -126,7 +126,8 @@ def check_database(url, expected_sessions: int, images_per_session=None):
     """Every image in exactly one scored session, no claim left, complete thresholds and responses per session."""
     from sqlalchemy import func, select
 
-    from scorer.qc.store import ImageRow, ResponseRow, SessionRow, ThresholdRow, open_store
+    from scorer.qc import open_store
+    from scorer.qc.tables import ImageRow, ResponseRow, SessionRow, ThresholdRow
 
     store = open_store(url)
     try:
@@ -177,7 +178,8 @@ def assert_stored_like_direct(url, detector, session_date, direct) -> None:
     from sqlalchemy import select
 
     from scorer.images.loading import image_content_hash
-    from scorer.qc.store import ImageRow, ResponseRow, SessionRow, open_store
+    from scorer.qc import open_store
+    from scorer.qc.tables import ImageRow, ResponseRow, SessionRow
 
     cols = ["target", "site", "diameter_mm", "contrast", "is_signal", "response", "row_px", "col_px"]
     store = open_store(url)

@@ -117,6 +117,35 @@ def test_the_check_catches_an_upward_import(tmp_path, monkeypatch):
     assert any("study/reads_files.py:1" in v for v in found)  # workflow sits above study
 
 
+def _drawing_below_reports() -> list[str]:
+    out = []
+    for path in sorted(SCORER.rglob("*.py")):
+        if RANK.get(_unit(_module_name(path)), 0) >= RANK["reports"]:
+            continue
+        out += [
+            f"{path.relative_to(SCORER.parent)}:{line} imports {target}"
+            for line, target in _imports(path)
+            if target.split(".")[0] == "matplotlib"
+        ]
+    return out
+
+
+def test_only_reports_and_above_draw():
+    # the computing packages (registration, scoring, detector, study, qc) stay pure: figures live in scorer/reports
+    assert _drawing_below_reports() == []
+
+
+def test_the_drawing_check_catches_matplotlib_in_a_low_layer(tmp_path, monkeypatch):
+    fake = tmp_path / "scorer"
+    (fake / "phantom").mkdir(parents=True)
+    (fake / "phantom" / "draws.py").write_text("def f():\n    from matplotlib.figure import Figure\n")
+    (fake / "reports").mkdir()
+    (fake / "reports" / "fine.py").write_text("import matplotlib\n")
+    monkeypatch.setattr(__import__(__name__), "SCORER", fake)
+    found = _drawing_below_reports()
+    assert found and all(v.startswith("scorer/phantom/draws.py:2 imports matplotlib.figure") for v in found)
+
+
 @pytest.mark.parametrize("package", ["images", "phantom", "observer", "detector", "study", "workflow", "qc", "reports"])
 def test_every_public_name_is_importable(package):
     import importlib

@@ -12,16 +12,10 @@ from scipy import stats
 
 from scorer.errors import LimenError
 from scorer.observer import dprime_for_pc, halfway_criterion, pc_mafc
-from scorer.observer.psychometric import (
-    bootstrap_threshold,
-    bootstrap_weights,
-    fit_k_batch,
-    fit_psychometric,
-    pc_mafc_fast,
-    percentile_ci,
-    stratified_weights,
-    unit_counts,
-)
+from scorer.observer.bootstrap import bootstrap_weights, percentile_ci, stratified_weights, unit_counts
+from scorer.observer.mafc_fast import fit_k_batch, pc_mafc_fast
+from scorer.observer.psychometric import fit_psychometric
+from scorer.observer.psychometric_bootstrap import bootstrap_threshold
 
 M = 4
 TRUE_CT = 0.02
@@ -108,7 +102,7 @@ def test_batch_fit_in_chunks_equals_one_batch(monkeypatch):
     # must give the same estimates to the last bit as one batch (common practice: a chunked computation is
     # checked against the unchunked one).  Rows: 4-image resamples (some far enough from the centre to be
     # refitted on the full grid), an all-correct row and an all-wrong row (estimates at the search bounds).
-    import scorer.observer.psychometric as psy
+    import scorer.observer.mafc_fast as psy
 
     rng = np.random.default_rng(8)
     ys = np.stack([simulate_images(rng, 4).sum(axis=0) for _ in range(60)] + [np.full(LEVELS.size, 4)])

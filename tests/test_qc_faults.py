@@ -183,7 +183,7 @@ def test_claims_are_compare_and_set(tmp_path):
     gone.wait()
     from sqlalchemy import update
 
-    from scorer.qc.store import SessionRow
+    from scorer.qc.tables import SessionRow
 
     with store.transaction() as s:  # the holder was a process of this host that has ended
         s.execute(update(SessionRow).values(claim_pid=gone.pid))

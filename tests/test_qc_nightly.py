@@ -28,8 +28,7 @@ from qc_helpers import (
 from scorer.cli import main
 from scorer.images import load_conversion
 from scorer.workflow import score_files
-from scorer.qc import load_config, open_store, run_nightly
-from scorer.qc.store import SCHEMA_VERSION
+from scorer.qc import SCHEMA_VERSION, load_config, open_store, run_nightly
 
 
 def _nightly(args):
@@ -163,7 +162,7 @@ def test_schema_version_recorded_and_newer_schema_refused(tmp_path):
     from sqlalchemy import update
 
     from scorer.errors import LimenError
-    from scorer.qc.store import MetaRow
+    from scorer.qc.tables import MetaRow
 
     url = f"sqlite:///{tmp_path / 'v.sqlite'}"
     store = open_store(url)

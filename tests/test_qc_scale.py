@@ -24,7 +24,7 @@ def inbox(tmp_path_factory):
 def _responses(url):
     from sqlalchemy import select
 
-    from scorer.qc.store import ImageRow, ResponseRow
+    from scorer.qc.tables import ImageRow, ResponseRow
 
     store = open_store(url)
     with store.transaction() as s:

@@ -10,7 +10,8 @@ import pytest
 from scorer.errors import LimenError
 from scorer.images import Image, ImageMetadata
 from scorer.phantom import Target, load_layout
-from scorer.phantom import Placement, RegistrationError, draw_overlay, fit_similarity, register
+from scorer.phantom import Placement, RegistrationError, fit_similarity, register
+from scorer.reports import draw_overlay
 from scorer.detector.simulator import (
     Pose,
     _phantom_field_shape,

@@ -16,7 +16,8 @@ import pytest
 from scorer.study.agreement import cohen_kappa_table, fleiss_kappa_items, inter_reader_agreement, intra_reader_agreement
 from scorer.errors import LimenError
 from scorer.observer import dprime_for_pc
-from scorer.observer.psychometric import pc_mafc_fast, unit_counts
+from scorer.observer.bootstrap import unit_counts
+from scorer.observer.mafc_fast import pc_mafc_fast
 from scorer.study.reader_model import ReaderPopulation, model_threshold, simulate_reader_study
 from scorer.reports import dumps
 from scorer.study.analysis import analyse_study
@@ -457,7 +458,7 @@ def test_analyse_study_is_the_same_to_the_last_bit_with_the_fits_in_chunks(monke
     # row is its own ML problem, so a whole study analysed with small chunks must equal the same study with every
     # batch in one chunk, number for number (JSON floats are written round-trip exact; common practice: a chunked
     # computation is checked against the unchunked one).
-    import scorer.observer.psychometric as psy
+    import scorer.observer.mafc_fast as psy
 
     st = small_study(seed=6, n_repeats=1, n_contrasts=8)
     calls = []
@@ -488,7 +489,7 @@ def test_bootstrap_block_predicts_the_peak_memory_of_analyse_study():
     # 8 levels: 60 MB for 1000 resamples of this study, 600 MB for 10 000 (now 29 and 38 MB).
     import tracemalloc
 
-    from scorer.observer.psychometric import GRID_CHUNK_CELLS
+    from scorer.observer.mafc_fast import GRID_CHUNK_CELLS
     from scorer.study.analysis import bootstrap_block
 
     st = small_study(seed=5, n_repeats=1, n_contrasts=8)

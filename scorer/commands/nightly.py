@@ -95,8 +95,7 @@ def nightly(
 
     Exit status: 0 all well, 1 an alert was raised, 2 bad input, usage or database error.
     """
-    from scorer.qc import open_store, run_nightly
-    from scorer.qc.store import default_db_url
+    from scorer.qc import default_db_url, open_store, run_nightly
 
     if workers and dask_address:
         raise LimenError("give either --workers or --dask, not both")

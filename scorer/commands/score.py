@@ -12,8 +12,7 @@ from tqdm import tqdm
 from scorer.commands import options
 from scorer.files import OutputFolder
 from scorer.invocation import current_command
-from scorer.phantom import draw_overlay
-from scorer.reports import CAUTION, dumps
+from scorer.reports import CAUTION, draw_overlay, dumps
 from scorer.reports.score import METHOD_LABEL, write_score_outputs
 from scorer.workflow import load_conversion, load_layout, load_limits, load_mtf, resolve_human_factor, score_files
 

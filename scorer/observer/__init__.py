@@ -1,8 +1,10 @@
 """The model observer and what follows from its responses: thresholds, limits, verdicts.
 
 Modules: ``npw`` (NPW/NPWE responses, M-AFC decisions), ``eye`` (eye filter), ``mafc`` (Pc(d′) for
-M-AFC), ``psychometric`` (ML fits, bootstrap helpers), ``threshold`` (d′ and count methods →
-ThresholdCurve), ``limits`` (limits, verdicts), ``scoring`` (score_images: the main job on Image objects).
+M-AFC), ``mafc_fast`` (tabulated Pc_M, batch fits of k), ``psychometric`` (ML fits),
+``psychometric_bootstrap`` (threshold with a bootstrap CI), ``bootstrap`` (resampling weights,
+percentile intervals), ``threshold`` (d′ and count methods → ThresholdCurve), ``limits`` (limits
+(limits, verdicts), ``scoring`` (score_images: the main job on Image objects).
 
 Data in, data out: nothing here reads a file (``scorer.workflow`` reads image, limits, MTF and
 human/model factor files and calls these functions; tests/test_layering.py keeps it so).

@@ -2,9 +2,12 @@
 
 from . import eye as eye
 from . import limits as limits
+from . import bootstrap as bootstrap
 from . import mafc as mafc
+from . import mafc_fast as mafc_fast
 from . import npw as npw
 from . import psychometric as psychometric
+from . import psychometric_bootstrap as psychometric_bootstrap
 from . import scoring as scoring
 from . import threshold as threshold
 
@@ -39,9 +42,12 @@ from .scoring import ScoreResult as ScoreResult, score_images as score_images
 __all__ = [
     "eye",
     "limits",
+    "bootstrap",
     "mafc",
+    "mafc_fast",
     "npw",
     "psychometric",
+    "psychometric_bootstrap",
     "scoring",
     "threshold",
     "ObserverConfig",

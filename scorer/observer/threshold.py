@@ -61,7 +61,8 @@ from scorer.errors import LimenError
 from scorer.observer.mafc import dprime_for_pc, halfway_criterion
 from scipy import stats
 
-from scorer.observer.psychometric import bootstrap_threshold, enclose_estimate, expanded_percentile_ci, unit_counts
+from scorer.observer.bootstrap import enclose_estimate, expanded_percentile_ci, unit_counts
+from scorer.observer.psychometric_bootstrap import bootstrap_threshold
 
 METHODS = ("dprime", "count")
 LOCAL_FIT_FACTOR = None  # None: fit d′ = k·C on every target (the NPW/NPWE observers are linear)

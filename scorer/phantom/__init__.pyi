@@ -19,7 +19,6 @@ from .registration import (
     Placement as Placement,
     RegistrationError as RegistrationError,
     register as register,
-    draw_overlay as draw_overlay,
     fit_similarity as fit_similarity,
 )
 
@@ -40,6 +39,5 @@ __all__ = [
     "Placement",
     "RegistrationError",
     "register",
-    "draw_overlay",
     "fit_similarity",
 ]

@@ -8,6 +8,14 @@ from . import nightly as nightly
 from . import scale as scale
 from . import receiver as receiver
 from . import store as store
+from . import tables as tables
+from . import engine as engine
+from . import schema as schema
+from . import intake as intake
+from . import claims as claims
+from . import results as results
+from . import baselines as baselines
+from . import queries as queries
 from . import simulated as simulated
 
 from .config import (
@@ -18,12 +26,9 @@ from .config import (
     ReceiveConfig as ReceiveConfig,
     load_receive_config as load_receive_config,
 )
-from .store import (
-    Store as Store,
-    open_store as open_store,
-    default_db_url as default_db_url,
-    SCHEMA_VERSION as SCHEMA_VERSION,
-)
+from .store import Store as Store, open_store as open_store
+from .engine import default_db_url as default_db_url
+from .schema import SCHEMA_VERSION as SCHEMA_VERSION
 from .control import (
     Alert as Alert,
     compute_baseline as compute_baseline,
@@ -45,6 +50,14 @@ __all__ = [
     "scale",
     "receiver",
     "store",
+    "tables",
+    "engine",
+    "schema",
+    "intake",
+    "claims",
+    "results",
+    "baselines",
+    "queries",
     "simulated",
     "NightlyConfig",
     "DetectorConfig",

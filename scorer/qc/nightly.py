@@ -18,7 +18,9 @@ from scorer.qc.config import NightlyConfig, default_config
 from scorer.qc.faults import fault_point
 from scorer.qc.inbox import InboxImage, examine, list_files, quarantine_file
 from scorer.qc.scale import SessionJob, make_runner
-from scorer.qc.store import DEFAULT_LEASE_S, Store, default_db_url, open_store
+from scorer.qc.claims import DEFAULT_LEASE_S
+from scorer.qc.engine import default_db_url, display_url
+from scorer.qc.store import Store, open_store
 
 
 @dataclass
@@ -99,7 +101,7 @@ def run_nightly(
     own_store = store is None
     store = store or open_store(db_url or default_db_url(inbox.resolve().parent))
     qdir = Path(quarantine_dir) if quarantine_dir else inbox / "quarantine"
-    result = NightlyResult(db=_display(store.url))
+    result = NightlyResult(db=display_url(store.url))
     tm = _Timer()
     try:
         # the runner starts first: a process pool's workers start and import while the inbox is scanned, and
@@ -131,12 +133,6 @@ def run_nightly(
     tm.add("wall_s", time.perf_counter() - t_start)
     result.timings = {k: round(v, 4) for k, v in tm.t.items()}
     return result
-
-
-def _display(url: str) -> str:
-    from scorer.qc.store import _display as d
-
-    return d(url)
 
 
 # --------------------------------------------------------------------------- scan

@@ -1,8 +1,8 @@
 """Reports: results → self-contained HTML pages with plots, JSON and CSV.
 
-Modules: ``html`` (page frame with the caution, SVG figures, tables, JSON helpers), ``score``
-(``limen score``), ``detector`` (``limen detector``, ``limen compare-detectors``), ``study``
-(``limen analyse``).
+Modules: ``html`` (page frame with the caution, SVG figures, tables, JSON helpers), ``overlay``
+(registration overlay PNG), ``score`` (``limen score``), ``detector`` (``limen detector``,
+``limen compare-detectors``), ``study`` (``limen analyse``).
 
 May import: every computing package below it (images, phantom, observer, detector, study, qc);
 computes nothing itself.

@@ -2,6 +2,7 @@
 
 from . import detector as detector
 from . import html as html
+from . import overlay as overlay
 from . import score as score
 from . import study as study
 
@@ -13,6 +14,7 @@ from .html import (
     write_json as write_json,
     dumps as dumps,
 )
+from .overlay import draw_overlay as draw_overlay
 from .score import write_score_outputs as write_score_outputs
 from .detector import detector_report_html as detector_report_html, compare_report_html as compare_report_html
 from .study import write_outputs as write_outputs
@@ -20,6 +22,7 @@ from .study import write_outputs as write_outputs
 __all__ = [
     "detector",
     "html",
+    "overlay",
     "score",
     "study",
     "CAUTION",
@@ -28,6 +31,7 @@ __all__ = [
     "table_html",
     "write_json",
     "dumps",
+    "draw_overlay",
     "write_score_outputs",
     "detector_report_html",
     "compare_report_html",

@@ -308,9 +308,9 @@ def write_trend_report(
 
 
 def store_display(store) -> str:
-    from scorer.qc.store import _display
+    from scorer.qc.engine import display_url
 
-    return _display(store.url)
+    return display_url(store.url)
 
 
 def _main_method(dframe, sessions, det) -> str:

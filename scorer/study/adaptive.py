@@ -65,7 +65,8 @@ import numpy as np
 
 from scorer.errors import LimenError
 from scorer.observer.mafc import halfway_criterion
-from scorer.observer.psychometric import LAPSE_MAX, _dprime_for, dpc_mafc_fast, pc_mafc_fast
+from scorer.observer.mafc_fast import _dprime_for, dpc_mafc_fast, pc_mafc_fast
+from scorer.observer.psychometric import LAPSE_MAX
 
 METHODS = ("psi", "quest", "constant")
 STATE_FORMAT = "limen-adaptive/1"

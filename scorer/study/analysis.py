@@ -132,8 +132,8 @@ def bootstrap_block(trials: pd.DataFrame, model: pd.DataFrame | None, by: str) -
     pairs, plus those stored estimates.  Each cell costs about 20 bytes measured with tracemalloc (correct and
     trial counts, and their floating-point copies for the fit; tests/test_stats.py).
 
-    The likelihood grid of the fits is not counted: :func:`~scorer.observer.psychometric.fit_k_batch` evaluates
-    it in chunks of at most :data:`~scorer.observer.psychometric.GRID_CHUNK_CELLS` cells (about 30 MB)
+    The likelihood grid of the fits is not counted: :func:`~scorer.observer.mafc_fast.fit_k_batch` evaluates
+    it in chunks of at most :data:`~scorer.observer.mafc_fast.GRID_CHUNK_CELLS` cells (about 30 MB)
     whatever the number of resamples.
     """
     best, where = 0, ""

@@ -18,7 +18,8 @@ import pandas as pd
 from scipy import stats as sps
 
 from scorer.errors import LimenError
-from scorer.observer.psychometric import bootstrap_weights, fit_k_batch
+from scorer.observer.bootstrap import bootstrap_weights
+from scorer.observer.mafc_fast import fit_k_batch
 from scorer.study.alternatives import m_at
 from scorer.study.counts import counts_cube
 from scorer.study.wording import comparison_sentence

@@ -12,7 +12,8 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 
-from scorer.observer.psychometric import _dprime_for, bootstrap_weights, fit_k_batch, percentile_ci
+from scorer.observer.bootstrap import bootstrap_weights, percentile_ci
+from scorer.observer.mafc_fast import _dprime_for, fit_k_batch
 from scorer.study.alternatives import criterion_at, m_at
 from scorer.study.counts import counts_cube
 

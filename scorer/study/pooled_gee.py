@@ -21,14 +21,8 @@ import numpy as np
 import pandas as pd
 from scipy import stats as sps
 
-from scorer.observer.psychometric import (
-    _dprime_for,
-    dpc_mafc_fast,
-    dprime_for_pc_fast,
-    fit_k_batch,
-    pc_mafc_fast,
-    unit_counts,
-)
+from scorer.observer.bootstrap import unit_counts
+from scorer.observer.mafc_fast import _dprime_for, dpc_mafc_fast, dprime_for_pc_fast, fit_k_batch, pc_mafc_fast
 from scorer.study.alternatives import criterion_at, m_at
 from scorer.study.counts import counts_cube
 

@@ -36,7 +36,7 @@ import pandas as pd
 from scipy import stats as sps
 
 from scorer.errors import LimenError
-from scorer.observer.psychometric import _dprime_for, pc_mafc_fast
+from scorer.observer.mafc_fast import _dprime_for, pc_mafc_fast
 from scorer.study.adaptive import DEFAULT_LAPSE, _choose, _logsumexp, _prob, _quantiles, new_state
 
 

@@ -12,12 +12,9 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 
-from scorer.observer.psychometric import (
-    bootstrap_threshold,
-    expanded_percentile_ci,
-    fit_psychometric,
-    unit_counts,
-)
+from scorer.observer.bootstrap import expanded_percentile_ci, unit_counts
+from scorer.observer.psychometric import fit_psychometric
+from scorer.observer.psychometric_bootstrap import bootstrap_threshold
 from scorer.study.alternatives import criterion_at, m_at
 
 

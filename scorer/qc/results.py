@@ -1,0 +1,147 @@
+"""Writing a scored session to the nightly database in one transaction.
+
+The transaction first moves the session from ``claimed`` to ``scored`` *with the same token*,
+so a run that lost its claim writes nothing; then thresholds, responses, registrations, the
+automatic baseline (once there are enough sessions) and the alerts.
+"""
+
+from __future__ import annotations
+
+import json
+
+from sqlalchemy import bindparam, insert, select, text, update
+
+from scorer.errors import LimenError
+from scorer.qc.claims import ClaimTaken
+from scorer.qc.engine import display_url
+from scorer.qc.queries import thresholds_in
+from scorer.qc.tables import AlertRow, ImageRow, ResponseRow, SessionRow, ThresholdRow, utcnow
+
+
+def dumps(obj) -> str:
+    return json.dumps(obj, default=str)
+
+
+def _finite(v):
+    try:
+        v = float(v)
+    except (TypeError, ValueError):
+        return None
+    return v if v == v and v not in (float("inf"), float("-inf")) else None
+
+
+class ResultOps:
+    """Store operation writing a scored session (mixed into :class:`Store`)."""
+
+    def write_session(self, outcome, det, rules) -> list | None:
+        """Write a scored session in one transaction: thresholds, responses, registrations, baseline, alerts.
+
+        Returns the alerts raised, or None when the claim was lost (nothing written).
+        """
+        from scorer.qc.control import compute_baseline, evaluate_session
+        from scorer.qc.faults import fault_point
+
+        try:
+            with self.transaction() as s:
+                row = s.get(SessionRow, outcome.session_id, with_for_update=not self.is_sqlite)
+                if row is None or row.state != "claimed" or row.claim_token != outcome.token:
+                    raise ClaimTaken()
+                if self.engine.dialect.name == "postgresql":  # one writer per detector: baselines stay unique
+                    s.execute(text("SELECT pg_advisory_xact_lock(hashtext(:d))"), {"d": row.detector})
+                now = utcnow()
+                row.state, row.scored_at, row.claim_expires = "scored", now, None
+                row.observer, row.verdict_method = outcome.observer, outcome.verdict_method
+                row.overall_verdict = outcome.overall_verdict
+                row.settings, row.warnings = dumps(outcome.settings), dumps(outcome.warnings)
+                row.scoring_s = float(outcome.scoring_s)
+                ids = dict(s.execute(select(ImageRow.sha256, ImageRow.id).where(ImageRow.session_id == row.id)).all())
+                if set(ids) != {im["sha256"] for im in outcome.images}:
+                    raise LimenError(
+                        f"session {row.id}: scored images differ from the claimed ones", display_url(self.url)
+                    )
+                s.connection().execute(
+                    update(ImageRow.__table__).where(ImageRow.__table__.c.id == bindparam("image_pk")),
+                    [
+                        {
+                            "image_pk": ids[im["sha256"]],
+                            "registration": dumps(im["registration"]),
+                            "blur_sigma_px": float(im["blur_sigma_px"]),
+                            "n_correct": int(im["n_correct"]),
+                            "n_trials": int(im["n_trials"]),
+                        }
+                        for im in outcome.images
+                    ],
+                )
+                verdicts = {round(v["diameter_mm"], 6): v for v in (outcome.verdicts or [])}
+                rows = []
+                for p in outcome.thresholds:
+                    v = verdicts.get(round(p["diameter_mm"], 6)) if p["method"] == outcome.verdict_method else None
+                    rows.append(
+                        {
+                            "session_id": row.id,
+                            "method": p["method"],
+                            "observer": p["observer"],
+                            "diameter_mm": float(p["diameter_mm"]),
+                            "threshold_contrast": _finite(p["threshold_contrast"]),
+                            "ci_low": _finite(p["ci_low"]),
+                            "ci_high": _finite(p["ci_high"]),
+                            "n_images": int(p["n_images"]),
+                            "m_alternatives": int(p["m_alternatives"]),
+                            "criterion_pc": _finite(p["criterion_pc"]),
+                            "note": p.get("note") or "",
+                            "compared_contrast": None if v is None else _finite(v["threshold_contrast"]),
+                            "acceptable": None if v is None else _finite(v["acceptable"]),
+                            "verdict": None if v is None else v["verdict"],
+                        }
+                    )
+                s.execute(insert(ThresholdRow), rows)
+                r = outcome.responses
+                image_ids = [ids[h] for h in r["image"].tolist()]
+                n = len(image_ids)
+                self._insert_many(
+                    s,
+                    ResponseRow.__table__,
+                    {
+                        "session_id": [row.id] * n,
+                        "image_id": image_ids,
+                        "target": [str(t) for t in r["target"].tolist()],
+                        "diameter_mm": r["diameter_mm"].astype(float).tolist(),
+                        "contrast": r["contrast"].astype(float).tolist(),
+                        "site": r["site"].astype(int).tolist(),
+                        "is_signal": r["is_signal"].astype(bool).tolist(),
+                        "response": r["response"].astype(float).tolist(),
+                        "row_px": r["row_px"].astype(float).tolist(),
+                        "col_px": r["col_px"].astype(float).tolist(),
+                    },
+                )
+                fault_point("mid-write")
+                s.flush()
+                alerts = []
+                for method in dict.fromkeys(p["method"] for p in outcome.thresholds):
+                    hist = thresholds_in(s, row.detector, method)
+                    bl = self._baseline_in(s, row.detector, method)
+                    if bl is None:
+                        bl = self._auto_baseline(s, row.detector, method, hist, det.baseline_sessions, compute_baseline)
+                    if method != outcome.verdict_method:
+                        continue
+                    frame, last, bids = (None, None, set()) if bl is None else bl[:3]
+                    alerts = evaluate_session(row.detector, row.id, hist, frame, last, bids, rules)
+                    for a in alerts:
+                        s.add(
+                            AlertRow(
+                                session_id=row.id,
+                                detector=a.detector,
+                                session_date=a.session_date,
+                                method=a.method,
+                                diameter_mm=a.diameter_mm,
+                                rule=a.rule,
+                                direction=a.direction,
+                                value=a.value,
+                                reference=a.reference,
+                                message=a.message,
+                                created_at=now,
+                            )
+                        )
+                return alerts
+        except ClaimTaken:
+            return None
