@@ -47,13 +47,18 @@ MATRIX = {
     "reading.next_trial": ("GET", STUDY_READER),
     "reading.region": ("GET", TRIAL_OWNER),
     "reading.respond": ("POST", TRIAL_OWNER),
-    "coordinator.add_reader": ("POST", COORD),
+    "accounts.page": ("GET", COORD),
+    "accounts.confirm_reset": ("GET", COORD),
+    "accounts.add": ("POST", COORD),
+    "accounts.enable": ("POST", COORD),
+    "accounts.reset_password": ("POST", COORD),  # without confirm=yes: sent to the confirmation page
     "coordinator.set_readers": ("POST", COORD),
     "coordinator.add_images": ("POST", COORD),
     "coordinator.import_folder": ("POST", COORD),
     "analysis.run": ("POST", COORD),
     "coordinator.open_study": ("POST", COORD),
-    "coordinator.sign_out_everywhere": ("POST", COORD),  # of the "bystander" account, so no visitor is signed out
+    "accounts.sign_out_everywhere": ("POST", COORD),  # of the "bystander" account, so no visitor is signed out
+    "accounts.disable": ("POST", COORD),  # the bystander again
     "coordinator.close_study": ("POST", COORD),
     "auth.logout": ("POST", SIGNED_IN),
 }

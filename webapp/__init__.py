@@ -203,10 +203,11 @@ def create_app(config: dict | None = None) -> Flask:
             discard_unreferenced(s, new)
         return resp
 
-    from webapp import analysis, auth, coordinator, job_pages, reading
+    from webapp import account_pages, analysis, auth, coordinator, job_pages, reading
 
     app.register_blueprint(auth.bp)
     app.register_blueprint(coordinator.bp)
+    app.register_blueprint(account_pages.bp)
     app.register_blueprint(reading.bp)
     app.register_blueprint(analysis.bp)
     app.register_blueprint(job_pages.bp)

@@ -1,5 +1,5 @@
-"""Coordinator pages: studies (create, add images, enrol readers, open, close), progress, export, accounts,
-audit log."""
+"""Coordinator pages: studies (create, add images, enrol readers, open, close), progress, export, audit log
+(accounts: :mod:`webapp.account_pages`; reopening and deleting: :mod:`webapp.corrections`)."""
 
 from __future__ import annotations
 
@@ -21,13 +21,11 @@ from flask import (
     url_for,
 )
 from sqlalchemy import func, select
-from sqlalchemy.exc import IntegrityError
 
 from scorer.errors import LimenError
 from webapp import services
 from webapp.models import AuditEntry, Enrolment, ReadingSession, Response, Study, StudyImage, Trial, User, utcnow
-from webapp.accounts import check_new_name, end_sessions
-from webapp.security import study_or_404, audit, db, hash_password, role_required, upload
+from webapp.security import study_or_404, audit, db, role_required, upload
 
 bp = Blueprint("coordinator", __name__, url_prefix="/coordinator")
 coordinator_only = role_required("coordinator")
@@ -105,44 +103,12 @@ def _num(form, key, kind, lo, hi, label, default=None):
     return v
 
 
-# --------------------------------------------------------------------------- dashboard and accounts
+# --------------------------------------------------------------------------- dashboard and audit log
 @bp.route("/")
 @coordinator_only
 def dashboard():
     studies = db().execute(select(Study).order_by(Study.created_at.desc())).scalars().all()
-    accounts = db().execute(select(User).order_by(User.role, User.username)).scalars().all()
-    return render_template("coordinator/dashboard.html", studies=studies, readers=_readers(), accounts=accounts)
-
-
-@bp.route("/readers", methods=["POST"])
-@coordinator_only
-def add_reader():
-    name = check_new_name(request.form.get("username") or "")
-    password = secrets.token_urlsafe(12)
-    s = db()
-    s.add(User(username=name, password_hash=hash_password(password), role="reader"))
-    audit("add_reader", username=name)
-    try:
-        s.commit()
-    except IntegrityError:
-        s.rollback()
-        raise LimenError(f"user name {name!r} is taken (names are compared without regard to case)") from None
-    flash(f"Reader {name} added. Password (shown once, give it to the reader): {password}", "secret")
-    return redirect(url_for("coordinator.dashboard"))
-
-
-@bp.route("/accounts/<int:user_id>/sign-out", methods=["POST"])
-@coordinator_only
-def sign_out_everywhere(user_id):
-    """End every session of an account (a lost laptop, a shared password): it must sign in again."""
-    user = db().get(User, user_id)
-    if user is None:
-        abort(404)
-    end_sessions(user)
-    audit("sign_out_everywhere", username=user.username)
-    db().commit()
-    flash(f"Every session of {user.username} has ended; the account must sign in again.", "info")
-    return redirect(url_for("coordinator.dashboard"))
+    return render_template("coordinator/dashboard.html", studies=studies, readers=_readers())
 
 
 @bp.route("/audit")
