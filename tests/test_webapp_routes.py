@@ -31,6 +31,7 @@ MATRIX = {
     "coordinator.audit_log": ("GET", COORD),
     "coordinator.new_study": ("GET", COORD),
     "coordinator.study": ("GET", COORD),
+    "coordinator.reader": ("GET", COORD),
     "coordinator.export_responses": ("GET", COORD),
     "coordinator.export_model": ("GET", COORD),
     "analysis.page": ("GET", COORD),
@@ -59,7 +60,13 @@ MATRIX = {
     "coordinator.open_study": ("POST", COORD),
     "accounts.sign_out_everywhere": ("POST", COORD),  # of the "bystander" account, so no visitor is signed out
     "accounts.disable": ("POST", COORD),  # the bystander again
+    "corrections.confirm_reopen": ("GET", COORD),
+    "corrections.confirm_delete_study": ("GET", COORD),  # the study is open: refused on its page (400)
+    "corrections.confirm_delete_image": ("GET", COORD),
+    "corrections.delete_image": ("POST", COORD),  # without confirm=yes: sent to the confirmation page
+    "corrections.delete_study": ("POST", COORD),  # an open study: refused (400)
     "coordinator.close_study": ("POST", COORD),
+    "corrections.reopen_study": ("POST", COORD),  # after closing, without a reason: refused (400)
     "auth.logout": ("POST", SIGNED_IN),
 }
 
@@ -97,7 +104,19 @@ def study(tmp_path_factory):
         ensure_user(db(), "bystander", "reader", "bystander-pass")
         db().commit()
         user_id = db().query(User).filter_by(username="bystander").one().id
-    ids = {"study_id": study_id, "public_id": trial["trial"], "run_id": run_id, "job_id": job["id"], "user_id": user_id}
+        from webapp.models import StudyImage
+
+        image_id = db().query(StudyImage).filter_by(study_id=study_id).first().id
+        reader_id = db().query(User).filter_by(username="reader1").one().id
+    ids = {
+        "study_id": study_id,
+        "public_id": trial["trial"],
+        "run_id": run_id,
+        "job_id": job["id"],
+        "user_id": user_id,
+        "image_id": image_id,
+        "reader_id": reader_id,
+    }
     return app, ids
 
 
