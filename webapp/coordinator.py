@@ -350,6 +350,7 @@ def add_images(study_id):
         for a in skipped:
             flash(f"{a['label']}: the same image is already in the study; skipped.", "info")
         return redirect(url_for("coordinator.study", study_id=st.id))
+    db().refresh(st)  # its images, as committed
     result = {"detector": detector, "added": added, "skipped": skipped, "refused": refused}
     if not (added or skipped):
         from flask import g
