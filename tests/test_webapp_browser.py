@@ -227,14 +227,15 @@ def test_coordinator_and_reader_in_chromium(server, tmp_path):
             cp.click("#run-analysis")
             cp.wait_for_selector("#job-result", timeout=120_000)
             cp.click("#job-result")
-            frame = cp.frame_locator("#report")
-            frame.locator("text=Human readers vs model observer").wait_for()
-            cp.screenshot(path=str(ARTIFACTS / "analysis-page.png"), full_page=True)
-            cp.goto(
-                cp.get_attribute("#report-link", "href")
-                if cp.get_attribute("#report-link", "href").startswith("http")
-                else base + cp.get_attribute("#report-link", "href")
+            cp.locator("#report").get_by_text("Human readers vs model observer").first.wait_for()
+            figures = cp.locator("#report img.figure")
+            assert figures.count() >= 2 and all(  # the figures drew (an image that failed has no natural width)
+                figures.nth(i).evaluate("img => img.complete && img.naturalWidth > 0") for i in range(figures.count())
             )
+            cp.screenshot(path=str(ARTIFACTS / "analysis-page.png"), full_page=True)
+            href = cp.get_attribute("#report-link", "href")
+            stored = cp.request.get(href if href.startswith("http") else base + href).text()
+            cp.set_content(stored)  # the downloaded file, on its own: self-contained
             cp.screenshot(path=str(ARTIFACTS / "analysis-report.png"), full_page=True)
         finally:
             browser.close()
