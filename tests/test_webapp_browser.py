@@ -235,8 +235,10 @@ def test_coordinator_and_reader_in_chromium(server, tmp_path):
             cp.screenshot(path=str(ARTIFACTS / "analysis-page.png"), full_page=True)
             href = cp.get_attribute("#report-link", "href")
             stored = cp.request.get(href if href.startswith("http") else base + href).text()
-            cp.set_content(stored)  # the downloaded file, on its own: self-contained
-            cp.screenshot(path=str(ARTIFACTS / "analysis-report.png"), full_page=True)
+            alone = coord.new_page()  # the downloaded file, opened on its own (no server, no app CSP)
+            alone.on("console", lambda m: problems.append(m.text) if m.type == "error" else None)
+            alone.set_content(stored)
+            alone.screenshot(path=str(ARTIFACTS / "analysis-report.png"), full_page=True)
         finally:
             browser.close()
     print(f"screenshots in {ARTIFACTS}")
