@@ -141,9 +141,28 @@ def test_an_upload_is_limited_per_file_while_it_arrives(tmp_path):
         content_length=len(raw),
         content_type=env["CONTENT_TYPE"],
     )
-    assert r.status_code == 413 and "huge plate.dcm: file is larger than the limit of 1 MB" in r.text
-    assert body.read_bytes < 2 * MB  # the parser stopped at the file's limit, not at the end of the request
+    # the file is refused by name on the study's page (a batch keeps its other files, test_webapp_upload_batch)
+    assert r.status_code == 400 and "huge plate.dcm" in r.text and "larger than the limit of 1 MB" in r.text
+    assert 'id="refused-files"' in r.text
     assert _store_files(app) == []
+
+
+def test_the_upload_spool_keeps_nothing_past_the_file_limit():
+    """While a file arrives, nothing past the per-file limit is held (memory or disk), and reading it refuses it."""
+    from flask import Flask
+
+    from scorer.errors import LimenError
+    from webapp.security import _CappedSpool
+
+    with Flask(__name__).app_context():
+        spool = _CappedSpool(1 * MB, "huge plate.dcm")
+        for _ in range(6):
+            spool.write(b"\0" * MB)
+        held = spool._file.seek(0, 2)  # what the spool holds, in memory or in its temporary file
+        assert held == 0 and spool.too_large
+        spool.seek(0)
+        with pytest.raises(LimenError, match="huge plate.dcm: file is larger than the limit of 1 MB"):
+            spool.read(1024)
 
 
 @pytest.fixture
@@ -253,9 +272,23 @@ def test_refused_uploads_leave_nothing_in_the_store(tmp_path):
     good = _dicom(tmp_path / "good.dcm").read_bytes()
     save_conversion(ConversionFunction("linear", 50.0, 20.0), tmp_path / "conversion.toml")
     conv = (io.BytesIO((tmp_path / "conversion.toml").read_bytes()), "conversion.toml")
-    r = post((io.BytesIO(good), "good.dcm"), (io.BytesIO(not_an_image), "bad.dcm"), conversion_file=conv)
+    # a batch with one bad file: the bad one leaves nothing, the good one and the conversion are kept
+    # (issue 19: the good files of a batch are accepted)
+    r = post((io.BytesIO(not_an_image), "bad.dcm"), conversion_file=conv)
     assert r.status_code == 400 and "bad.dcm" in r.text
-    assert _store_files(app) == []
+    assert _store_files(app) == []  # nothing accepted: not even the conversion function sent with it
+    conv = (io.BytesIO((tmp_path / "conversion.toml").read_bytes()), "conversion.toml")
+    r = post((io.BytesIO(good), "good.dcm"), (io.BytesIO(not_an_image), "bad.dcm"), conversion_file=conv)
+    assert r.status_code == 200 and "bad.dcm" in r.text
+    assert sorted(p.suffix for p in _store_files(app)) == [".dcm", ".toml"]
+    for p in _store_files(app):
+        p.unlink()
+    from webapp.models import StudyImage
+    from webapp.security import db
+
+    with app.app_context():
+        db().query(StudyImage).delete()
+        db().commit()
     # a new study refused after its layout was stored keeps no layout
     r = c.post(
         "/coordinator/studies/new",

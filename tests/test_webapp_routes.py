@@ -31,6 +31,7 @@ MATRIX = {
     "coordinator.audit_log": ("GET", COORD),
     "coordinator.new_study": ("GET", COORD),
     "coordinator.study": ("GET", COORD),
+    "coordinator.reader": ("GET", COORD),
     "coordinator.export_responses": ("GET", COORD),
     "coordinator.export_model": ("GET", COORD),
     "analysis.page": ("GET", COORD),
@@ -47,14 +48,25 @@ MATRIX = {
     "reading.next_trial": ("GET", STUDY_READER),
     "reading.region": ("GET", TRIAL_OWNER),
     "reading.respond": ("POST", TRIAL_OWNER),
-    "coordinator.add_reader": ("POST", COORD),
+    "accounts.page": ("GET", COORD),
+    "accounts.confirm_reset": ("GET", COORD),
+    "accounts.add": ("POST", COORD),
+    "accounts.enable": ("POST", COORD),
+    "accounts.reset_password": ("POST", COORD),  # without confirm=yes: sent to the confirmation page
     "coordinator.set_readers": ("POST", COORD),
     "coordinator.add_images": ("POST", COORD),
     "coordinator.import_folder": ("POST", COORD),
     "analysis.run": ("POST", COORD),
     "coordinator.open_study": ("POST", COORD),
-    "coordinator.sign_out_everywhere": ("POST", COORD),  # of the "bystander" account, so no visitor is signed out
+    "accounts.sign_out_everywhere": ("POST", COORD),  # of the "bystander" account, so no visitor is signed out
+    "accounts.disable": ("POST", COORD),  # the bystander again
+    "corrections.confirm_reopen": ("GET", COORD),
+    "corrections.confirm_delete_study": ("GET", COORD),  # the study is open: refused on its page (400)
+    "corrections.confirm_delete_image": ("GET", COORD),
+    "corrections.delete_image": ("POST", COORD),  # without confirm=yes: sent to the confirmation page
+    "corrections.delete_study": ("POST", COORD),  # an open study: refused (400)
     "coordinator.close_study": ("POST", COORD),
+    "corrections.reopen_study": ("POST", COORD),  # after closing, without a reason: refused (400)
     "auth.logout": ("POST", SIGNED_IN),
 }
 
@@ -92,7 +104,19 @@ def study(tmp_path_factory):
         ensure_user(db(), "bystander", "reader", "bystander-pass")
         db().commit()
         user_id = db().query(User).filter_by(username="bystander").one().id
-    ids = {"study_id": study_id, "public_id": trial["trial"], "run_id": run_id, "job_id": job["id"], "user_id": user_id}
+        from webapp.models import StudyImage
+
+        image_id = db().query(StudyImage).filter_by(study_id=study_id).first().id
+        reader_id = db().query(User).filter_by(username="reader1").one().id
+    ids = {
+        "study_id": study_id,
+        "public_id": trial["trial"],
+        "run_id": run_id,
+        "job_id": job["id"],
+        "user_id": user_id,
+        "image_id": image_id,
+        "reader_id": reader_id,
+    }
     return app, ids
 
 

@@ -89,7 +89,7 @@ def test_a_coordinator_signs_an_account_out_everywhere_and_it_is_audited(tmp_pat
     ctok = login(coord, "coordinator")
     with app.app_context():
         uid = db().query(User).filter_by(username="reader1").one().id
-    assert "Sign out everywhere" in coord.get("/coordinator/").text
+    assert "Sign out everywhere" in coord.get("/coordinator/accounts/").text
     r = coord.post(f"/coordinator/accounts/{uid}/sign-out", data={"csrf_token": ctok})
     assert r.status_code == 302
     assert _signed_out(laptop.get("/reading/")) and _signed_out(phone.get("/reading/"))
@@ -125,7 +125,7 @@ def test_names_differing_only_by_case_are_one_account(tmp_path):
     app = accounts_app(tmp_path, ("coordinator",))
     c = app.test_client()
     tok = login(c, "coordinator")
-    r = c.post("/coordinator/readers", data={"username": "Dup", "csrf_token": tok})
+    r = c.post("/coordinator/accounts/", data={"username": "Dup", "role": "reader", "csrf_token": tok})
     assert r.status_code == 400 and "is taken" in r.text
     from webapp.models import User
     from webapp.security import db
@@ -194,7 +194,7 @@ def test_a_very_long_name_is_refused_in_a_short_message(tmp_path):
     app = accounts_app(tmp_path, ("coordinator",))
     c = app.test_client()
     tok = login(c, "coordinator")
-    r = c.post("/coordinator/readers", data={"username": long, "csrf_token": tok})
+    r = c.post("/coordinator/accounts/", data={"username": long, "role": "reader", "csrf_token": tok})
     assert r.status_code == 400 and long[:200] not in r.text and "100000 characters" in r.text
     c2 = app.test_client()
     tok2 = csrf_from(c2.get("/login").text)

@@ -322,12 +322,13 @@ def test_analysis_page_shows_readers_against_the_model(tmp_path):
     assert "Not analysed yet" in cc.get(f"/analysis/studies/{sid}").text
     assert wait_job(cc, cc.post(f"/analysis/studies/{sid}/run", data={"csrf_token": tok}))["state"] == "done"
     page = cc.get(f"/analysis/studies/{sid}").text
-    src = page.split('id="report"')[1].split('src="')[1].split('"')[0]
-    rep = cc.get(src)
-    assert rep.status_code == 200 and "frame-ancestors 'self'" in rep.headers["Content-Security-Policy"]
+    shown = page.split('id="report"')[1].split("</article>")[0]  # the report, in the app's page and style
+    src = page.split('id="report-link"')[0].rsplit('href="', 1)[1].split('"')[0]
+    rep = cc.get(src)  # the same report, self-contained, as a file
+    assert rep.status_code == 200 and "attachment" in rep.headers["Content-Disposition"]
     assert "script" not in rep.headers["Content-Security-Policy"] and "<script" not in rep.text
     for heading in ("Contrast-detail curves", "Human readers vs model observer", "Reader agreement", "comparison"):
-        assert heading in rep.text, heading
+        assert heading in rep.text and heading in shown, heading
     import json
 
     a = json.loads(cc.get(f"/analysis/studies/{sid}/analysis.json").text)

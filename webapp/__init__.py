@@ -46,6 +46,7 @@ DEFAULTS = {
     "LOGIN_ACCOUNT_ALARM": 20,  # failures on one name from all clients: its address pairs lose the free failures
     "LOGIN_ADDRESS_ALARM": 50,  # failures from one address over all names: ditto for that address
     "ANALYSIS_N_BOOT": 400,
+    "STALLED_TRIAL_MINUTES": 10.0,  # a trial shown this long without an answer: its reader "stopped mid-trial"
     "IMPORT_ROOT": None,  # server folder coordinators may import scored folders from
     "JOB_WORKERS": 2,  # background jobs (opening a study, analysis, planning) running at once
     "JOB_HEARTBEAT_S": 10.0,  # a running job's server refreshes its heartbeat this often
@@ -135,7 +136,8 @@ def create_app(config: dict | None = None) -> Flask:
         Flask settings plus ``DATABASE_URL`` (SQLAlchemy URL), ``INSTANCE_PATH`` (instance folder, default
         :func:`default_instance`),
         ``STORE_DIR`` (content store, default ``<instance>/store``), ``MAX_IMAGE_BYTES``, ``MAX_FORM_BYTES``,
-        ``TRUSTED_PROXIES``, the ``LOGIN_*`` throttle settings, ``ANALYSIS_N_BOOT``, ``IMPORT_ROOT``,
+        ``TRUSTED_PROXIES``, the ``LOGIN_*`` throttle settings, ``ANALYSIS_N_BOOT``, ``STALLED_TRIAL_MINUTES``,
+        ``IMPORT_ROOT``,
         ``JOB_WORKERS``, ``JOB_HEARTBEAT_S``, ``JOB_STALE_S`` (see ``DEFAULTS``).
     """
     config = dict(config or {})
@@ -203,12 +205,15 @@ def create_app(config: dict | None = None) -> Flask:
             discard_unreferenced(s, new)
         return resp
 
-    from webapp import analysis, auth, coordinator, job_pages, reading
+    from webapp import account_pages, activity, analysis, auth, coordinator, corrections, job_pages, reading
 
     app.register_blueprint(auth.bp)
     app.register_blueprint(coordinator.bp)
+    app.register_blueprint(account_pages.bp)
+    app.register_blueprint(corrections.bp)
     app.register_blueprint(reading.bp)
     app.register_blueprint(analysis.bp)
     app.register_blueprint(job_pages.bp)
     init_security(app)
+    activity.init_activity(app)
     return app

@@ -37,10 +37,14 @@ def page(study_id):
         )
         or 0
     )
+    from webapp.report_view import in_app_report
+
+    run_ = _latest(st.id)
     return render_template(
         "analysis/page.html",
         study=st,
-        run=_latest(st.id),
+        run=run_,
+        report=in_app_report(run_.report_html) if run_ else None,
         n_responses=n,
         n_boot=current_app.config["ANALYSIS_N_BOOT"],
         job=_running(f"analysis:{st.id}"),
@@ -85,11 +89,18 @@ def run(study_id):
 @bp.route("/studies/<int:study_id>/report/<int:run_id>")
 @coordinator_only
 def report(study_id, run_id):
+    """The stored report as written by scorer.reports (self-contained: its own style, figures inline), as a file
+    to download; the analysis page shows the same report in the app's style (webapp.report_view)."""
     r = db().get(AnalysisRun, run_id)
     if r is None or r.study_id != study_id:
         abort(404)
     g.csp = REPORT_CSP
-    return FlaskResponse(r.report_html, mimetype="text/html")
+    stamp = r.created_at.strftime("%Y-%m-%d")
+    return FlaskResponse(
+        r.report_html,
+        mimetype="text/html",
+        headers={"Content-Disposition": f'attachment; filename="limen-study-{study_id}-analysis-{stamp}.html"'},
+    )
 
 
 @bp.route("/studies/<int:study_id>/analysis.json")

@@ -1,5 +1,5 @@
-"""Coordinator pages: studies (create, add images, enrol readers, open, close), progress, export, accounts,
-audit log."""
+"""Coordinator pages: studies (create, add images, enrol readers, open, close), progress, export, audit log
+(accounts: :mod:`webapp.account_pages`; reopening and deleting: :mod:`webapp.corrections`)."""
 
 from __future__ import annotations
 
@@ -20,14 +20,12 @@ from flask import (
     request,
     url_for,
 )
-from sqlalchemy import func, select
-from sqlalchemy.exc import IntegrityError
+from sqlalchemy import select
 
 from scorer.errors import LimenError
-from webapp import services
-from webapp.models import AuditEntry, Enrolment, ReadingSession, Response, Study, StudyImage, Trial, User, utcnow
-from webapp.accounts import check_new_name, end_sessions
-from webapp.security import study_or_404, audit, db, hash_password, role_required, upload
+from webapp import services, study_edits
+from webapp.models import AuditEntry, Enrolment, Study, StudyImage, User, utcnow
+from webapp.security import study_or_404, audit, db, role_required, upload
 
 bp = Blueprint("coordinator", __name__, url_prefix="/coordinator")
 coordinator_only = role_required("coordinator")
@@ -38,18 +36,14 @@ def _study(study_id: int) -> Study:
 
 
 def _draft(study_id: int) -> Study:
-    st = _study(study_id)
-    if st.status != "draft":
-        raise LimenError("images and readers can be changed only before the study is opened")
-    if open_job(st.id) is not None:
-        raise LimenError("the study is being opened: images and readers can no longer be changed")
-    return st
+    return study_edits.require_draft(db(), _study(study_id))
 
 
 def _add_image(
     st: Study, stream, name: str, detector: str, known: set, conv_path=None, conversion=None, spacing=None
 ) -> dict | None:
-    """Store one image file under its hash, check it reads as an image, add it to the study (once)."""
+    """Store one image file under its hash, check it reads as an image, add it to the study (once: an image the
+    study already has is returned with ``skipped``)."""
     label = services.safe_label(name)
     suffix = services.check_suffix(name, services.IMAGE_SUFFIXES, "image file")
     store = Path(current_app.config["STORE_DIR"])
@@ -63,8 +57,7 @@ def _add_image(
     )
     digest, path = stored.sha256, stored.path
     if digest in known:
-        flash(f"{label}: the same image is already in the study; skipped.", "info")
-        return None
+        return {"label": label, "sha256": digest, "skipped": True}
     known.add(digest)
     db().add(
         StudyImage(
@@ -105,44 +98,12 @@ def _num(form, key, kind, lo, hi, label, default=None):
     return v
 
 
-# --------------------------------------------------------------------------- dashboard and accounts
+# --------------------------------------------------------------------------- dashboard and audit log
 @bp.route("/")
 @coordinator_only
 def dashboard():
     studies = db().execute(select(Study).order_by(Study.created_at.desc())).scalars().all()
-    accounts = db().execute(select(User).order_by(User.role, User.username)).scalars().all()
-    return render_template("coordinator/dashboard.html", studies=studies, readers=_readers(), accounts=accounts)
-
-
-@bp.route("/readers", methods=["POST"])
-@coordinator_only
-def add_reader():
-    name = check_new_name(request.form.get("username") or "")
-    password = secrets.token_urlsafe(12)
-    s = db()
-    s.add(User(username=name, password_hash=hash_password(password), role="reader"))
-    audit("add_reader", username=name)
-    try:
-        s.commit()
-    except IntegrityError:
-        s.rollback()
-        raise LimenError(f"user name {name!r} is taken (names are compared without regard to case)") from None
-    flash(f"Reader {name} added. Password (shown once, give it to the reader): {password}", "secret")
-    return redirect(url_for("coordinator.dashboard"))
-
-
-@bp.route("/accounts/<int:user_id>/sign-out", methods=["POST"])
-@coordinator_only
-def sign_out_everywhere(user_id):
-    """End every session of an account (a lost laptop, a shared password): it must sign in again."""
-    user = db().get(User, user_id)
-    if user is None:
-        abort(404)
-    end_sessions(user)
-    audit("sign_out_everywhere", username=user.username)
-    db().commit()
-    flash(f"Every session of {user.username} has ended; the account must sign in again.", "info")
-    return redirect(url_for("coordinator.dashboard"))
+    return render_template("coordinator/dashboard.html", studies=studies, readers=_readers())
 
 
 @bp.route("/audit")
@@ -252,59 +213,71 @@ def _set_enrolment(study: Study, ids) -> None:
 @bp.route("/studies/<int:study_id>")
 @coordinator_only
 def study(study_id):
-    st = _study(study_id)
-    s = db()
-    progress = []
-    for e in sorted(st.enrolments, key=lambda e: e.user.username):
-        total = (
-            s.scalar(
-                select(func.count(Trial.id)).where(
-                    Trial.study_id == st.id, Trial.reader_id == e.user_id, Trial.practice.is_(False)
-                )
-            )
-            or 0
-        )
-        done = (
-            s.scalar(
-                select(func.count(Response.id))
-                .join(Trial)
-                .where(Trial.study_id == st.id, Trial.reader_id == e.user_id, Trial.practice.is_(False))
-            )
-            or 0
-        )
-        last = s.scalar(
-            select(func.max(Response.created_at))
-            .join(Trial)
-            .where(Trial.study_id == st.id, Trial.reader_id == e.user_id)
-        )
-        sess = (
-            s.execute(
-                select(ReadingSession)
-                .where(ReadingSession.study_id == st.id, ReadingSession.reader_id == e.user_id)
-                .order_by(ReadingSession.id.desc())
-            )
-            .scalars()
-            .first()
-        )
-        progress.append(
-            {
-                "reader": e.user.username,
-                "user_id": e.user_id,
-                "done": done,
-                "total": total,
-                "last": last,
-                "session": sess,
-            }
-        )
+    return study_page(_study(study_id))
+
+
+def study_page(st: Study, status: int = 200, **extra):
+    """The study's page (also answering a POST whose outcome it shows: an upload's refused files, an error)."""
+    from webapp import progress
+
     notes = json.loads(st_notes) if (st_notes := _notes_of(st)) else []
-    return render_template(
+    rows = (
+        progress.readers_progress(db(), st, progress.stalled_after(current_app.config)) if st.status != "draft" else []
+    )
+    page = render_template(
         "coordinator/study.html",
         study=st,
-        progress=progress,
+        progress=rows,
+        stalled_minutes=progress.stalled_after(current_app.config).total_seconds() / 60,
         readers=_readers(),
         enrolled={e.user_id for e in st.enrolments},
         notes=notes,
         open_job=open_job(st.id) if st.status == "draft" else None,
+        **extra,
+    )
+    return page, status
+
+
+@bp.errorhandler(LimenError)
+def show_refusal(exc):
+    """A refused form of a study's page (bad upload settings, a study not ready to open …) is shown on that page
+    with its one-line reason, not on a dead-end error page; elsewhere the app's error page."""
+    from webapp.security import wants_json
+
+    db().rollback()
+    study_id = (request.view_args or {}).get("study_id")
+    st = db().get(Study, study_id) if study_id is not None else None
+    from flask import g, jsonify
+
+    g.refusal_reason = str(exc)  # for the audit of refused requests (webapp.activity)
+    if wants_json():
+        return jsonify(error=str(exc)), 400
+    if st is None:
+        return render_template("error.html", title="Cannot use this input", message=str(exc)), 400
+    return study_page(st, 400, error=str(exc))
+
+
+@bp.route("/studies/<int:study_id>/readers/<int:reader_id>")
+@coordinator_only
+def reader(study_id, reader_id):
+    """One reader in one study: answers, state, every display check, refused actions."""
+    from webapp import progress
+
+    st = _study(study_id)
+    rows = [
+        r
+        for r in progress.readers_progress(db(), st, progress.stalled_after(current_app.config))
+        if r.user_id == reader_id
+    ]
+    if not rows:
+        abort(404)
+    user = db().get(User, reader_id)
+    return render_template(
+        "coordinator/reader.html",
+        study=st,
+        p=rows[0],
+        refused=progress.refused_actions(db(), st, user),
+        stalled_minutes=progress.stalled_after(current_app.config).total_seconds() / 60,
     )
 
 
@@ -360,15 +333,31 @@ def add_images(study_id):
     if not files:
         raise LimenError("choose at least one image file (DICOM, TIFF, PNG or .npy)")
     known = {im.sha256 for im in st.images}
-    added = [
-        a
-        for fs in files
-        if (a := _add_image(st, fs.stream, fs.filename, detector, known, conv_path, conversion, spacing))
-    ]
-    audit("add_images", st.id, detector=detector, images=added, conversion=conv_path)
+    added, skipped, refused = [], [], []
+    for fs in files:  # each file accepted or refused on its own: one bad file does not cost the batch
+        label = services.safe_label(fs.filename)
+        try:
+            a = _add_image(st, fs.stream, fs.filename, detector, known, conv_path, conversion, spacing)
+        except LimenError as exc:
+            reason = str(exc)
+            refused.append({"label": label, "reason": reason.removeprefix(f"{label}: ")})
+            continue
+        (skipped if a.get("skipped") else added).append(a)
+    audit("add_images", st.id, detector=detector, images=added, conversion=conv_path, refused=refused)
     db().commit()
-    flash(f"Added {len(added)} image(s) from detector {detector}.", "info")
-    return redirect(url_for("coordinator.study", study_id=st.id))
+    if not refused:
+        flash(f"Added {len(added)} image(s) from detector {detector}.", "info")
+        for a in skipped:
+            flash(f"{a['label']}: the same image is already in the study; skipped.", "info")
+        return redirect(url_for("coordinator.study", study_id=st.id))
+    db().refresh(st)  # its images, as committed
+    result = {"detector": detector, "added": added, "skipped": skipped, "refused": refused}
+    if not (added or skipped):
+        from flask import g
+
+        g.refusal_reason = f"none of the {len(refused)} uploaded file(s) could be used"
+    # nothing accepted: the request failed (400; a conversion function sent with it is not kept)
+    return study_page(st, 200 if added or skipped else 400, upload=result)
 
 
 @bp.route("/studies/<int:study_id>/import", methods=["POST"])
@@ -419,7 +408,9 @@ def import_folder(study_id):
             raise LimenError(f"image {p.name} listed in results.json is missing", folder.name)
         with open(src, "rb") as fh:
             a = _add_image(st, fh, src.name, detector, known, conv_path, conversion)
-        if a:
+        if a.get("skipped"):
+            flash(f"{a['label']}: the same image is already in the study; skipped.", "info")
+        else:
             added.append(a)
     audit("import_folder", st.id, folder=str(folder), detector=detector, images=added, conversion=conv_path)
     db().commit()
@@ -460,9 +451,7 @@ def _open_study_work(store_dir: Path):
 
 def open_job(study_id: int):
     """The queued or running job opening this study, if any."""
-    from webapp.models import Job
-
-    return db().execute(select(Job).where(Job.active_key == f"open_study:{study_id}")).scalars().first()
+    return study_edits.open_job(db(), study_id)
 
 
 @bp.route("/studies/<int:study_id>/open", methods=["POST"])

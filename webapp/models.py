@@ -244,6 +244,19 @@ class ReadingSession(Base):
     user_agent: Mapped[str | None] = mapped_column(String(300), nullable=True)
 
 
+class TrialShown(Base):
+    """When a trial was first handed to its reader (:mod:`webapp.activity`): a trial shown and not answered for
+    longer than the stated time marks a reader who stopped mid-trial (:mod:`webapp.progress`)."""
+
+    __tablename__ = "trials_shown"
+    __table_args__ = (Index("ix_trials_shown_study", "study_id", "reader_id"),)
+
+    trial_public_id: Mapped[str] = mapped_column(String(32), primary_key=True)
+    study_id: Mapped[int] = mapped_column(Integer)
+    reader_id: Mapped[int] = mapped_column(Integer)
+    first_at: Mapped[_dt.datetime] = mapped_column(DateTime, default=utcnow)
+
+
 class AuditEntry(Base):
     __tablename__ = "audit_log"
 

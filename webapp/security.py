@@ -9,7 +9,8 @@
 * Sign-in attempts: throttled per name, client and address (:mod:`webapp.throttle`).
 * Request bodies: refused (413) from their declared length before anything reads them; at most
   ``MAX_FORM_BYTES`` except on upload routes for a coordinator (``MAX_CONTENT_LENGTH``); a chunked body is cut
-  off at the same limit; each uploaded file is spooled with ``MAX_IMAGE_BYTES`` applied while it arrives.
+  off at the same limit; each uploaded file is spooled with ``MAX_IMAGE_BYTES`` applied while it arrives (a file
+  over it is dropped and refused by name when read, so a batch keeps its other files).
 * Every route declares its role with :func:`role_required`; a reader reaching another reader's trial
   or a study they are not enrolled in gets 404, a reader on a coordinator page 403.
 * Headers: ``X-Content-Type-Options: nosniff``, ``X-Frame-Options: DENY`` and a Content-Security-Policy with
@@ -116,19 +117,33 @@ def _size(n: int) -> str:
 
 
 class _CappedSpool(tempfile.SpooledTemporaryFile):
-    """Where the form parser writes one uploaded file: in memory up to 500 kB, then a temporary file; refused
-    (413 naming the file) the moment it passes the per-file limit, before the rest arrives."""
+    """Where the form parser writes one uploaded file: in memory up to 500 kB, then a temporary file.
+
+    The moment the file passes the per-file limit, what it held is dropped and the rest of it is not kept
+    (nothing more than the limit is ever held); reading it then raises a one-line LimenError naming the file,
+    so a batch upload refuses that file and keeps the others (the request as a whole stays under
+    ``MAX_CONTENT_LENGTH``)."""
 
     def __init__(self, limit: int, label: str):
         super().__init__(max_size=500 * 1024)
         self._limit, self._label, self._n = limit, label, 0
+        self.too_large = False
 
     def write(self, data):
         self._n += len(data)
+        if self.too_large:
+            return len(data)
         if self._n > self._limit:
-            self.close()
-            raise RequestEntityTooLarge(f"{self._label}: file is larger than the limit of {_size(self._limit)}")
+            self.too_large = True
+            super().seek(0)
+            super().truncate()
+            return len(data)
         return super().write(data)
+
+    def read(self, *args):
+        if self.too_large:
+            raise LimenError(f"file is larger than the limit of {_size(self._limit)}", self._label)
+        return super().read(*args)
 
 
 class LimenRequest(Request):
@@ -222,6 +237,7 @@ def init_security(app) -> None:
         return resp
 
     def _page(code, title, message):
+        g.refusal_reason = message  # for the audit of refused requests (webapp.activity)
         if wants_json():
             return jsonify(error=message), code
         return render_template("error.html", title=title, message=message), code

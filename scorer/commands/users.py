@@ -2,12 +2,8 @@
 
 from __future__ import annotations
 
-import json
-import secrets
 
 import click
-
-from scorer.errors import LimenError
 
 
 def _app(db_url, instance):
@@ -39,17 +35,13 @@ def _with_db(f):
     return f
 
 
-MIN_PASSWORD_CHARS = 10
-
-
 def _new_password(generate: bool, prompt: str) -> str:
-    """A generated password (shown once by the caller) or one prompted twice, at least MIN_PASSWORD_CHARS long."""
+    """A generated password (shown once by the caller) or one prompted twice (webapp.account_admin's rules)."""
+    from webapp.account_admin import check_password, generate_password
+
     if generate:
-        return secrets.token_urlsafe(12)
-    password = click.prompt(prompt, hide_input=True, confirmation_prompt=True)
-    if len(password) < MIN_PASSWORD_CHARS:
-        raise LimenError(f"password: at least {MIN_PASSWORD_CHARS} characters")
-    return password
+        return generate_password()
+    return check_password(click.prompt(prompt, hide_input=True, confirmation_prompt=True))
 
 
 @click.group("users")
@@ -64,31 +56,16 @@ def users():
 @_with_db
 def add(name, role, generate, db_url, instance):
     """Create an account NAME (password prompted, or generated with --generate)."""
-    from sqlalchemy.exc import IntegrityError
-
-    from webapp.models import AuditEntry, User
-    from webapp.security import db, hash_password
-
+    from webapp.account_admin import add_account
     from webapp.accounts import check_new_name
+    from webapp.security import db
 
     name = check_new_name(name)
     password = _new_password(generate, "password")
     app = _app(db_url, instance)
     with app.app_context():
-        s = db()
-        s.add(User(username=name, password_hash=hash_password(password), role=role))
-        s.add(
-            AuditEntry(
-                user_id=None,
-                action="add_user",
-                detail=json.dumps({"username": name, "role": role, "via": "limen users add"}),
-            )
-        )
-        try:
-            s.commit()
-        except IntegrityError:
-            s.rollback()
-            raise LimenError(f"user name {name!r} is taken (names are compared without regard to case)") from None
+        add_account(db(), name, role, password, via="limen users add")
+        db().commit()
     click.echo(f"added {role} {name}")
     if generate:
         click.echo(f"password (shown once): {password}")
@@ -99,9 +76,9 @@ def add(name, role, generate, db_url, instance):
 @_with_db
 def sign_out(name, db_url, instance):
     """End every session of account NAME at its next request (it signs in again with its password)."""
-    from webapp.accounts import end_sessions
+    from webapp.account_admin import sign_out_everywhere
 
-    _change(name, db_url, instance, "sign_out_everywhere", {"via": "limen users sign-out"}, end_sessions)
+    _change(name, db_url, instance, lambda u: sign_out_everywhere(u, via="limen users sign-out"))
     click.echo(f"every session of {name} has ended")
 
 
@@ -120,21 +97,16 @@ def list_users(db_url, instance):
             click.echo(f"{u.username:<24}{u.role:<13}{'active' if u.active else 'disabled'}")
 
 
-def _change(name, db_url, instance, action: str, detail: dict, change) -> None:
-    """Apply ``change(user)`` to account NAME in one transaction with an audit entry; unknown NAME is an error."""
-    from webapp.accounts import find_user, shown_name
-    from webapp.models import AuditEntry
+def _change(name, db_url, instance, change) -> None:
+    """Apply ``change(user)`` (a webapp.account_admin operation, which audits) to account NAME in one transaction;
+    an unknown NAME is a one-line error."""
+    from webapp.account_admin import account
     from webapp.security import db
 
     app = _app(db_url, instance)
     with app.app_context():
-        s = db()
-        user = find_user(s, name)
-        if user is None:
-            raise LimenError(f"no account named {shown_name(name)!r} (see 'limen users list')")
-        change(user)
-        s.add(AuditEntry(user_id=None, action=action, detail=json.dumps({"username": user.username, **detail})))
-        s.commit()
+        change(account(db(), name))
+        db().commit()
 
 
 @users.command("disable")
@@ -145,13 +117,9 @@ def disable(name, db_url, instance):
 
     Its reads and the studies it coordinated stay as they are (nothing is deleted).
     """
-    from webapp.accounts import end_sessions
+    from webapp import account_admin
 
-    def change(user):
-        user.active = False
-        end_sessions(user)
-
-    _change(name, db_url, instance, "disable_user", {"via": "limen users disable"}, change)
+    _change(name, db_url, instance, lambda u: account_admin.disable(u, via="limen users disable"))
     click.echo(f"disabled {name}")
 
 
@@ -160,7 +128,9 @@ def disable(name, db_url, instance):
 @_with_db
 def enable(name, db_url, instance):
     """Enable account NAME again."""
-    _change(name, db_url, instance, "enable_user", {"via": "limen users enable"}, lambda u: setattr(u, "active", True))
+    from webapp import account_admin
+
+    _change(name, db_url, instance, lambda u: account_admin.enable(u, via="limen users enable"))
     click.echo(f"enabled {name}")
 
 
@@ -170,17 +140,10 @@ def enable(name, db_url, instance):
 @_with_db
 def password(name, generate, db_url, instance):
     """Set a new password for account NAME (prompted, or generated with --generate); its sessions end."""
-    from webapp.accounts import end_sessions
-    from webapp.security import hash_password
+    from webapp import account_admin
 
     new = _new_password(generate, "new password")
-    hashed = hash_password(new)
-
-    def change(user):
-        user.password_hash = hashed
-        end_sessions(user)
-
-    _change(name, db_url, instance, "reset_password", {"via": "limen users password"}, change)
+    _change(name, db_url, instance, lambda u: account_admin.reset_password(u, new, via="limen users password"))
     click.echo(f"new password set for {name}")
     if generate:
         click.echo(f"password (shown once): {new}")
