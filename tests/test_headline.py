@@ -212,13 +212,18 @@ def test_headline_states_the_trade_off_and_flags_extrapolation():
     h = headline(_series(fa), _series(fb), ("direct", "indirect"))
     small, large = h["classes"]
     assert small["ratio"] == pytest.approx(2.0, rel=1e-9) and large["ratio"] == pytest.approx(0.5, rel=1e-9)
-    assert small["sentence"].startswith("For details ≤ 0.25 mm indirect needs 2× (95 % CI")
+    assert small["sentence"].startswith("For details ≤ 0.25 mm indirect needs 2× (95 % CI 1.")
     assert "the air kerma of direct for the same threshold" in small["sentence"]
     assert large["sentence"].startswith("For details ≥ 0.5 mm direct needs 2× (95 % CI")
     assert small["i2"] == 0.0 and small["k"] == 2
     # at the top kerma (180 µGy) the indirect panel would need 360 µGy for small details: extrapolated
     top = small["other_kermas"][1]
-    assert top["kerma_ugy"] == 180.0 and top["extrapolated"] and "(extrapolated)" in small["sentence"]
+    assert top["kerma_ugy"] == 180.0 and top["extrapolated"] and "2 of 2 diameters extrapolated" in small["sentence"]
     assert h["kermas_ugy"] == pytest.approx([25.0, np.sqrt(25 * 180), 180.0])
     rows = h["per_diameter"]
     assert all(r["p_holm"] >= r["p_value"] for r in rows)
+    assert h["conclusion"] == (
+        f"details ≤ 0.25 mm: direct better (indirect needs 2×, 95 % CI {small['ci_low']:.2g}–{small['ci_high']:.2g}); "
+        f"details ≥ 0.5 mm: indirect better (direct needs 2×, 95 % CI {1 / large['ci_high']:.2g}–"
+        f"{1 / large['ci_low']:.2g})."
+    )

@@ -273,30 +273,48 @@ def _fmt_ratio(r: float) -> str:
 
 
 def class_sentence(name: str, pooled: dict, la: str, lb: str, kerma_ugy: float, others: list[dict]) -> str:
-    """One plain sentence for a detail class, e.g. "For details ≤ 0.25 mm indirect needs 1.4× (95 % CI
-    1.2–1.7) the air kerma of direct for the same threshold …"."""
+    """Plain sentences for a detail class, e.g. "For details ≤ 0.25 mm indirect needs 1.4× (95 % CI 1.2–1.7)
+    the air kerma of direct for the same threshold. …" — who needs more, how sure, at what kerma, over which
+    diameters, and the ratio at the ends of the dose series (flagged where extrapolated)."""
     r, lo, hi = pooled["ratio"], pooled["ci_low"], pooled["ci_high"]
     if r >= 1:
         more, less, shown = lb, la, (r, lo, hi)
     else:
         more, less, shown = la, lb, (1 / r, 1 / hi, 1 / lo)
-    het = (
-        f"I² = {100 * pooled['i2']:.0f} %, Q = {pooled['q']:.2g} on {pooled['df']} df"
-        if pooled["k"] > 1
-        else "one diameter"
-    )
-    at = f"at the threshold {la} reaches at {kerma_ugy:.3g} µGy; {pooled['k']} diameters pooled, {het}"
-    dose = "; ".join(
-        f"{_fmt_ratio(o['ratio'])}× at {o['kerma_ugy']:.3g} µGy" + (" (extrapolated)" if o.get("extrapolated") else "")
+    ci = f"95 % CI {_fmt_ratio(shown[1])}–{_fmt_ratio(shown[2])}"
+    text = f"For details {name} {more} needs {_fmt_ratio(shown[0])}× ({ci}) the air kerma of {less} for the same "
+    text += "threshold"
+    text += " — no clear difference, the CI includes 1." if lo <= 1.0 <= hi else "."
+    het = f", I² = {100 * pooled['i2']:.0f} %" if pooled["k"] > 1 else ""
+    n = "one diameter" if pooled["k"] == 1 else f"{pooled['k']} diameters pooled{het}"
+    text += f" At the threshold {la} reaches at {kerma_ugy:.3g} µGy; {n}."
+    ends = [
+        f"{_fmt_ratio(o['ratio'])}× at {o['kerma_ugy']:.3g} µGy"
+        + (f" ({o['n_extrapolated']} of {pooled['k']} diameters extrapolated)" if o.get("extrapolated") else "")
         for o in others
         if o.get("ratio") is not None
-    )
-    dose = f"; {lb}/{la}: {dose}" if dose else ""
-    ci = f"95 % CI {_fmt_ratio(shown[1])}–{_fmt_ratio(shown[2])}"
-    body = f"{more} needs {_fmt_ratio(shown[0])}× ({ci}) the air kerma of {less} for the same threshold"
-    if lo <= 1.0 <= hi:
-        return f"For details {name}: no clear difference — {body}, a CI that includes 1 ({at}{dose})."
-    return f"For details {name} {body} ({at}{dose})."
+    ]
+    if ends:
+        text += f" The ratio {lb} ÷ {la} is " + ", ".join(ends) + "."
+    return text
+
+
+def pair_conclusion(classes: list[dict], la: str, lb: str) -> str:
+    """One line for the pair: per class who needs less air kerma where the CI allows saying so."""
+    parts = []
+    for c in classes:
+        r, lo, hi = c["ratio"], c["ci_low"], c["ci_high"]
+        if r >= 1:
+            more, shown = lb, (r, lo, hi)
+        else:
+            more, shown = la, (1 / r, 1 / hi, 1 / lo)
+        num = f"{more} needs {_fmt_ratio(shown[0])}×, 95 % CI {_fmt_ratio(shown[1])}–{_fmt_ratio(shown[2])}"
+        if lo <= 1.0 <= hi:
+            parts.append(f"details {c['name']}: no clear difference ({num})")
+        else:
+            better = la if r > 1 else lb
+            parts.append(f"details {c['name']}: {better} better ({num})")
+    return "; ".join(parts) + "." if parts else ""
 
 
 def headline(
@@ -406,12 +424,15 @@ def headline(
         f"the threshold {la} reaches at the stated kerma; > 1: {la} needs less",
         "classes": out_classes,
         "sentences": [c["sentence"] for c in out_classes],
+        "conclusion": pair_conclusion(out_classes, la, lb),
         "per_diameter": rows,
         "per_diameter_other_kermas": {f"{k:.6g}": by_kerma[k] for k in (kermas[0], kermas[2])},
         "multiplicity": f"per-diameter p-values Holm-adjusted across the {len(rows)} diameters (Holm 1979), as "
         "on the reader-study page; the class p-values across the classes",
         "drivers": drivers,
         "driver_sentences": driver_sentences(drivers, la, lb) if drivers else [],
+        "why": driver_line(drivers, la, lb) if drivers else "",
+        "short_labels": list(short_labels(drivers, la, lb)),
         "notes": notes,
     }
 
@@ -480,14 +501,52 @@ def panel_drivers(det_a: dict, det_b: dict, la: str, lb: str, low_kerma_ugy: flo
     return out
 
 
+def short_labels(drivers: dict | None, la: str, lb: str) -> tuple[str, str]:
+    """The panels' types ("direct", "indirect") where they tell the two apart, else their labels."""
+    if drivers:
+        ta, tb = (drivers["panels"][lab].get("panel_type") for lab in (la, lb))
+        if ta and tb and ta != tb:
+            return ta, tb
+    return la, lb
+
+
+def driver_line(drivers: dict, la: str, lb: str) -> str:
+    """The drivers in one line, values as "panel A / panel B" (short names)."""
+    na, nb = short_labels(drivers, la, lb)
+    pa, pb = drivers["panels"][la], drivers["panels"][lb]
+    fh, fl = drivers["dqe_high_per_mm"], drivers["dqe_low_per_mm"]
+
+    def two(a, b, fmt=".2f"):
+        return None if a is None or b is None else f"{format(a, fmt)} / {format(b, fmt)}"
+
+    parts = []
+    mtf = two(pa["mtf"].get(f"{fh:g}"), pb["mtf"].get(f"{fh:g}"))
+    if mtf:
+        parts.append(f"MTF at {fh:g} /mm {mtf}")
+    dl, dh = two(pa["dqe_low"], pb["dqe_low"]), two(pa["dqe_high"], pb["dqe_high"])
+    if dl and dh:
+        parts.append(f"DQE at {fl:g} /mm {dl}, at {fh:g} /mm {dh}")
+    low_a, low_b = pa.get("low_kerma_dqe"), pb.get("low_kerma_dqe")
+    if low_a and low_b and two(low_a.get("dqe_high"), low_b.get("dqe_high")):
+        parts.append(
+            f"at {low_a['kerma_ugy']:g} µGy {two(low_a.get('dqe_low'), low_b.get('dqe_low'))} and "
+            f"{two(low_a['dqe_high'], low_b['dqe_high'])}"
+        )
+    e = two(pa["electronic_kerma_ugy"], pb["electronic_kerma_ugy"], ".2g")
+    if e:
+        parts.append(f"electronic noise equals quantum noise at {e} µGy")
+    return f"{na} / {nb}: " + "; ".join(parts) + "." if parts else ""
+
+
 def driver_sentences(drivers: dict, la: str, lb: str) -> list[str]:
     """Plain statements of the measured values behind the ratio (no claim beyond them)."""
     pa, pb = drivers["panels"][la], drivers["panels"][lb]
     fh, fl = drivers["dqe_high_per_mm"], drivers["dqe_low_per_mm"]
     out = []
+    na, nb = short_labels(drivers, la, lb)
 
     def pair(a, b, fmt="{:.2f}"):
-        return f"{fmt.format(a)} ({la}) vs {fmt.format(b)} ({lb})"
+        return f"{fmt.format(a)} ({na}) vs {fmt.format(b)} ({nb})"
 
     ma, mb = pa["mtf"].get(f"{fh:g}"), pb["mtf"].get(f"{fh:g}")
     if ma is not None and mb is not None:

@@ -17,8 +17,10 @@ Published values used (docs/references.md, "Simulated panels"):
   light spread's transfer 0.78, 0.55, 0.44, which a two-depth spread (30 % of quanta with L = 12 µm,
   70 % with L = 52 µm) reproduces within 0.02; a single exponential cannot (0.47 at 4 cycles/mm).  The fall
   of DQE(0) gives the zero-frequency electronic-noise kerma K₀: 0.40 = 0.55/(1 + K₀/11.4 µGy) → K₀ ≈ 4.3 µGy.
-* Structured CsI reaches DQE ≈ 0.77 at mammography energies (Jee et al., Med. Phys. 30 (2003) 1874):
-  the indirect mammography panel's DQE(0) = 0.66 sits between that and the 0.55 above.
+* Structured CsI on a 75 µm prototype array reaches DQE ≈ 0.77 at 26 kVp ("Evaluation of novel direct- and
+  indirect-detection AMFPIs for mammography", Antonuk's group): the indirect mammography panel's DQE(0) = 0.66
+  sits between that and the 0.55 above; lower system gain makes electronic noise matter more (Jee et al.,
+  Med. Phys. 30 (2003) 1874).
 * a-Se mammography panel, 85 µm pixels: DQE at Nyquist ≈ 40 % of DQE(0) (Zhao et al., Med. Phys. 30
   (2003) 254) — what the aperture alone gives (sinc² = 0.405 at Nyquist); their K-fluorescence and
   charge-trapping blur (−15 % MTF at Nyquist) is not modelled.
@@ -82,7 +84,7 @@ SPECS: dict[str, PanelSpec] = {
         electronic_kerma_zero_ugy=Stated(1.0, "from memory: a-Se mammography panels"),
     ),
     "indirect": PanelSpec(
-        dqe_zero=Stated(0.66, "between 0.55 (Vedantham et al. 2000) and 0.77 (Jee et al. 2003)"),
+        dqe_zero=Stated(0.66, "between 0.55 (Vedantham et al. 2000) and 0.77 (AMFPI evaluation, Antonuk's group)"),
         electronic_kerma_zero_ugy=Stated(4.3, "Vedantham et al. 2000: DQE(0) 0.55 → 0.40 from 287 to 11.4 µGy"),
         light_transfer={2.0: 0.78, 4.0: 0.555, 5.0: 0.44},
         light_transfer_source="Vedantham et al. 2000: MTF 0.73, 0.42, 0.28 at 2, 4, 5 /mm over the 100 µm sinc",
