@@ -6,6 +6,7 @@ functions here validate their parsed content (errors name the file)."""
 
 from __future__ import annotations
 
+import re
 
 import numpy as np
 
@@ -404,7 +405,7 @@ def panel_type(det: dict) -> str | None:
 
 def typed_label(label: str, kind: str | None) -> str:
     """The label with the panel's type beside it, unless it names the type already."""
-    if not kind or kind.lower() in label.lower():
+    if not kind or re.search(rf"(?<![a-z]){re.escape(kind.lower())}(?![a-z])", label.lower()):
         return label
     return f"{label} ({kind})"
 
