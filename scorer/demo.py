@@ -504,6 +504,11 @@ def _reader_study(out: Path) -> list[tuple[str, str]]:
     links = [
         ("reader study: human curves, human/model factor, detector comparison", "reader-study/analysis/report.html")
     ]
+    print(
+        "\nNext, each panel's human-equivalent thresholds against the example limits: a FAIL (exit status 1) or "
+        "INDETERMINATE (exit status 3) verdict is a result the demo reports, not a demo failure.",
+        flush=True,
+    )
     for panel in ("direct", "indirect"):
         d = out / panel
         images = sorted(str(p) for p in (d / "images").glob("*.dcm"))

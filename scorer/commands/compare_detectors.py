@@ -59,8 +59,8 @@ from scorer.commands.detector import alternatives_from_options, diameters_from_o
 @click.option(
     "--detail-classes",
     default=None,
-    help="Detail-size classes the headline pools the kerma ratio over: ranges in mm, comma-separated, an open "
-    "end left empty [default: 0-0.25,0.5- (≤ 0.25 mm and ≥ 0.5 mm)].",
+    help="Classes of detail size the headline pools the kerma ratio over: ranges in mm separated by commas, an "
+    "open end left empty [default: 0-0.25,0.5- that is ≤ 0.25 mm and ≥ 0.5 mm].",
 )
 @options.json_output()
 @options.out_folder("Write comparison.json, comparison.csv, headline.csv and comparison.html here.")
