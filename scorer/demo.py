@@ -26,6 +26,7 @@ from pathlib import Path
 
 from scorer.files import atomic_write_text
 from scorer.reports import CAUTION, html_page
+from scorer.reports.html import NOT_FOR_DIAGNOSIS
 
 DOSE_UGY = 100.0
 N_PHANTOM = 8
@@ -33,6 +34,12 @@ N_PHANTOM = 8
 #: (direct panel ≈ 209 µGy, indirect ≈ 290 µGy), with few small images per group to keep the demo short
 SERIES_UGY = (25.0, 50.0, 180.0)
 N_SERIES = 4
+#: the two mammography panels as every report names them: type, converter and the (invented) serial
+PANEL_LABELS = {"direct": "direct a-Se (HSX-SE-0417)", "indirect": "indirect CsI (HSX-CS-2291)"}
+#: general radiography at RQA5 (scorer/detector/presets.py): kermas at the detector (µGy), the flats' kerma
+RAD_LABELS = {"direct-rad": "direct a-Se (HGX-SE-0731)", "indirect-rad": "indirect CsI (HGX-CS-1186)"}
+RAD_SERIES_UGY = (1.25, 2.5, 5.0, 10.0)
+RAD_FLAT_UGY = 2.5
 #: the plate lies slightly turned, as on a real table (registration must find it)
 PHANTOM_ROTATE_DEG = 1.5
 #: two slanted edges per panel: near-vertical and near-horizontal (MTF in both directions)
@@ -141,9 +148,9 @@ def run(out: Path) -> Path:
             str(out / "direct" / "detector" / "detector.json"),
             str(out / "indirect" / "detector" / "detector.json"),
             "--label-a",
-            "direct (a-Se)",
+            PANEL_LABELS["direct"],
             "--label-b",
-            "indirect (CsI)",
+            PANEL_LABELS["indirect"],
             "--scored-a",
             str(out / "direct" / "score" / "results.json"),
             "--scored-b",
@@ -164,6 +171,7 @@ def run(out: Path) -> Path:
             "comparison/comparison.html",
         ),
     )
+    links.insert(1, _general_radiography(out))  # the same question at RQA5, where thin selenium absorbs less
     links += _nightly(out)  # nightly scoring (issue 13): simulated nights, one panel drifts and is caught
     body = "<ul>" + "".join(f"<li><a href='{html.escape(h)}'>{html.escape(t)}</a></li>" for t, h in links) + "</ul>"
     scenario = (
@@ -171,7 +179,10 @@ def run(out: Path) -> Path:
         "(invented) commissions a direct-conversion panel (HSX-SE-0417, room MAM2) and an indirect-conversion "
         "panel (HSX-CS-2291, room MAM3); every image is simulated by Limen's physics model (at 100 µGy; the dose "
         "series also at 25, 50 and 180 µGy) and the "
-        "six readers are a documented observer model, not people.</p>"
+        "six readers are a documented observer model, not people. Its general-radiography department "
+        "(Harbourside General Hospital, invented) compares an a-Se and a CsI panel at the RQA5 beam quality "
+        "(1.25–10 µGy). The panels' DQE, MTF and electronic noise are published typical values "
+        "(scorer/detector/presets.py), not any product's.</p>"
     )
     index = out / "index.html"
     from scorer.invocation import set_invocation
@@ -180,13 +191,123 @@ def run(out: Path) -> Path:
     atomic_write_text(
         index,
         html_page(
-            "Limen demo — two mammography panels compared",
-            [("Scenario", scenario), ("Verdicts", _verdict_summary(out)), ("Reports", body)],
+            "Limen demo — direct or indirect panel?",
+            [
+                ("The answer", _answer(out)),
+                ("Scenario", scenario),
+                ("Verdicts", _verdict_summary(out)),
+                ("Reports", body),
+            ],
+            simulated="Every image on these pages was made by Limen's physics simulator and every reader is an "
+            "observer model: the scenario, hospitals, rooms and serials are invented.",
+            dose=True,
         ),
     )
     print(f"\nDemo finished in {time.perf_counter() - t0:.0f} s. Open {index.resolve()}")
-    print(CAUTION)
+    print(f"{CAUTION} {NOT_FOR_DIAGNOSIS}")
     return index
+
+
+def _answer(out: Path) -> str:
+    """The first screen of the index: for each pair of panels the headline of its comparison (pooled
+    equal-quality kerma ratio per detail class, how sure, at what kerma), then why, pair by pair."""
+    import json
+
+    from scorer.reports.headline import headline_html, overview_html
+
+    pairs, details = [], []
+    for title, folder, pair in (
+        ("Mammography (~28 kV W/Rh)", "comparison", ("direct", "indirect")),
+        ("General radiography (RQA5)", "comparison-rad", ("direct-rad", "indirect-rad")),
+    ):
+        path = out / folder / "comparison.json"
+        if not path.is_file():
+            continue
+        head = json.loads(path.read_text(encoding="utf-8")).get("headline")
+        dets = [json.loads((out / p / "detector" / "detector.json").read_text(encoding="utf-8")) for p in pair]
+        pairs.append((title, f"{folder}/comparison.html", head))
+        details.append(
+            f"<h3>{html.escape(title)} — <a href='{folder}/comparison.html'>full comparison</a></h3>"
+            + headline_html(head, *dets, compact=True)
+        )
+    if not pairs:
+        return "<p>No comparison was written.</p>"
+    return overview_html(pairs) + "".join(details)
+
+
+def _general_radiography(out: Path) -> tuple[str, str]:
+    """The same comparison for a general-radiography pair at RQA5: flats, edges and a noise series per panel,
+    the plate at four kermas (1.25–10 µGy) scored with the NPW observer, and the two panels compared."""
+    for panel, seed in (("direct-rad", 731), ("indirect-rad", 1186)):
+        d = out / panel
+        _simulate(panel, "flat", d / "flats", seed + 1, count=4, dose_ugy=RAD_FLAT_UGY)
+        for i, angle_deg in enumerate(EDGE_ANGLES_DEG):
+            _simulate(panel, "edge", d / "edges", seed + 2 + i, edge_angle_deg=angle_deg, dose_ugy=RAD_FLAT_UGY)
+        rows = ["path,kerma_ugy"]
+        for i, k in enumerate(RAD_SERIES_UGY):
+            folder = d / "dose" / f"{k:g}uGy"
+            _simulate(
+                panel, "phantom", folder, seed + 10 + i, count=N_SERIES, dose_ugy=k, rotate_deg=PHANTOM_ROTATE_DEG
+            )
+            _simulate(panel, "flat", d / "dose-flats" / f"{k:g}uGy", seed + 20 + i, count=2, dose_ugy=k)
+            rows += [f"{p.resolve()},{k:g}" for p in sorted((d / "dose-flats" / f"{k:g}uGy").glob("*.dcm"))]
+        atomic_write_text(d / "dose-flats" / "flats.csv", "\n".join(rows) + "\n")
+        conv = str(d / "dose" / f"{RAD_SERIES_UGY[0]:g}uGy" / f"{panel}-conversion.toml")
+        _limen(
+            [
+                "detector",
+                "--flat",
+                *sorted(str(p) for p in (d / "flats").glob("*.dcm")),
+                "--edge",
+                *sorted(str(p) for p in (d / "edges").glob("*.dcm")),
+                "--kerma-ugy",
+                str(RAD_FLAT_UGY),
+                "--beam",
+                "RQA5",
+                "--conversion",
+                conv,
+                "--noise-series",
+                str(d / "dose-flats" / "flats.csv"),
+                "--replace",
+                "--out",
+                str(d / "detector"),
+            ]
+        )
+        images = sorted(str(p) for k in RAD_SERIES_UGY for p in (d / "dose" / f"{k:g}uGy").glob("*.dcm"))
+        _limen(
+            [
+                "dose-series",
+                *images,
+                "--conversion",
+                conv,
+                "--mtf",
+                str(d / "detector" / "detector.json"),
+                "--out",
+                str(d / "dose-series"),
+            ]
+        )
+    _limen(
+        [
+            "compare-detectors",
+            str(out / "direct-rad" / "detector" / "detector.json"),
+            str(out / "indirect-rad" / "detector" / "detector.json"),
+            "--label-a",
+            RAD_LABELS["direct-rad"],
+            "--label-b",
+            RAD_LABELS["indirect-rad"],
+            "--dose-a",
+            str(out / "direct-rad" / "dose-series" / "dose_series.json"),
+            "--dose-b",
+            str(out / "indirect-rad" / "dose-series" / "dose_series.json"),
+            "--replace",
+            "--out",
+            str(out / "comparison-rad"),
+        ]
+    )
+    return (
+        "general radiography (RQA5): direct vs indirect, equal-quality kerma, MTF/NNPS/DQE",
+        "comparison-rad/comparison.html",
+    )
 
 
 def _simulate_series(d: Path, panel: str, seed: int) -> str:
@@ -312,6 +433,13 @@ def _nightly(out: Path) -> list[tuple[str, str]]:
 
     plan = demo_nights(out / "nightly")
     db = str(out / "nightly" / "nightly.sqlite")
+    print(
+        "\nNightly QC, eight simulated mornings. Expected: from night 5 a simulated fault lowers the direct "
+        "panel's (HSX-SE-0417) dose by 40 % each night, so from about night 5–6 on `limen nightly` prints ALERT "
+        "lines for that panel and exits with status 1 — that is Limen catching the drift, not a demo failure. "
+        "Night 3's indirect images at 29 kV instead of 28 kV are flagged as a settings change, with no alert.",
+        flush=True,
+    )
     for i, (date, panels) in enumerate(plan.nights):
         simulate_night(plan.inbox, date, panels, n_images=5, seed=2026)
         report = ["--report", str(out / "nightly" / "trend")] if i == len(plan.nights) - 1 else []
@@ -376,6 +504,11 @@ def _reader_study(out: Path) -> list[tuple[str, str]]:
     links = [
         ("reader study: human curves, human/model factor, detector comparison", "reader-study/analysis/report.html")
     ]
+    print(
+        "\nNext, each panel's human-equivalent thresholds against the example limits: a FAIL (exit status 1) or "
+        "INDETERMINATE (exit status 3) verdict is a result the demo reports, not a demo failure.",
+        flush=True,
+    )
     for panel in ("direct", "indirect"):
         d = out / panel
         images = sorted(str(p) for p in (d / "images").glob("*.dcm"))

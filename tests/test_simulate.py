@@ -190,10 +190,10 @@ def test_detector_model_file_overrides_and_rejects_unknown_keys(tmp_path):
     from scorer.workflow import load_detector_model
 
     good = tmp_path / "panel.toml"
-    good.write_text('base = "indirect"\nlight_spread_mm = 0.06\nelectronic_noise_adu = 2.0\n')
+    good.write_text('base = "indirect"\nlight_spread_mm = 0.06\nnear_fraction = 0.0\nelectronic_noise_adu = 2.0\n')
     m = load_detector_model(good)
     assert m.conversion == "indirect" and m.light_spread_mm == 0.06 and m.electronic_noise_adu == 2.0
-    # a wider exponential LSF lowers the presampling MTF: T(f) = 1/(1 + (2πLf)²)
+    # one exponential LSF (no depth-dependent part): T(f) = 1/(1 + (2πLf)²) times the aperture sinc
     f = 3.0
     assert m.presampling_mtf(f) == pytest.approx(np.sinc(0.085 * f) / (1 + (2 * np.pi * 0.06 * f) ** 2))
     bad = tmp_path / "bad.toml"

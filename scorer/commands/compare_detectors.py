@@ -56,8 +56,14 @@ from scorer.commands.detector import alternatives_from_options, diameters_from_o
 @click.option(
     "--dose-b", type=click.Path(dir_okay=False), default=None, help="'limen dose-series' JSON of the second detector."
 )
+@click.option(
+    "--detail-classes",
+    default=None,
+    help="Classes of detail size the headline pools the kerma ratio over: ranges in mm separated by commas, an "
+    "open end left empty [default: 0-0.25,0.5- that is ≤ 0.25 mm and ≥ 0.5 mm].",
+)
 @options.json_output()
-@options.out_folder("Write comparison.json, comparison.csv and comparison.html here.")
+@options.out_folder("Write comparison.json, comparison.csv, headline.csv and comparison.html here.")
 @options.replace()
 def compare_detectors(
     detector_a,
@@ -72,11 +78,19 @@ def compare_detectors(
     scored_method,
     dose_a,
     dose_b,
+    detail_classes,
     as_json,
     out_dir,
     replace,
 ):
     """Put two detectors measured by 'limen detector' side by side."""
+    from scorer.detector.headline import parse_detail_classes
+
+    classes = parse_detail_classes(detail_classes)  # a bad option fails before any file is read
+    if detail_classes is not None and not (dose_a and dose_b):
+        raise LimenError(
+            "--detail-classes needs the dose series of both panels (--dose-a, --dose-b)", "--detail-classes"
+        )
     a, b = load_detector_json(detector_a), load_detector_json(detector_b)
     folder = OutputFolder(out_dir, replace=replace, command="compare-detectors") if out_dir else None
 
@@ -106,7 +120,9 @@ def compare_detectors(
         scored_method=scored_method,
         dose_a=da,
         dose_b=db,
+        detail_classes=classes,
     )
+    la, lb = result["labels"]
     result["inputs"] = {
         "detector_a": str(detector_a),
         "detector_b": str(detector_b),
@@ -126,6 +142,10 @@ def compare_detectors(
             for r in result["table"]
         ]
         atomic_write_text(out / "comparison.csv", pd.DataFrame(rows).to_csv(index=False))
+        if result.get("headline") and result["headline"].get("classes"):
+            from scorer.reports.headline import headline_csv
+
+            atomic_write_text(out / "headline.csv", headline_csv(result["headline"]))
         atomic_write_text(out / "comparison.html", compare_report_html(result, a, b))
         folder.finish()
     if as_json:
@@ -144,6 +164,14 @@ def compare_detectors(
         verdict = r["better"] + (f" ({r['basis']})" if r.get("basis") and r["better"] else "")
         click.echo(f"{r['quantity']:<{w}}  {fmt(r[la]):>14}  {fmt(r[lb]):>14}  {verdict}")
     click.echo("")
+    head = result.get("headline") or {}
+    if head.get("sentences") or head.get("error"):
+        click.echo("Headline (equal image quality, pooled over detail sizes):")
+        for s in head.get("sentences") or [head["error"]]:
+            click.echo(f"  {s}")
+        for s in head.get("driver_sentences") or []:
+            click.echo(f"  {s}")
+        click.echo("")
     for s in result["summary"]:
         click.echo(s)
     if result.get("equal_quality"):
@@ -154,4 +182,4 @@ def compare_detectors(
         if n.get("quantum_limited_text"):
             click.echo(f"{lab}: {n['quantum_limited_text']}.")
     if out_dir:
-        click.echo(f"wrote comparison.json and comparison.html to {out_dir}/")
+        click.echo(f"wrote comparison.json, comparison.csv and comparison.html to {out_dir}/")

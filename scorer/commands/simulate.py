@@ -20,7 +20,7 @@ from tqdm import tqdm
 from scorer.commands import options
 from scorer.images import save_conversion
 from scorer.errors import LimenError
-from scorer.detector import Pose, detector_model, simulate as run_simulation
+from scorer.detector import PRESETS, Pose, detector_model, simulate as run_simulation
 from scorer.workflow import load_detector_model, load_layout, write_simulated
 
 DEFAULT_START = _dt.datetime(2026, 11, 30, 7, 30, 0)
@@ -37,10 +37,11 @@ def image_stem(panel: str, kind: str, dose_ugy: float, index: int, edge_angle_de
 @click.option(
     "--detector",
     "detector",
-    type=click.Choice(["direct", "indirect"]),
+    type=click.Choice(list(PRESETS)),
     default="direct",
     show_default=True,
-    help="Preset panel model.",
+    help="Preset panel model: direct (a-Se) or indirect (CsI) mammography, direct-rad or indirect-rad general "
+    "radiography at RQA5 (published typical values: scorer/detector/presets.py).",
 )
 @click.option(
     "--model",

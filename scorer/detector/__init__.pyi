@@ -8,6 +8,9 @@ from . import mtf as mtf
 from . import nnps as nnps
 from . import predict as predict
 from . import simulator as simulator
+from . import panel_model as panel_model
+from . import presets as presets
+from . import headline as headline
 
 from .mtf import MTFResult as MTFResult, measure_mtf as measure_mtf, mean_mtf as mean_mtf
 from .nnps import NNPSResult as NNPSResult, measure_nnps as measure_nnps
@@ -22,12 +25,16 @@ from .predict import (
     predict_thresholds as predict_thresholds,
     predict_from_detector as predict_from_detector,
 )
-from .simulator import (
-    DetectorModel as DetectorModel,
-    Pose as Pose,
-    SimulatedImage as SimulatedImage,
+from .panel_model import DetectorModel as DetectorModel
+from .presets import (
+    PRESETS as PRESETS,
+    SPECS as SPECS,
     detector_model as detector_model,
     detector_model_from_dict as detector_model_from_dict,
+)
+from .simulator import (
+    Pose as Pose,
+    SimulatedImage as SimulatedImage,
     simulate as simulate,
     dicom_tags as dicom_tags,
 )
@@ -66,6 +73,11 @@ __all__ = [
     "nnps",
     "predict",
     "simulator",
+    "panel_model",
+    "presets",
+    "headline",
+    "PRESETS",
+    "SPECS",
     "MTFResult",
     "measure_mtf",
     "mean_mtf",

@@ -6,6 +6,7 @@ functions here validate their parsed content (errors name the file)."""
 
 from __future__ import annotations
 
+import re
 
 import numpy as np
 
@@ -138,6 +139,7 @@ def compare(
     scored_method: str = "dprime",
     dose_a: dict | None = None,
     dose_b: dict | None = None,
+    detail_classes=None,
 ) -> dict:
     """Side-by-side table, threshold rows and a plain-language summary of two detector JSONs.
 
@@ -147,16 +149,22 @@ def compare(
     thresholds enter the side-by-side table and the summary; both are listed and plotted, each under its
     own label.  A detector is called better at a point only where the two 95 % CIs do not overlap.
     ``dose_a``/``dose_b`` (``limen dose-series`` JSONs) add the kerma each panel needs for the same threshold
-    (:func:`scorer.detector.dose.compare_series`) under ``equal_quality``.
+    (:func:`scorer.detector.dose.compare_series`) under ``equal_quality``, and the headline — that ratio
+    pooled per detail class (``detail_classes``: :func:`scorer.detector.headline.parse_detail_classes`) with
+    its drivers (:func:`scorer.detector.headline.headline`) — under ``headline``.  Each label carries its
+    panel's type (direct / indirect, from the detector JSON's DICOM Detector Type) unless it names it already.
     """
     if scored_method not in SCORED_METHODS:
         raise LimenError(f"unknown scoring method {scored_method!r}; choose dprime or count", "--scored-method")
-    la, lb = labels
+    types = [panel_type(a), panel_type(b)]
+    la, lb = (typed_label(lab, t) for lab, t in zip(labels, types))
     table: list[dict] = []
     points: dict[str, list[tuple[str, str, str, float | None, float | None]]] = {}
 
     def row(quantity, va, vb, higher, group, point="", ci_a=None, ci_b=None):
         better, basis = decide(va, vb, ci_a, ci_b, higher, la, lb)
+        if group == "DQE" and any(v is not None and v > 1 for v in (va, vb)):
+            basis = (basis + "; " if basis else "") + DQE_ABOVE_1
         table.append(
             {
                 "quantity": quantity,
@@ -333,9 +341,21 @@ def compare(
         from scorer.detector.dose import compare_series
 
         equal = compare_series(dose_a, dose_b, (la, lb), a, b)
+    head = None
+    if dose_a is not None and dose_b is not None:
+        from scorer.detector.headline import headline, parse_detail_classes
+
+        classes = detail_classes if isinstance(detail_classes, list) else parse_detail_classes(detail_classes)
+        try:
+            head = headline(dose_a, dose_b, (la, lb), a, b, classes)
+        except LimenError as exc:
+            head = {"error": str(exc), "classes": [], "sentences": []}
     noise = {lab: (det.get("noise_series") or {}) for lab, det in ((la, a), (lb, b)) if det.get("noise_series")}
     return {
         "labels": [la, lb],
+        "panel_types": {la: types[0], lb: types[1]},
+        "simulated": simulated_inputs({la: a, lb: b}, {la: dose_a, lb: dose_b}),
+        "headline": head,
         "table": table,
         "thresholds": thresholds,
         "summary": summary,
@@ -350,6 +370,44 @@ def compare(
             {f"{k:g}": v for k, v in m_alternatives.items()} if isinstance(m_alternatives, dict) else m_alternatives
         ),
     }
+
+
+DQE_ABOVE_1 = "DQE above 1 — not physical: check the kerma, q and the conversion function (flagged)"
+
+
+SIMULATOR = "Limen simulation"  # the Manufacturer Limen's simulator writes into its DICOM files
+
+
+def simulated_inputs(detectors: dict[str, dict], series: dict[str, dict | None]) -> str | None:
+    """A sentence naming the inputs made by Limen's simulator (flats and edges by their DICOM Manufacturer,
+    dose-series images by their count), or None when none was."""
+    parts = []
+    for lab, det in detectors.items():
+        what = []
+        if ((det or {}).get("panel") or {}).get("manufacturer") == SIMULATOR:
+            what.append("flat fields and edges")
+        groups = (series.get(lab) or {}).get("groups") or []
+        n_sim = sum(int(g.get("n_simulated") or 0) for g in groups)
+        if n_sim:
+            n_all = sum(int(g.get("n_images") or 0) for g in groups)
+            what.append(f"{n_sim} of {n_all} dose-series image(s)")
+        if what:
+            parts.append(f"{lab}: {' and '.join(what)}")
+    if not parts:
+        return None
+    return "Made by Limen's physics simulator, not by an X-ray unit — " + "; ".join(parts) + "."
+
+
+def panel_type(det: dict) -> str | None:
+    """ "direct" / "indirect" (…) from a detector JSON's ``panel`` block (DICOM Detector Type), else None."""
+    return (det.get("panel") or {}).get("type")
+
+
+def typed_label(label: str, kind: str | None) -> str:
+    """The label with the panel's type beside it, unless it names the type already."""
+    if not kind or re.search(rf"(?<![a-z]){re.escape(kind.lower())}(?![a-z])", label.lower()):
+        return label
+    return f"{label} ({kind})"
 
 
 def scored_source(observer: str, method: str) -> str:

@@ -268,6 +268,7 @@ class DetectorMetrics:
     warnings: list[str] = field(default_factory=list)
     predicted: list[dict] | None = None
     noise_series: dict | None = None
+    panel: dict | None = None  # what the images' DICOM headers say of the panel (panel_from_metadata)
 
     @property
     def edge_angle_deg(self):
@@ -309,9 +310,33 @@ class DetectorMetrics:
             else 0.5 / float(np.sqrt(self.pixel_spacing_mm[0] * self.pixel_spacing_mm[1])),
             "predicted": self.predicted,
             "noise_series": self.noise_series,
+            "panel": self.panel,
             "inputs": self.inputs,
             "warnings": list(self.warnings),
         }
+
+
+#: DICOM Detector Type (0018,7004) → the conversion principle Limen names panels by
+PANEL_TYPES = {"DIRECT": "direct", "SCINTILLATOR": "indirect", "STORAGE": "storage phosphor", "FILM": "film"}
+
+
+def panel_from_metadata(images: list[Image]) -> dict | None:
+    """The panel as the images' DICOM headers describe it: type (direct / indirect, from Detector Type),
+    Detector ID, serial, station and manufacturer (the first image that has any of them); None without."""
+    for im in images:
+        md = im.metadata
+        if md is None or not (md.detector_type or md.detector_id or md.device_serial or md.station_name):
+            continue
+        dtype = (md.detector_type or "").strip().upper() or None
+        return {
+            "type": PANEL_TYPES.get(dtype or "", None),
+            "detector_type": dtype,
+            "detector_id": md.detector_id,
+            "device_serial": md.device_serial,
+            "station_name": md.station_name,
+            "manufacturer": md.manufacturer,
+        }
+    return None
 
 
 def _spacing(images: list[Image]) -> tuple[float, float] | None:

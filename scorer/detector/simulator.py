@@ -24,6 +24,10 @@ chain, for each pixel, is:
    exponential line-spread function of length L, i.e. the radially symmetric
    transfer function ``T_light(f) = 1 / (1 + (2πLf)²)``, applied in the Fourier
    domain to signal *and* noise alike (so the indirect NPS falls with frequency).
+   The spread may depend on depth (:mod:`scorer.detector.panel_model`): a fraction w
+   of the quanta spread with a shorter length; each depth's share of the quanta is
+   drawn (binomial thinning) and spread on its own, so the noise power passes as
+   Σ w·T² while the signal passes as Σ w·T (Lubberts effect).
    The photodiode fill factor (< 1) is the fraction of light collected; it scales
    the gain, which raises the relative weight of the electronic noise.
    The mean signal is spread in the continuous domain before it is integrated over
@@ -44,7 +48,8 @@ The stored values are linear in air kerma; :attr:`SimulatedImage.conversion` is
 the exact linear conversion function ``PV = offset + gain · K``.
 
 Default panel: a 24 × 30 cm mammography field with 85 µm pixels
-(2816 × 3520 pixels); ``small=True`` crops the field to what the phantom needs
+(2816 × 3520 pixels); the presets and the published values they rest on are in
+:mod:`scorer.detector.presets`; ``small=True`` crops the field to what the phantom needs
 (or 512 × 512 for flat fields and edges) with the same physics.
 
 References
@@ -57,10 +62,8 @@ References
 
 from __future__ import annotations
 
-import dataclasses
 import datetime as _dt
 from dataclasses import dataclass, field, asdict
-from pathlib import PurePath
 
 import numpy as np
 from scipy import fft as sfft
@@ -68,149 +71,13 @@ from scipy import fft as sfft
 from scorer.images.conversion import ConversionFunction
 from scorer.phantom.disc import SUPERSAMPLE, disc_coverage_patch
 from scorer.errors import LimenError
+from scorer.detector.panel_model import DetectorModel
+from scorer.detector.presets import PRESETS, detector_model, detector_model_from_dict  # noqa: F401 (re-exported)
 from scorer.phantom.geometry import PhantomTransform
 from scorer.phantom.layout import Layout
 
 SMALL_FIELD_PX = 512
 SMALL_MARGIN_MM = 6.0
-
-
-@dataclass(frozen=True)
-class DetectorModel:
-    """Physical parameters of a simulated flat panel (every one overridable from a TOML file).
-
-    Values are plausible for current mammography panels; they are inventions for
-    the demo, chosen from common practice, not the data of any product.
-    """
-
-    name: str
-    conversion: str  # "direct" (a-Se) or "indirect" (CsI + a-Si:H)
-    detector_type: str  # DICOM Detector Type: DIRECT or SCINTILLATOR
-    pixel_pitch_mm: float = 0.085
-    rows: int = 2816  # 239.4 mm
-    cols: int = 3520  # 299.2 mm
-    q_per_mm2_ugy: float = 5000.0  # photons per mm² per µGy, ~28 kV W/Rh mammography beam (from memory)
-    qde: float = 0.90  # quantum detection efficiency η
-    swank: float = 0.95  # Swank factor A_S
-    fill_factor: float = 1.0  # fraction of charge/light collected by the pixel
-    light_spread_mm: float = 0.0  # exponential LSF length L (0 = no spread)
-    adu_per_quantum: float = 2.4  # ADU per detected quantum at full collection
-    electronic_noise_adu: float = 3.0
-    gain_nonuniformity: float = 0.0  # relative SD of a fixed pixel-gain pattern (structure noise); 0 = off
-    pattern_seed: int = 0  # seed of that fixed pattern (the same for every image of the panel)
-    offset_adu: float = 60.0
-    bits: int = 14
-    kvp: float = 28.0
-    detector_id: str = ""
-    station_name: str = ""
-    institution: str = ""
-    manufacturer: str = "Limen simulation"
-
-    @property
-    def gain_adu_per_ugy(self) -> float:
-        """Mean pixel value per µGy above the offset (the conversion function's slope)."""
-        p2 = self.pixel_pitch_mm**2
-        return self.q_per_mm2_ugy * p2 * self.qde * self.adu_per_quantum * self.fill_factor
-
-    def conversion_function(self) -> ConversionFunction:
-        return ConversionFunction(
-            "linear", self.offset_adu, self.gain_adu_per_ugy, source=f"simulated panel {self.name}"
-        )
-
-    def light_transfer(self, frequency_per_mm) -> np.ndarray:
-        """Light-spread transfer function T_light(f) = 1 / (1 + (2πLf)²)."""
-        f = np.asarray(frequency_per_mm, dtype=float)
-        return 1.0 / (1.0 + (2 * np.pi * self.light_spread_mm * f) ** 2)
-
-    def presampling_mtf(self, frequency_per_mm) -> np.ndarray:
-        """Analytic presampling MTF along a pixel axis: aperture sinc × light spread."""
-        f = np.asarray(frequency_per_mm, dtype=float)
-        return np.abs(np.sinc(self.pixel_pitch_mm * f)) * self.light_transfer(f)
-
-    def with_overrides(self, **kw) -> "DetectorModel":
-        return dataclasses.replace(self, **kw)
-
-    def to_dict(self) -> dict:
-        return asdict(self)
-
-
-PRESETS: dict[str, DetectorModel] = {
-    "direct": DetectorModel(
-        name="direct",
-        conversion="direct",
-        detector_type="DIRECT",
-        qde=0.90,
-        swank=0.95,
-        fill_factor=1.0,
-        light_spread_mm=0.0,
-        adu_per_quantum=2.4,
-        electronic_noise_adu=3.0,
-        detector_id="HSX-SE-0417",
-        station_name="HARBOURSIDE-MAM2",
-        institution="Harbourside Women's Health Centre (invented)",
-    ),
-    "indirect": DetectorModel(
-        name="indirect",
-        conversion="indirect",
-        detector_type="SCINTILLATOR",
-        qde=0.80,
-        swank=0.85,
-        fill_factor=0.65,
-        light_spread_mm=0.035,
-        adu_per_quantum=3.2,
-        electronic_noise_adu=4.0,
-        detector_id="HSX-CS-2291",
-        station_name="HARBOURSIDE-MAM3",
-        institution="Harbourside Women's Health Centre (invented)",
-    ),
-}
-
-
-def detector_model(name: str) -> DetectorModel:
-    """One of the preset models, ``"direct"`` or ``"indirect"``."""
-    try:
-        return PRESETS[name]
-    except KeyError:
-        raise LimenError(
-            f"unknown detector model {name!r}; choose one of {', '.join(PRESETS)} or give a model file"
-        ) from None
-
-
-def detector_model_from_dict(data: dict, path) -> DetectorModel:
-    """A model file's parsed TOML: ``base = "direct"|"indirect"`` plus any DetectorModel field to override.
-
-    ``path`` names the file in errors; :func:`scorer.workflow.load_detector_model` reads it.
-    """
-    path = PurePath(path)
-    data = dict(data)
-    base = detector_model(str(data.pop("base", "direct")))
-    names = {f.name: f for f in dataclasses.fields(DetectorModel)}
-    kw = {}
-    for k, v in data.items():
-        if k not in names:
-            raise LimenError(f"unknown detector-model key {k!r}", path)
-        kw[k] = v
-    try:
-        model = base.with_overrides(**kw)
-        _validate_model(model)
-    except (TypeError, ValueError) as exc:
-        raise LimenError(f"bad detector model: {exc}", path) from None
-    return model
-
-
-def _validate_model(m: DetectorModel) -> None:
-    if m.conversion not in ("direct", "indirect"):
-        raise ValueError("conversion must be 'direct' or 'indirect'")
-    for k in ("pixel_pitch_mm", "q_per_mm2_ugy", "adu_per_quantum"):
-        if not getattr(m, k) > 0:
-            raise ValueError(f"{k} must be positive")
-    for k in ("qde", "swank", "fill_factor"):
-        if not 0 < getattr(m, k) <= 1:
-            raise ValueError(f"{k} must lie in (0, 1]")
-    if m.light_spread_mm < 0 or m.electronic_noise_adu < 0:
-        raise ValueError("light_spread_mm and electronic_noise_adu must be ≥ 0")
-    if not 0 <= m.gain_nonuniformity < 0.5:
-        raise ValueError("gain_nonuniformity must lie in [0, 0.5)")
 
 
 @dataclass
@@ -229,25 +96,37 @@ class SimulatedImage:
 
 
 # --------------------------------------------------------------------------- rendering
+def _spread_terms(spread_px) -> list[tuple[float, float]]:
+    """``spread_px`` as (weight, L in pixels) pairs: a float L is [(1, L)]; zero-length terms dropped."""
+    if spread_px is None:
+        return []
+    if np.isscalar(spread_px):
+        return [(1.0, float(spread_px))] if float(spread_px) > 0 else []
+    terms = [(float(w), float(length)) for w, length in spread_px if w > 0]
+    return terms if any(length > 0 for _, length in terms) else []
+
+
 def render_discs(
-    transmission: np.ndarray, centers_rc, radii_px, contrasts, spread_px: float = 0.0, spread_supersample: int = 8
+    transmission: np.ndarray, centers_rc, radii_px, contrasts, spread_px=0.0, spread_supersample: int = 8
 ) -> None:
     """Multiply ``transmission`` in place by 1 − C·coverage for each disc.
 
-    With ``spread_px`` > 0 (the exponential LSF length L in pixels) the disc is first
-    spread by T(f) = 1/(1 + (2πLf)²) in the continuous domain — on a local grid
-    ``spread_supersample`` times finer than the pixels — and then integrated over each
-    pixel, so the signal carries the true presampling MTF (aperture × spread) with its
-    aliasing, not a spread applied after sampling.
+    With ``spread_px`` > 0 (the exponential LSF length L in pixels, or a list of (weight, L) for a
+    depth-dependent spread) the disc is first spread by T(f) = Σ w/(1 + (2πLf)²) in the continuous
+    domain — on a local grid ``spread_supersample`` times finer than the pixels — and then integrated over
+    each pixel, so the signal carries the true presampling MTF (aperture × spread) with its aliasing, not a
+    spread applied after sampling.
     """
+    terms = _spread_terms(spread_px)
+    longest = max((length for _, length in terms), default=0.0)
     for rc, rad, c in zip(np.atleast_2d(centers_rc), np.atleast_1d(radii_px), np.atleast_1d(contrasts)):
-        if spread_px <= 0:
+        if not terms:
             patch = disc_coverage_patch(rc, float(rad), transmission.shape)
             if patch is not None:
                 rs, cs, cov = patch
                 transmission[rs, cs] *= 1.0 - c * cov
             continue
-        margin = int(np.ceil(12.0 * spread_px)) + 2
+        margin = int(np.ceil(12.0 * longest)) + 2
         r0 = int(np.floor(rc[0] - rad)) - margin
         c0 = int(np.floor(rc[1] - rad)) - margin
         n = int(np.ceil(2 * rad)) + 2 * margin + 2
@@ -255,9 +134,8 @@ def render_discs(
         sub = (np.arange(n * S) + 0.5) / S - 0.5
         inside = ((r0 + sub[:, None] - rc[0]) ** 2 + (c0 + sub[None, :] - rc[1]) ** 2) <= rad * rad
         f = np.hypot(sfft.fftfreq(n * S, d=1.0 / S)[:, None], sfft.rfftfreq(n * S, d=1.0 / S)[None, :])
-        spread = sfft.irfft2(
-            sfft.rfft2(inside.astype(np.float64)) / (1.0 + (2 * np.pi * spread_px * f) ** 2), s=inside.shape
-        )
+        transfer = sum(w / (1.0 + (2 * np.pi * length * f) ** 2) for w, length in terms)
+        spread = sfft.irfft2(sfft.rfft2(inside.astype(np.float64)) * transfer, s=inside.shape)
         cov = spread.reshape(n, S, n, S).mean(axis=(1, 3))
         rs0, cs0 = max(r0, 0), max(c0, 0)
         rs1, cs1 = min(r0 + n, transmission.shape[0]), min(c0 + n, transmission.shape[1])
@@ -270,7 +148,7 @@ def render_edge(
     angle_deg: float,
     edge_transmission: float = 0.02,
     center_rc: tuple[float, float] | None = None,
-    spread_px: float = 0.0,
+    spread_px=0.0,
 ) -> np.ndarray:
     """Transmission of a straight opaque-ish edge through ``center_rc``.
 
@@ -279,7 +157,7 @@ def render_edge(
     below).  Pixels near the edge get their coverage integrated on a 1/SUPERSAMPLE grid;
     with ``spread_px`` = L > 0 the edge is first spread by the exponential LSF
     (1/2L)·exp(−|u|/L), whose edge response is ½·exp(u/L) for u < 0 and 1 − ½·exp(−u/L)
-    for u ≥ 0.
+    for u ≥ 0 (for a list of (weight, L), the weighted sum of those responses).
     """
     rows, cols = shape
     if center_rc is None:
@@ -291,32 +169,43 @@ def render_edge(
     c = np.arange(cols)[None, :] - center_rc[1]
     dist = c * n_col + r * n_row  # signed distance (pixels) of each pixel centre
     cov = (dist > 0).astype(np.float64)
-    band = np.abs(dist) < 0.75 * (abs(n_col) + abs(n_row)) + 14.0 * spread_px
+    terms = _spread_terms(spread_px)
+    longest = max((length for _, length in terms), default=0.0)
+    band = np.abs(dist) < 0.75 * (abs(n_col) + abs(n_row)) + 14.0 * longest
     ri, ci = np.nonzero(band)
     s = SUPERSAMPLE
     sub = (np.arange(s) + 0.5) / s - 0.5
     dr = np.repeat(sub, s)
     dc = np.tile(sub, s)
     d_sub = dist[ri, ci][:, None] + dc[None, :] * n_col + dr[None, :] * n_row
-    if spread_px > 0:
-        e = np.exp(-np.abs(d_sub) / spread_px)
-        cov[ri, ci] = np.where(d_sub >= 0, 1.0 - 0.5 * e, 0.5 * e).mean(axis=1)
+    if terms:
+        resp = np.zeros_like(d_sub)
+        for w, length in terms:
+            if length > 0:
+                e = np.exp(-np.abs(d_sub) / length)
+                resp += w * np.where(d_sub >= 0, 1.0 - 0.5 * e, 0.5 * e)
+            else:
+                resp += w * (d_sub > 0)
+        cov[ri, ci] = resp.mean(axis=1)
     else:
         cov[ri, ci] = (d_sub > 0).mean(axis=1)
     return 1.0 - (1.0 - edge_transmission) * cov
 
 
-def _light_spread(image: np.ndarray, model: DetectorModel) -> np.ndarray:
-    if model.light_spread_mm <= 0:
+def _light_spread(image: np.ndarray, length_mm: float, pitch_mm: float) -> np.ndarray:
+    """Spread an image on the pixel grid by T(f) = 1/(1 + (2πLf)²) (nothing for L = 0)."""
+    if length_mm <= 0:
         return image
     rows, cols = image.shape
-    p = model.pixel_pitch_mm
-    fr = sfft.fftfreq(rows, d=p)
-    fc = sfft.rfftfreq(cols, d=p)
-    f = np.hypot(fr[:, None], fc[None, :])
+    f = np.hypot(sfft.fftfreq(rows, d=pitch_mm)[:, None], sfft.rfftfreq(cols, d=pitch_mm)[None, :])
     spec = sfft.rfft2(image, workers=-1)
-    spec *= model.light_transfer(f).astype(np.float32)
+    spec *= (1.0 / (1.0 + (2 * np.pi * length_mm * f) ** 2)).astype(np.float32)
     return sfft.irfft2(spec, s=image.shape, workers=-1)
+
+
+def spread_px(model: DetectorModel) -> list[tuple[float, float]]:
+    """The model's light spread as (weight, L in pixels) pairs, for the signal renderers."""
+    return [(w, length / model.pixel_pitch_mm) for w, length in model.spread_components()]
 
 
 def gain_pattern(model: DetectorModel, shape: tuple[int, int]) -> np.ndarray:
@@ -339,14 +228,24 @@ def expose(transmission: np.ndarray, model: DetectorModel, dose_ugy: float, rng:
     excess = 1.0 / model.swank - 1.0
     g = model.adu_per_quantum * model.fill_factor
     f32 = np.float32
-    if model.light_spread_mm > 0:
+    comps = model.spread_components()
+    if comps:
         # the mean (λ) was rendered with the spread already applied before sampling; the quantum
         # and Swank fluctuations are spread on the pixel grid (the Swank term's variance uses the
-        # mean count, λ·(1/A_S − 1), instead of the drawn one: a difference of order 1/√λ)
-        fluct = (n - lam).astype(f32)
-        if excess > 0:
-            fluct += np.sqrt(lam * excess).astype(f32) * rng.standard_normal(n.shape, dtype=f32)
-        signal = lam + _light_spread(fluct, model)
+        # mean count, λ·(1/A_S − 1), instead of the drawn one: a difference of order 1/√λ).  With a
+        # depth-dependent spread each depth's share of the quanta is drawn and spread on its own
+        # (Lubberts effect: noise power Σ w·T², signal Σ w·T).
+        signal = lam.astype(np.float64)
+        left, w_left = n, 1.0  # quanta not yet given a depth, and their share of the weights
+        for i, (w, length) in enumerate(comps):
+            lam_i = lam * w
+            # binomial thinning splits the Poisson count into independent Poisson counts per depth
+            n_i = left if i == len(comps) - 1 else rng.binomial(left, min(w / w_left, 1.0))
+            left, w_left = left - n_i, w_left - w
+            fluct = (n_i - lam_i).astype(f32)
+            if excess > 0:
+                fluct += np.sqrt(lam_i * excess).astype(f32) * rng.standard_normal(n.shape, dtype=f32)
+            signal += _light_spread(fluct, length, model.pixel_pitch_mm)
         signal *= g
         if model.gain_nonuniformity > 0:
             signal *= gain_pattern(model, n.shape)
@@ -406,7 +305,7 @@ def phantom_transmission(
     shape: tuple[int, int],
     pixel_mm: float,
     magnification: float,
-    spread_px: float = 0.0,
+    spread_px=0.0,
 ) -> np.ndarray:
     """Transmission map of the plate — its discs (signal sites only) and markers — as the
     pixels see it (aperture-integrated, and spread first when ``spread_px`` > 0)."""
@@ -474,7 +373,7 @@ def simulate(
         if shape is None:
             shape = _phantom_field_shape(layout, pose, p) if small else (model.rows, model.cols)
         tf = phantom_transform(layout, pose, shape, p)
-        trans = phantom_transmission(layout, tf, shape, p, pose.magnification, model.light_spread_mm / p)
+        trans = phantom_transmission(layout, tf, shape, p, pose.magnification, spread_px(model))
         truth.update(
             layout=layout.source_path,
             layout_name=layout.name,
@@ -487,7 +386,7 @@ def simulate(
         trans = np.ones(shape, dtype=np.float64)
     elif kind == "edge":
         shape = shape or ((SMALL_FIELD_PX, SMALL_FIELD_PX) if small else (model.rows, model.cols))
-        trans = render_edge(shape, edge_angle_deg, spread_px=model.light_spread_mm / p)
+        trans = render_edge(shape, edge_angle_deg, spread_px=spread_px(model))
         truth["edge_angle_deg"] = float(edge_angle_deg)
     else:
         raise LimenError(f"unknown image kind {kind!r}; choose phantom, flat or edge")
@@ -501,7 +400,7 @@ def simulate(
 def dicom_tags(model: DetectorModel, acquired: _dt.datetime, dose_ugy: float) -> dict:
     """DICOM attributes for a simulated raw image (PS3.3 keywords)."""
     return {
-        "Modality": "MG",
+        "Modality": model.modality,
         "PresentationIntentType": "FOR PROCESSING",
         "DetectorType": model.detector_type,
         "DetectorID": model.detector_id,

@@ -76,10 +76,10 @@ def _figure(svg: str, caption: str) -> str:
     return f"<figure>{svg}<figcaption>{html.escape(caption)}</figcaption></figure>"
 
 
-def _mtf_plot(curves: dict[str, dict], nyquist: dict[str, float | None]) -> str:
+def _mtf_plot(curves: dict[str, dict], nyquist: dict[str, float | None], colours: dict[str, str] | None = None) -> str:
     fig, ax = _fig("Presampling MTF", "spatial frequency (cycles/mm)", "MTF")
     for label, m in curves.items():
-        line = ax.plot(m["frequency_per_mm"], m["value"], label=label)
+        line = ax.plot(m["frequency_per_mm"], m["value"], label=label, color=(colours or {}).get(label))
         _band(ax, m["frequency_per_mm"], m.get("ci_low"), m.get("ci_high"), line[0].get_color())
     for n in nyquist.values():
         if n:
@@ -104,23 +104,42 @@ def _band(ax, f, lo, hi, color) -> None:
     )
 
 
-def _nnps_plot(curves: dict[str, tuple]) -> str:
+def _nnps_plot(curves: dict[str, tuple], colours: dict[str, str] | None = None) -> str:
     fig, ax = _fig("Normalised noise power spectrum", "spatial frequency (cycles/mm)", "NNPS (mm²)", logy=True)
     for label, (f, v, *ci) in curves.items():
-        line = ax.plot(f, v, label=label)
+        line = ax.plot(f, v, label=label, color=(colours or {}).get(label))
         if ci:
             _band(ax, f, ci[0], ci[1], line[0].get_color())
     ax.legend()
     return figure_to_svg(fig)
 
 
-def _dqe_plot(curves: dict[str, tuple]) -> str:
+def _dqe_plot(curves: dict[str, tuple], colours: dict[str, str] | None = None) -> str:
+    """DQE curves with CI bands; values above 1 (not physical) stay visible and are flagged on the plot."""
     fig, ax = _fig("Detective quantum efficiency", "spatial frequency (cycles/mm)", "DQE")
+    top = 1.05
     for label, (f, v, *ci) in curves.items():
-        line = ax.plot(f, v, label=label)
+        line = ax.plot(f, v, label=label, color=(colours or {}).get(label))
         if ci:
             _band(ax, f, ci[0], ci[1], line[0].get_color())
-    ax.set_ylim(0, 1.05)
+        vv = np.asarray([np.nan if x is None else x for x in v], dtype=float)
+        if np.nanmax(vv, initial=0.0) > 1.0:
+            top = max(top, float(np.nanmax(vv)) * 1.05)
+            above = vv > 1.0
+            ax.plot(np.asarray(f)[above], vv[above], "x", color="#a4161a", ms=5)
+    if top > 1.05:
+        ax.axhline(1.0, color="#a4161a", lw=0.8, ls="--")
+        ax.text(
+            0.98,
+            0.97,
+            "DQE > 1 (×): not physical — flagged",
+            transform=ax.transAxes,
+            ha="right",
+            va="top",
+            color="#a4161a",
+            fontsize=8,
+        )
+    ax.set_ylim(0, top)
     ax.legend()
     return figure_to_svg(fig)
 
@@ -149,19 +168,49 @@ def _nnps_2d_plot(nnps) -> str:
     return figure_to_svg(fig)
 
 
-def _thresholds_plot(series: dict[str, list[dict]]) -> str:
+def _thresholds_plot(series: dict[str, list[dict]], colours: dict[str, str] | None = None) -> str:
+    """Threshold contrast against diameter: one colour per panel (``colours`` maps a series name's leading
+    panel label to its colour), dashed for predictions, markers per scoring method, 95 % CIs as error bars."""
     fig, ax = _fig("Threshold contrast", "disc diameter (mm)", "threshold contrast (%)", logy=True)
     ax.set_xscale("log")
-    plain_log_ticks(ax)
-    for label, rows in series.items():
+    for i, (label, rows) in enumerate(series.items()):
         rows = sorted((r for r in rows if r.get("threshold_contrast") is not None), key=lambda r: r["diameter_mm"])
         if not rows:
             continue
-        ls = "--" if "predicted" in label else "-"
-        ax.plot(
-            [r["diameter_mm"] for r in rows], [100 * r["threshold_contrast"] for r in rows], ls, marker="o", label=label
-        )
-    ax.legend(fontsize=8)
+        col = next((c for name, c in (colours or {}).items() if label.startswith(name)), None)
+        predicted = "predicted" in label
+        ls = (":" if "NPWE" in label else "--") if predicted else "-"
+        marker = "" if predicted else ("s" if "count" in label else "o")
+        x = np.array([r["diameter_mm"] for r in rows])
+        y = np.array([100 * r["threshold_contrast"] for r in rows])
+        line = ax.plot(x, y, ls, marker=marker or None, ms=4, color=col, label=label, lw=1.2)
+        lo = [r.get("ci_low") for r in rows]
+        hi = [r.get("ci_high") for r in rows]
+        if any(v is not None for v in lo) and any(v is not None for v in hi):
+            lo_a = np.array([np.nan if v is None else 100 * v for v in lo])
+            hi_a = np.array([np.nan if v is None else 100 * v for v in hi])
+            ok = np.isfinite(lo_a) & np.isfinite(hi_a)
+            ax.errorbar(
+                x[ok] * (1.0 + 0.03 * (i % 3 - 1)),
+                y[ok],
+                yerr=[y[ok] - lo_a[ok], hi_a[ok] - y[ok]],
+                fmt="none",
+                ecolor=line[0].get_color(),
+                elinewidth=0.9,
+                capsize=2,
+            )
+        flagged = [r for r in rows if r.get("extrapolated") or r.get("censored")]
+        if flagged:
+            ax.plot(
+                [r["diameter_mm"] for r in flagged],
+                [100 * r["threshold_contrast"] for r in flagged],
+                "x",
+                color="#a4161a",
+                ms=8,
+                mew=1.5,
+            )
+    plain_log_ticks(ax)
+    ax.legend(fontsize=7)
     return figure_to_svg(fig)
 
 
@@ -356,10 +405,18 @@ def _side_by_side_rows(comparison: dict) -> list[dict]:
 
 
 def compare_report_html(comparison: dict, a: dict, b: dict, title: str = "Limen detector comparison") -> str:
-    """The ``limen compare-detectors`` report: side-by-side table, overlaid curves, summary."""
+    """The ``limen compare-detectors`` report: the headline first (when both dose series were given), then
+    the summary, side-by-side table, overlaid curves (panel A blue, panel B orange throughout)."""
+    from scorer.reports.headline import PANEL_COLOURS, headline_html
+
     la, lb = comparison["labels"]
+    colours = {la: PANEL_COLOURS[0], lb: PANEL_COLOURS[1]}
     method = {"dprime": "d′ method", "count": "count method"}.get(comparison.get("scored_method", "dprime"), "")
-    sections = [
+    sections = []
+    if comparison.get("headline"):
+        sections.append(("The answer: air kerma for equal image quality", headline_html(comparison["headline"], a, b)))
+    first = len(sections)  # where the summary goes; the equal-quality and noise sections follow it
+    sections += [
         (
             "Summary",
             "<ul>"
@@ -384,7 +441,11 @@ def compare_report_html(comparison: dict, a: dict, b: dict, title: str = "Limen 
             (
                 "MTF",
                 _figure(
-                    _mtf_plot({la: a["mtf"], lb: b["mtf"]}, {la: a.get("nyquist_per_mm"), lb: b.get("nyquist_per_mm")}),
+                    _mtf_plot(
+                        {la: a["mtf"], lb: b["mtf"]},
+                        {la: a.get("nyquist_per_mm"), lb: b.get("nyquist_per_mm")},
+                        colours,
+                    ),
                     "Mean presampling MTF of each detector (dotted: Nyquist).",
                 ),
             )
@@ -403,7 +464,8 @@ def compare_report_html(comparison: dict, a: dict, b: dict, title: str = "Limen 
                                 d["nnps"].get("ci_high"),
                             )
                             for lab, d in ((la, a), (lb, b))
-                        }
+                        },
+                        colours,
                     ),
                     "Mean of the two axis cuts; NNPS scales as 1/kerma, so compare at equal kerma.",
                 ),
@@ -423,9 +485,10 @@ def compare_report_html(comparison: dict, a: dict, b: dict, title: str = "Limen 
                                 d["dqe"].get("ci_high"),
                             )
                             for lab, d in ((la, a), (lb, b))
-                        }
+                        },
+                        colours,
                     ),
-                    "Headline DQE of each detector (bands: 95 % CIs).",
+                    "Headline DQE of each detector (bands: 95 % CIs; a DQE above 1 is marked ×, flagged).",
                 ),
             )
         )
@@ -438,7 +501,7 @@ def compare_report_html(comparison: dict, a: dict, b: dict, title: str = "Limen 
                     "diameter (mm)": r["diameter_mm"],
                     f"kerma ratio {lb}/{la} (95 % CI)": "—"
                     if r.get("ratio") is None
-                    else f"{r['ratio']:.3g} ({r['ci_low']:.3g}–{r['ci_high']:.3g})",
+                    else f"{r['ratio']:.3g} ({_num(r.get('ci_low'))}–{_num(r.get('ci_high'))})",
                     "predicted from MTF, NNPS and noise": "—"
                     if r.get("predicted_ratio") is None
                     else f"{r['predicted_ratio']:.3g}",
@@ -448,17 +511,18 @@ def compare_report_html(comparison: dict, a: dict, b: dict, title: str = "Limen 
                 }
             )
         sections.insert(
-            1,
+            first + 1,
             (
-                "Equal image quality: the air kerma each panel needs",
-                "<ul>"
+                "Equal image quality per diameter, at each diameter's own reference kerma",
+                "<details><summary>The ratio at the centre of each diameter's own dose series, with CIs from "
+                "draws of the two fits (the headline above compares every diameter at one kerma)</summary><ul>"
                 + "".join(f"<li>{html.escape(s)}</li>" for s in eq["sentences"])
                 + "</ul>"
                 + table_html(rows)
                 + f"<p class='note'>{html.escape(eq['note'])}; measured from the "
                 "dose series (scored thresholds fitted as a·K^(−β)); the predicted ratio uses each "
                 "panel's MTF and NNPS (Fourier NPW) carried to other kermas by its noise components, and "
-                "has no CI.</p>",
+                "has no CI.</p></details>",
             ),
         )
     nc = comparison.get("noise_components") or {}
@@ -480,7 +544,7 @@ def compare_report_html(comparison: dict, a: dict, b: dict, title: str = "Limen 
             row["where quantum noise dominates"] = n.get("quantum_limited_text") or ""
             rows.append(row)
         sections.insert(
-            2 if eq else 1,
+            first + (2 if eq and eq.get("ratios") else 1),
             (
                 "Noise components",
                 table_html(rows, left=("detector", "where quantum noise dominates"))
@@ -497,7 +561,9 @@ def compare_report_html(comparison: dict, a: dict, b: dict, title: str = "Limen 
             (
                 "Threshold contrast: predicted and scored",
                 _figure(
-                    _thresholds_plot(series), "Dashed: predicted from MTF and NNPS; solid: scored from phantom images."
+                    _thresholds_plot(series, colours),
+                    f"Blue: {la}; orange: {lb}. Dashed/dotted: predicted (NPW/NPWE) from MTF and NNPS; solid: "
+                    "scored from phantom images, with 95 % CIs; red ×: extrapolated or censored.",
                 )
                 + table_html(
                     *display_records(
@@ -508,7 +574,17 @@ def compare_report_html(comparison: dict, a: dict, b: dict, title: str = "Limen 
             )
         )
     sections.append(("Method", _METHOD))
-    return html_page(title, sections, meta={"inputs": comparison.get("inputs")})
+    return html_page(
+        title,
+        sections,
+        meta={"inputs": comparison.get("inputs")},
+        simulated=comparison.get("simulated"),
+        dose=bool(eq or comparison.get("headline")),
+    )
+
+
+def _num(v) -> str:
+    return "∞ (unbounded)" if v is None or not np.isfinite(v) else f"{v:.3g}"
 
 
 def _fitted_variance(comp: dict, kerma_ugy: float) -> str:

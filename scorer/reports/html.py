@@ -25,6 +25,14 @@ CAUTION = (
     "regulations, national protocols and licensed practice prevail over anything shown here."
 )
 
+#: every page: Limen's numbers are for quality control of equipment, never for diagnosing a patient
+NOT_FOR_DIAGNOSIS = "Not for clinical diagnosis: Limen measures equipment, not patients."
+#: pages that speak of air kerma (README, "Dose series"): the choice of a clinical dose is not Limen's
+DOSE_CAUTION = (
+    "These numbers describe simulated or measured images under the stated model; choosing a clinical dose is a "
+    "decision for a qualified medical physicist under local regulations, never for this tool alone."
+)
+
 _STYLE = """
 body{font-family:system-ui,-apple-system,Segoe UI,Roboto,sans-serif;margin:2em auto;max-width:70em;color:#1b1b1b;
 line-height:1.45}
@@ -35,6 +43,10 @@ th{background:#eef2f5} td.l,th.l{text-align:left}
 .caution{background:#fff6e0;border-left:5px solid #d08a00;padding:.6em 1em;margin:1em 0}
 .pass{color:#106b21;font-weight:600}.fail{color:#a4161a;font-weight:600}.indeterminate{color:#8a6d00;font-weight:600}
 .meta{color:#555;font-size:.85em} figure{margin:1em 0} figcaption{color:#444;font-size:.9em}
+.simulated{background:#fde8e8;border-left:5px solid #a4161a;padding:.5em 1em;margin:1em 0}
+.answer{background:#eef6ee;border-left:5px solid #2b7a3d;padding:.4em 1em;margin:.6em 0}
+.answer li{margin:.25em 0} .flag{color:#a4161a;font-weight:600}
+details summary{cursor:pointer;color:#234} pre{white-space:pre-wrap;word-break:break-all}
 """
 
 
@@ -105,16 +117,30 @@ def provenance() -> dict:
     return out
 
 
-def html_page(title: str, sections: list[tuple[str, str]], meta: dict | None = None) -> str:
-    """A self-contained HTML page: title, caution, then (heading, html) sections, then provenance."""
+def html_page(
+    title: str,
+    sections: list[tuple[str, str]],
+    meta: dict | None = None,
+    *,
+    simulated: str | None = None,
+    dose: bool = False,
+) -> str:
+    """A self-contained HTML page: title, caution, then (heading, html) sections, then provenance.
+
+    Every page carries the physicist caution and "not for clinical diagnosis"; ``simulated`` (a sentence
+    saying which inputs were simulated) adds the simulated-data banner, ``dose`` the caution on choosing a
+    clinical dose (:data:`DOSE_CAUTION`)."""
     meta = dict(meta or {})
     meta.setdefault("provenance", provenance())
+    caution = f"{CAUTION} {NOT_FOR_DIAGNOSIS}" + (f" {DOSE_CAUTION}" if dose else "")
     parts = [
         "<!DOCTYPE html><html lang='en'><head><meta charset='utf-8'>",
         f"<title>{html.escape(title)}</title><style>{_STYLE}</style></head><body>",
         f"<h1>{html.escape(title)}</h1>",
-        f"<div class='caution'><strong>Caution.</strong> {html.escape(CAUTION)}</div>",
+        f"<div class='caution'><strong>Caution.</strong> {html.escape(caution)}</div>",
     ]
+    if simulated:
+        parts.append(f"<div class='simulated'><strong>Simulated data.</strong> {html.escape(simulated)}</div>")
     for heading, body in sections:
         if heading:
             parts.append(f"<h2>{html.escape(heading)}</h2>")

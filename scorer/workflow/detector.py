@@ -21,6 +21,7 @@ from scorer.detector.measure import (
     fit_conversion,
     measure_detector,
     measure_noise_series,
+    panel_from_metadata,
 )
 from scorer.errors import LimenError
 from scorer.images.conversion import ConversionFunction, load_conversion
@@ -245,6 +246,7 @@ def measure_detector_files(
             q_per_mm2_ugy=q_per_mm2_ugy,
             path=noise_csv,
         )
+    metrics.panel = panel_from_metadata(flats + edges + series_images)
     for w in metrics.warnings:  # the measurement's own (edge angle, NNPS, DQE): reported, not only in JSON
         warn(" ".join(str(w).split()))
     metrics.warnings = notes + [w for im in flats + edges for w in im.metadata.warnings] + metrics.warnings
