@@ -244,6 +244,7 @@ def _dose_series(out: Path) -> list[tuple[str, str]]:
                 "dose-series",
                 *images,
                 *_against_limits(out, panel),
+                "--replace",
                 "--out",
                 str(d / "dose-series"),
             ]
