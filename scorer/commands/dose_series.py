@@ -80,7 +80,8 @@ def dose_series(
 
     from scorer.files import OutputFolder
 
-    human_factor = resolve_human_factor(human_factor, factor_file, observer)
+    fitted_method = "count" if method == "count" else "dprime"  # as scorer.detector.dose.dose_series fits
+    human_factor = resolve_human_factor(human_factor, factor_file, observer, fitted_method if limits_file else None)
     layout = load_layout(layout_file)
     limits = load_limits(limits_file) if limits_file else None
     conversion = load_conversion(conversion_file) if conversion_file else None
@@ -130,6 +131,7 @@ def dose_series(
         import pandas as pd
 
         from scorer.files import atomic_write_text
+        from scorer.observer.flags import text as flag_text
         from scorer.reports.dose import dose_series_html
 
         out = folder.path
@@ -151,6 +153,7 @@ def dose_series(
                     )
                 },
                 "fom_per_ugy": f["fom_per_ugy"],
+                "flags": flag_text(p.get("flags") or []),
             }
             for g in data["groups"]
             for p, f in zip(g["thresholds"], g["figure_of_merit"])
