@@ -128,37 +128,12 @@ def dose_series(
         "limits": limits_file,
     }
     if out_dir:
-        import pandas as pd
-
         from scorer.files import atomic_write_text
-        from scorer.observer.flags import text as flag_text
-        from scorer.reports.dose import dose_series_html
+        from scorer.reports.dose import dose_series_csv, dose_series_html
 
         out = folder.path
         write_json(out / "dose_series.json", data)
-        rows = [
-            {
-                "kerma_ugy": g["kerma_ugy"],
-                "n_images": g["n_images"],
-                **{
-                    k: p[k]
-                    for k in (
-                        "diameter_mm",
-                        "threshold_contrast",
-                        "ci_low",
-                        "ci_high",
-                        "method",
-                        "observer",
-                        "censored",
-                    )
-                },
-                "fom_per_ugy": f["fom_per_ugy"],
-                "flags": flag_text(p.get("flags") or []),
-            }
-            for g in data["groups"]
-            for p, f in zip(g["thresholds"], g["figure_of_merit"])
-        ]
-        atomic_write_text(out / "dose_series.csv", pd.DataFrame(rows).to_csv(index=False))
+        atomic_write_text(out / "dose_series.csv", dose_series_csv(data))
         atomic_write_text(out / "dose_series.html", dose_series_html(data))
         folder.finish()
     if as_json:

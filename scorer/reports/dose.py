@@ -155,6 +155,25 @@ METHOD_TEXT = (
 )
 
 
+def dose_series_csv(series: dict) -> str:
+    """dose_series.csv: one row per kerma group × diameter, with the threshold's flags as one text column."""
+    import pandas as pd
+
+    keys = ("diameter_mm", "threshold_contrast", "ci_low", "ci_high", "method", "observer", "censored")
+    rows = [
+        {
+            "kerma_ugy": g["kerma_ugy"],
+            "n_images": g["n_images"],
+            **{k: p.get(k) for k in keys},
+            "fom_per_ugy": f["fom_per_ugy"],
+            "flags": flags.text(point_flags(p)),
+        }
+        for g in series["groups"]
+        for p, f in zip(g["thresholds"], g["figure_of_merit"])
+    ]
+    return pd.DataFrame(rows).to_csv(index=False)
+
+
 def _legend(series: dict) -> str:
     seen = [f for g in series.get("groups", []) for p in g["thresholds"] for f in point_flags(p)]
     seen += [f for fit in series.get("fits", []) for f in fit.get("flags") or []]

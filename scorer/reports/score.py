@@ -17,7 +17,15 @@ from scorer.files import atomic_write_text  # noqa: E402
 import scorer.observer.flags as flags  # noqa: E402
 from scorer.observer.npw import METHOD_TEXT  # noqa: E402
 from scorer.observer.psychometric import fit_psychometric  # noqa: E402
-from scorer.reports.html import error_bars, figure_to_svg, html_page, plain_log_ticks, table_html, write_json  # noqa: E402
+from scorer.reports.html import (  # noqa: E402
+    error_bars,
+    figure_to_svg,
+    html_page,
+    plain_log_ticks,
+    sparse_log_ticks,
+    table_html,
+    write_json,
+)
 
 #: DICOM Manufacturer written by `limen simulate`
 SIMULATED_MANUFACTURER = "Limen simulation"
@@ -132,7 +140,9 @@ def psychometric_plot(result):
             pass
         ax.axhline(1.0 / m, color="#999", lw=0.8, ls=":")
         ax.set_xscale("log")
+        sparse_log_ticks(ax, "x", max_ticks=4)  # few round contrasts: labels never run into each other
         ax.set_ylim(0, 1.05)
+        ax.set_yticks([0, 0.5, 1])
         ax.set_title(f"{d:g} mm", fontsize=9)
         ax.tick_params(labelsize=7)
     for ax in axes.ravel()[n:]:
