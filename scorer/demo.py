@@ -311,6 +311,13 @@ def _nightly(out: Path) -> list[tuple[str, str]]:
     night 5 and the alerts catch it (scenario in scorer/qc/simulated.py)."""
     from scorer.qc.simulated import demo_nights, simulate_night
 
+    import shutil
+
+    # the nightly part starts from an empty inbox and database every time: a second `make demo` would otherwise
+    # write the same mornings again (new DICOM UIDs, so new files) and store every session twice
+    for stale in ("nightly.sqlite", "nightly.sqlite-wal", "nightly.sqlite-shm"):
+        (out / "nightly" / stale).unlink(missing_ok=True)
+    shutil.rmtree(out / "nightly" / "inbox", ignore_errors=True)
     plan = demo_nights(out / "nightly")
     db = str(out / "nightly" / "nightly.sqlite")
     for i, (date, panels) in enumerate(plan.nights):

@@ -453,6 +453,16 @@ class _Ops:
             out.setdefault(r.group_key, []).append(_image_dict(r))
         return out
 
+    def other_sessions(self, group_key: str, session_id: int) -> list[dict]:
+        """Sessions other than ``session_id`` with the same detector, day and settings (their id and image count)."""
+        with self.transaction() as s:
+            rows = s.execute(
+                select(SessionRow.id, SessionRow.n_images, SessionRow.state).where(
+                    SessionRow.group_key == group_key, SessionRow.id != session_id
+                )
+            ).all()
+        return [{"id": r.id, "n_images": r.n_images, "state": r.state} for r in rows]
+
     # ---------------------------------------------------------------- claims
     def claim(self, group_key: str, images: list[dict], lease_s: float = DEFAULT_LEASE_S):
         """Claim a new session of ``images``; returns (session_id, token), or None when any was taken."""
