@@ -193,16 +193,18 @@ class FactorTrend:
     cov: tuple[tuple[float, float], tuple[float, float]]
     diameter_range_mm: tuple[float, float]
     p_value: float | None = None
+    degrees_of_freedom: float | None = None  # Student t for the few readers (None: normal)
 
     def at(self, diameter_mm: float, ci: float = 0.95) -> tuple[float, float, float]:
-        """Factor at ``diameter_mm`` and its CI (normal on the log scale)."""
+        """Factor at ``diameter_mm`` and its CI (normal, or Student t on the readers' df, on the log scale)."""
         from scipy import stats
 
         x = float(np.log(diameter_mm / self.reference_diameter_mm))
         (vaa, vab), (_, vbb) = self.cov
         mean = self.intercept + self.slope * x
         se = float(np.sqrt(max(vaa + x * x * vbb + 2 * x * vab, 0.0)))
-        z = float(stats.norm.ppf(0.5 + ci / 2))
+        nu = self.degrees_of_freedom
+        z = float(stats.t.ppf(0.5 + ci / 2, nu) if nu else stats.norm.ppf(0.5 + ci / 2))
         return float(np.exp(mean)), float(np.exp(mean - z * se)), float(np.exp(mean + z * se))
 
     def covers(self, diameter_mm: float) -> bool:
@@ -219,6 +221,7 @@ class FactorTrend:
             ((float(cov[0, 0]), float(cov[0, 1])), (float(cov[1, 0]), float(cov[1, 1]))),
             (float(d["diameter_range_mm"][0]), float(d["diameter_range_mm"][1])),
             None if d.get("p_value") is None else float(d["p_value"]),
+            None if d.get("degrees_of_freedom") is None else float(d["degrees_of_freedom"]),
         )
 
 

@@ -279,6 +279,8 @@ def _factor_one_method(
         lo, hi = min(lo, est), max(hi, est)
         lo, hi, df_readers = few_readers_widening(est, lo, hi, log_overall, per_reader, ci)
     trend = diameter_trend(used, np.stack(samples) if samples else None, ci)
+    if trend is not None:
+        trend["degrees_of_freedom"] = df_readers  # the same few-readers widening as the overall interval
     for r in per:
         f, flo, fhi = est, lo, hi
         if trend is not None and trend["depends_on_diameter"]:
