@@ -358,7 +358,18 @@ def report_html(a, meta: dict | None = None) -> str:
             + _table(a.pooled_curves, cols + ["n_readers"], left=["reader", by, "note"]),
         )
     )
-    sections.append(("Between-reader variation", table_html(_records(a.cv, list(a.cv.columns)), left=[by])))
+    sections.append(
+        (
+            "Between-reader variation",
+            _details(
+                f"Coefficient of variation of the readers' thresholds per {html.escape(by)} and diameter "
+                f"({len(a.cv)} rows)",
+                table_html(_records(a.cv, list(a.cv.columns)), left=[by]),
+            )
+            if len(a.cv)
+            else "<p><em>Not estimated.</em></p>",
+        )
+    )
     n_rows = len(a.reader_curves)
     sections.append(
         (
@@ -436,10 +447,13 @@ def report_html(a, meta: dict | None = None) -> str:
         )
     body = table_html(rows, left=["measure"]) if rows else ""
     if intra.get("per_reader"):
-        body += "<p>Intra-reader (first two repeats, chosen site):</p>" + table_html(
-            intra["per_reader"],
-            ["reader", "n_pairs", "observed_agreement", "kappa", "ci_low", "ci_high"],
-            left=["reader"],
+        body += _details(
+            f"Intra-reader agreement (first two repeats, chosen site; {len(intra['per_reader'])} readers)",
+            table_html(
+                intra["per_reader"],
+                ["reader", "n_pairs", "observed_agreement", "kappa", "ci_low", "ci_high"],
+                left=["reader"],
+            ),
         )
     for note in agr.get("notes", []):
         body += f"<p><em>{html.escape(note)}</em></p>"
