@@ -16,6 +16,8 @@ BENCHES = [
     "bench_nightly",
     "bench_observer_coverage",
     "bench_dose_series",
+    "bench_dose_beta",
+    "bench_human_factor",
     "bench_memory",
     "bench_web_load",
 ]
