@@ -28,6 +28,27 @@ def _max_rows(key):
 
 
 FIGURES = [
+    Figure(
+        "human_factor_coverage_count_A",
+        "human_factor.json",
+        lambda r: r["designs"][0]["methods"]["count"]["coverage_population_factor"],
+        "",
+        "≥ 0.93",
+    ),
+    Figure(
+        "human_factor_coverage_dprime_A",
+        "human_factor.json",
+        lambda r: r["designs"][0]["methods"]["dprime"]["coverage_population_factor"],
+        "",
+        "≥ 0.93",
+    ),
+    Figure(
+        "dose_beta_worst_per_diameter_coverage",
+        "dose_beta.json",
+        lambda r: r["worst_per_diameter_coverage_independent_generator"],
+        "",
+        "≥ 0.89 per diameter; 0.93–0.97 per run",
+    ),
     Figure("cli_start_ratio_to_bare_python", "bench_cli.json", lambda r: r["ratio"], "×", "≤ 3"),
     Figure("limen_help_s", "bench_cli.json", lambda r: r["limen_help_s"], "s", "< 1"),
     Figure("simulate_full_size_s", "bench_simulate.json", _max_rows("simulate_s"), "s", "< 3"),

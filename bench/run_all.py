@@ -17,6 +17,8 @@ BENCHES = [
     "bench_observer_coverage",
     "bench_dose_series",
     "bench_adaptive",
+    "bench_dose_beta",
+    "bench_human_factor",
     "bench_memory",
     "bench_web_load",
 ]

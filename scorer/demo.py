@@ -365,6 +365,7 @@ def _dose_series(out: Path) -> list[tuple[str, str]]:
                 "dose-series",
                 *images,
                 *_against_limits(out, panel),
+                "--replace",
                 "--out",
                 str(d / "dose-series"),
             ]
@@ -431,6 +432,13 @@ def _nightly(out: Path) -> list[tuple[str, str]]:
     night 5 and the alerts catch it (scenario in scorer/qc/simulated.py)."""
     from scorer.qc.simulated import demo_nights, simulate_night
 
+    import shutil
+
+    # the nightly part starts from an empty inbox and database every time: a second `make demo` would otherwise
+    # write the same mornings again (new DICOM UIDs, so new files) and store every session twice
+    for stale in ("nightly.sqlite", "nightly.sqlite-wal", "nightly.sqlite-shm"):
+        (out / "nightly" / stale).unlink(missing_ok=True)
+    shutil.rmtree(out / "nightly" / "inbox", ignore_errors=True)
     plan = demo_nights(out / "nightly")
     db = str(out / "nightly" / "nightly.sqlite")
     print(
@@ -478,11 +486,10 @@ def _reader_study(out: Path) -> list[tuple[str, str]]:
         [pd.read_csv(out / p / "score-npwe" / "responses.csv") for p in ("direct", "indirect")], ignore_index=True
     )
     human = reader_model.readers_from_responses(responses, readers, rng, n_repeats=2)
-    model = pd.concat(
-        [pd.read_csv(out / p / "score-npwe" / "trials.csv") for p in ("direct", "indirect")], ignore_index=True
-    )
     atomic_write_text(study / "reader_trials.csv", human.to_csv(index=False))
-    atomic_write_text(study / "model_trials.csv", model.to_csv(index=False))
+    # the model's responses (not only its decisions): the human/model factor is then measured for the d′ method
+    # too, which the verdicts use (like for like, issue 21)
+    atomic_write_text(study / "model_responses.csv", responses.to_csv(index=False))
     atomic_write_text(study / "reader_parameters.csv", readers.to_csv(index=False))
     print(
         f"\n6 invented readers (documented observer model, scorer/study/reader_model.py) read the demo images: "
@@ -493,7 +500,7 @@ def _reader_study(out: Path) -> list[tuple[str, str]]:
             "analyse",
             str(study / "reader_trials.csv"),
             "--model",
-            str(study / "model_trials.csv"),
+            str(study / "model_responses.csv"),
             "--by",
             "detector",
             "--replace",

@@ -148,7 +148,7 @@ def test_non_empty_out_refused_and_replace_clears_only_limens_files(images, tmp_
     assert json.loads((out / "results.json").read_text())["images"][0]["path"] == str(images[0])
 
 
-@pytest.mark.parametrize("command", ["analyse", "detector", "compare-detectors"])
+@pytest.mark.parametrize("command", ["analyse", "detector", "compare-detectors", "dose-series"])
 def test_other_commands_refuse_a_non_empty_out(command, tmp_path, images):
     out = tmp_path / "full"
     out.mkdir()
@@ -157,7 +157,13 @@ def test_other_commands_refuse_a_non_empty_out(command, tmp_path, images):
         "analyse": ["analyse", tmp_path / "none.csv"],
         "detector": ["detector", "--flat", images[0]],
         "compare-detectors": ["compare-detectors", tmp_path / "a.json", tmp_path / "b.json"],
+        # issue 21: dose-series silently overwrote another program's dose_series.json; now it refuses like score
+        "dose-series": ["dose-series", *images, "--layout", MINI, "--kerma-csv", tmp_path / "kerma.csv"],
     }[command]
+    if command == "dose-series":
+        (tmp_path / "kerma.csv").write_text(f"path,kerma_ugy\n{images[0]},50\n{images[1]},100\n")
+        (out / "dose_series.json").write_text("{}")  # another program's file of the same name
+
     if command == "analyse":
         from scorer.study import simulate_reader_study
 
@@ -170,6 +176,9 @@ def test_other_commands_refuse_a_non_empty_out(command, tmp_path, images):
     res = CliRunner().invoke(main, [str(a) for a in args] + ["--out", str(out)])
     assert res.exit_code == 2, res.output
     assert "--replace" in res.stderr and len(res.stderr.strip().splitlines()) == 1
+    if command == "dose-series":
+        assert (out / "dose_series.json").read_text() == "{}"  # untouched
+        assert sorted(p.name for p in out.iterdir()) == ["dose_series.json", "x.txt"]
 
 
 def _simulate_args(out, *extra):

@@ -76,7 +76,7 @@ SHARED_OPTIONS = {
     "score": "--layout --observer --method --limits --human-factor --human-factor-from --conversion --mtf "
     "--pixel-spacing --n-boot --seed --json --out --replace",
     "dose-series": "--layout --conversion --observer --method --limits --human-factor --human-factor-from --mtf "
-    "--pixel-spacing --n-boot --seed --json --out",
+    "--pixel-spacing --n-boot --seed --json --out --replace",
     "simulate": "--layout --seed --out",
     "analyse": "--n-boot --seed --json --out --replace",
     "detector": "--layout --diameters --alternatives --conversion --json --out --replace",

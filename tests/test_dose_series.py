@@ -459,3 +459,50 @@ def test_compare_detectors_one_dose_series_alone_is_a_one_line_error(two_panel_s
     err = [ln for ln in res.stderr.splitlines() if ln.strip()]
     assert len(err) == 1 and err[0].startswith("error:") and "--dose-a and --dose-b" in err[0], res.stderr
     assert "Traceback" not in res.output
+
+
+def test_beta_ci_covers_the_rose_value_on_quantum_limited_images_of_our_own():
+    # Rose (1948): C_T ∝ K^(−1/2) when the relative noise falls as 1/√K.  Images from our own generator
+    # (tests/npw_truth.py, not Limen's simulator): background ∝ K, noise SD ∝ √K, white; 25 seeded series of 4
+    # kerma groups × 3 images, scored and fitted as `limen dose-series` does.  β's 95 % CI must cover 0.5 in most
+    # series at every diameter (the floor 93–97 % over 100 series and two plates and noise kinds is
+    # bench/bench_dose_beta.py; 25 series only catch a gross miscalibration: ≥ 21, i.e. ≥ 84 %).
+    from types import SimpleNamespace
+
+    import pandas as pd
+
+    from npw_truth import make_noise, mean_image
+    from scorer.detector.dose import DoseGroup, fit_series
+    from scorer.observer import ObserverConfig, SystemBlur, dprime_thresholds, score_image
+    from scorer.phantom import PhantomTransform
+
+    lay = load_layout(MINI)
+    pix = 0.085
+    shape = (int(lay.height_mm / pix) + 20, int(lay.width_mm / pix) + 20)
+    tf = PhantomTransform.from_params(
+        rotation_deg=2.3, flipped=False, magnification=1.0, phantom_center_mm=lay.center_mm,
+        center_px=((shape[0] - 1) / 2 + 0.3, (shape[1] - 1) / 2 + 0.6), pixel_mm=pix,
+    )  # fmt: skip
+    pl = SimpleNamespace(transform=tf, markers_px={})
+    kermas = (25.0, 50.0, 100.0, 180.0)
+    means = {k: mean_image(lay, tf, shape, 10.0 * k) for k in kermas}
+    cfg = ObserverConfig("npw", blur=SystemBlur(0.0))
+    hits, betas = {}, {}
+    for r in range(25):
+        rng = np.random.default_rng([77, r])
+        groups = []
+        for k in kermas:
+            frames = [
+                score_image(Image(means[k] + make_noise(rng, shape, 2.0 * np.sqrt(k)), (pix, pix)), lay, pl, cfg,
+                            image_id=f"{i}")
+                for i in range(3)
+            ]  # fmt: skip
+            curve = dprime_thresholds(pd.concat(frames, ignore_index=True), n_boot=0)
+            groups.append(DoseGroup(k, [], [p.to_dict() for p in curve.points]))
+        for f in fit_series(groups)[0]:
+            d = f["diameter_mm"]
+            hits[d] = hits.get(d, 0) + (f["beta_ci_low"] <= 0.5 <= f["beta_ci_high"])
+            betas.setdefault(d, []).append(f["beta"])
+    assert all(h >= 21 for h in hits.values()), hits
+    for d, b in betas.items():  # unbiased: the mean β within 3 standard errors of 0.5
+        assert abs(np.mean(b) - 0.5) < 3 * np.std(b, ddof=1) / np.sqrt(len(b)), (d, np.mean(b))

@@ -230,3 +230,26 @@ def test_report_folder_is_rewritten_each_night_keeping_foreign_files(scene):
     res = _nightly(["--inbox", str(inbox), "--config", str(scene["cfg"]), "--db", db, "--report", str(afile)])
     assert res.exit_code == 2 and "'--report'" in res.output and "is a file" in res.output
     assert res.output.count("\n") == 1
+
+
+def test_a_second_session_of_the_same_morning_from_other_files_is_scored_and_said(tmp_path):
+    """Issue 21: the demo wrote its nights again on a second run (new DICOM UIDs, so new files) and every
+    session was stored twice without a word.  Files already scored are never scored again (their content hash);
+    new files with the same detector, date and settings as a stored session form another session, which is
+    scored — a physicist may repeat a morning — and the run says so (text and JSON)."""
+    inbox = tmp_path / "inbox"
+    night(inbox, D1, ["direct"], seed=1)
+    cfg = write_config(tmp_path / "cfg")
+    db = str(tmp_path / "r.sqlite")
+    first = _nightly(["--inbox", str(inbox), "--config", str(cfg), "--db", db, "--json"])
+    assert first.exit_code == 0, first.output
+    assert json.loads(first.stdout)["repeated_sessions"] == []
+    again = _nightly(["--inbox", str(inbox), "--config", str(cfg), "--db", db, "--json"])
+    assert json.loads(again.stdout)["sessions_scored"] == 0  # the same files: nothing new
+    night(inbox / "again", D1, ["direct"], seed=1)  # the same morning written again: same pixels, new UIDs
+    res = _nightly(["--inbox", str(inbox), "--config", str(cfg), "--db", db, "--json"])
+    js = json.loads(res.stdout)
+    assert js["sessions_scored"] == 1 and len(js["repeated_sessions"]) == 1
+    rep = js["repeated_sessions"][0]
+    assert rep["session_date"] == D1.isoformat() and rep["images"] == 4 and len(rep["earlier_sessions"]) == 1
+    assert "already has 1 session(s) on 2026-03-02 with the same settings" in res.stderr

@@ -251,44 +251,60 @@ def test_count_form_and_dprime_ci_options(direct_set):
 
 
 def test_human_factor_from_an_analysis_file(direct_set, tmp_path):
+    # issue 21: a factor applies like for like — the d′-method verdict takes the factor measured for the d′
+    # method, and refuses one measured on the count method only (an analysis of the model's decisions)
     files = sorted(str(p) for p in direct_set.glob("*.dcm"))
-    analysis = tmp_path / "analysis.json"
-    analysis.write_text(
-        json.dumps(
-            {
-                "human_model_factor": {
-                    "observer": "npwe",
-                    "factor": 1.9,
-                    "by_observer": [{"observer": "npwe", "factor": 1.9}],
-                }
-            }
-        )
-    )
     lim = _limits(tmp_path, "human", 0.5)
-    res = _run(
-        files
-        + [
-            "--layout",
-            str(MINI),
-            "--n-boot",
-            "100",
-            "--observer",
-            "npwe",
-            "--limits",
-            str(lim),
-            "--human-factor-from",
-            str(analysis),
-            "--json",
-        ]
+
+    def analysis(name, entry):
+        path = tmp_path / name
+        path.write_text(json.dumps({"human_model_factor": {**entry, "by_observer": [entry]}}))
+        return path
+
+    both = analysis(
+        "both.json",
+        {
+            "observer": "npwe",
+            "method": "count",
+            "factor": 1.9,
+            "by_method": {
+                "count": {"method": "count", "factor": 1.9, "ci_low": 1.7, "ci_high": 2.1},
+                "dprime": {"method": "dprime", "factor": 2.2, "ci_low": 2.0, "ci_high": 2.4},
+            },
+        },
     )
+    count_only = analysis("count.json", {"observer": "npwe", "factor": 1.9})  # an analysis written before methods
+    args = files + ["--layout", str(MINI), "--n-boot", "100", "--observer", "npwe", "--limits", str(lim)]
+    res = _run(args + ["--human-factor-from", str(both), "--json"])
     js = json.loads(res.stdout)
     assert res.exit_code == {"pass": 0, "indeterminate": 3}[js["overall_verdict"]], res.output
-    assert js["human_factor"] == 1.9
+    assert js["verdict_method"] == "dprime" and js["human_factor"] == 2.2 and js["human_factor_ci"] == [2.0, 2.4]
+    res = _run(args + ["--human-factor-from", str(both), "--method", "count", "--json"])
+    assert json.loads(res.stdout)["human_factor"] == 1.9
+    res = _run(args + ["--human-factor-from", str(count_only)])
+    assert res.exit_code == 2 and "measured on the count method only" in res.output, res.output
+    assert len(res.stderr.strip().splitlines()) == 1
+    res = _run(args + ["--human-factor-from", str(count_only), "--method", "count", "--json"])
+    assert json.loads(res.stdout)["human_factor"] == 1.9
     # a factor measured for another observer must not be used
     res = _run(
-        files + ["--layout", str(MINI), "--observer", "npw", "--limits", str(lim), "--human-factor-from", str(analysis)]
+        files + ["--layout", str(MINI), "--observer", "npw", "--limits", str(lim), "--human-factor-from", str(both)]
     )
     assert res.exit_code == 2 and "no human/model factor for the NPW observer" in res.output
+    # a factor that rests on no usable cell is refused, never exported
+    none = analysis(
+        "none.json",
+        {
+            "observer": "npwe",
+            "factor": None,
+            "by_method": {
+                "count": {"factor": None, "note": "no usable cell: all 4 detector × diameter cells have a fit at a "
+                          "search bound or not estimable"},
+            },
+        },
+    )  # fmt: skip
+    res = _run(args + ["--human-factor-from", str(none), "--method", "count"])
+    assert res.exit_code == 2 and "no usable human/model factor" in res.output and "search bound" in res.output
 
 
 def test_one_image_results_json_is_valid_json(direct_set, tmp_path):

@@ -494,8 +494,9 @@ def test_bootstrap_block_predicts_the_peak_memory_of_analyse_study():
 
     st = small_study(seed=5, n_repeats=1, n_contrasts=8)
     block, where = bootstrap_block(st.trials, st.model_trials, "detector")
-    # per detector × diameter: 8 images + 4 readers + 4 readers × 8 levels; 2 × 2 stored human/model factors
-    assert block == 8 + 4 + 4 * 8 + 2 * 2 and "4 readers × 8 contrast levels" in where
+    # per detector × diameter: 8 images + 4 readers + 4 readers × 8 levels; the human/model factor keeps its draws
+    # of the 2 × 8 images and 4 readers, and per 2 × 2 cells the readers' slope and one factor (count method)
+    assert block == 8 + 4 + 4 * 8 + (2 * 8 + 4 + 2 * 2 * 2) and "4 readers × 8 contrast levels" in where
     analyse_study(st.trials, st.model_trials, n_boot=10)  # imports and caches outside the measurement
     peaks = {}
     for n_boot in (1000, 2000, 4000):

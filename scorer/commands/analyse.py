@@ -18,7 +18,8 @@ from scorer.reports import dumps
     "model_file",
     type=click.Path(dir_okay=False),
     default=None,
-    help="Model-observer trials (e.g. DIR/trials.csv from `limen score --out DIR`).",
+    help="Model observer's responses (DIR/responses.csv from `limen score --out DIR`: the human/model factor "
+    "for both threshold methods) or its trials (DIR/trials.csv: the count method only).",
 )
 @click.option(
     "--by",
@@ -45,11 +46,11 @@ def analyse(responses, model_file, by, reference, n_boot, criterion_pc, seed, as
     from scorer.files import OutputFolder
     from scorer.study import analyse_study
     from scorer.study.alternatives import m_alternatives_of
-    from scorer.workflow import load_trials
+    from scorer.workflow import load_model_table, load_trials
 
     trials = load_trials(responses)
     m_alternatives_of(trials, responses)  # a table with one candidate site is refused naming its file
-    model = load_trials(model_file) if model_file else None
+    model, model_responses = load_model_table(model_file) if model_file else (None, None)
     if model is not None:
         m_alternatives_of(model, model_file)
     folder = OutputFolder(out_dir, replace=replace, command="analyse") if out_dir else None
@@ -76,6 +77,7 @@ def analyse(responses, model_file, by, reference, n_boot, criterion_pc, seed, as
             criterion_pc=criterion_pc,
             reference=reference,
             progress=progress,
+            model_responses=model_responses,
         )
     finally:
         bar.close()
@@ -128,10 +130,25 @@ def _text_summary(a) -> str:
         lines.append("")
         lines.extend(a.comparison["sentence"])
     hm = a.human_model
-    if hm and hm.get("factor") is not None:
+    if hm:
         lines.append("")
-        ci = f"{hm['ci_low']:.3g}–{hm['ci_high']:.3g}" if _finite(hm.get("ci_low"), hm.get("ci_high")) else "—"
-        lines.append(f"human/model ({hm['observer']}) threshold factor: {hm['factor']:.3g} (95 % CI {ci})")
+        for e in (hm.get("by_method") or {"count": hm}).values():
+            label = e.get("method_label") or "count method"
+            if e.get("factor") is None:
+                lines.append(f"human/model ({hm['observer']}) threshold factor, {label}: none ({e.get('note')})")
+                continue
+            ci = f"{e['ci_low']:.3g}–{e['ci_high']:.3g}" if _finite(e.get("ci_low"), e.get("ci_high")) else "—"
+            left = f"; {e['n_excluded']} of {e['n_cells']} cells left out" if e.get("n_excluded") else ""
+            lines.append(
+                f"human/model ({hm['observer']}) threshold factor, {label}: {e['factor']:.3g} (95 % CI {ci}{left})"
+            )
+            tr = e.get("diameter_trend")
+            if tr:
+                lines.append(
+                    f"  depends on diameter: {'yes' if tr['depends_on_diameter'] else 'no'} (slope of log factor on "
+                    f"log diameter {tr['slope']:+.3f}, 95 % CI {tr['slope_ci_low']:+.3f} to {tr['slope_ci_high']:+.3f},"
+                    f" p = {tr['p_value']:.3g})"
+                )
     for note in a.notes:
         lines.append(f"note: {note}")
     return "\n".join(lines)

@@ -37,6 +37,7 @@ from scorer.commands import options
 @options.seed("Seed of the bootstrap and of the kerma CIs' draws.")
 @options.json_output()
 @options.out_folder("Write dose_series.json, dose_series.csv and dose_series.html here.")
+@options.replace()
 def dose_series(
     images,
     layout_file,
@@ -53,6 +54,7 @@ def dose_series(
     seed,
     as_json,
     out_dir,
+    replace,
 ):
     """Score phantom IMAGES taken at several air kermas: per diameter C_T(K) = a·K^(−β) with CIs.
 
@@ -76,7 +78,10 @@ def dose_series(
         score_dose_series,
     )
 
-    human_factor = resolve_human_factor(human_factor, factor_file, observer)
+    from scorer.files import OutputFolder
+
+    fitted_method = "count" if method == "count" else "dprime"  # as scorer.detector.dose.dose_series fits
+    human_factor = resolve_human_factor(human_factor, factor_file, observer, fitted_method if limits_file else None)
     layout = load_layout(layout_file)
     limits = load_limits(limits_file) if limits_file else None
     conversion = load_conversion(conversion_file) if conversion_file else None
@@ -93,6 +98,8 @@ def dose_series(
     else:
         raise LimenError("the air kerma of each image is unknown: give --kerma-csv or --conversion", "--kerma-csv")
     groups = group_by_kerma(images, kermas, source=source)
+    # the folder is checked before any scoring: a non-empty --out without --replace is refused at once
+    folder = OutputFolder(out_dir, replace=replace, command="dose-series") if out_dir else None
     bar = tqdm(total=len(images), desc="scoring kerma groups", unit="image", file=sys.stderr)
     try:
         result = score_dose_series(
@@ -121,37 +128,14 @@ def dose_series(
         "limits": limits_file,
     }
     if out_dir:
-        import pandas as pd
-
         from scorer.files import atomic_write_text
-        from scorer.reports.dose import dose_series_html
+        from scorer.reports.dose import dose_series_csv, dose_series_html
 
-        out = Path(out_dir)
-        out.mkdir(parents=True, exist_ok=True)
+        out = folder.path
         write_json(out / "dose_series.json", data)
-        rows = [
-            {
-                "kerma_ugy": g["kerma_ugy"],
-                "n_images": g["n_images"],
-                **{
-                    k: p[k]
-                    for k in (
-                        "diameter_mm",
-                        "threshold_contrast",
-                        "ci_low",
-                        "ci_high",
-                        "method",
-                        "observer",
-                        "censored",
-                    )
-                },
-                "fom_per_ugy": f["fom_per_ugy"],
-            }
-            for g in data["groups"]
-            for p, f in zip(g["thresholds"], g["figure_of_merit"])
-        ]
-        atomic_write_text(out / "dose_series.csv", pd.DataFrame(rows).to_csv(index=False))
+        atomic_write_text(out / "dose_series.csv", dose_series_csv(data))
         atomic_write_text(out / "dose_series.html", dose_series_html(data))
+        folder.finish()
     if as_json:
         click.echo(dumps(data))
         return

@@ -135,6 +135,8 @@ def nightly(
         _print(result, page)
     for e in result.errors:
         click.echo(f"warning: {e}", err=True)
+    for r in result.repeated:
+        click.echo(f"warning: {r['message']}", err=True)
     if result.alerts:
         sys.exit(1)
 

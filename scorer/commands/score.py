@@ -99,14 +99,16 @@ def score(
     fails, 2 on bad input, 3 when the overall verdict is indeterminate (a confidence
     interval straddles a limit: more images are needed).
     """
-    human_factor = resolve_human_factor(human_factor, factor_file, observer)
+    methods = ["dprime", "count"] if method == "both" else [method]
+    # the verdicts use the d′ method when it is computed: the factor must be the one measured for it
+    verdict_method = "dprime" if "dprime" in methods else "count"
+    human_factor = resolve_human_factor(human_factor, factor_file, observer, verdict_method if limits_file else None)
     if (human_factor is not None) and not limits_file:
         click.echo("warning: --human-factor/--human-factor-from has no effect without --limits", err=True)
     layout = load_layout(layout_file)
     limits = load_limits(limits_file) if limits_file else None
     conversion = load_conversion(conversion_file) if conversion_file else None
     blur = load_mtf(mtf_file) if mtf_file else None
-    methods = ["dprime", "count"] if method == "both" else [method]
     folder = OutputFolder(out_dir, replace=replace, command="score") if out_dir else None
     out = folder.path if folder else None
     overlays: list[Path] = []

@@ -54,6 +54,8 @@ import numpy as np
 from scipy import optimize, stats
 
 from scorer.errors import LimenError
+import scorer.observer.flags as flags
+from scorer.observer.flags import kerma_flags, threshold_flags
 from scorer.observer.limits import HumanFactor, Limits
 
 Z95 = 1.959963984540054
@@ -291,6 +293,8 @@ class DoseGroup:
                     "fom_per_ugy": 1.0 / (t * t * self.kerma_ugy) if ok else None,
                     "ci_low": 1.0 / (hi * hi * self.kerma_ugy) if ok and np.isfinite(hi) and hi > 0 else None,
                     "ci_high": 1.0 / (lo * lo * self.kerma_ugy) if ok and np.isfinite(lo) and lo > 0 else None,
+                    # the threshold's flags (an FOM from an extrapolated threshold is extrapolated too)
+                    "flags": [f for f in threshold_flags(p) if f != flags.ABOVE_100] if ok else [flags.NOT_ESTIMABLE],
                 }
             )
         images = getattr(self.result, "images", None) or []
@@ -374,13 +378,14 @@ def fit_series(
     diams = sorted({p["diameter_mm"] for g in groups for p in g.thresholds})
     fits = []
     for d in diams:
-        rows = []
+        rows, n_extrapolated = [], 0
         for g in groups:
             p = next((p for p in g.thresholds if np.isclose(p["diameter_mm"], d)), None)
             if p is None or p.get("censored") or p["threshold_contrast"] is None:
                 continue
             se = log_se_from_ci(p["threshold_contrast"], p["ci_low"], p["ci_high"])
             rows.append((g.kerma_ugy, p["threshold_contrast"], se))
+            n_extrapolated += flags.EXTRAPOLATED in threshold_flags(p)
         entry: dict = {
             "diameter_mm": d,
             "beta": None,
@@ -396,9 +401,13 @@ def fit_series(
             entry["note"] = str(exc)
         if fit is None:
             entry.setdefault("note", f"no threshold with a CI at {d:g} mm in two or more kerma groups")
+            entry["flags"] = [flags.NOT_ESTIMABLE]
             fits.append(entry)
             continue
         entry.update(fit.to_dict())
+        # β rests on d′ thresholds the linear observer carried beyond the contrasts offered: say so
+        entry["flags"] = [flags.EXTRAPOLATED] if n_extrapolated else []
+        entry["n_extrapolated_thresholds"] = int(n_extrapolated)
         if len(rows) >= 4:
             for name, sub in (("low", rows[:3]), ("high", rows[-3:])):
                 f2 = fit_power_law(*zip(*sub), diameter_mm=d)
@@ -412,14 +421,48 @@ def fit_series(
             for which, level in (("limit", limits.acceptable_at(d)), ("achievable", limits.achievable_at(d))):
                 if level is None:
                     continue
-                k, lo, hi = kerma_for_threshold(fit, level, factor, seed=seed)
+                f_d = None if factor is None else factor.at(d)
+                k, lo, hi = kerma_for_threshold(fit, level, f_d, seed=seed)
                 entry[f"kerma_for_{which}_ugy"] = k
                 entry[f"kerma_for_{which}_ci"] = [lo, hi]
                 entry[f"{which}_contrast"] = level
+                entry[f"kerma_for_{which}_flags"] = kerma_flags(k, fit.kermas_ugy)
+                if f_d is not None:
+                    entry["human_factor"] = f_d.value
                 if np.isfinite(k) and not (min(fit.kermas_ugy) <= k <= max(fit.kermas_ugy)):
                     entry[f"kerma_for_{which}_extrapolated"] = True
         fits.append(entry)
+    rose_test(fits)
     return fits, notes
+
+
+def rose_test(fits: list[dict]) -> None:
+    """Per diameter, the two-sided test of β = 0.5 (the quantum-limited Rose value), Holm-adjusted over the
+    diameters of the series (Holm 1979, as the reader-study page adjusts its comparisons), in place.
+
+    With nine diameters each tested at 5 %, a quantum-limited panel shows about one β whose CI excludes 0.5 by
+    chance; the adjusted p-value says whether the series as a whole departs from the Rose model.  The test uses
+    the fit's own standard error and quantile (normal, or Student t on its dof when over-dispersed).
+    """
+    from statsmodels.stats.multitest import multipletests
+
+    idx, pv = [], []
+    for i, f in enumerate(fits):
+        if f.get("beta") is None:
+            continue
+        cov = np.asarray(f["cov_alpha_beta"], dtype=float)
+        se = float(np.sqrt(cov[1, 1]))
+        if not se > 0:
+            continue
+        z = (f["beta"] - 0.5) / se
+        t_dist = f.get("overdispersion", 1) > 1 and f.get("dof", 0) >= 1
+        p = float(2 * (stats.t.sf(abs(z), f["dof"]) if t_dist else stats.norm.sf(abs(z))))
+        f["p_beta_half"] = p
+        idx.append(i)
+        pv.append(p)
+    if pv:
+        for i, q in zip(idx, multipletests(pv, method="holm")[1]):
+            fits[i]["p_beta_half_holm"] = float(q)
 
 
 def dose_series(
@@ -444,6 +487,8 @@ def dose_series(
     factor = _factor_for(limits, observer, human_factor)
     methods = ["dprime", "count"] if method == "both" else [method]
     fit_method = "dprime" if "dprime" in methods else "count"
+    if factor is not None:
+        factor = factor.for_method(fit_method)  # like for like: the factor measured for the fitted method
     out_groups, warnings = [], []
     for k, paths in groups.items():
         res = score_group(paths, methods)
@@ -471,6 +516,7 @@ def kerma_ratio(fit_a: PowerLawFit, fit_b: PowerLawFit, *, n_draws: int = 4000, 
             "ci_high": None,
             "threshold_contrast": float(np.exp(log_c)),
             "reference_kerma_ugy": fit_a.reference_kerma_ugy,
+            "flags": [flags.NOT_ESTIMABLE],
             "note": "panel B's β is not positive",
         }
     log_r = fit_b.x_center - fit_a.x_center + (fit_b.alpha - log_c) / fit_b.beta
@@ -479,13 +525,24 @@ def kerma_ratio(fit_a: PowerLawFit, fit_b: PowerLawFit, *, n_draws: int = 4000, 
     with np.errstate(over="ignore", divide="ignore", invalid="ignore"):
         lr = np.where(db[:, 1] > 0, fit_b.x_center - fit_a.x_center + (db[:, 0] - da[:, 0]) / db[:, 1], np.inf)
         lo, hi = _percentiles(np.exp(lr))
+    # panel B reaches A's threshold at K_B = R·K_ref: beyond the kermas B was measured at, the ratio rests on B's
+    # power law carried past its data
+    kerma_b = float(np.exp(log_r)) * fit_a.reference_kerma_ugy
+    fl = kerma_flags(kerma_b, fit_b.kermas_ugy)
+    note = ""
+    if flags.EXTRAPOLATED in fl:
+        side = "above the highest" if kerma_b > max(fit_b.kermas_ugy) else "below the lowest"
+        edge = max(fit_b.kermas_ugy) if kerma_b > max(fit_b.kermas_ugy) else min(fit_b.kermas_ugy)
+        note = f"extrapolated: panel B would need {kerma_b:.3g} µGy, {side} kerma it was measured at ({edge:.3g} µGy)"
     return {
         "ratio": float(np.exp(log_r)),
         "ci_low": lo,
         "ci_high": hi,
         "threshold_contrast": float(np.exp(log_c)),
         "reference_kerma_ugy": fit_a.reference_kerma_ugy,
-        "note": "",
+        "kerma_b_ugy": kerma_b,
+        "flags": fl,
+        "note": note,
     }
 
 
@@ -547,6 +604,11 @@ def ratio_sentence(d: float, r: dict, la: str, lb: str) -> str:
     ratio, lo, hi = r["ratio"], r.get("ci_low"), r.get("ci_high")
     ci = f"95 % CI {lo:.3g}–{hi:.3g}" if lo is not None and hi is not None and np.isfinite(hi) else "CI unbounded"
     at = f"at the threshold {la} reaches at {r['reference_kerma_ugy']:.3g} µGy, {100 * r['threshold_contrast']:.3g} %"
+    if flags.EXTRAPOLATED in (r.get("flags") or []) and r.get("kerma_b_ugy"):
+        at += (
+            f"; extrapolated: {lb} would need {r['kerma_b_ugy']:.3g} µGy, beyond the kermas it was measured at, so "
+            "this rests on its fitted power law"
+        )
     if lo is not None and hi is not None and lo <= 1.0 <= hi:
         return (
             f"At {d:g} mm no clear difference: {lb} needs {ratio:.3g}× the air kerma of {la} for the same "

@@ -1,6 +1,7 @@
 """Public entry points of this package (read by lazy_loader.attach_stub and type checkers)."""
 
 from . import eye as eye
+from . import flags as flags
 from . import limits as limits
 from . import bootstrap as bootstrap
 from . import mafc as mafc
@@ -41,6 +42,7 @@ from .scoring import ScoreResult as ScoreResult, score_images as score_images
 
 __all__ = [
     "eye",
+    "flags",
     "limits",
     "bootstrap",
     "mafc",

@@ -38,6 +38,7 @@ from pathlib import PurePath
 import numpy as np
 
 from scorer.errors import LimenError
+from scorer.observer.flags import threshold_flags
 
 FORMAT = "limen-limits/1"
 OBSERVERS = ("human", "npw", "npwe")
@@ -164,19 +165,83 @@ class Verdict:
     limit_interpolated: bool = False  # the limit at this diameter is interpolated between the file's diameters
     censored: str = ""  # the threshold is only known to lie above/below a contrast offered
     human_factor_ci: tuple[float, float] | None = None
+    extrapolated: bool = False  # the threshold (or the factor applied to it) lies beyond what was measured
+
+    @property
+    def flags(self) -> list[str]:
+        """Flags of the compared threshold (:mod:`scorer.observer.flags`)."""
+        return threshold_flags(asdict(self))
 
     def to_dict(self) -> dict:
-        return asdict(self)
+        d = asdict(self)
+        d["flags"] = threshold_flags(d)
+        return d
+
+
+#: how the threshold methods are named to a reader of an error message
+METHOD_NAMES = {"count": "count method", "dprime": "d′ method", "": "unspecified method"}
+
+
+@dataclass(frozen=True)
+class FactorTrend:
+    """A human/model factor that depends on diameter: log F(d) = a + b·log(d/d_ref), with the covariance of
+    (a, b) (from the reader study's bootstrap), fitted over ``diameter_range_mm``."""
+
+    intercept: float
+    slope: float
+    reference_diameter_mm: float
+    cov: tuple[tuple[float, float], tuple[float, float]]
+    diameter_range_mm: tuple[float, float]
+    p_value: float | None = None
+    degrees_of_freedom: float | None = None  # Student t for the few readers (None: normal)
+
+    def at(self, diameter_mm: float, ci: float = 0.95) -> tuple[float, float, float]:
+        """Factor at ``diameter_mm`` and its CI (normal, or Student t on the readers' df, on the log scale)."""
+        from scipy import stats
+
+        x = float(np.log(diameter_mm / self.reference_diameter_mm))
+        (vaa, vab), (_, vbb) = self.cov
+        mean = self.intercept + self.slope * x
+        se = float(np.sqrt(max(vaa + x * x * vbb + 2 * x * vab, 0.0)))
+        nu = self.degrees_of_freedom
+        z = float(stats.t.ppf(0.5 + ci / 2, nu) if nu else stats.norm.ppf(0.5 + ci / 2))
+        return float(np.exp(mean)), float(np.exp(mean - z * se)), float(np.exp(mean + z * se))
+
+    def covers(self, diameter_mm: float) -> bool:
+        lo, hi = self.diameter_range_mm
+        return lo * (1 - 1e-6) <= diameter_mm <= hi * (1 + 1e-6)
+
+    @classmethod
+    def from_dict(cls, d: dict) -> "FactorTrend":
+        cov = np.asarray(d["cov_intercept_slope"], dtype=float)
+        return cls(
+            float(d["intercept"]),
+            float(d["slope"]),
+            float(d["reference_diameter_mm"]),
+            ((float(cov[0, 0]), float(cov[0, 1])), (float(cov[1, 0]), float(cov[1, 1]))),
+            (float(d["diameter_range_mm"][0]), float(d["diameter_range_mm"][1])),
+            None if d.get("p_value") is None else float(d["p_value"]),
+            None if d.get("degrees_of_freedom") is None else float(d["degrees_of_freedom"]),
+        )
 
 
 @dataclass(frozen=True)
 class HumanFactor:
-    """Human/model threshold factor with its 95 % CI (from a reader study), applied to model thresholds."""
+    """Human/model threshold factor with its 95 % CI (from a reader study), applied to model thresholds.
+
+    ``method``: the threshold method it was measured for ("count", "dprime"; "" for a number given by hand,
+    which applies to either); it is applied only to thresholds of that method (:meth:`for_method`), and
+    ``others`` holds the same study's factors for the other methods.  ``trend``: set when the factor depends on
+    diameter; :meth:`at` then gives each diameter its own factor and CI.
+    """
 
     value: float
     ci_low: float | None = None
     ci_high: float | None = None
     source: str = ""
+    method: str = ""
+    trend: FactorTrend | None = None
+    others: tuple["HumanFactor", ...] = ()
 
     @property
     def has_ci(self) -> bool:
@@ -186,6 +251,28 @@ class HumanFactor:
             and 0 < self.ci_low <= self.value <= self.ci_high
             and np.isfinite(self.ci_high)
         )
+
+    def for_method(self, method: str) -> "HumanFactor":
+        """The factor measured for threshold ``method``; a factor of another method is refused (one line)."""
+        if not method or not self.method or self.method == method:
+            return self
+        for f in self.others:
+            if f.method == method:
+                return f
+        have = " and ".join(METHOD_NAMES.get(f.method, f.method) for f in (self, *self.others))
+        raise LimenError(
+            f"the human/model factor was measured on the {have} only, and these thresholds come from the "
+            f"{METHOD_NAMES.get(method, method)}: a factor applies like for like (give `limen analyse --model` the "
+            "model's responses.csv to measure it for the d′ method, or use --method count)",
+            self.source or "--human-factor-from",
+        )
+
+    def at(self, diameter_mm: float) -> "HumanFactor":
+        """The factor at one diameter: the trend's value and CI when it depends on diameter, else itself."""
+        if self.trend is None:
+            return self
+        v, lo, hi = self.trend.at(diameter_mm)
+        return HumanFactor(v, lo, hi, self.source, self.method)
 
 
 def human_equivalent(t: float, lo: float, hi: float, factor: HumanFactor) -> tuple[float, float, float]:
@@ -228,10 +315,13 @@ def evaluate(curve, limits: Limits, human_factor: float | None = None) -> list[V
             f"{limits.path or 'limits'}: these limits are for the {limits.observer} observer, "
             f"the thresholds come from {obs}"
         )
+    if factor is not None:
+        factor = factor.for_method(curve.method)
     out = []
     for p in curve.points:
-        if factor is not None:
-            t, lo, hi = human_equivalent(p.threshold_contrast, p.ci_low, p.ci_high, factor)
+        f_d = None if factor is None else factor.at(p.diameter_mm)
+        if f_d is not None:
+            t, lo, hi = human_equivalent(p.threshold_contrast, p.ci_low, p.ci_high, f_d)
         else:
             t, lo, hi = p.threshold_contrast, p.ci_low, p.ci_high
         acc, ach = limits.acceptable_at(p.diameter_mm), limits.achievable_at(p.diameter_mm)
@@ -251,6 +341,11 @@ def evaluate(curve, limits: Limits, human_factor: float | None = None) -> list[V
                 note + "; " if note else ""
             ) + f"threshold {'above' if censored == 'above' else 'below'} the contrasts offered"
         met = None if ach is None or not np.isfinite(t) or censored == "above" else bool(t <= ach)
+        if factor is not None and factor.trend is not None and not factor.trend.covers(p.diameter_mm):
+            lo_d, hi_d = factor.trend.diameter_range_mm
+            note = (note + "; " if note else "") + (
+                f"human/model factor extrapolated beyond the reader study's diameters ({lo_d:g}–{hi_d:g} mm)"
+            )
         interp = acc is not None and limits.is_interpolated(p.diameter_mm)
         if interp:
             note = (note + "; " if note else "") + (
@@ -269,11 +364,13 @@ def evaluate(curve, limits: Limits, human_factor: float | None = None) -> list[V
                 met,
                 p.method,
                 p.observer,
-                None if factor is None else factor.value,
+                None if f_d is None else f_d.value,
                 note,
                 interp,
                 censored,
-                (factor.ci_low, factor.ci_high) if factor is not None and factor.has_ci else None,
+                (f_d.ci_low, f_d.ci_high) if f_d is not None and f_d.has_ci else None,
+                bool(getattr(p, "extrapolated", False))
+                or (factor is not None and factor.trend is not None and not factor.trend.covers(p.diameter_mm)),
             )
         )
     return out
@@ -304,7 +401,10 @@ def parse_human_factor(data: dict, observer: str, path) -> HumanFactor:
     """The human/model threshold factor that `limen analyse --model` measured for ``observer``.
 
     ``data`` is the parsed analysis.json; ``path`` names it in errors and becomes the factor's source
-    (:func:`scorer.workflow.human_factor_from_analysis` reads the file).
+    (:func:`scorer.workflow.human_factor_from_analysis` reads the file).  Every threshold method the analysis
+    measured comes along (:meth:`HumanFactor.for_method` picks the one that matches the thresholds); an entry
+    of an older analysis without a method was measured on the count method.  A factor that rests on no
+    usable cell (every fit at a search bound or not estimable) is refused, never exported.
     """
     try:
         hm = data["human_model_factor"]
@@ -314,14 +414,34 @@ def parse_human_factor(data: dict, observer: str, path) -> HumanFactor:
         ) from None
     entries = (hm.get("by_observer") or [hm]) if isinstance(hm, dict) else []
     for e in entries:
-        if str(e.get("observer", "")).lower() == observer and e.get("factor"):
-            lo, hi = e.get("ci_low"), e.get("ci_high")
-            return HumanFactor(
-                float(e["factor"]),
-                None if lo is None else float(lo),
-                None if hi is None else float(hi),
-                source=str(path),
+        if str(e.get("observer", "")).lower() != observer:
+            continue
+        methods = e.get("by_method") or {e.get("method") or "count": e}
+        factors, refused = [], []
+        for method, me in methods.items():
+            if not me.get("factor"):
+                refused.append(f"{METHOD_NAMES.get(method, method)}: {me.get('note') or 'no factor'}")
+                continue
+            lo, hi = me.get("ci_low"), me.get("ci_high")
+            tr = me.get("diameter_trend")
+            factors.append(
+                HumanFactor(
+                    float(me["factor"]),
+                    None if lo is None else float(lo),
+                    None if hi is None else float(hi),
+                    source=str(path),
+                    method=str(method),
+                    trend=FactorTrend.from_dict(tr) if tr and tr.get("depends_on_diameter") else None,
+                )
             )
+        if not factors:
+            raise LimenError(
+                f"no usable human/model factor for the {observer.upper()} observer in this analysis: "
+                + "; ".join(refused),
+                path,
+            )
+        first, rest = factors[0], tuple(factors[1:])
+        return HumanFactor(first.value, first.ci_low, first.ci_high, first.source, first.method, first.trend, rest)
     found = ", ".join(sorted({str(e.get("observer")) for e in entries})) or "none"
     raise LimenError(
         f"no human/model factor for the {observer.upper()} observer in this analysis (factors for: {found})", path

@@ -269,6 +269,7 @@ def score_images(
         if isinstance(human_factor, HumanFactor) or human_factor is None
         else HumanFactor(float(human_factor))
     )
+    hf = hf.for_method(vm) if hf is not None and limits is not None else hf  # the factor of the verdict's method
     return ScoreResult(
         observer,
         layout,

@@ -58,6 +58,7 @@ import numpy as np
 import pandas as pd
 
 from scorer.errors import LimenError
+from scorer.observer.flags import text as flag_text, threshold_flags
 from scorer.observer.mafc import dprime_for_pc, halfway_criterion
 from scipy import stats
 
@@ -100,8 +101,15 @@ class ThresholdPoint:
             return f"< {scale * t:.3g}{unit}"
         return f"{scale * t:.3g}{unit}" + (" (extrapolated)" if self.extrapolated else "")
 
+    @property
+    def flags(self) -> list[str]:
+        """Extrapolated, censored, above 100 %, not estimable (:mod:`scorer.observer.flags`)."""
+        return threshold_flags(asdict(self))
+
     def to_dict(self) -> dict:
-        return asdict(self)
+        d = asdict(self)
+        d["flags"] = threshold_flags(d)
+        return d
 
 
 def censor_point(p: ThresholdPoint, offered_min: float, offered_max: float) -> ThresholdPoint:
@@ -170,7 +178,8 @@ class ThresholdCurve:
     notes: list[str] = field(default_factory=list)
 
     def to_frame(self) -> pd.DataFrame:
-        return pd.DataFrame([p.to_dict() for p in self.points])
+        """One row per diameter; ``flags`` as one text cell ("extrapolated; above 100 %") for CSV."""
+        return pd.DataFrame([{**p.to_dict(), "flags": flag_text(p.flags)} for p in self.points])
 
     def to_records(self) -> list[dict]:
         return [p.to_dict() for p in self.points]

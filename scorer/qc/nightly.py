@@ -35,6 +35,9 @@ class NightlyResult:
     duplicates: list[dict] = field(default_factory=list)
     arriving: list[str] = field(default_factory=list)
     errors: list[str] = field(default_factory=list)
+    #: sessions formed from new files on a detector, day and settings that already have a session (a re-export,
+    #: a second run of the same morning, or images simulated again): scored, and said
+    repeated: list[dict] = field(default_factory=list)
     emailed: int = 0
     runner: str = "serial"
     db: str = ""
@@ -52,6 +55,7 @@ class NightlyResult:
             "duplicates": self.duplicates,
             "arriving": self.arriving,
             "errors": self.errors,
+            "repeated_sessions": self.repeated,
             "emailed_alerts": self.emailed,
             "runner": self.runner,
             "database": self.db,
@@ -283,6 +287,24 @@ def _score(config, store, qdir, runner, lease_s, result, tm, progress):
         if not jobs:
             break
         fault_point("claimed")
+        for job in jobs:
+            others = store.other_sessions(job.group_key, job.session_id)
+            if others:
+                result.repeated.append(
+                    {
+                        "detector": job.detector,
+                        "session_date": job.session_date,
+                        "group": job.group_key,
+                        "session_id": job.session_id,
+                        "images": len(job.paths),
+                        "earlier_sessions": [o["id"] for o in others],
+                        "message": (
+                            f"{job.detector} already has {len(others)} session(s) on {job.session_date} with the same "
+                            f"settings ({job.group_key.split('|', 2)[-1]}) from other files: these {len(job.paths)} "
+                            "image(s) make another one (a re-export or the same images written again?)"
+                        ),
+                    }
+                )
         retry = False
         renewed = time.monotonic()
         bar = tqdm(

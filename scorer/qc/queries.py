@@ -97,6 +97,16 @@ class QueryOps:
                 for r in s.scalars(q)
             ]
 
+    def other_sessions(self, group_key: str, session_id: int) -> list[dict]:
+        """Sessions other than ``session_id`` with the same detector, day and settings (their id and image count)."""
+        with self.transaction() as s:
+            rows = s.execute(
+                select(SessionRow.id, SessionRow.n_images, SessionRow.state).where(
+                    SessionRow.group_key == group_key, SessionRow.id != session_id
+                )
+            ).all()
+        return [{"id": r.id, "n_images": r.n_images, "state": r.state} for r in rows]
+
     def quarantine_log(self) -> list[dict]:
         with self.transaction() as s:
             return [

@@ -219,6 +219,40 @@ def plain_log_ticks(ax, axes: str = "xy") -> None:
         axis.set_minor_formatter(NullFormatter())
 
 
+def round_log_ticks(lo: float, hi: float, max_ticks: int = 4) -> list[float]:
+    """At most ``max_ticks`` round values (1, 2, 5 × 10^k, thinned to 1 × 10^k, then every other decade) in
+    [lo, hi], so the labels of a small panel never run into each other (at least the two ends' decades)."""
+    import math
+
+    if not (lo > 0 and hi > lo):
+        return []
+    k0, k1 = math.floor(math.log10(lo)), math.ceil(math.log10(hi))
+    for subs, step in (((1, 2, 5), 1), ((1, 3), 1), ((1,), 1), ((1,), 2), ((1,), 3)):
+        ticks = [m * 10.0**k for k in range(k0, k1 + 1, step) for m in subs if lo <= m * 10.0**k <= hi]
+        if 2 <= len(ticks) <= max_ticks:
+            return ticks
+    if len(ticks) > max_ticks:
+        return ticks[:: max(1, len(ticks) // max_ticks + 1)]
+    if len(ticks) < 2:  # less than a decade between round values: the two ends, to two figures
+        ends = sorted({float(f"{lo:.2g}"), float(f"{hi:.2g}")})
+        return [t for t in ends if lo <= t <= hi] or ends
+    return ticks
+
+
+def sparse_log_ticks(ax, axis: str = "x", max_ticks: int = 4) -> None:
+    """Plain labels at a few round values on a log axis (:func:`round_log_ticks`) for the data range shown."""
+    from matplotlib.ticker import FixedLocator, FuncFormatter, NullFormatter
+
+    a = ax.xaxis if axis == "x" else ax.yaxis
+    lo, hi = ax.get_xlim() if axis == "x" else ax.get_ylim()
+    ticks = round_log_ticks(lo, hi, max_ticks)
+    if not ticks:
+        return
+    a.set_major_locator(FixedLocator(ticks))
+    a.set_major_formatter(FuncFormatter(lambda v, _pos: f"{v:g}"))
+    a.set_minor_formatter(NullFormatter())
+
+
 #: readable column headings for the tables of every report
 READABLE = {
     "diameter_mm": "diameter (mm)",

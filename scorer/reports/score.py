@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import base64
+import html
 from pathlib import Path
 
 import matplotlib
@@ -13,9 +14,18 @@ import numpy as np  # noqa: E402
 
 from scorer.errors import LimenError  # noqa: E402
 from scorer.files import atomic_write_text  # noqa: E402
+import scorer.observer.flags as flags  # noqa: E402
 from scorer.observer.npw import METHOD_TEXT  # noqa: E402
 from scorer.observer.psychometric import fit_psychometric  # noqa: E402
-from scorer.reports.html import error_bars, figure_to_svg, html_page, plain_log_ticks, table_html, write_json  # noqa: E402
+from scorer.reports.html import (  # noqa: E402
+    error_bars,
+    figure_to_svg,
+    html_page,
+    plain_log_ticks,
+    sparse_log_ticks,
+    table_html,
+    write_json,
+)
 
 #: DICOM Manufacturer written by `limen simulate`
 SIMULATED_MANUFACTURER = "Limen simulation"
@@ -42,6 +52,8 @@ def cd_plot(result, extra_curves=None, title=None):
         hi = np.array([p.ci_high for p in pts]) * 100
         col = COLOURS.get(method, None)
         plain = np.array([not getattr(p, "censored", "") for p in pts])
+        over = np.array([flags.ABOVE_100 in p.flags for p in pts])
+        hi = np.minimum(hi, 100.0)  # no contrast exceeds 100 %: the CI is drawn capped, the point flagged
         ax.errorbar(
             d[plain],
             t[plain],
@@ -56,6 +68,10 @@ def cd_plot(result, extra_curves=None, title=None):
         if extra.any():
             ax.plot(
                 d[extra], t[extra], "o", ms=9, mfc="none", mec=col, label="extrapolated (outside the contrasts offered)"
+            )
+        if over.any():
+            ax.plot(
+                d[over], t[over], "s", ms=10, mfc="none", mec="#a4161a", label="above 100 % (value or CI end; capped)"
             )
         for mark, side in (("^", "above"), ("v", "below")):
             sel = np.array([getattr(p, "censored", "") == side for p in pts])
@@ -124,7 +140,9 @@ def psychometric_plot(result):
             pass
         ax.axhline(1.0 / m, color="#999", lw=0.8, ls=":")
         ax.set_xscale("log")
+        sparse_log_ticks(ax, "x", max_ticks=4)  # few round contrasts: labels never run into each other
         ax.set_ylim(0, 1.05)
+        ax.set_yticks([0, 0.5, 1])
         ax.set_title(f"{d:g} mm", fontsize=9)
         ax.tick_params(labelsize=7)
     for ax in axes.ravel()[n:]:
@@ -171,7 +189,8 @@ def write_score_outputs(result, out_dir, overlays: list[Path] | None = None, com
         import pandas as pd
 
         atomic_write_text(
-            out / "verdicts.csv", pd.DataFrame([v.to_dict() for v in result.verdicts]).to_csv(index=False)
+            out / "verdicts.csv",
+            pd.DataFrame([{**v.to_dict(), "flags": flags.text(v.flags)} for v in result.verdicts]).to_csv(index=False),
         )
     atomic_write_text(out / "report.html", render_html(result, overlays or [], command))
     return {"json": out / "results.json", "report": out / "report.html"}
@@ -233,7 +252,8 @@ def render_html(result, overlays: list[Path], command: str = "") -> str:
             f"contrast per disc diameter (log-log) with 95 % confidence intervals ({_ci_caption(result)}); "
             "lines: smooth curve log C = a + b·log d + c·(log d)². Triangles: censored thresholds (only "
             "known to lie above ▲ or below ▼ the contrasts the plate offers); open circles: d′-method values "
-            "extrapolated beyond them.</figcaption></figure>",
+            "extrapolated beyond them; open red squares: a value or CI end above 100 % contrast (drawn capped "
+            "at 100 %).</figcaption></figure>",
         ),
     ]
     rows = []
@@ -247,7 +267,8 @@ def render_html(result, overlays: list[Path], command: str = "") -> str:
                     "threshold (%)": p.display(unit=""),
                     "95 % CI (%)": "—"
                     if one_sided or not np.isfinite(p.ci_low)
-                    else f"{100 * p.ci_low:.3g}–{100 * p.ci_high:.3g}",
+                    else f"{flags.capped_percent(p.ci_low)}–{flags.capped_percent(p.ci_high)}",
+                    "flags": flags.text(p.flags),
                     "contrasts offered (%)": "—"
                     if p.offered_min is None
                     else f"{100 * p.offered_min:.3g}–{100 * p.offered_max:.3g}",
@@ -255,7 +276,10 @@ def render_html(result, overlays: list[Path], command: str = "") -> str:
                     "note": p.note,
                 }
             )
-    sections.append(("Threshold contrast", table_html(rows, left=["method", "note"]) + METHOD_TEXT))
+    seen = [f for method, c in result.curves.items() for p in c.points for f in p.flags]
+    seen += [f for v in result.verdicts or [] for f in v.flags]
+    caption = f"<p class='meta'>Flags: {html.escape(flags.legend(seen))}</p>" if seen else ""
+    sections.append(("Threshold contrast", table_html(rows, left=["method", "flags", "note"]) + caption + METHOD_TEXT))
     if result.verdicts is not None:
 
         def lim(x, v):
@@ -270,10 +294,11 @@ def render_html(result, overlays: list[Path], command: str = "") -> str:
                 "diameter (mm)": v.diameter_mm,
                 "compared threshold (%)": comp(v),
                 "95 % CI (%)": (
-                    f"{100 * v.ci_low:.3g}–{100 * v.ci_high:.3g}"
+                    f"{flags.capped_percent(v.ci_low)}–{flags.capped_percent(v.ci_high)}"
                     if np.isfinite(v.ci_low) and np.isfinite(v.ci_high)
                     else "—"
                 ),
+                "flags": flags.text(v.flags),
                 "acceptable (%)": lim(v.acceptable, v),
                 "achievable (%)": lim(v.achievable, v),
                 "verdict": v.verdict,
@@ -283,7 +308,10 @@ def render_html(result, overlays: list[Path], command: str = "") -> str:
             for v in result.verdicts
         ]
         sections.append(
-            ("Verdict per diameter", table_html(vrows, left=["verdict", "95 % CI (%)", "achievable met", "note"]))
+            (
+                "Verdict per diameter",
+                table_html(vrows, left=["verdict", "95 % CI (%)", "achievable met", "flags", "note"]) + caption,
+            )
         )
     sections.append(
         (

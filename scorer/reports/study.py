@@ -15,6 +15,7 @@ import pandas as pd
 
 from scorer.errors import LimenError  # noqa: E402
 from scorer.files import atomic_write_text  # noqa: E402
+from scorer.observer.flags import capped_percent, legend as flag_legend, text as flag_text, threshold_flags
 from scorer.reports.html import (
     READABLE,
     display_records,
@@ -57,22 +58,34 @@ def curves_figure(a, level) -> str:
     if len(pc):
         pc = pc.sort_values("diameter_mm")
         y = pc["threshold_contrast"].to_numpy() * 100
-        err = np.vstack(error_bars(y, pc["ci_low"].to_numpy() * 100, pc["ci_high"].to_numpy() * 100))
+        hi = np.minimum(pc["ci_high"].to_numpy() * 100, 100.0)  # drawn capped at 100 %; the table flags it
+        err = np.vstack(error_bars(y, pc["ci_low"].to_numpy() * 100, hi))
         ax.errorbar(
             pc["diameter_mm"], y, yerr=err, fmt="o-", color="#1f4e79", lw=2, capsize=3, label="pooled readers (95 % CI)"
         )
+        flagged = np.array([bool(threshold_flags(r)) for r in pc.to_dict("records")])
+        if flagged.any():
+            ax.plot(
+                pc["diameter_mm"].to_numpy()[flagged],
+                y[flagged],
+                "o",
+                ms=11,
+                mfc="none",
+                mec="#a4161a",
+                label="pooled, flagged (extrapolated or CI above 100 %, capped)",
+            )
     mc = a.model_curves[a.model_curves[by] == level] if len(a.model_curves) else pd.DataFrame()
     for obs, g in mc.groupby("reader") if len(mc) else []:
         g = g.sort_values("diameter_mm")
         ax.plot(g["diameter_mm"], g["threshold_contrast"] * 100, "s--", color="#b5541c", label=f"model {obs}")
     hm = a.human_model
-    if hm and hm.get("per_diameter"):
+    if hm and hm.get("per_diameter") and hm.get("factor") is not None:
         per = pd.DataFrame(hm["per_diameter"])
         per = per[per[by] == level].sort_values("diameter_mm")
         if len(per):
             ax.plot(
                 per["diameter_mm"],
-                per["human_equivalent_threshold"] * 100,
+                pd.to_numeric(per["human_equivalent_threshold"]) * 100,
                 ":",
                 color="#b5541c",
                 lw=2,
@@ -127,7 +140,10 @@ def bland_altman_figure(ba: dict, observer: str) -> str:
 
 def _table(df: pd.DataFrame, cols, left=(), ci_percent: bool = True) -> str:
     rows, heads = _display(df, cols, ci_percent)
-    return table_html(rows, heads, left=[READABLE.get(c, c.replace("_", " ")) for c in left])
+    left = [READABLE.get(c, c.replace("_", " ")) for c in left] + ["flags"]
+    seen = [f for r in rows for f in str(r.get("flags") or "").split("; ") if f]
+    legend = f"<p class='meta'>Flags: {html.escape(flag_legend(seen))}</p>" if seen else ""
+    return table_html(rows, heads, left=left) + legend
 
 
 def _display(df: pd.DataFrame, cols, ci_percent: bool):
@@ -135,23 +151,123 @@ def _display(df: pd.DataFrame, cols, ci_percent: bool):
     rows, heads = display_records(
         _records(df, cols), [c for c in cols if df is not None and c in df.columns], ci_percent=ci_percent
     )
-    recs = _records(df, cols + ["censored", "offered_min", "offered_max"])
+    recs = _records(
+        df, cols + ["threshold_contrast", "ci_low", "ci_high", "converged", "censored", "offered_min", "offered_max"]
+    )
     for row, rec in zip(rows, recs):
         side = rec.get("censored")
+        if ci_percent and "95 % CI high (%)" in row:
+            row["95 % CI high (%)"] = capped_percent(rec.get("ci_high"))
         if side in ("above", "below") and "threshold (%)" in row:
             bound = rec["offered_max"] if side == "above" else rec["offered_min"]
             row["threshold (%)"] = f"{'>' if side == 'above' else '<'} {100 * bound:.3g} (censored)"
             for h in ("95 % CI low (%)", "95 % CI high (%)"):
                 if h in row:
                     row[h] = "—"
+        if ci_percent and "threshold_contrast" in cols:
+            row["flags"] = flag_text(threshold_flags(rec))
+    if ci_percent and "threshold_contrast" in cols and rows:
+        heads = heads + ["flags"]
     return rows, heads
 
 
 def _records(df: pd.DataFrame, cols) -> list[dict]:
     if df is None or not len(df):
         return []
-    cols = [c for c in cols if c in df.columns]
+    cols = list(dict.fromkeys(c for c in cols if c in df.columns))
     return df[cols].to_dict("records")
+
+
+def _details(summary: str, body: str, open_: bool = False) -> str:
+    """A collapsible block (HTML <details>): long per-reader tables stay one click away."""
+    return f"<details{' open' if open_ else ''}><summary>{summary}</summary>{body}</details>"
+
+
+def _factor_text(e: dict) -> str:
+    if e.get("factor") is None:
+        return f"<strong>none</strong> — {html.escape(e.get('note') or 'no usable cell')}"
+    ci = (
+        f"95 % CI {e['ci_low']:.3g}–{e['ci_high']:.3g}"
+        if e.get("ci_low") is not None and e.get("ci_high") is not None
+        else "no CI"
+    )
+    used = f"{e.get('n_used', e.get('n_cells', 0))} of {e.get('n_cells', 0)} cells"
+    return f"<strong>{e['factor']:.3g}</strong> ({ci}; geometric mean over {used})"
+
+
+def _trend_text(tr: dict | None) -> str:
+    if not tr:
+        return "not tested (one diameter, or no bootstrap)"
+    verdict = "<strong>depends on diameter</strong>" if tr["depends_on_diameter"] else "no dependence shown"
+    lo, hi = tr["diameter_range_mm"]
+    return (
+        f"{verdict}: slope of log factor on log diameter {tr['slope']:+.3f} (95 % CI {tr['slope_ci_low']:+.3f} to "
+        f"{tr['slope_ci_high']:+.3f}), p = {tr['p_value']:.3g} ({html.escape(tr['test'])}); fitted over "
+        f"{lo:g}–{hi:g} mm"
+        + (
+            ". Each diameter then gets the trend's own factor and CI (table), and a verdict that uses this factor "
+            "applies it per diameter."
+            if tr["depends_on_diameter"]
+            else "."
+        )
+    )
+
+
+def human_factor_html(hm: dict, by: str) -> str:
+    """The human/model factor per threshold method: overall value, cells left out, diameter test, detail."""
+    methods = hm.get("by_method") or {"count": hm}
+    body = (
+        f"<p>Human/model ({html.escape(str(hm['observer']))}) threshold factor: human threshold ÷ model threshold, "
+        "measured per threshold method so that each is applied like for like (a verdict on d′-method thresholds "
+        "uses the d′ factor). Human threshold: geometric mean of the readers' own fits; CIs: bootstrap drawing "
+        "readers and images once per resample for every cell, widened for the number of readers.</p><ul>"
+    )
+    for e in methods.values():
+        label = html.escape(e.get("method_label") or "count method")
+        body += f"<li>{label}: {_factor_text(e)}."
+        if e.get("n_excluded"):
+            cells = ", ".join(f"{x[by]} {x['diameter_mm']:g} mm" for x in e.get("excluded", []))
+            body += (
+                f" <b>{e['n_excluded']} cell(s) left out</b> (fit at a search bound or not estimable: "
+                f"{html.escape(cells)})."
+            )
+        body += f" Diameter: {_trend_text(e.get('diameter_trend'))}</li>"
+    if "dprime" not in methods:
+        body += (
+            "<li>d′ method: not measured — the model table holds decisions only. Give <code>limen analyse "
+            "--model</code> the model's responses.csv to measure it; a d′-method verdict refuses a count-method "
+            "factor.</li>"
+        )
+    body += "</ul>"
+    for method, e in methods.items():
+        per = e.get("per_diameter") or []
+        if not per:
+            continue
+        cols = [by, "diameter_mm", "human_threshold", "model_threshold", "factor", "ci_low", "ci_high"]
+        if any("trend_factor" in r for r in per):
+            cols += ["trend_factor", "trend_ci_low", "trend_ci_high"]
+        cols += ["human_equivalent_threshold"]
+        rows, heads = display_records(per, cols, ci_percent=False)
+        for r, rec in zip(rows, per):
+            for k in ("factor", "trend factor", "trend ci low", "trend ci high"):
+                if isinstance(r.get(k), float):
+                    r[k] = f"{r[k]:.3g}"
+            r["flags"] = flag_text(rec.get("flags") or [])
+            r["note"] = rec.get("note", "")
+        table = table_html(rows, heads + ["flags", "note"], left=[by, "flags", "note"])
+        body += _details(
+            f"{html.escape(e.get('method_label') or method)}: factor per {html.escape(by)} × diameter "
+            f"({len(per)} cells)",
+            table + "<p class='meta'>CI columns: 95 % CI of the factor.</p>",
+        )
+    ba = methods.get("count", hm).get("bland_altman")
+    if ba:
+        body += (
+            f"<figure>{bland_altman_figure(ba, hm['observer'])}<figcaption>Bias {ba['bias_log10']:.3f} "
+            f"(factor {ba['factor_from_bias']:.3g}); 95 % limits of agreement {ba['loa_low_log10']:.3f} to "
+            f"{ba['loa_high_log10']:.3f} in log10; {ba['n_pairs']} pairs (count method).</figcaption></figure>"
+        )
+    return body
 
 
 def write_outputs(a, out_dir, meta: dict | None = None) -> dict:
@@ -169,8 +285,14 @@ def write_outputs(a, out_dir, meta: dict | None = None) -> dict:
         "between_reader_cv.csv": a.cv,
         "comparison.csv": a.comparison,
     }
-    if a.human_model and a.human_model.get("per_diameter"):
-        tables["human_model_factor.csv"] = pd.DataFrame(a.human_model["per_diameter"])
+    if a.human_model:
+        rows = [
+            {**r, "flags": flag_text(r.get("flags") or [])}
+            for e in (a.human_model.get("by_method") or {"count": a.human_model}).values()
+            for r in e.get("per_diameter") or []
+        ]
+        if rows:
+            tables["human_model_factor.csv"] = pd.DataFrame(rows)
     for name, df in tables.items():
         if df is not None and len(df):
             atomic_write_text(out / name, df.to_csv(index=False))
@@ -236,15 +358,38 @@ def report_html(a, meta: dict | None = None) -> str:
             + _table(a.pooled_curves, cols + ["n_readers"], left=["reader", by, "note"]),
         )
     )
-    sections.append(("Between-reader variation", table_html(_records(a.cv, list(a.cv.columns)), left=[by])))
+    sections.append(
+        (
+            "Between-reader variation",
+            _details(
+                f"Coefficient of variation of the readers' thresholds per {html.escape(by)} and diameter "
+                f"({len(a.cv)} rows)",
+                table_html(_records(a.cv, list(a.cv.columns)), left=[by]),
+            )
+            if len(a.cv)
+            else "<p><em>Not estimated.</em></p>",
+        )
+    )
+    n_rows = len(a.reader_curves)
     sections.append(
         (
             "Per-reader thresholds (bootstrap over images within reader)",
-            _table(a.reader_curves, cols, left=["reader", by, "note"]),
+            _details(
+                f"Each reader's threshold per {html.escape(by)} and diameter ({n_rows} rows)",
+                _table(a.reader_curves, cols, left=["reader", by, "note"]),
+            ),
         )
     )
     if len(a.model_curves):
-        sections.append(("Model observer", _table(a.model_curves, cols, left=["reader", by, "note"])))
+        sections.append(
+            (
+                "Model observer",
+                _details(
+                    f"The model observer's thresholds ({len(a.model_curves)} rows)",
+                    _table(a.model_curves, cols, left=["reader", by, "note"]),
+                ),
+            )
+        )
     if len(a.comparison):
         sents = "<ul>" + "".join(f"<li>{html.escape(s)}</li>" for s in a.comparison["sentence"]) + "</ul>"
         sections.append(
@@ -272,37 +417,8 @@ def report_html(a, meta: dict | None = None) -> str:
             )
         )
     hm = a.human_model
-    if hm and hm.get("factor") is not None:
-        body = (
-            f"<p>Human/model ({html.escape(hm['observer'])}) threshold factor over all diameters: "
-            f"<strong>{hm['factor']:.3g}</strong> (95 % CI {hm['ci_low']:.3g}–{hm['ci_high']:.3g}; bootstrap "
-            f"over readers and images). Multiply the model's thresholds by it for human-equivalent values.</p>"
-        )
-        rows, heads = display_records(
-            hm["per_diameter"],
-            [
-                by,
-                "diameter_mm",
-                "human_threshold",
-                "model_threshold",
-                "factor",
-                "ci_low",
-                "ci_high",
-                "human_equivalent_threshold",
-            ],
-            ci_percent=False,
-        )
-        for r in rows:
-            r["factor"] = None if r.get("factor") is None else f"{r['factor']:.3g}"
-        body += table_html(rows, heads, left=[by]) + "<p class='meta'>CI columns: 95 % CI of the factor.</p>"
-        if hm.get("bland_altman"):
-            ba = hm["bland_altman"]
-            body += (
-                f"<figure>{bland_altman_figure(ba, hm['observer'])}<figcaption>Bias {ba['bias_log10']:.3f} "
-                f"(factor {ba['factor_from_bias']:.3g}); 95 % limits of agreement {ba['loa_low_log10']:.3f} to "
-                f"{ba['loa_high_log10']:.3f} in log10; {ba['n_pairs']} pairs.</figcaption></figure>"
-            )
-        sections.append(("Human readers vs model observer", body))
+    if hm:
+        sections.append(("Human readers vs model observer", human_factor_html(hm, by)))
     agr = a.agreement
     inter, intra = agr.get("inter_reader", {}), agr.get("intra_reader", {})
     rows = []
@@ -331,10 +447,13 @@ def report_html(a, meta: dict | None = None) -> str:
         )
     body = table_html(rows, left=["measure"]) if rows else ""
     if intra.get("per_reader"):
-        body += "<p>Intra-reader (first two repeats, chosen site):</p>" + table_html(
-            intra["per_reader"],
-            ["reader", "n_pairs", "observed_agreement", "kappa", "ci_low", "ci_high"],
-            left=["reader"],
+        body += _details(
+            f"Intra-reader agreement (first two repeats, chosen site; {len(intra['per_reader'])} readers)",
+            table_html(
+                intra["per_reader"],
+                ["reader", "n_pairs", "observed_agreement", "kappa", "ci_low", "ci_high"],
+                left=["reader"],
+            ),
         )
     for note in agr.get("notes", []):
         body += f"<p><em>{html.escape(note)}</em></p>"

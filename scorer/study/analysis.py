@@ -15,8 +15,10 @@ Methods (each documented, with its references, where it is computed):
   GEE) whose mean is the M-AFC linear-observer function through a custom link;
 * between-reader CV of thresholds, with the within-reader sampling variance removed
   (:func:`scorer.study.reader_fits.between_reader_cv`);
-* human/model factor (:mod:`scorer.study.human_factor`): ratio of pooled human to model thresholds, CI by a
-  bootstrap over readers and images (crossed); Bland & Altman (1986) agreement on log thresholds;
+* human/model factor (:mod:`scorer.study.human_factor`): ratio of pooled human to model thresholds per threshold
+  method (count method from the model's trials; d′ method from its responses), CI by a bootstrap over readers and
+  images drawn once per resample for every cell; its dependence on diameter tested; Bland & Altman (1986)
+  agreement on log thresholds;
 * group comparison (detector B vs A; :mod:`scorer.study.group_comparison`): linear mixed model on log10
   per-reader thresholds with reader random intercepts (statsmodels MixedLM), Holm-adjusted p-values (Holm 1979);
 * agreement (:mod:`scorer.study.agreement`).
@@ -41,6 +43,7 @@ import numpy as np
 import pandas as pd
 
 from scorer.errors import LimenError
+from scorer.observer.flags import text as flag_text, threshold_flags
 from scorer.observer.mafc import halfway_criterion
 from scorer.resources import check_limit
 from scorer.study.alternatives import criterion_at, m_alternatives_of, m_at
@@ -75,9 +78,21 @@ class Analysis:
         for df in (self.reader_curves, self.pooled_curves, self.model_curves):
             if len(df):
                 extra = [
-                    c for c in ("n_trials", "n_images", "n_readers", "converged", "censored", "note") if c in df.columns
+                    c
+                    for c in (
+                        "n_trials",
+                        "n_images",
+                        "n_readers",
+                        "converged",
+                        "censored",
+                        "offered_min",
+                        "offered_max",
+                    )
+                    if c in df.columns
                 ]
-                out.extend(df[cols + extra].to_dict("records"))
+                for rec in df[cols + extra + (["note"] if "note" in df.columns else [])].to_dict("records"):
+                    rec["flags"] = threshold_flags(rec)
+                    out.append(rec)
         return out
 
     def to_json(self) -> dict:
@@ -119,7 +134,14 @@ class Analysis:
         }
 
 
-def bootstrap_block(trials: pd.DataFrame, model: pd.DataFrame | None, by: str) -> tuple[int, str]:
+def add_flags(df: pd.DataFrame) -> pd.DataFrame:
+    """A ``flags`` column (one text cell, :mod:`scorer.observer.flags`) on a table of curves, in place."""
+    if len(df):
+        df["flags"] = [flag_text(threshold_flags(r)) for r in df.to_dict("records")]
+    return df
+
+
+def bootstrap_block(trials: pd.DataFrame, model: pd.DataFrame | None, by: str, n_methods: int = 1) -> tuple[int, str]:
     """The most bootstrap cells one resample holds at once in :func:`analyse_study`, and where.
 
     A cell is one number per resample that stays in memory while a group × diameter is refitted.  Per group ×
@@ -127,10 +149,12 @@ def bootstrap_block(trials: pd.DataFrame, model: pd.DataFrame | None, by: str) -
     images, the human/model factor's image draw, the model's) and one per reader (the factor's crossed reader
     draw), and its resampled counts per reader × contrast level (the image-sampling variance of a comparison
     between groups refits every reader's curve in each resample at once).  With a model-observer table the
-    human/model factor also keeps one estimate per group × diameter for every resample until it forms the
-    overall factor.  The block is the largest images + readers + readers × levels over the group × diameter
-    pairs, plus those stored estimates.  Each cell costs about 20 bytes measured with tracemalloc (correct and
-    trial counts, and their floating-point copies for the fit; tests/test_stats.py).
+    human/model factor draws the readers and every group's images once per resample and keeps those draws, and
+    keeps per group × diameter the readers' resampled slope and one estimate per threshold method (two with the
+    model's responses) until it forms the overall factor.  The block is the largest images + readers + readers ×
+    levels over the group × diameter pairs, plus those stored draws and estimates.  Each cell costs about 20
+    bytes measured with tracemalloc (correct and trial counts, and their floating-point copies for the fit;
+    tests/test_stats.py).
 
     The likelihood grid of the fits is not counted: :func:`~scorer.observer.mafc_fast.fit_k_batch` evaluates
     it in chunks of at most :data:`~scorer.observer.mafc_fast.GRID_CHUNK_CELLS` cells (about 30 MB)
@@ -154,8 +178,16 @@ def bootstrap_block(trials: pd.DataFrame, model: pd.DataFrame | None, by: str) -
                 f"{len(levels)} contrast levels, {by} {grp} at {float(diam):g} mm"
             )
     if model is not None and pairs.ngroups:
-        best += int(pairs.ngroups)
-        where += f"; {pairs.ngroups} human/model factor estimates ({by} × diameter)"
+        images = sum(
+            len(set(trials.loc[trials[by] == g, "image"]) | set(model.loc[model[by] == g, "image"]))
+            for g in trials[by].unique()
+        )
+        kept = images + trials["reader"].nunique() + (1 + n_methods) * int(pairs.ngroups)
+        best += kept
+        where += (
+            f"; the human/model factor's shared draws ({images} images, {trials['reader'].nunique()} readers) and "
+            f"{(1 + n_methods) * pairs.ngroups} stored estimates ({by} × diameter)"
+        )
     return best, where
 
 
@@ -170,12 +202,19 @@ def analyse_study(
     reference: str | None = None,
     ci: float = 0.95,
     progress=None,
+    model_responses: pd.DataFrame | None = None,
 ) -> Analysis:
     """Run every analysis of a reader study; degrade with notes when the study is too small.
 
-    ``trials`` and ``model`` must already be validated (:func:`validate_trials`).
+    ``trials`` and ``model`` must already be validated (:func:`validate_trials`).  ``model_responses``: the
+    model observer's per-site responses (``limen score``'s responses table); with them the human/model factor
+    is measured for the d′ method too, and ``model`` defaults to the model's decisions on them.
     ``progress`` is an optional callable(str) told which step runs.
     """
+    if model is None and model_responses is not None:
+        from scorer.observer.npw import decide
+
+        model = decide(model_responses)
     from scorer.study.agreement import agreement_summary
 
     if by not in trials.columns:
@@ -186,7 +225,7 @@ def analyse_study(
     if n_boot > 0:
         # the draws and resampled counts are allocated per group × diameter inside the fits (the likelihood grid
         # in chunks of bounded size); refuse before any of them
-        block, where = bootstrap_block(trials, model, by)
+        block, where = bootstrap_block(trials, model, by, 1 if model_responses is None else 2)
         check_limit(
             "LIMEN_MAX_BOOTSTRAP_CELLS",
             n_boot * block,
@@ -255,7 +294,17 @@ def analyse_study(
         say("model observer")
         mc = model_curves(model, m, rng, n_boot, by, criterion_pc)
         say("human/model factor")
-        hm = human_model_factor(trials, model, m, rng, n_boot, by, criterion_pc, ci, rc)
+        hm = human_model_factor(trials, model, m, rng, n_boot, by, criterion_pc, ci, rc, model_responses)
+        if hm:
+            for entry in hm.get("by_method", {}).values():
+                if entry.get("n_excluded"):
+                    notes.append(
+                        f"human/model factor ({entry['method_label']}): {entry['n_excluded']} of {entry['n_cells']} "
+                        f"{by} × diameter cells left out (fit at a search bound or not estimable)"
+                        + ("" if entry.get("factor") is not None else "; no factor: it would rest on no cell")
+                    )
+    for df in (rc, pc_df, mc):
+        add_flags(df)
     say("agreement")
     agr = agreement_summary(trials, by)
     notes += agr.get("notes", [])

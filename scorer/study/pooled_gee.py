@@ -227,6 +227,9 @@ def pooled_curves(
                 "n_images": int(n_img),
                 "method": "GEE, M-AFC link, reader × image clusters",
                 "converged": conv,
+                # the contrasts shown: a pooled threshold beyond them is the fitted curve carried there (flagged)
+                "offered_min": float(levels.min()),
+                "offered_max": float(levels.max()),
                 "note": note,
             }
         )

@@ -58,12 +58,16 @@ class ReaderPopulation:
     cv_between : between-reader coefficient of variation of F (log-normal).
     internal_share : fraction of log F² due to internal noise (the rest is template inefficiency).
     lapse_max : lapse rates are uniform on [0, lapse_max].
+    factor_slope : γ of a factor that depends on diameter, F_r(d) = F_r·(d / 1 mm)^γ (0: the same at every
+        diameter; γ < 0: readers fall further behind the model at small details).  The reader's signal is
+        scaled by (d / 1 mm)^(−γ) in :func:`simulate_reader_study`.
     """
 
     median_factor: float = 1.6
     cv_between: float = 0.15
     internal_share: float = 0.5
     lapse_max: float = 0.0
+    factor_slope: float = 0.0
 
 
 @dataclass
@@ -77,6 +81,9 @@ class SimulatedStudy:
     m_alternatives: int
     criterion_pc: float
     params: dict = field(default_factory=dict)
+    #: the model observer's response at every candidate site (``limen score``'s responses table: the response
+    #: t_j/a, an unbiased estimate of the contrast at the signal site), from which its trials are its decisions
+    model_responses: pd.DataFrame | None = None
 
 
 def model_threshold(diameter_mm, c1: float = 0.012, slope: float = 0.9):
@@ -140,11 +147,12 @@ def simulate_reader_study(
     ref_ct = model_threshold(diam, c1, slope)
     rel = np.geomspace(contrast_span[0], contrast_span[1], n_contrasts)
     t_diam = np.repeat(diam, n_contrasts)
-    t_contrast = np.repeat(ref_ct * pop.median_factor, n_contrasts) * np.tile(rel, diam.size)
+    trend = diam**pop.factor_slope  # F_r(d) / F_r
+    t_contrast = np.repeat(ref_ct * pop.median_factor * trend, n_contrasts) * np.tile(rel, diam.size)
     n_targets = t_diam.size
     target_ids = [f"d{d:g}-c{j + 1:02d}" for d in diam for j in range(n_contrasts)]
 
-    human_rows, model_rows, truth = [], [], []
+    human_rows, model_rows, response_rows, truth = [], [], [], []
     for det, ratio in detectors.items():
         if isinstance(ratio, dict):
             r_d = np.array([float(ratio.get(float(d), ratio.get(d, 1.0))) for d in diam])
@@ -156,7 +164,12 @@ def simulate_reader_study(
             truth.append({"reader": "model", "detector": det, "diameter_mm": d, "threshold_contrast": ct_model[j]})
             for r, name in enumerate(names):
                 truth.append(
-                    {"reader": name, "detector": det, "diameter_mm": d, "threshold_contrast": ct_model[j] * factor[r]}
+                    {
+                        "reader": name,
+                        "detector": det,
+                        "diameter_mm": d,
+                        "threshold_contrast": ct_model[j] * factor[r] * trend[j],
+                    }
                 )
         signal = a * t_contrast  # (T,) model d′ per target
         true_site = rng.integers(0, m, size=(n_images, n_targets))
@@ -184,8 +197,25 @@ def simulate_reader_study(
 
         t_model = ext + onehot * signal[None, :, None]
         model_rows.append(frame(model_name, np.argmax(t_model, axis=2), 0, np.zeros((n_images, n_targets), dtype=int)))
+        a_t = a[None, :, None]  # responses in contrast units: t_j / a
+        response_rows.append(
+            pd.DataFrame(
+                {
+                    "image": np.repeat(img_ids, n_targets * m),
+                    "detector": det,
+                    "target": np.tile(np.repeat(target_ids, m), n_images),
+                    "diameter_mm": np.tile(np.repeat(t_diam, m), n_images),
+                    "contrast": np.tile(np.repeat(t_contrast, m), n_images),
+                    "m_alternatives": m,
+                    "site": np.tile(np.arange(m), n_images * n_targets),
+                    "is_signal": onehot.ravel(),
+                    "response": (t_model / a_t).ravel(),
+                    "observer": model_name,
+                }
+            )
+        )
         for r, name in enumerate(names):
-            s_r = np.sqrt(efficiency[r]) * signal
+            s_r = np.sqrt(efficiency[r]) * signal / np.repeat(trend, n_contrasts)
             for rep in range(n_repeats):
                 t_r = ext + onehot * s_r[None, :, None] + internal[r] * rng.standard_normal(ext.shape)
                 chosen = np.argmax(t_r, axis=2)
@@ -203,6 +233,7 @@ def simulate_reader_study(
         truth=pd.DataFrame(truth),
         m_alternatives=m,
         criterion_pc=crit,
+        model_responses=pd.concat(response_rows, ignore_index=True),
         params={
             "detectors": detectors,
             "diameters_mm": diam.tolist(),

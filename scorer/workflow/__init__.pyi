@@ -37,7 +37,7 @@ from .results import (
     load_scored_json as load_scored_json,
 )
 from .simulated import load_detector_model as load_detector_model, write_simulated as write_simulated
-from .trials import load_trials as load_trials
+from .trials import load_trials as load_trials, load_model_table as load_model_table
 from .headers import read_image_metadata as read_image_metadata, read_acquisition_extras as read_acquisition_extras
 
 __all__ = [
@@ -77,4 +77,5 @@ __all__ = [
     "read_image_metadata",
     "read_acquisition_extras",
     "load_trials",
+    "load_model_table",
 ]

@@ -49,12 +49,19 @@ def human_factor_from_analysis(path, observer: str) -> HumanFactor:
     return parse_human_factor(read_json(path, "analysis file (an analysis.json)"), observer, path)
 
 
-def resolve_human_factor(value: float | None, analysis_file, observer: str) -> HumanFactor | float | None:
-    """The human/model factor from ``--human-factor`` or ``--human-factor-from`` (an analysis.json), never both."""
+def resolve_human_factor(
+    value: float | None, analysis_file, observer: str, method: str | None = None
+) -> HumanFactor | float | None:
+    """The human/model factor from ``--human-factor`` or ``--human-factor-from`` (an analysis.json), never both.
+
+    With ``method`` (the threshold method the factor will be applied to), a factor the analysis measured only
+    for another method is refused here, before any image is scored (:meth:`HumanFactor.for_method`).
+    """
     if analysis_file:
         if value is not None:
             raise LimenError("give either --human-factor or --human-factor-from, not both", "--human-factor")
-        return human_factor_from_analysis(analysis_file, observer)
+        factor = human_factor_from_analysis(analysis_file, observer)
+        return factor.for_method(method) if method else factor
     return value
 
 
