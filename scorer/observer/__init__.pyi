@@ -1,9 +1,12 @@
 """Public entry points of this package (read by lazy_loader.attach_stub and type checkers)."""
 
+from . import checks as checks
+from . import defects as defects
 from . import eye as eye
 from . import limits as limits
 from . import mafc as mafc
 from . import npw as npw
+from . import patterns as patterns
 from . import psychometric as psychometric
 from . import scoring as scoring
 from . import threshold as threshold
@@ -37,10 +40,13 @@ from .limits import (
 from .scoring import ScoreResult as ScoreResult, score_images as score_images
 
 __all__ = [
+    "checks",
+    "defects",
     "eye",
     "limits",
     "mafc",
     "npw",
+    "patterns",
     "psychometric",
     "scoring",
     "threshold",
