@@ -25,6 +25,7 @@ from scorer.observer.defects import (
     find_defects,
     fixed_spots,
     plate_masks,
+    site_effects,
     site_exclusions,
     spot_label,
 )
@@ -57,11 +58,13 @@ class ImageChecks:
     found: ImageDefects
     defects: list  # named defects: the image's, then the defect map's (index k − 1 for label k)
     excluded: dict[tuple[str, int], str]  # (target, site) → reason
+    masked: dict[tuple[str, int], tuple[str, int]]  # (target, site) → (reason, defective pixels left out)
     peaks: list[PeriodicPeak]
     notched: bool
     spectrum: BackgroundSpectrum | None
     regions: list[SiteRegion] = field(default_factory=list, repr=False)
     label: np.ndarray | None = field(default=None, repr=False)
+    mask: np.ndarray | None = field(default=None, repr=False)  # pixels the observer leaves out
 
     def to_dict(self) -> dict:
         d = self.found.to_dict()
@@ -69,6 +72,10 @@ class ImageChecks:
         return {
             "defects": d,
             "excluded_sites": [{"target": t, "site": s, "reason": r} for (t, s), r in sorted(self.excluded.items())],
+            "masked_sites": [
+                {"target": t, "site": s, "reason": r, "pixels_left_out": n}
+                for (t, s), (r, n) in sorted(self.masked.items())
+            ],
             "periodic_peaks": [p.to_dict() for p in self.peaks],
             "notch_applied": self.notched,
         }
@@ -103,7 +110,7 @@ def check_image(
         map_defects, map_label = defect_map.labelled(pixels.shape)
         label = np.where(map_label > 0, map_label + len(defects), label).astype(np.int32)
         defects += map_defects
-    excluded = site_exclusions(defects, label, regions)
+    effects = site_effects(defects, label, regions)
     bad = label > 0
     valid = found.valid & ~bad
     spectrum = background_spectrum(found.residual, valid, image.pixel_mm)
@@ -118,7 +125,19 @@ def check_image(
         image = replace(image, pixels=np.where(bad, pixels, filled))
         notched = True
     found.valid, found.background = valid, None
-    checks = ImageChecks(image_id, found, defects, excluded, peaks, notched, spectrum, regions, label)
+    checks = ImageChecks(
+        image_id,
+        found,
+        defects,
+        effects.excluded,
+        effects.masked,
+        peaks,
+        notched,
+        spectrum,
+        regions,
+        label,
+        effects.mask,
+    )
     return checks, image
 
 
@@ -181,23 +200,30 @@ class SetChecks:
         for ch in self.images:
             ch.regions = []
             ch.label = None
+            ch.mask = None
 
     # ------------------------------------------------------------------ results
     def mark(self, responses: pd.DataFrame) -> pd.DataFrame:
-        """The responses with an ``excluded`` column: the reason for an excluded site, the excluded site's
-        name for the other sites of its trial, empty for the sites used."""
+        """The responses with an ``excluded`` column (the reason for an excluded site, the excluded site's
+        name for the other sites of its trial, empty for the sites used) and ``masked_px`` (defective pixels
+        left out of a kept site's background ring)."""
         out = responses.copy()
         reasons = {}
         trial_reason = {}
+        n_masked = {}
         for ch in self.images:
             for (t, s), why in ch.excluded.items():
                 reasons[(ch.image, t, s)] = why
                 trial_reason.setdefault((ch.image, t), f"trial left out: site {s} — {why}")
-        col = []
+            for (t, s), (_why, n) in ch.masked.items():
+                n_masked[(ch.image, t, s)] = n
+        col, npx = [], []
         for img, t, s in zip(out["image"], out["target"], out["site"]):
             why = reasons.get((img, t, int(s)))
             col.append(why if why is not None else trial_reason.get((img, t), ""))
+            npx.append(n_masked.get((img, t, int(s)), 0))
         out["excluded"] = col
+        out["masked_px"] = npx
         return out
 
     def exclusions_json(self) -> list[dict]:
@@ -252,15 +278,22 @@ class SetChecks:
         out = []
         for ch in self.images:
             name = names.get(ch.image, ch.image)
-            lines_free = [d.name for d in ch.found.lines if not any(d.name in r for r in ch.excluded.values())]
-            if ch.excluded:
+            touched = [*ch.excluded.values(), *(r for r, _n in ch.masked.values())]
+            lines_free = [d.name for d in ch.found.lines if not any(d.name in r for r in touched)]
+            if ch.excluded or ch.masked:
                 items = [f"{t} site {s}: {r}" for (t, s), r in sorted(ch.excluded.items())]
                 more = f"; and {len(items) - LISTED} more (results.json, responses.csv)" if len(items) > LISTED else ""
-                out.append(
-                    f"{name}: {len(items)} site(s) excluded for defects, with their M-AFC trials — "
-                    + "; ".join(items[:LISTED])
-                    + more
+                text = (
+                    f"{len(items)} site(s) excluded for defects, with their M-AFC trials — " + "; ".join(items[:LISTED])
+                    if items
+                    else ""
                 )
+                kept = (
+                    f"{len(ch.masked)} site(s) kept with defective pixels left out of their background ring"
+                    if ch.masked
+                    else ""
+                )
+                out.append(f"{name}: " + "; ".join(x for x in (text + more, kept) if x))
             if lines_free:
                 out.append(f"{name}: {', '.join(lines_free)} (no site touched)")
             if ch.found.clipped_fraction >= 1e-3:

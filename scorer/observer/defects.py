@@ -37,12 +37,15 @@ on the detector, a faint defect) in the mean residual, whose noise is σ/√n.
 
 Sites
 -----
-A site whose region (:func:`scorer.observer.npw.site_regions`, dilated by one pixel) touches a defect is
-excluded, with the defect's name as the reason.  The whole M-AFC trial of that image and target is left out:
-a decision among M − 1 sites is not an M-AFC trial (the count method), and the d′ method pools one noise SD
-over the sites of a diameter, which a site with pixels removed would no longer share.  Keeping the trial with
-the defective pixels masked and the template renormalised was the alternative; it changes that site's noise
-and, for discs of about a pixel, removes most of the signal.
+A defect (dilated by one pixel) that reaches a site's disc footprint (the template's support, the region's
+inner radius + 1 px; :func:`scorer.observer.npw.site_regions`) excludes the site, with the defect's name as
+the reason, and the whole M-AFC trial of that image and target is left out: a decision among M − 1 sites is
+not an M-AFC trial (the count method), and the d′ method pools one noise SD over the sites of a diameter, which
+a template with pixels removed would no longer share (for discs of about a pixel, a masked pixel removes most
+of the signal).  A defect only in the site's background ring is masked instead: its pixels leave the plane fit
+(and the template, whose weight there is nil), the response stays an unbiased contrast estimate with almost
+the same noise, and the site is kept — unless the defects cover more than half of the ring.  A thin line
+crossing a row of sites thus costs the trials whose discs it crosses, not every trial it touches.
 
 References
 ----------
@@ -543,13 +546,33 @@ def find_defects(
     )
 
 
-def site_exclusions(defects: list, label: np.ndarray, regions, image: str = "") -> dict[tuple[str, int], str]:
-    """(target, site) → reason, for every site whose region (dilated by one pixel) touches a labelled defect."""
+@dataclass
+class SiteEffects:
+    """How the defects of one image touch its sites.
+
+    ``excluded``: (target, site) → reason, sites left out with their M-AFC trial; ``masked``: (target, site) →
+    (reason, pixels), sites kept with those defective pixels left out of their background ring;
+    ``mask``: the defective pixels, dilated by one pixel, as the observer leaves them out.
+    """
+
+    excluded: dict[tuple[str, int], str]
+    masked: dict[tuple[str, int], tuple[str, int]]
+    mask: np.ndarray | None
+
+
+def site_effects(defects: list, label: np.ndarray, regions, max_ring_fraction: float = 0.5) -> SiteEffects:
+    """Which sites a labelled defect touches, and how (see module docstring).
+
+    A site is excluded when a defect (dilated by one pixel) reaches its disc's footprint (the template's
+    support: ``inner_px`` + 1 px) or covers more than ``max_ring_fraction`` of its background ring; a defect
+    only in the ring is masked: its pixels leave the background fit and the site is kept.
+    """
     if not np.any(label):
-        return {}
+        return SiteEffects({}, {}, None)
     grown = ndimage.maximum_filter(label, size=3)
     H, W = label.shape
-    out: dict[tuple[str, int], str] = {}
+    excluded: dict[tuple[str, int], str] = {}
+    masked: dict[tuple[str, int], tuple[str, int]] = {}
     for reg in regions:
         rad = reg.radius_px + 0.5
         r0, r1 = max(int(np.floor(reg.row_px - rad)), 0), min(int(np.ceil(reg.row_px + rad)) + 1, H)
@@ -560,11 +583,27 @@ def site_exclusions(defects: list, label: np.ndarray, regions, image: str = "") 
         if not sub.any():
             continue
         yy, xx = np.mgrid[r0:r1, c0:c1]
-        inside = (yy - reg.row_px) ** 2 + (xx - reg.col_px) ** 2 <= rad * rad
-        hit = np.unique(sub[inside & (sub > 0)])
-        if hit.size:
-            out[(reg.target, reg.site)] = "; ".join(defects[k - 1].name for k in hit)
-    return out
+        d2 = (yy - reg.row_px) ** 2 + (xx - reg.col_px) ** 2
+        inside = d2 <= rad * rad
+        bad = inside & (sub > 0)
+        hit = np.unique(sub[bad])
+        if not hit.size:
+            continue
+        why = "; ".join(defects[k - 1].name for k in hit)
+        ring = inside & (d2 > reg.inner_px**2)
+        if np.any(bad & (d2 <= (reg.inner_px + 1.0) ** 2)):
+            excluded[(reg.target, reg.site)] = why
+        elif np.count_nonzero(bad & ring) > max_ring_fraction * max(np.count_nonzero(ring), 1):
+            excluded[(reg.target, reg.site)] = f"defects cover most of its background ring ({why})"
+        else:
+            masked[(reg.target, reg.site)] = (why, int(np.count_nonzero(bad)))
+    return SiteEffects(excluded, masked, grown > 0)
+
+
+def site_exclusions(defects: list, label: np.ndarray, regions) -> dict[tuple[str, int], str]:
+    """(target, site) → reason for every site a labelled defect (dilated by one pixel) touches at all."""
+    eff = site_effects(defects, label, regions, max_ring_fraction=-1.0)
+    return {**eff.excluded, **{k: why for k, (why, _n) in eff.masked.items()}}
 
 
 # --------------------------------------------------------------------------- across the images of a set

@@ -275,11 +275,14 @@ def score_image(
     config: ObserverConfig = ObserverConfig(),
     image_id: str | None = None,
     skip: Collection[tuple[str, int]] = (),
+    masked: np.ndarray | None = None,
 ) -> pd.DataFrame:
     """Model-observer responses at every candidate site of every target.
 
     ``skip``: (target id, site) pairs not to compute (their response is NaN) — sites excluded
     for a defect (:mod:`scorer.observer.defects`); they are neither read nor checked.
+    ``masked``: defective pixels (boolean image) left out of a site's background fit and template, the
+    template renormalised (Σw·s₁ over the pixels kept), so the response still estimates the contrast.
 
     Returns
     -------
@@ -320,7 +323,10 @@ def score_image(
             if ri - h < 0 or ci - h < 0 or ri + h + 1 > H or ci + h + 1 > W:
                 raise LimenError(f"target {t.id!r} site {k} lies at the image edge; the phantom is cut off")
             g = pixels[ri - h : ri + h + 1, ci - h : ci + h + 1]
-            if saturated is not None and np.any(g >= saturated):
+            keep = None if masked is None else ~masked[ri - h : ri + h + 1, ci - h : ci + h + 1]
+            if keep is not None and keep.all():
+                keep = None
+            if saturated is not None and np.any(g >= saturated if keep is None else g[keep] >= saturated):
                 raise LimenError(
                     f"target {t.id!r} site {k} is saturated (pixels at the detector's maximum "
                     "value); repeat the exposure at a lower dose"
@@ -329,6 +335,8 @@ def score_image(
             dist = np.hypot(dy, dx)
             roi = dist <= rr
             ring = roi & (dist > inner)
+            if keep is not None:
+                roi, ring = roi & keep, ring & keep
             A = np.column_stack([np.ones(ring.sum()), dy[ring], dx[ring]])
             coef, *_ = np.linalg.lstsq(A, g[ring], rcond=None)
             if coef[0] <= 0:

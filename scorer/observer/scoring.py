@@ -22,7 +22,8 @@ from scorer.observer.checks import CONTRAST_SCALE, ImageChecks, SetChecks, check
 from scorer.observer.defects import DEFAULT_FALSE_FLAG_RATE, DefectMap
 from scorer.observer.limits import HumanFactor, Limits, Verdict, evaluate, overall
 from scorer.observer.npw import ObserverConfig, SystemBlur, decide, estimate_blur, score_image
-from scorer.observer.threshold import ThresholdCurve, count_thresholds, dprime_thresholds
+from scorer.observer.mafc import halfway_criterion
+from scorer.observer.threshold import ThresholdCurve, ThresholdPoint, count_thresholds, dprime_thresholds
 from scorer.phantom.layout import Layout
 from scorer.phantom.registration import register
 from scorer.resources import check_limit
@@ -237,6 +238,7 @@ def score_images(
         img_blur = config.blur or estimate_blur(image, layout, placement)
         cfg = ObserverConfig(observer=config.observer, viewing_distance_mm=config.viewing_distance_mm, blur=img_blur)
         skip: dict = {}
+        masked = None
         checks = None
         if set_checks is not None:
             try:
@@ -253,12 +255,13 @@ def score_images(
                 )
             except LimenError as exc:
                 raise LimenError(str(exc), getattr(exc, "path", None) or path) from None
+            skip, masked = checks.excluded, checks.mask
+            checks.mask = None  # the observer below is its last user
             set_checks.add(checks)
-            skip = checks.excluded
             if on_checked is not None:
                 on_checked(i, path, image, placement, checks)
         try:
-            resp = score_image(image, layout, placement, cfg, image_id=image_id, skip=skip)
+            resp = score_image(image, layout, placement, cfg, image_id=image_id, skip=skip, masked=masked)
         except LimenError as exc:
             raise LimenError(str(exc), path) from None
         md = image.metadata
@@ -291,7 +294,7 @@ def score_images(
     if "count" in methods:
         curves["count"] = count_thresholds(trials, criterion_pc=criterion_pc, n_boot=n_boot, seed=seed, form=count_form)
     if used is not responses:
-        _note_exclusions(curves, responses, trials)
+        _note_exclusions(curves, responses, trials, criterion_pc)
     vm = verdict_method or ("dprime" if "dprime" in curves else "count")
     if vm not in curves:
         raise LimenError(f"verdict method {vm!r} was not computed")
@@ -341,12 +344,24 @@ def score_images(
     )
 
 
-def _note_exclusions(curves: dict[str, ThresholdCurve], responses: pd.DataFrame, trials: pd.DataFrame) -> None:
-    """Say on each threshold how many M-AFC trials it rests on when some were excluded for defects."""
+def _note_exclusions(
+    curves: dict[str, ThresholdCurve], responses: pd.DataFrame, trials: pd.DataFrame, criterion_pc: float | None
+) -> None:
+    """Say on each threshold how many M-AFC trials it rests on when some were excluded for defects; a diameter
+    whose every trial was excluded gets a point without a threshold that says so."""
     all_trials = responses.drop_duplicates(["image", "target"])
     total = all_trials.groupby("diameter_mm").size()
     used = trials.groupby("diameter_mm").size()
+    m_of = all_trials.groupby("diameter_mm")["m_alternatives"].first()
     for curve in curves.values():
+        have = {round(p.diameter_mm, 9) for p in curve.points}
+        for d in total.index:
+            if round(float(d), 9) not in have:
+                m = int(m_of[d])
+                pc = halfway_criterion(m) if criterion_pc is None else float(criterion_pc)
+                nan = float("nan")
+                curve.points.append(ThresholdPoint(float(d), nan, nan, nan, curve.method, curve.observer, 0, m, pc))
+        curve.points.sort(key=lambda p: p.diameter_mm)
         for p in curve.points:
             n_all = int(total.get(p.diameter_mm, 0))
             n_used = int(used.get(p.diameter_mm, 0))
@@ -354,4 +369,6 @@ def _note_exclusions(curves: dict[str, ThresholdCurve], responses: pd.DataFrame,
                 p.n_trials, p.n_excluded = n_used, n_all - n_used
                 p.note = (p.note + "; " if p.note else "") + (
                     f"rests on {n_used} of {n_all} trials ({n_all - n_used} excluded for defects; the CI uses the rest)"
+                    if n_used
+                    else f"no threshold: all {n_all} trials were excluded for defects"
                 )
