@@ -750,6 +750,15 @@ class DefectMap:
         return defects, label
 
 
+def fill_defects(pixels: np.ndarray, bad: np.ndarray) -> np.ndarray:
+    """The image with the ``bad`` pixels replaced by the smooth background of the others (no noise there)."""
+    g = np.asarray(pixels, float)
+    if not np.any(bad):
+        return g
+    _, b = relative_residual(g, ~bad)
+    return np.where(bad, b, g)
+
+
 def defect_map_from_flats(
     flats: list[np.ndarray], *, false_flag_rate: float = DEFAULT_FALSE_FLAG_RATE, max_pixels: int = 100_000
 ) -> DefectMap:
