@@ -107,3 +107,21 @@ def test_fixed_pattern_measured_and_absent_when_there_is_none():
     # a real but negligible pattern (0.05 × the noise) is not reported
     assert not pat.fixed_pattern(*_sums(8, 0.0005), 8).significant
     assert pat.fixed_pattern(*_sums(2, 0.005), 2) is None
+
+
+def test_fixed_pattern_test_leaves_out_the_periodic_patterns_it_is_given():
+    shape = (512, 512)
+    xx = np.arange(shape[1])[None, :] * PIX
+    grid = 0.02 * np.cos(2 * np.pi * 3.5 * xx)
+    rng = np.random.default_rng(7)
+    s, s2 = np.zeros(shape), np.zeros(shape)
+    for _ in range(8):
+        e = grid + 0.01 * rng.standard_normal(shape)
+        s += e
+        s2 += e * e
+    cnt = np.full(shape, 8, np.int32)
+    assert pat.fixed_pattern(s, s2, cnt, 8).significant  # the grid is shared by the images
+    # the peak as the spectrum measures it (its frequency known to a fraction of a bin), fitted out
+    peak = pat.find_peaks(_spectrum(grid + 0.01 * rng.standard_normal(shape)))[0]
+    fp = pat.fixed_pattern(s, s2, cnt, 8, peaks=[peak], pixel_mm=PIX)
+    assert not fp.significant and fp.relative_sd < 0.001, fp

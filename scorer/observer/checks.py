@@ -116,9 +116,6 @@ def check_image(
     spectrum = background_spectrum(found.residual, valid, image.pixel_mm)
     peaks = find_peaks(spectrum) if spectrum is not None else []
     notched = False
-    if peaks:
-        # the shared-pattern test looks at what is left once the periodic pattern is out
-        found.residual = notch(np.where(valid, found.residual, 0.0), peaks, image.pixel_mm)
     if apply_notch and peaks:
         # defects filled with the smooth background first, so a dead line does not ring through the notch
         filled = notch(np.where(bad, found.background, pixels), peaks, image.pixel_mm)
@@ -188,7 +185,8 @@ class SetChecks:
             self.peaks = find_peaks(self.spectrum)
         n = len(self.images)
         if self._shape is not None and self._shape != "mixed" and n >= 2:
-            self.fixed = fixed_pattern(self._sum, self._sum2, self._count, n)
+            pixel_mm = self.spectrum.pixel_mm if self.spectrum is not None else 1.0
+            self.fixed = fixed_pattern(self._sum, self._sum2, self._count, n, peaks=self.peaks, pixel_mm=pixel_mm)
             self.spots = fixed_spots(self._sum, self._count, n, false_flag_rate=self.false_flag_rate)
             if self.spots:
                 label = spot_label(self.spots, self._shape)

@@ -35,7 +35,8 @@ noise allows, σ²/n, block by block (64 px): R = mean(ē²)/mean(s²/n), s² th
 images (n − 1 degrees of freedom).  Without a fixed pattern R ≈ 1 whatever the noise's correlation; the blocks'
 R give its standard error.  A pattern is reported when z > Φ⁻¹(1 − α) (one-sided, α = 10⁻³) and its relative SD
 √(mean ē² − mean s²/n) is at least 0.1 × the per-image noise: adding a shared pattern of relative SD ρ·σ to
-noise σ raises the noise the d′ method sees by √(1 + ρ²) (≥ 0.5 % from ρ = 0.1).
+noise σ raises the noise the d′ method sees by √(1 + ρ²) (≥ 0.5 % from ρ = 0.1).  The periodic patterns found
+in the set are fitted out of each block first (they are reported on their own).
 
 References
 ----------
@@ -309,8 +310,16 @@ def fixed_pattern(
     *,
     block_px: int = 64,
     false_alarm: float = DEFAULT_FALSE_ALARM,
+    peaks: list[PeriodicPeak] = (),
+    pixel_mm: float = 1.0,
 ) -> FixedPattern | None:
-    """Test the images' mean residual for a shared pattern (see module docstring); None below 3 images."""
+    """Test the images' mean residual for a shared pattern (see module docstring); None below 3 images.
+
+    ``peaks`` (periodic patterns found in the set, frequencies in cycles/mm at ``pixel_mm``) are fitted and
+    removed in each block before its mean square is taken — a sinusoid and its first-order terms in x and y,
+    which follow a frequency known to a fraction of a bin — so the test reports what is shared besides them;
+    the residual mean square divides by the pixels less the fitted terms.
+    """
     if n_images < 3:
         return None
     if sum_e.shape != sum_e2.shape or sum_e.shape != count.shape:
@@ -326,7 +335,20 @@ def fixed_pattern(
             f = full[r0 : r0 + block_px, c0 : c0 + block_px]
             if f.mean() < 0.5:
                 continue
-            m2 = float(np.mean(mean[r0 : r0 + block_px, c0 : c0 + block_px][f] ** 2))
+            x = mean[r0 : r0 + block_px, c0 : c0 + block_px][f]
+            if peaks:
+                yy, xx = np.nonzero(f)
+                cols = []
+                for pk in peaks:
+                    phase = 2 * np.pi * pixel_mm * (pk.fx_per_mm * (xx + c0) + pk.fy_per_mm * (yy + r0))
+                    u, v = (xx - block_px / 2) / block_px, (yy - block_px / 2) / block_px
+                    for w in (np.cos(phase), np.sin(phase)):
+                        cols += [w, u * w, v * w]
+                X = np.column_stack(cols)
+                coef, *_ = np.linalg.lstsq(X, x, rcond=None)
+                m2 = float(np.sum((x - X @ coef) ** 2)) / max(x.size - X.shape[1], 1)
+            else:
+                m2 = float(np.mean(x**2))
             v = float(np.mean(var[r0 : r0 + block_px, c0 : c0 + block_px][f]))
             if v > 0:
                 rows.append((m2, v / n))
