@@ -166,3 +166,18 @@ def test_fixed_spot_invisible_in_one_image_is_found_in_the_mean():
     # without the speck: nothing
     s0 = sum(0.01 * np.random.default_rng(100 + i).standard_normal(shape) for i in range(n))
     assert dfx.fixed_spots(s0, cnt, n) == []
+
+
+@pytest.mark.parametrize("sigma_levels", [0.2, 0.5, 0.8, 2.0])
+def test_quantised_images_one_grey_level_is_not_a_defect(sigma_levels):
+    # an 8-bit image whose noise is about a grey level: the MAD collapses to 0 there, a one-level departure is
+    # rounding (Sheppard's correction: variance q²/12), not a defect; a dead column and a hot pixel still are
+    shape = (256, 256)
+    for seed in range(3):
+        g = np.round(125 + sigma_levels * np.random.default_rng(seed).standard_normal(shape))
+        found = dfx.find_defects(g, np.ones(shape, bool), np.zeros(shape, bool))
+        assert not found.defects, [d.name for d in found.defects]
+    g[:, 100] = 0.0
+    g[50, 50] = 160.0
+    names = [d.name for d in dfx.find_defects(g, np.ones(shape, bool), np.zeros(shape, bool)).defects]
+    assert names == ["dead column 100", "hot pixel at row 50, column 50"]

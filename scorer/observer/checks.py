@@ -158,26 +158,26 @@ class SetChecks:
         self._sum = self._sum2 = self._count = None
 
     def add(self, checks: ImageChecks) -> None:
+        """Take one image's checks; its residual, masks and labels are dropped once summed (one image's arrays
+        in memory at a time)."""
         self.images.append(checks)
         if checks.spectrum is not None:
             self.spectrum = checks.spectrum if self.spectrum is None else self.spectrum.combined(checks.spectrum)
         e, v = checks.found.residual, checks.found.valid
-        if e is None:
+        checks.found.residual = checks.found.valid = checks.found.label = checks.label = None
+        if e is None or self._shape == "mixed":
             return
         if self._shape is None:
             self._shape = e.shape
             self._sum, self._sum2, self._count = np.zeros(e.shape), np.zeros(e.shape), np.zeros(e.shape, np.int32)
         if e.shape != self._shape:
-            if self._shape != "mixed":
-                self.notes.append("images of different sizes: no search for patterns shared by the images")
+            self.notes.append("images of different sizes: no search for patterns shared by the images")
             self._shape = "mixed"
+            self._sum = self._sum2 = self._count = None
             return
         self._sum += np.where(v, e, 0.0)
         self._sum2 += np.where(v, e * e, 0.0)
         self._count += v
-        # the residual and its mask are not needed any more; keep the memory of one image at a time
-        checks.found.residual = None
-        checks.found.valid = None
 
     def finish(self) -> None:
         """Set-level peaks, the fixed-pattern test and fixed spots (their sites join the exclusions)."""

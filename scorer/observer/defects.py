@@ -15,18 +15,23 @@ Method (one image)
   A heel effect, scatter pedestal or smooth non-uniformity goes into b, not into e.
 * **Noise scale.**  σ of e in 64 × 64-pixel blocks, from the median absolute deviation: σ = 1.4826·MAD
   (consistent for Gaussian noise; Rousseeuw & Croux 1993), so neither the defects nor the discs inflate it.
+  Where values are quantised (8-bit images, noise of about a grey level) the MAD can collapse, so where it is
+  below two grey steps the scale is the larger of it and the SD of the block's values winsorised at their 1st
+  and 99th percentiles (÷ 0.982, the same scale for Gaussian data); the grey step's rounding variance q²/12 is
+  added (Sheppard's correction): a one-level departure is never a defect.
 * **Pixels.**  A pixel is flagged when |e| > z·σ, with z = Φ⁻¹(1 − α/(2N)) for N pixels tested (Šidák's
   bound for N tests): a clean image with Gaussian noise then holds α flagged pixels on average (α = 10⁻³ per
   image by default).  In a signal disc's footprint the bound is widened by twice the disc's nominal contrast,
   so a disc is never a defect.  Flagged pixels are grouped (8-connected) and named: hot pixel, hot cluster,
   dark pixel, dark spot (dust), saturated pixels.
-* **Lines.**  Each row and each column is cut into 128-pixel segments; the median of e over a segment, times
-  √(pixels in it), is compared with the robust SD of that statistic over all segments of the image, with the
-  same α-bound over the number of segments.  The empirical scale absorbs correlated noise and periodic patterns
-  (grid lines move every column alike, so none stands out).  Flagged segments of a line merge into a line
-  defect, named by what its pixels are: saturated (≥ half at the image's plateau maximum), dead (≤ 20 % of the
-  background), else dark or bright by its median departure.  Adjacent lines of one kind merge ("dead columns
-  87–88").  Rows and columns are counted from 0.
+* **Lines.**  Each row and each column is cut into 128-pixel segments; the 10 %-winsorised mean of e over a
+  segment (robust like a median, but smooth on quantised values), times √(pixels in it), is compared with the
+  robust SD of that statistic over all segments of the image (never below the pixels' σ, its value for white
+  noise), with the same α-bound over the number of segments.  The empirical scale absorbs correlated noise and
+  periodic patterns (grid lines move every column alike, so none stands out).  Flagged segments of a line merge
+  into a line defect, named by what its pixels are: saturated (≥ half at the image's plateau maximum), dead
+  (≤ 20 % of the background), else dark or bright by its median departure.  Adjacent lines of one kind merge
+  ("dead columns 87–88").  Rows and columns are counted from 0.
 * **Saturation.**  A plateau at the image maximum is clipping.  When the plateau pixels outside the line
   defects are widespread (≥ 0.1 % of the image, :func:`scorer.observer.npw.saturation_level`), it is an
   over-exposure, not a defect: those pixels are not flagged and the observer refuses the sites that touch them
@@ -154,10 +159,14 @@ def relative_residual(pixels: np.ndarray, weight: np.ndarray, sigma_px: float = 
     return g / b - 1.0, b
 
 
-def block_sd(e: np.ndarray, valid: np.ndarray, block_px: int = BLOCK_PX, min_pixels: int = 256) -> np.ndarray:
+def block_sd(
+    e: np.ndarray, valid: np.ndarray, block_px: int = BLOCK_PX, min_pixels: int = 256, step: float = 0.0
+) -> np.ndarray:
     """Robust SD of ``e`` (valid pixels) in ``block_px`` square blocks, as a full-size map.
 
-    A block with fewer than ``min_pixels`` valid pixels takes the median of the blocks that have enough.
+    1.4826 × the MAD; where that is below two grey-level steps ``step`` (relative units; quantised values whose
+    MAD can collapse to 0 or one step), the larger of it and the winsorised SD (see module docstring).  A block
+    with fewer than ``min_pixels`` valid pixels takes the median of the blocks that have enough.
     """
     H, W = e.shape
     nb_r, nb_c = -(-H // block_px), -(-W // block_px)
@@ -169,6 +178,13 @@ def block_sd(e: np.ndarray, valid: np.ndarray, block_px: int = BLOCK_PX, min_pix
         warnings.simplefilter("ignore", RuntimeWarning)
         med = np.nanmedian(X, axis=2)
         sd = MAD_TO_SD * np.nanmedian(np.abs(X - med[:, :, None]), axis=2)
+        # quantised values (noise of a grey level or less) make the MAD collapse to 0 or one step; the SD of
+        # the values winsorised at their own 1st and 99th percentiles (against hot pixels) ÷ 0.982, the same
+        # scale for Gaussian data, keeps the rounding's variance: the larger of the two is used
+        if step > 0 and np.nanmin(sd) < 2 * step:
+            lo, hi = np.nanpercentile(X, [1, 99], axis=2)
+            sd_w = np.nanstd(np.clip(X, lo[:, :, None], hi[:, :, None]), axis=2) / 0.982
+            sd = np.where(sd < 2 * step, np.maximum(sd, sd_w), sd)
     sd[cnt < min_pixels] = np.nan
     ok = np.isfinite(sd) & (sd > 0)
     if not ok.any():
@@ -177,6 +193,19 @@ def block_sd(e: np.ndarray, valid: np.ndarray, block_px: int = BLOCK_PX, min_pix
     else:
         sd[~ok] = np.median(sd[ok])
     return np.repeat(np.repeat(sd, block_px, axis=0), block_px, axis=1)[:H, :W]
+
+
+def quantisation_step(pixels: np.ndarray, max_samples: int = 200_000) -> float:
+    """The grey-level step of the pixel values: the median gap between neighbouring distinct values of a sample.
+
+    1 for integer images whose noise spans several levels, a negligible fraction of the noise for continuous
+    (linearised) values.
+    """
+    g = np.asarray(pixels, float).ravel()
+    if g.size > max_samples:
+        g = g[:: int(np.ceil(g.size / max_samples))]
+    u = np.unique(g[np.isfinite(g)])
+    return float(np.median(np.diff(u))) if u.size > 1 else 0.0
 
 
 def plateau_level(pixels: np.ndarray, min_count: int = 3) -> float | None:
@@ -262,12 +291,13 @@ class PixelDefect:
 class ImageDefects:
     """What :func:`find_defects` found in one image.
 
-    ``label`` numbers each defect's pixels (0: none; ``k`` ≥ 1: ``defects[k − 1]``).
+    ``label`` numbers each defect's pixels (0: none; ``k`` ≥ 1: ``defects[k − 1]``); the set's checks drop it
+    (and the residual arrays) once the image is done, keeping one image's arrays in memory at a time.
     """
 
     lines: list[LineDefect]
     pixels: list[PixelDefect]
-    label: np.ndarray
+    label: np.ndarray | None
     z_pixel: float
     z_line: float
     n_pixels_tested: int
@@ -277,21 +307,18 @@ class ImageDefects:
     residual: np.ndarray | None = None  # e (relative residual), for the pattern checks
     valid: np.ndarray | None = None  # pixels free of features and defects, for the pattern checks
     background: np.ndarray | None = None  # b, the smooth background
+    n_defective_pixels: int = 0
 
     @property
     def defects(self) -> list:
         return [*self.lines, *self.pixels]
-
-    @property
-    def mask(self) -> np.ndarray:
-        return self.label > 0
 
     def to_dict(self, max_listed: int = 200) -> dict:
         return {
             "lines": [d.to_dict() for d in self.lines],
             "pixel_defects": [d.to_dict() for d in self.pixels[:max_listed]],
             "n_pixel_defects": len(self.pixels),
-            "n_defective_pixels": int(np.count_nonzero(self.label)),
+            "n_defective_pixels": self.n_defective_pixels,
             "z_pixel": self.z_pixel,
             "z_line": self.z_line,
             "n_pixels_tested": self.n_pixels_tested,
@@ -365,18 +392,24 @@ def plate_masks(shape, layout, placement, regions, margin_px: float = 3.0):
 
 
 # --------------------------------------------------------------------------- lines
-def _segment_medians(e: np.ndarray, valid: np.ndarray, seg: int):
-    """Median of e over the valid pixels of each (line, segment) and their count; lines are the rows of e."""
+def _segment_means(e: np.ndarray, valid: np.ndarray, seg: int):
+    """10 %-winsorised mean of e over the valid pixels of each (line, segment), and their count; lines are the
+    rows of e.  Clipping each segment to its own 10th and 90th percentiles ignores a few outlying pixels (hot
+    pixels) like a median, yet the statistic keeps the plain mean's variance on quantised values, where a median
+    or a trimmed mean jumps by whole grey levels."""
     H, W = e.shape
     nseg = -(-W // seg)
     X = np.full((H, nseg * seg), np.nan)
     X[:, :W] = np.where(valid, e, np.nan)
-    X = X.reshape(H, nseg, seg)
+    X = np.sort(X.reshape(H, nseg, seg), axis=2)  # NaN last
     cnt = np.isfinite(X).sum(axis=2)
+    k = (cnt // 10)[:, :, None]
+    lo = np.take_along_axis(X, k, axis=2)
+    hi = np.take_along_axis(X, np.maximum(cnt[:, :, None] - 1 - k, 0), axis=2)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", RuntimeWarning)
-        med = np.nanmedian(X, axis=2)
-    return med, cnt
+        mean = np.nanmean(np.clip(X, lo, hi), axis=2)
+    return np.where(cnt > 0, mean, np.nan), cnt
 
 
 def _runs(flags: np.ndarray, max_gap: int = 1) -> list[tuple[int, int]]:
@@ -403,11 +436,16 @@ def find_line_defects(
     false_flag_rate: float = DEFAULT_FALSE_FLAG_RATE,
     segment_px: int = SEGMENT_PX,
     min_count: int = 32,
+    pixel_sd: float = 0.0,
 ):
-    """Defective rows and columns (see module docstring); returns (defects, z bound, segments tested)."""
+    """Defective rows and columns (see module docstring); returns (defects, z bound, segments tested).
+
+    ``pixel_sd``: the pixels' noise SD (relative); the scale of the √W-scaled segment means is never taken
+    below 1.05 × it (their SD for white noise), which matters where quantised values make segments alike.
+    """
     stats_ = []
     for axis, E, V, G in (("row", e, valid, pixels), ("column", e.T, valid.T, pixels.T)):
-        med, cnt = _segment_medians(E, V, segment_px)
+        med, cnt = _segment_means(E, V, segment_px)
         ok = cnt >= min_count
         t = np.where(ok, med * np.sqrt(np.maximum(cnt, 1)), np.nan)
         stats_.append((axis, E, V, G, med, cnt, ok, t))
@@ -417,7 +455,7 @@ def find_line_defects(
     z = outlier_z(n_tested, false_flag_rate)
     found: list[LineDefect] = []
     for axis, E, V, G, med, _cnt, ok, t in stats_:
-        scale = robust_sd(t[ok])
+        scale = max(robust_sd(t[ok]), 1.05 * pixel_sd)
         if not scale > 0:
             continue
         centre = float(np.median(t[ok]))
@@ -488,16 +526,23 @@ def find_defects(
     top = plateau_level(g)
     weight = tested & ~features
     e, b = relative_residual(g, weight)
-    sd = block_sd(e, weight)
+    q = quantisation_step(g[tested] if np.any(tested) else g)
+    step = q / float(np.median(b[tested])) if np.any(tested) else 0.0
+    sd = block_sd(e, weight, step=step)
     # second pass: the background without the first pass's outliers
     rough = tested & (np.abs(e) > max(5.0, 0.5 * z) * sd + allowance)
     if rough.any():
         weight2 = weight & ~ndimage.binary_dilation(rough, iterations=1)
         e, b = relative_residual(g, weight2)
-        sd = block_sd(e, weight2)
+        sd = block_sd(e, weight2, step=step)
     else:
         weight2 = weight
-    lines, z_line, n_seg = find_line_defects(e, tested & ~features, g, top, false_flag_rate)
+    # quantised values (an 8-bit image): a departure of one grey level is never a defect — the step's
+    # rounding noise q²/12 joins the noise scale (Sheppard's correction), and z·q/√12 > q for z > 3.5
+    q_rel = q / b
+    sd = np.sqrt(sd * sd + q_rel * q_rel / 12.0)
+    pixel_sd = float(np.median(sd[tested])) if np.any(tested) else 0.0
+    lines, z_line, n_seg = find_line_defects(e, tested & ~features, g, top, false_flag_rate, pixel_sd=pixel_sd)
     line_mask = np.zeros(g.shape, bool)
     for d in lines:
         line_mask[d.pixels(g.shape)] = True
@@ -543,6 +588,7 @@ def find_defects(
         e if keep_residual else None,
         valid if keep_residual else None,
         b if keep_residual else None,
+        int(np.count_nonzero(label)),
     )
 
 

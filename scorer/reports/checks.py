@@ -40,7 +40,8 @@ def _block_mean(pix: np.ndarray, f: int) -> np.ndarray:
 
 
 def draw_defect_overlay(image, placement, checks, out_png, title: str = "") -> Path:
-    """A PNG of the image with its defects (magenta) and the excluded sites' regions (red).
+    """A PNG of the image with its defects (magenta), the excluded sites' regions (red) and the kept sites whose
+    background ring lost defective pixels (orange).
 
     ``placement`` is the image's registration (kept for the signature of the scoring callback; the regions
     come from ``checks``)."""
@@ -80,6 +81,10 @@ def draw_defect_overlay(image, placement, checks, out_png, title: str = "") -> P
             excl.append(Circle((reg.col_px, reg.row_px), reg.radius_px))
     if excl:
         ax.add_collection(PatchCollection(excl, facecolor="none", edgecolor="red", linewidth=1.2))
+    kept = [regions[k] for k in sorted(checks.masked) if k in regions]
+    kept = [Circle((r.col_px, r.row_px), r.radius_px) for r in kept]
+    if kept:
+        ax.add_collection(PatchCollection(kept, facecolor="none", edgecolor="orange", linewidth=1.0, linestyle="--"))
     for d in checks.defects:
         if hasattr(d, "axis"):
             sl = d.pixels((rows, cols))
@@ -93,11 +98,15 @@ def draw_defect_overlay(image, placement, checks, out_png, title: str = "") -> P
             ax.add_patch(Circle((d.col, d.row), rad, fill=False, edgecolor="magenta", linewidth=1.0))
     n_ex = len(checks.excluded)
     lines = [title] if title else []
-    lines.append(f"{len(checks.defects)} defect(s) found; {n_ex} site(s) excluded (red: their regions)")
+    lines.append(
+        f"{len(checks.defects)} defect(s) found; {n_ex} site(s) excluded (red: their regions), {len(checks.masked)} "
+        "kept with defective pixels left out of their background ring (orange)"
+    )
     fig.suptitle("\n".join(lines), fontsize=10)
     key = [
         Line2D([], [], color="magenta", label="defect (pixel group, row or column)"),
         Line2D([], [], color="red", label="region of an excluded site"),
+        Line2D([], [], color="orange", ls="--", label="site kept, defect pixels left out"),
     ]
     ax.legend(handles=key, loc="lower right", fontsize=9, framealpha=0.85, facecolor="black", labelcolor="white")
     buf = io.BytesIO()
