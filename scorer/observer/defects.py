@@ -139,7 +139,7 @@ def relative_residual(pixels: np.ndarray, weight: np.ndarray, sigma_px: float = 
     tx, ty = gx - x * g0, gy - y * g0
     M = np.stack([np.stack([m0, sx, sy], -1), np.stack([sx, sxx, sxy], -1), np.stack([sy, sxy, syy], -1)], -2)
     rhs = np.stack([g0, tx, ty], -1)
-    level = float(np.median(g[weight])) if np.any(weight) else float(np.median(g))
+    level = float(np.median(gm[wb > 0])) if np.any(wb > 0) else float(np.median(g))
     total = float(wb.max()) if wb.size else 0.0
     with np.errstate(invalid="ignore", divide="ignore"):
         det = np.linalg.det(M)
@@ -151,12 +151,33 @@ def relative_residual(pixels: np.ndarray, weight: np.ndarray, sigma_px: float = 
         mean0 = np.where(m0 > 1e-6 * max(total, 1e-300), g0 / m0, level)
         small = np.where(ok & np.isfinite(sol), sol, mean0)
     # bilinear back to the pixel grid: the binned sample k sits at pixel (k + 0.5)·bin − 0.5
-    rr = (np.arange(H) + 0.5) / bin_px - 0.5
-    cc = (np.arange(W) + 0.5) / bin_px - 0.5
-    b = ndimage.map_coordinates(small, np.meshgrid(rr, cc, indexing="ij"), order=1, mode="nearest")
+    b = _bilinear_up(small, (H, W), bin_px)
     if not np.all(b > 0):
         raise LimenError("the smooth background is not positive everywhere; is the image linearised?")
     return g / b - 1.0, b
+
+
+def _bilinear_up(small: np.ndarray, shape, bin_px: int) -> np.ndarray:
+    """Bilinear interpolation of a binned grid back to pixels (binned sample k at pixel (k + 0.5)·bin − 0.5,
+    edges held), separably: rows, then columns."""
+    out = small
+    for axis, n in ((0, shape[0]), (1, shape[1])):
+        x = np.clip((np.arange(n) + 0.5) / bin_px - 0.5, 0, out.shape[axis] - 1)
+        i0 = np.minimum(np.floor(x).astype(int), out.shape[axis] - 1)
+        i1 = np.minimum(i0 + 1, out.shape[axis] - 1)
+        f = x - i0
+        a, c = np.take(out, i0, axis=axis), np.take(out, i1, axis=axis)
+        f = f[:, None] if axis == 0 else f[None, :]
+        out = a + f * (c - a)
+    return out
+
+
+def _sorted_median(Xs: np.ndarray, cnt: np.ndarray) -> np.ndarray:
+    """Median along the last axis of values sorted with their NaNs last, ``cnt`` finite values each."""
+    c = np.maximum(cnt, 1)[..., None]
+    lo = np.take_along_axis(Xs, (c - 1) // 2, axis=-1)[..., 0]
+    hi = np.take_along_axis(Xs, c // 2, axis=-1)[..., 0]
+    return np.where(cnt > 0, 0.5 * (lo + hi), np.nan)
 
 
 def block_sd(
@@ -176,8 +197,8 @@ def block_sd(
     cnt = np.isfinite(X).sum(axis=2)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", RuntimeWarning)
-        med = np.nanmedian(X, axis=2)
-        sd = MAD_TO_SD * np.nanmedian(np.abs(X - med[:, :, None]), axis=2)
+        med = _sorted_median(np.sort(X, axis=2), cnt)
+        sd = MAD_TO_SD * _sorted_median(np.sort(np.abs(X - med[:, :, None]), axis=2), cnt)
         # quantised values (noise of a grey level or less) make the MAD collapse to 0 or one step; the SD of
         # the values winsorised at their own 1st and 99th percentiles (against hot pixels) ÷ 0.982, the same
         # scale for Gaussian data, keeps the rounding's variance: the larger of the two is used
