@@ -13,8 +13,17 @@ from scorer.commands import options
 from scorer.files import OutputFolder
 from scorer.invocation import current_command
 from scorer.reports import CAUTION, draw_overlay, dumps
+from scorer.reports.checks import draw_defect_overlay
 from scorer.reports.score import METHOD_LABEL, write_score_outputs
-from scorer.workflow import load_conversion, load_layout, load_limits, load_mtf, resolve_human_factor, score_files
+from scorer.workflow import (
+    load_conversion,
+    load_defect_map,
+    load_layout,
+    load_limits,
+    load_mtf,
+    resolve_human_factor,
+    score_files,
+)
 
 
 #: exit status of `limen score` (documented in the README)
@@ -42,6 +51,20 @@ EXIT_INDETERMINATE = 3
     help="NPWE: eye-to-image distance in image-plane millimetres (default 500).",
 )
 @options.pixel_spacing()
+@click.option(
+    "--defect-map",
+    "defect_map_file",
+    type=click.Path(dir_okay=False),
+    default=None,
+    help="Detector JSON from `limen detector` (with flat fields) whose defective pixels and lines exclude the "
+    "sites they touch, besides the defects found in each image.",
+)
+@click.option(
+    "--notch",
+    is_flag=True,
+    help="Remove each narrow peak of the background spectrum (grid lines, interference) found in an image with a "
+    "notch filter before scoring it; recorded in results.json.",
+)
 @options.n_boot("Bootstrap resamples of the images for the count method (and a bootstrap d′ interval).")
 @click.option(
     "--psychometric",
@@ -84,6 +107,8 @@ def score(
     mtf_file,
     viewing_distance_mm,
     pixel_spacing,
+    defect_map_file,
+    notch,
     n_boot,
     psychometric_form,
     dprime_ci,
@@ -109,9 +134,11 @@ def score(
     limits = load_limits(limits_file) if limits_file else None
     conversion = load_conversion(conversion_file) if conversion_file else None
     blur = load_mtf(mtf_file) if mtf_file else None
+    defect_map = load_defect_map(defect_map_file) if defect_map_file else None
     folder = OutputFolder(out_dir, replace=replace, command="score") if out_dir else None
     out = folder.path if folder else None
     overlays: list[Path] = []
+    defect_overlays: list[Path] = []
     bar = tqdm(
         total=len(images), desc=f"scoring ({observer.upper()})", unit="image", file=sys.stderr, disable=len(images) < 2
     )
@@ -124,6 +151,18 @@ def score(
                 )
             )
         bar.update(1)
+
+    def on_checked(i, path, image, placement, checks):
+        if out is not None and (checks.excluded or checks.defects):
+            defect_overlays.append(
+                draw_defect_overlay(
+                    image,
+                    placement,
+                    checks,
+                    out / "overlays" / f"{Path(path).stem}-defects.png",
+                    title=f"{Path(path).name}: defects and excluded sites",
+                )
+            )
 
     def on_failure(path, image, exc):
         if out is not None:
@@ -156,12 +195,15 @@ def score(
             on_failure=on_failure,
             count_form=psychometric_form,
             dprime_ci=dprime_ci,
+            defect_map=defect_map,
+            notch=notch,
+            on_checked=on_checked,
         )
     finally:
         bar.close()
     command = current_command() or ""
     if out is not None:
-        write_score_outputs(result, out, overlays, command)
+        write_score_outputs(result, out, overlays, command, defect_overlays)
         folder.finish()
     if as_json:
         click.echo(dumps(result.to_json()))

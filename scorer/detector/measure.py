@@ -21,6 +21,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from scorer.images.conversion import ConversionFunction
+from scorer.observer.defects import DefectMap, defect_map_from_flats, fill_defects
 from scorer.errors import LimenError
 from scorer.images.image import Image
 from scorer.detector.mtf import MTFResult, mean_mtf, measure_mtf
@@ -269,6 +270,7 @@ class DetectorMetrics:
     predicted: list[dict] | None = None
     noise_series: dict | None = None
     panel: dict | None = None  # what the images' DICOM headers say of the panel (panel_from_metadata)
+    defect_map: DefectMap | None = None
 
     @property
     def edge_angle_deg(self):
@@ -311,6 +313,7 @@ class DetectorMetrics:
             "predicted": self.predicted,
             "noise_series": self.noise_series,
             "panel": self.panel,
+            "defect_map": None if self.defect_map is None else self.defect_map.to_dict(),
             "inputs": self.inputs,
             "warnings": list(self.warnings),
         }
@@ -392,9 +395,24 @@ def measure_detector(
     if by_dir:
         mtf = mean_mtf(list(by_dir.values()), direction="mean" if len(by_dir) > 1 else None)
     nnps = None
+    defect_map = None
     if flats:
+        flat_pixels = [im.pixels for im in flats]
+        try:
+            defect_map = defect_map_from_flats(flat_pixels)
+        except LimenError as exc:  # flats of mixed sizes: the NNPS below refuses them in its own words
+            warnings.append(f"no defect map: {exc}")
+        if defect_map is not None and (defect_map.lines or defect_map.pixels):
+            # defective pixels are not the detector's noise: the NNPS is measured with them filled in
+            bad = defect_map.labelled(defect_map.shape)[1] > 0
+            flat_pixels = [fill_defects(f, bad) for f in flat_pixels]
+            warnings.append(
+                f"NNPS measured with the {int(bad.sum())} defective pixels of the defect map "
+                f"({', '.join(d.name for d in defect_map.lines[:3]) or 'isolated pixels'}"
+                f"{', …' if len(defect_map.lines) > 3 else ''}) replaced by their local background"
+            )
         nnps = measure_nnps(
-            [im.pixels for im in flats], spacing, roi_px=roi_px, paths=[im.metadata.source_path or None for im in flats]
+            flat_pixels, spacing, roi_px=roi_px, paths=[im.metadata.source_path or None for im in flats]
         )
         warnings += nnps.warnings
     dqe = None
@@ -421,6 +439,7 @@ def measure_detector(
         pixel_spacing_mm=spacing,
         inputs=inputs,
         warnings=warnings,
+        defect_map=defect_map,
     )
 
 

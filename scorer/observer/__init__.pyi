@@ -1,5 +1,7 @@
 """Public entry points of this package (read by lazy_loader.attach_stub and type checkers)."""
 
+from . import checks as checks
+from . import defects as defects
 from . import eye as eye
 from . import flags as flags
 from . import limits as limits
@@ -7,6 +9,7 @@ from . import bootstrap as bootstrap
 from . import mafc as mafc
 from . import mafc_fast as mafc_fast
 from . import npw as npw
+from . import patterns as patterns
 from . import psychometric as psychometric
 from . import psychometric_bootstrap as psychometric_bootstrap
 from . import scoring as scoring
@@ -41,6 +44,8 @@ from .limits import (
 from .scoring import ScoreResult as ScoreResult, score_images as score_images
 
 __all__ = [
+    "checks",
+    "defects",
     "eye",
     "flags",
     "limits",
@@ -48,6 +53,7 @@ __all__ = [
     "mafc",
     "mafc_fast",
     "npw",
+    "patterns",
     "psychometric",
     "psychometric_bootstrap",
     "scoring",

@@ -31,6 +31,7 @@ References
 from __future__ import annotations
 
 from dataclasses import dataclass
+from typing import Collection
 
 import numpy as np
 import pandas as pd
@@ -220,6 +221,47 @@ def _roi_geometry(layout: Layout, scale_px_per_mm: float) -> dict:
     return out
 
 
+def _region_radii_px(radius_px: float, roi_px: float, blur: SystemBlur, observer: str) -> tuple[float, float]:
+    """A site's region: its outer radius and the inner radius of its background ring (pixels)."""
+    rr = roi_px
+    if observer == "npw":
+        # a background ring ≥ 24× the disc area keeps the background estimate's noise small (d′ loss ≈ 2 %)
+        rr = min(rr, max(5.0 * radius_px, radius_px + blur.margin_px() + 8.0))
+    rr = max(rr, radius_px + blur.margin_px() + 2.0)
+    return rr, radius_px + blur.margin_px()
+
+
+@dataclass(frozen=True)
+class SiteRegion:
+    """The pixels one candidate site's response is computed from: a disc of ``radius_px`` about
+    (``row_px``, ``col_px``); its part beyond ``inner_px`` is the background ring."""
+
+    target: str
+    site: int
+    is_signal: bool
+    diameter_mm: float
+    contrast: float
+    row_px: float
+    col_px: float
+    radius_px: float
+    inner_px: float
+
+
+def site_regions(layout: Layout, placement, blur: SystemBlur, observer: str = "npw") -> list[SiteRegion]:
+    """Every candidate site's region, exactly as :func:`score_image` uses it (for defect checks)."""
+    scale = placement.transform.scale_px_per_mm()
+    roi_radius = _roi_geometry(layout, scale)
+    out = []
+    for t in layout.targets:
+        rad = t.diameter_mm / 2.0 * scale
+        rr, inner = _region_radii_px(rad, roi_radius[t.id], blur, observer)
+        for k, (r, c) in enumerate(placement.transform.to_pixel(t.sites)):
+            out.append(
+                SiteRegion(t.id, k, k == t.signal_site, t.diameter_mm, t.contrast, float(r), float(c), rr, inner)
+            )
+    return out
+
+
 def saturation_level(pixels: np.ndarray, min_fraction: float = 1e-3) -> float | None:
     """The clipping level when at least ``min_fraction`` of the pixels sit exactly at the maximum."""
     top = float(np.max(pixels))
@@ -227,9 +269,20 @@ def saturation_level(pixels: np.ndarray, min_fraction: float = 1e-3) -> float | 
 
 
 def score_image(
-    image: Image, layout: Layout, placement, config: ObserverConfig = ObserverConfig(), image_id: str | None = None
+    image: Image,
+    layout: Layout,
+    placement,
+    config: ObserverConfig = ObserverConfig(),
+    image_id: str | None = None,
+    skip: Collection[tuple[str, int]] = (),
+    masked: np.ndarray | None = None,
 ) -> pd.DataFrame:
     """Model-observer responses at every candidate site of every target.
+
+    ``skip``: (target id, site) pairs not to compute (their response is NaN) — sites excluded
+    for a defect (:mod:`scorer.observer.defects`); they are neither read nor checked.
+    ``masked``: defective pixels (boolean image) left out of a site's background fit and template, the
+    template renormalised (Σw·s₁ over the pixels kept), so the response still estimates the contrast.
 
     Returns
     -------
@@ -255,21 +308,25 @@ def score_image(
     for t in layout.targets:
         rad = t.diameter_mm / 2.0 * scale
         sites_rc = tf.to_pixel(t.sites)
-        rr = roi_radius[t.id]
-        if config.observer == "npw":
-            # a background ring ≥ 24× the disc area keeps the background estimate's noise small (d′ loss ≈ 2 %)
-            rr = min(rr, max(5.0 * rad, rad + blur.margin_px() + 8.0))
-        rr = max(rr, rad + blur.margin_px() + 2.0)
-        inner = rad + blur.margin_px()
+        rr, inner = _region_radii_px(rad, roi_radius[t.id], blur, config.observer)
         h = int(np.ceil(rr))
         bank = _TemplateBank(rad, h, blur, eye_tf, pixel_mm)
         yy, xx = np.mgrid[-h : h + 1, -h : h + 1].astype(float)
         for k, (r, c) in enumerate(sites_rc):
+            if (t.id, k) in skip:
+                rows.append(
+                    (image_id, t.id, t.diameter_mm, t.contrast, t.m_alternatives, k, k == t.signal_site, np.nan)
+                    + (float(r), float(c), config.observer)
+                )
+                continue
             ri, ci = int(round(r)), int(round(c))
             if ri - h < 0 or ci - h < 0 or ri + h + 1 > H or ci + h + 1 > W:
                 raise LimenError(f"target {t.id!r} site {k} lies at the image edge; the phantom is cut off")
             g = pixels[ri - h : ri + h + 1, ci - h : ci + h + 1]
-            if saturated is not None and np.any(g >= saturated):
+            keep = None if masked is None else ~masked[ri - h : ri + h + 1, ci - h : ci + h + 1]
+            if keep is not None and keep.all():
+                keep = None
+            if saturated is not None and np.any(g >= saturated if keep is None else g[keep] >= saturated):
                 raise LimenError(
                     f"target {t.id!r} site {k} is saturated (pixels at the detector's maximum "
                     "value); repeat the exposure at a lower dose"
@@ -278,6 +335,8 @@ def score_image(
             dist = np.hypot(dy, dx)
             roi = dist <= rr
             ring = roi & (dist > inner)
+            if keep is not None:
+                roi, ring = roi & keep, ring & keep
             A = np.column_stack([np.ones(ring.sum()), dy[ring], dx[ring]])
             coef, *_ = np.linalg.lstsq(A, g[ring], rcond=None)
             if coef[0] <= 0:

@@ -18,9 +18,12 @@ import pandas as pd
 from scorer.errors import LimenError
 from scorer.images.conversion import ConversionFunction
 from scorer.images.image import Image
+from scorer.observer.checks import CONTRAST_SCALE, ImageChecks, SetChecks, check_image
+from scorer.observer.defects import DEFAULT_FALSE_FLAG_RATE, DefectMap
 from scorer.observer.limits import HumanFactor, Limits, Verdict, evaluate, overall
 from scorer.observer.npw import ObserverConfig, SystemBlur, decide, estimate_blur, score_image
-from scorer.observer.threshold import ThresholdCurve, count_thresholds, dprime_thresholds
+from scorer.observer.mafc import halfway_criterion
+from scorer.observer.threshold import ThresholdCurve, ThresholdPoint, count_thresholds, dprime_thresholds
 from scorer.phantom.layout import Layout
 from scorer.phantom.registration import register
 from scorer.resources import check_limit
@@ -37,6 +40,7 @@ class ImageScore:
     blur_sigma_px: float
     n_correct: int
     n_trials: int
+    checks: ImageChecks | None = None
 
 
 @dataclass
@@ -54,6 +58,7 @@ class ScoreResult:
     settings: dict
     warnings: list[str] = field(default_factory=list)
     human_factor_ci: tuple[float, float] | None = None
+    set_checks: SetChecks | None = None
 
     @property
     def overall_verdict(self) -> str:
@@ -75,9 +80,13 @@ class ScoreResult:
                     "blur_sigma_px": s.blur_sigma_px,
                     "proportion_correct": s.n_correct / max(s.n_trials, 1),
                     "metadata": s.metadata,
+                    **({} if s.checks is None else {"checks": s.checks.to_dict()}),
                 }
                 for s in self.images
             ],
+            "contrast_scale": CONTRAST_SCALE,
+            "excluded_sites": [] if self.set_checks is None else self.set_checks.exclusions_json(),
+            "patterns": None if self.set_checks is None else self.set_checks.patterns_json(),
             "thresholds": [p.to_dict() for c in self.curves.values() for p in c.points],
             "smooth_curves": {m: (c.smooth.to_dict() if c.smooth else None) for m, c in self.curves.items()},
             "verdicts": [v.to_dict() for v in self.verdicts] if self.verdicts is not None else [],
@@ -135,6 +144,11 @@ def score_images(
     dprime_ci: str = "analytic",
     on_image: Callable | None = None,
     on_failure: Callable | None = None,
+    check_defects: bool = True,
+    defect_map: DefectMap | None = None,
+    notch: bool = False,
+    false_flag_rate: float = DEFAULT_FALSE_FLAG_RATE,
+    on_checked: Callable | None = None,
 ) -> ScoreResult:
     """Score a set of images of one phantom on one detector.
 
@@ -154,6 +168,15 @@ def score_images(
     on_image : called as ``on_image(index, name, image, placement)`` after each image.
     on_failure : called as ``on_failure(name, image, exception)`` when registration fails,
         before the error is raised.
+    check_defects : look for defective pixels and lines, and for periodic and fixed patterns
+        (:mod:`scorer.observer.checks`); sites touching a defect are excluded (their whole M-AFC trial),
+        and said so in the warnings, the responses' ``excluded`` column and the JSON.
+    defect_map : defective pixels and lines measured from flat fields (``limen detector``); sites touching
+        them are excluded too.
+    notch : remove each periodic pattern found in an image by a narrow notch filter before scoring it.
+    false_flag_rate : expected number of pixels (and of line segments) flagged in a clean image.
+    on_checked : called as ``on_checked(index, name, image, placement, checks)`` after each image's checks
+        (the :class:`~scorer.observer.checks.ImageChecks`), e.g. to draw its defects.
 
     To score image files, call :func:`scorer.workflow.score_files`.
     """
@@ -195,6 +218,7 @@ def score_images(
     ids = _image_ids([str(p) for p in names])
     scores, frames = [], []
     detectors = set()
+    set_checks = SetChecks(len(images), false_flag_rate=false_flag_rate, notch=notch) if check_defects else None
     for i, (image, path, image_id) in enumerate(zip(images, names, ids)):
         _checked(image)
         twin = seen_hashes.setdefault(image.metadata.content_sha256, str(path))
@@ -213,38 +237,64 @@ def score_images(
             raise
         img_blur = config.blur or estimate_blur(image, layout, placement)
         cfg = ObserverConfig(observer=config.observer, viewing_distance_mm=config.viewing_distance_mm, blur=img_blur)
+        skip: dict = {}
+        masked = None
+        checks = None
+        if set_checks is not None:
+            try:
+                checks, image = check_image(
+                    image,
+                    layout,
+                    placement,
+                    img_blur,
+                    observer,
+                    image_id=image_id,
+                    defect_map=defect_map,
+                    apply_notch=notch,
+                    false_flag_rate=false_flag_rate,
+                )
+            except LimenError as exc:
+                raise LimenError(str(exc), getattr(exc, "path", None) or path) from None
+            skip, masked = checks.excluded, checks.mask
+            checks.mask = None  # the observer below is its last user
+            set_checks.add(checks)
+            if on_checked is not None:
+                on_checked(i, path, image, placement, checks)
         try:
-            resp = score_image(image, layout, placement, cfg, image_id=image_id)
+            resp = score_image(image, layout, placement, cfg, image_id=image_id, skip=skip, masked=masked)
         except LimenError as exc:
             raise LimenError(str(exc), path) from None
         md = image.metadata
         resp.insert(1, "detector", md.detector_id or md.device_serial or md.station_name or "unknown")
         frames.append(resp)
-        tr = decide(resp)
         scores.append(
-            ImageScore(
-                str(path),
-                image_id,
-                image.metadata.to_dict(),
-                placement,
-                img_blur.sigma_px,
-                int(tr["correct"].sum()),
-                int(len(tr)),
-            )
+            ImageScore(str(path), image_id, image.metadata.to_dict(), placement, img_blur.sigma_px, 0, 0, checks)
         )
         if on_image is not None:
             on_image(i, path, image, placement)
     if len(detectors) > 1:
         notes.append(f"images come from {len(detectors)} different detectors/stations: {sorted(map(str, detectors))}")
     responses = pd.concat(frames, ignore_index=True)
-    trials = decide(responses)
+    used = responses
+    if set_checks is not None:
+        set_checks.finish()
+        responses = set_checks.mark(responses)
+        used = responses[responses["excluded"] == ""]
+        notes += set_checks.warnings({s.image_id: s.path for s in scores})
+    trials = decide(used)
+    per_image = trials.groupby("image")["correct"].agg(["sum", "count"])
+    for sc in scores:
+        if sc.image_id in per_image.index:
+            sc.n_correct, sc.n_trials = (int(v) for v in per_image.loc[sc.image_id])
     curves: dict[str, ThresholdCurve] = {}
     if "dprime" in methods:
         curves["dprime"] = dprime_thresholds(
-            responses, criterion_pc=criterion_pc, n_boot=n_boot, seed=seed, ci_method=dprime_ci
+            used, criterion_pc=criterion_pc, n_boot=n_boot, seed=seed, ci_method=dprime_ci
         )
     if "count" in methods:
         curves["count"] = count_thresholds(trials, criterion_pc=criterion_pc, n_boot=n_boot, seed=seed, form=count_form)
+    if used is not responses:
+        _note_exclusions(curves, responses, trials, criterion_pc)
     vm = verdict_method or ("dprime" if "dprime" in curves else "count")
     if vm not in curves:
         raise LimenError(f"verdict method {vm!r} was not computed")
@@ -263,6 +313,13 @@ def score_images(
         if blur is None
         else {"sigma_px": blur.sigma_px, "source": blur.source},
         "max_residual_px": max_residual_px,
+        "defect_check": None
+        if not check_defects
+        else {
+            "false_flag_rate": false_flag_rate,
+            "defect_map": None if defect_map is None else (defect_map.source or "given"),
+            "notch": notch,
+        },
     }
     hf = (
         human_factor
@@ -284,4 +341,35 @@ def score_images(
         settings,
         notes,
         (hf.ci_low, hf.ci_high) if hf is not None and hf.has_ci else None,
+        set_checks,
     )
+
+
+def _note_exclusions(
+    curves: dict[str, ThresholdCurve], responses: pd.DataFrame, trials: pd.DataFrame, criterion_pc: float | None
+) -> None:
+    """Say on each threshold how many M-AFC trials it rests on when some were excluded for defects; a diameter
+    whose every trial was excluded gets a point without a threshold that says so."""
+    all_trials = responses.drop_duplicates(["image", "target"])
+    total = all_trials.groupby("diameter_mm").size()
+    used = trials.groupby("diameter_mm").size()
+    m_of = all_trials.groupby("diameter_mm")["m_alternatives"].first()
+    for curve in curves.values():
+        have = {round(p.diameter_mm, 9) for p in curve.points}
+        for d in total.index:
+            if round(float(d), 9) not in have:
+                m = int(m_of[d])
+                pc = halfway_criterion(m) if criterion_pc is None else float(criterion_pc)
+                nan = float("nan")
+                curve.points.append(ThresholdPoint(float(d), nan, nan, nan, curve.method, curve.observer, 0, m, pc))
+        curve.points.sort(key=lambda p: p.diameter_mm)
+        for p in curve.points:
+            n_all = int(total.get(p.diameter_mm, 0))
+            n_used = int(used.get(p.diameter_mm, 0))
+            if n_used < n_all:
+                p.n_trials, p.n_excluded = n_used, n_all - n_used
+                p.note = (p.note + "; " if p.note else "") + (
+                    f"rests on {n_used} of {n_all} trials ({n_all - n_used} excluded for defects; the CI uses the rest)"
+                    if n_used
+                    else f"no threshold: all {n_all} trials were excluded for defects"
+                )

@@ -85,6 +85,8 @@ class ThresholdPoint:
     offered_max: float | None = None
     censored: str = ""  # count method: "above" / "below" the contrasts offered
     extrapolated: bool = False  # d′ method: the model-based value lies outside the contrasts offered
+    n_trials: int | None = None  # M-AFC trials (image × target) the threshold rests on, when trials were excluded
+    n_excluded: int = 0  # trials excluded for defects (scorer.observer.defects)
 
     def __post_init__(self):
         # a CI always contains its estimate, by construction
@@ -216,8 +218,9 @@ def _dprime_arrays(group: pd.DataFrame):
     for s, e in zip(starts, np.r_[starts[1:], key.size]):
         slot[s:e] = np.arange(e - s)
     B[bg_i[order], bg_j[order], slot] = bg_r[order]
-    if np.isnan(S).any() or np.isnan(B).any():
-        raise LimenError("responses table is incomplete: every image needs every site of every target")
+    # a trial excluded for a defect (scorer.observer.defects) is absent as a whole: all its sites or none
+    if not np.array_equal(np.isnan(S), np.isnan(B).all(axis=2)) or (np.isnan(B).any(axis=2) & ~np.isnan(S)).any():
+        raise LimenError("responses table is incomplete: every image needs every site of every target it scores")
     return S, B, contrasts, m
 
 
@@ -226,30 +229,43 @@ def _dprime_k(S, B, contrasts, W, dprime_t, local_factor=LOCAL_FIT_FACTOR):
     W = np.asarray(W, float)
     n = W.sum(axis=1)  # (R,)
     m1 = B.shape[2]
-    ms = (W @ S) / n[:, None]  # (R, J) mean signal response
+    present = ~np.isnan(S)  # trials excluded for defects are NaN (whole trials)
+    if present.all():
+        nj = n[:, None]
+    else:  # per target, the images that score it; a target no drawn image scores has no d′
+        S, B = np.where(present, S, 0.0), np.where(present[:, :, None], B, 0.0)
+        with np.errstate(invalid="ignore"):
+            nj = np.where(W @ present > 0, W @ present, np.nan)
+    ms = (W @ S) / nj  # (R, J) mean signal response
     Bsum = B.sum(axis=2)
-    mb = (W @ Bsum) / (n[:, None] * m1)  # (R, J) mean background response
+    mb = (W @ Bsum) / (nj * m1)  # (R, J) mean background response
     J = S.shape[1]
     if m1 >= 2:
         # σ² from the spread of the non-signal sites within each image and target (the comparison an
         # M-AFC decision makes); duplicated images in a resample repeat their terms without bias
         Bc = B - B.mean(axis=2, keepdims=True)
         ss = W @ (Bc**2).sum(axis=2).sum(axis=1)
-        df = n * J * (m1 - 1)
+        df = n * J * (m1 - 1) if present.all() else (W @ present.sum(axis=1)) * (m1 - 1)
     else:
         # two sites only: pool over images instead; a resample's duplicates shrink the spread by (n−1)/n
-        ss_s = W @ (S**2) - n[:, None] * ms**2
-        ss_b = W @ (B**2).sum(axis=2) - n[:, None] * m1 * mb**2
+        ok = np.isfinite(nj)
+        ss_s = np.where(ok, W @ (S**2) - nj * np.where(ok, ms, 0.0) ** 2, 0.0)
+        ss_b = np.where(ok, W @ (B**2).sum(axis=2) - nj * m1 * np.where(ok, mb, 0.0) ** 2, 0.0)
         ss = ss_s.sum(axis=1) + ss_b.sum(axis=1)
-        df = (n - 1) * (m1 + 1) * J
+        df = (n - 1) * (m1 + 1) * J if present.all() else np.where(ok, nj - 1, 0.0).sum(axis=1) * (m1 + 1)
     with np.errstate(invalid="ignore", divide="ignore"):
         sigma = np.sqrt(np.maximum(ss, 0) / df)
         d = (ms - mb) / sigma[:, None]  # (R, J)
         C = np.asarray(contrasts, float)
-        k = (d @ C) / (C @ C)
+        if np.isfinite(d).all():
+            k = (d @ C) / (C @ C)
+            use = np.broadcast_to(np.isfinite(C)[None, :], d.shape).copy()
+        else:  # targets without a d′ (every trial excluded) leave the fit
+            use = np.isfinite(d) & np.isfinite(C)[None, :]
+            Cw = np.where(use, C[None, :], 0.0)
+            k = (np.where(use, d, 0.0) * Cw).sum(axis=1) / (Cw**2).sum(axis=1)
         ct0 = dprime_t / k
         if local_factor is None:
-            use = np.broadcast_to(np.isfinite(C)[None, :], d.shape).copy()
             k2 = k
         else:  # refit near threshold: targets with C ≤ factor × first estimate (at least 3 targets)
             use = C[None, :] <= local_factor * ct0[:, None]
@@ -263,10 +279,11 @@ def _dprime_k(S, B, contrasts, W, dprime_t, local_factor=LOCAL_FIT_FACTOR):
     return k2, d, sigma, use, df
 
 
-def _analytic_ci(d, C, use, n_img: int, m: int, df: float, est: float, ci: float):
+def _analytic_ci(d, C, use, n_img, m: int, df: float, est: float, ci: float):
     """CI of C_T from the sampling variance of the fitted slope k (see module docstring).
 
-    D_j = mean signal − mean non-signal response has variance σ²·M/((M−1)·n); the common σ̂
+    D_j = mean signal − mean non-signal response has variance σ²·M/((M−1)·n), n the images scoring
+    target j (``n_img``: one count, or one per target when trials were excluded); the common σ̂
     adds 1/(2·df) to var(log k).  If the targets scatter about d′ = k·C more than that
     variance allows (χ² test, p < 0.01), the variance is scaled by the over-dispersion
     factor χ²/(J−1) (McCullagh & Nelder, *Generalized Linear Models* (1989), sec. 4.5).
@@ -276,8 +293,12 @@ def _analytic_ci(d, C, use, n_img: int, m: int, df: float, est: float, ci: float
     if J < 2 or not np.all(np.isfinite(du)):
         return float("nan"), float("nan"), "too few targets for a confidence interval"
     k = float(du @ Cu / (Cu @ Cu))
-    var_d = m / ((m - 1.0) * n_img)  # variance of each d′_j from the image noise
-    var_logk = var_d / (k * k * (Cu @ Cu)) + 1.0 / (2.0 * df)
+    if np.ndim(n_img) == 0:
+        var_d = m / ((m - 1.0) * n_img)  # variance of each d′_j from the image noise
+        var_logk = var_d / (k * k * (Cu @ Cu)) + 1.0 / (2.0 * df)
+    else:  # fewer images at the targets that lost trials
+        var_d = m / ((m - 1.0) * np.asarray(n_img, float)[use])
+        var_logk = float(Cu**2 @ var_d) / (k * k * (Cu @ Cu) ** 2) + 1.0 / (2.0 * df)
     # σ̂'s error scales every d′_j alike and is absorbed into k, so only var_d enters the residual test
     chi2 = float(np.sum((du - k * Cu) ** 2 / var_d))
     note = ""
@@ -318,8 +339,9 @@ def dprime_thresholds(
         k, d_all, sigma, use, df = _dprime_k(S, B, C, np.ones((1, n_img)), dt)
         est = dt / k[0] if k[0] > 0 else np.inf
         note = ""
+        n_per_target = n_img if not np.isnan(S).any() else (~np.isnan(S)).sum(axis=0)
         if ci_method == "analytic" and k[0] > 0:
-            lo, hi, note = _analytic_ci(d_all[0], C, use[0], n_img, m, float(df[0]), dt / k[0], ci)
+            lo, hi, note = _analytic_ci(d_all[0], C, use[0], n_per_target, m, float(df[0]), dt / k[0], ci)
         elif n_img >= 2 and n_boot > 0:
             W = rng.multinomial(n_img, np.full(n_img, 1.0 / n_img), size=n_boot)
             kb = _dprime_k(S, B, C, W, dt)[0]

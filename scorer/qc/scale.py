@@ -122,7 +122,8 @@ def score_session(job: SessionJob) -> SessionOutcome:
         }
         for s in res.images
     ]
-    resp = res.responses[
+    kept = res.responses[res.responses["response"].notna()]  # sites excluded for defects have no response
+    resp = kept[
         ["image", "target", "diameter_mm", "contrast", "site", "is_signal", "response", "row_px", "col_px"]
     ].copy()
     resp["image"] = resp["image"].map(image_sha)

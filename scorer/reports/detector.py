@@ -38,6 +38,17 @@ def summary_rows(d: dict) -> list[tuple[str, str]]:
         f, v = np.asarray(q["frequency_per_mm"]), np.asarray(q["value"])
         for x in (0.5, 2):
             rows.append((f"DQE at {x:g} /mm", f"{np.interp(x, f, v):.3f}"))
+    if d.get("defect_map"):
+        dm = d["defect_map"]
+        lines = [x.get("name", "") for x in dm.get("lines", [])]
+        rows.append(
+            (
+                "defect map (flat fields)",
+                f"{len(dm.get('pixels', []))} defective pixel(s), {len(lines)} line(s)"
+                + (f": {', '.join(lines[:5])}" if lines else "")
+                + f" (expected false flags {dm.get('false_flag_rate', 0):g} per map; for limen score --defect-map)",
+            )
+        )
     if d.get("conversion"):
         c = d["conversion"]
         rows.append(

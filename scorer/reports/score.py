@@ -15,13 +15,16 @@ import numpy as np  # noqa: E402
 from scorer.errors import LimenError  # noqa: E402
 from scorer.files import atomic_write_text  # noqa: E402
 import scorer.observer.flags as flags  # noqa: E402
+from scorer.observer.checks import CONTRAST_SCALE  # noqa: E402
 from scorer.observer.npw import METHOD_TEXT  # noqa: E402
 from scorer.observer.psychometric import fit_psychometric  # noqa: E402
+from scorer.reports.checks import checks_sections  # noqa: E402
 from scorer.reports.html import (  # noqa: E402
     error_bars,
     figure_to_svg,
     html_page,
     plain_log_ticks,
+    provenance,
     sparse_log_ticks,
     table_html,
     write_json,
@@ -171,7 +174,9 @@ def _thumb(png: Path, max_px: int = 560) -> str:
     )
 
 
-def write_score_outputs(result, out_dir, overlays: list[Path] | None = None, command: str = "") -> dict:
+def write_score_outputs(
+    result, out_dir, overlays: list[Path] | None = None, command: str = "", defect_overlays: list[Path] | None = None
+) -> dict:
     """Write results.json, responses.csv, trials.csv, thresholds.csv, verdicts.csv and report.html."""
     out = Path(out_dir)
     try:
@@ -181,6 +186,7 @@ def write_score_outputs(result, out_dir, overlays: list[Path] | None = None, com
     js = result.to_json()
     if command:
         js["command"] = command
+    js["provenance"] = {**provenance(), "image_processing": _image_processing(result)}
     write_json(out / "results.json", js)
     atomic_write_text(out / "responses.csv", result.responses.to_csv(index=False))
     atomic_write_text(out / "trials.csv", result.trials.to_csv(index=False))
@@ -192,8 +198,22 @@ def write_score_outputs(result, out_dir, overlays: list[Path] | None = None, com
             out / "verdicts.csv",
             pd.DataFrame([{**v.to_dict(), "flags": flags.text(v.flags)} for v in result.verdicts]).to_csv(index=False),
         )
-    atomic_write_text(out / "report.html", render_html(result, overlays or [], command))
+    atomic_write_text(out / "report.html", render_html(result, overlays or [], command, defect_overlays or []))
     return {"json": out / "results.json", "report": out / "report.html"}
+
+
+def _image_processing(result) -> dict:
+    """What was done to the pixels before scoring (the notch filter), for the provenance."""
+    sc = getattr(result, "set_checks", None)
+    if sc is None or not sc.notch:
+        return {"notch": None}
+    return {
+        "notch": {
+            "method": "Gaussian notch (SD half a bin of the 128-px ROI spectrum) about each periodic peak found in "
+            "an image and its mirror, applied in the Fourier domain after registration and before scoring",
+            "images": {ch.image: [p.to_dict() for p in ch.peaks] for ch in sc.images if ch.notched},
+        }
+    }
 
 
 def _ci_caption(result) -> str:
@@ -212,7 +232,7 @@ def _ci_caption(result) -> str:
     return "; ".join(parts)
 
 
-def render_html(result, overlays: list[Path], command: str = "") -> str:
+def render_html(result, overlays: list[Path], command: str = "", defect_overlays: list[Path] | None = None) -> str:
     meta0 = result.images[0].metadata if result.images else {}
     intro = (
         f"<p>{len(result.images)} image(s) of <b>{result.layout.name}</b> scored by the "
@@ -243,7 +263,8 @@ def render_html(result, overlays: list[Path], command: str = "") -> str:
         )
         intro += f"<p class='meta'>Limits source: {result.limits.source}</p>"
     if result.warnings:
-        intro += "<ul>" + "".join(f"<li>{w}</li>" for w in result.warnings) + "</ul>"
+        intro += "<ul>" + "".join(f"<li>{html.escape(w)}</li>" for w in result.warnings) + "</ul>"
+    intro += f"<p class='meta'><b>Contrast scale.</b> Thresholds are on the {html.escape(CONTRAST_SCALE)}.</p>"
     sections = [
         ("Summary", intro),
         (
@@ -340,6 +361,7 @@ def render_html(result, overlays: list[Path], command: str = "") -> str:
     if overlays:
         reg_html += "<div>" + "".join(_thumb(p) for p in overlays[:12]) + "</div>"
     sections.append(("Images and registration", reg_html))
+    sections += checks_sections(result, defect_overlays, _thumb)
     meta = {
         "settings": result.settings,
         "command": command,

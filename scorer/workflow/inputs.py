@@ -14,6 +14,7 @@ from scorer.files import read_json, read_toml
 from scorer.images.conversion import load_conversion
 from scorer.images.image import LimenWarning
 from scorer.images.loading import image_content_hash, load_image
+from scorer.observer.defects import DefectMap
 from scorer.observer.limits import HumanFactor, Limits, parse_human_factor, parse_limits
 from scorer.observer.npw import SystemBlur
 from scorer.phantom.layout import load_layout
@@ -24,6 +25,7 @@ __all__ = [
     "human_factor_from_analysis",
     "image_content_hash",
     "load_conversion",
+    "load_defect_map",
     "load_image",
     "load_layout",
     "load_limits",
@@ -68,6 +70,15 @@ def resolve_human_factor(
 def load_mtf(path) -> SystemBlur:
     """The measured presampling MTF of a ``limen detector`` JSON, as the templates' system blur."""
     return SystemBlur.from_detector_dict(read_json(path, "MTF file (a limen detector JSON)"), path)
+
+
+def load_defect_map(path) -> DefectMap:
+    """The defect map (defective pixels and lines from flat fields) of a ``limen detector`` JSON."""
+    data = read_json(path, "defect map file (a limen detector JSON)")
+    entry = data.get("defect_map") if isinstance(data, dict) else None
+    if not isinstance(entry, dict):
+        raise LimenError("holds no defect map: run `limen detector` with flat fields (--flat) to measure one", path)
+    return DefectMap.from_dict(entry, str(path))
 
 
 def read_kerma_csv(path) -> list[tuple[Path, float]]:
