@@ -15,6 +15,7 @@ import pandas as pd
 
 from scorer.errors import LimenError  # noqa: E402
 from scorer.files import atomic_write_text  # noqa: E402
+from scorer.study.estimability import not_estimable_text  # noqa: E402
 from scorer.reports.html import (
     READABLE,
     display_records,
@@ -42,6 +43,7 @@ def curves_figure(a, level) -> str:
     by = a.by
     fig, ax = plt.subplots(figsize=(6.4, 4.6))
     rc = a.reader_curves[a.reader_curves[by] == level]
+    rc = rc[rc["estimable"]] if "estimable" in rc.columns else rc  # a not-estimable threshold is never drawn
     for i, (_reader, g) in enumerate(rc.groupby("reader")):
         g = g.sort_values("diameter_mm")
         ax.plot(
@@ -54,6 +56,10 @@ def curves_figure(a, level) -> str:
             label="readers" if i == 0 else None,
         )
     pc = a.pooled_curves[a.pooled_curves[by] == level] if len(a.pooled_curves) else pd.DataFrame()
+    missing = []
+    if len(pc) and "estimable" in pc.columns:
+        missing = sorted(pc.loc[~pc["estimable"], "diameter_mm"])
+        pc = pc[pc["estimable"]]
     if len(pc):
         pc = pc.sort_values("diameter_mm")
         y = pc["threshold_contrast"].to_numpy() * 100
@@ -62,13 +68,15 @@ def curves_figure(a, level) -> str:
             pc["diameter_mm"], y, yerr=err, fmt="o-", color="#1f4e79", lw=2, capsize=3, label="pooled readers (95 % CI)"
         )
     mc = a.model_curves[a.model_curves[by] == level] if len(a.model_curves) else pd.DataFrame()
+    if len(mc) and "estimable" in mc.columns:
+        mc = mc[mc["estimable"]]
     for obs, g in mc.groupby("reader") if len(mc) else []:
         g = g.sort_values("diameter_mm")
         ax.plot(g["diameter_mm"], g["threshold_contrast"] * 100, "s--", color="#b5541c", label=f"model {obs}")
     hm = a.human_model
     if hm and hm.get("per_diameter"):
         per = pd.DataFrame(hm["per_diameter"])
-        per = per[per[by] == level].sort_values("diameter_mm")
+        per = per[(per[by] == level) & per["human_equivalent_threshold"].notna()].sort_values("diameter_mm")
         if len(per):
             ax.plot(
                 per["diameter_mm"],
@@ -80,6 +88,30 @@ def curves_figure(a, level) -> str:
             )
     ax.set_xscale("log")
     ax.set_yscale("log")
+    if missing:  # pooled thresholds that are not estimable: marked at the top, never plotted as a value
+        if not ax.has_data():
+            ax.set_ylim(0.1, 100)
+        ax.plot(
+            missing,
+            [0.93] * len(missing),
+            "x",
+            color="#b5541c",
+            ms=8,
+            mew=2,
+            transform=ax.get_xaxis_transform(),
+            label="pooled: not estimable",
+        )
+        for d in missing:
+            ax.annotate(
+                "not estimable",
+                (d, 0.93),
+                xycoords=ax.get_xaxis_transform(),
+                xytext=(0, -12),
+                textcoords="offset points",
+                ha="center",
+                fontsize=7,
+                color="#b5541c",
+            )
     plain_log_ticks(ax)
     ax.set_xlabel("disc diameter (mm)")
     ax.set_ylabel("threshold contrast (%)")
@@ -92,7 +124,9 @@ def curves_figure(a, level) -> str:
 def forest_figure(a) -> str:
     plt = _plt()
     comp = a.comparison
-    fig, ax = plt.subplots(figsize=(6.4, 0.6 + 0.45 * len(comp)))
+    if "estimable" in comp.columns:
+        comp = comp[comp["estimable"]]  # the table below says which rows are not estimable
+    fig, ax = plt.subplots(figsize=(6.4, 0.6 + 0.45 * max(len(comp), 1)))
     labels = [f"{r.level} / {r.reference}, {r.diameter_mm:g} mm" for r in comp.itertuples()]
     yy = np.arange(len(comp))[::-1]
     ax.errorbar(
@@ -131,12 +165,21 @@ def _table(df: pd.DataFrame, cols, left=(), ci_percent: bool = True) -> str:
 
 
 def _display(df: pd.DataFrame, cols, ci_percent: bool):
-    """Rows in % with readable headings; a censored threshold shows as '> highest offered' with no CI."""
+    """Rows in % with readable headings; a censored threshold shows as '> highest offered' with no CI; a
+    not-estimable one as 'not estimable (reason; N trials)' with no number at all."""
     rows, heads = display_records(
         _records(df, cols), [c for c in cols if df is not None and c in df.columns], ci_percent=ci_percent
     )
-    recs = _records(df, cols + ["censored", "offered_min", "offered_max"])
+    recs = _records(df, cols + ["censored", "offered_min", "offered_max", "estimable", "not_estimable", "n_trials"])
     for row, rec in zip(rows, recs):
+        if rec.get("estimable") is False:
+            for h in ("threshold (%)", "ratio", "factor"):
+                if h in row:
+                    row[h] = not_estimable_text(rec)
+            for h in ("95 % CI low (%)", "95 % CI high (%)", "95 % CI low", "95 % CI high", "p value", "p adjusted"):
+                if h in row:
+                    row[h] = "—"
+            continue
         side = rec.get("censored")
         if side in ("above", "below") and "threshold (%)" in row:
             bound = rec["offered_max"] if side == "above" else rec["offered_min"]
@@ -162,12 +205,13 @@ def write_outputs(a, out_dir, meta: dict | None = None) -> dict:
     except OSError as exc:
         raise LimenError(f"cannot create the output folder ({exc.strerror or exc})", out) from None
     paths = {}
+    pub = a.public_tables()  # a not-estimable threshold is never written as a number
     tables = {
-        "reader_curves.csv": a.reader_curves,
-        "pooled_curves.csv": a.pooled_curves,
-        "model_curves.csv": a.model_curves,
+        "reader_curves.csv": pub["reader_curves"],
+        "pooled_curves.csv": pub["pooled_curves"],
+        "model_curves.csv": pub["model_curves"],
         "between_reader_cv.csv": a.cv,
-        "comparison.csv": a.comparison,
+        "comparison.csv": pub["comparison"],
     }
     if a.human_model and a.human_model.get("per_diameter"):
         tables["human_model_factor.csv"] = pd.DataFrame(a.human_model["per_diameter"])
@@ -206,7 +250,16 @@ def report_html(a, meta: dict | None = None) -> str:
         summary += (
             "<p><strong>Notes</strong></p><ul>" + "".join(f"<li>{html.escape(n)}</li>" for n in a.notes) + "</ul>"
         )
+    rule = getattr(a, "rule", None)
+    if rule is not None:
+        summary += (
+            f"<p>A threshold is reported only where it is estimable: an interior maximum of the likelihood, at "
+            f"least {rule.min_trials} trials per reader, a 95 % CI spanning at most a factor of "
+            f"{rule.max_ci_ratio:g}, and neither threshold nor CI above {100 * rule.max_contrast:g} % contrast. "
+            "Elsewhere the tables say <em>not estimable</em>, with the reason and the trials it had.</p>"
+        )
     sections.append(("Study", summary))
+    pub = a.public_tables()
     levels = sorted(a.reader_curves[by].unique(), key=str) if len(a.reader_curves) else []
     figs = "".join(
         f"<figure>{curves_figure(a, lv)}<figcaption>Contrast-detail curves, {html.escape(by)} "
@@ -233,27 +286,31 @@ def report_html(a, meta: dict | None = None) -> str:
             "<p>Population-averaged threshold from a GEE whose mean is the linear-observer M-AFC "
             "function Pc<sub>M</sub>(k·C) (guess rate 1/M built in), reader clusters, bias-reduced "
             "robust standard errors, t interval with readers − 1 degrees of freedom.</p>"
-            + _table(a.pooled_curves, cols + ["n_readers"], left=["reader", by, "note"]),
+            + _table(pub["pooled_curves"], cols + ["n_readers"], left=["reader", by, "note"]),
         )
     )
     sections.append(("Between-reader variation", table_html(_records(a.cv, list(a.cv.columns)), left=[by])))
     sections.append(
         (
             "Per-reader thresholds (bootstrap over images within reader)",
-            _table(a.reader_curves, cols, left=["reader", by, "note"]),
+            _table(pub["reader_curves"], cols, left=["reader", by, "note"]),
         )
     )
     if len(a.model_curves):
-        sections.append(("Model observer", _table(a.model_curves, cols, left=["reader", by, "note"])))
+        sections.append(("Model observer", _table(pub["model_curves"], cols, left=["reader", by, "note"])))
     if len(a.comparison):
-        sents = "<ul>" + "".join(f"<li>{html.escape(s)}</li>" for s in a.comparison["sentence"]) + "</ul>"
+        comp = pub["comparison"]
+        sents = "<ul>" + "".join(f"<li>{html.escape(s)}</li>" for s in comp["sentence"]) + "</ul>"
+        forest = (
+            f"<figure>{forest_figure(a)}</figure>" if "estimable" not in comp.columns or comp["estimable"].any() else ""
+        )
         sections.append(
             (
                 f"{by.capitalize()} comparison (mixed model on log thresholds, Holm-adjusted)",
                 sents
-                + f"<figure>{forest_figure(a)}</figure>"
+                + forest
                 + _table(
-                    a.comparison,
+                    comp,
                     [
                         "level",
                         "reference",
@@ -278,8 +335,9 @@ def report_html(a, meta: dict | None = None) -> str:
             f"<strong>{hm['factor']:.3g}</strong> (95 % CI {hm['ci_low']:.3g}–{hm['ci_high']:.3g}; bootstrap "
             f"over readers and images). Multiply the model's thresholds by it for human-equivalent values.</p>"
         )
+        per_recs = hm["per_diameter"]
         rows, heads = display_records(
-            hm["per_diameter"],
+            per_recs,
             [
                 by,
                 "diameter_mm",
@@ -292,8 +350,13 @@ def report_html(a, meta: dict | None = None) -> str:
             ],
             ci_percent=False,
         )
-        for r in rows:
+        for r, rec in zip(rows, per_recs):
             r["factor"] = None if r.get("factor") is None else f"{r['factor']:.3g}"
+            if rec.get("estimable") is False:
+                r["factor"] = not_estimable_text(rec)
+                for h in heads:
+                    if r.get(h) is None:
+                        r[h] = "—"
         body += table_html(rows, heads, left=[by]) + "<p class='meta'>CI columns: 95 % CI of the factor.</p>"
         if hm.get("bland_altman"):
             ba = hm["bland_altman"]

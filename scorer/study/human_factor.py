@@ -27,6 +27,7 @@ def human_model_factor(
     criterion_pc: float | None = None,
     ci: float = 0.95,
     reader_curves_df: pd.DataFrame | None = None,
+    exclude: dict | None = None,
 ) -> dict:
     """Human/model threshold factor per group × diameter and overall, with bootstrap CIs.
 
@@ -39,6 +40,10 @@ def human_model_factor(
     Also returns the Bland–Altman summary on log10 thresholds (each reader's threshold vs
     the model's, Bland & Altman 1986) and the human-equivalent model curve (model
     threshold × factor).
+
+    ``exclude`` maps (group, diameter) to the reason the cell's human or model threshold is not estimable
+    (:mod:`scorer.study.estimability`): such a cell gets a row saying so, without numbers, and stays out of the
+    overall factor.
     """
     m_all = m
     observers = sorted(model["reader"].unique())
@@ -47,6 +52,10 @@ def human_model_factor(
         mo = model[model["reader"] == obs]
         per, samples, notes = [], [], []
         for (grp, diam), gh in human.groupby([by, "diameter_mm"], sort=True):
+            why = (exclude or {}).get((grp, float(diam)))
+            if why:
+                per.append(_not_estimable_row(by, grp, diam, why, gh))
+                continue
             m, p = m_at(m_all, diam), criterion_at(m_all, diam, criterion_pc)
             d_t = _dprime_for(p, m)
             gm = mo[(mo[by] == grp) & np.isclose(mo["diameter_mm"], diam)]
@@ -95,34 +104,40 @@ def human_model_factor(
                     "human_equivalent_threshold": float(t_m * (t_h / t_m)),
                     "n_readers": int(len(readers)),
                     "n_images": int(len(images_h)),
+                    "n_trials": int(len(gh)),
+                    "estimable": True,
+                    "not_estimable": "",
                     "note": note,
                 }
             )
             samples.append(np.log(fb))
-        if not per:
+        estimated = [r for r in per if r.get("factor") is not None]
+        if not estimated:
+            if per:
+                notes.append("no group × diameter has estimable human and model thresholds")
             out_all.append(
                 {
                     "observer": obs,
                     "factor": None,
                     "ci_low": None,
                     "ci_high": None,
-                    "per_diameter": [],
+                    "per_diameter": per,
                     "bland_altman": None,
                     "note": "; ".join(notes) or "no matching model trials",
                 }
             )
             continue
-        est = float(np.exp(np.mean([np.log(r["factor"]) for r in per])))
+        est = float(np.exp(np.mean([np.log(r["factor"]) for r in estimated])))
         overall = np.exp(np.mean(np.stack(samples), axis=0))
         lo, hi = percentile_ci(overall, ci)
         # human-equivalent model curve: model threshold × overall factor (and its CI)
-        for r in per:
+        for r in estimated:
             r["human_equivalent_threshold"] = r["model_threshold"] * est
             r["human_equivalent_ci_low"] = r["model_threshold"] * lo
             r["human_equivalent_ci_high"] = r["model_threshold"] * hi
         ba = None
         if reader_curves_df is not None and len(reader_curves_df):
-            ba = bland_altman_log(reader_curves_df, pd.DataFrame(per), by)
+            ba = bland_altman_log(reader_curves_df, pd.DataFrame(estimated), by)
         out_all.append(
             {
                 "observer": obs,
@@ -138,6 +153,22 @@ def human_model_factor(
     if first is not None:
         first["by_observer"] = out_all
     return first
+
+
+def _not_estimable_row(by, grp, diam, why: str, gh: pd.DataFrame) -> dict:
+    """A per-diameter row of a cell left out of the factor: no numbers, the reason and the trials."""
+    row = {by: grp, "diameter_mm": float(diam)}
+    for c in ("human_threshold", "model_threshold", "factor", "ci_low", "ci_high", "human_equivalent_threshold"):
+        row[c] = None
+    row.update(
+        n_readers=int(gh["reader"].nunique()),
+        n_images=int(gh["image"].nunique()),
+        n_trials=int(len(gh)),
+        estimable=False,
+        not_estimable=why,
+        note=f"not estimable: {why}",
+    )
+    return row
 
 
 def bland_altman_log(reader_df: pd.DataFrame, per: pd.DataFrame, by: str) -> dict | None:
