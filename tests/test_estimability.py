@@ -79,8 +79,16 @@ def test_starved_cells_are_not_estimable_and_say_why(starved):
         r = _row(pub, cell)
         assert all(math.isnan(r[c]) for c in ("threshold_contrast", "ci_low", "ci_high")), r.to_dict()
         assert r["n_trials"] > 0
-    # no comparison rests on a not-estimable reader threshold: at both diameters one detector has none left
-    assert a.comparison.empty
+    # a comparison resting on a not-estimable pooled threshold is not a number either (0.25 mm), and at 1.0 mm
+    # no reader has a fit with an interior maximum on the all-correct detector: no comparison at all
+    pub = a.public_tables()["comparison"]
+    diam = pub["diameter_mm"] if len(pub) else pd.Series([], dtype=float)
+    assert not np.isclose(diam, 1.0).any()
+    at = pub[np.isclose(diam, 0.25)] if len(pub) else pub
+    if len(at):
+        r = at.iloc[0]
+        assert not r["estimable"] and math.isnan(r["ratio"]) and "not estimable" in r["sentence"], r.to_dict()
+        assert f"pooled threshold of {FEW[0]} not estimable" in r["not_estimable"]
     assert any("have an estimated threshold" in n and "1 mm" in n for n in a.notes), a.notes
     # the human/model factor leaves the not-estimable cells out
     per = pd.DataFrame(a.human_model["per_diameter"])

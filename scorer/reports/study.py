@@ -170,7 +170,8 @@ def _display(df: pd.DataFrame, cols, ci_percent: bool):
     rows, heads = display_records(
         _records(df, cols), [c for c in cols if df is not None and c in df.columns], ci_percent=ci_percent
     )
-    recs = _records(df, cols + ["censored", "offered_min", "offered_max", "estimable", "not_estimable", "n_trials"])
+    more = ["censored", "offered_min", "offered_max", "estimable", "not_estimable", "n_trials"]
+    recs = _records(df, list(dict.fromkeys(cols + more)))
     for row, rec in zip(rows, recs):
         if rec.get("estimable") is False:
             for h in ("threshold (%)", "ratio", "factor"):
@@ -329,12 +330,18 @@ def report_html(a, meta: dict | None = None) -> str:
             )
         )
     hm = a.human_model
-    if hm and hm.get("factor") is not None:
-        body = (
-            f"<p>Human/model ({html.escape(hm['observer'])}) threshold factor over all diameters: "
-            f"<strong>{hm['factor']:.3g}</strong> (95 % CI {hm['ci_low']:.3g}–{hm['ci_high']:.3g}; bootstrap "
-            f"over readers and images). Multiply the model's thresholds by it for human-equivalent values.</p>"
-        )
+    if hm and (hm.get("factor") is not None or hm.get("per_diameter")):
+        if hm.get("factor") is not None:
+            body = (
+                f"<p>Human/model ({html.escape(hm['observer'])}) threshold factor over all diameters: "
+                f"<strong>{hm['factor']:.3g}</strong> (95 % CI {hm['ci_low']:.3g}–{hm['ci_high']:.3g}; bootstrap "
+                f"over readers and images). Multiply the model's thresholds by it for human-equivalent values.</p>"
+            )
+        else:
+            body = (
+                f"<p>Human/model ({html.escape(hm['observer'])}) threshold factor: <strong>not estimable</strong> — "
+                "no diameter has an estimable pooled human and model threshold (reasons below).</p>"
+            )
         per_recs = hm["per_diameter"]
         rows, heads = display_records(
             per_recs,

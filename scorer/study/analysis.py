@@ -22,8 +22,9 @@ Methods (each documented, with its references, where it is computed):
 * agreement (:mod:`scorer.study.agreement`);
 * which thresholds are estimates at all (:mod:`scorer.study.estimability`): a cell without an interior maximum,
   with too few trials, or with too wide an interval (or one reaching above 100 % contrast) is reported as not
-  estimable, with its reason and trial count, never as a number; the statistics that pool per-reader
-  thresholds (between-reader CV, group comparison, Bland–Altman) use the estimable ones.
+  estimable, with its reason and trial count, never as a number.  The statistics that pool per-reader
+  thresholds (between-reader CV, group comparison, Bland–Altman) keep every fit with an interior maximum, as
+  before: they carry each reader's uncertainty, and dropping the widest intervals would select on noise.
 
 References
 ----------
@@ -308,14 +309,14 @@ def analyse_study(
             f"{n_bad} per-reader threshold(s) have no interior maximum (all correct or at chance); "
             "they are bounds, not estimates"
         )
-    n_ne = int((~rc["estimable"]).sum())
+    n_ne = int((rc["converged"] & ~rc["estimable"]).sum())
     if n_ne:
         notes.append(
-            f"{n_ne} of {len(rc)} per-reader threshold(s) are not estimable (reasons in their rows); the "
-            "between-reader CV, the comparison and the Bland–Altman plot use the estimable ones"
+            f"{n_ne} of {len(rc)} per-reader threshold(s) have an interior maximum but are not estimable on their "
+            "own (reasons in their rows): they are not reported, but the between-reader CV, the comparison and the "
+            "Bland–Altman plot, which weigh every reader's fit with its own uncertainty, still use them (leaving "
+            "out the noisiest readers would bias those statistics)"
         )
-    # the statistics that pool per-reader thresholds take the estimable ones (they filter on "converged")
-    rc_stats = rc.assign(converged=rc["converged"] & rc["estimable"])
     say("pooled curves")
     pc_df, pn = pooled_curves(trials, m, by, criterion_pc, ci)
     pc_df = judge_curves(pc_df, rule)
@@ -323,7 +324,7 @@ def analyse_study(
     if len(pc_df) and (~pc_df["estimable"]).any():
         cells = ", ".join(f"{r[by]} {r['diameter_mm']:g} mm" for r in pc_df[~pc_df["estimable"]].to_dict("records"))
         notes.append(f"pooled threshold not estimable for {cells} (reasons in their rows)")
-    cv = between_reader_cv(rc_stats, by)
+    cv = between_reader_cv(rc, by)
     if cv.empty:
         n_r = trials["reader"].nunique()
         notes.append(
@@ -333,7 +334,7 @@ def analyse_study(
             "bound) at one diameter"
         )
     say(f"{by} comparison")
-    comp, cn = compare_groups(rc_stats, by, reference, ci, trials=trials, m=m, n_boot=n_boot, rng=rng)
+    comp, cn = compare_groups(rc, by, reference, ci, trials=trials, m=m, n_boot=n_boot, rng=rng)
     comp = _judge_comparison(comp, pc_df, by, rule)
     if len(comp) and n_boot < 2:
         notes.append(
@@ -348,7 +349,7 @@ def analyse_study(
         mc = judge_curves(model_curves(model, m, rng, n_boot, by, criterion_pc), rule, ci_expected=n_boot > 0)
         say("human/model factor")
         hm = human_model_factor(
-            trials, model, m, rng, n_boot, by, criterion_pc, ci, rc_stats, exclude=_factor_exclusions(pc_df, mc, by)
+            trials, model, m, rng, n_boot, by, criterion_pc, ci, rc, exclude=_factor_exclusions(pc_df, mc, by)
         )
     say("agreement")
     agr = agreement_summary(trials, by)
