@@ -106,7 +106,7 @@ def _images(tmp_path):
     for k, det in enumerate(("direct", "indirect")):
         model = detector_model(det)
         paths = []
-        for i in range(2):  # the second is the practice image
+        for i in range(3):  # the third is the practice image
             sim = simulate(model, "phantom", 100.0, np.random.default_rng(40 + 2 * k + i), small=True, layout=layout)
             stamp = _dt.datetime(2026, 11, 30, 9, 2 * k + i)
             paths.append(write_simulated(sim, tmp_path / "upload" / det, f"{det}-{i + 1:02d}", stamp))
@@ -156,7 +156,7 @@ def test_coordinator_and_reader_in_chromium(server, tmp_path):
             cp.wait_for_selector("#study-status")
             study_url = cp.url
             for det, (imgs, conv) in files.items():
-                for img, practice in zip(imgs, (False, True)):
+                for img, practice in zip(imgs, (False, False, True)):
                     cp.set_input_files("#images", str(img))
                     cp.fill("#detector", f"HSX panel {det}")
                     cp.set_input_files("#conversion_file", str(conv))
@@ -164,7 +164,7 @@ def test_coordinator_and_reader_in_chromium(server, tmp_path):
                         cp.check("#practice")
                     cp.click("#upload-images")
                     cp.wait_for_selector("#image-table")
-            assert cp.locator("#image-table tbody tr").count() == 4
+            assert cp.locator("#image-table tbody tr").count() == 6
             cp.click("#open-study")  # a background job: its page follows the progress, then links to the study
             cp.wait_for_selector("#job-progress")
             cp.wait_for_selector("#job-result", timeout=120_000)
@@ -272,7 +272,7 @@ def test_coordinator_and_reader_in_chromium(server, tmp_path):
 
 @pytest.fixture
 def demo_server(tmp_path):
-    """waitress serving an open study on the mini plate: 3 + 3 scored images and a practice image per panel,
+    """waitress serving an open study on the mini plate: 2 + 2 scored images and a practice image per panel,
     three readers."""
     if not Path(CHROMIUM).exists():
         pytest.skip(f"{CHROMIUM} not found: install Debian's chromium (.ci/run does) for the browser tests")
@@ -280,7 +280,7 @@ def demo_server(tmp_path):
     from scorer.commands.serve import make_server
     from webapp_helpers import demo_app
 
-    app, sid = demo_app(tmp_path, images_per_detector=3, half_width_ln=0.9, n_practice=2)
+    app, sid = demo_app(tmp_path, n_practice=2)
     srv = make_server(app, host="127.0.0.1", port=0, threads=4)
     th = threading.Thread(target=srv.run, daemon=True)
     th.start()

@@ -37,11 +37,12 @@ def demo_app(
     show_feedback=False,
     half_width_ln=2.0,
     placement="psi",
-    images_per_detector=1,
+    images_per_detector=2,
     **config,
 ):
-    """An app with an open study on simulated mini-plate images (1 direct + 1 indirect scored, one practice image
-    per panel when practice is asked for), ``n_readers`` readers enrolled, and one more reader (``outsider``) not
+    """An app with an open study on simulated mini-plate images (2 direct + 2 indirect scored: each cell then
+    offers the 10 trials per reader an estimable threshold needs; one practice image per panel when practice is
+    asked for), ``n_readers`` readers enrolled, and one more reader (``outsider``) not
     enrolled.  The wide wanted CI (±2 in ln) lets the design gate open a study this small; ``trials_per_reader``
     is the most scored trials per reader (None: no limit)."""
     from webapp.demo import create_demo_study, ensure_user

@@ -23,7 +23,10 @@ For each diameter asked for, :func:`scorer.study.trials_for_precision` simulates
 :data:`CV_BETWEEN`) placed by the study's own rule on the plate's contrast levels, each level offering as many
 regions as the images of the detector that has fewest, and gives the trials per reader per cell at which the
 pooled threshold of the enrolled readers reaches the wanted 95 % CI half-width (ln).  Burton et al. (2006),
-Kontsevich & Tyler (1999), Watson & Pelli (1983): see :mod:`scorer.study.precision`.
+Kontsevich & Tyler (1999), Watson & Pelli (1983): see :mod:`scorer.study.precision`.  A cell also gets at least
+the trials the analysis asks of an estimable threshold (:class:`scorer.study.estimability.EstimabilityRule`,
+10 per reader): the planner's posterior carries a prior, which a broad enough interval could let stand in for
+data, while the analysis fits the answers alone.
 """
 
 from __future__ import annotations
@@ -34,6 +37,7 @@ import math
 import numpy as np
 
 from scorer.errors import LimenError
+from scorer.study.estimability import EstimabilityRule
 
 PLACEMENTS = ("psi", "quest", "constant")
 PLACEMENT_LABELS = {
@@ -236,9 +240,12 @@ def plan_design(
     levels = plate_levels(layout)
     caps = regions_per_level(layout, diameters, scored_images_by_detector)
     budget = int(study.trials_per_reader)
-    rows, problems = [], []
+    floor = EstimabilityRule().min_trials  # fewer trials per reader and the analysis calls the cell not estimable
+    target = f"a 95 % CI of ±{hw:g} (ln, ×/÷ {math.exp(hw):.2f}) on each pooled threshold with {n_readers} readers"
+    rows, short, advice = [], [], []
     for k, d in enumerate(diameters):
         lv, m = levels[d]
+        capacity = max(caps[d], 1) * len(lv)
         plan = trials_for_precision(
             lv,
             m,
@@ -253,23 +260,27 @@ def plan_design(
         )
         if progress is not None:
             progress(f"planning {d:g} mm ({k + 1} of {len(diameters)})", (k + 1) / len(diameters))
+        n = None if plan.n_trials is None else max(int(plan.n_trials), floor)
         rows.append(
             {
                 "diameter_mm": d,
                 "m_alternatives": int(m),
                 "levels": list(lv),
                 "regions_per_level": int(caps[d]),
-                "n_trials": plan.n_trials,
+                "n_trials": n,
+                "n_for_interval": plan.n_trials,
                 "notes": plan.notes,
             }
         )
-        if plan.n_trials is None:
-            problems.append(f"{d:g} mm: {'; '.join(plan.notes)}")
-    target = f"a 95 % CI of ±{hw:g} (ln, ×/÷ {math.exp(hw):.2f}) on each pooled threshold with {n_readers} readers"
-    if problems:
+        if n is None or n > capacity:
+            short.append(f"{d:g} mm (at most {capacity} trials per reader: {caps[d]} region(s) per contrast level)")
+            advice += [a for a in plan.notes[1:] if a not in advice]
+    if short:
+        why = "; ".join(advice) if advice else "add images (each reader sees each region once)"
         raise LimenError(
-            f"this design cannot give {target} — {' | '.join(problems)}. Change: add readers or images, widen the "
-            "interval, leave out the diameters named, or allow more trials per reader"
+            f"this design cannot give {target} and at least {floor} trials per reader in each cell at "
+            f"{', '.join(short)}: {why}. Change: add readers or images, widen the interval, leave out the "
+            "diameters named, or allow more trials per reader"
         )
     detectors = sorted(scored_images_by_detector)
     cells = [
