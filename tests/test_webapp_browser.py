@@ -399,3 +399,103 @@ def test_practice_then_scored_trials_blinded_in_chromium(demo_server):
         scored_regions = {t.region_id for t in db().query(Trial).filter_by(study_id=sid, practice=False)}
     assert practice_regions and not practice_regions & scored_regions
     assert not set(df["image"]) & practice_codes
+
+
+def test_the_reading_page_reconnects_and_never_loses_or_doubles_an_answer(tmp_path):
+    """Issue 19: the server stops while the reader answers; the page says it is reconnecting, keeps trying with a
+    growing pause, and when a new server comes up on the same port sends the answer once.  A second fault: the
+    answer reaches the server and is stored, but the reply is lost on the way back; the page sends it again, the
+    server says "already answered" and the page moves on — one stored response per trial either way."""
+    if not Path(CHROMIUM).exists():
+        pytest.skip(f"{CHROMIUM} not found")
+    pytest.importorskip("playwright.sync_api", reason="playwright (test extra) not installed")
+    from playwright.sync_api import sync_playwright
+
+    from scorer.commands.serve import make_server
+    from webapp.models import Response, Trial
+    from webapp.security import db
+    from webapp_helpers import demo_app
+
+    app, sid = demo_app(tmp_path, n_practice=0)
+    srv = make_server(app, host="127.0.0.1", port=0, threads=4)
+    port = srv.effective_port
+    th = threading.Thread(target=srv.run, daemon=True)
+    th.start()
+    base = f"http://127.0.0.1:{port}"
+
+    def stored(public_id):
+        with app.app_context():
+            return (
+                db()
+                .query(Response)
+                .join(Trial, Trial.id == Response.trial_id)
+                .filter(Trial.public_id == public_id)
+                .count()
+            )
+
+    problems = []
+    with sync_playwright() as p:
+        browser = p.chromium.launch(executable_path=CHROMIUM, args=CHROMIUM_ARGS)
+        try:
+            rp = browser.new_context(viewport={"width": 1280, "height": 900}).new_page()
+            rp.on("pageerror", lambda e: problems.append(str(e)))
+            _login(rp, base, "reader1")
+            rp.click("#my-studies a.button")
+            rp.wait_for_selector("#check[data-ready]")
+            sites = json.loads(rp.get_attribute("#check", "data-sites"))
+            gray = _screen(rp)
+            pick = int(np.argmax([gray[r - 4 : r + 5, c - 4 : c + 5].mean() for r, c in sites]))
+            box = rp.locator("#pixels").bounding_box()
+            rp.mouse.click(box["x"] + sites[pick][1] + 0.5, box["y"] + sites[pick][0] + 0.5)
+            rp.click("#confirm")
+            rp.wait_for_url("**/reading/studies/*")
+            ready = "() => document.getElementById('reader').dataset.ready"
+            rp.wait_for_function(ready)
+            first = rp.get_attribute("#reader", "data-ready")
+            # ---- fault 1: the server is gone when the answer is sent, and comes back on the same port
+            srv.close()
+            th.join(timeout=10)
+            rp.keyboard.press("1")
+            rp.keyboard.press("Enter")
+            rp.wait_for_function("() => document.getElementById('reader').dataset.reconnecting")
+            assert "Reconnecting" in rp.inner_text("#status")
+            rp.screenshot(path=str(ARTIFACTS / "reconnecting.png"))
+            rp.wait_for_timeout(1500)  # a few attempts fail while the server is down
+            assert stored(first) == 0
+            srv = make_server(app, host="127.0.0.1", port=port, threads=4)
+            th = threading.Thread(target=srv.run, daemon=True)
+            th.start()
+            rp.wait_for_function(
+                f"() => {{ const r = document.getElementById('reader').dataset.ready; return r && r !== '{first}'; }}",
+                timeout=30_000,
+            )
+            assert not rp.get_attribute("#reader", "data-reconnecting")
+            assert stored(first) == 1
+            # ---- fault 2: the answer is stored but its reply never reaches the page
+            second = rp.get_attribute("#reader", "data-ready")
+            lost = []
+
+            def drop_first_reply(route):
+                if not lost:
+                    route.fetch()  # the server receives and stores the answer …
+                    lost.append(1)
+                    route.abort()  # … and the page never hears back
+                else:
+                    route.continue_()
+
+            rp.route("**/response", drop_first_reply)
+            rp.keyboard.press("2")
+            rp.keyboard.press("Enter")
+            rp.wait_for_function(
+                f"() => {{ const r = document.getElementById('reader').dataset.ready; return r && r !== '{second}'; }}",
+                timeout=30_000,
+            )
+            assert lost and stored(second) == 1
+            with app.app_context():
+                n_resp = db().query(Response).count()
+            assert n_resp == 2  # two answers given, two stored: none lost, none doubled
+        finally:
+            browser.close()
+            srv.close()
+            th.join(timeout=5)
+    assert not problems, problems
