@@ -120,12 +120,12 @@ class Reader(threading.Thread):
                 t0 = time.perf_counter()
                 r = s.get(self.base + t["region_url"], timeout=30)
                 self.region_ms.append(1000 * (time.perf_counter() - t0))
-                if r.status_code != 200 or len(r.content) != 2 * t["rows"] * t["cols"]:
+                if r.status_code != 200 or len(r.content) != 2 * t.get("tiles", 1) * t["rows"] * t["cols"]:
                     self.errors.append(f"region {r.status_code}")
                     continue
                 time.sleep(self.think_scale * self.rng.lognormvariate(np.log(2.5), 0.4))
                 body = {
-                    "chosen_site": self.rng.randrange(t["m"]),
+                    ("chosen_position" if t.get("tiles") else "chosen_site"): self.rng.randrange(t["m"]),
                     "response_ms": 1500,
                     "window": 4000.0,
                     "level": 30000.0,

@@ -333,6 +333,24 @@ def test_pooled_plan_and_designs_that_cannot_reach_the_interval():
             trials_for_precision(LEVELS10, 5, **{"n_max": 5, **kwargs})
 
 
+def test_a_plan_with_few_regions_per_level_needs_more_trials_and_says_add_images():
+    """A study shows a reader each region once, so a cell offers (images × targets) trials per contrast level:
+    the plan then runs the rule on the levels with regions left, as the web app does.  A generous cap changes
+    nothing (same seed, same answers); a tight one costs trials (Psi keeps to the levels near the threshold,
+    Kontsevich & Tyler 1999, so it runs out of them); one region per level cannot reach a narrow interval and
+    the notes say to add images."""
+    free = trials_for_precision(LEVELS10, 3, 0.4, threshold=0.04, n_readers=5, n_sim=100, seed=3)
+    wide = trials_for_precision(LEVELS10, 3, 0.4, threshold=0.04, n_readers=5, n_sim=100, seed=3, max_per_level=500)
+    assert wide.n_trials == free.n_trials and wide.curve.equals(free.curve)
+    tight = trials_for_precision(LEVELS10, 3, 0.4, threshold=0.04, n_readers=5, n_sim=100, seed=3, max_per_level=6)
+    assert tight.n_trials is not None and tight.n_trials > free.n_trials and tight.max_per_level == 6
+    one = trials_for_precision(LEVELS10, 3, 0.2, threshold=0.04, n_readers=5, n_sim=60, seed=3, max_per_level=1)
+    assert one.n_trials is None and len(one.curve) == 10  # every region of the cell shown once, then no more
+    assert "1 per contrast level" in one.notes[0] and "add images" in one.notes[1]
+    with pytest.raises(LimenError, match="max_per_level"):
+        trials_for_precision(LEVELS10, 3, 0.2, max_per_level=0)
+
+
 def test_scipy_truth_is_the_green_swets_integral():
     # the simulated observers' truth itself: Pc_4(1) = 0.5520, Pc_4(2) = 0.8228 (docs/references.md, Green &
     # Swets 1966), and Limen's own quadrature agrees

@@ -31,8 +31,8 @@ import sys
 from webapp import create_app
 from webapp.demo import create_demo_study
 app = create_app({"INSTANCE_PATH": sys.argv[1]})
-create_demo_study(app, n_readers=1, images_per_detector=1, trials_per_reader=4, n_practice=0,
-                  repeat_fraction=0, layout_path=sys.argv[2])
+create_demo_study(app, n_readers=3, images_per_detector=2, trials_per_reader=None, n_practice=0,
+                  repeat_fraction=0, layout_path=sys.argv[2], diameters_mm=None, half_width_ln=2.0)
 print("done")
 """
 
@@ -86,7 +86,7 @@ def test_killed_at_every_write_leaves_only_complete_files(tmp_path):
     written = _complete_files(tmp_path / "full")
     kinds = {("display" if "display" in Path(n).parts else Path(n).parent.name) if "/" in n else n for n in written}
     assert kinds == {"secret_key", "store", "conversions", "display"}, written
-    assert len(written) == 7  # key, 2 conversions, 2 images, 2 display arrays
+    assert len(written) == 11  # key, 2 conversions, 4 images, 4 display arrays
     # kill at the 1st, 2nd, … write until a run gets through (the simulated images are also written, whole,
     # to a temporary folder before they are uploaded: those writes count too but leave nothing in the instance)
     counts = []
@@ -101,13 +101,13 @@ def test_killed_at_every_write_leaves_only_complete_files(tmp_path):
         counts.append(len(left))
         last = inst
     assert counts == sorted(counts) and counts[0] == 0 and counts[-1] == len(written) - 1, counts
-    assert len(set(counts)) == len(written)  # a kill during each of the instance's 7 files was seen
+    assert len(set(counts)) == len(written)  # a kill during each of the instance's 11 files was seen
     again = _demo(last)
     assert again.returncode == 0, again.stderr[-2000:]
     names = set(_complete_files(last))
     with sqlite3.connect(last / "limen.db") as con:  # the killed run committed nothing; the new one its study
         shas = [r[0] for r in con.execute("select sha256 from study_images")]
-    assert len(shas) == 2
+    assert len(shas) == 4
     assert all({f"store/{s}.dcm", f"store/display/study-1/{s}.u16.npy"} <= names for s in shas), (shas, names)
 
 

@@ -17,18 +17,21 @@ from webapp_helpers import MINI, PASSWORDS, login, make_app, wait_job
 
 
 def _draft_app(tmp_path, **config):
-    """An app with a draft (not yet opened) demo study on the mini plate: 1 direct + 1 indirect image, 2 readers."""
+    """An app with a draft (not yet opened) demo study on the mini plate: 2 direct + 2 indirect images and a
+    practice image per panel, 3 readers, a design its images can reach (±2 in ln)."""
     from webapp.demo import create_demo_study
 
     app = make_app(tmp_path, **config)
     out = create_demo_study(
         app,
-        n_readers=2,
-        images_per_detector=1,
-        trials_per_reader=8,
+        n_readers=3,
+        images_per_detector=2,
+        trials_per_reader=None,
         n_practice=2,
         repeat_fraction=0.25,
         layout_path=str(MINI),
+        diameters_mm=None,
+        half_width_ln=2.0,
         passwords=PASSWORDS,
         open_study=False,
     )
@@ -81,10 +84,11 @@ def test_open_study_job_runs_to_done_and_records_its_progress_in_the_database(tm
     assert all(state == "running" and txt == text for text, _f, state, txt, _rf in seen), seen
     fractions = [rf for _t, _f, _s, _txt, rf in seen]
     assert fractions == sorted(fractions) and 0 < fractions[0] < fractions[-1] < 1
-    assert any("scoring" in s[0] for s in seen) and any("schedules" in s[0] for s in seen)
+    assert any("planning" in s[0] for s in seen) and any("scoring" in s[0] for s in seen)
+    assert any("tiles" in s[0] for s in seen)
     with app.app_context():
         st = db().get(Study, sid)
-        assert st.status == "open" and db().query(Region).filter_by(study_id=sid).count() == 2 * 18
+        assert st.status == "open" and db().query(Region).filter_by(study_id=sid).count() == 6 * 18
         row = db().get(Job, job["id"])
         assert row.active_key is None and row.started_at <= row.finished_at
         (entry,) = db().query(AuditEntry).filter_by(action="open_study", study_id=sid).all()
@@ -234,7 +238,7 @@ def test_a_reader_cannot_see_a_job(tmp_path, who):
 def test_analysis_and_planning_jobs_report_their_progress(tmp_path):
     from webapp_helpers import demo_app, read_all, reader_client
 
-    app, sid = demo_app(tmp_path, trials_per_reader=8)
+    app, sid = demo_app(tmp_path)
     rc, rtok = reader_client(app, sid)
     read_all(rc, sid, rtok)
     runner = app.extensions["limen_jobs"]

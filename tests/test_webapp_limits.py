@@ -360,7 +360,7 @@ def test_csv_exports_neutralise_formulas_but_keep_numbers(tmp_path):
     from webapp.models import Study, StudyImage
     from webapp.security import db
 
-    app, sid = demo_app(tmp_path)
+    app, sid = demo_app(tmp_path, n_practice=0)  # four images: the first four hostile labels
     c, tok = reader_client(app, sid)
     read_all(c, sid, tok, limit=6)
     labels = list(HOSTILE)

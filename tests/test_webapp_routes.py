@@ -152,6 +152,7 @@ def test_role_route_matrix(study):
             elif endpoint.startswith("reading."):
                 body = {
                     "chosen_site": 1,
+                    "chosen_position": 1,
                     "response_ms": 900,
                     "window": 500.0,
                     "level": 2000.0,

@@ -12,7 +12,17 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from webapp_helpers import PASSWORDS, accounts_app, csrf_from, demo_app, login, pass_display_check, race, reader_client
+from webapp_helpers import (
+    PASSWORDS,
+    accounts_app,
+    answer,
+    csrf_from,
+    demo_app,
+    login,
+    pass_display_check,
+    race,
+    reader_client,
+)
 
 
 @pytest.fixture
@@ -100,11 +110,8 @@ def _reader_texts(client, sid, token):
         if t["done"]:
             break
         client.get(t["region_url"])
-        a = client.post(
-            t["response_url"],
-            json={"chosen_site": 0, "response_ms": 800, "window": 1.0, "level": 1.0, "zoom": 1},
-            headers={"X-CSRFToken": token},
-        )
+        a = answer(client, token, t, 0, ms=800, window=1.0, level=1.0)
+        assert a.status_code == 200, a.json
         answers.append((t, a.json))
     return texts, answers
 
@@ -169,13 +176,13 @@ def test_a_response_submitted_twice_is_stored_once(demo):
 
     c, tok = reader_client(app, sid)
     t = c.get(f"/reading/api/studies/{sid}/next").json
-    body = {"chosen_site": 2, "response_ms": 1000, "window": 100.0, "level": 50.0, "zoom": 1}
+    body = {"chosen_position": 2, "response_ms": 1000, "window": 100.0, "level": 50.0, "zoom": 1}
     first = c.post(t["response_url"], json=body, headers={"X-CSRFToken": tok})
-    second = c.post(t["response_url"], json={**body, "chosen_site": 1}, headers={"X-CSRFToken": tok})
+    second = c.post(t["response_url"], json={**body, "chosen_position": 1}, headers={"X-CSRFToken": tok})
     assert first.status_code == 200 and second.status_code == 409 and second.json["duplicate"]
     with app.app_context():
         rows = db().query(Response).all()
-        assert len(rows) == 1 and rows[0].chosen_site == 2
+        assert len(rows) == 1 and rows[0].chosen_site == rows[0].trial.order[2]  # the first answer, position 2
 
 
 def test_two_tabs_answering_the_same_trial_at_once_store_one_response(demo):
@@ -198,6 +205,8 @@ def test_the_database_itself_refuses_a_second_response(demo):
     from webapp.models import Response, Trial
     from webapp.security import db
 
+    c, _tok = reader_client(app, sid)
+    c.get(f"/reading/api/studies/{sid}/next")  # trials are made as the reader asks for them
     with app.app_context():
         s = db()
         trial = s.query(Trial).first()

@@ -1,10 +1,11 @@
-"""Study logistics of the web app: creating a study in the browser forms, reader schedules, the pixels the
+"""Study logistics of the web app: creating a study in the browser forms, each reader's sequence, the pixels the
 reader sees, export, resume and analysis."""
 
 from __future__ import annotations
 
 import datetime as _dt
 import io
+import json
 from pathlib import Path
 
 import numpy as np
@@ -18,6 +19,7 @@ from webapp_helpers import (
     PASSWORDS,
     accounts_app,
     answer,
+    darkest_tile,
     demo_app,
     login,
     make_app,
@@ -28,46 +30,31 @@ from webapp_helpers import (
 )
 
 
-def _darkest_site(trial, data):
-    """A simple reader working on exactly the bytes the browser receives: the discs lower the air kerma, so
-    pick the site whose surroundings (disc-sized averages at a few scales, in noise units) are darkest."""
-    px = np.frombuffer(data, "<u2").reshape(trial["rows"], trial["cols"]).astype(float)
-    noise = 1.4826 * np.median(np.abs(np.diff(px, axis=1))) / np.sqrt(2)  # robust pixel noise (MAD)
-    yy, xx = np.mgrid[: px.shape[0], : px.shape[1]]
-    best = np.full(len(trial["sites"]), -np.inf)
-    for radius in (0.75, 1.5, 2.5, 4.0, 6.0):
-        means, counts = [], []
-        for r, c in trial["sites"]:
-            m = (yy - r) ** 2 + (xx - c) ** 2 <= radius**2
-            means.append(px[m].mean())
-            counts.append(m.sum())
-        means = np.array(means)
-        z = (np.median(means) - means) / (noise / np.sqrt(np.array(counts)))
-        best = np.maximum(best, z)
-    return int(np.argmax(best))
-
-
-def test_schedules_same_items_for_every_reader_in_their_own_order(tmp_path):
-    app, sid = demo_app(tmp_path, n_readers=3, trials_per_reader=10, n_practice=2, repeat_fraction=0.3)
-    from webapp.models import Trial, User
+def test_each_reader_reads_practice_then_scored_trials_then_repeats(tmp_path):
+    """Trials are placed as each reader goes: practice first, then the scored trials (each region at most once),
+    then the repeats — second readings of the reader's own scored trials, each with a new tile order."""
+    app, sid = demo_app(tmp_path, n_readers=3, n_practice=2, repeat_fraction=0.3)
+    from webapp.models import Study, Trial, User
     from webapp.security import db
 
+    for name in ("reader1", "reader2", "reader3"):
+        c, tok = reader_client(app, sid, name)
+        read_all(c, sid, tok, chooser=lambda t, d: int(t["trial"], 16) % t["m"])
     with app.app_context():
-        seqs = {}
+        plan = json.loads(db().get(Study, sid).plan_json)
+        orders = {}
         for u in db().query(User).filter(User.username.like("reader%")).all():
             ts = db().query(Trial).filter(Trial.study_id == sid, Trial.reader_id == u.id).order_by(Trial.seq).all()
-            seqs[u.username] = [(t.region_id, t.practice, t.repeat) for t in ts]
-    assert set(seqs) == {"reader1", "reader2", "reader3"}
-    for seq in seqs.values():
-        assert len(seq) == 2 + 10 + 3
-        assert [p for _, p, _ in seq[:2]] == [True, True] and not any(p for _, p, _ in seq[2:])
-        main = [r for r, p, rep in seq if not p and rep == 0]
-        reps = [r for r, p, rep in seq if rep == 1]
-        assert len(set(main)) == 10 and set(reps) <= set(main) and len(set(reps)) == 3
-        assert seq[-3:] == [(r, False, 1) for r in reps]  # repeats come after the first readings
-    mains = {k: [r for r, p, rep in s if not p and rep == 0] for k, s in seqs.items()}
-    assert len({frozenset(m) for m in mains.values()}) == 1  # the same items for every reader
-    assert len({tuple(m) for m in mains.values()}) == 3  # in a different order each
+            seq = [(t.region_id, t.practice, t.repeat) for t in ts]
+            assert len(seq) == 2 + plan["total"] and [t.seq for t in ts] == list(range(len(seq)))
+            assert [p for _, p, _ in seq[:2]] == [True, True] and not any(p for _, p, _ in seq[2:])
+            main = [r for r, p, rep in seq if not p and rep == 0]
+            reps = [r for r, p, rep in seq if rep == 1]
+            assert len(main) == plan["n_scored"] == len(set(main))  # each region once
+            assert len(reps) == plan["n_repeats"] == round(0.3 * plan["n_scored"]) and set(reps) <= set(main)
+            assert seq[-len(reps) :] == [(r, False, 1) for r in reps]  # repeats come after the first readings
+            orders[u.username] = [r for r, _, _ in seq]
+    assert len({tuple(o) for o in orders.values()}) == 3  # each reader their own sequence
 
 
 def test_reader_pixels_are_the_linear_image_in_air_kerma(tmp_path):
@@ -81,8 +68,8 @@ def test_reader_pixels_are_the_linear_image_in_air_kerma(tmp_path):
 
     c, tok = reader_client(app, sid)
     t = c.get(f"/reading/api/studies/{sid}/next").json
-    data = np.frombuffer(c.get(t["region_url"]).data, "<u2").reshape(t["rows"], t["cols"])
-    assert data.dtype == np.uint16 and t["rows"] == t["cols"]
+    data = np.frombuffer(c.get(t["region_url"]).data, "<u2").reshape(t["tiles"], t["rows"], t["cols"])
+    assert data.dtype == np.uint16 and t["rows"] == t["cols"] and t["rows"] % 2 == 1
     with app.app_context():
         st = db().get(Study, sid)
         tr = db().query(Trial).filter(Trial.public_id == t["trial"]).one()
@@ -92,38 +79,27 @@ def test_reader_pixels_are_the_linear_image_in_air_kerma(tmp_path):
         ref = load_image(
             Path(app.config["STORE_DIR"]) / im.stored_name, conversion=load_conversion(im.conversion_file)
         ).pixels
+        boxes, order = json.loads(reg.tiles_json), json.loads(tr.tile_order)
     kerma = data * scale
     assert np.median(kerma) == pytest.approx(100.0, rel=0.02)
-    crop = ref[reg.row0 : reg.row0 + t["rows"], reg.col0 : reg.col0 + t["cols"]]
-    assert np.max(np.abs(kerma - crop)) <= 0.5 * scale + 1e-9
+    n = t["rows"]
+    for k, site in enumerate(order):  # screen position k shows the tile of site order[k], centred on the site
+        r0, c0 = boxes[site]
+        crop = ref[r0 : r0 + n, c0 : c0 + n]
+        assert np.max(np.abs(kerma[k] - crop)) <= 0.5 * scale + 1e-9
+        assert np.allclose([r0 + n // 2, c0 + n // 2], np.round(np.asarray(reg.sites[site]) + [reg.row0, reg.col0]))
     # a 16-bit step is far finer than the quantum noise, so W/L in the browser loses nothing to rounding
     assert scale < 0.01 * np.std(crop)
 
 
-def test_sites_line_up_with_the_discs(tmp_path):
-    """A reader choosing the darkest-looking site on the received pixels is right on nearly every clearly
-    visible target (misplaced sites would give the M-AFC guess rate 1/M = 0.25; Green & Swets 1966)."""
-    app, sid = demo_app(tmp_path, trials_per_reader=36, n_practice=0, repeat_fraction=0)
-    c, tok = reader_client(app, sid)
-    read_all(c, sid, tok, chooser=_darkest_site)
-    cc = app.test_client()
-    login(cc, "coordinator")
-    df = pd.read_csv(io.StringIO(cc.get(f"/coordinator/studies/{sid}/responses.csv").text))
-    assert len(df) == 36
-    # the most visible target of each diameter on each image: 6 trials; guessing gets ≥ 5 right with p < 0.005
-    easy = df[df["contrast"] == df.groupby("diameter_mm")["contrast"].transform("max")]
-    assert len(easy) == 6 and easy["correct"].sum() >= 5, easy[["diameter_mm", "contrast", "correct"]]
-    assert df["correct"].mean() > 0.45
-
-
 def test_export_is_what_limen_analyse_reads(tmp_path):
-    app, sid = demo_app(tmp_path, n_readers=2)
+    app, sid = demo_app(tmp_path)
     from scorer.cli import main
     from scorer.study import validate_trials
     from scorer.study.trials import OPTIONAL_COLUMNS, TRIAL_COLUMNS
 
     sent = {}
-    for name in ("reader1", "reader2"):
+    for name in ("reader1", "reader2", "reader3"):
         c = app.test_client()
         tok = login(c, name)
         pass_display_check(c, sid, tok)
@@ -134,9 +110,10 @@ def test_export_is_what_limen_analyse_reads(tmp_path):
     r = cc.get(f"/coordinator/studies/{sid}/responses.csv")
     assert r.status_code == 200 and r.mimetype == "text/csv" and "attachment" in r.headers["Content-Disposition"]
     df = pd.read_csv(io.StringIO(r.text), dtype={"reader": str, "image": str, "target": str})
-    assert list(df.columns) == TRIAL_COLUMNS + OPTIONAL_COLUMNS + ["window", "level", "timestamp"]
-    for name, sites in sent.items():
-        assert df[df["reader"] == name]["chosen_site"].tolist() == sites  # exactly the responses given
+    extra = ["window", "level", "timestamp", "seq", "tile_order", "chosen_position", "true_position"]
+    assert list(df.columns) == TRIAL_COLUMNS + OPTIONAL_COLUMNS + extra
+    for name, positions in sent.items():
+        assert df[df["reader"] == name]["chosen_position"].tolist() == positions  # exactly the responses given
     assert (df["correct"] == (df["chosen_site"] == df["true_site"])).all()
     # each trial's M is its target's number of candidate sites on the mini plate (3-site or 5-site cells)
     m_of = {t.id: t.m_alternatives for t in load_layout(MINI).targets}
@@ -152,7 +129,7 @@ def test_export_is_what_limen_analyse_reads(tmp_path):
 
 
 def test_leave_and_resume(tmp_path):
-    app, sid = demo_app(tmp_path, trials_per_reader=6, n_practice=1, repeat_fraction=0)
+    app, sid = demo_app(tmp_path, n_practice=1, repeat_fraction=0)
     c, tok = reader_client(app, sid)
     first = read_all(c, sid, tok, limit=3)
     c.post("/logout", data={"csrf_token": tok})
@@ -165,11 +142,11 @@ def test_leave_and_resume(tmp_path):
     assert nxt["answered"] == 2 and nxt["number"] == 3 and not nxt["practice"]
     rest = read_all(c2, sid, tok2)
     ids = [t["trial"] for t, _ in first + rest]
-    assert len(ids) == len(set(ids)) == 7
+    assert len(ids) == len(set(ids)) == 1 + nxt["total"]
     cc = app.test_client()
     login(cc, "coordinator")
     df = pd.read_csv(io.StringIO(cc.get(f"/coordinator/studies/{sid}/responses.csv").text))
-    assert df["session"].tolist() == [1, 1, 2, 2, 2, 2]
+    assert df["session"].tolist() == [1, 1] + [2] * (nxt["total"] - 2)
     assert "passed" in cc.get(f"/coordinator/studies/{sid}").text
 
 
@@ -190,7 +167,7 @@ def test_feedback_after_the_response_when_the_coordinator_allows_it(tmp_path):
     c, tok = reader_client(app, sid)
     t = c.get(f"/reading/api/studies/{sid}/next").json
     fb = answer(c, tok, t, site=1).json["feedback"]
-    assert fb["correct"] == (fb["true_site"] == 1)
+    assert fb["correct"] == (fb["true_position"] == 1)
 
 
 def test_display_check_needs_the_right_site_and_records_the_screen(tmp_path):
@@ -252,12 +229,12 @@ def _simulated_files(tmp_path, n=1):
 
 
 def test_coordinator_builds_a_study_through_the_forms(tmp_path):
-    app = accounts_app(tmp_path, ("coordinator", "reader1"))
+    app = accounts_app(tmp_path, ("coordinator", "reader1", "reader2", "reader3"))
     from webapp.models import Region, Study, User
     from webapp.security import db
 
     with app.app_context():
-        rid = db().query(User).filter_by(username="reader1").one().id
+        rids = [str(u.id) for u in db().query(User).filter(User.username.like("reader%"))]
     c = app.test_client()
     tok = login(c, "coordinator")
     layout_bytes = MINI.read_bytes()
@@ -267,12 +244,13 @@ def test_coordinator_builds_a_study_through_the_forms(tmp_path):
             "csrf_token": tok,
             "name": "Room 2 vs room 3",
             "layout_file": (io.BytesIO(layout_bytes), "mini.toml"),
-            "trials_per_reader": "12",
+            "trials_per_reader": "100",
+            "half_width_ln": "2",
             "seed": "5",
             "repeat_percent": "25",
-            "n_practice": "2",
+            "n_practice": "0",
             "observer": "npw",
-            "readers": [str(rid)],
+            "readers": rids,
         },
         content_type="multipart/form-data",
     )
@@ -298,25 +276,27 @@ def test_coordinator_builds_a_study_through_the_forms(tmp_path):
         st = db().get(Study, sid)
         assert st.status == "open" and st.observer == "npw" and len(st.images) == 2
         assert db().query(Region).filter_by(study_id=sid).count() == 2 * 18
+        assert db().query(Region).filter_by(study_id=sid, tiles_json=None).count() == 0
         model = pd.read_csv(io.StringIO(st.model_trials_csv))
         assert len(model) == 36 and set(model["reader"]) == {"npw"}
         assert set(model["detector"]) == {"panel direct", "panel indirect"}
+        total = json.loads(st.plan_json)["total"]
     page = c.get(f"/coordinator/studies/{sid}").text
-    assert "reader1" in page and "0 / 15" in page
+    assert "reader1" in page and f"0 / {total}" in page
     # the reader can now read it
     rc = app.test_client()
     rtok = login(rc, "reader1")
     pass_display_check(rc, sid, rtok)
-    assert len(read_all(rc, sid, rtok)) == 2 + 12 + 3
+    assert len(read_all(rc, sid, rtok)) == total
 
 
 def test_analysis_page_shows_readers_against_the_model(tmp_path):
-    app, sid = demo_app(tmp_path, n_readers=2, trials_per_reader=36, n_practice=0, repeat_fraction=0.2)
-    for name in ("reader1", "reader2"):
+    app, sid = demo_app(tmp_path, n_practice=0, repeat_fraction=0.2)
+    for name in ("reader1", "reader2", "reader3"):
         c = app.test_client()
         tok = login(c, name)
         pass_display_check(c, sid, tok)
-        read_all(c, sid, tok, chooser=_darkest_site)
+        read_all(c, sid, tok, chooser=darkest_tile)
     cc = app.test_client()
     tok = login(cc, "coordinator")
     assert "Not analysed yet" in cc.get(f"/analysis/studies/{sid}").text
@@ -332,7 +312,7 @@ def test_analysis_page_shows_readers_against_the_model(tmp_path):
     import json
 
     a = json.loads(cc.get(f"/analysis/studies/{sid}/analysis.json").text)
-    assert a["human_model_factor"]["observer"] == "npwe" and sorted(a["readers"]) == ["reader1", "reader2"]
+    assert a["human_model_factor"]["observer"] == "npwe" and sorted(a["readers"]) == ["reader1", "reader2", "reader3"]
 
 
 def test_planning_page_estimates_power_from_a_stated_spread_and_refuses_oversized_requests(tmp_path):
@@ -439,7 +419,15 @@ def test_an_image_in_two_studies_is_shown_on_each_studys_own_scale(tmp_path):
     from webapp.security import db
 
     app = make_app(tmp_path)
-    kw = dict(n_readers=1, trials_per_reader=8, n_practice=0, repeat_fraction=0, layout_path=str(MINI))
+    kw = dict(
+        n_readers=3,
+        trials_per_reader=None,
+        n_practice=0,
+        repeat_fraction=0,
+        layout_path=str(MINI),
+        diameters_mm=None,
+        half_width_ln=2.0,
+    )
     a = create_demo_study(app, images_per_detector=1, passwords=PASSWORDS, **kw)["study_id"]
     b = create_demo_study(
         app, images_per_detector=3, passwords=PASSWORDS, reader_prefix="other", open_study=False, seed=7, **kw

@@ -30,15 +30,21 @@ def make_app(tmp_path, db_url=None, **config):
 def demo_app(
     tmp_path,
     db_url=None,
-    n_readers=2,
-    trials_per_reader=8,
+    n_readers=3,
+    trials_per_reader=None,
     n_practice=2,
     repeat_fraction=0.25,
     show_feedback=False,
+    half_width_ln=2.0,
+    placement="psi",
+    images_per_detector=2,
     **config,
 ):
-    """An app with an open study on simulated mini-plate images (1 direct + 1 indirect), ``n_readers`` readers
-    enrolled, and one more reader (``outsider``) not enrolled."""
+    """An app with an open study on simulated mini-plate images (2 direct + 2 indirect scored: each cell then
+    offers the 10 trials per reader an estimable threshold needs; one practice image per panel when practice is
+    asked for), ``n_readers`` readers enrolled, and one more reader (``outsider``) not
+    enrolled.  The wide wanted CI (±2 in ln) lets the design gate open a study this small; ``trials_per_reader``
+    is the most scored trials per reader (None: no limit)."""
     from webapp.demo import create_demo_study, ensure_user
     from webapp.security import db
 
@@ -46,11 +52,14 @@ def demo_app(
     out = create_demo_study(
         app,
         n_readers=n_readers,
-        images_per_detector=1,
+        images_per_detector=images_per_detector,
         trials_per_reader=trials_per_reader,
         n_practice=n_practice,
         repeat_fraction=repeat_fraction,
         layout_path=str(MINI),
+        diameters_mm=None,
+        half_width_ln=half_width_ln,
+        placement=placement,
         passwords=PASSWORDS,
         show_feedback=show_feedback,
     )
@@ -101,9 +110,11 @@ def pass_display_check(client, study_id, token):
 
 
 def answer(client, token, trial, site=0, ms=1500, window=1000.0, level=3000.0):
+    """Answer a trial with the choice ``site``: a screen position (tile) in a tiled trial, a site otherwise."""
+    key = "chosen_position" if trial.get("tiles") else "chosen_site"
     return client.post(
         trial["response_url"],
-        json={"chosen_site": site, "response_ms": ms, "window": window, "level": level, "zoom": 1},
+        json={key: site, "response_ms": ms, "window": window, "level": level, "zoom": 1},
         headers={"X-CSRFToken": token},
     )
 
@@ -149,7 +160,7 @@ def race(app, client, url, token, n):
         codes.append(
             tc.post(
                 url,
-                json={"chosen_site": site % 4, "response_ms": 700, "window": 9.0, "level": 3.0, "zoom": 1},
+                json={"chosen_position": site % 3, "response_ms": 700, "window": 9.0, "level": 3.0, "zoom": 1},
                 headers={"X-CSRFToken": token},
             ).status_code
         )
@@ -183,3 +194,19 @@ def reader_client(app, study_id, name="reader1"):
     tok = login(c, name)
     pass_display_check(c, study_id, tok)
     return c, tok
+
+
+def darkest_tile(trial, data):
+    """A reader working on the bytes it receives: the tile whose centre (disc-sized averages at a few scales) is
+    darkest (a disc lowers the kerma)."""
+    px = np.frombuffer(data, "<u2").reshape(trial["tiles"], trial["rows"], trial["cols"]).astype(float)
+    c = (trial["rows"] - 1) // 2
+    yy, xx = np.mgrid[: trial["rows"], : trial["cols"]]
+    best = np.zeros(trial["tiles"])
+    for radius in (0.75, 1.5, 2.5, 4.0, 6.0):
+        m = (yy - c) ** 2 + (xx - c) ** 2 <= radius**2
+        means = px[:, m].mean(axis=1)
+        bg = np.median(px.reshape(trial["tiles"], -1), axis=1)
+        z = (bg - means) / (px.std() / np.sqrt(m.sum()))
+        best = np.maximum(best, z - np.median(z))
+    return int(np.argmax(best))

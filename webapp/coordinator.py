@@ -40,7 +40,15 @@ def _draft(study_id: int) -> Study:
 
 
 def _add_image(
-    st: Study, stream, name: str, detector: str, known: set, conv_path=None, conversion=None, spacing=None
+    st: Study,
+    stream,
+    name: str,
+    detector: str,
+    known: set,
+    conv_path=None,
+    conversion=None,
+    spacing=None,
+    practice: bool = False,
 ) -> dict | None:
     """Store one image file under its hash, check it reads as an image, add it to the study (once: an image the
     study already has is returned with ``skipped``)."""
@@ -69,9 +77,10 @@ def _add_image(
             conversion_file=conv_path,
             pixel_spacing_mm=spacing,
             label=label,
+            practice=practice,
         )
     )
-    return {"label": label, "sha256": digest}
+    return {"label": label, "sha256": digest, "practice": practice}
 
 
 def _detector_label(form) -> str:
@@ -146,14 +155,24 @@ def new_study():
                 raise LimenError("choose a bundled layout or upload one")
             path = Path(layouts[key])
             layout = services.validate_layout_file(path, key)
-        n_targets = len(layout.targets)
+        from webapp import design
+
+        diameters = design.parse_diameters(f.get("diameters", ""), layout)
+        placement_rule = f.get("placement") or "psi"
+        if placement_rule not in design.PLACEMENTS:
+            raise LimenError(f"placement rule must be one of {', '.join(design.PLACEMENTS)}")
         study = Study(
             name=name,
             created_by=_current_id(),
             layout_file=str(path),
             layout_name=layout.name,
             m_alternatives=max(t.m_alternatives for t in layout.targets),
-            trials_per_reader=_num(f, "trials_per_reader", int, 1, 100000, "trials per reader", n_targets),
+            trials_per_reader=_num(f, "trials_per_reader", int, 1, 100000, "most scored trials per reader", 600),
+            placement=placement_rule,
+            diameters_json=json.dumps(diameters) if diameters else None,
+            half_width_ln=_num(
+                f, "half_width_ln", float, 0.05, 3.0, "wanted CI half-width (ln)", design.DEFAULT_HALF_WIDTH_LN
+            ),
             seed=_num(f, "seed", int, 0, 2**31 - 1, "randomisation seed", secrets.randbelow(2**31)),
             repeat_fraction=_num(f, "repeat_percent", float, 0, 100, "repeated trials (%)", 0.0) / 100.0,
             n_practice=_num(f, "n_practice", int, 0, 50, "practice trials", 4),
@@ -180,6 +199,9 @@ def new_study():
         n_practice=study.n_practice,
         show_feedback=study.show_feedback,
         observer=study.observer,
+        placement=study.placement,
+        diameters_mm=diameters,
+        half_width_ln=study.half_width_ln,
     )
     s.commit()
     flash("Study created. Add its images, then open it for reading.", "info")
@@ -219,6 +241,7 @@ def study(study_id):
 def study_page(st: Study, status: int = 200, **extra):
     """The study's page (also answering a POST whose outcome it shows: an upload's refused files, an error)."""
     from webapp import progress
+    from webapp.design import PLACEMENT_LABELS, plan_of
 
     notes = json.loads(st_notes) if (st_notes := _notes_of(st)) else []
     rows = (
@@ -226,6 +249,8 @@ def study_page(st: Study, status: int = 200, **extra):
     )
     page = render_template(
         "coordinator/study.html",
+        plan=plan_of(st),
+        placement_labels=PLACEMENT_LABELS,
         study=st,
         progress=rows,
         stalled_minutes=progress.stalled_after(current_app.config).total_seconds() / 60,
@@ -333,20 +358,24 @@ def add_images(study_id):
     if not files:
         raise LimenError("choose at least one image file (DICOM, TIFF, PNG or .npy)")
     known = {im.sha256 for im in st.images}
+    practice = request.form.get("practice") == "on"
     added, skipped, refused = [], [], []
     for fs in files:  # each file accepted or refused on its own: one bad file does not cost the batch
         label = services.safe_label(fs.filename)
         try:
-            a = _add_image(st, fs.stream, fs.filename, detector, known, conv_path, conversion, spacing)
+            a = _add_image(st, fs.stream, fs.filename, detector, known, conv_path, conversion, spacing, practice)
         except LimenError as exc:
             reason = str(exc)
             refused.append({"label": label, "reason": reason.removeprefix(f"{label}: ")})
             continue
         (skipped if a.get("skipped") else added).append(a)
-    audit("add_images", st.id, detector=detector, images=added, conversion=conv_path, refused=refused)
+    audit(
+        "add_images", st.id, detector=detector, images=added, conversion=conv_path, refused=refused, practice=practice
+    )
     db().commit()
     if not refused:
-        flash(f"Added {len(added)} image(s) from detector {detector}.", "info")
+        what = "practice image(s), never scored," if practice else "image(s)"
+        flash(f"Added {len(added)} {what} from detector {detector}.", "info")
         for a in skipped:
             flash(f"{a['label']}: the same image is already in the study; skipped.", "info")
         return redirect(url_for("coordinator.study", study_id=st.id))
@@ -465,6 +494,7 @@ def open_study(study_id):
         raise LimenError("the study has no images yet; add images before opening it")
     if not st.enrolments:
         raise LimenError("no readers are enrolled; choose at least one reader")
+    _check_design(st)  # refuses a design that cannot reach its CI, saying what to change (before any scoring)
     job, _started = current_app.extensions["limen_jobs"].start(
         db(),
         "open_study",
@@ -474,6 +504,17 @@ def open_study(study_id):
         study_id=st.id,
     )
     return redirect(url_for("jobs.page", job_id=job.id))
+
+
+def _check_design(st: Study) -> dict:
+    """The design gate of :mod:`webapp.design` on a draft study (a one-line LimenError saying what to change)."""
+    from scorer.workflow import load_layout
+    from webapp import design
+
+    st.placement = st.placement or "psi"
+    st.half_width_ln = st.half_width_ln or design.DEFAULT_HALF_WIDTH_LN
+    layout = load_layout(services.stored_file(st.layout_file, Path(current_app.config["STORE_DIR"])))
+    return design.check_design(st, layout)
 
 
 @bp.route("/studies/<int:study_id>/close", methods=["POST"])

@@ -9,7 +9,8 @@ Integrity rules the database itself enforces (not only the code):
 * a reader is enrolled in a study at most once;
 * one trial per (study, reader, position in the reader's sequence);
 * **one response per trial** (``responses.trial_id`` is unique): a response submitted twice, or from
-  two tabs at once, is stored once.
+  two tabs at once, is stored once;
+* one adaptive state per (study, reader, detector, diameter) (``adaptive_cells``).
 """
 
 from __future__ import annotations
@@ -30,6 +31,7 @@ from sqlalchemy import (
     UniqueConstraint,
     create_engine,
     event,
+    false,
 )
 from sqlalchemy.orm import (
     DeclarativeBase,
@@ -117,6 +119,18 @@ class Study(Base):
     region_cols: Mapped[int] = mapped_column(Integer, default=0)
     ugy_per_unit: Mapped[float] = mapped_column(Float, default=1.0)  # stored uint16 → linear (∝ air kerma)
     model_trials_csv: Mapped[str | None] = mapped_column(Text, nullable=True)
+    # the model observer's response at every candidate site (the built-in simulated readers read them)
+    model_responses_csv: Mapped[str | None] = mapped_column(Text, nullable=True)
+    # the design (webapp.design): placement rule ("psi", "quest", "constant"; None: a study of an earlier release
+    # with a fixed schedule), the diameters asked for (JSON list; None: every diameter of the layout), the
+    # wanted half-width of each pooled threshold's 95 % CI (ln), and the plan the app made from them at opening
+    placement: Mapped[str | None] = mapped_column(String(16), nullable=True)
+    diameters_json: Mapped[str | None] = mapped_column(Text, nullable=True)
+    half_width_ln: Mapped[float | None] = mapped_column(Float, nullable=True)
+    plan_json: Mapped[str | None] = mapped_column(Text, nullable=True)
+    # one window/level for the whole study (stored units), so no trial's display differs by detector
+    default_window: Mapped[float | None] = mapped_column(Float, nullable=True)
+    default_level: Mapped[float | None] = mapped_column(Float, nullable=True)
     opened_at: Mapped[_dt.datetime | None] = mapped_column(DateTime, nullable=True)
     closed_at: Mapped[_dt.datetime | None] = mapped_column(DateTime, nullable=True)
 
@@ -142,6 +156,8 @@ class StudyImage(Base):
     rows: Mapped[int] = mapped_column(Integer, default=0)
     cols: Mapped[int] = mapped_column(Integer, default=0)
     registration_json: Mapped[str | None] = mapped_column(Text, nullable=True)
+    # a practice image: its regions are shown only in practice trials, never scored
+    practice: Mapped[bool] = mapped_column(Boolean, default=False, server_default=false())
 
     study: Mapped[Study] = relationship(back_populates="images")
 
@@ -162,6 +178,10 @@ class Region(Base):
     row0: Mapped[int] = mapped_column(Integer)
     col0: Mapped[int] = mapped_column(Integer)
     sites_json: Mapped[str] = mapped_column(Text)  # [[row, col], ...] in region pixels
+    # one square tile per candidate site, centred on it (webapp.design.tile_boxes): side in pixels, and the
+    # top-left corner of each site's tile in image pixels ([[row0, col0], ...], in site order)
+    tile_px: Mapped[int | None] = mapped_column(Integer, nullable=True)
+    tiles_json: Mapped[str | None] = mapped_column(Text, nullable=True)
 
     image: Mapped[StudyImage] = relationship()
 
@@ -199,8 +219,16 @@ class Trial(Base):
     region_id: Mapped[int] = mapped_column(ForeignKey("regions.id"))
     practice: Mapped[bool] = mapped_column(Boolean, default=False)
     repeat: Mapped[int] = mapped_column(Integer, default=0)
+    # the sites in the order their tiles are shown (JSON list: screen position → site); None for trials of
+    # studies opened by an earlier release (one region with every site)
+    tile_order: Mapped[str | None] = mapped_column(String(64), nullable=True)
 
     region: Mapped[Region] = relationship()
+
+    @property
+    def order(self) -> list[int] | None:
+        return json.loads(self.tile_order) if self.tile_order else None
+
     response: Mapped["Response | None"] = relationship(back_populates="trial", uselist=False)
 
 
@@ -220,6 +248,22 @@ class Response(Base):
     created_at: Mapped[_dt.datetime] = mapped_column(DateTime, default=utcnow)
 
     trial: Mapped[Trial] = relationship(back_populates="response")
+
+
+class AdaptiveCell(Base):
+    """What one reader's answers in one cell (detector × diameter) say about their threshold there: the JSON state
+    of :mod:`scorer.study.adaptive`, updated with each stored response (``n_trials`` guards the update)."""
+
+    __tablename__ = "adaptive_cells"
+    __table_args__ = (UniqueConstraint("study_id", "reader_id", "detector", "diameter_mm"),)
+
+    id: Mapped[int] = mapped_column(primary_key=True)
+    study_id: Mapped[int] = mapped_column(ForeignKey("studies.id"), index=True)
+    reader_id: Mapped[int] = mapped_column(ForeignKey("users.id"))
+    detector: Mapped[str] = mapped_column(String(100))
+    diameter_mm: Mapped[float] = mapped_column(Float)
+    state_json: Mapped[str] = mapped_column(Text)
+    n_trials: Mapped[int] = mapped_column(Integer, default=0)
 
 
 class ReadingSession(Base):
@@ -401,6 +445,7 @@ def _add_missing_columns(conn) -> None:
 
     from webapp.accounts import name_key
 
+    _add_design_columns(conn)
     cols = {c["name"] for c in inspect(conn).get_columns("users")}
     if "session_generation" not in cols:
         conn.execute(text("ALTER TABLE users ADD COLUMN session_generation INTEGER NOT NULL DEFAULT 0"))
@@ -418,3 +463,37 @@ def _add_missing_columns(conn) -> None:
         owner[key] = name
         conn.execute(text("UPDATE users SET username_key = :k WHERE id = :i"), {"k": key, "i": uid})
     conn.execute(text("CREATE UNIQUE INDEX ix_users_username_key ON users (username_key)"))
+
+
+#: columns added after the first release of each table: (table, column, SQL type, default or None)
+LATER_COLUMNS = (
+    ("studies", "model_responses_csv", "TEXT", None),
+    ("studies", "placement", "VARCHAR(16)", None),
+    ("studies", "diameters_json", "TEXT", None),
+    ("studies", "half_width_ln", "FLOAT", None),
+    ("studies", "plan_json", "TEXT", None),
+    ("studies", "default_window", "FLOAT", None),
+    ("studies", "default_level", "FLOAT", None),
+    ("study_images", "practice", "BOOLEAN", False),
+    ("regions", "tile_px", "INTEGER", None),
+    ("regions", "tiles_json", "TEXT", None),
+    ("trials", "tile_order", "VARCHAR(64)", None),
+)
+
+
+def _add_design_columns(conn) -> None:
+    """Add the study-design columns (:data:`LATER_COLUMNS`) to a database made by an earlier release: its open
+    studies keep their fixed schedules (``studies.placement`` NULL) and their trials show one region with every
+    site (``trials.tile_order`` NULL)."""
+    from sqlalchemy import inspect
+
+    insp = inspect(conn)
+    have = {t: {c["name"] for c in insp.get_columns(t)} for t in {row[0] for row in LATER_COLUMNS}}
+    for table, column, sql_type, default in LATER_COLUMNS:
+        if column in have[table]:
+            continue
+        tail = ""
+        if default is not None:
+            literal = ("true" if default else "false") if conn.dialect.name == "postgresql" else str(int(default))
+            tail = f" NOT NULL DEFAULT {literal}"
+        conn.execute(text(f"ALTER TABLE {table} ADD COLUMN {column} {sql_type}{tail}"))

@@ -17,6 +17,7 @@ from dataclasses import dataclass, field
 from sqlalchemy import func, select
 
 from webapp.models import AuditEntry, ReadingSession, Response, Study, Trial, TrialShown, User, utcnow
+from webapp.placement import reader_totals
 
 SIGN_IN_REFUSALS = ("sign_in_failed", "sign_in_throttled")
 DEFAULT_STALLED_TRIAL_MINUTES = 10.0
@@ -78,6 +79,9 @@ def readers_progress(session, study: Study, wait: _dt.timedelta, now: _dt.dateti
             .group_by(TrialShown.reader_id)
         ).all()
     )
+    planned = reader_totals(study)  # a study placed adaptively: its trials are made as the reader goes
+    if planned is not None:
+        totals = {e.user_id: planned[1] for e in study.enrolments}
     sittings: dict[int, list] = {}
     for rs in session.execute(
         select(ReadingSession).where(ReadingSession.study_id == study.id).order_by(ReadingSession.id)

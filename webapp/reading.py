@@ -1,13 +1,16 @@
 """Reader pages: the display check, the reading screen and its small JSON/binary API.
 
 What a reader's browser receives about a trial: an opaque trial id, whether it is practice, its position
-in the sequence, the region's size, the candidate sites' positions in the region, and the region's linear
-16-bit pixels. Never the image, detector, file, target, contrast, diameter or the site holding the disc —
-the true site is sent (as feedback, when the study allows it) only in the answer to the stored response.
+in the sequence, the number of tiles and their size, the study's own window/level (the same for every trial),
+and the tiles' linear 16-bit pixels in the trial's random screen order (:mod:`webapp.placement`). Never the
+image, detector, file, target, contrast, diameter, where the sites lie on the plate or which tile holds the
+disc — the true position is sent (as feedback, when the study allows it, and in practice) only in the answer to
+the stored response.  Trials of studies opened by an earlier release show one region with every site, as then.
 """
 
 from __future__ import annotations
 
+import json
 import math
 import secrets
 
@@ -27,7 +30,7 @@ from flask_login import current_user
 from sqlalchemy import func, select
 from sqlalchemy.exc import IntegrityError
 
-from webapp import services
+from webapp import placement, services
 from webapp.models import Enrolment, ReadingSession, Region, Response, Study, StudyImage, Trial
 from webapp.security import db, role_required
 
@@ -71,8 +74,9 @@ def _passed_session(study_id: int) -> ReadingSession | None:
     return rs
 
 
-def _counts(study_id: int) -> dict:
-    """Trials and answers of the signed-in reader, practice apart (one query)."""
+def _counts(study_id: int, study: Study | None = None) -> dict:
+    """Trials and answers of the signed-in reader, practice apart (one query).  In a study placed as the reader
+    goes, the totals come from its plan (the trials are made one at a time)."""
     rows = (
         db()
         .execute(
@@ -88,6 +92,10 @@ def _counts(study_id: int) -> dict:
         key = "practice_" if practice else ""
         out[f"{key}total"] += int(n)
         out[f"{key}answered"] += int(answered)
+    st = study if study is not None else db().get(Study, study_id)
+    totals = placement.reader_totals(st) if st is not None else None
+    if totals is not None:
+        out["practice_total"], out["total"] = totals
     return out
 
 
@@ -105,7 +113,7 @@ def home():
         .scalars()
         .all()
     )
-    studies = [{"study": st, **_counts(st.id)} for st in rows]
+    studies = [{"study": st, **_counts(st.id, st)} for st in rows]
     return render_template("reading/home.html", studies=studies)
 
 
@@ -210,7 +218,7 @@ def check_answer(study_id):
 def read(study_id):
     st = _enrolled(study_id)
     if st.status == "closed":
-        return render_template("reading/closed.html", study=st, **_counts(st.id))
+        return render_template("reading/closed.html", study=st, **_counts(st.id, st))
     if _passed_session(study_id) is None:
         return redirect(url_for("reading.check", study_id=study_id))
     return render_template("reading/read.html", study=st)
@@ -220,56 +228,59 @@ def read(study_id):
 @reader_only
 def next_trial(study_id):
     st = _enrolled(study_id)
-    counts = _counts(st.id)
     if st.status != "open":
-        return jsonify(done=True, closed=True, **counts)
-    t = (
-        db()
-        .execute(
-            select(Trial)
-            .outerjoin(Response, Response.trial_id == Trial.id)
-            .where(Trial.study_id == st.id, Trial.reader_id == current_user.id, Response.id.is_(None))
-            .order_by(Trial.seq)
-            .limit(1)
-        )
-        .scalars()
-        .first()
-    )
+        return jsonify(done=True, closed=True, **_counts(st.id, st))
+    if st.placement and _passed_session(study_id) is None:
+        return jsonify(error="pass the display check first"), 428  # trials are placed only for a checked sitting
+    t = placement.next_trial(db(), st, current_user.id)
+    counts = _counts(st.id, st)
     if t is None:
         return jsonify(done=True, closed=False, **counts)
     reg = t.region
-    return jsonify(
+    out = dict(
         done=False,
         trial=t.public_id,
         practice=bool(t.practice),
         number=counts["answered"] + (0 if t.practice else 1),
         practice_number=counts["practice_answered"] + 1 if t.practice else None,
-        rows=st.region_rows,
-        cols=st.region_cols,
-        sites=reg.sites,
-        m=len(reg.sites),
         magnification=st.magnification,
         region_url=url_for("reading.region", public_id=t.public_id),
         response_url=url_for("reading.respond", public_id=t.public_id),
         **counts,
     )
+    order = t.order
+    if order is None:  # a trial of a study opened by an earlier release: one region with every site
+        out.update(rows=st.region_rows, cols=st.region_cols, sites=reg.sites, m=len(reg.sites))
+    else:  # M tiles in the trial's own order, each centred on its site; the study's window/level
+        out.update(
+            tiles=len(order),
+            m=len(order),
+            rows=reg.tile_px,
+            cols=reg.tile_px,
+            window=st.default_window,
+            level=st.default_level,
+        )
+    return jsonify(out)
 
 
 @bp.route("/api/trials/<public_id>/region")
 @reader_only
 def region(public_id):
-    # one query on the hot path: whose trial, is the study open, where is the crop, which stored image
+    # one query on the hot path: whose trial, is the study open, where are the crops, which stored image
     row = (
         db()
         .execute(
             select(
                 Trial.reader_id,
                 Trial.study_id,
+                Trial.tile_order,
                 Study.status,
                 Study.region_rows,
                 Study.region_cols,
                 Region.row0,
                 Region.col0,
+                Region.tile_px,
+                Region.tiles_json,
                 StudyImage.sha256,
             )
             .join(Study, Study.id == Trial.study_id)
@@ -281,14 +292,17 @@ def region(public_id):
     )
     if row is None or row.reader_id != current_user.id or row.status != "open":
         abort(404)
-    body = services.region_bytes(
-        current_app.config["STORE_DIR"], row.sha256, row.study_id, row.row0, row.col0, row.region_rows, row.region_cols
-    )
-    return FlaskResponse(
-        body,
-        mimetype="application/octet-stream",
-        headers={"X-Rows": str(row.region_rows), "X-Cols": str(row.region_cols)},
-    )
+    store = current_app.config["STORE_DIR"]
+    if row.tile_order:
+        order = json.loads(row.tile_order)
+        body = services.tiles_bytes(store, row.sha256, row.study_id, json.loads(row.tiles_json), order, row.tile_px)
+        headers = {"X-Rows": str(row.tile_px), "X-Cols": str(row.tile_px), "X-Tiles": str(len(order))}
+    else:
+        body = services.region_bytes(
+            store, row.sha256, row.study_id, row.row0, row.col0, row.region_rows, row.region_cols
+        )
+        headers = {"X-Rows": str(row.region_rows), "X-Cols": str(row.region_cols)}
+    return FlaskResponse(body, mimetype="application/octet-stream", headers=headers)
 
 
 @bp.route("/api/trials/<public_id>/response", methods=["POST"])
@@ -305,26 +319,29 @@ def respond(public_id):
     data = request.get_json(silent=True)
     if not isinstance(data, dict):
         return jsonify(error="send the response as JSON"), 400
-    m = len(t.region.sites)
+    order = t.order
+    m = len(order) if order else len(t.region.sites)
+    key = "chosen_position" if order else "chosen_site"
     try:
-        site = int(data.get("chosen_site"))
+        choice = int(data.get(key))
         ms = int(data.get("response_ms"))
         zoom = int(data.get("zoom", 1))
     except (TypeError, ValueError):
-        return jsonify(error="chosen_site, response_ms and zoom must be whole numbers"), 400
+        return jsonify(error=f"{key}, response_ms and zoom must be whole numbers"), 400
     window, level = _float(data, "window", 1e-9, 1e6), _float(data, "level", -1e6, 1e6)
-    if not 0 <= site < m:
-        return jsonify(error=f"chosen_site must lie in 0…{m - 1}"), 400
+    if not 0 <= choice < m:
+        return jsonify(error=f"{key} must lie in 0…{m - 1}"), 400
     if not 0 <= ms <= 6 * 3600 * 1000 or window is None or level is None or not 1 <= zoom <= 64:
         return jsonify(error="response_ms, window, level or zoom out of range"), 400
     if t.response is not None:
         return jsonify(error="this trial is already answered", duplicate=True), 409
-    correct = site == t.region.true_site
-    s.add(
-        Response(
-            trial_id=t.id,
-            chosen_site=site,
-            correct=correct,
+    site = order[choice] if order else choice
+    try:
+        resp = placement.record_response(
+            s,
+            t,
+            st,
+            site,
             response_ms=ms,
             window=window,
             level=level,
@@ -332,14 +349,17 @@ def respond(public_id):
             inverted=bool(data.get("inverted", False)),
             session_id=rs.id,
         )
-    )
-    try:
-        s.commit()
     except IntegrityError:  # the same trial answered at the same moment from another tab
         s.rollback()
         return jsonify(error="this trial is already answered", duplicate=True), 409
+    except placement.StaleState:
+        return jsonify(error="the server was busy; the answer was not stored, send it again", retry=True), 503
     out = {"stored": True}
     if t.practice or st.show_feedback:
         # only now, with the response stored, may the truth leave the server
-        out["feedback"] = {"correct": bool(correct), "true_site": int(t.region.true_site)}
+        true_site = int(t.region.true_site)
+        if order:
+            out["feedback"] = {"correct": bool(resp.correct), "true_position": order.index(true_site)}
+        else:
+            out["feedback"] = {"correct": bool(resp.correct), "true_site": true_site}
     return jsonify(out)

@@ -14,7 +14,6 @@ import hashlib
 import io
 import json
 import re
-import secrets
 import threading
 import warnings
 from collections import OrderedDict
@@ -29,11 +28,14 @@ from scorer.errors import LimenError
 IMAGE_SUFFIXES = {".dcm", ".dicom", ".tif", ".tiff", ".png", ".npy"}
 LAYOUT_SUFFIXES = {".toml"}
 U16_MAX = 65535
-EXTRA_EXPORT_COLUMNS = ["window", "level", "timestamp"]
+EXTRA_EXPORT_COLUMNS = ["window", "level", "timestamp", "seq", "tile_order", "chosen_position", "true_position"]
 
 
 def export_columns() -> list[str]:
-    """The responses CSV: every column ``limen analyse`` reads, then window, level and timestamp."""
+    """The responses CSV: every column ``limen analyse`` reads, then window, level, timestamp and what the reader
+    was shown: the trial's place in the reader's sequence, the tile order (the sites in screen order, separated
+    by spaces), and the screen positions chosen and holding the disc (empty for trials of studies opened by an
+    earlier release, which showed one region with every site)."""
     from scorer.study.trials import OPTIONAL_COLUMNS, TRIAL_COLUMNS
 
     return list(TRIAL_COLUMNS) + [c for c in OPTIONAL_COLUMNS if c not in TRIAL_COLUMNS] + EXTRA_EXPORT_COLUMNS
@@ -308,14 +310,17 @@ def _region_boxes(sites_by_key: dict, shape_by_image: dict) -> tuple[int, dict]:
 
 
 def open_study(session, study, store_dir: Path, progress=None) -> list[str]:
-    """Score the study's images with the model observer, cut the reading regions, write the display
-    pixels and build every reader's schedule. Returns notes for the coordinator.
+    """Check the design (:func:`webapp.design.check_design`: refuses, saying what to change), score the study's
+    images with the model observer, cut the reading regions and their tiles, write the display pixels and the
+    study's window/level.  Returns notes for the coordinator.  No schedule is built: each reader's trials are
+    placed as they read (:mod:`webapp.placement`).
 
     ``progress``, if given, is called as ``progress(text, fraction)`` (fraction of the work done, 0–1) before each
     step; the last call comes before the first database write, so a progress writer never waits for this
     session's write lock."""
     from scorer.files import atomic_write_bytes
     from scorer.workflow import LimenWarning, load_conversion, load_image, load_layout, score_files
+    from webapp import design
     from webapp.models import Region
 
     say = progress or (lambda text, fraction=None: None)
@@ -325,12 +330,18 @@ def open_study(session, study, store_dir: Path, progress=None) -> list[str]:
         raise LimenError("no readers are enrolled; choose at least one reader")
     store_dir = Path(store_dir)
     layout = load_layout(stored_file(study.layout_file, store_dir))
+    study.placement = study.placement or "psi"
+    study.half_width_ln = study.half_width_ln or design.DEFAULT_HALF_WIDTH_LN
+    say("planning the trials per reader", 0.01)
+    plan = design.check_design(study, layout)
+    diameters = design.study_diameters(study, layout)
     groups: dict[tuple, list] = {}
     for im in study.images:
         groups.setdefault((im.conversion_file, im.pixel_spacing_mm), []).append(im)
     notes: list[str] = []
-    model_frames, sites_by_key, shape_by_image, by_code, placements = [], {}, {}, {}, {}
+    model_frames, response_frames, sites_by_key, shape_by_image, by_code, placements = [], [], {}, {}, {}, {}
     n_images, n_scored = len(study.images), 0
+    targets = [t for t in layout.targets if float(t.diameter_mm) in diameters]
     for (conv_file, spacing), images in groups.items():
         conversion = load_conversion(stored_file(conv_file, store_dir)) if conv_file else None
         paths = [str(store_dir / im.stored_name) for im in images]
@@ -353,17 +364,23 @@ def open_study(session, study, store_dir: Path, progress=None) -> list[str]:
         )
         notes += [n for n in res.warnings if n not in notes]
         name_to_image = {Path(p).name: im for p, im in zip(paths, images)}
-        tr = res.trials.copy()
-        tr["image"] = [name_to_image[n].code for n in res.trials["image"]]
-        tr["detector"] = [name_to_image[n].detector for n in res.trials["image"]]
-        model_frames.append(tr.rename(columns={"m_alternatives": "n_alternatives"}))
+        for frame, out in ((res.trials, model_frames), (res.responses, response_frames)):
+            fr = frame[frame["diameter_mm"].isin(diameters)].copy()
+            ims = [name_to_image[n] for n in fr["image"]]
+            fr["image"] = [im.code for im in ims]
+            fr["detector"] = [im.detector for im in ims]
+            if out is model_frames:  # the model's trials are scored like the readers': practice images left out
+                fr = fr[[not im.practice for im in ims]]
+                fr = fr.rename(columns={"m_alternatives": "n_alternatives"})
+            out.append(fr)
         for score in res.images:
             im = name_to_image[Path(score.path).name]
-            placements[im.id] = score.placement
+            placements[im.code] = score.placement
             im.registration_json = json.dumps(score.placement.to_dict())
-            for t in layout.targets:
+            for t in targets:
                 sites_by_key[(im.code, t.id)] = score.placement.transform.to_pixel(t.sites)
             by_code[im.code] = (im, conversion, spacing)
+    half = design.tile_half_px(layout, [pl.transform for pl in placements.values()], diameters)
     # the display pixels: linear in air kerma (µGy with a conversion function), one 16-bit scale for the study
     say("writing display pixels", 0.8)
     arrays = {}
@@ -382,20 +399,24 @@ def open_study(session, study, store_dir: Path, progress=None) -> list[str]:
     for code, px in arrays.items():
         im = by_code[code][0]
         u16 = np.clip(np.round(np.maximum(px, 0.0) / scale), 0, U16_MAX).astype("<u2")
+        arrays[code] = u16
         path = display_path(store_dir, im.sha256, study.id)
         path.parent.mkdir(parents=True, exist_ok=True)
         buf = io.BytesIO()
         np.save(buf, u16)
         atomic_write_bytes(path, buf.getvalue())
-    del arrays
     size, boxes = _region_boxes(sites_by_key, shape_by_image)
     study.region_rows = study.region_cols = size
-    study.m_alternatives = int(max(t.m_alternatives for t in layout.targets))
-    targets = {t.id: t for t in layout.targets}
-    say("building reader schedules", 0.9)
-    regions = []
+    study.m_alternatives = int(max(t.m_alternatives for t in targets))
+    by_id = {t.id: t for t in targets}
+    say("cutting the tiles", 0.9)
+    regions, scored_tiles = [], []
     for (code, tid), (r0, c0, sites) in boxes.items():
-        t = targets[tid]
+        t = by_id[tid]
+        h = half[float(t.diameter_mm)]
+        tiles = design.tile_boxes(sites_by_key[(code, tid)], h, shape_by_image[code], by_code[code][0].label)
+        if not by_code[code][0].practice:
+            scored_tiles += [arrays[code][a : a + 2 * h + 1, b : b + 2 * h + 1] for a, b in tiles]
         regions.append(
             Region(
                 study_id=study.id,
@@ -407,62 +428,37 @@ def open_study(session, study, store_dir: Path, progress=None) -> list[str]:
                 row0=r0,
                 col0=c0,
                 sites_json=json.dumps(sites),
+                tile_px=2 * h + 1,
+                tiles_json=json.dumps(tiles),
             )
         )
+    study.default_window, study.default_level = design.default_window_level(scored_tiles)
+    del arrays, scored_tiles
     session.add_all(regions)
     session.flush()
-    model = pd.concat(model_frames, ignore_index=True)
-    study.model_trials_csv = model.to_csv(index=False)
-    build_schedules(session, study, regions)
+    study.model_trials_csv = pd.concat(model_frames, ignore_index=True).to_csv(index=False)
+    keep = ["image", "detector", "target", "diameter_mm", "contrast", "m_alternatives", "site", "is_signal", "response"]
+    study.model_responses_csv = pd.concat(response_frames, ignore_index=True)[keep].to_csv(index=False)
+    study.plan_json = json.dumps(plan)
+    notes.append(
+        f"plan: {plan['n_scored']} scored trials per reader ({', '.join(_cell_text(r) for r in plan['diameters'])} "
+        f"per detector), {plan['n_repeats']} repeats, {plan['n_practice']} practice, placed by "
+        f"{design.PLACEMENT_LABELS[plan['method']]}"
+    )
     return notes
 
 
-def build_schedules(session, study, regions) -> None:
-    """Every enrolled reader's sequence: practice first, then the study's trials in the reader's own random
-    order, then the repeats (a second reading of a random subset, for intra-reader agreement).
+def _cell_text(row: dict) -> str:
+    return f"{row['n_trials']} at {row['diameter_mm']:g} mm"
 
-    The subset of regions read (when fewer trials per reader than regions) and the repeated subset are the
-    same for every reader (so readers can be compared item by item); only the order differs.
-    """
-    from webapp.models import Trial
 
-    rng = np.random.default_rng([int(study.seed), 1])
-    ordered = sorted(regions, key=lambda r: (r.image_id, r.target))
-    n = min(int(study.trials_per_reader), len(ordered))
-    if n < 1:
-        raise LimenError("trials per reader must be at least 1")
-    main = [ordered[i] for i in np.sort(rng.choice(len(ordered), size=n, replace=False))]
-    n_rep = int(round(float(study.repeat_fraction) * n))
-    repeats = [main[i] for i in np.sort(rng.choice(n, size=n_rep, replace=False))] if n_rep else []
-    # practice: the most visible target of each diameter (largest contrast) on random images
-    practice = []
-    if study.n_practice:
-        best: dict[float, list] = {}
-        for r in ordered:
-            best.setdefault(r.diameter_mm, []).append(r)
-        easy = [max(v, key=lambda r: r.contrast) for _, v in sorted(best.items(), reverse=True)]
-        pool = [r for r in ordered if any(r.target == e.target for e in easy)]
-        pick = rng.choice(len(pool), size=min(int(study.n_practice), len(pool)), replace=False)
-        practice = [pool[i] for i in pick]
-    rows = []
-    for enrol in sorted(study.enrolments, key=lambda e: e.user_id):
-        r_rng = np.random.default_rng([int(study.seed), 2, int(enrol.user_id)])
-        seq = [(r, True, 0) for r in practice]
-        seq += [(main[i], False, 0) for i in r_rng.permutation(len(main))]
-        seq += [(repeats[i], False, 1) for i in r_rng.permutation(len(repeats))]
-        for k, (region, is_practice, rep) in enumerate(seq):
-            rows.append(
-                Trial(
-                    public_id=secrets.token_hex(12),
-                    study_id=study.id,
-                    reader_id=enrol.user_id,
-                    seq=k,
-                    region_id=region.id,
-                    practice=is_practice,
-                    repeat=rep,
-                )
-            )
-    session.add_all(rows)
+def tiles_bytes(store_dir: Path, sha256: str, study_id: int, tiles, order, size: int) -> bytes:
+    """The tiles of one trial in screen order (``order``: screen position → site), each ``size`` × ``size``
+    linear 16-bit pixels, little-endian, row-major, one after the other."""
+    path = display_path(store_dir, sha256, study_id)
+    arr = PIXELS.get(path)
+    boxes = [tiles[k] for k in order]
+    return b"".join(np.ascontiguousarray(arr[r : r + size, c : c + size], dtype="<u2").tobytes() for r, c in boxes)
 
 
 # =========================================================================== display check
@@ -510,6 +506,8 @@ def responses_frame(session, study) -> pd.DataFrame:
             Response.level,
             Response.created_at,
             Region.sites_json,
+            Trial.seq,
+            Trial.tile_order,
         )
         .join(Trial, Response.trial_id == Trial.id)
         .join(User, Trial.reader_id == User.id)
@@ -540,6 +538,8 @@ def responses_frame(session, study) -> pd.DataFrame:
             "level",
             "timestamp",
             "sites_json",
+            "seq",
+            "tile_json",
         ],
     )
     df["correct"] = df["correct"].astype(int)
@@ -549,6 +549,14 @@ def responses_frame(session, study) -> pd.DataFrame:
     df["window"] = df["window"].astype(float) * scale
     df["level"] = df["level"].astype(float) * scale
     df["timestamp"] = [t.isoformat(timespec="milliseconds") + "Z" if t is not None else "" for t in df["timestamp"]]
+    orders = [json.loads(x) if x else None for x in df["tile_json"]]
+    df["tile_order"] = [" ".join(map(str, o)) if o else "" for o in orders]
+    df["chosen_position"] = pd.array(
+        [o.index(int(c)) if o else None for o, c in zip(orders, df["chosen_site"])], dtype="Int64"
+    )
+    df["true_position"] = pd.array(
+        [o.index(int(c)) if o else None for o, c in zip(orders, df["true_site"])], dtype="Int64"
+    )
     return df[export_columns()]
 
 

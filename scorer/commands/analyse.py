@@ -36,16 +36,48 @@ from scorer.reports import dumps
     default=None,
     help="Threshold proportion correct (default: halfway between chance and 1).",
 )
+@click.option(
+    "--min-trials",
+    type=click.IntRange(1, 100000),
+    default=10,
+    show_default=True,
+    help="Fewest trials per reader behind a threshold; fewer: reported as not estimable.",
+)
+@click.option(
+    "--max-ci-ratio",
+    type=click.FloatRange(1.0, None, min_open=True),
+    default=10.0,
+    show_default=True,
+    help="Widest 95 % CI accepted (upper / lower); wider: reported as not estimable.",
+)
 @options.seed()
 @options.json_output()
 @options.out_folder("Write analysis.json, CSV tables and report.html here.")
 @options.replace()
-def analyse(responses, model_file, by, reference, n_boot, criterion_pc, seed, as_json, out_dir, replace):
-    """Per-reader and pooled contrast-detail curves, human/model factor, group comparison, agreement."""
+def analyse(
+    responses,
+    model_file,
+    by,
+    reference,
+    n_boot,
+    criterion_pc,
+    min_trials,
+    max_ci_ratio,
+    seed,
+    as_json,
+    out_dir,
+    replace,
+):
+    """Per-reader and pooled contrast-detail curves, human/model factor, group comparison, agreement.
+
+    A threshold without an interior maximum, on too few trials, with too wide a CI or above 100 % contrast is
+    reported as not estimable (with the reason and its trials), never as a number.
+    """
     from scorer.workflow import image_content_hash as file_sha256  # SHA-256 of a file's bytes
     from scorer.files import OutputFolder
     from scorer.study import analyse_study
     from scorer.study.alternatives import m_alternatives_of
+    from scorer.study.estimability import EstimabilityRule
     from scorer.workflow import load_model_table, load_trials
 
     trials = load_trials(responses)
@@ -78,6 +110,7 @@ def analyse(responses, model_file, by, reference, n_boot, criterion_pc, seed, as
             reference=reference,
             progress=progress,
             model_responses=model_responses,
+            rule=EstimabilityRule(min_trials=min_trials, max_ci_ratio=max_ci_ratio),
         )
     finally:
         bar.close()
@@ -108,12 +141,17 @@ def _text_summary(a) -> str:
         lines = [f"{len(a.readers)} reader(s), {design}; criterion Pc = {crit} respectively"]
     else:
         lines = [f"{len(a.readers)} reader(s), {a.m_alternatives}-AFC, criterion Pc = {a.criterion_pc:.4g}"]
-    pc = a.pooled_curves
+    from scorer.study.estimability import not_estimable_text
+
+    pc = a.public_tables()["pooled_curves"]
     if len(pc):
         lines.append("")
         lines.append(f"{a.by:<14}{'diam mm':>8}{'C_T %':>9}{'95 % CI %':>19}{'readers':>9}")
         bounds = False
         for r in pc.to_dict("records"):
+            if r.get("estimable") is False:
+                lines.append(f"{str(r[a.by]):<14}{r['diameter_mm']:>8g}  {not_estimable_text(r)}")
+                continue
             ci = (
                 f"{100 * r['ci_low']:>9.3g} – {100 * r['ci_high']:<7.3g}"
                 if _finite(r["ci_low"], r["ci_high"])
@@ -126,9 +164,10 @@ def _text_summary(a) -> str:
             lines.append(f"{str(r[a.by]):<14}{r['diameter_mm']:>8g}{ct}{ci}{int(r['n_readers']):>9d}")
         if bounds:
             lines.append("* a bound, not an estimate: every trial correct, or all at chance")
-    if len(a.comparison):
+    comp = a.public_tables()["comparison"]
+    if len(comp):
         lines.append("")
-        lines.extend(a.comparison["sentence"])
+        lines.extend(comp["sentence"])
     hm = a.human_model
     if hm:
         lines.append("")

@@ -91,10 +91,14 @@ def threshold_flags(rec: Mapping) -> list[str]:
     """Flags of a threshold record (a ThresholdPoint's dict, a reader-curve row, a verdict's dict).
 
     Reads ``threshold_contrast``, ``ci_low``, ``ci_high`` and, when present, ``censored``, ``extrapolated``,
-    ``converged`` (False: a fit at its search bound), ``offered_min``/``offered_max``.
+    ``converged`` (False: a fit at its search bound), ``estimable`` (False: not an estimate by the study's
+    rule, :mod:`scorer.study.estimability`), ``offered_min``/``offered_max``.
     """
     converged = rec.get("converged", True)
     estimable = not (converged is False or (isinstance(converged, float) and converged == 0.0))
+    judged = rec.get("estimable", True)
+    if judged is not None and not (isinstance(judged, float) and math.isnan(judged)) and not bool(judged):
+        estimable = False
     return contrast_flags(
         rec.get("threshold_contrast"),
         rec.get("ci_low"),

@@ -16,6 +16,7 @@ import pandas as pd
 from scorer.errors import LimenError  # noqa: E402
 from scorer.files import atomic_write_text  # noqa: E402
 from scorer.observer.flags import capped_percent, legend as flag_legend, text as flag_text, threshold_flags
+from scorer.study.estimability import not_estimable_text  # noqa: E402
 from scorer.reports.html import (
     READABLE,
     display_records,
@@ -43,6 +44,7 @@ def curves_figure(a, level) -> str:
     by = a.by
     fig, ax = plt.subplots(figsize=(6.4, 4.6))
     rc = a.reader_curves[a.reader_curves[by] == level]
+    rc = rc[rc["estimable"]] if "estimable" in rc.columns else rc  # a not-estimable threshold is never drawn
     for i, (_reader, g) in enumerate(rc.groupby("reader")):
         g = g.sort_values("diameter_mm")
         ax.plot(
@@ -55,6 +57,10 @@ def curves_figure(a, level) -> str:
             label="readers" if i == 0 else None,
         )
     pc = a.pooled_curves[a.pooled_curves[by] == level] if len(a.pooled_curves) else pd.DataFrame()
+    missing = []
+    if len(pc) and "estimable" in pc.columns:
+        missing = sorted(pc.loc[~pc["estimable"], "diameter_mm"])
+        pc = pc[pc["estimable"]]
     if len(pc):
         pc = pc.sort_values("diameter_mm")
         y = pc["threshold_contrast"].to_numpy() * 100
@@ -75,13 +81,15 @@ def curves_figure(a, level) -> str:
                 label="pooled, flagged (extrapolated or CI above 100 %, capped)",
             )
     mc = a.model_curves[a.model_curves[by] == level] if len(a.model_curves) else pd.DataFrame()
+    if len(mc) and "estimable" in mc.columns:
+        mc = mc[mc["estimable"]]
     for obs, g in mc.groupby("reader") if len(mc) else []:
         g = g.sort_values("diameter_mm")
         ax.plot(g["diameter_mm"], g["threshold_contrast"] * 100, "s--", color="#b5541c", label=f"model {obs}")
     hm = a.human_model
     if hm and hm.get("per_diameter") and hm.get("factor") is not None:
         per = pd.DataFrame(hm["per_diameter"])
-        per = per[per[by] == level].sort_values("diameter_mm")
+        per = per[(per[by] == level) & per["human_equivalent_threshold"].notna()].sort_values("diameter_mm")
         if len(per):
             ax.plot(
                 per["diameter_mm"],
@@ -93,6 +101,30 @@ def curves_figure(a, level) -> str:
             )
     ax.set_xscale("log")
     ax.set_yscale("log")
+    if missing:  # pooled thresholds that are not estimable: marked at the top, never plotted as a value
+        if not ax.has_data():
+            ax.set_ylim(0.1, 100)
+        ax.plot(
+            missing,
+            [0.93] * len(missing),
+            "x",
+            color="#b5541c",
+            ms=8,
+            mew=2,
+            transform=ax.get_xaxis_transform(),
+            label="pooled: not estimable",
+        )
+        for d in missing:
+            ax.annotate(
+                "not estimable",
+                (d, 0.93),
+                xycoords=ax.get_xaxis_transform(),
+                xytext=(0, -12),
+                textcoords="offset points",
+                ha="center",
+                fontsize=7,
+                color="#b5541c",
+            )
     plain_log_ticks(ax)
     ax.set_xlabel("disc diameter (mm)")
     ax.set_ylabel("threshold contrast (%)")
@@ -105,7 +137,9 @@ def curves_figure(a, level) -> str:
 def forest_figure(a) -> str:
     plt = _plt()
     comp = a.comparison
-    fig, ax = plt.subplots(figsize=(6.4, 0.6 + 0.45 * len(comp)))
+    if "estimable" in comp.columns:
+        comp = comp[comp["estimable"]]  # the table below says which rows are not estimable
+    fig, ax = plt.subplots(figsize=(6.4, 0.6 + 0.45 * max(len(comp), 1)))
     labels = [f"{r.level} / {r.reference}, {r.diameter_mm:g} mm" for r in comp.itertuples()]
     yy = np.arange(len(comp))[::-1]
     ax.errorbar(
@@ -147,28 +181,50 @@ def _table(df: pd.DataFrame, cols, left=(), ci_percent: bool = True) -> str:
 
 
 def _display(df: pd.DataFrame, cols, ci_percent: bool):
-    """Rows in % with readable headings; a censored threshold shows as '> highest offered' with no CI."""
+    """Rows in % with readable headings; a censored threshold shows as '> highest offered' with no CI; a
+    not-estimable one as 'not estimable (reason; N trials)' with no number at all."""
     rows, heads = display_records(
         _records(df, cols), [c for c in cols if df is not None and c in df.columns], ci_percent=ci_percent
     )
-    recs = _records(
-        df, cols + ["threshold_contrast", "ci_low", "ci_high", "converged", "censored", "offered_min", "offered_max"]
-    )
+    more = ["threshold_contrast", "ci_low", "ci_high", "converged", "censored", "offered_min", "offered_max"]
+    more += ["estimable", "not_estimable", "n_trials"]
+    recs = _records(df, list(dict.fromkeys(cols + more)))
     for row, rec in zip(rows, recs):
+        if ci_percent and "threshold_contrast" in cols:
+            row["flags"] = flag_text(threshold_flags(rec))
         side = rec.get("censored")
+        if rec.get("estimable") is False:
+            for h in ("threshold (%)", "ratio", "factor"):
+                if h in row:
+                    row[h] = not_estimable_text(rec)
+            if side in ("above", "below") and "threshold (%)" in row and _censored_bound(rec):
+                # the contrasts shown bound it (a fact of the data, not the fitted value)
+                row["threshold (%)"] = f"{_censored_bound(rec)}; {row['threshold (%)']}"
+            for h in ("95 % CI low (%)", "95 % CI high (%)", "95 % CI low", "95 % CI high", "p value", "p adjusted"):
+                if h in row:
+                    row[h] = "—"
+            continue
         if ci_percent and "95 % CI high (%)" in row:
             row["95 % CI high (%)"] = capped_percent(rec.get("ci_high"))
-        if side in ("above", "below") and "threshold (%)" in row:
-            bound = rec["offered_max"] if side == "above" else rec["offered_min"]
-            row["threshold (%)"] = f"{'>' if side == 'above' else '<'} {100 * bound:.3g} (censored)"
+        if side in ("above", "below") and "threshold (%)" in row and _censored_bound(rec):
+            row["threshold (%)"] = _censored_bound(rec)
             for h in ("95 % CI low (%)", "95 % CI high (%)"):
                 if h in row:
                     row[h] = "—"
-        if ci_percent and "threshold_contrast" in cols:
-            row["flags"] = flag_text(threshold_flags(rec))
     if ci_percent and "threshold_contrast" in cols and rows:
         heads = heads + ["flags"]
     return rows, heads
+
+
+def _censored_bound(rec: dict) -> str:
+    """'> 45 (censored)': the contrast shown that bounds a censored threshold, in %; "" when unknown."""
+    side = rec.get("censored")
+    bound = rec.get("offered_max") if side == "above" else rec.get("offered_min")
+    try:
+        ok = bound is not None and np.isfinite(float(bound))
+    except (TypeError, ValueError):
+        ok = False
+    return f"{'>' if side == 'above' else '<'} {100 * float(bound):.3g} (censored)" if ok else ""
 
 
 def _records(df: pd.DataFrame, cols) -> list[dict]:
@@ -252,6 +308,11 @@ def human_factor_html(hm: dict, by: str) -> str:
             for k in ("factor", "trend factor", "trend ci low", "trend ci high"):
                 if isinstance(r.get(k), float):
                     r[k] = f"{r[k]:.3g}"
+            if rec.get("estimable") is False:  # left out of the factor: the reason, never the number
+                r["factor"] = not_estimable_text(rec)
+                for h in heads:
+                    if r.get(h) is None:
+                        r[h] = "—"
             r["flags"] = flag_text(rec.get("flags") or [])
             r["note"] = rec.get("note", "")
         table = table_html(rows, heads + ["flags", "note"], left=[by, "flags", "note"])
@@ -278,12 +339,13 @@ def write_outputs(a, out_dir, meta: dict | None = None) -> dict:
     except OSError as exc:
         raise LimenError(f"cannot create the output folder ({exc.strerror or exc})", out) from None
     paths = {}
+    pub = a.public_tables()  # a not-estimable threshold is never written as a number
     tables = {
-        "reader_curves.csv": a.reader_curves,
-        "pooled_curves.csv": a.pooled_curves,
-        "model_curves.csv": a.model_curves,
+        "reader_curves.csv": pub["reader_curves"],
+        "pooled_curves.csv": pub["pooled_curves"],
+        "model_curves.csv": pub["model_curves"],
         "between_reader_cv.csv": a.cv,
-        "comparison.csv": a.comparison,
+        "comparison.csv": pub["comparison"],
     }
     if a.human_model:
         rows = [
@@ -328,7 +390,16 @@ def report_html(a, meta: dict | None = None) -> str:
         summary += (
             "<p><strong>Notes</strong></p><ul>" + "".join(f"<li>{html.escape(n)}</li>" for n in a.notes) + "</ul>"
         )
+    rule = getattr(a, "rule", None)
+    if rule is not None:
+        summary += (
+            f"<p>A threshold is reported only where it is estimable: an interior maximum of the likelihood, at "
+            f"least {rule.min_trials} trials per reader, a 95 % CI spanning at most a factor of "
+            f"{rule.max_ci_ratio:g}, and neither threshold nor CI above {100 * rule.max_contrast:g} % contrast. "
+            "Elsewhere the tables say <em>not estimable</em>, with the reason and the trials it had.</p>"
+        )
     sections.append(("Study", summary))
+    pub = a.public_tables()
     levels = sorted(a.reader_curves[by].unique(), key=str) if len(a.reader_curves) else []
     figs = "".join(
         f"<figure>{curves_figure(a, lv)}<figcaption>Contrast-detail curves, {html.escape(by)} "
@@ -355,7 +426,7 @@ def report_html(a, meta: dict | None = None) -> str:
             "<p>Population-averaged threshold from a GEE whose mean is the linear-observer M-AFC "
             "function Pc<sub>M</sub>(k·C) (guess rate 1/M built in), reader clusters, bias-reduced "
             "robust standard errors, t interval with readers − 1 degrees of freedom.</p>"
-            + _table(a.pooled_curves, cols + ["n_readers"], left=["reader", by, "note"]),
+            + _table(pub["pooled_curves"], cols + ["n_readers"], left=["reader", by, "note"]),
         )
     )
     sections.append(
@@ -376,7 +447,7 @@ def report_html(a, meta: dict | None = None) -> str:
             "Per-reader thresholds (bootstrap over images within reader)",
             _details(
                 f"Each reader's threshold per {html.escape(by)} and diameter ({n_rows} rows)",
-                _table(a.reader_curves, cols, left=["reader", by, "note"]),
+                _table(pub["reader_curves"], cols, left=["reader", by, "note"]),
             ),
         )
     )
@@ -386,19 +457,23 @@ def report_html(a, meta: dict | None = None) -> str:
                 "Model observer",
                 _details(
                     f"The model observer's thresholds ({len(a.model_curves)} rows)",
-                    _table(a.model_curves, cols, left=["reader", by, "note"]),
+                    _table(pub["model_curves"], cols, left=["reader", by, "note"]),
                 ),
             )
         )
     if len(a.comparison):
-        sents = "<ul>" + "".join(f"<li>{html.escape(s)}</li>" for s in a.comparison["sentence"]) + "</ul>"
+        comp = pub["comparison"]
+        sents = "<ul>" + "".join(f"<li>{html.escape(s)}</li>" for s in comp["sentence"]) + "</ul>"
+        forest = (
+            f"<figure>{forest_figure(a)}</figure>" if "estimable" not in comp.columns or comp["estimable"].any() else ""
+        )
         sections.append(
             (
                 f"{by.capitalize()} comparison (mixed model on log thresholds, Holm-adjusted)",
                 sents
-                + f"<figure>{forest_figure(a)}</figure>"
+                + forest
                 + _table(
-                    a.comparison,
+                    comp,
                     [
                         "level",
                         "reference",

@@ -21,7 +21,12 @@ Methods (each documented, with its references, where it is computed):
   agreement on log thresholds;
 * group comparison (detector B vs A; :mod:`scorer.study.group_comparison`): linear mixed model on log10
   per-reader thresholds with reader random intercepts (statsmodels MixedLM), Holm-adjusted p-values (Holm 1979);
-* agreement (:mod:`scorer.study.agreement`).
+* agreement (:mod:`scorer.study.agreement`);
+* which thresholds are estimates at all (:mod:`scorer.study.estimability`): a cell without an interior maximum,
+  with too few trials, or with too wide an interval (or one reaching above 100 % contrast) is reported as not
+  estimable, with its reason and trial count, never as a number.  The statistics that pool per-reader
+  thresholds (between-reader CV, group comparison, Bland–Altman) keep every fit with an interior maximum, as
+  before: they carry each reader's uncertainty, and dropping the widest intervals would select on noise.
 
 References
 ----------
@@ -47,6 +52,7 @@ from scorer.observer.flags import text as flag_text, threshold_flags
 from scorer.observer.mafc import halfway_criterion
 from scorer.resources import check_limit
 from scorer.study.alternatives import criterion_at, m_alternatives_of, m_at
+from scorer.study.estimability import EstimabilityRule, judge_curves, public_curves
 from scorer.study.group_comparison import compare_groups
 from scorer.study.human_factor import human_model_factor
 from scorer.study.pooled_gee import pooled_curves
@@ -71,11 +77,24 @@ class Analysis:
     notes: list = field(default_factory=list)
     seed: int | None = None
     n_boot: int = 0
+    rule: EstimabilityRule = field(default_factory=EstimabilityRule)
+
+    def public_tables(self) -> dict[str, pd.DataFrame]:
+        """The curve and comparison tables as every output shows them: the numbers of a not-estimable row
+        blanked (:func:`scorer.study.estimability.public_curves`), its reason and trial count kept."""
+        return {
+            "reader_curves": public_curves(self.reader_curves),
+            "pooled_curves": public_curves(self.pooled_curves),
+            "model_curves": public_curves(self.model_curves),
+            "comparison": _public_comparison(self.comparison),
+        }
 
     def curves_records(self) -> list[dict]:
         cols = ["reader", self.by, "diameter_mm", "threshold_contrast", "ci_low", "ci_high"]
         out = []
-        for df in (self.reader_curves, self.pooled_curves, self.model_curves):
+        pub = self.public_tables()
+        for key in ("reader_curves", "pooled_curves", "model_curves"):
+            df = pub[key]
             if len(df):
                 extra = [
                     c
@@ -87,6 +106,8 @@ class Analysis:
                         "censored",
                         "offered_min",
                         "offered_max",
+                        "estimable",
+                        "not_estimable",
                     )
                     if c in df.columns
                 ]
@@ -97,8 +118,9 @@ class Analysis:
 
     def to_json(self) -> dict:
         comp = []
-        if len(self.comparison):
-            for r in self.comparison.to_dict("records"):
+        table = _public_comparison(self.comparison)
+        if len(table):
+            for r in table.to_dict("records"):
                 comp.append(
                     {
                         self.by if self.by != "detector" else "detector": r["level"],
@@ -112,6 +134,8 @@ class Analysis:
                         "n_readers": r["n_readers"],
                         "method": r["method"],
                         "sentence": r["sentence"],
+                        "estimable": bool(r.get("estimable", True)),
+                        "not_estimable": r.get("not_estimable", ""),
                     }
                 )
 
@@ -131,6 +155,7 @@ class Analysis:
             "notes": self.notes,
             "seed": self.seed,
             "n_boot": self.n_boot,
+            "estimability": self.rule.to_json(),
         }
 
 
@@ -139,6 +164,49 @@ def add_flags(df: pd.DataFrame) -> pd.DataFrame:
     if len(df):
         df["flags"] = [flag_text(threshold_flags(r)) for r in df.to_dict("records")]
     return df
+
+
+def _public_comparison(comp: pd.DataFrame) -> pd.DataFrame:
+    if comp is None or not len(comp) or "estimable" not in comp.columns:
+        return comp
+    out = comp.copy()
+    bad = ~out["estimable"].astype(bool)
+    for c in ("ratio", "ci_low", "ci_high", "log10_ratio", "se_log10", "p_value", "p_adjusted"):
+        if c in out.columns:
+            out[c] = out[c].astype(float)
+            out.loc[bad, c] = np.nan
+    if "sentence" in out.columns:
+        out.loc[bad, "sentence"] = [
+            f"{r['level']} vs {r['reference']} at {r['diameter_mm']:g} mm: not estimable ({r['not_estimable']})"
+            for r in out[bad].to_dict("records")
+        ]
+    return out
+
+
+def _judge_comparison(comp: pd.DataFrame, pooled: pd.DataFrame, by: str, rule: EstimabilityRule) -> pd.DataFrame:
+    """Mark a comparison row not estimable when either group's pooled threshold at that diameter is not, or
+    when the ratio's interval is missing or spans more than the rule's factor."""
+    if comp is None or not len(comp):
+        return comp
+    bad_cells = []
+    if pooled is not None and len(pooled) and "estimable" in pooled.columns:
+        bad_cells = [(r[by], float(r["diameter_mm"])) for r in pooled.to_dict("records") if not r["estimable"]]
+    why_all = []
+    for r in comp.to_dict("records"):
+        why = []
+        for grp in (r["level"], r["reference"]):
+            if any(g == grp and np.isclose(d, r["diameter_mm"]) for g, d in bad_cells):
+                why.append(f"pooled threshold of {grp} not estimable")
+        lo, hi = r.get("ci_low"), r.get("ci_high")
+        if not (np.isfinite(lo) and np.isfinite(hi) and lo > 0):
+            why.append("no confidence interval")
+        elif hi / lo > rule.max_ci_ratio:
+            why.append(f"95 % CI spans a factor of {hi / lo:.3g} (more than {rule.max_ci_ratio:g})")
+        why_all.append("; ".join(why))
+    out = comp.copy()
+    out["not_estimable"] = why_all
+    out["estimable"] = [not w for w in why_all]
+    return out
 
 
 def bootstrap_block(trials: pd.DataFrame, model: pd.DataFrame | None, by: str, n_methods: int = 1) -> tuple[int, str]:
@@ -203,13 +271,15 @@ def analyse_study(
     ci: float = 0.95,
     progress=None,
     model_responses: pd.DataFrame | None = None,
+    rule: EstimabilityRule | None = None,
 ) -> Analysis:
     """Run every analysis of a reader study; degrade with notes when the study is too small.
 
     ``trials`` and ``model`` must already be validated (:func:`validate_trials`).  ``model_responses``: the
     model observer's per-site responses (``limen score``'s responses table); with them the human/model factor
     is measured for the d′ method too, and ``model`` defaults to the model's decisions on them.
-    ``progress`` is an optional callable(str) told which step runs.
+    ``progress`` is an optional callable(str) told which step runs.  ``rule`` says when a threshold counts as
+    estimated (:class:`~scorer.study.estimability.EstimabilityRule`; its defaults when None).
     """
     if model is None and model_responses is not None:
         from scorer.observer.npw import decide
@@ -260,17 +330,30 @@ def analyse_study(
             "Simulated readers: these trials come from Limen's documented observer model "
             "(scorer/study/reader_model.py), not from people; the figures illustrate the method only."
         )
+    rule = rule or EstimabilityRule()
     say("per-reader fits")
-    rc = reader_curves(trials, m, rng, n_boot, by, criterion_pc, ci)
+    rc = judge_curves(reader_curves(trials, m, rng, n_boot, by, criterion_pc, ci), rule, ci_expected=n_boot > 0)
     n_bad = int((~rc["converged"]).sum())
     if n_bad:
         notes.append(
             f"{n_bad} per-reader threshold(s) have no interior maximum (all correct or at chance); "
             "they are bounds, not estimates"
         )
+    n_ne = int((rc["converged"] & ~rc["estimable"]).sum())
+    if n_ne:
+        notes.append(
+            f"{n_ne} of {len(rc)} per-reader threshold(s) have an interior maximum but are not estimable on their "
+            "own (reasons in their rows): they are not reported, but the between-reader CV, the comparison and the "
+            "Bland–Altman plot, which weigh every reader's fit with its own uncertainty, still use them (leaving "
+            "out the noisiest readers would bias those statistics)"
+        )
     say("pooled curves")
     pc_df, pn = pooled_curves(trials, m, by, criterion_pc, ci)
+    pc_df = judge_curves(pc_df, rule)
     notes += pn
+    if len(pc_df) and (~pc_df["estimable"]).any():
+        cells = ", ".join(f"{r[by]} {r['diameter_mm']:g} mm" for r in pc_df[~pc_df["estimable"]].to_dict("records"))
+        notes.append(f"pooled threshold not estimable for {cells} (reasons in their rows)")
     cv = between_reader_cv(rc, by)
     if cv.empty:
         n_r = trials["reader"].nunique()
@@ -282,6 +365,7 @@ def analyse_study(
         )
     say(f"{by} comparison")
     comp, cn = compare_groups(rc, by, reference, ci, trials=trials, m=m, n_boot=n_boot, rng=rng)
+    comp = _judge_comparison(comp, pc_df, by, rule)
     if len(comp) and n_boot < 2:
         notes.append(
             f"{by} comparison without the image-sampling variance (needs bootstrap resamples): "
@@ -292,9 +376,21 @@ def analyse_study(
     hm = None
     if model is not None:
         say("model observer")
-        mc = model_curves(model, m, rng, n_boot, by, criterion_pc)
+        mc = judge_curves(model_curves(model, m, rng, n_boot, by, criterion_pc), rule, ci_expected=n_boot > 0)
         say("human/model factor")
-        hm = human_model_factor(trials, model, m, rng, n_boot, by, criterion_pc, ci, rc, model_responses)
+        hm = human_model_factor(
+            trials,
+            model,
+            m,
+            rng,
+            n_boot,
+            by,
+            criterion_pc,
+            ci,
+            rc,
+            model_responses,
+            exclude=_factor_exclusions(pc_df, mc, by),
+        )
         if hm:
             for entry in hm.get("by_method", {}).values():
                 if entry.get("n_excluded"):
@@ -323,4 +419,17 @@ def analyse_study(
         notes=notes,
         seed=seed,
         n_boot=n_boot,
+        rule=rule,
     )
+
+
+def _factor_exclusions(pooled: pd.DataFrame, model: pd.DataFrame, by: str) -> dict:
+    """(group, diameter) → reason, for the cells whose pooled human or model threshold is not estimable."""
+    out = {}
+    for df, who in ((pooled, "pooled readers"), (model, "model observer")):
+        if df is None or not len(df) or "estimable" not in df.columns:
+            continue
+        for r in df[~df["estimable"]].to_dict("records"):
+            key = (r[by], float(r["diameter_mm"]))
+            out[key] = "; ".join(x for x in (out.get(key), f"{who}: {r['not_estimable']}") if x)
+    return out

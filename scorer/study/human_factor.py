@@ -20,8 +20,9 @@ factor is then the readers' geometric-mean factor; one fit pooled over readers o
 few % higher, more the more they differ).  The overall factor is the geometric mean over cells whose fits are
 estimable and inside the search range; its percentile interval is widened for the few readers a study has
 (:func:`few_readers_widening`).  A cell whose human or model fit sits at a search bound (every trial correct,
-or all at chance) gives only a bound on its factor and is left out, and how many were left out is said.  No
-usable cell: no factor.
+or all at chance) gives only a bound on its factor and is left out, and how many were left out is said.  So is a
+cell whose pooled human or model threshold is not estimable by the study's rule (``exclude``,
+:mod:`scorer.study.estimability`): its row says why, without numbers.  No usable cell: no factor.
 
 *Dependence on diameter.*  The weighted least-squares slope of log factor on log diameter over the usable
 cells (weights 1/bootstrap variance), with its bootstrap standard error; a two-sided z test (p < 0.05) says
@@ -73,6 +74,7 @@ def human_model_factor(
     ci: float = 0.95,
     reader_curves_df: pd.DataFrame | None = None,
     model_responses: pd.DataFrame | None = None,
+    exclude: dict | None = None,
 ) -> dict | None:
     """Human/model threshold factor per method, per group × diameter and overall, with bootstrap CIs.
 
@@ -80,6 +82,10 @@ def human_model_factor(
     trials (count method) and, with ``model_responses``, its d′-method threshold.  Returns the count-method
     result of the first model observer at the top level, every method in ``by_method`` and every observer
     in ``by_observer`` (each with its own ``by_method``); see the module docstring.
+
+    ``exclude`` maps (group, diameter) to the reason the cell's human or model threshold is not estimable
+    (:mod:`scorer.study.estimability`): such a cell gets a row saying so, without numbers, and stays out of the
+    overall factor (counted with the cells at a search bound).
     """
     readers_all = np.unique(human["reader"])
     groups = sorted(set(human[by]), key=str)
@@ -110,7 +116,18 @@ def human_model_factor(
                 continue
             data = mo if method == "count" else mr
             by_method[method] = _factor_one_method(
-                human_cells, data, method, str(obs), by, m, criterion_pc, images_of, wi_all, ci, reader_curves_df
+                human_cells,
+                data,
+                method,
+                str(obs),
+                by,
+                m,
+                criterion_pc,
+                images_of,
+                wi_all,
+                ci,
+                reader_curves_df,
+                exclude or {},
             )
         entry = dict(by_method["count"])
         entry["by_method"] = by_method
@@ -147,6 +164,7 @@ def _human_cell(gh, grp, diam, m_all, criterion_pc, readers_all, images_of, wr_a
     k_geo = float(np.exp(np.mean(np.log(kr))))
     cell = {"m": m, "pc": p, "d_t": d_t, "k": k_geo, "at_bound": bool(br.any()), "levels": levels}
     cell.update(n_readers=int(R), n_images=int(len(np.unique(gh["image"]))), n_readers_at_bound=int(br.sum()))
+    cell["n_trials"] = int(len(gh))
     with np.errstate(divide="ignore"):
         cell["log_t_readers"] = dict(zip(readers.tolist(), np.log(d_t / kr).tolist()))
     if len(wr_all):
@@ -194,11 +212,17 @@ def _model_cell(gm: pd.DataFrame, method: str, cell: dict, images: np.ndarray, w
 
 
 def _factor_one_method(
-    human_cells, data, method, obs, by, m_all, criterion_pc, images_of, wi_all, ci, reader_curves_df
+    human_cells, data, method, obs, by, m_all, criterion_pc, images_of, wi_all, ci, reader_curves_df, exclude
 ) -> dict:
     per, samples, notes, excluded = [], [], [], []
     per_reader: dict = {}  # reader → log(reader's threshold / model's) over the usable cells
     for (grp, diam), cell in human_cells.items():
+        why = exclude.get((grp, float(diam)))
+        if why:  # the pooled human or the model threshold is not estimable: no numbers, the reason
+            row = _not_estimable_row(by, grp, diam, method, why, cell)
+            per.append(row)
+            excluded.append(row)
+            continue
         sel = (data[by] == grp) & np.isclose(data["diameter_mm"], diam)
         gm = data[sel]
         if gm.empty:
@@ -229,7 +253,10 @@ def _factor_one_method(
             "ci_high": hi,
             "n_readers": cell["n_readers"],
             "n_images": cell["n_images"],
+            "n_trials": cell["n_trials"],
             "used": not reason,
+            "estimable": not reason,
+            "not_estimable": reason.removeprefix("not estimable (").removesuffix(")") if reason else "",
             "note": reason,
             "flags": [NOT_ESTIMABLE] if reason else ([ABOVE_100] if max(t_h, t_m) > 1 else []),
         }
@@ -291,7 +318,7 @@ def _factor_one_method(
             f, flo, fhi = trend_at(trend, r["diameter_mm"], ci)
             r["trend_factor"], r["trend_ci_low"], r["trend_ci_high"] = f, flo, fhi
         t_m = r["model_threshold"]
-        ok = np.isfinite(t_m)
+        ok = t_m is not None and np.isfinite(t_m)
         r["human_equivalent_threshold"] = t_m * f if ok else None
         r["human_equivalent_ci_low"] = t_m * flo if ok else None
         r["human_equivalent_ci_high"] = t_m * fhi if ok else None
@@ -323,6 +350,25 @@ def _factor_one_method(
         "bland_altman": ba,
         "note": "; ".join(note),
     }
+
+
+def _not_estimable_row(by, grp, diam, method: str, why: str, cell: dict) -> dict:
+    """A per-diameter row of a cell left out because its pooled human or model threshold is not estimable
+    (:mod:`scorer.study.estimability`): no numbers, the reason and the trials."""
+    row = {by: grp, "diameter_mm": float(diam), "method": method}
+    for c in ("human_threshold", "model_threshold", "factor", "ci_low", "ci_high", "human_equivalent_threshold"):
+        row[c] = None
+    row.update(
+        n_readers=cell["n_readers"],
+        n_images=cell["n_images"],
+        n_trials=cell["n_trials"],
+        used=False,
+        estimable=False,
+        not_estimable=why,
+        note=f"not estimable: {why}",
+        flags=[NOT_ESTIMABLE],
+    )
+    return row
 
 
 def few_readers_widening(est, lo, hi, log_samples, per_reader: dict, ci: float = 0.95):

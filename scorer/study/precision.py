@@ -64,6 +64,7 @@ class PrecisionPlan:
     n_sim: int
     seed: int
     notes: list = field(default_factory=list)
+    max_per_level: int | None = None
 
     def to_json(self) -> dict:
         step = max(1, len(self.curve) // 100)
@@ -82,6 +83,7 @@ class PrecisionPlan:
             "reader_lapse": self.reader_lapse,
             "n_sim": self.n_sim,
             "seed": self.seed,
+            "max_per_level": self.max_per_level,
             "curve": rows.to_dict("records"),
             "notes": self.notes,
             "generator": "simulated linear-observer readers, scorer/study/precision.py",
@@ -107,6 +109,7 @@ def trials_for_precision(
     criterion_pc: float | None = None,
     prior_threshold: float | None = None,
     prior_sd_ln: float | None = None,
+    max_per_level: int | None = None,
     progress=None,
 ) -> PrecisionPlan:
     """Trials per reader per cell for a ``ci`` interval of half-width ``half_width_ln`` in ln threshold.
@@ -122,6 +125,9 @@ def trials_for_precision(
     n_readers : None for the per-reader plan; R for the pooled plan (mean ln threshold of R readers).
     assurance : share of simulated readers that must reach the half-width (per-reader plan).
     n_max, n_sim, seed : most trials tried, simulated readers, seed.
+    max_per_level : trials a reader can have at one level of the cell (a study shows a reader each region once:
+        the images of the detector × the targets at that contrast); None for no limit.  The rule then chooses
+        among the levels with trials left, as the web app does, and a reader who has used every level stops.
     progress : optional callable(done, total).
     """
     if not (np.isfinite(half_width_ln) and half_width_ln > 0):
@@ -136,6 +142,8 @@ def trials_for_precision(
         raise LimenError(f"a pooled plan needs at least 2 readers, got {n_readers}")
     if int(n_max) < 1 or int(n_sim) < 2:
         raise LimenError("n_max must be at least 1 and n_sim at least 2")
+    if max_per_level is not None and int(max_per_level) < 1:
+        raise LimenError(f"max_per_level must be at least 1, got {max_per_level}")
     s0 = new_state(
         levels,
         m_alternatives,
@@ -166,7 +174,11 @@ def trials_for_precision(
     a = 0.5 * (1 - ci)
     tq = sps.t.ppf(0.5 + ci / 2, int(n_readers) - 1) if n_readers else float("nan")
     rec, first_ok = [], None
+    if max_per_level is not None:
+        n_max = min(n_max, int(max_per_level) * ln_lv.size)  # every region of the cell shown once
     for n in range(1, n_max + 1):
+        if max_per_level is not None:
+            allowed = counts < int(max_per_level)
         idx = _choose(method, lp, counts, t, rng, allowed)
         correct = rng.random(n_sim) < p_true[rows_idx, idx]
         lp = lp + np.where(correct[:, None], t.log_p[idx], t.log_q[idx])
@@ -198,12 +210,15 @@ def trials_for_precision(
             if n_readers
             else f"{ci:.0%} CI of ±{half_width_ln:g} (ln) for {assurance:.0%} of readers"
         )
-        notes.append(f"{n_max} trials per reader per cell with the {method} rule do not give a {what}")
+        cap = f" ({max_per_level} per contrast level: the regions of the cell)" if max_per_level is not None else ""
+        notes.append(f"{n_max} trials per reader per cell{cap} with the {method} rule do not give a {what}")
         if n_readers and tq * sigma_b / math.sqrt(int(n_readers)) >= half_width_ln:
             notes.append(
                 f"readers differ (CV {cv_between:.0%}): with {n_readers} readers no number of trials narrows the "
                 f"pooled CI below ±{tq * sigma_b / math.sqrt(int(n_readers)):.2f} (ln); add readers"
             )
+        elif max_per_level is not None and n_max == int(max_per_level) * ln_lv.size:
+            notes.append("add images (each reader sees each region once), or widen the wanted interval")
         else:
             notes.append(
                 "add trials, widen the wanted interval, use an adaptive rule, or use a plate with more contrast "
@@ -225,4 +240,5 @@ def trials_for_precision(
         n_sim=n_sim,
         seed=int(seed),
         notes=notes,
+        max_per_level=int(max_per_level) if max_per_level is not None else None,
     )

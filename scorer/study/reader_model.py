@@ -305,6 +305,44 @@ def draw_readers(
     )
 
 
+def response_calibration(resp: np.ndarray, sig: np.ndarray, contrast: np.ndarray) -> tuple[float, float]:
+    """(g, σ_ext) of one detector × diameter from the model observer's responses (K targets × M sites, ``sig``
+    marking the disc's site, ``contrast`` per target): σ_ext the spread of the non-signal sites about their mean
+    within each target (M − 1 of them, so × (M − 1)/(M − 2) for the mean removed), g the mean signal-site minus
+    non-signal response per unit contrast, fitted through the origin."""
+    m = resp.shape[1]
+    bg = np.where(sig, np.nan, resp)
+    diff = resp[sig] - np.nanmean(bg, axis=1)
+    if m > 2:
+        sigma_ext = float(np.sqrt(np.nanmean((bg - np.nanmean(bg, axis=1, keepdims=True)) ** 2) * (m - 1) / (m - 2)))
+    else:  # one non-signal site: the spread of the signal − non-signal difference about its fit, over √2
+        c = np.asarray(contrast, float)
+        sigma_ext = float(np.std(diff - c * (diff @ c) / (c @ c)) / np.sqrt(2))
+    gain = float(diff @ contrast / (contrast @ contrast))
+    return gain, sigma_ext
+
+
+def simulated_choice(
+    resp: np.ndarray,
+    sig: np.ndarray,
+    contrast: float,
+    gain: float,
+    sigma_ext: float,
+    reader,
+    rng: np.random.Generator,
+) -> int:
+    """The site one invented reader (a row of :func:`draw_readers`) chooses in one trial: the model observer's
+    response at each site with the signal lowered to the reader's efficiency and fresh internal noise added,
+    t_j = response_j − (1 − √e)·g·C·δ_j + σ·σ_ext·ν_j; the largest, or on a lapse a site at random (the model
+    of :func:`readers_from_responses`, one trial at a time)."""
+    resp, sig = np.asarray(resp, float), np.asarray(sig, bool)
+    if rng.random() < float(reader.lapse):
+        return int(rng.integers(resp.size))
+    shift = (1.0 - np.sqrt(float(reader.efficiency))) * gain * float(contrast)
+    t = resp - sig * shift + float(reader.internal_noise) * sigma_ext * rng.standard_normal(resp.size)
+    return int(np.argmax(t))
+
+
 def readers_from_responses(
     responses: pd.DataFrame, readers: pd.DataFrame, rng: np.random.Generator, n_repeats: int = 1
 ) -> pd.DataFrame:
@@ -338,10 +376,7 @@ def readers_from_responses(
         resp = g["response"].to_numpy().reshape(len(keys), m)
         sig = g["is_signal"].to_numpy(bool).reshape(len(keys), m)
         contrast = g["contrast"].to_numpy().reshape(len(keys), m)[:, 0]
-        bg = np.where(sig, np.nan, resp)
-        sigma_ext = float(np.sqrt(np.nanmean((bg - np.nanmean(bg, axis=1, keepdims=True)) ** 2) * (m - 1) / (m - 2)))
-        diff = resp[sig] - np.nanmean(bg, axis=1)
-        gain = float(diff @ contrast / (contrast @ contrast))
+        gain, sigma_ext = response_calibration(resp, sig, contrast)
         true_site = np.argmax(sig, axis=1)
         images = np.array([k[0] for k in keys])
         targets = np.array([k[1] for k in keys])

@@ -27,7 +27,12 @@
     }).then(function (buf) { return new Uint16Array(buf); });
   }
 
-  /* ------------------------------------------------------------------ the canvas viewer */
+  /* ------------------------------------------------------------------ the canvas viewer
+     Shows K panels side by side. A trial of an M-alternative study is M tiles, one per candidate site, each
+     centred on its site, in the trial's own random order (the server's): a frame with four ticks points at
+     each tile's centre and its number sits below it, all outside the image, in CSS-sized type so they read at
+     1x. The display check (and trials of studies opened by earlier releases) is one panel with its sites
+     marked by arcs. */
   function Viewer(pixelsCanvas, overlayCanvas) {
     this.canvas = pixelsCanvas;
     this.overlay = overlayCanvas;
@@ -36,17 +41,20 @@
     this.off = document.createElement("canvas");
     this.lut = new Uint8ClampedArray(65536);
     this.window = 1000; this.level = 500; this.invert = false; this.zoom = 1; this.baseZoom = 1;
-    this.sites = []; this.selected = -1; this.marks = {};
+    this.sites = []; this.selected = -1; this.marks = {}; this.panels = 1; this.tiles = false;
   }
 
-  Viewer.prototype.setImage = function (data, rows, cols) {
-    this.data = data; this.rows = rows; this.cols = cols;
-    this.off.width = cols; this.off.height = rows;
-    this.image = this.off.getContext("2d").createImageData(cols, rows);
+  /* data: panels x rows x cols values; tiles: one choice per panel (true) or sites inside one panel (false) */
+  Viewer.prototype.setImage = function (data, rows, cols, panels, tiles) {
+    this.data = data; this.rows = rows; this.cols = cols; this.panels = panels || 1; this.tiles = !!tiles;
+    this.off.width = cols * this.panels; this.off.height = rows;
+    this.image = this.off.getContext("2d").createImageData(cols * this.panels, rows);
   };
 
+  Viewer.prototype.choices = function () { return this.tiles ? this.panels : this.sites.length; };
+
   Viewer.prototype.autoWindow = function () {
-    // robust centre and spread of the region: median and the 2nd–98th percentile range
+    // robust centre and spread of the region: median and the 2nd-98th percentile range
     var n = this.data.length, step = Math.max(1, Math.floor(n / 20000)), s = [];
     for (var i = 0; i < n; i += step) { s.push(this.data[i]); }
     s.sort(function (a, b) { return a - b; });
@@ -64,26 +72,44 @@
     }
   };
 
+  /* layout in device pixels: tiles of cols*zoom, gaps and a label strip that do not scale with zoom */
+  Viewer.prototype.geom = function () {
+    var dpr = window.devicePixelRatio || 1, z = this.zoom, t = this.tiles;
+    var g = { dpr: dpr, z: z, tw: this.cols * z, th: this.rows * z,
+              pad: t ? Math.round(14 * dpr) : 0, gap: t ? Math.round(26 * dpr) : 0, lab: t ? Math.round(24 * dpr) : 0 };
+    g.W = 2 * g.pad + this.panels * g.tw + (this.panels - 1) * g.gap;
+    g.H = 2 * g.pad + g.th + g.lab;
+    g.x = function (k) { return g.pad + k * (g.tw + g.gap); };
+    return g;
+  };
+
   Viewer.prototype.draw = function () {
     if (!this.data) { return; }
     this.buildLut();
-    var px = this.image.data, d = this.data, lut = this.lut;
-    for (var i = 0, j = 0; i < d.length; i++, j += 4) {
-      var g = lut[d[i]];
-      px[j] = g; px[j + 1] = g; px[j + 2] = g; px[j + 3] = 255;
+    var px = this.image.data, d = this.data, lut = this.lut, rows = this.rows, cols = this.cols, K = this.panels;
+    // panel k's pixel (r, c) goes to column k*cols + c of the off-screen strip
+    for (var k = 0, i = 0; k < K; k++) {
+      for (var r = 0; r < rows; r++) {
+        var j = 4 * (r * cols * K + k * cols);
+        for (var c = 0; c < cols; c++, i++, j += 4) {
+          var gv = lut[d[i]];
+          px[j] = gv; px[j + 1] = gv; px[j + 2] = gv; px[j + 3] = 255;
+        }
+      }
     }
     this.off.getContext("2d").putImageData(this.image, 0, 0);
-    var dpr = window.devicePixelRatio || 1, z = this.zoom;
-    // canvas backing store in device pixels: one image pixel = z device pixels
-    var w = this.cols * z, h = this.rows * z;
-    if (this.canvas.width !== w || this.canvas.height !== h) {
-      this.canvas.width = w; this.canvas.height = h;
-      this.overlay.width = w; this.overlay.height = h;
-      this.canvas.style.width = (w / dpr) + "px"; this.canvas.style.height = (h / dpr) + "px";
-      this.overlay.style.width = (w / dpr) + "px"; this.overlay.style.height = (h / dpr) + "px";
+    var g = this.geom();
+    if (this.canvas.width !== g.W || this.canvas.height !== g.H) {
+      this.canvas.width = g.W; this.canvas.height = g.H;
+      this.overlay.width = g.W; this.overlay.height = g.H;
+      this.canvas.style.width = (g.W / g.dpr) + "px"; this.canvas.style.height = (g.H / g.dpr) + "px";
+      this.overlay.style.width = (g.W / g.dpr) + "px"; this.overlay.style.height = (g.H / g.dpr) + "px";
     }
     this.ctx.imageSmoothingEnabled = false;
-    this.ctx.drawImage(this.off, 0, 0, w, h);
+    this.ctx.clearRect(0, 0, g.W, g.H);
+    for (k = 0; k < K; k++) {
+      this.ctx.drawImage(this.off, k * cols, 0, cols, rows, g.x(k), g.pad, g.tw, g.th);
+    }
     this.drawOverlay();
   };
 
@@ -97,20 +123,42 @@
     return isFinite(best) ? 0.38 * best : 20;
   };
 
+  Viewer.prototype.colour = function (k) {
+    var mark = this.marks[k];
+    return mark === "true" ? "rgba(127,183,126,0.95)" : (mark === "wrong" ? "rgba(199,116,107,0.95)"
+      : (k === this.selected ? "rgba(95,168,160,0.95)" : "rgba(175,180,186,0.75)"));
+  };
+
   Viewer.prototype.drawOverlay = function () {
-    var c = this.octx, z = this.zoom, r = this.ringRadius() * z, dpr = window.devicePixelRatio || 1;
+    var c = this.octx, g = this.geom(), dpr = g.dpr;
     c.clearRect(0, 0, this.overlay.width, this.overlay.height);
-    c.font = Math.round(12 * dpr) + "px system-ui, sans-serif";
     c.textAlign = "center"; c.textBaseline = "middle";
-    for (var k = 0; k < this.sites.length; k++) {
-      var y = (this.sites[k][0] + 0.5) * z, x = (this.sites[k][1] + 0.5) * z;
-      var mark = this.marks[k];
-      c.lineWidth = (k === this.selected || mark ? 2 : 1) * dpr;
-      c.strokeStyle = mark === "true" ? "rgba(127,183,126,0.95)" : (mark === "wrong" ? "rgba(199,116,107,0.95)"
-        : (k === this.selected ? "rgba(95,168,160,0.95)" : "rgba(175,180,186,0.7)"));
+    if (this.tiles) {
+      c.font = "600 " + Math.round(15 * dpr) + "px system-ui, sans-serif";
+      for (var k = 0; k < this.panels; k++) {
+        var x0 = g.x(k), y0 = g.pad, on = k === this.selected || this.marks[k];
+        var off = Math.round(4 * dpr), tick = Math.round(7 * dpr), cx = x0 + g.tw / 2, cy = y0 + g.th / 2;
+        c.strokeStyle = this.colour(k); c.lineWidth = (on ? 3 : 1) * dpr;
+        c.strokeRect(x0 - off, y0 - off, g.tw + 2 * off, g.th + 2 * off);
+        c.lineWidth = 2 * dpr;
+        c.beginPath();   // ticks outside the frame point at the tile's centre row and column (the site)
+        c.moveTo(cx, y0 - off - tick); c.lineTo(cx, y0 - off);
+        c.moveTo(cx, y0 + g.th + off); c.lineTo(cx, y0 + g.th + off + tick);
+        c.moveTo(x0 - off - tick, cy); c.lineTo(x0 - off, cy);
+        c.moveTo(x0 + g.tw + off, cy); c.lineTo(x0 + g.tw + off + tick, cy);
+        c.stroke();
+        c.fillStyle = this.colour(k);
+        c.fillText(String(k + 1), cx, y0 + g.th + off + tick + g.lab / 2);
+      }
+      return;
+    }
+    var z = g.z, r = this.ringRadius() * z;
+    c.font = Math.round(12 * dpr) + "px system-ui, sans-serif";
+    for (var s = 0; s < this.sites.length; s++) {
+      var y = (this.sites[s][0] + 0.5) * z + g.pad, x = (this.sites[s][1] + 0.5) * z + g.pad;
+      var colour = this.colour(s), width = (s === this.selected || this.marks[s] ? 2 : 1) * dpr;
       // four short arcs leave the site's centre and its surroundings untouched; a dark edge keeps the
       // marks legible on bright and dark noise alike
-      var colour = c.strokeStyle, width = c.lineWidth;
       for (var pass = 0; pass < 2; pass++) {
         c.strokeStyle = pass ? colour : "rgba(20,21,23,0.55)";
         c.lineWidth = pass ? width : width + 2 * dpr;
@@ -119,20 +167,36 @@
         }
       }
       c.lineWidth = 3 * dpr; c.strokeStyle = "rgba(20,21,23,0.7)";
-      c.strokeText(String(k + 1), x + r * 0.95, y - r * 0.95);
+      c.strokeText(String(s + 1), x + r * 0.95, y - r * 0.95);
       c.fillStyle = colour;
-      c.fillText(String(k + 1), x + r * 0.95, y - r * 0.95);
+      c.fillText(String(s + 1), x + r * 0.95, y - r * 0.95);
     }
   };
 
+  /* each choice's box on the canvas, in device pixels: [x, y, width, height] of its tile (the whole panel when
+     the sites share one) */
+  Viewer.prototype.boxes = function () {
+    var g = this.geom(), out = [];
+    for (var k = 0; k < this.panels; k++) { out.push([g.x(k), g.pad, g.tw, g.th]); }
+    return out;
+  };
+
+  /* the choice under a click: the tile (its frame and label count) or the nearest site within reach */
   Viewer.prototype.siteAt = function (evt) {
-    var rect = this.canvas.getBoundingClientRect();
-    var col = (evt.clientX - rect.left) / rect.width * this.cols;
-    var row = (evt.clientY - rect.top) / rect.height * this.rows;
+    var rect = this.canvas.getBoundingClientRect(), g = this.geom();
+    var x = (evt.clientX - rect.left) / rect.width * this.canvas.width;
+    var y = (evt.clientY - rect.top) / rect.height * this.canvas.height;
+    if (this.tiles) {
+      for (var k = 0; k < this.panels; k++) {
+        if (x >= g.x(k) - g.gap / 2 && x < g.x(k) + g.tw + g.gap / 2 && y >= 0 && y <= g.H) { return k; }
+      }
+      return -1;
+    }
+    var col = (x - g.pad) / g.z, row = (y - g.pad) / g.z;
     var best = -1, bestD = Infinity, r = this.ringRadius() * 1.3;
-    for (var k = 0; k < this.sites.length; k++) {
-      var d = Math.hypot(this.sites[k][0] + 0.5 - row, this.sites[k][1] + 0.5 - col);
-      if (d < bestD) { bestD = d; best = k; }
+    for (var s = 0; s < this.sites.length; s++) {
+      var d = Math.hypot(this.sites[s][0] + 0.5 - row, this.sites[s][1] + 0.5 - col);
+      if (d < bestD) { bestD = d; best = s; }
     }
     return bestD <= r ? best : -1;
   };
@@ -181,7 +245,7 @@
     function load() {
       v.selected = -1; confirmBtn.disabled = true;
       fetchPixels(root.dataset.patternUrl + "?t=" + Date.now()).then(function (data) {
-        v.setImage(data, size, size);
+        v.setImage(data, size, size, 1, false);
         v.window = 65535; v.level = 32767.5;   // fixed: stored grey levels shown as they are
         v.draw();
         root.dataset.ready = String(Date.now());
@@ -212,18 +276,64 @@
     load();
   }
 
+  /* ------------------------------------------------------------------ requests that survive a bad moment
+     A request that fails on the way (network down, server restarting, 502/503/504) is sent again after a
+     growing pause (0.5 s doubling to 8 s) while the page says "reconnecting"; nothing the reader did is lost.
+     A response sent again is stored once: the server answers the second copy with 409 "already answered". */
+  function retrying(send, onWait) {
+    var delay = 500;
+    function attempt() {
+      return send().then(function (r) {
+        if (r.status === 502 || r.status === 503 || r.status === 504) { throw new Error("server busy (" + r.status + ")"); }
+        return r;
+      }).catch(function (err) {
+        if (err && err.fatal) { throw err; }
+        onWait(true, delay);
+        return new Promise(function (resolve) { window.setTimeout(resolve, delay); }).then(function () {
+          delay = Math.min(8000, delay * 2);
+          return attempt();
+        });
+      });
+    }
+    return attempt().then(function (r) { onWait(false); return r; });
+  }
+
+  function fetchPixelsRaw(url) {
+    return fetch(url, { credentials: "same-origin" }).then(function (r) {
+      if (r.status >= 500) { return { status: r.status }; }
+      if (!r.ok) { var e = new Error("region request failed (" + r.status + ")"); e.fatal = true; throw e; }
+      return r.arrayBuffer().then(function (buf) { return { status: r.status, data: new Uint16Array(buf) }; });
+    });
+  }
+
   /* ------------------------------------------------------------------ reading page */
   function runReader(root) {
     var v = new Viewer(document.getElementById("pixels"), document.getElementById("overlay"));
     var confirmBtn = document.getElementById("confirm"), trial = null, shownAt = 0, busy = false;
     var userWL = null;      // the reader's window/level carries over from trial to trial until reset
+    var base = null;        // the study's own window/level: W/L are shown relative to it, the same for every trial
 
+    function waiting(on, delay) {
+      root.classList.toggle("reconnecting", !!on);
+      if (on) { setStatus("Reconnecting… (trying again in " + Math.round(delay / 100) / 10 + " s)", "bad"); root.dataset.reconnecting = "1"; }
+      else if (root.dataset.reconnecting) { delete root.dataset.reconnecting; setStatus("Connected again.", "good"); }
+    }
     function showWL() {
-      document.getElementById("wl-window").textContent = Math.round(v.window);
-      document.getElementById("wl-level").textContent = Math.round(v.level);
+      if (base) {
+        document.getElementById("wl-window").textContent = "×" + (v.window / base.window).toFixed(2);
+        var dl = (v.level - base.level) / base.window;
+        document.getElementById("wl-level").textContent = (dl >= 0 ? "+" : "−") + Math.abs(dl).toFixed(2);
+      } else {
+        document.getElementById("wl-window").textContent = Math.round(v.window);
+        document.getElementById("wl-level").textContent = Math.round(v.level);
+      }
       document.getElementById("wl-zoom").textContent = v.zoom + "×";
       document.getElementById("wl-invert").textContent = v.invert ? "on" : "off";
       document.getElementById("choice").textContent = v.selected >= 0 ? String(v.selected + 1) : "none";
+      if (v.data) { root.dataset.boxes = JSON.stringify(v.boxes()); }
+    }
+    function resetWL() {
+      if (base) { v.window = base.window; v.level = base.level; } else { v.autoWindow(); }
     }
     function changed() { userWL = { window: v.window, level: v.level }; showWL(); }
     function pick(k) {
@@ -240,7 +350,7 @@
     }
     function next() {
       busy = true; confirmBtn.disabled = true;
-      fetchJSON(root.dataset.nextUrl).then(function (r) {
+      retrying(function () { return fetchJSON(root.dataset.nextUrl); }, waiting).then(function (r) {
         if (r.status !== 200) { setStatus(r.data.error || "cannot load the next trial", "bad"); return null; }
         if (r.data.done) {
           root.classList.add("hidden");
@@ -250,15 +360,18 @@
         trial = r.data;
         progress(trial);
         document.getElementById("max-key").textContent = String(trial.m);
-        return fetchPixels(trial.region_url).then(function (data) {
-          v.setImage(data, trial.rows, trial.cols);
-          v.sites = trial.sites; v.selected = -1; v.marks = {};
+        return retrying(function () { return fetchPixelsRaw(trial.region_url); }, waiting).then(function (px) {
+          var tiles = !!trial.tiles;
+          v.setImage(px.data, trial.rows, trial.cols, tiles ? trial.tiles : 1, tiles);
+          v.sites = tiles ? [] : trial.sites; v.selected = -1; v.marks = {};
+          base = (trial.window && trial.level !== undefined) ? { window: trial.window, level: trial.level } : null;
           v.baseZoom = trial.magnification || 1;
           if (v.zoom < v.baseZoom) { v.zoom = v.baseZoom; }
-          if (userWL) { v.window = userWL.window; v.level = userWL.level; } else { v.autoWindow(); }
-          v.draw(); showWL(); setStatus("");
+          if (userWL) { v.window = userWL.window; v.level = userWL.level; } else { resetWL(); }
+          v.draw(); showWL(); if (!root.dataset.reconnecting) { setStatus(""); }
           shownAt = performance.now(); busy = false;
-          root.dataset.sites = JSON.stringify(trial.sites);   // for assistive tools and the browser tests
+          root.dataset.m = String(trial.m);   // for assistive tools and the browser tests
+          root.dataset.sites = JSON.stringify(tiles ? [] : trial.sites);
           root.dataset.ready = trial.trial;
         });
       }).catch(function (err) { setStatus(err.message, "bad"); });
@@ -266,17 +379,19 @@
     function submit() {
       if (!trial || busy || v.selected < 0) { return; }
       busy = true; confirmBtn.disabled = true; delete root.dataset.ready;
-      var body = { chosen_site: v.selected, response_ms: Math.round(performance.now() - shownAt),
+      var body = { response_ms: Math.round(performance.now() - shownAt),
                    window: v.window, level: v.level, zoom: v.zoom, inverted: v.invert };
-      fetchJSON(trial.response_url, body).then(function (r) {
-        if (r.status === 409 && r.data.duplicate) { next(); return; }     // already stored (another tab)
+      body[trial.tiles ? "chosen_position" : "chosen_site"] = v.selected;
+      retrying(function () { return fetchJSON(trial.response_url, body); }, waiting).then(function (r) {
+        if (r.status === 409 && r.data.duplicate) { next(); return; }     // already stored (a resend, another tab)
         if (r.status !== 200) { setStatus(r.data.error || "the response was not stored", "bad"); busy = false; confirmBtn.disabled = false; return; }
         var fb = r.data.feedback;
         if (fb) {
-          v.marks = {}; v.marks[fb.true_site] = "true";
+          var right = trial.tiles ? fb.true_position : fb.true_site;
+          v.marks = {}; v.marks[right] = "true";
           if (!fb.correct) { v.marks[v.selected] = "wrong"; }
           v.drawOverlay();
-          setStatus(fb.correct ? "Correct." : "Not this time: the disc was at site " + (fb.true_site + 1) + ".",
+          setStatus(fb.correct ? "Correct." : "Not this time: the disc was at " + (trial.tiles ? "tile " : "site ") + (right + 1) + ".",
                     fb.correct ? "good" : "bad");
           window.setTimeout(next, 900);
         } else { next(); }
@@ -285,12 +400,12 @@
     v.attachMouse(pick, changed, true);
     confirmBtn.addEventListener("click", submit);
     document.getElementById("reset").addEventListener("click", function () {
-      userWL = null; v.autoWindow(); v.invert = false; v.zoom = v.baseZoom; v.draw(); showWL();
+      userWL = null; resetWL(); v.invert = false; v.zoom = v.baseZoom; v.draw(); showWL();
     });
     document.addEventListener("keydown", function (e) {
       if (!trial) { return; }
       var k = parseInt(e.key, 10), step = v.window * 0.08;
-      if (k >= 1 && k <= v.sites.length) { pick(k - 1); e.preventDefault(); return; }
+      if (k >= 1 && k <= v.choices()) { pick(k - 1); e.preventDefault(); return; }
       switch (e.key) {
         case "Enter": case " ": submit(); break;
         case "ArrowLeft": v.window = Math.max(2, v.window / 1.12); v.draw(); changed(); break;

@@ -1,0 +1,438 @@
+"""The reader study's design (issue 18): practice from its own pool, tiles in a random order, nothing that
+differs by detector but pixels, adaptive placement kept in the database, the design gate, and the demo study
+read by the built-in simulated readers giving an estimable pooled threshold at every diameter it asks for.
+
+Statistical checks: Pearson's chi-square goodness-of-fit and contingency tests (scipy.stats.chisquare,
+scipy.stats.chi2_contingency; Pearson 1900) for the screen position of the disc; M-AFC guess rate 1/M
+(Green & Swets 1966) for a reader who cannot see the disc.
+"""
+
+from __future__ import annotations
+
+import datetime as _dt
+import io
+import json
+from collections import Counter, defaultdict
+
+import numpy as np
+import pandas as pd
+import pytest
+from scipy import stats
+
+from webapp_helpers import (
+    MINI,
+    PASSWORDS,
+    accounts_app,
+    answer,
+    darkest_tile,
+    demo_app,
+    login,
+    make_app,
+    read_all,
+    reader_client,
+    wait_job,
+)
+
+PER_TRIAL = {"trial", "region_url", "response_url", "number", "answered", "practice_answered", "practice_number"}
+
+
+def _export(app, sid) -> pd.DataFrame:
+    cc = app.test_client()
+    login(cc, "coordinator")
+    text = cc.get(f"/coordinator/studies/{sid}/responses.csv").text
+    return pd.read_csv(io.StringIO(text), dtype={"reader": str, "image": str, "target": str, "tile_order": str})
+
+
+def _trial_rows(app, sid):
+    from webapp.models import Region, StudyImage, Trial
+    from webapp.security import db
+
+    with app.app_context():
+        q = (
+            db()
+            .query(Trial, Region, StudyImage)
+            .join(Region, Region.id == Trial.region_id)
+            .join(StudyImage, StudyImage.id == Region.image_id)
+            .filter(Trial.study_id == sid)
+        )
+        return [
+            {
+                "public_id": t.public_id,
+                "reader_id": t.reader_id,
+                "practice": t.practice,
+                "repeat": t.repeat,
+                "region_id": r.id,
+                "image_practice": im.practice,
+                "detector": im.detector,
+                "diameter_mm": r.diameter_mm,
+                "contrast": r.contrast,
+                "true_site": r.true_site,
+                "order": json.loads(t.tile_order),
+            }
+            for t, r, im in q
+        ]
+
+
+# --------------------------------------------------------------------------- practice pool
+def test_practice_comes_from_its_own_images_and_is_never_scored(tmp_path):
+    app, sid = demo_app(tmp_path, n_practice=4, repeat_fraction=0.2)
+    for name in ("reader1", "reader2", "reader3"):
+        c, tok = reader_client(app, sid, name)
+        done = read_all(c, sid, tok, chooser=lambda t, d: int(t["trial"], 16) % t["m"])
+        assert [t["practice"] for t, _ in done[:4]] == [True] * 4 and not any(t["practice"] for t, _ in done[4:])
+    rows = _trial_rows(app, sid)
+    practice = [r for r in rows if r["practice"]]
+    scored = [r for r in rows if not r["practice"]]
+    assert len(practice) == 12 and all(r["image_practice"] for r in practice)
+    assert scored and not any(r["image_practice"] for r in scored)
+    assert not {r["region_id"] for r in practice} & {r["region_id"] for r in scored}
+    # practice shows each diameter's most visible target first (the largest contrast of the practice pool)
+    from webapp.models import StudyImage
+    from webapp.security import db
+
+    with app.app_context():
+        codes = {im.code for im in db().query(StudyImage).filter_by(study_id=sid, practice=True)}
+    df = _export(app, sid)
+    assert len(df) == len(scored) and not set(df["image"]) & codes
+    cc = app.test_client()
+    login(cc, "coordinator")
+    model = pd.read_csv(io.StringIO(cc.get(f"/coordinator/studies/{sid}/model.csv").text), dtype={"image": str})
+    assert not set(model["image"]) & codes
+
+
+# --------------------------------------------------------------------------- the true site's screen position
+@pytest.fixture(scope="module")
+def read_study(tmp_path_factory):
+    """Three readers read a study of 2 + 2 scored mini-plate images to the end through the API (10 trials per cell),
+    each choosing the darkest tile on the bytes received."""
+    app, sid = demo_app(tmp_path_factory.mktemp("tiles"), n_practice=2)
+    seen = {}
+    for name in ("reader1", "reader2", "reader3"):
+        c, tok = reader_client(app, sid, name)
+        while True:
+            r = c.get(f"/reading/api/studies/{sid}/next")
+            t = r.json
+            if t["done"]:
+                break
+            reg = c.get(t["region_url"])
+            seen[t["trial"]] = (t, dict(reg.headers), len(reg.data))
+            choice = darkest_tile(t, reg.data)
+            a = answer(c, tok, t, choice)
+            assert a.status_code == 200, a.json
+            seen[t["trial"]] += (a.json,)
+    return app, sid, seen
+
+
+def test_the_true_site_is_spread_over_the_screen_positions_independent_of_the_plate(read_study):
+    app, sid, seen = read_study
+    df = _export(app, sid)
+    assert len(df) >= 200, len(df)
+    # the export says what was shown: the tile order, and where the disc and the choice were on screen
+    orders = [list(map(int, o.split())) for o in df["tile_order"]]
+    assert all(sorted(o) == list(range(m)) for o, m in zip(orders, df["n_alternatives"]))
+    assert all(o.index(ts) == tp for o, ts, tp in zip(orders, df["true_site"], df["true_position"]))
+    assert all(o.index(cs) == cp for o, cs, cp in zip(orders, df["chosen_site"], df["chosen_position"]))
+    for m, g in df.groupby("n_alternatives"):
+        counts = np.bincount(g["true_position"], minlength=m)
+        p_uniform = stats.chisquare(counts).pvalue  # Pearson 1900: H0 every place equally likely
+        # H0 screen place independent of the plate's site: the shift (position − site) mod M is uniform too (were
+        # the tiles shown in plate order it would always be 0)
+        shift = (g["true_position"] - g["true_site"].astype(int)) % m
+        p_indep = stats.chisquare(np.bincount(shift, minlength=m)).pvalue
+        print(
+            f"M = {m}: {len(g)} trials, true position counts {counts.tolist()}, chi-square p = {p_uniform:.3f}; "
+            f"position − site uniform: p = {p_indep:.3f}"
+        )
+        assert p_uniform > 0.01 and p_indep > 0.01
+    # every target's true site is fixed by the plate, yet it is shown at more than one place
+    per_target = df.groupby(["target"])["true_position"].nunique()
+    assert (per_target > 1).mean() > 0.9
+    # the tiles really are in that order: a darkest-tile reader is right on the most visible targets of the
+    # diameters of several pixels (a 0.1 mm disc is about one 0.085 mm pixel)
+    easy = df[(df["contrast"] == df.groupby("diameter_mm")["contrast"].transform("max")) & (df["diameter_mm"] > 0.2)]
+    assert easy["correct"].mean() >= 0.9, easy[["diameter_mm", "correct"]]
+    assert df["correct"].mean() > 1 / df["n_alternatives"].min()
+
+
+def test_nothing_the_reader_receives_differs_by_detector_but_pixels(read_study):
+    app, sid, seen = read_study
+    rows = {r["public_id"]: r for r in _trial_rows(app, sid)}
+    by_det = defaultdict(set)
+    headers = defaultdict(set)
+    for pid, (t, h, n_bytes, a) in seen.items():
+        r = rows[pid]
+        kept = {k: v for k, v in t.items() if k not in PER_TRIAL}
+        by_det[r["detector"]].add(json.dumps(kept, sort_keys=True))
+        hk = {k: h[k] for k in ("Content-Type", "X-Rows", "X-Cols", "X-Tiles")}
+        headers[r["detector"]].add(
+            (json.dumps(hk, sort_keys=True), n_bytes, json.dumps(a if not t["practice"] else {}))
+        )
+    assert len(by_det) == 2
+    a, b = by_det.values()
+    assert a == b, a ^ b  # the same JSON (tiles, size, window/level, M, totals) whichever panel made the image
+    ha, hb = headers.values()
+    assert ha == hb
+    # one window/level for the whole study: every trial starts from the same numbers
+    assert len({(t["window"], t["level"]) for t, *_ in seen.values()}) == 1
+    # the pages a reader opens name no detector either
+    from webapp.models import StudyImage
+    from webapp.security import db
+
+    with app.app_context():
+        labels = {im.detector for im in db().query(StudyImage).filter_by(study_id=sid)}
+    c, tok = reader_client(app, sid, "reader1")
+    for url in ("/reading/", f"/reading/studies/{sid}", f"/reading/studies/{sid}/check"):
+        page = c.get(url, follow_redirects=True).text
+        assert not any(lab in page for lab in labels) and "direct" not in page and "indirect" not in page
+
+
+# --------------------------------------------------------------------------- adaptive placement
+def test_adaptive_states_are_stored_and_survive_a_restart(tmp_path):
+    app, sid = demo_app(tmp_path, n_practice=0, repeat_fraction=0)
+    from webapp.models import AdaptiveCell, Response, Trial, User
+    from webapp.security import db
+
+    c, tok = reader_client(app, sid)
+    read_all(c, sid, tok, chooser=darkest_tile, limit=12)
+    waiting = c.get(f"/reading/api/studies/{sid}/next").json
+    # a restart: a new app on the same instance folder and database
+    app.extensions["limen_engine"].dispose()
+    app2 = make_app(tmp_path)
+    c2, tok2 = reader_client(app2, sid)
+    again = c2.get(f"/reading/api/studies/{sid}/next").json
+    assert again["trial"] == waiting["trial"] and again["number"] == 13  # the same trial waits, nothing lost
+    read_all(c2, sid, tok2, chooser=darkest_tile)
+    with app2.app_context():
+        s = db()
+        uid = s.query(User).filter_by(username="reader1").one().id
+        from webapp.models import Study
+
+        plan = {
+            (x["detector"], x["diameter_mm"]): x["n_trials"] for x in json.loads(s.get(Study, sid).plan_json)["cells"]
+        }
+        cells = s.query(AdaptiveCell).filter_by(study_id=sid, reader_id=uid).all()
+        assert len(cells) == len(plan) == 6
+        responses = s.query(Response, Trial).join(Trial).filter(Trial.study_id == sid, Trial.reader_id == uid).all()
+        for cell in cells:
+            st = json.loads(cell.state_json)
+            mine = [
+                (t.region.contrast, r.correct)
+                for r, t in responses
+                if t.region.image.detector == cell.detector and t.region.diameter_mm == cell.diameter_mm
+            ]
+            # the stored state is exactly the counts of the reader's answers in that cell, one per response
+            n = Counter(cn for cn, _ in mine)
+            y = Counter(cn for cn, ok in mine if ok)
+            assert st["n_by_level"] == [n[lv] for lv in st["levels"]]
+            assert st["correct_by_level"] == [y[lv] for lv in st["levels"]]
+            assert cell.n_trials == len(mine) == plan[(cell.detector, cell.diameter_mm)]
+
+
+def test_a_response_sent_twice_teaches_the_state_once(tmp_path):
+    app, sid = demo_app(tmp_path, n_practice=0)
+    from webapp.models import AdaptiveCell
+    from webapp.security import db
+
+    c, tok = reader_client(app, sid)
+    t = c.get(f"/reading/api/studies/{sid}/next").json
+    assert answer(c, tok, t, 1).status_code == 200
+    second = answer(c, tok, t, 2)
+    assert second.status_code == 409 and second.json["duplicate"]
+    with app.app_context():
+        assert sum(x.n_trials for x in db().query(AdaptiveCell).all()) == 1
+
+
+def test_constant_stimuli_show_each_level_equally_often(tmp_path):
+    app, sid = demo_app(tmp_path, placement="constant", n_practice=0, repeat_fraction=0)
+    c, tok = reader_client(app, sid)
+    read_all(c, sid, tok)
+    df = _export(app, sid)
+    for _, g in df.groupby(["detector", "diameter_mm"]):
+        counts = g["contrast"].value_counts()
+        per = counts.tolist() + [0] * (6 - len(counts))  # the mini plate has 6 contrasts per diameter
+        assert max(per) - min(per) <= 1, counts
+
+
+def test_a_trial_of_an_earlier_release_is_still_shown_as_one_region(tmp_path):
+    """Studies opened before tiles keep their schedule: a trial without a tile order shows the whole region with
+    its sites and takes a site, as then."""
+    app, sid = demo_app(tmp_path, n_practice=0)
+    from webapp.models import Study, Trial
+    from webapp.security import db
+
+    c, tok = reader_client(app, sid)
+    t = c.get(f"/reading/api/studies/{sid}/next").json
+    with app.app_context():
+        tr = db().query(Trial).filter_by(public_id=t["trial"]).one()
+        tr.tile_order = None
+        db().get(Study, sid).placement = None
+        n = db().get(Study, sid).region_rows
+        db().commit()
+    old = c.get(f"/reading/api/studies/{sid}/next").json
+    assert "tiles" not in old and len(old["sites"]) == old["m"] and old["rows"] == n
+    assert len(c.get(old["region_url"]).data) == 2 * n * n
+    r = answer(c, tok, old, 1)
+    assert r.status_code == 200
+
+
+def test_an_older_database_gets_the_design_columns(tmp_path):
+    from sqlalchemy import inspect, text
+
+    from webapp.models import LATER_COLUMNS, create_schema, make_engine
+
+    url = f"sqlite:///{tmp_path / 'old.db'}"
+    engine = make_engine(url)
+    create_schema(engine)
+    with engine.begin() as conn:
+        for table, column, _, _ in LATER_COLUMNS:
+            conn.execute(text(f"ALTER TABLE {table} DROP COLUMN {column}"))
+    create_schema(engine)
+    insp = inspect(engine)
+    for table, column, _, _ in LATER_COLUMNS:
+        assert column in {c["name"] for c in insp.get_columns(table)}, (table, column)
+
+
+# --------------------------------------------------------------------------- the design gate
+def _simulated_files(tmp_path, n=1):
+    from scorer.detector import detector_model, simulate
+    from scorer.images import save_conversion
+    from scorer.phantom import load_layout
+    from scorer.workflow import write_simulated
+
+    layout = load_layout(MINI)
+    out = {}
+    for k, det in enumerate(("direct", "indirect")):
+        model = detector_model(det)
+        files = []
+        for i in range(n):
+            sim = simulate(model, "phantom", 100.0, np.random.default_rng(10 * k + i), small=True, layout=layout)
+            files.append(write_simulated(sim, tmp_path / det, f"{det}-{i}", _dt.datetime(2026, 11, 30, 8, i)))
+        conv = tmp_path / det / "conversion.toml"
+        save_conversion(model.conversion_function(), conv)
+        out[det] = (files, conv)
+    return out
+
+
+def test_the_app_refuses_to_open_a_design_that_cannot_reach_its_interval_and_says_what_to_change(tmp_path):
+    app = accounts_app(tmp_path, ("coordinator", "reader1", "reader2", "reader3"))
+    from webapp.models import Study, User
+    from webapp.security import db
+
+    with app.app_context():
+        ids = {u.username: u.id for u in db().query(User).all()}
+    c = app.test_client()
+    tok = login(c, "coordinator")
+    r = c.post(
+        "/coordinator/studies/new",
+        data={
+            "csrf_token": tok,
+            "name": "too ambitious",
+            "layout_file": (io.BytesIO(MINI.read_bytes()), "mini.toml"),
+            "diameters": "0.25, 1",
+            "half_width_ln": "0.3",
+            "placement": "psi",
+            "n_practice": "2",
+            "readers": [str(ids["reader1"])],
+        },
+        content_type="multipart/form-data",
+    )
+    assert r.status_code == 302, r.text
+    sid = int(r.headers["Location"].split("/")[-1])
+    with app.app_context():
+        st = db().get(Study, sid)
+        assert json.loads(st.diameters_json) == [0.25, 1.0] and st.half_width_ln == 0.3 and st.placement == "psi"
+    files = _simulated_files(tmp_path, n=3)  # per panel: two to score, one for practice
+
+    def upload(det, paths, practice=False):
+        data = {
+            "csrf_token": tok,
+            "detector": f"panel {det}",
+            "conversion_file": (io.BytesIO(files[det][1].read_bytes()), "c.toml"),
+            "images": [(io.BytesIO(p.read_bytes()), p.name) for p in paths],
+        }
+        if practice:
+            data["practice"] = "on"
+        assert (
+            c.post(f"/coordinator/studies/{sid}/images", data=data, content_type="multipart/form-data").status_code
+            == 302
+        )
+
+    for det in files:
+        upload(det, files[det][0][:1])
+
+    def refused(text):
+        r = c.post(f"/coordinator/studies/{sid}/open", data={"csrf_token": tok})
+        assert r.status_code == 400 and text in r.text, (text, r.status_code, r.text[-1500:])
+
+    refused("at least 3 readers and 1 are enrolled: enrol more readers")
+    r = c.post(
+        f"/coordinator/studies/{sid}/readers",
+        data={"csrf_token": tok, "readers": [str(ids[f"reader{i}"]) for i in (1, 2, 3)]},
+    )
+    refused("practice trials need a practice pool that is never scored")
+    upload("direct", files["direct"][0][2:], practice=True)
+    refused("cannot give a 95 % CI of ±0.3 (ln")
+    r = c.post(f"/coordinator/studies/{sid}/open", data={"csrf_token": tok})
+    assert "Change: add readers or images, widen the interval" in r.text
+    with app.app_context():
+        st = db().get(Study, sid)
+        st.half_width_ln, st.trials_per_reader = 2.0, 3
+        db().commit()
+    # one image per panel: 6 regions per cell, fewer than the 10 trials an estimable threshold needs
+    refused("at least 10 trials per reader in each cell at 0.25 mm (at most 6 trials per reader")
+    for det in files:
+        upload(det, files[det][0][1:2])
+    refused("more than the 3 allowed")
+    with app.app_context():
+        db().get(Study, sid).trials_per_reader = 600
+        db().commit()
+    job = wait_job(c, c.post(f"/coordinator/studies/{sid}/open", data={"csrf_token": tok}))
+    assert job["state"] == "done", job
+    page = c.get(f"/coordinator/studies/{sid}").text
+    assert 'id="plan"' in page and "trials per reader at 0.25 mm" in page
+    with app.app_context():
+        plan = json.loads(db().get(Study, sid).plan_json)
+        assert [r["diameter_mm"] for r in plan["diameters"]] == [0.25, 1.0] and plan["n_readers"] == 3
+        assert all(r["n_trials"] >= 10 and r["regions_per_level"] == 2 for r in plan["diameters"])
+
+
+# --------------------------------------------------------------------------- done when
+def test_the_demo_study_read_by_the_simulated_readers_is_estimable_at_every_diameter(tmp_path):
+    """`limen serve --demo`'s study, read to the end by the built-in simulated readers (scorer.study.reader_model,
+    through the same placement code as the reading API), gives an estimable pooled threshold with a finite CI at
+    every diameter and detector it asks for."""
+    from webapp import services
+    from webapp.demo import DEMO_DIAMETERS_MM, create_demo_study, read_as_simulated_readers
+    from webapp.models import Study
+    from webapp.security import db
+
+    app = make_app(tmp_path)
+    sid = create_demo_study(app, passwords=PASSWORDS | {f"reader{i}": f"pw-reader-{i}" for i in range(4, 6)})[
+        "study_id"
+    ]
+    drawn = read_as_simulated_readers(app, sid, seed=5)
+    assert len(drawn) == 5
+    rows = _trial_rows(app, sid)
+    assert not any(r["image_practice"] for r in rows if not r["practice"])  # no practice region ever scored
+    with app.app_context():
+        st = db().get(Study, sid)
+        plan = json.loads(st.plan_json)
+        run = services.run_analysis(db(), st, n_boot=200, seed=1)
+        a = json.loads(run.analysis_json)
+    n_scored = len([r for r in rows if not r["practice"]])
+    assert n_scored == 5 * plan["total"], (n_scored, plan["total"])
+    pooled = [c for c in a["curves"] if c["reader"] == "pooled"]
+    cells = {(c["detector"], c["diameter_mm"]) for c in pooled}
+    assert {d for _, d in cells} == set(DEMO_DIAMETERS_MM) and len(cells) == 2 * len(DEMO_DIAMETERS_MM)
+    for c in pooled:
+        assert c["estimable"], json.dumps(c)
+        assert 0 < c["ci_low"] < c["threshold_contrast"] < c["ci_high"] < 1, c
+        assert c["ci_high"] / c["ci_low"] < 10
+        print(
+            f"{c['detector'][:11]} {c['diameter_mm']:>5g} mm: {100 * c['threshold_contrast']:.3g} % "
+            f"({100 * c['ci_low']:.3g}–{100 * c['ci_high']:.3g} %), {c['n_trials']} trials"
+        )
+    # the readers' factor over the model observer: the generator's median is 1.6 (ReaderPopulation)
+    hm = a["human_model_factor"]
+    print(f"human/model factor {hm['factor']:.3g} ({hm['ci_low']:.3g}–{hm['ci_high']:.3g})")
+    assert hm["ci_low"] < 1.6 < hm["ci_high"]
