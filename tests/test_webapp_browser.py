@@ -19,7 +19,11 @@ import datetime as _dt
 import io
 import json
 import shutil
+import socket
+import subprocess
+import sys
 import threading
+import time
 from pathlib import Path
 
 import numpy as np
@@ -313,7 +317,6 @@ def test_practice_then_scored_trials_blinded_in_chromium(demo_server):
         try:
             rp = browser.new_context(viewport={"width": 1280, "height": 900}).new_page()
             rp.on("console", lambda m: problems.append(m.text) if m.type == "error" else None)
-            rp.on("response", lambda r: seen.append(r) if "/reading/api/" in r.url else None)
             _login(rp, base, "reader1")
             rp.click("#my-studies a.button")
             rp.wait_for_selector("#check[data-ready]")
@@ -322,6 +325,8 @@ def test_practice_then_scored_trials_blinded_in_chromium(demo_server):
             pick = int(np.argmax([gray[r - 4 : r + 5, c - 4 : c + 5].mean() for r, c in sites]))
             box = rp.locator("#pixels").bounding_box()
             rp.mouse.click(box["x"] + sites[pick][1] + 0.5, box["y"] + sites[pick][0] + 0.5)
+            trial_api = ("/next", "/region", "/response")  # the reading page's requests (not the check page's)
+            rp.on("response", lambda r: seen.append(r) if r.url.endswith(trial_api) else None)
             rp.click("#confirm")
             rp.wait_for_url("**/reading/studies/*")
             tags, feedback = [], []
@@ -414,17 +419,36 @@ def test_the_reading_page_reconnects_and_never_loses_or_doubles_an_answer(tmp_pa
     pytest.importorskip("playwright.sync_api", reason="playwright (test extra) not installed")
     from playwright.sync_api import sync_playwright
 
-    from scorer.commands.serve import make_server
     from webapp.models import Response, Trial
     from webapp.security import db
     from webapp_helpers import demo_app
 
-    app, sid = demo_app(tmp_path, n_practice=0)
-    srv = make_server(app, host="127.0.0.1", port=0, threads=4)
-    port = srv.effective_port
-    th = threading.Thread(target=srv.run, daemon=True)
-    th.start()
+    app, sid = demo_app(tmp_path, n_practice=0, SECRET_KEY=None)  # the instance's own key, as `limen serve` reads it
+    with socket.socket() as so:
+        so.bind(("127.0.0.1", 0))
+        port = so.getsockname()[1]
     base = f"http://127.0.0.1:{port}"
+    serve = [
+        str(Path(sys.executable).with_name("limen")),
+        "serve",
+        "--instance",
+        app.instance_path,
+        "--port",
+        str(port),
+    ]
+
+    def start():
+        proc = subprocess.Popen(serve, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+        for _ in range(300):
+            try:
+                with socket.create_connection(("127.0.0.1", port), timeout=0.2):
+                    return proc
+            except OSError:
+                time.sleep(0.1)
+        proc.kill()
+        raise AssertionError("limen serve did not start")
+
+    srv = start()
 
     def stored(public_id):
         with app.app_context():
@@ -455,9 +479,9 @@ def test_the_reading_page_reconnects_and_never_loses_or_doubles_an_answer(tmp_pa
             ready = "() => document.getElementById('reader').dataset.ready"
             rp.wait_for_function(ready)
             first = rp.get_attribute("#reader", "data-ready")
-            # ---- fault 1: the server is gone when the answer is sent, and comes back on the same port
-            srv.close()
-            th.join(timeout=10)
+            # ---- fault 1: the server is killed before the answer is sent, and comes back on the same port
+            srv.kill()
+            srv.wait(timeout=10)
             rp.keyboard.press("1")
             rp.keyboard.press("Enter")
             rp.wait_for_function("() => document.getElementById('reader').dataset.reconnecting")
@@ -465,9 +489,7 @@ def test_the_reading_page_reconnects_and_never_loses_or_doubles_an_answer(tmp_pa
             rp.screenshot(path=str(ARTIFACTS / "reconnecting.png"))
             rp.wait_for_timeout(1500)  # a few attempts fail while the server is down
             assert stored(first) == 0
-            srv = make_server(app, host="127.0.0.1", port=port, threads=4)
-            th = threading.Thread(target=srv.run, daemon=True)
-            th.start()
+            srv = start()
             rp.wait_for_function(
                 f"() => {{ const r = document.getElementById('reader').dataset.ready; return r && r !== '{first}'; }}",
                 timeout=30_000,
@@ -499,6 +521,6 @@ def test_the_reading_page_reconnects_and_never_loses_or_doubles_an_answer(tmp_pa
             assert n_resp == 2  # two answers given, two stored: none lost, none doubled
         finally:
             browser.close()
-            srv.close()
-            th.join(timeout=5)
+            srv.kill()
+            srv.wait(timeout=10)
     assert not problems, problems
