@@ -77,11 +77,30 @@ def summarise(df: pd.DataFrame) -> dict:
             "n": int(len(e)),
             "truth": float(g.truth.iloc[0]),
         }
+    pooled = {}
+    for (obs, method, n), g in df.groupby(["observer", "method", "n_images"]):
+        e = g.log_error[np.isfinite(g.log_error)]
+        pooled[f"{obs}/{method}/{n}"] = {
+            "bias_pct": float(100 * e.mean()),
+            "se_pct": float(100 * e.std(ddof=1) / np.sqrt(len(e))),
+        }
+    out["pooled_bias"] = pooled
+    cov = [v["coverage"] for v in out["coverage"].values()]
+    per_d = list(out["bias"].values())
+    out["headline"] = {
+        "coverage_min_pct": 100 * min(cov),
+        "coverage_max_pct": 100 * max(cov),
+        "pooled_bias_max_abs_pct": max(abs(v["bias_pct"]) for v in pooled.values()),
+        "diameter_bias_max_abs_pct": max(abs(v["bias_pct"]) for v in per_d),
+        "diameter_bias_max_abs_z": max(abs(v["bias_pct"]) / v["se_pct"] for v in per_d if v["se_pct"] > 0),
+    }
     return out
 
 
 def lines(summary: dict) -> list[str]:
-    text = []
+    text = [f"truth_{k}: {v:.2f}" for k, v in summary["headline"].items()]
+    for key, v in summary["pooled_bias"].items():
+        text.append(f"truth_pooled_bias_{key.replace('/', '_')}: {v['bias_pct']:+.2f} ± {v['se_pct']:.2f} %")
     for key, v in summary["coverage"].items():
         text.append(
             f"truth_ci_coverage_{key.replace('/', '_')}: {100 * v['coverage']:.1f} % of {v['intervals']} "
