@@ -4,12 +4,13 @@ Images of the mini plate are built by our own generator (tests/npw_truth.py: exa
 background, white or Gaussian-correlated noise of known covariance — not Limen's simulator), 16 per repeat,
 scored by Limen's NPW observer (sharp template) and thresholded by the d′ method with its analytic CI.
 
-Truth of the named observer (DEVELOPERS.md, "The observer"): C_T = d′_T · σ_rms, σ_rms² the mean over the
-diameter's candidate sites of the response variance w′ᵀKw′/(b·wᵀs)² of the local-background NPW template
-w′ (Barrett & Myers, *Foundations of Image Science* (2004), ch. 13), d′_T from the M-AFC integral at the
-halfway criterion (Green & Swets 1966).  For information the medians are also given against the textbook
-known-background observer (same pooling) and against the phase average of d′² (what a Fourier prediction
-computes).  A synthetic linear observer checks the σ̂ degrees of freedom with M = 3 and M = 5.
+Truth of the observer Limen reports (DEVELOPERS.md, "The observer Limen reports"): C_T = d′_T · σ_rms, σ_rms²
+the mean over the diameter's candidate sites of the textbook (known-background) NPW response variance
+wᵀKw/(b·wᵀs)² (Barrett & Myers, *Foundations of Image Science* (2004), ch. 13), d′_T from the M-AFC integral
+at the halfway criterion (Green & Swets 1966).  For information the medians are also given against the
+observer with a background plane per site (what Limen reported before) and against the phase average of d′²
+(what a Fourier prediction computes).  Blurred discs on other plates: bench/bench_observer_truth.py.  A synthetic
+linear observer checks the σ̂ degrees of freedom with M = 3 and M = 5.
 
 Run with ``.venv/bin/python -m bench.bench_observer_coverage [repeats]`` (about 10 minutes with 300).
 Floor: 93–97 % coverage at every diameter with 16 images.
@@ -135,7 +136,7 @@ def main(n_rep: int = 300) -> dict:
         name = "white" if corr == 0 else f"corr{corr:g}px"
         per = {}
         for d, g in res.groupby("diameter_mm"):
-            cov = float(np.mean((g.ci_low <= g.local) & (g.local <= g.ci_high)))
+            cov = float(np.mean((g.ci_low <= g.kb) & (g.kb <= g.ci_high)))
             per[d] = {
                 "coverage": cov,
                 "median_error_vs_local_pct": 100 * float(np.median(g.estimate / g.local) - 1),
@@ -148,8 +149,8 @@ def main(n_rep: int = 300) -> dict:
                 f"{100 * FLOOR[1]:.0f} %)"
             )
             lines.append(
-                f"dprime_median_error_{name}_{d:g}mm: {per[d]['median_error_vs_local_pct']:+.2f} % "
-                f"(vs known background {per[d]['median_error_vs_known_background_pct']:+.2f} %, "
+                f"dprime_median_error_{name}_{d:g}mm: {per[d]['median_error_vs_known_background_pct']:+.2f} % "
+                f"(vs a plane per site {per[d]['median_error_vs_local_pct']:+.2f} %, "
                 f"vs phase-averaged d′² {per[d]['median_error_vs_phase_average_pct']:+.2f} %)"
             )
         out["noise"][name] = per

@@ -15,6 +15,7 @@ BENCHES = [
     "bench_analyse",
     "bench_nightly",
     "bench_observer_coverage",
+    "bench_observer_truth",
     "bench_dose_series",
     "bench_adaptive",
     "bench_dose_beta",

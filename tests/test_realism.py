@@ -7,7 +7,7 @@ the test asserts either that the d′-method thresholds stay within a stated tol
 Limen names the cause (the exclusion or the warning) — and, for defects, both.
 
 Tolerances (common practice for paired comparisons; the d′ method's CI half-width here is ≈ 10–20 %):
-* smooth features a plane fit per site absorbs (heel ±13 %, 5 % bump, a label outside the plate): ±5 % (the
+* smooth features the background fit absorbs (heel ±13 %, 5 % bump, a label outside the plate): ±5 % (the
   heel moves the markers' fitted centres by ≈ 0.05 px and the blur fitted to them, which moves the 0.1 mm
   threshold — discs of one pixel — by up to 4 %; the larger discs stay within 1.5 %);
 * defects whose sites are excluded: ±25 % (the thresholds rest on fewer trials, so they move by sampling);

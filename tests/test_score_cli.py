@@ -308,14 +308,23 @@ def test_human_factor_from_an_analysis_file(direct_set, tmp_path):
 
 
 def test_one_image_results_json_is_valid_json(direct_set, tmp_path):
-    # one image gives no CI (NaN inside): the written JSON must still parse strictly (RFC 8259 has no NaN)
-    res = _run([str(next(direct_set.glob("*.dcm"))), "--layout", str(MINI), "--out", str(tmp_path / "one")])
+    # one image gives no bootstrap CI (NaN inside): the written JSON must still parse strictly (RFC 8259 has no NaN)
+    one = str(next(direct_set.glob("*.dcm")))
+    res = _run([one, "--layout", str(MINI), "--dprime-ci", "bootstrap", "--out", str(tmp_path / "boot")])
     assert res.exit_code == 0, res.output
-    text = (tmp_path / "one" / "results.json").read_text()
+    text = (tmp_path / "boot" / "results.json").read_text()
     js = json.loads(text, parse_constant=lambda c: pytest.fail(f"non-JSON constant {c}"))
-    # the count method has no bootstrap CI from one image; the d′ method's analytic CI needs none
-    assert all(t["ci_low"] is None for t in js["thresholds"] if t["method"] == "count")
-    assert all(t["ci_low"] is not None for t in js["thresholds"] if t["method"] == "dprime")
+    assert all(t["ci_low"] is None for t in js["thresholds"] if t["method"] == "dprime")
+    # the default CIs need no resampling: the d′ method's is analytic, the count method's a profile likelihood
+    # interval on the targets' binomial counts (Wilks 1938, docs/references.md), so one image has both — the
+    # count method's flagged unreliable with fewer than 3 images
+    res = _run([one, "--layout", str(MINI), "--out", str(tmp_path / "one")])
+    assert res.exit_code == 0, res.output
+    js = json.loads((tmp_path / "one" / "results.json").read_text(), parse_constant=lambda c: pytest.fail(c))
+    for t in js["thresholds"]:
+        assert t["ci_low"] is not None and t["ci_low"] <= t["threshold_contrast"] <= t["ci_high"], t
+        if t["method"] == "count":
+            assert "unreliable" in t["note"], t
 
 
 def test_two_images_of_the_demo_plate_give_a_report_not_a_crash(tmp_path):

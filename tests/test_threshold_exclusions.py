@@ -94,3 +94,32 @@ def test_bootstrap_ci_with_excluded_trials_is_finite():
     kept = df[~((df["image"] == "i1") & (df["target"] == "t0"))]
     p = dprime_thresholds(kept, n_boot=200, ci_method="bootstrap", seed=1).points[0]
     assert np.isfinite(p.ci_low) and np.isfinite(p.ci_high) and p.ci_low < p.threshold_contrast < p.ci_high
+
+
+def test_two_afc_sigma_from_paired_differences_on_the_trials_that_remain():
+    # 2-AFC: σ² is half the variance over images of each target's difference signal − non-signal, pooled over
+    # the targets on Σ(n_j − 1) degrees of freedom (the pooled variance of one-way ANOVA; Cramér 1946), computed
+    # here by hand on the trials left after exclusions; d′_j, k and C_T as in the module docstring
+    rng = np.random.default_rng(5)
+    k_true, rows = 40.0, []
+    for i in range(7):
+        for j, c in enumerate(C):
+            common = rng.standard_normal()  # a background error shared by both sites cancels in the difference
+            for s in range(2):
+                r = common + rng.standard_normal() + (k_true * c if s == 0 else 0.0)
+                rows.append((f"i{i}", f"t{j}", 0.5, c, 2, s, s == 0, r / k_true, "npw"))
+    cols = ["image", "target", "diameter_mm", "contrast", "m_alternatives", "site", "is_signal", "response", "observer"]
+    df = pd.DataFrame(rows, columns=cols)
+    drop = ((df["image"] == "i1") & (df["target"] == "t0")) | (df["image"].isin(["i4", "i5"]) & (df["target"] == "t3"))
+    kept = df[~drop]
+    ss, dof, dj = 0.0, 0, []
+    for j in range(len(C)):
+        g = kept[kept["target"] == f"t{j}"].pivot(index="image", columns="site", values="response")
+        diff = (g[0] - g[1]).to_numpy()
+        ss += float(((diff - diff.mean()) ** 2).sum()) / 2.0
+        dof += diff.size - 1
+        dj.append(diff.mean())
+    d = np.asarray(dj) / np.sqrt(ss / dof)
+    est = dprime_for_pc(halfway_criterion(2), 2) / float(d @ C / (C @ C))
+    p = dprime_thresholds(kept, n_boot=0).points[0]
+    assert p.threshold_contrast == pytest.approx(est, rel=1e-10)

@@ -47,10 +47,10 @@ inner radius + 1 px; :func:`scorer.observer.npw.site_regions`) excludes the site
 the reason, and the whole M-AFC trial of that image and target is left out: a decision among M − 1 sites is
 not an M-AFC trial (the count method), and the d′ method pools one noise SD over the sites of a diameter, which
 a template with pixels removed would no longer share (for discs of about a pixel, a masked pixel removes most
-of the signal).  A defect only in the site's background ring is masked instead: its pixels leave the plane fit
-(and the template, whose weight there is nil), the response stays an unbiased contrast estimate with almost
-the same noise, and the site is kept — unless the defects cover more than half of the ring.  A thin line
-crossing a row of sites thus costs the trials whose discs it crosses, not every trial it touches.
+of the signal).  A defect only in the site's background ring is masked instead: its pixels leave the target's
+shared background fit (and the template, whose weight there is nil), the response stays an unbiased contrast
+estimate with almost the same noise, and the site is kept — unless the defects cover more than half of the ring.
+A thin line crossing a row of sites thus costs the trials whose discs it crosses, not every trial it touches.
 
 References
 ----------

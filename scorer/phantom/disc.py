@@ -1,12 +1,16 @@
-"""Pixel coverage of discs: the exact-to-1/S² fraction of each pixel a disc covers.
+"""Discs on the pixel grid: their pixel coverage, and their image through a Gaussian blur and the pixel aperture.
 
-Shared by the simulator (rendering discs) and the model observers (templates),
-so that a template has the same aperture-integrated profile as the signal.
+:func:`disc_coverage` (the fraction of each pixel a sharp disc covers, exact to 1/S²) serves the simulator;
+:func:`blurred_disc` (the disc blurred first, then integrated over each pixel) gives the model observers'
+templates and the marker model of the blur estimate.
 """
 
 from __future__ import annotations
 
+from functools import lru_cache
+
 import numpy as np
+from scipy import sparse, special
 
 SUPERSAMPLE = 10  # sub-pixels per pixel side
 
@@ -52,3 +56,109 @@ def disc_coverage(center_rc, radius_px: float, shape: tuple[int, int], supersamp
         rs, cs, cov = patch
         out[rs, cs] = cov
     return out
+
+
+# --------------------------------------------------------------------------- blurred discs
+#: below this Gaussian spread (pixels) a disc is rendered as its plain pixel coverage: the blur then moves no
+#: pixel value by more than about 0.2 % of the contrast
+MIN_SIGMA_PX = 0.03
+
+
+def _aperture_kernel(t, sigma_px: float):
+    """k(t): the unit pixel aperture convolved with a Gaussian of standard deviation ``sigma_px`` (1-D).
+
+    Evaluated only where it differs from 0 by more than Φ(−8) (|t| < ½ + 8σ); zero elsewhere.
+    """
+    t = np.asarray(t, dtype=float)
+    out = np.zeros(t.shape)
+    near = np.abs(t) < 0.5 + 8.0 * sigma_px
+    tn = t[near]
+    out[near] = special.ndtr((tn + 0.5) / sigma_px) - special.ndtr((tn - 0.5) / sigma_px)
+    return out
+
+
+def _aperture_kernel_integral(t, sigma_px: float):
+    """∫_{−∞}^{t} k: with F(u) = u·Φ(u/σ) + σ·φ(u/σ) (the antiderivative of Φ(u/σ)), F(t + ½) − F(t − ½).
+
+    A distribution function: 0 below t = −½ − 8σ and 1 above ½ + 8σ, where it is not evaluated.
+    """
+
+    def f(u):
+        z = u / sigma_px
+        return u * special.ndtr(z) + sigma_px * np.exp(-0.5 * z * z) / np.sqrt(2.0 * np.pi)
+
+    t = np.asarray(t, dtype=float)
+    lim = 0.5 + 8.0 * sigma_px
+    out = (t >= lim).astype(float)
+    near = np.abs(t) < lim
+    tn = t[near]
+    out[near] = f(tn + 0.5) - f(tn - 0.5)
+    return out
+
+
+def blurred_disc(center_rc, radius_px: float, sigma_px: float, shape: tuple[int, int]) -> np.ndarray:
+    """Expected pixel values of a unit disc blurred by a Gaussian, then integrated over each square pixel.
+
+    The system spread acts on the continuous image *before* the pixel aperture samples it, so the value of
+    pixel (m, n) is ∫∫_disc k(x − n)·k(y − m) dx dy, k the aperture (width 1 px) convolved with the Gaussian —
+    a separable kernel with closed-form integral (normal CDF).  The inner integral over y is therefore exact, the
+    outer one, over x across the disc, is composite Gauss–Legendre quadrature in θ (x = x₀ + R sin θ, which removes the
+    square-root ends of the chord): exact to about 10⁻⁶ of the contrast.
+
+    Blurring the pixel coverage afterwards on the pixel grid (what Limen did before) folds the coverage's
+    frequencies above Nyquist back unblurred: for a disc of radius 0.6 px and a spread of 0.6 px its Σs² was
+    16–22 % off, depending on where the disc fell in its pixel.
+
+    Parameters
+    ----------
+    center_rc : (float, float)
+        Disc centre (row, col), pixel centres at integer coordinates.
+    radius_px, sigma_px : float
+        Disc radius and Gaussian standard deviation in pixels.
+    shape : (rows, cols)
+
+    References
+    ----------
+    .. [1] Abramowitz, M. & Stegun, I. A. *Handbook of Mathematical Functions* (1964), 25.4.29–30
+           (Gauss–Legendre quadrature) and 26.2 (the normal distribution).
+    """
+    if sigma_px < MIN_SIGMA_PX:
+        return disc_coverage(center_rc, radius_px, shape, supersample=max(SUPERSAMPLE, int(np.ceil(20 / radius_px))))
+    cr, cc = float(center_rc[0]), float(center_rc[1])
+    out = np.zeros(shape, dtype=np.float64)
+    reach = radius_px + 8.0 * sigma_px + 1.0
+    r0, r1 = max(int(np.floor(cr - reach)), 0), min(int(np.ceil(cr + reach)) + 1, shape[0])
+    c0, c1 = max(int(np.floor(cc - reach)), 0), min(int(np.ceil(cc + reach)) + 1, shape[1])
+    if r0 >= r1 or c0 >= c1:
+        return out
+    theta, weight = _nodes(int(min(np.ceil(4.0 * radius_px / sigma_px) + 24, 4000)))
+    xi = radius_px * np.sin(theta)  # (N,) offset along the columns
+    half_chord = radius_px * np.cos(theta)
+    rows = np.arange(r0, r1, dtype=float)[:, None]
+    cols = np.arange(c0, c1, dtype=float)[None, :]
+    a = _aperture_kernel_integral(cr + half_chord[None, :] - rows, sigma_px) - _aperture_kernel_integral(
+        cr - half_chord[None, :] - rows, sigma_px
+    )  # (rows, N): ∫ k(y − m) dy over the chord
+    b = (weight * half_chord)[:, None] * _aperture_kernel(cc + xi[:, None] - cols, sigma_px)  # (N, cols)
+    if b.size > 20_000:  # each node reaches only the columns within ½ + 8σ of it: a sparse product pays
+        out[r0:r1, c0:c1] = (sparse.csr_matrix(b).T @ a.T).T
+    else:
+        out[r0:r1, c0:c1] = a @ b
+    return out
+
+
+_PANEL = np.polynomial.legendre.leggauss(16)
+
+
+def _nodes(n: int) -> tuple[np.ndarray, np.ndarray]:
+    """Composite Gauss–Legendre rule on (−π/2, π/2): ⌈n/16⌉ equal panels of 16 nodes each."""
+    return _panel_nodes(max(1, -(-n // 16)))
+
+
+@lru_cache(maxsize=256)
+def _panel_nodes(panels: int) -> tuple[np.ndarray, np.ndarray]:
+    edges = np.linspace(-np.pi / 2, np.pi / 2, panels + 1)
+    half = np.diff(edges)[:, None] / 2
+    x = (edges[:-1, None] + half + half * _PANEL[0][None, :]).ravel()
+    w = (half * _PANEL[1][None, :]).ravel()
+    return x, w
