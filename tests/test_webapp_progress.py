@@ -113,16 +113,15 @@ def test_refused_actions_come_from_the_audit_log(tmp_path):
     their_trial = other.get(f"/reading/api/studies/{sid}/next").json
     c = app.test_client()
     tok = login(c, "reader1")
-    # an answer before the display check (428), another reader's trial (404), a coordinator's page (403, five times)
-    mine = None
-    r = c.get(f"/reading/api/studies/{sid}/next")
-    mine = r.json
-    assert answer(c, tok, mine).status_code == 428
+    # a trial asked for before the display check (428: trials are placed only for a checked sitting), another
+    # reader's trial (404), a coordinator's page (403, five times)
+    assert c.get(f"/reading/api/studies/{sid}/next").status_code == 428
     assert c.get(their_trial["region_url"]).status_code == 404
     for _ in range(5):
         assert c.get("/coordinator/").status_code == 403
     # a second answer to a stored trial is not a refusal (a retry learning its answer arrived)
     pass_display_check(c, sid, tok)
+    mine = c.get(f"/reading/api/studies/{sid}/next").json
     assert answer(c, tok, mine).status_code == 200
     assert answer(c, tok, mine).status_code == 409
     # a failed sign-in with the reader's name (typed in other case)

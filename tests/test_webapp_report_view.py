@@ -27,8 +27,8 @@ def test_in_app_report_takes_the_body_and_turns_figures_into_images():
 
 
 def test_the_analysis_page_shows_the_report_in_the_app_style_and_offers_it_self_contained(tmp_path):
-    app, sid = demo_app(tmp_path, n_readers=2, trials_per_reader=12, n_practice=0, repeat_fraction=0.0)
-    for name in ("reader1", "reader2"):
+    app, sid = demo_app(tmp_path, n_practice=0, repeat_fraction=0.0)
+    for name in ("reader1", "reader2", "reader3"):
         c, tok = reader_client(app, sid, name)
         read_all(c, sid, tok)
     cc = app.test_client()

@@ -256,7 +256,7 @@ def test_coordinator_builds_a_study_through_the_forms(tmp_path):
     )
     assert r.status_code == 302, r.text
     sid = int(r.headers["Location"].split("/")[-1])
-    files = _simulated_files(tmp_path)
+    files = _simulated_files(tmp_path, n=2)  # 2 images per panel: 12 regions per cell, >= the 10 trials needed
     for det, (paths, conv) in files.items():
         r = c.post(
             f"/coordinator/studies/{sid}/images",
@@ -274,11 +274,11 @@ def test_coordinator_builds_a_study_through_the_forms(tmp_path):
     assert job["result_url"] == f"/coordinator/studies/{sid}"
     with app.app_context():
         st = db().get(Study, sid)
-        assert st.status == "open" and st.observer == "npw" and len(st.images) == 2
-        assert db().query(Region).filter_by(study_id=sid).count() == 2 * 18
+        assert st.status == "open" and st.observer == "npw" and len(st.images) == 4
+        assert db().query(Region).filter_by(study_id=sid).count() == 4 * 18
         assert db().query(Region).filter_by(study_id=sid, tiles_json=None).count() == 0
         model = pd.read_csv(io.StringIO(st.model_trials_csv))
-        assert len(model) == 36 and set(model["reader"]) == {"npw"}
+        assert len(model) == 72 and set(model["reader"]) == {"npw"}
         assert set(model["detector"]) == {"panel direct", "panel indirect"}
         total = json.loads(st.plan_json)["total"]
     page = c.get(f"/coordinator/studies/{sid}").text
@@ -428,7 +428,7 @@ def test_an_image_in_two_studies_is_shown_on_each_studys_own_scale(tmp_path):
         diameters_mm=None,
         half_width_ln=2.0,
     )
-    a = create_demo_study(app, images_per_detector=1, passwords=PASSWORDS, **kw)["study_id"]
+    a = create_demo_study(app, images_per_detector=2, passwords=PASSWORDS, **kw)["study_id"]
     b = create_demo_study(
         app, images_per_detector=3, passwords=PASSWORDS, reader_prefix="other", open_study=False, seed=7, **kw
     )["study_id"]
