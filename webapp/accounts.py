@@ -67,8 +67,8 @@ def _skeleton(text: str) -> str:
 
 def look_alike_key(name: str) -> str:
     """Names with the same look-alike key pass for one another (case aside): ``skeleton(casefold(skeleton(·)))``
-    of the name's key, so ``reader01``, ``Reader0l``, ``READERO1`` and ``reader0I`` share one."""
-    return _skeleton(_skeleton(name_key(name)).casefold())
+    of the NFKC-normalised name, so ``reader01``, ``Reader0l``, ``READERO1`` and ``reader0I`` share one."""
+    return _skeleton(_skeleton(unicodedata.normalize("NFKC", name or "").strip()).casefold())
 
 
 def look_alike_of(session, name: str):

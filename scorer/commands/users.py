@@ -50,7 +50,7 @@ def _new_password(generate: bool, from_stdin: bool, prompt: str) -> str:
     if generate:
         return generate_password()
     if from_stdin:
-        line = click.get_text_stream("stdin").readline()
+        line = sys.stdin.readline() if sys.stdin is not None else ""
         if not line:
             raise LimenError("no password on standard input (one line expected)", "--password-stdin")
         return check_password(line.rstrip("\r\n"))
