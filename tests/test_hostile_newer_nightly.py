@@ -336,8 +336,8 @@ def test_serve_on_a_port_in_use_gives_one_line(tmp_path):
     "host",
     [
         "999.1.1.1",  # no such IPv4 address
-        "no-such-host.invalid",  # RFC 6761: .invalid never resolves
-        "203.0.113.7",  # RFC 5737 TEST-NET-3: documentation only, never an address of this machine
+        "no-such-host.invalid",  # RFC 6761 sec. 6.4: .invalid never resolves
+        "192.0.2.7",  # RFC 5737 TEST-NET-1: documentation only, never an address of this machine
     ],
 )
 def test_serve_on_an_impossible_host_gives_one_line(tmp_path, host):
