@@ -66,7 +66,7 @@ def list_files(inbox: Path, exclude: list[Path] = ()) -> list[Path]:
     Entries that are not regular files, or cannot be used as they are, are left out; :func:`scan_entries`
     also says which and why.
     """
-    return scan_entries(inbox, exclude)[0]
+    return [f for f, _ in scan_entries(inbox, exclude)[0]]
 
 
 @dataclass
@@ -149,15 +149,15 @@ def classify(path: Path) -> tuple[os.stat_result | None, Skipped | None]:
     return st, None
 
 
-def scan_entries(inbox: Path, exclude: list[Path] = ()) -> tuple[list[Path], list[Skipped]]:
-    """The regular files under ``inbox`` (recursively, sorted; hidden names and ``exclude`` folders skipped),
-    and the entries left out with the reason: named pipes, sockets and devices (never opened), dangling
-    links, link loops, links to folders, names that are not UTF-8, folders that cannot be listed."""
+def scan_entries(inbox: Path, exclude: list[Path] = ()) -> tuple[list[tuple[Path, os.stat_result]], list[Skipped]]:
+    """The regular files under ``inbox`` with their ``stat`` (recursively, sorted; hidden names and ``exclude``
+    folders skipped), and the entries left out with the reason: named pipes, sockets and devices (never opened),
+    dangling links, link loops, links to folders, names that are not UTF-8, folders that cannot be listed."""
     inbox = Path(inbox)
     if not inbox.is_dir():
         raise LimenError("inbox is not a folder", inbox)
     skip = {Path(p).resolve() for p in exclude}
-    out: list[Path] = []
+    out: list[tuple[Path, os.stat_result]] = []
     skipped: list[Skipped] = []
 
     def unlistable(exc: OSError) -> None:
@@ -182,7 +182,7 @@ def scan_entries(inbox: Path, exclude: list[Path] = ()) -> tuple[list[Path], lis
             if problem is not None:
                 skipped.append(problem)
             elif st is not None:
-                out.append(r / f)
+                out.append((r / f, st))
     return out, skipped
 
 

@@ -16,7 +16,7 @@ from scorer.errors import LimenError
 from scorer.workflow.inputs import image_content_hash
 from scorer.qc.config import NightlyConfig, default_config
 from scorer.qc.faults import fault_point
-from scorer.qc.inbox import InboxImage, Skipped, check_inbox, classify, examine, quarantine_file, scan_entries
+from scorer.qc.inbox import InboxImage, Skipped, check_inbox, examine, quarantine_file, scan_entries
 from scorer.qc.scale import SessionJob, make_runner
 from scorer.qc.claims import DEFAULT_LEASE_S
 from scorer.qc.engine import default_db_url, display_url
@@ -153,11 +153,7 @@ def _scan(inbox, qdir, config, store, settle_s, result, tm, progress, hash_threa
     now = time.time()
     hashed, remember, to_hash = [], [], []
     t = time.perf_counter()
-    for f in files:
-        st, problem = classify(f)  # again: the entry may have changed since the listing
-        if st is None or problem is not None:  # moved meanwhile (another run's quarantine), or no longer usable
-            skipped += [problem] if problem is not None else []
-            continue
+    for f, st in files:
         if settle_s and now - st.st_mtime < settle_s:
             result.arriving.append(str(f))
             continue
