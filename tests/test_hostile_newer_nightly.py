@@ -76,13 +76,13 @@ def inbox(base, tmp_path):
     return box
 
 
-def _nightly_args(inbox, cfg, *extra):
-    db = inbox.parent / "nightly.sqlite"
+def _nightly_args(inbox, cfg, *extra, db=None):
+    db = db or inbox.parent / "nightly.sqlite"
     return ["nightly", "--settle-seconds", "0", "--inbox", inbox, "--config", cfg, "--db", db, "--json", *extra]
 
 
-def _nightly(inbox, cfg, *extra):
-    res = _run(_nightly_args(inbox, cfg, *extra))
+def _nightly(inbox, cfg, *extra, db=None):
+    res = _run(_nightly_args(inbox, cfg, *extra, db=db))
     assert res.exception is None or isinstance(res.exception, SystemExit), repr(res.exception)
     return res
 
@@ -160,6 +160,14 @@ def test_a_named_pipe_in_the_inbox_is_skipped_without_being_opened(base, inbox):
 
 
 def test_dangling_links_and_unreadable_files_are_said_once(base, inbox, monkeypatch):
+    _said_once(base, inbox, monkeypatch, None)
+
+
+def test_said_once_on_postgresql_too(base, inbox, monkeypatch, postgres_url):
+    _said_once(base, inbox, monkeypatch, postgres_url)
+
+
+def _said_once(base, inbox, monkeypatch, db):
     secret = inbox / "secret.dcm"
     shutil.copyfile(next(inbox.rglob("*.dcm")), secret)
     (inbox / "gone.dcm").symlink_to(inbox / "moved-away.dcm")
@@ -179,8 +187,8 @@ def test_dangling_links_and_unreadable_files_are_said_once(base, inbox, monkeypa
 
         monkeypatch.setattr(Path, "open", refusing_open)
     try:
-        first = _nightly(inbox, base[1])
-        second = _nightly(inbox, base[1])
+        first = _nightly(inbox, base[1], db=db)
+        second = _nightly(inbox, base[1], db=db)
     finally:
         secret.chmod(0o600)
     assert first.exit_code == 0, first.stderr
