@@ -71,7 +71,7 @@ def list_files(inbox: Path, exclude: list[Path] = ()) -> list[Path]:
 
 @dataclass
 class Skipped:
-    """An inbox entry left where it is, and why (one line): said once, until it changes (see DEVELOPERS.md)."""
+    """An inbox entry left where it is, and why (one line): said once per path and kind (see DEVELOPERS.md)."""
 
     key: str  # the file-cache key: the path, its undecodable bytes escaped
     kind: str  # what is wrong, short: the file-cache marker is "!" + kind

@@ -210,8 +210,9 @@ def _scan(inbox, qdir, config, store, settle_s, result, tm, progress, hash_threa
 
 
 def _say_skipped(skipped: list[Skipped], cache: dict, remember: list, result: NightlyResult) -> None:
-    """Each skipped entry is said on the first run that meets it in its state; the file cache keeps a marker
-    (``"!" + kind`` in place of the hash), so the next nights stay quiet until the entry changes or is fixed."""
+    """Each skipped entry is said on the first run that meets it with its kind of problem; the file cache keeps a
+    marker (``"!" + kind`` in place of the hash) under its path, so the next nights stay quiet until the problem
+    is another (a dangling link made a pipe) or the entry is fixed (its hash replaces the marker) and breaks again."""
     for s in skipped:
         c = cache.get(s.key)
         if c is not None and c[2] == s.marker:
