@@ -2,7 +2,8 @@
 
 Each operation changes the account and adds its audit entry in the caller's transaction (the caller commits):
 the command line and the browser apply the same rules — names by :func:`webapp.accounts.check_new_name`, one
-account per name key, sessions ended by :func:`webapp.accounts.end_sessions` — and leave the same trace
+account per name key and per look-alike key (:func:`webapp.accounts.look_alike_of`), sessions ended by
+:func:`webapp.accounts.end_sessions` — and leave the same trace
 (``add_user``, ``disable_user``, ``enable_user``, ``reset_password``, ``sign_out_everywhere``; the command line
 adds ``via``, the browser's entries name the coordinator).  A coordinator cannot disable, or reset the password
 of, their own account from the browser (that would lock them out mid-page; the server's ``limen users`` can).
@@ -13,7 +14,7 @@ from __future__ import annotations
 import secrets
 
 from scorer.errors import LimenError
-from webapp.accounts import check_new_name, end_sessions, find_user, shown_name
+from webapp.accounts import check_new_name, end_sessions, find_user, look_alike_of, name_key, shown_name
 from webapp.models import ROLES, User
 from webapp.security import audit, hash_password
 
@@ -39,6 +40,14 @@ def add_account(session, name: str, role: str, password: str, **detail) -> User:
     name = check_new_name(name)
     if role not in ROLES:
         raise LimenError(f"role must be one of {', '.join(ROLES)}, got {shown_name(role)!r}")
+    other = look_alike_of(session, name)
+    if other is not None and name_key(other.username) == name_key(name):
+        raise LimenError(f"user name {name!r} is taken (names are compared without regard to case)")
+    if other is not None:
+        raise LimenError(
+            f"user name {name!r} looks like the account {other.username!r} (0/O, 1/l/I and m/rn pass for one "
+            "another): choose another name"
+        )
     user = User(username=name, password_hash=hash_password(password), role=role)
     session.add(user)
     try:

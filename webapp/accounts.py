@@ -9,6 +9,15 @@ chapter 3 of the Unicode Standard, see docs/references.md), so ``Reader1``, ``re
 its own (``users.username_key``) with a unique constraint: the database itself refuses two accounts whose
 names differ only by case.
 
+**Look-alikes.** Within the safe set some characters still pass for others: ``0``/``O``, ``1``/``l``/``I`` and
+``m``/``rn``.  A new name is refused when its *look-alike key* equals an existing account's: the confusable
+skeleton of Unicode Technical Standard #39 (section 4, data file confusables.txt) taken around case folding,
+``skeleton(casefold(skeleton(name)))``, so ``reader01``, ``Reader0l`` and ``READERO1`` are one name.  Only the
+four mappings of confusables.txt whose source lies in the safe set are needed (every other character of the set
+is its own prototype; checked against ICU 77.1 / Unicode 16.0 ``SpoofChecker.getSkeleton``), which is why the
+6 000-entry table and a library carrying it (ICU bindings) are not used: a name with any other character is
+refused by the character rule, and its message names the character (``U+0430 CYRILLIC SMALL LETTER A``).
+
 **Sessions.** Every account carries a session generation (``users.session_generation``), written into the
 signed session cookie at sign-in (Flask-Login's user id is ``"<id>:<generation>"``).  Sign-out, a new
 password, disabling the account and a coordinator's "sign out everywhere" raise the generation, so every
@@ -38,7 +47,41 @@ def check_new_name(name: str) -> str:
     if _NAME.fullmatch(name):
         return name
     shown = repr(name) if len(name) <= MAX_NAME_CHARS else f"of {len(name)} characters"
+    odd = next((ch for ch in name if not (ch.isascii() and ch.isprintable())), None)
+    if odd is not None:  # a look-alike or invisible character: say which, so the reader sees why
+        what = unicodedata.name(odd, "unnamed character")
+        raise LimenError(f"user name {shown}: character U+{ord(odd):04X} {what} is not allowed; use {NAME_RULE}")
     raise LimenError(f"user name {shown}: use {NAME_RULE}")
+
+
+#: UTS #39 confusables.txt prototypes of the safe set's characters that have one (Unicode 16.0): DIGIT ZERO → O,
+#: DIGIT ONE → l, LATIN CAPITAL LETTER I → l, LATIN SMALL LETTER M → rn.  Every other allowed character maps to
+#: itself (checked against ICU 77.1 SpoofChecker.getSkeleton over the whole set).
+_PROTOTYPES = str.maketrans({"0": "O", "1": "l", "I": "l", "m": "rn"})
+
+
+def _skeleton(text: str) -> str:
+    """UTS #39 skeleton, restricted to the safe set: NFD, each character to its prototype, NFD."""
+    return unicodedata.normalize("NFD", unicodedata.normalize("NFD", text).translate(_PROTOTYPES))
+
+
+def look_alike_key(name: str) -> str:
+    """Names with the same look-alike key pass for one another (case aside): ``skeleton(casefold(skeleton(·)))``
+    of the NFKC-normalised name, so ``reader01``, ``Reader0l``, ``READERO1`` and ``reader0I`` share one."""
+    return _skeleton(_skeleton(unicodedata.normalize("NFKC", name or "").strip()).casefold())
+
+
+def look_alike_of(session, name: str):
+    """The existing account whose name ``name`` could pass for (same key, or same look-alike key), or None."""
+    from sqlalchemy import select
+
+    from webapp.models import User
+
+    key, look = name_key(name), look_alike_key(name)
+    users = session.execute(select(User).order_by(User.id)).scalars().all()
+    return next((u for u in users if name_key(u.username) == key), None) or next(
+        (u for u in users if look_alike_key(u.username) == look), None
+    )
 
 
 def valid_key(key: str) -> bool:

@@ -64,6 +64,23 @@ def show(db, detector, as_json):
         )
 
 
+def _date(value: str | None, option: str) -> str | None:
+    """A calendar date written YYYY-MM-DD (as the sessions store theirs), or a one-line LimenError."""
+    import datetime as dt
+    import re
+
+    if value is None:
+        return None
+    text = value.strip()
+    try:
+        if not re.fullmatch(r"\d{4}-\d{2}-\d{2}", text):
+            raise ValueError
+        return dt.date.fromisoformat(text).isoformat()
+    except ValueError:
+        shown = repr(text) if len(text) <= 40 else f"of {len(text)} characters"
+        raise LimenError(f"{shown} is not a date: write YYYY-MM-DD, e.g. 2026-03-02", option) from None
+
+
 @baseline.command("set")
 @options.nightly_db()
 @click.option("--detector", required=True, help="The detector's name in the database.")
@@ -74,6 +91,9 @@ def set_(db, detector, sessions, date_from, date_to):
     """Set a detector's baseline explicitly from chosen scored sessions."""
     if bool(sessions) == bool(date_from or date_to):
         raise LimenError("give either --sessions or --from/--to")
+    date_from, date_to = _date(date_from, "--from"), _date(date_to, "--to")
+    if date_from and date_to and date_from > date_to:
+        raise LimenError(f"--from {date_from} is after --to {date_to}")
     store = _open(db)
     try:
         if sessions:

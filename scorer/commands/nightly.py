@@ -102,6 +102,9 @@ def nightly(
     config = load_nightly_config(config_file)
     from pathlib import Path
 
+    from scorer.qc.inbox import check_inbox
+
+    check_inbox(inbox, quarantine_dir)  # before the database is opened: a run that cannot go makes nothing
     url = db_url_option(db) or default_db_url(Path(inbox).resolve().parent)
     store = open_store(url)
     try:
@@ -135,6 +138,8 @@ def nightly(
         _print(result, page)
     for e in result.errors:
         click.echo(f"warning: {e}", err=True)
+    for k in result.skipped:
+        click.echo(f"warning: {k['path']}: {k['reason']}", err=True)
     for r in result.repeated:
         click.echo(f"warning: {r['message']}", err=True)
     if result.alerts:
@@ -159,6 +164,9 @@ def _print(result, page) -> None:
         click.echo(f"  {len(result.arriving)} file(s) still arriving: left for the next run")
     for q in result.quarantined:
         click.echo(f"  quarantined {q['path']}: {q['reason']}")
+    if result.skipped_before:
+        n = result.skipped_before
+        click.echo(f"  {n} inbox entr{'y' if n == 1 else 'ies'} skipped, as said on an earlier run")
     for a in result.alerts:
         click.echo(f"ALERT [{a['rule']}, {a['direction']}] {a['message']}")
     if page is not None:

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import os
 import sys
 
 import click
@@ -29,6 +30,42 @@ def make_server(app, **kwargs):
     from waitress import create_server
 
     return create_server(app, max_request_body_size=int(app.config["MAX_CONTENT_LENGTH"]) + 1, ident="limen", **kwargs)
+
+
+def check_listen_address(host: str, port: int) -> None:
+    """Refuse, in one line naming the option, an address the server cannot listen on: a host name that does not
+    resolve, an address not of this machine, a port in use or not allowed.  Checked by binding (as waitress
+    binds: SO_REUSEADDR on POSIX) and closing again, before the app, its database or the demo are made."""
+    import errno
+    import socket
+
+    from scorer.errors import LimenError
+
+    shown = host if len(host) <= 80 else host[:80] + "…"
+    try:
+        infos = socket.getaddrinfo(host, port, socket.AF_UNSPEC, socket.SOCK_STREAM, 0, socket.AI_PASSIVE)
+    except (OSError, UnicodeError) as exc:
+        reason = getattr(exc, "strerror", None) or str(exc) or type(exc).__name__
+        what = f"{shown!r} is not an address or host name this machine can resolve ({reason})"
+        raise LimenError(what, "--host") from None
+    for family, kind, proto, _name, addr in infos:
+        with socket.socket(family, kind, proto) as sock:
+            if os.name == "posix":
+                sock.setsockopt(socket.SOL_SOCKET, socket.SO_REUSEADDR, 1)
+            try:
+                sock.bind(addr)
+            except OSError as exc:
+                if exc.errno == errno.EADDRINUSE:
+                    raise LimenError(
+                        f"{port} is already in use on {addr[0]} (another server running? choose another port)",
+                        "--port",
+                    ) from None
+                if exc.errno == errno.EADDRNOTAVAIL:
+                    raise LimenError(f"{shown!r} is not an address of this machine", "--host") from None
+                if exc.errno == errno.EACCES:
+                    what = f"{port}: not allowed to listen on this port (permission denied)"
+                    raise LimenError(what, "--port") from None
+                raise LimenError(f"cannot listen on {shown} port {port} ({exc.strerror or exc})", "--host") from None
 
 
 @click.command("serve")
@@ -84,6 +121,7 @@ def serve(host, port, db_url, instance, threads, connection_limit, demo, import_
     """
     from webapp import create_app
 
+    check_listen_address(host, port)
     app = create_app(build_config(db_url, instance, import_root, secure_cookies, trusted_proxies))
     click.echo(f"instance: {app.instance_path}", err=True)
     click.echo(f"database: {app.config['DATABASE_URL'].split('@')[-1]}", err=True)
@@ -95,7 +133,13 @@ def serve(host, port, db_url, instance, threads, connection_limit, demo, import_
         click.echo("demo accounts (passwords shown once):")
         for name, pw in out["credentials"].items():
             click.echo(f"  {name:<12} {pw}")
-    server = make_server(app, host=host, port=port, threads=threads, connection_limit=connection_limit)
+    try:
+        server = make_server(app, host=host, port=port, threads=threads, connection_limit=connection_limit)
+    except (OSError, ValueError) as exc:  # taken meanwhile (the demo takes a while), or refused by waitress
+        from scorer.errors import LimenError
+
+        reason = getattr(exc, "strerror", None) or exc
+        raise LimenError(f"cannot listen on {host} port {port} ({reason})", "--port") from None
     click.echo(f"Limen reader studies on http://{server.effective_host}:{server.effective_port}/ (Ctrl-C to stop)")
     if demo:
         click.echo("sign in as 'coordinator' to follow the study, or as reader1 to read.")

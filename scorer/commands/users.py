@@ -2,8 +2,12 @@
 
 from __future__ import annotations
 
+import os
+import sys
 
 import click
+
+from scorer.errors import LimenError
 
 
 def _app(db_url, instance):
@@ -35,13 +39,57 @@ def _with_db(f):
     return f
 
 
-def _new_password(generate: bool, prompt: str) -> str:
-    """A generated password (shown once by the caller) or one prompted twice (webapp.account_admin's rules)."""
+def _new_password(generate: bool, from_stdin: bool, prompt: str) -> str:
+    """A generated password (shown once by the caller), one line of standard input (``--password-stdin``), or
+    one prompted twice on the terminal (webapp.account_admin's rules).  Without a terminal to prompt on, a one-line
+    error says what to give instead (getpass would print its warnings and read the password visibly)."""
     from webapp.account_admin import check_password, generate_password
 
+    if generate and from_stdin:
+        raise LimenError("give --generate or --password-stdin, not both")
     if generate:
         return generate_password()
-    return check_password(click.prompt(prompt, hide_input=True, confirmation_prompt=True))
+    if from_stdin:
+        line = sys.stdin.readline() if sys.stdin is not None else ""
+        if not line:
+            raise LimenError("no password on standard input (one line expected)", "--password-stdin")
+        return check_password(line.rstrip("\r\n"))
+    no_terminal = LimenError(
+        "no terminal to ask for the password on: give --password-stdin (one line on standard input) or --generate"
+    )
+    if sys.stdin is sys.__stdin__ and not _terminal():  # the process's own input (a test harness gives its own)
+        raise no_terminal
+    import getpass
+    import warnings
+
+    with warnings.catch_warnings():  # getpass falls back to an echoed prompt with a warning: refuse instead
+        warnings.simplefilter("error", getpass.GetPassWarning)
+        try:
+            return check_password(click.prompt(prompt, hide_input=True, confirmation_prompt=True))
+        except getpass.GetPassWarning:
+            raise no_terminal from None
+
+
+def _terminal() -> bool:
+    """Whether a hidden prompt can be shown: the controlling terminal opens (as getpass opens it), or standard
+    input is a terminal."""
+    try:
+        fd = os.open("/dev/tty", os.O_RDWR | os.O_NOCTTY)
+    except OSError:
+        try:
+            return sys.stdin is not None and sys.stdin.isatty()
+        except ValueError:  # closed
+            return False
+    os.close(fd)
+    return True
+
+
+_password_stdin = click.option(
+    "--password-stdin",
+    "password_stdin",
+    is_flag=True,
+    help="Read the password from the first line of standard input (for scripts; nothing is echoed).",
+)
 
 
 @click.group("users")
@@ -53,15 +101,16 @@ def users():
 @click.argument("name")
 @click.option("--role", type=click.Choice(["coordinator", "reader"]), required=True)
 @click.option("--generate", is_flag=True, help="Generate a password and show it once instead of prompting.")
+@_password_stdin
 @_with_db
-def add(name, role, generate, db_url, instance):
-    """Create an account NAME (password prompted, or generated with --generate)."""
+def add(name, role, generate, password_stdin, db_url, instance):
+    """Create an account NAME (password prompted, read with --password-stdin, or generated with --generate)."""
     from webapp.account_admin import add_account
     from webapp.accounts import check_new_name
     from webapp.security import db
 
     name = check_new_name(name)
-    password = _new_password(generate, "password")
+    password = _new_password(generate, password_stdin, "password")
     app = _app(db_url, instance)
     with app.app_context():
         add_account(db(), name, role, password, via="limen users add")
@@ -137,12 +186,14 @@ def enable(name, db_url, instance):
 @users.command("password")
 @click.argument("name")
 @click.option("--generate", is_flag=True, help="Generate a password and show it once instead of prompting.")
+@_password_stdin
 @_with_db
-def password(name, generate, db_url, instance):
-    """Set a new password for account NAME (prompted, or generated with --generate); its sessions end."""
+def password(name, generate, password_stdin, db_url, instance):
+    """Set a new password for account NAME (prompted, read with --password-stdin, or generated with --generate);
+    its sessions end."""
     from webapp import account_admin
 
-    new = _new_password(generate, "new password")
+    new = _new_password(generate, password_stdin, "new password")
     _change(name, db_url, instance, lambda u: account_admin.reset_password(u, new, via="limen users password"))
     click.echo(f"new password set for {name}")
     if generate:

@@ -64,6 +64,7 @@ file and the entry.
 from __future__ import annotations
 
 import dataclasses
+import math
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Callable
@@ -368,6 +369,8 @@ def _number(value, path, where, lo=None, hi=None, integer=False):
     ok = isinstance(value, int) if integer else isinstance(value, (int, float))
     if isinstance(value, bool) or not ok:
         raise LimenError(f"{where} must be {'an integer' if integer else 'a number'}, got {value!r}", path)
+    if not math.isfinite(value):  # TOML has nan and inf; every range check below is False for nan
+        raise LimenError(f"{where} must be a finite number, got {value!r}", path)
     if (lo is not None and value < lo) or (hi is not None and value > hi):
         rng = f"at least {lo}" if hi is None else f"in {lo}–{hi}"
         raise LimenError(f"{where} must be {rng}, got {value!r}", path)
@@ -455,7 +458,7 @@ def _expected(t: dict, path, where) -> Expected:
         if (
             not isinstance(r, list)
             or len(r) != 2
-            or any(isinstance(v, bool) or not isinstance(v, (int, float)) for v in r)
+            or any(isinstance(v, bool) or not isinstance(v, (int, float)) or not math.isfinite(v) for v in r)
             or not 0 <= r[0] <= r[1]
         ):
             raise LimenError(f"{where}.exposure_uas must be [lowest, highest] in µAs", path)

@@ -9,8 +9,11 @@ one-line reason; :func:`quarantine_file` moves them aside with the reason beside
 
 from __future__ import annotations
 
+import errno
 import os
 import shutil
+import stat
+import tempfile
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -58,17 +61,167 @@ class Rejected:
 
 
 def list_files(inbox: Path, exclude: list[Path] = ()) -> list[Path]:
-    """Every regular file under ``inbox`` (recursively, sorted), skipping hidden files and ``exclude`` folders."""
+    """Every regular file under ``inbox`` (recursively, sorted), skipping hidden files and ``exclude`` folders.
+
+    Entries that are not regular files, or cannot be used as they are, are left out; :func:`scan_entries`
+    also says which and why.
+    """
+    return [f for f, _ in scan_entries(inbox, exclude)[0]]
+
+
+@dataclass
+class Skipped:
+    """An inbox entry left where it is, and why (one line): said once per path and kind (see DEVELOPERS.md)."""
+
+    key: str  # the file-cache key: the path, its undecodable bytes escaped
+    kind: str  # what is wrong, short: the file-cache marker is "!" + kind
+    reason: str
+    size: int = 0
+    mtime_ns: str = "0"
+
+    @property
+    def marker(self) -> str:
+        return "!" + self.kind
+
+
+#: the longest path the nightly database stores (the file cache's key column)
+MAX_PATH_CHARS = 1024
+
+_NOT_REGULAR = (
+    (stat.S_ISFIFO, "fifo", "a named pipe (FIFO), not a regular file: skipped"),
+    (stat.S_ISSOCK, "socket", "a socket, not a regular file: skipped"),
+    (stat.S_ISCHR, "device", "a character device, not a regular file: skipped"),
+    (stat.S_ISBLK, "device", "a block device, not a regular file: skipped"),
+)
+
+
+def path_text(path) -> str:
+    """``path`` as text that can be printed and stored: bytes that are not UTF-8 shown as ``\\xNN``."""
+    return os.fsencode(os.fspath(path)).decode("utf-8", "backslashreplace")
+
+
+def _stamp(st) -> tuple[int, str]:
+    return (int(st.st_size), str(st.st_mtime_ns)) if st is not None else (0, "0")
+
+
+def classify(path: Path) -> tuple[os.stat_result | None, Skipped | None]:
+    """``(stat, None)`` for a regular file the scan can read by name, else ``(lstat or None, Skipped)``.
+
+    Never opens the file: a named pipe is recognised from its mode, so the scan cannot block on one.
+    """
+    key = path_text(path)
+    try:
+        lst = os.lstat(path)
+    except FileNotFoundError:
+        return None, None  # gone meanwhile (another run's quarantine)
+    except OSError as exc:
+        return None, Skipped(key, "unreadable", f"cannot be examined ({exc.strerror or exc}): skipped")
+    size, mtime = _stamp(lst)
+    if key != str(path):
+        return lst, Skipped(key, "name", "file name is not valid UTF-8: rename the file to have it scored", size, mtime)
+    if len(key) > MAX_PATH_CHARS:
+        return lst, Skipped(
+            key[:200] + "…", "name", f"path longer than {MAX_PATH_CHARS} characters: move it higher up", size, mtime
+        )
+    try:
+        st = os.stat(path)
+    except FileNotFoundError:
+        if not stat.S_ISLNK(lst.st_mode):
+            return None, None  # gone meanwhile
+        try:
+            target = os.readlink(path)
+        except OSError:
+            target = "?"
+        return lst, Skipped(
+            key, "dangling", f"symbolic link to {path_text(target)!r}, which does not exist: skipped", size, mtime
+        )
+    except OSError as exc:
+        if exc.errno == errno.ELOOP:
+            return lst, Skipped(key, "loop", "symbolic link loop (the link leads back to itself): skipped", size, mtime)
+        return lst, Skipped(key, "unreadable", f"cannot be examined ({exc.strerror or exc}): skipped", size, mtime)
+    for test, kind, reason in _NOT_REGULAR:
+        if test(st.st_mode):
+            return st, Skipped(key, kind, reason, *_stamp(st))
+    if stat.S_ISDIR(st.st_mode):
+        return st, Skipped(
+            key, "folder-link", "symbolic link to a folder: not followed (scan that folder itself)", size, mtime
+        )
+    return st, None
+
+
+def scan_entries(inbox: Path, exclude: list[Path] = ()) -> tuple[list[tuple[Path, os.stat_result]], list[Skipped]]:
+    """The regular files under ``inbox`` with their ``stat`` (recursively, sorted; hidden names and ``exclude``
+    folders skipped), and the entries left out with the reason: named pipes, sockets and devices (never opened),
+    dangling links, link loops, links to folders, names that are not UTF-8, folders that cannot be listed."""
     inbox = Path(inbox)
     if not inbox.is_dir():
         raise LimenError("inbox is not a folder", inbox)
     skip = {Path(p).resolve() for p in exclude}
-    out = []
-    for root, dirs, files in os.walk(inbox):
+    out: list[tuple[Path, os.stat_result]] = []
+    skipped: list[Skipped] = []
+
+    def unlistable(exc: OSError) -> None:
+        reason = f"folder cannot be read ({exc.strerror or exc}): not scanned"
+        skipped.append(Skipped(path_text(exc.filename), "unlistable", reason))
+
+    for root, dirs, files in os.walk(inbox, onerror=unlistable):
         r = Path(root)
-        dirs[:] = sorted(d for d in dirs if not d.startswith(".") and (r / d).resolve() not in skip)
-        out += [r / f for f in sorted(files) if not f.startswith(".") and not f.endswith(REASON_SUFFIX)]
-    return out
+        keep = []
+        for d in sorted(dirs):
+            if d.startswith(".") or (r / d).resolve() in skip:
+                continue
+            if os.path.islink(r / d):
+                skipped.append(classify(r / d)[1] or Skipped(path_text(r / d), "folder-link", "not followed"))
+            else:
+                keep.append(d)
+        dirs[:] = keep
+        for f in sorted(files):
+            if f.startswith(".") or f.endswith(REASON_SUFFIX):
+                continue
+            st, problem = classify(r / f)
+            if problem is not None:
+                skipped.append(problem)
+            elif st is not None:
+                out.append((r / f, st))
+    return out, skipped
+
+
+def check_inbox(inbox, quarantine_dir=None) -> tuple[Path, Path]:
+    """``(inbox, quarantine folder)`` checked before a nightly run does anything, or a one-line LimenError.
+
+    The inbox must be a folder whose path is UTF-8 text (the database stores paths as text); the quarantine
+    folder (``--quarantine``, default ``INBOX/quarantine``) is created when missing and must take a file, so a
+    regular file named ``quarantine`` in the inbox, or a folder the run cannot write, stops the run at once
+    rather than on the first unusable file.
+    """
+    inbox = Path(inbox)
+    if not inbox.is_dir():
+        raise LimenError("inbox is not a folder", inbox)
+    if path_text(inbox.resolve()) != str(inbox.resolve()):
+        raise LimenError("the inbox's path is not valid UTF-8: rename the folder", path_text(inbox))
+    if quarantine_dir is None:
+        return inbox, prepare_quarantine(inbox / "quarantine", given=False)
+    return inbox, prepare_quarantine(quarantine_dir, given=True)
+
+
+def prepare_quarantine(quarantine_dir, given: bool) -> Path:
+    """The quarantine folder, created if missing and checked writable (a file made and removed), or a one-line
+    LimenError naming it."""
+    qdir = Path(quarantine_dir)
+    shown = path_text(qdir)
+    what = "--quarantine" if given else "INBOX/quarantine (where unusable files are moved)"
+    if shown != str(qdir) or path_text(qdir.resolve()) != str(qdir.resolve()):
+        raise LimenError(f"{what}: the path is not valid UTF-8", shown)
+    if qdir.exists() and not qdir.is_dir():
+        hint = "" if given else "; move this file away or give --quarantine"
+        raise LimenError(f"{what} is a file, not a folder{hint}", shown)
+    try:
+        qdir.mkdir(parents=True, exist_ok=True)
+        with tempfile.NamedTemporaryFile(dir=qdir, prefix=".limen-write-test-"):
+            pass
+    except OSError as exc:
+        raise LimenError(f"{what}: cannot write in this folder ({exc.strerror or exc})", shown) from None
+    return qdir
 
 
 def examine(path, sha256: str, config: NightlyConfig) -> InboxImage | Rejected:

@@ -16,7 +16,7 @@ from scorer.errors import LimenError
 from scorer.workflow.inputs import image_content_hash
 from scorer.qc.config import NightlyConfig, default_config
 from scorer.qc.faults import fault_point
-from scorer.qc.inbox import InboxImage, examine, list_files, quarantine_file
+from scorer.qc.inbox import InboxImage, Skipped, check_inbox, examine, quarantine_file, scan_entries
 from scorer.qc.scale import SessionJob, make_runner
 from scorer.qc.claims import DEFAULT_LEASE_S
 from scorer.qc.engine import default_db_url, display_url
@@ -35,6 +35,10 @@ class NightlyResult:
     duplicates: list[dict] = field(default_factory=list)
     arriving: list[str] = field(default_factory=list)
     errors: list[str] = field(default_factory=list)
+    #: inbox entries left in place (named pipes, dangling links, link loops, unreadable files, names that are not
+    #: UTF-8), said on the first run that meets each in that state; ``skipped_before`` counts those said earlier
+    skipped: list[dict] = field(default_factory=list)
+    skipped_before: int = 0
     #: sessions formed from new files on a detector, day and settings that already have a session (a re-export,
     #: a second run of the same morning, or images simulated again): scored, and said
     repeated: list[dict] = field(default_factory=list)
@@ -55,6 +59,8 @@ class NightlyResult:
             "duplicates": self.duplicates,
             "arriving": self.arriving,
             "errors": self.errors,
+            "skipped": self.skipped,
+            "skipped_said_before": self.skipped_before,
             "repeated_sessions": self.repeated,
             "emailed_alerts": self.emailed,
             "runner": self.runner,
@@ -98,13 +104,10 @@ def run_nightly(
     lease_s : a claim not renewed for this long is taken over by another run.
     """
     t_start = time.perf_counter()
-    inbox = Path(inbox)
-    if not inbox.is_dir():
-        raise LimenError("inbox is not a folder", inbox)
+    inbox, qdir = check_inbox(inbox, quarantine_dir)
     config = config or default_config()
     own_store = store is None
     store = store or open_store(db_url or default_db_url(inbox.resolve().parent))
-    qdir = Path(quarantine_dir) if quarantine_dir else inbox / "quarantine"
     result = NightlyResult(db=display_url(store.url))
     tm = _Timer()
     try:
@@ -144,31 +147,31 @@ def _scan(inbox, qdir, config, store, settle_s, result, tm, progress, hash_threa
     from tqdm import tqdm
 
     t = time.perf_counter()
-    files = list_files(inbox, exclude=[qdir])
+    files, skipped = scan_entries(inbox, exclude=[qdir])
     cache = store.file_cache()
     tm.add("db_s", time.perf_counter() - t)
     now = time.time()
     hashed, remember, to_hash = [], [], []
     t = time.perf_counter()
-    for f in files:
-        try:
-            st = f.stat()
-        except FileNotFoundError:  # moved meanwhile (another run's quarantine)
-            continue
+    for f, st in files:
         if settle_s and now - st.st_mtime < settle_s:
             result.arriving.append(str(f))
             continue
         c = cache.get(str(f))
-        if c and c[0] == st.st_size and c[1] == str(st.st_mtime_ns):
+        if c and not c[2].startswith("!") and c[0] == st.st_size and c[1] == str(st.st_mtime_ns):
             hashed.append((f, c[2]))
             continue
         to_hash.append((f, st))
     # new files are hashed on as many threads as the run has workers (hashlib releases the GIL on large reads)
-    for (f, st), sha in zip(to_hash, _hash_all([f for f, _ in to_hash], hash_threads)):
+    for (f, st), (sha, error) in zip(to_hash, _hash_all([f for f, _ in to_hash], hash_threads)):
         if sha is None:
-            continue  # vanished between listing and reading
+            if error is not None and os.path.lexists(f):  # there, but cannot be read (permissions, I/O error)
+                reason = f"{error}: skipped until it can be read"
+                skipped.append(Skipped(str(f), "unreadable", reason, st.st_size, str(st.st_mtime_ns)))
+            continue  # else vanished between listing and reading
         hashed.append((f, sha))
         remember.append((str(f), st.st_size, str(st.st_mtime_ns), sha))
+    _say_skipped(skipped, cache, remember, result)
     tm.add("hash_s", time.perf_counter() - t)
     t = time.perf_counter()
     known = store.known_images(h for _, h in hashed)
@@ -206,15 +209,31 @@ def _scan(inbox, qdir, config, store, settle_s, result, tm, progress, hash_threa
     tm.add("db_s", time.perf_counter() - t)
 
 
-def _hash_one(path):
+def _say_skipped(skipped: list[Skipped], cache: dict, remember: list, result: NightlyResult) -> None:
+    """Each skipped entry is said on the first run that meets it with its kind of problem; the file cache keeps a
+    marker (``"!" + kind`` in place of the hash) under its path, so the next nights stay quiet until the problem
+    is another (a dangling link made a pipe) or the entry is fixed (its hash replaces the marker) and breaks again."""
+    for s in skipped:
+        c = cache.get(s.key)
+        if c is not None and c[2] == s.marker:
+            result.skipped_before += 1
+            continue
+        result.skipped.append({"path": s.key, "reason": s.reason})
+        remember.append((s.key, s.size, s.mtime_ns, s.marker))
+
+
+def _hash_one(path) -> tuple[str | None, str | None]:
+    """(SHA-256, None), or (None, the problem) when the file cannot be read."""
     try:
-        return image_content_hash(path)
-    except LimenError:
-        return None
+        return image_content_hash(path), None
+    except LimenError as exc:
+        text = str(exc)
+        prefix = f"{path}: "
+        return None, text[len(prefix) :] if text.startswith(prefix) else text
 
 
 def _hash_all(paths, threads: int) -> list:
-    """SHA-256 of each file (None for one that vanished), in order; on ``threads`` threads."""
+    """(SHA-256, None) of each file, or (None, the problem), in order; on ``threads`` threads."""
     if threads <= 1 or len(paths) < 2:
         return [_hash_one(p) for p in paths]
     from concurrent.futures import ThreadPoolExecutor
