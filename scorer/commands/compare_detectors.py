@@ -92,7 +92,7 @@ def compare_detectors(
             "--detail-classes needs the dose series of both panels (--dose-a, --dose-b)", "--detail-classes"
         )
     a, b = load_detector_json(detector_a), load_detector_json(detector_b)
-    folder = OutputFolder(out_dir, replace=replace, command="compare-detectors") if out_dir else None
+    folder = OutputFolder(out_dir, replace=replace, command="compare-detectors", beside=True) if out_dir else None
 
     def default_label(p):
         p = Path(p)

@@ -196,7 +196,7 @@ def detector(
     if conversion_file and kerma_csv:
         raise LimenError("give either --conversion or --fit-conversion, not both", "--conversion")
     diam = diameters_from_options(diameters, layout_file)
-    folder = OutputFolder(out_dir, replace=replace, command="detector") if out_dir else None
+    folder = OutputFolder(out_dir, replace=replace, command="detector", beside=True) if out_dir else None
 
     from scorer.workflow import measure_detector_files
 

@@ -135,7 +135,7 @@ def score(
     conversion = load_conversion(conversion_file) if conversion_file else None
     blur = load_mtf(mtf_file) if mtf_file else None
     defect_map = load_defect_map(defect_map_file) if defect_map_file else None
-    folder = OutputFolder(out_dir, replace=replace, command="score") if out_dir else None
+    folder = OutputFolder(out_dir, replace=replace, command="score", beside=True) if out_dir else None
     out = folder.path if folder else None
     overlays: list[Path] = []
     defect_overlays: list[Path] = []
@@ -210,7 +210,7 @@ def score(
     else:
         _print_table(result)
         if out is not None:
-            click.echo(f"\nreport: {out / 'report.html'}  (JSON, CSV and overlays beside it)")
+            click.echo(f"\nreport: {folder.path / 'report.html'}  (JSON, CSV and overlays beside it)")
     for w in result.warnings:
         click.echo(f"warning: {w}", err=True)
     for c in result.curves.values():
