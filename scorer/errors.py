@@ -15,6 +15,19 @@ def short_text(value: object, limit: int = MAX_WORD_CHARS) -> str:
     return f"{text[:head]}…{text[-tail:]} ({len(text)} characters)"
 
 
+def plain_value(value: object) -> str:
+    """A value read from a table as a message shows it: numbers plainly (``0.5``, never ``np.float64(0.5)``),
+    text quoted, both shortened (:func:`short_text`)."""
+    item = getattr(value, "item", None)
+    if callable(item) and type(value).__module__ == "numpy":
+        value = item()
+    if isinstance(value, bool) or value is None:
+        return str(value)
+    if isinstance(value, (int, float)):
+        return f"{value:g}" if isinstance(value, float) else str(value)
+    return short_text(repr(str(value)), 80)
+
+
 class LimenError(Exception):
     """Expected bad input (a malformed file, a missing option, an image that cannot be used).
 

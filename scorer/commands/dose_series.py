@@ -80,6 +80,7 @@ def dose_series(
     human_factor = resolve_human_factor(human_factor, factor_file, observer, fitted_method if limits_file else None)
     layout = load_layout(layout_file)
     limits = load_limits(limits_file) if limits_file else None
+    options.refuse_unused_factor(human_factor, limits)
     conversion = load_conversion(conversion_file) if conversion_file else None
     blur = load_mtf(mtf_file) if mtf_file else None
     # the folder is checked before any image is read: an unusable or (without --replace) non-empty --out is

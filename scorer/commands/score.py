@@ -132,6 +132,7 @@ def score(
         click.echo("warning: --human-factor/--human-factor-from has no effect without --limits", err=True)
     layout = load_layout(layout_file)
     limits = load_limits(limits_file) if limits_file else None
+    options.refuse_unused_factor(human_factor, limits)
     conversion = load_conversion(conversion_file) if conversion_file else None
     blur = load_mtf(mtf_file) if mtf_file else None
     defect_map = load_defect_map(defect_map_file) if defect_map_file else None
