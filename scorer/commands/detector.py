@@ -200,6 +200,7 @@ def detector(
 
     from scorer.workflow import measure_detector_files
 
+    pending: list[str] = []
     measured = measure_detector_files(
         flat_files,
         edge_files,
@@ -210,8 +211,10 @@ def detector(
         conversion_file=conversion_file,
         kerma_csv=kerma_csv,
         noise_csv=noise_csv,
-        warn=lambda text: click.echo(f"warning: {text}", err=True),
+        warn=pending.append,
     )
+    for text in pending:  # shown once the measurement stands: a refusal is one line, never after a warning
+        click.echo(f"warning: {text}", err=True)
     metrics, conv_dict, notes = measured.metrics, measured.conversion, measured.notes
     if metrics is not None:
         if metrics.dqe is None and metrics.mtf is not None and metrics.nnps is not None:
