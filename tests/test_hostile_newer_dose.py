@@ -399,12 +399,6 @@ CASES = [
         lambda w: w.k[25][0].name,
         ("not a flat field",),
     ),
-    Case(
-        "detector-flat-given-twice",
-        lambda w: ["detector", "--flat", w.k[50][0], w.k[50][0]],
-        lambda w: w.k[50][0].name,
-        ("given twice",),
-    ),
 ]
 
 
