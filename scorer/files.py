@@ -291,6 +291,14 @@ class OutputFolder:
 
         stage, real = self._stage, self.target.resolve()
         assert stage is not None
+        for rel in self.foreign:  # a file of someone else's where this run put its own: refused, nothing swapped
+            dst = stage / rel
+            if os.path.lexists(dst) or any(d.is_file() for d in dst.parents if stage in d.parents):
+                raise LimenError(
+                    "is not Limen's and is in the way of this run's output of the same name; move it and run "
+                    "again (the earlier result is left as it was)",
+                    real / rel,
+                )
         for rel in self.foreign:  # the physicist's own files stay: hard links, the originals untouched
             src, dst = real / rel, stage / rel
             dst.parent.mkdir(parents=True, exist_ok=True)

@@ -225,7 +225,7 @@ CASES = [
         "swapped.csv",
         ("contradicts --conversion",),
     ),
-    # DICOM PS3.3 C.8.11.7: Detector Type (0018,7004) DIRECT vs SCINTILLATOR — two panels in one series
+    # DICOM PS3.3, DX Detector Module: Detector Type (0018,7004) DIRECT vs SCINTILLATOR — two panels in one series
     Case(
         "direct-and-indirect-in-one-series",
         lambda w: _dose(
