@@ -3,9 +3,8 @@ from its files (:func:`~scorer.workflow.scoring.score_files`), the fits by :func
 
 from __future__ import annotations
 
-from typing import Callable
-
 from pathlib import Path
+from typing import Callable
 
 from scorer.detector.dose import DoseSeriesResult, background_kerma_ugy, dose_series
 from scorer.detector.dose_groups import check_kerma_agreement, check_one_panel, group_by_kerma
