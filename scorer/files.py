@@ -160,16 +160,28 @@ class OutputFolder:
     ``"complete": false`` and the list of foreign files, and rewritten with ``"complete": true`` and the
     files of this run by :meth:`finish`, so even a run killed midway can be replaced cleanly.
     Every file is written with :func:`atomic_write_bytes` (complete or absent).
+
+    With ``beside`` (the commands that write their outputs through :attr:`path`), a folder holding an earlier
+    result is never emptied first: the new result is built in a hidden folder beside it (``.<name>.limen-new``),
+    and :meth:`finish` swaps the two (two renames; the foreign files come along as hard links), so a run killed
+    at any moment before that leaves the earlier complete result in place.  A run killed between the two renames
+    is put right by the next run on the folder (:meth:`_recover`).  Where no folder can be made beside it (its
+    parent is not writable) or the folder cannot be renamed (a mount point), the files are replaced in place.
     """
 
-    def __init__(self, path, *, replace: bool = False, command: str = "", option: str = "--out"):
+    def __init__(self, path, *, replace: bool = False, command: str = "", option: str = "--out", beside=False):
         import json
 
         self.path = Path(path)
+        self.target = self.path
         self.command = command
+        self._stage: Path | None = None
+        self._earlier: list[str] = []
         p = self.path
         if p.exists() and not p.is_dir():
             raise LimenError(f"is a file, not a folder; give a folder to {option}", p)
+        if beside:
+            _recover(p)
         try:
             p.mkdir(parents=True, exist_ok=True)
             present = self._present()
@@ -198,6 +210,9 @@ class OutputFolder:
                     owned |= set(present) - {str(f) for f in old.get("foreign", []) if isinstance(f, str)}
             foreign = set(present) - owned
         self.foreign = sorted(foreign)
+        self._earlier = sorted(set(present) - foreign - {MANIFEST})
+        if beside and present and self._build_beside():
+            return
         # the manifest says "incomplete" before anything of the earlier run is removed, so a kill from here on
         # leaves a folder that says what it is
         self._write_manifest(complete=False, files=[])
@@ -212,6 +227,21 @@ class OutputFolder:
                 raise LimenError(f"cannot remove the earlier run's file ({exc.strerror or exc})", target) from None
             emptied.update(d for d in target.parents if p in d.parents)
         self._prune_empty_dirs(emptied)
+
+    def _build_beside(self) -> bool:
+        """Make the hidden folder beside the target and write there from now on; False where it cannot be made."""
+        import shutil
+
+        stage, _ = _siblings(self.target)
+        try:
+            if stage.exists():
+                shutil.rmtree(stage)
+            stage.mkdir()
+        except OSError:
+            return False
+        self._stage = self.path = stage
+        self._write_manifest(complete=False, files=[])
+        return True
 
     def _present(self) -> list[str]:
         return sorted(str(f.relative_to(self.path)) for f in self.path.rglob("*") if f.is_file() or f.is_symlink())
@@ -250,4 +280,87 @@ class OutputFolder:
         """Record the files this run wrote (everything now present but the foreign files) as complete."""
         files = [f for f in self._present() if f != MANIFEST and f not in set(self.foreign)]
         self._write_manifest(complete=True, files=files)
+        if self._stage is not None:
+            self._swap(files)
         return files
+
+    def _swap(self, files: list[str]) -> None:
+        """Put the complete new result (built beside) in the target's place, with the foreign files."""
+        import os
+        import shutil
+
+        stage, real = self._stage, self.target.resolve()
+        assert stage is not None
+        for rel in self.foreign:  # a file of someone else's where this run put its own: refused, nothing swapped
+            dst = stage / rel
+            if os.path.lexists(dst) or any(d.is_file() for d in dst.parents if stage in d.parents):
+                raise LimenError(
+                    "is not Limen's and is in the way of this run's output of the same name; move it and run "
+                    "again (the earlier result is left as it was)",
+                    real / rel,
+                )
+        for rel in self.foreign:  # the physicist's own files stay: hard links, the originals untouched
+            src, dst = real / rel, stage / rel
+            dst.parent.mkdir(parents=True, exist_ok=True)
+            try:
+                os.link(src, dst, follow_symlinks=False)
+            except OSError:
+                shutil.copy2(src, dst, follow_symlinks=False)
+        _, old = _siblings(real)
+        if old.exists():
+            shutil.rmtree(old)
+        try:
+            os.rename(real, old)
+        except OSError:  # a mount point, a folder we may not rename: replace the files in place instead
+            self._move_in(real, files)
+        else:
+            fault_point("swap")  # crash tests kill the run between the two renames
+            os.rename(stage, real)
+            shutil.rmtree(old, ignore_errors=True)
+        self._stage, self.path = None, self.target
+
+    def _move_in(self, real: Path, files: list[str]) -> None:
+        import os
+        import shutil
+
+        stage = self._stage
+        assert stage is not None
+        for rel in self._earlier:
+            try:
+                (real / rel).unlink()
+            except OSError:
+                pass
+        for rel in [*files, MANIFEST]:  # the manifest last: it says "complete" once every file is in place
+            (real / rel).parent.mkdir(parents=True, exist_ok=True)
+            os.replace(stage / rel, real / rel)
+        shutil.rmtree(stage, ignore_errors=True)
+
+
+def _siblings(target: Path) -> tuple[Path, Path]:
+    """The hidden folders beside an output folder: the new result being built, and the earlier one being swapped
+    out."""
+    target = Path(target).resolve()
+    return target.parent / f".{target.name}.limen-new", target.parent / f".{target.name}.limen-old"
+
+
+def _recover(target: Path) -> None:
+    """Put right what a run killed in :meth:`OutputFolder._swap` left: with the target gone, the complete new
+    result (else the earlier one) takes its place; leftover hidden folders go."""
+    import json
+    import os
+    import shutil
+
+    stage, old = _siblings(target)
+    real = Path(target).resolve()
+    if not real.exists() and old.is_dir():
+        try:
+            done = json.loads((stage / MANIFEST).read_text(encoding="utf-8")).get("complete") is True
+        except (OSError, ValueError, AttributeError):
+            done = False
+        try:
+            os.rename(stage if done else old, real)
+        except OSError as exc:
+            raise LimenError(f"cannot restore the output folder ({exc.strerror or exc})", target) from None
+    for leftover in (stage, old):
+        if leftover.is_dir() and not leftover.is_symlink():
+            shutil.rmtree(leftover, ignore_errors=True)

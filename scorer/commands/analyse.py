@@ -85,7 +85,7 @@ def analyse(
     model, model_responses = load_model_table(model_file) if model_file else (None, None)
     if model is not None:
         m_alternatives_of(model, model_file)
-    folder = OutputFolder(out_dir, replace=replace, command="analyse") if out_dir else None
+    folder = OutputFolder(out_dir, replace=replace, command="analyse", beside=True) if out_dir else None
     steps = (
         ["per-reader fits", "pooled curves", f"{by} comparison"]
         + (["model observer", "human/model factor"] if model is not None else [])
@@ -124,7 +124,7 @@ def analyse(
     if out_dir:
         from scorer.reports import write_outputs
 
-        write_outputs(a, out_dir, meta)
+        write_outputs(a, folder.path, meta)
         folder.finish()
     if as_json:
         click.echo(dumps(a.to_json()))

@@ -9,6 +9,7 @@ import numpy as np
 import pandas as pd
 
 from scorer.detector import compare
+from scorer.detector.comparison import check_dose_pair
 from scorer.workflow import load_detector_json, load_dose_json, load_scored_json
 from scorer.errors import LimenError
 from scorer.files import OutputFolder, atomic_write_text
@@ -92,7 +93,7 @@ def compare_detectors(
             "--detail-classes needs the dose series of both panels (--dose-a, --dose-b)", "--detail-classes"
         )
     a, b = load_detector_json(detector_a), load_detector_json(detector_b)
-    folder = OutputFolder(out_dir, replace=replace, command="compare-detectors") if out_dir else None
+    folder = OutputFolder(out_dir, replace=replace, command="compare-detectors", beside=True) if out_dir else None
 
     def default_label(p):
         p = Path(p)
@@ -109,6 +110,8 @@ def compare_detectors(
         raise LimenError("give both --dose-a and --dose-b (a dose series of each detector)", "--dose-a")
     da = load_dose_json(dose_a) if dose_a else None
     db = load_dose_json(dose_b) if dose_b else None
+    if da is not None and db is not None:
+        check_dose_pair(da, db, dose_a, dose_b)
     result = compare(
         a,
         b,

@@ -196,10 +196,11 @@ def detector(
     if conversion_file and kerma_csv:
         raise LimenError("give either --conversion or --fit-conversion, not both", "--conversion")
     diam = diameters_from_options(diameters, layout_file)
-    folder = OutputFolder(out_dir, replace=replace, command="detector") if out_dir else None
+    folder = OutputFolder(out_dir, replace=replace, command="detector", beside=True) if out_dir else None
 
     from scorer.workflow import measure_detector_files
 
+    pending: list[str] = []
     measured = measure_detector_files(
         flat_files,
         edge_files,
@@ -210,8 +211,10 @@ def detector(
         conversion_file=conversion_file,
         kerma_csv=kerma_csv,
         noise_csv=noise_csv,
-        warn=lambda text: click.echo(f"warning: {text}", err=True),
+        warn=pending.append,
     )
+    for text in pending:  # shown once the measurement stands: a refusal is one line, never after a warning
+        click.echo(f"warning: {text}", err=True)
     metrics, conv_dict, notes = measured.metrics, measured.conversion, measured.notes
     if metrics is not None:
         if metrics.dqe is None and metrics.mtf is not None and metrics.nnps is not None:

@@ -3,7 +3,6 @@
 from __future__ import annotations
 
 import sys
-from pathlib import Path
 
 import click
 
@@ -64,18 +63,15 @@ def dose_series(
     import numpy as np
     from tqdm import tqdm
 
-    from scorer.detector.dose import group_by_kerma
-    from scorer.errors import LimenError
     from scorer.reports import CAUTION, dumps, write_json
     from scorer.workflow import (
-        file_background_kerma_ugy,
         load_conversion,
         load_layout,
         load_limits,
         load_mtf,
-        read_kerma_csv,
         resolve_human_factor,
         score_dose_series,
+        series_groups,
     )
 
     from scorer.files import OutputFolder
@@ -84,22 +80,21 @@ def dose_series(
     human_factor = resolve_human_factor(human_factor, factor_file, observer, fitted_method if limits_file else None)
     layout = load_layout(layout_file)
     limits = load_limits(limits_file) if limits_file else None
+    options.refuse_unused_factor(human_factor, limits)
     conversion = load_conversion(conversion_file) if conversion_file else None
     blur = load_mtf(mtf_file) if mtf_file else None
-    if kerma_csv:
-        table = {str(p.resolve()): k for p, k in read_kerma_csv(kerma_csv)}
-        kermas = [table.get(str(Path(p).resolve())) for p in images]
-        source = f"not listed in {kerma_csv}"
-    elif conversion is not None:
-        kermas = []
-        for p in tqdm(images, desc="kerma of each image", unit="image", file=sys.stderr, disable=len(images) < 2):
-            kermas.append(file_background_kerma_ugy(p, conversion=conversion, pixel_spacing_mm=pixel_spacing))
-        source = "plate background through the conversion function"
-    else:
-        raise LimenError("the air kerma of each image is unknown: give --kerma-csv or --conversion", "--kerma-csv")
-    groups = group_by_kerma(images, kermas, source=source)
-    # the folder is checked before any scoring: a non-empty --out without --replace is refused at once
-    folder = OutputFolder(out_dir, replace=replace, command="dose-series") if out_dir else None
+    # the folder is checked before any image is read: an unusable or (without --replace) non-empty --out is
+    # refused at once
+    folder = OutputFolder(out_dir, replace=replace, command="dose-series", beside=True) if out_dir else None
+    groups, kerma_warnings = series_groups(
+        images,
+        kerma_csv=kerma_csv,
+        conversion=conversion,
+        pixel_spacing_mm=pixel_spacing,
+        progress=lambda it: tqdm(
+            it, desc="kerma of each image", unit="image", file=sys.stderr, disable=len(images) < 2, total=len(images)
+        ),
+    )
     bar = tqdm(total=len(images), desc="scoring kerma groups", unit="image", file=sys.stderr)
     try:
         result = score_dose_series(
@@ -118,6 +113,7 @@ def dose_series(
         )
     finally:
         bar.close()
+    result.warnings[:0] = kerma_warnings
     data = result.to_json()
     data["inputs"] = {
         "images": list(images),

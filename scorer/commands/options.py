@@ -49,9 +49,49 @@ def limits(help: str):
     return click.option("--limits", "limits_file", type=click.Path(dir_okay=False), default=None, help=help)
 
 
+#: the range of a human/model threshold factor given by hand: readers' thresholds are typically 1–3 times the
+#: model observer's (common practice); a value beyond a factor of 10 either way is a typing error
+HUMAN_FACTOR_RANGE = (0.1, 10.0)
+
+
+class HumanFactorType(click.ParamType):
+    """A finite number within :data:`HUMAN_FACTOR_RANGE`; inf, NaN, 1e300 or 1e-300 are refused in one line."""
+
+    name = "float"  # the metavar FLOAT, as before (--help unchanged)
+
+    def convert(self, value, param, ctx):
+        import math
+
+        lo, hi = HUMAN_FACTOR_RANGE
+        try:
+            f = float(value)
+        except (TypeError, ValueError):
+            self.fail(f"{str(value)[:40]!r} is not a number", param, ctx)
+        if not (math.isfinite(f) and lo <= f <= hi):
+            self.fail(
+                f"{str(value)[:40]} is outside {lo:g}–{hi:g} (a human reader's threshold over the model "
+                "observer's, typically 1–3)",
+                param,
+                ctx,
+            )
+        return f
+
+
 def human_factor(help: str):
-    """``--human-factor X`` (float, default None)."""
-    return click.option("--human-factor", type=float, default=None, help=help)
+    """``--human-factor X`` (a finite number in 0.1–10, default None)."""
+    return click.option("--human-factor", type=HumanFactorType(), default=None, help=help)
+
+
+def refuse_unused_factor(human_factor, limits) -> None:
+    """A human/model factor given with limits written for a model observer would be ignored: refuse it."""
+    from scorer.errors import LimenError
+
+    if human_factor is not None and limits is not None and limits.observer != "human":
+        raise LimenError(
+            f"{limits.path or 'limits'}: these limits are for the {str(limits.observer).upper()} model observer, so "
+            "a human/model factor does not apply; drop --human-factor/--human-factor-from",
+            "--human-factor",
+        )
 
 
 def human_factor_from():

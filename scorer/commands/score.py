@@ -132,10 +132,11 @@ def score(
         click.echo("warning: --human-factor/--human-factor-from has no effect without --limits", err=True)
     layout = load_layout(layout_file)
     limits = load_limits(limits_file) if limits_file else None
+    options.refuse_unused_factor(human_factor, limits)
     conversion = load_conversion(conversion_file) if conversion_file else None
     blur = load_mtf(mtf_file) if mtf_file else None
     defect_map = load_defect_map(defect_map_file) if defect_map_file else None
-    folder = OutputFolder(out_dir, replace=replace, command="score") if out_dir else None
+    folder = OutputFolder(out_dir, replace=replace, command="score", beside=True) if out_dir else None
     out = folder.path if folder else None
     overlays: list[Path] = []
     defect_overlays: list[Path] = []
@@ -210,7 +211,7 @@ def score(
     else:
         _print_table(result)
         if out is not None:
-            click.echo(f"\nreport: {out / 'report.html'}  (JSON, CSV and overlays beside it)")
+            click.echo(f"\nreport: {folder.path / 'report.html'}  (JSON, CSV and overlays beside it)")
     for w in result.warnings:
         click.echo(f"warning: {w}", err=True)
     for c in result.curves.values():

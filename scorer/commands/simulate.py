@@ -147,6 +147,10 @@ def simulate(
     pose = Pose(rotation_deg=rotate_deg, flipped=flip, magnification=magnification, shift_mm=tuple(shift_mm))
     rngs = [np.random.default_rng(s) for s in np.random.SeedSequence(seed).spawn(count)]
     out = Path(out_dir)
+    try:  # before anything is simulated: an unusable --out is one line, never a traceback
+        out.mkdir(parents=True, exist_ok=True)
+    except OSError as exc:
+        raise LimenError(f"cannot create the output folder given to --out ({exc.strerror or exc})", out) from None
     stems = [
         image_stem(model.name, kind, dose_ugy, i, edge_angle_deg if kind == "edge" else None) for i in range(count)
     ]

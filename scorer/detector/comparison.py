@@ -33,11 +33,99 @@ def check_detector_json(d: dict, path) -> dict:
     return d
 
 
+def _number(v) -> bool:
+    return isinstance(v, (int, float)) and not isinstance(v, bool) and bool(np.isfinite(v))
+
+
+#: the keys every fitted entry of a dose-series JSON carries, each a finite number
+FIT_NUMBERS = (
+    "diameter_mm",
+    "beta",
+    "beta_ci_low",
+    "beta_ci_high",
+    "log_threshold_at_reference",
+    "reference_kerma_ugy",
+)
+
+
 def check_dose_json(d: dict, path) -> dict:
-    """A parsed ``limen dose-series --json`` output, checked (keys "groups" and "fits")."""
+    """A parsed ``limen dose-series --json`` output, checked: "groups" and "fits" lists, at least one fitted
+    diameter, and every fitted entry (one with a β) whole — finite numbers, a positive reference kerma and
+    diameter, a 2 × 2 finite covariance of (α, β), the kermas it was fitted on — so a file edited or cut by
+    hand is refused in one line naming the entry, never met half-way through the comparison."""
     if not isinstance(d.get("fits"), list) or not isinstance(d.get("groups"), list):
         raise LimenError("no 'fits' and 'groups' in this file: is it a 'limen dose-series' JSON?", path)
+    if d.get("observer") is not None and d.get("observer") not in ("npw", "npwe"):
+        raise LimenError(f"'observer' is {_short(d.get('observer'))}, not npw or npwe", path)
+    n_fitted = 0
+    for i, f in enumerate(d["fits"]):
+        if not isinstance(f, dict):
+            raise LimenError(f"fits[{i}] is not an object", path)
+        if f.get("beta") is None:  # a diameter the series could not fit (not estimable): listed, not compared
+            if not _number(f.get("diameter_mm")):
+                raise LimenError(f"fits[{i}]: 'diameter_mm' is missing or not a finite number", path)
+            continue
+        for key in FIT_NUMBERS:
+            if key not in f:
+                raise LimenError(f"fits[{i}] lacks '{key}' (a fitted entry of a 'limen dose-series' JSON)", path)
+            if not _number(f[key]):
+                raise LimenError(f"fits[{i}]: '{key}' is {_short(f[key])}, not a finite number", path)
+        where = f"fits[{i}] ({f['diameter_mm']:g} mm)"
+        for key in ("diameter_mm", "reference_kerma_ugy"):
+            if not f[key] > 0:
+                raise LimenError(f"{where}: '{key}' is {f[key]:g}; it must be positive", path)
+        if not f["beta_ci_low"] <= f["beta"] <= f["beta_ci_high"]:
+            raise LimenError(f"{where}: 'beta' {f['beta']:g} lies outside its CI", path)
+        cov = f.get("cov_alpha_beta")
+        if not (
+            isinstance(cov, list)
+            and len(cov) == 2
+            and all(isinstance(r, list) and len(r) == 2 and all(_number(v) for v in r) for r in cov)
+        ):
+            raise LimenError(f"{where}: 'cov_alpha_beta' must be a 2 × 2 array of finite numbers", path)
+        if not (cov[0][0] >= 0 and cov[1][1] >= 0):
+            raise LimenError(f"{where}: 'cov_alpha_beta' has a negative variance", path)
+        ks = f.get("kermas_ugy")
+        if not (isinstance(ks, list) and len(ks) >= 2 and all(_number(k) and k > 0 for k in ks)):
+            raise LimenError(f"{where}: 'kermas_ugy' must list the two or more positive kermas it was fitted on", path)
+        n_fitted += 1
+    if not n_fitted:
+        raise LimenError("holds no fitted diameter (no β in 'fits'): nothing to compare", path)
+    for i, g in enumerate(d["groups"]):
+        rows = g.get("thresholds") if isinstance(g, dict) else None
+        if not isinstance(rows, list) or any(
+            not isinstance(t, dict) or not _number(t.get("diameter_mm")) or not _number(t.get("m_alternatives", 2))
+            for t in rows
+        ):
+            raise LimenError(f"groups[{i}] lacks a 'thresholds' list of diameters and M", path)
     return d
+
+
+def check_dose_pair(a: dict, b: dict, path_a, path_b) -> None:
+    """Two checked dose series that can be compared: the same model observer and threshold method (NPW against
+    NPWE, or d′ against count thresholds, would give a kerma ratio of two observers), and a fitted diameter in
+    common."""
+    for key, what in (("observer", "model observer"), ("method", "threshold method")):
+        va, vb = a.get(key), b.get(key)
+        if va is not None and vb is not None and va != vb:
+            raise LimenError(
+                f"scored with the {str(vb).upper()} {what}, but --dose-a ({path_a}) with {str(va).upper()}: "
+                f"compare series of the same {what}",
+                path_b,
+            )
+
+    def fitted(d):
+        return {round(float(f["diameter_mm"]), 6) for f in d["fits"] if f.get("beta") is not None}
+
+    if not fitted(a) & fitted(b):
+        da, db = (", ".join(f"{x:g}" for x in sorted(fitted(d))) for d in (a, b))
+        raise LimenError(f"no fitted diameter in common with --dose-a ({path_a}): {da} mm there, {db} mm here", path_b)
+
+
+def _short(v) -> str:
+    from scorer.errors import short_text
+
+    return short_text(repr(v) if isinstance(v, str) else v, 60)
 
 
 def _check_curve(curve, key: str, value_key: str, path) -> None:

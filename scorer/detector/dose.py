@@ -47,83 +47,25 @@ from __future__ import annotations
 
 from collections import OrderedDict
 from dataclasses import dataclass, field
-from pathlib import Path
 from typing import Callable, Sequence
 
 import numpy as np
 from scipy import optimize, stats
 
+from scorer.detector.dose_groups import (  # noqa: F401  (re-exported: the dose series' grouping)
+    CLUSTER_RTOL,
+    SAME_KERMA_RTOL,
+    background_kerma_ugy,
+    check_kerma_agreement,
+    check_one_panel,
+    group_by_kerma,
+)
 from scorer.errors import LimenError
 import scorer.observer.flags as flags
 from scorer.observer.flags import kerma_flags, threshold_flags
 from scorer.observer.limits import HumanFactor, Limits
 
 Z95 = 1.959963984540054
-#: two groups whose kermas differ by less than this fraction are "the same kerma"
-SAME_KERMA_RTOL = 0.05
-#: kermas measured from the conversion function fall into one group when within this fraction of each other
-CLUSTER_RTOL = 0.15
-
-
-# ----------------------------------------------------------------------------- grouping
-
-
-def background_kerma_ugy(pixels) -> float:
-    """Air kerma of the plate's own background: the median of the linearised central half of the image."""
-    a = np.asarray(pixels)
-    h, w = a.shape
-    return float(np.median(a[h // 4 : h - h // 4, w // 4 : w - w // 4]))
-
-
-def group_by_kerma(paths: Sequence, kerma_ugy: Sequence[float | None], *, source: str = "kerma") -> "OrderedDict":
-    """Group images by air kerma: by folder when the images lie in two or more folders, else by value.
-
-    Returns ``{kerma_ugy: [paths]}`` in increasing kerma.  Raises LimenError for a kerma missing for
-    some images, a single group, or two groups at the same kerma (within 5 %).
-    """
-    paths = [str(p) for p in paths]
-    missing = [p for p, k in zip(paths, kerma_ugy) if k is None or not np.isfinite(k)]
-    if missing:
-        raise LimenError(
-            f"no air kerma for {len(missing)} image(s) (first: {missing[0]}); every image of a dose "
-            f"series needs one ({source})",
-            missing[0],
-        )
-    bad = [p for p, k in zip(paths, kerma_ugy) if not k > 0]
-    if bad:
-        raise LimenError(f"air kerma must be positive ({source})", bad[0])
-    folders = [str(Path(p).parent) for p in paths]
-    groups: dict[str, list[int]] = {}
-    if len(set(folders)) >= 2:
-        for i, f in enumerate(folders):
-            groups.setdefault(f, []).append(i)
-    else:
-        ref = None
-        for i in np.argsort(kerma_ugy):
-            k = float(kerma_ugy[i])
-            if ref is None or k > ref * (1 + CLUSTER_RTOL):
-                ref = k
-                groups[f"{len(groups)}"] = []
-            groups[f"{len(groups) - 1}"].append(int(i))
-    out: list[tuple[float, list[str]]] = []
-    for _name, idx in groups.items():
-        ks = np.array([float(kerma_ugy[i]) for i in idx])
-        out.append((float(ks.mean()), [paths[i] for i in idx]))
-    out.sort(key=lambda t: t[0])
-    if len(out) < 2:
-        raise LimenError(
-            f"all {len(paths)} image(s) are at one air kerma ({out[0][0]:.3g} µGy): a dose series needs "
-            "images at two or more kermas",
-            paths[0],
-        )
-    for (k1, p1), (k2, p2) in zip(out, out[1:]):
-        if k2 < k1 * (1 + SAME_KERMA_RTOL):
-            raise LimenError(
-                f"two groups at the same air kerma ({k1:.3g} and {k2:.3g} µGy: {Path(p1[0]).parent} and "
-                f"{Path(p2[0]).parent}); merge them or correct the kerma",
-                p2[0],
-            )
-    return OrderedDict(out)
 
 
 # ----------------------------------------------------------------------------- fitting

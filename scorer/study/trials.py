@@ -10,7 +10,7 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 
-from scorer.errors import LimenError
+from scorer.errors import LimenError, plain_value
 
 #: columns holding labels (read as text, never as numbers); together they name one trial
 LABEL_COLUMNS = ["reader", "detector", "image", "target"]
@@ -18,6 +18,13 @@ LABEL_COLUMNS = ["reader", "detector", "image", "target"]
 TRIAL_COLUMNS = [*LABEL_COLUMNS, "diameter_mm", "contrast", "chosen_site", "true_site", "correct"]
 #: columns :func:`validate_trials` checks when present
 OPTIONAL_COLUMNS = ["response_ms", "session", "repeat", "n_alternatives"]
+
+
+#: what a number column must hold, as the errors say it
+RULES = {
+    "contrast": "contrast must be a positive fraction",
+    "diameter_mm": "diameter_mm must be a positive number of mm",
+}
 
 
 def _row_label(df: pd.DataFrame, mask) -> str:
@@ -54,14 +61,14 @@ def validate_trials(df: pd.DataFrame, source="responses") -> pd.DataFrame:
         bad = num.isna().to_numpy()
         if bad.any():
             raise LimenError(
-                f"{_row_label(out, bad)}: {c} {out[c].iloc[np.flatnonzero(bad)[0]]!r} is not a number", source
+                f"{_row_label(out, bad)}: {c} {plain_value(out[c].iloc[np.flatnonzero(bad)[0]])} is not a number",
+                source,
             )
         bad = ~np.isfinite(num.to_numpy()) | (num.to_numpy() <= 0)
         if bad.any():
             what = "negative" if num.iloc[np.flatnonzero(bad)[0]] < 0 else "not a positive number"
             raise LimenError(
-                f"{_row_label(out, bad)}: {c} {num.iloc[np.flatnonzero(bad)[0]]:g} is {what} "
-                f"({c} must be a positive fraction{'' if c == 'contrast' else ' in mm'})",
+                f"{_row_label(out, bad)}: {c} {num.iloc[np.flatnonzero(bad)[0]]:g} is {what} ({RULES[c]})",
                 source,
             )
         out[c] = num.astype(float)
@@ -79,7 +86,8 @@ def validate_trials(df: pd.DataFrame, source="responses") -> pd.DataFrame:
     bad = mapped.isna().to_numpy()
     if bad.any():
         raise LimenError(
-            f"{_row_label(out, bad)}: correct must be 0 or 1, got {raw.iloc[np.flatnonzero(bad)[0]]!r}", source
+            f"{_row_label(out, bad)}: correct must be 0 or 1, got {plain_value(raw.iloc[np.flatnonzero(bad)[0]])}",
+            source,
         )
     out["correct"] = mapped.astype(int)
     for c in ("chosen_site", "true_site"):

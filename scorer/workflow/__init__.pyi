@@ -24,7 +24,12 @@ from .inputs import (
     resolve_human_factor as resolve_human_factor,
 )
 from .scoring import ImageFiles as ImageFiles, score_files as score_files
-from .dose import score_dose_series as score_dose_series, file_background_kerma_ugy as file_background_kerma_ugy
+from .dose import (
+    score_dose_series as score_dose_series,
+    file_background_kerma_ugy as file_background_kerma_ugy,
+    file_panel as file_panel,
+    series_groups as series_groups,
+)
 from .detector import (
     DetectorMeasurement as DetectorMeasurement,
     measure_detector_files as measure_detector_files,
@@ -65,6 +70,8 @@ __all__ = [
     "ImageFiles",
     "score_files",
     "score_dose_series",
+    "series_groups",
+    "file_panel",
     "file_background_kerma_ugy",
     "DetectorMeasurement",
     "measure_detector_files",

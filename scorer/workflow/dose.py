@@ -3,12 +3,16 @@ from its files (:func:`~scorer.workflow.scoring.score_files`), the fits by :func
 
 from __future__ import annotations
 
+from pathlib import Path
 from typing import Callable
 
 from scorer.detector.dose import DoseSeriesResult, background_kerma_ugy, dose_series
+from scorer.detector.dose_groups import check_kerma_agreement, check_one_panel, group_by_kerma
+from scorer.errors import LimenError
 from scorer.images.conversion import ConversionFunction
 from scorer.images.loading import load_image
 from scorer.observer.limits import Limits
+from scorer.workflow.inputs import read_kerma_csv
 from scorer.workflow.scoring import score_files
 
 
@@ -16,6 +20,56 @@ def file_background_kerma_ugy(path, *, conversion: ConversionFunction, pixel_spa
     """Air kerma (µGy) of an image file's plate background through the conversion function
     (:func:`scorer.detector.dose.background_kerma_ugy`)."""
     return background_kerma_ugy(load_image(path, pixel_spacing_mm=pixel_spacing_mm, conversion=conversion).pixels)
+
+
+def file_panel(path) -> tuple[str | None, str | None]:
+    """An image file's DICOM Detector Type (0018,7004) and Detector ID (0018,700A) from its header, (None, None)
+    for a file that is not DICOM or does not say (its own read, later, explains what is wrong with it)."""
+    import warnings
+
+    import pydicom
+
+    try:
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            ds = pydicom.dcmread(path, stop_before_pixels=True, specific_tags=["DetectorType", "DetectorID"])
+        return (str(ds.get("DetectorType") or "") or None, str(ds.get("DetectorID") or "") or None)
+    except Exception:  # not DICOM, unreadable, cut short: load_image judges it when the image is scored
+        return None, None
+
+
+def series_groups(
+    images, *, kerma_csv=None, conversion: ConversionFunction | None = None, pixel_spacing_mm=None, progress=None
+):
+    """The kerma groups of a dose series' image files (``{kerma_ugy: [paths]}``) and warnings.
+
+    Every image must come from one panel (:func:`~scorer.detector.dose_groups.check_one_panel`, DICOM header).
+    Each image's kerma is the kerma CSV's (``path,kerma_ugy``), else its plate background through the conversion
+    function; with both, the two are compared (:func:`~scorer.detector.dose_groups.check_kerma_agreement`).
+    ``progress(iterable)`` wraps the loop that reads each image for its background kerma.
+    """
+    images = [str(p) for p in images]
+    check_one_panel(images, [file_panel(p) for p in images])
+    progress = progress or (lambda it: it)
+
+    def measured():
+        return [
+            file_background_kerma_ugy(p, conversion=conversion, pixel_spacing_mm=pixel_spacing_mm)
+            for p in progress(images)
+        ]
+
+    warnings: list[str] = []
+    if kerma_csv:
+        table = {str(p.resolve()): k for p, k in read_kerma_csv(kerma_csv)}
+        kermas = [table.get(str(Path(p).resolve())) for p in images]
+        groups = group_by_kerma(images, kermas, source=f"not listed in {kerma_csv}")
+        if conversion is not None:
+            warnings += check_kerma_agreement(images, kermas, measured(), kerma_csv)
+    elif conversion is not None:
+        groups = group_by_kerma(images, measured(), source="plate background through the conversion function")
+    else:
+        raise LimenError("the air kerma of each image is unknown: give --kerma-csv or --conversion", "--kerma-csv")
+    return groups, warnings
 
 
 def score_dose_series(

@@ -9,7 +9,7 @@ from __future__ import annotations
 import csv
 from pathlib import Path
 
-from scorer.errors import LimenError
+from scorer.errors import LimenError, short_text
 from scorer.files import read_json, read_toml
 from scorer.images.conversion import load_conversion
 from scorer.images.image import LimenWarning
@@ -82,21 +82,49 @@ def load_defect_map(path) -> DefectMap:
 
 
 def read_kerma_csv(path) -> list[tuple[Path, float]]:
-    """CSV with columns ``path,kerma_ugy`` (paths relative to the CSV's folder; ``#`` lines are comments)."""
+    """CSV with columns ``path,kerma_ugy`` (paths relative to the CSV's folder; ``#`` lines are comments).
+
+    Each image is listed once, with a positive, finite air kerma (µGy): an image listed twice is refused (which
+    line is right cannot be told), never averaged.
+    """
+    import math
+
     path = Path(path)
     try:
         text = path.read_text(encoding="utf-8")
     except OSError as exc:
         raise LimenError(f"cannot read kerma CSV ({exc.strerror or exc})", path) from None
-    rows = list(csv.DictReader(ln for ln in text.splitlines() if ln.strip() and not ln.startswith("#")))
+    except UnicodeDecodeError:
+        raise LimenError("kerma CSV is not UTF-8 text (columns path,kerma_ugy)", path) from None
+    if "\x00" in text:
+        raise LimenError("kerma CSV holds NUL bytes: not a text CSV (columns path,kerma_ugy)", path)
+    try:
+        rows = list(csv.DictReader(ln for ln in text.splitlines() if ln.strip() and not ln.startswith("#")))
+    except csv.Error as exc:
+        raise LimenError(f"kerma CSV cannot be read as CSV ({exc})", path) from None
     if not rows or not {"path", "kerma_ugy"} <= set(rows[0]):
         raise LimenError("kerma CSV needs the columns path,kerma_ugy", path)
-    out = []
+    out: list[tuple[Path, float]] = []
+    first_line: dict[str, int] = {}
     for n, r in enumerate(rows, start=2):
+        raw_k, raw_p = r.get("kerma_ugy"), r.get("path")
+        if not isinstance(raw_p, str) or not raw_p.strip():
+            raise LimenError(f"line {n}: no image path", path)
         try:
-            k = float(r["kerma_ugy"])
+            k = float(raw_k)  # type: ignore[arg-type]
         except (TypeError, ValueError):
-            raise LimenError(f"line {n}: kerma_ugy {r['kerma_ugy']!r} is not a number", path) from None
-        p = Path(r["path"].strip())
-        out.append((p if p.is_absolute() else path.parent / p, k))
+            raise LimenError(f"line {n}: kerma_ugy {short_text(raw_k)} is not a number", path) from None
+        if not (math.isfinite(k) and k > 0):
+            raise LimenError(f"line {n}: kerma_ugy {raw_k.strip()} is not a positive air kerma in µGy", path)
+        p = Path(raw_p.strip())
+        p = p if p.is_absolute() else path.parent / p
+        key = str(p.resolve())
+        if key in first_line:
+            raise LimenError(
+                f"line {n} lists {short_text(raw_p.strip())} again (first on line {first_line[key]}); list each "
+                "image once, with its own air kerma",
+                path,
+            )
+        first_line[key] = n
+        out.append((p, k))
     return out

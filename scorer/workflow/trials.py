@@ -8,7 +8,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from scorer.errors import LimenError
+from scorer.errors import LimenError, plain_value
 from scorer.study.trials import LABEL_COLUMNS, validate_trials
 
 
@@ -65,7 +65,9 @@ def load_model_table(path) -> tuple[pd.DataFrame, pd.DataFrame | None]:
         bad = ~np.isfinite(num.to_numpy(float))
         if bad.any():
             i = int(np.flatnonzero(bad)[0])
-            raise LimenError(f"row {i + 1} (line {i + 2}): {c} {df[c].iloc[i]!r} is not a number", path)
+            raise LimenError(
+                f"row {i + 1} (line {i + 2}): {c} {plain_value(df[c].iloc[i])} is not a finite number", path
+            )
         df[c] = num
     sig = df["is_signal"].map({True: True, False: False, "True": True, "False": False})
     if sig.isna().any():
