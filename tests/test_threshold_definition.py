@@ -7,6 +7,8 @@ mixing 3-AFC and 5-AFC cells gives a contrast-detail curve without a step where 
 
 from __future__ import annotations
 
+import json
+
 import numpy as np
 import pytest
 from scipy import integrate, optimize, special, stats
@@ -139,3 +141,43 @@ def test_mixed_plate_curve_is_continuous_across_m(mixed):
     # the count method uses the same definition (its step is not tested: its sampling SE here is ≈ 0.1 in log)
     for p in count_thresholds(decide(resp), n_boot=0).points:
         assert dprime_for_pc(p.criterion_pc, p.m_alternatives) == pytest.approx(DEFAULT_DETECTABILITY, abs=1e-8)
+
+
+# --------------------------------------------------------------------------- the readers' analysis, the CLI
+@pytest.fixture(scope="module")
+def study():
+    from scorer.study import simulate_reader_study
+
+    return simulate_reader_study(np.random.default_rng(31), 4, diameters_mm=(0.25, 1.0), n_images=8, n_repeats=2)
+
+
+def test_reader_analysis_uses_the_same_definition(study):
+    # the pooled readers' curve is Pc_M(k·C) fitted by GEE; its threshold is d′_T/k (Green & Swets 1966), so a
+    # different d′_T scales every pooled threshold by the ratio of the d′s, whatever the M
+    from scorer.reports.study import report_html
+    from scorer.study.analysis import analyse_study
+
+    a = analyse_study(study.trials, n_boot=0, seed=1)
+    b = analyse_study(study.trials, n_boot=0, seed=1, criterion_pc=Detectability(1.5))
+    ta = a.pooled_curves.set_index(["detector", "diameter_mm"])["threshold_contrast"]
+    tb = b.pooled_curves.set_index(["detector", "diameter_mm"])["threshold_contrast"]
+    np.testing.assert_allclose((tb / ta).to_numpy(), 1.5 / DEFAULT_DETECTABILITY, rtol=1e-4)
+    js = a.to_json()["threshold_definition"]
+    assert js["dprime_threshold"] == DEFAULT_DETECTABILITY and js["default"]
+    assert b.to_json()["threshold_definition"]["dprime_threshold"] == 1.5
+    page = report_html(a)
+    assert "reaches d′ = 1.116" in page and "nominal contrast scale" in page and "primary beam" in page
+
+
+def test_cli_detectability_option(study, tmp_path):
+    from click.testing import CliRunner
+
+    from scorer.cli import main
+
+    study.trials.to_csv(tmp_path / "reads.csv", index=False)
+    args = ["analyse", str(tmp_path / "reads.csv"), "--json", "--n-boot", "0"]
+    res = CliRunner().invoke(main, [*args, "--detectability", "1.5"])
+    assert res.exit_code == 0, res.output
+    assert json.loads(res.stdout)["threshold_definition"]["dprime_threshold"] == 1.5
+    both = CliRunner().invoke(main, [*args, "--detectability", "1.5", "--criterion", "0.7"])
+    assert both.exit_code == 2 and "not both" in both.output
