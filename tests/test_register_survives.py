@@ -173,3 +173,15 @@ def test_independent_plate_survives_a_dead_column_through_a_fiducial(noise):
     pl_3 = register(images(True)[0], layout)
     site = layout.targets[0].sites
     assert np.abs(pl_all.transform.to_pixel(site) - pl_3.transform.to_pixel(site)).max() < 0.1
+
+
+def test_saturated_row_through_a_site_without_the_defect_checks_is_named_a_defect(sc):
+    # with the defect checks off, the observer refuses a site with pixels at the maximum; a saturated row is named
+    # as a detector defect, never met with the over-exposure advice (that stays for widespread clipping,
+    # test_realism.py)
+    row = sc.site_px(9, signal=True)[0]
+    imgs = ri.images(sc, 2, SEED, ri.saturated_row(row))
+    with pytest.raises(LimenError) as exc:
+        score_images(imgs, sc.layout, methods=["dprime"], n_boot=0, check_defects=False)
+    msg = str(exc.value)
+    assert f"saturated row {row}" in msg and "not an over-exposure" in msg and "lower dose" not in msg

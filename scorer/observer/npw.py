@@ -416,6 +416,21 @@ def saturation_level(pixels: np.ndarray, min_fraction: float = 1e-3) -> float | 
     return top if np.count_nonzero(pixels == top) >= min_fraction * pixels.size else None
 
 
+def _saturated_line(pixels: np.ndarray, top: float, r0: int, c0: int, hit) -> str:
+    """'saturated row N' / 'saturated column N' when the saturated pixels of a site lie on a row or column that is
+    mostly at the maximum (a detector defect), else ''."""
+    if hit is None:
+        return ""
+    rr, cc = np.nonzero(hit)
+    for r in sorted(set((rr + r0).tolist())):
+        if np.mean(pixels[r] >= top) >= 0.5:
+            return f"saturated row {r}"
+    for c in sorted(set((cc + c0).tolist())):
+        if np.mean(pixels[:, c] >= top) >= 0.5:
+            return f"saturated column {c}"
+    return ""
+
+
 def score_image(
     image: Image,
     layout: Layout,
@@ -475,9 +490,16 @@ def score_image(
             if keep is not None and keep.all():
                 keep = None
             if saturated is not None and np.any(g >= saturated if keep is None else g[keep] >= saturated):
+                line = _saturated_line(pixels, saturated, ri - h, ci - h, g >= saturated if keep is None else None)
+                if line:
+                    raise LimenError(
+                        f"target {t.id!r} site {k} is crossed by {line} (pixels at the detector's maximum value "
+                        "along the line): a detector defect, not an over-exposure; score with the defect checks "
+                        "on, which exclude the sites it touches"
+                    )
                 raise LimenError(
                     f"target {t.id!r} site {k} is saturated (pixels at the detector's maximum "
-                    "value); repeat the exposure at a lower dose"
+                    "value): an over-exposure; repeat the exposure at a lower dose"
                 )
             patches.append((ri, ci, g, keep, bank.get(r - ri, c - ci)))
             scored.append(k)
