@@ -40,7 +40,7 @@ import numpy as np
 import pandas as pd
 from scipy import integrate, interpolate
 
-from scorer.observer.mafc import dprime_for_pc, halfway_criterion
+from scorer.observer.mafc import dprime_for_pc, criterion_for
 from scorer.phantom import load_layout
 from scorer.study import new_state, next_cell, next_level, plate_levels, trials_for_precision, update
 from scorer.study.pooled_gee import pooled_curves
@@ -88,7 +88,7 @@ def info_spline(m: int) -> interpolate.CubicSpline:
 
 @lru_cache(maxsize=None)
 def dprime_t(m: int) -> float:
-    return dprime_for_pc(halfway_criterion(m), m)
+    return dprime_for_pc(criterion_for(m), m)
 
 
 def info_ln_threshold(contrast: float, threshold: float, m: int) -> float:

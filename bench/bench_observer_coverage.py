@@ -7,7 +7,8 @@ scored by Limen's NPW observer (sharp template) and thresholded by the d′ meth
 Truth of the observer Limen reports (DEVELOPERS.md, "The observer Limen reports"): C_T = d′_T · σ_rms, σ_rms²
 the mean over the diameter's candidate sites of the textbook (known-background) NPW response variance
 wᵀKw/(b·wᵀs)² (Barrett & Myers, *Foundations of Image Science* (2004), ch. 13), d′_T from the M-AFC integral
-at the halfway criterion (Green & Swets 1966).  For information the medians are also given against the
+at the threshold definition, a fixed d′_T (scorer.observer.mafc.criterion_for; Green & Swets 1966).
+For information the medians are also given against the
 observer with a background plane per site (what Limen reported before) and against the phase average of d′²
 (what a Fourier prediction computes).  Blurred discs on other plates: bench/bench_observer_truth.py.  A synthetic
 linear observer checks the σ̂ degrees of freedom with M = 3 and M = 5.
@@ -37,7 +38,7 @@ from scorer.observer import (
     SystemBlur,
     dprime_for_pc,
     dprime_thresholds,  # noqa: E402
-    halfway_criterion,
+    criterion_for,
     score_image,
 )
 from scorer.phantom import PhantomTransform, load_layout  # noqa: E402
@@ -67,7 +68,7 @@ def coverage(corr_px: float, n_rep: int, seed: int = 0) -> pd.DataFrame:
     truth = {}
     for d, g in layout_truth(lay, pl.transform, BACKGROUND, SIGMA, corr_px).groupby("diameter_mm"):
         m = int(g.m_alternatives.iloc[0])
-        dt_ = dprime_for_pc(halfway_criterion(m), m)
+        dt_ = dprime_for_pc(criterion_for(m), m)
         truth[d] = {
             "local": dt_ * np.sqrt(np.mean(1 / g.local**2)),
             "kb": dt_ * np.sqrt(np.mean(1 / g.kb**2)),
@@ -103,7 +104,7 @@ def synthetic_df(m: int, n_rep: int = 1000, seed: int = 1) -> float:
     """Coverage of the analytic CI for a linear observer with M sites (checks σ̂'s degrees of freedom)."""
     rng = np.random.default_rng(seed)
     contrasts = np.geomspace(0.3, 3.5, 6) * 0.01
-    dt_ = dprime_for_pc(halfway_criterion(m), m)
+    dt_ = dprime_for_pc(criterion_for(m), m)
     sigma, hits = 0.01, 0
     for _ in range(n_rep):
         truth_site = rng.integers(m, size=(N_IMAGES, contrasts.size))

@@ -5,7 +5,7 @@ pixel-integrated discs rendered exactly in the Fourier domain, white or correlat
 and are scored the way ``limen score`` scores them (registration, blur from the markers, NPW and NPWE responses,
 d′ and count thresholds; ``tests/cd_truth_runner.py``).  Truth: the textbook observers' threshold
 C_T = d′_T / k, k = b·ΔsᵀΔs/√(ΔsᵀKΔs) for NPW and its eye-filtered analogue for NPWE (Barrett & Myers 2004,
-ch. 13; Burgess 1994), d′_T from the M-AFC integral at the halfway criterion (Green & Swets 1966).
+ch. 13; Burgess 1994), d′_T the fixed detectability of the threshold definition (3-AFC halfway, Green & Swets 1966).
 
 Two geometries (four sites in a row on 0.1 mm pixels with 0.06 mm blur; five sites on a ring on 0.085 mm pixels
 with 0.04 mm blur) × two noise kinds (white; white plus Gaussian-filtered) × ``n_sets`` sets of 16 images.  Each

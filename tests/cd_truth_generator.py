@@ -36,9 +36,10 @@ With Δs = b·s₁ (b the background, s₁ the sampled unit-contrast disc above)
     d′ = wᵀΔs / √(wᵀKw):   NPW   d′² = (ΔsᵀΔs)² / (ΔsᵀKΔs)
                            NPWE  d′² = (Σ_k |ΔS_k|² E_k²)² / (Σ_k |ΔS_k|² E_k⁴ λ_k)    (Parseval; K circulant)
 
-and the threshold contrast C_T = d′_T / k, k the d′ per unit contrast and d′_T the d′ at which an M-AFC
-observer's proportion correct reaches the criterion (halfway between chance and 1),
-Pc_M(d′) = ∫ φ(x − d′) Φ(x)^(M−1) dx (Green & Swets 1966), integrated and inverted here.
+and the threshold contrast C_T = d′_T / k, k the d′ per unit contrast and d′_T a fixed detectability, the same
+for every M: by default the d′ at which a 3-AFC observer's proportion correct is halfway between chance and 1
+(Pc = 2/3), with Pc_M(d′) = ∫ φ(x − d′) Φ(x)^(M−1) dx (Green & Swets 1966), integrated and inverted here
+(``Design.criterion_pc``: the d′ where this plate's M reaches that Pc instead).
 
 The eye filter is the one Limen documents (scorer/observer/eye.py: E(ρ) = ρ^1.3·exp(−0.04·ρ²), ρ the frequency in
 cycles per degree at the viewing distance D, ρ = f·D·π/180), written out again here.
@@ -48,7 +49,8 @@ Plates
 Each plate is axis-aligned and every candidate site of one diameter sits at the same sub-pixel position, so the
 truth of a diameter is one number (it depends only on the disc's position within its pixel and on K).  Geometries:
 ``row4`` (four sites in a row), ``ring5`` (five sites on a circle, each moved to the pixel lattice) and ``pair2``
-(two sites side by side, 2-AFC).  Three fiducials and a larger orientation key register the plate.  The layout is
+(two sites side by side, 2-AFC); ``row`` (sites in a row, M given per diameter by ``Design.alternatives``, a
+plate mixing cells of different M).  Three fiducials and a larger orientation key register the plate.  The layout is
 written in Limen's layout format (limen-layout/1, scorer/phantom/layout.py).
 """
 
@@ -62,7 +64,7 @@ import numpy as np
 from scipy import fft as sfft
 from scipy import integrate, optimize, special, stats
 
-GEOMETRIES = {"row4": 4, "ring5": 5, "pair2": 2}
+GEOMETRIES = {"row4": 4, "ring5": 5, "pair2": 2, "row": 0}  # "row": M per diameter (Design.alternatives)
 
 
 # --------------------------------------------------------------------------- M-AFC (Green & Swets 1966)
@@ -173,6 +175,7 @@ class Design:
     background: float = 1000.0
     marker_contrast: float = 0.5
     criterion_pc: float | None = None
+    alternatives: tuple[int, ...] | None = None  # geometry "row": M of each diameter
 
 
 ROW4 = Design(
@@ -215,8 +218,13 @@ class Plate:
 
     def __post_init__(self):
         d = self.design
-        self.m = GEOMETRIES[d.geometry]
-        self.dprime_t = dprime_at_criterion(self.m, d.criterion_pc)
+        ms = d.alternatives if d.geometry == "row" else (GEOMETRIES[d.geometry],) * len(d.diameters_mm)
+        self.m_of = dict(zip(d.diameters_mm, ms))
+        self.m = max(ms)
+        # a fixed detectability for every M (3-AFC halfway), or the d′ of a Pc given for this plate's M
+        self.dprime_t = (
+            dprime_at_criterion(3) if d.criterion_pc is None else dprime_at_criterion(self.m, d.criterion_pc)
+        )
         p = d.pixel_mm
         # site offsets (pixels, integer lattice) about the target's anchor
         s_px = d.site_spacing_mm / p
@@ -227,9 +235,13 @@ class Plate:
             cell = (2 * rad + s_px, 2 * rad + s_px)
         else:
             step = int(round(s_px))
-            offs = np.column_stack([np.zeros(self.m), step * (np.arange(self.m) - (self.m - 1) / 2)])
-            offs = np.floor(offs)
+
+            def row_offsets(m):
+                return np.floor(np.column_stack([np.zeros(m), step * (np.arange(m) - (m - 1) / 2)]))
+
+            offs = row_offsets(self.m)
             cell = (s_px, (self.m - 1) * step + s_px)
+        offs_of = {dm: (row_offsets(self.m_of[dm]) if d.geometry == "row" else offs) for dm in d.diameters_mm}
         self._offsets = offs
         rng = np.random.default_rng(zlib.crc32(d.name.encode()))
         combos = [(dm, i, j) for i, dm in enumerate(d.diameters_mm) for j in range(d.n_contrasts)]
@@ -250,8 +262,8 @@ class Plate:
                     "id": f"d{i}-c{jc}",
                     "diameter_mm": dm,
                     "contrast": float(f"{contrasts[dm][jc]:.4g}"),
-                    "sites_px": [(r0 + o[0] + ph[0], c0 + o[1] + ph[1]) for o in offs],
-                    "signal_site": int(rng.integers(self.m)),
+                    "sites_px": [(r0 + o[0] + ph[0], c0 + o[1] + ph[1]) for o in offs_of[dm]],
+                    "signal_site": int(rng.integers(self.m_of[dm])),
                 }
             )
         # plate outline = the image minus a frame of margin_mm/2; plate origin at pixel (o, o)

@@ -19,7 +19,7 @@ import pytest
 from scipy import integrate, optimize, stats
 
 from scorer.errors import LimenError
-from scorer.observer.mafc import dprime_for_pc, halfway_criterion, pc_mafc
+from scorer.observer.mafc import criterion_for, dprime_for_pc, pc_mafc
 from scorer.phantom import load_layout
 from scorer.study import (
     estimate,
@@ -52,7 +52,7 @@ def _pc_quad(d: float, m: int) -> float:
 
 def truth_pc(contrast, threshold, m, lapse=0.0):
     """Proportion correct of a linear observer with threshold ``threshold``."""
-    d_t = dprime_for_pc(halfway_criterion(m), m)
+    d_t = dprime_for_pc(criterion_for(m), m)
     return (1 - lapse) * _pc_quad(float(d_t * contrast / threshold), int(m)) + lapse / m
 
 
@@ -119,7 +119,7 @@ def test_quest_tests_at_the_posterior_mode_moved_to_the_most_informative_point()
     for c, ok in [(0.0454, 1), (0.0298, 0), (0.0454, 1), (0.0691, 1)]:
         s = update(s, c, ok)
     grid, post, _ = _brute_force_entropies(s, lapse)
-    d_t = dprime_for_pc(halfway_criterion(m), m)
+    d_t = dprime_for_pc(criterion_for(m), m)
 
     def minus_info(d):
         h = 1e-5
@@ -355,6 +355,6 @@ def test_scipy_truth_is_the_green_swets_integral():
     # the simulated observers' truth itself: Pc_4(1) = 0.5520, Pc_4(2) = 0.8228 (docs/references.md, Green &
     # Swets 1966), and Limen's own quadrature agrees
     assert _pc_quad(1.0, 4) == pytest.approx(0.5520, abs=5e-5) and _pc_quad(2.0, 4) == pytest.approx(0.8228, abs=5e-5)
-    assert truth_pc(0.01, 0.01 * dprime_for_pc(0.625, 4), 4) == pytest.approx(_pc_quad(1.0, 4), abs=1e-9)
+    assert truth_pc(0.01, 0.01 * dprime_for_pc(criterion_for(4), 4), 4) == pytest.approx(_pc_quad(1.0, 4), abs=1e-9)
     for d, m in [(0.7, 3), (1.9, 5)]:
         assert _pc_quad(d, m) == pytest.approx(pc_mafc(d, m), abs=1e-8)

@@ -6,7 +6,7 @@ import json
 import numpy as np
 import pytest
 
-from scorer.observer import dprime_for_pc
+from scorer.observer import criterion_for, dprime_for_pc
 from click.testing import CliRunner
 
 from scorer.cli import main
@@ -244,8 +244,8 @@ def test_compare_detectors(measured, tmp_path):
 
 
 def test_compare_detectors_predicts_with_the_scored_criterion(measured, tmp_path):
-    # predicted and scored thresholds must use the same M-AFC criterion: the M of each scored diameter
-    # (halfway Pc of 5-AFC is 0.6, of 4-AFC 0.625; Green & Swets 1966)
+    # predicted and scored thresholds use the same definition: a fixed d′_T for every M (its Pc is Pc_M(d′_T),
+    # 0.5316 at 5-AFC, 0.5884 at 4-AFC; Green & Swets 1966), so the predicted threshold does not depend on M
     a, b = measured["direct"] / "detector.json", measured["indirect"] / "detector.json"
     scored = tmp_path / "score_a.json"
     scored.write_text(
@@ -273,9 +273,8 @@ def test_compare_detectors_predicts_with_the_scored_criterion(measured, tmp_path
     forced = json.loads(run("compare-detectors", a, b, "--scored-a", scored, "--alternatives", "4", "--json").stdout)
     p5 = next(t for t in d["thresholds"] if t["source"] == "predicted NPW" and t["detector"] == "direct")
     p4 = next(t for t in forced["thresholds"] if t["source"] == "predicted NPW" and t["detector"] == "direct")
-    assert p5["threshold_contrast"] / p4["threshold_contrast"] == pytest.approx(
-        dprime_for_pc(0.6, 5) / dprime_for_pc(0.625, 4), rel=1e-9
-    )
+    assert p5["threshold_contrast"] / p4["threshold_contrast"] == pytest.approx(1.0, rel=1e-9)
+    assert dprime_for_pc(criterion_for(5), 5) == pytest.approx(dprime_for_pc(criterion_for(4), 4), rel=1e-9)
 
 
 def test_compare_detectors_bad_json(tmp_path, measured):

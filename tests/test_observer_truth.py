@@ -18,7 +18,7 @@ import pytest
 from helpers import MINI, grid_layout
 from npw_truth import exact_disc, layout_truth, make_noise, mean_image
 from scorer.images import Image
-from scorer.observer import ObserverConfig, SystemBlur, dprime_for_pc, dprime_thresholds, halfway_criterion, score_image
+from scorer.observer import ObserverConfig, SystemBlur, criterion_for, dprime_for_pc, dprime_thresholds, score_image
 from scorer.phantom import PhantomTransform, load_layout
 
 PIX = 0.085
@@ -130,7 +130,8 @@ def test_dprime_per_unit_contrast_matches_barrett_myers(corr_px):
 
 def test_dprime_ci_covers_the_named_observers_truth_quick():
     # the full 16-image coverage run is bench/bench_observer_coverage.py; here 8 images × 40 repeats
-    # (truth: C_T = d′_T·σ_rms of the textbook observer, d′_T from the M-AFC integral, Green & Swets 1966)
+    # (truth: C_T = d′_T·σ_rms of the textbook observer, d′_T the fixed detectability: Pc_M(d′_T) by the M-AFC
+    # integral, Green & Swets 1966)
     lay = load_layout(MINI)
     shape, pl = _pose(lay, rotation_deg=-12.0)
     sigma = 20.0
@@ -138,7 +139,7 @@ def test_dprime_ci_covers_the_named_observers_truth_quick():
     ct = {}
     for d, g in truth.groupby("diameter_mm"):
         m = int(g.m_alternatives.iloc[0])
-        ct[d] = dprime_for_pc(halfway_criterion(m), m) * np.sqrt(np.mean(1.0 / g.kb**2))
+        ct[d] = dprime_for_pc(criterion_for(m), m) * np.sqrt(np.mean(1.0 / g.kb**2))
     hits, errs = {d: 0 for d in ct}, {d: [] for d in ct}
     n_rep = 40
     for r in range(n_rep):

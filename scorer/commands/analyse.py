@@ -34,7 +34,14 @@ from scorer.reports import dumps
     "criterion_pc",
     type=float,
     default=None,
-    help="Threshold proportion correct (default: halfway between chance and 1).",
+    help="One proportion correct at threshold for every M (default: the Pc where the observer reaches the "
+    "detectability of --detectability).",
+)
+@click.option(
+    "--detectability",
+    type=click.FloatRange(0.0, 6.0, min_open=True),
+    default=None,
+    help="d′ at threshold, the same for every M (default 1.116: where 3-AFC reaches Pc = 2/3).",
 )
 @click.option(
     "--min-trials",
@@ -61,6 +68,7 @@ def analyse(
     reference,
     n_boot,
     criterion_pc,
+    detectability,
     min_trials,
     max_ci_ratio,
     seed,
@@ -80,6 +88,13 @@ def analyse(
     from scorer.study.estimability import EstimabilityRule
     from scorer.workflow import load_model_table, load_trials
 
+    from scorer.errors import LimenError
+    from scorer.observer.mafc import Detectability
+
+    if detectability is not None:
+        if criterion_pc is not None:
+            raise LimenError("give either --criterion (one Pc for every M) or --detectability (one d′), not both")
+        criterion_pc = Detectability(float(detectability))
     trials = load_trials(responses)
     m_alternatives_of(trials, responses)  # a table with one candidate site is refused naming its file
     model, model_responses = load_model_table(model_file) if model_file else (None, None)

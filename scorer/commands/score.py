@@ -86,7 +86,14 @@ EXIT_INDETERMINATE = 3
     "--criterion",
     type=float,
     default=None,
-    help="Proportion correct at threshold (default halfway between chance and 1).",
+    help="One proportion correct at threshold for every M (default: the Pc where the observer reaches the "
+    "detectability of --detectability).",
+)
+@click.option(
+    "--detectability",
+    type=click.FloatRange(0.0, 6.0, min_open=True),
+    default=None,
+    help="d′ at threshold, the same for every M (default 1.116: where 3-AFC reaches Pc = 2/3).",
 )
 @options.seed()
 @options.json_output()
@@ -113,6 +120,7 @@ def score(
     psychometric_form,
     dprime_ci,
     criterion,
+    detectability,
     seed,
     as_json,
     out_dir,
@@ -130,6 +138,13 @@ def score(
     human_factor = resolve_human_factor(human_factor, factor_file, observer, verdict_method if limits_file else None)
     if (human_factor is not None) and not limits_file:
         click.echo("warning: --human-factor/--human-factor-from has no effect without --limits", err=True)
+    if detectability is not None:
+        from scorer.errors import LimenError
+        from scorer.observer.mafc import Detectability
+
+        if criterion is not None:
+            raise LimenError("give either --criterion (one Pc for every M) or --detectability (one d′), not both")
+        criterion = Detectability(float(detectability))
     layout = load_layout(layout_file)
     limits = load_limits(limits_file) if limits_file else None
     options.refuse_unused_factor(human_factor, limits)

@@ -24,8 +24,8 @@ orientations) and as zero beyond its measured range; the NNPS as radially
 symmetric (its radial average).  The grid step is min(f_N/64, 0.04/R).
 
 **Threshold.**  C_T = d′_T / (d′ per unit contrast), with d′_T the M-AFC d′ at the
-scorer's criterion (:func:`scorer.observer.mafc.dprime_for_pc`, by default halfway between
-chance and 1).
+scorer's criterion (:func:`scorer.observer.mafc.dprime_for_pc`; by default Pc_M at the fixed
+detectability d′_T, :func:`scorer.observer.mafc.criterion_for`, so d′_T itself).
 
 References
 ----------
@@ -44,7 +44,7 @@ import numpy as np
 from scipy import special
 
 from scorer.observer.eye import DEFAULT_VIEWING_DISTANCE_MM, eye_filter
-from scorer.observer.mafc import dprime_for_pc, halfway_criterion
+from scorer.observer.mafc import criterion_for, dprime_for_pc
 
 OBSERVERS = ("npw", "npwe")
 
@@ -171,7 +171,7 @@ def predict_thresholds(
 
     ``m_alternatives`` is one M for every diameter, or a mapping diameter (mm) → M when
     the phantom's cells differ between diameters (a diameter missing from it gets 4).
-    ``criterion_pc`` defaults to halfway between chance and 1 for each diameter's M
+    ``criterion_pc`` defaults to Pc_M at the default d′_T for each diameter's M
     (the scorer's default).  Given ``measured_kerma_ugy`` (the flat fields' kerma)
     and ``target_kerma_ugy``, the NNPS is scaled by measured/target — valid only
     where quantum noise dominates (no electronic-noise term).
@@ -182,7 +182,7 @@ def predict_thresholds(
             m = next((int(v) for k, v in m_alternatives.items() if np.isclose(float(k), d)), 4)
         else:
             m = int(m_alternatives)
-        pc = halfway_criterion(m) if criterion_pc is None else float(criterion_pc)
+        pc = criterion_for(m, criterion_pc)
         return m, pc, dprime_for_pc(pc, m)
 
     nnps_f = _as_function(nnps, beyond="hold")

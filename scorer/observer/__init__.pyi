@@ -23,7 +23,14 @@ from .npw import (
     estimate_blur as estimate_blur,
 )
 from .eye import eye_filter as eye_filter
-from .mafc import pc_mafc as pc_mafc, dprime_for_pc as dprime_for_pc, halfway_criterion as halfway_criterion
+from .mafc import (
+    pc_mafc as pc_mafc,
+    dprime_for_pc as dprime_for_pc,
+    halfway_criterion as halfway_criterion,
+    criterion_for as criterion_for,
+    Detectability as Detectability,
+    DEFAULT_DETECTABILITY as DEFAULT_DETECTABILITY,
+)
 from .psychometric import fit_psychometric as fit_psychometric, PsychometricFit as PsychometricFit
 from .threshold import (
     ThresholdCurve as ThresholdCurve,
@@ -67,6 +74,9 @@ __all__ = [
     "pc_mafc",
     "dprime_for_pc",
     "halfway_criterion",
+    "criterion_for",
+    "Detectability",
+    "DEFAULT_DETECTABILITY",
     "fit_psychometric",
     "PsychometricFit",
     "ThresholdCurve",

@@ -416,6 +416,21 @@ def saturation_level(pixels: np.ndarray, min_fraction: float = 1e-3) -> float | 
     return top if np.count_nonzero(pixels == top) >= min_fraction * pixels.size else None
 
 
+def _saturated_line(pixels: np.ndarray, top: float, r0: int, c0: int, hit) -> str:
+    """'saturated row N' / 'saturated column N' when the saturated pixels of a site lie on a row or column that is
+    mostly at the maximum (a detector defect), else ''."""
+    if hit is None:
+        return ""
+    rr, cc = np.nonzero(hit)
+    for r in sorted(set((rr + r0).tolist())):
+        if np.mean(pixels[r] >= top) >= 0.5:
+            return f"saturated row {r}"
+    for c in sorted(set((cc + c0).tolist())):
+        if np.mean(pixels[:, c] >= top) >= 0.5:
+            return f"saturated column {c}"
+    return ""
+
+
 def score_image(
     image: Image,
     layout: Layout,
@@ -475,9 +490,16 @@ def score_image(
             if keep is not None and keep.all():
                 keep = None
             if saturated is not None and np.any(g >= saturated if keep is None else g[keep] >= saturated):
+                line = _saturated_line(pixels, saturated, ri - h, ci - h, g >= saturated if keep is None else None)
+                if line:
+                    raise LimenError(
+                        f"target {t.id!r} site {k} is crossed by {line} (pixels at the detector's maximum value "
+                        "along the line): a detector defect, not an over-exposure; score with the defect checks "
+                        "on, which exclude the sites it touches"
+                    )
                 raise LimenError(
                     f"target {t.id!r} site {k} is saturated (pixels at the detector's maximum "
-                    "value); repeat the exposure at a lower dose"
+                    "value): an over-exposure; repeat the exposure at a lower dose"
                 )
             patches.append((ri, ci, g, keep, bank.get(r - ri, c - ci)))
             scored.append(k)
@@ -576,7 +598,8 @@ METHOD_TEXT = (
     "noise, computed from the templates (a loss of 0–2.5 % of d′, largest for large discs in small regions; "
     "its dependence on the noise's correlation measured below 0.35 %). <b>d′ method</b>: d′ per unit contrast "
     "= 1/σ, σ² the response variance pooled over the diameter's sites; the threshold is the contrast where d′ "
-    "reaches the M-AFC value of the halfway criterion; its 95 % CI is analytic. <b>Count method</b>: binomial "
+    "reaches the fixed detectability d′_T (the same for every M); its 95 % CI is analytic. "
+    "<b>Count method</b>: binomial "
     "maximum-likelihood fit of Pc_M(k·C) with its small-sample bias removed, profile likelihood CI. "
     "<b>Discs of about a pixel</b>: their d′ per unit contrast depends on where they fall on the pixel grid "
     "(with sharp discs up to ×2 between a pixel corner and a pixel centre); Limen reports the pooled value over "

@@ -22,7 +22,7 @@ The lapse rate is fixed at ``lapse`` when a number is given, or fitted within
 [0, 0.1] when ``lapse=None`` (Wichmann & Hill 2001, part I).
 
 The threshold contrast is, by default, where the *lapse-free* function reaches
-the criterion proportion correct (halfway between chance and 1 unless given):
+the criterion proportion correct (Pc_M at the default d′_T, :func:`scorer.observer.mafc.criterion_for`, unless given):
 lapses describe inattention, not sensitivity (Wichmann & Hill 2001, part I).
 ``threshold(..., lapse_adjusted=True)`` instead solves the fitted function
 including the lapse.  With ``λ = 0`` both are the same.
@@ -54,7 +54,7 @@ from scipy import optimize, stats
 from scipy.special import expit, gammaln, logit
 
 from scorer.errors import LimenError
-from scorer.observer.mafc import halfway_criterion
+from scorer.observer.mafc import criterion_for
 from scorer.observer.mafc_fast import _EPS, _dprime_for, _k_bounds, _loglik_p, fit_k_batch, pc_mafc_fast
 
 LAPSE_MAX = 0.1  # a fitted lapse rate is kept within [0, LAPSE_MAX]
@@ -131,7 +131,7 @@ class PsychometricFit:
         return float(out) if np.ndim(out) == 0 else out
 
     def _target_fraction(self, criterion_pc: float | None, lapse_adjusted: bool) -> float:
-        p = halfway_criterion(self.m_alternatives) if criterion_pc is None else float(criterion_pc)
+        p = criterion_for(self.m_alternatives, criterion_pc)
         gamma, lam = self.guess_rate, float(self.params["lapse"]) if lapse_adjusted else 0.0
         top = 1.0 - lam * (1.0 - gamma) if self.form == "mafc" else 1.0 - lam
         if not (gamma < p < top):
@@ -144,7 +144,7 @@ class PsychometricFit:
     def threshold(self, criterion_pc: float | None = None, lapse_adjusted: bool = False) -> float:
         """Threshold contrast (fraction) where Pc reaches ``criterion_pc``.
 
-        Default criterion: halfway between chance and 1 (:func:`scorer.observer.mafc.halfway_criterion`).
+        Default criterion: Pc_M at the default detectability d′_T (:func:`scorer.observer.mafc.criterion_for`).
         By default the lapse-free function is solved; ``lapse_adjusted=True`` solves the
         fitted function including the lapse rate.
         """
@@ -237,7 +237,7 @@ class PsychometricFit:
         width = 64
         lines.append("Psychometric function fit".center(width))
         lines.append("=" * width)
-        p = halfway_criterion(self.m_alternatives) if criterion_pc is None else float(criterion_pc)
+        p = criterion_for(self.m_alternatives, criterion_pc)
         left = [
             ("Form:", self.form),
             ("Alternatives M:", str(self.m_alternatives)),

@@ -21,7 +21,7 @@ import numpy as np
 
 from scorer.errors import LimenError
 from scorer.observer.bootstrap import BootstrapResult, UnitCounts, bootstrap_weights, percentile_ci
-from scorer.observer.mafc import halfway_criterion
+from scorer.observer.mafc import criterion_for
 from scorer.observer.mafc_fast import _dprime_for, fit_k_batch
 from scorer.observer.psychometric import fit_psychometric
 
@@ -57,7 +57,7 @@ def bootstrap_threshold(
     levels, y_u, n_u = units.levels, units.y, units.n
     y_all, n_all = y_u.sum(axis=0), n_u.sum(axis=0)
     keep = n_all > 0
-    p = halfway_criterion(m_alternatives) if criterion_pc is None else float(criterion_pc)
+    p = criterion_for(m_alternatives, criterion_pc)
 
     def one(yv, nv) -> float:
         if fit_fn is not None:

@@ -21,8 +21,8 @@ from scorer.images.image import Image
 from scorer.observer.checks import CONTRAST_SCALE, ImageChecks, SetChecks, check_image
 from scorer.observer.defects import DEFAULT_FALSE_FLAG_RATE, DefectMap
 from scorer.observer.limits import HumanFactor, Limits, Verdict, evaluate, overall
-from scorer.observer.npw import ObserverConfig, SystemBlur, decide, estimate_blur, score_image
-from scorer.observer.mafc import halfway_criterion
+from scorer.observer.npw import ObserverConfig, SystemBlur, decide, estimate_blur, score_image, site_regions
+from scorer.observer.mafc import Detectability, criterion_for, criterion_json
 from scorer.observer.threshold import ThresholdCurve, ThresholdPoint, count_thresholds, dprime_thresholds
 from scorer.phantom.layout import Layout
 from scorer.phantom.registration import register
@@ -63,6 +63,24 @@ class ScoreResult:
     @property
     def overall_verdict(self) -> str:
         return "no limits" if self.verdicts is None else overall(self.verdicts)
+
+    def registration_frame(self) -> pd.DataFrame:
+        """One row per image: the registration's residual, the markers used and not used (with why), the target
+        sites outside the image and the defective lines found before registration."""
+        rows = []
+        for s in self.images:
+            p = s.placement
+            rows.append(
+                {
+                    "image": s.image_id,
+                    "residual_px": p.residual_px,
+                    "markers_used": " ".join(sorted(p.markers_px)),
+                    "markers_not_used": "; ".join(f"{k}: {v}" for k, v in p.markers_not_used.items()),
+                    "sites_outside": " ".join(f"{t}/{k}" for t, k in p.sites_outside),
+                    "defective_lines": "; ".join(ln.name for ln in p.lines),
+                }
+            )
+        return pd.DataFrame(rows)
 
     def thresholds_frame(self) -> pd.DataFrame:
         return pd.concat([c.to_frame() for c in self.curves.values()], ignore_index=True)
@@ -135,7 +153,7 @@ def score_images(
     viewing_distance_mm: float | None = None,
     n_boot: int = 1000,
     seed: int = 0,
-    criterion_pc: float | None = None,
+    criterion_pc: float | Detectability | None = None,
     limits: Limits | None = None,
     human_factor: float | HumanFactor | None = None,
     verdict_method: str | None = None,
@@ -173,6 +191,10 @@ def score_images(
         and said so in the warnings, the responses' ``excluded`` column and the JSON.
     defect_map : defective pixels and lines measured from flat fields (``limen detector``); sites touching
         them are excluded too.
+    criterion_pc : the threshold definition (:func:`scorer.observer.mafc.criterion_for`): None, the observer
+        reaches the default detectability d′_T (the same for every M, so curves are continuous across cells of
+        different M); a :class:`~scorer.observer.mafc.Detectability` (another d′_T); or a number, one Pc for
+        every M.
     notch : remove each periodic pattern found in an image by a narrow notch filter before scoring it.
     false_flag_rate : expected number of pixels (and of line segments) flagged in a clean image.
     on_checked : called as ``on_checked(index, name, image, placement, checks)`` after each image's checks
@@ -190,7 +212,7 @@ def score_images(
     for m in methods:
         if m not in METHODS:
             raise LimenError(f"unknown method {m!r}; choose dprime, count or both")
-    if criterion_pc is not None:
+    if criterion_pc is not None and not isinstance(criterion_pc, Detectability):
         m_max = max(t.m_alternatives for t in layout.targets)
         m_min = min(t.m_alternatives for t in layout.targets)
         if not (np.isfinite(criterion_pc) and 1.0 / m_min < criterion_pc < 1.0):
@@ -214,6 +236,7 @@ def score_images(
         "--n-boot",
     )
     seen_hashes: dict[str, str] = {}
+    outside_sites: dict[str, dict] = {}  # image id → (target, site) → reason: sites outside the image
     notes: list[str] = []
     ids = _image_ids([str(p) for p in names])
     scores, frames = [], []
@@ -237,7 +260,12 @@ def score_images(
             raise
         img_blur = config.blur or estimate_blur(image, layout, placement)
         cfg = ObserverConfig(observer=config.observer, viewing_distance_mm=config.viewing_distance_mm, blur=img_blur)
-        skip: dict = {}
+        notes += [f"{path}: {n}" for n in placement.notes()]
+        edge = _sites_at_edge(layout, placement, img_blur, np.shape(image.pixels))
+        if edge:
+            outside_sites[image_id] = edge
+            notes.append(f"{path}: {_edge_text(edge)}")
+        skip: dict = dict(edge)
         masked = None
         checks = None
         if set_checks is not None:
@@ -255,7 +283,7 @@ def score_images(
                 )
             except LimenError as exc:
                 raise LimenError(str(exc), getattr(exc, "path", None) or path) from None
-            skip, masked = checks.excluded, checks.mask
+            skip, masked = {**edge, **checks.excluded}, checks.mask
             checks.mask = None  # the observer below is its last user
             set_checks.add(checks)
             if on_checked is not None:
@@ -279,8 +307,11 @@ def score_images(
     if set_checks is not None:
         set_checks.finish()
         responses = set_checks.mark(responses)
-        used = responses[responses["excluded"] == ""]
         notes += set_checks.warnings({s.image_id: s.path for s in scores})
+    if outside_sites:
+        responses = _mark_outside(responses, outside_sites)
+    if set_checks is not None or outside_sites:
+        used = responses[responses["excluded"] == ""]
     trials = decide(used)
     per_image = trials.groupby("image")["correct"].agg(["sum", "count"])
     for sc in scores:
@@ -306,7 +337,8 @@ def score_images(
         "seed": seed,
         "count_form": count_form,
         "dprime_ci": dprime_ci,
-        "criterion_pc": criterion_pc,
+        "criterion_pc": None if isinstance(criterion_pc, Detectability) else criterion_pc,
+        "threshold_definition": criterion_json(criterion_pc, {t.m_alternatives for t in layout.targets}),
         "viewing_distance_mm": config.viewing_distance_mm,
         "conversion": None if conversion is None else conversion.to_dict(),
         "blur": "per-image estimate from markers"
@@ -346,7 +378,7 @@ def score_images(
 
 
 def _note_exclusions(
-    curves: dict[str, ThresholdCurve], responses: pd.DataFrame, trials: pd.DataFrame, criterion_pc: float | None
+    curves: dict[str, ThresholdCurve], responses: pd.DataFrame, trials: pd.DataFrame, criterion_pc
 ) -> None:
     """Say on each threshold how many M-AFC trials it rests on when some were excluded for defects; a diameter
     whose every trial was excluded gets a point without a threshold that says so."""
@@ -354,12 +386,23 @@ def _note_exclusions(
     total = all_trials.groupby("diameter_mm").size()
     used = trials.groupby("diameter_mm").size()
     m_of = all_trials.groupby("diameter_mm")["m_alternatives"].first()
+    why_of = {}  # diameter → why its trials were excluded: defects, sites outside the image, or both
+    if "excluded" in responses.columns:
+        for d, g in responses[responses["excluded"] != ""].groupby("diameter_mm"):
+            out = g["excluded"].str.contains(OUTSIDE_REASON, regex=False)
+            why_of[round(float(d), 9)] = (
+                "for defects"
+                if not out.any()
+                else "as outside the image"
+                if out.all()
+                else "for defects or as outside the image"
+            )
     for curve in curves.values():
         have = {round(p.diameter_mm, 9) for p in curve.points}
         for d in total.index:
             if round(float(d), 9) not in have:
                 m = int(m_of[d])
-                pc = halfway_criterion(m) if criterion_pc is None else float(criterion_pc)
+                pc = criterion_for(m, criterion_pc)
                 nan = float("nan")
                 curve.points.append(ThresholdPoint(float(d), nan, nan, nan, curve.method, curve.observer, 0, m, pc))
         curve.points.sort(key=lambda p: p.diameter_mm)
@@ -368,8 +411,58 @@ def _note_exclusions(
             n_used = int(used.get(p.diameter_mm, 0))
             if n_used < n_all:
                 p.n_trials, p.n_excluded = n_used, n_all - n_used
+                why = why_of.get(round(float(p.diameter_mm), 9), "for defects")
                 p.note = (p.note + "; " if p.note else "") + (
-                    f"rests on {n_used} of {n_all} trials ({n_all - n_used} excluded for defects; the CI uses the rest)"
+                    f"rests on {n_used} of {n_all} trials ({n_all - n_used} excluded {why}; the CI uses the rest)"
                     if n_used
-                    else f"no threshold: all {n_all} trials were excluded for defects"
+                    else f"no threshold: all {n_all} trials were excluded {why}"
                 )
+
+
+OUTSIDE_REASON = "outside the image"
+
+
+def _sites_at_edge(layout: Layout, placement, blur, shape) -> dict[tuple[str, int], str]:
+    """The sites (all of each target that has one) whose disc lies outside the image, or whose region reaches
+    past its edge: (target, site) → reason.  An M-AFC trial needs every site of its target, so the whole
+    target goes."""
+    H, W = int(shape[0]), int(shape[1])
+    out_disc = set(map(tuple, getattr(placement, "sites_outside", []) or []))
+    bad: dict[str, dict[int, str]] = {}
+    for r in site_regions(layout, placement, blur):
+        h = int(np.ceil(r.radius_px))
+        ri, ci = int(round(r.row_px)), int(round(r.col_px))
+        if (r.target, r.site) in out_disc:
+            bad.setdefault(r.target, {})[r.site] = f"{OUTSIDE_REASON} (plate cut off by the image edge)"
+        elif ri - h < 0 or ci - h < 0 or ri + h + 1 > H or ci + h + 1 > W:
+            bad.setdefault(r.target, {})[r.site] = f"{OUTSIDE_REASON}: its region reaches past the image edge"
+    out = {}
+    for t in layout.targets:
+        if t.id in bad:
+            first = min(bad[t.id])
+            for k in range(t.m_alternatives):
+                out[(t.id, k)] = bad[t.id].get(k, f"trial left out: site {first} {OUTSIDE_REASON}")
+    return out
+
+
+def _edge_text(edge: dict) -> str:
+    """One line naming the sites outside the image (target/site ids) and their trials left out."""
+    named = [f"{t}/{s}" for (t, s), why in sorted(edge.items()) if not why.startswith("trial left out")]
+    targets = sorted({t for t, _ in edge})
+    listed = ", ".join(named[:12]) + (f" and {len(named) - 12} more" if len(named) > 12 else "")
+    return (
+        f"plate partly outside the image: {len(named)} target site(s) outside or at the edge ({listed}); the "
+        f"{len(targets)} M-AFC trial(s) they belong to are left out and the sites inside are scored"
+    )
+
+
+def _mark_outside(responses: pd.DataFrame, outside: dict[str, dict]) -> pd.DataFrame:
+    """The responses with the sites outside the image (and their trials) marked in the ``excluded`` column (as
+    :meth:`SetChecks.mark` marks defects; a site both defective and outside keeps the defect's reason)."""
+    out = responses.copy()
+    before = out["excluded"] if "excluded" in out.columns else pd.Series("", index=out.index)
+    edge = [outside.get(img, {}).get((t, int(s)), "") for img, t, s in zip(out["image"], out["target"], out["site"])]
+    out["excluded"] = [b if b else e for b, e in zip(before, edge)]
+    if "masked_px" not in out.columns:
+        out["masked_px"] = 0
+    return out

@@ -3,8 +3,9 @@
 *Count method* — the proportion of correct M-AFC decisions per target over the
 images is fitted per diameter by maximum likelihood with the linear-observer
 form Pc(C) = Pc_M(k·C) (:mod:`scorer.observer.psychometric`, guess rate 1/M); the threshold
-is the contrast where Pc reaches the criterion (default halfway between chance and
-1, common practice), corrected for the fit's first-order small-sample bias (Cox & Snell
+is the contrast where Pc reaches the criterion (default: Pc_M at the fixed detectability d′_T
+of :data:`scorer.observer.mafc.DEFAULT_DETECTABILITY`, the same d′ for every M),
+corrected for the fit's first-order small-sample bias (Cox & Snell
 1968), with a profile likelihood-ratio interval (Wilks 1938) widened when the targets'
 counts scatter beyond binomial.
 
@@ -69,7 +70,7 @@ import pandas as pd
 
 from scorer.errors import LimenError
 from scorer.observer.flags import text as flag_text, threshold_flags
-from scorer.observer.mafc import dprime_for_pc, halfway_criterion
+from scorer.observer.mafc import criterion_for, dprime_for_pc
 from scipy import stats
 
 from scorer.observer.bootstrap import enclose_estimate, expanded_percentile_ci, unit_counts
@@ -352,7 +353,7 @@ def _analytic_ci(d, C, use, n_img, m: int, df: float, est: float, ci: float):
 def dprime_thresholds(
     responses: pd.DataFrame,
     *,
-    criterion_pc: float | None = None,
+    criterion_pc=None,
     n_boot: int = 1000,
     seed: int | None = 0,
     ci: float = 0.95,
@@ -371,7 +372,7 @@ def dprime_thresholds(
     points, notes = [], []
     for diam, group in responses.groupby("diameter_mm", sort=True):
         S, B, C, m = _dprime_arrays(group)
-        p = halfway_criterion(m) if criterion_pc is None else float(criterion_pc)
+        p = criterion_for(m, criterion_pc)
         dt = dprime_for_pc(p, m)
         n_img = S.shape[0]
         k, d_all, sigma, use, df = _dprime_k(S, B, C, np.ones((1, n_img)), dt)
@@ -408,7 +409,7 @@ def dprime_thresholds(
 def count_thresholds(
     trials: pd.DataFrame,
     *,
-    criterion_pc: float | None = None,
+    criterion_pc=None,
     n_boot: int = 1000,
     seed: int | None = 0,
     ci: float = 0.95,
@@ -433,7 +434,7 @@ def count_thresholds(
     points = []
     for diam, g in trials.groupby("diameter_mm", sort=True):
         m = int(g["m_alternatives"].iloc[0])
-        p = halfway_criterion(m) if criterion_pc is None else float(criterion_pc)
+        p = criterion_for(m, criterion_pc)
         n_img = int(g["image"].nunique())
         if ci_method == "likelihood":
             est, lo, hi, note = _likelihood_threshold(g, m, p, form, ci)

@@ -28,6 +28,15 @@ Registration runs in four steps:
    positions onto all measured centres, in detector millimetres so that
    non-square pixels are handled; the residual is reported in pixels.
 
+**Surviving defects and edges.**  Defective rows and columns are found first
+(:mod:`scorer.phantom.line_defects`) and the image repaired across them for the marker search.  A marker
+crossed by such a line, or cut off by the image edge, is *not used*: the fit rests on the other markers when
+at least three remain, no other assignment of them to the layout's markers fits as well (the plate's
+geometry still fixes its orientation) and the residual is within the limit; the marker and the reason are in
+``Placement.markers_not_used``.  Otherwise the image is refused, naming the cause.  Target sites outside the
+image do not refuse it either: they are listed (``Placement.sites_outside``) and the observer scores the
+sites inside (:func:`scorer.observer.scoring.score_images` leaves out the trials of the sites outside).
+
 Every failure is a :class:`RegistrationError` (a :class:`~scorer.errors.LimenError`)
 naming the file and the problem on one line, carrying the blobs found so that the
 caller can draw a diagnostic overlay (:func:`scorer.reports.overlay.draw_overlay`).
@@ -52,6 +61,7 @@ from scorer.errors import LimenError
 from scorer.phantom.geometry import PhantomTransform
 from scorer.images.image import Image
 from scorer.phantom.layout import Layout
+from scorer.phantom.line_defects import RegistrationLine, find_registration_lines, repair_lines
 
 # Blocks across the smallest marker (at the smallest magnification) on the coarse image.
 COARSE_BLOCKS_PER_MARKER = 6.0
@@ -108,9 +118,15 @@ class Placement:
     magnification : float
         Detector-plane mm per phantom mm (uses the image's pixel spacing).
     markers_px : dict
-        Marker id → measured (row, col).
+        Marker id → measured (row, col) of the markers used in the fit.
     candidates_px : list of (row, col, diameter_px)
         Every blob considered.
+    markers_not_used : dict
+        Marker id → why it was left out of the fit (crossed by a defective line, outside the image).
+    sites_outside : list of (target id, site index)
+        Target sites whose disc lies outside the image.
+    lines : list of RegistrationLine
+        Defective rows and columns found before registration.
     """
 
     transform: PhantomTransform
@@ -121,10 +137,29 @@ class Placement:
     magnification: float
     markers_px: dict[str, tuple[float, float]]
     candidates_px: list[tuple[float, float, float]] = field(default_factory=list)
+    markers_not_used: dict[str, str] = field(default_factory=dict)
+    sites_outside: list[tuple[str, int]] = field(default_factory=list)
+    lines: list[RegistrationLine] = field(default_factory=list)
+
+    def notes(self) -> list[str]:
+        """One-line statements of what the fit left out (empty when it used every marker)."""
+        out = []
+        if self.markers_not_used:
+            n_used = len(self.markers_px)
+            why = "; ".join(f"{k}: {v}" for k, v in self.markers_not_used.items())
+            out.append(
+                f"marker(s) {', '.join(self.markers_not_used)} not used in the registration ({why}); fitted on "
+                f"the {n_used} other markers, residual {self.residual_px:.2f} px RMS"
+            )
+        return out
 
     def to_dict(self) -> dict:
         """JSON-ready summary (plain floats, lists)."""
         return {
+            "markers_used": sorted(self.markers_px),
+            "markers_not_used": dict(self.markers_not_used),
+            "sites_outside": [{"target": t, "site": int(s)} for t, s in self.sites_outside],
+            "defective_lines": [ln.to_dict() for ln in self.lines],
             "residual_px": float(self.residual_px),
             "max_residual_px": float(self.max_residual_px),
             "rotation_deg": float(self.rotation_deg),
@@ -420,13 +455,15 @@ def register(
     d_hi_px = d_mm.max() * mag_hi * SIZE_SLACK / pixel_mm
     f = max(1, int(d_mm.min() * mag_lo / pixel_mm / COARSE_BLOCKS_PER_MARKER))
     closing = int(np.ceil(1.3 * d_hi_px / f)) + 3
-    blobs = _coarse_blobs(pix, f, closing, DEPTH_FRACTION * c_min)
+    lines = find_registration_lines(pix, c_min)
+    work = repair_lines(pix, lines) if lines else pix  # for the marker search only
+    blobs = _coarse_blobs(work, f, closing, DEPTH_FRACTION * c_min)
 
     # refine the marker-sized blobs at full resolution
     sized = [b for b in blobs if 0.6 * d_lo_px <= b.diameter_px <= 1.4 * d_hi_px][:MAX_MARKER_BLOBS]
     good: list[_Blob] = []
     for b in sized:
-        res = _refine(pix, b.row, b.col, b.diameter_px)
+        res = _refine(work, b.row, b.col, b.diameter_px)
         if res is None:
             continue
         b.row, b.col, b.diameter_px, b.depth, _ = res
@@ -484,58 +521,97 @@ def register(
             candidates_px=candidates,
         )
 
-    if n_found < n_exp:
-        found = [i for i in range(n_exp) if assign[i] >= 0]
-        missing = [i for i in range(n_exp) if assign[i] < 0]
-        partial = fit(found)
-        pred = partial.transform.to_pixel([markers[i].xy_mm for i in missing])
-        scale = partial.transform.scale_px_per_mm()
-        outside = [
-            markers[i].id
-            for i, rc in zip(missing, pred)
-            if not _inside(rc, 0.5 * markers[i].diameter_mm * scale, rows, cols)
-        ]
-        names = ", ".join(markers[i].id for i in missing)
-        if outside:
-            fail(
-                f"phantom cut off by the field edge: marker(s) {', '.join(outside)} would lie "
-                f"outside the image ({n_found} of {n_exp} markers found)",
-                partial,
-            )
+    found = [i for i in range(n_exp) if assign[i] >= 0]
+    first = fit(found)
+    scale = first.transform.scale_px_per_mm()
+    pred = first.transform.to_pixel([m.xy_mm for m in markers])
+    not_used: dict[str, str] = {}
+    for i, m in enumerate(markers):
+        rc = pred[i] if assign[i] < 0 else (good[assign[i]].row, good[assign[i]].col)
+        r_px = 0.5 * m.diameter_mm * scale
+        if not _inside(rc, r_px, rows, cols):
+            partly = _inside(rc, -r_px, rows, cols)  # some of the disc inside: cut by the edge
+            not_used[m.id] = "cut off by the image edge" if partly else "outside the image"
+            continue
+        crossing = [ln for ln in lines if ln.distance_px(float(rc[0]), float(rc[1])) <= r_px + 2.0]
+        if crossing:
+            not_used[m.id] = "crossed by " + ", ".join(ln.describe() for ln in crossing)
+    unexplained = [markers[i].id for i in range(n_exp) if assign[i] < 0 and markers[i].id not in not_used]
+    if unexplained:
         fail(
-            f"only {n_found} of {n_exp} markers found; marker(s) {names} not found where the others place them", partial
+            f"only {n_found} of {n_exp} markers found; marker(s) {', '.join(unexplained)} not found where the "
+            "others place them" + _lines_text(lines),
+            first,
         )
-
-    placement = fit(list(range(n_exp)))
+    used = [i for i in found if markers[i].id not in not_used]
+    if len(used) < 3:
+        why = "; ".join(f"{k}: {v}" for k, v in not_used.items())
+        fail(
+            f"phantom cut off or crossed by defects: only {len(used)} of {n_exp} markers usable ({why}); at least "
+            "three are needed to place the phantom",
+            first,
+        )
+    placement = fit(used)
+    placement.markers_not_used = not_used
+    placement.lines = list(lines)
+    if not_used:
+        meas_rc = np.array([placement.markers_px[markers[i].id] for i in used])
+        other = _other_assignment(
+            markers, used, np.column_stack([meas_rc[:, 1] * dc_mm, meas_rc[:, 0] * dr_mm]), max_residual_px * pixel_mm
+        )
+        if other is not None:
+            fail(
+                f"marker(s) {', '.join(not_used)} not used ({'; '.join(not_used.values())}), and the other markers "
+                f"fit the layout equally well in another orientation (as {', '.join(other)}): the plate's "
+                "orientation is not determined",
+                placement,
+            )
     transform = placement.transform
     mag = placement.magnification
-    meas_rc = np.array(list(placement.markers_px.values()))
 
-    # every marker and every target site (with its disc) must lie inside the image
+    # target sites (with their discs) outside the image are listed; the observer scores the sites inside
     scale = transform.scale_px_per_mm()
-    bad_markers = [m.id for m, rc in zip(markers, meas_rc) if not _inside(rc, 0.5 * m.diameter_mm * scale, rows, cols)]
-    n_sites = n_out = 0
+    n_sites = 0
     for tg in layout.targets:
         rc = transform.to_pixel(tg.sites)
         r_ = 0.5 * tg.diameter_mm * scale
         n_sites += len(rc)
-        n_out += sum(not _inside(x, r_, rows, cols) for x in rc)
-    if bad_markers or n_out:
-        parts = []
-        if n_out:
-            parts.append(f"{n_out} of {n_sites} target sites")
-        if bad_markers:
-            parts.append(f"marker(s) {', '.join(bad_markers)}")
-        fail(f"phantom cut off by the field edge: {' and '.join(parts)} lie outside the image", placement)
+        placement.sites_outside += [(tg.id, k) for k, x in enumerate(rc) if not _inside(x, r_, rows, cols)]
+    if len(placement.sites_outside) == n_sites:
+        fail(f"phantom cut off by the field edge: all {n_sites} target sites lie outside the image", placement)
     if not mag_lo * (1 - MAGNIFICATION_TOLERANCE) <= mag <= mag_hi * (1 + MAGNIFICATION_TOLERANCE):
         fail(f"magnification {mag:.3f} lies outside the allowed range {mag_lo:g}–{mag_hi:g}", placement)
     if placement.residual_px > max_residual_px:
         fail(
             f"marker fit residual {placement.residual_px:.2f} px RMS (max {placement.max_residual_px:.2f} px) "
-            f"exceeds the limit of {max_residual_px:g} px; wrong layout file or a distorted image?",
+            f"exceeds the limit of {max_residual_px:g} px; wrong layout file or a distorted image?"
+            + _lines_text(lines),
             placement,
         )
     return placement
+
+
+def _lines_text(lines) -> str:
+    return f" (defective line(s) in the image: {', '.join(ln.name for ln in lines[:5])})" if lines else ""
+
+
+def _other_assignment(markers, used: list[int], meas_mm: np.ndarray, max_residual_mm: float):
+    """Another assignment of the used markers' centres to layout markers of the same size that fits within the
+    residual limit (so the markers left fix neither the orientation nor the mirror), or None."""
+    import itertools
+
+    z = np.array([m.xy_mm for m in markers], float)
+    d = np.array([m.diameter_mm for m in markers], float)
+    options = [[j for j in range(len(markers)) if abs(d[j] / d[i] - 1) < DIAMETER_TOLERANCE] for i in used]
+    for perm in itertools.product(*options):
+        if len(set(perm)) < len(perm) or list(perm) == list(used):
+            continue
+        src = z[list(perm)]
+        for reflect in (False, True):
+            A, t = fit_similarity(src, meas_mm, reflect=reflect)
+            if np.sqrt(np.mean(np.sum((src @ A.T + t - meas_mm) ** 2, axis=1))) <= max_residual_mm:
+                return [markers[j].id for j in perm]
+    return None
 
 
 def _inside(rc, radius_px: float, rows: int, cols: int) -> bool:

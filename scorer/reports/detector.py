@@ -356,7 +356,10 @@ def detector_report_html(result: dict, metrics=None, title: str = "Limen detecto
                 "Predicted threshold contrast",
                 _figure(
                     _thresholds_plot(_by_observer(result["predicted"], "predicted")),
-                    "From the MTF and NNPS (NPW/NPWE, ICRU Report 54 Fourier form).",
+                    "From the MTF and NNPS (NPW/NPWE, ICRU Report 54 Fourier form), on the nominal contrast scale "
+                    "(the fractional drop of the primary beam's air kerma behind the disc, no scatter); threshold "
+                    "where the observer reaches the fixed detectability d′_T (dprime_threshold below), the same "
+                    "for every M.",
                 )
                 + table_html(
                     *display_records(
@@ -366,6 +369,7 @@ def detector_report_html(result: dict, metrics=None, title: str = "Limen detecto
                             "diameter_mm",
                             "threshold_contrast",
                             "dprime_per_unit_contrast",
+                            "dprime_threshold",
                             "criterion_pc",
                             "m_alternatives",
                         ],

@@ -268,6 +268,7 @@ READABLE = {
     "p_value": "p",
     "p_adjusted": "p (Holm)",
     "dprime_per_unit_contrast": "d′ per unit contrast",
+    "dprime_threshold": "d′ at threshold",
     "criterion_pc": "Pc at threshold",
     "m_alternatives": "alternatives (M)",
     "observed_agreement": "observed agreement",

@@ -177,7 +177,8 @@ def _thumb(png: Path, max_px: int = 560) -> str:
 def write_score_outputs(
     result, out_dir, overlays: list[Path] | None = None, command: str = "", defect_overlays: list[Path] | None = None
 ) -> dict:
-    """Write results.json, responses.csv, trials.csv, thresholds.csv, verdicts.csv and report.html."""
+    """Write results.json, responses.csv, trials.csv, thresholds.csv, registration.csv, verdicts.csv and
+    report.html."""
     out = Path(out_dir)
     try:
         out.mkdir(parents=True, exist_ok=True)
@@ -191,6 +192,7 @@ def write_score_outputs(
     atomic_write_text(out / "responses.csv", result.responses.to_csv(index=False))
     atomic_write_text(out / "trials.csv", result.trials.to_csv(index=False))
     atomic_write_text(out / "thresholds.csv", result.thresholds_frame().to_csv(index=False))
+    atomic_write_text(out / "registration.csv", result.registration_frame().to_csv(index=False))
     if result.verdicts is not None:
         import pandas as pd
 
@@ -265,6 +267,16 @@ def render_html(result, overlays: list[Path], command: str = "", defect_overlays
     if result.warnings:
         intro += "<ul>" + "".join(f"<li>{html.escape(w)}</li>" for w in result.warnings) + "</ul>"
     intro += f"<p class='meta'><b>Contrast scale.</b> Thresholds are on the {html.escape(CONTRAST_SCALE)}.</p>"
+    td = result.settings.get("threshold_definition")
+    if td:
+        pcs = ", ".join(f"Pc = {v['pc']:.3f} at {m}-AFC" for m, v in td["pc_by_m"].items())
+        what = (
+            f"where the observer reaches d′ = {td['dprime_threshold']:.4g}"
+            + (" (default: the d′ at which 3-AFC reaches Pc = 2/3)" if td.get("default") else "")
+            if td.get("dprime_threshold") is not None
+            else "at a fixed proportion correct"
+        )
+        intro += f"<p class='meta'><b>Threshold definition.</b> The threshold is the contrast {what}: {pcs}.</p>"
     sections = [
         ("Summary", intro),
         (

@@ -15,6 +15,7 @@ import pandas as pd
 
 from scorer.errors import LimenError  # noqa: E402
 from scorer.files import atomic_write_text  # noqa: E402
+from scorer.observer.mafc import criterion_text
 from scorer.observer.flags import capped_percent, legend as flag_legend, text as flag_text, threshold_flags
 from scorer.study.estimability import not_estimable_text  # noqa: E402
 from scorer.reports.html import (
@@ -377,9 +378,12 @@ def report_html(a, meta: dict | None = None) -> str:
     else:
         design = f"{a.m_alternatives}-alternative forced choice"
         crit = f"Pc = {a.criterion_pc:.4g}"
+    ms = a.m_alternatives.values() if isinstance(a.m_alternatives, dict) else [a.m_alternatives]
     summary = (
-        f"<p>{len(a.readers)} reader(s); {design}; threshold criterion {crit} (halfway between chance and "
-        f"1 unless set); {a.n_boot} bootstrap resamples, seed {a.seed}. Contrasts are shown in percent.</p>"
+        f"<p>{len(a.readers)} reader(s); {design}; threshold criterion {crit}: "
+        f"{html.escape(criterion_text(getattr(a, 'criterion', None), ms))}; {a.n_boot} bootstrap resamples, "
+        f"seed {a.seed}. Contrasts are shown in percent, on the nominal contrast scale of the layout (the "
+        "fractional drop of the primary beam's air kerma behind each disc).</p>"
     )
     if any(n.startswith("Simulated readers") for n in a.notes):
         summary = (

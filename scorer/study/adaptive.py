@@ -14,7 +14,7 @@ A linear observer's d′ grows in proportion to contrast, d′ = k·C, so in M-A
     Pc(C) = (1 − λ)·Pc_M(k·C) + λ/M ,      Pc_M(d′) = ∫ φ(x − d′) Φ(x)^(M−1) dx
 
 (Green & Swets 1966; lapse λ as in Wichmann & Hill 2001, part I).  The threshold is where the lapse-free
-function reaches the criterion Pc (halfway between chance and 1 unless given): C_T = d′_T/k.  The unknown
+function reaches the criterion Pc (Pc_M at the default d′_T unless given): C_T = d′_T/k.  The unknown
 is θ = ln C_T; the posterior over θ lives on a uniform grid.  The prior is Gaussian in θ (broad by default:
 centred on the plate's levels, SD half their ln span).  The lapse in the placement model (default 0.02)
 keeps one inattentive error at a high contrast from ruling out every low threshold; the analysis of the
@@ -64,7 +64,7 @@ from functools import cached_property, lru_cache
 import numpy as np
 
 from scorer.errors import LimenError
-from scorer.observer.mafc import halfway_criterion
+from scorer.observer.mafc import criterion_for
 from scorer.observer.mafc_fast import _dprime_for, dpc_mafc_fast, pc_mafc_fast
 from scorer.observer.psychometric import LAPSE_MAX
 
@@ -224,7 +224,7 @@ def new_state(
     levels : the plate's contrast levels for this cell's diameter (any order; duplicates are merged).
     m_alternatives : M of M-AFC at this diameter.
     method : ``"psi"`` (default), ``"quest"`` or ``"constant"``.
-    criterion_pc : threshold criterion; default halfway between chance and 1 (common practice).
+    criterion_pc : threshold criterion; default Pc_M at the default detectability d′_T (criterion_for).
     lapse : lapse rate of the placement model.
     prior_threshold, prior_sd_ln : prior median threshold (contrast) and SD of its ln; default the geometric
         centre of the levels and half the ln span of the levels (at least ln 2).
@@ -234,7 +234,7 @@ def new_state(
     except (TypeError, ValueError):
         raise LimenError("adaptive state: levels must be numbers") from None
     m = int(m_alternatives)
-    crit = halfway_criterion(m) if criterion_pc is None and m >= 2 else criterion_pc
+    crit = criterion_for(m, criterion_pc) if m >= 2 else criterion_pc
     ok = lv.size and np.all(np.isfinite(lv)) and np.all(lv > 0)
     ln_lv = np.log(lv) if ok else np.zeros(1)
     mean = math.log(prior_threshold) if prior_threshold else float(ln_lv.mean() if ok else 0.0)

@@ -6,7 +6,7 @@ import numpy as np
 import pandas as pd
 
 from scorer.errors import LimenError
-from scorer.observer.mafc import halfway_criterion
+from scorer.observer.mafc import criterion_for
 
 
 def m_alternatives_of(df: pd.DataFrame, source="responses") -> int | dict[float, int]:
@@ -123,5 +123,5 @@ def m_at(m: int | dict[float, int], diameter_mm: float) -> int:
 
 
 def criterion_at(m: int | dict[float, int], diameter_mm: float, criterion_pc: float | None) -> float:
-    """Proportion correct at threshold: the given criterion, or halfway between chance and 1 for that M."""
-    return halfway_criterion(m_at(m, diameter_mm)) if criterion_pc is None else float(criterion_pc)
+    """Proportion correct at threshold: Pc_M at the criterion's d′_T (default d′_T when None), or the Pc given."""
+    return criterion_for(m_at(m, diameter_mm), criterion_pc)

@@ -49,7 +49,7 @@ import pandas as pd
 
 from scorer.errors import LimenError
 from scorer.observer.flags import text as flag_text, threshold_flags
-from scorer.observer.mafc import halfway_criterion
+from scorer.observer.mafc import Detectability, criterion_for, criterion_json
 from scorer.resources import check_limit
 from scorer.study.alternatives import criterion_at, m_alternatives_of, m_at
 from scorer.study.estimability import EstimabilityRule, judge_curves, public_curves
@@ -78,6 +78,12 @@ class Analysis:
     seed: int | None = None
     n_boot: int = 0
     rule: EstimabilityRule = field(default_factory=EstimabilityRule)
+    criterion: float | Detectability | None = None  # as given: None (default d′_T), a d′_T or a Pc
+
+    def threshold_definition(self) -> dict:
+        """d′_T (or the Pc given), Pc and d′ for each M of the study (:func:`scorer.observer.mafc.criterion_json`)."""
+        ms = self.m_alternatives.values() if isinstance(self.m_alternatives, dict) else [self.m_alternatives]
+        return criterion_json(self.criterion, ms)
 
     def public_tables(self) -> dict[str, pd.DataFrame]:
         """The curve and comparison tables as every output shows them: the numbers of a not-estimable row
@@ -146,6 +152,7 @@ class Analysis:
             "by": self.by,
             "m_alternatives": keyed(self.m_alternatives),
             "criterion_pc": keyed(self.criterion_pc),
+            "threshold_definition": self.threshold_definition(),
             "readers": self.readers,
             "curves": self.curves_records(),
             "between_reader_cv": self.cv.to_dict("records") if len(self.cv) else [],
@@ -266,7 +273,7 @@ def analyse_study(
     by: str = "detector",
     n_boot: int = 1000,
     seed: int | None = 0,
-    criterion_pc: float | None = None,
+    criterion_pc: float | Detectability | None = None,
     reference: str | None = None,
     ci: float = 0.95,
     progress=None,
@@ -280,6 +287,9 @@ def analyse_study(
     is measured for the d′ method too, and ``model`` defaults to the model's decisions on them.
     ``progress`` is an optional callable(str) told which step runs.  ``rule`` says when a threshold counts as
     estimated (:class:`~scorer.study.estimability.EstimabilityRule`; its defaults when None).
+    ``criterion_pc``: the threshold definition, the same as the model observer's
+    (:func:`scorer.observer.mafc.criterion_for`): None for the default detectability d′_T, a
+    :class:`~scorer.observer.mafc.Detectability`, or one Pc for every M.
     """
     if model is None and model_responses is not None:
         from scorer.observer.npw import decide
@@ -316,8 +326,8 @@ def analyse_study(
     if isinstance(m, dict):
         p = {d: criterion_at(m, d, criterion_pc) for d in m}
     else:
-        p = halfway_criterion(m) if criterion_pc is None else float(criterion_pc)
-    if criterion_pc is not None:
+        p = criterion_for(m, criterion_pc)
+    if criterion_pc is not None and not isinstance(criterion_pc, Detectability):
         for d in sorted(set(trials["diameter_mm"])):
             md = m_at(m, d)
             if not 1.0 / md < criterion_pc < 1.0:
@@ -420,6 +430,7 @@ def analyse_study(
         seed=seed,
         n_boot=n_boot,
         rule=rule,
+        criterion=criterion_pc,
     )
 
 

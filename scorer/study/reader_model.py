@@ -43,7 +43,7 @@ from dataclasses import dataclass, field
 import numpy as np
 import pandas as pd
 
-from scorer.observer.mafc import dprime_for_pc, halfway_criterion
+from scorer.observer.mafc import criterion_for, dprime_for_pc
 
 #: value of the optional ``source`` column in trials made by this module
 SIMULATED_SOURCE = "simulated reader model"
@@ -134,7 +134,7 @@ def simulate_reader_study(
     detectors = {"direct": 1.0, "indirect": 1.3} if detectors is None else dict(detectors)
     m = int(m_alternatives)
     diam = np.asarray(diameters_mm, dtype=float)
-    crit = halfway_criterion(m)
+    crit = criterion_for(m)
     d_t = dprime_for_pc(crit, m)
 
     # readers
