@@ -133,6 +133,10 @@ def check_url(url, kind: DatabaseKind, *, create: bool, option: str = "--db"):
         raise LimenError(f"cannot use this kind of database: {short_error(exc)}", display_url(u)) from None
     if u.get_backend_name() == "sqlite":
         _check_sqlite(u, kind, create)
+    elif u.get_backend_name() == "postgresql" and u.get_driver_name() == "psycopg":
+        from scorer.extras import require
+
+        require("postgres", display_url(u))
     return u
 
 

@@ -82,6 +82,9 @@ def serve(host, port, db_url, instance, threads, connection_limit, demo, import_
 
     Results support, and never replace, a qualified medical physicist's judgement.
     """
+    from scorer.extras import require
+
+    require("web")
     from webapp import create_app
 
     app = create_app(build_config(db_url, instance, import_root, secure_cookies, trusted_proxies))

@@ -47,6 +47,9 @@ def _new_password(generate: bool, prompt: str) -> str:
 @click.group("users")
 def users():
     """Add, list, disable, enable the web app's accounts, reset passwords and end sessions."""
+    from scorer.extras import require
+
+    require("web")
 
 
 @users.command("add")
