@@ -174,6 +174,35 @@ def _check_sqlite(u, kind: DatabaseKind, create: bool) -> None:
         raise LimenError(f"folder {parent} for the SQLite database does not exist", path)
     if not os.access(parent, os.W_OK | os.X_OK):
         raise LimenError(f"folder {parent} is not writable: cannot create the SQLite database there", path)
+    _create_sqlite_file(path.resolve())
+
+
+def _create_sqlite_file(path: Path) -> None:
+    """Make an empty SQLite database at ``path`` that is never seen unfinished: written under a temporary name
+    (header page and WAL mode), then linked into place only if ``path`` is still absent.  Connecting to a missing
+    file directly would leave a 0-byte file for a moment, which another process opening it at the same time
+    would refuse as not a database."""
+    import sqlite3
+
+    tmp = path.with_name(f".{path.name}.{os.getpid()}.part")
+    try:
+        con = sqlite3.connect(tmp)
+        try:
+            con.execute("PRAGMA journal_mode=WAL")  # writes the header page
+        finally:
+            con.close()
+        try:
+            os.link(tmp, path)
+        except FileExistsError:
+            pass  # another process made it first: use theirs
+    except (OSError, sqlite3.Error) as exc:
+        raise LimenError(f"cannot create the SQLite database ({getattr(exc, 'strerror', None) or exc})", path) from None
+    finally:
+        for leftover in (tmp, tmp.with_name(tmp.name + "-wal"), tmp.with_name(tmp.name + "-shm")):
+            try:
+                leftover.unlink()
+            except OSError:
+                pass
 
 
 def prepare(engine, url, kind: DatabaseKind, *, create: bool) -> None:

@@ -254,3 +254,56 @@ def test_migrations_are_package_data():
         patterns = data.get(package, [])
         for f in files:
             assert any(f.match(pat) for pat in patterns), (package, f)
+
+
+def _open_at_once(url: str, which: str, tmp_path: Path, n: int = 3) -> None:
+    """``n`` processes opening one new database at the same moment: each succeeds, the schema is made once."""
+    import os
+    import subprocess
+    import sys
+    import time
+
+    from sqlalchemy import create_engine, text
+
+    from scorer.databases import NIGHTLY, WEB_APP
+
+    code = (
+        "import sys, time\n"
+        "from scorer.qc import open_store\n"
+        "from webapp import create_app\n"
+        "t = float(sys.argv[3])\n"
+        "while time.time() < t: pass\n"
+        "if sys.argv[2] == 'nightly':\n"
+        "    open_store(sys.argv[1]).close()\n"
+        "else:\n"
+        "    create_app({'INSTANCE_PATH': sys.argv[4], 'DATABASE_URL': sys.argv[1], 'SECRET_KEY': 'k' * 40})\n"
+    )
+    start = str(time.time() + 5.0)  # every process past its imports, then racing
+    env = {**os.environ, "PYTHONPATH": str(Path(__file__).resolve().parents[1])}
+    procs = [
+        subprocess.Popen(
+            [sys.executable, "-c", code, url, which, start, str(tmp_path / f"inst{k}")],
+            env=env,
+            stderr=subprocess.PIPE,
+            text=True,
+        )
+        for k in range(n)
+    ]
+    errs = [p.communicate(timeout=120)[1] for p in procs]
+    assert [p.returncode for p in procs] == [0] * n, errs
+    table = (NIGHTLY if which == "nightly" else WEB_APP).version_table
+    engine = create_engine(url)
+    with engine.connect() as conn:
+        assert conn.execute(text(f"SELECT version_num FROM {table}")).scalars().all() == [f"{which}_0001"]
+    engine.dispose()
+    assert _schema_differences(url, which) == []
+
+
+@pytest.mark.parametrize("which", ["nightly", "webapp"])
+def test_processes_opening_a_new_database_at_once_sqlite(tmp_path, which):
+    _open_at_once(f"sqlite:///{tmp_path / 'new.sqlite'}", which, tmp_path)
+
+
+@pytest.mark.parametrize("which", ["nightly", "webapp"])
+def test_processes_opening_a_new_database_at_once_postgresql(tmp_path, postgres_url, which):
+    _open_at_once(postgres_url, which, tmp_path)
