@@ -250,11 +250,13 @@ def classify(tables, kind: DatabaseKind, create: bool, where) -> str:
     tables = set(tables) - {"sqlite_sequence"}
     if kind.version_table in tables:
         return "current"
+    if kind.legacy_tables <= tables:
+        # also when the other kind's tables are there too: releases before this one made both schemas in one
+        # database when given the other's; its data stay usable by each
+        return "legacy"
     for other in KINDS:
         if other is not kind and (other.version_table in tables or other.legacy_tables <= tables):
             raise LimenError(f"is a {other.name} database, not a {kind.name} one", where)
-    if kind.legacy_tables <= tables:
-        return "legacy"
     if tables:
         shown = ", ".join(sorted(tables)[:4]) + (", …" if len(tables) > 4 else "")
         raise LimenError(f"holds tables of another program ({shown}), not a {kind.name} database", where)

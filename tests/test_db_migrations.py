@@ -307,3 +307,27 @@ def test_processes_opening_a_new_database_at_once_sqlite(tmp_path, which):
 @pytest.mark.parametrize("which", ["nightly", "webapp"])
 def test_processes_opening_a_new_database_at_once_postgresql(tmp_path, postgres_url, which):
     _open_at_once(postgres_url, which, tmp_path)
+
+
+def test_a_database_holding_both_schemas_from_the_previous_release_stays_usable_by_both(tmp_path):
+    """The previous release made the web app's tables inside a nightly database when given one (issue 24): such a
+    database is adopted by each kind, with its rows, instead of being refused as the other kind."""
+    from sqlalchemy import MetaData, create_engine, insert, select
+
+    path = _copy("previous-nightly.sqlite", tmp_path)
+    src, dst = create_engine(f"sqlite:///{DATA / 'previous-webapp.sqlite'}"), create_engine(f"sqlite:///{path}")
+    meta = MetaData()
+    meta.reflect(src)
+    meta.create_all(dst)
+    with src.connect() as a, dst.begin() as b:
+        for table in meta.sorted_tables:
+            b.execute(insert(table), [dict(r._mapping) for r in a.execute(select(table))])
+    src.dispose()
+    dst.dispose()
+    before = _rows(path)
+    _fresh(f"sqlite:///{path}", "webapp", tmp_path)
+    _fresh(f"sqlite:///{path}", "nightly", tmp_path)
+    after = _rows(path)
+    assert after["alembic_version_webapp"][1] == [("webapp_0001",)]
+    assert after["alembic_version_nightly"][1] == [("nightly_0001",)]
+    assert _every_row_kept(before, after, changed={"limen_meta"}) == 17 + 19
