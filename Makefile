@@ -10,7 +10,7 @@ DEMO   ?= demo-output
 $(VENV)/.installed: pyproject.toml
 	$(PYTHON) -m venv $(VENV)
 	$(PY) -m pip install --quiet --upgrade pip
-	$(PY) -m pip install --quiet -e '.[test]'
+	$(PY) -m pip install --quiet -e '.[all,test]'
 	touch $@
 
 venv: $(VENV)/.installed

@@ -26,6 +26,8 @@ RANK = {
     "invocation": 0,
     "resources": 0,
     "faults": 0,
+    "extras": 0,
+    "databases": 0,
     "images": 1,
     "phantom": 2,
     "observer": 3,

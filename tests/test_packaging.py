@@ -48,7 +48,9 @@ def test_non_editable_install_scores_with_the_bundled_layout(tmp_path):
         text=True,
         check=True,
     ).stdout.strip()
-    (Path(site) / "borrowed-deps.pth").write_text(sysconfig.get_paths()["purelib"] + "\n")
+    # this interpreter's site folders (a worktree's venv may borrow its packages from another venv in turn)
+    borrowed = [sysconfig.get_paths()["purelib"]] + [p for p in sys.path if p.endswith("site-packages")]
+    (Path(site) / "borrowed-deps.pth").write_text("".join(f"{p}\n" for p in dict.fromkeys(borrowed)))
     subprocess.run(
         [sys.executable, "-m", "pip", "--python", str(vpy), "install", "--no-deps", "-q", str(wheel)],
         check=True,
@@ -74,3 +76,22 @@ def test_non_editable_install_scores_with_the_bundled_layout(tmp_path):
     )
     assert res.returncode == 0, res.stderr
     assert '"Cairn demo plate"' in res.stdout
+    # the Alembic migrations are package data: the installed copy creates both databases and upgrades one
+    # of the previous release
+    make_dbs = (
+        "import shutil, sys; from scorer.qc import open_store; from webapp import create_app; "
+        "open_store('sqlite:///n.sqlite').close(); "
+        "shutil.copyfile(sys.argv[1], 'old.sqlite'); open_store('sqlite:///old.sqlite', create=False).close(); "
+        "create_app({'INSTANCE_PATH': 'inst', 'DATABASE_URL': 'sqlite:///w.sqlite'})"
+    )
+    res = subprocess.run(
+        [str(vpy), "-c", make_dbs, str(ROOT / "tests" / "data" / "previous-nightly.sqlite")],
+        cwd=work,
+        capture_output=True,
+        text=True,
+    )
+    assert res.returncode == 0, res.stderr
+    res = subprocess.run(
+        [str(limen), "baseline", "show", "--db", "old.sqlite", "--json"], cwd=work, capture_output=True, text=True
+    )
+    assert res.returncode == 0 and '"explicit"' in res.stdout, res.stderr

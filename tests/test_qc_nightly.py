@@ -159,18 +159,18 @@ def test_usage_and_database_errors_exit_2(tmp_path):
 
 
 def test_schema_version_recorded_and_newer_schema_refused(tmp_path):
-    from sqlalchemy import update
+    from sqlalchemy import text
 
+    from scorer.databases import NIGHTLY
     from scorer.errors import LimenError
-    from scorer.qc.tables import MetaRow
 
     url = f"sqlite:///{tmp_path / 'v.sqlite'}"
     store = open_store(url)
-    assert store.schema_version() == SCHEMA_VERSION
+    assert store.schema_version() == SCHEMA_VERSION  # limen_meta: releases before Alembic refuse it
     with store.transaction() as s:
-        s.execute(update(MetaRow).where(MetaRow.key == "schema_version").values(value=str(SCHEMA_VERSION + 1)))
+        s.execute(text(f"UPDATE {NIGHTLY.version_table} SET version_num = 'nightly_9999'"))
     store.close()
-    with pytest.raises(LimenError, match="newer than this Limen"):
+    with pytest.raises(LimenError, match="nightly_9999 was written by a later Limen"):
         open_store(url)
 
 

@@ -275,23 +275,6 @@ def test_a_trial_of_an_earlier_release_is_still_shown_as_one_region(tmp_path):
     assert r.status_code == 200
 
 
-def test_an_older_database_gets_the_design_columns(tmp_path):
-    from sqlalchemy import inspect, text
-
-    from webapp.models import LATER_COLUMNS, create_schema, make_engine
-
-    url = f"sqlite:///{tmp_path / 'old.db'}"
-    engine = make_engine(url)
-    create_schema(engine)
-    with engine.begin() as conn:
-        for table, column, _, _ in LATER_COLUMNS:
-            conn.execute(text(f"ALTER TABLE {table} DROP COLUMN {column}"))
-    create_schema(engine)
-    insp = inspect(engine)
-    for table, column, _, _ in LATER_COLUMNS:
-        assert column in {c["name"] for c in insp.get_columns(table)}, (table, column)
-
-
 # --------------------------------------------------------------------------- the design gate
 def _simulated_files(tmp_path, n=1):
     from scorer.detector import detector_model, simulate

@@ -26,7 +26,6 @@ from sqlalchemy import (
     Index,
     Integer,
     String,
-    text,
     Text,
     UniqueConstraint,
     create_engine,
@@ -61,7 +60,7 @@ class User(Base):
     id: Mapped[int] = mapped_column(primary_key=True)
     username: Mapped[str] = mapped_column(String(64), unique=True, index=True)
     # NFKC + case fold of the name (webapp.accounts.name_key), set with the name: unique, so "dup" and "DUP"
-    # cannot both exist; nullable only in databases upgraded from a release without it (see create_schema)
+    # cannot both exist; nullable only in databases upgraded from a release without it (see the baseline migration)
     username_key: Mapped[str | None] = mapped_column(String(64), unique=True, index=True)
     password_hash: Mapped[str] = mapped_column(String(255))
     role: Mapped[str] = mapped_column(String(16))
@@ -388,14 +387,25 @@ class Job(Base):
 
 # --------------------------------------------------------------------------- engine and sessions
 def make_engine(url: str):
-    """An engine for ``url``; SQLite gets WAL, a busy timeout and foreign keys on."""
+    """An engine for ``url`` (checked by :func:`scorer.databases.check_url`); SQLite gets WAL, a busy timeout and
+    foreign keys on.  Raises LimenError (one line) for a URL that cannot be used."""
+    from scorer.databases import WEB_APP, check_url, display_url, short_error
+    from scorer.errors import LimenError
+
+    u = check_url(url, WEB_APP, create=True)
     kwargs = {"future": True}
-    if url.startswith("sqlite"):
+    sqlite = u.get_backend_name() == "sqlite"
+    if sqlite:
         kwargs["connect_args"] = {"check_same_thread": False, "timeout": 30}
     else:
         kwargs.update(pool_size=10, max_overflow=20, pool_pre_ping=True)
-    engine = create_engine(url, **kwargs)
-    if url.startswith("sqlite"):
+        if u.get_backend_name() == "postgresql" and "connect_timeout" not in u.query:
+            kwargs["connect_args"] = {"connect_timeout": 20}  # an unreachable server: a message, not a long hang
+    try:
+        engine = create_engine(u, **kwargs)
+    except Exception as exc:  # missing driver, bad options
+        raise LimenError(f"cannot use database {display_url(url)}: {short_error(exc)}", "--db") from None
+    if sqlite:
 
         @event.listens_for(engine, "connect")
         def _sqlite_pragmas(dbapi_conn, _record):
@@ -414,86 +424,14 @@ def make_session_factory(engine):
 
 
 def create_schema(engine) -> None:
-    """Create the tables that are missing, one process at a time.
+    """Check that ``engine``'s database is a reader-study one; create its schema, or migrate it, with Alembic.
 
-    ``create_all`` looks for each table, then creates it: two servers starting at once on a new database both
-    saw no table and the second failed ("table users already exists").  The check and the creation now run in
-    one transaction that holds the database's write lock (SQLite ``BEGIN IMMEDIATE``; a PostgreSQL advisory lock).
+    The migrations live in ``webapp/migrations`` (shipped in the package).  A database of a release before
+    Alembic is adopted by the baseline revision (the tables and columns it lacks added); one written by a later
+    Limen, or of another kind (a nightly QC database), is refused in one line.  Everything runs in one
+    transaction holding the database's write lock, so two servers starting at once on a new database create it
+    once (:func:`scorer.databases.prepare`).
     """
-    if engine.dialect.name == "sqlite":
-        with engine.connect() as conn:
-            conn.exec_driver_sql("BEGIN IMMEDIATE")
-            Base.metadata.create_all(conn)
-            _add_missing_columns(conn)
-            conn.commit()
-        return
-    with engine.begin() as conn:
-        if engine.dialect.name == "postgresql":
-            conn.execute(text("SELECT pg_advisory_xact_lock(6177002)"))
-        Base.metadata.create_all(conn)
-        _add_missing_columns(conn)
+    from scorer.databases import WEB_APP, prepare
 
-
-def _add_missing_columns(conn) -> None:
-    """Add the columns of ``users`` that databases made by an earlier release lack (``create_all`` adds missing
-    tables, never columns): ``session_generation`` (0) and ``username_key`` (filled from the names, with its
-    unique index).  Of accounts whose names differ only by case, the oldest keeps the name; the others get no
-    key, so they can no longer sign in (a warning names them).  Schema migrations proper are to come (Alembic)."""
-    import logging
-
-    from sqlalchemy import inspect
-
-    from webapp.accounts import name_key
-
-    _add_design_columns(conn)
-    cols = {c["name"] for c in inspect(conn).get_columns("users")}
-    if "session_generation" not in cols:
-        conn.execute(text("ALTER TABLE users ADD COLUMN session_generation INTEGER NOT NULL DEFAULT 0"))
-    if "username_key" in cols:
-        return
-    conn.execute(text("ALTER TABLE users ADD COLUMN username_key VARCHAR(64)"))
-    owner: dict[str, str] = {}
-    for uid, name in conn.execute(text("SELECT id, username FROM users ORDER BY id")).all():
-        key = name_key(name)
-        if key in owner:
-            logging.getLogger("limen").warning(
-                "account %r differs from %r only by case: it can no longer sign in", name, owner[key]
-            )
-            continue
-        owner[key] = name
-        conn.execute(text("UPDATE users SET username_key = :k WHERE id = :i"), {"k": key, "i": uid})
-    conn.execute(text("CREATE UNIQUE INDEX ix_users_username_key ON users (username_key)"))
-
-
-#: columns added after the first release of each table: (table, column, SQL type, default or None)
-LATER_COLUMNS = (
-    ("studies", "model_responses_csv", "TEXT", None),
-    ("studies", "placement", "VARCHAR(16)", None),
-    ("studies", "diameters_json", "TEXT", None),
-    ("studies", "half_width_ln", "FLOAT", None),
-    ("studies", "plan_json", "TEXT", None),
-    ("studies", "default_window", "FLOAT", None),
-    ("studies", "default_level", "FLOAT", None),
-    ("study_images", "practice", "BOOLEAN", False),
-    ("regions", "tile_px", "INTEGER", None),
-    ("regions", "tiles_json", "TEXT", None),
-    ("trials", "tile_order", "VARCHAR(64)", None),
-)
-
-
-def _add_design_columns(conn) -> None:
-    """Add the study-design columns (:data:`LATER_COLUMNS`) to a database made by an earlier release: its open
-    studies keep their fixed schedules (``studies.placement`` NULL) and their trials show one region with every
-    site (``trials.tile_order`` NULL)."""
-    from sqlalchemy import inspect
-
-    insp = inspect(conn)
-    have = {t: {c["name"] for c in insp.get_columns(t)} for t in {row[0] for row in LATER_COLUMNS}}
-    for table, column, sql_type, default in LATER_COLUMNS:
-        if column in have[table]:
-            continue
-        tail = ""
-        if default is not None:
-            literal = ("true" if default else "false") if conn.dialect.name == "postgresql" else str(int(default))
-            tail = f" NOT NULL DEFAULT {literal}"
-        conn.execute(text(f"ALTER TABLE {table} ADD COLUMN {column} {sql_type}{tail}"))
+    prepare(engine, engine.url.render_as_string(hide_password=False), WEB_APP, create=True)

@@ -31,6 +31,9 @@ def backup(db_url, instance, out):
     A PostgreSQL database is not copied: dump it with pg_dump alongside (see the README).
     """
     from scorer.commands.serve import build_config
+    from scorer.extras import require
+
+    require("web")
     from webapp import create_app
     from webapp.backup import backup_instance
 

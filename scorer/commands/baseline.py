@@ -13,7 +13,7 @@ def _open(db):
     from scorer.commands.nightly import db_url_option
     from scorer.qc import open_store
 
-    return open_store(db_url_option(db))
+    return open_store(db_url_option(db), create=False)
 
 
 @click.group("baseline")

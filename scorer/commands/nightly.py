@@ -99,6 +99,10 @@ def nightly(
 
     if workers and dask_address:
         raise LimenError("give either --workers or --dask, not both")
+    if dask_address:
+        from scorer.extras import require
+
+        require("nightly", "--dask")
     config = load_nightly_config(config_file)
     from pathlib import Path
 

@@ -119,6 +119,9 @@ def serve(host, port, db_url, instance, threads, connection_limit, demo, import_
 
     Results support, and never replace, a qualified medical physicist's judgement.
     """
+    from scorer.extras import require
+
+    require("web")
     from webapp import create_app
 
     check_listen_address(host, port)

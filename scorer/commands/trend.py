@@ -37,7 +37,7 @@ def trend(db, out_dir, config_file, method, as_json, replace):
 
     config = load_nightly_config(config_file)
     folder = OutputFolder(out_dir, replace=replace, command="trend")
-    store = open_store(db_url_option(db))
+    store = open_store(db_url_option(db), create=False)
     try:
         page = write_trend_report(store, out_dir, config.alerts, config.programme, method=method)
     finally:

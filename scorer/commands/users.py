@@ -95,6 +95,9 @@ _password_stdin = click.option(
 @click.group("users")
 def users():
     """Add, list, disable, enable the web app's accounts, reset passwords and end sessions."""
+    from scorer.extras import require
+
+    require("web")
 
 
 @users.command("add")

@@ -1,6 +1,6 @@
 """The nightly database's connection: its URL (default, display with the password hidden) and engine.
 
-A SQLite file by default, PostgreSQL (or any SQLAlchemy URL) otherwise.  On SQLite every
+A SQLite file by default, PostgreSQL otherwise (the URL checked by :mod:`scorer.databases`).  On SQLite every
 transaction begins with ``BEGIN IMMEDIATE`` (see :func:`sqlite_transactions`).
 """
 
@@ -9,9 +9,10 @@ from __future__ import annotations
 from pathlib import Path
 
 from sqlalchemy import create_engine, event
-from sqlalchemy.engine import make_url
-
+from scorer.databases import NIGHTLY, check_url, display_url, short_error
 from scorer.errors import LimenError
+
+__all__ = ["default_db_url", "display_url", "make_engine", "sqlite_transactions"]
 
 
 def default_db_url(directory) -> str:
@@ -19,38 +20,22 @@ def default_db_url(directory) -> str:
     return f"sqlite:///{Path(directory).resolve() / 'limen-nightly.sqlite'}"
 
 
-def display_url(url: str) -> str:
-    """``url`` as shown in messages and reports: the password hidden."""
-    try:
-        return make_url(url).render_as_string(hide_password=True)
-    except Exception:
-        return "<unparseable URL>"
+def make_engine(url: str, *, create: bool = True):
+    """A SQLAlchemy engine for ``url`` (checked by :func:`scorer.databases.check_url`; SQLite: real transactions).
 
-
-def make_engine(url: str):
-    """A SQLAlchemy engine for ``url`` (SQLite: folder checked, real transactions).
-
-    Raises LimenError (one line, password hidden) for a URL that cannot be parsed or used.
+    ``create`` says whether a missing SQLite file may be made (commands that write results).  Raises LimenError
+    (one line, password hidden) for a URL that cannot be parsed or used.
     """
-    try:
-        u = make_url(url)
-    except Exception:
-        raise LimenError(
-            f"not a database URL: {url!r} (e.g. sqlite:///nightly.sqlite or postgresql+psycopg://user@host/db)", "--db"
-        ) from None
+    u = check_url(url, NIGHTLY, create=create)
     kw = {}
     if u.get_backend_name() == "sqlite":
-        if u.database and u.database != ":memory:":
-            parent = Path(u.database).expanduser().resolve().parent
-            if not parent.is_dir():
-                raise LimenError(f"folder {parent} for the SQLite database does not exist", "--db")
         kw["connect_args"] = {"timeout": 120}
+    elif u.get_backend_name() == "postgresql" and "connect_timeout" not in u.query:
+        kw["connect_args"] = {"connect_timeout": 20}  # an unreachable server: a message, not a long hang
     try:
-        engine = create_engine(url, **kw)
+        engine = create_engine(u, **kw)
     except Exception as exc:  # missing driver, bad options
-        raise LimenError(
-            f"cannot use database {display_url(url)}: {' '.join(str(exc).split())[:200]}", "--db"
-        ) from None
+        raise LimenError(f"cannot use database {display_url(url)}: {short_error(exc)}", "--db") from None
     if engine.dialect.name == "sqlite":
         sqlite_transactions(engine)
     return engine

@@ -274,8 +274,11 @@ class DaskRunner:
     def __enter__(self):
         try:
             from distributed import Client
-        except ImportError:  # pragma: no cover - dask[distributed] is a dependency
-            raise LimenError("--dask needs the 'distributed' package (pip install 'dask[distributed]')") from None
+        except ImportError:  # the [nightly] extra is not installed
+            from scorer.extras import require
+
+            require("nightly", "--dask")
+            raise
         try:
             if isinstance(self.address, str):
                 self.client = _connect_within(Client, self.address, DASK_CONNECT_TIMEOUT_S)

@@ -1,41 +1,23 @@
-"""The nightly database's schema version: created on first use, recorded in ``limen_meta``, migrated.
+"""The nightly database's schema: recognised, created on first use and migrated by Alembic.
 
-A database written by a later Limen is refused; one written by an earlier one is migrated by
-:data:`MIGRATIONS` (none yet).
+The migrations live in ``scorer/qc/migrations`` (shipped in the package); :func:`scorer.databases.prepare`
+runs them when a database is opened.  A database of the release before Alembic (``limen_meta`` schema
+version 1) is adopted by the baseline revision; one written by a later Limen is refused.
 """
 
 from __future__ import annotations
 
-from sqlalchemy import insert, select, text, update
+from scorer.databases import NIGHTLY, prepare
 
-from scorer.errors import LimenError
-from scorer.qc.engine import display_url
-from scorer.qc.tables import Base, MetaRow
-
-SCHEMA_VERSION = 1
-#: from-version -> function(connection) bringing the schema to from-version + 1
-MIGRATIONS: dict = {}
+#: ``limen_meta.schema_version`` since Alembic took over; the releases before (version 1) refuse a higher one
+SCHEMA_VERSION = 2
 
 
-def ensure_schema(conn, url: str) -> None:
-    """Create the tables on first use, check (and migrate) the recorded version, inside ``conn``'s transaction.
+def ensure_schema(engine, url: str, *, create: bool = True) -> None:
+    """Check that ``engine``'s database is a nightly one and bring its schema to this release's.
 
-    Raises LimenError when the database was written by a later version of Limen.
+    ``create``: set up an empty database (commands that write results).  Raises LimenError (one line) for a
+    database of another kind, an empty one when ``create`` is false, one written by a later Limen, or a
+    database that cannot be reached.
     """
-    if conn.dialect.name == "postgresql":
-        conn.execute(text("SELECT pg_advisory_xact_lock(6177001)"))  # one creator at a time
-    Base.metadata.create_all(conn)
-    row = conn.execute(select(MetaRow.value).where(MetaRow.key == "schema_version")).scalar()
-    version = int(row) if row is not None else None
-    if version is None:
-        conn.execute(insert(MetaRow).values(key="schema_version", value=str(SCHEMA_VERSION)))
-    elif version > SCHEMA_VERSION:
-        raise LimenError(
-            f"database schema version {version} is newer than this Limen's ({SCHEMA_VERSION}); upgrade Limen",
-            display_url(url),
-        )
-    else:
-        while version < SCHEMA_VERSION:
-            MIGRATIONS[version](conn)
-            version += 1
-        conn.execute(update(MetaRow).where(MetaRow.key == "schema_version").values(value=str(version)))
+    prepare(engine, url, NIGHTLY, create=create)

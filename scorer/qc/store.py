@@ -1,8 +1,8 @@
 """The nightly results database: :class:`Store` (one object, each method one transaction) and :func:`open_store`.
 
 A SQLite file by default, PostgreSQL (or any SQLAlchemy URL) otherwise (:mod:`scorer.qc.engine`).
-The schema is created on first use and records its version in ``limen_meta``; a database written
-by a later Limen is refused, one written by an earlier one is migrated (:mod:`scorer.qc.schema`).
+The schema is created on first use and migrated by Alembic (:mod:`scorer.qc.schema`); a database written
+by a later Limen, or of another kind, is refused.
 The store's operations live in one module per concern, mixed into :class:`Store`:
 :mod:`~scorer.qc.tables` (the models), :mod:`~scorer.qc.intake` (file cache, new images,
 quarantine), :mod:`~scorer.qc.claims` (the claim protocol), :mod:`~scorer.qc.results` (writing
@@ -48,26 +48,20 @@ from scorer.qc.schema import ensure_schema
 from scorer.qc.tables import MetaRow
 
 
-def open_store(url: str) -> Store:
-    """Connect, create the schema on first use, check (and migrate) its version.
+def open_store(url: str, *, create: bool = True) -> Store:
+    """Connect, check that it is a nightly database, create (``create=True``) or migrate its schema.
 
-    Raises LimenError (one line, password hidden) when the database cannot be reached or
-    was written by a later version of Limen.
+    ``create=False`` is for the commands that only read or adjust results (``trend``, ``baseline``): a missing
+    or empty database is then refused instead of made.  Raises LimenError (one line, password hidden) when the
+    database cannot be reached, is of another kind, or was written by a later version of Limen.
     """
-    engine = make_engine(url)
-    store = Store(engine, url)
+    engine = make_engine(url, create=create)
     try:
-        with engine.begin() as conn:
-            ensure_schema(conn, url)
+        ensure_schema(engine, url, create=create)
     except LimenError:
         engine.dispose()
         raise
-    except SQLAlchemyError as exc:
-        engine.dispose()
-        raise LimenError(
-            f"cannot open database: {' '.join(str(getattr(exc, 'orig', None) or exc).split())[:300]}", display_url(url)
-        ) from None
-    return store
+    return Store(engine, url)
 
 
 class Store(IntakeOps, ClaimOps, ResultOps, BaselineOps, QueryOps):
