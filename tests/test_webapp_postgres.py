@@ -18,7 +18,7 @@ def test_study_on_postgresql(tmp_path, postgres_url):
     from webapp.models import Response, Trial
     from webapp.security import db
 
-    app, sid = demo_app(tmp_path, db_url=postgres_url, n_readers=2)
+    app, sid = demo_app(tmp_path, db_url=postgres_url)
     assert app.config["DATABASE_URL"].startswith("postgresql")
     c = app.test_client()
     tok = login(c, "reader1")
