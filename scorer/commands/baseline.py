@@ -64,13 +64,31 @@ def show(db, detector, as_json):
         )
 
 
+def _config_option():
+    return click.option(
+        "--config",
+        "config_file",
+        type=click.Path(dir_okay=False),
+        default=None,
+        help="Nightly configuration: alert rules and baseline length used to re-evaluate the stored alerts.",
+    )
+
+
+def _rules(config_file, detector):
+    from scorer.commands.nightly import load_nightly_config
+
+    config = load_nightly_config(config_file)
+    return config.by_name(detector).baseline_sessions, config.alerts
+
+
 @baseline.command("set")
 @options.nightly_db()
+@_config_option()
 @click.option("--detector", required=True, help="The detector's name in the database.")
 @click.option("--sessions", default=None, help="Comma-separated session ids (from `limen trend` or --json).")
 @click.option("--from", "date_from", default=None, help="First session date (YYYY-MM-DD) of the baseline.")
 @click.option("--to", "date_to", default=None, help="Last session date (YYYY-MM-DD) of the baseline.")
-def set_(db, detector, sessions, date_from, date_to):
+def set_(db, detector, sessions, date_from, date_to, config_file):
     """Set a detector's baseline explicitly from chosen scored sessions."""
     if bool(sessions) == bool(date_from or date_to):
         raise LimenError("give either --sessions or --from/--to")
@@ -91,20 +109,38 @@ def set_(db, detector, sessions, date_from, date_to):
                 raise LimenError(
                     f"no scored sessions of {detector!r} between {date_from or '…'} and {date_to or '…'}", "--from/--to"
                 )
-        store.set_baseline(detector, ids)
+        k, rules = _rules(config_file, detector)
+        _frames, changes = store.set_baseline(detector, ids, k, rules)
     finally:
         store.close()
     click.echo(f"baseline of {detector} set from sessions {', '.join(map(str, sorted(ids)))}")
+    _say(changes)
+
+
+def _say(changes) -> None:
+    from scorer.commands.nightly import print_changes
+
+    for a in changes.added:
+        click.echo(f"  new alert [{a['rule']}, {a['direction']}] {a['message']}")
+    print_changes([], changes.withdrawn, changes.updated)
+    if not (changes.added or changes.withdrawn or changes.updated):
+        click.echo("  the stored alerts are unchanged")
 
 
 @baseline.command("clear")
 @options.nightly_db()
+@_config_option()
 @click.option("--detector", required=True, help="The detector's name in the database.")
-def clear(db, detector):
+def clear(db, detector, config_file):
     """Forget a detector's baseline; the automatic one is rebuilt from its first sessions."""
     store = _open(db)
     try:
-        n = store.clear_baseline(detector)
+        k, rules = _rules(config_file, detector)
+        n, changes = store.clear_baseline(detector, k, rules)
     finally:
         store.close()
     click.echo(f"{detector}: {n} baseline row(s) removed")
+    for b in changes.baseline_changes:
+        if b["after"]:
+            click.echo(f"  automatic baseline ({b['method']}): sessions {', '.join(map(str, b['after']))}")
+    _say(changes)

@@ -160,7 +160,23 @@ def _print(result, page) -> None:
     for q in result.quarantined:
         click.echo(f"  quarantined {q['path']}: {q['reason']}")
     for a in result.alerts:
-        click.echo(f"ALERT [{a['rule']}, {a['direction']}] {a['message']}")
+        late = " (earlier session, re-evaluated)" if a.get("reevaluated") else ""
+        click.echo(f"ALERT [{a['rule']}, {a['direction']}]{late} {a['message']}")
+    print_changes(result.baseline_changes, result.withdrawn, result.updated)
     if page is not None:
         click.echo(f"trend report: {page}")
     click.echo(CAUTION)
+
+
+def print_changes(baseline_changes, withdrawn, updated) -> None:
+    """Say how a changed baseline changed the stored alerts of earlier sessions."""
+    for b in baseline_changes:
+        before = "none" if not b["before"] else "sessions " + ", ".join(map(str, b["before"]))
+        after = (
+            "none (no stable run of sessions yet)" if not b["after"] else "sessions " + ", ".join(map(str, b["after"]))
+        )
+        click.echo(f"  baseline of {b['detector']} ({b['method']}) changed: {before} -> {after}")
+    for a in withdrawn:
+        click.echo(f"  withdrawn [{a['rule']}] {a['message']}")
+    for a in updated:
+        click.echo(f"  reworded [{a['rule']}] {a['message']} (was: {a['before']})")

@@ -38,6 +38,10 @@ class NightlyResult:
     #: sessions formed from new files on a detector, day and settings that already have a session (a re-export,
     #: a second run of the same morning, or images simulated again): scored, and said
     repeated: list[dict] = field(default_factory=list)
+    #: alerts of earlier-scored sessions withdrawn or reworded by this run's re-evaluation (scorer/qc/alerting.py)
+    withdrawn: list[dict] = field(default_factory=list)
+    updated: list[dict] = field(default_factory=list)
+    baseline_changes: list[dict] = field(default_factory=list)
     emailed: int = 0
     runner: str = "serial"
     db: str = ""
@@ -56,6 +60,9 @@ class NightlyResult:
             "arriving": self.arriving,
             "errors": self.errors,
             "repeated_sessions": self.repeated,
+            "withdrawn_alerts": self.withdrawn,
+            "updated_alerts": self.updated,
+            "baseline_changes": self.baseline_changes,
             "emailed_alerts": self.emailed,
             "runner": self.runner,
             "database": self.db,
@@ -321,9 +328,15 @@ def _score(config, store, qdir, runner, lease_s, result, tm, progress):
             t = time.perf_counter()
             det = config.by_name(job.detector)
             if out.ok:
-                alerts = store.write_session(out, det, config.alerts)
+                written = store.write_session(out, det, config.alerts)
                 claims.pop(job.session_id, None)
-                if alerts is not None:
+                if written is not None:
+                    alerts = written.alerts
+                    ch = written.changes
+                    result.alerts += [dict(a, reevaluated=True) for a in ch.added]
+                    result.withdrawn += ch.withdrawn
+                    result.updated += ch.updated
+                    result.baseline_changes += ch.baseline_changes
                     result.scored_images += len(job.paths)
                     verdict = out.overall_verdict
                     result.sessions_scored.append(

@@ -38,6 +38,7 @@ from sqlalchemy.exc import SQLAlchemyError
 from sqlalchemy.orm import Session
 
 from scorer.errors import LimenError
+from scorer.qc.alerting import AlertOps
 from scorer.qc.baselines import BaselineOps
 from scorer.qc.claims import ClaimOps
 from scorer.qc.engine import display_url, make_engine
@@ -70,7 +71,7 @@ def open_store(url: str) -> Store:
     return store
 
 
-class Store(IntakeOps, ClaimOps, ResultOps, BaselineOps, QueryOps):
+class Store(IntakeOps, ClaimOps, ResultOps, BaselineOps, AlertOps, QueryOps):
     """One nightly database.  Open with :func:`open_store`; methods each run their own transaction."""
 
     def __init__(self, engine, url: str):
