@@ -78,7 +78,8 @@ def _rules(config_file, detector):
     from scorer.commands.nightly import load_nightly_config
 
     config = load_nightly_config(config_file)
-    return config.by_name(detector).baseline_sessions, config.alerts
+    det = config.by_name(detector)
+    return det.baseline_sessions, config.alerts, det.human_factor
 
 
 @baseline.command("set")
@@ -109,8 +110,8 @@ def set_(db, detector, sessions, date_from, date_to, config_file):
                 raise LimenError(
                     f"no scored sessions of {detector!r} between {date_from or '…'} and {date_to or '…'}", "--from/--to"
                 )
-        k, rules = _rules(config_file, detector)
-        _frames, changes = store.set_baseline(detector, ids, k, rules)
+        k, rules, factor = _rules(config_file, detector)
+        _frames, changes = store.set_baseline(detector, ids, k, rules, factor)
     finally:
         store.close()
     click.echo(f"baseline of {detector} set from sessions {', '.join(map(str, sorted(ids)))}")
@@ -135,8 +136,8 @@ def clear(db, detector, config_file):
     """Forget a detector's baseline; the automatic one is rebuilt from its first sessions."""
     store = _open(db)
     try:
-        k, rules = _rules(config_file, detector)
-        n, changes = store.clear_baseline(detector, k, rules)
+        k, rules, factor = _rules(config_file, detector)
+        n, changes = store.clear_baseline(detector, k, rules, factor)
     finally:
         store.close()
     click.echo(f"{detector}: {n} baseline row(s) removed")

@@ -123,7 +123,7 @@ def nightly(
 
             # the report is rewritten every night: last night's files (and only those) are replaced
             folder = OutputFolder(report_dir, replace=True, command="nightly", option="--report")
-            page = write_trend_report(store, report_dir, config.alerts, config.programme)
+            page = write_trend_report(store, report_dir, config.alerts, config.programme, config=config)
             folder.finish()
     finally:
         store.close()

@@ -80,8 +80,14 @@ def unstable_alerts(detector: str, method: str, tested: list[WindowTest]) -> lis
                     None,
                     f"{detector} {date}, {t.diameter_mm:g} mm ({method}): baseline unstable — threshold contrast "
                     f"{'rose' if direction == 'worse' else 'fell'} ×{t.change_ratio:.3g} across sessions "
-                    f"{w.session_dates[0]} … {w.session_dates[-1]} (least-squares slope test z = {t.z:.2f}, "
-                    f"Holm-adjusted p = {t.p_holm:.2g}); these {len(w.session_ids)} sessions do not form a baseline: "
+                    f"{w.session_dates[0]} … {w.session_dates[-1]} ("
+                    + (
+                        f"all diameters together: Stouffer z = {w.combined['z']:.2f}, Holm-adjusted p = "
+                        f"{w.combined['p_holm']:.2g}; this diameter z = {t.z:.2f}"
+                        if t.via_combined
+                        else f"least-squares slope test z = {t.z:.2f}, Holm-adjusted p = {t.p_holm:.2g}"
+                    )
+                    + f"); these {len(w.session_ids)} sessions do not form a baseline: "
                     "waiting for a stable run of sessions, or `limen baseline set`",
                 )
             )
@@ -119,7 +125,14 @@ class AlertOps:
     """Baseline choice and alert re-evaluation inside a writer's transaction (mixed into :class:`Store`)."""
 
     def refresh_alerts(
-        self, s: Session, detector: str, method: str, k: int, rules, since: tuple[str, int] | None = None
+        self,
+        s: Session,
+        detector: str,
+        method: str,
+        k: int,
+        rules,
+        since: tuple[str, int] | None = None,
+        human_factor=None,
     ) -> AlertChanges:
         """Choose the automatic baseline again and bring the stored alerts of ``detector`` and ``method``
         up to date; ``since`` (date, session id): only sessions from there on can have changed (None: all)."""
@@ -157,7 +170,7 @@ class AlertOps:
         ]
         want: dict[tuple, dict] = {}
         for sid in judged:
-            for a in evaluate_session(detector, sid, hist, frame, last, bids, rules):
+            for a in evaluate_session(detector, sid, hist, frame, last, bids, rules, human_factor):
                 d = a.to_dict()
                 want[_key(d)] = d
         verdict_sessions = {r.id for r in sessions if r.verdict_method == method}

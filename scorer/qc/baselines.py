@@ -53,7 +53,7 @@ class BaselineOps:
             )
         )
 
-    def set_baseline(self, detector: str, session_ids: list[int], k: int = 5, rules=None):
+    def set_baseline(self, detector: str, session_ids: list[int], k: int = 5, rules=None, human_factor=None):
         """An explicit baseline from chosen scored sessions of ``detector`` (every method).
 
         The stored alerts of every session are evaluated again against it.  Returns (baseline frame per
@@ -93,10 +93,10 @@ class BaselineOps:
                         "after": sorted(set(session_ids)),
                     }
                 )
-                changes.extend(self.refresh_alerts(s, detector, method, k, rules))
+                changes.extend(self.refresh_alerts(s, detector, method, k, rules, human_factor=human_factor))
             return out, changes
 
-    def clear_baseline(self, detector: str, k: int = 5, rules=None):
+    def clear_baseline(self, detector: str, k: int = 5, rules=None, human_factor=None):
         """Forget a detector's baseline: the automatic one is chosen again from its sessions' dates.
 
         Returns (rows removed, :class:`~scorer.qc.alerting.AlertChanges`).
@@ -109,7 +109,7 @@ class BaselineOps:
             n = int(s.execute(delete(BaselineRow).where(BaselineRow.detector == detector)).rowcount or 0)
             changes = AlertChanges()
             for method in self._methods_in(s, detector):
-                changes.extend(self.refresh_alerts(s, detector, method, k, rules))
+                changes.extend(self.refresh_alerts(s, detector, method, k, rules, human_factor=human_factor))
             return n, changes
 
     def baseline(self, detector: str, method: str):

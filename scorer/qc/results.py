@@ -132,7 +132,13 @@ class ResultOps:
                 for method in dict.fromkeys(p["method"] for p in outcome.thresholds):
                     changes.extend(
                         self.refresh_alerts(
-                            s, row.detector, method, det.baseline_sessions, rules, since=(row.session_date, row.id)
+                            s,
+                            row.detector,
+                            method,
+                            det.baseline_sessions,
+                            rules,
+                            since=(row.session_date, row.id),
+                            human_factor=det.human_factor,
                         )
                     )
                 alerts = [

@@ -8,14 +8,22 @@ inside those sessions would otherwise become part of the baseline and never be f
 in date order): the least-squares slope b = Σ(i − ī)(x − x̄) / S_ii, S_ii = Σ(i − ī)², and
 z = b √S_ii / σ, two-sided p = 2(1 − Φ(|z|)).  This is the slope test of simple linear regression with
 the error SD taken as known (Draper & Smith, *Applied Regression Analysis*, 3rd ed. (1998), §1.4 and
-§3.1: Var b = σ²/S_ii; from memory).  σ is the larger of the residual SD about the line (K − 2 degrees
-of freedom) and the median standard error of one session's log10 C_T (from its 95 % CI) — the same floor
-the control limits use (:mod:`scorer.qc.control`): each session's own bootstrap SE is an independent
-estimate of the scatter, far steadier than an SD on K − 2 = 3 degrees of freedom, and the residual SD
-takes over when sessions scatter more than their own errors say.  A step inside the window shows as a
-slope (a step of Δ at the middle of five sessions gives b ≈ 0.3 Δ).  The diameters' p-values are adjusted
-by Holm's procedure (Holm, Scand. J. Statist. 6 (1979)); the window is unstable when any adjusted p is
-below ``alpha`` (``[alerts] stability_alpha``, default 0.01).
+§3.1: Var b = σ²/S_ii; from memory).  σ is the larger of the median standard error of one session's
+log10 C_T (from its 95 % CI; the floor the control limits use, :mod:`scorer.qc.control`) and the
+between-session SD estimated from the median moving range, median|x_(i+1) − x_i| / 0.954 (for normal
+data the median of |X₁ − X₂| is √2 Φ⁻¹(0.75) σ = 0.954 σ; moving ranges estimate σ for individuals
+charts because a shift barely moves them: Montgomery, *Introduction to Statistical Quality Control*, 6th
+ed. (2009), §6.4, from memory).  The residual SD about the line is not used: a step misfits a line, and
+the residual SD it inflates hid the very step (z 1.6 instead of 2.3 on a simulated 40 % drop).  A step
+inside the window shows as a slope (a step of Δ between the 3rd and 4th of five sessions gives b = 0.33 Δ;
+a single session off at the window's edge only b = 0.2 Δ, which one diameter alone rarely shows).  A change
+of kerma or processing moves every diameter the same way, so the
+diameters are also tested together: Stouffer's z_c = Σ z_d / √m (Stouffer et al., *The American Soldier*
+(1949); Whitlock, J. Evol. Biol. 18 (2005)), which treats the diameters' slopes as independent (they come
+from different discs; a day-to-day factor shared by all diameters would make it liberal).  The m diameters'
+p-values and the combined one are adjusted together by Holm's procedure (Holm, Scand. J. Statist. 6
+(1979)), valid under any dependence; the window is unstable when any adjusted p is below ``alpha``
+(``[alerts] stability_alpha``, default 0.01).
 
 A window that fails is *rejected*: its sessions do not form the baseline, an ``unstable`` alert is
 raised on its last session, and the next window (one session later) is tried once it is complete.
@@ -35,6 +43,8 @@ from scipy import stats
 from scorer.qc.control import log_se_from_ci
 
 DEFAULT_ALPHA = 0.01
+#: median of |X₁ − X₂| for independent normal X of SD 1: √2 · Φ⁻¹(0.75) = 0.9539
+MR_MEDIAN_FACTOR = float(np.sqrt(2) * stats.norm.ppf(0.75))
 
 
 @dataclass
@@ -51,6 +61,8 @@ class DiameterTrend:
     #: the fitted threshold ratio from the window's first to its last session, 10^(b (K − 1))
     change_ratio: float = float("nan")
     unstable: bool = False
+    #: rejected by the test of all diameters together (Stouffer), not by this diameter's own test
+    via_combined: bool = False
 
 
 @dataclass
@@ -61,6 +73,8 @@ class WindowTest:
     session_dates: list[str]
     stable: bool
     trends: list[DiameterTrend] = field(default_factory=list)
+    #: the diameters together: Stouffer's z = Σ z_d / √m, its p and Holm-adjusted p
+    combined: dict = field(default_factory=dict)
 
     @property
     def last(self) -> tuple[str, int]:
@@ -81,11 +95,14 @@ def slope_test(x, se_within, positions=None) -> tuple[float, float, float, float
     i = np.arange(n, dtype=float) if positions is None else np.asarray(positions, float)
     sii = float(np.sum((i - i.mean()) ** 2))
     b = float(np.sum((i - i.mean()) * (x - x.mean())) / sii)
-    resid = x - x.mean() - b * (i - i.mean())
-    s_res = float(np.sqrt(np.sum(resid**2) / (n - 2))) if n > 2 else 0.0
+    # scatter between sessions from the median moving range, which a step or a trend barely moves (a residual
+    # SD about the line would absorb the step it is meant to find): median |x_(i+1) − x_i| = √2 Φ⁻¹(0.75) σ
+    order = np.argsort(i, kind="stable")
+    mr = np.abs(np.diff(x[order]))
+    s_mr = float(np.median(mr) / MR_MEDIAN_FACTOR) if mr.size else 0.0
     se = np.asarray(se_within, float)
     se = se[np.isfinite(se)]
-    sigma = max(s_res, float(np.median(se)) if se.size else 0.0)
+    sigma = max(s_mr, float(np.median(se)) if se.size else 0.0)
     if sigma <= 0:
         return b, sigma, 0.0, 1.0
     z = b * np.sqrt(sii) / sigma
@@ -134,12 +151,24 @@ def check_window(window: pd.DataFrame, alpha: float = DEFAULT_ALPHA) -> WindowTe
                 change_ratio=float(10 ** (b * (len(ids) - 1))),
             )
         )
+    combined = {}
     if trends:
-        for t, pa in zip(trends, holm([t.p for t in trends])):
+        z = np.array([t.z for t in trends])
+        zc = float(z.sum() / np.sqrt(z.size)) if np.all(np.isfinite(z)) else float("nan")
+        pc = float(2 * stats.norm.sf(abs(zc))) if np.isfinite(zc) else 1.0
+        # Holm over the diameters and the combined test together: the family-wise error stays at alpha
+        adj = holm([t.p for t in trends] + ([pc] if len(trends) > 1 else []))
+        for t, pa in zip(trends, adj):
             t.p_holm = float(pa)
             t.unstable = bool(pa < alpha)
+        if len(trends) > 1:
+            combined = {"z": zc, "p": pc, "p_holm": float(adj[-1])}
+            if adj[-1] < alpha and not any(t.unstable for t in trends):
+                # only all diameters together show the trend: the alert goes to the diameter moving most that way
+                lead = max(trends, key=lambda t: t.z * np.sign(zc))
+                lead.unstable, lead.via_combined = True, True
     dates = [str(x) for x in order["session_date"]]
-    return WindowTest(ids, dates, not any(t.unstable for t in trends), trends)
+    return WindowTest(ids, dates, not any(t.unstable for t in trends), trends, combined)
 
 
 def eligible_sessions(history: pd.DataFrame) -> pd.DataFrame:
