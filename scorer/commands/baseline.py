@@ -24,19 +24,34 @@ def baseline():
 @baseline.command("show")
 @options.nightly_db()
 @click.option("--detector", default=None, help="Only this detector (its name in the database).")
+@click.option(
+    "--config",
+    "config_file",
+    type=click.Path(dir_okay=False),
+    default=None,
+    help="Nightly configuration: the alert rules whose smallest detectable change is shown (default rules).",
+)
 @click.option("--json", "as_json", is_flag=True)
-def show(db, detector, as_json):
-    """Print each detector's baseline per method and diameter."""
+def show(db, detector, config_file, as_json):
+    """Print each detector's baseline per method and diameter, and the smallest change its rules detect."""
+    from scorer.commands.nightly import load_nightly_config
+    from scorer.qc.sensitivity import detectable_change, sensitivity_sentence
+
+    rules = load_nightly_config(config_file).alerts
     store = _open(db)
     try:
         out = []
+        waiting = []
         for det in [detector] if detector else store.detectors():
+            found = False
             for method in ("dprime", "count"):
                 bl = store.baseline(det, method)
                 if bl is None:
                     continue
+                found = True
                 frame, last, ids, source = bl
-                for r in frame.sort_values("diameter_mm").itertuples():
+                sens = detectable_change(frame, rules)
+                for r, sn in zip(frame.sort_values("diameter_mm").itertuples(), sens.to_dict("records")):
                     out.append(
                         {
                             "detector": det,
@@ -47,8 +62,12 @@ def show(db, detector, as_json):
                             "n_sessions": r.n_sessions,
                             "sessions": sorted(ids),
                             "source": source,
+                            "detectable": {k: v for k, v in sn.items() if k not in ("diameter_mm", "sigma_log10")},
+                            "detectable_text": sensitivity_sentence(sn),
                         }
                     )
+            if not found:
+                waiting.append(det)
     finally:
         store.close()
     if as_json:
@@ -62,6 +81,9 @@ def show(db, detector, as_json):
             f"  σ(log10) {r['sigma_log10']:.3f}  {r['source']} from sessions "
             f"{', '.join(map(str, r['sessions']))}"
         )
+        click.echo(f"      detectable rise of C_T: {r['detectable_text']}")
+    for det in waiting if out else []:
+        click.echo(f"{det}: no baseline yet (no stable run of sessions; see the trend report)")
 
 
 def _config_option():
