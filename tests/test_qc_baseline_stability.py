@@ -9,6 +9,7 @@ kerma raises the threshold contrast by 1/√0.6 ≈ ×1.29 (more where electroni
 
 import datetime as dt
 import json
+import re
 
 import numpy as np
 import pandas as pd
@@ -16,9 +17,9 @@ import pytest
 from click.testing import CliRunner
 from scipy import stats
 
-from qc_helpers import DIRECT, INDIRECT, night, write_config
+from qc_helpers import DIRECT, INDIRECT, write_config
 from scorer.cli import main
-from scorer.qc.simulated import Panel
+from scorer.qc.simulated import Panel, simulate_night
 from scorer.qc.stability import (
     MR_MEDIAN_FACTOR,
     check_window,
@@ -29,7 +30,6 @@ from scorer.qc.stability import (
 )
 
 K = 5
-N_IMAGES = 16
 FIRST = dt.date(2026, 3, 2)
 
 
@@ -125,18 +125,22 @@ def test_the_first_stable_window_by_date_is_chosen_whatever_the_ids():
 
 @pytest.fixture(scope="module")
 def drift_inside_baseline(tmp_path_factory):
-    """Six nights, K = 5; the direct panel's kerma drops by 40 % from night 4 (inside the baseline window)."""
+    """Five nights, K = 5, 4 images of the bundled plate; the direct panel's kerma drops by 40 % from night 4.
+
+    The bundled plate, not the mini plate: on the mini plate the simulator's 40 % drop shows at 1 mm only
+    (+0.12 in log10 C_T, about 2 SD of the night-to-night scatter even with 16 images), which no test on 2 of 5
+    sessions can tell from noise at α = 0.01; the bundled plate's nine diameters see it at 0.35–2 mm
+    (+0.06 to +0.14 each), and the diameters together (Stouffer's z ≈ 4.5) give it away.
+    """
     root = tmp_path_factory.mktemp("unstable")
-    # 16 images a session: on the mini plate in this simulator the 40 % drop shows at 1 mm only (+0.12 in log10
-    # C_T, the Rose model's 1/√0.6); with 4 images that is about 1.5 SD of one session's threshold, with 8 about
-    # 2 SD (z 2.3 on 2 of 5 sessions: not significant at 0.01), with 16 about 3 SD (README: sensitivity)
-    cfg = write_config(root / "cfg", min_images=N_IMAGES, baseline_sessions=K, n_boot=50, methods=("dprime",))
+    cfg = write_config(root / "cfg", baseline_sessions=K, n_boot=50, methods=("dprime",))
+    cfg.write_text(re.sub(r"^layout = .*\n", "", cfg.read_text(), flags=re.M))  # the bundled plate
     db = f"sqlite:///{root / 'db.sqlite'}"
-    doses = [100.0, 100.0, 100.0, 60.0, 60.0, 60.0]
+    doses = [100.0, 100.0, 100.0, 60.0, 60.0]
     runs = []
     for k, dose in enumerate(doses):
         date = FIRST + dt.timedelta(days=k)
-        night(root / "inbox", date, [Panel("direct", dose), Panel("indirect", 100.0)], N_IMAGES, seed=300 + k)
+        simulate_night(root / "inbox", date, [Panel("direct", dose), Panel("indirect", 100.0)], seed=300 + k)
         res = CliRunner().invoke(
             main,
             ["nightly", "--inbox", str(root / "inbox"), "--config", str(cfg), "--db", db, "--settle-seconds", "0"]
@@ -163,9 +167,6 @@ def test_a_drift_inside_the_baseline_window_raises_baseline_unstable(drift_insid
         CliRunner().invoke(main, ["baseline", "show", "--db", drift_inside_baseline["db"], "--json"]).stdout
     )
     assert {r["detector"] for r in rows} == {INDIRECT}
-    # night 6: the window of nights 2–6 still holds the step; still no baseline for the direct panel
-    code, js = runs[K]
-    assert code == 1 and any(a["rule"] == "unstable" and a["detector"] == DIRECT for a in js["alerts"])
 
 
 def test_trend_report_marks_the_rejected_sessions(drift_inside_baseline):
@@ -174,7 +175,7 @@ def test_trend_report_marks_the_rejected_sessions(drift_inside_baseline):
     d = df[df["detector"] == DIRECT]
     assert d["rejected_for_baseline"].all() and not d["in_baseline"].any()
     i = df[df["detector"] == INDIRECT]
-    assert not i["rejected_for_baseline"].any() and i["in_baseline"].sum() == K * 3
+    assert not i["rejected_for_baseline"].any() and i["in_baseline"].sum() == K * i["diameter_mm"].nunique()
     html = (rep / "trend.html").read_text()
     assert "rejected" in html and "unstable" in html
 
@@ -192,3 +193,6 @@ def test_baseline_set_ends_the_wait_and_says_what_changed(drift_inside_baseline,
     assert res.exit_code == 0, res.output
     # the three full-dose nights are the baseline now: the low-dose nights are judged against them
     assert "new alert" in res.output and "worse" in res.output, res.output
+    rows = json.loads(CliRunner().invoke(main, ["baseline", "show", "--db", str(db), "--json"]).stdout)
+    assert {r["source"] for r in rows if r["detector"] == DIRECT} == {"explicit"}
+    assert all(r["detectable"]["single_session_ratio"] > 1 for r in rows)

@@ -22,7 +22,8 @@ Format ``limen-nightly/1`` (TOML, our own design)::
     rules = ["baseline", "shewhart", "ewma", "limits"]
     stability_alpha = 0.01      # baseline sessions: trend test per diameter (Holm over diameters) at this level
     incomplete_hours = 36       # alert when a session stays short of min_images this long after acquisition
-    silent_days = 7             # alert when a configured detector has sent nothing for this many days (0: never)
+    silent_days = 7             # alert when a configured detector has sent nothing for this many days before
+                                #   today (default 0: not checked — set it once the programme runs live)
 
     [smtp]                      # optional: e-mail the alerts of each run
     host = "mail.example.org"
@@ -197,7 +198,7 @@ class AlertRules:
     rules: tuple[str, ...] = RULES
     stability_alpha: float = 0.01  # trend test of the baseline sessions (scorer/qc/stability.py)
     incomplete_hours: float = 36.0  # a session short of images this long after acquisition: alert
-    silent_days: float = 7.0  # a configured detector silent this long: alert (0: never)
+    silent_days: float = 0.0  # a configured detector silent this long before today: alert (0: not checked)
 
 
 @dataclass(frozen=True)

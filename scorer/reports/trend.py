@@ -275,6 +275,7 @@ def write_trend_report(
     )
     sessions = store.sessions()
     quarantine = store.quarantine_log()
+    missing = store.missing_alerts()
     write_json(
         out / "trend.json",
         {
@@ -283,6 +284,7 @@ def write_trend_report(
             "sessions": sessions,
             "thresholds": frame.reindex(columns=cols).to_dict(orient="records"),
             "alerts": alerts,
+            "missing_qc": missing,
             "quarantine": quarantine,
         },
     )
@@ -311,6 +313,27 @@ def write_trend_report(
                 left=["date", "flags"],
             )
         sections.append((det, body))
+    if missing:
+        sections.append(
+            (
+                "Missing QC",
+                "<p>QC that did not happen: sessions left incomplete, detectors that sent nothing, runs whose every "
+                "file was quarantined.</p>"
+                + table_html(
+                    [
+                        {
+                            "raised": f"{m['created_at']:%Y-%m-%d %H:%M}",
+                            "kind": m["kind"],
+                            "detector": m["detector"] or "—",
+                            "message": m["message"],
+                            "e-mailed": "yes" if m["emailed"] else "no",
+                        }
+                        for m in missing[-100:]
+                    ],
+                    left=["kind", "detector", "message", "e-mailed"],
+                ),
+            )
+        )
     if quarantine:
         sections.append(
             (
