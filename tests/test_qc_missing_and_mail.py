@@ -186,3 +186,28 @@ def test_mail_names_detector_date_and_worst_diameter_and_marks_late_alerts(tmp_p
     t3, third = store.claim_for_mail()
     assert len(third) == len(first)
     store.close()
+
+
+def test_a_relative_inbox_is_stored_with_absolute_paths(tmp_path, monkeypatch):
+    # a Dask worker started in another folder must find the files: the coordinator hands out absolute paths
+    night(tmp_path / "inbox", D1, [Panel("direct")], n_images=1, seed=17)
+    cfg = write_config(tmp_path / "cfg")
+    monkeypatch.chdir(tmp_path)
+    db = f"sqlite:///{tmp_path / 'rel.sqlite'}"
+    res = _nightly("inbox", cfg, db, "--json")
+    assert res.exit_code == 0, res.output
+    from scorer.qc import open_store
+
+    store = open_store(db)
+    (imgs,) = store.free_groups().values()
+    store.close()
+    assert all(os.path.isabs(im["path"]) and os.path.exists(im["path"]) for im in imgs)
+
+
+def test_a_warning_when_the_configuration_expects_a_tag_the_images_lack(tmp_path):
+    night(tmp_path / "inbox", D1, [Panel("direct", tags={"AnodeTargetMaterial": None})], n_images=1, seed=18)
+    cfg = write_config(tmp_path / "cfg", detector_extra='[detectors.expected]\nanode = "TUNGSTEN"')
+    res = _nightly(tmp_path / "inbox", cfg, f"sqlite:///{tmp_path / 'w.sqlite'}", "--json")
+    assert res.exit_code == 0, res.output
+    (w,) = json.loads(res.stdout)["warnings"]
+    assert "expects anode" in w and DIRECT in w and "no automatic baseline forms" in w

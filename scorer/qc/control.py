@@ -239,6 +239,7 @@ def evaluate_session(
         ]
     )
     judged = baseline is not None and session_id not in baseline_ids
+    values = dates = None
     for r in cur.itertuples():
         d = float(r.diameter_mm)
         c = float(r.threshold_contrast) if r.threshold_contrast is not None else np.nan
@@ -295,18 +296,19 @@ def evaluate_session(
                 f"(baseline {_pct(ref)})",
             )
         if "ewma" in rules.rules and s > 0 and session_id in after:
-            seq = [
-                sid
-                for sid in after
-                if (str(order.set_index("session_id").loc[sid, "session_date"]), sid) <= (date, session_id)
-            ]
+            if values is None:  # (session, diameter) → threshold, built once per call: re-evaluating a year of
+                # sessions after a baseline change stays O(n²) dictionary look-ups, not O(n³) frame filters
+                values = {
+                    (int(a), round(float(b), 6)): float(c)
+                    for a, b, c in zip(history["session_id"], history["diameter_mm"], history["threshold_contrast"])
+                }
+                dates = {int(a): str(b) for a, b in zip(order["session_id"], order["session_date"])}
+            seq = [sid for sid in after if (dates[sid], sid) <= (date, session_id)]
             xs = []
             for sid in seq:
-                v = history[(history["session_id"] == sid) & np.isclose(history["diameter_mm"], d)][
-                    "threshold_contrast"
-                ].to_numpy(float)
-                if v.size and np.isfinite(v[0]) and v[0] > 0:
-                    xs.append(np.log10(v[0]))
+                v = values.get((sid, round(d, 6)), np.nan)
+                if np.isfinite(v) and v > 0:
+                    xs.append(np.log10(v))
             if not xs:
                 continue
             z = ewma(xs, rules.ewma_lambda, m)[-1]
