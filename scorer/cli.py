@@ -46,6 +46,7 @@ COMMANDS: dict[str, tuple[str, str, str]] = {
         "Score phantom images at several air kermas: threshold against kerma, β, kerma for a limit.",
     ),
     "baseline": ("baseline", "baseline", "Show, set or clear the baselines the nightly alerts compare with."),
+    "quarantine": ("quarantine", "quarantine", "List the nightly run's quarantined files; release one once fixed."),
     "serve": ("serve", "serve", "Run the reader-study web app under waitress (add --demo for a ready study)."),
     "users": ("users", "users", "Add, list, disable or enable web-app accounts; reset passwords; end sessions."),
     "backup": ("backup", "backup", "Back up a web-app instance (database, image store, key) into a new folder."),

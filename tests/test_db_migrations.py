@@ -16,6 +16,18 @@ from scorer.cli import main
 DATA = Path(__file__).resolve().parent / "data"
 
 
+def _head(which: str) -> str:
+    """The newest revision shipped for ``which`` (nightly | webapp), read by Alembic from the migrations folder."""
+    from alembic.config import Config
+    from alembic.script import ScriptDirectory
+
+    from scorer.databases import NIGHTLY, WEB_APP
+
+    cfg = Config()
+    cfg.set_main_option("script_location", str((NIGHTLY if which == "nightly" else WEB_APP).script_location))
+    return ScriptDirectory.from_config(cfg).get_current_head()
+
+
 def _rows(path: Path) -> dict[str, tuple[list[str], list[tuple]]]:
     """Every table's columns and rows (in rowid order), read with the sqlite3 module, not with Limen."""
     con = sqlite3.connect(path)
@@ -67,7 +79,7 @@ def test_previous_release_nightly_database_is_upgraded_with_every_row(tmp_path):
     finally:
         store.close()
     after = _rows(path)
-    assert after[NIGHTLY.version_table][1] == [("nightly_0001",)]
+    assert after[NIGHTLY.version_table][1] == [(_head("nightly"),)]
     # limen_meta now says 2: the release before Alembic refuses it as "newer than this Limen"
     assert after["limen_meta"][1] == [("schema_version", "2")]
     assert _every_row_kept(before, after, changed={"limen_meta"}) == 17  # every row the fixture script wrote
@@ -93,7 +105,7 @@ def test_previous_release_web_app_database_is_upgraded_with_every_row(tmp_path):
     for name in ("coordinator", "Reader-Åsa", "reader02"):
         assert name in res.stdout
     after = _rows(path)
-    assert after[WEB_APP.version_table][1] == [("webapp_0001",)]
+    assert after[WEB_APP.version_table][1] == [(_head("webapp"),)]
     assert _every_row_kept(before, after) == 19  # every row the fixture script wrote
     # the columns and the table the previous release lacked: earlier studies keep fixed schedules (NULL)
     cols, rows = after["studies"]
@@ -294,7 +306,7 @@ def _open_at_once(url: str, which: str, tmp_path: Path, n: int = 3) -> None:
     table = (NIGHTLY if which == "nightly" else WEB_APP).version_table
     engine = create_engine(url)
     with engine.connect() as conn:
-        assert conn.execute(text(f"SELECT version_num FROM {table}")).scalars().all() == [f"{which}_0001"]
+        assert conn.execute(text(f"SELECT version_num FROM {table}")).scalars().all() == [_head(which)]
     engine.dispose()
     assert _schema_differences(url, which) == []
 
@@ -328,6 +340,6 @@ def test_a_database_holding_both_schemas_from_the_previous_release_stays_usable_
     _fresh(f"sqlite:///{path}", "webapp", tmp_path)
     _fresh(f"sqlite:///{path}", "nightly", tmp_path)
     after = _rows(path)
-    assert after["alembic_version_webapp"][1] == [("webapp_0001",)]
-    assert after["alembic_version_nightly"][1] == [("nightly_0001",)]
+    assert after["alembic_version_webapp"][1] == [(_head("webapp"),)]
+    assert after["alembic_version_nightly"][1] == [(_head("nightly"),)]
     assert _every_row_kept(before, after, changed={"limen_meta"}) == 17 + 19

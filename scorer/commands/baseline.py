@@ -24,19 +24,34 @@ def baseline():
 @baseline.command("show")
 @options.nightly_db()
 @click.option("--detector", default=None, help="Only this detector (its name in the database).")
+@click.option(
+    "--config",
+    "config_file",
+    type=click.Path(dir_okay=False),
+    default=None,
+    help="Nightly configuration: the alert rules whose smallest detectable change is shown (default rules).",
+)
 @click.option("--json", "as_json", is_flag=True)
-def show(db, detector, as_json):
-    """Print each detector's baseline per method and diameter."""
+def show(db, detector, config_file, as_json):
+    """Print each detector's baseline per method and diameter, and the smallest change its rules detect."""
+    from scorer.commands.nightly import load_nightly_config
+    from scorer.qc.sensitivity import detectable_change, sensitivity_sentence
+
+    rules = load_nightly_config(config_file).alerts
     store = _open(db)
     try:
         out = []
+        waiting = []
         for det in [detector] if detector else store.detectors():
+            found = False
             for method in ("dprime", "count"):
                 bl = store.baseline(det, method)
                 if bl is None:
                     continue
+                found = True
                 frame, last, ids, source = bl
-                for r in frame.sort_values("diameter_mm").itertuples():
+                sens = detectable_change(frame, rules)
+                for r, sn in zip(frame.sort_values("diameter_mm").itertuples(), sens.to_dict("records")):
                     out.append(
                         {
                             "detector": det,
@@ -47,8 +62,12 @@ def show(db, detector, as_json):
                             "n_sessions": r.n_sessions,
                             "sessions": sorted(ids),
                             "source": source,
+                            "detectable": {k: v for k, v in sn.items() if k not in ("diameter_mm", "sigma_log10")},
+                            "detectable_text": sensitivity_sentence(sn),
                         }
                     )
+            if not found:
+                waiting.append(det)
     finally:
         store.close()
     if as_json:
@@ -62,6 +81,27 @@ def show(db, detector, as_json):
             f"  σ(log10) {r['sigma_log10']:.3f}  {r['source']} from sessions "
             f"{', '.join(map(str, r['sessions']))}"
         )
+        click.echo(f"      detectable rise of C_T: {r['detectable_text']}")
+    for det in waiting if out else []:
+        click.echo(f"{det}: no baseline yet (no stable run of sessions; see the trend report)")
+
+
+def _config_option():
+    return click.option(
+        "--config",
+        "config_file",
+        type=click.Path(dir_okay=False),
+        default=None,
+        help="Nightly configuration: alert rules and baseline length used to re-evaluate the stored alerts.",
+    )
+
+
+def _rules(config_file, detector):
+    from scorer.commands.nightly import load_nightly_config
+
+    config = load_nightly_config(config_file)
+    det = config.by_name(detector)
+    return det.baseline_sessions, config.alerts, det.human_factor
 
 
 def _date(value: str | None, option: str) -> str | None:
@@ -83,11 +123,12 @@ def _date(value: str | None, option: str) -> str | None:
 
 @baseline.command("set")
 @options.nightly_db()
+@_config_option()
 @click.option("--detector", required=True, help="The detector's name in the database.")
 @click.option("--sessions", default=None, help="Comma-separated session ids (from `limen trend` or --json).")
 @click.option("--from", "date_from", default=None, help="First session date (YYYY-MM-DD) of the baseline.")
 @click.option("--to", "date_to", default=None, help="Last session date (YYYY-MM-DD) of the baseline.")
-def set_(db, detector, sessions, date_from, date_to):
+def set_(db, detector, sessions, date_from, date_to, config_file):
     """Set a detector's baseline explicitly from chosen scored sessions."""
     if bool(sessions) == bool(date_from or date_to):
         raise LimenError("give either --sessions or --from/--to")
@@ -111,20 +152,38 @@ def set_(db, detector, sessions, date_from, date_to):
                 raise LimenError(
                     f"no scored sessions of {detector!r} between {date_from or '…'} and {date_to or '…'}", "--from/--to"
                 )
-        store.set_baseline(detector, ids)
+        k, rules, factor = _rules(config_file, detector)
+        _frames, changes = store.set_baseline(detector, ids, k, rules, factor)
     finally:
         store.close()
     click.echo(f"baseline of {detector} set from sessions {', '.join(map(str, sorted(ids)))}")
+    _say(changes)
+
+
+def _say(changes) -> None:
+    from scorer.commands.nightly import print_changes
+
+    for a in changes.added:
+        click.echo(f"  new alert [{a['rule']}, {a['direction']}] {a['message']}")
+    print_changes([], changes.withdrawn, changes.updated)
+    if not (changes.added or changes.withdrawn or changes.updated):
+        click.echo("  the stored alerts are unchanged")
 
 
 @baseline.command("clear")
 @options.nightly_db()
+@_config_option()
 @click.option("--detector", required=True, help="The detector's name in the database.")
-def clear(db, detector):
+def clear(db, detector, config_file):
     """Forget a detector's baseline; the automatic one is rebuilt from its first sessions."""
     store = _open(db)
     try:
-        n = store.clear_baseline(detector)
+        k, rules, factor = _rules(config_file, detector)
+        n, changes = store.clear_baseline(detector, k, rules, factor)
     finally:
         store.close()
     click.echo(f"{detector}: {n} baseline row(s) removed")
+    for b in changes.baseline_changes:
+        if b["after"]:
+            click.echo(f"  automatic baseline ({b['method']}): sessions {', '.join(map(str, b['after']))}")
+    _say(changes)

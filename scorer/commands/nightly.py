@@ -93,7 +93,10 @@ def nightly(
 ):
     """Score new phantom images in INBOX once per session; store, trend and alert.
 
-    Exit status: 0 all well, 1 an alert was raised, 2 bad input, usage or database error.
+    Exit status: 0 all well; 1 an alert of any kind is to be reported — a control rule, baseline unstable, or
+    missing QC (a session incomplete too long, a detector silent too long, every new file quarantined) raised by
+    this run, or left unreported by an earlier run that was killed before its report was written; 2 bad input,
+    usage or database error.
     """
     from scorer.qc import default_db_url, open_store, run_nightly
 
@@ -122,6 +125,7 @@ def nightly(
             settle_s=settle_seconds,
             lease_s=lease_seconds,
             progress=not as_json,
+            report=str(Path(report_dir).resolve() / "trend.html") if report_dir else None,
         )
         page = None
         if report_dir:
@@ -130,23 +134,30 @@ def nightly(
 
             # the report is rewritten every night: last night's files (and only those) are replaced
             folder = OutputFolder(report_dir, replace=True, command="nightly", option="--report")
-            page = write_trend_report(store, report_dir, config.alerts, config.programme)
+            page = write_trend_report(store, report_dir, config.alerts, config.programme, config=config)
             folder.finish()
+        if as_json:
+            js = result.to_json()
+            js["report"] = None if page is None else str(page)
+            click.echo(dumps(js))
+        else:
+            _print(result, page)
+        for e in result.errors:
+            click.echo(f"warning: {e}", err=True)
+        for k in result.skipped:
+            click.echo(f"warning: {k['path']}: {k['reason']}", err=True)
+        for r in result.repeated:
+            click.echo(f"warning: {r['message']}", err=True)
+        for w in result.warnings:
+            click.echo(f"warning: {w}", err=True)
+        # printed and the report written: these alerts are reported (a run killed before here leaves them to the next)
+        store.mark_reported(
+            [a["id"] for a in result.pending if a["kind"] == "alert"],
+            [a["id"] for a in result.pending if a["kind"] != "alert"],
+        )
     finally:
         store.close()
-    if as_json:
-        js = result.to_json()
-        js["report"] = None if page is None else str(page)
-        click.echo(dumps(js))
-    else:
-        _print(result, page)
-    for e in result.errors:
-        click.echo(f"warning: {e}", err=True)
-    for k in result.skipped:
-        click.echo(f"warning: {k['path']}: {k['reason']}", err=True)
-    for r in result.repeated:
-        click.echo(f"warning: {r['message']}", err=True)
-    if result.alerts:
+    if result.alerts or result.missing or result.pending:
         sys.exit(1)
 
 
@@ -172,7 +183,27 @@ def _print(result, page) -> None:
         n = result.skipped_before
         click.echo(f"  {n} inbox entr{'y' if n == 1 else 'ies'} skipped, as said on an earlier run")
     for a in result.alerts:
-        click.echo(f"ALERT [{a['rule']}, {a['direction']}] {a['message']}")
+        late = " (earlier session, re-evaluated)" if a.get("reevaluated") else ""
+        click.echo(f"ALERT [{a['rule']}, {a['direction']}]{late} {a['message']}")
+    for m in result.missing:
+        click.echo(f"ALERT [missing QC: {m['kind']}] {m['message']}")
+    for a in result.earlier:
+        click.echo(f"ALERT [{a['rule']}] (raised by an earlier run that did not finish) {a['message']}")
+    print_changes(result.baseline_changes, result.withdrawn, result.updated)
     if page is not None:
         click.echo(f"trend report: {page}")
     click.echo(CAUTION)
+
+
+def print_changes(baseline_changes, withdrawn, updated) -> None:
+    """Say how a changed baseline changed the stored alerts of earlier sessions."""
+    for b in baseline_changes:
+        before = "none" if not b["before"] else "sessions " + ", ".join(map(str, b["before"]))
+        after = (
+            "none (no stable run of sessions yet)" if not b["after"] else "sessions " + ", ".join(map(str, b["after"]))
+        )
+        click.echo(f"  baseline of {b['detector']} ({b['method']}) changed: {before} -> {after}")
+    for a in withdrawn:
+        click.echo(f"  withdrawn [{a['rule']}] {a['message']}")
+    for a in updated:
+        click.echo(f"  reworded [{a['rule']}] {a['message']} (was: {a['before']})")

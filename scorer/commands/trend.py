@@ -39,7 +39,7 @@ def trend(db, out_dir, config_file, method, as_json, replace):
     folder = OutputFolder(out_dir, replace=replace, command="trend")
     store = open_store(db_url_option(db), create=False)
     try:
-        page = write_trend_report(store, out_dir, config.alerts, config.programme, method=method)
+        page = write_trend_report(store, out_dir, config.alerts, config.programme, method=method, config=config)
     finally:
         store.close()
     folder.finish()

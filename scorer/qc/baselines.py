@@ -1,4 +1,8 @@
-"""Baselines in the nightly database: the automatic one, an explicit one, reading and forgetting them."""
+"""Baselines in the nightly database: an explicit one, reading and forgetting them.
+
+The automatic baseline (the first stable run of K sessions by acquisition date) is chosen by
+:meth:`scorer.qc.alerting.AlertOps.refresh_alerts` after every write.
+"""
 
 from __future__ import annotations
 
@@ -9,7 +13,7 @@ from sqlalchemy.orm import Session
 
 from scorer.errors import LimenError
 from scorer.qc.queries import thresholds_in
-from scorer.qc.tables import BaselineRow, utcnow
+from scorer.qc.tables import BaselineRow, SessionRow, ThresholdRow, utcnow
 
 
 class BaselineOps:
@@ -39,25 +43,27 @@ class BaselineOps:
         r0 = rows[0]
         return df, (r0.last_session_date, r0.last_session_id), set(json.loads(r0.session_ids)), r0.source
 
-    def _auto_baseline(self, s, detector, method, hist, k, compute_baseline):
-        """The first ``k`` sessions without setting flags become the baseline once there are ``k`` of them."""
-        sessions = hist.drop_duplicates("session_id").sort_values(["session_date", "session_id"])
-        sessions = sessions[sessions["flags"].map(lambda f: not json.loads(f or "[]"))]
-        if len(sessions) < k:
-            return None
-        chosen = sessions.head(k)
-        ids = [int(x) for x in chosen["session_id"]]
-        frame = compute_baseline(hist[hist["session_id"].isin(ids)])
-        if frame.empty:
-            return None
-        last = (str(chosen["session_date"].iloc[-1]), ids[-1])
-        self.put_baseline(s, detector, method, frame, ids, last, "automatic")
-        return frame, last, set(ids), "automatic"
+    def _methods_in(self, s: Session, detector: str) -> list[str]:
+        return list(
+            s.scalars(
+                select(ThresholdRow.method)
+                .join(SessionRow, SessionRow.id == ThresholdRow.session_id)
+                .where(SessionRow.detector == detector, SessionRow.state == "scored")
+                .distinct()
+            )
+        )
 
-    def set_baseline(self, detector: str, session_ids: list[int]) -> dict:
-        """An explicit baseline from chosen scored sessions of ``detector`` (every method); returns a summary."""
+    def set_baseline(self, detector: str, session_ids: list[int], k: int = 5, rules=None, human_factor=None):
+        """An explicit baseline from chosen scored sessions of ``detector`` (every method).
+
+        The stored alerts of every session are evaluated again against it.  Returns (baseline frame per
+        method, :class:`~scorer.qc.alerting.AlertChanges`).
+        """
+        from scorer.qc.alerting import AlertChanges
+        from scorer.qc.config import AlertRules
         from scorer.qc.control import compute_baseline
 
+        rules = rules or AlertRules()
         with self.transaction() as s:
             hist = thresholds_in(s, detector, None)
             have = set(int(x) for x in hist["session_id"].unique())
@@ -73,16 +79,38 @@ class BaselineOps:
             order = sel.drop_duplicates("session_id").sort_values(["session_date", "session_id"])
             last = (str(order["session_date"].iloc[-1]), int(order["session_id"].iloc[-1]))
             out = {}
+            changes = AlertChanges()
             for method, g in sel.groupby("method"):
+                before = self._baseline_in(s, detector, method)
                 frame = compute_baseline(g)
                 self.put_baseline(s, detector, method, frame, sorted(set(session_ids)), last, "explicit")
                 out[method] = frame
-            return out
+                changes.baseline_changes.append(
+                    {
+                        "detector": detector,
+                        "method": method,
+                        "before": None if before is None else sorted(before[2]),
+                        "after": sorted(set(session_ids)),
+                    }
+                )
+                changes.extend(self.refresh_alerts(s, detector, method, k, rules, human_factor=human_factor))
+            return out, changes
 
-    def clear_baseline(self, detector: str) -> int:
-        """Forget a detector's baseline: the next session rebuilds the automatic one."""
+    def clear_baseline(self, detector: str, k: int = 5, rules=None, human_factor=None):
+        """Forget a detector's baseline: the automatic one is chosen again from its sessions' dates.
+
+        Returns (rows removed, :class:`~scorer.qc.alerting.AlertChanges`).
+        """
+        from scorer.qc.alerting import AlertChanges
+        from scorer.qc.config import AlertRules
+
+        rules = rules or AlertRules()
         with self.transaction() as s:
-            return int(s.execute(delete(BaselineRow).where(BaselineRow.detector == detector)).rowcount or 0)
+            n = int(s.execute(delete(BaselineRow).where(BaselineRow.detector == detector)).rowcount or 0)
+            changes = AlertChanges()
+            for method in self._methods_in(s, detector):
+                changes.extend(self.refresh_alerts(s, detector, method, k, rules, human_factor=human_factor))
+            return n, changes
 
     def baseline(self, detector: str, method: str):
         """(baseline frame, (last date, last id), session ids, source) or None."""

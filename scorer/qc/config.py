@@ -20,6 +20,10 @@ Format ``limen-nightly/1`` (TOML, our own design)::
     ewma_lambda = 0.2           # EWMA weight λ
     ewma_width = 3.0            # EWMA limits: ± L σ √(λ/(2−λ)·(1−(1−λ)^2t))
     rules = ["baseline", "shewhart", "ewma", "limits"]
+    stability_alpha = 0.01      # baseline sessions: trend test per diameter (Holm over diameters) at this level
+    incomplete_hours = 36       # alert when a session stays short of min_images this long after acquisition
+    silent_days = 7             # alert when a configured detector has sent nothing for this many days before
+                                #   today (default 0: not checked — set it once the programme runs live)
 
     [smtp]                      # optional: e-mail the alerts of each run
     host = "mail.example.org"
@@ -111,7 +115,16 @@ _DEFAULT_KEYS = {
 }
 _EXPECTED_KEYS = {"kvp", "kvp_tolerance", "anode", "filter", "exposure_uas"}
 _SMTP_KEYS = {"host", "port", "sender", "recipients", "starttls", "username", "password_env", "timeout_s"}
-_ALERT_KEYS = {"worse_fraction", "control_sigma", "ewma_lambda", "ewma_width", "rules"}
+_ALERT_KEYS = {
+    "worse_fraction",
+    "control_sigma",
+    "ewma_lambda",
+    "ewma_width",
+    "rules",
+    "stability_alpha",
+    "incomplete_hours",
+    "silent_days",
+}
 _RECEIVE_KEYS = {"ae_title", "port", "bind", "inbox", "calling_ae_titles"}
 
 
@@ -184,6 +197,9 @@ class AlertRules:
     ewma_lambda: float = 0.2
     ewma_width: float = 3.0
     rules: tuple[str, ...] = RULES
+    stability_alpha: float = 0.01  # trend test of the baseline sessions (scorer/qc/stability.py)
+    incomplete_hours: float = 36.0  # a session short of images this long after acquisition: alert
+    silent_days: float = 0.0  # a configured detector silent this long before today: alert (0: not checked)
 
 
 @dataclass(frozen=True)
@@ -485,6 +501,15 @@ def _alerts(t: dict, path) -> AlertRules:
         if not isinstance(r, list) or any(x not in RULES for x in r):
             raise LimenError(f"[alerts] rules must be a list drawn from {', '.join(RULES)}", path)
         kw["rules"] = tuple(dict.fromkeys(r))
+    if "stability_alpha" in t:
+        a = float(_number(t["stability_alpha"], path, "[alerts] stability_alpha", 0, 0.5))
+        if a == 0:
+            raise LimenError("[alerts] stability_alpha must be above 0", path)
+        kw["stability_alpha"] = a
+    if "incomplete_hours" in t:
+        kw["incomplete_hours"] = float(_number(t["incomplete_hours"], path, "[alerts] incomplete_hours", 1, 10000))
+    if "silent_days" in t:
+        kw["silent_days"] = float(_number(t["silent_days"], path, "[alerts] silent_days", 0, 3650))
     return AlertRules(**kw)
 
 

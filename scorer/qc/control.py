@@ -147,6 +147,53 @@ def _pct(c) -> str:
     return f"{100 * c:.3g} %"
 
 
+def pct_pair(value: float, reference: float, digits: int = 3) -> tuple[str, str]:
+    """Both contrasts as percentages with enough significant digits that the printed numbers compare as the
+    true ones do ("1.1604 % is outside the control limit 1.1597 %", never "1.16 % … 1.16 %")."""
+    a, b = 100 * float(value), 100 * float(reference)
+    for n in range(digits, 13):
+        fa, fb = f"{a:.{n}g}", f"{b:.{n}g}"
+        if (float(fa) > float(fb)) == (a > b) and (float(fa) < float(fb)) == (a < b):
+            return f"{fa} %", f"{fb} %"
+    return f"{a!r} %", f"{b!r} %"
+
+
+def _limits_wording(r, c, d, method, human_factor) -> tuple:
+    """(value, reference, message) of a failed limit: the human-equivalent threshold that was compared."""
+    acc = getattr(r, "acceptable", None)
+    acc = float(acc) if acc is not None and np.isfinite(acc) else None
+    h = getattr(r, "compared_contrast", None)
+    h = float(h) if h is not None and np.isfinite(h) else None
+    if h is None or not np.isfinite(c) or c <= 0 or np.isclose(h, c, rtol=1e-12):
+        v = c if h is None else h
+        v_s, a_s = pct_pair(v, acc) if acc is not None else (_pct(v), "")
+        return v, acc, f"threshold contrast {v_s} fails the acceptable limit {a_s}".rstrip()
+    from scorer.observer.limits import HumanFactor, human_equivalent
+
+    factor = h / c
+    f_txt = f"factor {factor:.3g}"
+    ci_txt = ""
+    hf = human_factor if isinstance(human_factor, HumanFactor) else None
+    if hf is not None:
+        try:
+            hf = hf.for_method(method).at(d)
+        except Exception:  # a factor of another method: print the stored one only
+            hf = None
+    if hf is not None and hf.has_ci and np.isclose(hf.value, factor, rtol=1e-6):
+        f_txt += f" (95 % CI {hf.ci_low:.3g}–{hf.ci_high:.3g})"
+        lo, hi = getattr(r, "ci_low", None), getattr(r, "ci_high", None)
+        if lo is not None and hi is not None:
+            _, lo_h, hi_h = human_equivalent(c, float(lo), float(hi), hf)
+            if np.isfinite(lo_h) and np.isfinite(hi_h):
+                ci_txt = f", 95 % CI {100 * lo_h:.3g}–{100 * hi_h:.3g} %"
+    h_s, a_s = pct_pair(h, acc) if acc is not None else (_pct(h), "")
+    msg = (
+        f"human-equivalent threshold contrast {h_s} (model {_pct(c)} × human/model {f_txt}{ci_txt}) fails the "
+        f"acceptable limit {a_s} for human readers"
+    ).replace(" for human readers", " for human readers" if a_s else "")
+    return h, acc, msg
+
+
 def evaluate_session(
     detector: str,
     session_id: int,
@@ -155,6 +202,7 @@ def evaluate_session(
     baseline_last: tuple[str, int] | None,
     baseline_ids: set,
     rules,
+    human_factor=None,
 ) -> list[Alert]:
     """Alerts for one session of one detector and method.
 
@@ -167,6 +215,8 @@ def evaluate_session(
         the sessions after it.
     baseline_ids : sessions that form the baseline (they are not judged against it).
     rules : :class:`scorer.qc.config.AlertRules`.
+    human_factor : the detector's :class:`~scorer.observer.limits.HumanFactor` (or number), for the CI of the
+        human-equivalent threshold the limits rule prints; the stored ``compared_contrast`` is what failed.
     """
     alerts: list[Alert] = []
     cur = history[history["session_id"] == session_id]
@@ -189,6 +239,7 @@ def evaluate_session(
         ]
     )
     judged = baseline is not None and session_id not in baseline_ids
+    values = dates = None
     for r in cur.itertuples():
         d = float(r.diameter_mm)
         c = float(r.threshold_contrast) if r.threshold_contrast is not None else np.nan
@@ -211,14 +262,7 @@ def evaluate_session(
             )
 
         if "limits" in rules.rules and getattr(r, "verdict", None) == "fail":
-            add(
-                "limits",
-                "worse",
-                c,
-                getattr(r, "acceptable", None),
-                f"threshold contrast {_pct(c)} fails the acceptable limit"
-                + (f" {_pct(r.acceptable)}" if getattr(r, "acceptable", None) else ""),
-            )
+            add("limits", "worse", *_limits_wording(r, c, d, method, human_factor))
         b = base.get(round(d, 6))
         if not judged or b is None or not (np.isfinite(c) and c > 0):
             continue
@@ -228,40 +272,43 @@ def evaluate_session(
         if "baseline" in rules.rules:
             lo = float(r.ci_low) if r.ci_low is not None and np.isfinite(r.ci_low) else c
             if lo > ref * (1 + rules.worse_fraction):
+                lo_s, bound_s = pct_pair(lo, ref * (1 + rules.worse_fraction))
                 add(
                     "baseline",
                     "worse",
                     c,
                     ref,
-                    f"threshold contrast {_pct(c)} (CI from {_pct(lo)}) is more than {100 * rules.worse_fraction:g} % "
-                    f"above the baseline {_pct(ref)}",
+                    f"threshold contrast {_pct(c)} (95 % CI from {lo_s}) is more than {100 * rules.worse_fraction:g} % "
+                    f"above the baseline {_pct(ref)}: its CI starts above {bound_s}",
                 )
         se = float(log_se_from_ci(r.ci_low, r.ci_high)) if r.ci_low is not None and r.ci_high is not None else 0.0
         w = shewhart_halfwidth(s, k, rules, se if np.isfinite(se) else 0.0)
         if "shewhart" in rules.rules and s > 0 and abs(x - m) > w:
             direction = "worse" if x > m else "better"
             lim = 10 ** (m + np.sign(x - m) * w)
+            c_s, lim_s = pct_pair(c, lim)
             add(
                 "shewhart",
                 direction,
                 c,
                 lim,
-                f"threshold contrast {_pct(c)} is outside the {rules.control_sigma:g} σ control limit {_pct(lim)} "
+                f"threshold contrast {c_s} is outside the {rules.control_sigma:g} σ control limit {lim_s} "
                 f"(baseline {_pct(ref)})",
             )
         if "ewma" in rules.rules and s > 0 and session_id in after:
-            seq = [
-                sid
-                for sid in after
-                if (str(order.set_index("session_id").loc[sid, "session_date"]), sid) <= (date, session_id)
-            ]
+            if values is None:  # (session, diameter) → threshold, built once per call: re-evaluating a year of
+                # sessions after a baseline change stays O(n²) dictionary look-ups, not O(n³) frame filters
+                values = {
+                    (int(a), round(float(b), 6)): float(c)
+                    for a, b, c in zip(history["session_id"], history["diameter_mm"], history["threshold_contrast"])
+                }
+                dates = {int(a): str(b) for a, b in zip(order["session_id"], order["session_date"])}
+            seq = [sid for sid in after if (dates[sid], sid) <= (date, session_id)]
             xs = []
             for sid in seq:
-                v = history[(history["session_id"] == sid) & np.isclose(history["diameter_mm"], d)][
-                    "threshold_contrast"
-                ].to_numpy(float)
-                if v.size and np.isfinite(v[0]) and v[0] > 0:
-                    xs.append(np.log10(v[0]))
+                v = values.get((sid, round(d, 6)), np.nan)
+                if np.isfinite(v) and v > 0:
+                    xs.append(np.log10(v))
             if not xs:
                 continue
             z = ewma(xs, rules.ewma_lambda, m)[-1]
@@ -269,12 +316,13 @@ def evaluate_session(
             if abs(z - m) > w:
                 direction = "worse" if z > m else "better"
                 lim = 10 ** (m + np.sign(z - m) * w)
+                z_s, lim_s = pct_pair(10**z, lim)
                 add(
                     "ewma",
                     direction,
                     10**z,
                     lim,
-                    f"EWMA of threshold contrast {_pct(10**z)} after {len(xs)} session(s) is outside its "
-                    f"control limit {_pct(lim)} (baseline {_pct(ref)})",
+                    f"EWMA of threshold contrast {z_s} after {len(xs)} session(s) is outside its "
+                    f"control limit {lim_s} (baseline {_pct(ref)})",
                 )
     return alerts

@@ -42,6 +42,18 @@ class NightlyResult:
     #: sessions formed from new files on a detector, day and settings that already have a session (a re-export,
     #: a second run of the same morning, or images simulated again): scored, and said
     repeated: list[dict] = field(default_factory=list)
+    #: alerts of earlier-scored sessions withdrawn or reworded by this run's re-evaluation (scorer/qc/alerting.py)
+    withdrawn: list[dict] = field(default_factory=list)
+    updated: list[dict] = field(default_factory=list)
+    baseline_changes: list[dict] = field(default_factory=list)
+    #: missing-QC alerts raised by this run (scorer/qc/missing.py)
+    missing: list[dict] = field(default_factory=list)
+    #: alerts of any kind no finished run has reported yet (this run's, and an earlier killed run's)
+    pending: list[dict] = field(default_factory=list)
+    earlier: list[dict] = field(default_factory=list)
+    warnings: list[str] = field(default_factory=list)
+    accepted: int = 0  # new images accepted by the scan
+    tag_flags: dict = field(default_factory=dict)  # detector -> setting flags of new images (for tag warnings)
     emailed: int = 0
     runner: str = "serial"
     db: str = ""
@@ -62,6 +74,12 @@ class NightlyResult:
             "skipped": self.skipped,
             "skipped_said_before": self.skipped_before,
             "repeated_sessions": self.repeated,
+            "withdrawn_alerts": self.withdrawn,
+            "updated_alerts": self.updated,
+            "baseline_changes": self.baseline_changes,
+            "missing_qc": self.missing,
+            "unreported_from_earlier_runs": self.earlier,
+            "warnings": self.warnings,
             "emailed_alerts": self.emailed,
             "runner": self.runner,
             "database": self.db,
@@ -88,6 +106,7 @@ def run_nightly(
     settle_s: float = 0.0,
     lease_s: float = DEFAULT_LEASE_S,
     progress: bool = False,
+    report: str | None = None,
 ) -> NightlyResult:
     """Score every complete, unscored session in ``inbox`` once; see the module docstring.
 
@@ -102,9 +121,15 @@ def run_nightly(
     dask : a Dask scheduler address (``tcp://host:8786``) or cluster object: score there instead.
     settle_s : files modified less than this many seconds ago are left for the next run (still arriving).
     lease_s : a claim not renewed for this long is taken over by another run.
+    report : path of the trend report the caller will write (named in the alert e-mail).
     """
+    from scorer.qc.tables import utcnow
+
     t_start = time.perf_counter()
+    run_started = utcnow()
     inbox, qdir = check_inbox(inbox, quarantine_dir)
+    # absolute paths: a Dask worker started in another folder reads the same files
+    inbox, qdir = Path(inbox).expanduser().resolve(), Path(qdir).expanduser().resolve()
     config = config or default_config()
     own_store = store is None
     store = store or open_store(db_url or default_db_url(inbox.resolve().parent))
@@ -131,9 +156,13 @@ def run_nightly(
                     "needed": det.min_images,
                 }
             )
+        result.missing = store.find_missing(config, config.alerts, result.accepted, result.quarantined)
+        result.warnings += _tag_warnings(result.tag_flags)
+        result.pending = store.unreported()
+        result.earlier = [a for a in result.pending if a["created_at"] < run_started]
         tm.add("db_s", time.perf_counter() - t)
         if config.smtp is not None:
-            _email(config, store, result)
+            _email(config, store, result, report, run_started)
     finally:
         if own_store:
             store.close()
@@ -206,6 +235,10 @@ def _scan(inbox, qdir, config, store, settle_s, result, tm, progress, hash_threa
     t = time.perf_counter()
     store.add_images(new)
     store.remember_files(remember)
+    result.accepted = len(new)
+    for im in new:
+        if im.flags:
+            result.tag_flags.setdefault(im.detector, []).extend(im.flags)
     tm.add("db_s", time.perf_counter() - t)
 
 
@@ -220,6 +253,22 @@ def _say_skipped(skipped: list[Skipped], cache: dict, remember: list, result: Ni
             continue
         result.skipped.append({"path": s.key, "reason": s.reason})
         remember.append((s.key, s.size, s.mtime_ns, s.marker))
+
+
+def _tag_warnings(tag_flags: dict) -> list[str]:
+    """A warning per detector whose configuration expects a tag its images do not carry: every session would be
+    flagged and no automatic baseline could ever form."""
+    out = []
+    for det, flags in sorted(tag_flags.items()):
+        missing = sorted({f.split(" ")[0] for f in flags if "not recorded" in f})
+        if missing:
+            out.append(
+                f"the configuration expects {', '.join(missing)} for {det}, but its images do not record it: every "
+                "session is flagged and no automatic baseline forms — remove the entry from [detectors.expected] "
+                "or have the modality send the tag (Anode Target Material 0018,1191; Filter Material 0018,7050; "
+                "KVP 0018,0060)"
+            )
+    return out
 
 
 def _hash_one(path) -> tuple[str | None, str | None]:
@@ -340,9 +389,15 @@ def _score(config, store, qdir, runner, lease_s, result, tm, progress):
             t = time.perf_counter()
             det = config.by_name(job.detector)
             if out.ok:
-                alerts = store.write_session(out, det, config.alerts)
+                written = store.write_session(out, det, config.alerts)
                 claims.pop(job.session_id, None)
-                if alerts is not None:
+                if written is not None:
+                    alerts = written.alerts
+                    ch = written.changes
+                    result.alerts += [dict(a, reevaluated=True) for a in ch.added]
+                    result.withdrawn += ch.withdrawn
+                    result.updated += ch.updated
+                    result.baseline_changes += ch.baseline_changes
                     result.scored_images += len(job.paths)
                     verdict = out.overall_verdict
                     result.sessions_scored.append(
@@ -381,16 +436,18 @@ def _score(config, store, qdir, runner, lease_s, result, tm, progress):
             break
 
 
-def _email(config, store, result):
+def _email(config, store, result, report=None, run_started=None):
+    """One message for every pending alert of the database, claimed first so overlapping runs never send twice."""
     from scorer.qc.mail import send_alerts
 
-    pending = store.alerts(unsent_only=True)
+    token, pending = store.claim_for_mail()
     if not pending:
         return
     try:
-        send_alerts(config.smtp, pending, config.programme)
+        send_alerts(config.smtp, pending, config.programme, report, run_started)
     except LimenError as exc:
+        store.mail_done(token, sent=False)
         result.errors.append(str(exc))
         return
-    store.mark_emailed(a["id"] for a in pending)
+    store.mail_done(token, sent=True)
     result.emailed = len(pending)

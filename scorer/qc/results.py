@@ -2,20 +2,21 @@
 
 The transaction first moves the session from ``claimed`` to ``scored`` *with the same token*,
 so a run that lost its claim writes nothing; then thresholds, responses, registrations, the
-automatic baseline (once there are enough sessions) and the alerts.
+automatic baseline (chosen again from acquisition dates) and the alerts, brought up to date
+for every session they concern (:mod:`scorer.qc.alerting`).
 """
 
 from __future__ import annotations
 
 import json
+from dataclasses import dataclass
 
 from sqlalchemy import bindparam, insert, select, text, update
 
 from scorer.errors import LimenError
 from scorer.qc.claims import ClaimTaken
 from scorer.qc.engine import display_url
-from scorer.qc.queries import thresholds_in
-from scorer.qc.tables import AlertRow, ImageRow, ResponseRow, SessionRow, ThresholdRow, utcnow
+from scorer.qc.tables import ImageRow, ResponseRow, SessionRow, ThresholdRow, utcnow
 
 
 def dumps(obj) -> str:
@@ -30,15 +31,26 @@ def _finite(v):
     return v if v == v and v not in (float("inf"), float("-inf")) else None
 
 
+@dataclass
+class SessionWrite:
+    """What writing one scored session raised: its own alerts, and changes to other sessions' alerts."""
+
+    alerts: list
+    changes: object  # scorer.qc.alerting.AlertChanges
+
+
 class ResultOps:
     """Store operation writing a scored session (mixed into :class:`Store`)."""
 
-    def write_session(self, outcome, det, rules) -> list | None:
+    def write_session(self, outcome, det, rules) -> SessionWrite | None:
         """Write a scored session in one transaction: thresholds, responses, registrations, baseline, alerts.
 
-        Returns the alerts raised, or None when the claim was lost (nothing written).
+        Returns the session's alerts and what changed for other sessions of the detector (a late session
+        inside the baseline window changes the baseline; one acquired before others changes their EWMA), or
+        None when the claim was lost (nothing written).
         """
-        from scorer.qc.control import compute_baseline, evaluate_session
+        from scorer.qc.alerting import AlertChanges
+        from scorer.qc.control import Alert
         from scorer.qc.faults import fault_point
 
         try:
@@ -116,32 +128,25 @@ class ResultOps:
                 )
                 fault_point("mid-write")
                 s.flush()
-                alerts = []
+                changes = AlertChanges()
                 for method in dict.fromkeys(p["method"] for p in outcome.thresholds):
-                    hist = thresholds_in(s, row.detector, method)
-                    bl = self._baseline_in(s, row.detector, method)
-                    if bl is None:
-                        bl = self._auto_baseline(s, row.detector, method, hist, det.baseline_sessions, compute_baseline)
-                    if method != outcome.verdict_method:
-                        continue
-                    frame, last, bids = (None, None, set()) if bl is None else bl[:3]
-                    alerts = evaluate_session(row.detector, row.id, hist, frame, last, bids, rules)
-                    for a in alerts:
-                        s.add(
-                            AlertRow(
-                                session_id=row.id,
-                                detector=a.detector,
-                                session_date=a.session_date,
-                                method=a.method,
-                                diameter_mm=a.diameter_mm,
-                                rule=a.rule,
-                                direction=a.direction,
-                                value=a.value,
-                                reference=a.reference,
-                                message=a.message,
-                                created_at=now,
-                            )
+                    changes.extend(
+                        self.refresh_alerts(
+                            s,
+                            row.detector,
+                            method,
+                            det.baseline_sessions,
+                            rules,
+                            since=(row.session_date, row.id),
+                            human_factor=det.human_factor,
                         )
-                return alerts
+                    )
+                alerts = [
+                    Alert(**{k: a[k] for k in Alert.__dataclass_fields__})
+                    for a in changes.added
+                    if a["session_id"] == row.id
+                ]
+                changes.added = [a for a in changes.added if a["session_id"] != row.id]
+                return SessionWrite(alerts, changes)
         except ClaimTaken:
             return None

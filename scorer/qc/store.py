@@ -38,10 +38,14 @@ from sqlalchemy.exc import SQLAlchemyError
 from sqlalchemy.orm import Session
 
 from scorer.errors import LimenError
+from scorer.qc.alerting import AlertOps
 from scorer.qc.baselines import BaselineOps
 from scorer.qc.claims import ClaimOps
 from scorer.qc.engine import display_url, make_engine
 from scorer.qc.intake import IntakeOps
+from scorer.qc.missing import MissingOps
+from scorer.qc.outbox import OutboxOps
+from scorer.qc.releases import ReleaseOps
 from scorer.qc.queries import QueryOps
 from scorer.qc.results import ResultOps
 from scorer.qc.schema import ensure_schema
@@ -64,7 +68,7 @@ def open_store(url: str, *, create: bool = True) -> Store:
     return Store(engine, url)
 
 
-class Store(IntakeOps, ClaimOps, ResultOps, BaselineOps, QueryOps):
+class Store(IntakeOps, ClaimOps, ResultOps, BaselineOps, AlertOps, MissingOps, OutboxOps, ReleaseOps, QueryOps):
     """One nightly database.  Open with :func:`open_store`; methods each run their own transaction."""
 
     def __init__(self, engine, url: str):

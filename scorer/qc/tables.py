@@ -145,6 +145,30 @@ class AlertRow(Base):
     message: Mapped[str] = mapped_column(Text)
     created_at: Mapped[_dt.datetime] = mapped_column(DateTime)
     emailed_at: Mapped[_dt.datetime | None] = mapped_column(DateTime)
+    # claimed for mailing by one run (token, when), so overlapping runs never send an alert twice
+    mail_token: Mapped[str | None] = mapped_column(String(64))
+    mail_claimed_at: Mapped[_dt.datetime | None] = mapped_column(DateTime)
+    # printed by a run that finished (report written): an alert still unreported makes the next run exit 1
+    reported_at: Mapped[_dt.datetime | None] = mapped_column(DateTime)
+
+
+class MissingQcRow(Base):
+    """Missing QC (scorer/qc/missing.py): a session short of images too long, a detector silent too long, a
+    run whose every new file was quarantined.  One row per kind, detector and subject (raised once)."""
+
+    __tablename__ = "qc_missing"
+    __table_args__ = (UniqueConstraint("kind", "detector", "subject"),)
+    id: Mapped[int] = mapped_column(Integer, primary_key=True, autoincrement=True)
+    kind: Mapped[str] = mapped_column(String(16))  # incomplete | silent | quarantined
+    detector: Mapped[str] = mapped_column(String(200), index=True)
+    subject: Mapped[str] = mapped_column(String(400))  # group key | last date seen | run date
+    session_date: Mapped[str] = mapped_column(String(10))
+    message: Mapped[str] = mapped_column(Text)
+    created_at: Mapped[_dt.datetime] = mapped_column(DateTime)
+    emailed_at: Mapped[_dt.datetime | None] = mapped_column(DateTime)
+    mail_token: Mapped[str | None] = mapped_column(String(64))
+    mail_claimed_at: Mapped[_dt.datetime | None] = mapped_column(DateTime)
+    reported_at: Mapped[_dt.datetime | None] = mapped_column(DateTime)
 
 
 class QuarantineRow(Base):

@@ -24,11 +24,18 @@ from scorer.errors import LimenError  # noqa: E402
 from scorer.files import atomic_write_text  # noqa: E402
 from scorer.qc.config import AlertRules  # noqa: E402
 from scorer.qc.control import control_limits, ewma, ewma_halfwidth  # noqa: E402
+from scorer.qc.sensitivity import detectable_change  # noqa: E402
+from scorer.qc.stability import choose_baseline_window, rejected_sessions  # noqa: E402
 from scorer.reports.html import figure_to_svg, html_page, table_html, write_json  # noqa: E402
 
 
-def trend_frame(store, rules: AlertRules) -> pd.DataFrame:
-    """Every scored threshold with its detector's baseline, control limits and alert rules that fired."""
+def trend_frame(store, rules: AlertRules, baseline_sessions=None) -> pd.DataFrame:
+    """Every scored threshold with its detector's baseline, control limits and alert rules that fired.
+
+    ``baseline_sessions``: detector name → K (the nightly configuration's; default 5), to mark the sessions of
+    rejected (unstable) baseline windows (:mod:`scorer.qc.stability`).
+    """
+    k_of = baseline_sessions or (lambda det: 5)
     df = store.thresholds_frame()
     if df.empty:
         return df.assign(
@@ -39,12 +46,15 @@ def trend_frame(store, rules: AlertRules) -> pd.DataFrame:
             ewma_low=[],
             ewma_high=[],
             in_baseline=[],
+            rejected_for_baseline=[],
             alerts=[],
         )
     alerts = pd.DataFrame(store.alerts())
     extra = []
     for (det, method), g in df.groupby(["detector", "method"], sort=False):
         bl = store.baseline(det, method)
+        chosen, tested = choose_baseline_window(g, k_of(det), rules.stability_alpha)
+        rejected = rejected_sessions(tested, sorted(bl[2]) if bl is not None else chosen)
         g = g.sort_values(["session_date", "session_id"])
         order = g.drop_duplicates("session_id")
         for d, gd in g.groupby("diameter_mm"):
@@ -69,6 +79,7 @@ def trend_frame(store, rules: AlertRules) -> pd.DataFrame:
                     "method": method,
                     "diameter_mm": d,
                     "in_baseline": bool(bl is not None and int(r.session_id) in bl[2]),
+                    "rejected_for_baseline": int(r.session_id) in rejected,
                 }
                 if row is not None:
                     lim = control_limits(row, rules)
@@ -99,6 +110,7 @@ def trend_frame(store, rules: AlertRules) -> pd.DataFrame:
     if "alerts" not in out:
         out["alerts"] = ""
     out["alerts"] = out["alerts"].fillna("")
+    out["rejected_for_baseline"] = out["rejected_for_baseline"].fillna(False).astype(bool)
     out["flags"] = out["flags"].map(lambda f: "; ".join(json.loads(f or "[]")))
     return out
 
@@ -163,6 +175,9 @@ def trend_figure(det_frame: pd.DataFrame, method: str, rules: AlertRules):
             ax.plot(x[flagged], y[flagged], "^", mfc="white", mec="#d08a00", ms=7, label="settings flag")
         if base.any():
             ax.plot(x[base], y[base], "s", mfc="none", mec="#2a6f97", ms=8, label="baseline session")
+        rej = s["rejected_for_baseline"].fillna(False).to_numpy(bool)
+        if rej.any():
+            ax.plot(x[rej], y[rej], "x", color="#7b2cbf", ms=8, mew=1.5, label="rejected for baseline (unstable)")
         if alert.any():
             ax.plot(x[alert], y[alert], "o", mfc="none", mec="#a4161a", mew=2, ms=11, label="alert")
         # linear axis: a session's thresholds stay within a factor of a few, where log ticks would read 6×10⁻¹
@@ -191,16 +206,25 @@ def trend_figure(det_frame: pd.DataFrame, method: str, rules: AlertRules):
 
 
 def write_trend_report(
-    store, out_dir, rules: AlertRules | None = None, programme: str = "Nightly phantom QC", method: str | None = None
+    store,
+    out_dir,
+    rules: AlertRules | None = None,
+    programme: str = "Nightly phantom QC",
+    method: str | None = None,
+    config=None,
 ) -> Path:
-    """Write trend.html, trend.csv, alerts.csv and trend.json into ``out_dir``; returns the HTML path."""
+    """Write trend.html, trend.csv, alerts.csv and trend.json into ``out_dir``; returns the HTML path.
+
+    ``config``: the nightly configuration (each detector's baseline length K); default K = 5.
+    """
     rules = rules or AlertRules()
+    k_of = (lambda det: config.by_name(det).baseline_sessions) if config is not None else None
     out = Path(out_dir)
     try:
         out.mkdir(parents=True, exist_ok=True)
     except OSError as exc:
         raise LimenError(f"cannot create the output folder ({exc.strerror or exc})", out) from None
-    frame = trend_frame(store, rules)
+    frame = trend_frame(store, rules, k_of)
     alerts = store.alerts()
     cols = [
         "detector",
@@ -216,6 +240,7 @@ def write_trend_report(
         "ci_low",
         "ci_high",
         "in_baseline",
+        "rejected_for_baseline",
         "baseline",
         "shewhart_low",
         "shewhart_high",
@@ -250,6 +275,7 @@ def write_trend_report(
     )
     sessions = store.sessions()
     quarantine = store.quarantine_log()
+    missing = store.missing_alerts()
     write_json(
         out / "trend.json",
         {
@@ -258,6 +284,7 @@ def write_trend_report(
             "sessions": sessions,
             "thresholds": frame.reindex(columns=cols).to_dict(orient="records"),
             "alerts": alerts,
+            "missing_qc": missing,
             "quarantine": quarantine,
         },
     )
@@ -270,10 +297,15 @@ def write_trend_report(
             f"diameter ({meth} method, {dframe['observer'].iloc[0].upper()} observer) against the date of each "
             "session, with 95 % confidence intervals. Squares: the sessions that form the baseline; shaded band: "
             "Shewhart control limits; dotted: the baseline plus the allowed fraction; dashed: EWMA; red rings: "
-            "alerts; open triangles: sessions whose acquisition settings differ from the expected ones."
+            "alerts; open triangles: sessions whose acquisition settings differ from the expected ones; crosses: "
+            "sessions rejected as a baseline because a trend ran through them (baseline unstable)."
             "</figcaption></figure>"
         )
-        body += _latest(dframe, meth) + _alert_table([a for a in alerts if a["detector"] == det])
+        body += (
+            _baseline_status(store, det, meth, dframe)
+            + _latest(dframe, meth)
+            + _alert_table([a for a in alerts if a["detector"] == det])
+        )
         flagged = [s for s in sessions if s["detector"] == det and s["flags"]]
         if flagged:
             body += "<h3>Acquisition-setting flags</h3>" + table_html(
@@ -281,6 +313,27 @@ def write_trend_report(
                 left=["date", "flags"],
             )
         sections.append((det, body))
+    if missing:
+        sections.append(
+            (
+                "Missing QC",
+                "<p>QC that did not happen: sessions left incomplete, detectors that sent nothing, runs whose every "
+                "file was quarantined.</p>"
+                + table_html(
+                    [
+                        {
+                            "raised": f"{m['created_at']:%Y-%m-%d %H:%M}",
+                            "kind": m["kind"],
+                            "detector": m["detector"] or "—",
+                            "message": m["message"],
+                            "e-mailed": "yes" if m["emailed"] else "no",
+                        }
+                        for m in missing[-100:]
+                    ],
+                    left=["kind", "detector", "message", "e-mailed"],
+                ),
+            )
+        )
     if quarantine:
         sections.append(
             (
@@ -362,6 +415,53 @@ def _latest(dframe, method) -> str:
         f"(session {int(last['session_id'].iloc[0])}, {int(last['n_images'].iloc[0])} images)</h3>"
     )
     return head + table_html(rows, left=["verdict", "alerts"])
+
+
+def _baseline_status(store, det, method, dframe, rules=None) -> str:
+    """Which sessions form the baseline, or why there is none yet; the sessions rejected as unstable."""
+    bl = store.baseline(det, method)
+    g = dframe[dframe["method"] == method].drop_duplicates("session_id")
+    rej = g[g["rejected_for_baseline"]].sort_values(["session_date", "session_id"])
+    rej_txt = (
+        ""
+        if rej.empty
+        else " Rejected as a baseline (a trend or step ran through them: baseline unstable): "
+        + ", ".join(f"{d} (session {int(i)})" for d, i in zip(rej["session_date"], rej["session_id"]))
+        + "."
+    )
+    if bl is None:
+        head = (
+            "<strong>No baseline yet</strong>: the control rules wait for a stable run of sessions "
+            "(or `limen baseline set`)."
+        )
+    else:
+        head = f"Baseline ({bl[3]}): sessions {', '.join(map(str, sorted(bl[2])))}."
+    out = f"<p>{html.escape(head + rej_txt)}</p>"
+    if bl is not None and rules is not None:
+        sens = detectable_change(bl[0], rules)
+        out += "<h3>Smallest change the alert rules detect</h3>" + table_html(
+            [
+                {
+                    "diameter mm": r["diameter_mm"],
+                    "σ log10": round(r["sigma_log10"], 4),
+                    "one session ×": round(r["single_session_ratio"], 3),
+                    "rule": r["single_session_rule"] or "—",
+                    "kerma fall %": round(100 * r["kerma_fall_single"]),
+                    "sustained ×": round(r["sustained_ratio"], 3),
+                    "rule ": r["sustained_rule"] or "—",
+                    "kerma fall % ": round(100 * r["kerma_fall_sustained"]),
+                }
+                for r in sens.to_dict("records")
+            ],
+            left=["rule", "rule "],
+        )
+        out += (
+            "<p>The rise of threshold contrast at which a session (or a sustained run of sessions) lying at the "
+            "changed value crosses the rule's limit: flagged about half the time there, almost always at twice "
+            "the distance. Kerma fall of the same size by the Rose model (C_T ∝ kerma^−½). More images per "
+            "session narrow σ; more baseline sessions shrink the σ²/K term.</p>"
+        )
+    return out
 
 
 def _alert_table(alerts) -> str:
