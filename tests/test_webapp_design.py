@@ -150,7 +150,13 @@ def test_the_true_site_is_spread_over_the_screen_positions_independent_of_the_pl
     # the tiles really are in that order: a darkest-tile reader is right on the most visible targets of the
     # diameters of several pixels (a 0.1 mm disc is about one 0.085 mm pixel)
     easy = df[(df["contrast"] == df.groupby("diameter_mm")["contrast"].transform("max")) & (df["diameter_mm"] > 0.2)]
-    assert easy["correct"].mean() >= 0.9, easy[["diameter_mm", "correct"]]
+    # if the recorded order were not the screen's, the darkest-tile reader would be at chance (1/M): an exact
+    # binomial test (scipy) against chance at the most alternatives shown (adaptive placement offers the plate's
+    # highest levels only where a cell needs them, so "easy" is not near-certain on every panel)
+    from scipy.stats import binomtest
+
+    k, n = int(easy["correct"].sum()), len(easy)
+    assert n >= 20 and binomtest(k, n, 1 / easy["n_alternatives"].min(), alternative="greater").pvalue < 1e-4, (k, n)
     assert df["correct"].mean() > 1 / df["n_alternatives"].min()
 
 
