@@ -83,3 +83,12 @@ def simulate_set(model, layout, dose_ugy, n_images, seed=0, pose=None):
         markers = {k: tuple(v) for k, v in sim.truth["fiducials_px"].items()}
         out.append((Image(sim.kerma_ugy(), sim.spacing_mm), SimpleNamespace(transform=tf, markers_px=markers), sim))
     return out
+
+
+def free_port() -> int:
+    """A TCP port on 127.0.0.1 that nothing listens on now (the kernel's choice for port 0)."""
+    import socket
+
+    with socket.socket() as s:
+        s.bind(("127.0.0.1", 0))
+        return s.getsockname()[1]

@@ -8,25 +8,19 @@ of the dose, far beyond the night-to-night scatter of a 4-image session.
 
 import datetime as dt
 import json
-import socket
 
 import pandas as pd
 import pytest
 from click.testing import CliRunner
 
 from qc_helpers import DIRECT, INDIRECT, night, write_config
+from helpers import free_port
 from scorer.cli import main
 from scorer.qc.simulated import Panel
 
 N_BASE = 3
 DOSES = [100.0] * N_BASE + [55.0, 30.0, 17.0]
 FIRST = dt.date(2026, 3, 2)
-
-
-def _free_port() -> int:
-    with socket.socket() as s:
-        s.bind(("127.0.0.1", 0))
-        return s.getsockname()[1]
 
 
 @pytest.fixture(scope="module")
@@ -44,7 +38,7 @@ def smtp_sink():
             return "250 OK"
 
     sink = Sink()
-    ctl = Controller(sink, hostname="127.0.0.1", port=_free_port())
+    ctl = Controller(sink, hostname="127.0.0.1", port=free_port())
     ctl.start()
     yield ctl, sink
     ctl.stop()

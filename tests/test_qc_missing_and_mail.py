@@ -9,7 +9,6 @@ import datetime as dt
 import email
 import json
 import os
-import socket
 import subprocess
 import sys
 from email.policy import default as default_policy
@@ -18,16 +17,11 @@ import pytest
 from click.testing import CliRunner
 
 from qc_helpers import DIRECT, night, write_config
+from helpers import free_port
 from scorer.cli import main
 from scorer.qc.simulated import Panel
 
 D1 = dt.date(2026, 3, 2)
-
-
-def _free_port() -> int:
-    with socket.socket() as s:
-        s.bind(("127.0.0.1", 0))
-        return s.getsockname()[1]
 
 
 @pytest.fixture(scope="module")
@@ -43,7 +37,7 @@ def smtp_sink():
             return "250 OK"
 
     sink = Sink()
-    ctl = Controller(sink, hostname="127.0.0.1", port=_free_port())
+    ctl = Controller(sink, hostname="127.0.0.1", port=free_port())
     ctl.start()
     yield ctl, sink
     ctl.stop()
@@ -143,7 +137,7 @@ def test_mail_names_detector_date_and_worst_diameter_and_marks_late_alerts(tmp_p
         'format = "limen-limits/1"\nobserver = "human"\nsource = "invented for the test"\n'
         "[[limits]]\ndiameter_mm = 0.1\nacceptable = 0.0001\n[[limits]]\ndiameter_mm = 1.0\nacceptable = 0.00001\n"
     )
-    down = _free_port()  # nothing listens there: an SMTP outage
+    down = free_port()  # nothing listens there: an SMTP outage
     cfg = write_config(
         cfg_dir, methods=("dprime",), extra=_smtp(down), detector_extra='limits = "limits.toml"\nhuman_factor = 1.8'
     )

@@ -4,7 +4,6 @@ from __future__ import annotations
 
 import os
 import re
-import socket
 import subprocess
 import sys
 import time
@@ -12,6 +11,7 @@ from pathlib import Path
 
 from click.testing import CliRunner
 
+from helpers import free_port
 from scorer.cli import main
 
 
@@ -56,16 +56,10 @@ def test_users_add_generated_prompted_duplicate_and_list(tmp_path):
     assert audit.count("add_user") == 2
 
 
-def _free_port() -> int:
-    with socket.socket() as s:
-        s.bind(("127.0.0.1", 0))
-        return s.getsockname()[1]
-
-
 def test_serve_demo_gives_a_study_a_newcomer_can_read(tmp_path):
     import requests
 
-    port = _free_port()
+    port = free_port()
     exe = Path(sys.executable).with_name("limen")
     proc = subprocess.Popen(
         [str(exe), "serve", "--demo", "--port", str(port), "--instance", str(tmp_path / "i")],

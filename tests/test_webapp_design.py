@@ -9,7 +9,6 @@ scipy.stats.chi2_contingency; Pearson 1900) for the screen position of the disc;
 
 from __future__ import annotations
 
-import datetime as _dt
 import io
 import json
 from collections import Counter, defaultdict
@@ -20,6 +19,7 @@ import pytest
 from scipy import stats
 
 from webapp_helpers import (
+    simulated_study_files,
     MINI,
     PASSWORDS,
     accounts_app,
@@ -282,24 +282,6 @@ def test_a_trial_of_an_earlier_release_is_still_shown_as_one_region(tmp_path):
 
 
 # --------------------------------------------------------------------------- the design gate
-def _simulated_files(tmp_path, n=1):
-    from scorer.detector import detector_model, simulate
-    from scorer.images import save_conversion
-    from scorer.phantom import load_layout
-    from scorer.workflow import write_simulated
-
-    layout = load_layout(MINI)
-    out = {}
-    for k, det in enumerate(("direct", "indirect")):
-        model = detector_model(det)
-        files = []
-        for i in range(n):
-            sim = simulate(model, "phantom", 100.0, np.random.default_rng(10 * k + i), small=True, layout=layout)
-            files.append(write_simulated(sim, tmp_path / det, f"{det}-{i}", _dt.datetime(2026, 11, 30, 8, i)))
-        conv = tmp_path / det / "conversion.toml"
-        save_conversion(model.conversion_function(), conv)
-        out[det] = (files, conv)
-    return out
 
 
 def test_the_app_refuses_to_open_a_design_that_cannot_reach_its_interval_and_says_what_to_change(tmp_path):
@@ -330,7 +312,7 @@ def test_the_app_refuses_to_open_a_design_that_cannot_reach_its_interval_and_say
     with app.app_context():
         st = db().get(Study, sid)
         assert json.loads(st.diameters_json) == [0.25, 1.0] and st.half_width_ln == 0.3 and st.placement == "psi"
-    files = _simulated_files(tmp_path, n=3)  # per panel: two to score, one for practice
+    files = simulated_study_files(tmp_path, n=3)  # per panel: two to score, one for practice
 
     def upload(det, paths, practice=False):
         data = {

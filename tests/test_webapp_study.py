@@ -3,7 +3,6 @@ reader sees, export, resume and analysis."""
 
 from __future__ import annotations
 
-import datetime as _dt
 import io
 import json
 from pathlib import Path
@@ -15,6 +14,7 @@ from click.testing import CliRunner
 
 from scorer.phantom import load_layout
 from webapp_helpers import (
+    simulated_study_files,
     MINI,
     PASSWORDS,
     accounts_app,
@@ -208,26 +208,6 @@ def test_display_check_needs_the_right_site_and_records_the_screen(tmp_path):
     assert levels[2] - levels[0] == pytest.approx(3) and levels[0] == levels[1] == levels[3] < 40
 
 
-def _simulated_files(tmp_path, n=1):
-    from scorer.detector import detector_model, simulate
-    from scorer.workflow import write_simulated
-    from scorer.images import save_conversion
-    from scorer.phantom import load_layout
-
-    layout = load_layout(MINI)
-    out = {}
-    for k, det in enumerate(("direct", "indirect")):
-        model = detector_model(det)
-        files = []
-        for i in range(n):
-            sim = simulate(model, "phantom", 100.0, np.random.default_rng(10 * k + i), small=True, layout=layout)
-            files.append(write_simulated(sim, tmp_path / det, f"{det}-{i}", _dt.datetime(2026, 11, 30, 8, i)))
-        conv = tmp_path / det / "conversion.toml"
-        save_conversion(model.conversion_function(), conv)
-        out[det] = (files, conv)
-    return out
-
-
 def test_coordinator_builds_a_study_through_the_forms(tmp_path):
     app = accounts_app(tmp_path, ("coordinator", "reader1", "reader2", "reader3"))
     from webapp.models import Region, Study, User
@@ -256,7 +236,7 @@ def test_coordinator_builds_a_study_through_the_forms(tmp_path):
     )
     assert r.status_code == 302, r.text
     sid = int(r.headers["Location"].split("/")[-1])
-    files = _simulated_files(tmp_path, n=2)  # 2 images per panel: 12 regions per cell, >= the 10 trials needed
+    files = simulated_study_files(tmp_path, n=2)  # 2 images per panel: 12 regions per cell, >= the 10 trials needed
     for det, (paths, conv) in files.items():
         r = c.post(
             f"/coordinator/studies/{sid}/images",
@@ -366,7 +346,7 @@ def test_import_a_folder_scored_by_limen_score(tmp_path):
     from webapp.security import db
 
     root = tmp_path / "root"
-    files = _simulated_files(root)
+    files = simulated_study_files(root)
     paths, conv = files["direct"]
     res = CliRunner().invoke(
         main,

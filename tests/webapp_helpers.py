@@ -210,3 +210,27 @@ def darkest_tile(trial, data):
         z = (bg - means) / (px.std() / np.sqrt(m.sum()))
         best = np.maximum(best, z - np.median(z))
     return int(np.argmax(best))
+
+
+def simulated_study_files(tmp_path, n=1):
+    """``n`` simulated mini-plate images per panel (direct, indirect) at 100 µGy, written as DICOM, and each
+    panel's conversion file: ``{panel: ([paths], conversion path)}``."""
+    import datetime as _dt
+
+    from scorer.detector import detector_model, simulate
+    from scorer.images import save_conversion
+    from scorer.phantom import load_layout
+    from scorer.workflow import write_simulated
+
+    layout = load_layout(MINI)
+    out = {}
+    for k, det in enumerate(("direct", "indirect")):
+        model = detector_model(det)
+        files = []
+        for i in range(n):
+            sim = simulate(model, "phantom", 100.0, np.random.default_rng(10 * k + i), small=True, layout=layout)
+            files.append(write_simulated(sim, tmp_path / det, f"{det}-{i}", _dt.datetime(2026, 11, 30, 8, i)))
+        conv = tmp_path / det / "conversion.toml"
+        save_conversion(model.conversion_function(), conv)
+        out[det] = (files, conv)
+    return out
