@@ -40,7 +40,7 @@ import numpy as np
 import pandas as pd
 from scipy import integrate, interpolate
 
-from scorer.observer.mafc import dprime_for_pc, criterion_for
+from scorer.observer.mafc import criterion_for, dprime_for_pc
 from scorer.phantom import load_layout
 from scorer.study import new_state, next_cell, next_level, plate_levels, trials_for_precision, update
 from scorer.study.pooled_gee import pooled_curves

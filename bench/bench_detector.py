@@ -15,9 +15,8 @@ from pathlib import Path
 
 import numpy as np
 
-from scorer.detector import measure_detector
+from scorer.detector import detector_model, measure_detector, simulate
 from scorer.images import Image
-from scorer.detector import detector_model, simulate
 
 FLOOR_S = 10.0
 

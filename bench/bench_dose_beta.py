@@ -33,6 +33,7 @@ sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "tests"))
 
 from helpers import grid_layout  # noqa: E402
 from npw_truth import make_noise, mean_image  # noqa: E402
+
 from scorer.detector.dose import DoseGroup, fit_series  # noqa: E402
 from scorer.images import Image, ImageMetadata  # noqa: E402
 from scorer.observer import ObserverConfig, SystemBlur, dprime_thresholds, score_image  # noqa: E402

@@ -32,13 +32,14 @@ from tqdm import tqdm
 sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "tests"))
 
 from npw_truth import layout_truth, make_noise, mean_image  # noqa: E402
+
 from scorer.images import Image  # noqa: E402
 from scorer.observer import (
     ObserverConfig,
     SystemBlur,
+    criterion_for,
     dprime_for_pc,
     dprime_thresholds,  # noqa: E402
-    criterion_for,
     score_image,
 )
 from scorer.phantom import PhantomTransform, load_layout  # noqa: E402

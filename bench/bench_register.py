@@ -17,10 +17,9 @@ from pathlib import Path
 
 import numpy as np
 
-from scorer.images import Image
-from scorer.phantom import load_layout
-from scorer.phantom import register
 from scorer.detector import Pose, detector_model, simulate
+from scorer.images import Image
+from scorer.phantom import load_layout, register
 
 TARGET_S = 0.5
 DOSE_UGY = 25.0

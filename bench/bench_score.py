@@ -23,13 +23,11 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from scorer.images import load_image
-from scorer.phantom import load_layout
-from scorer.observer import ObserverConfig, decide, estimate_blur, score_image
-from scorer.phantom import register
-from scorer.workflow import score_files, write_simulated
 from scorer.detector import detector_model, simulate
-from scorer.observer import count_thresholds, dprime_thresholds
+from scorer.images import load_image
+from scorer.observer import ObserverConfig, count_thresholds, decide, dprime_thresholds, estimate_blur, score_image
+from scorer.phantom import load_layout, register
+from scorer.workflow import score_files, write_simulated
 
 FLOOR_RATIO = 3.0
 N_DPRIME = (2, 4, 8)

@@ -430,9 +430,9 @@ def _verdict_summary(out: Path) -> str:
 def _nightly(out: Path) -> list[tuple[str, str]]:
     """Eight simulated mornings of phantom QC scored by `limen nightly`; the direct panel's dose falls from
     night 5 and the alerts catch it (scenario in scorer/qc/simulated.py)."""
-    from scorer.qc.simulated import demo_nights, simulate_night
-
     import shutil
+
+    from scorer.qc.simulated import demo_nights, simulate_night
 
     # the nightly part starts from an empty inbox and database every time: a second `make demo` would otherwise
     # write the same mornings again (new DICOM UIDs, so new files) and store every session twice

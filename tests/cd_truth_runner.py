@@ -12,8 +12,8 @@ from pathlib import Path
 
 import numpy as np
 import pandas as pd
-
 from cd_truth_generator import Plate
+
 from scorer.images import Image
 from scorer.observer import ObserverConfig, count_thresholds, decide, dprime_thresholds, estimate_blur, score_image
 from scorer.phantom import load_layout, register

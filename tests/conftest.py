@@ -7,7 +7,6 @@ import uuid
 
 import pytest
 
-
 POSTGRES_ENV = "LIMEN_TEST_POSTGRES_URL"
 
 

@@ -7,8 +7,7 @@ from types import SimpleNamespace
 
 import numpy as np
 
-from scorer.phantom import PhantomTransform
-from scorer.phantom import parse_layout
+from scorer.phantom import PhantomTransform, parse_layout
 
 DATA = Path(__file__).parent / "data"
 MINI = DATA / "mini-plate.toml"
@@ -72,8 +71,8 @@ def known_placement(layout, shape, pixel_mm, magnification=1.0):
 
 def simulate_set(model, layout, dose_ugy, n_images, seed=0, pose=None):
     """Simulated images (linearised to µGy) of ``layout`` with the placement the simulator used."""
-    from scorer.images import Image
     from scorer.detector.simulator import Pose, phantom_transform, simulate
+    from scorer.images import Image
 
     pose = pose or Pose()
     out = []

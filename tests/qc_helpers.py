@@ -7,9 +7,8 @@ import json
 from pathlib import Path
 
 import numpy as np
-
-
 from helpers import MINI
+
 from scorer.detector import detector_model
 from scorer.images import save_conversion, write_dicom
 from scorer.phantom import load_layout

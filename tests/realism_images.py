@@ -23,8 +23,8 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
-
 from npw_truth import make_noise, mean_image
+
 from scorer.images import Image
 from scorer.images.image import ImageMetadata
 from scorer.phantom import PhantomTransform

@@ -21,8 +21,8 @@ import numpy as np
 import pandas as pd
 import pytest
 from click.testing import CliRunner
-
 from helpers import MINI
+
 from scorer.cli import main
 from scorer.files import MANIFEST
 
@@ -256,10 +256,10 @@ def _writers(tmp_path):
     import datetime as dt
 
     from scorer.detector import detector_model, simulate
-    from scorer.workflow import write_simulated
     from scorer.images import ConversionFunction, save_conversion, write_dicom, write_image
     from scorer.qc.simulated import demo_nights
     from scorer.study.reader_model import write_demo_study
+    from scorer.workflow import write_simulated
 
     px = np.arange(64 * 48, dtype=np.uint16).reshape(64, 48)
     sim = simulate(detector_model("direct"), "flat", 50.0, seed=1, small=True)

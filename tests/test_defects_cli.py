@@ -9,10 +9,10 @@ import json
 import numpy as np
 import pandas as pd
 import pytest
-from click.testing import CliRunner
-
 import realism_images as ri
+from click.testing import CliRunner
 from helpers import MINI
+
 from scorer.cli import main
 from scorer.phantom import load_layout
 

@@ -7,14 +7,11 @@ import numpy as np
 import pytest
 from scipy.stats import norm
 
-from scorer.detector import simulator
+from scorer.detector import measure_mtf, measure_nnps, simulator
 from scorer.detector.measure import compute_dqe, fit_conversion, measure_detector
 from scorer.errors import LimenError
 from scorer.images import Image
-from scorer.detector import measure_mtf
-from scorer.detector import measure_nnps
 from scorer.workflow import beam_qualities, q_for_beam
-
 
 # ---------------------------------------------------------------- synthetic images
 

@@ -5,14 +5,12 @@ import json
 
 import numpy as np
 import pytest
-
-from scorer.observer import criterion_for, dprime_for_pc
 from click.testing import CliRunner
 
 from scorer.cli import main
-from scorer.images import save_conversion
-from scorer.images import write_dicom
 from scorer.detector import detector_model, simulate
+from scorer.images import save_conversion, write_dicom
+from scorer.observer import criterion_for, dprime_for_pc
 from scorer.workflow import load_layout, write_simulated
 
 T0 = dt.datetime(2026, 11, 30, 8, 0, 0)

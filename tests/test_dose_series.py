@@ -8,8 +8,9 @@ import json
 from collections import OrderedDict
 
 import numpy as np
-from scipy import stats
 import pytest
+from helpers import MINI
+from scipy import stats
 
 from scorer.detector.dose import PowerLawFit, fit_power_law, group_by_kerma, kerma_ratio
 from scorer.detector.noise import fit_components, group_flats
@@ -18,8 +19,6 @@ from scorer.errors import LimenError
 from scorer.images import Image
 from scorer.phantom import load_layout
 from scorer.workflow import score_dose_series, write_simulated
-
-from helpers import MINI
 
 DIRECT = detector_model("direct")
 QL = DIRECT.with_overrides(electronic_noise_adu=0.0)
@@ -392,8 +391,8 @@ def _compare(series, *extra):
 
 
 def test_compare_detectors_dose_ratio_equals_the_library(two_panel_series):
-    from scorer.workflow import load_detector_json, load_dose_json
     from scorer.detector.dose import compare_series
+    from scorer.workflow import load_detector_json, load_dose_json
 
     a, b = two_panel_series["direct"], two_panel_series["indirect"]
     res = _compare(two_panel_series, "--dose-a", a["dose"], "--dose-b", b["dose"], "--json")
@@ -470,8 +469,8 @@ def test_beta_ci_covers_the_rose_value_on_quantum_limited_images_of_our_own():
     from types import SimpleNamespace
 
     import pandas as pd
-
     from npw_truth import make_noise, mean_image
+
     from scorer.detector.dose import DoseGroup, fit_series
     from scorer.observer import ObserverConfig, SystemBlur, dprime_thresholds, score_image
     from scorer.phantom import PhantomTransform

@@ -8,7 +8,6 @@ import subprocess
 import sys
 
 import pytest
-
 from helpers import MINI
 
 #: every module the three extras bring, made unimportable in the child process (sys.modules[name] = None)

@@ -17,8 +17,8 @@ import json
 import numpy as np
 import pandas as pd
 import pytest
-
 from helpers import MINI
+
 from scorer.observer import flags
 from scorer.observer.threshold import ThresholdCurve, ThresholdPoint, censor_point
 

@@ -21,7 +21,6 @@ from scorer.detector.headline import (
 )
 from scorer.errors import LimenError
 
-
 # ----------------------------------------------------------------------------- pooling
 
 

@@ -22,8 +22,8 @@ import pandas as pd
 import pydicom
 import pytest
 from click.testing import CliRunner
-
 from helpers import MINI
+
 from scorer.cli import main
 
 FAST = ["--n-boot", "20"]
@@ -628,8 +628,8 @@ def test_inverted_dicom_with_its_conversion_scores_as_the_original(W):
     # stored falling (PS3.3 C.8.11.3, sign -1) and linearised by the matching falling conversion function, the image
     # is the same air kerma as the original, so every site's response (a contrast estimate) is the same
     from scorer.images import load_conversion
-    from scorer.workflow import score_files
     from scorer.phantom import load_layout
+    from scorer.workflow import score_files
 
     layout = load_layout(MINI)
     image, conv_path = _inverted(W)

@@ -24,8 +24,8 @@ from typing import Callable
 import numpy as np
 import pytest
 from click.testing import CliRunner
-
 from helpers import MINI
+
 from scorer.cli import main
 
 FAST = ["--n-boot", "20"]

@@ -21,10 +21,10 @@ from pathlib import Path
 
 import pytest
 from click.testing import CliRunner
-
 from qc_helpers import D1, night, write_config
-from scorer.cli import main
 from test_hostile_inputs import _error_lines
+
+from scorer.cli import main
 
 
 def _run(args, **kw):
@@ -250,8 +250,9 @@ def test_users_without_a_terminal_give_one_line_and_exit_2(tmp_path, command):
 
 
 def test_users_password_stdin_reads_one_line(tmp_path):
-    from webapp import create_app
     from webapp_helpers import csrf_from
+
+    from webapp import create_app
 
     inst = tmp_path / "inst"
     res = _run(["users", "add", "reader01", "--role", "reader", "--password-stdin", "--instance", inst],

@@ -24,8 +24,8 @@ import pytest
 from pydicom.dataset import FileDataset, FileMetaDataset, validate_file_meta
 from pydicom.uid import UID, ExplicitVRLittleEndian, generate_uid
 
-from scorer.images import ConversionFunction
 from scorer.errors import LimenError
+from scorer.images import ConversionFunction
 from scorer.images.dates import dicom_datetime_to_iso
 from scorer.images.image import LimenWarning
 from scorer.images.loading import image_content_hash, load_image
@@ -621,8 +621,9 @@ def test_write_image_bad_extension_and_dicom_needs_spacing(tmp_path):
 def test_decoder_failure_at_decode_time_names_the_syntax(tmp_path, monkeypatch):
     # pydicom's own error when no plugin can decode (raised inside pixel_array) must also
     # become a one-line LimenError naming the transfer syntax, not a traceback.
-    import scorer.images.dicom_reader as dicom_reader
     from pydicom.pixels.decoders import JPEG2000LosslessDecoder
+
+    import scorer.images.dicom_reader as dicom_reader
 
     p = _mg(tmp_path, syntax="jpeg2000-lossless")
     monkeypatch.setattr(dicom_reader, "_check_decoder", lambda ds, path: None)

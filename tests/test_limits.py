@@ -4,8 +4,7 @@ import numpy as np
 import pytest
 
 from scorer.errors import LimenError
-from scorer.observer import evaluate, overall
-from scorer.observer import ThresholdCurve, ThresholdPoint
+from scorer.observer import ThresholdCurve, ThresholdPoint, evaluate, overall
 from scorer.workflow import EXAMPLE_LIMITS, load_limits
 
 

@@ -2,12 +2,12 @@
 
 import numpy as np
 import pytest
-
 from helpers import grid_layout, known_placement
-from scorer.phantom import disc_coverage
+
+from scorer.detector.simulator import render_discs
 from scorer.images import Image
 from scorer.observer import ObserverConfig, SystemBlur, decide, estimate_blur, score_image
-from scorer.detector.simulator import render_discs
+from scorer.phantom import disc_coverage
 
 PIXEL_MM = 0.1
 

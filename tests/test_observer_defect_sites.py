@@ -11,9 +11,9 @@ from types import SimpleNamespace
 
 import numpy as np
 import pytest
-
 from helpers import grid_layout
 from npw_truth import make_noise, mean_image
+
 from scorer.images import Image
 from scorer.observer import ObserverConfig, SystemBlur, score_image
 from scorer.observer.npw import site_regions

@@ -11,8 +11,6 @@ import dataclasses
 import numpy as np
 import pandas as pd
 import pytest
-from scipy import ndimage, stats
-
 from cd_truth_generator import (
     CORRELATED,
     RING5,
@@ -25,6 +23,8 @@ from cd_truth_generator import (
     pc_mafc,
 )
 from cd_truth_runner import compare, plate_layout, score_set, thresholds
+from scipy import ndimage, stats
+
 from scorer.images import Image
 from scorer.observer import ObserverConfig, estimate_blur, score_image
 from scorer.phantom import register

@@ -14,9 +14,9 @@ from types import SimpleNamespace
 import numpy as np
 import pandas as pd
 import pytest
-
 from helpers import MINI, grid_layout
 from npw_truth import exact_disc, layout_truth, make_noise, mean_image
+
 from scorer.images import Image
 from scorer.observer import ObserverConfig, SystemBlur, criterion_for, dprime_for_pc, dprime_thresholds, score_image
 from scorer.phantom import PhantomTransform, load_layout

@@ -4,8 +4,8 @@ import numpy as np
 import pytest
 from scipy import integrate, ndimage, special
 
-from scorer.observer import dprime_for_pc
 from scorer.detector.predict import disc_ft, dprime_per_contrast, predict_from_detector, predict_thresholds
+from scorer.observer import dprime_for_pc
 
 
 def ones(f):

@@ -2,16 +2,12 @@
 
 import pandas as pd
 import pytest
-
 from helpers import MINI, simulate_set
-from scorer.detector import measure_detector
+
+from scorer.detector import detector_model, measure_detector, predict_from_detector, simulate
 from scorer.images import Image
-from scorer.phantom import load_layout
-from scorer.observer import ObserverConfig, SystemBlur, score_image
-from scorer.detector import predict_from_detector
-from scorer.phantom import register
-from scorer.detector import detector_model, simulate
-from scorer.observer import dprime_thresholds
+from scorer.observer import ObserverConfig, SystemBlur, dprime_thresholds, score_image
+from scorer.phantom import load_layout, register
 
 
 @pytest.mark.parametrize("panel", ["direct", "indirect"])

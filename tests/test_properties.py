@@ -17,9 +17,10 @@ from unittest import mock
 
 import numpy as np
 import pandas as pd
-from hypothesis import HealthCheck, given, settings, strategies as st
-
 from helpers import MINI
+from hypothesis import HealthCheck, given, settings
+from hypothesis import strategies as st
+
 from scorer.errors import LimenError
 
 SETTINGS = settings(max_examples=60, deadline=None, suppress_health_check=[HealthCheck.too_slow], derandomize=True)

@@ -13,8 +13,8 @@ import subprocess
 import sys
 
 import pytest
-
 from qc_helpers import night, write_config
+
 from scorer.qc.simulated import Panel
 
 FIRST = dt.date(2026, 3, 2)

@@ -15,9 +15,9 @@ import numpy as np
 import pandas as pd
 import pytest
 from click.testing import CliRunner
+from qc_helpers import DIRECT, INDIRECT, write_config
 from scipy import stats
 
-from qc_helpers import DIRECT, INDIRECT, write_config
 from scorer.cli import main
 from scorer.qc.simulated import Panel, simulate_night
 from scorer.qc.stability import (

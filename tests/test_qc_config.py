@@ -3,8 +3,8 @@ expected-settings flags (DICOM PS3.3 keywords: KVP (0018,0060), Anode Target Mat
 Filter Material (0018,7050), Exposure in µAs (0018,1153))."""
 
 import pytest
-
 from helpers import MINI
+
 from scorer.errors import LimenError
 from scorer.qc import load_config
 from scorer.qc.config import Expected

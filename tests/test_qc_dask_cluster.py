@@ -18,7 +18,6 @@ import time
 from pathlib import Path
 
 import pytest
-
 from qc_helpers import D1, check_database, night, thresholds, write_config
 
 distributed = pytest.importorskip("distributed")

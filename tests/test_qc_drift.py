@@ -12,9 +12,9 @@ import json
 import pandas as pd
 import pytest
 from click.testing import CliRunner
-
-from qc_helpers import DIRECT, INDIRECT, night, write_config
 from helpers import free_port
+from qc_helpers import DIRECT, INDIRECT, night, write_config
+
 from scorer.cli import main
 from scorer.qc.simulated import Panel
 

@@ -16,7 +16,6 @@ import sys
 import time
 
 import pytest
-
 from qc_helpers import D1, D2, check_database, night, write_config
 
 N_SESSIONS = 3

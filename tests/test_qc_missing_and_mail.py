@@ -15,9 +15,9 @@ from email.policy import default as default_policy
 
 import pytest
 from click.testing import CliRunner
-
-from qc_helpers import DIRECT, night, write_config
 from helpers import free_port
+from qc_helpers import DIRECT, night, write_config
+
 from scorer.cli import main
 from scorer.qc.simulated import Panel
 

@@ -11,7 +11,6 @@ import shutil
 import numpy as np
 import pytest
 from click.testing import CliRunner
-
 from qc_helpers import (
     D1,
     D2,
@@ -25,10 +24,11 @@ from qc_helpers import (
     night,
     write_config,
 )
+
 from scorer.cli import main
 from scorer.images import load_conversion
-from scorer.workflow import score_files
 from scorer.qc import SCHEMA_VERSION, load_config, open_store, run_nightly
+from scorer.workflow import score_files
 
 
 def _nightly(args):

@@ -4,8 +4,8 @@
 import shutil
 
 import pytest
-
 from qc_helpers import D1, D2, night, thresholds, write_config
+
 from scorer.qc import load_config, open_store, run_nightly
 
 

@@ -22,9 +22,9 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
-
 import realism_images as ri
 from helpers import MINI
+
 from scorer.observer import score_images
 from scorer.phantom import load_layout
 

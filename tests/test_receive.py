@@ -25,8 +25,8 @@ from pathlib import Path
 import pydicom
 import pytest
 from click.testing import CliRunner
-
 from qc_helpers import D1, DIRECT, night, write_config
+
 from scorer.cli import main
 from scorer.errors import LimenError
 from scorer.qc.config import ReceiveConfig, load_config, load_receive_config

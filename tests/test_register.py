@@ -7,11 +7,6 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from scorer.errors import LimenError
-from scorer.images import Image, ImageMetadata
-from scorer.phantom import Target, load_layout
-from scorer.phantom import Placement, RegistrationError, fit_similarity, register
-from scorer.reports import draw_overlay
 from scorer.detector.simulator import (
     Pose,
     _phantom_field_shape,
@@ -22,6 +17,10 @@ from scorer.detector.simulator import (
     render_discs,
     simulate,
 )
+from scorer.errors import LimenError
+from scorer.images import Image, ImageMetadata
+from scorer.phantom import Placement, RegistrationError, Target, fit_similarity, load_layout, register
+from scorer.reports import draw_overlay
 
 MINI = Path(__file__).parent / "data" / "mini-plate.toml"
 DOSE_UGY = 25.0  # the lowest demo dose

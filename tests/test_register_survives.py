@@ -21,11 +21,11 @@ from dataclasses import replace
 
 import numpy as np
 import pytest
-
 import realism_images as ri
 from cd_truth_generator import CORRELATED, ROW4, WHITE, Plate
 from cd_truth_runner import plate_layout
 from helpers import MINI
+
 from scorer.errors import LimenError
 from scorer.images import Image
 from scorer.images.image import ImageMetadata

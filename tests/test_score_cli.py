@@ -6,8 +6,8 @@ from pathlib import Path
 import numpy as np
 import pytest
 from click.testing import CliRunner
-
 from helpers import MINI
+
 from scorer.cli import main
 from scorer.images import load_image, write_image
 from scorer.phantom import load_layout

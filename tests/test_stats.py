@@ -13,18 +13,18 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from scorer.study.agreement import cohen_kappa_table, fleiss_kappa_items, inter_reader_agreement, intra_reader_agreement
 from scorer.errors import LimenError
 from scorer.observer import criterion_for, dprime_for_pc
 from scorer.observer.bootstrap import unit_counts
 from scorer.observer.mafc_fast import pc_mafc_fast
-from scorer.study.reader_model import ReaderPopulation, model_threshold, simulate_reader_study
 from scorer.reports import dumps
+from scorer.study.agreement import cohen_kappa_table, fleiss_kappa_items, inter_reader_agreement, intra_reader_agreement
 from scorer.study.analysis import analyse_study
 from scorer.study.group_comparison import compare_groups
 from scorer.study.human_factor import human_model_factor
 from scorer.study.pooled_gee import fit_pooled_gee, pooled_curves, pooled_mafc_gee
 from scorer.study.reader_fits import reader_curves
+from scorer.study.reader_model import ReaderPopulation, model_threshold, simulate_reader_study
 from scorer.study.trials import validate_trials
 
 
@@ -331,9 +331,8 @@ def test_readers_from_image_responses_have_their_designed_factor():
     # Readers built on a linear model observer's responses with efficiency e and internal noise σ have
     # d′_human = d′_model·√e/√(1+σ²) (Burgess, J. Opt. Soc. Am. A 11 (1994)): the fitted human/model
     # threshold ratio must match the designed factor F = √(1+σ²)/√e.
-    from scorer.observer import dprime_for_pc
+    from scorer.observer import count_thresholds, dprime_for_pc
     from scorer.study import readers_from_responses
-    from scorer.observer import count_thresholds
 
     rng = np.random.default_rng(12)
     sigma, m = 0.01, 4

@@ -3,13 +3,21 @@
 import numpy as np
 import pandas as pd
 import pytest
-
 from helpers import grid_layout, simulate_set
-from scorer.errors import LimenError
-from scorer.observer import criterion_for, dprime_for_pc
-from scorer.observer import ObserverConfig, SystemBlur, decide, score_image
+
 from scorer.detector import detector_model
-from scorer.observer import count_thresholds, dprime_thresholds, smooth_curve
+from scorer.errors import LimenError
+from scorer.observer import (
+    ObserverConfig,
+    SystemBlur,
+    count_thresholds,
+    criterion_for,
+    decide,
+    dprime_for_pc,
+    dprime_thresholds,
+    score_image,
+    smooth_curve,
+)
 
 # quantum-limited panel: no excess (Swank) noise, no electronic noise, every quantum absorbed, no spread
 IDEAL = detector_model("direct").with_overrides(swank=1.0, electronic_noise_adu=0.0, qde=1.0)

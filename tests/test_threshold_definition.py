@@ -11,10 +11,10 @@ import json
 
 import numpy as np
 import pytest
-from scipy import integrate, optimize, special, stats
-
 from cd_truth_generator import WHITE, Design, Plate, dprime_at_criterion
 from cd_truth_runner import plate_layout, score_set
+from scipy import integrate, optimize, special, stats
+
 from scorer.observer import count_thresholds, decide, dprime_thresholds
 from scorer.observer.mafc import (
     DEFAULT_DETECTABILITY,

@@ -29,7 +29,6 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 import pytest
-
 from webapp_helpers import MINI, PASSWORDS, accounts_app
 
 CHROMIUM = "/usr/bin/chromium"
@@ -101,9 +100,9 @@ def server(tmp_path):
 
 def _images(tmp_path):
     from scorer.detector import detector_model, simulate
-    from scorer.workflow import write_simulated
     from scorer.images import save_conversion
     from scorer.phantom import load_layout
+    from scorer.workflow import write_simulated
 
     layout = load_layout(MINI)
     out = {}
@@ -284,8 +283,9 @@ def demo_server(tmp_path):
     if not Path(CHROMIUM).exists():
         pytest.skip(f"{CHROMIUM} not found: install Debian's chromium (.ci/run does) for the browser tests")
     pytest.importorskip("playwright.sync_api", reason="playwright (test extra) not installed")
-    from scorer.commands.serve import make_server
     from webapp_helpers import demo_app
+
+    from scorer.commands.serve import make_server
 
     app, sid = demo_app(tmp_path, n_practice=2)
     srv = make_server(app, host="127.0.0.1", port=0, threads=4)
@@ -304,10 +304,10 @@ def test_practice_then_scored_trials_blinded_in_chromium(demo_server):
     kept and compared between the two panels; the rest of the study is answered through the API."""
     from playwright.sync_api import sync_playwright
     from scipy import stats
+    from webapp_helpers import login, read_all, reader_client
 
     from webapp.models import Region, StudyImage, Trial
     from webapp.security import db
-    from webapp_helpers import login, read_all, reader_client
 
     base, app, sid = demo_server
     ARTIFACTS.mkdir(parents=True, exist_ok=True)
@@ -418,10 +418,10 @@ def test_the_reading_page_reconnects_and_never_loses_or_doubles_an_answer(tmp_pa
         pytest.skip(f"{CHROMIUM} not found")
     pytest.importorskip("playwright.sync_api", reason="playwright (test extra) not installed")
     from playwright.sync_api import sync_playwright
+    from webapp_helpers import demo_app
 
     from webapp.models import Response, Trial
     from webapp.security import db
-    from webapp_helpers import demo_app
 
     app, sid = demo_app(tmp_path, n_practice=0, SECRET_KEY=None)  # the instance's own key, as `limen serve` reads it
     with socket.socket() as so:

@@ -10,8 +10,8 @@ import time
 from pathlib import Path
 
 from click.testing import CliRunner
-
 from helpers import free_port
+
 from scorer.cli import main
 
 
@@ -36,8 +36,9 @@ def test_users_add_generated_prompted_duplicate_and_list(tmp_path):
     r = CliRunner().invoke(main, ["users", "list", "--instance", inst])
     assert r.exit_code == 0 and re.search(r"dr\.hale\s+coordinator\s+active", r.output)
     # the accounts work in the app built on the same instance folder
-    from webapp import create_app
     from webapp_helpers import csrf_from
+
+    from webapp import create_app
 
     app = create_app({"INSTANCE_PATH": inst})
     c = app.test_client()
@@ -99,8 +100,9 @@ def test_users_disable_enable_and_password_reset(tmp_path):
     """A reader who leaves is disabled: no new sign-in, and a session already open ends at its next request
     (common practice for shared clinical systems); enabling restores the account; a reset password replaces the
     old one; every change is in the audit log; an unknown name is one line, exit 2."""
-    from webapp import create_app
     from webapp_helpers import csrf_from
+
+    from webapp import create_app
 
     inst = str(tmp_path / "inst")
 

@@ -8,8 +8,7 @@ import json
 from pathlib import Path
 
 import numpy as np
-
-from webapp_helpers import accounts_app, demo_app, login, reader_client, read_all
+from webapp_helpers import accounts_app, demo_app, login, read_all, reader_client
 
 
 def _dicom(path: Path, seed: int = 0) -> Path:

@@ -8,9 +8,9 @@ import sqlite3
 from pathlib import Path
 
 from click.testing import CliRunner
+from webapp_helpers import MINI, demo_app, login, pass_display_check, read_all
 
 from scorer.cli import main
-from webapp_helpers import MINI, demo_app, login, pass_display_check, read_all
 
 ROOT = Path(__file__).resolve().parents[1]
 

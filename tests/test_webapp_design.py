@@ -17,9 +17,7 @@ import numpy as np
 import pandas as pd
 import pytest
 from scipy import stats
-
 from webapp_helpers import (
-    simulated_study_files,
     MINI,
     PASSWORDS,
     accounts_app,
@@ -30,6 +28,7 @@ from webapp_helpers import (
     make_app,
     read_all,
     reader_client,
+    simulated_study_files,
     wait_job,
 )
 

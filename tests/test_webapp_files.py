@@ -22,8 +22,8 @@ from pathlib import Path
 import numpy as np
 import pytest
 from click.testing import CliRunner
-
 from helpers import MINI
+
 from scorer.errors import LimenError
 
 _DEMO = """

@@ -12,7 +12,6 @@ import threading
 import time
 
 import pytest
-
 from webapp_helpers import MINI, PASSWORDS, login, make_app, wait_job
 
 

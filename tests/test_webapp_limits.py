@@ -15,7 +15,6 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 import pytest
-
 from webapp_helpers import MINI, accounts_app, demo_app, login, read_all, reader_client
 
 MB = 1024 * 1024

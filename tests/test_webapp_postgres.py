@@ -8,7 +8,6 @@ import io
 
 import pandas as pd
 import pytest
-
 from webapp_helpers import demo_app, login, pass_display_check, race, read_all
 
 
@@ -48,10 +47,10 @@ def test_accounts_sessions_and_sign_in_throttle_on_postgresql(tmp_path, postgres
     """The new columns and table on PostgreSQL: names unique regardless of case, sessions ended on the server,
     failed sign-ins counted in the database."""
     from sqlalchemy.exc import IntegrityError
+    from webapp_helpers import accounts_app, csrf_from
 
     from webapp.models import SignInFailure, User
     from webapp.security import db
-    from webapp_helpers import accounts_app, csrf_from
 
     app = accounts_app(tmp_path, ("coordinator", "reader1"), DATABASE_URL=postgres_url, LOGIN_FREE_FAILURES=1)
     with app.app_context():

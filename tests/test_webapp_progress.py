@@ -7,7 +7,6 @@ import datetime as _dt
 import json
 
 import numpy as np
-
 from webapp_helpers import PASSWORDS, answer, csrf_from, demo_app, login, pass_display_check, read_all
 
 

@@ -10,7 +10,6 @@ is not confirmed). The table must name every route the app has, so a new route c
 from __future__ import annotations
 
 import pytest
-
 from webapp_helpers import csrf_from, demo_app, login, pass_display_check, read_all, wait_job
 
 VISITORS = ("anonymous", "reader", "other_reader", "outsider", "coordinator")
@@ -93,11 +92,9 @@ def study(tmp_path_factory):
     ctok = login(cc, "coordinator")
     job = wait_job(cc, cc.post(f"/analysis/studies/{study_id}/run", data={"csrf_token": ctok}))
     assert job["state"] == "done", job
-    from webapp.models import AnalysisRun
-    from webapp.security import db
-
     from webapp.demo import ensure_user
-    from webapp.models import User
+    from webapp.models import AnalysisRun, User
+    from webapp.security import db
 
     with app.app_context():
         run_id = db().query(AnalysisRun).first().id

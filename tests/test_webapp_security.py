@@ -11,7 +11,6 @@ from pathlib import Path
 
 import numpy as np
 import pytest
-
 from webapp_helpers import (
     PASSWORDS,
     accounts_app,

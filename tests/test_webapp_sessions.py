@@ -11,9 +11,9 @@ import sqlite3
 
 import pytest
 from click.testing import CliRunner
+from webapp_helpers import PASSWORDS, accounts_app, csrf_from, login
 
 from scorer.cli import main
-from webapp_helpers import PASSWORDS, accounts_app, csrf_from, login
 
 
 def _app(tmp_path):
@@ -206,10 +206,10 @@ def test_a_very_long_name_is_refused_in_a_short_message(tmp_path):
 def test_a_database_of_the_previous_release_gets_the_new_columns(tmp_path):
     """An instance made before sessions had a generation and names a key: its accounts keep working; of two
     names differing only by case, the older keeps the name and the other can no longer sign in."""
-    from webapp.security import hash_password
-
     import shutil
     from pathlib import Path
+
+    from webapp.security import hash_password
 
     inst = tmp_path / "instance"
     inst.mkdir()

@@ -11,10 +11,7 @@ import numpy as np
 import pandas as pd
 import pytest
 from click.testing import CliRunner
-
-from scorer.phantom import load_layout
 from webapp_helpers import (
-    simulated_study_files,
     MINI,
     PASSWORDS,
     accounts_app,
@@ -26,8 +23,11 @@ from webapp_helpers import (
     pass_display_check,
     read_all,
     reader_client,
+    simulated_study_files,
     wait_job,
 )
+
+from scorer.phantom import load_layout
 
 
 def test_each_reader_reads_practice_then_scored_trials_then_repeats(tmp_path):

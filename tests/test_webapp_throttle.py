@@ -11,7 +11,6 @@ from __future__ import annotations
 import datetime as _dt
 
 import pytest
-
 from webapp_helpers import PASSWORDS, accounts_app, csrf_from
 
 USERS = ("coordinator", "reader1", "reader2", "reader3")

@@ -10,7 +10,6 @@ import re
 from pathlib import Path
 
 import numpy as np
-
 from webapp_helpers import accounts_app, login
 
 MB = 1024 * 1024

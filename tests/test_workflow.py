@@ -9,8 +9,8 @@ import json
 
 import numpy as np
 import pytest
-
 from helpers import MINI
+
 from scorer.detector import detector_model, measure_detector, simulate
 from scorer.errors import LimenError
 from scorer.observer import score_images

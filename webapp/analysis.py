@@ -3,12 +3,13 @@ model observer beside the human readers (coordinators only)."""
 
 from __future__ import annotations
 
-from flask import Blueprint, Response as FlaskResponse, abort, current_app, g, redirect, render_template, url_for
+from flask import Blueprint, abort, current_app, g, redirect, render_template, url_for
+from flask import Response as FlaskResponse
 from sqlalchemy import func, select
 
 from webapp import services
 from webapp.models import AnalysisRun, Response, Study, Trial
-from webapp.security import study_or_404, REPORT_CSP, audit, db, role_required
+from webapp.security import REPORT_CSP, audit, db, role_required, study_or_404
 
 bp = Blueprint("analysis", __name__, url_prefix="/analysis")
 coordinator_only = role_required("coordinator")

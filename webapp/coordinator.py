@@ -11,7 +11,6 @@ from pathlib import Path
 
 from flask import (
     Blueprint,
-    Response as FlaskResponse,
     abort,
     current_app,
     flash,
@@ -20,12 +19,15 @@ from flask import (
     request,
     url_for,
 )
+from flask import (
+    Response as FlaskResponse,
+)
 from sqlalchemy import select
 
 from scorer.errors import LimenError
 from webapp import services, study_edits
 from webapp.models import AuditEntry, Enrolment, Study, StudyImage, User, utcnow
-from webapp.security import study_or_404, audit, db, role_required, upload
+from webapp.security import audit, db, role_required, study_or_404, upload
 
 bp = Blueprint("coordinator", __name__, url_prefix="/coordinator")
 coordinator_only = role_required("coordinator")

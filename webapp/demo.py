@@ -28,10 +28,9 @@ DETECTORS = {"direct": "HSX-SE-0417 (direct, MAM2)", "indirect": "HSX-CS-2291 (i
 
 def ensure_user(session, username: str, role: str, password: str | None = None) -> str:
     """Create (or reset the password of, ending its sessions) an account; return the password."""
+    from webapp.accounts import find_user
     from webapp.models import User
     from webapp.security import hash_password
-
-    from webapp.accounts import find_user
 
     password = password or secrets.token_urlsafe(9)
     user = find_user(session, username)

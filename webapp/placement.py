@@ -278,7 +278,8 @@ class StaleState(Exception):
 
 
 def _teach(s, study: Study, trial: Trial, region: Region, correct: bool) -> None:
-    from scorer.study.adaptive import state_from_json, update as update_state
+    from scorer.study.adaptive import state_from_json
+    from scorer.study.adaptive import update as update_state
 
     det = s.scalar(select(StudyImage.detector).where(StudyImage.id == region.image_id))
     row = (

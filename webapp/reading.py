@@ -16,7 +16,6 @@ import secrets
 
 from flask import (
     Blueprint,
-    Response as FlaskResponse,
     abort,
     current_app,
     jsonify,
@@ -25,6 +24,9 @@ from flask import (
     request,
     session,
     url_for,
+)
+from flask import (
+    Response as FlaskResponse,
 )
 from flask_login import current_user
 from sqlalchemy import func, select

@@ -580,8 +580,8 @@ def run_analysis(session, study, n_boot: int, seed: int = 0, progress=None):
     statistics run: their steps are named, not measured)."""
     from sqlalchemy import select
 
-    from scorer.reports.study import report_html
     from scorer.reports.html import dumps
+    from scorer.reports.study import report_html
     from scorer.study import analyse_study, validate_trials
     from webapp.models import AnalysisRun
 

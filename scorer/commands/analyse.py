@@ -7,7 +7,6 @@ import sys
 import click
 
 from scorer.commands import options
-
 from scorer.reports import dumps
 
 
@@ -81,15 +80,14 @@ def analyse(
     A threshold without an interior maximum, on too few trials, with too wide a CI or above 100 % contrast is
     reported as not estimable (with the reason and its trials), never as a number.
     """
-    from scorer.workflow import image_content_hash as file_sha256  # SHA-256 of a file's bytes
+    from scorer.errors import LimenError
     from scorer.files import OutputFolder
+    from scorer.observer.mafc import Detectability
     from scorer.study import analyse_study
     from scorer.study.alternatives import m_alternatives_of
     from scorer.study.estimability import EstimabilityRule
+    from scorer.workflow import image_content_hash as file_sha256  # SHA-256 of a file's bytes
     from scorer.workflow import load_model_table, load_trials
-
-    from scorer.errors import LimenError
-    from scorer.observer.mafc import Detectability
 
     if detectability is not None:
         if criterion_pc is not None:

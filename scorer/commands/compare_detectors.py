@@ -8,14 +8,14 @@ import click
 import numpy as np
 import pandas as pd
 
+from scorer.commands import options
+from scorer.commands.detector import alternatives_from_options, diameters_from_options
 from scorer.detector import compare
 from scorer.detector.comparison import check_dose_pair
-from scorer.workflow import load_detector_json, load_dose_json, load_scored_json
 from scorer.errors import LimenError
 from scorer.files import OutputFolder, atomic_write_text
 from scorer.reports import dumps, write_json
-from scorer.commands import options
-from scorer.commands.detector import alternatives_from_options, diameters_from_options
+from scorer.workflow import load_detector_json, load_dose_json, load_scored_json
 
 
 @click.command("compare-detectors")

@@ -13,8 +13,8 @@ import numpy as np
 from scorer.commands import options
 from scorer.errors import LimenError
 from scorer.files import OutputFolder, atomic_write_bytes, atomic_write_text
-from scorer.reports.detector import summary_rows
 from scorer.reports import dumps, write_json
+from scorer.reports.detector import summary_rows
 
 #: options that take every following file name up to the next option (``--flat a.dcm b.dcm``)
 GREEDY_OPTIONS = ("--flat", "--edge")

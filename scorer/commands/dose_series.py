@@ -63,6 +63,7 @@ def dose_series(
     import numpy as np
     from tqdm import tqdm
 
+    from scorer.files import OutputFolder
     from scorer.reports import CAUTION, dumps, write_json
     from scorer.workflow import (
         load_conversion,
@@ -73,8 +74,6 @@ def dose_series(
         score_dose_series,
         series_groups,
     )
-
-    from scorer.files import OutputFolder
 
     fitted_method = "count" if method == "count" else "dprime"  # as scorer.detector.dose.dose_series fits
     human_factor = resolve_human_factor(human_factor, factor_file, observer, fitted_method if limits_file else None)

@@ -25,7 +25,6 @@ from scorer.workflow import (
     score_files,
 )
 
-
 #: exit status of `limen score` (documented in the README)
 EXIT_FAIL = 1
 EXIT_INDETERMINATE = 3

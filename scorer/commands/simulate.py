@@ -18,9 +18,10 @@ import numpy as np
 from tqdm import tqdm
 
 from scorer.commands import options
-from scorer.images import save_conversion
+from scorer.detector import PRESETS, Pose, detector_model
+from scorer.detector import simulate as run_simulation
 from scorer.errors import LimenError
-from scorer.detector import PRESETS, Pose, detector_model, simulate as run_simulation
+from scorer.images import save_conversion
 from scorer.workflow import load_detector_model, load_layout, write_simulated
 
 DEFAULT_START = _dt.datetime(2026, 11, 30, 7, 30, 0)

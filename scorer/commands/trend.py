@@ -5,7 +5,6 @@ from __future__ import annotations
 import click
 
 from scorer.commands import options
-
 from scorer.reports import dumps
 
 
@@ -30,10 +29,9 @@ from scorer.reports import dumps
 def trend(db, out_dir, config_file, method, as_json, replace):
     """Write the trend report of a nightly database."""
     from scorer.commands.nightly import db_url_option, load_nightly_config
+    from scorer.files import OutputFolder
     from scorer.qc import open_store
     from scorer.reports.trend import write_trend_report
-
-    from scorer.files import OutputFolder
 
     config = load_nightly_config(config_file)
     folder = OutputFolder(out_dir, replace=replace, command="trend")

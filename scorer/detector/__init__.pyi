@@ -2,57 +2,98 @@
 
 from . import comparison as comparison
 from . import dose as dose
-from . import noise as noise
+from . import headline as headline
 from . import measure as measure
 from . import mtf as mtf
 from . import nnps as nnps
-from . import predict as predict
-from . import simulator as simulator
+from . import noise as noise
 from . import panel_model as panel_model
+from . import predict as predict
 from . import presets as presets
-from . import headline as headline
-
-from .mtf import MTFResult as MTFResult, measure_mtf as measure_mtf, mean_mtf as mean_mtf
-from .nnps import NNPSResult as NNPSResult, measure_nnps as measure_nnps
+from . import simulator as simulator
+from .comparison import (
+    check_detector_json as check_detector_json,
+)
+from .comparison import (
+    check_dose_json as check_dose_json,
+)
+from .comparison import (
+    compare as compare,
+)
+from .comparison import (
+    scored_thresholds as scored_thresholds,
+)
+from .dose import (
+    background_kerma_ugy as background_kerma_ugy,
+)
+from .dose import (
+    compare_series as compare_series,
+)
+from .dose import (
+    dose_series as dose_series,
+)
+from .dose import (
+    fit_power_law as fit_power_law,
+)
+from .dose import (
+    group_by_kerma as group_by_kerma,
+)
+from .dose import (
+    kerma_ratio as kerma_ratio,
+)
 from .measure import (
     DetectorMetrics as DetectorMetrics,
-    measure_detector as measure_detector,
-    fit_conversion as fit_conversion,
+)
+from .measure import (
     compute_dqe as compute_dqe,
 )
+from .measure import (
+    fit_conversion as fit_conversion,
+)
+from .measure import (
+    measure_detector as measure_detector,
+)
+from .measure import measure_noise_series as measure_noise_series
+from .mtf import MTFResult as MTFResult
+from .mtf import mean_mtf as mean_mtf
+from .mtf import measure_mtf as measure_mtf
+from .nnps import NNPSResult as NNPSResult
+from .nnps import measure_nnps as measure_nnps
+from .noise import fit_components as fit_components
+from .noise import group_flats as group_flats
+from .panel_model import DetectorModel as DetectorModel
 from .predict import (
     PredictedThreshold as PredictedThreshold,
-    predict_thresholds as predict_thresholds,
+)
+from .predict import (
     predict_from_detector as predict_from_detector,
 )
-from .panel_model import DetectorModel as DetectorModel
+from .predict import (
+    predict_thresholds as predict_thresholds,
+)
 from .presets import (
     PRESETS as PRESETS,
+)
+from .presets import (
     SPECS as SPECS,
+)
+from .presets import (
     detector_model as detector_model,
+)
+from .presets import (
     detector_model_from_dict as detector_model_from_dict,
 )
 from .simulator import (
     Pose as Pose,
+)
+from .simulator import (
     SimulatedImage as SimulatedImage,
-    simulate as simulate,
+)
+from .simulator import (
     dicom_tags as dicom_tags,
 )
-from .dose import (
-    dose_series as dose_series,
-    background_kerma_ugy as background_kerma_ugy,
-    group_by_kerma as group_by_kerma,
-    fit_power_law as fit_power_law,
-    kerma_ratio as kerma_ratio,
-    compare_series as compare_series,
-)
-from .noise import fit_components as fit_components, group_flats as group_flats
-from .measure import measure_noise_series as measure_noise_series
-from .comparison import (
-    compare as compare,
-    check_detector_json as check_detector_json,
-    check_dose_json as check_dose_json,
-    scored_thresholds as scored_thresholds,
+from .simulator import (
+    simulate as simulate,
 )
 
 __all__ = [

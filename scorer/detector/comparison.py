@@ -10,8 +10,8 @@ import re
 
 import numpy as np
 
-from scorer.errors import LimenError
 from scorer.detector.predict import predict_from_detector
+from scorer.errors import LimenError
 
 #: diameters (mm) used when neither --diameters, --layout nor a scored JSON gives any (common practice)
 DEFAULT_DIAMETERS_MM = (0.1, 0.25, 0.5, 1.0, 2.0)

@@ -52,6 +52,7 @@ from typing import Callable, Sequence
 import numpy as np
 from scipy import optimize, stats
 
+import scorer.observer.flags as flags
 from scorer.detector.dose_groups import (  # noqa: F401  (re-exported: the dose series' grouping)
     CLUSTER_RTOL,
     SAME_KERMA_RTOL,
@@ -61,7 +62,6 @@ from scorer.detector.dose_groups import (  # noqa: F401  (re-exported: the dose 
     group_by_kerma,
 )
 from scorer.errors import LimenError
-import scorer.observer.flags as flags
 from scorer.observer.flags import kerma_flags, threshold_flags
 from scorer.observer.limits import HumanFactor, Limits
 

@@ -46,8 +46,8 @@ from dataclasses import asdict, dataclass
 import numpy as np
 from scipy import stats
 
-from scorer.errors import LimenError
 from scorer.detector.dose import PowerLawFit, predicted_kerma_ratios
+from scorer.errors import LimenError
 
 Z95 = 1.959963984540054
 #: default detail classes (mm): small ≤ 0.25, large ≥ 0.5 (issue 21; common practice for micro-

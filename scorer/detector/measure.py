@@ -20,12 +20,12 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from scorer.images.conversion import ConversionFunction
-from scorer.observer.defects import DefectMap, defect_map_from_flats, fill_defects
-from scorer.errors import LimenError
-from scorer.images.image import Image
 from scorer.detector.mtf import MTFResult, mean_mtf, measure_mtf
 from scorer.detector.nnps import NNPSResult, measure_nnps
+from scorer.errors import LimenError
+from scorer.images.conversion import ConversionFunction
+from scorer.images.image import Image
+from scorer.observer.defects import DefectMap, defect_map_from_flats, fill_defects
 
 #: largest error of the fitted conversion function, as a fraction of the kerma, before
 #: the response is flagged non-linear (common practice)

@@ -43,8 +43,8 @@ from dataclasses import dataclass, field
 import numpy as np
 from scipy import stats
 
-from scorer.errors import LimenError
 from scorer.detector.nnps import DEFAULT_REGION_MM, _poly_basis
+from scorer.errors import LimenError
 
 Z95 = 1.959963984540054
 TERMS = ("electronic", "quantum", "structure")

@@ -40,8 +40,8 @@ import dataclasses
 from dataclasses import dataclass
 from pathlib import PurePath
 
-from scorer.errors import LimenError
 from scorer.detector.panel_model import DetectorModel, validate_model
+from scorer.errors import LimenError
 
 MAMMO_Q = 5000.0  # photons mm⁻² µGy⁻¹, ~28 kV W/Rh mammography beam (from memory)
 RQA5_Q = 29653.0  # photons mm⁻² µGy⁻¹, RQA5 (IEC 62220-1-1, from memory; scorer/data/beam_qualities.csv)

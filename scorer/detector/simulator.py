@@ -63,16 +63,16 @@ References
 from __future__ import annotations
 
 import datetime as _dt
-from dataclasses import dataclass, field, asdict
+from dataclasses import asdict, dataclass, field
 
 import numpy as np
 from scipy import fft as sfft
 
-from scorer.images.conversion import ConversionFunction
-from scorer.phantom.disc import SUPERSAMPLE, disc_coverage_patch
-from scorer.errors import LimenError
 from scorer.detector.panel_model import DetectorModel
 from scorer.detector.presets import PRESETS, detector_model, detector_model_from_dict  # noqa: F401 (re-exported)
+from scorer.errors import LimenError
+from scorer.images.conversion import ConversionFunction
+from scorer.phantom.disc import SUPERSAMPLE, disc_coverage_patch
 from scorer.phantom.geometry import PhantomTransform
 from scorer.phantom.layout import Layout
 

@@ -4,20 +4,29 @@ from . import conversion as conversion
 from . import image as image
 from . import loading as loading
 from . import writers as writers
-
-from .image import Image as Image, ImageMetadata as ImageMetadata, LimenWarning as LimenWarning
+from .conversion import (
+    ConversionFunction as ConversionFunction,
+)
+from .conversion import (
+    load_conversion as load_conversion,
+)
+from .conversion import (
+    save_conversion as save_conversion,
+)
+from .image import Image as Image
+from .image import ImageMetadata as ImageMetadata
+from .image import LimenWarning as LimenWarning
+from .loading import (
+    image_content_hash as image_content_hash,
+)
 from .loading import (
     load_image as load_image,
-    image_content_hash as image_content_hash,
 )
 from .writers import (
     write_dicom as write_dicom,
-    write_image as write_image,
 )
-from .conversion import (
-    ConversionFunction as ConversionFunction,
-    load_conversion as load_conversion,
-    save_conversion as save_conversion,
+from .writers import (
+    write_image as write_image,
 )
 
 __all__ = [

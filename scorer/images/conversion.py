@@ -20,7 +20,7 @@ from __future__ import annotations
 
 import json
 import tomllib
-from dataclasses import dataclass, asdict
+from dataclasses import asdict, dataclass
 from pathlib import Path
 
 import numpy as np

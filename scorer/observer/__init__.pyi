@@ -1,11 +1,11 @@
 """Public entry points of this package (read by lazy_loader.attach_stub and type checkers)."""
 
+from . import bootstrap as bootstrap
 from . import checks as checks
 from . import defects as defects
 from . import eye as eye
 from . import flags as flags
 from . import limits as limits
-from . import bootstrap as bootstrap
 from . import mafc as mafc
 from . import mafc_fast as mafc_fast
 from . import npw as npw
@@ -14,41 +14,80 @@ from . import psychometric as psychometric
 from . import psychometric_bootstrap as psychometric_bootstrap
 from . import scoring as scoring
 from . import threshold as threshold
-
-from .npw import (
-    ObserverConfig as ObserverConfig,
-    SystemBlur as SystemBlur,
-    score_image as score_image,
-    decide as decide,
-    estimate_blur as estimate_blur,
-)
 from .eye import eye_filter as eye_filter
-from .mafc import (
-    pc_mafc as pc_mafc,
-    dprime_for_pc as dprime_for_pc,
-    halfway_criterion as halfway_criterion,
-    criterion_for as criterion_for,
-    Detectability as Detectability,
-    DEFAULT_DETECTABILITY as DEFAULT_DETECTABILITY,
-)
-from .psychometric import fit_psychometric as fit_psychometric, PsychometricFit as PsychometricFit
-from .threshold import (
-    ThresholdCurve as ThresholdCurve,
-    ThresholdPoint as ThresholdPoint,
-    dprime_thresholds as dprime_thresholds,
-    count_thresholds as count_thresholds,
-    smooth_curve as smooth_curve,
-)
 from .limits import (
     HumanFactor as HumanFactor,
-    parse_human_factor as parse_human_factor,
+)
+from .limits import (
     Limits as Limits,
+)
+from .limits import (
     Verdict as Verdict,
-    parse_limits as parse_limits,
+)
+from .limits import (
     evaluate as evaluate,
+)
+from .limits import (
     overall as overall,
 )
-from .scoring import ScoreResult as ScoreResult, score_images as score_images
+from .limits import (
+    parse_human_factor as parse_human_factor,
+)
+from .limits import (
+    parse_limits as parse_limits,
+)
+from .mafc import (
+    DEFAULT_DETECTABILITY as DEFAULT_DETECTABILITY,
+)
+from .mafc import (
+    Detectability as Detectability,
+)
+from .mafc import (
+    criterion_for as criterion_for,
+)
+from .mafc import (
+    dprime_for_pc as dprime_for_pc,
+)
+from .mafc import (
+    halfway_criterion as halfway_criterion,
+)
+from .mafc import (
+    pc_mafc as pc_mafc,
+)
+from .npw import (
+    ObserverConfig as ObserverConfig,
+)
+from .npw import (
+    SystemBlur as SystemBlur,
+)
+from .npw import (
+    decide as decide,
+)
+from .npw import (
+    estimate_blur as estimate_blur,
+)
+from .npw import (
+    score_image as score_image,
+)
+from .psychometric import PsychometricFit as PsychometricFit
+from .psychometric import fit_psychometric as fit_psychometric
+from .scoring import ScoreResult as ScoreResult
+from .scoring import score_images as score_images
+from .threshold import (
+    ThresholdCurve as ThresholdCurve,
+)
+from .threshold import (
+    ThresholdPoint as ThresholdPoint,
+)
+from .threshold import (
+    count_thresholds as count_thresholds,
+)
+from .threshold import (
+    dprime_thresholds as dprime_thresholds,
+)
+from .threshold import (
+    smooth_curve as smooth_curve,
+)
 
 __all__ = [
     "checks",

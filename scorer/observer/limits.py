@@ -31,8 +31,7 @@ one the comparison is refused.
 
 from __future__ import annotations
 
-
-from dataclasses import dataclass, asdict
+from dataclasses import asdict, dataclass
 from pathlib import PurePath
 
 import numpy as np

@@ -42,10 +42,10 @@ from scipy import fft as sfft
 from scipy import ndimage, optimize
 from scipy.spatial import cKDTree
 
-from scorer.phantom.disc import blurred_disc, disc_coverage
 from scorer.errors import LimenError
-from scorer.observer.eye import DEFAULT_VIEWING_DISTANCE_MM, eye_filter
 from scorer.images.image import Image
+from scorer.observer.eye import DEFAULT_VIEWING_DISTANCE_MM, eye_filter
+from scorer.phantom.disc import blurred_disc, disc_coverage
 from scorer.phantom.layout import Layout
 
 OBSERVERS = ("npw", "npwe")

@@ -21,8 +21,8 @@ from scorer.images.image import Image
 from scorer.observer.checks import CONTRAST_SCALE, ImageChecks, SetChecks, check_image
 from scorer.observer.defects import DEFAULT_FALSE_FLAG_RATE, DefectMap
 from scorer.observer.limits import HumanFactor, Limits, Verdict, evaluate, overall
-from scorer.observer.npw import ObserverConfig, SystemBlur, decide, estimate_blur, score_image, site_regions
 from scorer.observer.mafc import Detectability, criterion_for, criterion_json
+from scorer.observer.npw import ObserverConfig, SystemBlur, decide, estimate_blur, score_image, site_regions
 from scorer.observer.threshold import ThresholdCurve, ThresholdPoint, count_thresholds, dprime_thresholds
 from scorer.phantom.layout import Layout
 from scorer.phantom.registration import register

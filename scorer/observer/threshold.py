@@ -63,17 +63,17 @@ References
 
 from __future__ import annotations
 
-from dataclasses import dataclass, field, asdict
+from dataclasses import asdict, dataclass, field
 
 import numpy as np
 import pandas as pd
-
-from scorer.errors import LimenError
-from scorer.observer.flags import text as flag_text, threshold_flags
-from scorer.observer.mafc import criterion_for, dprime_for_pc
 from scipy import stats
 
+from scorer.errors import LimenError
 from scorer.observer.bootstrap import enclose_estimate, expanded_percentile_ci, unit_counts
+from scorer.observer.flags import text as flag_text
+from scorer.observer.flags import threshold_flags
+from scorer.observer.mafc import criterion_for, dprime_for_pc
 from scorer.observer.mafc_fast import dpc_mafc_fast, pc_mafc_fast
 from scorer.observer.psychometric import fit_psychometric
 from scorer.observer.psychometric_bootstrap import bootstrap_threshold

@@ -4,22 +4,38 @@ from . import disc as disc
 from . import geometry as geometry
 from . import layout as layout
 from . import registration as registration
-
+from .disc import disc_coverage as disc_coverage
+from .disc import disc_coverage_patch as disc_coverage_patch
+from .geometry import PhantomTransform as PhantomTransform
 from .layout import (
     Layout as Layout,
-    Target as Target,
+)
+from .layout import (
     Marker as Marker,
-    load_layout as load_layout,
-    parse_layout as parse_layout,
+)
+from .layout import (
+    Target as Target,
+)
+from .layout import (
     default_layout_path as default_layout_path,
 )
-from .geometry import PhantomTransform as PhantomTransform
-from .disc import disc_coverage as disc_coverage, disc_coverage_patch as disc_coverage_patch
+from .layout import (
+    load_layout as load_layout,
+)
+from .layout import (
+    parse_layout as parse_layout,
+)
 from .registration import (
     Placement as Placement,
+)
+from .registration import (
     RegistrationError as RegistrationError,
-    register as register,
+)
+from .registration import (
     fit_similarity as fit_similarity,
+)
+from .registration import (
+    register as register,
 )
 
 __all__ = [

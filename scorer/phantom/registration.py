@@ -58,8 +58,8 @@ import numpy as np
 from scipy import ndimage as ndi
 
 from scorer.errors import LimenError
-from scorer.phantom.geometry import PhantomTransform
 from scorer.images.image import Image
+from scorer.phantom.geometry import PhantomTransform
 from scorer.phantom.layout import Layout
 from scorer.phantom.line_defects import RegistrationLine, find_registration_lines, repair_lines
 

@@ -32,7 +32,7 @@ Each alert says which way the threshold moved: ``worse`` (higher threshold contr
 
 from __future__ import annotations
 
-from dataclasses import dataclass, asdict
+from dataclasses import asdict, dataclass
 
 import numpy as np
 import pandas as pd

@@ -9,6 +9,7 @@ from __future__ import annotations
 from pathlib import Path
 
 from sqlalchemy import create_engine, event
+
 from scorer.databases import NIGHTLY, check_url, display_url, short_error
 from scorer.errors import LimenError
 

@@ -19,9 +19,9 @@ from pathlib import Path
 
 from scorer.errors import LimenError
 from scorer.files import atomic_write_text
-from scorer.workflow.headers import read_acquisition_extras, read_image_metadata
 from scorer.qc.config import NightlyConfig
 from scorer.qc.faults import fault_point
+from scorer.workflow.headers import read_acquisition_extras, read_image_metadata
 
 REASON_SUFFIX = ".reason.txt"
 

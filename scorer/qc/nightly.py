@@ -13,14 +13,14 @@ from dataclasses import dataclass, field
 from pathlib import Path
 
 from scorer.errors import LimenError
-from scorer.workflow.inputs import image_content_hash
+from scorer.qc.claims import DEFAULT_LEASE_S
 from scorer.qc.config import NightlyConfig, default_config
+from scorer.qc.engine import default_db_url, display_url
 from scorer.qc.faults import fault_point
 from scorer.qc.inbox import InboxImage, Skipped, check_inbox, examine, quarantine_file, scan_entries
 from scorer.qc.scale import SessionJob, make_runner
-from scorer.qc.claims import DEFAULT_LEASE_S
-from scorer.qc.engine import default_db_url, display_url
 from scorer.qc.store import Store, open_store
+from scorer.workflow.inputs import image_content_hash
 
 
 @dataclass

@@ -13,8 +13,8 @@ from pathlib import Path
 
 import numpy as np
 
-from scorer.files import atomic_write_text
 from scorer.detector.simulator import detector_model, dicom_tags, simulate
+from scorer.files import atomic_write_text
 from scorer.images.conversion import save_conversion
 from scorer.images.writers import write_dicom
 

@@ -45,8 +45,8 @@ from scorer.qc.engine import display_url, make_engine
 from scorer.qc.intake import IntakeOps
 from scorer.qc.missing import MissingOps
 from scorer.qc.outbox import OutboxOps
-from scorer.qc.releases import ReleaseOps
 from scorer.qc.queries import QueryOps
+from scorer.qc.releases import ReleaseOps
 from scorer.qc.results import ResultOps
 from scorer.qc.schema import ensure_schema
 from scorer.qc.tables import MetaRow

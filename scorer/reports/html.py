@@ -95,9 +95,10 @@ def table_html(
 
 def provenance() -> dict:
     """Versions and time, recorded in every report so a result can be reproduced."""
-    import numpy, scipy  # noqa: E401
-    from scorer import __version__
+    import numpy  # noqa: E401
+    import scipy
 
+    from scorer import __version__
     from scorer.invocation import current_command
 
     out = {

@@ -12,9 +12,9 @@ matplotlib.use("Agg")
 import matplotlib.pyplot as plt  # noqa: E402
 import numpy as np  # noqa: E402
 
+import scorer.observer.flags as flags  # noqa: E402
 from scorer.errors import LimenError  # noqa: E402
 from scorer.files import atomic_write_text  # noqa: E402
-import scorer.observer.flags as flags  # noqa: E402
 from scorer.observer.checks import CONTRAST_SCALE  # noqa: E402
 from scorer.observer.npw import METHOD_TEXT  # noqa: E402
 from scorer.observer.psychometric import fit_psychometric  # noqa: E402

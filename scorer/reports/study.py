@@ -15,9 +15,10 @@ import pandas as pd
 
 from scorer.errors import LimenError  # noqa: E402
 from scorer.files import atomic_write_text  # noqa: E402
+from scorer.observer.flags import capped_percent, threshold_flags
+from scorer.observer.flags import legend as flag_legend
+from scorer.observer.flags import text as flag_text
 from scorer.observer.mafc import criterion_text
-from scorer.observer.flags import capped_percent, legend as flag_legend, text as flag_text, threshold_flags
-from scorer.study.estimability import not_estimable_text  # noqa: E402
 from scorer.reports.html import (
     READABLE,
     display_records,
@@ -28,6 +29,7 @@ from scorer.reports.html import (
     table_html,
     write_json,
 )
+from scorer.study.estimability import not_estimable_text  # noqa: E402
 
 
 def _plt():

@@ -48,7 +48,8 @@ import numpy as np
 import pandas as pd
 
 from scorer.errors import LimenError
-from scorer.observer.flags import text as flag_text, threshold_flags
+from scorer.observer.flags import text as flag_text
+from scorer.observer.flags import threshold_flags
 from scorer.observer.mafc import Detectability, criterion_for, criterion_json
 from scorer.resources import check_limit
 from scorer.study.alternatives import criterion_at, m_alternatives_of, m_at

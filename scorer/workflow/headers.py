@@ -10,9 +10,8 @@ from __future__ import annotations
 import warnings
 from pathlib import Path
 
-from scorer.images.image import ImageMetadata
 from scorer.images.dicom_tags import fill_dicom_metadata
-from scorer.images.image import LimenWarning
+from scorer.images.image import ImageMetadata, LimenWarning
 from scorer.images.loading import load_image
 
 _PIXEL_TAGS = (0x7FE00010, 0x7FE00008, 0x7FE00009)  # Pixel Data, Float / Double Float Pixel Data

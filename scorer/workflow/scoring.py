@@ -9,8 +9,7 @@ from pathlib import Path
 
 from scorer.errors import LimenError
 from scorer.images.conversion import ConversionFunction
-from scorer.images.image import Image
-from scorer.images.image import LimenWarning
+from scorer.images.image import Image, LimenWarning
 from scorer.images.loading import load_image
 from scorer.observer.scoring import ScoreResult, score_images
 

@@ -8,9 +8,8 @@ Create Date: 2026-12-05 15:04:52.254962
 
 from typing import Sequence, Union
 
-from alembic import op
 import sqlalchemy as sa
-
+from alembic import op
 
 # revision identifiers, used by Alembic.
 revision: str = "nightly_0002"
