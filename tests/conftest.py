@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import os
+import re
 import uuid
 
 import pytest
@@ -33,3 +34,33 @@ def postgres_url():
     with admin.connect() as conn:
         conn.exec_driver_sql(f'DROP DATABASE IF EXISTS "{name}" WITH (FORCE)')
     admin.dispose()
+
+
+_OWN_CODE = re.compile(r"\b(scorer|webapp)(\.\w+)*\b")
+
+
+@pytest.hookimpl(hookwrapper=True)
+def pytest_runtest_makereport(item, call):
+    """A skip caused by the project's own code (an import of ``scorer``/``webapp`` that failed, or a skip reason that
+    names them) is a failure: a broken module must never turn its tests into silent skips (issue 22).  Skips for
+    missing outside components (PostgreSQL server, Chromium, an optional extra) stay skips."""
+    outcome = yield
+    rep = outcome.get_result()
+    if not rep.skipped or getattr(rep, "wasxfail", None) is not None:
+        return
+    reason = str(rep.longrepr[2] if isinstance(rep.longrepr, tuple) else rep.longrepr)
+    if "could not import" in reason and _OWN_CODE.search(reason):
+        rep.outcome = "failed"
+        rep.longrepr = f"skip of the project's own code turned into a failure: {reason}"
+
+
+@pytest.hookimpl(hookwrapper=True)
+def pytest_make_collect_report(collector):
+    """The same rule for a whole test module skipped at import (a module-level ``importorskip``)."""
+    outcome = yield
+    rep = outcome.get_result()
+    if rep.skipped:
+        reason = str(rep.longrepr[2] if isinstance(rep.longrepr, tuple) else rep.longrepr)
+        if "could not import" in reason and _OWN_CODE.search(reason):
+            rep.outcome = "failed"
+            rep.longrepr = f"skip of the project's own code turned into a failure: {reason}"
