@@ -271,14 +271,7 @@ class DoseSeriesResult:
             "method": self.method,
             "groups": [g.to_dict() for g in self.groups],
             "fits": self.fits,
-            "limits": None
-            if self.limits is None
-            else {
-                "name": self.limits.name,
-                "observer": self.limits.observer,
-                "source": self.limits.source,
-                "path": self.limits.path,
-            },
+            "limits": None if self.limits is None else self.limits.to_dict(),
             "human_factor": None if self.human_factor is None else self.human_factor.value,
             "human_factor_ci": None
             if self.human_factor is None or not self.human_factor.has_ci

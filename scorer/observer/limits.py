@@ -70,6 +70,10 @@ class Limits:
             return None
         return float(np.exp(np.interp(lx, x, y)))
 
+    def to_dict(self) -> dict[str, str]:
+        """What a result's JSON says about the limits it was judged against (name, observer, source, path)."""
+        return {"name": self.name, "observer": self.observer, "source": self.source, "path": self.path}
+
     def is_interpolated(self, diameter_mm: float) -> bool:
         """True where a limit exists only by interpolation between the file's diameters."""
         return self.acceptable_at(diameter_mm) is not None and not any(

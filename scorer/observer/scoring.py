@@ -110,14 +110,7 @@ class ScoreResult:
             "verdicts": [v.to_dict() for v in self.verdicts] if self.verdicts is not None else [],
             "overall_verdict": self.overall_verdict,
             "verdict_method": self.verdict_method if self.verdicts is not None else None,
-            "limits": None
-            if self.limits is None
-            else {
-                "name": self.limits.name,
-                "observer": self.limits.observer,
-                "source": self.limits.source,
-                "path": self.limits.path,
-            },
+            "limits": None if self.limits is None else self.limits.to_dict(),
             "human_factor": self.human_factor,
             "human_factor_ci": None if self.human_factor_ci is None else list(self.human_factor_ci),
             "settings": self.settings,
