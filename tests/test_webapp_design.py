@@ -371,7 +371,7 @@ def test_the_demo_study_read_by_the_simulated_readers_is_estimable_at_every_diam
     """`limen serve --demo`'s study, read to the end by the built-in simulated readers (scorer.study.reader_model,
     through the same placement code as the reading API), gives an estimable pooled threshold with a finite CI at
     every diameter and detector it asks for."""
-    from webapp import services
+    from webapp import study_analysis
     from webapp.demo import DEMO_DIAMETERS_MM, create_demo_study, read_as_simulated_readers
     from webapp.models import Study
     from webapp.security import db
@@ -387,7 +387,7 @@ def test_the_demo_study_read_by_the_simulated_readers_is_estimable_at_every_diam
     with app.app_context():
         st = db().get(Study, sid)
         plan = json.loads(st.plan_json)
-        run = services.run_analysis(db(), st, n_boot=200, seed=1)
+        run = study_analysis.run_analysis(db(), st, n_boot=200, seed=1)
         a = json.loads(run.analysis_json)
     n_scored = len([r for r in rows if not r["practice"]])
     assert n_scored == 5 * plan["total"], (n_scored, plan["total"])

@@ -127,20 +127,20 @@ def test_a_failing_job_stores_its_one_line_error_and_leaves_the_study_as_it_was(
 
 
 def test_a_second_start_while_the_job_runs_returns_the_same_job(tmp_path, monkeypatch):
-    from webapp import services
+    from webapp import opening
     from webapp.models import Study
     from webapp.security import db
 
     app, sid = _draft_app(tmp_path)
     release, entered = threading.Event(), threading.Event()
-    real_open = services.open_study
+    real_open = opening.open_study
 
     def held_open(*args, **kwargs):  # the real opening, held until both POSTs have arrived
         entered.set()
         assert release.wait(60)
         return real_open(*args, **kwargs)
 
-    monkeypatch.setattr(services, "open_study", held_open)
+    monkeypatch.setattr(opening, "open_study", held_open)
     c, tok = _coordinator(app)
     c2, tok2 = _coordinator(app)  # a second tab or a second coordinator
     r1 = c.post(f"/coordinator/studies/{sid}/open", data={"csrf_token": tok})

@@ -20,7 +20,7 @@ def _uid(app, name):
 
 def _fail_check_once(c, sid, tok):
     """Answer the display check with a site that is not the faint disc's."""
-    from webapp.services import CHECK_SITES, CHECK_SIZE
+    from webapp.display_check import CHECK_SITES, CHECK_SIZE
 
     c.get(f"/reading/studies/{sid}/check")
     px = np.frombuffer(c.get(f"/reading/api/studies/{sid}/check/pattern").data, "<u2").reshape(CHECK_SIZE, CHECK_SIZE)

@@ -201,7 +201,7 @@ def test_display_check_needs_the_right_site_and_records_the_screen(tmp_path):
         assert rs.check_passed and rs.check_attempts == 2 and rs.viewing_distance_mm == 550
         assert rs.screen_width == 1920 and rs.device_pixel_ratio == 1
     # the pattern: a disc 3 of 255 grey levels above a dark field at one of the four sites
-    from webapp.services import CHECK_SITES, display_check_pattern
+    from webapp.display_check import CHECK_SITES, display_check_pattern
 
     px = np.frombuffer(display_check_pattern(2, 7), "<u2").reshape(192, 192) / 257
     levels = [px[r, c] for r, c in CHECK_SITES]
@@ -393,7 +393,7 @@ def test_an_image_in_two_studies_is_shown_on_each_studys_own_scale(tmp_path):
     µGy per unit reproduce scorer's load_image to within one 16-bit step (a file shared by image hash alone
     was 2.3 % off)."""
     from scorer.images import load_conversion, load_image
-    from webapp import services
+    from webapp import opening, pixels
     from webapp.demo import create_demo_study
     from webapp.models import Region, Study, StudyImage
     from webapp.security import db
@@ -429,7 +429,7 @@ def test_an_image_in_two_studies_is_shown_on_each_studys_own_scale(tmp_path):
         )
         db().flush()
         db().refresh(sb)
-        services.open_study(db(), sb, store)
+        opening.open_study(db(), sb, store)
         sb.status = "open"
         db().commit()
         shared = {i.sha256 for i in sa.images} & {i.sha256 for i in sb.images}
@@ -440,7 +440,7 @@ def test_an_image_in_two_studies_is_shown_on_each_studys_own_scale(tmp_path):
                     continue
                 reg = db().query(Region).filter(Region.image_id == im.id).first()
                 n = st.region_rows
-                data = np.frombuffer(services.region_bytes(store, im.sha256, st.id, reg.row0, reg.col0, n, n), "<u2")
+                data = np.frombuffer(pixels.region_bytes(store, im.sha256, st.id, reg.row0, reg.col0, n, n), "<u2")
                 ref = load_image(store / im.stored_name, conversion=load_conversion(im.conversion_file)).pixels
                 crop = ref[reg.row0 : reg.row0 + n, reg.col0 : reg.col0 + n].ravel()
                 assert np.max(np.abs(data * st.ugy_per_unit - crop)) <= 0.5 * st.ugy_per_unit + 1e-9

@@ -87,7 +87,7 @@ def login(client, username, password=None):
 
 def pass_display_check(client, study_id, token):
     """Find the faint disc of the display check as a reader would: the brightest of the four sites."""
-    from webapp.services import CHECK_SITES, CHECK_SIZE
+    from webapp.display_check import CHECK_SITES, CHECK_SIZE
 
     assert client.get(f"/reading/studies/{study_id}/check").status_code == 200
     px = np.frombuffer(client.get(f"/reading/api/studies/{study_id}/check/pattern").data, "<u2")

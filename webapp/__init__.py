@@ -198,7 +198,7 @@ def create_app(config: dict | None = None) -> Flask:
 
         new = g.pop("limen_new_files", None)
         if new and resp.status_code >= 400:
-            from webapp.services import discard_unreferenced
+            from webapp.content_store import discard_unreferenced
 
             s = session_factory()
             s.rollback()

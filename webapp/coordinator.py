@@ -25,7 +25,7 @@ from flask import (
 from sqlalchemy import select
 
 from scorer.errors import LimenError
-from webapp import services, study_edits
+from webapp import content_store, export, opening, study_edits, upload_checks
 from webapp.models import AuditEntry, Enrolment, Study, StudyImage, User, utcnow
 from webapp.security import audit, db, role_required, study_or_404, upload
 
@@ -54,16 +54,16 @@ def _add_image(
 ) -> dict | None:
     """Store one image file under its hash, check it reads as an image, add it to the study (once: an image the
     study already has is returned with ``skipped``)."""
-    label = services.safe_label(name)
-    suffix = services.check_suffix(name, services.IMAGE_SUFFIXES, "image file")
+    label = content_store.safe_label(name)
+    suffix = content_store.check_suffix(name, content_store.IMAGE_SUFFIXES, "image file")
     store = Path(current_app.config["STORE_DIR"])
-    stored = services.store_file(
+    stored = content_store.store_file(
         stream,
         suffix,
         store,
         current_app.config["MAX_IMAGE_BYTES"],
         label,
-        check=lambda p: services.validate_image_file(p, label, spacing, conversion),
+        check=lambda p: upload_checks.validate_image_file(p, label, spacing, conversion),
     )
     digest, path = stored.sha256, stored.path
     if digest in known:
@@ -129,7 +129,7 @@ def audit_log():
 @upload
 @coordinator_only
 def new_study():
-    layouts = services.bundled_layouts()
+    layouts = content_store.bundled_layouts()
     if request.method == "GET":
         return render_template("coordinator/new_study.html", layouts=layouts, readers=_readers(), form={})
     f = request.form
@@ -140,15 +140,15 @@ def new_study():
         upload = request.files.get("layout_file")
         store = Path(current_app.config["STORE_DIR"])
         if upload and upload.filename:
-            label = services.safe_label(upload.filename)
-            suffix = services.check_suffix(upload.filename, services.LAYOUT_SUFFIXES, "layout file")
-            stored = services.store_file(
+            label = content_store.safe_label(upload.filename)
+            suffix = content_store.check_suffix(upload.filename, content_store.LAYOUT_SUFFIXES, "layout file")
+            stored = content_store.store_file(
                 upload.stream,
                 suffix,
                 store / "layouts",
                 1024 * 1024,
                 label,
-                check=lambda p: services.validate_layout_file(p, label),
+                check=lambda p: upload_checks.validate_layout_file(p, label),
             )
             path, layout = stored.path, stored.checked
         else:
@@ -156,7 +156,7 @@ def new_study():
             if key not in layouts:
                 raise LimenError("choose a bundled layout or upload one")
             path = Path(layouts[key])
-            layout = services.validate_layout_file(path, key)
+            layout = upload_checks.validate_layout_file(path, key)
         from webapp import design
 
         diameters = design.parse_diameters(f.get("diameters", ""), layout)
@@ -345,15 +345,15 @@ def add_images(study_id):
     conv_path, conversion = None, None
     conv = request.files.get("conversion_file")
     if conv and conv.filename:
-        label = services.safe_label(conv.filename)
-        suffix = services.check_suffix(conv.filename, services.LAYOUT_SUFFIXES, "conversion function file")
-        stored = services.store_file(
+        label = content_store.safe_label(conv.filename)
+        suffix = content_store.check_suffix(conv.filename, content_store.LAYOUT_SUFFIXES, "conversion function file")
+        stored = content_store.store_file(
             conv.stream,
             suffix,
             Path(current_app.config["STORE_DIR"]) / "conversions",
             1024 * 1024,
             label,
-            check=lambda p: services.validate_conversion_file(p, label),
+            check=lambda p: upload_checks.validate_conversion_file(p, label),
         )
         conversion, conv_path = stored.checked, str(stored.path)
     files = [fs for fs in request.files.getlist("images") if fs and fs.filename]
@@ -363,7 +363,7 @@ def add_images(study_id):
     practice = request.form.get("practice") == "on"
     added, skipped, refused = [], [], []
     for fs in files:  # each file accepted or refused on its own: one bad file does not cost the batch
-        label = services.safe_label(fs.filename)
+        label = content_store.safe_label(fs.filename)
         try:
             a = _add_image(st, fs.stream, fs.filename, detector, known, conv_path, conversion, spacing, practice)
         except LimenError as exc:
@@ -420,13 +420,13 @@ def import_folder(study_id):
     if conv:
         text = json.dumps(conv, sort_keys=True).encode()
         what = f"{folder.name}/results.json conversion"
-        stored = services.store_file(
+        stored = content_store.store_file(
             io.BytesIO(text),
             ".json",
             Path(current_app.config["STORE_DIR"]) / "conversions",
             1024 * 1024,
             "conversion",
-            check=lambda p: services.validate_conversion_file(p, what),
+            check=lambda p: upload_checks.validate_conversion_file(p, what),
         )
         conversion, conv_path = stored.checked, str(stored.path)
     known = {im.sha256 for im in st.images}
@@ -463,7 +463,7 @@ def _open_study_work(store_dir: Path):
         st = s.get(Study, job.study_id)
         if st is None or st.status != "draft":
             raise LimenError("the study is already open or closed")
-        notes = services.open_study(s, st, store_dir, progress=progress)
+        notes = opening.open_study(s, st, store_dir, progress=progress)
         st.status = "open"
         st.opened_at = utcnow()
         audit(
@@ -515,7 +515,7 @@ def _check_design(st: Study) -> dict:
 
     st.placement = st.placement or "psi"
     st.half_width_ln = st.half_width_ln or design.DEFAULT_HALF_WIDTH_LN
-    layout = load_layout(services.stored_file(st.layout_file, Path(current_app.config["STORE_DIR"])))
+    layout = load_layout(content_store.stored_file(st.layout_file, Path(current_app.config["STORE_DIR"])))
     return design.check_design(st, layout)
 
 
@@ -546,7 +546,7 @@ def _csv(text: str, name: str) -> FlaskResponse:
 @coordinator_only
 def export_responses(study_id):
     st = _study(study_id)
-    text = services.responses_csv(db(), st)
+    text = export.responses_csv(db(), st)
     audit("export_responses", st.id, rows=max(text.count("\n") - 1, 0))
     db().commit()
     stamp = _dt.date.today().isoformat()

@@ -32,7 +32,7 @@ from flask_login import current_user
 from sqlalchemy import func, select
 from sqlalchemy.exc import IntegrityError
 
-from webapp import placement, services
+from webapp import display_check, pixels, placement
 from webapp.models import Enrolment, ReadingSession, Region, Response, Study, StudyImage, Trial
 from webapp.security import db, role_required
 
@@ -121,7 +121,7 @@ def home():
 
 # --------------------------------------------------------------------------- display check
 def _new_check(rs: ReadingSession) -> None:
-    rs.check_site = secrets.randbelow(len(services.CHECK_SITES))
+    rs.check_site = secrets.randbelow(len(display_check.CHECK_SITES))
     rs.check_seed = secrets.randbelow(2**31)
 
 
@@ -153,7 +153,9 @@ def check(study_id):
         s.add(rs)
         s.commit()
         session[_session_key(study_id)] = rs.id
-    return render_template("reading/check.html", study=st, rs=rs, size=services.CHECK_SIZE, sites=services.CHECK_SITES)
+    return render_template(
+        "reading/check.html", study=st, rs=rs, size=display_check.CHECK_SIZE, sites=display_check.CHECK_SITES
+    )
 
 
 @bp.route("/api/studies/<int:study_id>/check/pattern")
@@ -164,11 +166,11 @@ def check_pattern(study_id):
     rs = db().get(ReadingSession, sid) if sid else None
     if rs is None or rs.reader_id != current_user.id:
         return jsonify(error="open the display check page first"), 409
-    body = services.display_check_pattern(rs.check_site, rs.check_seed)
+    body = display_check.display_check_pattern(rs.check_site, rs.check_seed)
     return FlaskResponse(
         body,
         mimetype="application/octet-stream",
-        headers={"X-Rows": str(services.CHECK_SIZE), "X-Cols": str(services.CHECK_SIZE)},
+        headers={"X-Rows": str(display_check.CHECK_SIZE), "X-Cols": str(display_check.CHECK_SIZE)},
     )
 
 
@@ -297,10 +299,10 @@ def region(public_id):
     store = current_app.config["STORE_DIR"]
     if row.tile_order:
         order = json.loads(row.tile_order)
-        body = services.tiles_bytes(store, row.sha256, row.study_id, json.loads(row.tiles_json), order, row.tile_px)
+        body = pixels.tiles_bytes(store, row.sha256, row.study_id, json.loads(row.tiles_json), order, row.tile_px)
         headers = {"X-Rows": str(row.tile_px), "X-Cols": str(row.tile_px), "X-Tiles": str(len(order))}
     else:
-        body = services.region_bytes(
+        body = pixels.region_bytes(
             store, row.sha256, row.study_id, row.row0, row.col0, row.region_rows, row.region_cols
         )
         headers = {"X-Rows": str(row.region_rows), "X-Cols": str(row.region_cols)}

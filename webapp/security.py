@@ -148,7 +148,7 @@ class _CappedSpool(tempfile.SpooledTemporaryFile):
 
 class LimenRequest(Request):
     def _get_file_stream(self, total_content_length, content_type, filename=None, content_length=None):
-        from webapp.services import safe_label
+        from webapp.content_store import safe_label
 
         return _CappedSpool(current_app.config["MAX_IMAGE_BYTES"], safe_label(filename))
 
