@@ -89,8 +89,7 @@ def test_a_backup_restored_into_a_fresh_instance_serves_the_same_study(tmp_path)
     assert reader2.get(next_after["region_url"]).data == region_before
     # the draft's uploaded layout and the open study's conversion functions are found in the new store
     from webapp import content_store
-    from webapp.models import Study, StudyImage
-    from webapp.security import db
+    from webapp.models import Study, StudyImage, db
 
     store = Path(restored.config["STORE_DIR"])
     with restored.app_context():

@@ -34,8 +34,7 @@ def test_each_reader_reads_practice_then_scored_trials_then_repeats(tmp_path):
     """Trials are placed as each reader goes: practice first, then the scored trials (each region at most once),
     then the repeats — second readings of the reader's own scored trials, each with a new tile order."""
     app, sid = demo_app(tmp_path, n_readers=3, n_practice=2, repeat_fraction=0.3)
-    from webapp.models import Study, Trial, User
-    from webapp.security import db
+    from webapp.models import Study, Trial, User, db
 
     for name in ("reader1", "reader2", "reader3"):
         c, tok = reader_client(app, sid, name)
@@ -63,8 +62,7 @@ def test_reader_pixels_are_the_linear_image_in_air_kerma(tmp_path):
     background transmits fully), and the crop equals scorer's own load_image to within one 16-bit step."""
     app, sid = demo_app(tmp_path)
     from scorer.images import load_conversion, load_image
-    from webapp.models import Region, Study, StudyImage, Trial
-    from webapp.security import db
+    from webapp.models import Region, Study, StudyImage, Trial, db
 
     c, tok = reader_client(app, sid)
     t = c.get(f"/reading/api/studies/{sid}/next").json
@@ -172,8 +170,7 @@ def test_feedback_after_the_response_when_the_coordinator_allows_it(tmp_path):
 
 def test_display_check_needs_the_right_site_and_records_the_screen(tmp_path):
     app, sid = demo_app(tmp_path)
-    from webapp.models import ReadingSession
-    from webapp.security import db
+    from webapp.models import ReadingSession, db
 
     c = app.test_client()
     tok = login(c, "reader1")
@@ -210,8 +207,7 @@ def test_display_check_needs_the_right_site_and_records_the_screen(tmp_path):
 
 def test_coordinator_builds_a_study_through_the_forms(tmp_path):
     app = accounts_app(tmp_path, ("coordinator", "reader1", "reader2", "reader3"))
-    from webapp.models import Region, Study, User
-    from webapp.security import db
+    from webapp.models import Region, Study, User, db
 
     with app.app_context():
         rids = [str(u.id) for u in db().query(User).filter(User.username.like("reader%"))]
@@ -342,8 +338,7 @@ def test_planning_page_estimates_power_from_a_stated_spread_and_refuses_oversize
 
 def test_import_a_folder_scored_by_limen_score(tmp_path):
     from scorer.cli import main
-    from webapp.models import StudyImage
-    from webapp.security import db
+    from webapp.models import StudyImage, db
 
     root = tmp_path / "root"
     files = simulated_study_files(root)
@@ -395,8 +390,7 @@ def test_an_image_in_two_studies_is_shown_on_each_studys_own_scale(tmp_path):
     from scorer.images import load_conversion, load_image
     from webapp import opening, pixels
     from webapp.demo import create_demo_study
-    from webapp.models import Region, Study, StudyImage
-    from webapp.security import db
+    from webapp.models import Region, Study, StudyImage, db
 
     app = make_app(tmp_path)
     kw = dict(

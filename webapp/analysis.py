@@ -8,8 +8,8 @@ from flask import Response as FlaskResponse
 from sqlalchemy import func, select
 
 from webapp import study_analysis
-from webapp.models import AnalysisRun, Response, Study, Trial
-from webapp.security import REPORT_CSP, audit, db, role_required, study_or_404
+from webapp.models import AnalysisRun, Response, Study, Trial, db
+from webapp.security import REPORT_CSP, audit, role_required, study_or_404
 
 bp = Blueprint("analysis", __name__, url_prefix="/analysis")
 coordinator_only = role_required("coordinator")

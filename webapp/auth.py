@@ -15,7 +15,8 @@ from flask_login import current_user, login_required, login_user, logout_user
 
 from webapp import throttle
 from webapp.accounts import end_sessions, find_user, name_key, shown_name
-from webapp.security import audit, db, public, verify_password
+from webapp.models import db
+from webapp.security import audit, public, verify_password
 
 bp = Blueprint("auth", __name__)
 

@@ -26,8 +26,8 @@ from sqlalchemy import select
 
 from scorer.errors import LimenError
 from webapp import content_store, export, opening, study_edits, upload_checks
-from webapp.models import AuditEntry, Enrolment, Study, StudyImage, User, utcnow
-from webapp.security import audit, db, role_required, study_or_404, upload
+from webapp.models import AuditEntry, Enrolment, Study, StudyImage, User, db, utcnow
+from webapp.security import audit, role_required, study_or_404, upload
 
 bp = Blueprint("coordinator", __name__, url_prefix="/coordinator")
 coordinator_only = role_required("coordinator")

@@ -80,8 +80,7 @@ def create_demo_study(
     from scorer.workflow import load_layout, write_simulated
     from webapp import opening
     from webapp.content_store import store_bytes
-    from webapp.models import Enrolment, Study, StudyImage, User
-    from webapp.security import db
+    from webapp.models import Enrolment, Study, StudyImage, User, db
 
     passwords = dict(passwords or {})
     with app.app_context():
@@ -180,8 +179,7 @@ def read_as_simulated_readers(app, study_id: int, *, seed: int = 0, population=N
 
     from scorer.study.reader_model import ReaderPopulation, draw_readers, response_calibration, simulated_choice
     from webapp import placement
-    from webapp.models import Enrolment, Study, StudyImage, User
-    from webapp.security import db
+    from webapp.models import Enrolment, Study, StudyImage, User, db
 
     rng = np.random.default_rng(seed)
     with app.app_context():

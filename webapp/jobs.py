@@ -157,8 +157,7 @@ class JobRunner:
 
     # ------------------------------------------------------------------ running
     def _run(self, job_id: int, work: Work) -> None:
-        from webapp.models import Job
-        from webapp.security import db
+        from webapp.models import Job, db
 
         try:
             with self.app.app_context():

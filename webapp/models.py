@@ -35,6 +35,7 @@ from sqlalchemy import (
 from sqlalchemy.orm import (
     DeclarativeBase,
     Mapped,
+    Session,
     mapped_column,
     relationship,
     scoped_session,
@@ -419,7 +420,14 @@ def make_engine(url: str):
     return engine
 
 
-def make_session_factory(engine):
+def db() -> scoped_session[Session]:
+    """The app's database session (``create_app`` stores the session factory as ``extensions["limen_db"]``)."""
+    from flask import current_app
+
+    return current_app.extensions["limen_db"]
+
+
+def make_session_factory(engine) -> scoped_session[Session]:
     return scoped_session(sessionmaker(bind=engine, expire_on_commit=False, future=True))
 
 

@@ -33,8 +33,8 @@ from sqlalchemy import func, select
 from sqlalchemy.exc import IntegrityError
 
 from webapp import display_check, pixels, placement
-from webapp.models import Enrolment, ReadingSession, Region, Response, Study, StudyImage, Trial
-from webapp.security import db, role_required
+from webapp.models import Enrolment, ReadingSession, Region, Response, Study, StudyImage, Trial, db
+from webapp.security import role_required
 
 bp = Blueprint("reading", __name__, url_prefix="/reading")
 reader_only = role_required("reader")

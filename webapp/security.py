@@ -31,6 +31,7 @@ from werkzeug.exceptions import RequestEntityTooLarge
 from werkzeug.security import check_password_hash, generate_password_hash
 
 from scorer.errors import LimenError
+from webapp.models import db  # scorer/commands/users.py still imports it from here
 
 CSP = (
     "default-src 'self'; script-src 'self'; style-src 'self'; img-src 'self' data:; connect-src 'self'; "
@@ -40,11 +41,6 @@ CSP = (
 REPORT_CSP = "default-src 'none'; style-src 'unsafe-inline'; img-src data:; frame-ancestors 'self'"
 
 csrf = CSRFProtect()
-
-
-def db():
-    """The request's database session."""
-    return current_app.extensions["limen_db"]
 
 
 def study_or_404(study_id: int):
