@@ -192,6 +192,10 @@ def test_display_check_needs_the_right_site_and_records_the_screen(tmp_path):
         ).status_code
         == 400
     )
+    # a body that is JSON but not an object, or a site that is not a number, is refused (a JSON array was a 500)
+    for body in ([right], 7, {"site": [right], "viewing_distance_mm": 600}, {"site": None, "viewing_distance_mm": 600}):
+        r = c.post(f"/reading/api/studies/{sid}/check", json=body, headers={"X-CSRFToken": tok})
+        assert r.status_code == 400 and r.json["error"] == "site must be a whole number", body
     pass_display_check(c, sid, tok)
     with app.app_context():
         rs = db().query(ReadingSession).one()

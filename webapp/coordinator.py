@@ -3,11 +3,17 @@
 
 from __future__ import annotations
 
+from typing import TYPE_CHECKING
+
+if TYPE_CHECKING:
+    from scorer.phantom.layout import Layout
+
 import datetime as _dt
 import io
 import json
 import secrets
 from pathlib import Path
+from typing import cast
 
 from flask import (
     Blueprint,
@@ -22,11 +28,10 @@ from flask import (
 from flask import (
     Response as FlaskResponse,
 )
-from sqlalchemy import select
 
 from scorer.errors import LimenError
-from webapp import content_store, export, opening, study_edits, upload_checks
-from webapp.models import AuditEntry, Enrolment, Study, StudyImage, User, db, utcnow
+from webapp import content_store, export, opening, queries, study_edits, upload_checks
+from webapp.models import Enrolment, Study, StudyImage, User, db, utcnow
 from webapp.security import audit, role_required, study_or_404, upload
 
 bp = Blueprint("coordinator", __name__, url_prefix="/coordinator")
@@ -51,7 +56,7 @@ def _add_image(
     conversion=None,
     spacing=None,
     practice: bool = False,
-) -> dict | None:
+) -> dict:
     """Store one image file under its hash, check it reads as an image, add it to the study (once: an image the
     study already has is returned with ``skipped``)."""
     label = content_store.safe_label(name)
@@ -93,7 +98,7 @@ def _detector_label(form) -> str:
 
 
 def _readers() -> list[User]:
-    return db().execute(select(User).where(User.role == "reader").order_by(User.username)).scalars().all()
+    return list(queries.reader_accounts(db()))
 
 
 def _num(form, key, kind, lo, hi, label, default=None):
@@ -113,14 +118,14 @@ def _num(form, key, kind, lo, hi, label, default=None):
 @bp.route("/")
 @coordinator_only
 def dashboard():
-    studies = db().execute(select(Study).order_by(Study.created_at.desc())).scalars().all()
+    studies = queries.studies_newest_first(db())
     return render_template("coordinator/dashboard.html", studies=studies, readers=_readers())
 
 
 @bp.route("/audit")
 @coordinator_only
 def audit_log():
-    entries = db().execute(select(AuditEntry).order_by(AuditEntry.at.desc()).limit(500)).scalars().all()
+    entries = queries.recent_audit_entries(db(), limit=500)
     return render_template("coordinator/audit.html", entries=entries)
 
 
@@ -150,7 +155,7 @@ def new_study():
                 label,
                 check=lambda p: upload_checks.validate_layout_file(p, label),
             )
-            path, layout = stored.path, stored.checked
+            path, layout = stored.path, cast("Layout", stored.checked)  # what validate_layout_file returned
         else:
             key = f.get("layout") or ""
             if key not in layouts:
@@ -245,7 +250,7 @@ def study_page(st: Study, status: int = 200, **extra):
     from webapp import progress
     from webapp.design import PLACEMENT_LABELS, plan_of
 
-    notes = json.loads(st_notes) if (st_notes := _notes_of(st)) else []
+    notes = json.loads(st_notes) if (st_notes := queries.opening_notes_json(db(), st.id)) else []
     rows = (
         progress.readers_progress(db(), st, progress.stalled_after(current_app.config)) if st.status != "draft" else []
     )
@@ -299,6 +304,8 @@ def reader(study_id, reader_id):
     if not rows:
         abort(404)
     user = db().get(User, reader_id)
+    if user is None:
+        abort(404)
     return render_template(
         "coordinator/reader.html",
         study=st,
@@ -306,22 +313,6 @@ def reader(study_id, reader_id):
         refused=progress.refused_actions(db(), st, user),
         stalled_minutes=progress.stalled_after(current_app.config).total_seconds() / 60,
     )
-
-
-def _notes_of(st: Study) -> str | None:
-    e = (
-        db()
-        .execute(
-            select(AuditEntry)
-            .where(AuditEntry.study_id == st.id, AuditEntry.action == "open_study")
-            .order_by(AuditEntry.id.desc())
-        )
-        .scalars()
-        .first()
-    )
-    if e is None:
-        return None
-    return json.dumps(json.loads(e.detail).get("notes", []))
 
 
 @bp.route("/studies/<int:study_id>/readers", methods=["POST"])
@@ -361,11 +352,13 @@ def add_images(study_id):
         raise LimenError("choose at least one image file (DICOM, TIFF, PNG or .npy)")
     known = {im.sha256 for im in st.images}
     practice = request.form.get("practice") == "on"
-    added, skipped, refused = [], [], []
+    added: list[dict] = []
+    skipped: list[dict] = []
+    refused: list[dict] = []
     for fs in files:  # each file accepted or refused on its own: one bad file does not cost the batch
         label = content_store.safe_label(fs.filename)
         try:
-            a = _add_image(st, fs.stream, fs.filename, detector, known, conv_path, conversion, spacing, practice)
+            a = _add_image(st, fs.stream, fs.filename or "", detector, known, conv_path, conversion, spacing, practice)
         except LimenError as exc:
             reason = str(exc)
             refused.append({"label": label, "reason": reason.removeprefix(f"{label}: ")})

@@ -17,6 +17,7 @@ from __future__ import annotations
 
 import datetime as _dt
 import json
+from typing import Any, TypeAlias
 
 from sqlalchemy import (
     Boolean,
@@ -394,7 +395,7 @@ def make_engine(url: str):
     from scorer.errors import LimenError
 
     u = check_url(url, WEB_APP, create=True)
-    kwargs = {"future": True}
+    kwargs: dict[str, Any] = {"future": True}
     sqlite = u.get_backend_name() == "sqlite"
     if sqlite:
         kwargs["connect_args"] = {"check_same_thread": False, "timeout": 30}
@@ -418,6 +419,10 @@ def make_engine(url: str):
             cur.close()
 
     return engine
+
+
+#: what the query functions take: a plain session (jobs, the command line) or the app's scoped one (requests)
+AnySession: TypeAlias = "Session | scoped_session[Session]"
 
 
 def db() -> scoped_session[Session]:

@@ -4,10 +4,16 @@ sizes and plans)."""
 
 from __future__ import annotations
 
+from typing import TYPE_CHECKING
+
+if TYPE_CHECKING:
+    from scorer.phantom.registration import Placement
+
 import io
 import json
 import warnings
 from pathlib import Path
+from typing import cast
 
 import numpy as np
 import pandas as pd
@@ -69,7 +75,12 @@ def open_study(session, study, store_dir: Path, progress=None) -> list[str]:
     for im in study.images:
         groups.setdefault((im.conversion_file, im.pixel_spacing_mm), []).append(im)
     notes: list[str] = []
-    model_frames, response_frames, sites_by_key, shape_by_image, by_code, placements = [], [], {}, {}, {}, {}
+    model_frames: list[pd.DataFrame] = []
+    response_frames: list[pd.DataFrame] = []
+    sites_by_key: dict[tuple[str, str], np.ndarray] = {}
+    shape_by_image: dict[str, tuple[int, int]] = {}
+    by_code: dict[str, tuple] = {}
+    placements: dict[str, Placement] = {}
     n_images, n_scored = len(study.images), 0
     targets = [t for t in layout.targets if float(t.diameter_mm) in diameters]
     for (conv_file, spacing), images in groups.items():
@@ -105,10 +116,13 @@ def open_study(session, study, store_dir: Path, progress=None) -> list[str]:
             out.append(fr)
         for score in res.images:
             im = name_to_image[Path(score.path).name]
-            placements[im.code] = score.placement
-            im.registration_json = json.dumps(score.placement.to_dict())
+            # ImageScore.placement is typed `object` in scorer (to keep observer below phantom's types); it is the
+            # Placement that score_files registered
+            pl = cast("Placement", score.placement)
+            placements[im.code] = pl
+            im.registration_json = json.dumps(pl.to_dict())
             for t in targets:
-                sites_by_key[(im.code, t.id)] = score.placement.transform.to_pixel(t.sites)
+                sites_by_key[(im.code, t.id)] = pl.transform.to_pixel(t.sites)
             by_code[im.code] = (im, conversion, spacing)
     half = design.tile_half_px(layout, [pl.transform for pl in placements.values()], diameters)
     # the display pixels: linear in air kerma (µGy with a conversion function), one 16-bit scale for the study
@@ -121,8 +135,8 @@ def open_study(session, study, store_dir: Path, progress=None) -> list[str]:
             img = load_image(store_dir / im.stored_name, conversion=conversion, pixel_spacing_mm=spacing)
         px = np.asarray(img.pixels, dtype=np.float64)
         arrays[code] = px
-        shape_by_image[code] = px.shape
         im.rows, im.cols = px.shape
+        shape_by_image[code] = (im.rows, im.cols)
         top = max(top, float(np.percentile(px, 99.99)))
     scale = 1.25 * top / U16_MAX if top > 0 else 1.0
     study.ugy_per_unit = scale

@@ -52,7 +52,7 @@ def reopen(study: Study, reason: str) -> None:
     audit("reopen_study", study.id, reason=reason, closed_at=closed_at, reopened_at=utcnow())
 
 
-def _store_paths(store_dir: Path, study: Study, images) -> list[Path]:
+def _store_paths(store_dir: Path, study: Study | None, images) -> list[Path]:
     """The store files a deleted study or image used (bundled layouts and files elsewhere are never touched)."""
     store = Path(store_dir).resolve()
     paths = [store / im.stored_name for im in images]

@@ -2,6 +2,11 @@
 
 from __future__ import annotations
 
+from typing import TYPE_CHECKING
+
+if TYPE_CHECKING:
+    from scorer.phantom.layout import Layout
+
 import warnings
 from pathlib import Path
 
@@ -29,7 +34,7 @@ def validate_image_file(path: Path, label: str, pixel_spacing_mm=None, conversio
     return _named(label, path, read)
 
 
-def validate_layout_file(path: Path, label: str):
+def validate_layout_file(path: Path, label: str) -> Layout:
     from scorer.workflow import load_layout
 
     return _named(label, path, lambda: load_layout(path))
