@@ -120,8 +120,7 @@ def test_previous_release_web_app_database_is_upgraded_with_every_row(tmp_path):
 def test_previous_release_web_app_reads_in_the_app(tmp_path):
     """The upgraded study is served: the coordinator's study page lists it and its responses export."""
     from webapp import create_app
-    from webapp.models import Response, Study
-    from webapp.security import db
+    from webapp.models import Response, Study, db
 
     path = _copy("previous-webapp.sqlite", tmp_path)
     app = create_app({"INSTANCE_PATH": str(tmp_path / "inst"), "DATABASE_URL": f"sqlite:///{path}"})

@@ -21,8 +21,7 @@ def _sign_in(app, name, password) -> int:
 
 
 def _audit(app, action):
-    from webapp.models import AuditEntry
-    from webapp.security import db
+    from webapp.models import AuditEntry, db
 
     with app.app_context():
         return [
@@ -32,8 +31,7 @@ def _audit(app, action):
 
 
 def _uid(app, name):
-    from webapp.models import User
-    from webapp.security import db
+    from webapp.models import User, db
 
     with app.app_context():
         return db().query(User).filter_by(username=name).one().id
@@ -155,8 +153,7 @@ def test_readers_and_forged_requests_change_no_account(tmp_path):
     login(c, "coordinator")
     for url, form in posts:
         assert c.post(url, data=form).status_code == 400, url
-    from webapp.models import AuditEntry
-    from webapp.security import db
+    from webapp.models import AuditEntry, db
 
     with app.app_context():
         actions = {e.action for e in db().query(AuditEntry)}

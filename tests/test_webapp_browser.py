@@ -306,8 +306,7 @@ def test_practice_then_scored_trials_blinded_in_chromium(demo_server):
     from scipy import stats
     from webapp_helpers import login, read_all, reader_client
 
-    from webapp.models import Region, StudyImage, Trial
-    from webapp.security import db
+    from webapp.models import Region, StudyImage, Trial, db
 
     base, app, sid = demo_server
     ARTIFACTS.mkdir(parents=True, exist_ok=True)
@@ -420,8 +419,7 @@ def test_the_reading_page_reconnects_and_never_loses_or_doubles_an_answer(tmp_pa
     from playwright.sync_api import sync_playwright
     from webapp_helpers import demo_app
 
-    from webapp.models import Response, Trial
-    from webapp.security import db
+    from webapp.models import Response, Trial, db
 
     app, sid = demo_app(tmp_path, n_practice=0, SECRET_KEY=None)  # the instance's own key, as `limen serve` reads it
     with socket.socket() as so:

@@ -41,8 +41,7 @@ def _store_names(app) -> set[str]:
 
 
 def _audit(app, action):
-    from webapp.models import AuditEntry
-    from webapp.security import db
+    from webapp.models import AuditEntry, db
 
     with app.app_context():
         return [
@@ -113,8 +112,7 @@ def test_an_opened_study_cannot_be_deleted_nor_lose_an_image(tmp_path):
     app, sid = demo_app(tmp_path)
     c = app.test_client()
     tok = login(c, "coordinator")
-    from webapp.models import StudyImage
-    from webapp.security import db
+    from webapp.models import StudyImage, db
 
     with app.app_context():
         image_id = db().query(StudyImage).filter_by(study_id=sid).first().id
@@ -134,8 +132,7 @@ def test_remove_an_image_from_a_draft_after_confirmation(tmp_path):
     tok = login(c, "coordinator")
     sid = _draft(c, tok)
     assert _upload(c, tok, sid, _dicom(tmp_path / "a.dcm", 1), _dicom(tmp_path / "b.dcm", 2)).status_code == 302
-    from webapp.models import StudyImage
-    from webapp.security import db
+    from webapp.models import StudyImage, db
 
     with app.app_context():
         ims = {im.label: (im.id, im.stored_name) for im in db().query(StudyImage).filter_by(study_id=sid)}
@@ -166,8 +163,7 @@ def test_readers_cannot_undo(tmp_path):
     assert c.post(f"/coordinator/studies/{sid}/close", data={"csrf_token": tok}).status_code == 302
     reader = app.test_client()
     rtok = login(reader, "reader1")
-    from webapp.models import Study, StudyImage
-    from webapp.security import db
+    from webapp.models import Study, StudyImage, db
 
     with app.app_context():
         image_id = db().query(StudyImage).filter_by(study_id=sid).first().id

@@ -88,14 +88,13 @@ def test_a_backup_restored_into_a_fresh_instance_serves_the_same_study(tmp_path)
     assert next_after == next_before
     assert reader2.get(next_after["region_url"]).data == region_before
     # the draft's uploaded layout and the open study's conversion functions are found in the new store
-    from webapp import services
-    from webapp.models import Study, StudyImage
-    from webapp.security import db
+    from webapp import content_store
+    from webapp.models import Study, StudyImage, db
 
     store = Path(restored.config["STORE_DIR"])
     with restored.app_context():
-        layout = services.stored_file(db().get(Study, draft_id).layout_file, store)
+        layout = content_store.stored_file(db().get(Study, draft_id).layout_file, store)
         assert store in layout.parents and layout.is_file()
         for im in db().query(StudyImage).filter_by(study_id=sid):
-            conv = services.stored_file(im.conversion_file, store)
+            conv = content_store.stored_file(im.conversion_file, store)
             assert store in conv.parents and conv.is_file()

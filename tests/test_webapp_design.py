@@ -43,8 +43,7 @@ def _export(app, sid) -> pd.DataFrame:
 
 
 def _trial_rows(app, sid):
-    from webapp.models import Region, StudyImage, Trial
-    from webapp.security import db
+    from webapp.models import Region, StudyImage, Trial, db
 
     with app.app_context():
         q = (
@@ -86,8 +85,7 @@ def test_practice_comes_from_its_own_images_and_is_never_scored(tmp_path):
     assert scored and not any(r["image_practice"] for r in scored)
     assert not {r["region_id"] for r in practice} & {r["region_id"] for r in scored}
     # practice shows each diameter's most visible target first (the largest contrast of the practice pool)
-    from webapp.models import StudyImage
-    from webapp.security import db
+    from webapp.models import StudyImage, db
 
     with app.app_context():
         codes = {im.code for im in db().query(StudyImage).filter_by(study_id=sid, practice=True)}
@@ -180,8 +178,7 @@ def test_nothing_the_reader_receives_differs_by_detector_but_pixels(read_study):
     # one window/level for the whole study: every trial starts from the same numbers
     assert len({(t["window"], t["level"]) for t, *_ in seen.values()}) == 1
     # the pages a reader opens name no detector either
-    from webapp.models import StudyImage
-    from webapp.security import db
+    from webapp.models import StudyImage, db
 
     with app.app_context():
         labels = {im.detector for im in db().query(StudyImage).filter_by(study_id=sid)}
@@ -194,8 +191,7 @@ def test_nothing_the_reader_receives_differs_by_detector_but_pixels(read_study):
 # --------------------------------------------------------------------------- adaptive placement
 def test_adaptive_states_are_stored_and_survive_a_restart(tmp_path):
     app, sid = demo_app(tmp_path, n_practice=0, repeat_fraction=0)
-    from webapp.models import AdaptiveCell, Response, Trial, User
-    from webapp.security import db
+    from webapp.models import AdaptiveCell, Response, Trial, User, db
 
     c, tok = reader_client(app, sid)
     read_all(c, sid, tok, chooser=darkest_tile, limit=12)
@@ -235,8 +231,7 @@ def test_adaptive_states_are_stored_and_survive_a_restart(tmp_path):
 
 def test_a_response_sent_twice_teaches_the_state_once(tmp_path):
     app, sid = demo_app(tmp_path, n_practice=0)
-    from webapp.models import AdaptiveCell
-    from webapp.security import db
+    from webapp.models import AdaptiveCell, db
 
     c, tok = reader_client(app, sid)
     t = c.get(f"/reading/api/studies/{sid}/next").json
@@ -262,8 +257,7 @@ def test_a_trial_of_an_earlier_release_is_still_shown_as_one_region(tmp_path):
     """Studies opened before tiles keep their schedule: a trial without a tile order shows the whole region with
     its sites and takes a site, as then."""
     app, sid = demo_app(tmp_path, n_practice=0)
-    from webapp.models import Study, Trial
-    from webapp.security import db
+    from webapp.models import Study, Trial, db
 
     c, tok = reader_client(app, sid)
     t = c.get(f"/reading/api/studies/{sid}/next").json
@@ -285,8 +279,7 @@ def test_a_trial_of_an_earlier_release_is_still_shown_as_one_region(tmp_path):
 
 def test_the_app_refuses_to_open_a_design_that_cannot_reach_its_interval_and_says_what_to_change(tmp_path):
     app = accounts_app(tmp_path, ("coordinator", "reader1", "reader2", "reader3"))
-    from webapp.models import Study, User
-    from webapp.security import db
+    from webapp.models import Study, User, db
 
     with app.app_context():
         ids = {u.username: u.id for u in db().query(User).all()}
@@ -371,10 +364,9 @@ def test_the_demo_study_read_by_the_simulated_readers_is_estimable_at_every_diam
     """`limen serve --demo`'s study, read to the end by the built-in simulated readers (scorer.study.reader_model,
     through the same placement code as the reading API), gives an estimable pooled threshold with a finite CI at
     every diameter and detector it asks for."""
-    from webapp import services
+    from webapp import study_analysis
     from webapp.demo import DEMO_DIAMETERS_MM, create_demo_study, read_as_simulated_readers
-    from webapp.models import Study
-    from webapp.security import db
+    from webapp.models import Study, db
 
     app = make_app(tmp_path)
     sid = create_demo_study(app, passwords=PASSWORDS | {f"reader{i}": f"pw-reader-{i}" for i in range(4, 6)})[
@@ -387,7 +379,7 @@ def test_the_demo_study_read_by_the_simulated_readers_is_estimable_at_every_diam
     with app.app_context():
         st = db().get(Study, sid)
         plan = json.loads(st.plan_json)
-        run = services.run_analysis(db(), st, n_boot=200, seed=1)
+        run = study_analysis.run_analysis(db(), st, n_boot=200, seed=1)
         a = json.loads(run.analysis_json)
     n_scored = len([r for r in rows if not r["practice"]])
     assert n_scored == 5 * plan["total"], (n_scored, plan["total"])

@@ -187,7 +187,7 @@ class _ChangesOnSecondReading(io.BytesIO):
 
 
 def test_store_bytes_streams_in_pieces_and_names_by_hash(tmp_path):
-    from webapp.services import STORE_CHUNK_BYTES, store_bytes
+    from webapp.content_store import STORE_CHUNK_BYTES, store_bytes
 
     data = np.random.default_rng(3).bytes(2 * STORE_CHUNK_BYTES + 123)
     expect = hashlib.sha256(data).hexdigest()  # FIPS 180-4 SHA-256 (hashlib), the store's content key
@@ -200,7 +200,7 @@ def test_store_bytes_streams_in_pieces_and_names_by_hash(tmp_path):
 
 
 def test_store_bytes_refuses_a_stream_that_changed_and_stores_nothing(tmp_path):
-    from webapp.services import STORE_CHUNK_BYTES, store_bytes
+    from webapp.content_store import STORE_CHUNK_BYTES, store_bytes
 
     first = b"a" * (STORE_CHUNK_BYTES + 10)
     for second in (b"b" * len(first), first[:-1], first + b"x"):
@@ -211,7 +211,7 @@ def test_store_bytes_refuses_a_stream_that_changed_and_stores_nothing(tmp_path):
 
 
 def test_store_bytes_limits_still_apply(tmp_path):
-    from webapp.services import store_bytes
+    from webapp.content_store import store_bytes
 
     with pytest.raises(LimenError, match="up.png: file is empty"):
         store_bytes(io.BytesIO(b""), ".png", tmp_path, 100, "up.png")

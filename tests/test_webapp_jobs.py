@@ -43,8 +43,7 @@ def _coordinator(app):
 
 
 def _jobs(app):
-    from webapp.models import Job
-    from webapp.security import db
+    from webapp.models import Job, db
 
     with app.app_context():
         rows = db().query(Job).order_by(Job.id).all()
@@ -53,8 +52,7 @@ def _jobs(app):
 
 
 def test_open_study_job_runs_to_done_and_records_its_progress_in_the_database(tmp_path):
-    from webapp.models import AuditEntry, Job, Region, Study
-    from webapp.security import db
+    from webapp.models import AuditEntry, Job, Region, Study, db
 
     app, sid = _draft_app(tmp_path)
     runner = app.extensions["limen_jobs"]
@@ -101,8 +99,7 @@ def test_open_study_job_runs_to_done_and_records_its_progress_in_the_database(tm
 
 
 def test_a_failing_job_stores_its_one_line_error_and_leaves_the_study_as_it_was(tmp_path):
-    from webapp.models import Region, Study, StudyImage
-    from webapp.security import db
+    from webapp.models import Region, Study, StudyImage, db
 
     app, sid = _draft_app(tmp_path)
     with app.app_context():
@@ -127,20 +124,19 @@ def test_a_failing_job_stores_its_one_line_error_and_leaves_the_study_as_it_was(
 
 
 def test_a_second_start_while_the_job_runs_returns_the_same_job(tmp_path, monkeypatch):
-    from webapp import services
-    from webapp.models import Study
-    from webapp.security import db
+    from webapp import opening
+    from webapp.models import Study, db
 
     app, sid = _draft_app(tmp_path)
     release, entered = threading.Event(), threading.Event()
-    real_open = services.open_study
+    real_open = opening.open_study
 
     def held_open(*args, **kwargs):  # the real opening, held until both POSTs have arrived
         entered.set()
         assert release.wait(60)
         return real_open(*args, **kwargs)
 
-    monkeypatch.setattr(services, "open_study", held_open)
+    monkeypatch.setattr(opening, "open_study", held_open)
     c, tok = _coordinator(app)
     c2, tok2 = _coordinator(app)  # a second tab or a second coordinator
     r1 = c.post(f"/coordinator/studies/{sid}/open", data={"csrf_token": tok})
@@ -161,8 +157,7 @@ def test_a_second_start_while_the_job_runs_returns_the_same_job(tmp_path, monkey
 
 
 def test_a_job_left_running_by_a_killed_server_is_marked_failed_at_start_up(tmp_path):
-    from webapp.models import Job, User
-    from webapp.security import db
+    from webapp.models import Job, User, db
 
     app, sid = _draft_app(tmp_path)
     long_ago = _dt.datetime(2026, 12, 1, 8, 0)
@@ -194,8 +189,7 @@ def test_a_job_left_running_by_a_killed_server_is_marked_failed_at_start_up(tmp_
 
 def test_a_job_page_seen_after_its_heartbeat_stopped_shows_it_failed(tmp_path):
     """A server killed and restarted within the stale limit: the start-up sweep leaves the job, its page ends it."""
-    from webapp.models import Job, User
-    from webapp.security import db
+    from webapp.models import Job, User, db
 
     app, sid = _draft_app(tmp_path, JOB_STALE_S=0.5)
     with app.app_context():
@@ -213,7 +207,7 @@ def test_a_job_page_seen_after_its_heartbeat_stopped_shows_it_failed(tmp_path):
 @pytest.mark.parametrize("who", ["reader1", "outsider", "anonymous"])
 def test_a_reader_cannot_see_a_job(tmp_path, who):
     from webapp.demo import ensure_user
-    from webapp.security import db
+    from webapp.models import db
 
     app, sid = _draft_app(tmp_path)
     with app.app_context():

@@ -282,8 +282,7 @@ def test_refused_uploads_leave_nothing_in_the_store(tmp_path):
     assert sorted(p.suffix for p in _store_files(app)) == [".dcm", ".toml"]
     for p in _store_files(app):
         p.unlink()
-    from webapp.models import StudyImage
-    from webapp.security import db
+    from webapp.models import StudyImage, db
 
     with app.app_context():
         db().query(StudyImage).delete()
@@ -334,8 +333,7 @@ def test_an_import_naming_files_outside_the_root_is_refused(tmp_path, how):
     sid = _draft(c, tok)
     r = c.post(f"/coordinator/studies/{sid}/import", data={"csrf_token": tok, "folder": "scored", "detector": "A"})
     assert r.status_code == 400 and "outside the import root" in r.text, r.text[:500]
-    from webapp.models import StudyImage
-    from webapp.security import db
+    from webapp.models import StudyImage, db
 
     with app.app_context():
         assert db().query(StudyImage).count() == 0
@@ -356,8 +354,7 @@ HOSTILE = {
 def test_csv_exports_neutralise_formulas_but_keep_numbers(tmp_path):
     """OWASP "CSV Injection" (docs/references.md): text cells starting with = + - @ tab or CR get a leading
     single quote; numbers such as -0.5 stay numbers."""
-    from webapp.models import Study, StudyImage
-    from webapp.security import db
+    from webapp.models import Study, StudyImage, db
 
     app, sid = demo_app(tmp_path, n_practice=0)  # four images: the first four hostile labels
     c, tok = reader_client(app, sid)

@@ -14,8 +14,7 @@ from webapp_helpers import demo_app, login, pass_display_check, race, read_all
 def test_study_on_postgresql(tmp_path, postgres_url):
     from sqlalchemy.exc import IntegrityError
 
-    from webapp.models import Response, Trial
-    from webapp.security import db
+    from webapp.models import Response, Trial, db
 
     app, sid = demo_app(tmp_path, db_url=postgres_url)
     assert app.config["DATABASE_URL"].startswith("postgresql")
@@ -49,8 +48,7 @@ def test_accounts_sessions_and_sign_in_throttle_on_postgresql(tmp_path, postgres
     from sqlalchemy.exc import IntegrityError
     from webapp_helpers import accounts_app, csrf_from
 
-    from webapp.models import SignInFailure, User
-    from webapp.security import db
+    from webapp.models import SignInFailure, User, db
 
     app = accounts_app(tmp_path, ("coordinator", "reader1"), DATABASE_URL=postgres_url, LOGIN_FREE_FAILURES=1)
     with app.app_context():

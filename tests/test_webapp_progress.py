@@ -11,8 +11,7 @@ from webapp_helpers import PASSWORDS, answer, csrf_from, demo_app, login, pass_d
 
 
 def _uid(app, name):
-    from webapp.models import User
-    from webapp.security import db
+    from webapp.models import User, db
 
     with app.app_context():
         return db().query(User).filter_by(username=name).one().id
@@ -20,7 +19,7 @@ def _uid(app, name):
 
 def _fail_check_once(c, sid, tok):
     """Answer the display check with a site that is not the faint disc's."""
-    from webapp.services import CHECK_SITES, CHECK_SIZE
+    from webapp.display_check import CHECK_SITES, CHECK_SIZE
 
     c.get(f"/reading/studies/{sid}/check")
     px = np.frombuffer(c.get(f"/reading/api/studies/{sid}/check/pattern").data, "<u2").reshape(CHECK_SIZE, CHECK_SIZE)
@@ -46,8 +45,7 @@ def test_a_reader_who_stopped_mid_trial_is_shown(tmp_path):
     c.get(f"/reading/api/studies/{sid}/next")  # a reload hands out the same trial: its first time is kept
     page = coord.get(f"/coordinator/studies/{sid}").text
     assert "reading" in _row(page, "reader1") and "not started" in _row(page, "reader2")
-    from webapp.models import TrialShown
-    from webapp.security import db
+    from webapp.models import TrialShown, db
 
     with app.app_context():
         rows = db().query(TrialShown).filter_by(study_id=sid).all()
@@ -129,8 +127,7 @@ def test_refused_actions_come_from_the_audit_log(tmp_path):
     assert (
         anon.post("/login", data={"username": "READER1", "password": "wrong-one", "csrf_token": t}).status_code == 401
     )
-    from webapp.models import AuditEntry
-    from webapp.security import db
+    from webapp.models import AuditEntry, db
 
     with app.app_context():
         refused = [json.loads(e.detail) for e in db().query(AuditEntry).filter_by(action="refused").all()]

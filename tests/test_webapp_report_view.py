@@ -46,8 +46,7 @@ def test_the_analysis_page_shows_the_report_in_the_app_style_and_offers_it_self_
     css = cc.get("/static/limen.css").text
     assert ".report table" in css and ".report img.figure" in css
     # the download: the stored report, whole, needing nothing from the server
-    from webapp.models import AnalysisRun
-    from webapp.security import db
+    from webapp.models import AnalysisRun, db
 
     with app.app_context():
         run = db().query(AnalysisRun).filter_by(study_id=sid).one()

@@ -93,8 +93,7 @@ def study(tmp_path_factory):
     job = wait_job(cc, cc.post(f"/analysis/studies/{study_id}/run", data={"csrf_token": ctok}))
     assert job["state"] == "done", job
     from webapp.demo import ensure_user
-    from webapp.models import AnalysisRun, User
-    from webapp.security import db
+    from webapp.models import AnalysisRun, User, db
 
     with app.app_context():
         run_id = db().query(AnalysisRun).first().id

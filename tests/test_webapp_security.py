@@ -71,8 +71,8 @@ def test_security_headers_and_cookie_flags(demo):
 
 def test_passwords_are_stored_as_salted_hashes(demo):
     app, _ = demo
-    from webapp.models import User
-    from webapp.security import db, verify_password
+    from webapp.models import User, db
+    from webapp.security import verify_password
 
     with app.app_context():
         users = db().query(User).all()
@@ -117,8 +117,7 @@ def _reader_texts(client, sid, token):
 
 def test_truth_and_blinded_labels_never_reach_the_reader(tmp_path):
     app, sid = demo_app(tmp_path, show_feedback=False)
-    from webapp.models import Region, StudyImage
-    from webapp.security import db
+    from webapp.models import Region, StudyImage, db
 
     with app.app_context():
         images = db().query(StudyImage).all()
@@ -152,8 +151,7 @@ def test_truth_and_blinded_labels_never_reach_the_reader(tmp_path):
 def test_trial_data_do_not_depend_on_the_truth(tmp_path):
     """Change where the disc is (in the database) and the reader's API answers stay byte for byte the same."""
     app, sid = demo_app(tmp_path)
-    from webapp.models import Region
-    from webapp.security import db
+    from webapp.models import Region, db
 
     c, tok = reader_client(app, sid)
     before = c.get(f"/reading/api/studies/{sid}/next")
@@ -170,8 +168,7 @@ def test_trial_data_do_not_depend_on_the_truth(tmp_path):
 # --------------------------------------------------------------------------- responses stored once
 def test_a_response_submitted_twice_is_stored_once(demo):
     app, sid = demo
-    from webapp.models import Response
-    from webapp.security import db
+    from webapp.models import Response, db
 
     c, tok = reader_client(app, sid)
     t = c.get(f"/reading/api/studies/{sid}/next").json
@@ -186,8 +183,7 @@ def test_a_response_submitted_twice_is_stored_once(demo):
 
 def test_two_tabs_answering_the_same_trial_at_once_store_one_response(demo):
     app, sid = demo
-    from webapp.models import Response
-    from webapp.security import db
+    from webapp.models import Response, db
 
     c, tok = reader_client(app, sid)
     t = c.get(f"/reading/api/studies/{sid}/next").json
@@ -201,8 +197,7 @@ def test_the_database_itself_refuses_a_second_response(demo):
     app, sid = demo
     from sqlalchemy.exc import IntegrityError
 
-    from webapp.models import Response, Trial
-    from webapp.security import db
+    from webapp.models import Response, Trial, db
 
     c, _tok = reader_client(app, sid)
     c.get(f"/reading/api/studies/{sid}/next")  # trials are made as the reader asks for them
@@ -232,7 +227,7 @@ def test_uploads_are_checked_and_stored_under_their_hash(tmp_path):
     from scorer.images import write_image
 
     app = accounts_app(tmp_path, MAX_IMAGE_BYTES=600_000)
-    from webapp.security import db
+    from webapp.models import db
 
     c = app.test_client()
     tok = login(c, "coordinator")
@@ -296,8 +291,7 @@ def test_coordinator_actions_are_audited(demo):
     tok = login(c, "coordinator")
     c.get(f"/coordinator/studies/{sid}/responses.csv")
     c.post(f"/coordinator/studies/{sid}/close", data={"csrf_token": tok})
-    from webapp.models import AuditEntry
-    from webapp.security import db
+    from webapp.models import AuditEntry, db
 
     with app.app_context():
         actions = [(e.action, e.user.username if e.user else None) for e in db().query(AuditEntry).all()]

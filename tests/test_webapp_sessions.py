@@ -77,8 +77,7 @@ def test_disabling_ends_the_session_and_enabling_does_not_revive_it(tmp_path):
 
 def test_a_coordinator_signs_an_account_out_everywhere_and_it_is_audited(tmp_path):
     app = _app(tmp_path)
-    from webapp.models import AuditEntry, User
-    from webapp.security import db
+    from webapp.models import AuditEntry, User, db
 
     laptop, phone = app.test_client(), app.test_client()
     login(laptop, "reader1")
@@ -127,8 +126,7 @@ def test_names_differing_only_by_case_are_one_account(tmp_path):
     tok = login(c, "coordinator")
     r = c.post("/coordinator/accounts/", data={"username": "Dup", "role": "reader", "csrf_token": tok})
     assert r.status_code == 400 and "is taken" in r.text
-    from webapp.models import User
-    from webapp.security import db
+    from webapp.models import User, db
 
     with app.app_context():
         assert [u.username for u in db().query(User).filter(User.role == "reader")] == ["dup"]
@@ -137,8 +135,7 @@ def test_names_differing_only_by_case_are_one_account(tmp_path):
 def test_the_database_refuses_two_names_differing_by_case(tmp_path):
     from sqlalchemy.exc import IntegrityError
 
-    from webapp.models import User
-    from webapp.security import db
+    from webapp.models import User, db
 
     app = _app(tmp_path)
     with app.app_context():

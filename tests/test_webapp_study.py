@@ -34,8 +34,7 @@ def test_each_reader_reads_practice_then_scored_trials_then_repeats(tmp_path):
     """Trials are placed as each reader goes: practice first, then the scored trials (each region at most once),
     then the repeats — second readings of the reader's own scored trials, each with a new tile order."""
     app, sid = demo_app(tmp_path, n_readers=3, n_practice=2, repeat_fraction=0.3)
-    from webapp.models import Study, Trial, User
-    from webapp.security import db
+    from webapp.models import Study, Trial, User, db
 
     for name in ("reader1", "reader2", "reader3"):
         c, tok = reader_client(app, sid, name)
@@ -63,8 +62,7 @@ def test_reader_pixels_are_the_linear_image_in_air_kerma(tmp_path):
     background transmits fully), and the crop equals scorer's own load_image to within one 16-bit step."""
     app, sid = demo_app(tmp_path)
     from scorer.images import load_conversion, load_image
-    from webapp.models import Region, Study, StudyImage, Trial
-    from webapp.security import db
+    from webapp.models import Region, Study, StudyImage, Trial, db
 
     c, tok = reader_client(app, sid)
     t = c.get(f"/reading/api/studies/{sid}/next").json
@@ -172,8 +170,7 @@ def test_feedback_after_the_response_when_the_coordinator_allows_it(tmp_path):
 
 def test_display_check_needs_the_right_site_and_records_the_screen(tmp_path):
     app, sid = demo_app(tmp_path)
-    from webapp.models import ReadingSession
-    from webapp.security import db
+    from webapp.models import ReadingSession, db
 
     c = app.test_client()
     tok = login(c, "reader1")
@@ -195,13 +192,17 @@ def test_display_check_needs_the_right_site_and_records_the_screen(tmp_path):
         ).status_code
         == 400
     )
+    # a body that is JSON but not an object, or a site that is not a number, is refused (a JSON array was a 500)
+    for body in ([right], 7, {"site": [right], "viewing_distance_mm": 600}, {"site": None, "viewing_distance_mm": 600}):
+        r = c.post(f"/reading/api/studies/{sid}/check", json=body, headers={"X-CSRFToken": tok})
+        assert r.status_code == 400 and r.json["error"] == "site must be a whole number", body
     pass_display_check(c, sid, tok)
     with app.app_context():
         rs = db().query(ReadingSession).one()
         assert rs.check_passed and rs.check_attempts == 2 and rs.viewing_distance_mm == 550
         assert rs.screen_width == 1920 and rs.device_pixel_ratio == 1
     # the pattern: a disc 3 of 255 grey levels above a dark field at one of the four sites
-    from webapp.services import CHECK_SITES, display_check_pattern
+    from webapp.display_check import CHECK_SITES, display_check_pattern
 
     px = np.frombuffer(display_check_pattern(2, 7), "<u2").reshape(192, 192) / 257
     levels = [px[r, c] for r, c in CHECK_SITES]
@@ -210,8 +211,7 @@ def test_display_check_needs_the_right_site_and_records_the_screen(tmp_path):
 
 def test_coordinator_builds_a_study_through_the_forms(tmp_path):
     app = accounts_app(tmp_path, ("coordinator", "reader1", "reader2", "reader3"))
-    from webapp.models import Region, Study, User
-    from webapp.security import db
+    from webapp.models import Region, Study, User, db
 
     with app.app_context():
         rids = [str(u.id) for u in db().query(User).filter(User.username.like("reader%"))]
@@ -342,8 +342,7 @@ def test_planning_page_estimates_power_from_a_stated_spread_and_refuses_oversize
 
 def test_import_a_folder_scored_by_limen_score(tmp_path):
     from scorer.cli import main
-    from webapp.models import StudyImage
-    from webapp.security import db
+    from webapp.models import StudyImage, db
 
     root = tmp_path / "root"
     files = simulated_study_files(root)
@@ -393,10 +392,9 @@ def test_an_image_in_two_studies_is_shown_on_each_studys_own_scale(tmp_path):
     µGy per unit reproduce scorer's load_image to within one 16-bit step (a file shared by image hash alone
     was 2.3 % off)."""
     from scorer.images import load_conversion, load_image
-    from webapp import services
+    from webapp import opening, pixels
     from webapp.demo import create_demo_study
-    from webapp.models import Region, Study, StudyImage
-    from webapp.security import db
+    from webapp.models import Region, Study, StudyImage, db
 
     app = make_app(tmp_path)
     kw = dict(
@@ -429,7 +427,7 @@ def test_an_image_in_two_studies_is_shown_on_each_studys_own_scale(tmp_path):
         )
         db().flush()
         db().refresh(sb)
-        services.open_study(db(), sb, store)
+        opening.open_study(db(), sb, store)
         sb.status = "open"
         db().commit()
         shared = {i.sha256 for i in sa.images} & {i.sha256 for i in sb.images}
@@ -440,7 +438,7 @@ def test_an_image_in_two_studies_is_shown_on_each_studys_own_scale(tmp_path):
                     continue
                 reg = db().query(Region).filter(Region.image_id == im.id).first()
                 n = st.region_rows
-                data = np.frombuffer(services.region_bytes(store, im.sha256, st.id, reg.row0, reg.col0, n, n), "<u2")
+                data = np.frombuffer(pixels.region_bytes(store, im.sha256, st.id, reg.row0, reg.col0, n, n), "<u2")
                 ref = load_image(store / im.stored_name, conversion=load_conversion(im.conversion_file)).pixels
                 crop = ref[reg.row0 : reg.row0 + n, reg.col0 : reg.col0 + n].ravel()
                 assert np.max(np.abs(data * st.ugy_per_unit - crop)) <= 0.5 * st.ugy_per_unit + 1e-9

@@ -58,8 +58,7 @@ class Browser:
 def _audit(app, action):
     import json
 
-    from webapp.models import AuditEntry
-    from webapp.security import db
+    from webapp.models import AuditEntry, db
 
     with app.app_context():
         return [json.loads(e.detail) for e in db().query(AuditEntry).filter_by(action=action).order_by(AuditEntry.id)]
@@ -149,8 +148,7 @@ def test_a_browser_that_signed_in_before_is_not_locked_out_by_a_guesser_at_its_a
 
 def test_unknown_and_disabled_accounts_fail_the_same_way_and_are_audited(tmp_path, clock):
     app = accounts_app(tmp_path, USERS)
-    from webapp.models import User
-    from webapp.security import db
+    from webapp.models import User, db
 
     with app.app_context():
         db().query(User).filter_by(username="reader2").one().active = False
@@ -200,8 +198,7 @@ def test_throttle_rows_older_than_the_window_are_forgotten(tmp_path, clock):
     assert b.sign_in("reader1").status_code == 429
     clock.advance(601)
     b.sign_in("reader2", "wrong")  # any failure prunes the table
-    from webapp.models import SignInFailure
-    from webapp.security import db
+    from webapp.models import SignInFailure, db
 
     with app.app_context():
         assert [f.name_key for f in db().query(SignInFailure)] == ["reader2"]

@@ -71,8 +71,7 @@ def test_good_files_of_a_batch_are_kept_and_each_refused_file_is_listed(tmp_path
     assert refused["tiny.png"] and all("\n" not in why for why in refused.values())
     assert "2 image(s) added" in r.text and "1 already in the study" in r.text
     # what was accepted is in the study and the store; the refused files left nothing
-    from webapp.models import AuditEntry, StudyImage
-    from webapp.security import db
+    from webapp.models import AuditEntry, StudyImage, db
 
     with app.app_context():
         assert sorted(im.label for im in db().query(StudyImage).filter_by(study_id=sid)) == [

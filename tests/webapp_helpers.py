@@ -46,7 +46,7 @@ def demo_app(
     enrolled.  The wide wanted CI (±2 in ln) lets the design gate open a study this small; ``trials_per_reader``
     is the most scored trials per reader (None: no limit)."""
     from webapp.demo import create_demo_study, ensure_user
-    from webapp.security import db
+    from webapp.models import db
 
     app = make_app(tmp_path, db_url, **config)
     out = create_demo_study(
@@ -87,7 +87,7 @@ def login(client, username, password=None):
 
 def pass_display_check(client, study_id, token):
     """Find the faint disc of the display check as a reader would: the brightest of the four sites."""
-    from webapp.services import CHECK_SITES, CHECK_SIZE
+    from webapp.display_check import CHECK_SITES, CHECK_SIZE
 
     assert client.get(f"/reading/studies/{study_id}/check").status_code == 200
     px = np.frombuffer(client.get(f"/reading/api/studies/{study_id}/check/pattern").data, "<u2")
@@ -137,7 +137,7 @@ def read_all(client, study_id, token, chooser=None, limit=None):
 def accounts_app(tmp_path, users=("coordinator",), **config):
     """An app with no study yet and the named accounts (role from the name: coordinator, else reader)."""
     from webapp.demo import ensure_user
-    from webapp.security import db
+    from webapp.models import db
 
     app = make_app(tmp_path, **config)
     with app.app_context():

@@ -155,7 +155,7 @@ def create_app(config: dict | None = None) -> Flask:
     if proxies:  # the client address and scheme as the trusted proxies saw them; headers of anyone else ignored
         from werkzeug.middleware.proxy_fix import ProxyFix
 
-        app.wsgi_app = ProxyFix(app.wsgi_app, x_for=proxies, x_proto=proxies)
+        app.wsgi_app = ProxyFix(app.wsgi_app, x_for=proxies, x_proto=proxies)  # type: ignore[method-assign]  # Flask's documented way
     if not app.config.get("SECRET_KEY"):
         app.config["SECRET_KEY"] = _secret_key(instance)
     url = app.config.get("DATABASE_URL") or os.environ.get(ENV_DATABASE_URL) or f"sqlite:///{instance / 'limen.db'}"
@@ -198,7 +198,7 @@ def create_app(config: dict | None = None) -> Flask:
 
         new = g.pop("limen_new_files", None)
         if new and resp.status_code >= 400:
-            from webapp.services import discard_unreferenced
+            from webapp.content_store import discard_unreferenced
 
             s = session_factory()
             s.rollback()

@@ -15,8 +15,8 @@ from sqlalchemy import select
 
 from scorer.errors import LimenError
 from webapp import account_admin
-from webapp.models import ROLES, User
-from webapp.security import db, role_required
+from webapp.models import ROLES, User, db
+from webapp.security import role_required
 
 bp = Blueprint("accounts", __name__, url_prefix="/coordinator/accounts")
 coordinator_only = role_required("coordinator")

@@ -34,7 +34,8 @@ class _Recent:
     """A bounded map of recently seen keys (per process), so repeats skip the database."""
 
     def __init__(self, size: int = 20000):
-        self._size, self._lock, self._d = size, threading.Lock(), OrderedDict()
+        self._size, self._lock = size, threading.Lock()
+        self._d: OrderedDict[object, object] = OrderedDict()
 
     def get(self, key):
         with self._lock:
@@ -100,7 +101,10 @@ def _trial_shown(resp, shown: _Recent) -> None:
     if not public_id or shown.get(public_id):
         return
     record_shown(
-        current_app.extensions["limen_db"](), str(public_id), int(request.view_args["study_id"]), int(current_user.id)
+        current_app.extensions["limen_db"](),
+        str(public_id),
+        int((request.view_args or {})["study_id"]),
+        int(current_user.id),
     )
     shown.put(public_id, True)
 

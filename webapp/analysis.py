@@ -7,9 +7,9 @@ from flask import Blueprint, abort, current_app, g, redirect, render_template, u
 from flask import Response as FlaskResponse
 from sqlalchemy import func, select
 
-from webapp import services
-from webapp.models import AnalysisRun, Response, Study, Trial
-from webapp.security import REPORT_CSP, audit, db, role_required, study_or_404
+from webapp import study_analysis
+from webapp.models import AnalysisRun, Response, Study, Trial, db
+from webapp.security import REPORT_CSP, audit, role_required, study_or_404
 
 bp = Blueprint("analysis", __name__, url_prefix="/analysis")
 coordinator_only = role_required("coordinator")
@@ -59,7 +59,7 @@ def _analysis_work(n_boot: int):
         from webapp.jobs import JobResult
 
         st = s.get(Study, job.study_id)
-        r = services.run_analysis(s, st, n_boot=n_boot, seed=int(st.seed), progress=progress)
+        r = study_analysis.run_analysis(s, st, n_boot=n_boot, seed=int(st.seed), progress=progress)
         s.flush()
         audit("run_analysis", st.id, by=job.created_by, n_responses=r.n_responses, n_boot=n_boot)
         return JobResult(ref=f"analysis_run:{r.id}", message=f"Analysed {r.n_responses} responses.")

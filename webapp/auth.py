@@ -12,10 +12,12 @@ from urllib.parse import urlsplit
 
 from flask import Blueprint, flash, make_response, redirect, render_template, request, session, url_for
 from flask_login import current_user, login_required, login_user, logout_user
+from werkzeug.wrappers import Response as WerkzeugResponse
 
 from webapp import throttle
 from webapp.accounts import end_sessions, find_user, name_key, shown_name
-from webapp.security import audit, db, public, verify_password
+from webapp.models import db
+from webapp.security import audit, public, verify_password
 
 bp = Blueprint("auth", __name__)
 
@@ -106,7 +108,7 @@ def login():
             "(sign-ins from other computers are not affected).",
             "error",
         )
-        resp = make_response(render_template("login.html"), 429)
+        resp: WerkzeugResponse = make_response(render_template("login.html"), 429)
         resp.headers["Retry-After"] = str(wait)
         return resp
     user = find_user(s, typed)

@@ -3,11 +3,17 @@
 
 from __future__ import annotations
 
+from typing import TYPE_CHECKING
+
+if TYPE_CHECKING:
+    from scorer.phantom.layout import Layout
+
 import datetime as _dt
 import io
 import json
 import secrets
 from pathlib import Path
+from typing import cast
 
 from flask import (
     Blueprint,
@@ -22,12 +28,11 @@ from flask import (
 from flask import (
     Response as FlaskResponse,
 )
-from sqlalchemy import select
 
 from scorer.errors import LimenError
-from webapp import services, study_edits
-from webapp.models import AuditEntry, Enrolment, Study, StudyImage, User, utcnow
-from webapp.security import audit, db, role_required, study_or_404, upload
+from webapp import content_store, export, opening, queries, study_edits, upload_checks
+from webapp.models import Enrolment, Study, StudyImage, User, db, utcnow
+from webapp.security import audit, role_required, study_or_404, upload
 
 bp = Blueprint("coordinator", __name__, url_prefix="/coordinator")
 coordinator_only = role_required("coordinator")
@@ -51,19 +56,19 @@ def _add_image(
     conversion=None,
     spacing=None,
     practice: bool = False,
-) -> dict | None:
+) -> dict:
     """Store one image file under its hash, check it reads as an image, add it to the study (once: an image the
     study already has is returned with ``skipped``)."""
-    label = services.safe_label(name)
-    suffix = services.check_suffix(name, services.IMAGE_SUFFIXES, "image file")
+    label = content_store.safe_label(name)
+    suffix = content_store.check_suffix(name, content_store.IMAGE_SUFFIXES, "image file")
     store = Path(current_app.config["STORE_DIR"])
-    stored = services.store_file(
+    stored = content_store.store_file(
         stream,
         suffix,
         store,
         current_app.config["MAX_IMAGE_BYTES"],
         label,
-        check=lambda p: services.validate_image_file(p, label, spacing, conversion),
+        check=lambda p: upload_checks.validate_image_file(p, label, spacing, conversion),
     )
     digest, path = stored.sha256, stored.path
     if digest in known:
@@ -93,7 +98,7 @@ def _detector_label(form) -> str:
 
 
 def _readers() -> list[User]:
-    return db().execute(select(User).where(User.role == "reader").order_by(User.username)).scalars().all()
+    return list(queries.reader_accounts(db()))
 
 
 def _num(form, key, kind, lo, hi, label, default=None):
@@ -113,14 +118,14 @@ def _num(form, key, kind, lo, hi, label, default=None):
 @bp.route("/")
 @coordinator_only
 def dashboard():
-    studies = db().execute(select(Study).order_by(Study.created_at.desc())).scalars().all()
+    studies = queries.studies_newest_first(db())
     return render_template("coordinator/dashboard.html", studies=studies, readers=_readers())
 
 
 @bp.route("/audit")
 @coordinator_only
 def audit_log():
-    entries = db().execute(select(AuditEntry).order_by(AuditEntry.at.desc()).limit(500)).scalars().all()
+    entries = queries.recent_audit_entries(db(), limit=500)
     return render_template("coordinator/audit.html", entries=entries)
 
 
@@ -129,7 +134,7 @@ def audit_log():
 @upload
 @coordinator_only
 def new_study():
-    layouts = services.bundled_layouts()
+    layouts = content_store.bundled_layouts()
     if request.method == "GET":
         return render_template("coordinator/new_study.html", layouts=layouts, readers=_readers(), form={})
     f = request.form
@@ -140,23 +145,23 @@ def new_study():
         upload = request.files.get("layout_file")
         store = Path(current_app.config["STORE_DIR"])
         if upload and upload.filename:
-            label = services.safe_label(upload.filename)
-            suffix = services.check_suffix(upload.filename, services.LAYOUT_SUFFIXES, "layout file")
-            stored = services.store_file(
+            label = content_store.safe_label(upload.filename)
+            suffix = content_store.check_suffix(upload.filename, content_store.LAYOUT_SUFFIXES, "layout file")
+            stored = content_store.store_file(
                 upload.stream,
                 suffix,
                 store / "layouts",
                 1024 * 1024,
                 label,
-                check=lambda p: services.validate_layout_file(p, label),
+                check=lambda p: upload_checks.validate_layout_file(p, label),
             )
-            path, layout = stored.path, stored.checked
+            path, layout = stored.path, cast("Layout", stored.checked)  # what validate_layout_file returned
         else:
             key = f.get("layout") or ""
             if key not in layouts:
                 raise LimenError("choose a bundled layout or upload one")
             path = Path(layouts[key])
-            layout = services.validate_layout_file(path, key)
+            layout = upload_checks.validate_layout_file(path, key)
         from webapp import design
 
         diameters = design.parse_diameters(f.get("diameters", ""), layout)
@@ -245,7 +250,7 @@ def study_page(st: Study, status: int = 200, **extra):
     from webapp import progress
     from webapp.design import PLACEMENT_LABELS, plan_of
 
-    notes = json.loads(st_notes) if (st_notes := _notes_of(st)) else []
+    notes = json.loads(st_notes) if (st_notes := queries.opening_notes_json(db(), st.id)) else []
     rows = (
         progress.readers_progress(db(), st, progress.stalled_after(current_app.config)) if st.status != "draft" else []
     )
@@ -299,6 +304,8 @@ def reader(study_id, reader_id):
     if not rows:
         abort(404)
     user = db().get(User, reader_id)
+    if user is None:
+        abort(404)
     return render_template(
         "coordinator/reader.html",
         study=st,
@@ -306,22 +313,6 @@ def reader(study_id, reader_id):
         refused=progress.refused_actions(db(), st, user),
         stalled_minutes=progress.stalled_after(current_app.config).total_seconds() / 60,
     )
-
-
-def _notes_of(st: Study) -> str | None:
-    e = (
-        db()
-        .execute(
-            select(AuditEntry)
-            .where(AuditEntry.study_id == st.id, AuditEntry.action == "open_study")
-            .order_by(AuditEntry.id.desc())
-        )
-        .scalars()
-        .first()
-    )
-    if e is None:
-        return None
-    return json.dumps(json.loads(e.detail).get("notes", []))
 
 
 @bp.route("/studies/<int:study_id>/readers", methods=["POST"])
@@ -345,15 +336,15 @@ def add_images(study_id):
     conv_path, conversion = None, None
     conv = request.files.get("conversion_file")
     if conv and conv.filename:
-        label = services.safe_label(conv.filename)
-        suffix = services.check_suffix(conv.filename, services.LAYOUT_SUFFIXES, "conversion function file")
-        stored = services.store_file(
+        label = content_store.safe_label(conv.filename)
+        suffix = content_store.check_suffix(conv.filename, content_store.LAYOUT_SUFFIXES, "conversion function file")
+        stored = content_store.store_file(
             conv.stream,
             suffix,
             Path(current_app.config["STORE_DIR"]) / "conversions",
             1024 * 1024,
             label,
-            check=lambda p: services.validate_conversion_file(p, label),
+            check=lambda p: upload_checks.validate_conversion_file(p, label),
         )
         conversion, conv_path = stored.checked, str(stored.path)
     files = [fs for fs in request.files.getlist("images") if fs and fs.filename]
@@ -361,11 +352,13 @@ def add_images(study_id):
         raise LimenError("choose at least one image file (DICOM, TIFF, PNG or .npy)")
     known = {im.sha256 for im in st.images}
     practice = request.form.get("practice") == "on"
-    added, skipped, refused = [], [], []
+    added: list[dict] = []
+    skipped: list[dict] = []
+    refused: list[dict] = []
     for fs in files:  # each file accepted or refused on its own: one bad file does not cost the batch
-        label = services.safe_label(fs.filename)
+        label = content_store.safe_label(fs.filename)
         try:
-            a = _add_image(st, fs.stream, fs.filename, detector, known, conv_path, conversion, spacing, practice)
+            a = _add_image(st, fs.stream, fs.filename or "", detector, known, conv_path, conversion, spacing, practice)
         except LimenError as exc:
             reason = str(exc)
             refused.append({"label": label, "reason": reason.removeprefix(f"{label}: ")})
@@ -420,13 +413,13 @@ def import_folder(study_id):
     if conv:
         text = json.dumps(conv, sort_keys=True).encode()
         what = f"{folder.name}/results.json conversion"
-        stored = services.store_file(
+        stored = content_store.store_file(
             io.BytesIO(text),
             ".json",
             Path(current_app.config["STORE_DIR"]) / "conversions",
             1024 * 1024,
             "conversion",
-            check=lambda p: services.validate_conversion_file(p, what),
+            check=lambda p: upload_checks.validate_conversion_file(p, what),
         )
         conversion, conv_path = stored.checked, str(stored.path)
     known = {im.sha256 for im in st.images}
@@ -463,7 +456,7 @@ def _open_study_work(store_dir: Path):
         st = s.get(Study, job.study_id)
         if st is None or st.status != "draft":
             raise LimenError("the study is already open or closed")
-        notes = services.open_study(s, st, store_dir, progress=progress)
+        notes = opening.open_study(s, st, store_dir, progress=progress)
         st.status = "open"
         st.opened_at = utcnow()
         audit(
@@ -515,7 +508,7 @@ def _check_design(st: Study) -> dict:
 
     st.placement = st.placement or "psi"
     st.half_width_ln = st.half_width_ln or design.DEFAULT_HALF_WIDTH_LN
-    layout = load_layout(services.stored_file(st.layout_file, Path(current_app.config["STORE_DIR"])))
+    layout = load_layout(content_store.stored_file(st.layout_file, Path(current_app.config["STORE_DIR"])))
     return design.check_design(st, layout)
 
 
@@ -546,7 +539,7 @@ def _csv(text: str, name: str) -> FlaskResponse:
 @coordinator_only
 def export_responses(study_id):
     st = _study(study_id)
-    text = services.responses_csv(db(), st)
+    text = export.responses_csv(db(), st)
     audit("export_responses", st.id, rows=max(text.count("\n") - 1, 0))
     db().commit()
     stamp = _dt.date.today().isoformat()

@@ -15,8 +15,8 @@ from flask import Blueprint, abort, current_app, flash, redirect, render_templat
 from scorer.errors import LimenError
 from webapp import study_edits
 from webapp.coordinator import show_refusal
-from webapp.models import StudyImage
-from webapp.security import db, role_required, study_or_404
+from webapp.models import StudyImage, db
+from webapp.security import role_required, study_or_404
 
 bp = Blueprint("corrections", __name__, url_prefix="/coordinator/studies")
 coordinator_only = role_required("coordinator")

@@ -78,9 +78,9 @@ def create_demo_study(
     from scorer.detector import detector_model, simulate
     from scorer.images import save_conversion
     from scorer.workflow import load_layout, write_simulated
-    from webapp import services
-    from webapp.models import Enrolment, Study, StudyImage, User
-    from webapp.security import db
+    from webapp import opening
+    from webapp.content_store import store_bytes
+    from webapp.models import Enrolment, Study, StudyImage, User, db
 
     passwords = dict(passwords or {})
     with app.app_context():
@@ -132,7 +132,7 @@ def create_demo_study(
                     stem = f"{det}-practice-{i - images_per_detector + 1:02d}" if practice else f"{det}-{i + 1:02d}"
                     path = write_simulated(sim, Path(tmp), stem, acquired)
                     with open(path, "rb") as fh:
-                        digest, stored = services.store_bytes(fh, ".dcm", store, 1 << 30, path.name)
+                        digest, stored = store_bytes(fh, ".dcm", store, 1 << 30, path.name)
                     s.add(
                         StudyImage(
                             study_id=study.id,
@@ -151,7 +151,7 @@ def create_demo_study(
         s.flush()
         s.refresh(study)
         if open_study:
-            services.open_study(s, study, store)
+            opening.open_study(s, study, store)
             study.status = "open"
             from webapp.models import utcnow
 
@@ -179,8 +179,7 @@ def read_as_simulated_readers(app, study_id: int, *, seed: int = 0, population=N
 
     from scorer.study.reader_model import ReaderPopulation, draw_readers, response_calibration, simulated_choice
     from webapp import placement
-    from webapp.models import Enrolment, Study, StudyImage, User
-    from webapp.security import db
+    from webapp.models import Enrolment, Study, StudyImage, User, db
 
     rng = np.random.default_rng(seed)
     with app.app_context():

@@ -4,8 +4,8 @@ from __future__ import annotations
 
 from flask import Blueprint, abort, current_app, jsonify, render_template, url_for
 
-from webapp.models import Job
-from webapp.security import db, role_required
+from webapp.models import Job, db
+from webapp.security import role_required
 
 bp = Blueprint("jobs", __name__, url_prefix="/jobs")
 coordinator_only = role_required("coordinator")

@@ -157,19 +157,25 @@ class JobRunner:
 
     # ------------------------------------------------------------------ running
     def _run(self, job_id: int, work: Work) -> None:
-        from webapp.models import Job
-        from webapp.security import db
+        from webapp.models import Job, db
 
         try:
             with self.app.app_context():
                 s = db()
-                job = s.get(Job, job_id)
+
+                def row() -> Job:
+                    j = s.get(Job, job_id)
+                    if j is None:  # deleted under the runner: nothing to record it in (logged below)
+                        raise LimenError(f"job {job_id} is no longer in the database")
+                    return j
+
+                job = row()
                 job.state, job.started_at, job.heartbeat_at = "running", _now(), _now()
                 job.progress_text, job.progress_fraction = "starting", 0.0
                 s.commit()
                 try:
                     result = work(s, job, lambda text, fraction=None: self.progress(job_id, text, fraction))
-                    job = s.get(Job, job_id)
+                    job = row()
                     job.state, job.active_key, job.finished_at = "done", None, _now()
                     job.progress_text, job.progress_fraction = result.message[:300], 1.0
                     job.result_ref, job.result_json = result.ref, result.json
@@ -178,7 +184,7 @@ class JobRunner:
                     s.rollback()
                     if not isinstance(exc, LimenError):
                         log.exception("job %s failed", job_id)
-                    job = s.get(Job, job_id)
+                    job = row()
                     job.state, job.active_key, job.finished_at = "failed", None, _now()
                     job.error = one_line(exc)
                     s.commit()

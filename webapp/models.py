@@ -17,6 +17,7 @@ from __future__ import annotations
 
 import datetime as _dt
 import json
+from typing import Any, TypeAlias
 
 from sqlalchemy import (
     Boolean,
@@ -35,6 +36,7 @@ from sqlalchemy import (
 from sqlalchemy.orm import (
     DeclarativeBase,
     Mapped,
+    Session,
     mapped_column,
     relationship,
     scoped_session,
@@ -393,7 +395,7 @@ def make_engine(url: str):
     from scorer.errors import LimenError
 
     u = check_url(url, WEB_APP, create=True)
-    kwargs = {"future": True}
+    kwargs: dict[str, Any] = {"future": True}
     sqlite = u.get_backend_name() == "sqlite"
     if sqlite:
         kwargs["connect_args"] = {"check_same_thread": False, "timeout": 30}
@@ -419,7 +421,18 @@ def make_engine(url: str):
     return engine
 
 
-def make_session_factory(engine):
+#: what the query functions take: a plain session (jobs, the command line) or the app's scoped one (requests)
+AnySession: TypeAlias = "Session | scoped_session[Session]"
+
+
+def db() -> scoped_session[Session]:
+    """The app's database session (``create_app`` stores the session factory as ``extensions["limen_db"]``)."""
+    from flask import current_app
+
+    return current_app.extensions["limen_db"]
+
+
+def make_session_factory(engine) -> scoped_session[Session]:
     return scoped_session(sessionmaker(bind=engine, expire_on_commit=False, future=True))
 
 

@@ -29,12 +29,11 @@ from flask import (
     Response as FlaskResponse,
 )
 from flask_login import current_user
-from sqlalchemy import func, select
 from sqlalchemy.exc import IntegrityError
 
-from webapp import placement, services
-from webapp.models import Enrolment, ReadingSession, Region, Response, Study, StudyImage, Trial
-from webapp.security import db, role_required
+from webapp import display_check, pixels, placement, queries
+from webapp.models import ReadingSession, Study, Trial, db
+from webapp.security import role_required
 
 bp = Blueprint("reading", __name__, url_prefix="/reading")
 reader_only = role_required("reader")
@@ -49,18 +48,13 @@ def _enrolled(study_id: int, states=("open", "closed")) -> Study:
     st = db().get(Study, study_id)
     if st is None or st.status not in states:
         abort(404)
-    e = (
-        db()
-        .execute(select(Enrolment.id).where(Enrolment.study_id == study_id, Enrolment.user_id == current_user.id))
-        .first()
-    )
-    if e is None:
+    if not queries.is_enrolled(db(), study_id, current_user.id):
         abort(404)
     return st
 
 
 def _own_trial(public_id: str) -> Trial:
-    t = db().execute(select(Trial).where(Trial.public_id == public_id)).scalars().first()
+    t = queries.trial_by_public_id(db(), public_id)
     if t is None or t.reader_id != current_user.id:
         abort(404)
     return t
@@ -79,21 +73,7 @@ def _passed_session(study_id: int) -> ReadingSession | None:
 def _counts(study_id: int, study: Study | None = None) -> dict:
     """Trials and answers of the signed-in reader, practice apart (one query).  In a study placed as the reader
     goes, the totals come from its plan (the trials are made one at a time)."""
-    rows = (
-        db()
-        .execute(
-            select(Trial.practice, func.count(Trial.id), func.count(Response.id))
-            .outerjoin(Response, Response.trial_id == Trial.id)
-            .where(Trial.study_id == study_id, Trial.reader_id == current_user.id)
-            .group_by(Trial.practice)
-        )
-        .all()
-    )
-    out = {"answered": 0, "total": 0, "practice_answered": 0, "practice_total": 0}
-    for practice, n, answered in rows:
-        key = "practice_" if practice else ""
-        out[f"{key}total"] += int(n)
-        out[f"{key}answered"] += int(answered)
+    out = queries.trial_counts(db(), study_id, current_user.id)
     st = study if study is not None else db().get(Study, study_id)
     totals = placement.reader_totals(st) if st is not None else None
     if totals is not None:
@@ -104,24 +84,14 @@ def _counts(study_id: int, study: Study | None = None) -> dict:
 @bp.route("/")
 @reader_only
 def home():
-    rows = (
-        db()
-        .execute(
-            select(Study)
-            .join(Enrolment, Enrolment.study_id == Study.id)
-            .where(Enrolment.user_id == current_user.id, Study.status.in_(("open", "closed")))
-            .order_by(Study.id)
-        )
-        .scalars()
-        .all()
-    )
+    rows = queries.readers_studies(db(), current_user.id)
     studies = [{"study": st, **_counts(st.id, st)} for st in rows]
     return render_template("reading/home.html", studies=studies)
 
 
 # --------------------------------------------------------------------------- display check
 def _new_check(rs: ReadingSession) -> None:
-    rs.check_site = secrets.randbelow(len(services.CHECK_SITES))
+    rs.check_site = secrets.randbelow(len(display_check.CHECK_SITES))
     rs.check_seed = secrets.randbelow(2**31)
 
 
@@ -133,14 +103,7 @@ def check(study_id):
     sid = session.get(_session_key(study_id))
     rs = s.get(ReadingSession, sid) if sid else None
     if rs is None or rs.reader_id != current_user.id or rs.study_id != study_id:
-        number = (
-            s.scalar(
-                select(func.max(ReadingSession.number)).where(
-                    ReadingSession.study_id == study_id, ReadingSession.reader_id == current_user.id
-                )
-            )
-            or 0
-        ) + 1
+        number = queries.next_sitting_number(s, study_id, current_user.id)
         rs = ReadingSession(
             study_id=study_id,
             reader_id=current_user.id,
@@ -153,7 +116,9 @@ def check(study_id):
         s.add(rs)
         s.commit()
         session[_session_key(study_id)] = rs.id
-    return render_template("reading/check.html", study=st, rs=rs, size=services.CHECK_SIZE, sites=services.CHECK_SITES)
+    return render_template(
+        "reading/check.html", study=st, rs=rs, size=display_check.CHECK_SIZE, sites=display_check.CHECK_SITES
+    )
 
 
 @bp.route("/api/studies/<int:study_id>/check/pattern")
@@ -164,12 +129,19 @@ def check_pattern(study_id):
     rs = db().get(ReadingSession, sid) if sid else None
     if rs is None or rs.reader_id != current_user.id:
         return jsonify(error="open the display check page first"), 409
-    body = services.display_check_pattern(rs.check_site, rs.check_seed)
+    body = display_check.display_check_pattern(rs.check_site, rs.check_seed)
     return FlaskResponse(
         body,
         mimetype="application/octet-stream",
-        headers={"X-Rows": str(services.CHECK_SIZE), "X-Cols": str(services.CHECK_SIZE)},
+        headers={"X-Rows": str(display_check.CHECK_SIZE), "X-Cols": str(display_check.CHECK_SIZE)},
     )
+
+
+def _whole(value: object) -> int:
+    """``int(value)`` for a JSON number or string; TypeError or ValueError for anything else (as ``int`` raises)."""
+    if not isinstance(value, (int, float, str)):
+        raise TypeError(f"not a number: {type(value).__name__}")
+    return int(value)
 
 
 def _float(data, key, lo, hi):
@@ -189,9 +161,11 @@ def check_answer(study_id):
     rs = s.get(ReadingSession, sid) if sid else None
     if rs is None or rs.reader_id != current_user.id:
         return jsonify(error="start the display check from its page"), 400
-    data = request.get_json(silent=True) or {}
+    data = request.get_json(silent=True)
+    if not isinstance(data, dict):  # a JSON array or number was a 500 (no .get) before: now "site must be …"
+        data = {}
     try:
-        site = int(data.get("site"))
+        site = _whole(data.get("site"))
     except (TypeError, ValueError):
         return jsonify(error="site must be a whole number"), 400
     distance = _float(data, "viewing_distance_mm", 100, 2000)
@@ -268,39 +242,16 @@ def next_trial(study_id):
 @bp.route("/api/trials/<public_id>/region")
 @reader_only
 def region(public_id):
-    # one query on the hot path: whose trial, is the study open, where are the crops, which stored image
-    row = (
-        db()
-        .execute(
-            select(
-                Trial.reader_id,
-                Trial.study_id,
-                Trial.tile_order,
-                Study.status,
-                Study.region_rows,
-                Study.region_cols,
-                Region.row0,
-                Region.col0,
-                Region.tile_px,
-                Region.tiles_json,
-                StudyImage.sha256,
-            )
-            .join(Study, Study.id == Trial.study_id)
-            .join(Region, Region.id == Trial.region_id)
-            .join(StudyImage, StudyImage.id == Region.image_id)
-            .where(Trial.public_id == public_id)
-        )
-        .first()
-    )
+    row = queries.trial_pixels_source(db(), public_id)
     if row is None or row.reader_id != current_user.id or row.status != "open":
         abort(404)
     store = current_app.config["STORE_DIR"]
     if row.tile_order:
         order = json.loads(row.tile_order)
-        body = services.tiles_bytes(store, row.sha256, row.study_id, json.loads(row.tiles_json), order, row.tile_px)
+        body = pixels.tiles_bytes(store, row.sha256, row.study_id, json.loads(row.tiles_json), order, row.tile_px)
         headers = {"X-Rows": str(row.tile_px), "X-Cols": str(row.tile_px), "X-Tiles": str(len(order))}
     else:
-        body = services.region_bytes(
+        body = pixels.region_bytes(
             store, row.sha256, row.study_id, row.row0, row.col0, row.region_rows, row.region_cols
         )
         headers = {"X-Rows": str(row.region_rows), "X-Cols": str(row.region_cols)}
@@ -313,6 +264,8 @@ def respond(public_id):
     t = _own_trial(public_id)
     s = db()
     st = s.get(Study, t.study_id)
+    if st is None:  # cannot happen while trials.study_id is a foreign key; a 404 rather than a 500 if it did
+        abort(404)
     if st.status != "open":
         return jsonify(error="the study is closed"), 409
     rs = _passed_session(st.id)
@@ -325,9 +278,9 @@ def respond(public_id):
     m = len(order) if order else len(t.region.sites)
     key = "chosen_position" if order else "chosen_site"
     try:
-        choice = int(data.get(key))
-        ms = int(data.get("response_ms"))
-        zoom = int(data.get("zoom", 1))
+        choice = _whole(data.get(key))
+        ms = _whole(data.get("response_ms"))
+        zoom = _whole(data.get("zoom", 1))
     except (TypeError, ValueError):
         return jsonify(error=f"{key}, response_ms and zoom must be whole numbers"), 400
     window, level = _float(data, "window", 1e-9, 1e6), _float(data, "level", -1e6, 1e6)
@@ -356,7 +309,7 @@ def respond(public_id):
         return jsonify(error="this trial is already answered", duplicate=True), 409
     except placement.StaleState:
         return jsonify(error="the server was busy; the answer was not stored, send it again", retry=True), 503
-    out = {"stored": True}
+    out: dict[str, object] = {"stored": True}
     if t.practice or st.show_feedback:
         # only now, with the response stored, may the truth leave the server
         true_site = int(t.region.true_site)

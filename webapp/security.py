@@ -31,6 +31,7 @@ from werkzeug.exceptions import RequestEntityTooLarge
 from werkzeug.security import check_password_hash, generate_password_hash
 
 from scorer.errors import LimenError
+from webapp.models import db  # scorer/commands/users.py still imports it from here
 
 CSP = (
     "default-src 'self'; script-src 'self'; style-src 'self'; img-src 'self' data:; connect-src 'self'; "
@@ -40,11 +41,6 @@ CSP = (
 REPORT_CSP = "default-src 'none'; style-src 'unsafe-inline'; img-src data:; frame-ancestors 'self'"
 
 csrf = CSRFProtect()
-
-
-def db():
-    """The request's database session."""
-    return current_app.extensions["limen_db"]
 
 
 def study_or_404(study_id: int):
@@ -81,7 +77,7 @@ def role_required(*roles):
                 abort(403)
             return view(*args, **kwargs)
 
-        wrapped.limen_roles = roles
+        wrapped.limen_roles = roles  # type: ignore[attr-defined]  # a marker the route tests read
         return wrapped
 
     return deco
@@ -148,7 +144,7 @@ class _CappedSpool(tempfile.SpooledTemporaryFile):
 
 class LimenRequest(Request):
     def _get_file_stream(self, total_content_length, content_type, filename=None, content_length=None):
-        from webapp.services import safe_label
+        from webapp.content_store import safe_label
 
         return _CappedSpool(current_app.config["MAX_IMAGE_BYTES"], safe_label(filename))
 
@@ -159,7 +155,7 @@ def _limit_body() -> None:
     if not chunked and not request.content_length:  # no body (every GET): no need to look at the user
         request.max_content_length = current_app.config["MAX_FORM_BYTES"]
         return
-    view = current_app.view_functions.get(request.endpoint)
+    view = current_app.view_functions.get(request.endpoint or "")
     big = (
         getattr(view, "limen_upload", False)
         and current_user.is_authenticated

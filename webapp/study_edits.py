@@ -4,7 +4,7 @@ Only what no reader has seen can be deleted: a study, or an image of it, while t
 and no job opening it).  An open or closed study keeps everything (its responses are the study's record); a
 closed one can be reopened with a stated reason.  Each operation is audited in the caller's transaction.  After
 the commit, :func:`discard_files` removes the store files of a deletion that no other study refers to
-(:func:`webapp.services.discard_unreferenced`) and a draft's leftover display pixels (a failed opening).
+(:func:`webapp.content_store.discard_unreferenced`) and a draft's leftover display pixels (a failed opening).
 """
 
 from __future__ import annotations
@@ -52,7 +52,7 @@ def reopen(study: Study, reason: str) -> None:
     audit("reopen_study", study.id, reason=reason, closed_at=closed_at, reopened_at=utcnow())
 
 
-def _store_paths(store_dir: Path, study: Study, images) -> list[Path]:
+def _store_paths(store_dir: Path, study: Study | None, images) -> list[Path]:
     """The store files a deleted study or image used (bundled layouts and files elsewhere are never touched)."""
     store = Path(store_dir).resolve()
     paths = [store / im.stored_name for im in images]
@@ -103,7 +103,7 @@ def delete_draft(session, study: Study, store_dir: Path) -> list[Path]:
 def discard_files(session, store_dir: Path, files, study_id: int | None = None) -> list[Path]:
     """After the commit: remove ``files`` that no study refers to any more, and (for a deleted draft) its display
     pixels; return what was removed."""
-    from webapp.services import discard_unreferenced
+    from webapp.content_store import discard_unreferenced
 
     gone = discard_unreferenced(session, files)
     if study_id is not None:

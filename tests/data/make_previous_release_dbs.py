@@ -203,8 +203,8 @@ def webapp(path: Path, instance: Path) -> None:
         Trial,
         TrialShown,
         User,
+        db,
     )
-    from webapp.security import db
 
     app = create_app({"INSTANCE_PATH": str(instance), "DATABASE_URL": f"sqlite:///{path}", "SECRET_KEY": "x" * 40})
     with app.app_context():
