@@ -22,11 +22,13 @@ import json
 import tomllib
 from dataclasses import asdict, dataclass
 from pathlib import Path
+from typing import Any
 
 import numpy as np
+from numpy.typing import ArrayLike, NDArray
 
 from scorer.errors import LimenError
-from scorer.files import atomic_write_text
+from scorer.files import PathArg, atomic_write_text
 
 KINDS = ("linear", "logarithmic")
 
@@ -38,31 +40,31 @@ class ConversionFunction:
     gain: float
     source: str = ""
 
-    def __post_init__(self):
+    def __post_init__(self) -> None:
         if self.kind not in KINDS:
             raise ValueError(f"conversion kind must be one of {KINDS}, got {self.kind!r}")
         if not np.isfinite(self.gain) or self.gain == 0:
             raise ValueError("conversion gain must be finite and non-zero")
 
-    def to_kerma_ugy(self, pixel_values) -> np.ndarray:
+    def to_kerma_ugy(self, pixel_values: ArrayLike) -> NDArray[np.float64]:
         """Air kerma (µGy) for stored pixel values."""
         pv = np.asarray(pixel_values, dtype=np.float64)
         if self.kind == "linear":
             return (pv - self.offset) / self.gain
         return np.exp((pv - self.offset) / self.gain)
 
-    def to_pixel_value(self, kerma_ugy) -> np.ndarray:
+    def to_pixel_value(self, kerma_ugy: ArrayLike) -> NDArray[np.float64]:
         """Stored pixel value for air kerma (µGy) — the inverse of :meth:`to_kerma_ugy`."""
         k = np.asarray(kerma_ugy, dtype=np.float64)
         if self.kind == "linear":
             return self.offset + self.gain * k
         return self.offset + self.gain * np.log(k)
 
-    def to_dict(self) -> dict:
+    def to_dict(self) -> dict[str, Any]:
         return asdict(self)
 
 
-def load_conversion(path) -> ConversionFunction:
+def load_conversion(path: PathArg) -> ConversionFunction:
     """Read a conversion function from a TOML or JSON file (errors name the file)."""
     path = Path(path)
     try:
@@ -93,7 +95,7 @@ def load_conversion(path) -> ConversionFunction:
         raise LimenError(f"bad conversion function: {exc}", path) from None
 
 
-def save_conversion(conv: ConversionFunction, path) -> None:
+def save_conversion(conv: ConversionFunction, path: PathArg) -> None:
     """Write a conversion function as TOML (readable by :func:`load_conversion`), complete or absent."""
     lines = [f'kind = "{conv.kind}"', f"offset = {conv.offset!r}", f"gain = {conv.gain!r}"]
     if conv.source:

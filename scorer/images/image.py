@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 from dataclasses import asdict, dataclass, field
+from typing import Any, cast
 
 import numpy as np
 
@@ -32,11 +33,11 @@ class ImageMetadata:
     # "rising", "falling", or None when the file does not say (see scorer.images.loading.load_image)
     intensity_direction: str | None = None
     linearised: bool = False
-    conversion: dict | None = None  # the conversion function applied, if any
+    conversion: dict[str, Any] | None = None  # the conversion function applied, if any
     warnings: list[str] = field(default_factory=list)
     spacing_source: str = ""  # where spacing_mm came from: tag name or "argument"
 
-    def to_dict(self) -> dict:
+    def to_dict(self) -> dict[str, Any]:
         return asdict(self)
 
 
@@ -60,7 +61,7 @@ class Image:
 
     @property
     def shape(self) -> tuple[int, int]:
-        return self.pixels.shape  # type: ignore[return-value]
+        return cast("tuple[int, int]", self.pixels.shape)  # 2-D by construction (load_image checks)
 
     @property
     def pixel_mm(self) -> float:

@@ -8,12 +8,14 @@ import hashlib
 import json
 from pathlib import Path
 
-from scorer.detector.simulator import DetectorModel, SimulatedImage, detector_model_from_dict, dicom_tags
-from scorer.files import atomic_write_text, read_toml
+from scorer.detector.panel_model import DetectorModel
+from scorer.detector.presets import detector_model_from_dict
+from scorer.detector.simulator import SimulatedImage, dicom_tags
+from scorer.files import PathArg, atomic_write_text, read_toml
 from scorer.images.writers import write_dicom, write_image
 
 
-def load_detector_model(path) -> DetectorModel:
+def load_detector_model(path: PathArg) -> DetectorModel:
     """A model file: ``base = "direct"|"indirect"`` plus any DetectorModel field to override."""
     path = Path(path)
     return detector_model_from_dict(read_toml(path, "detector model"), path)

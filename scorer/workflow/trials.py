@@ -9,10 +9,11 @@ import numpy as np
 import pandas as pd
 
 from scorer.errors import LimenError, plain_value
+from scorer.files import PathArg
 from scorer.study.trials import LABEL_COLUMNS, validate_trials
 
 
-def load_trials(path) -> pd.DataFrame:
+def load_trials(path: PathArg) -> pd.DataFrame:
     """Read a trial table (CSV) and validate it (see :func:`scorer.study.trials.validate_trials`)."""
     path = Path(path)
     if not path.is_file():
@@ -35,7 +36,7 @@ def load_trials(path) -> pd.DataFrame:
 RESPONSE_COLUMNS = ["image", "target", "diameter_mm", "contrast", "m_alternatives", "site", "is_signal", "response"]
 
 
-def load_model_table(path) -> tuple[pd.DataFrame, pd.DataFrame | None]:
+def load_model_table(path: PathArg) -> tuple[pd.DataFrame, pd.DataFrame | None]:
     """The model observer's table for ``limen analyse --model``: its trials, and its responses when given.
 
     A trial table (``trials.csv`` of ``limen score --out``) gives the model's decisions only, so the
