@@ -35,7 +35,22 @@ KINDS = ("linear", "logarithmic")
 
 @dataclass(frozen=True)
 class ConversionFunction:
+    """How a detector's stored pixel values follow air kerma K (µGy).
+
+    Attributes
+    ----------
+    kind : str
+        ``"linear"``: pixel value = offset + gain·K; ``"logarithmic"``: pixel value = offset + gain·ln K.
+    offset : float
+        Pixel value at zero kerma (linear) or at 1 µGy (logarithmic).
+    gain : float
+        Pixel values per µGy (linear) or per unit of ln K (logarithmic); finite and non-zero.
+    source : str
+        Where the function came from (a file, a fit), for the record.
+    """
+
     kind: str
+
     offset: float
     gain: float
     source: str = ""
@@ -65,7 +80,22 @@ class ConversionFunction:
 
 
 def load_conversion(path: PathArg) -> ConversionFunction:
-    """Read a conversion function from a TOML or JSON file (errors name the file)."""
+    """Read a conversion function from a TOML or JSON file (errors name the file).
+
+    Parameters
+    ----------
+    path : str or path-like
+        TOML or JSON file with ``kind``, ``offset`` and ``gain``.
+
+    Returns
+    -------
+    ConversionFunction
+
+    Raises
+    ------
+    LimenError
+        One line naming the file when it cannot be read or holds no valid conversion function.
+    """
     path = Path(path)
     try:
         text = path.read_text(encoding="utf-8")
@@ -96,7 +126,15 @@ def load_conversion(path: PathArg) -> ConversionFunction:
 
 
 def save_conversion(conv: ConversionFunction, path: PathArg) -> None:
-    """Write a conversion function as TOML (readable by :func:`load_conversion`), complete or absent."""
+    """Write a conversion function as TOML (readable by :func:`load_conversion`), complete or absent.
+
+    Parameters
+    ----------
+    conv : ConversionFunction
+        The function to write.
+    path : str or path-like
+        The TOML file written.
+    """
     lines = [f'kind = "{conv.kind}"', f"offset = {conv.offset!r}", f"gain = {conv.gain!r}"]
     if conv.source:
         lines.append("source = " + json.dumps(conv.source))

@@ -42,7 +42,18 @@ from scorer.images.spacing import check_spacing
 
 
 def image_content_hash(path: PathArg) -> str:
-    """SHA-256 (hex) of a file's bytes, as recorded in ``ImageMetadata.content_sha256``."""
+    """SHA-256 (hex) of a file's bytes, as recorded in ``ImageMetadata.content_sha256``.
+
+    Parameters
+    ----------
+    path : str or path-like
+        The file.
+
+    Returns
+    -------
+    str
+        64 hexadecimal digits.
+    """
     path = Path(path)
     digest = hashlib.sha256()
     try:

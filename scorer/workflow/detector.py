@@ -53,6 +53,11 @@ def beam_qualities() -> dict[str, BeamQuality]:
 
     General-radiography RQA qualities only (values from memory of IEC 62220-1-1);
     mammography q values must be supplied by the user.
+
+    Returns
+    -------
+    dict of str to BeamQuality
+        Upper-case beam name (``"RQA5"``) → its q (photons per mm² per µGy), the standard and a note.
     """
     text = resources.files("scorer").joinpath("data/beam_qualities.csv").read_text(encoding="utf-8")
     lines = [ln for ln in text.splitlines() if ln.strip() and not ln.lstrip().startswith("#")]
@@ -67,7 +72,23 @@ def beam_qualities() -> dict[str, BeamQuality]:
 
 
 def q_for_beam(beam: str) -> float:
-    """q (photons per mm² per µGy) of a named beam quality, e.g. ``"RQA5"``."""
+    """q (photons per mm² per µGy) of a named beam quality, e.g. ``"RQA5"``.
+
+    Parameters
+    ----------
+    beam : str
+        Beam quality name, any case (``"rqa5"``).
+
+    Returns
+    -------
+    float
+        q in photons per mm² per µGy.
+
+    Raises
+    ------
+    LimenError
+        For a beam quality not in the table (naming the known ones).
+    """
     table = beam_qualities()
     key = str(beam).strip().upper()
     if key not in table:
@@ -97,7 +118,27 @@ def load_images(
     """Read flat-field (``role="flat"``) or edge (``role="edge"``) images, passing each warning to ``warn``
     once: what reading warned about, the image's own metadata warnings, and for a FOR PRESENTATION image
     why it cannot serve its role (also added to its ``metadata.warnings``).  ``for_conversion_fit`` reads the
-    stored values whatever their relation to the beam (see :func:`scorer.images.loading.load_image`)."""
+    stored values whatever their relation to the beam (see :func:`scorer.images.loading.load_image`).
+
+    Parameters
+    ----------
+    paths : iterable of str or path-like
+        The image files.
+    spacing : float or (float, float), optional
+        Pixel spacing (mm) for files that carry none, or to override DICOM's.
+    conversion : ConversionFunction, optional
+        Conversion function that linearises the pixels.
+    role : {"flat", "edge"}
+        What the images are for (named in the FOR PRESENTATION warning).
+    for_conversion_fit : bool
+        Read the stored values for a conversion-function fit.
+    warn : callable
+        Called with the text of each warning.
+
+    Returns
+    -------
+    list of Image
+    """
     images: list[Image] = []
     for p in paths:
         with warnings.catch_warnings(record=True) as caught:
@@ -166,7 +207,17 @@ def check_distinct_and_kerma(
 @dataclass
 class DetectorMeasurement:
     """What :func:`measure_detector_files` found: the metrics (None when no image was given), the conversion
-    function used (as recorded in detector.json) and the notes on how the images were read."""
+    function used (as recorded in detector.json) and the notes on how the images were read.
+
+    Attributes
+    ----------
+    metrics : DetectorMetrics or None
+        MTF, NNPS, DQE and the rest; None when no image was given.
+    conversion : dict or None
+        The conversion function used, as recorded in detector.json.
+    notes : list of str
+        How the images were read (also passed to ``warn``).
+    """
 
     metrics: DetectorMetrics | None
     conversion: dict[str, Any] | None
@@ -198,6 +249,11 @@ def measure_detector_files(
     kerma_csv : CSV ``path,kerma_ugy`` of flat fields at several kermas to fit the conversion function to.
     noise_csv : CSV ``path,kerma_ugy`` of flat fields at several kermas for the noise components.
     warn : called with each warning's text as it arises (the CLI prints them on stderr).
+
+    Returns
+    -------
+    DetectorMeasurement
+        The metrics (None when no image was given), the conversion function used and the notes.
     """
     if beam is not None and q_per_mm2_ugy is None:
         q_per_mm2_ugy = q_for_beam(beam)

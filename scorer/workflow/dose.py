@@ -25,13 +25,39 @@ def file_background_kerma_ugy(
     path: PathArg, *, conversion: ConversionFunction, pixel_spacing_mm: float | tuple[float, float] | None = None
 ) -> float:
     """Air kerma (µGy) of an image file's plate background through the conversion function
-    (:func:`scorer.detector.dose.background_kerma_ugy`)."""
+    (:func:`scorer.detector.dose.background_kerma_ugy`).
+
+    Parameters
+    ----------
+    path : str or path-like
+        The image file.
+    conversion : ConversionFunction
+        Conversion function of the panel.
+    pixel_spacing_mm : float or (float, float), optional
+        For files that carry no spacing.
+
+    Returns
+    -------
+    float
+        Air kerma in µGy.
+    """
     return background_kerma_ugy(load_image(path, pixel_spacing_mm=pixel_spacing_mm, conversion=conversion).pixels)
 
 
 def file_panel(path: PathArg) -> tuple[str | None, str | None]:
     """An image file's DICOM Detector Type (0018,7004) and Detector ID (0018,700A) from its header, (None, None)
-    for a file that is not DICOM or does not say (its own read, later, explains what is wrong with it)."""
+    for a file that is not DICOM or does not say (its own read, later, explains what is wrong with it).
+
+    Parameters
+    ----------
+    path : str or path-like
+        The image file.
+
+    Returns
+    -------
+    (str or None, str or None)
+        Detector Type and Detector ID.
+    """
     import warnings
 
     import pydicom
@@ -59,6 +85,26 @@ def series_groups(
     Each image's kerma is the kerma CSV's (``path,kerma_ugy``), else its plate background through the conversion
     function; with both, the two are compared (:func:`~scorer.detector.dose_groups.check_kerma_agreement`).
     ``progress(iterable)`` wraps the loop that reads each image for its background kerma.
+
+    Parameters
+    ----------
+    images : iterable of str or path-like
+        The image files of the series.
+    kerma_csv : str or path-like, optional
+        CSV ``path,kerma_ugy`` giving each image's kerma.
+    conversion : ConversionFunction, optional
+        Conversion function, for the kerma of each image's plate background.
+    pixel_spacing_mm : float or (float, float), optional
+        For files that carry no spacing.
+    progress : callable, optional
+        Wraps the list of paths read for their background kerma (a progress bar).
+
+    Returns
+    -------
+    groups : OrderedDict of float to list of str
+        Kerma (µGy) → the images taken at it, in increasing kerma.
+    warnings : list of str
+        Disagreements between the listed and the measured kermas.
     """
     paths = [str(p) for p in images]
     check_one_panel(paths, [file_panel(p) for p in paths])
@@ -100,6 +146,31 @@ def score_dose_series(
 
     ``score_kwargs`` go to :func:`~scorer.workflow.scoring.score_files` (conversion, pixel_spacing_mm, blur,
     n_boot, …); ``on_group(kerma, paths, result)`` is called after each group.
+
+    Parameters
+    ----------
+    groups : OrderedDict of float to list of str
+        Kerma (µGy) → the image files taken at it (:func:`series_groups`).
+    layout : Layout
+        The phantom's layout.
+    observer : {"npw", "npwe"}
+        Model observer.
+    method : {"dprime", "count", "both"}
+        Threshold method(s); the dose response is fitted to the d′ method's unless ``"count"``.
+    limits : Limits, optional
+        Limits: the kerma at which each diameter meets its limit is reported.
+    human_factor : HumanFactor or float, optional
+        Human/model threshold factor, for limits written for human readers.
+    seed : int
+        Seed of the bootstrap and of the kerma CIs' draws.
+    on_group : callable, optional
+        Called as ``on_group(kerma, paths, result)`` after each group.
+    **score_kwargs
+        Passed to :func:`~scorer.workflow.scoring.score_files`.
+
+    Returns
+    -------
+    DoseSeriesResult
     """
 
     def score_group(paths: Sequence[str], methods: Sequence[str]) -> ScoreResult:

@@ -20,7 +20,17 @@ _PIXEL_TAGS = (0x7FE00010, 0x7FE00008, 0x7FE00009)  # Pixel Data, Float / Double
 
 def read_image_metadata(path: PathArg) -> ImageMetadata:
     """The metadata of an image file: from the DICOM header alone when it is sound, else from a full read
-    (whose :class:`~scorer.errors.LimenError` names the problem; its warnings are not shown)."""
+    (whose :class:`~scorer.errors.LimenError` names the problem; its warnings are not shown).
+
+    Parameters
+    ----------
+    path : str or path-like
+        The image file.
+
+    Returns
+    -------
+    ImageMetadata
+    """
     path = Path(path)
     md = _quick_metadata(path)
     if md is None:
@@ -66,7 +76,18 @@ def _quick_metadata(path: Path) -> ImageMetadata | None:
 
 def read_acquisition_extras(path: PathArg) -> dict[str, str | None]:
     """Anode Target Material (0018,1191), Filter Material (0018,7050) and Content Date (0008,0023) of a DICOM
-    file (``anode``, ``filter``, ``content_date`` as YYYY-MM-DD); empty when the header cannot be read."""
+    file (``anode``, ``filter``, ``content_date`` as YYYY-MM-DD); empty when the header cannot be read.
+
+    Parameters
+    ----------
+    path : str or path-like
+        The DICOM file.
+
+    Returns
+    -------
+    dict of str to str or None
+        ``anode``, ``filter`` and ``content_date``, those the header gives.
+    """
     import pydicom
 
     out: dict[str, str | None] = {}

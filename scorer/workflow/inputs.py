@@ -40,14 +40,36 @@ EXAMPLE_LIMITS = DATA_DIR / "limits-eu-guidelines-2006-digital-mammography.toml"
 
 
 def load_limits(path: PathArg) -> Limits:
-    """Read and validate a limits file ``limen-limits/1`` (errors name the file and the entry)."""
+    """Read and validate a limits file ``limen-limits/1`` (errors name the file and the entry).
+
+    Parameters
+    ----------
+    path : str or path-like
+        The limits TOML file.
+
+    Returns
+    -------
+    Limits
+    """
     path = Path(path)
     return parse_limits(read_toml(path, "limits file"), path)
 
 
 def human_factor_from_analysis(path: PathArg, observer: str) -> HumanFactor:
     """The human/model threshold factor that `limen analyse --model` measured for ``observer``, from its
-    analysis.json."""
+    analysis.json.
+
+    Parameters
+    ----------
+    path : str or path-like
+        The analysis.json of ``limen analyse --model``.
+    observer : {"npw", "npwe"}
+        The model observer whose factor is wanted.
+
+    Returns
+    -------
+    HumanFactor
+    """
     return parse_human_factor(read_json(path, "analysis file (an analysis.json)"), observer, path)
 
 
@@ -58,6 +80,22 @@ def resolve_human_factor(
 
     With ``method`` (the threshold method the factor will be applied to), a factor the analysis measured only
     for another method is refused here, before any image is scored (:meth:`HumanFactor.for_method`).
+
+    Parameters
+    ----------
+    value : float, optional
+        ``--human-factor``.
+    analysis_file : str or path-like, optional
+        ``--human-factor-from``.
+    observer : {"npw", "npwe"}
+        The model observer the factor is for.
+    method : {"dprime", "count"}, optional
+        The threshold method the factor will be applied to.
+
+    Returns
+    -------
+    HumanFactor, float or None
+        The factor read from the analysis, the value given, or None when neither was given.
     """
     if analysis_file:
         if value is not None:
@@ -68,12 +106,32 @@ def resolve_human_factor(
 
 
 def load_mtf(path: PathArg) -> SystemBlur:
-    """The measured presampling MTF of a ``limen detector`` JSON, as the templates' system blur."""
+    """The measured presampling MTF of a ``limen detector`` JSON, as the templates' system blur.
+
+    Parameters
+    ----------
+    path : str or path-like
+        A detector.json written by ``limen detector``.
+
+    Returns
+    -------
+    SystemBlur
+    """
     return SystemBlur.from_detector_dict(read_json(path, "MTF file (a limen detector JSON)"), path)
 
 
 def load_defect_map(path: PathArg) -> DefectMap:
-    """The defect map (defective pixels and lines from flat fields) of a ``limen detector`` JSON."""
+    """The defect map (defective pixels and lines from flat fields) of a ``limen detector`` JSON.
+
+    Parameters
+    ----------
+    path : str or path-like
+        A detector.json written by ``limen detector --flat …``.
+
+    Returns
+    -------
+    DefectMap
+    """
     data = read_json(path, "defect map file (a limen detector JSON)")
     entry = data.get("defect_map") if isinstance(data, dict) else None
     if not isinstance(entry, dict):
@@ -86,6 +144,16 @@ def read_kerma_csv(path: PathArg) -> list[tuple[Path, float]]:
 
     Each image is listed once, with a positive, finite air kerma (µGy): an image listed twice is refused (which
     line is right cannot be told), never averaged.
+
+    Parameters
+    ----------
+    path : str or path-like
+        The CSV file.
+
+    Returns
+    -------
+    list of (Path, float)
+        Each image's path (made absolute against the CSV's folder) and its air kerma in µGy, in file order.
     """
     import math
 

@@ -10,15 +10,48 @@ from scorer.files import PathArg, read_json
 
 
 def load_detector_json(path: PathArg) -> dict[str, Any]:
-    """A ``limen detector`` JSON (detector.json): MTF, NNPS and/or DQE curves, checked."""
+    """A ``limen detector`` JSON (detector.json): MTF, NNPS and/or DQE curves, checked.
+
+    Parameters
+    ----------
+    path : str or path-like
+        detector.json.
+
+    Returns
+    -------
+    dict
+        Its content, checked.
+    """
     return check_detector_json(read_json(path, "detector JSON"), path)
 
 
 def load_dose_json(path: PathArg) -> dict[str, Any]:
-    """A ``limen dose-series --json`` output (keys "groups" and "fits"), checked."""
+    """A ``limen dose-series --json`` output (keys "groups" and "fits"), checked.
+
+    Parameters
+    ----------
+    path : str or path-like
+        The JSON file.
+
+    Returns
+    -------
+    dict
+        Its content, checked.
+    """
     return check_dose_json(read_json(path, "dose-series JSON"), path)
 
 
 def load_scored_json(path: PathArg) -> list[dict[str, Any]]:
-    """Thresholds from a ``limen score --json`` output (key "thresholds")."""
+    """Thresholds from a ``limen score --json`` output (key "thresholds").
+
+    Parameters
+    ----------
+    path : str or path-like
+        The JSON file.
+
+    Returns
+    -------
+    list of dict
+        One record per threshold point.
+    """
     return scored_thresholds(read_json(path, "score JSON"), path)

@@ -27,6 +27,22 @@ class ImageFiles(Sequence[Image]):
     A file given twice (the same resolved path) is refused at once.  The warnings that reading raises
     (:class:`~scorer.images.image.LimenWarning`: FOR PRESENTATION images, a conversion function of the other
     kind than the file says, …) are kept in ``notes``, in reading order.
+
+    Parameters
+    ----------
+    paths : iterable of str or path-like
+        The image files, in scoring order.
+    pixel_spacing_mm : float or (float, float), optional
+        Spacing for files that carry none, or to override DICOM's.
+    conversion : ConversionFunction, optional
+        Conversion function that linearises the pixels.
+
+    Attributes
+    ----------
+    paths : list
+        The files as given.
+    notes : list of str
+        The warnings reading raised so far, in reading order.
     """
 
     def __init__(
@@ -94,6 +110,10 @@ def score_files(
 
     The result's warnings are the missing-conversion note, then what reading each image warned about (in
     order), then the scoring's own.
+
+    Returns
+    -------
+    ScoreResult
     """
     images = ImageFiles(paths, pixel_spacing_mm=pixel_spacing_mm, conversion=conversion)
     result = score_images(images, layout, names=images.paths, conversion=conversion, **kwargs)

@@ -14,7 +14,18 @@ from scorer.study.trials import LABEL_COLUMNS, validate_trials
 
 
 def load_trials(path: PathArg) -> pd.DataFrame:
-    """Read a trial table (CSV) and validate it (see :func:`scorer.study.trials.validate_trials`)."""
+    """Read a trial table (CSV) and validate it (see :func:`scorer.study.trials.validate_trials`).
+
+    Parameters
+    ----------
+    path : str or path-like
+        The CSV file.
+
+    Returns
+    -------
+    pandas.DataFrame
+        The trials, validated.
+    """
     path = Path(path)
     if not path.is_file():
         raise LimenError("file not found", path)
@@ -43,6 +54,18 @@ def load_model_table(path: PathArg) -> tuple[pd.DataFrame, pd.DataFrame | None]:
     human/model factor is measured for the count method; a responses table (``responses.csv``: one row per
     candidate site with ``is_signal`` and ``response``) gives both — the decisions are its M-AFC choices
     (:func:`scorer.observer.npw.decide`) and the d′ method reads the responses themselves.
+
+    Parameters
+    ----------
+    path : str or path-like
+        ``trials.csv`` or ``responses.csv`` of ``limen score --out``.
+
+    Returns
+    -------
+    trials : pandas.DataFrame
+        The model's M-AFC trials.
+    responses : pandas.DataFrame or None
+        Its per-site responses, when the file holds them.
     """
     from scorer.observer.npw import decide
 
