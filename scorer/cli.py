@@ -9,6 +9,8 @@ from __future__ import annotations
 
 import importlib
 import sys
+from collections.abc import Sequence
+from typing import Any
 
 import click
 
@@ -56,8 +58,16 @@ COMMANDS: dict[str, tuple[str, str, str]] = {
 class _LimenGroup(click.Group):
     """The ``limen`` group: lazy sub-commands, one-line errors for expected bad input, the call recorded."""
 
-    def main(self, args=None, prog_name=None, standalone_mode=True, **kwargs):
+    def main(
+        self,
+        args: Sequence[str] | None = None,
+        prog_name: str | None = None,
+        complete_var: str | None = None,
+        standalone_mode: bool = True,
+        **kwargs: Any,
+    ) -> Any:
         set_invocation(sys.argv[1:] if args is None else list(args))
+        kwargs["complete_var"] = complete_var
         if not standalone_mode:
             return super().main(args=args, prog_name=prog_name, standalone_mode=False, **kwargs)
         try:
@@ -75,26 +85,26 @@ class _LimenGroup(click.Group):
             sys.exit(1)
         sys.exit(rv if isinstance(rv, int) else 0)
 
-    def list_commands(self, ctx):
+    def list_commands(self, ctx: click.Context) -> list[str]:
         return sorted(set(COMMANDS) | set(self.commands))
 
-    def get_command(self, ctx, name):
+    def get_command(self, ctx: click.Context, name: str) -> click.Command | None:
         if name in self.commands:
             return self.commands[name]
         if name not in COMMANDS:
             return None
         module_name, attr, _ = COMMANDS[name]
-        cmd = getattr(importlib.import_module(f"scorer.commands.{module_name}"), attr)
+        cmd: click.Command = getattr(importlib.import_module(f"scorer.commands.{module_name}"), attr)
         self.add_command(cmd, name)
         return cmd
 
-    def format_commands(self, ctx, formatter):
+    def format_commands(self, ctx: click.Context, formatter: click.HelpFormatter) -> None:
         rows = [(name, COMMANDS[name][2]) for name in sorted(COMMANDS)]
         if rows:
             with formatter.section("Commands"):
                 formatter.write_dl(rows)
 
-    def invoke(self, ctx):
+    def invoke(self, ctx: click.Context) -> Any:
         try:
             return super().invoke(ctx)
         except LimenError as exc:
@@ -104,7 +114,7 @@ class _LimenGroup(click.Group):
 
 @click.group(cls=_LimenGroup, context_settings={"help_option_names": ["-h", "--help"]})
 @click.version_option(__version__, prog_name="limen")
-def main():
+def main() -> None:
     """Limen: score contrast-detail phantom images, measure detectors, analyse reader studies.
 
     Results support, and never replace, a qualified medical physicist's judgement.

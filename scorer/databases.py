@@ -19,10 +19,18 @@ from __future__ import annotations
 
 import os
 import zlib
+from collections.abc import Iterable
 from dataclasses import dataclass
 from pathlib import Path
+from types import ModuleType
+from typing import TYPE_CHECKING
 
 from scorer.errors import LimenError
+
+if TYPE_CHECKING:
+    from alembic.config import Config
+    from sqlalchemy import MetaData
+    from sqlalchemy.engine import URL, Connection, Engine
 
 SQLITE_MAGIC = b"SQLite format 3\x00"
 
@@ -47,7 +55,7 @@ class DatabaseKind:
 
     name: str
     version_table: str
-    legacy_tables: frozenset
+    legacy_tables: frozenset[str]
     created_by: str
     migrations: str
 
@@ -78,7 +86,7 @@ WEB_APP = DatabaseKind(
 KINDS = (NIGHTLY, WEB_APP)
 
 
-def display_url(url) -> str:
+def display_url(url: str | URL) -> str:
     """``url`` as shown in messages and reports: the password hidden."""
     from sqlalchemy.engine import make_url
 
@@ -94,7 +102,7 @@ def short_error(exc: BaseException, limit: int = 200) -> str:
     return text if len(text) <= limit else text[: limit - 1] + "…"
 
 
-def check_url(url, kind: DatabaseKind, *, create: bool, option: str = "--db"):
+def check_url(url: str | URL, kind: DatabaseKind, *, create: bool, option: str = "--db") -> URL:
     """The parsed URL of a database Limen can open for ``kind``; raises LimenError (one line) otherwise.
 
     Parameters
@@ -140,7 +148,7 @@ def check_url(url, kind: DatabaseKind, *, create: bool, option: str = "--db"):
     return u
 
 
-def _check_sqlite(u, kind: DatabaseKind, create: bool) -> None:
+def _check_sqlite(u: URL, kind: DatabaseKind, create: bool) -> None:
     name = u.database
     if not name or name == ":memory:" or u.query.get("mode") == "memory":
         raise LimenError(
@@ -205,7 +213,7 @@ def _create_sqlite_file(path: Path) -> None:
                 pass
 
 
-def prepare(engine, url, kind: DatabaseKind, *, create: bool) -> None:
+def prepare(engine: Engine, url: str | URL, kind: DatabaseKind, *, create: bool) -> None:
     """Check that ``engine``'s database is of ``kind`` and bring its schema to this release's, in one transaction.
 
     Parameters
@@ -232,6 +240,7 @@ def prepare(engine, url, kind: DatabaseKind, *, create: bool) -> None:
             with conn.begin():
                 if conn.dialect.name == "sqlite":
                     dbapi = conn.connection.dbapi_connection
+                    assert dbapi is not None  # a connection just opened is not invalidated
                     if not dbapi.in_transaction:  # the engine leaves BEGIN to pysqlite: take the write lock now
                         conn.exec_driver_sql("BEGIN IMMEDIATE")
                 elif conn.dialect.name == "postgresql":
@@ -243,7 +252,7 @@ def prepare(engine, url, kind: DatabaseKind, *, create: bool) -> None:
         raise LimenError(f"cannot open database: {short_error(exc, 300)}", display_url(url)) from None
 
 
-def classify(tables, kind: DatabaseKind, create: bool, where) -> str:
+def classify(tables: Iterable[str], kind: DatabaseKind, create: bool, where: object) -> str:
     """What a database holding ``tables`` is for a command expecting ``kind``: ``"current"`` (Alembic's version
     table of this kind), ``"legacy"`` (every table of the release before Alembic) or ``"empty"`` (allowed only
     when ``create``); anything else is refused in one line naming ``where``."""
@@ -281,7 +290,7 @@ def _sqlite_tables(path: Path) -> set[str] | None:
         return None
 
 
-def _alembic_config(conn, kind: DatabaseKind):
+def _alembic_config(conn: Connection, kind: DatabaseKind) -> Config:
     from alembic.config import Config
 
     cfg = Config()
@@ -291,7 +300,7 @@ def _alembic_config(conn, kind: DatabaseKind):
     return cfg
 
 
-def _prepare_in(conn, url, kind: DatabaseKind, create: bool) -> None:
+def _prepare_in(conn: Connection, url: str | URL, kind: DatabaseKind, create: bool) -> None:
     from alembic import command
     from alembic.runtime.migration import MigrationContext
     from alembic.script import ScriptDirectory
@@ -303,6 +312,8 @@ def _prepare_in(conn, url, kind: DatabaseKind, create: bool) -> None:
     script = ScriptDirectory.from_config(cfg)
     if legacy:
         base = script.get_base()
+        assert base is not None  # every kind ships its baseline revision
+
         script.get_revision(base).module.adopt(conn)
         command.stamp(cfg, base)
     heads = set(script.get_heads())
@@ -319,7 +330,7 @@ def _prepare_in(conn, url, kind: DatabaseKind, create: bool) -> None:
         command.upgrade(cfg, "heads")
 
 
-def run_migrations(context, kind: DatabaseKind, target_metadata) -> None:
+def run_migrations(context: ModuleType, kind: DatabaseKind, target_metadata: MetaData) -> None:
     """The body of each kind's ``env.py``: run Alembic on the connection :func:`prepare` passes, or, from the
     ``alembic`` command line (developers, see DEVELOPERS.md), on the database given as ``-x db=URL``."""
     cfg = context.config
@@ -340,7 +351,8 @@ def run_migrations(context, kind: DatabaseKind, target_metadata) -> None:
         engine.dispose()
 
 
-def _configure_and_run(context, conn, kind: DatabaseKind, target_metadata) -> None:
+def _configure_and_run(context: ModuleType, conn: Connection, kind: DatabaseKind, target_metadata: MetaData) -> None:
+
     context.configure(
         connection=conn,
         target_metadata=target_metadata,

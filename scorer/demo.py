@@ -20,7 +20,6 @@ from __future__ import annotations
 import argparse
 import html
 import shlex
-import sys
 import time
 from pathlib import Path
 
@@ -46,7 +45,7 @@ PHANTOM_ROTATE_DEG = 1.5
 EDGE_ANGLES_DEG = (2.5, 92.5)
 
 
-def _limen(args: list[str], allowed_exit=(0,)) -> int:
+def _limen(args: list[str], allowed_exit: tuple[int, ...] = (0,)) -> int:
     """Run one ``limen`` command in-process, echoing it as a user would type it."""
     from scorer.cli import main
 
@@ -536,7 +535,7 @@ def _reader_study(out: Path) -> list[tuple[str, str]]:
     return links
 
 
-def main(argv=None) -> None:
+def main(argv: list[str] | None = None) -> None:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--out", default="demo-output", help="output folder (default: demo-output)")
     args = ap.parse_args(argv)
@@ -544,4 +543,4 @@ def main(argv=None) -> None:
 
 
 if __name__ == "__main__":
-    sys.exit(main())
+    main()

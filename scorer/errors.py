@@ -38,7 +38,7 @@ class LimenError(Exception):
     (:func:`short_text`); ``path`` keeps the whole name.
     """
 
-    def __init__(self, message: str, path: object | None = None):
+    def __init__(self, message: str, path: object | None = None) -> None:
         self.path = None if path is None else str(path)
         text = " ".join(str(message).split())  # always one line
         if self.path and not text.startswith(self.path):

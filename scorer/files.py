@@ -2,14 +2,20 @@
 
 from __future__ import annotations
 
+import os
 import tomllib
+from collections.abc import Iterable
 from pathlib import Path
+from typing import Any, TypeAlias
 
 from scorer.errors import LimenError
 from scorer.faults import fault_point
 
+PathArg: TypeAlias = str | os.PathLike[str]
+"""A path as the functions of Limen take it: a string or any path-like object."""
 
-def read_toml(path, what: str) -> dict:
+
+def read_toml(path: PathArg, what: str) -> dict[str, Any]:
     """Parse a TOML file; an unreadable or malformed file raises a one-line LimenError naming it."""
     path = Path(path)
     try:
@@ -24,7 +30,7 @@ def read_toml(path, what: str) -> dict:
         raise LimenError(f"not valid TOML: {exc}", path) from None
 
 
-def read_json(path, what: str) -> dict:
+def read_json(path: PathArg, what: str) -> dict[str, Any]:
     """Parse a JSON object written by Limen; unreadable, malformed or non-object files raise a one-line
     LimenError naming the file and ``what`` it should have been."""
     import json
@@ -43,7 +49,7 @@ def read_json(path, what: str) -> dict:
     return data
 
 
-def atomic_write_bytes(path, data: bytes, *, mode: int = 0o666) -> Path:
+def atomic_write_bytes(path: PathArg, data: bytes, *, mode: int = 0o666) -> Path:
     """Write a file so that it is either complete or absent: a temporary name in the same folder, flushed
     to disk, then renamed over the target (an atomic step on POSIX file systems).  A run killed midway
     leaves the previous file, or none, never a truncated one that parses."""
@@ -51,7 +57,7 @@ def atomic_write_bytes(path, data: bytes, *, mode: int = 0o666) -> Path:
     return atomic_write_chunks(path, (view[:half], view[half:]), mode=mode)
 
 
-def atomic_write_chunks(path, chunks, *, mode: int = 0o666) -> Path:
+def atomic_write_chunks(path: PathArg, chunks: Iterable[bytes | memoryview], *, mode: int = 0o666) -> Path:
     """:func:`atomic_write_bytes` for data that comes in pieces (an upload streamed from disk), so a large file
     is never held in memory whole.  ``mode`` (less the umask) is the new file's permission; ``0o600`` keeps
     a secret readable by its owner only from the first byte on.  Crash tests kill the process once the first
@@ -68,7 +74,15 @@ def atomic_write_chunks(path, chunks, *, mode: int = 0o666) -> Path:
     return path
 
 
-def write_staged(folder, chunks, *, prefix: str = ".staged.", suffix: str = "", mode: int = 0o666, target=None):
+def write_staged(
+    folder: PathArg,
+    chunks: Iterable[bytes | memoryview],
+    *,
+    prefix: str = ".staged.",
+    suffix: str = "",
+    mode: int = 0o666,
+    target: PathArg | None = None,
+) -> Path:
     """Write ``chunks`` to a new temporary file ``<prefix>XXXX.part<suffix>`` in ``folder``, flushed to disk, and
     return its path; the caller gives it its final name (``os.replace``, atomic on POSIX) or :func:`discard` s it.
     Used where the final name is known only once the data is written and checked (the content store names files
@@ -102,7 +116,7 @@ def write_staged(folder, chunks, *, prefix: str = ".staged.", suffix: str = "", 
     return Path(tmp)
 
 
-def discard(path) -> None:
+def discard(path: PathArg) -> None:
     """Remove a file if it is there (a staged temporary that will not be used)."""
     import os
 
@@ -112,7 +126,7 @@ def discard(path) -> None:
         pass
 
 
-def sync_folder(path) -> None:
+def sync_folder(path: PathArg) -> None:
     """Flush a folder's entries to disk (``fsync`` on the folder itself), so a file just renamed into it
     survives a power cut as well as a killed process; call it after :func:`atomic_write_bytes` when the
     file's presence is promised to someone (an acknowledged DICOM C-STORE)."""
@@ -125,7 +139,7 @@ def sync_folder(path) -> None:
         os.close(fd)
 
 
-def atomic_write_text(path, text: str, *, mode: int = 0o666) -> Path:
+def atomic_write_text(path: PathArg, text: str, *, mode: int = 0o666) -> Path:
     """:func:`atomic_write_bytes` for UTF-8 text."""
     return atomic_write_bytes(path, text.encode("utf-8"), mode=mode)
 
@@ -169,7 +183,9 @@ class OutputFolder:
     parent is not writable) or the folder cannot be renamed (a mount point), the files are replaced in place.
     """
 
-    def __init__(self, path, *, replace: bool = False, command: str = "", option: str = "--out", beside=False):
+    def __init__(
+        self, path: PathArg, *, replace: bool = False, command: str = "", option: str = "--out", beside: bool = False
+    ) -> None:
         import json
 
         self.path = Path(path)
@@ -216,7 +232,7 @@ class OutputFolder:
         # the manifest says "incomplete" before anything of the earlier run is removed, so a kill from here on
         # leaves a folder that says what it is
         self._write_manifest(complete=False, files=[])
-        emptied = set()
+        emptied: set[Path] = set()
         for rel in sorted(set(present) - foreign - {MANIFEST}):
             target = p / rel
             if ".." in Path(rel).parts or not target.is_file():
@@ -247,7 +263,7 @@ class OutputFolder:
         return sorted(str(f.relative_to(self.path)) for f in self.path.rglob("*") if f.is_file() or f.is_symlink())
 
     @staticmethod
-    def _prune_empty_dirs(dirs) -> None:
+    def _prune_empty_dirs(dirs: Iterable[Path]) -> None:
         """Remove the sub-folders (deepest first) that removing the earlier run's files left empty."""
         for d in sorted(dirs, key=lambda d: len(d.parts), reverse=True):
             try:
@@ -273,7 +289,8 @@ class OutputFolder:
             + "\n",
         )
 
-    def __truediv__(self, name) -> Path:
+    def __truediv__(self, name: str) -> Path:
+
         return self.path / name
 
     def finish(self) -> list[str]:

@@ -53,7 +53,7 @@ def limit(name: str) -> float:
     return value
 
 
-def check_limit(name: str, value: float, what: str, path=None) -> None:
+def check_limit(name: str, value: float, what: str, path: object | None = None) -> None:
     """Refuse ``value`` (in the limit's unit) above the limit ``name``: a one-line LimenError saying what was
     asked for, the limit, and the environment variable that raises it."""
     cap = limit(name)

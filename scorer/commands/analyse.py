@@ -3,11 +3,15 @@
 from __future__ import annotations
 
 import sys
+from typing import TYPE_CHECKING, Any
 
 import click
 
 from scorer.commands import options
 from scorer.reports import dumps
+
+if TYPE_CHECKING:
+    from scorer.study.analysis import Analysis
 
 
 @click.command("analyse")
@@ -61,20 +65,20 @@ from scorer.reports import dumps
 @options.out_folder("Write analysis.json, CSV tables and report.html here.")
 @options.replace()
 def analyse(
-    responses,
-    model_file,
-    by,
-    reference,
-    n_boot,
-    criterion_pc,
-    detectability,
-    min_trials,
-    max_ci_ratio,
-    seed,
-    as_json,
-    out_dir,
-    replace,
-):
+    responses: str,
+    model_file: str | None,
+    by: str,
+    reference: str | None,
+    n_boot: int,
+    criterion_pc: float | None,
+    detectability: float | None,
+    min_trials: int,
+    max_ci_ratio: float,
+    seed: int,
+    as_json: bool,
+    out_dir: str | None,
+    replace: bool,
+) -> None:
     """Per-reader and pooled contrast-detail curves, human/model factor, group comparison, agreement.
 
     A threshold without an interior maximum, on too few trials, with too wide a CI or above 100 % contrast is
@@ -92,7 +96,9 @@ def analyse(
     if detectability is not None:
         if criterion_pc is not None:
             raise LimenError("give either --criterion (one Pc for every M) or --detectability (one d′), not both")
-        criterion_pc = Detectability(float(detectability))
+        criterion: float | Detectability | None = Detectability(float(detectability))
+    else:
+        criterion = criterion_pc
     trials = load_trials(responses)
     m_alternatives_of(trials, responses)  # a table with one candidate site is refused naming its file
     model, model_responses = load_model_table(model_file) if model_file else (None, None)
@@ -108,7 +114,7 @@ def analyse(
 
     bar = tqdm(total=len(steps), desc="analysing", file=sys.stderr, disable=as_json and not sys.stderr.isatty())
 
-    def progress(step):
+    def progress(step: str) -> None:
         bar.set_postfix_str(step)
         bar.update(1)
 
@@ -119,7 +125,7 @@ def analyse(
             by=by,
             n_boot=n_boot,
             seed=seed,
-            criterion_pc=criterion_pc,
+            criterion_pc=criterion,
             reference=reference,
             progress=progress,
             model_responses=model_responses,
@@ -127,14 +133,14 @@ def analyse(
         )
     finally:
         bar.close()
-    meta = {
+    meta: dict[str, Any] = {
         "inputs": {"responses": {"path": str(responses), "sha256": file_sha256(responses)}},
         "seed": seed,
         "n_boot": n_boot,
     }
     if model_file:
         meta["inputs"]["model"] = {"path": str(model_file), "sha256": file_sha256(model_file)}
-    if out_dir:
+    if folder is not None:
         from scorer.reports import write_outputs
 
         write_outputs(a, folder.path, meta)
@@ -147,9 +153,11 @@ def analyse(
         click.echo(f"wrote report.html, analysis.json and CSV tables to {out_dir}/")
 
 
-def _text_summary(a) -> str:
+def _text_summary(a: Analysis) -> str:
     if isinstance(a.m_alternatives, dict):
         design = ", ".join(f"{m}-AFC at {d:g} mm" for d, m in sorted(a.m_alternatives.items()))
+        assert isinstance(a.criterion_pc, dict)  # one Pc per diameter where M varies (analyse_study)
+
         crit = ", ".join(f"{p:.3g}" for _, p in sorted(a.criterion_pc.items()))
         lines = [f"{len(a.readers)} reader(s), {design}; criterion Pc = {crit} respectively"]
     else:
@@ -206,7 +214,8 @@ def _text_summary(a) -> str:
     return "\n".join(lines)
 
 
-def _finite(*values) -> bool:
+def _finite(*values: float | None) -> bool:
+
     import math
 
     return all(v is not None and math.isfinite(float(v)) for v in values)

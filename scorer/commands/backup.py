@@ -25,7 +25,7 @@ import click
     required=True,
     help="New folder for the backup (it becomes an instance folder: limen serve --instance OUT restores it).",
 )
-def backup(db_url, instance, out):
+def backup(db_url: str | None, instance: str | None, out: str) -> None:
     """Back up the web app's SQLite database, image store and secret key into OUT (safe while the server runs).
 
     A PostgreSQL database is not copied: dump it with pg_dump alongside (see the README).

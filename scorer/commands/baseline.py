@@ -2,14 +2,25 @@
 
 from __future__ import annotations
 
+from collections.abc import Callable
+from typing import TYPE_CHECKING
+
 import click
 
 from scorer.commands import options
 from scorer.errors import LimenError
 from scorer.reports import dumps
 
+if TYPE_CHECKING:
+    from click.decorators import FC
 
-def _open(db):
+    from scorer.observer.limits import HumanFactor
+    from scorer.qc.alerting import AlertChanges
+    from scorer.qc.config import AlertRules
+    from scorer.qc.store import Store
+
+
+def _open(db: str) -> Store:
     from scorer.commands.nightly import db_url_option
     from scorer.qc import open_store
 
@@ -17,7 +28,7 @@ def _open(db):
 
 
 @click.group("baseline")
-def baseline():
+def baseline() -> None:
     """Show, set or clear the baselines the nightly alerts compare with."""
 
 
@@ -32,7 +43,7 @@ def baseline():
     help="Nightly configuration: the alert rules whose smallest detectable change is shown (default rules).",
 )
 @click.option("--json", "as_json", is_flag=True)
-def show(db, detector, config_file, as_json):
+def show(db: str, detector: str | None, config_file: str | None, as_json: bool) -> None:
     """Print each detector's baseline per method and diameter, and the smallest change its rules detect."""
     from scorer.commands.nightly import load_nightly_config
     from scorer.qc.sensitivity import detectable_change, sensitivity_sentence
@@ -86,7 +97,7 @@ def show(db, detector, config_file, as_json):
         click.echo(f"{det}: no baseline yet (no stable run of sessions; see the trend report)")
 
 
-def _config_option():
+def _config_option() -> Callable[[FC], FC]:
     return click.option(
         "--config",
         "config_file",
@@ -96,7 +107,7 @@ def _config_option():
     )
 
 
-def _rules(config_file, detector):
+def _rules(config_file: str | None, detector: str) -> tuple[int, AlertRules, HumanFactor | float | None]:
     from scorer.commands.nightly import load_nightly_config
 
     config = load_nightly_config(config_file)
@@ -128,7 +139,9 @@ def _date(value: str | None, option: str) -> str | None:
 @click.option("--sessions", default=None, help="Comma-separated session ids (from `limen trend` or --json).")
 @click.option("--from", "date_from", default=None, help="First session date (YYYY-MM-DD) of the baseline.")
 @click.option("--to", "date_to", default=None, help="Last session date (YYYY-MM-DD) of the baseline.")
-def set_(db, detector, sessions, date_from, date_to, config_file):
+def set_(
+    db: str, detector: str, sessions: str | None, date_from: str | None, date_to: str | None, config_file: str | None
+) -> None:
     """Set a detector's baseline explicitly from chosen scored sessions."""
     if bool(sessions) == bool(date_from or date_to):
         raise LimenError("give either --sessions or --from/--to")
@@ -160,7 +173,7 @@ def set_(db, detector, sessions, date_from, date_to, config_file):
     _say(changes)
 
 
-def _say(changes) -> None:
+def _say(changes: AlertChanges) -> None:
     from scorer.commands.nightly import print_changes
 
     for a in changes.added:
@@ -174,7 +187,7 @@ def _say(changes) -> None:
 @options.nightly_db()
 @_config_option()
 @click.option("--detector", required=True, help="The detector's name in the database.")
-def clear(db, detector, config_file):
+def clear(db: str, detector: str, config_file: str | None) -> None:
     """Forget a detector's baseline; the automatic one is rebuilt from its first sessions."""
     store = _open(db)
     try:

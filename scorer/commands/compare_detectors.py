@@ -67,23 +67,23 @@ from scorer.workflow import load_detector_json, load_dose_json, load_scored_json
 @options.out_folder("Write comparison.json, comparison.csv, headline.csv and comparison.html here.")
 @options.replace()
 def compare_detectors(
-    detector_a,
-    detector_b,
-    label_a,
-    label_b,
-    scored_a,
-    scored_b,
-    layout_file,
-    diameters,
-    m_alternatives,
-    scored_method,
-    dose_a,
-    dose_b,
-    detail_classes,
-    as_json,
-    out_dir,
-    replace,
-):
+    detector_a: str,
+    detector_b: str,
+    label_a: str | None,
+    label_b: str | None,
+    scored_a: str | None,
+    scored_b: str | None,
+    layout_file: str | None,
+    diameters: str | None,
+    m_alternatives: int | None,
+    scored_method: str,
+    dose_a: str | None,
+    dose_b: str | None,
+    detail_classes: str | None,
+    as_json: bool,
+    out_dir: str | None,
+    replace: bool,
+) -> None:
     """Put two detectors measured by 'limen detector' side by side."""
     from scorer.detector.headline import parse_detail_classes
 
@@ -95,8 +95,8 @@ def compare_detectors(
     a, b = load_detector_json(detector_a), load_detector_json(detector_b)
     folder = OutputFolder(out_dir, replace=replace, command="compare-detectors", beside=True) if out_dir else None
 
-    def default_label(p):
-        p = Path(p)
+    def default_label(name: str) -> str:
+        p = Path(name)
         return p.parent.name if p.stem == "detector" and p.parent.name else p.stem
 
     la = label_a or default_label(detector_a)
@@ -135,7 +135,7 @@ def compare_detectors(
         "dose_a": dose_a,
         "dose_b": dose_b,
     }
-    if out_dir:
+    if folder is not None:
         from scorer.reports import compare_report_html
 
         out = folder.path
@@ -159,7 +159,8 @@ def compare_detectors(
     for r in result["table"]:
         pct = "threshold contrast" in r["quantity"]
 
-        def fmt(v, pct=pct):
+        def fmt(v: float | None, pct: bool = pct) -> str:
+
             if v is None or not np.isfinite(v):
                 return "—"
             return f"{100 * v:.3g} %" if pct else f"{v:.4g}"

@@ -5,10 +5,13 @@ from __future__ import annotations
 import csv
 import io
 import sys
+from collections.abc import Sequence
 from pathlib import Path
+from typing import Any
 
 import click
 import numpy as np
+from numpy.typing import NDArray
 
 from scorer.commands import options
 from scorer.errors import LimenError
@@ -30,7 +33,7 @@ class GreedyFilesCommand(click.Command):
 
     greedy = GREEDY_OPTIONS
 
-    def parse_args(self, ctx, args):
+    def parse_args(self, ctx: click.Context, args: list[str]) -> list[str]:
         out: list[str] = []
         i = 0
         while i < len(args):
@@ -157,22 +160,22 @@ def alternatives_from_options(m_alternatives: int | None, layout_file: str | Non
 @options.out_folder("Write detector.json, detector.csv, nnps_2d.npy and detector.html here.")
 @options.replace()
 def detector(
-    flat_files,
-    edge_files,
-    kerma_ugy,
-    q_per_mm2_ugy,
-    beam,
-    pixel_spacing_mm,
-    conversion_file,
-    kerma_csv,
-    noise_csv,
-    diameters,
-    layout_file,
-    m_alternatives,
-    as_json,
-    out_dir,
-    replace,
-):
+    flat_files: tuple[str, ...],
+    edge_files: tuple[str, ...],
+    kerma_ugy: float | None,
+    q_per_mm2_ugy: float | None,
+    beam: str | None,
+    pixel_spacing_mm: float | None,
+    conversion_file: str | None,
+    kerma_csv: str | None,
+    noise_csv: str | None,
+    diameters: str | None,
+    layout_file: str | None,
+    m_alternatives: int | None,
+    as_json: bool,
+    out_dir: str | None,
+    replace: bool,
+) -> None:
     """Measure a detector as IEC 62220-1 describes: conversion function, MTF, NNPS and DQE.
 
     Flat fields give the NNPS, slanted-edge images the presampling MTF; the DQE
@@ -232,7 +235,7 @@ def detector(
             raise LimenError(
                 "predicted thresholds need both flat fields (--flat) and an edge image (--edge)", "--diameters"
             )
-    result = (
+    result: dict[str, Any] = (
         metrics.to_dict()
         if metrics is not None
         else {
@@ -247,7 +250,7 @@ def detector(
         }
     )
 
-    if out_dir:
+    if folder is not None:
         out = folder.path
         write_json(out / "detector.json", result)
         write_csv(out / "detector.csv", result)
@@ -272,7 +275,7 @@ def detector(
             click.echo(f"wrote detector.json, detector.csv and detector.html to {out_dir}/")
 
 
-def write_csv(path: Path, result: dict) -> None:
+def write_csv(path: Path, result: dict[str, Any]) -> None:
     """One row per NNPS frequency (up to Nyquist): MTF per direction and mean, NNPS cuts, DQE."""
     nn = result.get("nnps")
     mtf = result.get("mtf")
@@ -285,8 +288,10 @@ def write_csv(path: Path, result: dict) -> None:
         return
     cols: dict[str, np.ndarray] = {"frequency_per_mm": f}
 
-    def interp(curve_f, curve_v):
-        return np.interp(f, curve_f, curve_v, left=np.nan, right=np.nan)
+    def interp(curve_f: Sequence[float], curve_v: Sequence[float]) -> NDArray[np.float64]:
+
+        out: NDArray[np.float64] = np.interp(f, curve_f, curve_v, left=np.nan, right=np.nan)
+        return out
 
     if mtf:
         for d, m in (mtf.get("by_direction") or {}).items():

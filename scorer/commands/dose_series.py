@@ -38,23 +38,23 @@ from scorer.commands import options
 @options.out_folder("Write dose_series.json, dose_series.csv and dose_series.html here.")
 @options.replace()
 def dose_series(
-    images,
-    layout_file,
-    conversion_file,
-    kerma_csv,
-    observer,
-    method,
-    limits_file,
-    human_factor,
-    factor_file,
-    mtf_file,
-    pixel_spacing,
-    n_boot,
-    seed,
-    as_json,
-    out_dir,
-    replace,
-):
+    images: tuple[str, ...],
+    layout_file: str | None,
+    conversion_file: str | None,
+    kerma_csv: str | None,
+    observer: str,
+    method: str,
+    limits_file: str | None,
+    human_factor: float | None,
+    factor_file: str | None,
+    mtf_file: str | None,
+    pixel_spacing: float | None,
+    n_boot: int,
+    seed: int,
+    as_json: bool,
+    out_dir: str | None,
+    replace: bool,
+) -> None:
     """Score phantom IMAGES taken at several air kermas: per diameter C_T(K) = a·K^(−β) with CIs.
 
     Images are grouped by kerma (by folder when they lie in several folders, else by value);
@@ -76,10 +76,10 @@ def dose_series(
     )
 
     fitted_method = "count" if method == "count" else "dprime"  # as scorer.detector.dose.dose_series fits
-    human_factor = resolve_human_factor(human_factor, factor_file, observer, fitted_method if limits_file else None)
+    factor = resolve_human_factor(human_factor, factor_file, observer, fitted_method if limits_file else None)
     layout = load_layout(layout_file)
     limits = load_limits(limits_file) if limits_file else None
-    options.refuse_unused_factor(human_factor, limits)
+    options.refuse_unused_factor(factor, limits)
     conversion = load_conversion(conversion_file) if conversion_file else None
     blur = load_mtf(mtf_file) if mtf_file else None
     # the folder is checked before any image is read: an unusable or (without --replace) non-empty --out is
@@ -102,7 +102,7 @@ def dose_series(
             observer=observer,
             method=method,
             limits=limits,
-            human_factor=human_factor,
+            human_factor=factor,
             seed=seed,
             conversion=conversion,
             pixel_spacing_mm=pixel_spacing,
@@ -122,7 +122,7 @@ def dose_series(
         "layout": layout_file,
         "limits": limits_file,
     }
-    if out_dir:
+    if folder is not None:
         from scorer.files import atomic_write_text
         from scorer.reports.dose import dose_series_csv, dose_series_html
 

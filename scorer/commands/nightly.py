@@ -3,12 +3,27 @@
 from __future__ import annotations
 
 import sys
+from typing import TYPE_CHECKING, Any, overload
 
 import click
 
 from scorer.commands import options
 from scorer.errors import LimenError
 from scorer.reports import CAUTION, dumps
+
+if TYPE_CHECKING:
+    from pathlib import Path
+
+    from scorer.qc.config import NightlyConfig
+    from scorer.qc.nightly import NightlyResult
+
+
+@overload
+def db_url_option(value: str) -> str: ...
+
+
+@overload
+def db_url_option(value: None) -> None: ...
 
 
 def db_url_option(value: str | None) -> str | None:
@@ -20,7 +35,7 @@ def db_url_option(value: str | None) -> str | None:
     return f"sqlite:///{Path(value).expanduser().resolve()}"
 
 
-def load_nightly_config(path):
+def load_nightly_config(path: str | None) -> NightlyConfig:
     """The nightly configuration with human/model factors and MTFs read as `limen score` reads them."""
     from scorer.qc import default_config, load_config
 
@@ -89,8 +104,17 @@ def load_nightly_config(path):
 )
 @options.json_output()
 def nightly(
-    inbox, config_file, db, report_dir, workers, dask_address, quarantine_dir, settle_seconds, lease_seconds, as_json
-):
+    inbox: str,
+    config_file: str | None,
+    db: str | None,
+    report_dir: str | None,
+    workers: int | None,
+    dask_address: str | None,
+    quarantine_dir: str | None,
+    settle_seconds: float,
+    lease_seconds: float,
+    as_json: bool,
+) -> None:
     """Score new phantom images in INBOX once per session; store, trend and alert.
 
     Exit status: 0 all well; 1 an alert of any kind is to be reported — a control rule, baseline unstable, or
@@ -161,7 +185,7 @@ def nightly(
         sys.exit(1)
 
 
-def _print(result, page) -> None:
+def _print(result: NightlyResult, page: Path | None) -> None:
     click.echo(
         f"{result.scored_images} image(s) scored in {len(result.sessions_scored)} session(s) "
         f"[{result.runner}; {result.db}]"
@@ -195,7 +219,9 @@ def _print(result, page) -> None:
     click.echo(CAUTION)
 
 
-def print_changes(baseline_changes, withdrawn, updated) -> None:
+def print_changes(
+    baseline_changes: list[dict[str, Any]], withdrawn: list[dict[str, Any]], updated: list[dict[str, Any]]
+) -> None:
     """Say how a changed baseline changed the stored alerts of earlier sessions."""
     for b in baseline_changes:
         before = "none" if not b["before"] else "sessions " + ", ".join(map(str, b["before"]))

@@ -10,14 +10,14 @@ from scorer.reports import dumps
 
 
 @click.group("quarantine")
-def quarantine():
+def quarantine() -> None:
     """List the nightly run's quarantined files; release one once its cause is fixed."""
 
 
 @quarantine.command("list")
 @options.nightly_db()
 @click.option("--json", "as_json", is_flag=True)
-def list_(db, as_json):
+def list_(db: str, as_json: bool) -> None:
     """Print every quarantined file with its entry number and reason."""
     from scorer.commands.baseline import _open
 
@@ -47,7 +47,7 @@ def list_(db, as_json):
     default=None,
     help="Move the files into this folder (default: back where they came from).",
 )
-def release(db, entries, to_dir):
+def release(db: str, entries: tuple[int, ...], to_dir: str | None) -> None:
     """Move quarantined files back (entry numbers from `limen quarantine list`); the next run reads them afresh."""
     from scorer.commands.baseline import _open
 

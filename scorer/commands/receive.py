@@ -2,6 +2,9 @@
 
 from __future__ import annotations
 
+import sys
+from types import FrameType
+
 import click
 
 
@@ -10,7 +13,7 @@ def _say(text: str) -> None:
     import datetime as _dt
 
     click.echo(f"{_dt.datetime.now().isoformat(timespec='seconds')} {text}")
-    click.get_text_stream("stdout").flush()
+    sys.stdout.flush()  # click.get_text_stream is deprecated (Click 8.2) and resolves to sys.stdout
 
 
 @click.command("receive")
@@ -28,7 +31,7 @@ def _say(text: str) -> None:
     default=None,
     help="Listen on this TCP port instead of the configured one (0: any free port, printed at start).",
 )
-def receive(config_file, port):
+def receive(config_file: str, port: int | None) -> None:
     """Receive phantom images from the modalities over DICOM (C-STORE) into the nightly inbox.
 
     Answers C-ECHO; accepts digital X-ray and digital mammography images (FOR PROCESSING and FOR PRESENTATION)
@@ -46,9 +49,9 @@ def receive(config_file, port):
     config = load_receive_config(config_file)
     receiver = Receiver(config, log=_say, port=port)
     stop = threading.Event()
-    got = []
+    got: list[str] = []
 
-    def on_signal(signum, _frame):
+    def on_signal(signum: int, _frame: FrameType | None) -> None:
         got.append(signal.Signals(signum).name)
         stop.set()
 

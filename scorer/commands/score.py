@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import sys
 from pathlib import Path
+from typing import TYPE_CHECKING
 
 import click
 import numpy as np
@@ -25,7 +26,14 @@ from scorer.workflow import (
     score_files,
 )
 
+if TYPE_CHECKING:
+    from scorer.images.image import Image
+    from scorer.observer.checks import ImageChecks
+    from scorer.observer.scoring import ScoreResult
+    from scorer.phantom.registration import Placement
+
 #: exit status of `limen score` (documented in the README)
+
 EXIT_FAIL = 1
 EXIT_INDETERMINATE = 3
 
@@ -102,29 +110,29 @@ EXIT_INDETERMINATE = 3
 )
 @options.replace()
 def score(
-    images,
-    layout_file,
-    observer,
-    method,
-    limits_file,
-    human_factor,
-    factor_file,
-    conversion_file,
-    mtf_file,
-    viewing_distance_mm,
-    pixel_spacing,
-    defect_map_file,
-    notch,
-    n_boot,
-    psychometric_form,
-    dprime_ci,
-    criterion,
-    detectability,
-    seed,
-    as_json,
-    out_dir,
-    replace,
-):
+    images: tuple[str, ...],
+    layout_file: str | None,
+    observer: str,
+    method: str,
+    limits_file: str | None,
+    human_factor: float | None,
+    factor_file: str | None,
+    conversion_file: str | None,
+    mtf_file: str | None,
+    viewing_distance_mm: float | None,
+    pixel_spacing: float | None,
+    defect_map_file: str | None,
+    notch: bool,
+    n_boot: int,
+    psychometric_form: str,
+    dprime_ci: str,
+    criterion: float | None,
+    detectability: float | None,
+    seed: int,
+    as_json: bool,
+    out_dir: str | None,
+    replace: bool,
+) -> None:
     """Score contrast-detail phantom IMAGES with a model observer: threshold contrast per diameter.
 
     Exit status: 0 when every verdict passes or no limits were given, 1 when a verdict
@@ -134,8 +142,8 @@ def score(
     methods = ["dprime", "count"] if method == "both" else [method]
     # the verdicts use the d′ method when it is computed: the factor must be the one measured for it
     verdict_method = "dprime" if "dprime" in methods else "count"
-    human_factor = resolve_human_factor(human_factor, factor_file, observer, verdict_method if limits_file else None)
-    if (human_factor is not None) and not limits_file:
+    factor = resolve_human_factor(human_factor, factor_file, observer, verdict_method if limits_file else None)
+    if (factor is not None) and not limits_file:
         click.echo("warning: --human-factor/--human-factor-from has no effect without --limits", err=True)
     if detectability is not None:
         from scorer.errors import LimenError
@@ -143,10 +151,12 @@ def score(
 
         if criterion is not None:
             raise LimenError("give either --criterion (one Pc for every M) or --detectability (one d′), not both")
-        criterion = Detectability(float(detectability))
+        criterion_pc: float | Detectability | None = Detectability(float(detectability))
+    else:
+        criterion_pc = criterion
     layout = load_layout(layout_file)
     limits = load_limits(limits_file) if limits_file else None
-    options.refuse_unused_factor(human_factor, limits)
+    options.refuse_unused_factor(factor, limits)
     conversion = load_conversion(conversion_file) if conversion_file else None
     blur = load_mtf(mtf_file) if mtf_file else None
     defect_map = load_defect_map(defect_map_file) if defect_map_file else None
@@ -158,7 +168,7 @@ def score(
         total=len(images), desc=f"scoring ({observer.upper()})", unit="image", file=sys.stderr, disable=len(images) < 2
     )
 
-    def on_image(i, path, image, placement):
+    def on_image(i: int, path: str, image: Image, placement: Placement) -> None:
         if out is not None:
             overlays.append(
                 draw_overlay(
@@ -167,7 +177,7 @@ def score(
             )
         bar.update(1)
 
-    def on_checked(i, path, image, placement, checks):
+    def on_checked(i: int, path: str, image: Image, placement: Placement, checks: ImageChecks) -> None:
         if out is not None and (checks.excluded or checks.defects):
             defect_overlays.append(
                 draw_defect_overlay(
@@ -179,7 +189,7 @@ def score(
                 )
             )
 
-    def on_failure(path, image, exc):
+    def on_failure(path: str, image: Image, exc: Exception) -> None:
         if out is not None:
             png = draw_overlay(
                 image,
@@ -203,9 +213,9 @@ def score(
             viewing_distance_mm=viewing_distance_mm,
             n_boot=n_boot,
             seed=seed,
-            criterion_pc=criterion,
+            criterion_pc=criterion_pc,
             limits=limits,
-            human_factor=human_factor,
+            human_factor=factor,
             on_image=on_image,
             on_failure=on_failure,
             count_form=psychometric_form,
@@ -219,12 +229,13 @@ def score(
     command = current_command() or ""
     if out is not None:
         write_score_outputs(result, out, overlays, command, defect_overlays)
+        assert folder is not None  # out is its path
         folder.finish()
     if as_json:
         click.echo(dumps(result.to_json()))
     else:
         _print_table(result)
-        if out is not None:
+        if folder is not None:
             click.echo(f"\nreport: {folder.path / 'report.html'}  (JSON, CSV and overlays beside it)")
     for w in result.warnings:
         click.echo(f"warning: {w}", err=True)
@@ -243,7 +254,8 @@ def score(
         sys.exit(EXIT_INDETERMINATE)
 
 
-def _print_table(result) -> None:
+def _print_table(result: ScoreResult) -> None:
+
     click.echo(f"{result.layout.name}: {len(result.images)} image(s), {result.observer.upper()} observer")
     curves = result.curves
     header = f"{'diameter mm':>11}"
@@ -260,6 +272,7 @@ def _print_table(result) -> None:
         line = f"{d:>11.3g}"
         for c in curves.values():
             p = c.at(d)
+            assert p is not None  # both methods' curves have a point at every diameter of the layout
             if p.censored:
                 ci = "—"
             else:

@@ -4,12 +4,23 @@ from __future__ import annotations
 
 import os
 import sys
+from typing import TYPE_CHECKING, Any
 
 import click
 
+if TYPE_CHECKING:
+    from flask import Flask
+    from waitress.server import BaseWSGIServer, MultiSocketServer
 
-def build_config(db_url, instance, import_root=None, secure_cookies=False, trusted_proxies=0) -> dict:
-    config = {}
+
+def build_config(
+    db_url: str | None,
+    instance: str | None,
+    import_root: str | None = None,
+    secure_cookies: bool = False,
+    trusted_proxies: int = 0,
+) -> dict[str, Any]:
+    config: dict[str, Any] = {}
     if trusted_proxies:
         config["TRUSTED_PROXIES"] = int(trusted_proxies)
     if db_url:
@@ -23,11 +34,11 @@ def build_config(db_url, instance, import_root=None, secure_cookies=False, trust
     return config
 
 
-def make_server(app, **kwargs):
+def make_server(app: Flask, **kwargs: Any) -> MultiSocketServer | BaseWSGIServer:
     """A waitress server for ``app``.  Waitress receives a whole request body before the app sees it, so its own
     limit is set to the app's largest (``MAX_CONTENT_LENGTH``): a longer declared body is refused with 413 from
     its headers, without reading it, and a chunked one is cut off there."""
-    from waitress import create_server
+    from waitress.server import create_server
 
     return create_server(app, max_request_body_size=int(app.config["MAX_CONTENT_LENGTH"]) + 1, ident="limen", **kwargs)
 
@@ -114,7 +125,18 @@ def check_listen_address(host: str, port: int) -> None:
     help="Reverse proxies in front of the server whose X-Forwarded-For/-Proto headers are believed "
     "(1 for one nginx or Apache in front; 0: the socket's peer is the client).",
 )
-def serve(host, port, db_url, instance, threads, connection_limit, demo, import_root, secure_cookies, trusted_proxies):
+def serve(
+    host: str,
+    port: int,
+    db_url: str | None,
+    instance: str | None,
+    threads: int,
+    connection_limit: int,
+    demo: bool,
+    import_root: str | None,
+    secure_cookies: bool,
+    trusted_proxies: int,
+) -> None:
     """Run the reader-study web app (coordinators set up studies, readers read in their browser).
 
     Results support, and never replace, a qualified medical physicist's judgement.
@@ -143,7 +165,10 @@ def serve(host, port, db_url, instance, threads, connection_limit, demo, import_
 
         reason = getattr(exc, "strerror", None) or exc
         raise LimenError(f"cannot listen on {host} port {port} ({reason})", "--port") from None
-    click.echo(f"Limen reader studies on http://{server.effective_host}:{server.effective_port}/ (Ctrl-C to stop)")
+    # one host and port: a single TcpWSGIServer, which sets effective_host/_port (types-waitress leaves them out)
+    where = f"{server.effective_host}:{server.effective_port}"  # type: ignore[union-attr]
+    click.echo(f"Limen reader studies on http://{where}/ (Ctrl-C to stop)")
+
     if demo:
         click.echo("sign in as 'coordinator' to follow the study, or as reader1 to read.")
     sys.stdout.flush()

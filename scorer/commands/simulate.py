@@ -113,23 +113,23 @@ def image_stem(panel: str, kind: str, dose_ugy: float, index: int, edge_angle_de
 )
 @click.option("--overwrite", is_flag=True, help="Replace images of the same name already in --out (default: refuse).")
 def simulate(
-    detector,
-    model_file,
-    kind,
-    dose_ugy,
-    count,
-    seed,
-    out_dir,
-    small,
-    rotate_deg,
-    flip,
-    shift_mm,
-    magnification,
-    layout_file,
-    edge_angle_deg,
-    fmt,
-    overwrite,
-):
+    detector: str,
+    model_file: str | None,
+    kind: str,
+    dose_ugy: float,
+    count: int,
+    seed: int,
+    out_dir: str,
+    small: bool,
+    rotate_deg: float,
+    flip: bool,
+    shift_mm: tuple[float, float],
+    magnification: float,
+    layout_file: str | None,
+    edge_angle_deg: float,
+    fmt: str,
+    overwrite: bool,
+) -> None:
     """Simulate raw (FOR PROCESSING) detector images with a JSON ground-truth sidecar each."""
     model = load_detector_model(model_file) if model_file else detector_model(detector)
     layout = load_layout(layout_file) if kind == "phantom" else None
@@ -145,7 +145,7 @@ def simulate(
             raise LimenError(f"{opt} must be a finite number, got {val}", opt)
     if not dose_ugy > 0:
         raise LimenError(f"--dose-ugy must be positive, got {dose_ugy}")
-    pose = Pose(rotation_deg=rotate_deg, flipped=flip, magnification=magnification, shift_mm=tuple(shift_mm))
+    pose = Pose(rotation_deg=rotate_deg, flipped=flip, magnification=magnification, shift_mm=(shift_mm[0], shift_mm[1]))
     rngs = [np.random.default_rng(s) for s in np.random.SeedSequence(seed).spawn(count)]
     out = Path(out_dir)
     try:  # before anything is simulated: an unusable --out is one line, never a traceback

@@ -26,7 +26,7 @@ from scorer.reports import dumps
 )
 @options.json_output("Print the paths written as JSON.")
 @options.replace()
-def trend(db, out_dir, config_file, method, as_json, replace):
+def trend(db: str, out_dir: str, config_file: str | None, method: str | None, as_json: bool, replace: bool) -> None:
     """Write the trend report of a nightly database."""
     from scorer.commands.nightly import db_url_option, load_nightly_config
     from scorer.files import OutputFolder

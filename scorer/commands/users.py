@@ -4,13 +4,23 @@ from __future__ import annotations
 
 import os
 import sys
+from typing import TYPE_CHECKING, TypeVar
 
 import click
 
 from scorer.errors import LimenError
 
+if TYPE_CHECKING:
+    from collections.abc import Callable
 
-def _app(db_url, instance):
+    from flask import Flask
+
+    from webapp.models import User
+
+_F = TypeVar("_F", bound="Callable[..., None]")
+
+
+def _app(db_url: str | None, instance: str | None) -> Flask:
     from scorer.commands.serve import build_config
     from webapp import create_app
 
@@ -33,7 +43,7 @@ _db_options = [
 ]
 
 
-def _with_db(f):
+def _with_db(f: _F) -> _F:
     for opt in reversed(_db_options):
         f = opt(f)
     return f
@@ -93,7 +103,7 @@ _password_stdin = click.option(
 
 
 @click.group("users")
-def users():
+def users() -> None:
     """Add, list, disable, enable the web app's accounts, reset passwords and end sessions."""
     from scorer.extras import require
 
@@ -106,7 +116,7 @@ def users():
 @click.option("--generate", is_flag=True, help="Generate a password and show it once instead of prompting.")
 @_password_stdin
 @_with_db
-def add(name, role, generate, password_stdin, db_url, instance):
+def add(name: str, role: str, generate: bool, password_stdin: bool, db_url: str | None, instance: str | None) -> None:
     """Create an account NAME (password prompted, read with --password-stdin, or generated with --generate)."""
     from webapp.account_admin import add_account
     from webapp.accounts import check_new_name
@@ -126,7 +136,7 @@ def add(name, role, generate, password_stdin, db_url, instance):
 @users.command("sign-out")
 @click.argument("name")
 @_with_db
-def sign_out(name, db_url, instance):
+def sign_out(name: str, db_url: str | None, instance: str | None) -> None:
     """End every session of account NAME at its next request (it signs in again with its password)."""
     from webapp.account_admin import sign_out_everywhere
 
@@ -136,7 +146,7 @@ def sign_out(name, db_url, instance):
 
 @users.command("list")
 @_with_db
-def list_users(db_url, instance):
+def list_users(db_url: str | None, instance: str | None) -> None:
     """List accounts (name, role, active)."""
     from sqlalchemy import select
 
@@ -149,7 +159,7 @@ def list_users(db_url, instance):
             click.echo(f"{u.username:<24}{u.role:<13}{'active' if u.active else 'disabled'}")
 
 
-def _change(name, db_url, instance, change) -> None:
+def _change(name: str, db_url: str | None, instance: str | None, change: Callable[[User], object]) -> None:
     """Apply ``change(user)`` (a webapp.account_admin operation, which audits) to account NAME in one transaction;
     an unknown NAME is a one-line error."""
     from webapp.account_admin import account
@@ -164,7 +174,7 @@ def _change(name, db_url, instance, change) -> None:
 @users.command("disable")
 @click.argument("name")
 @_with_db
-def disable(name, db_url, instance):
+def disable(name: str, db_url: str | None, instance: str | None) -> None:
     """Disable account NAME: it can no longer sign in, and its sessions end at their next request.
 
     Its reads and the studies it coordinated stay as they are (nothing is deleted).
@@ -178,7 +188,7 @@ def disable(name, db_url, instance):
 @users.command("enable")
 @click.argument("name")
 @_with_db
-def enable(name, db_url, instance):
+def enable(name: str, db_url: str | None, instance: str | None) -> None:
     """Enable account NAME again."""
     from webapp import account_admin
 
@@ -191,7 +201,7 @@ def enable(name, db_url, instance):
 @click.option("--generate", is_flag=True, help="Generate a password and show it once instead of prompting.")
 @_password_stdin
 @_with_db
-def password(name, generate, password_stdin, db_url, instance):
+def password(name: str, generate: bool, password_stdin: bool, db_url: str | None, instance: str | None) -> None:
     """Set a new password for account NAME (prompted, read with --password-stdin, or generated with --generate);
     its sessions end."""
     from webapp import account_admin

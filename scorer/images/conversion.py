@@ -22,48 +22,80 @@ import json
 import tomllib
 from dataclasses import asdict, dataclass
 from pathlib import Path
+from typing import Any
 
 import numpy as np
+from numpy.typing import ArrayLike, NDArray
 
 from scorer.errors import LimenError
-from scorer.files import atomic_write_text
+from scorer.files import PathArg, atomic_write_text
 
 KINDS = ("linear", "logarithmic")
 
 
 @dataclass(frozen=True)
 class ConversionFunction:
+    """How a detector's stored pixel values follow air kerma K (µGy).
+
+    Attributes
+    ----------
+    kind : str
+        ``"linear"``: pixel value = offset + gain·K; ``"logarithmic"``: pixel value = offset + gain·ln K.
+    offset : float
+        Pixel value at zero kerma (linear) or at 1 µGy (logarithmic).
+    gain : float
+        Pixel values per µGy (linear) or per unit of ln K (logarithmic); finite and non-zero.
+    source : str
+        Where the function came from (a file, a fit), for the record.
+    """
+
     kind: str
+
     offset: float
     gain: float
     source: str = ""
 
-    def __post_init__(self):
+    def __post_init__(self) -> None:
         if self.kind not in KINDS:
             raise ValueError(f"conversion kind must be one of {KINDS}, got {self.kind!r}")
         if not np.isfinite(self.gain) or self.gain == 0:
             raise ValueError("conversion gain must be finite and non-zero")
 
-    def to_kerma_ugy(self, pixel_values) -> np.ndarray:
+    def to_kerma_ugy(self, pixel_values: ArrayLike) -> NDArray[np.float64]:
         """Air kerma (µGy) for stored pixel values."""
         pv = np.asarray(pixel_values, dtype=np.float64)
         if self.kind == "linear":
             return (pv - self.offset) / self.gain
         return np.exp((pv - self.offset) / self.gain)
 
-    def to_pixel_value(self, kerma_ugy) -> np.ndarray:
+    def to_pixel_value(self, kerma_ugy: ArrayLike) -> NDArray[np.float64]:
         """Stored pixel value for air kerma (µGy) — the inverse of :meth:`to_kerma_ugy`."""
         k = np.asarray(kerma_ugy, dtype=np.float64)
         if self.kind == "linear":
             return self.offset + self.gain * k
         return self.offset + self.gain * np.log(k)
 
-    def to_dict(self) -> dict:
+    def to_dict(self) -> dict[str, Any]:
         return asdict(self)
 
 
-def load_conversion(path) -> ConversionFunction:
-    """Read a conversion function from a TOML or JSON file (errors name the file)."""
+def load_conversion(path: PathArg) -> ConversionFunction:
+    """Read a conversion function from a TOML or JSON file (errors name the file).
+
+    Parameters
+    ----------
+    path : str or path-like
+        TOML or JSON file with ``kind``, ``offset`` and ``gain``.
+
+    Returns
+    -------
+    ConversionFunction
+
+    Raises
+    ------
+    LimenError
+        One line naming the file when it cannot be read or holds no valid conversion function.
+    """
     path = Path(path)
     try:
         text = path.read_text(encoding="utf-8")
@@ -93,8 +125,16 @@ def load_conversion(path) -> ConversionFunction:
         raise LimenError(f"bad conversion function: {exc}", path) from None
 
 
-def save_conversion(conv: ConversionFunction, path) -> None:
-    """Write a conversion function as TOML (readable by :func:`load_conversion`), complete or absent."""
+def save_conversion(conv: ConversionFunction, path: PathArg) -> None:
+    """Write a conversion function as TOML (readable by :func:`load_conversion`), complete or absent.
+
+    Parameters
+    ----------
+    conv : ConversionFunction
+        The function to write.
+    path : str or path-like
+        The TOML file written.
+    """
     lines = [f'kind = "{conv.kind}"', f"offset = {conv.offset!r}", f"gain = {conv.gain!r}"]
     if conv.source:
         lines.append("source = " + json.dumps(conv.source))

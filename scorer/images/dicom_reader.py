@@ -11,6 +11,7 @@ from __future__ import annotations
 import io
 import warnings
 from pathlib import Path
+from typing import TYPE_CHECKING
 
 import numpy as np
 
@@ -21,6 +22,11 @@ from scorer.images.formats import check_declared_size
 from scorer.images.image import ImageMetadata, LimenWarning
 from scorer.images.messages import exc_text
 from scorer.images.spacing import dicom_spacing
+
+if TYPE_CHECKING:
+    from pydicom.dataset import Dataset
+    from pydicom.uid import UID
+
 
 #: DICOM Modality (0008,0060) values of projection X-ray images (PS3.3 C.7.3.1.1.1); "OT" (other) is
 #: accepted for secondary captures; anything else (CT, MR, US, NM, PT …) is refused
@@ -33,7 +39,7 @@ def read_dicom(
     meta: ImageMetadata,
     conversion: ConversionFunction | None = None,
     for_conversion_fit: bool = False,
-):
+) -> tuple[np.ndarray, tuple[float, float] | None, str]:
     """Pixels (rescaled), the file's spacing and where it came from; fills ``meta``."""
     import pydicom
 
@@ -117,7 +123,7 @@ def read_dicom(
     return pixels, spacing, source
 
 
-def _truncation(ds, n_bytes: int, messages: list[str]) -> str | None:
+def _truncation(ds: Dataset, n_bytes: int, messages: list[str]) -> str | None:
     """How the file looks cut short, or None.
 
     pydicom stops quietly at the end of the file: a value shorter than its length
@@ -146,21 +152,21 @@ def _truncation(ds, n_bytes: int, messages: list[str]) -> str | None:
     return None
 
 
-def _transfer_syntax(ds):
+def _transfer_syntax(ds: Dataset) -> UID | None:
     fm = getattr(ds, "file_meta", None)
     return None if fm is None else fm.get("TransferSyntaxUID")
 
 
-def _ts_text(ts) -> str:
+def _ts_text(ts: UID | None) -> str:
     if ts is None:
         return "(unknown)"
     name = getattr(ts, "name", "") or ""
     return f"{name} ({ts})" if name and name != str(ts) else str(ts)
 
 
-def _check_decoder(ds, path: Path) -> None:
+def _check_decoder(ds: Dataset, path: Path) -> None:
     """LimenError naming the transfer syntax when no decoder for it is installed."""
-    from pydicom.pixels import get_decoder
+    from pydicom.pixels import get_decoder  # type: ignore[attr-defined]  # public name, re-exported without __all__
 
     ts = _transfer_syntax(ds)
     if ts is None:
@@ -180,7 +186,7 @@ def _check_decoder(ds, path: Path) -> None:
         )
 
 
-def _apply_rescale(ds, arr: np.ndarray, path: Path) -> np.ndarray:
+def _apply_rescale(ds: Dataset, arr: np.ndarray, path: Path) -> np.ndarray:
     """Rescale Slope (0028,1053) and Intercept (0028,1052), PS3.3 C.11.1; else a Modality LUT."""
     pixels = arr.astype(np.float64)
     if "RescaleSlope" in ds or "RescaleIntercept" in ds:
@@ -194,7 +200,7 @@ def _apply_rescale(ds, arr: np.ndarray, path: Path) -> np.ndarray:
             )
         return pixels * slope + intercept
     if "ModalityLUTSequence" in ds:
-        from pydicom.pixels import apply_modality_lut
+        from pydicom.pixels import apply_modality_lut  # type: ignore[attr-defined]  # public, no __all__
 
         try:
             return np.asarray(apply_modality_lut(arr, ds), dtype=np.float64)

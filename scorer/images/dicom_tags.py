@@ -15,6 +15,7 @@ from __future__ import annotations
 
 import warnings
 from pathlib import Path
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
@@ -23,6 +24,10 @@ from scorer.images.conversion import ConversionFunction
 from scorer.images.dates import dicom_datetime_to_iso, normalise_tm
 from scorer.images.image import ImageMetadata, LimenWarning
 
+if TYPE_CHECKING:
+    from pydicom.dataset import Dataset
+
+
 FOR_PRESENTATION_WARNING = (
     "Presentation Intent Type (0008,0068) is FOR PRESENTATION: the image has been processed "
     "for display and its pixel values are not linear in air kerma; threshold contrasts from it "
@@ -30,7 +35,7 @@ FOR_PRESENTATION_WARNING = (
 )
 
 
-def fill_dicom_metadata(ds, meta: ImageMetadata) -> None:
+def fill_dicom_metadata(ds: Dataset, meta: ImageMetadata) -> None:
     """Copy what the data set ``ds`` says about the image's origin, acquisition and pixel values into ``meta``."""
     meta.modality = _text(ds, "Modality")  # (0008,0060)
     meta.detector_type = _text(ds, "DetectorType")  # (0018,7004)
@@ -71,7 +76,7 @@ def fill_dicom_metadata(ds, meta: ImageMetadata) -> None:
         meta.warnings.append(FOR_PRESENTATION_WARNING)  # also warned by load_image once the file is read
 
 
-def _text(ds, keyword: str) -> str | None:
+def _text(ds: Dataset, keyword: str) -> str | None:
     """The element's value as stripped text (multiple values joined by ``\\``), None when absent or empty."""
     value = ds.get(keyword)
     if value is None:
@@ -82,7 +87,7 @@ def _text(ds, keyword: str) -> str | None:
     return text or None
 
 
-def float_or_none(value) -> float | None:
+def float_or_none(value: Any) -> float | None:
     """An element value (the first of several) as a finite float, None when absent, empty or not a number."""
     if value is None or value == "":
         return None
@@ -95,13 +100,13 @@ def float_or_none(value) -> float | None:
     return out if np.isfinite(out) else None
 
 
-def int_or_none(value) -> int | None:
+def int_or_none(value: Any) -> int | None:
     """An element value as an int (truncated), None as for :func:`float_or_none`."""
     f = float_or_none(value)
     return None if f is None else int(f)
 
 
-def _modality_transform_falls(ds) -> bool | None:
+def _modality_transform_falls(ds: Dataset) -> bool | None:
     """Whether the Modality LUT (PS3.3 C.11.1) turns rising stored values into falling ones: a negative
     Rescale Slope (0028,1053), or a LUT whose last entry is below its first; None when that cannot be told."""
     if "RescaleSlope" in ds or "RescaleIntercept" in ds:
@@ -120,7 +125,7 @@ def _modality_transform_falls(ds) -> bool | None:
     return False
 
 
-def _fill_intensity_relation(ds, meta: ImageMetadata) -> None:
+def _fill_intensity_relation(ds: Dataset, meta: ImageMetadata) -> None:
     """Photometric Interpretation, Pixel Intensity Relationship and its Sign, and the direction of the values
     Limen reads (after the Modality LUT) with X-ray intensity (PS3.3 C.8.11.3, C.7.6.3.1.2, C.11.1)."""
     photometric = _text(ds, "PhotometricInterpretation")  # (0028,0004)
@@ -145,7 +150,7 @@ def _fill_intensity_relation(ds, meta: ImageMetadata) -> None:
         meta.intensity_direction = stored
 
 
-def _intensity_basis(ds, meta: ImageMetadata) -> str:
+def _intensity_basis(ds: Dataset, meta: ImageMetadata) -> str:
     """What in the file the direction of its values rests on, for messages."""
     text = _text(ds, "PixelIntensityRelationshipSign")
     if text is not None:
@@ -171,7 +176,7 @@ def _intensity_basis(ds, meta: ImageMetadata) -> str:
 
 
 def check_intensity_relation(
-    ds, meta: ImageMetadata, conversion: ConversionFunction | None, path: Path, for_conversion_fit: bool
+    ds: Dataset, meta: ImageMetadata, conversion: ConversionFunction | None, path: Path, for_conversion_fit: bool
 ) -> None:
     """Refuse values that would be scored as if rising in proportion to air kerma when the file says they do not
     (see :func:`scorer.images.loading.load_image`, Notes).  A conversion function measured on the detector decides

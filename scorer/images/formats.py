@@ -65,7 +65,8 @@ def declared_shape(data: bytes, fmt: str) -> tuple[int, ...] | None:
         if fmt == "npy":
             f = io.BytesIO(data)
             version = np.lib.format.read_magic(f)
-            shape, _, _ = np.lib.format._read_array_header(f, version)
+            # the private reader serves every header version (1.0 to 3.0); the public ones serve one each
+            shape, _, _ = np.lib.format._read_array_header(f, version)  # type: ignore[attr-defined]
             return tuple(int(v) for v in shape)
         if fmt == "tiff":
             import tifffile
@@ -77,7 +78,7 @@ def declared_shape(data: bytes, fmt: str) -> tuple[int, ...] | None:
     return None
 
 
-def check_declared_size(shape, path: Path) -> None:
+def check_declared_size(shape: tuple[int, ...] | None, path: Path) -> None:
     """Refuse an image whose declared size exceeds LIMEN_MAX_IMAGE_MEGAPIXELS before it is decoded."""
     if not shape:
         return

@@ -3,13 +3,40 @@
 from __future__ import annotations
 
 from dataclasses import asdict, dataclass, field
+from typing import Any, cast
 
 import numpy as np
 
 
 @dataclass
 class ImageMetadata:
-    """What is known about where an image came from (DICOM tags where present)."""
+    """What is known about where an image came from (DICOM tags where present).
+
+    Attributes
+    ----------
+    source_path, content_sha256, file_format : str
+        The file read, the SHA-256 of its bytes and its format (``"dicom"``, ``"tiff"``, ``"png"``, ``"npy"``).
+    modality, detector_type, presentation_intent, detector_id, device_serial, station_name, manufacturer : str or None
+        The DICOM attributes of those names, None when absent.
+    kvp, exposure_uas, magnification_factor : float or None
+        Tube voltage, exposure (µAs) and magnification factor (0018,1114), None when absent.
+    acquisition_datetime : str or None
+        ISO 8601 date and time of the acquisition.
+    photometric_interpretation, intensity_relationship : str or None
+        (0028,0004) and (0028,1040) as the file says.
+    intensity_sign : int or None
+        (0028,1041): +1 or −1 as stored.
+    intensity_direction : str or None
+        ``"rising"`` or ``"falling"``: how the values Limen reads move with X-ray intensity; None when not said.
+    linearised : bool
+        Whether a conversion function was applied.
+    conversion : dict or None
+        The conversion function applied (:meth:`ConversionFunction.to_dict`).
+    warnings : list of str
+        What the user must know about this image.
+    spacing_source : str
+        Where the pixel spacing came from: a tag name or ``"argument"``.
+    """
 
     source_path: str = ""
     content_sha256: str = ""
@@ -32,11 +59,11 @@ class ImageMetadata:
     # "rising", "falling", or None when the file does not say (see scorer.images.loading.load_image)
     intensity_direction: str | None = None
     linearised: bool = False
-    conversion: dict | None = None  # the conversion function applied, if any
+    conversion: dict[str, Any] | None = None  # the conversion function applied, if any
     warnings: list[str] = field(default_factory=list)
     spacing_source: str = ""  # where spacing_mm came from: tag name or "argument"
 
-    def to_dict(self) -> dict:
+    def to_dict(self) -> dict[str, Any]:
         return asdict(self)
 
 
@@ -60,7 +87,7 @@ class Image:
 
     @property
     def shape(self) -> tuple[int, int]:
-        return self.pixels.shape  # type: ignore[return-value]
+        return cast("tuple[int, int]", self.pixels.shape)  # 2-D by construction (load_image checks)
 
     @property
     def pixel_mm(self) -> float:
@@ -69,4 +96,10 @@ class Image:
 
 
 class LimenWarning(UserWarning):
-    """Something about an input the user must know, though the work can go on."""
+    """Something about an input the user must know, though the work can go on.
+
+    Parameters
+    ----------
+    message : str
+        What the user must know, naming the input.
+    """

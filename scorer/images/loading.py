@@ -30,6 +30,7 @@ from pathlib import Path
 import numpy as np
 
 from scorer.errors import LimenError
+from scorer.files import PathArg
 from scorer.images.conversion import ConversionFunction
 from scorer.images.dicom_reader import read_dicom
 from scorer.images.dicom_tags import FOR_PRESENTATION_WARNING
@@ -40,8 +41,19 @@ from scorer.images.raster_readers import READERS
 from scorer.images.spacing import check_spacing
 
 
-def image_content_hash(path) -> str:
-    """SHA-256 (hex) of a file's bytes, as recorded in ``ImageMetadata.content_sha256``."""
+def image_content_hash(path: PathArg) -> str:
+    """SHA-256 (hex) of a file's bytes, as recorded in ``ImageMetadata.content_sha256``.
+
+    Parameters
+    ----------
+    path : str or path-like
+        The file.
+
+    Returns
+    -------
+    str
+        64 hexadecimal digits.
+    """
     path = Path(path)
     digest = hashlib.sha256()
     try:
@@ -54,7 +66,7 @@ def image_content_hash(path) -> str:
 
 
 def load_image(
-    path,
+    path: PathArg,
     pixel_spacing_mm: float | tuple[float, float] | None = None,
     conversion: ConversionFunction | None = None,
     min_shape: tuple[int, int] | None = None,

@@ -2,13 +2,16 @@
 
 from __future__ import annotations
 
+from collections.abc import Iterable
+from typing import SupportsFloat, SupportsInt
 
-def fmt_shape(shape) -> str:
+
+def fmt_shape(shape: Iterable[SupportsInt]) -> str:
     """``(48, 64)`` → ``"48×64"``."""
     return "×".join(str(int(n)) for n in shape)
 
 
-def fmt_spacing(spacing) -> str:
+def fmt_spacing(spacing: Iterable[SupportsFloat]) -> str:
     """``(0.1, 0.1)`` → ``"0.1×0.1"``."""
     return "×".join(f"{float(v):g}" for v in spacing)
 

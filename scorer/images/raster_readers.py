@@ -51,7 +51,7 @@ def _read_npy(data: bytes, path: Path) -> np.ndarray:
         raise LimenError(f"cannot read NumPy file ({exc_text(exc)})", path) from None
     if arr.dtype.names is not None:
         raise LimenError("NumPy file holds a structured array, not a numeric image", path)
-    return arr
+    return np.asarray(arr)
 
 
 #: format name (as :func:`scorer.images.formats.sniff_format` gives it) → reader of the file's bytes

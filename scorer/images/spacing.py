@@ -9,6 +9,7 @@ Pixel Spacing (0028,0030)).
 from __future__ import annotations
 
 from pathlib import Path
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
@@ -16,12 +17,17 @@ from scorer.errors import LimenError
 from scorer.images.image import ImageMetadata
 from scorer.images.messages import fmt_spacing
 
+if TYPE_CHECKING:
+    from pydicom.dataset import Dataset
 
-def check_spacing(spacing, path: Path, label: str) -> tuple[float, float]:
+
+def check_spacing(spacing: Any, path: Path, label: str) -> tuple[float, float]:
     """One or two positive finite spacings in mm as (row, column); a LimenError naming ``label`` otherwise."""
     try:
+        values: tuple[float, ...]
         if np.ndim(spacing) == 0:
             values = (float(spacing), float(spacing))
+
         else:
             values = tuple(float(v) for v in spacing)
     except (TypeError, ValueError):
@@ -30,10 +36,10 @@ def check_spacing(spacing, path: Path, label: str) -> tuple[float, float]:
         raise LimenError(f"{label} must be one or two numbers (row, column) in mm, got {len(values)}", path)
     if not all(np.isfinite(v) and v > 0 for v in values):
         raise LimenError(f"{label} must be positive and finite, got {fmt_spacing(values)} mm", path)
-    return values
+    return values  # two values: mypy narrows the tuple by the length check
 
 
-def dicom_spacing(ds, path: Path, meta: ImageMetadata):
+def dicom_spacing(ds: Dataset, path: Path, meta: ImageMetadata) -> tuple[tuple[float, float] | None, str]:
     """Imager Pixel Spacing (0018,1164) at the detector plane, else Pixel Spacing (0028,0030)."""
     from pydicom.multival import MultiValue
 

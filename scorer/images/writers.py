@@ -12,12 +12,15 @@ UIDs) and PS3.10 7.1 (file meta information).
 from __future__ import annotations
 
 import io
+from collections.abc import Callable
 from pathlib import Path
+from typing import Any
 
 import numpy as np
+from numpy.typing import ArrayLike
 
 from scorer.errors import LimenError
-from scorer.files import atomic_write_bytes
+from scorer.files import PathArg, atomic_write_bytes
 from scorer.images.formats import DICOM_SUFFIXES, NPY_SUFFIXES, PNG_SUFFIXES, TIFF_SUFFIXES
 from scorer.images.messages import exc_text, fmt_shape
 from scorer.images.spacing import check_spacing
@@ -48,10 +51,10 @@ _DERIVED_KEYWORDS = {
 
 
 def write_dicom(
-    path,
+    path: PathArg,
     pixels: np.ndarray,
-    spacing_mm: tuple[float, float],
-    tags: dict | None = None,
+    spacing_mm: tuple[float, float] | float,
+    tags: dict[str, Any] | None = None,
     transfer_syntax: str = "explicit-little",
 ) -> Path:
     """Write a 2-D uint16 image as a DICOM Part 10 file.
@@ -202,7 +205,7 @@ def write_dicom(
     if transfer_syntax == "implicit-little":
         ds.file_meta.TransferSyntaxUID = ts_uid
     elif transfer_syntax != "explicit-little":
-        from pydicom.pixels import get_encoder
+        from pydicom.pixels import get_encoder  # type: ignore[attr-defined]  # public name, re-exported without __all__
 
         encoder = get_encoder(ts_uid)
         if not encoder.is_available:
@@ -222,7 +225,7 @@ def write_dicom(
     return atomic_write_bytes(path, buf.getvalue())  # complete or absent, never a truncated file that parses
 
 
-def _check_uint16(pixels, path: Path) -> np.ndarray:
+def _check_uint16(pixels: ArrayLike, path: Path) -> np.ndarray:
     arr = np.asarray(pixels)
     if arr.ndim != 2:
         raise LimenError(f"pixels must be a 2-D array, got shape {fmt_shape(arr.shape)}", path)
@@ -236,10 +239,10 @@ def _check_uint16(pixels, path: Path) -> np.ndarray:
 
 
 def write_image(
-    path,
+    path: PathArg,
     pixels: np.ndarray,
     spacing_mm: tuple[float, float] | float | None = None,
-    tags: dict | None = None,
+    tags: dict[str, Any] | None = None,
     transfer_syntax: str = "explicit-little",
 ) -> Path:
     """Write a 2-D image as TIFF, PNG, ``.npy`` or DICOM, chosen by the extension.
@@ -292,7 +295,7 @@ def write_image(
     raise LimenError(f"cannot write extension '{path.suffix}'; use .dcm, .tif, .tiff, .png or .npy", path)
 
 
-def _write_bytes(path: Path, write) -> Path:
+def _write_bytes(path: Path, write: Callable[[io.BytesIO], object]) -> Path:
     """Encode in memory with ``write(file_object)``, then write the file atomically (complete or absent)."""
     buf = io.BytesIO()
     write(buf)

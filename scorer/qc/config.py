@@ -381,7 +381,7 @@ def _text(value, path, where) -> str:
     return value.strip()
 
 
-def _number(value, path, where, lo=None, hi=None, integer=False):
+def _number(value, path, where, lo=None, hi=None, integer: bool = False):
     ok = isinstance(value, int) if integer else isinstance(value, (int, float))
     if isinstance(value, bool) or not ok:
         raise LimenError(f"{where} must be {'an integer' if integer else 'a number'}, got {value!r}", path)
@@ -393,7 +393,7 @@ def _number(value, path, where, lo=None, hi=None, integer=False):
     return value
 
 
-def _detector(row: dict, ctx: _Ctx, where: str, defaults: DetectorConfig, is_default=False) -> DetectorConfig:
+def _detector(row: dict, ctx: _Ctx, where: str, defaults: DetectorConfig, is_default: bool = False) -> DetectorConfig:
     path = ctx.path
     kw = {}
     for key in IDENTIFIERS:

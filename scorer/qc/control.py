@@ -245,7 +245,7 @@ def evaluate_session(
         c = float(r.threshold_contrast) if r.threshold_contrast is not None else np.nan
         where = f"{detector} {date}, {d:g} mm ({method})"
 
-        def add(rule, direction, value, reference, message, d=d, where=where):
+        def add(rule, direction, value, reference, message, d=d, where=where) -> None:
             alerts.append(
                 Alert(
                     detector,

@@ -50,7 +50,7 @@ def sqlite_transactions(engine) -> None:
     """
 
     @event.listens_for(engine, "connect")
-    def _connect(dbapi_conn, _record):
+    def _connect(dbapi_conn, _record) -> None:
         dbapi_conn.isolation_level = None
         cur = dbapi_conn.cursor()
         cur.execute("PRAGMA busy_timeout = 120000")
@@ -64,5 +64,5 @@ def sqlite_transactions(engine) -> None:
         cur.close()
 
     @event.listens_for(engine, "begin")
-    def _begin(conn):
+    def _begin(conn) -> None:
         conn.exec_driver_sql("BEGIN IMMEDIATE")

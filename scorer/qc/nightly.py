@@ -88,10 +88,10 @@ class NightlyResult:
 
 
 class _Timer:
-    def __init__(self):
+    def __init__(self) -> None:
         self.t = {}
 
-    def add(self, key, dt):
+    def add(self, key, dt) -> None:
         self.t[key] = self.t.get(key, 0.0) + dt
 
 
@@ -172,7 +172,7 @@ def run_nightly(
 
 
 # --------------------------------------------------------------------------- scan
-def _scan(inbox, qdir, config, store, settle_s, result, tm, progress, hash_threads=1):
+def _scan(inbox, qdir, config, store, settle_s, result, tm, progress, hash_threads: int = 1) -> None:
     from tqdm import tqdm
 
     t = time.perf_counter()
@@ -291,7 +291,7 @@ def _hash_all(paths, threads: int) -> list:
         return list(ex.map(_hash_one, paths))
 
 
-def _quarantine(store, qdir, path, sha, reason, result):
+def _quarantine(store, qdir, path, sha, reason, result) -> None:
     moved = quarantine_file(path, qdir, reason)
     if moved is None:
         return  # another run moved it first
@@ -345,7 +345,7 @@ def _job(config, sid, token, imgs) -> SessionJob:
     )
 
 
-def _score(config, store, qdir, runner, lease_s, result, tm, progress):
+def _score(config, store, qdir, runner, lease_s, result, tm, progress) -> None:
     from tqdm import tqdm
 
     claims: dict[int, str] = {}
@@ -436,7 +436,7 @@ def _score(config, store, qdir, runner, lease_s, result, tm, progress):
             break
 
 
-def _email(config, store, result, report=None, run_started=None):
+def _email(config, store, result, report=None, run_started=None) -> None:
     """One message for every pending alert of the database, claimed first so overlapping runs never send twice."""
     from scorer.qc.mail import send_alerts
 

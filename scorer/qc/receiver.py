@@ -95,7 +95,7 @@ class InboxWriter:
     so neither is lost.  Names being written are reserved, so two associations never race for one name.
     """
 
-    def __init__(self, inbox):
+    def __init__(self, inbox) -> None:
         self.inbox = Path(inbox)
         self._lock = threading.Lock()
         self._reserved: set[Path] = set()
@@ -217,7 +217,7 @@ class Receiver:
     ``log`` receives one line per association (and one per write failure).
     """
 
-    def __init__(self, config: ReceiveConfig, log: Callable[[str], None] = print, port: int | None = None):
+    def __init__(self, config: ReceiveConfig, log: Callable[[str], None] = print, port: int | None = None) -> None:
         self.config = config
         self.log = log
         self.port = config.port if port is None else port

@@ -79,7 +79,7 @@ def score_session(job: SessionJob) -> SessionOutcome:
         if image.metadata.content_sha256 != by_path[str(path)]:
             raise LimenError("file changed since it was scanned (content hash differs)", path)
 
-    def on_failure(path, image, exc):
+    def on_failure(path, image, exc) -> None:
         current["path"] = str(path)
 
     try:
@@ -151,7 +151,7 @@ class SerialRunner:
     def __enter__(self):
         return self
 
-    def __exit__(self, *exc):
+    def __exit__(self, *exc) -> bool:
         return False
 
     def run(self, jobs):
@@ -182,7 +182,7 @@ def _watch_parent(parent_pid: int, every_s: float = 0.5) -> None:
     except ImportError:  # pragma: no cover - opencv is a dependency
         pass
 
-    def watch():
+    def watch() -> None:
         while True:
             if os.getppid() != parent_pid:
                 os._exit(1)
@@ -200,7 +200,7 @@ def _started() -> int:
 class PoolRunner:
     """A local process pool of ``workers`` processes (spawned: no database handle is inherited)."""
 
-    def __init__(self, workers: int):
+    def __init__(self, workers: int) -> None:
         self.workers = int(workers)
         self.name = f"process pool ({self.workers} workers)"
 
@@ -221,7 +221,7 @@ class PoolRunner:
             self.pool.submit(_started)
         return self
 
-    def __exit__(self, *exc):
+    def __exit__(self, *exc) -> bool:
         self.pool.shutdown(wait=True, cancel_futures=True)
         for k, v in self._env.items():
             if v is None:
@@ -248,7 +248,7 @@ def _connect_within(client_class, address: str, timeout_s: float):
 
     box = {}
 
-    def connect():
+    def connect() -> None:
         try:
             box["client"] = client_class(address, timeout=f"{timeout_s:g}s")
         except BaseException as exc:  # handed to the caller's thread below
@@ -267,7 +267,7 @@ def _connect_within(client_class, address: str, timeout_s: float):
 class DaskRunner:
     """Sends sessions to an existing Dask distributed scheduler (``dask scheduler`` / ``dask worker``)."""
 
-    def __init__(self, address):
+    def __init__(self, address) -> None:
         self.address = address
         self.name = f"Dask scheduler {address}"
 
@@ -295,7 +295,7 @@ class DaskRunner:
             ) from None
         return self
 
-    def __exit__(self, *exc):
+    def __exit__(self, *exc) -> bool:
         self.client.close()
         return False
 

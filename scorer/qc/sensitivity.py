@@ -66,7 +66,7 @@ def detectable_change(baseline: pd.DataFrame, rules) -> pd.DataFrame:
 def sensitivity_sentence(row) -> str:
     """One line: 'rise ×1.42 in one session (shewhart) — a kerma fall of 50 %; ×1.21 sustained (ewma) — 32 %'."""
 
-    def part(ratio, rule, fall, what):
+    def part(ratio, rule, fall, what) -> str:
         if not rule:
             return f"no rule for {what}"
         return f"×{ratio:.3g} {what} ({rule}; kerma fall ≈ {100 * fall:.0f} % by the Rose model)"

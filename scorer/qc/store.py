@@ -71,7 +71,7 @@ def open_store(url: str, *, create: bool = True) -> Store:
 class Store(IntakeOps, ClaimOps, ResultOps, BaselineOps, AlertOps, MissingOps, OutboxOps, ReleaseOps, QueryOps):
     """One nightly database.  Open with :func:`open_store`; methods each run their own transaction."""
 
-    def __init__(self, engine, url: str):
+    def __init__(self, engine, url: str) -> None:
         self.engine = engine
         self.url = url
         self.is_sqlite = engine.dialect.name == "sqlite"

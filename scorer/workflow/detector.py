@@ -9,9 +9,11 @@ from __future__ import annotations
 import csv
 import io
 import warnings
+from collections.abc import Callable, Iterable, Sequence
 from dataclasses import dataclass, field
 from importlib import resources
-from typing import Callable
+from pathlib import Path
+from typing import Any, TypedDict
 
 import numpy as np
 
@@ -24,6 +26,7 @@ from scorer.detector.measure import (
     panel_from_metadata,
 )
 from scorer.errors import LimenError
+from scorer.files import PathArg
 from scorer.images.conversion import ConversionFunction, load_conversion
 from scorer.images.image import Image
 from scorer.images.loading import load_image
@@ -37,15 +40,28 @@ KERMA_RANGE_UGY = (0.01, 1.0e5)
 # ---------------------------------------------------------------- beam qualities
 
 
-def beam_qualities() -> dict[str, dict]:
+class BeamQuality(TypedDict):
+    """One row of the shipped beam-quality table."""
+
+    q_per_mm2_ugy: float
+    standard: str
+    note: str
+
+
+def beam_qualities() -> dict[str, BeamQuality]:
     """The shipped beam-quality table: name → {"q_per_mm2_ugy", "standard", "note"}.
 
     General-radiography RQA qualities only (values from memory of IEC 62220-1-1);
     mammography q values must be supplied by the user.
+
+    Returns
+    -------
+    dict of str to BeamQuality
+        Upper-case beam name (``"RQA5"``) → its q (photons per mm² per µGy), the standard and a note.
     """
     text = resources.files("scorer").joinpath("data/beam_qualities.csv").read_text(encoding="utf-8")
     lines = [ln for ln in text.splitlines() if ln.strip() and not ln.lstrip().startswith("#")]
-    out = {}
+    out: dict[str, BeamQuality] = {}
     for row in csv.DictReader(io.StringIO("\n".join(lines))):
         out[row["beam"].strip().upper()] = {
             "q_per_mm2_ugy": float(row["q_per_mm2_ugy"]),
@@ -56,7 +72,23 @@ def beam_qualities() -> dict[str, dict]:
 
 
 def q_for_beam(beam: str) -> float:
-    """q (photons per mm² per µGy) of a named beam quality, e.g. ``"RQA5"``."""
+    """q (photons per mm² per µGy) of a named beam quality, e.g. ``"RQA5"``.
+
+    Parameters
+    ----------
+    beam : str
+        Beam quality name, any case (``"rqa5"``).
+
+    Returns
+    -------
+    float
+        q in photons per mm² per µGy.
+
+    Raises
+    ------
+    LimenError
+        For a beam quality not in the table (naming the known ones).
+    """
     table = beam_qualities()
     key = str(beam).strip().upper()
     if key not in table:
@@ -75,9 +107,9 @@ def _no_warn(text: str) -> None:
 
 
 def load_images(
-    paths,
+    paths: Iterable[PathArg],
     *,
-    spacing=None,
+    spacing: float | tuple[float, float] | None = None,
     conversion: ConversionFunction | None = None,
     role: str,
     for_conversion_fit: bool = False,
@@ -86,13 +118,33 @@ def load_images(
     """Read flat-field (``role="flat"``) or edge (``role="edge"``) images, passing each warning to ``warn``
     once: what reading warned about, the image's own metadata warnings, and for a FOR PRESENTATION image
     why it cannot serve its role (also added to its ``metadata.warnings``).  ``for_conversion_fit`` reads the
-    stored values whatever their relation to the beam (see :func:`scorer.images.loading.load_image`)."""
-    images = []
+    stored values whatever their relation to the beam (see :func:`scorer.images.loading.load_image`).
+
+    Parameters
+    ----------
+    paths : iterable of str or path-like
+        The image files.
+    spacing : float or (float, float), optional
+        Pixel spacing (mm) for files that carry none, or to override DICOM's.
+    conversion : ConversionFunction, optional
+        Conversion function that linearises the pixels.
+    role : {"flat", "edge"}
+        What the images are for (named in the FOR PRESENTATION warning).
+    for_conversion_fit : bool
+        Read the stored values for a conversion-function fit.
+    warn : callable
+        Called with the text of each warning.
+
+    Returns
+    -------
+    list of Image
+    """
+    images: list[Image] = []
     for p in paths:
         with warnings.catch_warnings(record=True) as caught:
             warnings.simplefilter("always")
             im = load_image(p, pixel_spacing_mm=spacing, conversion=conversion, for_conversion_fit=for_conversion_fit)
-        shown = set()
+        shown: set[str] = set()
         for w in caught:
             text = str(w.message)
             if text not in shown:
@@ -119,7 +171,9 @@ def load_images(
     return images
 
 
-def check_distinct_and_kerma(paths, images, kerma_ugy, *, linearised: bool, n_flats: int) -> None:
+def check_distinct_and_kerma(
+    paths: Sequence[PathArg], images: Sequence[Image], kerma_ugy: float | None, *, linearised: bool, n_flats: int
+) -> None:
     """Refuse the same image given twice (it would count as independent noise) and an air kerma that cannot be
     the flats' (outside a plausible range, or, with a conversion function, far from the flats' own kerma)."""
     seen: dict[str, str] = {}
@@ -153,24 +207,34 @@ def check_distinct_and_kerma(paths, images, kerma_ugy, *, linearised: bool, n_fl
 @dataclass
 class DetectorMeasurement:
     """What :func:`measure_detector_files` found: the metrics (None when no image was given), the conversion
-    function used (as recorded in detector.json) and the notes on how the images were read."""
+    function used (as recorded in detector.json) and the notes on how the images were read.
+
+    Attributes
+    ----------
+    metrics : DetectorMetrics or None
+        MTF, NNPS, DQE and the rest; None when no image was given.
+    conversion : dict or None
+        The conversion function used, as recorded in detector.json.
+    notes : list of str
+        How the images were read (also passed to ``warn``).
+    """
 
     metrics: DetectorMetrics | None
-    conversion: dict | None
+    conversion: dict[str, Any] | None
     notes: list[str] = field(default_factory=list)
 
 
 def measure_detector_files(
-    flat_files=(),
-    edge_files=(),
+    flat_files: Sequence[PathArg] = (),
+    edge_files: Sequence[PathArg] = (),
     *,
     kerma_ugy: float | None = None,
     q_per_mm2_ugy: float | None = None,
     beam: str | None = None,
-    pixel_spacing_mm=None,
-    conversion_file=None,
-    kerma_csv=None,
-    noise_csv=None,
+    pixel_spacing_mm: float | tuple[float, float] | None = None,
+    conversion_file: PathArg | None = None,
+    kerma_csv: PathArg | None = None,
+    noise_csv: PathArg | None = None,
     warn: Callable[[str], None] = _no_warn,
 ) -> DetectorMeasurement:
     """MTF, NNPS and DQE (and, with ``noise_csv``, the noise components) from flat-field and edge files.
@@ -185,6 +249,11 @@ def measure_detector_files(
     kerma_csv : CSV ``path,kerma_ugy`` of flat fields at several kermas to fit the conversion function to.
     noise_csv : CSV ``path,kerma_ugy`` of flat fields at several kermas for the noise components.
     warn : called with each warning's text as it arises (the CLI prints them on stderr).
+
+    Returns
+    -------
+    DetectorMeasurement
+        The metrics (None when no image was given), the conversion function used and the notes.
     """
     if beam is not None and q_per_mm2_ugy is None:
         q_per_mm2_ugy = q_for_beam(beam)
@@ -216,7 +285,7 @@ def measure_detector_files(
         linearised=conv_fn is not None,
         n_flats=len(flats),
     )
-    notes = []
+    notes: list[str] = []
     if conv_fn is None and (flats or edges):
         notes.append(
             "no conversion function given: pixel values are taken as proportional to air kerma "
@@ -225,7 +294,8 @@ def measure_detector_files(
         warn(notes[-1])
     if not flats and not edges and not noise_csv:
         return DetectorMeasurement(None, conv_dict, notes)
-    series_images: list = []
+    series_images: list[Image] = []
+    series: list[tuple[Path, float]] = []
     if noise_csv:
         series = read_kerma_csv(noise_csv)
         series_images = load_images([p for p, _ in series], spacing=spacing, conversion=conv_fn, role="flat", warn=warn)
@@ -234,7 +304,7 @@ def measure_detector_files(
             flats, edges, kerma_ugy=kerma_ugy, q_per_mm2_ugy=q_per_mm2_ugy, beam=beam, conversion=conv_dict
         )
     else:
-        metrics = measure_detector(series_images, (), conversion=conv_dict, q_per_mm2_ugy=q_per_mm2_ugy)
+        metrics = measure_detector(series_images, [], conversion=conv_dict, q_per_mm2_ugy=q_per_mm2_ugy)
     if not flats and not edges:
         metrics.nnps = None  # a noise series alone gives no headline NNPS
     if noise_csv:

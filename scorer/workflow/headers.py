@@ -10,6 +10,7 @@ from __future__ import annotations
 import warnings
 from pathlib import Path
 
+from scorer.files import PathArg
 from scorer.images.dicom_tags import fill_dicom_metadata
 from scorer.images.image import ImageMetadata, LimenWarning
 from scorer.images.loading import load_image
@@ -17,9 +18,19 @@ from scorer.images.loading import load_image
 _PIXEL_TAGS = (0x7FE00010, 0x7FE00008, 0x7FE00009)  # Pixel Data, Float / Double Float Pixel Data
 
 
-def read_image_metadata(path) -> ImageMetadata:
+def read_image_metadata(path: PathArg) -> ImageMetadata:
     """The metadata of an image file: from the DICOM header alone when it is sound, else from a full read
-    (whose :class:`~scorer.errors.LimenError` names the problem; its warnings are not shown)."""
+    (whose :class:`~scorer.errors.LimenError` names the problem; its warnings are not shown).
+
+    Parameters
+    ----------
+    path : str or path-like
+        The image file.
+
+    Returns
+    -------
+    ImageMetadata
+    """
     path = Path(path)
     md = _quick_metadata(path)
     if md is None:
@@ -36,6 +47,7 @@ def _quick_metadata(path: Path) -> ImageMetadata | None:
     that fails either (or is not plainly DICOM) goes to ``load_image`` for its one-line error.
     """
     import pydicom
+    from pydicom.tag import BaseTag
 
     try:
         with path.open("rb") as fh:
@@ -46,7 +58,8 @@ def _quick_metadata(path: Path) -> ImageMetadata | None:
         with warnings.catch_warnings():
             warnings.simplefilter("ignore")
             ds = pydicom.dcmread(path, defer_size="256 KB")
-        raw = next((ds._dict[t] for t in _PIXEL_TAGS if t in ds._dict), None)
+        tags = [BaseTag(t) for t in _PIXEL_TAGS]
+        raw = next((ds._dict[t] for t in tags if t in ds._dict), None)
         if raw is None:
             return None
         length, tell = getattr(raw, "length", None), getattr(raw, "value_tell", None)
@@ -61,12 +74,23 @@ def _quick_metadata(path: Path) -> ImageMetadata | None:
         return None
 
 
-def read_acquisition_extras(path) -> dict:
+def read_acquisition_extras(path: PathArg) -> dict[str, str | None]:
     """Anode Target Material (0018,1191), Filter Material (0018,7050) and Content Date (0008,0023) of a DICOM
-    file (``anode``, ``filter``, ``content_date`` as YYYY-MM-DD); empty when the header cannot be read."""
+    file (``anode``, ``filter``, ``content_date`` as YYYY-MM-DD); empty when the header cannot be read.
+
+    Parameters
+    ----------
+    path : str or path-like
+        The DICOM file.
+
+    Returns
+    -------
+    dict of str to str or None
+        ``anode``, ``filter`` and ``content_date``, those the header gives.
+    """
     import pydicom
 
-    out = {}
+    out: dict[str, str | None] = {}
     try:
         with warnings.catch_warnings():
             warnings.simplefilter("ignore")
@@ -76,8 +100,9 @@ def read_acquisition_extras(path) -> dict:
     for key, kw in (("anode", "AnodeTargetMaterial"), ("filter", "FilterMaterial")):
         v = ds.get(kw)
         if v:
-            out[key] = "\\".join(str(x) for x in v) if not isinstance(v, str) and hasattr(v, "__iter__") else str(v)
-            out[key] = out[key].strip().upper() or None
+            text = "\\".join(str(x) for x in v) if not isinstance(v, str) and hasattr(v, "__iter__") else str(v)
+            out[key] = text.strip().upper() or None
+
     cd = str(ds.get("ContentDate") or "").strip()
     if len(cd) == 8 and cd.isdigit():
         out["content_date"] = f"{cd[:4]}-{cd[4:6]}-{cd[6:]}"

@@ -10,7 +10,7 @@ import csv
 from pathlib import Path
 
 from scorer.errors import LimenError, short_text
-from scorer.files import read_json, read_toml
+from scorer.files import PathArg, read_json, read_toml
 from scorer.images.conversion import load_conversion
 from scorer.images.image import LimenWarning
 from scorer.images.loading import image_content_hash, load_image
@@ -39,25 +39,63 @@ DATA_DIR = Path(__file__).resolve().parents[1] / "data"
 EXAMPLE_LIMITS = DATA_DIR / "limits-eu-guidelines-2006-digital-mammography.toml"
 
 
-def load_limits(path) -> Limits:
-    """Read and validate a limits file ``limen-limits/1`` (errors name the file and the entry)."""
+def load_limits(path: PathArg) -> Limits:
+    """Read and validate a limits file ``limen-limits/1`` (errors name the file and the entry).
+
+    Parameters
+    ----------
+    path : str or path-like
+        The limits TOML file.
+
+    Returns
+    -------
+    Limits
+    """
     path = Path(path)
     return parse_limits(read_toml(path, "limits file"), path)
 
 
-def human_factor_from_analysis(path, observer: str) -> HumanFactor:
+def human_factor_from_analysis(path: PathArg, observer: str) -> HumanFactor:
     """The human/model threshold factor that `limen analyse --model` measured for ``observer``, from its
-    analysis.json."""
+    analysis.json.
+
+    Parameters
+    ----------
+    path : str or path-like
+        The analysis.json of ``limen analyse --model``.
+    observer : {"npw", "npwe"}
+        The model observer whose factor is wanted.
+
+    Returns
+    -------
+    HumanFactor
+    """
     return parse_human_factor(read_json(path, "analysis file (an analysis.json)"), observer, path)
 
 
 def resolve_human_factor(
-    value: float | None, analysis_file, observer: str, method: str | None = None
+    value: float | None, analysis_file: PathArg | None, observer: str, method: str | None = None
 ) -> HumanFactor | float | None:
     """The human/model factor from ``--human-factor`` or ``--human-factor-from`` (an analysis.json), never both.
 
     With ``method`` (the threshold method the factor will be applied to), a factor the analysis measured only
     for another method is refused here, before any image is scored (:meth:`HumanFactor.for_method`).
+
+    Parameters
+    ----------
+    value : float, optional
+        ``--human-factor``.
+    analysis_file : str or path-like, optional
+        ``--human-factor-from``.
+    observer : {"npw", "npwe"}
+        The model observer the factor is for.
+    method : {"dprime", "count"}, optional
+        The threshold method the factor will be applied to.
+
+    Returns
+    -------
+    HumanFactor, float or None
+        The factor read from the analysis, the value given, or None when neither was given.
     """
     if analysis_file:
         if value is not None:
@@ -67,13 +105,33 @@ def resolve_human_factor(
     return value
 
 
-def load_mtf(path) -> SystemBlur:
-    """The measured presampling MTF of a ``limen detector`` JSON, as the templates' system blur."""
+def load_mtf(path: PathArg) -> SystemBlur:
+    """The measured presampling MTF of a ``limen detector`` JSON, as the templates' system blur.
+
+    Parameters
+    ----------
+    path : str or path-like
+        A detector.json written by ``limen detector``.
+
+    Returns
+    -------
+    SystemBlur
+    """
     return SystemBlur.from_detector_dict(read_json(path, "MTF file (a limen detector JSON)"), path)
 
 
-def load_defect_map(path) -> DefectMap:
-    """The defect map (defective pixels and lines from flat fields) of a ``limen detector`` JSON."""
+def load_defect_map(path: PathArg) -> DefectMap:
+    """The defect map (defective pixels and lines from flat fields) of a ``limen detector`` JSON.
+
+    Parameters
+    ----------
+    path : str or path-like
+        A detector.json written by ``limen detector --flat …``.
+
+    Returns
+    -------
+    DefectMap
+    """
     data = read_json(path, "defect map file (a limen detector JSON)")
     entry = data.get("defect_map") if isinstance(data, dict) else None
     if not isinstance(entry, dict):
@@ -81,11 +139,21 @@ def load_defect_map(path) -> DefectMap:
     return DefectMap.from_dict(entry, str(path))
 
 
-def read_kerma_csv(path) -> list[tuple[Path, float]]:
+def read_kerma_csv(path: PathArg) -> list[tuple[Path, float]]:
     """CSV with columns ``path,kerma_ugy`` (paths relative to the CSV's folder; ``#`` lines are comments).
 
     Each image is listed once, with a positive, finite air kerma (µGy): an image listed twice is refused (which
     line is right cannot be told), never averaged.
+
+    Parameters
+    ----------
+    path : str or path-like
+        The CSV file.
+
+    Returns
+    -------
+    list of (Path, float)
+        Each image's path (made absolute against the CSV's folder) and its air kerma in µGy, in file order.
     """
     import math
 
@@ -111,11 +179,12 @@ def read_kerma_csv(path) -> list[tuple[Path, float]]:
         if not isinstance(raw_p, str) or not raw_p.strip():
             raise LimenError(f"line {n}: no image path", path)
         try:
-            k = float(raw_k)  # type: ignore[arg-type]
+            k = float(raw_k)  # type: ignore[arg-type]  # None (a short row) raises TypeError, caught here
         except (TypeError, ValueError):
             raise LimenError(f"line {n}: kerma_ugy {short_text(raw_k)} is not a number", path) from None
         if not (math.isfinite(k) and k > 0):
-            raise LimenError(f"line {n}: kerma_ugy {raw_k.strip()} is not a positive air kerma in µGy", path)
+            raise LimenError(f"line {n}: kerma_ugy {str(raw_k).strip()} is not a positive air kerma in µGy", path)
+
         p = Path(raw_p.strip())
         p = p if p.is_absolute() else path.parent / p
         key = str(p.resolve())

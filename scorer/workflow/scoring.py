@@ -4,29 +4,54 @@
 from __future__ import annotations
 
 import warnings
-from collections.abc import Sequence
+from collections.abc import Iterable, Iterator, Sequence
 from pathlib import Path
+from typing import Any, overload
 
 from scorer.errors import LimenError
+from scorer.files import PathArg
 from scorer.images.conversion import ConversionFunction
 from scorer.images.image import Image, LimenWarning
 from scorer.images.loading import load_image
 from scorer.observer.scoring import ScoreResult, score_images
+from scorer.phantom.layout import Layout
 
 #: the result's first note when the images are scored without a conversion function
 NO_CONVERSION_NOTE = "no conversion function given: stored pixel values are taken as proportional to air kerma"
 
 
-class ImageFiles(Sequence):
+class ImageFiles(Sequence[Image]):
     """Image files as a sequence of :class:`~scorer.images.image.Image`, each file read when its item is
     asked for, so a loop over them holds one image in memory at a time.
 
     A file given twice (the same resolved path) is refused at once.  The warnings that reading raises
     (:class:`~scorer.images.image.LimenWarning`: FOR PRESENTATION images, a conversion function of the other
     kind than the file says, …) are kept in ``notes``, in reading order.
+
+    Parameters
+    ----------
+    paths : iterable of str or path-like
+        The image files, in scoring order.
+    pixel_spacing_mm : float or (float, float), optional
+        Spacing for files that carry none, or to override DICOM's.
+    conversion : ConversionFunction, optional
+        Conversion function that linearises the pixels.
+
+    Attributes
+    ----------
+    paths : list
+        The files as given.
+    notes : list of str
+        The warnings reading raised so far, in reading order.
     """
 
-    def __init__(self, paths, *, pixel_spacing_mm=None, conversion: ConversionFunction | None = None):
+    def __init__(
+        self,
+        paths: Iterable[PathArg],
+        *,
+        pixel_spacing_mm: float | tuple[float, float] | None = None,
+        conversion: ConversionFunction | None = None,
+    ) -> None:
         self.paths = list(paths)
         self.pixel_spacing_mm = pixel_spacing_mm
         self.conversion = conversion
@@ -41,7 +66,13 @@ class ImageFiles(Sequence):
     def __len__(self) -> int:
         return len(self.paths)
 
-    def __getitem__(self, index) -> Image:
+    @overload
+    def __getitem__(self, index: int) -> Image: ...
+
+    @overload
+    def __getitem__(self, index: slice) -> Sequence[Image]: ...
+
+    def __getitem__(self, index: int | slice) -> Image | Sequence[Image]:
         if isinstance(index, slice):
             raise TypeError("ImageFiles reads one image at a time; index it with an integer")
         path = self.paths[index]
@@ -51,18 +82,18 @@ class ImageFiles(Sequence):
         self.notes += [str(w.message) for w in caught]
         return image
 
-    def __iter__(self):
+    def __iter__(self) -> Iterator[Image]:
         for i in range(len(self.paths)):
             yield self[i]
 
 
 def score_files(
-    paths: Sequence,
-    layout,
+    paths: Sequence[PathArg],
+    layout: Layout,
     *,
     conversion: ConversionFunction | None = None,
-    pixel_spacing_mm=None,
-    **kwargs,
+    pixel_spacing_mm: float | tuple[float, float] | None = None,
+    **kwargs: Any,
 ) -> ScoreResult:
     """Score image files (DICOM, TIFF, PNG, npy) of one phantom on one detector.
 
@@ -79,6 +110,10 @@ def score_files(
 
     The result's warnings are the missing-conversion note, then what reading each image warned about (in
     order), then the scoring's own.
+
+    Returns
+    -------
+    ScoreResult
     """
     images = ImageFiles(paths, pixel_spacing_mm=pixel_spacing_mm, conversion=conversion)
     result = score_images(images, layout, names=images.paths, conversion=conversion, **kwargs)

@@ -8,19 +8,50 @@ import hashlib
 import json
 from pathlib import Path
 
-from scorer.detector.simulator import DetectorModel, SimulatedImage, detector_model_from_dict, dicom_tags
-from scorer.files import atomic_write_text, read_toml
+from scorer.detector.panel_model import DetectorModel
+from scorer.detector.presets import detector_model_from_dict
+from scorer.detector.simulator import SimulatedImage, dicom_tags
+from scorer.files import PathArg, atomic_write_text, read_toml
 from scorer.images.writers import write_dicom, write_image
 
 
-def load_detector_model(path) -> DetectorModel:
-    """A model file: ``base = "direct"|"indirect"`` plus any DetectorModel field to override."""
+def load_detector_model(path: PathArg) -> DetectorModel:
+    """A model file: ``base = "direct"|"indirect"`` plus any DetectorModel field to override.
+
+    Parameters
+    ----------
+    path : str or path-like
+        The model TOML file.
+
+    Returns
+    -------
+    DetectorModel
+    """
     path = Path(path)
     return detector_model_from_dict(read_toml(path, "detector model"), path)
 
 
 def write_simulated(sim: SimulatedImage, out_dir: Path, stem: str, acquired: _dt.datetime, fmt: str = "dicom") -> Path:
-    """Write the image (DICOM by default) and its JSON ground-truth sidecar (with the written file's SHA-256)."""
+    """Write the image (DICOM by default) and its JSON ground-truth sidecar (with the written file's SHA-256).
+
+    Parameters
+    ----------
+    sim : SimulatedImage
+        The simulated image and its truth.
+    out_dir : Path
+        Folder written to (made when missing).
+    stem : str
+        File name without suffix.
+    acquired : datetime.datetime
+        Acquisition time recorded in the file and the sidecar.
+    fmt : {"dicom", "tiff", "png", "npy"}
+        Image format.
+
+    Returns
+    -------
+    Path
+        The image file written (its sidecar is beside it, with suffix ``.json``).
+    """
     out_dir = Path(out_dir)
     out_dir.mkdir(parents=True, exist_ok=True)
     if fmt == "dicom":

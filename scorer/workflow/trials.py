@@ -9,11 +9,23 @@ import numpy as np
 import pandas as pd
 
 from scorer.errors import LimenError, plain_value
+from scorer.files import PathArg
 from scorer.study.trials import LABEL_COLUMNS, validate_trials
 
 
-def load_trials(path) -> pd.DataFrame:
-    """Read a trial table (CSV) and validate it (see :func:`scorer.study.trials.validate_trials`)."""
+def load_trials(path: PathArg) -> pd.DataFrame:
+    """Read a trial table (CSV) and validate it (see :func:`scorer.study.trials.validate_trials`).
+
+    Parameters
+    ----------
+    path : str or path-like
+        The CSV file.
+
+    Returns
+    -------
+    pandas.DataFrame
+        The trials, validated.
+    """
     path = Path(path)
     if not path.is_file():
         raise LimenError("file not found", path)
@@ -35,13 +47,25 @@ def load_trials(path) -> pd.DataFrame:
 RESPONSE_COLUMNS = ["image", "target", "diameter_mm", "contrast", "m_alternatives", "site", "is_signal", "response"]
 
 
-def load_model_table(path) -> tuple[pd.DataFrame, pd.DataFrame | None]:
+def load_model_table(path: PathArg) -> tuple[pd.DataFrame, pd.DataFrame | None]:
     """The model observer's table for ``limen analyse --model``: its trials, and its responses when given.
 
     A trial table (``trials.csv`` of ``limen score --out``) gives the model's decisions only, so the
     human/model factor is measured for the count method; a responses table (``responses.csv``: one row per
     candidate site with ``is_signal`` and ``response``) gives both — the decisions are its M-AFC choices
     (:func:`scorer.observer.npw.decide`) and the d′ method reads the responses themselves.
+
+    Parameters
+    ----------
+    path : str or path-like
+        ``trials.csv`` or ``responses.csv`` of ``limen score --out``.
+
+    Returns
+    -------
+    trials : pandas.DataFrame
+        The model's M-AFC trials.
+    responses : pandas.DataFrame or None
+        Its per-site responses, when the file holds them.
     """
     from scorer.observer.npw import decide
 
