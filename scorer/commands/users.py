@@ -120,7 +120,7 @@ def add(name: str, role: str, generate: bool, password_stdin: bool, db_url: str 
     """Create an account NAME (password prompted, read with --password-stdin, or generated with --generate)."""
     from webapp.account_admin import add_account
     from webapp.accounts import check_new_name
-    from webapp.security import db
+    from webapp.models import db
 
     name = check_new_name(name)
     password = _new_password(generate, password_stdin, "password")
@@ -150,8 +150,7 @@ def list_users(db_url: str | None, instance: str | None) -> None:
     """List accounts (name, role, active)."""
     from sqlalchemy import select
 
-    from webapp.models import User
-    from webapp.security import db
+    from webapp.models import User, db
 
     app = _app(db_url, instance)
     with app.app_context():
@@ -163,7 +162,7 @@ def _change(name: str, db_url: str | None, instance: str | None, change: Callabl
     """Apply ``change(user)`` (a webapp.account_admin operation, which audits) to account NAME in one transaction;
     an unknown NAME is a one-line error."""
     from webapp.account_admin import account
-    from webapp.security import db
+    from webapp.models import db
 
     app = _app(db_url, instance)
     with app.app_context():
