@@ -11,6 +11,7 @@ from __future__ import annotations
 import html
 import json
 from pathlib import Path
+from typing import Iterable, Mapping
 
 import matplotlib
 
@@ -354,10 +355,53 @@ def write_trend_report(
     atomic_write_text(
         page,
         html_page(
-            f"{programme}: nightly trend", sections, meta={"rules": rules.__dict__, "database": store_display(store)}
+            f"{programme}: nightly trend",
+            sections,
+            meta={"rules": rules.__dict__, "database": store_display(store)},
+            simulated=simulated_sentence(sessions, store.simulated_images()),
         ),
     )
     return page
+
+
+def simulated_sentence(sessions: list[dict], simulated: dict[int, int | None]) -> str | None:
+    """A sentence naming, per detector, the images of ``sessions`` that Limen's simulator made, or None when none.
+
+    ``simulated``: session id → its simulated images, as stored with the session when it was scored (the DICOM
+    Manufacturer of each image; :meth:`scorer.qc.queries.QueryOps.simulated_images`).
+    """
+    per_det: dict[str, list[int]] = {}  # detector → [simulated images, all images, sessions with simulated ones]
+    for s in sessions:
+        counts = per_det.setdefault(str(s["detector"]), [0, 0, 0])
+        n_sim = simulated.get(int(s["id"])) or 0
+        counts[0] += n_sim
+        counts[1] += int(s["n_images"])
+        counts[2] += n_sim > 0
+    parts = [
+        f"{det}: {n_sim} of {n_all} image(s), in {n_ses} session(s)"
+        for det, (n_sim, n_all, n_ses) in sorted(per_det.items())
+        if n_sim
+    ]
+    if not parts:
+        return None
+    return "Made by Limen's physics simulator, not by an X-ray unit — " + "; ".join(parts) + "."
+
+
+def baseline_sessions_text(session_ids: Iterable[int], dates: Mapping[int, str]) -> str:
+    """The sessions of a baseline named by acquisition date, the database ids after them as a detail.
+
+    "acquired 2026-03-02, 2026-03-03 (2 sessions), 2026-03-05 (session ids 1, 3, 4, 7)"; ``dates``: session id →
+    its acquisition date (YYYY-MM-DD), a session missing from it is named by its id alone.
+    """
+    ids = sorted(int(i) for i in session_ids)
+    order = sorted(ids, key=lambda i: (dates.get(i, "9999-99-99"), i))
+    per_date: dict[str, int] = {}
+    for i in order:
+        day = dates.get(i, f"session {i} (date unknown)")
+        per_date[day] = per_date.get(day, 0) + 1
+    named = ", ".join(day if n == 1 else f"{day} ({n} sessions)" for day, n in per_date.items())
+    label = "session id" if len(ids) == 1 else "session ids"
+    return f"acquired {named} ({label} {', '.join(map(str, order))})"
 
 
 def store_display(store) -> str:
@@ -435,7 +479,8 @@ def _baseline_status(store, det, method, dframe, rules=None) -> str:
             "(or `limen baseline set`)."
         )
     else:
-        head = f"Baseline ({bl[3]}): sessions {', '.join(map(str, sorted(bl[2])))}."
+        dates = {int(s["id"]): str(s["session_date"]) for s in store.sessions(det)}
+        head = f"Baseline ({bl[3]}): {det}, {baseline_sessions_text(bl[2], dates)}."
     out = f"<p>{html.escape(head + rej_txt)}</p>"
     if bl is not None and rules is not None:
         sens = detectable_change(bl[0], rules)
