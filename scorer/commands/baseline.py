@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+from typing import Any, Iterable
+
 import click
 
 from scorer.commands import options
@@ -97,14 +99,14 @@ def _config_option():
     )
 
 
-def baseline_sessions_text(session_ids, dates: dict[int, str]) -> str:
+def baseline_sessions_text(session_ids: Iterable[int], dates: dict[int, str]) -> str:
     """The baseline's sessions by acquisition date (:func:`scorer.reports.trend.baseline_sessions_text`)."""
     from scorer.reports.trend import baseline_sessions_text as text
 
     return text(session_ids, dates)
 
 
-def _session_dates(store) -> dict[int, str]:
+def _session_dates(store: Any) -> dict[int, str]:
     """Scored session id → its acquisition date (YYYY-MM-DD), to name baselines as a physicist knows them."""
     return {int(s["id"]): str(s["session_date"]) for s in store.sessions()}
 
