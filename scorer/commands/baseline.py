@@ -2,8 +2,8 @@
 
 from __future__ import annotations
 
-from collections.abc import Callable
-from typing import TYPE_CHECKING
+from collections.abc import Callable, Iterable
+from typing import TYPE_CHECKING, Any
 
 import click
 
@@ -51,6 +51,7 @@ def show(db: str, detector: str | None, config_file: str | None, as_json: bool) 
     rules = load_nightly_config(config_file).alerts
     store = _open(db)
     try:
+        dates = _session_dates(store)
         out = []
         waiting = []
         for det in [detector] if detector else store.detectors():
@@ -89,8 +90,8 @@ def show(db: str, detector: str | None, config_file: str | None, as_json: bool) 
     for r in out:
         click.echo(
             f"{r['detector']}  {r['method']:>6}  {r['diameter_mm']:>6g} mm  C_T {100 * r['baseline_contrast']:.3g} %"
-            f"  σ(log10) {r['sigma_log10']:.3f}  {r['source']} from sessions "
-            f"{', '.join(map(str, r['sessions']))}"
+            f"  σ(log10) {r['sigma_log10']:.3f}  {r['source']} from the sessions "
+            f"{baseline_sessions_text(r['sessions'], dates)}"
         )
         click.echo(f"      detectable rise of C_T: {r['detectable_text']}")
     for det in waiting if out else []:
@@ -105,6 +106,18 @@ def _config_option() -> Callable[[FC], FC]:
         default=None,
         help="Nightly configuration: alert rules and baseline length used to re-evaluate the stored alerts.",
     )
+
+
+def baseline_sessions_text(session_ids: Iterable[int], dates: dict[int, str]) -> str:
+    """The baseline's sessions by acquisition date (:func:`scorer.reports.trend.baseline_sessions_text`)."""
+    from scorer.reports.trend import baseline_sessions_text as text
+
+    return text(session_ids, dates)
+
+
+def _session_dates(store: Any) -> dict[int, str]:
+    """Scored session id → its acquisition date (YYYY-MM-DD), to name baselines as a physicist knows them."""
+    return {int(s["id"]): str(s["session_date"]) for s in store.sessions()}
 
 
 def _rules(config_file: str | None, detector: str) -> tuple[int, AlertRules, HumanFactor | float | None]:
@@ -167,9 +180,10 @@ def set_(
                 )
         k, rules, factor = _rules(config_file, detector)
         _frames, changes = store.set_baseline(detector, ids, k, rules, factor)
+        dates = _session_dates(store)
     finally:
         store.close()
-    click.echo(f"baseline of {detector} set from sessions {', '.join(map(str, sorted(ids)))}")
+    click.echo(f"baseline of {detector} set from the sessions {baseline_sessions_text(ids, dates)}")
     _say(changes)
 
 
@@ -193,10 +207,14 @@ def clear(db: str, detector: str, config_file: str | None) -> None:
     try:
         k, rules, factor = _rules(config_file, detector)
         n, changes = store.clear_baseline(detector, k, rules, factor)
+        dates = _session_dates(store)
     finally:
         store.close()
     click.echo(f"{detector}: {n} baseline row(s) removed")
     for b in changes.baseline_changes:
         if b["after"]:
-            click.echo(f"  automatic baseline ({b['method']}): sessions {', '.join(map(str, b['after']))}")
+            click.echo(
+                f"  automatic baseline of {detector} ({b['method']}): the sessions "
+                f"{baseline_sessions_text(b['after'], dates)}"
+            )
     _say(changes)

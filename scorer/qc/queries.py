@@ -97,6 +97,16 @@ class QueryOps:
                 for r in s.scalars(q)
             ]
 
+    def simulated_images(self) -> dict[int, int | None]:
+        """Scored session id → how many of its images Limen's simulator made (None: stored before Limen said so)."""
+        with self.transaction() as s:
+            rows = s.execute(select(SessionRow.id, SessionRow.settings).where(SessionRow.state == "scored")).all()
+        out: dict[int, int | None] = {}
+        for sid, settings in rows:
+            n = json.loads(settings or "{}").get("simulated_images")
+            out[int(sid)] = None if n is None else int(n)
+        return out
+
     def other_sessions(self, group_key: str, session_id: int) -> list[dict]:
         """Sessions other than ``session_id`` with the same detector, day and settings (their id and image count)."""
         with self.transaction() as s:

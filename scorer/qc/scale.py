@@ -67,6 +67,7 @@ def score_session(job: SessionJob) -> SessionOutcome:
     A file that fails (unreadable, changed since the scan, phantom not found) is named in
     ``failed_path``/``reason`` so the coordinator can quarantine it and re-form the session.
     """
+    from scorer.detector.comparison import SIMULATOR
     from scorer.workflow.scoring import score_files
 
     t0 = time.perf_counter()
@@ -136,6 +137,8 @@ def score_session(job: SessionJob) -> SessionOutcome:
         human_factor=job.human_factor,
         limits=None if job.limits is None else job.limits.path,
         layout=job.layout.source_path,
+        # provenance: how many images Limen's simulator made (their DICOM Manufacturer), for the reports' banner
+        simulated_images=sum(1 for s in res.images if (s.metadata or {}).get("manufacturer") == SIMULATOR),
     )
     out.warnings = list(dict.fromkeys(res.warnings))
     out.scoring_s = time.perf_counter() - t0

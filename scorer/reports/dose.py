@@ -2,12 +2,13 @@
 
 from __future__ import annotations
 
-import html
+from typing import Any
 
 import numpy as np
+from markupsafe import Markup
 
 import scorer.observer.flags as flags
-from scorer.reports.html import error_bars, figure_to_svg, html_page, plain_log_ticks, table_html
+from scorer.reports.html import error_bars, figure_to_svg, plain_log_ticks, render_page, table_html
 
 
 def _plt():
@@ -209,39 +210,27 @@ def rose_text(series: dict) -> str:
     return text
 
 
-def _legend(series: dict) -> str:
+def _legend(series: dict[str, Any]) -> str:
+    """The legend of the flags shown on the page (empty when none is)."""
     seen = [f for g in series.get("groups", []) for p in g["thresholds"] for f in point_flags(p)]
     seen += [f for fit in series.get("fits", []) for f in fit.get("flags") or []]
     seen += [f for fit in series.get("fits", []) for f in fit.get("kerma_for_limit_flags") or []]
-    return f"<p class='meta'>Flags: {html.escape(flags.legend(seen))}</p>" if seen else ""
+    return flags.legend(seen) if seen else ""
 
 
-def dose_series_html(series: dict, title: str = "Limen dose series") -> str:
-    n_sim = sum(int(g.get("n_simulated") or 0) for g in series.get("groups", []))
-    n_all = sum(int(g.get("n_images") or 0) for g in series.get("groups", []))
-    banner = (
-        (
-            f"<p class='fail'><b>Simulated data:</b> {n_sim} of {n_all} image(s) were made by Limen's physics "
-            "simulator, not by a real detector (invented demo scenario).</p>"
-        )
-        if n_sim
-        else ""
+def dose_series_html(series: dict[str, Any], title: str = "Limen dose series") -> str:
+    """The dose-series page (template ``dose.html``): threshold against kerma, β per diameter, kerma groups."""
+    return render_page(
+        "dose.html",
+        title,
+        {"settings": series.get("settings")},
+        n_simulated=sum(int(g.get("n_simulated") or 0) for g in series.get("groups", [])),
+        n_images=sum(int(g.get("n_images") or 0) for g in series.get("groups", [])),
+        figure=Markup(dose_response_svg(series)),
+        rose=Markup(rose_text(series)),
+        fits_table=Markup(table_html(fit_rows(series), left=["flags", "note"])),
+        groups_table=Markup(table_html(group_rows(series), left=["flags"])),
+        legend=_legend(series),
+        warnings=list(series.get("warnings") or []),
+        method=Markup(METHOD_TEXT),
     )
-    sections = [
-        (
-            "Threshold against kerma",
-            banner + "<figure>" + dose_response_svg(series) + "<figcaption>Points: each kerma "
-            "group's threshold with its 95 % CI; lines: the fitted power law per diameter.</figcaption></figure>",
-        ),
-        (
-            "Fitted exponent β and kerma for the limit",
-            rose_text(series) + table_html(fit_rows(series), left=["flags", "note"]),
-        ),
-        ("Per kerma group", table_html(group_rows(series), left=["flags"]) + _legend(series)),
-    ]
-    if series.get("warnings"):
-        sections.append(
-            ("Warnings", "<ul>" + "".join(f"<li>{html.escape(w)}</li>" for w in series["warnings"]) + "</ul>")
-        )
-    sections.append(("Method", METHOD_TEXT))
-    return html_page(title, sections, meta={"settings": series.get("settings")})

@@ -8,16 +8,17 @@ appears on every page.
 from __future__ import annotations
 
 import datetime as _dt
-import html
 import io
 import json
 import platform
 from pathlib import Path
-from typing import Iterable
+from typing import Any, Iterable
 
 import numpy as np
+from markupsafe import Markup
 
 from scorer.files import atomic_write_text
+from scorer.reports.templating import render, stylesheet
 
 CAUTION = (
     "Limen's results support, and never replace, the judgement of a qualified medical "
@@ -33,22 +34,6 @@ DOSE_CAUTION = (
     "decision for a qualified medical physicist under local regulations, never for this tool alone."
 )
 
-_STYLE = """
-body{font-family:system-ui,-apple-system,Segoe UI,Roboto,sans-serif;margin:2em auto;max-width:70em;color:#1b1b1b;
-line-height:1.45}
-h1{font-size:1.6em;margin-bottom:.2em} h2{font-size:1.25em;margin-top:1.6em;border-bottom:1px solid #ccc}
-table{border-collapse:collapse;margin:.6em 0;font-size:.92em}
-th,td{border:1px solid #bbb;padding:.25em .6em;text-align:right}
-th{background:#eef2f5} td.l,th.l{text-align:left}
-.caution{background:#fff6e0;border-left:5px solid #d08a00;padding:.6em 1em;margin:1em 0}
-.pass{color:#106b21;font-weight:600}.fail{color:#a4161a;font-weight:600}.indeterminate{color:#8a6d00;font-weight:600}
-.meta{color:#555;font-size:.85em} figure{margin:1em 0} figcaption{color:#444;font-size:.9em}
-.simulated{background:#fde8e8;border-left:5px solid #a4161a;padding:.5em 1em;margin:1em 0}
-.answer{background:#eef6ee;border-left:5px solid #2b7a3d;padding:.4em 1em;margin:.6em 0}
-.answer li{margin:.25em 0} .flag{color:#a4161a;font-weight:600}
-details summary{cursor:pointer;color:#234} pre{white-space:pre-wrap;word-break:break-all}
-"""
-
 
 def figure_to_svg(fig) -> str:
     """Render a matplotlib figure to an inline SVG string and close it."""
@@ -63,34 +48,37 @@ def figure_to_svg(fig) -> str:
 
 
 def table_html(
-    rows: list[dict], columns: list[str] | None = None, headers: dict | None = None, left: Iterable[str] = ()
+    rows: list[dict[str, Any]],
+    columns: list[str] | None = None,
+    headers: dict[str, str] | None = None,
+    left: Iterable[str] = (),
 ) -> str:
-    """A plain HTML table from a list of dicts (floats shown with 4 significant figures)."""
+    """A plain HTML table from a list of dicts (floats shown with 4 significant figures; template ``table.html``)."""
     if not rows:
-        return "<p><em>No rows.</em></p>"
+        return str(render("table.html", rows=[], headings=[]))
     columns = columns or list(rows[0].keys())
     headers = headers or {}
     left = set(left)
 
-    def cell(v):
+    def cell(v: Any) -> str:
         if v is None or (isinstance(v, float) and not np.isfinite(v)):
             return "—"
         if isinstance(v, (float, np.floating)):
             return f"{float(v):.4g}"
-        return html.escape(str(v))
+        return str(v)
 
-    head = "".join(f'<th class="{"l" if c in left else ""}">{html.escape(headers.get(c, c))}</th>' for c in columns)
+    headings = [{"cls": "l" if c in left else "", "text": headers.get(c, c)} for c in columns]
     body = []
     for r in rows:
-        tds = []
+        cells = []
         for c in columns:
             v = r.get(c)
             cls = "l" if c in left else ""
             if c == "verdict" and isinstance(v, str):
                 cls = (cls + " " + v).strip()
-            tds.append(f'<td class="{cls}">{cell(v)}</td>')
-        body.append("<tr>" + "".join(tds) + "</tr>")
-    return f"<table><thead><tr>{head}</tr></thead><tbody>{''.join(body)}</tbody></table>"
+            cells.append({"cls": cls, "text": cell(v)})
+        body.append(cells)
+    return str(render("table.html", rows=body, headings=headings))
 
 
 def provenance() -> dict:
@@ -121,7 +109,7 @@ def provenance() -> dict:
 def html_page(
     title: str,
     sections: list[tuple[str, str]],
-    meta: dict | None = None,
+    meta: dict[str, Any] | None = None,
     *,
     simulated: str | None = None,
     dose: bool = False,
@@ -130,27 +118,43 @@ def html_page(
 
     Every page carries the physicist caution and "not for clinical diagnosis"; ``simulated`` (a sentence
     saying which inputs were simulated) adds the simulated-data banner, ``dose`` the caution on choosing a
-    clinical dose (:data:`DOSE_CAUTION`)."""
+    clinical dose (:data:`DOSE_CAUTION`). Rendered by the template ``page.html`` (autoescaped: the title,
+    headings and sentences are text; each section's body is HTML built by the report)."""
+    return render_page(
+        "page.html",
+        title,
+        meta,
+        simulated=simulated,
+        dose=dose,
+        sections=[(heading, Markup(body)) for heading, body in sections],
+    )
+
+
+def render_page(
+    template: str,
+    title: str,
+    meta: dict[str, Any] | None = None,
+    *,
+    simulated: str | None = None,
+    dose: bool = False,
+    **context: Any,
+) -> str:
+    """A report page from ``template``, a template extending ``page.html`` (its ``content`` block), with the
+    cautions, the simulated-data banner and the provenance every page carries (see :func:`html_page`)."""
     meta = dict(meta or {})
     meta.setdefault("provenance", provenance())
     caution = f"{CAUTION} {NOT_FOR_DIAGNOSIS}" + (f" {DOSE_CAUTION}" if dose else "")
-    parts = [
-        "<!DOCTYPE html><html lang='en'><head><meta charset='utf-8'>",
-        f"<title>{html.escape(title)}</title><style>{_STYLE}</style></head><body>",
-        f"<h1>{html.escape(title)}</h1>",
-        f"<div class='caution'><strong>Caution.</strong> {html.escape(caution)}</div>",
-    ]
-    if simulated:
-        parts.append(f"<div class='simulated'><strong>Simulated data.</strong> {html.escape(simulated)}</div>")
-    for heading, body in sections:
-        if heading:
-            parts.append(f"<h2>{html.escape(heading)}</h2>")
-        parts.append(body)
-    parts.append(
-        "<h2>Provenance</h2><pre class='meta'>" + html.escape(json.dumps(meta, indent=2, default=str)) + "</pre>"
+    return str(
+        render(
+            template,
+            title=title,
+            stylesheet=stylesheet(),
+            caution=caution,
+            simulated=simulated,
+            meta_json=json.dumps(meta, indent=2, default=str),
+            **context,
+        )
     )
-    parts.append("</body></html>")
-    return "\n".join(parts)
 
 
 def write_json(path: Path, obj) -> None:

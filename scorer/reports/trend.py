@@ -8,9 +8,9 @@ Written by ``limen trend`` and by ``limen nightly --report``: ``trend.html`` (se
 
 from __future__ import annotations
 
-import html
 import json
 from pathlib import Path
+from typing import Any, Iterable, Mapping
 
 import matplotlib
 
@@ -19,6 +19,7 @@ import matplotlib.dates as mdates  # noqa: E402
 import matplotlib.pyplot as plt  # noqa: E402
 import numpy as np  # noqa: E402
 import pandas as pd  # noqa: E402
+from markupsafe import Markup  # noqa: E402
 
 from scorer.errors import LimenError  # noqa: E402
 from scorer.files import atomic_write_text  # noqa: E402
@@ -26,7 +27,8 @@ from scorer.qc.config import AlertRules  # noqa: E402
 from scorer.qc.control import control_limits, ewma, ewma_halfwidth  # noqa: E402
 from scorer.qc.sensitivity import detectable_change  # noqa: E402
 from scorer.qc.stability import choose_baseline_window, rejected_sessions  # noqa: E402
-from scorer.reports.html import figure_to_svg, html_page, table_html, write_json  # noqa: E402
+from scorer.reports.html import figure_to_svg, render_page, table_html, write_json  # noqa: E402
+from scorer.reports.templating import render  # noqa: E402
 
 
 def trend_frame(store, rules: AlertRules, baseline_sessions=None) -> pd.DataFrame:
@@ -206,12 +208,12 @@ def trend_figure(det_frame: pd.DataFrame, method: str, rules: AlertRules):
 
 
 def write_trend_report(
-    store,
-    out_dir,
+    store: Any,
+    out_dir: str | Path,
     rules: AlertRules | None = None,
     programme: str = "Nightly phantom QC",
     method: str | None = None,
-    config=None,
+    config: Any = None,
 ) -> Path:
     """Write trend.html, trend.csv, alerts.csv and trend.json into ``out_dir``; returns the HTML path.
 
@@ -288,76 +290,110 @@ def write_trend_report(
             "quarantine": quarantine,
         },
     )
-    sections = [("Summary", _summary(frame, sessions, alerts))]
+    detectors = []
     for det in sorted(frame["detector"].unique()) if len(frame) else []:
         dframe = frame[frame["detector"] == det]
         meth = method or _main_method(dframe, sessions, det)
-        body = (
-            f"<figure>{figure_to_svg(trend_figure(dframe, meth, rules))}<figcaption>Threshold contrast per "
-            f"diameter ({meth} method, {dframe['observer'].iloc[0].upper()} observer) against the date of each "
-            "session, with 95 % confidence intervals. Squares: the sessions that form the baseline; shaded band: "
-            "Shewhart control limits; dotted: the baseline plus the allowed fraction; dashed: EWMA; red rings: "
-            "alerts; open triangles: sessions whose acquisition settings differ from the expected ones; crosses: "
-            "sessions rejected as a baseline because a trend ran through them (baseline unstable)."
-            "</figcaption></figure>"
-        )
-        body += (
-            _baseline_status(store, det, meth, dframe)
-            + _latest(dframe, meth)
-            + _alert_table([a for a in alerts if a["detector"] == det])
-        )
         flagged = [s for s in sessions if s["detector"] == det and s["flags"]]
-        if flagged:
-            body += "<h3>Acquisition-setting flags</h3>" + table_html(
-                [{"date": s["session_date"], "session": s["id"], "flags": "; ".join(s["flags"])} for s in flagged],
-                left=["date", "flags"],
-            )
-        sections.append((det, body))
+        det_alerts = [a for a in alerts if a["detector"] == det]
+        detectors.append(
+            {
+                "name": det,
+                "figure": Markup(figure_to_svg(trend_figure(dframe, meth, rules))),
+                "method": meth,
+                "observer": str(dframe["observer"].iloc[0]).upper(),
+                "baseline": _baseline_status(store, det, meth, dframe),
+                "latest": _latest(dframe, meth),
+                "alerts_table": _alert_table(det_alerts) if det_alerts else None,
+                "flags_table": None
+                if not flagged
+                else Markup(
+                    table_html(
+                        [
+                            {"date": s["session_date"], "session": s["id"], "flags": "; ".join(s["flags"])}
+                            for s in flagged
+                        ],
+                        left=["date", "flags"],
+                    )
+                ),
+            }
+        )
+    missing_table = None
     if missing:
-        sections.append(
-            (
-                "Missing QC",
-                "<p>QC that did not happen: sessions left incomplete, detectors that sent nothing, runs whose every "
-                "file was quarantined.</p>"
-                + table_html(
-                    [
-                        {
-                            "raised": f"{m['created_at']:%Y-%m-%d %H:%M}",
-                            "kind": m["kind"],
-                            "detector": m["detector"] or "—",
-                            "message": m["message"],
-                            "e-mailed": "yes" if m["emailed"] else "no",
-                        }
-                        for m in missing[-100:]
-                    ],
-                    left=["kind", "detector", "message", "e-mailed"],
-                ),
-            )
+        missing_table = table_html(
+            [
+                {
+                    "raised": f"{m['created_at']:%Y-%m-%d %H:%M}",
+                    "kind": m["kind"],
+                    "detector": m["detector"] or "—",
+                    "message": m["message"],
+                    "e-mailed": "yes" if m["emailed"] else "no",
+                }
+                for m in missing[-100:]
+            ],
+            left=["kind", "detector", "message", "e-mailed"],
         )
+    quarantine_table = None
     if quarantine:
-        sections.append(
-            (
-                "Quarantined files",
-                table_html(
-                    [{"file": q["path"], "reason": q["reason"], "moved to": q["moved_to"]} for q in quarantine[-50:]],
-                    left=["file", "reason", "moved to"],
-                ),
-            )
+        quarantine_table = table_html(
+            [{"file": q["path"], "reason": q["reason"], "moved to": q["moved_to"]} for q in quarantine[-50:]],
+            left=["file", "reason", "moved to"],
         )
-    sections.append(
-        (
-            "Files",
-            "<p>trend.csv (every threshold with baseline and limits), alerts.csv, trend.json beside this page.</p>",
-        )
-    )
     page = out / "trend.html"
     atomic_write_text(
         page,
-        html_page(
-            f"{programme}: nightly trend", sections, meta={"rules": rules.__dict__, "database": store_display(store)}
+        render_page(
+            "trend.html",
+            f"{programme}: nightly trend",
+            {"rules": rules.__dict__, "database": store_display(store)},
+            simulated=simulated_sentence(sessions, store.simulated_images()),
+            summary_table=_summary(frame, sessions, alerts),
+            detectors=detectors,
+            missing_table=None if missing_table is None else Markup(missing_table),
+            quarantine_table=None if quarantine_table is None else Markup(quarantine_table),
         ),
     )
     return page
+
+
+def simulated_sentence(sessions: list[dict], simulated: dict[int, int | None]) -> str | None:
+    """A sentence naming, per detector, the images of ``sessions`` that Limen's simulator made, or None when none.
+
+    ``simulated``: session id → its simulated images, as stored with the session when it was scored (the DICOM
+    Manufacturer of each image; :meth:`scorer.qc.queries.QueryOps.simulated_images`).
+    """
+    per_det: dict[str, list[int]] = {}  # detector → [simulated images, all images, sessions with simulated ones]
+    for s in sessions:
+        counts = per_det.setdefault(str(s["detector"]), [0, 0, 0])
+        n_sim = simulated.get(int(s["id"])) or 0
+        counts[0] += n_sim
+        counts[1] += int(s["n_images"])
+        counts[2] += n_sim > 0
+    parts = [
+        f"{det}: {n_sim} of {n_all} image(s), in {n_ses} session(s)"
+        for det, (n_sim, n_all, n_ses) in sorted(per_det.items())
+        if n_sim
+    ]
+    if not parts:
+        return None
+    return "Made by Limen's physics simulator, not by an X-ray unit — " + "; ".join(parts) + "."
+
+
+def baseline_sessions_text(session_ids: Iterable[int], dates: Mapping[int, str]) -> str:
+    """The sessions of a baseline named by acquisition date, the database ids after them as a detail.
+
+    "acquired 2026-03-02, 2026-03-03 (2 sessions), 2026-03-05 (session ids 1, 3, 4, 7)"; ``dates``: session id →
+    its acquisition date (YYYY-MM-DD), a session missing from it is named by its id alone.
+    """
+    ids = sorted(int(i) for i in session_ids)
+    order = sorted(ids, key=lambda i: (dates.get(i, "9999-99-99"), i))
+    per_date: dict[str, int] = {}
+    for i in order:
+        day = dates.get(i, f"session {i} (date unknown)")
+        per_date[day] = per_date.get(day, 0) + 1
+    named = ", ".join(day if n == 1 else f"{day} ({n} sessions)" for day, n in per_date.items())
+    label = "session id" if len(ids) == 1 else "session ids"
+    return f"acquired {named} ({label} {', '.join(map(str, order))})"
 
 
 def store_display(store) -> str:
@@ -371,9 +407,10 @@ def _main_method(dframe, sessions, det) -> str:
     return vm[-1] if vm else str(dframe["method"].iloc[0])
 
 
-def _summary(frame, sessions, alerts) -> str:
+def _summary(frame: pd.DataFrame, sessions: list[dict[str, Any]], alerts: list[dict[str, Any]]) -> Markup | None:
+    """The summary table, one row per detector (None when no session is scored yet)."""
     if frame.empty:
-        return "<p><em>No scored sessions yet.</em></p>"
+        return None
     rows = []
     for det in sorted(frame["detector"].unique()):
         ss = [s for s in sessions if s["detector"] == det]
@@ -390,10 +427,11 @@ def _summary(frame, sessions, alerts) -> str:
                 "alerts (all)": len(al),
             }
         )
-    return table_html(rows, left=["detector", "first", "latest", "latest verdict"])
+    return Markup(table_html(rows, left=["detector", "first", "latest", "latest verdict"]))
 
 
-def _latest(dframe, method) -> str:
+def _latest(dframe: pd.DataFrame, method: str) -> dict[str, Any]:
+    """The latest session of a detector: its date, id, image count and its table per diameter."""
     g = dframe[dframe["method"] == method]
     last = g[g["session_id"] == g.sort_values(["session_date", "session_id"])["session_id"].iloc[-1]]
     rows = []
@@ -410,14 +448,17 @@ def _latest(dframe, method) -> str:
                 "alerts": r.alerts or "",
             }
         )
-    head = (
-        f"<h3>Latest session: {html.escape(str(last['session_date'].iloc[0]))} "
-        f"(session {int(last['session_id'].iloc[0])}, {int(last['n_images'].iloc[0])} images)</h3>"
-    )
-    return head + table_html(rows, left=["verdict", "alerts"])
+    return {
+        "date": str(last["session_date"].iloc[0]),
+        "session_id": int(last["session_id"].iloc[0]),
+        "n_images": int(last["n_images"].iloc[0]),
+        "table": Markup(table_html(rows, left=["verdict", "alerts"])),
+    }
 
 
-def _baseline_status(store, det, method, dframe, rules=None) -> str:
+def _baseline_status(
+    store: Any, det: str, method: str, dframe: pd.DataFrame, rules: AlertRules | None = None
+) -> Markup:
     """Which sessions form the baseline, or why there is none yet; the sessions rejected as unstable."""
     bl = store.baseline(det, method)
     g = dframe[dframe["method"] == method].drop_duplicates("session_id")
@@ -435,49 +476,47 @@ def _baseline_status(store, det, method, dframe, rules=None) -> str:
             "(or `limen baseline set`)."
         )
     else:
-        head = f"Baseline ({bl[3]}): sessions {', '.join(map(str, sorted(bl[2])))}."
-    out = f"<p>{html.escape(head + rej_txt)}</p>"
+        dates = {int(s["id"]): str(s["session_date"]) for s in store.sessions(det)}
+        head = f"Baseline ({bl[3]}): {det}, {baseline_sessions_text(bl[2], dates)}."
+    sensitivity_table = None
     if bl is not None and rules is not None:
         sens = detectable_change(bl[0], rules)
-        out += "<h3>Smallest change the alert rules detect</h3>" + table_html(
+        sensitivity_table = Markup(
+            table_html(
+                [
+                    {
+                        "diameter mm": r["diameter_mm"],
+                        "σ log10": round(r["sigma_log10"], 4),
+                        "one session ×": round(r["single_session_ratio"], 3),
+                        "rule": r["single_session_rule"] or "—",
+                        "kerma fall %": round(100 * r["kerma_fall_single"]),
+                        "sustained ×": round(r["sustained_ratio"], 3),
+                        "rule ": r["sustained_rule"] or "—",
+                        "kerma fall % ": round(100 * r["kerma_fall_sustained"]),
+                    }
+                    for r in sens.to_dict("records")
+                ],
+                left=["rule", "rule "],
+            )
+        )
+    return render("trend_baseline.html", status=head + rej_txt, sensitivity_table=sensitivity_table)
+
+
+def _alert_table(alerts: list[dict[str, Any]]) -> Markup:
+    """The table of a detector's alerts (the latest 100)."""
+    return Markup(
+        table_html(
             [
                 {
-                    "diameter mm": r["diameter_mm"],
-                    "σ log10": round(r["sigma_log10"], 4),
-                    "one session ×": round(r["single_session_ratio"], 3),
-                    "rule": r["single_session_rule"] or "—",
-                    "kerma fall %": round(100 * r["kerma_fall_single"]),
-                    "sustained ×": round(r["sustained_ratio"], 3),
-                    "rule ": r["sustained_rule"] or "—",
-                    "kerma fall % ": round(100 * r["kerma_fall_sustained"]),
+                    "date": a["session_date"],
+                    "diameter mm": a["diameter_mm"],
+                    "rule": a["rule"],
+                    "direction": a["direction"],
+                    "message": a["message"],
+                    "e-mailed": "yes" if a["emailed"] else "no",
                 }
-                for r in sens.to_dict("records")
+                for a in alerts[-100:]
             ],
-            left=["rule", "rule "],
+            left=["date", "rule", "direction", "message", "e-mailed"],
         )
-        out += (
-            "<p>The rise of threshold contrast at which a session (or a sustained run of sessions) lying at the "
-            "changed value crosses the rule's limit: flagged about half the time there, almost always at twice "
-            "the distance. Kerma fall of the same size by the Rose model (C_T ∝ kerma^−½). More images per "
-            "session narrow σ; more baseline sessions shrink the σ²/K term.</p>"
-        )
-    return out
-
-
-def _alert_table(alerts) -> str:
-    if not alerts:
-        return "<p>No alerts.</p>"
-    return "<h3>Alerts</h3>" + table_html(
-        [
-            {
-                "date": a["session_date"],
-                "diameter mm": a["diameter_mm"],
-                "rule": a["rule"],
-                "direction": a["direction"],
-                "message": a["message"],
-                "e-mailed": "yes" if a["emailed"] else "no",
-            }
-            for a in alerts[-100:]
-        ],
-        left=["date", "rule", "direction", "message", "e-mailed"],
     )
