@@ -6,9 +6,12 @@ transaction begins with ``BEGIN IMMEDIATE`` (see :func:`sqlite_transactions`).
 
 from __future__ import annotations
 
+import os
 from pathlib import Path
+from typing import Any
 
 from sqlalchemy import create_engine, event
+from sqlalchemy.engine import Connection, Engine
 
 from scorer.databases import NIGHTLY, check_url, display_url, short_error
 from scorer.errors import LimenError
@@ -16,12 +19,12 @@ from scorer.errors import LimenError
 __all__ = ["default_db_url", "display_url", "make_engine", "sqlite_transactions"]
 
 
-def default_db_url(directory) -> str:
+def default_db_url(directory: str | os.PathLike[str]) -> str:
     """The SQLite file used without ``--db``: ``limen-nightly.sqlite`` in ``directory``."""
     return f"sqlite:///{Path(directory).resolve() / 'limen-nightly.sqlite'}"
 
 
-def make_engine(url: str, *, create: bool = True):
+def make_engine(url: str, *, create: bool = True) -> Engine:
     """A SQLAlchemy engine for ``url`` (checked by :func:`scorer.databases.check_url`; SQLite: real transactions).
 
     ``create`` says whether a missing SQLite file may be made (commands that write results).  Raises LimenError
@@ -42,7 +45,7 @@ def make_engine(url: str, *, create: bool = True):
     return engine
 
 
-def sqlite_transactions(engine) -> None:
+def sqlite_transactions(engine: Engine) -> None:
     """Real transactions on SQLite: pysqlite's own BEGIN handling off, BEGIN IMMEDIATE on every transaction.
 
     IMMEDIATE takes the write lock at the start, so two runs' transactions are serialised
@@ -50,7 +53,7 @@ def sqlite_transactions(engine) -> None:
     """
 
     @event.listens_for(engine, "connect")
-    def _connect(dbapi_conn, _record) -> None:
+    def _connect(dbapi_conn: Any, _record: object) -> None:  # a sqlite3.Connection
         dbapi_conn.isolation_level = None
         cur = dbapi_conn.cursor()
         cur.execute("PRAGMA busy_timeout = 120000")
@@ -64,5 +67,6 @@ def sqlite_transactions(engine) -> None:
         cur.close()
 
     @event.listens_for(engine, "begin")
-    def _begin(conn) -> None:
+    def _begin(conn: Connection) -> None:
+
         conn.exec_driver_sql("BEGIN IMMEDIATE")

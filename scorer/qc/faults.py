@@ -10,3 +10,5 @@ not yet written), ``quarantine`` (a reason file written, the file not yet moved)
 from __future__ import annotations
 
 from scorer.faults import ENV, _passed, fault_point  # noqa: F401  (one hook for the whole package)
+
+__all__ = ["ENV", "_passed", "fault_point"]

@@ -14,11 +14,12 @@ import os
 import shutil
 import stat
 import tempfile
+from collections.abc import Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
 
 from scorer.errors import LimenError
-from scorer.files import atomic_write_text
+from scorer.files import PathArg, atomic_write_text
 from scorer.qc.config import NightlyConfig
 from scorer.qc.faults import fault_point
 from scorer.workflow.headers import read_acquisition_extras, read_image_metadata
@@ -60,7 +61,7 @@ class Rejected:
     reason: str
 
 
-def list_files(inbox: Path, exclude: list[Path] = ()) -> list[Path]:
+def list_files(inbox: Path, exclude: Sequence[Path] = ()) -> list[Path]:
     """Every regular file under ``inbox`` (recursively, sorted), skipping hidden files and ``exclude`` folders.
 
     Entries that are not regular files, or cannot be used as they are, are left out; :func:`scan_entries`
@@ -95,12 +96,12 @@ _NOT_REGULAR = (
 )
 
 
-def path_text(path) -> str:
+def path_text(path: str | bytes | os.PathLike[str] | os.PathLike[bytes]) -> str:
     """``path`` as text that can be printed and stored: bytes that are not UTF-8 shown as ``\\xNN``."""
     return os.fsencode(os.fspath(path)).decode("utf-8", "backslashreplace")
 
 
-def _stamp(st) -> tuple[int, str]:
+def _stamp(st: os.stat_result | None) -> tuple[int, str]:
     return (int(st.st_size), str(st.st_mtime_ns)) if st is not None else (0, "0")
 
 
@@ -149,7 +150,7 @@ def classify(path: Path) -> tuple[os.stat_result | None, Skipped | None]:
     return st, None
 
 
-def scan_entries(inbox: Path, exclude: list[Path] = ()) -> tuple[list[tuple[Path, os.stat_result]], list[Skipped]]:
+def scan_entries(inbox: Path, exclude: Sequence[Path] = ()) -> tuple[list[tuple[Path, os.stat_result]], list[Skipped]]:
     """The regular files under ``inbox`` with their ``stat`` (recursively, sorted; hidden names and ``exclude``
     folders skipped), and the entries left out with the reason: named pipes, sockets and devices (never opened),
     dangling links, link loops, links to folders, names that are not UTF-8, folders that cannot be listed."""
@@ -186,7 +187,7 @@ def scan_entries(inbox: Path, exclude: list[Path] = ()) -> tuple[list[tuple[Path
     return out, skipped
 
 
-def check_inbox(inbox, quarantine_dir=None) -> tuple[Path, Path]:
+def check_inbox(inbox: PathArg, quarantine_dir: PathArg | None = None) -> tuple[Path, Path]:
     """``(inbox, quarantine folder)`` checked before a nightly run does anything, or a one-line LimenError.
 
     The inbox must be a folder whose path is UTF-8 text (the database stores paths as text); the quarantine
@@ -204,7 +205,7 @@ def check_inbox(inbox, quarantine_dir=None) -> tuple[Path, Path]:
     return inbox, prepare_quarantine(quarantine_dir, given=True)
 
 
-def prepare_quarantine(quarantine_dir, given: bool) -> Path:
+def prepare_quarantine(quarantine_dir: PathArg, given: bool) -> Path:
     """The quarantine folder, created if missing and checked writable (a file made and removed), or a one-line
     LimenError naming it."""
     qdir = Path(quarantine_dir)
@@ -224,7 +225,7 @@ def prepare_quarantine(quarantine_dir, given: bool) -> Path:
     return qdir
 
 
-def examine(path, sha256: str, config: NightlyConfig) -> InboxImage | Rejected:
+def examine(path: PathArg, sha256: str, config: NightlyConfig) -> InboxImage | Rejected:
     """Place one file in its session, or say in one line why it cannot be used.
 
     A DICOM file whose header is sound (pixel data present, as long as the file) is placed from
@@ -299,7 +300,7 @@ def _strip(message: str, path: Path) -> str:
     return message[len(prefix) :] if message.startswith(prefix) else message
 
 
-def quarantine_file(path, quarantine_dir, reason: str) -> Path | None:
+def quarantine_file(path: PathArg, quarantine_dir: PathArg, reason: str) -> Path | None:
     """Move ``path`` into ``quarantine_dir`` with ``<name>.reason.txt`` (one line) beside it.
 
     The reason is written first, then the file is moved, so a run killed in between leaves the

@@ -5,8 +5,14 @@ from __future__ import annotations
 import os
 import smtplib
 from email.message import EmailMessage
+from typing import TYPE_CHECKING, Any
 
 from scorer.errors import LimenError
+
+if TYPE_CHECKING:
+    import datetime as _dt
+
+    from scorer.qc.config import SmtpConfig
 
 CAUTION = (
     "These alerts support, and never replace, the judgement of a qualified medical physicist; "
@@ -14,7 +20,7 @@ CAUTION = (
 )
 
 
-def _worst(alerts: list[dict]) -> dict | None:
+def _worst(alerts: list[dict[str, Any]]) -> dict[str, Any] | None:
     """The control-rule alert furthest beyond its reference on the worse side (value / reference), if any."""
     ranked = [
         a
@@ -28,7 +34,11 @@ def _worst(alerts: list[dict]) -> dict | None:
 
 
 def alert_message(
-    smtp, alerts: list[dict], programme: str, report: str | None = None, run_started=None
+    smtp: SmtpConfig,
+    alerts: list[dict[str, Any]],
+    programme: str,
+    report: str | None = None,
+    run_started: _dt.datetime | None = None,
 ) -> EmailMessage:
     """One message for a run's alerts: the subject names detector(s), date(s) and the worst diameter; the body
     lists each alert's date, diameter, rule, value and reference, marks those raised by an earlier run (an
@@ -68,7 +78,13 @@ def alert_message(
     return msg
 
 
-def send_alerts(smtp, alerts: list[dict], programme: str, report: str | None = None, run_started=None) -> None:
+def send_alerts(
+    smtp: SmtpConfig,
+    alerts: list[dict[str, Any]],
+    programme: str,
+    report: str | None = None,
+    run_started: _dt.datetime | None = None,
+) -> None:
     """Send one message listing ``alerts``; a failure raises a one-line LimenError naming the server."""
     if not alerts:
         return

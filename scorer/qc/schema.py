@@ -7,13 +7,19 @@ version 1) is adopted by the baseline revision; one written by a later Limen is 
 
 from __future__ import annotations
 
+from typing import TYPE_CHECKING
+
 from scorer.databases import NIGHTLY, prepare
+
+if TYPE_CHECKING:
+    from sqlalchemy.engine import Engine
+
 
 #: ``limen_meta.schema_version`` since Alembic took over; the releases before (version 1) refuse a higher one
 SCHEMA_VERSION = 2
 
 
-def ensure_schema(engine, url: str, *, create: bool = True) -> None:
+def ensure_schema(engine: Engine, url: str, *, create: bool = True) -> None:
     """Check that ``engine``'s database is a nightly one and bring its schema to this release's.
 
     ``create``: set up an empty database (commands that write results).  Raises LimenError (one line) for a

@@ -18,23 +18,31 @@ figure is conservative.
 
 from __future__ import annotations
 
+from collections.abc import Hashable, Iterable, Mapping
+from typing import TYPE_CHECKING, Any
+
 import numpy as np
 import pandas as pd
 from scipy import stats
 
 from scorer.qc.control import ewma_halfwidth, shewhart_halfwidth
 
+if TYPE_CHECKING:
+    from scorer.qc.config import AlertRules
+
+
 Z975 = float(stats.norm.ppf(0.975))
 
 
-def detectable_change(baseline: pd.DataFrame, rules) -> pd.DataFrame:
+def detectable_change(baseline: pd.DataFrame, rules: AlertRules) -> pd.DataFrame:
     """Per diameter: the smallest rise of C_T (as a ratio) the configured rules flag in one session and
     for a sustained shift, the rule that flags it, and the kerma fall of the same size by the Rose model.
 
     ``baseline``: from :func:`scorer.qc.control.compute_baseline`; ``rules``: :class:`AlertRules`.
     """
     rows = []
-    for r in baseline.sort_values("diameter_mm").itertuples():
+    records: Iterable[Any] = baseline.sort_values("diameter_mm").itertuples()  # rows of float columns
+    for r in records:
         s, k = float(r.sigma_log10), int(r.n_sessions)
         se_w = float(r.se_within_log10) if r.se_within_log10 is not None and np.isfinite(r.se_within_log10) else s
         single = {}
@@ -63,10 +71,10 @@ def detectable_change(baseline: pd.DataFrame, rules) -> pd.DataFrame:
     return pd.DataFrame(rows)
 
 
-def sensitivity_sentence(row) -> str:
+def sensitivity_sentence(row: Mapping[Hashable, Any]) -> str:
     """One line: 'rise ×1.42 in one session (shewhart) — a kerma fall of 50 %; ×1.21 sustained (ewma) — 32 %'."""
 
-    def part(ratio, rule, fall, what) -> str:
+    def part(ratio: float, rule: str | None, fall: float, what: str) -> str:
         if not rule:
             return f"no rule for {what}"
         return f"×{ratio:.3g} {what} ({rule}; kerma fall ≈ {100 * fall:.0f} % by the Rose model)"

@@ -8,15 +8,22 @@ panel's dose falls (an exposure-control fault) while the other stays as it was.
 from __future__ import annotations
 
 import datetime as _dt
+import os
 from dataclasses import dataclass, field
 from pathlib import Path
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
-from scorer.detector.simulator import detector_model, dicom_tags, simulate
+from scorer.detector.presets import detector_model
+from scorer.detector.simulator import dicom_tags, simulate
 from scorer.files import atomic_write_text
 from scorer.images.conversion import save_conversion
 from scorer.images.writers import write_dicom
+
+if TYPE_CHECKING:
+    from scorer.phantom.layout import Layout
+
 
 # Beam of the simulated panels: the simulator's 28 kV; anode/filter as DICOM writes them (invented setting).
 ANODE, FILTER = "TUNGSTEN", "RHODIUM"
@@ -29,18 +36,18 @@ class Panel:
 
     model: str
     dose_ugy: float = 100.0
-    tags: dict = field(default_factory=dict)
+    tags: dict[str, Any] = field(default_factory=dict)
 
 
 def simulate_night(
-    inbox,
+    inbox: str | os.PathLike[str],
     date: _dt.date,
     panels: list[Panel],
     n_images: int = 4,
     seed: int = 0,
-    layout=None,
+    layout: Layout | None = None,
     small: bool = True,
-    shape=None,
+    shape: tuple[int, int] | None = None,
 ) -> list[Path]:
     """Write ``n_images`` DICOM phantom images per panel, acquired on ``date``, under ``inbox/<date>/``.
 
@@ -86,13 +93,13 @@ class DemoPlan:
 
 
 def demo_nights(
-    root,
+    root: str | os.PathLike[str],
     n_nights: int = 8,
     baseline_sessions: int = 4,
     drift_start: int = 5,
     drift_factor: float = 0.6,
     first_night: _dt.date = _dt.date(2026, 3, 2),
-    layout_path=None,
+    layout_path: str | os.PathLike[str] | None = None,
     n_images: int = 5,
     n_boot: int = 300,
 ) -> DemoPlan:

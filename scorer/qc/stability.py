@@ -35,9 +35,11 @@ from __future__ import annotations
 
 import json
 from dataclasses import dataclass, field
+from typing import Any
 
 import numpy as np
 import pandas as pd
+from numpy.typing import ArrayLike
 from scipy import stats
 
 from scorer.qc.control import log_se_from_ci
@@ -74,7 +76,7 @@ class WindowTest:
     stable: bool
     trends: list[DiameterTrend] = field(default_factory=list)
     #: the diameters together: Stouffer's z = Σ z_d / √m, its p and Holm-adjusted p
-    combined: dict = field(default_factory=dict)
+    combined: dict[str, Any] = field(default_factory=dict)
 
     @property
     def last(self) -> tuple[str, int]:
@@ -84,21 +86,24 @@ class WindowTest:
         return [t for t in self.trends if t.unstable]
 
 
-def slope_test(x, se_within, positions=None) -> tuple[float, float, float, float]:
+def slope_test(
+    x: ArrayLike, se_within: ArrayLike, positions: ArrayLike | None = None
+) -> tuple[float, float, float, float]:
     """(slope b, σ used, z, two-sided p) of ``x`` against its sessions' places (default 0 … n−1).
 
     ``se_within``: per-session standard errors of x (non-finite ones ignored); ``positions``: each
     value's place in the window when a session without a threshold leaves a gap.  See the module docstring.
     """
-    x = np.asarray(x, float)
-    n = x.size
+    xv = np.asarray(x, float)
+    n = xv.size
     i = np.arange(n, dtype=float) if positions is None else np.asarray(positions, float)
     sii = float(np.sum((i - i.mean()) ** 2))
-    b = float(np.sum((i - i.mean()) * (x - x.mean())) / sii)
+    b = float(np.sum((i - i.mean()) * (xv - xv.mean())) / sii)
     # scatter between sessions from the median moving range, which a step or a trend barely moves (a residual
     # SD about the line would absorb the step it is meant to find): median |x_(i+1) − x_i| = √2 Φ⁻¹(0.75) σ
     order = np.argsort(i, kind="stable")
-    mr = np.abs(np.diff(x[order]))
+    mr = np.abs(np.diff(xv[order]))
+
     s_mr = float(np.median(mr) / MR_MEDIAN_FACTOR) if mr.size else 0.0
     se = np.asarray(se_within, float)
     se = se[np.isfinite(se)]
@@ -109,15 +114,15 @@ def slope_test(x, se_within, positions=None) -> tuple[float, float, float, float
     return b, sigma, float(z), float(2 * stats.norm.sf(abs(z)))
 
 
-def holm(p) -> np.ndarray:
+def holm(p: ArrayLike) -> np.ndarray:
     """Holm-adjusted p-values (step-down, monotone, capped at 1) — Holm (1979)."""
-    p = np.asarray(p, float)
-    m = p.size
-    order = np.argsort(p)
+    pv = np.asarray(p, float)
+    m = pv.size
+    order = np.argsort(pv)
     adj = np.empty(m)
     running = 0.0
     for rank, k in enumerate(order):
-        running = max(running, min(1.0, (m - rank) * p[k]))
+        running = max(running, min(1.0, (m - rank) * pv[k]))
         adj[k] = running
     return adj
 
@@ -142,7 +147,7 @@ def check_window(window: pd.DataFrame, alpha: float = DEFAULT_ALPHA) -> WindowTe
         b, sigma, z, p = slope_test(x, se, pos)
         trends.append(
             DiameterTrend(
-                float(d),
+                float(d),  # type: ignore[arg-type]  # the groupby key of a float column
                 int(ok.sum()),
                 b,
                 sigma,
@@ -153,8 +158,8 @@ def check_window(window: pd.DataFrame, alpha: float = DEFAULT_ALPHA) -> WindowTe
         )
     combined = {}
     if trends:
-        z = np.array([t.z for t in trends])
-        zc = float(z.sum() / np.sqrt(z.size)) if np.all(np.isfinite(z)) else float("nan")
+        zs = np.array([t.z for t in trends])
+        zc = float(zs.sum() / np.sqrt(zs.size)) if np.all(np.isfinite(zs)) else float("nan")
         pc = float(2 * stats.norm.sf(abs(zc))) if np.isfinite(zc) else 1.0
         # Holm over the diameters and the combined test together: the family-wise error stays at alpha
         adj = holm([t.p for t in trends] + ([pc] if len(trends) > 1 else []))

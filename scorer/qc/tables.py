@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import datetime as _dt
 import json
+from typing import Any
 
 from sqlalchemy import Boolean, DateTime, Float, ForeignKey, Integer, String, Text, UniqueConstraint
 from sqlalchemy.orm import DeclarativeBase, Mapped, mapped_column
@@ -196,7 +197,7 @@ def utcnow() -> _dt.datetime:
     return _dt.datetime.now(_dt.timezone.utc).replace(tzinfo=None)
 
 
-def image_dict(r: ImageRow) -> dict:
+def image_dict(r: ImageRow) -> dict[str, Any]:
     """An image row as the plain dict the nightly run passes between scan, claim and scoring."""
     return {
         "id": r.id,

@@ -215,7 +215,7 @@ sa.Table(
 sa.Index("ix_qc_responses_session_id", META.tables["qc_responses"].c.session_id, unique=False)
 
 
-def _mark(conn) -> None:
+def _mark(conn: sa.Connection) -> None:
     meta = META.tables["limen_meta"]
     done = conn.execute(sa.update(meta).where(meta.c.key == "schema_version").values(value=str(SCHEMA_VERSION)))
     if done.rowcount == 0:
@@ -228,7 +228,7 @@ def upgrade() -> None:
     _mark(conn)
 
 
-def adopt(conn) -> None:
+def adopt(conn: sa.Connection) -> None:
     """Bring a database of the release before Alembic to this revision (called before the stamp)."""
     META.create_all(conn, checkfirst=True)
     _mark(conn)
