@@ -54,8 +54,10 @@ from __future__ import annotations
 
 from dataclasses import dataclass, field
 
+import cv2
 import numpy as np
 from scipy import ndimage as ndi
+from skimage.measure import block_reduce
 
 from scorer.errors import LimenError
 from scorer.images.image import Image
@@ -237,19 +239,34 @@ def block_mean(pix: np.ndarray, f: int) -> np.ndarray:
         return pix.astype(np.float64)
     h, w = pix.shape[0] // f, pix.shape[1] // f
     a = pix[: h * f, : w * f]
-    s = a.reshape(h, f, w * f).sum(axis=1, dtype=np.float64)
-    return s.reshape(h, w, f).sum(axis=2) / (f * f)
+    # Rows of each block summed first, then its columns, then ÷ f²: the order of the sums before (the result is
+    # the same to the last bit; one np.mean over both block axes adds in another order).
+    rows = block_reduce(a, (f, 1), np.sum, func_kwargs={"dtype": np.float64})
+    return block_reduce(rows, (1, f), np.sum) / (f * f)
 
 
 def _depth_map(img: np.ndarray, closing_size: int) -> np.ndarray:
     """Fractional drop below the local background (grey closing), 0 where the background is dark."""
-    bg = ndi.grey_closing(img, size=(closing_size, closing_size))
+    bg = grey_closing(img, closing_size)
     level = float(np.median(bg))
     ok = bg > 0.1 * level if level > 0 else bg > 0
     depth = np.zeros_like(img)
     np.divide(img, bg, out=depth, where=ok)
     depth = np.where(ok, 1.0 - depth, 0.0)
     return depth
+
+
+def grey_closing(img: np.ndarray, size: int) -> np.ndarray:
+    """Grey-level closing by a ``size`` × ``size`` square (OpenCV), the same as ``scipy.ndimage.grey_closing``.
+
+    Pixels beyond the edge are left out (OpenCV's default border for dilation and erosion), as scipy's
+    ``reflect`` mode leaves them out for a maximum or minimum.  An even square cannot be centred: scipy's
+    dilation reaches one pixel further down and right, its erosion one further up and left, and the anchors
+    below place OpenCV's squares the same way (tests/test_registration_libraries.py).
+    """
+    kernel = np.ones((size, size), np.uint8)
+    grown = cv2.dilate(img, kernel, anchor=((size - 1) // 2,) * 2)
+    return cv2.erode(grown, kernel, anchor=(size // 2,) * 2)
 
 
 @dataclass
