@@ -24,9 +24,6 @@ from .comparison import (
     scored_thresholds as scored_thresholds,
 )
 from .dose import (
-    background_kerma_ugy as background_kerma_ugy,
-)
-from .dose import (
     compare_series as compare_series,
 )
 from .dose import (
@@ -36,10 +33,13 @@ from .dose import (
     fit_power_law as fit_power_law,
 )
 from .dose import (
-    group_by_kerma as group_by_kerma,
-)
-from .dose import (
     kerma_ratio as kerma_ratio,
+)
+from .dose_groups import (
+    background_kerma_ugy as background_kerma_ugy,
+)
+from .dose_groups import (
+    group_by_kerma as group_by_kerma,
 )
 from .measure import (
     DetectorMetrics as DetectorMetrics,

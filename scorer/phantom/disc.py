@@ -149,7 +149,7 @@ def blurred_disc(
     )  # (rows, N): ∫ k(y − m) dy over the chord
     b = (weight * half_chord)[:, None] * _aperture_kernel(cc + xi[:, None] - cols, sigma_px)  # (N, cols)
     if b.size > 20_000:  # each node reaches only the columns within ½ + 8σ of it: a sparse product pays
-        out[r0:r1, c0:c1] = (sparse.csr_matrix(b).T @ a.T).T
+        out[r0:r1, c0:c1] = np.asarray(sparse.csr_matrix(b).T @ a.T).T  # sparse @ dense is a dense array
     else:
         out[r0:r1, c0:c1] = a @ b
     return out
