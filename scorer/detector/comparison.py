@@ -7,11 +7,19 @@ functions here validate their parsed content (errors name the file)."""
 from __future__ import annotations
 
 import re
+from collections.abc import Sequence
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
 from scorer.detector.predict import predict_from_detector
 from scorer.errors import LimenError
+
+if TYPE_CHECKING:
+    from scorer.detector.headline import DetailClass
+
+#: a 95 % confidence interval (low, high)
+CI = tuple[float, float]
 
 #: diameters (mm) used when neither --diameters, --layout nor a scored JSON gives any (common practice)
 DEFAULT_DIAMETERS_MM = (0.1, 0.25, 0.5, 1.0, 2.0)
@@ -23,7 +31,7 @@ SCORED_METHODS = ("dprime", "count")
 METHOD_NAMES = {"dprime": "d′ method", "count": "count method"}
 
 
-def check_detector_json(d: dict, path) -> dict:
+def check_detector_json(d: dict[str, Any], path: object) -> dict[str, Any]:
     """A parsed ``limen detector`` JSON, checked: MTF, NNPS or DQE present, each a sound curve."""
     if not any(d.get(k) for k in ("mtf", "nnps", "dqe")):
         raise LimenError("no MTF, NNPS or DQE in this file: is it a 'limen detector' JSON?", path)
@@ -33,7 +41,7 @@ def check_detector_json(d: dict, path) -> dict:
     return d
 
 
-def _number(v) -> bool:
+def _number(v: object) -> bool:
     return isinstance(v, (int, float)) and not isinstance(v, bool) and bool(np.isfinite(v))
 
 
@@ -48,7 +56,7 @@ FIT_NUMBERS = (
 )
 
 
-def check_dose_json(d: dict, path) -> dict:
+def check_dose_json(d: dict[str, Any], path: object) -> dict[str, Any]:
     """A parsed ``limen dose-series --json`` output, checked: "groups" and "fits" lists, at least one fitted
     diameter, and every fitted entry (one with a β) whole — finite numbers, a positive reference kerma and
     diameter, a 2 × 2 finite covariance of (α, β), the kermas it was fitted on — so a file edited or cut by
@@ -101,7 +109,7 @@ def check_dose_json(d: dict, path) -> dict:
     return d
 
 
-def check_dose_pair(a: dict, b: dict, path_a, path_b) -> None:
+def check_dose_pair(a: dict[str, Any], b: dict[str, Any], path_a: object, path_b: object) -> None:
     """Two checked dose series that can be compared: the same model observer and threshold method (NPW against
     NPWE, or d′ against count thresholds, would give a kerma ratio of two observers), and a fitted diameter in
     common."""
@@ -114,7 +122,7 @@ def check_dose_pair(a: dict, b: dict, path_a, path_b) -> None:
                 path_b,
             )
 
-    def fitted(d):
+    def fitted(d: dict[str, Any]) -> set[float]:
         return {round(float(f["diameter_mm"]), 6) for f in d["fits"] if f.get("beta") is not None}
 
     if not fitted(a) & fitted(b):
@@ -122,13 +130,13 @@ def check_dose_pair(a: dict, b: dict, path_a, path_b) -> None:
         raise LimenError(f"no fitted diameter in common with --dose-a ({path_a}): {da} mm there, {db} mm here", path_b)
 
 
-def _short(v) -> str:
+def _short(v: object) -> str:
     from scorer.errors import short_text
 
     return short_text(repr(v) if isinstance(v, str) else v, 60)
 
 
-def _check_curve(curve, key: str, value_key: str, path) -> None:
+def _check_curve(curve: object, key: str, value_key: str, path: object) -> None:
     """A curve of a detector JSON: ``frequency_per_mm`` and ``value_key`` lists of numbers (null allowed for a
     missing point), equally long, frequencies finite and increasing, at least two finite values."""
     if not isinstance(curve, dict):
@@ -150,7 +158,7 @@ def _check_curve(curve, key: str, value_key: str, path) -> None:
         raise LimenError(f"'{key}.{value_key}' has fewer than two finite values", path)
 
 
-def scored_thresholds(d: dict, path) -> list[dict]:
+def scored_thresholds(d: dict[str, Any], path: object) -> list[dict[str, Any]]:
     """Thresholds from a parsed ``limen score --json`` output (key "thresholds")."""
     rows = d.get("thresholds")
     if not isinstance(rows, list) or not rows:
@@ -177,7 +185,7 @@ def scored_thresholds(d: dict, path) -> list[dict]:
     return out
 
 
-def _at(curve: dict | None, f: float, key: str = "value"):
+def _at(curve: dict[str, Any] | None, f: float | None, key: str = "value") -> float | None:
     if not curve or f is None or key not in curve or curve[key] is None:
         return None
     x = np.asarray(curve["frequency_per_mm"], dtype=float)
@@ -187,7 +195,7 @@ def _at(curve: dict | None, f: float, key: str = "value"):
     return float(np.interp(f, x, y))
 
 
-def _curve_ci(curve: dict | None, f: float, value: float | None) -> tuple[float, float] | None:
+def _curve_ci(curve: dict[str, Any] | None, f: float | None, value: float | None) -> tuple[float, float] | None:
     """95 % CI of a curve at f: from its ``ci_low``/``ci_high`` arrays, or (NNPS) its relative standard error."""
     if not curve or value is None:
         return None
@@ -200,7 +208,15 @@ def _curve_ci(curve: dict | None, f: float, value: float | None) -> tuple[float,
     return None
 
 
-def decide(va, vb, ci_a, ci_b, higher_is_better: bool, la: str, lb: str) -> tuple[str, str]:
+def decide(
+    va: float | None,
+    vb: float | None,
+    ci_a: CI | None,
+    ci_b: CI | None,
+    higher_is_better: bool,
+    la: str,
+    lb: str,
+) -> tuple[str, str]:
     """Which detector is better at one point, and on what basis.
 
     Only non-overlapping 95 % confidence intervals make a difference; overlapping ones give
@@ -217,18 +233,18 @@ def decide(va, vb, ci_a, ci_b, higher_is_better: bool, la: str, lb: str) -> tupl
 
 
 def compare(
-    a: dict,
-    b: dict,
-    labels=("A", "B"),
-    diameters_mm=None,
-    scored_a=None,
-    scored_b=None,
+    a: dict[str, Any],
+    b: dict[str, Any],
+    labels: tuple[str, str] = ("A", "B"),
+    diameters_mm: Sequence[float] | None = None,
+    scored_a: list[dict[str, Any]] | None = None,
+    scored_b: list[dict[str, Any]] | None = None,
     m_alternatives: int | dict[float, int] | None = None,
     scored_method: str = "dprime",
-    dose_a: dict | None = None,
-    dose_b: dict | None = None,
-    detail_classes=None,
-) -> dict:
+    dose_a: dict[str, Any] | None = None,
+    dose_b: dict[str, Any] | None = None,
+    detail_classes: str | list[DetailClass] | None = None,
+) -> dict[str, Any]:
     """Side-by-side table, threshold rows and a plain-language summary of two detector JSONs.
 
     ``m_alternatives``: the M of the criterion for predicted thresholds, one for all diameters or per
@@ -246,10 +262,19 @@ def compare(
         raise LimenError(f"unknown scoring method {scored_method!r}; choose dprime or count", "--scored-method")
     types = [panel_type(a), panel_type(b)]
     la, lb = (typed_label(lab, t) for lab, t in zip(labels, types))
-    table: list[dict] = []
-    points: dict[str, list[tuple[str, str, str, float | None, float | None]]] = {}
+    table: list[dict[str, Any]] = []
+    points: dict[str, list[tuple[str, str, str, float, float]]] = {}
 
-    def row(quantity, va, vb, higher, group, point="", ci_a=None, ci_b=None):
+    def row(
+        quantity: str,
+        va: float | None,
+        vb: float | None,
+        higher: bool,
+        group: str,
+        point: str = "",
+        ci_a: CI | None = None,
+        ci_b: CI | None = None,
+    ) -> None:
         better, basis = decide(va, vb, ci_a, ci_b, higher, la, lb)
         if group == "DQE" and any(v is not None and v > 1 for v in (va, vb)):
             basis = (basis + "; " if basis else "") + DQE_ABOVE_1
@@ -327,7 +352,7 @@ def compare(
             _curve_ci(b.get("dqe"), f, vb),
         )
 
-    thresholds: list[dict] = []
+    thresholds: list[dict[str, Any]] = []
     diam = list(diameters_mm) if diameters_mm else None
     if diam is None:
         ds = sorted({r["diameter_mm"] for r in (scored_a or []) + (scored_b or [])})
@@ -400,7 +425,7 @@ def compare(
                 None,
             )
 
-            def ci(t):
+            def ci(t: dict[str, Any] | None) -> CI | None:
                 return (
                     None
                     if t is None or t.get("ci_low") is None or t.get("ci_high") is None
@@ -466,7 +491,7 @@ DQE_ABOVE_1 = "DQE above 1 — not physical: check the kerma, q and the conversi
 SIMULATOR = "Limen simulation"  # the Manufacturer Limen's simulator writes into its DICOM files
 
 
-def simulated_inputs(detectors: dict[str, dict], series: dict[str, dict | None]) -> str | None:
+def simulated_inputs(detectors: dict[str, dict[str, Any]], series: dict[str, dict[str, Any] | None]) -> str | None:
     """A sentence naming the inputs made by Limen's simulator (flats and edges by their DICOM Manufacturer,
     dose-series images by their count), or None when none was."""
     parts = []
@@ -486,7 +511,7 @@ def simulated_inputs(detectors: dict[str, dict], series: dict[str, dict | None])
     return "Made by Limen's physics simulator, not by an X-ray unit — " + "; ".join(parts) + "."
 
 
-def panel_type(det: dict) -> str | None:
+def panel_type(det: dict[str, Any]) -> str | None:
     """ "direct" / "indirect" (…) from a detector JSON's ``panel`` block (DICOM Detector Type), else None."""
     return (det.get("panel") or {}).get("type")
 

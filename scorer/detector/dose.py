@@ -47,9 +47,10 @@ from __future__ import annotations
 
 from collections import OrderedDict
 from dataclasses import dataclass, field
-from typing import Callable, Sequence
+from typing import Any, Callable, Mapping, Sequence
 
 import numpy as np
+from numpy.typing import ArrayLike, NDArray
 from scipy import optimize, stats
 
 import scorer.observer.flags as flags
@@ -92,13 +93,16 @@ class PowerLawFit:
     def reference_kerma_ugy(self) -> float:
         return float(np.exp(self.x_center))
 
-    def threshold_at(self, kerma_ugy) -> np.ndarray:
-        return np.exp(self.alpha - self.beta * (np.log(np.asarray(kerma_ugy, dtype=float)) - self.x_center))
+    def threshold_at(self, kerma_ugy: ArrayLike) -> NDArray[np.float64]:
+        c: NDArray[np.float64] = np.exp(
+            self.alpha - self.beta * (np.log(np.asarray(kerma_ugy, dtype=float)) - self.x_center)
+        )
+        return c
 
     def draws(self, n: int, rng: np.random.Generator) -> np.ndarray:
         return rng.multivariate_normal([self.alpha, self.beta], self.cov, size=n, method="svd")
 
-    def to_dict(self) -> dict:
+    def to_dict(self) -> dict[str, Any]:
         return {
             "diameter_mm": self.diameter_mm,
             "beta": self.beta,
@@ -117,7 +121,7 @@ class PowerLawFit:
         }
 
     @classmethod
-    def from_dict(cls, d: dict) -> "PowerLawFit":
+    def from_dict(cls, d: dict[str, Any]) -> "PowerLawFit":
         return cls(
             float(d["diameter_mm"]),
             float(d["beta"]),
@@ -141,7 +145,15 @@ def log_se_from_ci(t: float, lo: float, hi: float) -> float:
     return float(np.log(hi / lo) / (2 * Z95))
 
 
-def fit_power_law(kerma_ugy, threshold, log_se, diameter_mm: float = float("nan")) -> PowerLawFit:
+def _columns(rows: Sequence[tuple[float, float, float]]) -> tuple[list[float], list[float], list[float]]:
+    """(kerma, threshold, log SE) rows as three columns (what ``*zip(*rows)`` gave, typed)."""
+    k, c, se = ([r[i] for r in rows] for i in range(3))
+    return k, c, se
+
+
+def fit_power_law(
+    kerma_ugy: ArrayLike, threshold: ArrayLike, log_se: ArrayLike, diameter_mm: float = float("nan")
+) -> PowerLawFit:
     """Weighted log–log fit of C_T = a·K^(−β) over kerma groups (module docstring)."""
     k = np.asarray(kerma_ugy, dtype=float)
     c = np.asarray(threshold, dtype=float)
@@ -200,7 +212,7 @@ def kerma_for_threshold(
     """Kerma (µGy) at which factor × C_T(K) equals ``target``, with its 95 % CI (draws; module docstring)."""
     lf = 0.0 if factor is None else float(np.log(factor.value))
     se_f = 0.0
-    if factor is not None and factor.has_ci:
+    if factor is not None and factor.has_ci and factor.ci_low is not None and factor.ci_high is not None:
         se_f = float(np.log(factor.ci_high / factor.ci_low) / (2 * Z95))
     if not (fit.beta > 0 and target > 0):
         return float("nan"), float("nan"), float("nan")
@@ -221,10 +233,10 @@ def kerma_for_threshold(
 class DoseGroup:
     kerma_ugy: float
     paths: list[str]
-    thresholds: list[dict]  # ThresholdPoint dicts of the fitted method
+    thresholds: list[dict[str, Any]]  # ThresholdPoint dicts of the fitted method
     result: object = None  # the group's ScoreResult (not serialised)
 
-    def to_dict(self) -> dict:
+    def to_dict(self) -> dict[str, Any]:
         fom = []
         for p in self.thresholds:
             t, lo, hi = p["threshold_contrast"], p["ci_low"], p["ci_high"]
@@ -254,18 +266,18 @@ class DoseGroup:
 @dataclass
 class DoseSeriesResult:
     groups: list[DoseGroup]
-    fits: list[dict]
+    fits: list[dict[str, Any]]
     observer: str
     method: str
     limits: Limits | None
     human_factor: HumanFactor | None
-    settings: dict
+    settings: dict[str, Any]
     warnings: list[str] = field(default_factory=list)
 
     def fit_objects(self) -> list[PowerLawFit]:
         return [PowerLawFit.from_dict(f) for f in self.fits if f.get("beta") is not None]
 
-    def to_json(self) -> dict:
+    def to_json(self) -> dict[str, Any]:
         return {
             "observer": self.observer,
             "method": self.method,
@@ -281,7 +293,7 @@ class DoseSeriesResult:
         }
 
 
-def _factor_for(limits: Limits | None, observer: str, human_factor) -> HumanFactor | None:
+def _factor_for(limits: Limits | None, observer: str, human_factor: float | HumanFactor | None) -> HumanFactor | None:
     """The factor that turns this observer's thresholds into the limits' observer's (as limits.evaluate does)."""
     if limits is None:
         return None
@@ -306,7 +318,7 @@ def _factor_for(limits: Limits | None, observer: str, human_factor) -> HumanFact
 
 def fit_series(
     groups: list[DoseGroup], *, limits: Limits | None = None, factor: HumanFactor | None = None, seed: int = 0
-) -> tuple[list[dict], list[str]]:
+) -> tuple[list[dict[str, Any]], list[str]]:
     """Per diameter: β over all groups (and over the lowest/highest three when there are four or more),
     the kerma for the acceptable and achievable limits, as JSON-ready dicts."""
     notes: list[str] = []
@@ -321,7 +333,7 @@ def fit_series(
             se = log_se_from_ci(p["threshold_contrast"], p["ci_low"], p["ci_high"])
             rows.append((g.kerma_ugy, p["threshold_contrast"], se))
             n_extrapolated += flags.EXTRAPOLATED in threshold_flags(p)
-        entry: dict = {
+        entry: dict[str, Any] = {
             "diameter_mm": d,
             "beta": None,
             "beta_ci_low": None,
@@ -330,7 +342,7 @@ def fit_series(
             "kerma_for_limit_ci": None,
         }
         try:
-            fit = fit_power_law(*zip(*rows), diameter_mm=d) if rows else None
+            fit = fit_power_law(*_columns(rows), diameter_mm=d) if rows else None
         except LimenError as exc:
             fit = None
             entry["note"] = str(exc)
@@ -345,7 +357,7 @@ def fit_series(
         entry["n_extrapolated_thresholds"] = int(n_extrapolated)
         if len(rows) >= 4:
             for name, sub in (("low", rows[:3]), ("high", rows[-3:])):
-                f2 = fit_power_law(*zip(*sub), diameter_mm=d)
+                f2 = fit_power_law(*_columns(sub), diameter_mm=d)
                 entry[f"beta_{name}"] = {
                     "beta": f2.beta,
                     "ci_low": f2.beta_ci[0],
@@ -371,7 +383,7 @@ def fit_series(
     return fits, notes
 
 
-def rose_test(fits: list[dict]) -> None:
+def rose_test(fits: list[dict[str, Any]]) -> None:
     """Per diameter, the two-sided test of β = 0.5 (the quantum-limited Rose value), Holm-adjusted over the
     diameters of the series (Holm 1979, as the reader-study page adjusts its comparisons), in place.
 
@@ -401,15 +413,15 @@ def rose_test(fits: list[dict]) -> None:
 
 
 def dose_series(
-    groups: "OrderedDict[float, list]",
-    score_group: Callable,
+    groups: OrderedDict[float, list[str]],
+    score_group: Callable[..., Any],
     *,
     observer: str = "npw",
     method: str = "dprime",
     limits: Limits | None = None,
-    human_factor=None,
+    human_factor: float | HumanFactor | None = None,
     seed: int = 0,
-    on_group: Callable | None = None,
+    on_group: Callable[..., Any] | None = None,
 ) -> DoseSeriesResult:
     """Score each kerma group and fit the dose response per diameter.
 
@@ -441,7 +453,7 @@ def dose_series(
 # ----------------------------------------------------------------------------- two panels
 
 
-def kerma_ratio(fit_a: PowerLawFit, fit_b: PowerLawFit, *, n_draws: int = 4000, seed: int = 0) -> dict:
+def kerma_ratio(fit_a: PowerLawFit, fit_b: PowerLawFit, *, n_draws: int = 4000, seed: int = 0) -> dict[str, Any]:
     """K_B/K_A at the threshold A reaches at the centre of its series, with a 95 % CI (module docstring)."""
     log_c = fit_a.alpha
     if not fit_b.beta > 0:
@@ -481,7 +493,7 @@ def kerma_ratio(fit_a: PowerLawFit, fit_b: PowerLawFit, *, n_draws: int = 4000, 
     }
 
 
-def relative_variance(components: dict | None):
+def relative_variance(components: dict[str, Any] | None) -> Callable[[ArrayLike], NDArray[np.float64]]:
     """r(K) = σ²(K)/K² from a ``noise_series.components`` dict, or 1/K (quantum-limited) without one."""
     if not components:
         return lambda k: 1.0 / np.asarray(k, dtype=float)
@@ -493,8 +505,12 @@ def relative_variance(components: dict | None):
 
 
 def predicted_kerma_ratios(
-    det_a: dict, det_b: dict, diameters_mm: Sequence[float], reference_kerma_ugy: float, m_alternatives=4
-) -> list[dict]:
+    det_a: dict[str, Any],
+    det_b: dict[str, Any],
+    diameters_mm: Sequence[float],
+    reference_kerma_ugy: float,
+    m_alternatives: int | Mapping[float, int] = 4,
+) -> list[dict[str, Any]]:
     """K_B/K_A at equal predicted NPW threshold, from each panel's MTF and NNPS and its noise components."""
     from scorer.detector.predict import predict_from_detector
 
@@ -507,10 +523,13 @@ def predicted_kerma_ratios(
     ra = relative_variance((det_a.get("noise_series") or {}).get("components"))
     rb = relative_variance((det_b.get("noise_series") or {}).get("components"))
 
-    def kerma_for(ct0: float, k0: float, r, target: float) -> float:
+    def kerma_for(ct0: float, k0: float, r: Callable[[ArrayLike], NDArray[np.float64]], target: float) -> float:
         # C(K) = C(K0)·√(r(K)/r(K0)); solve r(K) = r(K0)·(target/C(K0))² on log K
         goal = float(r(k0)) * (target / ct0) ** 2
-        g = lambda lk: np.log(float(r(np.exp(lk)))) - np.log(goal)  # noqa: E731
+
+        def g(lk: float) -> float:
+            return float(np.log(float(r(np.exp(lk)))) - np.log(goal))
+
         lo, hi = np.log(1e-3), np.log(1e6)
         if g(lo) < 0 or g(hi) > 0:
             return float("nan")
@@ -532,7 +551,7 @@ def predicted_kerma_ratios(
     return out
 
 
-def ratio_sentence(d: float, r: dict, la: str, lb: str) -> str:
+def ratio_sentence(d: float, r: dict[str, Any], la: str, lb: str) -> str:
     """One plain sentence: how much air kerma B needs relative to A for the same threshold at diameter d."""
     if r.get("ratio") is None:
         return f"At {d:g} mm the kerma ratio could not be determined ({r.get('note') or 'no fit'})."
@@ -551,6 +570,8 @@ def ratio_sentence(d: float, r: dict, la: str, lb: str) -> str:
         )
     if ratio >= 1:
         return f"At {d:g} mm {lb} needs {ratio:.3g}× the air kerma of {la} for the same threshold ({ci}; {at})."
+    if lo is None or hi is None:  # kerma_ratio gives both with a ratio; said rather than a TypeError
+        return f"At {d:g} mm {la} needs {1 / ratio:.3g}× the air kerma of {lb} for the same threshold ({ci}; {at})."
     return (
         f"At {d:g} mm {la} needs {1 / ratio:.3g}× the air kerma of {lb} for the same threshold "
         f"(95 % CI {1 / hi:.3g}–{1 / lo:.3g}; {at})."
@@ -558,13 +579,13 @@ def ratio_sentence(d: float, r: dict, la: str, lb: str) -> str:
 
 
 def compare_series(
-    series_a: dict,
-    series_b: dict,
-    labels=("A", "B"),
-    det_a: dict | None = None,
-    det_b: dict | None = None,
+    series_a: dict[str, Any],
+    series_b: dict[str, Any],
+    labels: tuple[str, str] = ("A", "B"),
+    det_a: dict[str, Any] | None = None,
+    det_b: dict[str, Any] | None = None,
     seed: int = 0,
-) -> dict:
+) -> dict[str, Any]:
     """Per diameter the measured kerma ratio B/A at equal threshold (with CI, one sentence each) and,
     with both detector JSONs, the ratio predicted from MTF, NNPS and noise components."""
     la, lb = labels

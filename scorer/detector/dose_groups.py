@@ -7,10 +7,12 @@ pure functions on paths and numbers.
 from __future__ import annotations
 
 from collections import OrderedDict
+from os import PathLike
 from pathlib import Path
 from typing import Sequence
 
 import numpy as np
+from numpy.typing import ArrayLike, NDArray
 
 from scorer.errors import LimenError
 
@@ -20,56 +22,59 @@ SAME_KERMA_RTOL = 0.05
 CLUSTER_RTOL = 0.15
 
 
-def background_kerma_ugy(pixels) -> float:
+def background_kerma_ugy(pixels: ArrayLike) -> float:
     """Air kerma of the plate's own background: the median of the linearised central half of the image."""
     a = np.asarray(pixels)
     h, w = a.shape
     return float(np.median(a[h // 4 : h - h // 4, w // 4 : w - w // 4]))
 
 
-def group_by_kerma(paths: Sequence, kerma_ugy: Sequence[float | None], *, source: str = "kerma") -> "OrderedDict":
+def group_by_kerma(
+    paths: Sequence[object], kerma_ugy: Sequence[float | None], *, source: str = "kerma"
+) -> OrderedDict[float, list[str]]:
     """Group images by air kerma: by folder when the images lie in two or more folders, else by value.
 
     Returns ``{kerma_ugy: [paths]}`` in increasing kerma.  Raises LimenError for a kerma missing for
     some images, a single group, or two groups at the same kerma (within 5 %).
     """
-    paths = [str(p) for p in paths]
-    missing = [p for p, k in zip(paths, kerma_ugy) if k is None or not np.isfinite(k)]
+    names = [str(p) for p in paths]
+    missing = [p for p, k in zip(names, kerma_ugy) if k is None or not np.isfinite(k)]
     if missing:
         raise LimenError(
             f"no air kerma for {len(missing)} image(s) (first: {missing[0]}); every image of a dose "
             f"series needs one ({source})",
             missing[0],
         )
-    bad = [p for p, k in zip(paths, kerma_ugy) if not k > 0]
+    kerma = [float(k) for k in kerma_ugy if k is not None]  # none is missing now
+    bad = [p for p, k in zip(names, kerma) if not k > 0]
     if bad:
         raise LimenError(f"air kerma must be positive ({source})", bad[0])
-    folders = [str(Path(p).parent) for p in paths]
+    folders = [str(Path(p).parent) for p in names]
     groups: dict[str, list[int]] = {}
     if len(set(folders)) >= 2:
         for i, f in enumerate(folders):
             groups.setdefault(f, []).append(i)
     else:
-        for n, idx in enumerate(_clusters(kerma_ugy)):
+        for n, idx in enumerate(_clusters(kerma)):
             groups[f"{n}"] = idx
     out: list[tuple[float, list[str]]] = []
     for _name, idx in groups.items():
-        ks = np.array([float(kerma_ugy[i]) for i in idx])
+        ks = np.array([kerma[i] for i in idx])
         if len(set(folders)) >= 2 and len(_clusters(ks)) > 1:
             lo, hi = int(np.argmin(ks)), int(np.argmax(ks))
             raise LimenError(
                 f"folder {_name} holds images at different air kermas ({ks[lo]:.3g} µGy: "
-                f"{Path(paths[idx[lo]]).name}; {ks[hi]:.3g} µGy: {Path(paths[idx[hi]]).name}): with images in "
+                f"{Path(names[idx[lo]]).name}; {ks[hi]:.3g} µGy: {Path(names[idx[hi]]).name}): with images in "
                 "several folders each folder is one kerma group; put each kerma in its own folder",
-                paths[idx[hi]],
+                names[idx[hi]],
             )
-        out.append((float(ks.mean()), [paths[i] for i in idx]))
+        out.append((float(ks.mean()), [names[i] for i in idx]))
     out.sort(key=lambda t: t[0])
     if len(out) < 2:
         raise LimenError(
-            f"all {len(paths)} image(s) are at one air kerma ({out[0][0]:.3g} µGy): a dose series needs "
+            f"all {len(names)} image(s) are at one air kerma ({out[0][0]:.3g} µGy): a dose series needs "
             "images at two or more kermas",
-            paths[0],
+            names[0],
         )
     for (k1, p1), (k2, p2) in zip(out, out[1:]):
         if k2 < k1 * (1 + SAME_KERMA_RTOL):
@@ -81,7 +86,7 @@ def group_by_kerma(paths: Sequence, kerma_ugy: Sequence[float | None], *, source
     return OrderedDict(out)
 
 
-def _clusters(kerma_ugy) -> list[list[int]]:
+def _clusters(kerma_ugy: Sequence[float] | NDArray[np.float64]) -> list[list[int]]:
     """Indices of the kermas in increasing order, split wherever one is more than ``CLUSTER_RTOL`` above the
     first of its cluster."""
     out: list[list[int]] = []
@@ -95,7 +100,7 @@ def _clusters(kerma_ugy) -> list[list[int]]:
     return out
 
 
-def check_one_panel(paths: Sequence, panels: Sequence[tuple[str | None, str | None]]) -> None:
+def check_one_panel(paths: Sequence[object], panels: Sequence[tuple[str | None, str | None]]) -> None:
     """Refuse a series whose images come from different panels: ``panels`` holds each image's DICOM Detector
     Type (0018,7004) and Detector ID (0018,700A), None where the file does not say.  A dose series describes one
     panel; direct and indirect images (or two detectors) mixed would fit one β to two detectors."""
@@ -122,7 +127,7 @@ KERMA_AGREEMENT_FACTOR = 1.5
 
 
 def check_kerma_agreement(
-    paths: Sequence, listed_ugy: Sequence[float], measured_ugy: Sequence[float], csv_name
+    paths: Sequence[str | PathLike[str]], listed_ugy: Sequence[float], measured_ugy: Sequence[float], csv_name: str
 ) -> list[str]:
     """Compare the kermas a CSV lists with those measured from each image's plate background through the
     conversion function.  A constant ratio (the CSV measured without the plate, or at another point) is allowed

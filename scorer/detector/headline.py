@@ -42,8 +42,10 @@ from __future__ import annotations
 
 import re
 from dataclasses import asdict, dataclass
+from typing import Any
 
 import numpy as np
+from numpy.typing import ArrayLike, NDArray
 from scipy import stats
 
 from scorer.detector.dose import PowerLawFit, predicted_kerma_ratios
@@ -133,11 +135,11 @@ class PooledEstimate:
     se_fixed: float
     weights: list[float]  # relative random-effects weights
 
-    def to_dict(self) -> dict:
+    def to_dict(self) -> dict[str, Any]:
         return asdict(self)
 
 
-def pool_random_effects(effects, variances) -> PooledEstimate:
+def pool_random_effects(effects: ArrayLike, variances: ArrayLike) -> PooledEstimate:
     """Pool effects yᵢ with within-study variances vᵢ by DerSimonian & Laird (1986); I² of Higgins &
     Thompson (2002).  Raises ValueError for no effect or a non-positive variance."""
     y = np.asarray(effects, dtype=float)
@@ -173,7 +175,7 @@ def pool_random_effects(effects, variances) -> PooledEstimate:
     )
 
 
-def holm(p_values) -> np.ndarray:
+def holm(p_values: ArrayLike) -> NDArray[np.float64]:
     """Holm-adjusted p-values (Holm 1979): sorted p₍ᵢ₎·(m − i + 1), running maximum, capped at 1; NaN stays
     NaN and does not count in m.  (statsmodels' ``multipletests`` gives the same numbers but runs a full
     garbage collection on every call, 0.15 s, which the coverage checks cannot afford.)"""
@@ -205,7 +207,7 @@ def log_ratio_at(fit_a: PowerLawFit, fit_b: PowerLawFit, kerma_ugy: float) -> tu
     return float(y), float(np.sqrt(var)) if var > 0 else float("nan")
 
 
-def _fits(series: dict) -> dict[float, PowerLawFit]:
+def _fits(series: dict[str, Any]) -> dict[float, PowerLawFit]:
     fits = [f for f in series.get("fits", []) if f.get("beta")]
     return {round(float(f["diameter_mm"]), 6): PowerLawFit.from_dict(f) for f in fits}
 
@@ -215,7 +217,7 @@ def _kerma_range(fits: dict[float, PowerLawFit]) -> tuple[float, float]:
     return (min(ks), max(ks)) if ks else (float("nan"), float("nan"))
 
 
-def comparison_kermas(series_a: dict, series_b: dict) -> list[float]:
+def comparison_kermas(series_a: dict[str, Any], series_b: dict[str, Any]) -> list[float]:
     """The kermas the headline compares at: the lowest, the geometric centre and the highest kerma both
     series cover (air kerma at the detector, µGy)."""
     (lo_a, hi_a), (lo_b, hi_b) = _kerma_range(_fits(series_a)), _kerma_range(_fits(series_b))
@@ -225,7 +227,7 @@ def comparison_kermas(series_a: dict, series_b: dict) -> list[float]:
     return [float(lo), float(np.sqrt(lo * hi)), float(hi)]
 
 
-def per_diameter_ratios(series_a: dict, series_b: dict, kerma_ugy: float) -> list[dict]:
+def per_diameter_ratios(series_a: dict[str, Any], series_b: dict[str, Any], kerma_ugy: float) -> list[dict[str, Any]]:
     """Per diameter both series fit: K_B/K_A at the threshold A reaches at ``kerma_ugy`` with a 95 % CI,
     z-test p-value and the extrapolation flag (K_B outside panel B's measured kermas)."""
     fa, fb = _fits(series_a), _fits(series_b)
@@ -261,7 +263,7 @@ def per_diameter_ratios(series_a: dict, series_b: dict, kerma_ugy: float) -> lis
 # ----------------------------------------------------------------------------- the headline
 
 
-def _pool_class(rows: list[dict]) -> tuple[PooledEstimate | None, list[dict]]:
+def _pool_class(rows: list[dict[str, Any]]) -> tuple[PooledEstimate | None, list[dict[str, Any]]]:
     use = [r for r in rows if r["log_ratio"] is not None]
     if not use:
         return None, use
@@ -272,7 +274,9 @@ def _fmt_ratio(r: float) -> str:
     return f"{r:.2g}" if r < 10 else f"{r:.0f}"
 
 
-def class_sentence(name: str, pooled: dict, la: str, lb: str, kerma_ugy: float, others: list[dict]) -> str:
+def class_sentence(
+    name: str, pooled: dict[str, Any], la: str, lb: str, kerma_ugy: float, others: list[dict[str, Any]]
+) -> str:
     """Plain sentences for a detail class, e.g. "For details ≤ 0.25 mm indirect needs 1.4× (95 % CI 1.2–1.7)
     the air kerma of direct for the same threshold. …" — who needs more, how sure, at what kerma, over which
     diameters, and the ratio at the ends of the dose series (flagged where extrapolated)."""
@@ -299,7 +303,7 @@ def class_sentence(name: str, pooled: dict, la: str, lb: str, kerma_ugy: float, 
     return text
 
 
-def pair_conclusion(classes: list[dict], la: str, lb: str) -> str:
+def pair_conclusion(classes: list[dict[str, Any]], la: str, lb: str) -> str:
     """One line for the pair: per class who needs less air kerma where the CI allows saying so."""
     parts = []
     for c in classes:
@@ -318,13 +322,13 @@ def pair_conclusion(classes: list[dict], la: str, lb: str) -> str:
 
 
 def headline(
-    series_a: dict,
-    series_b: dict,
-    labels=("A", "B"),
-    det_a: dict | None = None,
-    det_b: dict | None = None,
+    series_a: dict[str, Any],
+    series_b: dict[str, Any],
+    labels: tuple[str, str] = ("A", "B"),
+    det_a: dict[str, Any] | None = None,
+    det_b: dict[str, Any] | None = None,
     classes: list[DetailClass] | None = None,
-) -> dict:
+) -> dict[str, Any]:
     """The equal-quality kerma ratio B/A pooled per detail class, with its drivers (module docstring).
 
     ``series_a``/``series_b`` are parsed ``limen dose-series`` JSONs, ``det_a``/``det_b`` the panels'
@@ -360,7 +364,7 @@ def headline(
         if pooled is None:
             notes.append(f"details {c.name}: no diameter with a ratio in both dose series")
             continue
-        entry = {
+        entry: dict[str, Any] = {
             "name": c.name,
             "low_mm": c.low_mm,
             "high_mm": c.high_mm,
@@ -408,8 +412,8 @@ def headline(
         entry["sentence"] = class_sentence(c.name, entry, la, lb, k_ref, others)
         out_classes.append(entry)
     adj = holm([c["p_value"] for c in out_classes])
-    for c, p in zip(out_classes, adj):
-        c["p_holm_classes"] = float(p)
+    for done, p in zip(out_classes, adj):
+        done["p_holm_classes"] = float(p)
     unclassed = [r["diameter_mm"] for r in rows if r["detail_class"] is None]
     if unclassed:
         notes.append(f"diameters in no class (shown per diameter only): {', '.join(f'{d:g}' for d in unclassed)} mm")
@@ -440,7 +444,7 @@ def headline(
 # ----------------------------------------------------------------------------- drivers
 
 
-def _interp(curve: dict | None, f: float, key: str = "value") -> float | None:
+def _interp(curve: dict[str, Any] | None, f: float, key: str = "value") -> float | None:
     if not curve or curve.get(key) is None:
         return None
     x = np.asarray(curve["frequency_per_mm"], dtype=float)
@@ -451,7 +455,7 @@ def _interp(curve: dict | None, f: float, key: str = "value") -> float | None:
     return v if np.isfinite(v) else None
 
 
-def driver_frequencies(det_a: dict, det_b: dict) -> tuple[list[float], float, float]:
+def driver_frequencies(det_a: dict[str, Any], det_b: dict[str, Any]) -> tuple[list[float], float, float]:
     """MTF frequencies (1, 2 /mm and ~70 % of the lower Nyquist), the low (0.5 /mm) and the high DQE
     frequency (~70 % of the lower Nyquist, rounded to 0.5 /mm)."""
     nyq = min(float(d.get("nyquist_per_mm") or 5.0) for d in (det_a, det_b))
@@ -459,10 +463,17 @@ def driver_frequencies(det_a: dict, det_b: dict) -> tuple[list[float], float, fl
     return sorted({1.0, 2.0, high}), 0.5, float(high)
 
 
-def panel_drivers(det_a: dict, det_b: dict, la: str, lb: str, low_kerma_ugy: float | None = None) -> dict:
+def panel_drivers(
+    det_a: dict[str, Any], det_b: dict[str, Any], la: str, lb: str, low_kerma_ugy: float | None = None
+) -> dict[str, Any]:
     """MTF, DQE at a low and a high frequency and the electronic-noise kerma of both panels."""
     freqs, f_low, f_high = driver_frequencies(det_a, det_b)
-    out: dict = {"mtf_frequencies_per_mm": freqs, "dqe_low_per_mm": f_low, "dqe_high_per_mm": f_high, "panels": {}}
+    out: dict[str, Any] = {
+        "mtf_frequencies_per_mm": freqs,
+        "dqe_low_per_mm": f_low,
+        "dqe_high_per_mm": f_high,
+        "panels": {},
+    }
     for lab, det in ((la, det_a), (lb, det_b)):
         mtf = det.get("mtf")
         dqe = det.get("dqe")
@@ -501,7 +512,7 @@ def panel_drivers(det_a: dict, det_b: dict, la: str, lb: str, low_kerma_ugy: flo
     return out
 
 
-def short_labels(drivers: dict | None, la: str, lb: str) -> tuple[str, str]:
+def short_labels(drivers: dict[str, Any] | None, la: str, lb: str) -> tuple[str, str]:
     """The panels' types ("direct", "indirect") where they tell the two apart, else their labels."""
     if drivers:
         ta, tb = (drivers["panels"][lab].get("panel_type") for lab in (la, lb))
@@ -510,13 +521,13 @@ def short_labels(drivers: dict | None, la: str, lb: str) -> tuple[str, str]:
     return la, lb
 
 
-def driver_line(drivers: dict, la: str, lb: str) -> str:
+def driver_line(drivers: dict[str, Any], la: str, lb: str) -> str:
     """The drivers in one line, values as "panel A / panel B" (short names)."""
     na, nb = short_labels(drivers, la, lb)
     pa, pb = drivers["panels"][la], drivers["panels"][lb]
     fh, fl = drivers["dqe_high_per_mm"], drivers["dqe_low_per_mm"]
 
-    def two(a, b, fmt=".2f"):
+    def two(a: float | None, b: float | None, fmt: str = ".2f") -> str | None:
         return None if a is None or b is None else f"{format(a, fmt)} / {format(b, fmt)}"
 
     parts = []
@@ -538,14 +549,14 @@ def driver_line(drivers: dict, la: str, lb: str) -> str:
     return f"{na} / {nb}: " + "; ".join(parts) + "." if parts else ""
 
 
-def driver_sentences(drivers: dict, la: str, lb: str) -> list[str]:
+def driver_sentences(drivers: dict[str, Any], la: str, lb: str) -> list[str]:
     """Plain statements of the measured values behind the ratio (no claim beyond them)."""
     pa, pb = drivers["panels"][la], drivers["panels"][lb]
     fh, fl = drivers["dqe_high_per_mm"], drivers["dqe_low_per_mm"]
     out = []
     na, nb = short_labels(drivers, la, lb)
 
-    def pair(a, b, fmt="{:.2f}"):
+    def pair(a: float, b: float, fmt: str = "{:.2f}") -> str:
         return f"{fmt.format(a)} ({na}) vs {fmt.format(b)} ({nb})"
 
     ma, mb = pa["mtf"].get(f"{fh:g}"), pb["mtf"].get(f"{fh:g}")

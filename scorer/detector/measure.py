@@ -16,9 +16,12 @@ References
 
 from __future__ import annotations
 
+from collections.abc import Sequence
 from dataclasses import dataclass, field
+from typing import Any
 
 import numpy as np
+from numpy.typing import ArrayLike, NDArray
 
 from scorer.detector.mtf import MTFResult, mean_mtf, measure_mtf
 from scorer.detector.nnps import NNPSResult, measure_nnps
@@ -45,7 +48,7 @@ class LineFit:
     r_squared: float
     max_relative_kerma_error: float
 
-    def to_dict(self) -> dict:
+    def to_dict(self) -> dict[str, Any]:
         return dict(
             kind=self.kind,
             offset=self.offset,
@@ -82,7 +85,7 @@ class ConversionFit:
             source=f"fitted by limen detector ({c.kind}, R² = {c.r_squared:.5f})",
         )
 
-    def to_dict(self) -> dict:
+    def to_dict(self) -> dict[str, Any]:
         return {
             "kind": self.kind,
             "offset": self.chosen.offset,
@@ -111,7 +114,12 @@ def _line_fit(kind: str, x: np.ndarray, pv: np.ndarray, kerma: np.ndarray) -> Li
 
 
 def fit_conversion(
-    kerma_ugy, mean_pixel_value, *, kind: str | None = None, tolerance: float = NONLINEARITY_TOLERANCE, path=None
+    kerma_ugy: ArrayLike,
+    mean_pixel_value: ArrayLike,
+    *,
+    kind: str | None = None,
+    tolerance: float = NONLINEARITY_TOLERANCE,
+    path: object | None = None,
 ) -> ConversionFit:
     """Fit linear (PV = o + g·K) and logarithmic (PV = o + g·ln K) responses.
 
@@ -155,7 +163,7 @@ def fit_conversion(
     return ConversionFit(k, pv, lin, log, kind, nonlinear, note)
 
 
-def central_mean(pixels, spacing_mm, side_mm: float = 10.0) -> float:
+def central_mean(pixels: ArrayLike, spacing_mm: Sequence[float] | NDArray[np.float64], side_mm: float = 10.0) -> float:
     """Mean of a central square ROI of ``side_mm`` (at least 8 × 8 pixels)."""
     a = np.asarray(pixels)
     h = max(8, int(round(side_mm / spacing_mm[0])))
@@ -179,10 +187,13 @@ class DQEResult:
     ci_high: np.ndarray | None = None
     warnings: list[str] = field(default_factory=list)
 
-    def at(self, frequency_per_mm):
-        return np.interp(frequency_per_mm, self.frequency_per_mm, self.value, left=np.nan, right=np.nan)
+    def at(self, frequency_per_mm: NDArray[np.float64] | Sequence[float]) -> NDArray[np.float64]:
+        value: NDArray[np.float64] = np.interp(
+            frequency_per_mm, self.frequency_per_mm, self.value, left=np.nan, right=np.nan
+        )
+        return value
 
-    def to_dict(self) -> dict:
+    def to_dict(self) -> dict[str, Any]:
         return {
             "frequency_per_mm": self.frequency_per_mm.tolist(),
             "value": self.value.tolist(),
@@ -260,25 +271,25 @@ class DetectorMetrics:
     mtf_by_direction: dict[str, MTFResult]
     nnps: NNPSResult | None
     dqe: DQEResult | None
-    conversion: dict | None
+    conversion: dict[str, Any] | None
     kerma_ugy: float | None
     q_per_mm2_ugy: float | None
     beam: str | None
     pixel_spacing_mm: tuple[float, float] | None
-    inputs: dict = field(default_factory=dict)
+    inputs: dict[str, Any] = field(default_factory=dict)
     warnings: list[str] = field(default_factory=list)
-    predicted: list[dict] | None = None
-    noise_series: dict | None = None
-    panel: dict | None = None  # what the images' DICOM headers say of the panel (panel_from_metadata)
+    predicted: list[dict[str, Any]] | None = None
+    noise_series: dict[str, Any] | None = None
+    panel: dict[str, Any] | None = None  # what the images' DICOM headers say of the panel (panel_from_metadata)
     defect_map: DefectMap | None = None
 
     @property
-    def edge_angle_deg(self):
+    def edge_angle_deg(self) -> dict[str, float] | None:
         if not self.mtf_by_direction:
             return None
         return {d: m.edge_angle_deg for d, m in self.mtf_by_direction.items()}
 
-    def to_dict(self) -> dict:
+    def to_dict(self) -> dict[str, Any]:
         mtf = None
         if self.mtf is not None:
             mtf = self.mtf.to_dict()
@@ -323,7 +334,7 @@ class DetectorMetrics:
 PANEL_TYPES = {"DIRECT": "direct", "SCINTILLATOR": "indirect", "STORAGE": "storage phosphor", "FILM": "film"}
 
 
-def panel_from_metadata(images: list[Image]) -> dict | None:
+def panel_from_metadata(images: list[Image]) -> dict[str, Any] | None:
     """The panel as the images' DICOM headers describe it: type (direct / indirect, from Detector Type),
     Detector ID, serial, station and manufacturer (the first image that has any of them); None without."""
     for im in images:
@@ -342,27 +353,28 @@ def panel_from_metadata(images: list[Image]) -> dict | None:
     return None
 
 
-def _spacing(images: list[Image]) -> tuple[float, float] | None:
+def _spacing(images: list[Image]) -> tuple[float, float]:
+    """The images' common pixel spacing (row, col); every caller passes at least one image."""
     if not images:
-        return None
-    s0 = tuple(float(v) for v in images[0].spacing_mm)
+        raise ValueError("no images")  # never reached: measure_detector refuses no flats and no edges first
+    s0 = (float(images[0].spacing_mm[0]), float(images[0].spacing_mm[1]))
     for im in images[1:]:
         if not np.allclose(im.spacing_mm, s0, rtol=1e-4):
             raise LimenError(
                 f"pixel spacing {tuple(im.spacing_mm)} mm differs from {s0} mm of the other images",
                 im.metadata.source_path or None,
             )
-    return s0  # type: ignore[return-value]
+    return s0
 
 
 def measure_detector(
-    flats: list[Image] = (),
-    edges: list[Image] = (),
+    flats: Sequence[Image] = (),
+    edges: Sequence[Image] = (),
     *,
     kerma_ugy: float | None = None,
     q_per_mm2_ugy: float | None = None,
     beam: str | None = None,
-    conversion: dict | None = None,
+    conversion: dict[str, Any] | None = None,
     require_dqe: bool = False,
     roi_px: int = 256,
 ) -> DetectorMetrics:
@@ -448,14 +460,14 @@ def measure_detector(
 
 def measure_noise_series(
     flats: list[Image],
-    kerma_ugy,
+    kerma_ugy: Sequence[float],
     *,
     mtf: MTFResult | None = None,
     mtf_by_direction: dict[str, MTFResult] | None = None,
     q_per_mm2_ugy: float | None = None,
     roi_px: int = 256,
-    path=None,
-) -> dict:
+    path: object | None = None,
+) -> dict[str, Any]:
     """Noise components and, with an MTF and q, the DQE at each kerma, from flats at several air kermas.
 
     Returns the ``noise_series`` entry of ``detector.json``: per kerma group the pixel variance (with its
@@ -504,8 +516,8 @@ def measure_noise_series(
             row["dqe"] = {
                 "frequency_per_mm": dq.frequency_per_mm.tolist(),
                 "value": dq.value.tolist(),
-                "ci_low": dq.ci_low.tolist(),
-                "ci_high": dq.ci_high.tolist(),
+                "ci_low": None if dq.ci_low is None else dq.ci_low.tolist(),  # compute_dqe always sets both
+                "ci_high": None if dq.ci_high is None else dq.ci_high.tolist(),
             }
         per_kerma.append(row)
     comp = fit.to_dict()

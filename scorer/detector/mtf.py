@@ -39,9 +39,12 @@ References
 
 from __future__ import annotations
 
+from collections.abc import Sequence
 from dataclasses import dataclass, field
+from typing import Any
 
 import numpy as np
+from numpy.typing import NDArray
 from scipy import ndimage
 
 from scorer.errors import LimenError
@@ -112,11 +115,15 @@ class MTFResult:
     def nyquist_per_mm(self) -> float:
         return 0.5 / self.pixel_pitch_mm
 
-    def at(self, frequency_per_mm):
+    def at(self, frequency_per_mm: NDArray[np.float64] | Sequence[float]) -> NDArray[np.float64]:
         """MTF interpolated at the given frequencies (NaN beyond the extended range)."""
-        return np.interp(frequency_per_mm, self.frequency_ext_per_mm, self.value_ext, left=np.nan, right=np.nan)
+        value: NDArray[np.float64] = np.interp(
+            frequency_per_mm, self.frequency_ext_per_mm, self.value_ext, left=np.nan, right=np.nan
+        )
+        return value
 
-    def to_dict(self) -> dict:
+    def to_dict(self) -> dict[str, Any]:
+        ci = self.ci()
         return {
             "frequency_per_mm": self.frequency_per_mm.tolist(),
             "value": self.value.tolist(),
@@ -128,8 +135,8 @@ class MTFResult:
             "lsf_half_width_px": self.lsf_half_width_px,
             "n_edge_rows": self.n_edge_rows,
             "empty_bins": self.empty_bins,
-            "ci_low": None if self.ci() is None else self.ci()[0].tolist(),
-            "ci_high": None if self.ci() is None else self.ci()[1].tolist(),
+            "ci_low": None if ci is None else ci[0].tolist(),
+            "ci_high": None if ci is None else ci[1].tolist(),
             "ci_note": None
             if self.se is None
             else (
@@ -149,7 +156,7 @@ def _edge_orientation(pixels: np.ndarray) -> str:
     return "vertical" if gx >= gy else "horizontal"
 
 
-def _coarse_line(pixels: np.ndarray, path) -> tuple[np.ndarray, np.ndarray]:
+def _coarse_line(pixels: np.ndarray, path: object | None) -> tuple[np.ndarray, np.ndarray]:
     """Rows where a near-vertical edge is strong, and its coarse column there."""
     ny, nx = pixels.shape
     block = max(1, int(min(ny, nx) // 256))
@@ -187,7 +194,9 @@ def _coarse_line(pixels: np.ndarray, path) -> tuple[np.ndarray, np.ndarray]:
     return rows, x
 
 
-def _band(pixels: np.ndarray, rows: np.ndarray, x_centre: np.ndarray, half: int):
+def _band(
+    pixels: np.ndarray, rows: np.ndarray, x_centre: np.ndarray, half: int
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Sheared band of ±half pixels around x_centre on each row (rows fully inside only)."""
     nx = pixels.shape[1]
     start = np.round(x_centre).astype(int) - half
@@ -199,7 +208,7 @@ def _band(pixels: np.ndarray, rows: np.ndarray, x_centre: np.ndarray, half: int)
     return rows, cols, band
 
 
-def _fit_edge(rows, cols, band, path):
+def _fit_edge(rows: np.ndarray, cols: np.ndarray, band: np.ndarray, path: object | None) -> tuple[float, float]:
     """Sub-pixel edge centroid per row, then a robust straight line x = a + b·y."""
     d = np.diff(band, axis=1)
     xmid = 0.5 * (cols[:, 1:] + cols[:, :-1])
@@ -224,7 +233,7 @@ def _fit_edge(rows, cols, band, path):
             keep = np.ones_like(y, dtype=bool)
             break
     b, a = np.polyfit(y[keep], cen[keep], 1)
-    return a, b
+    return a, b  # numpy float64, a float
 
 
 def _tukey_window(n: int, centre: float, half_width_bins: float, alpha: float = 0.5) -> np.ndarray:
@@ -240,13 +249,13 @@ def _tukey_window(n: int, centre: float, half_width_bins: float, alpha: float = 
 
 
 def measure_mtf(
-    pixels,
-    spacing_mm,
+    pixels: NDArray[Any],
+    spacing_mm: Sequence[float] | NDArray[np.float64],
     *,
     bin_fraction: float = DEFAULT_BIN_FRACTION,
     lsf_half_width_px: int = DEFAULT_LSF_HALF_WIDTH_PX,
     report_max_fraction_nyquist: float = 1.1,
-    path=None,
+    path: object | None = None,
     keep_esf: bool = False,
 ) -> MTFResult:
     """Presampling MTF from one slanted-edge image (see the module docstring).
@@ -394,7 +403,9 @@ def measure_mtf(
     )
 
 
-def _mtf_from_esf(esf: np.ndarray, bw: float, nb: int, window_bins: float, path) -> tuple[np.ndarray, np.ndarray]:
+def _mtf_from_esf(
+    esf: np.ndarray, bw: float, nb: int, window_bins: float, path: object | None
+) -> tuple[np.ndarray, np.ndarray]:
     """Steps 4–5: LSF by central difference in a Tukey window, |FFT| normalised and corrected."""
     lsf = np.zeros_like(esf)
     lsf[1:-1] = (esf[2:] - esf[:-2]) / (2 * bw)
@@ -430,11 +441,12 @@ def mean_mtf(results: list[MTFResult], direction: str | None = None) -> MTFResul
     d = direction or (dirs.pop() if len(dirs) == 1 else "mean")
     warn = [w for r in results for w in r.warnings]
     se_ext = None
-    if all(r.se_ext is not None for r in results):
+    ses = [r.se_ext for r in results if r.se_ext is not None]
+    if len(ses) == len(results):
         # SE of a mean of independent curves: √(Σ se²)/n
-        se_ext = np.sqrt(np.sum([np.interp(fe, r.frequency_ext_per_mm, r.se_ext) ** 2 for r in results], axis=0)) / len(
-            results
-        )
+        se_ext = np.sqrt(
+            np.sum([np.interp(fe, r.frequency_ext_per_mm, se) ** 2 for r, se in zip(results, ses)], axis=0)
+        ) / len(results)
     return MTFResult(
         frequency_per_mm=f,
         value=v,

@@ -34,9 +34,12 @@ References
 
 from __future__ import annotations
 
+from collections.abc import Sequence
 from dataclasses import dataclass, field
+from typing import Any
 
 import numpy as np
+from numpy.typing import NDArray
 from scipy import fft as sfft
 
 from scorer.errors import LimenError
@@ -69,15 +72,15 @@ class NNPSResult:
     n_rois : int
     """
 
-    nnps_2d_mm2: np.ndarray
-    frequency_2d_per_mm: tuple[np.ndarray, np.ndarray]
-    frequency_per_mm: np.ndarray
-    x_mm2: np.ndarray
-    y_mm2: np.ndarray
-    x_se_mm2: np.ndarray
-    y_se_mm2: np.ndarray
-    radial_frequency_per_mm: np.ndarray
-    radial_mm2: np.ndarray
+    nnps_2d_mm2: NDArray[np.float64]
+    frequency_2d_per_mm: tuple[NDArray[np.float64], NDArray[np.float64]]
+    frequency_per_mm: NDArray[np.float64]
+    x_mm2: NDArray[np.float64]
+    y_mm2: NDArray[np.float64]
+    x_se_mm2: NDArray[np.float64]
+    y_se_mm2: NDArray[np.float64]
+    radial_frequency_per_mm: NDArray[np.float64]
+    radial_mm2: NDArray[np.float64]
     mean_signal: float
     n_rois: int
     n_images: int
@@ -87,12 +90,12 @@ class NNPSResult:
     warnings: list[str] = field(default_factory=list)
 
     @property
-    def value_mm2(self) -> np.ndarray:
+    def value_mm2(self) -> NDArray[np.float64]:
         """Mean of the x and y cuts (the headline 1-D NNPS)."""
         return 0.5 * (self.x_mm2 + self.y_mm2)
 
     @property
-    def se_mm2(self) -> np.ndarray:
+    def se_mm2(self) -> NDArray[np.float64]:
         """Standard error of :attr:`value_mm2` (the two cuts' errors combined as independent)."""
         return 0.5 * np.sqrt(self.x_se_mm2**2 + self.y_se_mm2**2)
 
@@ -102,7 +105,7 @@ class NNPSResult:
         rel = np.concatenate([self.x_se_mm2 / self.x_mm2, self.y_se_mm2 / self.y_mm2])
         return float(np.median(rel[np.isfinite(rel)]))
 
-    def to_dict(self) -> dict:
+    def to_dict(self) -> dict[str, Any]:
         return {
             "frequency_per_mm": self.frequency_per_mm.tolist(),
             "value_mm2": self.value_mm2.tolist(),
@@ -158,7 +161,7 @@ FLAT_OUTLIER_SDS = 8.0
 FLAT_BLOCK_PX = 16
 
 
-def check_flat_field(pixels: np.ndarray, path=None, block_px: int = FLAT_BLOCK_PX) -> None:
+def check_flat_field(pixels: NDArray[Any], path: object | None = None, block_px: int = FLAT_BLOCK_PX) -> None:
     """Refuse an image that is not a flat (open) field: an edge, a phantom, markers, a collimator border.
 
     The image is reduced to means of ``block_px``² blocks; a 2-D quadratic (the heel effect and other smooth
@@ -195,13 +198,13 @@ def check_flat_field(pixels: np.ndarray, path=None, block_px: int = FLAT_BLOCK_P
 
 
 def measure_nnps(
-    images,
-    spacing_mm,
+    images: Sequence[NDArray[Any]] | NDArray[Any],
+    spacing_mm: Sequence[float] | NDArray[np.float64],
     *,
     roi_px: int = DEFAULT_ROI_PX,
     region_mm: float | None = DEFAULT_REGION_MM,
     n_lines: int = DEFAULT_N_LINES,
-    paths=None,
+    paths: Sequence[object] | None = None,
     check_flat: bool = True,
 ) -> NNPSResult:
     """NNPS from one or more linearised flat fields (see the module docstring).
@@ -308,7 +311,7 @@ def measure_nnps(
     sm = np.bincount(idx[ok], weights=nps[mask][ok], minlength=nb + 1)
     have = cnt > 0
     have[0] = False
-    rf = np.arange(nb + 1)[have] * du
+    rf = np.asarray(np.arange(nb + 1)[have] * du, dtype=np.float64)
     rv = sm[have] / cnt[have]
 
     return NNPSResult(

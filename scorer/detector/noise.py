@@ -38,13 +38,17 @@ References
 
 from __future__ import annotations
 
+from collections.abc import Sequence
 from dataclasses import dataclass, field
+from typing import Any, TypedDict
 
 import numpy as np
+from numpy.typing import ArrayLike, NDArray
 from scipy import stats
 
-from scorer.detector.nnps import DEFAULT_REGION_MM, _poly_basis
+from scorer.detector.nnps import DEFAULT_REGION_MM, NNPSResult, _poly_basis
 from scorer.errors import LimenError
+from scorer.images.image import Image
 
 Z95 = 1.959963984540054
 TERMS = ("electronic", "quantum", "structure")
@@ -52,8 +56,22 @@ TERMS = ("electronic", "quantum", "structure")
 BANDS_NYQUIST = ((0.05, 0.25), (0.25, 0.6), (0.6, 1.0))
 
 
+class QuantumRange(TypedDict):
+    """Kermas where the quantum term dominates (``ComponentFit.quantum_limited_range``); None without one."""
+
+    low_ugy: float | None
+    high_ugy: float | None
+    low_ci: list[float] | None
+    high_ci: list[float] | None
+    note: str
+
+
 def flat_roi_variances(
-    pixels, spacing_mm, *, roi_px: int = 128, region_mm: float | None = DEFAULT_REGION_MM
+    pixels: ArrayLike,
+    spacing_mm: Sequence[float] | NDArray[np.float64],
+    *,
+    roi_px: int = 128,
+    region_mm: float | None = DEFAULT_REGION_MM,
 ) -> tuple[np.ndarray, float]:
     """Detrended variance of each non-overlapping ROI of a linearised flat field, and the region's mean."""
     a = np.asarray(pixels, dtype=np.float64)
@@ -97,12 +115,13 @@ class ComponentFit:
         se = float(np.sqrt(max(self.cov[i, i], 0.0)))
         return float(self.params[i] - Z95 * se), float(self.params[i] + Z95 * se)
 
-    def predict(self, kerma_ugy) -> np.ndarray:
+    def predict(self, kerma_ugy: ArrayLike) -> NDArray[np.float64]:
         k = np.asarray(kerma_ugy, dtype=float)
         e, q, s = self.params
-        return e + q * k + s * k * k
+        variance: NDArray[np.float64] = e + q * k + s * k * k
+        return variance
 
-    def quantum_limited_range(self, n_draws: int = 4000, seed: int = 0) -> dict:
+    def quantum_limited_range(self, n_draws: int = 4000, seed: int = 0) -> QuantumRange:
         """Kermas where q·K is the largest term, [e/q, q/s], with 95 % CIs from draws of the fitted parameters."""
         e, q, s = self.params
         if not q > 0:
@@ -131,8 +150,8 @@ class ComponentFit:
             "note": "",
         }
 
-    def to_dict(self) -> dict:
-        out = {
+    def to_dict(self) -> dict[str, Any]:
+        out: dict[str, Any] = {
             "kerma_ugy": self.kerma_ugy.tolist(),
             "variance": self.variance.tolist(),
             "variance_se": self.variance_se.tolist(),
@@ -162,7 +181,13 @@ def _percentiles(x: np.ndarray) -> list[float]:
 
 
 def fit_components(
-    kerma_ugy, variance, variance_se, *, structure: bool | None = None, units: str = "µGy²", path=None
+    kerma_ugy: ArrayLike,
+    variance: ArrayLike,
+    variance_se: ArrayLike,
+    *,
+    structure: bool | None = None,
+    units: str = "µGy²",
+    path: object | None = None,
 ) -> ComponentFit:
     """Weighted least-squares fit of σ²(K) = e + q·K + s·K² (s fixed at 0 with ``structure=False``).
 
@@ -222,7 +247,7 @@ class KermaGroupNoise:
     variance_se: float
     paths: list[str] = field(default_factory=list)
 
-    def to_dict(self) -> dict:
+    def to_dict(self) -> dict[str, Any]:
         return {
             "kerma_ugy": self.kerma_ugy,
             "n_images": self.n_images,
@@ -235,9 +260,9 @@ class KermaGroupNoise:
         }
 
 
-def group_flats(images, kerma_ugy, *, roi_px: int = 128) -> list[KermaGroupNoise]:
+def group_flats(images: Sequence[Image], kerma_ugy: Sequence[float], *, roi_px: int = 128) -> list[KermaGroupNoise]:
     """Per distinct kerma: the mean ROI variance of its flats and its standard error."""
-    by_k: dict[float, list] = {}
+    by_k: dict[float, list[Image]] = {}
     for im, k in zip(images, kerma_ugy):
         by_k.setdefault(float(k), []).append(im)
     out = []
@@ -254,7 +279,9 @@ def group_flats(images, kerma_ugy, *, roi_px: int = 128) -> list[KermaGroupNoise
     return out
 
 
-def band_components(kermas, nnps_results, *, structure: bool | None = None) -> list[dict]:
+def band_components(
+    kermas: Sequence[float], nnps_results: Sequence[NNPSResult], *, structure: bool | None = None
+) -> list[dict[str, Any]]:
     """The same fit per frequency band, on the noise power NPS = NNPS × mean² (µGy²·mm²) of each kerma."""
     out = []
     ref = nnps_results[0]
@@ -281,10 +308,10 @@ def band_components(kermas, nnps_results, *, structure: bool | None = None) -> l
     return out
 
 
-def describe_quantum_range(ql: dict, kmin: float, kmax: float) -> str:
+def describe_quantum_range(ql: QuantumRange, kmin: float, kmax: float) -> str:
     """One plain sentence on where quantum noise dominates."""
     lo, hi = ql.get("low_ugy"), ql.get("high_ugy")
-    if lo is None:
+    if lo is None or hi is None:  # both None together (no positive quantum term)
         return ql.get("note") or "quantum-limited range not determined"
     lo_ci, hi_ci = ql.get("low_ci") or [np.nan, np.nan], ql.get("high_ci") or [np.nan, np.nan]
     if lo_ci[1] < kmin:

@@ -33,8 +33,10 @@ from __future__ import annotations
 
 import dataclasses
 from dataclasses import asdict, dataclass
+from typing import Any
 
 import numpy as np
+from numpy.typing import ArrayLike, NDArray
 
 from scorer.images.conversion import ConversionFunction
 
@@ -99,26 +101,28 @@ class DetectorModel:
             out.append((w, float(self.light_spread_near_mm)))
         return [(wt, length) for wt, length in out if wt > 0]
 
-    def light_transfer(self, frequency_per_mm) -> np.ndarray:
+    def light_transfer(self, frequency_per_mm: ArrayLike) -> NDArray[np.float64]:
         """Mean light-spread transfer Σ w_i / (1 + (2πL_i f)²) (the signal's; 1 without spread)."""
         f = np.asarray(frequency_per_mm, dtype=float)
         comps = self.spread_components()
         if not comps:
             return np.ones_like(f)
-        return sum(w / (1.0 + (2 * np.pi * length * f) ** 2) for w, length in comps)
+        # start at an array of zeros, not sum()'s int 0 (the same values: 0 + x = x), so the type is an array
+        return sum((w / (1.0 + (2 * np.pi * length * f) ** 2) for w, length in comps), np.zeros_like(f))
 
-    def noise_power_transfer(self, frequency_per_mm) -> np.ndarray:
+    def noise_power_transfer(self, frequency_per_mm: ArrayLike) -> NDArray[np.float64]:
         """Σ w_i·T_i(f)²: how the light spread passes quantum-noise power (≥ light_transfer², Lubberts)."""
         f = np.asarray(frequency_per_mm, dtype=float)
         comps = self.spread_components()
         if not comps:
             return np.ones_like(f)
-        return sum(w / (1.0 + (2 * np.pi * length * f) ** 2) ** 2 for w, length in comps)
+        return sum((w / (1.0 + (2 * np.pi * length * f) ** 2) ** 2 for w, length in comps), np.zeros_like(f))
 
-    def presampling_mtf(self, frequency_per_mm) -> np.ndarray:
+    def presampling_mtf(self, frequency_per_mm: ArrayLike) -> NDArray[np.float64]:
         """Analytic presampling MTF along a pixel axis: aperture sinc × mean light spread."""
         f = np.asarray(frequency_per_mm, dtype=float)
-        return np.abs(np.sinc(self.pixel_pitch_mm * f)) * self.light_transfer(f)
+        mtf: NDArray[np.float64] = np.abs(np.sinc(self.pixel_pitch_mm * f)) * self.light_transfer(f)
+        return mtf
 
     @property
     def nyquist_per_mm(self) -> float:
@@ -156,17 +160,17 @@ class DetectorModel:
     @property
     def saturation_ugy(self) -> float:
         """Air kerma at which the mean signal reaches the top of the bit depth."""
-        return (2**self.bits - 1 - self.offset_adu) / self.gain_adu_per_ugy
+        return float((2**self.bits - 1 - self.offset_adu) / self.gain_adu_per_ugy)  # int ** int types as Any
 
     def conversion_function(self) -> ConversionFunction:
         return ConversionFunction(
             "linear", self.offset_adu, self.gain_adu_per_ugy, source=f"simulated panel {self.name}"
         )
 
-    def with_overrides(self, **kw) -> "DetectorModel":
+    def with_overrides(self, **kw: Any) -> DetectorModel:
         return dataclasses.replace(self, **kw)
 
-    def to_dict(self) -> dict:
+    def to_dict(self) -> dict[str, Any]:
         return asdict(self)
 
 

@@ -38,9 +38,10 @@ References
 from __future__ import annotations
 
 from dataclasses import asdict, dataclass
-from typing import Callable, Mapping, Sequence
+from typing import Any, Callable, Mapping, Sequence
 
 import numpy as np
+from numpy.typing import ArrayLike, NDArray
 from scipy import special
 
 from scorer.observer.eye import DEFAULT_VIEWING_DISTANCE_MM, eye_filter
@@ -65,11 +66,15 @@ class PredictedThreshold:
     ci_high: float | None = None
     n_images: int = 0
 
-    def to_dict(self) -> dict:
+    def to_dict(self) -> dict[str, Any]:
         return asdict(self)
 
 
-def disc_ft(frequency_per_mm, radius_mm: float, amplitude: float = 1.0):
+#: a radial curve: a function of frequency (cycles/mm), or (frequency, value) samples
+Curve = Callable[[NDArray[np.float64]], ArrayLike] | tuple[ArrayLike, ArrayLike]
+
+
+def disc_ft(frequency_per_mm: ArrayLike, radius_mm: float, amplitude: float = 1.0) -> NDArray[np.float64]:
     """Fourier transform a·R·J₁(2πRf)/f of a disc of radius R (mm), amplitude a; aπR² at f = 0."""
     f = np.asarray(frequency_per_mm, dtype=float)
     out = np.empty_like(f)
@@ -80,7 +85,7 @@ def disc_ft(frequency_per_mm, radius_mm: float, amplitude: float = 1.0):
     return out
 
 
-def _as_function(curve, *, beyond: str) -> Callable[[np.ndarray], np.ndarray]:
+def _as_function(curve: Curve, *, beyond: str) -> Callable[[np.ndarray], np.ndarray]:
     """A radial function from a callable or a (frequency, value) pair.
 
     ``beyond="zero"``: 0 past the last frequency (MTF); ``"hold"``: the end values (NNPS).
@@ -103,8 +108,8 @@ def _fold(g: np.ndarray, nyquist: float) -> np.ndarray:
 
 def dprime_per_contrast(
     diameter_mm: float,
-    mtf,
-    nnps,
+    mtf: Curve,
+    nnps: Curve,
     pixel_pitch_mm: float,
     *,
     observer: str = "npw",
@@ -156,8 +161,8 @@ def dprime_per_contrast(
 
 def predict_thresholds(
     diameters_mm: Sequence[float],
-    mtf,
-    nnps,
+    mtf: Curve,
+    nnps: Curve,
     pixel_pitch_mm: float,
     *,
     observers: Sequence[str] = OBSERVERS,
@@ -214,7 +219,9 @@ def predict_thresholds(
     return out
 
 
-def predict_from_detector(detector: dict, diameters_mm: Sequence[float], **kwargs) -> list[PredictedThreshold]:
+def predict_from_detector(
+    detector: dict[str, Any], diameters_mm: Sequence[float], **kwargs: Any
+) -> list[PredictedThreshold]:
     """Predicted thresholds from a ``detector.json`` dictionary (needs its MTF and NNPS)."""
     from scorer.errors import LimenError
 

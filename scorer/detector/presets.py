@@ -39,6 +39,7 @@ from __future__ import annotations
 import dataclasses
 from dataclasses import dataclass
 from pathlib import PurePath
+from typing import Any
 
 from scorer.detector.panel_model import DetectorModel, validate_model
 from scorer.errors import LimenError
@@ -66,7 +67,7 @@ class PanelSpec:
     light_transfer: dict[float, float] | None = None  # published light-spread transfer at these frequencies
     light_transfer_source: str = ""
 
-    def to_dict(self) -> dict:
+    def to_dict(self) -> dict[str, Any]:
         return dataclasses.asdict(self)
 
 
@@ -199,7 +200,7 @@ def detector_model(name: str) -> DetectorModel:
         ) from None
 
 
-def detector_model_from_dict(data: dict, path) -> DetectorModel:
+def detector_model_from_dict(data: dict[str, Any], path: str | PurePath) -> DetectorModel:
     """A model file's parsed TOML: ``base`` (a preset name) plus any DetectorModel field to override.
 
     ``path`` names the file in errors; :func:`scorer.workflow.load_detector_model` reads it.

@@ -63,9 +63,12 @@ References
 from __future__ import annotations
 
 import datetime as _dt
+from collections.abc import Sequence
 from dataclasses import asdict, dataclass, field
+from typing import Any
 
 import numpy as np
+from numpy.typing import ArrayLike, NDArray
 from scipy import fft as sfft
 
 from scorer.detector.panel_model import DetectorModel
@@ -88,7 +91,7 @@ class SimulatedImage:
     model: DetectorModel
     kind: str
     dose_ugy: float
-    truth: dict = field(default_factory=dict)
+    truth: dict[str, Any] = field(default_factory=dict)
 
     def kerma_ugy(self) -> np.ndarray:
         """Pixels linearised to air kerma (µGy)."""
@@ -96,18 +99,27 @@ class SimulatedImage:
 
 
 # --------------------------------------------------------------------------- rendering
-def _spread_terms(spread_px) -> list[tuple[float, float]]:
+#: light spread in pixels: one length, or (weight, length) terms
+Spread = float | Sequence[tuple[float, float]] | None
+
+
+def _spread_terms(spread_px: Spread) -> list[tuple[float, float]]:
     """``spread_px`` as (weight, L in pixels) pairs: a float L is [(1, L)]; zero-length terms dropped."""
     if spread_px is None:
         return []
-    if np.isscalar(spread_px):
+    if isinstance(spread_px, (int, float, np.integer, np.floating)):  # a scalar (np.isscalar, typed)
         return [(1.0, float(spread_px))] if float(spread_px) > 0 else []
     terms = [(float(w), float(length)) for w, length in spread_px if w > 0]
     return terms if any(length > 0 for _, length in terms) else []
 
 
 def render_discs(
-    transmission: np.ndarray, centers_rc, radii_px, contrasts, spread_px=0.0, spread_supersample: int = 8
+    transmission: NDArray[np.float64],
+    centers_rc: ArrayLike,
+    radii_px: ArrayLike,
+    contrasts: ArrayLike,
+    spread_px: Spread = 0.0,
+    spread_supersample: int = 8,
 ) -> None:
     """Multiply ``transmission`` in place by 1 − C·coverage for each disc.
 
@@ -148,7 +160,7 @@ def render_edge(
     angle_deg: float,
     edge_transmission: float = 0.02,
     center_rc: tuple[float, float] | None = None,
-    spread_px=0.0,
+    spread_px: Spread = 0.0,
 ) -> np.ndarray:
     """Transmission of a straight opaque-ish edge through ``center_rc``.
 
@@ -189,7 +201,8 @@ def render_edge(
         cov[ri, ci] = resp.mean(axis=1)
     else:
         cov[ri, ci] = (d_sub > 0).mean(axis=1)
-    return 1.0 - (1.0 - edge_transmission) * cov
+    transmission: NDArray[np.float64] = 1.0 - (1.0 - edge_transmission) * cov
+    return transmission
 
 
 def _light_spread(image: np.ndarray, length_mm: float, pitch_mm: float) -> np.ndarray:
@@ -200,7 +213,8 @@ def _light_spread(image: np.ndarray, length_mm: float, pitch_mm: float) -> np.nd
     f = np.hypot(sfft.fftfreq(rows, d=pitch_mm)[:, None], sfft.rfftfreq(cols, d=pitch_mm)[None, :])
     spec = sfft.rfft2(image, workers=-1)
     spec *= (1.0 / (1.0 + (2 * np.pi * length_mm * f) ** 2)).astype(np.float32)
-    return sfft.irfft2(spec, s=image.shape, workers=-1)
+    spread: NDArray[np.float64] = sfft.irfft2(spec, s=image.shape, workers=-1)
+    return spread
 
 
 def spread_px(model: DetectorModel) -> list[tuple[float, float]]:
@@ -305,7 +319,7 @@ def phantom_transmission(
     shape: tuple[int, int],
     pixel_mm: float,
     magnification: float,
-    spread_px=0.0,
+    spread_px: Spread = 0.0,
 ) -> np.ndarray:
     """Transmission map of the plate — its discs (signal sites only) and markers — as the
     pixels see it (aperture-integrated, and spread first when ``spread_px`` > 0)."""
@@ -334,7 +348,7 @@ def simulate(
     model: DetectorModel,
     kind: str = "phantom",
     dose_ugy: float = 100.0,
-    seed=0,
+    seed: int | np.random.Generator | None = 0,
     small: bool = False,
     layout: Layout | None = None,
     pose: Pose = Pose(),
@@ -364,7 +378,7 @@ def simulate(
     """
     rng = seed if isinstance(seed, np.random.Generator) else np.random.default_rng(seed)
     p = model.pixel_pitch_mm
-    truth: dict = {"kind": kind, "dose_ugy": float(dose_ugy), "detector_model": model.to_dict()}
+    truth: dict[str, Any] = {"kind": kind, "dose_ugy": float(dose_ugy), "detector_model": model.to_dict()}
     if kind == "phantom":
         if layout is None:
             raise ValueError("a phantom image needs its layout (scorer.workflow.load_layout() gives the bundled plate)")
@@ -397,7 +411,7 @@ def simulate(
 
 
 # ------------------------------------------------ DICOM attributes (scorer.workflow.write_simulated writes them)
-def dicom_tags(model: DetectorModel, acquired: _dt.datetime, dose_ugy: float) -> dict:
+def dicom_tags(model: DetectorModel, acquired: _dt.datetime, dose_ugy: float) -> dict[str, Any]:
     """DICOM attributes for a simulated raw image (PS3.3 keywords)."""
     return {
         "Modality": model.modality,

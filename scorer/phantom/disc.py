@@ -10,12 +10,15 @@ from __future__ import annotations
 from functools import lru_cache
 
 import numpy as np
+from numpy.typing import ArrayLike, NDArray
 from scipy import sparse, special
 
 SUPERSAMPLE = 10  # sub-pixels per pixel side
 
 
-def disc_coverage_patch(center_rc, radius_px: float, shape: tuple[int, int], supersample: int = SUPERSAMPLE):
+def disc_coverage_patch(
+    center_rc: ArrayLike, radius_px: float, shape: tuple[int, int], supersample: int = SUPERSAMPLE
+) -> tuple[slice, slice, NDArray[np.float64]] | None:
     """Fraction of each pixel covered by a disc, on the smallest patch that holds it.
 
     Parameters
@@ -30,7 +33,7 @@ def disc_coverage_patch(center_rc, radius_px: float, shape: tuple[int, int], sup
     -------
     (row slice, col slice, coverage) or None when the disc lies outside the image.
     """
-    cr, cc = float(center_rc[0]), float(center_rc[1])
+    cr, cc = (float(v) for v in np.asarray(center_rc, dtype=float)[:2])
     r0 = int(np.floor(cr - radius_px - 1))
     r1 = int(np.ceil(cr + radius_px + 2))
     c0 = int(np.floor(cc - radius_px - 1))
@@ -48,7 +51,9 @@ def disc_coverage_patch(center_rc, radius_px: float, shape: tuple[int, int], sup
     return slice(r0c, r1c), slice(c0c, c1c), cov
 
 
-def disc_coverage(center_rc, radius_px: float, shape: tuple[int, int], supersample: int = SUPERSAMPLE) -> np.ndarray:
+def disc_coverage(
+    center_rc: ArrayLike, radius_px: float, shape: tuple[int, int], supersample: int = SUPERSAMPLE
+) -> NDArray[np.float64]:
     """Coverage map of a disc on an array of ``shape`` (zeros away from the disc)."""
     out = np.zeros(shape, dtype=np.float64)
     patch = disc_coverage_patch(center_rc, radius_px, shape, supersample)
@@ -64,7 +69,7 @@ def disc_coverage(center_rc, radius_px: float, shape: tuple[int, int], supersamp
 MIN_SIGMA_PX = 0.03
 
 
-def _aperture_kernel(t, sigma_px: float):
+def _aperture_kernel(t: ArrayLike, sigma_px: float) -> NDArray[np.float64]:
     """k(t): the unit pixel aperture convolved with a Gaussian of standard deviation ``sigma_px`` (1-D).
 
     Evaluated only where it differs from 0 by more than Φ(−8) (|t| < ½ + 8σ); zero elsewhere.
@@ -77,15 +82,16 @@ def _aperture_kernel(t, sigma_px: float):
     return out
 
 
-def _aperture_kernel_integral(t, sigma_px: float):
+def _aperture_kernel_integral(t: ArrayLike, sigma_px: float) -> NDArray[np.float64]:
     """∫_{−∞}^{t} k: with F(u) = u·Φ(u/σ) + σ·φ(u/σ) (the antiderivative of Φ(u/σ)), F(t + ½) − F(t − ½).
 
     A distribution function: 0 below t = −½ − 8σ and 1 above ½ + 8σ, where it is not evaluated.
     """
 
-    def f(u):
+    def f(u: NDArray[np.float64]) -> NDArray[np.float64]:
         z = u / sigma_px
-        return u * special.ndtr(z) + sigma_px * np.exp(-0.5 * z * z) / np.sqrt(2.0 * np.pi)
+        value: NDArray[np.float64] = u * special.ndtr(z) + sigma_px * np.exp(-0.5 * z * z) / np.sqrt(2.0 * np.pi)
+        return value
 
     t = np.asarray(t, dtype=float)
     lim = 0.5 + 8.0 * sigma_px
@@ -96,7 +102,9 @@ def _aperture_kernel_integral(t, sigma_px: float):
     return out
 
 
-def blurred_disc(center_rc, radius_px: float, sigma_px: float, shape: tuple[int, int]) -> np.ndarray:
+def blurred_disc(
+    center_rc: ArrayLike, radius_px: float, sigma_px: float, shape: tuple[int, int]
+) -> NDArray[np.float64]:
     """Expected pixel values of a unit disc blurred by a Gaussian, then integrated over each square pixel.
 
     The system spread acts on the continuous image *before* the pixel aperture samples it, so the value of
@@ -124,7 +132,7 @@ def blurred_disc(center_rc, radius_px: float, sigma_px: float, shape: tuple[int,
     """
     if sigma_px < MIN_SIGMA_PX:
         return disc_coverage(center_rc, radius_px, shape, supersample=max(SUPERSAMPLE, int(np.ceil(20 / radius_px))))
-    cr, cc = float(center_rc[0]), float(center_rc[1])
+    cr, cc = (float(v) for v in np.asarray(center_rc, dtype=float)[:2])
     out = np.zeros(shape, dtype=np.float64)
     reach = radius_px + 8.0 * sigma_px + 1.0
     r0, r1 = max(int(np.floor(cr - reach)), 0), min(int(np.ceil(cr + reach)) + 1, shape[0])
@@ -141,7 +149,7 @@ def blurred_disc(center_rc, radius_px: float, sigma_px: float, shape: tuple[int,
     )  # (rows, N): ∫ k(y − m) dy over the chord
     b = (weight * half_chord)[:, None] * _aperture_kernel(cc + xi[:, None] - cols, sigma_px)  # (N, cols)
     if b.size > 20_000:  # each node reaches only the columns within ½ + 8σ of it: a sparse product pays
-        out[r0:r1, c0:c1] = (sparse.csr_matrix(b).T @ a.T).T
+        out[r0:r1, c0:c1] = np.asarray(sparse.csr_matrix(b).T @ a.T).T  # sparse @ dense is a dense array
     else:
         out[r0:r1, c0:c1] = a @ b
     return out
@@ -150,13 +158,13 @@ def blurred_disc(center_rc, radius_px: float, sigma_px: float, shape: tuple[int,
 _PANEL = np.polynomial.legendre.leggauss(16)
 
 
-def _nodes(n: int) -> tuple[np.ndarray, np.ndarray]:
+def _nodes(n: int) -> tuple[NDArray[np.float64], NDArray[np.float64]]:
     """Composite Gauss–Legendre rule on (−π/2, π/2): ⌈n/16⌉ equal panels of 16 nodes each."""
     return _panel_nodes(max(1, -(-n // 16)))
 
 
 @lru_cache(maxsize=256)
-def _panel_nodes(panels: int) -> tuple[np.ndarray, np.ndarray]:
+def _panel_nodes(panels: int) -> tuple[NDArray[np.float64], NDArray[np.float64]]:
     edges = np.linspace(-np.pi / 2, np.pi / 2, panels + 1)
     half = np.diff(edges)[:, None] / 2
     x = (edges[:-1, None] + half + half * _PANEL[0][None, :]).ravel()

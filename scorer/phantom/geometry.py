@@ -18,9 +18,10 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
+from numpy.typing import ArrayLike, NDArray
 
 
-def _rotation(theta_deg: float) -> np.ndarray:
+def _rotation(theta_deg: float) -> NDArray[np.float64]:
     t = np.deg2rad(theta_deg)
     c, s = np.cos(t), np.sin(t)
     # counter-clockwise on screen where y runs downwards
@@ -35,15 +36,15 @@ class PhantomTransform:
     offset: tuple[float, float]
 
     @property
-    def A(self) -> np.ndarray:
+    def A(self) -> NDArray[np.float64]:
         return np.asarray(self.matrix, dtype=float)
 
     @property
-    def t(self) -> np.ndarray:
+    def t(self) -> NDArray[np.float64]:
         return np.asarray(self.offset, dtype=float)
 
     @classmethod
-    def from_arrays(cls, A: np.ndarray, t: np.ndarray) -> "PhantomTransform":
+    def from_arrays(cls, A: ArrayLike, t: ArrayLike) -> PhantomTransform:
         A = np.asarray(A, float)
         t = np.asarray(t, float)
         return cls(((A[0, 0], A[0, 1]), (A[1, 0], A[1, 1])), (t[0], t[1]))
@@ -66,16 +67,17 @@ class PhantomTransform:
         c_px = np.array([center_px[1], center_px[0]], float)  # (col, row)
         return cls.from_arrays(A, c_px - A @ c_mm)
 
-    def to_pixel(self, xy_mm) -> np.ndarray:
+    def to_pixel(self, xy_mm: ArrayLike) -> NDArray[np.float64]:
         """Phantom points (N, 2) in mm → pixel (N, 2) as (row, col)."""
         xy = np.atleast_2d(np.asarray(xy_mm, float))
-        cr = xy @ self.A.T + self.t
+        cr: NDArray[np.float64] = xy @ self.A.T + self.t
         return cr[:, ::-1]
 
-    def to_phantom(self, rc_px) -> np.ndarray:
+    def to_phantom(self, rc_px: ArrayLike) -> NDArray[np.float64]:
         """Pixel (N, 2) as (row, col) → phantom mm (N, 2) as (x, y)."""
         rc = np.atleast_2d(np.asarray(rc_px, float))
-        return (rc[:, ::-1] - self.t) @ np.linalg.inv(self.A).T
+        xy: NDArray[np.float64] = (rc[:, ::-1] - self.t) @ np.linalg.inv(self.A).T
+        return xy
 
     @property
     def flipped(self) -> bool:

@@ -47,10 +47,14 @@ the entry and the problem.
 
 from __future__ import annotations
 
+import os
+from collections.abc import Callable, Iterable, Sequence
 from dataclasses import dataclass
 from pathlib import Path
+from typing import Any, Literal, NoReturn
 
 import numpy as np
+from numpy.typing import NDArray
 
 from scorer.errors import LimenError
 from scorer.files import read_toml
@@ -80,6 +84,9 @@ _TARGET_KEYS = {
 }
 
 
+TargetDesign = Literal["mafc", "known"]
+
+
 @dataclass(frozen=True)
 class Marker:
     id: str
@@ -107,7 +114,7 @@ class Target:
     contrast: float
     sites_mm: tuple[tuple[float, float], ...]
     signal_site: int
-    design: str = "mafc"
+    design: TargetDesign = "mafc"
     material: str | None = None
     thickness_um: float | None = None
 
@@ -116,7 +123,7 @@ class Target:
         return len(self.sites_mm)
 
     @property
-    def sites(self) -> np.ndarray:
+    def sites(self) -> NDArray[np.float64]:
         return np.asarray(self.sites_mm, dtype=float)
 
     @property
@@ -174,7 +181,7 @@ def default_layout_path() -> Path:
         ) from None
 
 
-def load_layout(path=None) -> Layout:
+def load_layout(path: str | os.PathLike[str] | None = None) -> Layout:
     """Read and validate a layout file (default: the bundled demo phantom).
 
     Raises
@@ -186,19 +193,19 @@ def load_layout(path=None) -> Layout:
     return parse_layout(read_toml(path, "layout file"), path)
 
 
-def parse_layout(data: dict, path="<layout>") -> Layout:
+def parse_layout(data: dict[str, Any], path: str | os.PathLike[str] = "<layout>") -> Layout:
     """Validate a layout already parsed from TOML into a dict."""
     p = str(path)
 
-    def fail(entry: str, problem: str):
+    def fail(entry: str, problem: str) -> NoReturn:
         raise LimenError(f"{entry}: {problem}", p)
 
-    def unknown(keys, allowed, entry):
+    def unknown(keys: Iterable[str], allowed: set[str], entry: str) -> None:
         extra = sorted(set(keys) - allowed)
         if extra:
             fail(entry, f"unknown key {extra[0]!r} (allowed: {', '.join(sorted(allowed))})")
 
-    def number(d, key, entry, positive=False):
+    def number(d: dict[str, Any], key: str, entry: str, positive: bool = False) -> float:
         if key not in d:
             fail(entry, f"missing '{key}'")
         v = d[key]
@@ -208,7 +215,7 @@ def parse_layout(data: dict, path="<layout>") -> Layout:
             fail(entry, f"'{key}' must be positive, got {v!r}")
         return float(v)
 
-    def point(v, entry, key):
+    def point(v: object, entry: str, key: str) -> tuple[float, float]:
         if (
             not isinstance(v, list)
             or len(v) != 2
@@ -229,14 +236,14 @@ def parse_layout(data: dict, path="<layout>") -> Layout:
     height = number(ph, "height_mm", "[phantom]", positive=True)
     name = str(ph.get("name", Path(p).stem))
 
-    def inside(xy, r, entry):
+    def inside(xy: tuple[float, float], r: float, entry: str) -> None:
         x, y = xy
         if x - r < 0 or y - r < 0 or x + r > width or y + r > height:
             fail(
                 entry, f"site ({x:g}, {y:g}) mm with radius {r:g} mm lies outside the {width:g} × {height:g} mm outline"
             )
 
-    def marker(d, entry) -> Marker:
+    def marker(d: object, entry: str) -> Marker:
         if not isinstance(d, dict):
             fail(entry, "must be a table")
         unknown(d, _MARKER_KEYS, entry)
@@ -307,7 +314,7 @@ def parse_layout(data: dict, path="<layout>") -> Layout:
             s = d["signal_site"]
             if isinstance(s, bool) or not isinstance(s, int) or not 0 <= s < len(sites):
                 fail(entry, f"signal_site {s!r} is out of range 0..{len(sites) - 1}")
-            design = "mafc"
+            design: TargetDesign = "mafc"
         elif "known_site_mm" in d:
             bg = d.get("background_sites_mm")
             if not isinstance(bg, list) or not bg:
@@ -331,27 +338,29 @@ def parse_layout(data: dict, path="<layout>") -> Layout:
     return Layout(name, width, height, fiducials, key, tuple(targets), str(ph.get("description", "")), p)
 
 
-def _check_overlaps(targets, markers, fail) -> None:
+def _check_overlaps(targets: Sequence[Target], markers: Sequence[Marker], fail: Callable[[str, str], NoReturn]) -> None:
     """No two sites (or a site and a marker) may be closer than their radii plus clearance."""
-    xy, radius, owner = [], [], []
+    xy_list: list[tuple[float, float]] = []
+    radius_list: list[float] = []
+    owner: list[str] = []
     for t in targets:
         for k, s in enumerate(t.sites_mm):
-            xy.append(s)
-            radius.append(t.diameter_mm / 2)
+            xy_list.append(s)
+            radius_list.append(t.diameter_mm / 2)
             owner.append(f"target {t.id!r} site {k}")
     for m in markers:
-        xy.append(m.xy_mm)
-        radius.append(m.diameter_mm / 2)
+        xy_list.append(m.xy_mm)
+        radius_list.append(m.diameter_mm / 2)
         owner.append(f"marker {m.id!r}")
-    xy = np.asarray(xy)
-    radius = np.asarray(radius)
+    xy = np.asarray(xy_list)
+    radius = np.asarray(radius_list)
     from scipy.spatial import cKDTree
 
     tree = cKDTree(xy)
     # a pair (i, j) with r_i ≥ r_j clashes only within (2 + clearance)·r_i of i: each item queries its own reach
     # and keeps partners no larger than itself, so the work and memory grow with the sites, not their square
     reach = (2 + SITE_CLEARANCE_RADII) * radius
-    worst = None
+    worst: tuple[tuple[int, int], float, float] | None = None
     for i, near in enumerate(tree.query_ball_point(xy, reach)):
         for j in near:
             if j == i or radius[j] > radius[i] or (radius[j] == radius[i] and j < i):

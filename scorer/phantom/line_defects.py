@@ -29,8 +29,10 @@ References
 from __future__ import annotations
 
 from dataclasses import dataclass
+from typing import Literal, TypedDict
 
 import numpy as np
+from numpy.typing import NDArray
 
 SEGMENT_PX = 64
 Z = 8.0  # robust SDs: far beyond chance over ~10⁵ segments of a large image (Φ(−8) ≈ 6·10⁻¹⁶)
@@ -39,11 +41,25 @@ DEAD_FRACTION = 0.05
 CLIP = 1.5  # |s| beyond this (a hot pixel) counts as this much in a segment's mean
 
 
+LineAxis = Literal["row", "column"]
+
+
+class RegistrationLineRecord(TypedDict):
+    """``RegistrationLine.to_dict()``: one defective line in results.json."""
+
+    axis: LineAxis
+    index: int
+    start: int
+    stop: int
+    kind: str
+    departure: float
+
+
 @dataclass(frozen=True)
 class RegistrationLine:
     """A defective row or column segment found before registration (pixel indices, stop exclusive)."""
 
-    axis: str  # "row" or "column"
+    axis: LineAxis
     index: int
     start: int
     stop: int
@@ -65,7 +81,7 @@ class RegistrationLine:
         d_along = max(self.start - 0.5 - along, 0.0, along - (self.stop - 0.5))
         return float(np.hypot(d_across, d_along))
 
-    def to_dict(self) -> dict:
+    def to_dict(self) -> RegistrationLineRecord:
         return {
             "axis": self.axis,
             "index": self.index,
@@ -76,7 +92,7 @@ class RegistrationLine:
         }
 
 
-def _line_statistic(g: np.ndarray) -> np.ndarray:
+def _line_statistic(g: NDArray[np.float32]) -> NDArray[np.float32]:
     """s per pixel for rows (apply to g.T for columns); 0 on the first and last two lines."""
     s = np.zeros_like(g)
     up = 0.5 * (g[:-4] + g[1:-3])
@@ -90,7 +106,7 @@ def _line_statistic(g: np.ndarray) -> np.ndarray:
     return s
 
 
-def find_registration_lines(pixels: np.ndarray, min_marker_contrast: float) -> list[RegistrationLine]:
+def find_registration_lines(pixels: NDArray[np.generic], min_marker_contrast: float) -> list[RegistrationLine]:
     """Defective rows and columns of an image (see module docstring)."""
     g = np.asarray(pixels, dtype=np.float32)
     if g.ndim != 2 or min(g.shape) < 2 * SEGMENT_PX or min(g.shape) < 8:
@@ -98,7 +114,11 @@ def find_registration_lines(pixels: np.ndarray, min_marker_contrast: float) -> l
     top = float(g.max())
     at_top = g >= top
     found: list[RegistrationLine] = []
-    for axis, G, T in (("row", g, at_top), ("column", g.T, at_top.T)):
+    views: tuple[tuple[LineAxis, NDArray[np.float32], NDArray[np.bool_]], ...] = (
+        ("row", g, at_top),
+        ("column", g.T, at_top.T),
+    )
+    for axis, G, T in views:
         s = _line_statistic(G)
         n_seg = G.shape[1] // SEGMENT_PX
         # mean of s clipped to ±CLIP per segment: as robust as a median here (a disc crossing the segment gives
@@ -114,18 +134,19 @@ def find_registration_lines(pixels: np.ndarray, min_marker_contrast: float) -> l
         for line in np.flatnonzero(flagged.any(axis=1)):
             segs = np.flatnonzero(flagged[line])
             # runs of consecutive defective segments (a gap of one segment is bridged)
-            runs, a, b = [], segs[0], segs[0]
+            runs: list[tuple[int, int]] = []
+            a, b = int(segs[0]), int(segs[0])
             for k in segs[1:]:
                 if k - b <= 2:
-                    b = k
+                    b = int(k)
                 else:
                     runs.append((a, b))
-                    a = b = k
+                    a = b = int(k)
             runs.append((a, b))
             for a, b in runs:
                 start, stop = int(a * SEGMENT_PX), int(G.shape[1] if b == n_seg - 1 else (b + 1) * SEGMENT_PX)
                 dep = float(np.median(s[line, start:stop]))  # one line: the median is cheap
-                near = (max(line - 2, 0), min(line + 2, G.shape[0] - 1))
+                near = (max(int(line) - 2, 0), min(int(line) + 2, G.shape[0] - 1))
                 neighbours = np.concatenate([G[k, start:stop] for k in near])
                 level = float(np.median(G[line, start:stop]))
                 if np.mean(T[line, start:stop]) >= 0.5:
@@ -138,12 +159,12 @@ def find_registration_lines(pixels: np.ndarray, min_marker_contrast: float) -> l
     return found
 
 
-def repair_lines(pixels: np.ndarray, lines: list[RegistrationLine]) -> np.ndarray:
+def repair_lines(pixels: NDArray[np.generic], lines: list[RegistrationLine]) -> NDArray[np.float64]:
     """A copy of the image with each line's pixels replaced by the mean of the nearest good lines either side."""
     g = np.array(pixels, dtype=np.float64, copy=True)
     if not lines:
         return g
-    bad = {"row": set(), "column": set()}
+    bad: dict[LineAxis, set[int]] = {"row": set(), "column": set()}
     for ln in lines:
         bad[ln.axis].add(ln.index)
     for ln in lines:

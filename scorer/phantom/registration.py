@@ -52,15 +52,21 @@ References
 
 from __future__ import annotations
 
+import itertools
+from collections.abc import Iterable, Sequence
 from dataclasses import dataclass, field
+from typing import Any, NoReturn
 
+import cv2
 import numpy as np
+from numpy.typing import ArrayLike, NDArray
 from scipy import ndimage as ndi
+from skimage.measure import block_reduce
 
 from scorer.errors import LimenError
 from scorer.images.image import Image
 from scorer.phantom.geometry import PhantomTransform
-from scorer.phantom.layout import Layout
+from scorer.phantom.layout import Layout, Marker
 from scorer.phantom.line_defects import RegistrationLine, find_registration_lines, repair_lines
 
 # Blocks across the smallest marker (at the smallest magnification) on the coarse image.
@@ -94,7 +100,13 @@ class RegistrationError(LimenError):
         above the limit or a plate cut off by the field edge.
     """
 
-    def __init__(self, message: str, path=None, candidates_px=None, placement=None):
+    def __init__(
+        self,
+        message: str,
+        path: object | None = None,
+        candidates_px: Iterable[tuple[float, float, float]] | None = None,
+        placement: Placement | None = None,
+    ) -> None:
         super().__init__(message, path)
         self.candidates_px = list(candidates_px or [])
         self.placement = placement
@@ -153,7 +165,7 @@ class Placement:
             )
         return out
 
-    def to_dict(self) -> dict:
+    def to_dict(self) -> dict[str, Any]:
         """JSON-ready summary (plain floats, lists)."""
         return {
             "markers_used": sorted(self.markers_px),
@@ -175,7 +187,9 @@ class Placement:
 
 
 # --------------------------------------------------------------------------- similarity fit
-def fit_similarity(src, dst, reflect: bool | None = None) -> tuple[np.ndarray, np.ndarray]:
+def fit_similarity(
+    src: ArrayLike, dst: ArrayLike, reflect: bool | None = None
+) -> tuple[NDArray[np.float64], NDArray[np.float64]]:
     """Least-squares similarity ``dst ≈ A @ src + t`` with ``A = s·R`` (or ``s·R·F``).
 
     Parameters
@@ -216,7 +230,7 @@ def fit_similarity(src, dst, reflect: bool | None = None) -> tuple[np.ndarray, n
     return A, t
 
 
-def _angle_of(A: np.ndarray) -> tuple[float, bool, float]:
+def _angle_of(A: NDArray[np.float64]) -> tuple[float, bool, float]:
     """(rotation_deg in [0, 360), flipped, scale) of a similarity matrix in the geometry convention."""
     det = float(np.linalg.det(A))
     scale = float(np.sqrt(abs(det)))
@@ -231,25 +245,42 @@ def _angle_of(A: np.ndarray) -> tuple[float, bool, float]:
 
 
 # --------------------------------------------------------------------------- blobs
-def block_mean(pix: np.ndarray, f: int) -> np.ndarray:
+def block_mean(pix: NDArray[Any], f: int) -> NDArray[np.float64]:
     """Mean of non-overlapping f × f blocks (the last partial rows and columns are dropped); float64."""
     if f == 1:
         return pix.astype(np.float64)
     h, w = pix.shape[0] // f, pix.shape[1] // f
     a = pix[: h * f, : w * f]
-    s = a.reshape(h, f, w * f).sum(axis=1, dtype=np.float64)
-    return s.reshape(h, w, f).sum(axis=2) / (f * f)
+    # Rows of each block summed first, then its columns, then ÷ f²: the order of the sums before (the result is
+    # the same to the last bit; one np.mean over both block axes adds in another order).
+    # scikit-image ships no annotations: block_reduce is an untyped call
+    rows: NDArray[np.float64] = block_reduce(a, (f, 1), np.sum, func_kwargs={"dtype": np.float64})  # type: ignore[no-untyped-call]
+    blocks: NDArray[np.float64] = block_reduce(rows, (1, f), np.sum)  # type: ignore[no-untyped-call]
+    return blocks / (f * f)
 
 
-def _depth_map(img: np.ndarray, closing_size: int) -> np.ndarray:
+def _depth_map(img: NDArray[np.float64], closing_size: int) -> NDArray[np.float64]:
     """Fractional drop below the local background (grey closing), 0 where the background is dark."""
-    bg = ndi.grey_closing(img, size=(closing_size, closing_size))
+    bg = grey_closing(img, closing_size)
     level = float(np.median(bg))
     ok = bg > 0.1 * level if level > 0 else bg > 0
     depth = np.zeros_like(img)
     np.divide(img, bg, out=depth, where=ok)
     depth = np.where(ok, 1.0 - depth, 0.0)
     return depth
+
+
+def grey_closing(img: NDArray[np.float64], size: int) -> NDArray[np.float64]:
+    """Grey-level closing by a ``size`` × ``size`` square (OpenCV), the same as ``scipy.ndimage.grey_closing``.
+
+    Pixels beyond the edge are left out (OpenCV's default border for dilation and erosion), as scipy's
+    ``reflect`` mode leaves them out for a maximum or minimum.  An even square cannot be centred: scipy's
+    dilation reaches one pixel further down and right, its erosion one further up and left, and the anchors
+    below place OpenCV's squares the same way (tests/test_registration_libraries.py).
+    """
+    kernel = np.ones((size, size), np.uint8)
+    grown = cv2.dilate(img, kernel, anchor=((size - 1) // 2,) * 2)
+    return np.asarray(cv2.erode(grown, kernel, anchor=(size // 2,) * 2), dtype=np.float64)  # float64 in and out
 
 
 @dataclass
@@ -261,7 +292,7 @@ class _Blob:
     refined: bool = False
 
 
-def _coarse_blobs(pix: np.ndarray, f: int, closing_size: int, threshold: float) -> list[_Blob]:
+def _coarse_blobs(pix: NDArray[Any], f: int, closing_size: int, threshold: float) -> list[_Blob]:
     coarse = block_mean(pix, f)
     depth = _depth_map(coarse, closing_size)
     labels, n = ndi.label(depth > threshold)
@@ -292,7 +323,9 @@ def _coarse_blobs(pix: np.ndarray, f: int, closing_size: int, threshold: float) 
     return out
 
 
-def _refine(pix: np.ndarray, r0: float, c0: float, diameter_px: float, iterations: int = 6):
+def _refine(
+    pix: NDArray[Any], r0: float, c0: float, diameter_px: float, iterations: int = 6
+) -> tuple[float, float, float, float, bool] | None:
     """Sub-pixel centre and diameter of a dark disc near (r0, c0) at full resolution.
 
     Iterated clipped depth-weighted centroid: weight = clip(depth / contrast, 0, 1) inside a
@@ -346,8 +379,14 @@ def _refine(pix: np.ndarray, r0: float, c0: float, diameter_px: float, iteration
 
 # --------------------------------------------------------------------------- matching
 def _match(
-    p: np.ndarray, diam_mm: np.ndarray, z: np.ndarray, dz: np.ndarray, mag_lo: float, mag_hi: float, tol_px_mm: float
-):
+    p: NDArray[np.complex128],
+    diam_mm: NDArray[np.float64],
+    z: NDArray[np.complex128],
+    dz: NDArray[np.float64],
+    mag_lo: float,
+    mag_hi: float,
+    tol_px_mm: float,
+) -> tuple[NDArray[np.intp], bool, complex, complex] | None:
     """Best correspondence of blobs (complex detector mm ``p``, diameters) to markers ``z``.
 
     Returns (assignment array of blob index per marker, −1 if none; flip; complex s, t).
@@ -361,7 +400,7 @@ def _match(
     J = np.repeat(jj, len(aa))
     A = np.tile(aa, len(ii))
     B = np.tile(bb, len(ii))
-    best = None
+    best: tuple[float, NDArray[np.intp], bool, complex, complex] | None = None
     for flip in (False, True):
         zz = np.conj(z) if flip else z
         s = (p[J] - p[I]) / (zz[B] - zz[A])
@@ -398,7 +437,12 @@ def _match(
 
 # --------------------------------------------------------------------------- main entry
 def register(
-    image: Image, layout: Layout, *, max_residual_px: float = 1.0, magnification_range=(0.8, 1.4), path=None
+    image: Image,
+    layout: Layout,
+    *,
+    max_residual_px: float = 1.0,
+    magnification_range: tuple[float, float] = (0.8, 1.4),
+    path: object | None = None,
 ) -> Placement:
     """Find the phantom's markers and fit the phantom-mm → pixel transform.
 
@@ -472,7 +516,7 @@ def register(
             good.append(b)
     candidates = [(float(b.row), float(b.col), float(b.diameter_px)) for b in blobs]
 
-    def fail(message, placement=None):
+    def fail(message: str, placement: Placement | None = None) -> NoReturn:
         raise RegistrationError(message, where, candidates, placement)
 
     what = f"{len(layout.fiducials)} fiducials + orientation key"
@@ -591,15 +635,15 @@ def register(
     return placement
 
 
-def _lines_text(lines) -> str:
+def _lines_text(lines: Sequence[RegistrationLine]) -> str:
     return f" (defective line(s) in the image: {', '.join(ln.name for ln in lines[:5])})" if lines else ""
 
 
-def _other_assignment(markers, used: list[int], meas_mm: np.ndarray, max_residual_mm: float):
+def _other_assignment(
+    markers: Sequence[Marker], used: list[int], meas_mm: NDArray[np.float64], max_residual_mm: float
+) -> list[str] | None:
     """Another assignment of the used markers' centres to layout markers of the same size that fits within the
     residual limit (so the markers left fix neither the orientation nor the mirror), or None."""
-    import itertools
-
     z = np.array([m.xy_mm for m in markers], float)
     d = np.array([m.diameter_mm for m in markers], float)
     options = [[j for j in range(len(markers)) if abs(d[j] / d[i] - 1) < DIAMETER_TOLERANCE] for i in used]
@@ -614,7 +658,7 @@ def _other_assignment(markers, used: list[int], meas_mm: np.ndarray, max_residua
     return None
 
 
-def _inside(rc, radius_px: float, rows: int, cols: int) -> bool:
+def _inside(rc: Sequence[float] | NDArray[np.float64], radius_px: float, rows: int, cols: int) -> bool:
     """Does a disc at (row, col) lie wholly inside the image (pixel edges at −½ and n − ½)?"""
     r, c = float(rc[0]), float(rc[1])
     return (
