@@ -8,7 +8,7 @@ DEMO   ?= demo-output
 # Add a path here once mypy --strict reports no error in it; never remove one (DEVELOPERS.md, "Types").
 MYPY_STRICT := scorer/__init__.py scorer/cli.py scorer/databases.py scorer/demo.py scorer/errors.py \
                scorer/extras.py scorer/faults.py scorer/files.py scorer/invocation.py scorer/resources.py \
-               scorer/images scorer/workflow scorer/commands \
+               scorer/images scorer/workflow scorer/commands scorer/detector scorer/phantom \
                scorer/qc/engine.py scorer/qc/faults.py scorer/qc/inbox.py scorer/qc/mail.py scorer/qc/migrations \
                scorer/qc/schema.py scorer/qc/sensitivity.py scorer/qc/simulated.py scorer/qc/stability.py \
                scorer/qc/tables.py

@@ -121,7 +121,7 @@ def series_groups(
         kermas = [table.get(str(Path(p).resolve())) for p in paths]
         groups = group_by_kerma(paths, kermas, source=f"not listed in {kerma_csv}")
         if conversion is not None:  # every kerma is listed, or group_by_kerma has refused the series
-            warnings += check_kerma_agreement(paths, cast("list[float]", kermas), measured(conversion), kerma_csv)
+            warnings += check_kerma_agreement(paths, cast("list[float]", kermas), measured(conversion), str(kerma_csv))
     elif conversion is not None:
         groups = group_by_kerma(paths, measured(conversion), source="plate background through the conversion function")
     else:
