@@ -23,7 +23,8 @@ method × image count the summary therefore also gives ``consistency``: χ² = �
 |z| with the two-sided 5 % Šidák bound for that many cells (Šidák, J. Am. Stat. Assoc. 62 (1967)).
 
 Run with ``.venv/bin/python -m bench.bench_observer_truth [n_sets]`` (about 3 minutes per 10 sets on an idle
-machine), or ``... --rows`` to summarise the rows of the last run again (bench/results/bench_observer_truth_rows.csv).
+machine), ``... --rows`` to summarise the rows of the last run again (bench/results/bench_observer_truth_rows.csv),
+or ``... N --more ROWS.csv`` to add N sets after those of an earlier run's rows and summarise them together.
 """
 
 from __future__ import annotations
@@ -43,7 +44,7 @@ from tqdm import tqdm
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "tests"))
 
-from cd_truth_generator import CORRELATED, RING5, ROW4, WHITE, Plate  # noqa: E402
+from cd_truth_generator import CORRELATED, RING5, ROW4, WHITE, Design, Noise, Plate  # noqa: E402
 from cd_truth_runner import compare, plate_layout, score_set, thresholds  # noqa: E402
 
 CONFIGS = [(ROW4, WHITE), (ROW4, CORRELATED), (RING5, WHITE), (RING5, CORRELATED)]
@@ -53,12 +54,19 @@ BIAS_FLOOR_PCT = 1.0
 COVERAGE_FLOOR = (0.93, 0.97)
 
 
-def run_config(design, noise, n_sets: int, seed: int = 0, n_boot: int = 400) -> pd.DataFrame:
+def run_config(
+    design: Design, noise: Noise, n_sets: int, seed: int = 0, n_boot: int = 400, first_set: int = 0
+) -> pd.DataFrame:
+    """Thresholds of sets ``first_set`` … ``first_set + n_sets − 1`` of one plate × noise, against the truth.
+
+    Set s draws its images from a generator seeded by (seed, s, plate/noise), so a run of sets 30–59 adds to one
+    of sets 0–29 exactly what a run of 60 sets would have given.
+    """
     plate = Plate(design, noise)
     layout = plate_layout(plate)
     truth = {o: plate.truth(o) for o in OBSERVERS}
     rows = []
-    for s in tqdm(range(n_sets), desc=f"{design.name} {noise.name}", file=sys.stderr):
+    for s in tqdm(range(first_set, first_set + n_sets), desc=f"{design.name} {noise.name}", file=sys.stderr):
         rng = np.random.default_rng([seed, s, zlib.crc32(f"{design.name}/{noise.name}".encode())])
         responses = score_set(plate, layout, rng, 16, OBSERVERS)
         for obs, resp in responses.items():
@@ -169,9 +177,15 @@ def lines(summary: dict[str, Any]) -> list[str]:
     return text
 
 
-def main(n_sets: int = 30, configs=CONFIGS) -> dict:
+def main(
+    n_sets: int = 30, configs: list[tuple[Design, Noise]] = CONFIGS, first_set: int = 0, rows: Path | None = None
+) -> dict[str, Any]:
+    """Run the bench; ``first_set`` and ``rows`` (an earlier run's rows file) extend an earlier run by new sets."""
     t0 = time.perf_counter()
-    df = pd.concat([run_config(d, n, n_sets) for d, n in configs], ignore_index=True)
+    df = pd.concat([run_config(d, n, n_sets, first_set=first_set) for d, n in configs], ignore_index=True)
+    if rows is not None:
+        df = pd.concat([read_rows(rows), df], ignore_index=True)
+        n_sets = int(df["set"].nunique())
     summary = summarise(df)
     summary.update(
         date=dt.datetime.now().isoformat(timespec="seconds"), n_sets=n_sets, seconds=time.perf_counter() - t0
@@ -182,6 +196,12 @@ def main(n_sets: int = 30, configs=CONFIGS) -> dict:
     df.to_csv(res / "bench_observer_truth_rows.csv", index=False)
     print("\n".join(lines(summary)))
     return summary
+
+
+def read_rows(rows: Path) -> pd.DataFrame:
+    """The rows file :func:`main` wrote, read back as it was written."""
+    # censored is text ("" when not censored); only the literal "nan" of the numeric columns is missing
+    return pd.read_csv(rows, dtype={"censored": str}, keep_default_na=False, na_values=["nan"])
 
 
 def resummarise(rows: Path) -> dict[str, Any]:
@@ -197,9 +217,7 @@ def resummarise(rows: Path) -> dict[str, Any]:
     dict
         The new summary.
     """
-    # censored is text ("" when not censored); only the literal "nan" of the numeric columns is missing
-    df = pd.read_csv(rows, dtype={"censored": str}, keep_default_na=False, na_values=["nan"])
-    summary = summarise(df)
+    summary = summarise(read_rows(rows))
     old_path = rows.parent / "bench_observer_truth.json"
     old = json.loads(old_path.read_text(encoding="utf-8")) if old_path.exists() else {}
     summary.update({k: old[k] for k in ("date", "n_sets", "seconds") if k in old})
@@ -211,5 +229,9 @@ def resummarise(rows: Path) -> dict[str, Any]:
 if __name__ == "__main__":
     if len(sys.argv) > 1 and sys.argv[1] == "--rows":
         resummarise(Path(__file__).parent / "results" / "bench_observer_truth_rows.csv")
+    elif len(sys.argv) > 3 and sys.argv[2] == "--more":
+        # N --more FILE: N new sets after those in FILE (an earlier run's rows), summarised together
+        earlier = Path(sys.argv[3])
+        main(int(sys.argv[1]), first_set=int(read_rows(earlier)["set"].max()) + 1, rows=earlier)
     else:
         main(int(sys.argv[1]) if len(sys.argv) > 1 else 30)
