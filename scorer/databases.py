@@ -17,6 +17,7 @@ Three steps, each refusing in one line (:class:`~scorer.errors.LimenError`) what
 
 from __future__ import annotations
 
+import datetime as _dt
 import os
 import zlib
 from collections.abc import Iterable
@@ -362,3 +363,8 @@ def _configure_and_run(context: ModuleType, conn: Connection, kind: DatabaseKind
     )
     with context.begin_transaction():
         context.run_migrations()
+
+
+def utcnow() -> _dt.datetime:
+    """Now in UTC, naive — as every DateTime column of both databases stores it (one definition for both)."""
+    return _dt.datetime.now(_dt.timezone.utc).replace(tzinfo=None)

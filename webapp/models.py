@@ -44,12 +44,10 @@ from sqlalchemy.orm import (
     validates,
 )
 
+from scorer.databases import utcnow as utcnow  # re-exported: one definition for both databases
+
 ROLES = ("coordinator", "reader")
 STUDY_STATES = ("draft", "open", "closed")
-
-
-def utcnow() -> _dt.datetime:
-    return _dt.datetime.now(_dt.timezone.utc).replace(tzinfo=None)
 
 
 class Base(DeclarativeBase):

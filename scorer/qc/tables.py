@@ -14,6 +14,8 @@ from typing import Any
 from sqlalchemy import Boolean, DateTime, Float, ForeignKey, Integer, String, Text, UniqueConstraint
 from sqlalchemy.orm import DeclarativeBase, Mapped, mapped_column
 
+from scorer.databases import utcnow as utcnow  # re-exported: one definition for both databases
+
 
 class Base(DeclarativeBase):
     pass
@@ -190,11 +192,6 @@ class FileRow(Base):
     size: Mapped[int] = mapped_column(Integer)
     mtime_ns: Mapped[str] = mapped_column(String(32))
     sha256: Mapped[str] = mapped_column(String(64))
-
-
-def utcnow() -> _dt.datetime:
-    """Now in UTC, naive (as every DateTime column stores it)."""
-    return _dt.datetime.now(_dt.timezone.utc).replace(tzinfo=None)
 
 
 def image_dict(r: ImageRow) -> dict[str, Any]:
