@@ -470,3 +470,62 @@ def test_simulated_readers_as_good_as_the_model_choose_what_the_model_chose_on_e
     assert (both["detector"] == both["detector_model"]).all()  # each image keeps its panel
     assert (both["chosen_site"] == both["chosen_site_model"]).all(), both[both.chosen_site != both.chosen_site_model]
     assert set(both["detector"]) == set(DETECTORS.values())
+
+
+# --------------------------------------------------------------------------- the gate asks the model observer
+def test_model_gate_refuses_above_the_plates_top_contrast_and_warns_when_the_interval_reaches_it():
+    """Expected human threshold = factor × model threshold, 95 % interval exp(ln H ± 1.96·√(se² + sd_F²))
+    (errors of a product add in quadrature on the log scale, Taylor 1997): 1.6 × 20 % = 32 % below a top contrast
+    of 37.1 % with an interval up to 32·e^{1.96·√(0.1² + 0.16²)} = 46.3 % → a warning; refused only when the whole
+    interval lies above the top contrast."""
+    from webapp.design import model_gate
+
+    refusals, warnings = model_gate({("panel A", 0.1): (0.20, 0.10)}, {0.1: 0.371}, factor=1.6, factor_sd_ln=0.16)
+    assert not refusals and len(warnings) == 1
+    hi = 32.0 * np.exp(1.959964 * np.hypot(0.1, 0.16))
+    assert "0.1 mm, panel A" in warnings[0] and f"{hi:.3g} %" in warnings[0] and "37.1 %" in warnings[0]
+    # 1.6 × 25 % = 40 % above 37.1 %, the interval down to 40·e^{−0.37} = 27.6 %: a warning, not a refusal
+    refusals, warnings = model_gate({("panel A", 0.1): (0.25, 0.10)}, {0.1: 0.371}, factor=1.6, factor_sd_ln=0.16)
+    assert not refusals and len(warnings) == 1 and "expected human threshold 40 %" in warnings[0]
+    # 1.6 × 35 % = 56 %, SE 0.05: the interval from 56·e^{−1.96·√(0.05² + 0.16²)} = 40.3 % lies above: refused
+    refusals, warnings = model_gate({("panel A", 0.1): (0.35, 0.05)}, {0.1: 0.371}, factor=1.6, factor_sd_ln=0.16)
+    lo = 56.0 * np.exp(-1.959964 * np.hypot(0.05, 0.16))
+    assert len(refusals) == 1 and f"({lo:.3g}–" in refusals[0] and not warnings
+    # well inside the plate: nothing to say
+    assert model_gate({("panel A", 1.0): (0.003, 0.1)}, {1.0: 0.0267}) == ([], [])
+
+
+def test_the_gate_flags_the_demos_0_1_mm_from_the_model_observer_on_the_studys_own_images(tmp_path):
+    """The demo's panels at 0.1 mm: the model observer (NPWE, the study's observer) on the study's own images puts
+    the readers' expected threshold near the plate's highest contrast there (37.1 %), so the gate refuses or
+    warns, naming 0.1 mm and the panel; the demo's own diameters (0.15–1 mm) are not refused."""
+    from scorer.errors import LimenError
+    from scorer.workflow import load_layout
+    from webapp import design
+    from webapp.demo import DEMO_DIAMETERS_MM, DETECTORS, create_demo_study
+    from webapp.models import Study
+    from webapp.security import db
+
+    app = make_app(tmp_path)
+    sid = create_demo_study(
+        app, diameters_mm=(0.1, *DEMO_DIAMETERS_MM), open_study=False, passwords=PASSWORDS, n_readers=5
+    )["study_id"]
+    with app.app_context():
+        st = db().get(Study, sid)
+        layout = load_layout(st.layout_file)
+        try:
+            plan = design.check_design(st, layout)
+            said = plan["warnings"]
+        except LimenError as exc:
+            said = [str(exc)]
+        for w in said:
+            print(w)
+        at_01 = [w for w in said if w.startswith("0.1 mm, ") or ": 0.1 mm, " in w or "; 0.1 mm, " in w]
+        assert at_01, said
+        assert all(any(label in w for label in DETECTORS.values()) for w in at_01)
+        assert all("highest contrast there, 37.1 %" in w for w in at_01)
+        st.diameters_json = json.dumps(list(DEMO_DIAMETERS_MM))
+        plan = design.check_design(st, layout)  # not refused
+        assert not any("0.1 mm" in w for w in plan["warnings"]), plan["warnings"]
+        cells = {(c["detector"], c["diameter_mm"]) for c in plan["model_check"]["cells"]}
+        assert cells == {(det, d) for det in DETECTORS.values() for d in DEMO_DIAMETERS_MM}
