@@ -10,8 +10,9 @@ panel, the four diameters 0.15, 0.25, 0.5 and 1.0 mm, Psi placement and a wanted
 pooled threshold; the design gate (:mod:`webapp.design`) plans the trials per reader per cell when it opens and
 asks the model observer (NPWE) on the study's own images whether the readers can reach threshold within the
 plate's contrasts: at 0.1 mm it warns for both panels (expected human thresholds 26–29 %, intervals reaching
-past the plate's 37.1 %).  The panels are the mammography pair; under NPWE at 0.15 mm the model observer ranks
-the indirect panel ahead on these images, and the simulated readers follow it (DEVELOPERS.md).
+past the plate's 37.1 %).  The panels are the mammography pair, for which NPWE predicts a tie at 0.15 mm; on
+the demo's four images the model observer ranks the indirect panel ahead there by chance, and the simulated
+readers follow it (DEVELOPERS.md).
 :func:`read_as_simulated_readers` lets the built-in simulated readers read it to the end.
 """
 
