@@ -364,8 +364,9 @@ def test_the_demo_study_read_by_the_simulated_readers_is_estimable_at_every_diam
     """`limen serve --demo`'s study, read to the end by the built-in simulated readers (scorer.study.reader_model,
     through the same placement code as the reading API), gives an estimable pooled threshold with a finite CI at
     every diameter and detector it asks for."""
+    from scorer.observer.mafc import criterion_for, dprime_for_pc
     from webapp import study_analysis
-    from webapp.demo import DEMO_DIAMETERS_MM, create_demo_study, read_as_simulated_readers
+    from webapp.demo import DEMO_DIAMETERS_MM, DETECTORS, create_demo_study, read_as_simulated_readers
     from webapp.models import Study, db
 
     app = make_app(tmp_path)
@@ -398,3 +399,123 @@ def test_the_demo_study_read_by_the_simulated_readers_is_estimable_at_every_diam
     hm = a["human_model_factor"]
     print(f"human/model factor {hm['factor']:.3g} ({hm['ci_low']:.3g}–{hm['ci_high']:.3g})")
     assert hm["ci_low"] < 1.6 < hm["ci_high"]
+    # The readers rank the two panels as the model observer does on the same images.  The model's threshold per
+    # panel × diameter is d′_T over its d′ per unit contrast on the stored responses: the mean signal-site minus
+    # non-signal response per unit contrast over the non-signal sites' SD (a linear observer's d′; Green & Swets
+    # 1966).  The simulated readers' thresholds are each reader's factor times that (scorer/study/reader_model.py),
+    # the factor the same on both panels, so the panels' reader ratio over the model's ratio must be 1 within the
+    # pooled CIs: |ln| ≤ 2.5 combined SEs (2.5: a two-sided 5 % test Bonferroni-split over the four diameters).
+    # A swapped panel label, or readers fed the other panel's calibration, moves it to the model's ratio squared.
+    with app.app_context():
+        resp = pd.read_csv(io.StringIO(db().get(Study, sid).model_responses_csv), dtype={"image": str})
+    model_t = {}
+    for (det, d), g in resp.groupby(["detector", "diameter_mm"]):
+        m = int(g["m_alternatives"].iloc[0])
+        g = g.sort_values(["image", "target", "site"])
+        r = g["response"].to_numpy().reshape(-1, m)
+        sig = g["is_signal"].to_numpy(bool).reshape(-1, m)
+        c = g["contrast"].to_numpy()[::m]
+        noise = r[~sig].reshape(-1, m - 1)
+        diff = r[sig] - noise.mean(axis=1)
+        sd = np.sqrt(((noise - noise.mean(axis=1, keepdims=True)) ** 2).sum() / (noise.size - len(noise)))
+        model_t[(det, float(d))] = dprime_for_pc(criterion_for(m), m) * sd / (diff @ c / (c @ c))
+    by_cell = {(c["detector"], float(c["diameter_mm"])): c for c in pooled}
+    direct, indirect = DETECTORS["direct"], DETECTORS["indirect"]
+    for d in DEMO_DIAMETERS_MM:
+        pd_, pi_ = by_cell[(direct, d)], by_cell[(indirect, d)]
+        readers_ln = np.log(pd_["threshold_contrast"] / pi_["threshold_contrast"])
+        model_ln = np.log(model_t[(direct, d)] / model_t[(indirect, d)])
+        # each pooled CI is exp(ln C ± t_{R−1}·SE) (scorer/study/pooled_gee.py): its SE back from its ends
+        se = np.hypot(
+            *(np.log(p["ci_high"] / p["ci_low"]) / (2 * stats.t.ppf(0.975, p["n_readers"] - 1)) for p in (pd_, pi_))
+        )
+        print(
+            f"{d:g} mm direct/indirect: readers ×{np.exp(readers_ln):.2f}, model ×{np.exp(model_ln):.2f}, SE {se:.2f}"
+        )
+        assert abs(readers_ln - model_ln) <= 2.5 * se, (d, readers_ln, model_ln, se)
+        if abs(model_ln) > 2.5 * se:  # where the model's ordering is clear, the readers' must be the same
+            assert np.sign(readers_ln) == np.sign(model_ln), d
+
+
+def test_simulated_readers_as_good_as_the_model_choose_what_the_model_chose_on_each_image(tmp_path):
+    """The built-in simulated readers (webapp.demo.read_as_simulated_readers) are fed each trial's own image and
+    panel: a reader with the model observer's efficiency, no internal noise and no lapses (human/model factor
+    exactly 1, between-reader CV 0) must choose, in every scored trial, the site the model observer chose on that
+    image × target (M-AFC decision rule: the largest response; Green & Swets 1966).  A swapped panel label, a
+    wrong image's responses or a region mapped to the wrong target makes some choices differ."""
+    from scorer.study.reader_model import ReaderPopulation
+    from webapp import export
+    from webapp.demo import DETECTORS, read_as_simulated_readers
+    from webapp.models import Study, db
+
+    app, sid = demo_app(tmp_path, n_practice=0, repeat_fraction=0.0)
+    drawn = read_as_simulated_readers(app, sid, seed=3, population=ReaderPopulation(median_factor=1.0, cv_between=0))
+    assert np.allclose(drawn["factor"], 1.0) and np.allclose(drawn["internal_noise"], 0.0)
+    with app.app_context():
+        st = db().get(Study, sid)
+        readers = export.responses_frame(db(), st)
+        model = export.model_frame(st)
+    key = ["image", "target"]
+    both = readers.merge(model[key + ["detector", "chosen_site"]], on=key, suffixes=("", "_model"), how="left")
+    assert len(both) == len(readers) > 0 and both["chosen_site_model"].notna().all()
+    assert (both["detector"] == both["detector_model"]).all()  # each image keeps its panel
+    assert (both["chosen_site"] == both["chosen_site_model"]).all(), both[both.chosen_site != both.chosen_site_model]
+    assert set(both["detector"]) == set(DETECTORS.values())
+
+
+# --------------------------------------------------------------------------- the gate asks the model observer
+def test_model_gate_refuses_above_the_plates_top_contrast_and_warns_when_the_interval_reaches_it():
+    """Expected human threshold = factor × model threshold, 95 % interval exp(ln H ± 1.96·√(se² + sd_F²))
+    (errors of a product add in quadrature on the log scale, Taylor 1997): 1.6 × 20 % = 32 % below a top contrast
+    of 37.1 % with an interval up to 32·e^{1.96·√(0.1² + 0.16²)} = 46.3 % → a warning; refused only when the whole
+    interval lies above the top contrast."""
+    from webapp.design import model_gate
+
+    refusals, warnings = model_gate({("panel A", 0.1): (0.20, 0.10)}, {0.1: 0.371}, factor=1.6, factor_sd_ln=0.16)
+    assert not refusals and len(warnings) == 1
+    hi = 32.0 * np.exp(1.959964 * np.hypot(0.1, 0.16))
+    assert "0.1 mm, panel A" in warnings[0] and f"{hi:.3g} %" in warnings[0] and "37.1 %" in warnings[0]
+    # 1.6 × 25 % = 40 % above 37.1 %, the interval down to 40·e^{−0.37} = 27.6 %: a warning, not a refusal
+    refusals, warnings = model_gate({("panel A", 0.1): (0.25, 0.10)}, {0.1: 0.371}, factor=1.6, factor_sd_ln=0.16)
+    assert not refusals and len(warnings) == 1 and "expected human threshold 40 %" in warnings[0]
+    # 1.6 × 35 % = 56 %, SE 0.05: the interval from 56·e^{−1.96·√(0.05² + 0.16²)} = 40.3 % lies above: refused
+    refusals, warnings = model_gate({("panel A", 0.1): (0.35, 0.05)}, {0.1: 0.371}, factor=1.6, factor_sd_ln=0.16)
+    lo = 56.0 * np.exp(-1.959964 * np.hypot(0.05, 0.16))
+    assert len(refusals) == 1 and f"({lo:.3g}–" in refusals[0] and not warnings
+    # well inside the plate: nothing to say
+    assert model_gate({("panel A", 1.0): (0.003, 0.1)}, {1.0: 0.0267}) == ([], [])
+
+
+def test_the_gate_flags_the_demos_0_1_mm_from_the_model_observer_on_the_studys_own_images(tmp_path):
+    """The demo's panels at 0.1 mm: the model observer (NPWE, the study's observer) on the study's own images puts
+    the readers' expected threshold near the plate's highest contrast there (37.1 %), so the gate refuses or
+    warns, naming 0.1 mm and the panel; the demo's own diameters (0.15–1 mm) are not refused."""
+    from scorer.errors import LimenError
+    from scorer.workflow import load_layout
+    from webapp import design
+    from webapp.demo import DEMO_DIAMETERS_MM, DETECTORS, create_demo_study
+    from webapp.models import Study, db
+
+    app = make_app(tmp_path)
+    sid = create_demo_study(
+        app, diameters_mm=(0.1, *DEMO_DIAMETERS_MM), open_study=False, passwords=PASSWORDS, n_readers=5
+    )["study_id"]
+    with app.app_context():
+        st = db().get(Study, sid)
+        layout = load_layout(st.layout_file)
+        try:
+            plan = design.check_design(st, layout)
+            said = plan["warnings"]
+        except LimenError as exc:
+            said = [str(exc)]
+        for w in said:
+            print(w)
+        at_01 = [w for w in said if w.startswith("0.1 mm, ") or ": 0.1 mm, " in w or "; 0.1 mm, " in w]
+        assert at_01, said
+        assert all(any(label in w for label in DETECTORS.values()) for w in at_01)
+        assert all("highest contrast there, 37.1 %" in w for w in at_01)
+        st.diameters_json = json.dumps(list(DEMO_DIAMETERS_MM))
+        plan = design.check_design(st, layout)  # not refused
+        assert not any("0.1 mm" in w for w in plan["warnings"]), plan["warnings"]
+        cells = {(c["detector"], c["diameter_mm"]) for c in plan["model_check"]["cells"]}
+        assert cells == {(det, d) for det in DETECTORS.values() for d in DEMO_DIAMETERS_MM}

@@ -6,8 +6,13 @@ Images are simulated by :func:`scorer.detector.simulate` (``small=True``), score
 the study opens, and read by invented reader accounts.
 
 The demo is designed to be estimable (issue 18): five readers, four scored images and one practice image per
-panel, the four diameters 0.1, 0.25, 0.5 and 1.0 mm, Psi placement and a wanted 95 % CI of ±0.5 (ln) on each
-pooled threshold; the design gate (:mod:`webapp.design`) plans the trials per reader per cell when it opens.
+panel, the four diameters 0.15, 0.25, 0.5 and 1.0 mm, Psi placement and a wanted 95 % CI of ±0.5 (ln) on each
+pooled threshold; the design gate (:mod:`webapp.design`) plans the trials per reader per cell when it opens and
+asks the model observer (NPWE) on the study's own images whether the readers can reach threshold within the
+plate's contrasts: at 0.1 mm it warns for both panels (expected human thresholds 26–29 %, intervals reaching
+past the plate's 37.1 %).  The panels are the mammography pair, for which NPWE predicts a tie at 0.15 mm; on
+the demo's four images the model observer ranks the indirect panel ahead there by chance, and the simulated
+readers follow it (DEVELOPERS.md).
 :func:`read_as_simulated_readers` lets the built-in simulated readers read it to the end.
 """
 

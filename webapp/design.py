@@ -33,8 +33,12 @@ from __future__ import annotations
 
 import json
 import math
+from collections.abc import Mapping
+from pathlib import Path
+from typing import Any
 
 import numpy as np
+import pandas as pd
 
 from scorer.errors import LimenError
 from scorer.study.estimability import EstimabilityRule
@@ -52,6 +56,11 @@ PLAN_SIMULATED_READERS = 200
 MAX_TRIALS_PER_CELL = 400
 MARGIN_PX = 2.0  # blur margin around a disc's edge when keeping neighbours out of a tile (common practice)
 WINDOW_SPAN = 1.6  # default window = 1.6 × the 2nd–98th percentile span of a tile (as the viewer's old auto W/L)
+#: expected human/model threshold factor and the SD of its ln, for the model-observer check of the gate: human
+#: thresholds lie about 1.2–2.2 × a model observer's (95 % range; from memory: human efficiencies of 25–70 % of a
+#: matched observer, Burgess et al. 1981, give 1/√efficiency; the demo's simulated readers use 1.6)
+HUMAN_MODEL_FACTOR = 1.6
+HUMAN_MODEL_FACTOR_SD_LN = 0.16
 
 
 # =========================================================================== diameters
@@ -316,8 +325,12 @@ def plan_design(
     }
 
 
-def check_design(study, layout) -> dict:
-    """:func:`plan_design` for a draft study as it stands (its images and enrolled readers)."""
+def check_design(study: Any, layout: Any, store_dir: Path | None = None) -> dict:
+    """:func:`plan_design` for a draft study as it stands (its images and enrolled readers), then the model
+    observer's check (:func:`model_gate`) on the study's own scored images: refused, in one line, when a panel's
+    expected human threshold lies above the plate's highest contrast at a diameter; the diameters whose interval
+    reaches above it are named in the plan's ``warnings``.  ``store_dir`` defaults to the running app's store
+    (``STORE_DIR``); without one (no app) the model check is skipped."""
     scored: dict[str, int] = {}
     practice = 0
     for im in study.images:
@@ -325,7 +338,181 @@ def check_design(study, layout) -> dict:
             practice += 1
         else:
             scored[im.detector] = scored.get(im.detector, 0) + 1
-    return plan_design(study, layout, len(study.enrolments), scored, practice)
+    plan = plan_design(study, layout, len(study.enrolments), scored, practice)
+    if store_dir is None:
+        try:
+            from flask import current_app
+
+            store_dir = Path(current_app.config["STORE_DIR"])
+        except (RuntimeError, KeyError):  # outside an app: no images to score
+            return plan
+    try:
+        thresholds = study_model_thresholds(study, layout, Path(store_dir))
+    except LimenError:  # an image that cannot be scored: the opening's own scoring names it, in its job
+        plan["warnings"], plan["model_check"] = [], None
+        return plan
+    top = {float(d): float(max(lv)) for d, (lv, _) in _levels(layout).items()}
+    refusals, warnings = model_gate(thresholds, top)
+    if refusals:
+        raise LimenError(
+            "; ".join(refusals) + ". Change: leave out the diameters named, or use a plate with higher contrasts "
+            "there (or a higher dose)"
+        )
+    plan["warnings"] = warnings
+    plan["model_check"] = {
+        "human_model_factor": HUMAN_MODEL_FACTOR,
+        "factor_sd_ln": HUMAN_MODEL_FACTOR_SD_LN,
+        "cells": [
+            {"detector": det, "diameter_mm": d, "model_threshold": t, "se_ln": se, "highest_contrast": top[d]}
+            for (det, d), (t, se) in sorted(thresholds.items())
+        ],
+    }
+    return plan
+
+
+def _levels(layout: Any) -> dict[float, tuple[list[float], int]]:
+    from scorer.study.adaptive import plate_levels
+
+    return plate_levels(layout)
+
+
+# =========================================================================== the model observer's check
+def model_thresholds_from_responses(responses: pd.DataFrame) -> dict[tuple[str, float], tuple[float, float]]:
+    """{(detector, diameter): (threshold contrast, SE of its ln)} of the model observer from its per-site
+    responses (columns detector, image, target, diameter_mm, contrast, m_alternatives, site, is_signal,
+    response).
+
+    d′ per unit contrast of a linear observer in M-AFC is the mean signal-site minus non-signal response per unit
+    contrast, g (least squares through the origin over the targets), over the SD σ of the non-signal sites about
+    their target's mean (Green & Swets 1966); the threshold is d′_T/(g/σ) at the study's d′_T for that M.  SE of
+    ln: var(ĝ) = σ²·M/(M − 1)/ΣC² and SE(ln σ̂) = 1/√(2·df), added in quadrature (delta method; Taylor 1997).
+    """
+    from scorer.observer.mafc import criterion_for, dprime_for_pc
+
+    out: dict[tuple[str, float], tuple[float, float]] = {}
+    for (det, d), g in responses.groupby(["detector", "diameter_mm"]):
+        m = int(g["m_alternatives"].iloc[0])
+        g = g.sort_values(["image", "target", "site"])
+        r = g["response"].to_numpy(float).reshape(-1, m)
+        sig = g["is_signal"].to_numpy(bool).reshape(-1, m)
+        c = g["contrast"].to_numpy(float)[::m]
+        ok = np.isfinite(r).all(axis=1) & (sig.sum(axis=1) == 1)
+        r, sig, c = r[ok], sig[ok], c[ok]
+        df = r.shape[0] * (m - 2) if m > 2 else 0
+        if df < 2 or float(c @ c) <= 0:
+            out[(str(det), float(d))] = (float("nan"), float("nan"))
+            continue
+        noise = r[~sig].reshape(-1, m - 1)
+        diff = r[sig] - noise.mean(axis=1)
+        sigma = float(np.sqrt(((noise - noise.mean(axis=1, keepdims=True)) ** 2).sum() / df))
+        gain = float(diff @ c / (c @ c))
+        if not gain > 0:
+            out[(str(det), float(d))] = (float("inf"), float("nan"))
+            continue
+        se_gain = sigma * math.sqrt(m / (m - 1)) / math.sqrt(float(c @ c))
+        se_ln = math.hypot(se_gain / gain, 1.0 / math.sqrt(2.0 * df))
+        out[(str(det), float(d))] = (dprime_for_pc(criterion_for(m), m) * sigma / gain, se_ln)
+    return out
+
+
+def model_gate(
+    thresholds: Mapping[tuple[str, float], tuple[float, float]],
+    highest_contrast: Mapping[float, float],
+    factor: float = HUMAN_MODEL_FACTOR,
+    factor_sd_ln: float = HUMAN_MODEL_FACTOR_SD_LN,
+    z: float = 1.959964,
+) -> tuple[list[str], list[str]]:
+    """(refusals, warnings) of the model observer's check.
+
+    Each panel × diameter's expected human threshold is ``factor`` × the model observer's threshold on the study's
+    own images, with a 95 % interval exp(ln H ± z·√(se_model² + factor_sd_ln²)) (independent errors of a product
+    add in quadrature on the log scale; Taylor 1997).  The whole interval above the plate's highest contrast at
+    that diameter: the readers cannot reach threshold on any region and the cell cannot give an estimable
+    threshold, refused.  The estimate, or only the interval's upper end, above it: a warning (the cell may not be
+    estimable); a refusal on the estimate alone would turn on the noise of a few images (two mini-plate images
+    per panel put the NPWE model's 0.1 mm threshold anywhere from 19 % to 200 %)."""
+    refusals: list[str] = []
+    warnings: list[str] = []
+    for (det, d), (t, se) in sorted(thresholds.items(), key=lambda kv: (kv[0][1], kv[0][0])):
+        top = highest_contrast.get(float(d))
+        if top is None:
+            continue
+        if not (np.isfinite(t) and t > 0):
+            warnings.append(  # a few images' noise can hide a threshold the plate holds: not a refusal
+                f"{d:g} mm, {det}: the model observer finds no threshold on the study's images (no signal above "
+                "their noise): the cell may not be estimable; leave it out or add images"
+            )
+            continue
+        h = factor * t
+        half = z * math.hypot(se if np.isfinite(se) else 0.0, factor_sd_ln)
+        lo, hi = h * math.exp(-half), h * math.exp(half)
+        text = (
+            f"{d:g} mm, {det}: expected human threshold {100 * h:.3g} % ({100 * lo:.3g}–{100 * hi:.3g} %: "
+            f"{factor:g} × the model observer's {100 * t:.3g} %)"
+        )
+        if lo > top:
+            refusals.append(f"{text} lies above the plate's highest contrast there, {100 * top:.3g} %")
+        elif h > top:
+            warnings.append(
+                f"{text} is above the plate's highest contrast there, {100 * top:.3g} % (not certainly: the "
+                "interval reaches below it): the cell may not be estimable; leave it out or add images"
+            )
+        elif hi > top:
+            warnings.append(
+                f"{text} may lie above the plate's highest contrast there, {100 * top:.3g} %: the cell may not be "
+                "estimable"
+            )
+    return refusals, warnings
+
+
+_MODEL_CACHE: dict[tuple, dict] = {}
+
+
+def study_model_thresholds(study: Any, layout: Any, store_dir: Path) -> dict[tuple[str, float], tuple[float, float]]:
+    """The model observer's thresholds (:func:`model_thresholds_from_responses`) of each panel × diameter the
+    study asks for, from scoring its scored (non-practice) images as the study will (its observer and viewing
+    distance).  Remembered per set of images and settings in this process, so the open button's check and the
+    opening job's score them once."""
+    from webapp.content_store import stored_file
+
+    diameters = set(study_diameters(study, layout))
+    images = [im for im in study.images if not im.practice]
+    key = (
+        str(study.layout_file),
+        str(study.observer or "npwe"),
+        float(study.viewing_distance_mm or 500.0),
+        tuple(sorted((im.sha256, im.detector, im.conversion_file or "", im.pixel_spacing_mm or 0.0) for im in images)),
+    )
+    if key in _MODEL_CACHE:
+        return {k: v for k, v in _MODEL_CACHE[key].items() if k[1] in diameters}
+    from scorer.workflow import load_conversion, score_files
+
+    groups: dict[tuple, list] = {}
+    for im in images:
+        groups.setdefault((im.conversion_file, im.pixel_spacing_mm), []).append(im)
+    frames = []
+    for (conv_file, spacing), ims in groups.items():
+        conversion = load_conversion(stored_file(conv_file, store_dir)) if conv_file else None
+        paths = [str(store_dir / im.stored_name) for im in ims]
+        res = score_files(
+            paths,
+            layout,
+            observer=study.observer or "npwe",
+            methods=["dprime"],
+            conversion=conversion,
+            pixel_spacing_mm=spacing,
+            viewing_distance_mm=study.viewing_distance_mm,
+            n_boot=0,
+            check_defects=False,
+        )
+        by_name = {Path(p).name: im.detector for p, im in zip(paths, ims)}
+        fr = res.responses
+        frames.append(fr.assign(detector=[by_name[n] for n in fr["image"]]))
+    found = model_thresholds_from_responses(pd.concat(frames, ignore_index=True)) if frames else {}
+    if len(_MODEL_CACHE) > 16:
+        _MODEL_CACHE.clear()
+    _MODEL_CACHE[key] = found
+    return {k: v for k, v in found.items() if k[1] in diameters}
 
 
 def plan_of(study) -> dict | None:
