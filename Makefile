@@ -31,6 +31,7 @@ test: venv
 	$(VENV)/bin/ruff check .
 	$(VENV)/bin/ruff format --check .
 	$(PY) -m mypy --strict --follow-imports=silent $(MYPY_STRICT)
+	$(PY) -m mypy --check-untyped-defs --follow-imports=silent webapp
 
 	$(PY) -m pytest -q -n 2 tests --cov --cov-report=term --cov-fail-under=85
 

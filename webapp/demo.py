@@ -23,6 +23,7 @@ import json
 import secrets
 import tempfile
 from pathlib import Path
+from typing import cast
 
 import numpy as np
 from sqlalchemy import select
@@ -196,7 +197,8 @@ def read_as_simulated_readers(app, study_id: int, *, seed: int = 0, population=N
         resp = resp.sort_values(["image", "target", "site"])
         practice = {im.code for im in st.images if im.practice}
         by_trial, calib = {}, {}
-        for (det, diam), g in resp.groupby(["detector", "diameter_mm"]):
+        for key, g in resp.groupby(["detector", "diameter_mm"]):
+            det, diam = cast(tuple[str, float], key)
             m = int(g["m_alternatives"].iloc[0])
             scored = g[~g["image"].isin(practice)]
             r = scored["response"].to_numpy().reshape(-1, m)
@@ -218,9 +220,9 @@ def read_as_simulated_readers(app, study_id: int, *, seed: int = 0, population=N
             while (t := placement.next_trial(s, st, uid)) is not None:
                 reg = t.region
                 code, det = codes[reg.image_id]
-                r, sig = by_trial[(code, reg.target)]
+                r_trial, sig_trial = by_trial[(code, reg.target)]
                 gain, sigma_ext = calib[(det, float(reg.diameter_mm))]
-                site = simulated_choice(r, sig, reg.contrast, gain, sigma_ext, who, rng)
+                site = simulated_choice(r_trial, sig_trial, reg.contrast, gain, sigma_ext, who, rng)
                 placement.record_response(
                     s,
                     t,

@@ -35,7 +35,7 @@ import json
 import math
 from collections.abc import Mapping
 from pathlib import Path
-from typing import Any
+from typing import Any, cast
 
 import numpy as np
 import pandas as pd
@@ -107,7 +107,9 @@ def _discs_px(layout, transform) -> tuple[np.ndarray, np.ndarray, list]:
     """Every place a disc may sit, in image pixels: each candidate site of each target (radius of its target's
     disc) and each marker; with the (target id, site) of each site (None for markers)."""
     scale = float(transform.scale_px_per_mm())
-    pts, radii, owner = [], [], []
+    pts: list[np.ndarray] = []
+    radii: list[float] = []
+    owner: list[tuple[Any, int] | None] = []
     for t in layout.targets:
         rc = transform.to_pixel(t.sites)
         for j in range(t.m_alternatives):
@@ -292,8 +294,8 @@ def plan_design(
             "diameters named, or allow more trials per reader"
         )
     detectors = sorted(scored_images_by_detector)
-    cells = [
-        {"detector": det, "diameter_mm": r["diameter_mm"], "n_trials": int(r["n_trials"])}
+    cells: list[dict[str, Any]] = [
+        {"detector": det, "diameter_mm": r["diameter_mm"], "n_trials": int(cast(int, r["n_trials"]))}
         for det in detectors
         for r in rows
     ]
@@ -370,7 +372,7 @@ def check_design(study: Any, layout: Any, store_dir: Path | None = None) -> dict
     return plan
 
 
-def _levels(layout: Any) -> dict[float, tuple[list[float], int]]:
+def _levels(layout: Any) -> dict[float, tuple[tuple[float, ...], int]]:
     from scorer.study.adaptive import plate_levels
 
     return plate_levels(layout)
@@ -390,7 +392,8 @@ def model_thresholds_from_responses(responses: pd.DataFrame) -> dict[tuple[str, 
     from scorer.observer.mafc import criterion_for, dprime_for_pc
 
     out: dict[tuple[str, float], tuple[float, float]] = {}
-    for (det, d), g in responses.groupby(["detector", "diameter_mm"]):
+    for key, g in responses.groupby(["detector", "diameter_mm"]):
+        det, d = cast(tuple[str, float], key)
         m = int(g["m_alternatives"].iloc[0])
         g = g.sort_values(["image", "target", "site"])
         r = g["response"].to_numpy(float).reshape(-1, m)

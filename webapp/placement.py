@@ -24,6 +24,7 @@ stored once changes them once.
 from __future__ import annotations
 
 import json
+from typing import Any
 
 import numpy as np
 from sqlalchemy import func, select, update
@@ -134,11 +135,11 @@ def cell_states(s, study: Study, reader_id: int):
     }
     missing = [k for k in want if k not in rows]
     if missing:
-        plan = json.loads(study.plan_json)
+        plan = _plan(study)
         levels = {float(r["diameter_mm"]): (r["levels"], int(r["m_alternatives"])) for r in plan["diameters"]}
         for det, d in missing:
             lv, m = levels[d]
-            st = new_state(lv, m, study.placement)
+            st = new_state(lv, m, study.placement or "psi")
             row = AdaptiveCell(
                 study_id=study.id,
                 reader_id=reader_id,
@@ -215,7 +216,7 @@ def _practice_trials(s, study: Study, reader_id: int) -> list[Trial]:
 
 def _add_repeats(s, study: Study, reader_id: int, seq: int) -> bool:
     """Once every cell is finished: the repeats (made once), or False when they exist or none are wanted."""
-    plan = json.loads(study.plan_json)
+    plan = _plan(study)
     if not plan.get("n_repeats"):
         return False
     have = s.scalar(
@@ -246,6 +247,14 @@ def _add_repeats(s, study: Study, reader_id: int, seq: int) -> bool:
         s.add(_new_trial(study, reader_id, seq + k, t.region, len(t.region.sites), rng, repeat=1))
     s.flush()
     return True
+
+
+def _plan(study: Study) -> dict[str, Any]:
+    """The plan the design gate made when the study opened (an adaptive study always has one)."""
+    if study.plan_json is None:
+        raise LimenError(f"study {study.id} is placed adaptively but has no plan; re-open it")
+    plan: dict[str, Any] = json.loads(study.plan_json)
+    return plan
 
 
 def reader_totals(study: Study) -> tuple[int, int] | None:

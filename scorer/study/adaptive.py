@@ -60,6 +60,7 @@ import math
 from collections.abc import Hashable, Iterable, Mapping
 from dataclasses import dataclass
 from functools import cached_property, lru_cache
+from typing import TypeVar
 
 import numpy as np
 
@@ -474,7 +475,10 @@ def estimate(state: AdaptiveState, ci: float = 0.95) -> ThresholdEstimate:
 
 
 # =========================================================================== interleaving cells
-def next_cell(states: Mapping[Hashable, AdaptiveState], rng: np.random.Generator, trials_per_cell) -> Hashable | None:
+_Cell = TypeVar("_Cell", bound=Hashable)  # a cell key, e.g. (detector, diameter_mm)
+
+
+def next_cell(states: Mapping[_Cell, AdaptiveState], rng: np.random.Generator, trials_per_cell) -> _Cell | None:
     """The cell (key of ``states``, e.g. (detector, diameter)) whose trial comes next, or None when every cell
     has its trials.
 
