@@ -20,9 +20,10 @@ TEMPLATES = ROOT / "scorer" / "reports" / "templates"
 
 def test_every_template_file_is_declared_package_data_so_the_wheel_carries_it() -> None:
     data = tomllib.loads((ROOT / "pyproject.toml").read_text(encoding="utf-8"))["tool"]["setuptools"]["package-data"]
-    patterns = data.get("scorer.reports", [])
-    files = [p.relative_to(ROOT / "scorer" / "reports").as_posix() for p in TEMPLATES.rglob("*") if p.is_file()]
-    assert {"templates/page.html", "templates/table.html", "templates/report.css"} <= set(files)
+    # the templates folder is a package of its own (declared in [tool.setuptools] packages, as the web app's are)
+    patterns = data.get("scorer.reports.templates", [])
+    files = [p.relative_to(TEMPLATES).as_posix() for p in TEMPLATES.rglob("*") if p.is_file()]
+    assert {"page.html", "table.html", "report.css"} <= set(files)
     assert all(any(fnmatch.fnmatch(f, pat) for pat in patterns) for f in files), (files, patterns)
 
 
